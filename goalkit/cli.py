@@ -1,0 +1,59 @@
+"""The ``goalkit`` command: a thin click group; the logic lives in the library.
+
+Commands are loaded lazily, so ``goalkit --help`` stays fast and a command's heavy imports
+(faiss, matplotlib, dask) are paid only when it runs.
+"""
+
+from __future__ import annotations
+
+import importlib
+
+import click
+
+from goalkit import __version__
+
+#: command name -> "module:function" (a click.Command); help text shown in the listing.
+COMMANDS = {
+    "demo": ("goalkit.demo.command:demo", "Write invented demo logs of the irrigation-gantry bench."),
+    "scan": ("goalkit.logs.command:scan", "Summarise task logs and check them; propose a layout."),
+    "build": ("goalkit.pipeline.command:build", "Build a goal-conditioned dataset from a recipe."),
+    "verify": ("goalkit.write.command:verify", "Re-derive a built dataset from its logs and check it."),
+    "embed": ("goalkit.goals.command:embed", "Fit a goal embedding on task logs and save it."),
+    "tune": ("goalkit.tune.command:tune", "Choose the goal-match threshold from labels or diagnostics."),
+}
+
+
+class LazyGroup(click.Group):
+    """A click group whose subcommands are imported on first use."""
+
+    def list_commands(self, ctx):
+        return list(COMMANDS)
+
+    def get_command(self, ctx, name):
+        if name not in COMMANDS:
+            return None
+        target, _ = COMMANDS[name]
+        module, attr = target.split(":")
+        return getattr(importlib.import_module(module), attr)
+
+    def format_commands(self, ctx, formatter):
+        rows = [(name, help_) for name, (_, help_) in COMMANDS.items()]
+        with formatter.section("Commands"):
+            formatter.write_dl(rows)
+
+
+@click.group(cls=LazyGroup, context_settings={"help_option_names": ["-h", "--help"], "show_default": True})
+@click.version_option(__version__, prog_name="goalkit")
+@click.option("--debug", is_flag=True, help="Show full tracebacks instead of one-line errors.")
+@click.pass_context
+def main(ctx, debug):
+    """goalkit: turn existing task logs into goal-conditioned training sets.
+
+    Typical flow: scan the logs, write a recipe, build, verify.
+    """
+    ctx.ensure_object(dict)
+    ctx.obj["debug"] = debug
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

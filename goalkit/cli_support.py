@@ -1,0 +1,82 @@
+"""Shared pieces of the command-line interface: error handling, progress, JSON output."""
+
+from __future__ import annotations
+
+import functools
+import json
+import sys
+
+import click
+import numpy as np
+
+from goalkit.errors import GoalkitError
+
+#: Exit status for bad input (a GoalkitError).
+EXIT_BAD_INPUT = 2
+
+
+def debug_enabled() -> bool:
+    """True when the top-level ``--debug`` flag was given."""
+    ctx = click.get_current_context(silent=True)
+    while ctx is not None:
+        if ctx.obj and ctx.obj.get("debug"):
+            return True
+        ctx = ctx.parent
+    return False
+
+
+def user_errors(func):
+    """Decorate a click command: a GoalkitError becomes one line on stderr and exit status 2.
+
+    With ``goalkit --debug`` the traceback is shown instead.
+    """
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        try:
+            return func(*args, **kwargs)
+        except GoalkitError as exc:
+            if debug_enabled():
+                raise
+            click.echo(f"goalkit: error: {exc}", err=True)
+            sys.exit(EXIT_BAD_INPUT)
+
+    return wrapper
+
+
+def progress(total: int, desc: str, quiet: bool = False, unit: str = "step"):
+    """Return a tqdm bar on a terminal, a silent one when piped or ``quiet``.
+
+    Parameters
+    ----------
+    total : int
+        Amount of work (e.g. transitions).
+    desc : str
+        Label shown before the bar.
+    quiet : bool
+        Never show the bar.
+    unit : str
+        Unit name for the rate.
+    """
+    from tqdm import tqdm
+
+    disable = quiet or not sys.stderr.isatty()
+    return tqdm(total=total, desc=desc, unit=unit, unit_scale=True, disable=disable,
+                file=sys.stderr, leave=False, dynamic_ncols=True)
+
+
+def _default(obj):
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.floating):
+        return float(obj)
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    raise TypeError(f"not JSON serialisable: {type(obj).__name__}")
+
+
+def echo_json(obj) -> None:
+    """Print ``obj`` as one JSON object (numpy scalars and arrays converted)."""
+    click.echo(json.dumps(obj, default=_default, sort_keys=True))
