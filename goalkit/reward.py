@@ -1,0 +1,346 @@
+"""Reward rules: a distance in goal space, a threshold and a reward form.
+
+A :class:`RewardRule` scores pairs ``(achieved, goal)`` where ``achieved = phi(s_{t+1})``
+is the goal reached by transition ``t``. Everything is vectorised over (M, G) arrays.
+
+Distances (``w_d`` are the optional per-dimension weights, all 1 when omitted;
+``delta_d = achieved_d - goal_d``)::
+
+    euclidean   sqrt(sum_d w_d * delta_d**2)
+    l1          sum_d w_d * |delta_d|
+    chebyshev   max_d w_d * |delta_d|
+    cosine      1 - sum_d w_d a_d g_d / sqrt(sum_d w_d a_d**2 * sum_d w_d g_d**2)
+                (0 when both vectors are zero, 1 when exactly one is; clipped to [0, 2])
+    box         max_d |delta_d| / tol_d   (the threshold is the tolerance vector tol;
+                reached iff |delta_d| <= tol_d for every d, i.e. distance <= 1; no weights)
+
+Reached: ``distance <= threshold`` when ``inclusive`` (the default), ``distance < threshold``
+otherwise; for ``box`` the comparison is with 1.
+
+Reward forms::
+
+    sparse                       1 if reached else 0
+    sparse-negative              0 if reached else -1
+    negative-distance            -distance
+    clipped-negative-distance    -min(distance, clip)
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any, Mapping
+
+import numpy as np
+
+from goalkit.config import check_keys, closest
+from goalkit.errors import RecipeError
+
+#: Distance names accepted in ``[reward] distance``.
+DISTANCES = ("euclidean", "l1", "chebyshev", "cosine", "box")
+#: Reward form names accepted in ``[reward] form``.
+FORMS = ("sparse", "sparse-negative", "negative-distance", "clipped-negative-distance")
+#: Keys of the recipe's ``[reward]`` table.
+TABLE_KEYS = ("distance", "threshold", "inclusive", "form", "weights", "clip", "end_on_reach")
+
+
+def _choice_error(what: str, value, valid, *, file, key) -> RecipeError:
+    hint = closest(str(value), valid)
+    tip = f"; did you mean '{hint}'?" if hint else ""
+    return RecipeError(f"unknown {what} {value!r}{tip} valid: {', '.join(valid)}", file=file, key=key)
+
+
+def _is_number(x) -> bool:
+    return isinstance(x, (int, float, np.integer, np.floating)) and not isinstance(x, (bool, np.bool_))
+
+
+@dataclass(frozen=True, init=False)
+class RewardRule:
+    """How a transition's reached goal is scored against a goal.
+
+    Parameters
+    ----------
+    distance : str
+        One of :data:`DISTANCES`.
+    threshold : float or tuple of float
+        Reach threshold (>= 0). For ``distance="box"``: one tolerance (> 0) per goal
+        dimension, and the normalised distance is compared with 1.
+    inclusive : bool, default True
+        Reached iff ``d <= threshold`` (True) or ``d < threshold`` (False).
+    form : str, default "sparse"
+        One of :data:`FORMS`.
+    weights : tuple of float, optional
+        Per-dimension weights (>= 0, not all zero), entering as in the module docstring.
+        Not allowed with ``box`` (scale the tolerances instead).
+    clip : float, optional
+        Cap of the distance for ``clipped-negative-distance`` (required there, > 0); not
+        allowed with other forms.
+    end_on_reach : bool, default False
+        Whether reaching the goal ends the episode (see :meth:`terminal`).
+
+    Attributes
+    ----------
+    distance_name : str
+        The distance's name (the constructor's ``distance``; ``distance`` itself is the
+        scoring method).
+
+    Raises
+    ------
+    RecipeError
+        If a value is impossible (see :meth:`from_table` for the list).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rule = RewardRule("euclidean", 0.05, form="sparse-negative")
+    >>> a, g = np.array([[0.0, 0.03], [0.0, 0.2]]), np.zeros((2, 2))
+    >>> rule.reward(a, g)
+    array([ 0., -1.], dtype=float32)
+    >>> RewardRule("box", (0.1, 0.5)).distance(np.array([[0.05, 0.5]]), np.zeros((1, 2)))
+    array([1.])
+    """
+
+    distance_name: str
+    threshold: float | tuple[float, ...]
+    inclusive: bool = True
+    form: str = "sparse"
+    weights: tuple[float, ...] | None = None
+    clip: float | None = None
+    end_on_reach: bool = False
+
+    def __init__(self, distance: str, threshold, inclusive: bool = True, form: str = "sparse",
+                 weights=None, clip=None, end_on_reach: bool = False):
+        # The distance's *name* is stored as ``distance_name`` so that ``distance(...)`` can be
+        # the scoring method of the contract; the constructor still takes ``distance=``.
+        if isinstance(threshold, (list, tuple, np.ndarray)):
+            threshold = tuple(float(x) if _is_number(x) else x for x in threshold)
+        elif _is_number(threshold):
+            threshold = float(threshold)
+        if isinstance(weights, (list, tuple, np.ndarray)):
+            weights = tuple(float(x) if _is_number(x) else x for x in weights)
+        if clip is not None and _is_number(clip):
+            clip = float(clip)
+        for name, value in (("distance_name", distance), ("threshold", threshold),
+                            ("inclusive", inclusive), ("form", form), ("weights", weights),
+                            ("clip", clip), ("end_on_reach", end_on_reach)):
+            object.__setattr__(self, name, value)
+        self._validate(None)
+
+    def replace(self, **changes) -> "RewardRule":
+        """Return a copy with some constructor arguments changed (e.g. ``threshold=0.1``)."""
+        return RewardRule(**{**self.describe(), **changes})
+
+    # ---- checking ----------------------------------------------------------------------
+    def _validate(self, file) -> None:
+        if self.distance_name not in DISTANCES:
+            raise _choice_error("distance", self.distance_name, DISTANCES, file=file, key="reward.distance")
+        if self.form not in FORMS:
+            raise _choice_error("reward form", self.form, FORMS, file=file, key="reward.form")
+        if not isinstance(self.inclusive, (bool, np.bool_)):
+            raise RecipeError(f"expected true or false, got {self.inclusive!r}", file=file,
+                              key="reward.inclusive")
+        if not isinstance(self.end_on_reach, (bool, np.bool_)):
+            raise RecipeError(f"expected true or false, got {self.end_on_reach!r}", file=file,
+                              key="reward.end_on_reach")
+        thr = self.threshold
+        if self.distance_name == "box":
+            if not isinstance(thr, tuple):
+                raise RecipeError(
+                    f"distance 'box' expects a list of tolerances, one per goal dimension, got "
+                    f"{thr!r} (a single tolerance for every dimension is distance = 'chebyshev')",
+                    file=file, key="reward.threshold")
+            if len(thr) == 0 or not all(_is_number(x) and math.isfinite(x) and x > 0 for x in thr):
+                raise RecipeError(f"expected finite tolerances > 0, one per goal dimension, got "
+                                  f"{list(thr)}", file=file, key="reward.threshold")
+            if self.weights is not None:
+                raise RecipeError("distance 'box' takes no weights (scale the tolerances in "
+                                  "threshold instead)", file=file, key="reward.weights")
+        else:
+            if isinstance(thr, tuple):
+                raise RecipeError(f"a list of tolerances needs distance = 'box'; distance "
+                                  f"'{self.distance_name}' expects one number, got {list(thr)}",
+                                  file=file, key="reward.threshold")
+            if not _is_number(thr) or not math.isfinite(thr) or thr < 0:
+                raise RecipeError(f"expected a finite number >= 0, got {thr!r}", file=file,
+                                  key="reward.threshold")
+        if self.weights is not None:
+            w = self.weights
+            if not isinstance(w, tuple) or len(w) == 0:
+                raise RecipeError(f"expected a non-empty list of weights, got {w!r}", file=file,
+                                  key="reward.weights")
+            if not all(_is_number(x) and math.isfinite(x) and x >= 0 for x in w):
+                raise RecipeError(f"expected finite weights >= 0, got {list(w)}", file=file,
+                                  key="reward.weights")
+            if not any(x > 0 for x in w):
+                raise RecipeError("expected at least one weight > 0, got all zero", file=file,
+                                  key="reward.weights")
+        if self.form == "clipped-negative-distance":
+            c = self.clip
+            if c is None:
+                raise RecipeError("form 'clipped-negative-distance' needs clip (a number > 0)",
+                                  file=file, key="reward.clip")
+            if not _is_number(c) or not math.isfinite(c) or c <= 0:
+                raise RecipeError(f"expected a finite number > 0, got {c!r}", file=file,
+                                  key="reward.clip")
+        elif self.clip is not None:
+            raise RecipeError(f"clip is used only with form 'clipped-negative-distance', "
+                              f"not '{self.form}'", file=file, key="reward.clip")
+
+    def check_dim(self, goal_dim: int, file=None) -> None:
+        """Check the rule against the goal dimension ``goal_dim``.
+
+        Raises
+        ------
+        RecipeError
+            If the box tolerances or the weights do not have one entry per goal dimension.
+        """
+        if self.distance_name == "box" and len(self.threshold) != goal_dim:
+            raise RecipeError(f"expected {goal_dim} tolerances (one per goal dimension), got "
+                              f"{len(self.threshold)}", file=file, key="reward.threshold")
+        if self.weights is not None and len(self.weights) != goal_dim:
+            raise RecipeError(f"expected {goal_dim} weights (one per goal dimension), got "
+                              f"{len(self.weights)}", file=file, key="reward.weights")
+
+    # ---- scoring -----------------------------------------------------------------------
+    def _pair(self, achieved, goal) -> tuple[np.ndarray, np.ndarray]:
+        a = np.asarray(achieved, dtype=np.float64)
+        g = np.asarray(goal, dtype=np.float64)
+        if a.ndim != 2 or a.shape != g.shape:
+            raise ValueError(f"expected achieved and goal of one shape (M, G), got {a.shape} and {g.shape}")
+        dim = len(self.threshold) if self.distance_name == "box" else (
+            len(self.weights) if self.weights is not None else a.shape[1])
+        if a.shape[1] != dim:
+            raise ValueError(f"the rule is for goals of dimension {dim}, got {a.shape[1]}")
+        return a, g
+
+    def distance(self, achieved, goal) -> np.ndarray:
+        """Return the distances, float64 of shape (M,), of (M, G) arrays ``achieved``, ``goal``."""
+        a, g = self._pair(achieved, goal)
+        kind = self.distance_name
+        if kind == "box":
+            tol = np.asarray(self.threshold, dtype=np.float64)
+            return np.max(np.abs(a - g) / tol, axis=1, initial=0.0)
+        w = None if self.weights is None else np.asarray(self.weights, dtype=np.float64)
+        if kind == "cosine":
+            ww = np.ones(a.shape[1]) if w is None else w
+            dot = np.sum(ww * a * g, axis=1)
+            na = np.sum(ww * a * a, axis=1)
+            ng = np.sum(ww * g * g, axis=1)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                sim = dot / np.sqrt(na * ng)
+            out = 1.0 - sim
+            za, zg = na == 0, ng == 0
+            out = np.where(za & zg, 0.0, np.where(za | zg, 1.0, out))
+            return np.clip(out, 0.0, 2.0)
+        delta = np.abs(a - g)
+        if w is not None:
+            if kind == "euclidean":
+                return np.sqrt(np.sum(w * delta * delta, axis=1))
+            delta = w * delta
+        if kind == "euclidean":
+            return np.sqrt(np.sum(delta * delta, axis=1))
+        if kind == "l1":
+            return np.sum(delta, axis=1)
+        return np.max(delta, axis=1, initial=0.0)  # chebyshev
+
+    def reached(self, achieved, goal) -> np.ndarray:
+        """Return the reached flags, bool of shape (M,)."""
+        return self._reached_from(self.distance(achieved, goal))
+
+    def _reached_from(self, d: np.ndarray) -> np.ndarray:
+        thr = 1.0 if self.distance_name == "box" else float(self.threshold)
+        return d <= thr if self.inclusive else d < thr
+
+    def reward(self, achieved, goal) -> np.ndarray:
+        """Return the rewards, float32 of shape (M,), in the rule's form."""
+        d = self.distance(achieved, goal)
+        return self.reward_from(d)
+
+    def reward_from(self, d: np.ndarray) -> np.ndarray:
+        """Return the rewards, float32 (M,), for precomputed distances ``d`` (M,)."""
+        d = np.asarray(d, dtype=np.float64)
+        if self.form == "sparse":
+            return self._reached_from(d).astype(np.float32)
+        if self.form == "sparse-negative":
+            return self._reached_from(d).astype(np.float32) - np.float32(1.0)
+        if self.form == "negative-distance":
+            return (-d).astype(np.float32)
+        return (-np.minimum(d, self.clip)).astype(np.float32)
+
+    def terminal(self, achieved, goal) -> np.ndarray:
+        """Return the episode-end flags, bool (M,): ``reached`` if ``end_on_reach``, else all False."""
+        r = self.reached(achieved, goal)
+        return r if self.end_on_reach else np.zeros_like(r)
+
+    def describe(self) -> dict:
+        """Return a JSON-able description (the ``[reward]`` table that rebuilds this rule)."""
+        out: dict[str, Any] = {
+            "distance": self.distance_name,
+            "threshold": list(self.threshold) if isinstance(self.threshold, tuple) else self.threshold,
+            "inclusive": bool(self.inclusive),
+            "form": self.form,
+            "end_on_reach": bool(self.end_on_reach),
+        }
+        if self.weights is not None:
+            out["weights"] = list(self.weights)
+        if self.clip is not None:
+            out["clip"] = self.clip
+        return out
+
+    # ---- the recipe table --------------------------------------------------------------
+    @classmethod
+    def from_table(cls, table: Mapping[str, Any], file=None) -> "RewardRule":
+        """Build a rule from the recipe's ``[reward]`` table.
+
+        Parameters
+        ----------
+        table : mapping
+            The parsed ``[reward]`` table. ``threshold`` is required; ``distance`` defaults
+            to ``"euclidean"``, ``form`` to ``"sparse"``, ``inclusive`` to true,
+            ``end_on_reach`` to false.
+        file : str or Path, optional
+            The recipe file, for messages.
+
+        Raises
+        ------
+        RecipeError
+            On an unknown key (lists the valid keys and the closest), an unknown distance or
+            form (lists the valid ones), a negative or non-numeric threshold, box tolerances
+            that are not a list of positive numbers, negative or all-zero weights, a clip
+            <= 0 or missing for ``clipped-negative-distance``, or a clip given for another form.
+            The goal dimension is checked separately by :meth:`check_dim`.
+        """
+        if not isinstance(table, Mapping):
+            raise RecipeError(f"expected a table, got {table!r}", file=file, key="reward")
+        check_keys(table, TABLE_KEYS, file=file, section="[reward]", error=RecipeError)
+        if "threshold" not in table:
+            raise RecipeError("missing threshold (a number >= 0, or for distance 'box' a list of "
+                              "tolerances)", file=file, key="reward.threshold")
+        distance = table.get("distance", "euclidean")
+        form = table.get("form", "sparse")
+        for key, value in (("distance", distance), ("form", form)):
+            if not isinstance(value, str):
+                raise RecipeError(f"expected a string, got {value!r}", file=file, key=f"reward.{key}")
+        thr = table["threshold"]
+        if isinstance(thr, list):
+            if not all(_is_number(x) for x in thr):
+                raise RecipeError(f"expected a list of numbers, got {thr!r}", file=file,
+                                  key="reward.threshold")
+            thr = tuple(float(x) for x in thr)
+        elif not _is_number(thr):
+            raise RecipeError(f"expected a number, got {thr!r}", file=file, key="reward.threshold")
+        weights = table.get("weights")
+        if weights is not None:
+            if not isinstance(weights, list) or not all(_is_number(x) for x in weights):
+                raise RecipeError(f"expected a list of numbers, got {weights!r}", file=file,
+                                  key="reward.weights")
+            weights = tuple(float(x) for x in weights)
+        clip = table.get("clip")
+        if clip is not None and not _is_number(clip):
+            raise RecipeError(f"expected a number, got {clip!r}", file=file, key="reward.clip")
+        try:
+            return cls(distance=distance, threshold=thr, inclusive=table.get("inclusive", True),
+                       form=form, weights=weights, clip=clip,
+                       end_on_reach=table.get("end_on_reach", False))
+        except RecipeError as exc:
+            raise RecipeError(exc.message, file=file, key=exc.key) from None
