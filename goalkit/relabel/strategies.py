@@ -1,0 +1,308 @@
+"""Hindsight relabelling strategies: where the goal of each (transition, slot) comes from.
+
+Every strategy is a plain function
+
+``strategy(chunk, transitions, slots, seed, context=None, **options) -> StrategyGoals``
+
+vectorised over the requested rows: ``transitions`` are transition indices into ``chunk``
+(``0 .. chunk.num_transitions - 1``) and ``slots`` the goal slot of each row (same length).
+Randomness comes only from :mod:`goalkit.rng`, addressed by
+``(seed, episode id, step t, slot, stream)``, so a row's goal does not depend on which other
+rows are asked for, on chunking or on worker count. A training sampler can therefore call
+the same functions on a sampled minibatch (pass fresh slot numbers, or another seed, for
+fresh goals).
+
+Conventions, for transition ``t`` of an episode with ``T`` transitions (states
+``s_0..s_T``; the goal reached by transition ``t`` is ``phi(s_{t+1})``):
+
+==============  ====  =======================================================================
+strategy        code  goal
+==============  ====  =======================================================================
+original        0     the log's own goal ``task_goals[t]`` (external vector, episode -1)
+final           1     ``j = T``
+future          2     ``j`` uniform on ``{t+1, ..., T}``
+episode         3     ``j`` uniform on ``{0, ..., T}``
+geometric       4     ``j = t + K``, ``K ~ Geometric(1 - gamma)`` on ``{1, 2, ...}`` (see below)
+other_episode   5     a different episode of the same split, uniformly; ``j`` uniform on
+                      ``{0, ..., T'}`` of that episode
+==============  ====  =======================================================================
+
+Geometric draws ``K`` by the inverse CDF ``K = max(1, ceil(log(1 - u) / log(gamma)))`` of one
+uniform ``u``. ``past_end`` says what happens when ``t + K > T``:
+
+* ``"clip"`` (default): ``j = T``; the probability mass beyond the end goes to the final state.
+* ``"truncate"``: ``K`` is drawn from the geometric law conditioned on ``K <= T - t`` (inverse
+  CDF of the truncated law, ``u`` scaled by ``1 - gamma**(T - t)``), so no goal piles up at
+  the final state.
+
+Adding a strategy
+-----------------
+Write a function with the signature above and register it in :data:`STRATEGIES` with
+:func:`register` (name, code from :data:`CODES`, the option names it reads from the mixture,
+and, for strategies returning external vectors, a function giving their dimension).
+:class:`goalkit.relabel.Mixture` and the ``[relabel]`` table pick it up from that one table.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Callable
+
+import numpy as np
+
+from goalkit import rng
+from goalkit.errors import RecipeError
+from goalkit.logs.episodes import EpisodeSet
+
+#: Strategy codes stored in datasets (uint8, never renumbered).
+CODES = {"original": 0, "final": 1, "future": 2, "episode": 3, "geometric": 4,
+         "other_episode": 5, "neighbour": 6, "library": 7, "near_miss": 8}
+
+#: Values of the geometric strategy's ``past_end`` option.
+PAST_END = ("clip", "truncate")
+
+
+@dataclass(frozen=True, eq=False)
+class StrategyGoals:
+    """Goals a strategy returns for M requested rows.
+
+    Attributes
+    ----------
+    goal_episode : ndarray of int64 (M,)
+        Episode id the goal state comes from, -1 for an external goal vector.
+    goal_step : ndarray of int64 (M,)
+        State index ``j`` in that episode (goal = ``phi(s_j)``), -1 when external.
+    external : ndarray of float64 (M, G) or None
+        Goal vectors, valid where ``goal_episode == -1``.
+    hop_episode, hop_step : ndarray of int64 (M,) or None
+        Intermediate state for neighbour goals; None (all -1) otherwise.
+    """
+
+    goal_episode: np.ndarray
+    goal_step: np.ndarray
+    external: np.ndarray | None = None
+    hop_episode: np.ndarray | None = None
+    hop_step: np.ndarray | None = None
+
+
+@dataclass(frozen=True)
+class StrategySpec:
+    """One entry of the strategy table.
+
+    Attributes
+    ----------
+    name : str
+        Name used in the ``[relabel.weights]`` table.
+    code : int
+        Code stored in datasets (see :data:`CODES`).
+    func : callable
+        The strategy function.
+    options : tuple of str
+        Mixture attributes passed to ``func`` as keyword arguments (e.g. ``("gamma",)``).
+    external_dim : callable, optional
+        ``external_dim(chunk, context) -> int`` for strategies returning external goal vectors.
+    """
+
+    name: str
+    code: int
+    func: Callable[..., StrategyGoals]
+    options: tuple[str, ...] = ()
+    external_dim: Callable[[EpisodeSet, object], int] | None = None
+
+
+#: Registered strategies, by name.
+STRATEGIES: dict[str, StrategySpec] = {}
+
+
+def register(name: str, func, options=(), external_dim=None) -> StrategySpec:
+    """Add a strategy to :data:`STRATEGIES` (its code is ``CODES[name]``) and return its entry."""
+    if name not in CODES:
+        raise ValueError(f"no strategy code for {name!r}; add it to CODES (never renumber)")
+    spec = StrategySpec(name, CODES[name], func, tuple(options), external_dim)
+    STRATEGIES[name] = spec
+    return spec
+
+
+# ---- helpers ---------------------------------------------------------------------------
+def locate(chunk: EpisodeSet, transitions) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Return (episode position, episode id, step t, length T) of each transition index."""
+    transitions = np.asarray(transitions, dtype=np.int64)
+    n = chunk.num_transitions
+    if transitions.size and (transitions.min() < 0 or transitions.max() >= n):
+        raise ValueError(f"transition indices must lie in 0..{n - 1}")
+    pos = np.searchsorted(chunk.offsets, transitions, side="right") - 1
+    t = transitions - chunk.offsets[pos]
+    length = chunk.offsets[pos + 1] - chunk.offsets[pos]
+    return pos, np.asarray(chunk.episode_ids, dtype=np.int64)[pos], t, length
+
+
+def _slots(slots, transitions) -> np.ndarray:
+    slots = np.asarray(slots, dtype=np.int64)
+    if slots.shape != np.shape(transitions):
+        raise ValueError("slots must have one entry per transition index")
+    return slots
+
+
+# ---- strategies ------------------------------------------------------------------------
+def original(chunk: EpisodeSet, transitions, slots, seed: int, context=None) -> StrategyGoals:
+    """The log's own goal of transition ``t`` (``chunk.task_goals[t]``), as an external vector.
+
+    Raises
+    ------
+    RecipeError
+        If the logs have no task goals (layout key ``task_goal``).
+    """
+    transitions = np.asarray(transitions, dtype=np.int64)
+    _slots(slots, transitions)
+    if chunk.task_goals is None:
+        raise RecipeError("strategy 'original' needs the log's own goals, but the logs have none "
+                          "(map them with task_goal in the layout's [keys], or give 'original' "
+                          "weight 0)", file=chunk.source or None, key="relabel.weights.original")
+    m = len(transitions)
+    ext = np.asarray(chunk.task_goals, dtype=np.float64)
+    ext = ext.reshape(len(ext), -1)[transitions]
+    return StrategyGoals(np.full(m, -1, np.int64), np.full(m, -1, np.int64), ext)
+
+
+def _task_goal_dim(chunk: EpisodeSet, context) -> int:
+    if chunk.task_goals is None:
+        original(chunk, np.zeros(0, np.int64), np.zeros(0, np.int64), 0)  # raises
+    return int(np.asarray(chunk.task_goals).reshape(chunk.num_transitions, -1).shape[1])
+
+
+def final(chunk: EpisodeSet, transitions, slots, seed: int, context=None) -> StrategyGoals:
+    """The episode's last state: ``j = T``."""
+    _slots(slots, transitions)
+    _, eid, _, length = locate(chunk, transitions)
+    return StrategyGoals(eid, length.copy())
+
+
+def future(chunk: EpisodeSet, transitions, slots, seed: int, context=None) -> StrategyGoals:
+    """A later state of the same episode: ``j`` uniform on ``{t+1, ..., T}`` (stream "goal")."""
+    slots = _slots(slots, transitions)
+    _, eid, t, length = locate(chunk, transitions)
+    if len(t) == 0:
+        return StrategyGoals(eid, t.copy())
+    j = rng.integers(seed, t + 1, length + 1, eid, t, slots, "goal")
+    return StrategyGoals(eid, j)
+
+
+def episode(chunk: EpisodeSet, transitions, slots, seed: int, context=None) -> StrategyGoals:
+    """Any state of the same episode: ``j`` uniform on ``{0, ..., T}`` (stream "goal")."""
+    slots = _slots(slots, transitions)
+    _, eid, t, length = locate(chunk, transitions)
+    if len(t) == 0:
+        return StrategyGoals(eid, t.copy())
+    j = rng.integers(seed, 0, length + 1, eid, t, slots, "goal")
+    return StrategyGoals(eid, j)
+
+
+def geometric_offsets(u, gamma: float, room=None) -> np.ndarray:
+    """Inverse CDF of Geometric(1 - gamma) on {1, 2, ...} at uniforms ``u`` in [0, 1).
+
+    Parameters
+    ----------
+    u : array_like of float
+        Uniforms on [0, 1).
+    gamma : float
+        In (0, 1); ``P(K = k) = (1 - gamma) * gamma**(k - 1)``.
+    room : array_like of int, optional
+        If given, draw from the law conditioned on ``K <= room`` (room >= 1).
+
+    Returns
+    -------
+    ndarray of int64
+
+    Examples
+    --------
+    >>> geometric_offsets([0.0, 0.5, 0.75, 0.7499], 0.5).tolist()
+    [1, 1, 2, 2]
+    """
+    u = np.asarray(u, dtype=np.float64)
+    log_g = np.log(gamma)
+    if room is not None:
+        room = np.asarray(room, dtype=np.int64)
+        u = u * -np.expm1(room * log_g)  # u * (1 - gamma**room)
+    k = np.ceil(np.log1p(-u) / log_g)
+    # guard rounding at the bin edges: K is the smallest k with 1 - gamma**k >= u
+    k = np.maximum(k, 1.0)
+    if room is not None:
+        k = np.minimum(k, room)
+    return k.astype(np.int64)
+
+
+def geometric(chunk: EpisodeSet, transitions, slots, seed: int, context=None, *,
+              gamma: float = 0.9, past_end: str = "clip") -> StrategyGoals:
+    """A later state at a geometric offset: ``j = t + K``, ``K ~ Geometric(1 - gamma)``.
+
+    Parameters
+    ----------
+    gamma : float
+        In (0, 1); the mean offset is ``1 / (1 - gamma)``.
+    past_end : {"clip", "truncate"}
+        ``"clip"``: ``j = min(t + K, T)``; ``"truncate"``: ``K`` conditioned on ``t + K <= T``.
+    """
+    slots = _slots(slots, transitions)
+    if not 0.0 < gamma < 1.0:
+        raise ValueError(f"gamma must lie in (0, 1), got {gamma}")
+    if past_end not in PAST_END:
+        raise ValueError(f"past_end must be one of {PAST_END}, got {past_end!r}")
+    _, eid, t, length = locate(chunk, transitions)
+    if len(t) == 0:
+        return StrategyGoals(eid, t.copy())
+    u = rng.uniform(seed, eid, t, slots, "goal")
+    if past_end == "clip":
+        j = np.minimum(t + geometric_offsets(u, gamma), length)
+    else:
+        j = t + geometric_offsets(u, gamma, room=length - t)
+    return StrategyGoals(eid, j)
+
+
+def other_episode(chunk: EpisodeSet, transitions, slots, seed: int, context=None) -> StrategyGoals:
+    """A state of a different episode of the same split.
+
+    The episode is uniform over the split's other episodes (stream "episode"), the state
+    uniform on its ``{0, ..., T'}`` (stream "goal"). Needs ``context`` (a
+    :class:`~goalkit.relabel.RelabelContext`).
+
+    Raises
+    ------
+    RecipeError
+        If a split has a single episode (there is no other episode to take a goal from).
+    """
+    slots = _slots(slots, transitions)
+    if context is None:
+        raise ValueError("other_episode needs a RelabelContext")
+    _, eid, t, _ = locate(chunk, transitions)
+    m = len(t)
+    goal_ep = np.full(m, -1, np.int64)
+    goal_step = np.full(m, -1, np.int64)
+    if m == 0:
+        return StrategyGoals(goal_ep, goal_step)
+    codes = context.split_codes(eid)
+    for code in np.unique(codes).tolist():  # loop over splits, not transitions
+        rows = np.flatnonzero(codes == code)
+        ids = context.split_episode_ids.get(code)
+        if ids is None or not np.isin(eid[rows], ids).all():
+            raise ValueError(f"episodes of split {code} missing from the context")
+        lengths = context.split_lengths[code]
+        n = len(ids)
+        if n < 2:
+            raise RecipeError(f"strategy 'other_episode' needs at least two episodes in each split; "
+                              f"split {code} has {n}", file=chunk.source or None,
+                              key="relabel.weights.other_episode", episode=int(eid[rows[0]]))
+        e, tt, ss = eid[rows], t[rows], slots[rows]
+        own = np.searchsorted(ids, e)
+        k = rng.integers(seed, 0, n - 1, e, tt, ss, "episode")
+        k = k + (k >= own)  # skip the transition's own episode
+        goal_ep[rows] = ids[k]
+        goal_step[rows] = rng.integers(seed, 0, lengths[k] + 1, e, tt, ss, "goal")
+    return StrategyGoals(goal_ep, goal_step)
+
+
+register("original", original, external_dim=_task_goal_dim)
+register("final", final)
+register("future", future)
+register("episode", episode)
+register("geometric", geometric, options=("gamma", "past_end"))
+register("other_episode", other_episode)
