@@ -1,0 +1,181 @@
+"""Bootstrap confidence interval of a chosen threshold, resampling whole episodes.
+
+Pairs from one episode are correlated (consecutive steps look alike), so resampling pairs
+would understate the spread. Instead each resample draws ``G`` episodes (groups) with
+replacement out of the ``G`` present (resample the independent units, which for clustered
+data are the clusters: Davison and Hinkley, 1997, sec. 3.8, from memory), takes all
+their pairs (an episode drawn twice counts twice), and re-runs the chooser. The interval is
+the percentile interval: the ``(1 - c) / 2`` and ``(1 + c) / 2`` quantiles of the finite
+resampled thresholds, numpy's ``"linear"`` quantile (Hyndman and Fan, 1996, definition 7).
+
+Resample ``b`` draws its ``k``-th episode as
+``goalkit.rng.integers(seed, 0, G, episode=b, step=k, stream=BOOTSTRAP_STREAM)``, so the
+result is byte-identical for a seed whatever the block size. Resamples where the choice is
+undefined (e.g. no reached pair drawn) are dropped and counted in ``n_undefined``.
+
+Resamples are evaluated as weighted sweeps over one sort of the pairs (weights = how often
+each pair's episode was drawn), in blocks of resamples so memory stays bounded.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from goalkit import rng
+from goalkit.tune.errors import TuningError
+from goalkit.tune.metrics import _run_ends, check_chooser, check_labelled, choose_index, place
+
+#: goalkit.rng stream of the bootstrap draws (tuning is not part of a build, so it shares no
+#: numbers with one; see the report about adding a named stream to goalkit.rng.STREAMS).
+BOOTSTRAP_STREAM = 8
+
+
+@dataclass(frozen=True)
+class ThresholdInterval:
+    """A bootstrap percentile interval of a chosen threshold.
+
+    Attributes
+    ----------
+    low, high : float
+        Interval ends (NaN when no resample gave a defined choice).
+    confidence : float
+        Nominal coverage, e.g. 0.95.
+    distribution : ndarray of float64, shape (n_resamples,)
+        Chosen threshold of each resample (NaN where undefined).
+    n_undefined : int
+        Resamples with an undefined choice (left out of the interval).
+    n_groups : int
+        Episodes (groups) resampled.
+    seed : int or None
+        The seed of the draws (None when explicit resamples were given).
+    """
+
+    low: float
+    high: float
+    confidence: float
+    distribution: np.ndarray
+    n_undefined: int
+    n_groups: int
+    seed: int | None
+
+    @property
+    def n_resamples(self) -> int:
+        """Number of resamples."""
+        return int(self.distribution.size)
+
+    def as_dict(self) -> dict:
+        """JSON-able summary (without the distribution)."""
+        return {"low": self.low, "high": self.high, "confidence": self.confidence,
+                "n_resamples": self.n_resamples, "n_undefined": self.n_undefined,
+                "n_groups": self.n_groups, "seed": self.seed}
+
+
+def resample_groups(n_groups: int, n_resamples: int, seed: int, start: int = 0) -> np.ndarray:
+    """Return group draws of resamples ``start .. start + n_resamples - 1``, int64 (B, G).
+
+    Examples
+    --------
+    >>> a = resample_groups(5, 3, seed=1)
+    >>> a.shape, bool((a == resample_groups(5, 3, seed=1)).all())
+    ((3, 5), True)
+    >>> bool((resample_groups(5, 2, seed=1, start=1) == a[1:]).all())
+    True
+    """
+    b = np.arange(start, start + n_resamples, dtype=np.int64)[:, None]
+    k = np.arange(n_groups, dtype=np.int64)[None, :]
+    return rng.integers(seed, 0, n_groups, episode=b, step=k, slot=0, stream=BOOTSTRAP_STREAM)
+
+
+def bootstrap_threshold(distances, labels, groups=None, *, chooser: str = "max-f1", target=None,
+                        placement: str = "midpoint", inclusive: bool = True,
+                        n_resamples: int = 1000, confidence: float = 0.95, seed: int = 0,
+                        resamples=None, max_cells: int = 2_000_000) -> ThresholdInterval:
+    """Bootstrap the chosen threshold over episodes.
+
+    Parameters
+    ----------
+    distances, labels : array_like, shape (M,)
+        Labelled distances (see :func:`goalkit.tune.metrics.sweep_thresholds`).
+    groups : array_like of int, shape (M,), optional
+        Episode of each pair; None makes every pair its own group (then the interval
+        ignores within-episode correlation).
+    chooser, target, placement, inclusive
+        As in :func:`goalkit.tune.metrics.choose_threshold`.
+    n_resamples : int
+        Number of bootstrap resamples.
+    confidence : float
+        Coverage of the percentile interval, in (0, 1).
+    seed : int
+        Seed of the draws (goalkit.rng).
+    resamples : array_like of int, shape (B, G), optional
+        Explicit draws instead of seeded ones: row ``b`` lists the group positions (0..G-1,
+        groups in ascending id order) of resample ``b``.
+    max_cells : int
+        Work-array budget (resamples per block times pairs).
+
+    Returns
+    -------
+    ThresholdInterval
+
+    Examples
+    --------
+    >>> d = [0.1, 0.2, 0.3, 0.6, 0.7, 0.8]
+    >>> iv = bootstrap_threshold(d, [1, 1, 1, 0, 0, 0], [0, 0, 1, 1, 2, 2], n_resamples=50, seed=3)
+    >>> iv.n_resamples, iv.n_groups
+    (50, 3)
+    """
+    check_chooser(chooser, target, placement)
+    d, y, g = check_labelled(distances, labels, groups)
+    if not (0.0 < confidence < 1.0):
+        raise TuningError(f"expected a confidence level in (0, 1), got {confidence!r}", key="confidence")
+    if g is None:
+        g = np.arange(d.size, dtype=np.int64)
+    _, gi = np.unique(g, return_inverse=True)
+    gi = gi.reshape(-1).astype(np.int64)
+    n_groups = int(gi.max()) + 1
+    if resamples is not None:
+        resamples = np.asarray(resamples, dtype=np.int64)
+        if resamples.ndim != 2 or resamples.size and (resamples.min() < 0 or resamples.max() >= n_groups):
+            raise TuningError(f"expected resamples of shape (B, G) with entries in 0..{n_groups - 1}",
+                              key="resamples")
+        n_resamples = resamples.shape[0]
+    elif n_resamples < 1:
+        raise TuningError(f"expected n_resamples >= 1, got {n_resamples}", key="n_resamples")
+
+    order = np.argsort(d, kind="stable")
+    ds, ys, gs = d[order], y[order], gi[order]
+    ends = _run_ends(ds)
+    thresholds = ds[ends]
+    block = max(1, int(max_cells) // max(d.size, 1))
+    out = np.empty(n_resamples, dtype=np.float64)
+    for start in range(0, n_resamples, block):  # a loop over blocks of resamples
+        stop = min(n_resamples, start + block)
+        draws = (resamples[start:stop] if resamples is not None
+                 else resample_groups(n_groups, stop - start, seed, start))
+        out[start:stop] = _block_thresholds(draws, n_groups, ds, ys, gs, ends, thresholds,
+                                            chooser, target, placement, inclusive)
+    finite = out[np.isfinite(out)]
+    alpha = (1.0 - confidence) / 2.0
+    if finite.size:
+        low, high = (float(v) for v in np.quantile(finite, [alpha, 1.0 - alpha], method="linear"))
+    else:
+        low = high = float("nan")
+    return ThresholdInterval(low=low, high=high, confidence=float(confidence), distribution=out,
+                             n_undefined=int(out.size - finite.size), n_groups=n_groups,
+                             seed=None if resamples is not None else int(seed))
+
+
+def _block_thresholds(draws, n_groups, ds, ys, gs, ends, thresholds, chooser, target, placement,
+                      inclusive) -> np.ndarray:
+    b = draws.shape[0]
+    flat = (np.arange(b, dtype=np.int64)[:, None] * n_groups + draws).ravel()
+    counts = np.bincount(flat, minlength=b * n_groups).reshape(b, n_groups)
+    w = counts[:, gs]                                   # (b, n) weight of each sorted pair
+    tot = np.cumsum(w, axis=1)[:, ends]
+    tp = np.cumsum(w * ys[None, :], axis=1)[:, ends]
+    fp = tot - tp
+    valid = np.diff(tot, axis=1, prepend=0) > 0
+    idx = choose_index(thresholds, tp, fp, tp[:, -1], fp[:, -1], valid, chooser, target)
+    return place(thresholds, valid, idx, placement, inclusive)
