@@ -1,0 +1,1 @@
+"""Build orchestration: recipe loading, planning, running chunks, assembling the dataset."""

@@ -1,0 +1,151 @@
+"""What a build knows before it reads a single chunk: the plan shared by every chunk task.
+
+A :class:`BuildPlan` is small, picklable and the same for every worker: the recipe, the goal
+map, the per-episode split, the relabelling context and the column layout. Chunk tasks
+(:func:`goalkit.pipeline.chunk.relabel_chunk`) are pure functions of the plan and a chunk.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from goalkit.errors import RecipeError
+from goalkit.logs import open_logs
+from goalkit.pipeline.goal import make_goal_map
+from goalkit.pipeline.split import split_codes
+from goalkit.write.format import INDEX_COLUMNS, MATERIAL_COLUMNS, TASK_REWARD_COLUMN
+
+#: Row keys are ``global transition index * SLOT_SPAN + slot``.
+SLOT_SPAN = 1 << 16
+
+
+@dataclass(frozen=True)
+class BuildPlan:
+    """Everything a chunk task needs besides its chunk.
+
+    Attributes
+    ----------
+    recipe : Recipe
+    goal_map : GoalMap
+    episode_ids : ndarray of int64
+        Ids of the episodes kept from the log, increasing.
+    lengths : ndarray of int64
+        Their transition counts.
+    transition_offsets : ndarray of int64
+        ``E + 1`` global transition offsets over the kept episodes.
+    splits : ndarray of int8
+        Split code of each kept episode (0 train, 1 validation).
+    context : RelabelContext
+        What cross-episode strategies need.
+    goal_table : ndarray or None
+        phi of every kept state (global state rows), when a strategy takes goals from other
+        episodes; None otherwise.
+    columns : dict
+        Column name -> (dtype, per-row shape) of the output.
+    """
+
+    recipe: object
+    goal_map: object
+    episode_ids: np.ndarray
+    lengths: np.ndarray
+    transition_offsets: np.ndarray
+    splits: np.ndarray
+    context: object
+    goal_table: np.ndarray | None
+    columns: dict
+
+    def positions(self, episode_ids) -> np.ndarray:
+        """Position among the kept episodes of each episode id."""
+        return np.searchsorted(self.episode_ids, np.asarray(episode_ids, dtype=np.int64))
+
+    def global_state_rows(self, episode_ids, steps) -> np.ndarray:
+        """Row in :attr:`goal_table` of state ``steps`` of each episode id."""
+        pos = self.positions(episode_ids)
+        return self.transition_offsets[pos] + pos + np.asarray(steps, dtype=np.int64)
+
+    @property
+    def total_transitions(self) -> int:
+        return int(self.transition_offsets[-1])
+
+
+def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_task_reward) -> dict:
+    goal_dtype = np.dtype(recipe.goal.dtype)
+    kinds = {"goal": (goal_dtype, (goal_dim,)), "obs": (obs_dtype, obs_shape), "act": (act_dtype, act_shape)}
+    cols = {}
+    for name, (dtype, kind, _) in INDEX_COLUMNS.items():
+        cols[name] = kinds[dtype] if dtype in kinds else (np.dtype(dtype), ())
+    if recipe.output.mode == "materialised":
+        for name, (dtype, kind, _) in MATERIAL_COLUMNS.items():
+            cols[name] = kinds[kind]
+    if has_task_reward:
+        cols[TASK_REWARD_COLUMN[0]] = (np.dtype(TASK_REWARD_COLUMN[1]), ())
+    return cols
+
+
+def open_source(recipe):
+    """Open the recipe's logs with its layout."""
+    layout = None
+    if recipe.layout_path is not None:
+        from goalkit.logs import load_layout
+
+        layout = load_layout(recipe.layout_path)
+    return open_logs(recipe.logs_path, layout, skip_bad_episodes=recipe.skip_bad_episodes)
+
+
+def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[BuildPlan, object]:
+    """Prepare a build: open the logs, check the recipe against them, split, build the context.
+
+    Parameters
+    ----------
+    recipe : Recipe
+    source : LogSource, optional
+        Already opened logs (default: open ``recipe.logs_path``).
+    max_transitions : int
+        Chunk size used when the goal table has to be computed.
+
+    Returns
+    -------
+    (BuildPlan, LogSource)
+    """
+    from goalkit.relabel import RelabelContext
+
+    source = source if source is not None else open_source(recipe)
+    ids = np.asarray(source.episode_ids, dtype=np.int64)
+    lengths = np.asarray(source.lengths, dtype=np.int64)
+    if len(ids) == 0:
+        raise RecipeError("the logs hold no usable episode", file=source.path)
+    first = source.read(0, 1)
+    obs_shape, act_shape = first.observations.shape[1:], first.actions.shape[1:]
+    goal_map = make_goal_map(recipe.goal, source, obs_shape[0] if obs_shape else 0, file=recipe.file)
+    recipe.reward.check_dim(goal_map.dim, file=recipe.file)
+    offsets = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
+    splits = split_codes(ids, recipe.validation, recipe.salt)
+    context = RelabelContext.from_episodes(ids, lengths, splits)
+    recipe.mixture.check(first, context, file=recipe.file)
+    cols = _columns(recipe, obs_shape, act_shape, first.observations.dtype, first.actions.dtype,
+                    goal_map.dim, first.rewards is not None)
+    table = None
+    if recipe.mixture.needs_goal_table:
+        table = goal_table(source, goal_map, np.dtype(recipe.goal.dtype), max_transitions)
+    plan = BuildPlan(recipe=recipe, goal_map=goal_map, episode_ids=ids, lengths=lengths,
+                     transition_offsets=offsets, splits=splits, context=context, goal_table=table,
+                     columns=cols)
+    return plan, source
+
+
+def goal_table(source, goal_map, dtype, max_transitions: int) -> np.ndarray:
+    """phi of every kept state of the log, in global state-row order, cast to ``dtype``."""
+    from goalkit.logs.episodes import chunk_bounds
+
+    lengths = np.asarray(source.lengths, dtype=np.int64)
+    total = int(lengths.sum() + len(lengths))
+    out = np.empty((total, goal_map.dim), dtype=dtype)
+    row = 0
+    for a, b in chunk_bounds(lengths, max_transitions):
+        chunk = source.read(a, b)
+        n = chunk.observations.shape[0]
+        out[row:row + n] = goal_map(chunk, np.arange(n))
+        row += n
+    return out

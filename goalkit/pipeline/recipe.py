@@ -1,0 +1,250 @@
+"""The recipe file: everything a build needs, in one TOML document (see docs/recipe.md).
+
+A recipe names the logs and their layout, the goal map, the strategy mixture, the reward
+rule, the split, the seed and the output. It is checked completely when loaded, so a build
+never fails half-way on a typo.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+from pathlib import Path
+
+from goalkit.config import check_keys, expect_type, load_toml, parse_toml
+from goalkit.errors import RecipeError
+
+RECIPE_VERSION = 1
+
+TOP_KEYS = ("version", "seed", "logs", "goal", "relabel", "reward", "split", "output")
+LOGS_KEYS = ("path", "layout", "skip_bad_episodes")
+GOAL_KEYS = ("fields", "indices", "embedding", "dtype")
+SPLIT_KEYS = ("validation", "salt")
+OUTPUT_KEYS = ("path", "mode", "compression", "chunk_rows")
+GOAL_DTYPES = ("float32", "float64")
+MODES = ("materialised", "indexed")
+COMPRESSIONS = ("gzip", "lzf", "none")
+
+
+@dataclass(frozen=True)
+class GoalSpec:
+    """How states become goals: exactly one of ``fields``, ``indices``, ``embedding``.
+
+    Attributes
+    ----------
+    fields : tuple of str
+        Named observation fields (from the layout's ``[fields]``).
+    indices : tuple of int
+        Observation columns.
+    embedding : Path or None
+        A saved embedding (.npz from ``goalkit embed``).
+    dtype : str
+        Storage dtype of goal vectors; rewards are computed from the stored values.
+    """
+
+    fields: tuple[str, ...] = ()
+    indices: tuple[int, ...] = ()
+    embedding: Path | None = None
+    dtype: str = "float32"
+
+
+@dataclass(frozen=True)
+class OutputSpec:
+    """Where and how the dataset is written."""
+
+    path: Path
+    mode: str = "materialised"
+    compression: str = "gzip"
+    chunk_rows: int = 65536
+
+
+@dataclass(frozen=True)
+class Recipe:
+    """A checked recipe.
+
+    Attributes
+    ----------
+    text : str
+        The recipe's TOML text, stored verbatim in the dataset's provenance.
+    file : str
+        Where it was read from (for messages).
+    seed : int
+        The build's seed.
+    logs_path, layout_path : Path
+        Absolute paths of the logs and the layout file (None: auto-detected layout).
+    skip_bad_episodes : bool
+        Skip (and count) episodes that fail validation instead of refusing the logs.
+    goal : GoalSpec
+    mixture : goalkit.relabel.Mixture
+    reward : goalkit.reward.RewardRule
+    validation : float
+        Fraction of episodes in the validation split.
+    salt : int
+        Salt of the split hash.
+    output : OutputSpec
+    """
+
+    text: str
+    file: str
+    seed: int
+    logs_path: Path
+    layout_path: Path | None
+    skip_bad_episodes: bool
+    goal: GoalSpec
+    mixture: object
+    reward: object
+    validation: float
+    salt: int
+    output: OutputSpec
+
+    def with_overrides(self, *, seed: int | None = None, out: str | Path | None = None) -> "Recipe":
+        """Return a copy with the seed and/or output path replaced (CLI ``--seed`` / ``--out``)."""
+        new = self
+        if seed is not None:
+            new = replace(new, seed=_check_seed(seed, new.file))
+        if out is not None:
+            new = replace(new, output=replace(new.output, path=Path(out).resolve()))
+        return new
+
+
+def _check_seed(seed, file) -> int:
+    if isinstance(seed, bool) or not isinstance(seed, int) or not 0 <= seed < 2 ** 63:
+        raise RecipeError(f"expected a whole number from 0 to 2**63 - 1, got {seed!r}", file=file, key="seed")
+    return seed
+
+
+def _table(doc, name, file, required=True) -> dict:
+    if name not in doc:
+        if required:
+            raise RecipeError(f"missing table [{name}]", file=file, key=name)
+        return {}
+    value = doc[name]
+    if not isinstance(value, dict):
+        raise RecipeError(f"expected a table [{name}], got {value!r}", file=file, key=name)
+    return value
+
+
+def _path(value, base: Path, file, key) -> Path:
+    expect_type(value, str, file=file, key=key, what="a path (string)", error=RecipeError)
+    if not value:
+        raise RecipeError("expected a path, got an empty string", file=file, key=key)
+    p = Path(value).expanduser()
+    return (p if p.is_absolute() else base / p).resolve()
+
+
+def _parse_goal(table, base, file) -> GoalSpec:
+    check_keys(table, GOAL_KEYS, file=file, section="[goal]", error=RecipeError)
+    given = [k for k in ("fields", "indices", "embedding") if k in table]
+    if len(given) != 1:
+        raise RecipeError(f"[goal] needs exactly one of fields, indices, embedding; got "
+                          f"{', '.join(given) or 'none'}", file=file, key="goal")
+    dtype = table.get("dtype", "float32")
+    if dtype not in GOAL_DTYPES:
+        raise RecipeError(f"expected one of {', '.join(GOAL_DTYPES)}, got {dtype!r}", file=file, key="goal.dtype")
+    if "fields" in table:
+        fields = table["fields"]
+        if isinstance(fields, str):
+            fields = [fields]
+        if not (isinstance(fields, list) and fields and all(isinstance(f, str) for f in fields)):
+            raise RecipeError(f"expected a non-empty list of field names, got {fields!r}", file=file, key="goal.fields")
+        return GoalSpec(fields=tuple(fields), dtype=dtype)
+    if "indices" in table:
+        idx = table["indices"]
+        if not (isinstance(idx, list) and idx and all(isinstance(i, int) and not isinstance(i, bool) and i >= 0
+                                                       for i in idx)):
+            raise RecipeError(f"expected a non-empty list of non-negative column numbers, got {idx!r}",
+                              file=file, key="goal.indices")
+        if len(set(idx)) != len(idx):
+            raise RecipeError(f"expected distinct column numbers, got {idx!r}", file=file, key="goal.indices")
+        return GoalSpec(indices=tuple(idx), dtype=dtype)
+    return GoalSpec(embedding=_path(table["embedding"], base, file, "goal.embedding"), dtype=dtype)
+
+
+def _parse_split(table, file) -> tuple[float, int]:
+    check_keys(table, SPLIT_KEYS, file=file, section="[split]", error=RecipeError)
+    frac = table.get("validation", 0.1)
+    if isinstance(frac, bool) or not isinstance(frac, (int, float)) or not 0.0 <= frac < 1.0:
+        raise RecipeError(f"expected a fraction in [0, 1), got {frac!r}", file=file, key="split.validation")
+    salt = table.get("salt", 0)
+    if isinstance(salt, bool) or not isinstance(salt, int) or not 0 <= salt < 2 ** 63:
+        raise RecipeError(f"expected a whole number >= 0, got {salt!r}", file=file, key="split.salt")
+    return float(frac), salt
+
+
+def _parse_output(table, base, file) -> OutputSpec:
+    check_keys(table, OUTPUT_KEYS, file=file, section="[output]", error=RecipeError)
+    if "path" not in table:
+        raise RecipeError("missing key 'path' in [output]", file=file, key="output.path")
+    mode = table.get("mode", "materialised")
+    if mode not in MODES:
+        raise RecipeError(f"expected one of {', '.join(MODES)}, got {mode!r}", file=file, key="output.mode")
+    comp = table.get("compression", "gzip")
+    if comp not in COMPRESSIONS:
+        raise RecipeError(f"expected one of {', '.join(COMPRESSIONS)}, got {comp!r}", file=file,
+                          key="output.compression")
+    rows = table.get("chunk_rows", 65536)
+    if isinstance(rows, bool) or not isinstance(rows, int) or not 256 <= rows <= 2 ** 24:
+        raise RecipeError(f"expected a whole number from 256 to 16777216, got {rows!r}", file=file,
+                          key="output.chunk_rows")
+    return OutputSpec(path=_path(table["path"], base, file, "output.path"), mode=mode, compression=comp,
+                      chunk_rows=rows)
+
+
+def parse_recipe(text: str, file="<recipe>", base: Path | None = None) -> Recipe:
+    """Parse and check recipe ``text``.
+
+    Parameters
+    ----------
+    text : str
+        TOML text.
+    file : str
+        Name used in messages.
+    base : Path, optional
+        Directory that relative paths are relative to (default: the current directory).
+
+    Returns
+    -------
+    Recipe
+
+    Raises
+    ------
+    RecipeError
+        On any unknown key, missing table or impossible value, naming the key.
+    """
+    from goalkit.relabel import Mixture
+    from goalkit.reward import RewardRule
+
+    base = (base or Path.cwd()).resolve()
+    doc = parse_toml(text, file, RecipeError)
+    check_keys(doc, TOP_KEYS, file=file, section="the recipe's top level", error=RecipeError)
+    version = doc.get("version", RECIPE_VERSION)
+    if version != RECIPE_VERSION:
+        raise RecipeError(f"expected version = {RECIPE_VERSION}, got {version!r}", file=file, key="version")
+    seed = _check_seed(doc.get("seed", 0), file)
+    logs = _table(doc, "logs", file)
+    check_keys(logs, LOGS_KEYS, file=file, section="[logs]", error=RecipeError)
+    if "path" not in logs:
+        raise RecipeError("missing key 'path' in [logs]", file=file, key="logs.path")
+    logs_path = _path(logs["path"], base, file, "logs.path")
+    layout_path = _path(logs["layout"], base, file, "logs.layout") if "layout" in logs else None
+    skip = logs.get("skip_bad_episodes", False)
+    expect_type(skip, bool, file=file, key="logs.skip_bad_episodes", what="true or false", error=RecipeError)
+    goal = _parse_goal(_table(doc, "goal", file), base, file)
+    mixture = Mixture.from_table(_table(doc, "relabel", file), file)
+    reward = RewardRule.from_table(_table(doc, "reward", file), file)
+    validation, salt = _parse_split(_table(doc, "split", file, required=False), file)
+    output = _parse_output(_table(doc, "output", file), base, file)
+    return Recipe(text=text, file=str(file), seed=seed, logs_path=logs_path, layout_path=layout_path,
+                  skip_bad_episodes=skip, goal=goal, mixture=mixture, reward=reward,
+                  validation=validation, salt=salt, output=output)
+
+
+def load_recipe(path) -> Recipe:
+    """Read and check the recipe file at ``path``; relative paths in it are relative to its folder."""
+    path = Path(path)
+    doc_text = _read_text(path)
+    return parse_recipe(doc_text, file=str(path), base=path.resolve().parent)
+
+
+def _read_text(path: Path) -> str:
+    load_toml(path, RecipeError)  # uniform not-found / not-TOML messages
+    return path.read_text(encoding="utf-8")

@@ -1,0 +1,1 @@
+"""The goal-conditioned dataset: format, writer, reader, sampler and verification."""

@@ -1,0 +1,198 @@
+"""Reading a built set: open it, read a split, iterate batches, check the manifest."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from pathlib import Path
+from typing import Iterator
+
+import h5py
+import numpy as np
+
+from goalkit.errors import DatasetError
+from goalkit.write.format import FORMAT_NAME, FORMAT_VERSION, MATERIAL_COLUMNS, SPLITS
+
+
+class GoalSet:
+    """A built goal-conditioned set, opened read-only.
+
+    Parameters
+    ----------
+    path : str or Path
+        A file written by ``goalkit build``.
+
+    Attributes
+    ----------
+    mode : str
+        ``"materialised"`` or ``"indexed"``.
+    seed : int
+    recipe : str
+        The recipe text the set was built from.
+    provenance, summary, manifest : dict
+
+    Examples
+    --------
+    >>> with GoalSet("gantry-goals.h5") as gs:                      # doctest: +SKIP
+    ...     for batch in gs.batches("train", 256, shuffle=True, seed=1):
+    ...         obs, goal, reward = batch["observation"], batch["goal"], batch["reward"]
+    """
+
+    def __init__(self, path):
+        self.path = Path(path)
+        if not self.path.exists():
+            raise DatasetError("file not found", file=self.path)
+        try:
+            self.file = h5py.File(self.path, "r")
+        except OSError as exc:
+            raise DatasetError(f"not a readable HDF5 file ({exc})", file=self.path) from None
+        attrs = self.file.attrs
+        if attrs.get("format") != FORMAT_NAME:
+            self.file.close()
+            raise DatasetError(f"not a goalkit set: attribute 'format' is {attrs.get('format')!r}, "
+                               f"expected {FORMAT_NAME!r}", file=self.path, key="format")
+        version = int(attrs.get("format_version", -1))
+        if version > FORMAT_VERSION or version < 1:
+            self.file.close()
+            raise DatasetError(f"format version {version} is not supported by this goalkit "
+                               f"(reads version 1 .. {FORMAT_VERSION})", file=self.path, key="format_version")
+        self.mode = str(attrs["mode"])
+        self.seed = int(attrs["seed"])
+        self.recipe = str(attrs["recipe"])
+        self.provenance = json.loads(attrs["provenance"])
+        self.summary = json.loads(attrs["summary"])
+        self.manifest = json.loads(attrs["manifest"])
+        self._logs = None
+
+    # ---- context manager -------------------------------------------------------------
+    def close(self) -> None:
+        """Close the file."""
+        self.file.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+        return False
+
+    # ---- reading ---------------------------------------------------------------------
+    def _group(self, split: str):
+        if split not in SPLITS:
+            raise DatasetError(f"unknown split {split!r}; splits are {', '.join(SPLITS)}", file=self.path)
+        return self.file[split]
+
+    def rows(self, split: str = "train") -> int:
+        """Number of rows in ``split``."""
+        return int(self._group(split).attrs["rows"])
+
+    def columns(self, split: str = "train") -> list[str]:
+        """Column names stored in ``split`` (writing order)."""
+        return [k for k in self.manifest_columns() if k in self._group(split)]
+
+    def manifest_columns(self) -> list[str]:
+        seen = []
+        for key in self.manifest:
+            name = key.split("/", 1)[1]
+            if name not in seen:
+                seen.append(name)
+        return seen
+
+    def read(self, split: str = "train", columns=None, start: int = 0, stop: int | None = None,
+             resolve: bool = True) -> dict:
+        """Read rows ``start .. stop - 1`` of ``split``.
+
+        Parameters
+        ----------
+        split : {"train", "validation"}
+        columns : list of str, optional
+            Columns to read (default: all stored, plus the materialised ones in indexed mode).
+        start, stop : int
+            Row range.
+        resolve : bool
+            In an indexed set, fetch observation, action, next_observation and achieved_goal
+            from the source logs.
+
+        Returns
+        -------
+        dict of str to ndarray
+        """
+        group = self._group(split)
+        stop = self.rows(split) if stop is None else min(stop, self.rows(split))
+        stored = self.columns(split)
+        want = list(columns) if columns is not None else stored + (
+            list(MATERIAL_COLUMNS) if self.mode == "indexed" and resolve else [])
+        out = {}
+        for name in want:
+            if name in stored:
+                out[name] = group[name][start:stop]
+            elif name in MATERIAL_COLUMNS and self.mode == "indexed" and resolve:
+                continue
+            else:
+                raise DatasetError(f"no column {name!r} in split {split}; columns: {', '.join(stored)}",
+                                   file=self.path, key=name)
+        missing = [n for n in want if n not in out]
+        if missing:
+            out.update(self._resolve(group, start, stop, missing))
+        return out
+
+    def _resolve(self, group, start, stop, names) -> dict:
+        from goalkit.write.resolve import resolve_rows
+
+        if self._logs is None:
+            from goalkit.write.resolve import open_logs_of
+
+            self._logs = open_logs_of(self)
+        ep = group["source_episode"][start:stop]
+        step = group["source_step"][start:stop]
+        return resolve_rows(self._logs, ep, step, names)
+
+    def batches(self, split: str = "train", batch_size: int = 256, columns=None, shuffle: bool = False,
+                seed: int = 0, drop_last: bool = False) -> Iterator[dict]:
+        """Iterate over ``split`` in batches.
+
+        With ``shuffle``, batches are contiguous blocks of rows visited in a random order and
+        shuffled inside each block of 64 batches (a bounded-memory shuffle that keeps reads
+        sequential); the order is a pure function of ``seed``.
+        """
+        n = self.rows(split)
+        if batch_size < 1:
+            raise DatasetError(f"batch_size must be at least 1, got {batch_size}", file=self.path)
+        block = batch_size * 64
+        starts = np.arange(0, n, block)
+        gen = np.random.default_rng(seed)
+        if shuffle:
+            starts = gen.permutation(starts)
+        for a in starts.tolist():
+            data = self.read(split, columns, a, a + block)
+            m = len(next(iter(data.values())))
+            order = gen.permutation(m) if shuffle else np.arange(m)
+            for b in range(0, m, batch_size):
+                idx = order[b:b + batch_size]
+                if drop_last and len(idx) < batch_size:
+                    continue
+                yield {k: v[idx] for k, v in data.items()}
+
+    # ---- checking --------------------------------------------------------------------
+    def check_manifest(self, block_rows: int = 1 << 18) -> list[str]:
+        """Recompute every column's SHA-256; return a message per mismatch (empty: all match)."""
+        problems = []
+        for key, expected in self.manifest.items():
+            split, name = key.split("/", 1)
+            group = self.file[split]
+            if name not in group:
+                problems.append(f"{key}: column listed in the manifest is missing")
+                continue
+            ds = group[name]
+            h = hashlib.sha256()
+            for a in range(0, ds.shape[0], block_rows):
+                h.update(np.ascontiguousarray(ds[a:a + block_rows]).tobytes())
+            if h.hexdigest() != expected:
+                problems.append(f"{key}: checksum {h.hexdigest()[:16]}... does not match the manifest's "
+                                f"{expected[:16]}...")
+        return problems
+
+
+def open_set(path) -> GoalSet:
+    """Open a built set read-only (see :class:`GoalSet`)."""
+    return GoalSet(path)

@@ -1,0 +1,84 @@
+"""Fetch the source steps behind an indexed set's rows from the original logs."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from goalkit.config import parse_toml
+from goalkit.errors import DatasetError, GoalkitError
+
+
+@dataclass
+class LogsOfSet:
+    """The logs a set was built from, reopened as they were at build time."""
+
+    source: object
+    goal_map: object
+    goal_dtype: np.dtype
+    recipe: object
+
+    def positions(self, episode_ids) -> np.ndarray:
+        return np.searchsorted(np.asarray(self.source.episode_ids), np.asarray(episode_ids, dtype=np.int64))
+
+
+def recipe_of(goalset):
+    """Parse the recipe stored in a set, with paths as they were resolved at build time."""
+    from dataclasses import replace
+
+    from goalkit.pipeline.recipe import parse_recipe
+
+    prov = goalset.provenance
+    base = Path(prov["recipe_file"]).parent if prov.get("recipe_file") else Path.cwd()
+    recipe = parse_recipe(goalset.recipe, file=f"{goalset.path}:recipe", base=base)
+    layout = Path(prov["layout_path"]) if prov.get("layout_path") else None
+    return replace(recipe, logs_path=Path(prov["logs_path"]), layout_path=layout)
+
+
+def open_logs_of(goalset) -> LogsOfSet:
+    """Reopen the logs (with the layout text stored in the set) and the goal map."""
+    from goalkit.logs import open_logs
+    from goalkit.logs.layout import parse_layout
+    from goalkit.pipeline.goal import make_goal_map
+
+    recipe = recipe_of(goalset)
+    prov = goalset.provenance
+    layout = None
+    if prov.get("layout_text"):
+        layout = parse_layout(parse_toml(prov["layout_text"], f"{goalset.path}:layout", DatasetError),
+                              f"{goalset.path}:layout")
+    try:
+        source = open_logs(recipe.logs_path, layout, skip_bad_episodes=recipe.skip_bad_episodes)
+    except GoalkitError as exc:
+        raise DatasetError(f"cannot reopen the logs this set was built from: {exc}", file=goalset.path) from None
+    first = source.read(0, 1)
+    goal_map = make_goal_map(recipe.goal, source, first.observations.shape[1], file=recipe.file)
+    return LogsOfSet(source=source, goal_map=goal_map, goal_dtype=np.dtype(recipe.goal.dtype), recipe=recipe)
+
+
+def resolve_rows(logs: LogsOfSet, episode_ids, steps, names) -> dict:
+    """Return the requested materialised columns for rows (episode id, step).
+
+    Rows are expected to be sorted by episode (as in every built set), so one contiguous read
+    of the episodes they span is enough.
+    """
+    out = {}
+    if len(episode_ids) == 0:
+        return {n: np.zeros((0,)) for n in names}
+    pos = logs.positions(episode_ids)
+    a, b = int(pos.min()), int(pos.max()) + 1
+    chunk = logs.source.read(a, b)
+    local = pos - a
+    cur = chunk.state_row(local, steps)
+    trans = chunk.offsets[local] + np.asarray(steps, dtype=np.int64)
+    if "observation" in names:
+        out["observation"] = chunk.observations[cur]
+    if "next_observation" in names:
+        out["next_observation"] = chunk.observations[cur + 1]
+    if "action" in names:
+        out["action"] = chunk.actions[trans]
+    if "achieved_goal" in names:
+        out["achieved_goal"] = logs.goal_map(chunk, cur + 1).astype(logs.goal_dtype)
+    return out
