@@ -1,0 +1,179 @@
+"""Embedding files: a fitted embedding saved as ``.npz`` (no pickles).
+
+Keys of the archive (all plain arrays; strings are 0-d unicode arrays):
+
+``format``            ``"goalkit-embedding"``
+``version``           format version, int (currently 1)
+``kind``              the embedding's kind (``raw``, ``standardised``, ``pca``, ``sfa``, ``precomputed``, ``frames``)
+``params``            JSON object of the hyperparameters
+``attr.NAME``         fitted arrays (``NAME`` ends in ``_``)
+``inner.*``           for ``frames``: the same keys for the embedding fed with the frames
+``goal_map``          JSON object: ``input`` (observation/frame/state), ``indices``, ``fields``
+``summary``           JSON object: fit diagnostics (informational, not read back)
+
+Files are written to a temporary name in the same directory and renamed, so an output
+path never holds a half-written file. ``np.savez`` stores a fixed member timestamp, so the
+same embedding gives byte-identical files.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+import zipfile
+from pathlib import Path
+
+import numpy as np
+
+from goalkit.errors import EmbeddingError
+from goalkit.goals.base import KINDS, Embedding
+
+FORMAT = "goalkit-embedding"
+VERSION = 1
+
+
+def _flatten(emb: Embedding, prefix: str) -> dict[str, np.ndarray]:
+    out = {prefix + "kind": np.asarray(emb.kind),
+           prefix + "params": np.asarray(json.dumps(emb.get_params(), sort_keys=True))}
+    for name, arr in emb.state().items():
+        out[f"{prefix}attr.{name}"] = np.asarray(arr)
+    if emb._nested:
+        out.update(_flatten(emb.embedding, prefix + "inner."))
+    return out
+
+
+def save_embedding(path, embedding: Embedding, goal_map: dict | None = None) -> Path:
+    """Write a fitted embedding to ``path`` (``.npz``), atomically.
+
+    Parameters
+    ----------
+    path : str or Path
+        Output file; its directory must exist.
+    embedding : Embedding
+        A fitted embedding.
+    goal_map : dict, optional
+        How a goal map reads states for it: ``{"input": ..., "indices": ..., "fields": ...}``.
+
+    Returns
+    -------
+    Path
+        The path written.
+    """
+    path = Path(path)
+    arrays = {"format": np.asarray(FORMAT), "version": np.asarray(VERSION, dtype=np.int64)}
+    arrays.update(_flatten(embedding, ""))
+    arrays["goal_map"] = np.asarray(json.dumps(goal_map or {"input": embedding.input_kind, "indices": None,
+                                                            "fields": []}, sort_keys=True))
+    arrays["summary"] = np.asarray(json.dumps(embedding.summary(), sort_keys=True))
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent if str(path.parent) else ".")
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            np.savez(fh, **arrays)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+    return path
+
+
+def _string(data, key: str, file) -> str:
+    if key not in data:
+        raise EmbeddingError("expected key in a goalkit embedding file, it is missing", file=file, key=key)
+    arr = data[key]
+    if arr.shape != () or arr.dtype.kind != "U":
+        raise EmbeddingError(f"expected a string, got dtype {arr.dtype} shape {arr.shape}", file=file, key=key)
+    return str(arr)
+
+
+def _json(data, key: str, file) -> dict:
+    text = _string(data, key, file)
+    try:
+        obj = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise EmbeddingError(f"expected a JSON object, got unreadable text ({exc.msg})", file=file, key=key) from None
+    if not isinstance(obj, dict):
+        raise EmbeddingError(f"expected a JSON object, got {type(obj).__name__}", file=file, key=key)
+    return obj
+
+
+def _build(data, prefix: str, file) -> Embedding:
+    kind = _string(data, prefix + "kind", file)
+    if kind not in KINDS:
+        raise EmbeddingError(f"expected an embedding kind among {', '.join(sorted(KINDS))}, got '{kind}'",
+                             file=file, key=prefix + "kind")
+    cls = KINDS[kind]
+    params = _json(data, prefix + "params", file)
+    unknown = sorted(set(params) - set(cls._params))
+    if unknown:
+        raise EmbeddingError(f"expected hyperparameters of a {kind} embedding ({', '.join(cls._params) or 'none'}), "
+                             f"got '{unknown[0]}'", file=file, key=prefix + "params")
+    try:
+        if cls._nested:
+            emb = cls(_build(data, prefix + "inner.", file), **params)
+        else:
+            emb = cls(**params)
+    except TypeError as exc:
+        raise EmbeddingError(f"expected hyperparameters of a {kind} embedding, got {params} ({exc})",
+                             file=file, key=prefix + "params") from None
+    arrays = {}
+    for name in cls._arrays:
+        key = f"{prefix}attr.{name}"
+        if key not in data:
+            raise EmbeddingError(f"expected fitted array '{name}' of a {kind} embedding, it is missing",
+                                 file=file, key=key)
+        arrays[name] = data[key]
+    emb.set_state(arrays, file=file)
+    return emb
+
+
+def load_embedding_file(path) -> tuple[Embedding, dict]:
+    """Read an embedding file; return the fitted embedding and its goal-map settings.
+
+    Raises
+    ------
+    EmbeddingError
+        The file is missing, not an ``.npz`` archive, holds pickled objects, is not a goalkit
+        embedding, has an unknown kind or version, or inconsistent arrays (naming the key).
+    """
+    file = str(path)
+    if not os.path.isfile(file):
+        raise EmbeddingError("expected an embedding file (.npz), it does not exist", file=file)
+    try:
+        npz = np.load(file, allow_pickle=False)
+    except (zipfile.BadZipFile, ValueError, OSError, EOFError) as exc:
+        raise EmbeddingError(f"expected an .npz archive, could not read it ({type(exc).__name__})", file=file) from None
+    if not isinstance(npz, np.lib.npyio.NpzFile):
+        raise EmbeddingError("expected an .npz archive, got a single .npy array", file=file)
+    with npz:
+        data = {}
+        for key in npz.files:
+            try:
+                data[key] = npz[key]
+            except ValueError:
+                raise EmbeddingError("expected a plain array, got pickled objects (not loaded)", file=file,
+                                     key=key) from None
+            except (zipfile.BadZipFile, OSError, EOFError) as exc:
+                raise EmbeddingError(f"expected a readable array, got a damaged member ({type(exc).__name__})",
+                                     file=file, key=key) from None
+    fmt = _string(data, "format", file)
+    if fmt != FORMAT:
+        raise EmbeddingError(f"expected '{FORMAT}', got '{fmt}'", file=file, key="format")
+    if "version" not in data:
+        raise EmbeddingError("expected key in a goalkit embedding file, it is missing", file=file, key="version")
+    ver = data["version"]
+    if ver.shape != () or ver.dtype.kind not in "iu":
+        raise EmbeddingError(f"expected an integer version, got dtype {ver.dtype} shape {ver.shape}", file=file,
+                             key="version")
+    if int(ver) != VERSION:
+        raise EmbeddingError(f"expected format version {VERSION}, got {int(ver)} (written by another goalkit?)",
+                             file=file, key="version")
+    emb = _build(data, "", file)
+    goal_map = _json(data, "goal_map", file)
+    return emb, goal_map
+
+
+def load_embedding(path) -> Embedding:
+    """Read a fitted embedding from an embedding file (see :func:`load_embedding_file`)."""
+    return load_embedding_file(path)[0]
