@@ -1,0 +1,310 @@
+"""Label-free diagnostics of the goal space, to put a threshold in proportion.
+
+* **one-step displacement**: ``d(phi(s_t), phi(s_{t+1}))`` per transition. A threshold far
+  below its typical value means a goal is "reached" only by landing on it almost exactly.
+* **displacement after h steps**: quantiles of ``d(phi(s_t), phi(s_{t+h}))`` for each ``h``
+  (all ``t`` with ``t + h <= T``). The threshold's crossing of the median curve is roughly
+  how many steps of motion count as "already there".
+* **distance to other episodes**: for a sample of states, the distance to the nearest state
+  (within the sample) of a *different* episode, found with an exact faiss ``IndexFlatL2``.
+  A threshold above most of these makes goals from other episodes count as reached almost
+  for free.
+* **rewarded fraction**: for relabelled goal rows, the fraction rewarded by each strategy as
+  a function of the threshold (vectorised with one sort per strategy).
+
+``d`` is the reward rule's distance (``RewardRule.distance``); for ``box`` it is the
+normalised ``max_d |delta_d| / tol_d``, so thresholds are then scales of the current box
+(1 = the recipe's tolerances). The nearest other-episode state is the nearest in plain
+euclidean distance of the goal vectors (faiss); its distance is then reported in the rule's
+distance as well.
+
+The state sample is addressed by (seed, episode id, step) through :mod:`goalkit.rng`
+(stream ``subsample``), so it does not depend on how the episodes were chunked.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from goalkit import rng
+from goalkit.logs.episodes import EpisodeSet
+from goalkit.tune.errors import TuningError
+
+#: Default quantiles of the displacement summaries.
+QUANTILES = (0.05, 0.25, 0.5, 0.75, 0.95)
+#: Default horizons (steps) of the displacement profile.
+HORIZONS = (1, 2, 4, 8, 16, 32)
+
+
+def state_goals(episodes: EpisodeSet, goal_map) -> np.ndarray:
+    """Goal vector of every state of ``episodes``, float64 (N + E, G)."""
+    rows = np.arange(episodes.num_transitions + episodes.num_episodes, dtype=np.int64)
+    return np.asarray(goal_map(episodes, rows), dtype=np.float64)
+
+
+def _state_index(episodes: EpisodeSet):
+    """Episode position, step and episode length of every state row."""
+    lengths = episodes.lengths
+    pos = np.repeat(np.arange(episodes.num_episodes, dtype=np.int64), lengths + 1)
+    step = np.arange(pos.size, dtype=np.int64) - episodes.state_offsets()[pos]
+    return pos, step, lengths[pos]
+
+
+def step_displacement(episodes: EpisodeSet, goal_map, rule, goals=None) -> np.ndarray:
+    """One-step displacement ``d(phi(s_t), phi(s_{t+1}))`` of every transition, float64 (N,).
+
+    ``goals`` may pass precomputed :func:`state_goals`.
+    """
+    g = state_goals(episodes, goal_map) if goals is None else goals
+    return rule.distance(g[episodes.next_state_rows()], g[episodes.current_state_rows()])
+
+
+@dataclass(frozen=True)
+class HorizonProfile:
+    """Quantiles of the displacement after ``h`` steps.
+
+    Attributes
+    ----------
+    horizons : ndarray of int64 (H,)
+    quantiles : ndarray of float64 (Q,)
+    values : ndarray of float64 (H, Q)
+        ``values[i, j]`` is the ``quantiles[j]``-quantile at ``horizons[i]`` (NaN when no
+        episode is that long).
+    counts : ndarray of int64 (H,)
+        Number of (t, t + h) pairs behind each row.
+    """
+
+    horizons: np.ndarray
+    quantiles: np.ndarray
+    values: np.ndarray
+    counts: np.ndarray
+
+    def as_dict(self) -> dict:
+        """JSON-able form."""
+        return {"horizons": self.horizons.tolist(), "quantiles": self.quantiles.tolist(),
+                "values": self.values.tolist(), "counts": self.counts.tolist()}
+
+
+def _check_quantiles(quantiles):
+    q = np.asarray(quantiles, dtype=np.float64)
+    if q.ndim != 1 or q.size == 0 or np.any((q < 0) | (q > 1)):
+        raise TuningError(f"expected quantiles in [0, 1], got {list(np.atleast_1d(q))}", key="quantiles")
+    return q
+
+
+def horizon_displacement(episodes: EpisodeSet, goal_map, rule, horizons=HORIZONS,
+                         quantiles=QUANTILES, goals=None) -> HorizonProfile:
+    """Quantiles of ``d(phi(s_t), phi(s_{t+h}))`` over all ``t`` with ``t + h <= T``, per ``h``.
+
+    Examples
+    --------
+    >>> from goalkit.goals.goalmap import IndexGoalMap
+    >>> from goalkit.reward import RewardRule
+    >>> ep = EpisodeSet(observations=np.arange(5.0)[:, None], actions=np.zeros((4, 1)),
+    ...                 offsets=np.array([0, 4]), episode_ids=np.array([0]))
+    >>> p = horizon_displacement(ep, IndexGoalMap((0,)), RewardRule("euclidean", 1.0), [1, 3, 9], [0.5])
+    >>> p.values[:, 0].tolist(), p.counts.tolist()
+    ([1.0, 3.0, nan], [4, 2, 0])
+    """
+    h = np.asarray(horizons, dtype=np.int64)
+    if h.ndim != 1 or h.size == 0 or np.any(h < 1):
+        raise TuningError(f"expected horizons >= 1, got {list(np.atleast_1d(h))}", key="horizons")
+    q = _check_quantiles(quantiles)
+    g = state_goals(episodes, goal_map) if goals is None else goals
+    _, step, length = _state_index(episodes)
+    values = np.full((h.size, q.size), np.nan)
+    counts = np.zeros(h.size, dtype=np.int64)
+    for i, hh in enumerate(h.tolist()):  # a loop over horizons
+        rows = np.flatnonzero(step + hh <= length)
+        counts[i] = rows.size
+        if rows.size:
+            values[i] = np.quantile(rule.distance(g[rows + hh], g[rows]), q, method="linear")
+    return HorizonProfile(h, q, values, counts)
+
+
+def sample_states(episodes: EpisodeSet, size: int, seed: int) -> np.ndarray:
+    """Rows of up to ``size`` states, chosen by the smallest ``goalkit.rng`` keys (sorted rows).
+
+    The key of a state is addressed by (seed, episode id, step), so the same state gets the
+    same key in any chunking of the log.
+    """
+    pos, step, _ = _state_index(episodes)
+    key = rng.uniform(seed, episodes.episode_ids[pos], step, slot=0, stream="subsample")
+    if size >= key.size:
+        return np.arange(key.size, dtype=np.int64)
+    pick = np.argsort(key, kind="stable")[:size]
+    return np.sort(pick)
+
+
+@dataclass(frozen=True)
+class OtherEpisodeDistances:
+    """Nearest state of another episode, for a sample of states.
+
+    Attributes
+    ----------
+    rows : ndarray of int64 (S,)
+        Sampled state rows.
+    neighbour_rows : ndarray of int64 (S,)
+        Row of the nearest sampled state of another episode (-1 when there is none).
+    euclidean : ndarray of float64 (S,)
+        Its euclidean distance in goal space (NaN when none).
+    distance : ndarray of float64 (S,)
+        Its distance under the reward rule (NaN when none).
+    """
+
+    rows: np.ndarray
+    neighbour_rows: np.ndarray
+    euclidean: np.ndarray
+    distance: np.ndarray
+
+
+def other_episode_distances(episodes: EpisodeSet, goal_map, rule, *, sample: int = 2000,
+                            seed: int = 0, goals=None) -> OtherEpisodeDistances:
+    """Distance from sampled states to the nearest sampled state of a different episode.
+
+    Uses an exact faiss ``IndexFlatL2`` over the sample, asking for ``k`` neighbours and
+    doubling ``k`` for the states whose ``k`` nearest are all from their own episode.
+    """
+    import faiss
+
+    g = state_goals(episodes, goal_map) if goals is None else goals
+    rows = sample_states(episodes, sample, seed)
+    pos, _, _ = _state_index(episodes)
+    ep = pos[rows]
+    x = np.ascontiguousarray(g[rows], dtype=np.float32)
+    n = rows.size
+    index = faiss.IndexFlatL2(x.shape[1])
+    index.add(x)
+    nb = np.full(n, -1, dtype=np.int64)
+    todo = np.arange(n)
+    k = min(16, n)
+    while todo.size and k > 0:  # a loop over doubling rounds
+        _, found = index.search(x[todo], k)
+        other = (found >= 0) & (ep[np.maximum(found, 0)] != ep[todo][:, None])
+        hit = other.any(axis=1)
+        first = np.argmax(other, axis=1)
+        nb[todo[hit]] = found[hit, first[hit]]
+        todo = todo[~hit]
+        if k >= n:
+            break
+        k = min(2 * k, n)
+    has = nb >= 0
+    nrows = np.where(has, rows[np.maximum(nb, 0)], -1)
+    a, b = g[rows], g[rows[np.maximum(nb, 0)]]
+    euc = np.where(has, np.sqrt(np.sum((a - b) ** 2, axis=1)), np.nan)
+    dist = np.where(has, rule.distance(a, b), np.nan)
+    return OtherEpisodeDistances(rows, nrows, euc, dist)
+
+
+@dataclass(frozen=True)
+class RewardedFraction:
+    """Fraction of goal rows rewarded, per strategy, as a function of the threshold.
+
+    Attributes
+    ----------
+    strategies : ndarray of int64 (S,)
+        Strategy codes present, ascending.
+    thresholds : ndarray of float64 (K,)
+    fraction : ndarray of float64 (S, K)
+    counts : ndarray of int64 (S,)
+        Goal rows per strategy.
+    """
+
+    strategies: np.ndarray
+    thresholds: np.ndarray
+    fraction: np.ndarray
+    counts: np.ndarray
+
+    def as_dict(self) -> dict:
+        """JSON-able form."""
+        return {"strategies": self.strategies.tolist(), "thresholds": self.thresholds.tolist(),
+                "fraction": self.fraction.tolist(), "counts": self.counts.tolist()}
+
+
+def rewarded_fraction(achieved, goal, strategy, rule, thresholds) -> RewardedFraction:
+    """Fraction of goal rows with ``d <= thr`` (``<`` for an exclusive rule), per strategy.
+
+    Parameters
+    ----------
+    achieved, goal : array_like (M, G)
+        Reached goal ``phi(s_{t+1})`` and assigned goal of each goal row.
+    strategy : array_like of int (M,)
+        Strategy code of each row (see :mod:`goalkit.relabel`).
+    rule : RewardRule
+        Gives the distance and the inclusiveness.
+    thresholds : array_like of float (K,)
+        Thresholds to evaluate (for ``box``: scales of the current tolerances).
+
+    Examples
+    --------
+    >>> from goalkit.reward import RewardRule
+    >>> a = np.array([[0.0], [1.0], [2.0], [0.5]])
+    >>> f = rewarded_fraction(a, np.zeros_like(a), [2, 2, 2, 0], RewardRule("l1", 1.0), [0.5, 1.0])
+    >>> f.strategies.tolist(), f.fraction.tolist()
+    ([0, 2], [[1.0, 1.0], [0.3333333333333333, 0.6666666666666666]])
+    """
+    s = np.asarray(strategy).astype(np.int64)
+    d = rule.distance(achieved, goal)
+    if s.shape != d.shape:
+        raise TuningError(f"expected one strategy code per goal row ({d.shape[0]}), got shape {s.shape}",
+                          key="strategy")
+    t = np.asarray(thresholds, dtype=np.float64)
+    codes, inv = np.unique(s, return_inverse=True)
+    inv = inv.reshape(-1)
+    order = np.lexsort((d, inv))  # by strategy, then distance
+    ds, cs = d[order], inv[order]
+    starts = np.searchsorted(cs, np.arange(codes.size + 1))
+    side = "right" if rule.inclusive else "left"
+    frac = np.zeros((codes.size, t.size))
+    for i in range(codes.size):  # a loop over strategies (at most a handful)
+        seg = ds[starts[i]:starts[i + 1]]
+        frac[i] = np.searchsorted(seg, t, side=side) / seg.size
+    return RewardedFraction(codes.astype(np.int64), t, frac, np.diff(starts).astype(np.int64))
+
+
+def summarise(values, quantiles=QUANTILES) -> dict:
+    """Quantiles and mean of finite ``values``, JSON-able (``{"n": 0}`` when none)."""
+    v = np.asarray(values, dtype=np.float64)
+    v = v[np.isfinite(v)]
+    if v.size == 0:
+        return {"n": 0}
+    q = _check_quantiles(quantiles)
+    return {"n": int(v.size), "mean": float(v.mean()),
+            "quantiles": dict(zip((f"{x:g}" for x in q), np.quantile(v, q, method="linear").tolist()))}
+
+
+@dataclass(frozen=True)
+class Diagnostics:
+    """All label-free diagnostics of one set of episodes (see :func:`diagnose`)."""
+
+    step: np.ndarray
+    horizon: HorizonProfile
+    other: OtherEpisodeDistances
+    threshold: float
+
+    def summary(self) -> dict:
+        """JSON-able summary, including where the current threshold falls."""
+        step = self.step[np.isfinite(self.step)]
+        oth = self.other.distance[np.isfinite(self.other.distance)]
+        return {
+            "threshold": self.threshold,
+            "step_displacement": summarise(self.step, self.horizon.quantiles),
+            "horizon_displacement": self.horizon.as_dict(),
+            "other_episode_distance": summarise(self.other.distance, self.horizon.quantiles),
+            "fraction_steps_within_threshold": float(np.mean(step <= self.threshold)) if step.size else None,
+            "fraction_other_episode_within_threshold": float(np.mean(oth <= self.threshold)) if oth.size else None,
+        }
+
+
+def diagnose(episodes: EpisodeSet, goal_map, rule, *, horizons=HORIZONS, quantiles=QUANTILES,
+             sample: int = 2000, seed: int = 0) -> Diagnostics:
+    """Run every label-free diagnostic on ``episodes`` (goal vectors computed once)."""
+    g = state_goals(episodes, goal_map)
+    thr = 1.0 if rule.distance_name == "box" else float(rule.threshold)
+    return Diagnostics(
+        step=step_displacement(episodes, goal_map, rule, goals=g),
+        horizon=horizon_displacement(episodes, goal_map, rule, horizons, quantiles, goals=g),
+        other=other_episode_distances(episodes, goal_map, rule, sample=sample, seed=seed, goals=g),
+        threshold=thr)
