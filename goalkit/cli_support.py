@@ -80,3 +80,38 @@ def _default(obj):
 def echo_json(obj) -> None:
     """Print ``obj`` as one JSON object (numpy scalars and arrays converted)."""
     click.echo(json.dumps(obj, default=_default, sort_keys=True))
+
+
+class ChunkProgress:
+    """A callable ``(done, total)`` that drives a bar, opened on the first call.
+
+    Parameters
+    ----------
+    desc : str
+        Label of the bar.
+    quiet : bool
+        Never show the bar.
+    unit : str
+        Unit name.
+    """
+
+    def __init__(self, desc: str, quiet: bool = False, unit: str = "transition"):
+        self.desc, self.quiet, self.unit = desc, quiet, unit
+        self.bar = None
+
+    def __call__(self, done: int, total: int) -> None:
+        if self.bar is None:
+            self.bar = progress(total=total, desc=self.desc, quiet=self.quiet, unit=self.unit)
+        self.bar.update(done)
+
+    def close(self) -> None:
+        """Remove the bar."""
+        if self.bar is not None:
+            self.bar.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+        return False

@@ -10,7 +10,7 @@ import numpy as np
 from goalkit import __version__
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.pipeline.chunk import relabel_chunk
-from goalkit.pipeline.plan import make_plan
+from goalkit.pipeline.plan import make_plan, strategy_names
 from goalkit.pipeline.summary import SummaryBuilder
 from goalkit.write.provenance import describe_files
 from goalkit.write.writer import SetWriter
@@ -67,11 +67,11 @@ def provenance(plan, source) -> dict:
         "transitions": plan.total_transitions,
         "log_notes": list(getattr(source, "notes", [])),
         "skipped_episodes": [[int(e), str(r)] for e, r in getattr(source, "skipped", [])],
-        "strategies": {int(k): v for k, v in recipe.mixture.strategy_names().items()},
+        "strategies": {int(k): v for k, v in strategy_names(recipe.mixture).items()},
     }
 
 
-def build(recipe, *, max_rows_per_chunk: int = CHUNK_ROWS, progress=None) -> BuildResult:
+def build(recipe, *, source=None, max_rows_per_chunk: int = CHUNK_ROWS, progress=None) -> BuildResult:
     """Build the dataset a recipe describes, in this process.
 
     Parameters
@@ -80,17 +80,19 @@ def build(recipe, *, max_rows_per_chunk: int = CHUNK_ROWS, progress=None) -> Bui
         A checked recipe (see :func:`goalkit.pipeline.recipe.load_recipe`).
     max_rows_per_chunk : int
         Output rows per chunk task; only memory and speed depend on it, never the output bytes.
+    source : LogSource, optional
+        Already opened logs (default: open the recipe's logs with its layout).
     progress : callable, optional
-        Called with the number of transitions finished after each chunk.
+        Called as ``progress(transitions_done_in_chunk, total_transitions)`` after each chunk.
 
     Returns
     -------
     BuildResult
     """
-    plan, source = make_plan(recipe)
+    plan, source = make_plan(recipe, source)
     per_chunk = chunk_transitions(plan, max_rows_per_chunk)
     gpt = recipe.mixture.goals_per_transition
-    summary = SummaryBuilder(recipe.mixture.strategy_names(), plan.total_transitions * gpt, recipe.seed)
+    summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed)
     out = recipe.output
     with SetWriter(out.path, plan.columns, chunk_rows=out.chunk_rows, compression=out.compression) as writer:
         for a, b in chunk_bounds(plan.lengths, per_chunk):
@@ -101,7 +103,7 @@ def build(recipe, *, max_rows_per_chunk: int = CHUNK_ROWS, progress=None) -> Bui
                 summary.add(split, cols, rows.keys[split])
             writer.flush()
             if progress is not None:
-                progress(int(plan.lengths[a:b].sum()))
+                progress(int(plan.lengths[a:b].sum()), plan.total_transitions)
         result = summary.result()
         prov = provenance(plan, source)
         episodes = {s: int(np.sum(plan.splits == c)) for c, s in enumerate(("train", "validation"))}

@@ -12,7 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from goalkit.errors import RecipeError
-from goalkit.logs import open_logs
+
 from goalkit.pipeline.goal import make_goal_map
 from goalkit.pipeline.split import split_codes
 from goalkit.write.format import INDEX_COLUMNS, MATERIAL_COLUMNS, TASK_REWARD_COLUMN
@@ -84,11 +84,61 @@ def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_t
     return cols
 
 
+#: Strategies whose goals may come from episodes outside the chunk.
+CROSS_EPISODE = ("other_episode", "neighbour", "near_miss")
+
+
+@dataclass(frozen=True)
+class _SplitLookup:
+    """split_of(ids) for a context: the split code of each kept episode id."""
+
+    ids: np.ndarray
+    codes: np.ndarray
+
+    def __call__(self, episode_ids):
+        return self.codes[np.searchsorted(self.ids, np.asarray(episode_ids, dtype=np.int64))]
+
+
+def active_strategies(mixture) -> list[str]:
+    """Names of the strategies with positive weight."""
+    return [n for n, w in mixture.weights.items() if w > 0]
+
+
+def needs_goal_table(mixture) -> bool:
+    """True when a strategy of the mixture takes goals from other episodes."""
+    return any(n in CROSS_EPISODE for n in active_strategies(mixture))
+
+
+def strategy_names(mixture) -> dict:
+    """Strategy code -> name of every known strategy."""
+    from goalkit.relabel import CODES
+
+    return {int(c): n for n, c in CODES.items()}
+
+
+def check_mixture(recipe, first, context) -> None:
+    """Refuse a mixture the logs cannot serve, before anything is written."""
+    active = active_strategies(recipe.mixture)
+    if "original" in active and first.task_goals is None:
+        raise RecipeError("strategy 'original' needs the log's own task goals, but the layout maps no "
+                          "task_goal key; give it a weight of 0 or add [keys] task_goal to the layout",
+                          file=recipe.file, key="relabel.weights.original")
+    if "other_episode" in active:
+        for code, ids in context.split_episode_ids.items():
+            if len(ids) < 2:
+                name = ("train", "validation")[code]
+                raise RecipeError(f"strategy 'other_episode' needs at least 2 episodes in every split; the "
+                                  f"{name} split has {len(ids)}", file=recipe.file,
+                                  key="relabel.weights.other_episode")
+
+
 def open_source(recipe):
     """Open the recipe's logs with its layout."""
+    from goalkit.logs import open_logs
+
     layout = None
     if recipe.layout_path is not None:
-        from goalkit.logs import load_layout
+        from goalkit.logs.layout import load_layout
 
         layout = load_layout(recipe.layout_path)
     return open_logs(recipe.logs_path, layout, skip_bad_episodes=recipe.skip_bad_episodes)
@@ -122,12 +172,14 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
     recipe.reward.check_dim(goal_map.dim, file=recipe.file)
     offsets = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
     splits = split_codes(ids, recipe.validation, recipe.salt)
-    context = RelabelContext.from_episodes(ids, lengths, splits)
-    recipe.mixture.check(first, context, file=recipe.file)
+    context = RelabelContext({c: ids[splits == c] for c in np.unique(splits).tolist()},
+                             {c: lengths[splits == c] for c in np.unique(splits).tolist()},
+                             _SplitLookup(ids, splits))
+    check_mixture(recipe, first, context)
     cols = _columns(recipe, obs_shape, act_shape, first.observations.dtype, first.actions.dtype,
                     goal_map.dim, first.rewards is not None)
     table = None
-    if recipe.mixture.needs_goal_table:
+    if needs_goal_table(recipe.mixture):
         table = goal_table(source, goal_map, np.dtype(recipe.goal.dtype), max_transitions)
     plan = BuildPlan(recipe=recipe, goal_map=goal_map, episode_ids=ids, lengths=lengths,
                      transition_offsets=offsets, splits=splits, context=context, goal_table=table,

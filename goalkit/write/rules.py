@@ -35,5 +35,6 @@ def check_goal_rules(cols: dict, src_lengths: np.ndarray, goal_lengths: np.ndarr
     yield ("an other-episode goal must come from a different episode (0 <= j <= its length)",
            (s == OTHER_EPISODE) & ~((ge >= 0) & ~same & (j >= 0) & (j <= goal_lengths)))
     yield "an original goal must be external (goal_episode -1)", (s == ORIGINAL) & (ge != -1)
-    expect = np.where(same, j - t, -1)
-    yield "steps_to_goal must be j - t for goals from the same episode, -1 otherwise", cols["steps_to_goal"] != expect
+    expect = np.where(same & (j > t), j - t, -1)
+    yield ("steps_to_goal must be j - t for later goals of the same episode, -1 otherwise",
+           cols["steps_to_goal"] != expect)

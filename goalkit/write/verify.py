@@ -171,7 +171,7 @@ def verify_set(path, max_failures: int = 20, progress=None) -> VerifyReport:
     max_failures : int
         Stop collecting messages after this many.
     progress : callable, optional
-        Called with transitions finished.
+        Called as ``progress(transitions_done_in_chunk, total_transitions)`` after each chunk.
 
     Returns
     -------
@@ -225,7 +225,7 @@ def verify_set(path, max_failures: int = 20, progress=None) -> VerifyReport:
                     _compare(fresh.columns[s], stored, s, lo, report)
                 cursor[s] = hi
             if progress is not None:
-                progress(int(plan.lengths[a:b].sum()))
+                progress(int(plan.lengths[a:b].sum()), plan.total_transitions)
         for s in SPLITS:
             if cursor[s] != total[s]:
                 report.fail(f"{s}: {total[s]} rows stored, the recipe produces {cursor[s]}")
