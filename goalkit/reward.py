@@ -245,11 +245,24 @@ class RewardRule:
 
     def reached(self, achieved, goal) -> np.ndarray:
         """Return the reached flags, bool of shape (M,)."""
-        return self._reached_from(self.distance(achieved, goal))
+        return self.reached_from(self.distance(achieved, goal))
 
-    def _reached_from(self, d: np.ndarray) -> np.ndarray:
+    def reached_from(self, d) -> np.ndarray:
+        """Return the reached flags, bool (M,), for precomputed distances ``d`` (M,).
+
+        ``d <= threshold`` when inclusive, ``d < threshold`` otherwise; for ``box`` the
+        (normalised) distance is compared with 1.
+        """
+        d = np.asarray(d, dtype=np.float64)
         thr = 1.0 if self.distance_name == "box" else float(self.threshold)
         return d <= thr if self.inclusive else d < thr
+
+    _reached_from = reached_from  # kept: callers written against the first version use it
+
+    @property
+    def reach_threshold(self) -> float:
+        """The number distances are compared with: ``threshold``, or 1 for ``box``."""
+        return 1.0 if self.distance_name == "box" else float(self.threshold)
 
     def reward(self, achieved, goal) -> np.ndarray:
         """Return the rewards, float32 of shape (M,), in the rule's form."""
@@ -260,9 +273,9 @@ class RewardRule:
         """Return the rewards, float32 (M,), for precomputed distances ``d`` (M,)."""
         d = np.asarray(d, dtype=np.float64)
         if self.form == "sparse":
-            return self._reached_from(d).astype(np.float32)
+            return self.reached_from(d).astype(np.float32)
         if self.form == "sparse-negative":
-            return self._reached_from(d).astype(np.float32) - np.float32(1.0)
+            return self.reached_from(d).astype(np.float32) - np.float32(1.0)
         if self.form == "negative-distance":
             return (-d).astype(np.float32)
         return (-np.minimum(d, self.clip)).astype(np.float32)

@@ -142,3 +142,15 @@ def test_float32_inputs_and_shape_checks():
         rule.distance(A[:, :3], G)
     with pytest.raises(ValueError):
         RewardRule("euclidean", 0.1, weights=W).distance(A[:, :3], G[:, :3])
+
+
+def test_from_distances_agrees_with_pairs():
+    for rule in (RewardRule("box", (0.5, 0.5, 1.0, 1.0), form="sparse-negative"),
+                 RewardRule("cosine", 0.3, inclusive=False),
+                 RewardRule("l1", 2.0, form="clipped-negative-distance", clip=3.0)):
+        d = rule.distance(A, G)
+        assert np.array_equal(rule.reached_from(d), rule.reached(A, G))
+        assert np.array_equal(rule.reward_from(d), rule.reward(A, G))
+        assert 0 < rule.reached(A, G).sum() < len(A)  # both outcomes occur
+    assert RewardRule("box", (0.5, 2.0)).reach_threshold == 1.0
+    assert RewardRule("l1", 2.0).reach_threshold == 2.0
