@@ -1,0 +1,99 @@
+"""Checks shared by the readers: dtypes, shapes, finite values, flags.
+
+Every failure is a one-line :class:`~goalkit.errors.LogError` naming the file, the key, the
+episode (position in the whole log) and, for values, the first bad step.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from goalkit.errors import LogError
+
+
+def numeric(dtype, *, file, key, episode=None, what="a numeric array") -> np.dtype:
+    """Refuse non-numeric dtypes (strings, objects, compounds, bools)."""
+    dtype = np.dtype(dtype)
+    if dtype.kind not in "iuf":
+        raise LogError(f"expected {what}, got dtype {dtype}", file=file, key=key, episode=episode)
+    return dtype
+
+
+def rows_2d(shape, *, file, key, episode=None, what) -> tuple[int, int]:
+    """Return ``(rows, width)`` of a ``(n,)`` or ``(n, k)`` array, refusing other ranks."""
+    if len(shape) == 1:
+        return int(shape[0]), 1
+    if len(shape) == 2:
+        return int(shape[0]), int(shape[1])
+    raise LogError(f"expected {what} of shape (n,) or (n, k), got shape {tuple(shape)}",
+                   file=file, key=key, episode=episode)
+
+
+def float_dtype(dtypes) -> np.dtype:
+    """float32 when every input is float32 or float16, else float64 (ints become float64)."""
+    dtypes = [np.dtype(d) for d in dtypes]
+    if dtypes and all(d.kind == "f" and d.itemsize <= 4 for d in dtypes):
+        return np.dtype(np.float32)
+    return np.dtype(np.float64)
+
+
+def first_bad_row(values: np.ndarray) -> int:
+    """Index of the first row holding a NaN or inf, or -1 (only float arrays can hold them)."""
+    if values.dtype.kind != "f" or values.size == 0:
+        return -1
+    ok = np.isfinite(values.reshape(values.shape[0], -1)).all(axis=1)
+    bad = np.flatnonzero(~ok)
+    return int(bad[0]) if bad.size else -1
+
+
+def first_bad(values: np.ndarray, offsets: np.ndarray, *, state_level: bool = False):
+    """Locate the first NaN/inf of a chunk column as ``(episode position, step)``, or None.
+
+    Parameters
+    ----------
+    values : ndarray
+        A transition-level (or, with ``state_level``, state-level) column of a chunk.
+    offsets : ndarray of int64
+        The chunk's transition offsets.
+    """
+    row = first_bad_row(values)
+    if row < 0:
+        return None
+    starts = offsets[:-1] + (np.arange(offsets.shape[0] - 1) if state_level else 0)
+    pos = int(np.searchsorted(starts, row, side="right") - 1)
+    return pos, row - int(starts[pos])
+
+
+def flags(values: np.ndarray, *, file, key, episode=None) -> np.ndarray:
+    """Turn a bool, integer or 0./1. float array into bool, refusing other values."""
+    values = np.asarray(values)
+    if values.ndim == 2 and values.shape[1] == 1:
+        values = values[:, 0]
+    if values.dtype.kind == "b":
+        return values
+    if values.dtype.kind in "iuf":
+        bad = np.flatnonzero((values != 0) & (values != 1))
+        if bad.size:
+            raise LogError(f"expected a bool or 0/1 flag, got {values[bad[0]]!r}", file=file,
+                           key=key, episode=episode, step=int(bad[0]))
+        return values != 0
+    raise LogError(f"expected a bool or 0/1 flag, got dtype {values.dtype}", file=file, key=key,
+                   episode=episode)
+
+
+def task_value(value, *, file, key, episode=None) -> int:
+    """Turn a scalar task id (attribute, scalar dataset, constant array) into an int."""
+    arr = np.asarray(value)
+    if arr.ndim > 0:
+        flat = arr.reshape(-1)
+        if flat.size == 0:
+            raise LogError("expected a task id, got an empty array", file=file, key=key, episode=episode)
+        changed = np.flatnonzero(flat != flat[0])
+        if changed.size:
+            raise LogError(f"expected one task id per episode, the value changes from {flat[0]!r} to "
+                           f"{flat[changed[0]]!r}", file=file, key=key, episode=episode,
+                           step=int(changed[0]))
+        arr = flat[0]
+    if arr.dtype.kind in "iu" or (arr.dtype.kind == "f" and bool(np.isfinite(arr)) and float(arr) == int(arr)):
+        return int(arr)
+    raise LogError(f"expected an integer task id, got {arr!r}", file=file, key=key, episode=episode)

@@ -1,0 +1,322 @@
+"""Reader for flat logs (layout shape ``"flat"``): one HDF5 file or one ``.npz`` whose arrays
+hold every episode back to back, with episode boundaries given by ``[boundaries]``.
+
+Row spaces. Per-action arrays (action, reward, success, task_goal, next_observation) have one
+row per stored step. The observation array has either the same number of rows (conventions
+``"T"`` and ``"pairs"``) or one more per episode (``"T+1"``). A boundary array (episode id or
+done flag) may be aligned with either; its length says which. Offsets ending at the number of
+observation rows index observation rows; any other offsets or start indices index action rows.
+Frames always have one row per state (``T + 1`` per episode).
+
+Opening reads the boundary array (and a task-id array) in full, and the shapes of the others.
+:meth:`FlatSource.read` reads each run of consecutive episodes by one slice per array.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+
+import numpy as np
+
+from goalkit.errors import LogError
+from goalkit.logs import boundaries as bnd
+from goalkit.logs import checks
+from goalkit.logs.access import H5Access, NpzAccess, open_h5
+from goalkit.logs.npzfile import NpzArrays
+from goalkit.logs.source import BaseSource
+
+
+def _cumsum0(x) -> np.ndarray:
+    return np.concatenate([[0], np.cumsum(x)]).astype(np.int64)
+
+
+def ranges_index(starts: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """Concatenation of ``arange(s, s + c)`` for each (start, count), vectorised.
+
+    Examples
+    --------
+    >>> ranges_index(np.array([5, 0]), np.array([2, 3])).tolist()
+    [5, 6, 0, 1, 2]
+    """
+    starts = np.asarray(starts, dtype=np.int64)
+    counts = np.asarray(counts, dtype=np.int64)
+    total = int(counts.sum())
+    return np.repeat(starts - _cumsum0(counts)[:-1], counts) + np.arange(total, dtype=np.int64)
+
+
+def is_npz(path) -> bool:
+    """True for a ``.npz`` name or a zip signature."""
+    path = str(path)
+    if path.lower().endswith(".npz"):
+        return True
+    try:
+        with open(path, "rb") as fh:
+            return fh.read(4) == b"PK\x03\x04"
+    except OSError:
+        return False
+
+
+class FlatSource(BaseSource):
+    """A flat HDF5 or .npz log. Use :func:`goalkit.logs.open_logs` to make one."""
+
+    def __init__(self, path, layout, skip_bad_episodes=False):
+        super().__init__(path, layout, skip_bad_episodes)
+        if not os.path.exists(self.path):
+            raise LogError("file not found", file=self.path)
+        if os.path.isdir(self.path):
+            raise LogError("expected one HDF5 or .npz file for shape = \"flat\", got a directory",
+                           file=self.path)
+        self.files = [self.path]
+        self._npz = NpzArrays(self.path) if is_npz(self.path) else None
+        with self._access() as acc:
+            problems = self._plan(acc)
+        self._settle(self.steps_all, problems)
+
+    @contextlib.contextmanager
+    def _access(self):
+        if self._npz is not None:
+            yield NpzAccess(self._npz)
+        else:
+            with open_h5(self.path) as h5:
+                yield H5Access(h5, self.path)
+
+    # ---- open: shapes, boundaries, per-episode rows ----------------------------------------
+    def _need(self, acc, key):
+        if not acc.has(key):
+            names = acc.names()
+            raise LogError(f"missing array; found: {', '.join(names) if names else 'nothing'}",
+                           file=self.path, key=key)
+
+    def _plan(self, acc) -> list:
+        lay, k, f = self.layout, self.layout.keys, self.path
+        self._need(acc, k.action)
+        checks.numeric(acc.dtype(k.action), file=f, key=k.action)
+        n_act, self.action_width = checks.rows_2d(acc.shape(k.action), file=f, key=k.action, what="actions")
+        self.action_dtype = np.dtype(acc.dtype(k.action))
+        widths, dtypes, n_obs = [], [], None
+        for key in lay.observation_keys():
+            self._need(acc, key)
+            dtypes.append(checks.numeric(acc.dtype(key), file=f, key=key))
+            m, w = checks.rows_2d(acc.shape(key), file=f, key=key, what="observations")
+            if n_obs is not None and m != n_obs:
+                raise LogError(f"has {m} rows, the first field has {n_obs}; expected equal rows",
+                               file=f, key=key)
+            n_obs = m
+            widths.append(w)
+        if k.next_observation is not None:
+            self._need(acc, k.next_observation)
+            dtypes.append(checks.numeric(acc.dtype(k.next_observation), file=f, key=k.next_observation))
+            shape2 = checks.rows_2d(acc.shape(k.next_observation), file=f, key=k.next_observation,
+                                    what="next observations")
+            if shape2 != (n_act, widths[0]) or n_obs != n_act:
+                raise LogError(f"has shape {acc.shape(k.next_observation)}, observation has "
+                               f"{(n_obs, widths[0])} and action {n_act} rows; expected one row per "
+                               f"action in both, of equal widths", file=f, key=k.next_observation)
+        self.obs_dtype = checks.float_dtype(dtypes)
+        self.obs_width = int(sum(widths))
+        if lay.fields:
+            edges = _cumsum0(widths)
+            self.fields = {name: (int(edges[i]), int(edges[i + 1])) for i, (name, _) in enumerate(lay.fields)}
+
+        counts, space, problems = self._boundaries(acc, n_act, n_obs)
+        E = counts.shape[0]
+        if k.next_observation is not None:
+            self.convention = "pairs"
+            steps = counts.copy()
+            step_start = state_start = _cumsum0(counts)[:-1]
+        elif n_obs == n_act:
+            self.convention = "T"
+            steps = counts - 1
+            step_start = state_start = _cumsum0(counts)[:-1]
+            self.notes.append("observations are stored one per action (T per episode): the last "
+                              "action, reward and success flag of each episode are dropped")
+        else:
+            self.convention = "T+1"
+            if space == "step":
+                steps = counts.copy()
+                step_start = _cumsum0(counts)[:-1]
+                state_start = step_start + np.arange(E)
+                if n_obs != n_act + E:
+                    raise LogError(f"has {n_obs} rows, action has {n_act} in {E} episodes; expected "
+                                   f"{n_act + E} (one per state, T+1 per episode) or {n_act} (one "
+                                   f"per action)", file=f, key=lay.observation_keys()[0])
+            else:
+                steps = counts - 1
+                state_start = _cumsum0(counts)[:-1]
+                step_start = state_start - np.arange(E)
+                if int(steps.sum()) != n_act:
+                    raise LogError(f"has {n_act} rows; expected {int(steps.sum())} (one per state of "
+                                   f"{lay.boundaries.key} minus one per episode)", file=f, key=k.action)
+        self.steps_all = np.maximum(steps, 0).astype(np.int64)
+        # action rows each episode occupies in the file (T, or T + 1 in convention "T")
+        self.step_rows = np.maximum(counts - 1 if space == "state" and self.convention == "T+1"
+                                    else counts, 0).astype(np.int64)
+        self.step_start = step_start.astype(np.int64)
+        self.state_start = state_start.astype(np.int64)
+        self.frame_start = _cumsum0(self.steps_all + 1)[:-1]
+        for e in np.flatnonzero(steps <= 0).tolist():
+            extra = (" (with one observation per action the last action is dropped)"
+                     if self.convention == "T" else "")
+            problems.append((e, LogError(f"episode is empty: {max(int(steps[e]), 0)} transitions"
+                                         f"{extra}; expected at least 1", file=f,
+                                         key=lay.boundaries.key, episode=e)))
+        self._check_step_arrays(acc, n_act)
+        problems += self._tasks(acc, n_act, E)
+        return problems
+
+    def _boundaries(self, acc, n_act, n_obs):
+        b, f = self.layout.boundaries, self.path
+        self._need(acc, b.key)
+        values = acc.read(b.key)
+        problems = []
+        if b.kind == "offsets":
+            if values.ndim == 1 and values.shape[0] and n_obs != n_act and values[-1] == n_obs:
+                return bnd.counts_from_offsets(values, n_obs, file=f, key=b.key), "state", problems
+            return bnd.counts_from_offsets(values, n_act, file=f, key=b.key), "step", problems
+        L = values.shape[0] if values.ndim else -1
+        if L == n_act:
+            space = "step"
+        elif L == n_obs:
+            space = "state"
+        else:
+            raise LogError(f"has shape {values.shape}; expected ({n_act},) (one per action)"
+                           + (f" or ({n_obs},) (one per observation)" if n_obs != n_act else ""),
+                           file=f, key=b.key)
+        if b.kind == "episode_id":
+            return bnd.counts_from_ids(values, file=f, key=b.key), space, problems
+        counts, ended = bnd.counts_from_done(values, file=f, key=b.key)
+        if not ended:
+            e = counts.shape[0] - 1
+            problems.append((e, LogError(f"the done flag never ends the last episode: its last "
+                                         f"{counts[-1]} rows have no true value; expected true on "
+                                         f"the last row", file=f, key=b.key, episode=e,
+                                         step=int(counts[-1]) - 1)))
+        return counts, space, problems
+
+    def _check_step_arrays(self, acc, n_act):
+        k, f = self.layout.keys, self.path
+        for role, what in (("reward", "rewards"), ("success", "success flags"), ("task_goal", "goals")):
+            key = getattr(k, role)
+            if key is None:
+                continue
+            self._need(acc, key)
+            if role == "success":
+                if acc.dtype(key).kind not in "biuf":
+                    raise LogError(f"expected a bool or 0/1 flag, got dtype {acc.dtype(key)}", file=f, key=key)
+            else:
+                checks.numeric(acc.dtype(key), file=f, key=key)
+            rows, width = checks.rows_2d(acc.shape(key), file=f, key=key, what=what)
+            if rows != n_act or (role != "task_goal" and width != 1):
+                raise LogError(f"has shape {acc.shape(key)}; expected ({n_act},"
+                               f"{' G' if role == 'task_goal' else ''}) (one row per action)",
+                               file=f, key=key)
+        if k.frame is not None:
+            self._need(acc, k.frame)
+            shape, dt = acc.shape(k.frame), acc.dtype(k.frame)
+            want = int((self.steps_all + 1).sum())
+            if dt != np.uint8 or len(shape) not in (3, 4) or shape[0] != want:
+                raise LogError(f"has dtype {dt} and shape {shape}; expected uint8 frames of shape "
+                               f"({want}, H, W[, C]) (one per state, T+1 per episode)", file=f, key=k.frame)
+
+    def _tasks(self, acc, n_act, E) -> list:
+        key, f = self.layout.keys.task, self.path
+        self.task_of = None
+        if key is None:
+            return []
+        self._need(acc, key)
+        values = np.asarray(acc.read(key))
+        if values.ndim == 0:
+            self.task_of = np.full(E, checks.task_value(values, file=f, key=key), dtype=np.int64)
+            return []
+        if values.ndim != 1 or values.shape[0] not in (n_act, E):
+            raise LogError(f"has shape {values.shape}; expected ({n_act},) (one per action), ({E},) "
+                           f"(one per episode) or a scalar", file=f, key=key)
+        if values.shape[0] == E and E != n_act:
+            per = values
+            problems = []
+        else:
+            starts = np.minimum(self.step_start, max(n_act - 1, 0))
+            per = values[starts]
+            change = values != np.repeat(per, self.step_rows)
+            problems = []
+            for e in np.unique(np.repeat(np.arange(E), self.step_rows)[change]).tolist():
+                row = int(np.flatnonzero(change[self.step_start[e]:self.step_start[e] + self.step_rows[e]])[0])
+                problems.append((e, LogError("expected one task id per episode, the value changes",
+                                             file=f, key=key, episode=e, step=row)))
+        if per.dtype.kind not in "iu":
+            if per.dtype.kind == "f" and np.all(np.isfinite(per)) and np.all(per == np.round(per)):
+                per = per.astype(np.int64)
+            else:
+                raise LogError(f"expected integer task ids, got dtype {per.dtype}", file=f, key=key)
+        self.task_of = per.astype(np.int64)
+        return problems
+
+    # ---- read -------------------------------------------------------------------------------
+    def _read_episodes(self, ids):
+        k = self.layout.keys
+        T = self.steps_all[ids]
+        with self._access() as acc:
+            def gather(key, starts, counts):
+                lo = int(starts.min())
+                hi = int((starts + counts).max())
+                block = acc.read(key, lo, hi)
+                return block[ranges_index(starts - lo, counts)]
+
+            # runs of consecutive episodes keep the covering slice small when some are skipped
+            runs = np.split(np.arange(ids.shape[0]), np.flatnonzero(np.diff(ids) != 1) + 1)
+            pieces = {}
+            for run in runs:
+                rid = ids[run]
+                part = self._read_run(gather, rid, self.steps_all[rid])
+                for name, v in part.items():
+                    pieces.setdefault(name, []).append(v)
+            cols = {name: np.concatenate(v) for name, v in pieces.items()}
+        if k.success is not None:
+            cols["success"] = self._flags(cols["success"], _cumsum0(T), ids)
+        if self.task_of is not None:
+            cols["task_ids"] = self.task_of[ids]
+        return cols
+
+    def _read_run(self, gather, rid, T) -> dict:
+        k, lay = self.layout.keys, self.layout
+        out = {}
+        s_start, o_start = self.step_start[rid], self.state_start[rid]
+        if self.convention == "pairs":
+            obs = gather(k.observation, o_start, T).reshape(-1, self.obs_width)
+            last = gather(k.next_observation, o_start + T - 1, np.ones_like(T)).reshape(-1, self.obs_width)
+            full = np.empty((obs.shape[0] + last.shape[0], self.obs_width), dtype=self.obs_dtype)
+            is_last = np.zeros(full.shape[0], dtype=bool)
+            is_last[_cumsum0(T + 1)[1:] - 1] = True
+            full[~is_last] = obs
+            full[is_last] = last
+            out["observations"] = full
+        else:
+            parts = [gather(key, o_start, T + 1).reshape(int((T + 1).sum()), -1).astype(self.obs_dtype, copy=False)
+                     for key in lay.observation_keys()]
+            out["observations"] = parts[0] if len(parts) == 1 else np.concatenate(parts, axis=1)
+        out["actions"] = gather(k.action, s_start, T).reshape(-1, self.action_width).astype(
+            self.action_dtype, copy=False)
+        if k.reward is not None:
+            r = gather(k.reward, s_start, T).reshape(-1)
+            out["rewards"] = r.astype(checks.float_dtype([r.dtype]), copy=False)
+        if k.success is not None:
+            out["success"] = gather(k.success, s_start, T).reshape(-1)
+        if k.task_goal is not None:
+            g = gather(k.task_goal, s_start, T)
+            g = g.reshape(g.shape[0], -1)
+            out["task_goals"] = g.astype(checks.float_dtype([g.dtype]), copy=False)
+        if k.frame is not None:
+            out["frames"] = gather(k.frame, self.frame_start[rid], T + 1)
+        return out
+
+    def _flags(self, values, offsets, ids) -> np.ndarray:
+        if values.dtype.kind == "b":
+            return values
+        bad = np.flatnonzero((values != 0) & (values != 1))
+        if bad.size:
+            pos = int(np.searchsorted(offsets[:-1], bad[0], side="right") - 1)
+            raise LogError(f"expected a bool or 0/1 flag, got {values[bad[0]]!r}", file=self.path,
+                           key=self.layout.keys.success, episode=int(ids[pos]),
+                           step=int(bad[0] - offsets[pos]))
+        return values != 0

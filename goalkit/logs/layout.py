@@ -1,0 +1,269 @@
+"""The layout file: which of the user's keys plays which role, and how episodes are stored.
+
+See ``docs/layout.md`` for the user documentation and ``docs/internals.md`` for the schema.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from dataclasses import dataclass
+from typing import Mapping
+
+from goalkit.config import check_keys, load_toml
+from goalkit.errors import LayoutError
+
+#: The storage shapes a layout can describe.
+SHAPES = ("grouped", "flat", "per-file")
+#: Top-level keys of a layout file.
+TOP_KEYS = ("version", "shape", "episode_groups", "file_pattern", "keys", "fields", "boundaries")
+#: Roles in the ``[keys]`` table.
+ROLES = ("observation", "next_observation", "action", "reward", "success", "task", "frame",
+         "task_goal")
+#: Boundary kinds in the ``[boundaries]`` table (flat shape only).
+BOUNDARY_KINDS = ("episode_id", "done", "offsets")
+#: The layout-file version this code reads and writes.
+VERSION = 1
+
+
+@dataclass(frozen=True)
+class Keys:
+    """Role -> key name (a dataset path inside an episode group, an array name in a file).
+
+    Every role is optional except ``action``; ``observation`` may be omitted when the layout
+    has ``[fields]``.
+    """
+
+    observation: str | None = None
+    next_observation: str | None = None
+    action: str | None = None
+    reward: str | None = None
+    success: str | None = None
+    task: str | None = None
+    frame: str | None = None
+    task_goal: str | None = None
+
+    def items(self) -> list[tuple[str, str]]:
+        """Return the ``(role, key)`` pairs that are set, in schema order."""
+        return [(r, getattr(self, r)) for r in ROLES if getattr(self, r) is not None]
+
+
+@dataclass(frozen=True)
+class Boundaries:
+    """How a flat log marks its episodes: exactly one of the three attributes is set."""
+
+    episode_id: str | None = None
+    done: str | None = None
+    offsets: str | None = None
+
+    @property
+    def kind(self) -> str:
+        """The boundary kind that is set (``"episode_id"``, ``"done"`` or ``"offsets"``)."""
+        return next(k for k in BOUNDARY_KINDS if getattr(self, k) is not None)
+
+    @property
+    def key(self) -> str:
+        """The key of the boundary array."""
+        return getattr(self, self.kind)
+
+
+@dataclass(frozen=True)
+class Layout:
+    """A parsed, validated layout file.
+
+    Parameters
+    ----------
+    shape : {"grouped", "flat", "per-file"}
+        How episodes are stored.
+    keys : Keys
+        Role -> key names.
+    fields : tuple of (str, str)
+        Named observation fields ``(name, key)`` in concatenation order (may be empty).
+    episode_groups : str, optional
+        Grouped only: pattern of episode group paths, one ``*``-component per nesting level.
+    file_pattern : str, optional
+        Per-file only: glob of episode files inside the directory.
+    boundaries : Boundaries, optional
+        Flat only: how episodes are delimited.
+    version : int
+        Layout-file version.
+
+    Examples
+    --------
+    >>> lay = parse_layout({"shape": "grouped", "episode_groups": "runs/*",
+    ...                     "keys": {"observation": "obs", "action": "act"}}, "layout.toml")
+    >>> lay.keys.action, lay.episode_groups
+    ('act', 'runs/*')
+    """
+
+    shape: str
+    keys: Keys
+    fields: tuple[tuple[str, str], ...] = ()
+    episode_groups: str | None = None
+    file_pattern: str | None = None
+    boundaries: Boundaries | None = None
+    version: int = VERSION
+
+    def observation_keys(self) -> list[str]:
+        """Keys whose arrays, concatenated in order, make the observation vector."""
+        if self.fields:
+            return [k for _, k in self.fields]
+        return [self.keys.observation]
+
+
+def _string(value, *, file, key, what="a non-empty string"):
+    if not isinstance(value, str) or not value:
+        raise LayoutError(f"expected {what}, got {value!r}", file=file, key=key)
+    return value
+
+
+def _table(doc, name, file) -> Mapping:
+    value = doc.get(name, {})
+    if not isinstance(value, dict):
+        raise LayoutError(f"expected a table [{name}], got {value!r}", file=file, key=name)
+    return value
+
+
+def parse_layout(doc: Mapping, file="<layout>") -> Layout:
+    """Check a layout document (a parsed TOML table) and return it as a :class:`Layout`.
+
+    Parameters
+    ----------
+    doc : mapping
+        The parsed TOML document.
+    file : str or Path
+        Where it came from, for messages.
+
+    Returns
+    -------
+    Layout
+
+    Raises
+    ------
+    LayoutError
+        On unknown or misspelt keys (listing the valid ones and the closest), a wrong shape,
+        missing required keys, or keys that do not belong to the chosen shape.
+    """
+    file = str(file)
+    if not isinstance(doc, Mapping):
+        raise LayoutError(f"expected a TOML table, got {type(doc).__name__}", file=file)
+    check_keys(doc, TOP_KEYS, file=file, section="the layout's top level", error=LayoutError)
+    version = doc.get("version", VERSION)
+    if isinstance(version, bool) or not isinstance(version, int) or version != VERSION:
+        raise LayoutError(f"expected version = {VERSION}, got {version!r}", file=file, key="version")
+    if "shape" not in doc:
+        raise LayoutError(f"missing 'shape'; expected one of {', '.join(SHAPES)}", file=file, key="shape")
+    shape = doc["shape"]
+    if shape not in SHAPES:
+        hint = f"expected one of {', '.join(SHAPES)}, got {shape!r}"
+        raise LayoutError(hint, file=file, key="shape")
+
+    keys_t = _table(doc, "keys", file)
+    check_keys(keys_t, ROLES, file=file, section="[keys]", error=LayoutError)
+    keys = Keys(**{r: _string(v, file=file, key=f"keys.{r}") for r, v in keys_t.items()})
+
+    fields_t = _table(doc, "fields", file)
+    field_pairs = tuple((str(n), _string(v, file=file, key=f"fields.{n}")) for n, v in fields_t.items())
+
+    if keys.action is None:
+        raise LayoutError("missing the action key; expected [keys] action = \"...\"", file=file,
+                          key="keys.action")
+    if keys.observation is None and not field_pairs:
+        raise LayoutError("no observations: expected [keys] observation = \"...\" or a [fields] table",
+                          file=file, key="keys.observation")
+    if keys.observation is not None and field_pairs:
+        raise LayoutError("expected either [keys] observation or a [fields] table, not both",
+                          file=file, key="fields")
+    if keys.next_observation is not None and keys.observation is None:
+        raise LayoutError("next_observation needs [keys] observation (not supported with [fields])",
+                          file=file, key="keys.next_observation")
+
+    def only(name, allowed_shape):
+        if name in doc and shape != allowed_shape:
+            raise LayoutError(f"'{name}' is only for shape = \"{allowed_shape}\", this layout has "
+                              f"shape = \"{shape}\"", file=file, key=name)
+
+    only("episode_groups", "grouped")
+    only("file_pattern", "per-file")
+    only("boundaries", "flat")
+
+    episode_groups = file_pattern = boundaries = None
+    if shape == "grouped":
+        if "episode_groups" not in doc:
+            raise LayoutError("missing 'episode_groups'; expected a pattern such as \"runs/*\"",
+                              file=file, key="episode_groups")
+        episode_groups = _string(doc["episode_groups"], file=file, key="episode_groups",
+                                 what="a group pattern such as \"runs/*\"")
+        parts = episode_groups.strip("/").split("/")
+        if any(p == "" for p in parts) or "*" not in episode_groups:
+            raise LayoutError(f"expected a group pattern with '*' components such as \"runs/*\", "
+                              f"got {episode_groups!r}", file=file, key="episode_groups")
+    elif shape == "per-file":
+        file_pattern = _string(doc.get("file_pattern", "*.npz"), file=file, key="file_pattern",
+                               what="a glob such as \"*.npz\"")
+        if "/" in file_pattern:
+            raise LayoutError(f"expected a file-name glob without '/', got {file_pattern!r}",
+                              file=file, key="file_pattern")
+    else:
+        b_t = _table(doc, "boundaries", file)
+        check_keys(b_t, BOUNDARY_KINDS, file=file, section="[boundaries]", error=LayoutError)
+        given = [k for k in BOUNDARY_KINDS if k in b_t]
+        if len(given) != 1:
+            raise LayoutError(f"expected exactly one of {', '.join(BOUNDARY_KINDS)} in [boundaries], "
+                              f"got {len(given)}" + (f" ({', '.join(given)})" if given else ""),
+                              file=file, key="boundaries")
+        boundaries = Boundaries(**{given[0]: _string(b_t[given[0]], file=file,
+                                                     key=f"boundaries.{given[0]}")})
+    return Layout(shape=shape, keys=keys, fields=field_pairs, episode_groups=episode_groups,
+                  file_pattern=file_pattern, boundaries=boundaries, version=version)
+
+
+def load_layout(path) -> Layout:
+    """Read and check a layout file.
+
+    Parameters
+    ----------
+    path : str or Path
+        The TOML file.
+
+    Returns
+    -------
+    Layout
+    """
+    return parse_layout(load_toml(path, LayoutError), path)
+
+
+_BARE = re.compile(r"^[A-Za-z0-9_-]+$")
+
+
+def _tstr(s: str) -> str:
+    return json.dumps(s, ensure_ascii=False)
+
+
+def _tkey(s: str) -> str:
+    return s if _BARE.match(s) else _tstr(s)
+
+
+def layout_to_toml(layout: Layout) -> str:
+    """Render a layout as TOML text that :func:`parse_layout` reads back to an equal Layout.
+
+    Examples
+    --------
+    >>> lay = parse_layout({"shape": "flat", "keys": {"observation": "obs", "action": "act"},
+    ...                     "boundaries": {"done": "done"}})
+    >>> parse_layout(__import__("tomllib").loads(layout_to_toml(lay))) == lay
+    True
+    """
+    lines = [f"version = {layout.version}", f"shape = {_tstr(layout.shape)}"]
+    if layout.episode_groups is not None:
+        lines.append(f"episode_groups = {_tstr(layout.episode_groups)}")
+    if layout.file_pattern is not None:
+        lines.append(f"file_pattern = {_tstr(layout.file_pattern)}")
+    lines += ["", "[keys]"]
+    lines += [f"{role} = {_tstr(key)}" for role, key in layout.keys.items()]
+    if layout.fields:
+        lines += ["", "[fields]"]
+        lines += [f"{_tkey(name)} = {_tstr(key)}" for name, key in layout.fields]
+    if layout.boundaries is not None:
+        lines += ["", "[boundaries]", f"{layout.boundaries.kind} = {_tstr(layout.boundaries.key)}"]
+    return "\n".join(lines) + "\n"

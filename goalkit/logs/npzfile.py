@@ -1,0 +1,170 @@
+"""Lazy access to the arrays of a ``.npz`` file: shapes from headers, rows read by slice.
+
+``np.load`` on a ``.npz`` reads a whole member on access. For a large flat log we need
+rows ``a:b`` of one member only, so this module parses each member's ``.npy`` header with
+numpy's own format functions and then reads just the requested bytes: by seeking in the file
+for stored (uncompressed) members, and by a kept-open decompressing stream for deflated ones
+(cheap for the forward, chunk-by-chunk reads a build does). Object arrays are refused, as with
+``np.load(..., allow_pickle=False)``.
+"""
+
+from __future__ import annotations
+
+import struct
+import zipfile
+from dataclasses import dataclass
+
+import numpy as np
+
+from goalkit.errors import LogError
+
+
+@dataclass(frozen=True)
+class Member:
+    """One array of a .npz file: its header and where its data starts."""
+
+    name: str
+    shape: tuple
+    dtype: np.dtype
+    fortran: bool
+    data_start: int        # byte offset of the data inside the (decompressed) member
+    stored: bool           # ZIP_STORED: data can be read by seeking in the file
+    file_offset: int       # stored only: absolute byte offset of the member's first byte
+
+
+def _local_header_size(fh, header_offset: int) -> int:
+    fh.seek(header_offset)
+    head = fh.read(30)
+    if len(head) != 30 or head[:4] != b"PK\x03\x04":
+        raise ValueError("bad local file header")
+    name_len, extra_len = struct.unpack("<HH", head[26:30])
+    return 30 + name_len + extra_len
+
+
+class NpzArrays:
+    """The arrays of one ``.npz`` file, read lazily.
+
+    Parameters
+    ----------
+    path : str
+        The file.
+
+    Raises
+    ------
+    LogError
+        When the file is missing, is not a zip archive, or a member is not a valid ``.npy``.
+    """
+
+    def __init__(self, path):
+        self.path = str(path)
+        self._streams = {}
+        try:
+            zf = zipfile.ZipFile(self.path)
+        except FileNotFoundError:
+            raise LogError("file not found", file=self.path) from None
+        except (zipfile.BadZipFile, OSError) as exc:
+            raise LogError(f"cannot open as .npz (expected a zip archive of .npy arrays): {exc}",
+                           file=self.path) from None
+        self.members = {}
+        with zf, open(self.path, "rb") as fh:
+            for info in zf.infolist():
+                if not info.filename.endswith(".npy"):
+                    continue
+                name = info.filename[:-4]
+                try:
+                    with zf.open(info) as f:
+                        version = np.lib.format.read_magic(f)
+                        if version == (1, 0):
+                            shape, fortran, dtype = np.lib.format.read_array_header_1_0(f)
+                        else:
+                            shape, fortran, dtype = np.lib.format.read_array_header_2_0(f)
+                        data_start = f.tell()
+                    stored = info.compress_type == zipfile.ZIP_STORED
+                    offset = info.header_offset + _local_header_size(fh, info.header_offset) if stored else 0
+                except (ValueError, OSError, zipfile.BadZipFile, EOFError) as exc:
+                    raise LogError(f"not a valid .npy array inside the .npz ({exc})",
+                                   file=self.path, key=name) from None
+                self.members[name] = Member(name, tuple(shape), np.dtype(dtype), bool(fortran),
+                                            data_start, stored, offset)
+
+    def __getstate__(self):
+        state = dict(self.__dict__)
+        state["_streams"] = {}
+        return state
+
+    def close(self):
+        """Close kept-open decompressing streams."""
+        for zf, f in self._streams.values():
+            f.close()
+            zf.close()
+        self._streams = {}
+
+    def __contains__(self, name):
+        return name in self.members
+
+    def keys(self) -> list[str]:
+        """Names of the arrays."""
+        return list(self.members)
+
+    def shape(self, name) -> tuple:
+        """Shape of array ``name``."""
+        return self.members[name].shape
+
+    def dtype(self, name) -> np.dtype:
+        """Dtype of array ``name``."""
+        return self.members[name].dtype
+
+    def read(self, name, start=None, stop=None) -> np.ndarray:
+        """Return rows ``start:stop`` (default all) of array ``name`` along the first axis."""
+        m = self.members[name]
+        if m.dtype.hasobject:
+            raise LogError("expected a numeric array, got an object array (not loaded: "
+                           "pickled data is refused)", file=self.path, key=name)
+        if len(m.shape) == 0:
+            return self._read_bytes(m, 0, m.dtype.itemsize).reshape(())
+        n = m.shape[0]
+        start = 0 if start is None else max(0, min(int(start), n))
+        stop = n if stop is None else max(start, min(int(stop), n))
+        if m.fortran and len(m.shape) > 1:
+            return self._read_fortran(m)[start:stop]
+        row_items = int(np.prod(m.shape[1:], dtype=np.int64))
+        row_bytes = row_items * m.dtype.itemsize
+        flat = self._read_bytes(m, start * row_bytes, (stop - start) * row_bytes)
+        return flat.reshape((stop - start,) + m.shape[1:])
+
+    def _read_fortran(self, m: Member) -> np.ndarray:
+        with zipfile.ZipFile(self.path) as zf, zf.open(m.name + ".npy") as f:
+            return np.lib.format.read_array(f, allow_pickle=False)
+
+    def _read_bytes(self, m: Member, offset: int, nbytes: int) -> np.ndarray:
+        if nbytes == 0:
+            return np.empty(0, dtype=m.dtype)
+        if m.stored:
+            with open(self.path, "rb") as fh:
+                fh.seek(m.file_offset + m.data_start + offset)
+                buf = fh.read(nbytes)
+        else:
+            buf = self._read_deflated(m, offset, nbytes)
+        if len(buf) != nbytes:
+            raise LogError(f"file is truncated: expected {nbytes} bytes of data at byte {offset}, "
+                           f"got {len(buf)}", file=self.path, key=m.name)
+        return np.frombuffer(buf, dtype=m.dtype).copy()
+
+    def _read_deflated(self, m: Member, offset: int, nbytes: int) -> bytes:
+        pos = m.data_start + offset
+        entry = self._streams.get(m.name)
+        if entry is not None and entry[1].tell() > pos:   # going back: restart the stream
+            entry[1].close()
+            entry[0].close()
+            entry = None
+        try:
+            if entry is None:
+                zf = zipfile.ZipFile(self.path)
+                entry = (zf, zf.open(m.name + ".npy"))
+                self._streams[m.name] = entry
+            f = entry[1]
+            f.seek(pos)
+            return f.read(nbytes)
+        except (zipfile.BadZipFile, OSError, EOFError) as exc:
+            self._streams.pop(m.name, None)
+            raise LogError(f"cannot read compressed data ({exc})", file=self.path, key=m.name) from None

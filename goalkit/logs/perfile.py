@@ -1,0 +1,62 @@
+"""Reader for a directory of per-episode ``.npz`` files (layout shape ``"per-file"``).
+
+Episode files are those matching ``file_pattern`` directly inside the directory, in natural
+order of their names (``ep2.npz`` before ``ep10.npz``). Opening reads only the array headers;
+:meth:`read` loads the requested episodes' files (without unpickling anything).
+"""
+
+from __future__ import annotations
+
+import fnmatch
+import os
+
+from goalkit.errors import LogError
+from goalkit.logs.access import NpzAccess
+from goalkit.logs.episodic import EpisodicSource, join_parts, plan_episode, read_episode
+from goalkit.logs.naming import natural_sorted
+from goalkit.logs.npzfile import NpzArrays
+
+
+def episode_files(directory, pattern: str) -> list[str]:
+    """Files in ``directory`` matching ``pattern``, in natural order (full paths)."""
+    directory = str(directory)
+    if not os.path.exists(directory):
+        raise LogError("directory not found", file=directory)
+    if not os.path.isdir(directory):
+        raise LogError("expected a directory of per-episode files, got a file", file=directory)
+    names = [n for n in os.listdir(directory)
+             if fnmatch.fnmatchcase(n, pattern) and os.path.isfile(os.path.join(directory, n))]
+    if not names:
+        raise LogError(f"no files match file_pattern = \"{pattern}\"", file=directory, key="file_pattern")
+    return [os.path.join(directory, n) for n in natural_sorted(names)]
+
+
+class PerFileSource(EpisodicSource):
+    """A directory of per-episode .npz files. Use :func:`goalkit.logs.open_logs` to make one."""
+
+    def __init__(self, path, layout, skip_bad_episodes=False):
+        super().__init__(path, layout, skip_bad_episodes)
+        self.files = episode_files(self.path, layout.file_pattern)
+        metas, problems = [], []
+        for e, f in enumerate(self.files):
+            arrays = NpzArrays(f)              # a file that is not an .npz: file-level error
+            try:
+                metas.append(plan_episode(NpzAccess(arrays), layout, e))
+            except LogError as exc:
+                if exc.episode is None:
+                    raise
+                metas.append(None)
+                problems.append((e, exc))
+        self._adopt(metas, problems)
+
+    def _file_of(self, episode):
+        return self.files[episode]
+
+    def _read_episodes(self, ids):
+        parts = []
+        for e in ids.tolist():
+            arrays = NpzArrays(self.files[e])
+            parts.append(read_episode(NpzAccess(arrays), self.layout, self.metas[e], e,
+                                      self.obs_dtype, self.action_dtype))
+            arrays.close()
+        return join_parts(parts, [self.metas[e].task for e in ids.tolist()], self.layout)
