@@ -1,0 +1,172 @@
+"""PNG plots of threshold tuning, drawn with matplotlib's Agg canvas (no pyplot, no display).
+
+File names are fixed (see :data:`FILE_NAMES`, with an optional prefix), so a rerun
+replaces the same files. Each file is written to a temporary name in the same directory and
+renamed into place, so an interrupted run never leaves a half-written PNG. PNG metadata
+carries no software version, so the same inputs give the same bytes with one matplotlib.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import numpy as np
+
+#: plot kind -> file name.
+FILE_NAMES = {
+    "roc": "threshold-roc.png",
+    "pr": "threshold-precision-recall.png",
+    "f1": "threshold-f1.png",
+    "step": "goal-step-displacement.png",
+    "horizon": "goal-horizon-displacement.png",
+    "other": "goal-other-episode-distance.png",
+    "rewarded": "goal-rewarded-fraction.png",
+}
+
+
+def _figure(width=5.0, height=4.0):
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(width, height), dpi=100)
+    FigureCanvasAgg(fig)
+    return fig, fig.add_subplot(1, 1, 1)
+
+
+def save_png(fig, path) -> Path:
+    """Write ``fig`` to ``path`` through a temporary file in the same directory."""
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        fig.savefig(tmp, format="png", metadata={"Software": None})
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+    return path
+
+
+def _target(out_dir, kind, prefix) -> Path:
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    return out / f"{prefix}{FILE_NAMES[kind]}"
+
+
+def plot_labelled(sweep, choice, out_dir, *, prefix: str = "", current=None) -> dict[str, Path]:
+    """Draw ROC, precision-recall and F1-versus-threshold curves with the choice marked.
+
+    Parameters
+    ----------
+    sweep : ThresholdSweep
+    choice : ThresholdChoice
+    out_dir : str or Path
+        Directory (created if missing).
+    prefix : str
+        Prepended to every file name.
+    current : dict, optional
+        :meth:`ThresholdSweep.at` of the recipe's current threshold, marked too.
+
+    Returns
+    -------
+    dict of str to Path
+        Plot kind -> file written.
+    """
+    written = {}
+    k = choice.index
+    fig, ax = _figure()
+    fpr, tpr = sweep.roc_curve()
+    ax.plot(fpr, tpr, color="tab:blue", lw=1.5, label=f"ROC (AUC {sweep.roc_auc():.3f})")
+    ax.plot([0, 1], [0, 1], color="0.7", lw=0.8, ls="--")
+    ax.plot([choice.fpr], [choice.recall], "o", color="tab:red",
+            label=f"{choice.chooser}: {choice.threshold:.4g}")
+    if current is not None:
+        ax.plot([current["fpr"]], [current["recall"]], "s", color="tab:green",
+                label=f"current: {current['threshold']:.4g}")
+    ax.set(xlabel="false positive rate", ylabel="true positive rate", xlim=(0, 1), ylim=(0, 1.02),
+           title="Goal-match ROC")
+    ax.legend(loc="lower right", fontsize=8)
+    written["roc"] = save_png(fig, _target(out_dir, "roc", prefix))
+
+    fig, ax = _figure()
+    ax.step(np.r_[0.0, sweep.recall], np.r_[sweep.precision[0], sweep.precision], where="pre",
+            color="tab:blue", lw=1.5, label=f"AP {sweep.average_precision():.3f}")
+    ax.plot([choice.recall], [choice.precision], "o", color="tab:red",
+            label=f"{choice.chooser}: {choice.threshold:.4g}")
+    if current is not None and np.isfinite(current["precision"]):
+        ax.plot([current["recall"]], [current["precision"]], "s", color="tab:green",
+                label=f"current: {current['threshold']:.4g}")
+    ax.set(xlabel="recall", ylabel="precision", xlim=(0, 1), ylim=(0, 1.02), title="Precision-recall")
+    ax.legend(loc="lower left", fontsize=8)
+    written["pr"] = save_png(fig, _target(out_dir, "pr", prefix))
+
+    fig, ax = _figure()
+    ax.plot(sweep.thresholds, sweep.f1, color="tab:blue", lw=1.5, label="F1")
+    ax.plot(sweep.thresholds, sweep.precision, color="tab:orange", lw=1.0, label="precision")
+    ax.plot(sweep.thresholds, sweep.recall, color="tab:purple", lw=1.0, label="recall")
+    ax.axvline(choice.threshold, color="tab:red", lw=1.0, ls="--")
+    ax.plot([choice.threshold], [sweep.f1[k]], "o", color="tab:red",
+            label=f"{choice.chooser}: {choice.threshold:.4g}")
+    if current is not None:
+        ax.axvline(current["threshold"], color="tab:green", lw=1.0, ls=":", label="current")
+    ax.set(xlabel="threshold (distance)", ylabel="score", ylim=(0, 1.02), title="Scores by threshold")
+    ax.legend(loc="best", fontsize=8)
+    written["f1"] = save_png(fig, _target(out_dir, "f1", prefix))
+    return written
+
+
+def plot_diagnostics(diagnostics, out_dir, *, prefix: str = "", rewarded=None,
+                     strategy_names=None) -> dict[str, Path]:
+    """Draw the label-free diagnostics (and the rewarded fraction, when given).
+
+    Parameters
+    ----------
+    diagnostics : Diagnostics
+    out_dir : str or Path
+    prefix : str
+    rewarded : RewardedFraction, optional
+    strategy_names : mapping of int to str, optional
+        Legend names of strategy codes.
+    """
+    written = {}
+    thr = diagnostics.threshold
+    fig, ax = _figure()
+    step = diagnostics.step[np.isfinite(diagnostics.step)]
+    if step.size:
+        ax.hist(step, bins=50, color="tab:blue", alpha=0.8)
+    ax.axvline(thr, color="tab:red", ls="--", label=f"threshold {thr:.4g}")
+    ax.set(xlabel="one-step displacement (distance)", ylabel="transitions", title="Goal change per step")
+    ax.legend(fontsize=8)
+    written["step"] = save_png(fig, _target(out_dir, "step", prefix))
+
+    fig, ax = _figure()
+    hp = diagnostics.horizon
+    for j, q in enumerate(hp.quantiles.tolist()):
+        ax.plot(hp.horizons, hp.values[:, j], marker="o", ms=3, lw=1.0, label=f"q {q:g}")
+    ax.axhline(thr, color="tab:red", ls="--", label="threshold")
+    ax.set_xscale("log", base=2)
+    ax.set(xlabel="horizon h (steps)", ylabel="distance after h steps", title="Goal change by horizon")
+    ax.legend(fontsize=8)
+    written["horizon"] = save_png(fig, _target(out_dir, "horizon", prefix))
+
+    fig, ax = _figure()
+    oth = diagnostics.other.distance[np.isfinite(diagnostics.other.distance)]
+    if oth.size:
+        ax.hist(oth, bins=50, color="tab:blue", alpha=0.8)
+    ax.axvline(thr, color="tab:red", ls="--", label=f"threshold {thr:.4g}")
+    ax.set(xlabel="distance to nearest state of another episode", ylabel="sampled states",
+           title="Separation between episodes")
+    ax.legend(fontsize=8)
+    written["other"] = save_png(fig, _target(out_dir, "other", prefix))
+
+    if rewarded is not None:
+        fig, ax = _figure()
+        names = strategy_names or {}
+        for i, code in enumerate(rewarded.strategies.tolist()):
+            ax.plot(rewarded.thresholds, rewarded.fraction[i], lw=1.2, label=names.get(code, str(code)))
+        ax.axvline(thr, color="tab:red", ls="--", label="threshold")
+        ax.set(xlabel="threshold", ylabel="fraction rewarded", ylim=(0, 1.02),
+               title="Rewarded goal rows by strategy")
+        ax.legend(fontsize=8)
+        written["rewarded"] = save_png(fig, _target(out_dir, "rewarded", prefix))
+    return written
