@@ -115,7 +115,23 @@ STRATEGIES: dict[str, StrategySpec] = {}
 
 
 def register(name: str, func, options=(), external_dim=None) -> StrategySpec:
-    """Add a strategy to :data:`STRATEGIES` (its code is ``CODES[name]``) and return its entry."""
+    """Add a strategy to :data:`STRATEGIES` and return its entry.
+
+    Parameters
+    ----------
+    name : str
+        Strategy name as written in ``[relabel.weights]``; must be a key of :data:`CODES`.
+    func : callable
+        ``func(chunk, transitions, slots, seed, context=None, **options) -> StrategyGoals``.
+    options : sequence of str
+        :class:`~goalkit.relabel.Mixture` attributes passed to ``func`` as keywords.
+    external_dim : callable, optional
+        ``external_dim(chunk, context) -> int`` if ``func`` returns external goal vectors.
+
+    Returns
+    -------
+    StrategySpec
+    """
     if name not in CODES:
         raise ValueError(f"no strategy code for {name!r}; add it to CODES (never renumber)")
     spec = StrategySpec(name, CODES[name], func, tuple(options), external_dim)
@@ -125,7 +141,19 @@ def register(name: str, func, options=(), external_dim=None) -> StrategySpec:
 
 # ---- helpers ---------------------------------------------------------------------------
 def locate(chunk: EpisodeSet, transitions) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Return (episode position, episode id, step t, length T) of each transition index."""
+    """Locate transition indices of ``chunk``.
+
+    Parameters
+    ----------
+    chunk : EpisodeSet
+    transitions : array_like of int
+        Indices ``0 .. chunk.num_transitions - 1``.
+
+    Returns
+    -------
+    (position, episode_id, t, T) : tuple of int64 ndarrays
+        Episode position in the chunk, its id, the step within it and its length.
+    """
     transitions = np.asarray(transitions, dtype=np.int64)
     n = chunk.num_transitions
     if transitions.size and (transitions.min() < 0 or transitions.max() >= n):
