@@ -61,6 +61,8 @@ def save_embedding(path, embedding: Embedding, goal_map: dict | None = None) -> 
         The path written.
     """
     path = Path(path)
+    if not path.parent.is_dir():
+        raise EmbeddingError("expected an existing directory for the embedding file", file=path)
     arrays = {"format": np.asarray(FORMAT), "version": np.asarray(VERSION, dtype=np.int64)}
     arrays.update(_flatten(embedding, ""))
     arrays["goal_map"] = np.asarray(json.dumps(goal_map or {"input": embedding.input_kind, "indices": None,
