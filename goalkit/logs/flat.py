@@ -73,6 +73,9 @@ class FlatSource(BaseSource):
             problems = self._plan(acc)
         self._settle(self.steps_all, problems)
 
+    def _first_access(self):
+        return self._access()
+
     @contextlib.contextmanager
     def _access(self):
         if self._npz is not None:
@@ -286,10 +289,10 @@ class FlatSource(BaseSource):
             obs = gather(k.observation, o_start, T).reshape(-1, self.obs_width)
             last = gather(k.next_observation, o_start + T - 1, np.ones_like(T)).reshape(-1, self.obs_width)
             full = np.empty((obs.shape[0] + last.shape[0], self.obs_width), dtype=self.obs_dtype)
-            is_last = np.zeros(full.shape[0], dtype=bool)
-            is_last[_cumsum0(T + 1)[1:] - 1] = True
-            full[~is_last] = obs
-            full[is_last] = last
+            final_row = np.zeros(full.shape[0], dtype=bool)
+            final_row[_cumsum0(T + 1)[1:] - 1] = True
+            full[~final_row] = obs
+            full[final_row] = last
             out["observations"] = full
         else:
             parts = [gather(key, o_start, T + 1).reshape(int((T + 1).sum()), -1).astype(self.obs_dtype, copy=False)

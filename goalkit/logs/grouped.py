@@ -8,6 +8,7 @@ Only each episode's own datasets are read, one episode group at a time.
 
 from __future__ import annotations
 
+import contextlib
 import fnmatch
 
 import numpy as np
@@ -59,6 +60,11 @@ class GroupedSource(EpisodicSource):
 
     def _key_of(self, episode, key):
         return f"{self.groups[episode]}/{key}" if key else self.groups[episode]
+
+    @contextlib.contextmanager
+    def _first_access(self):
+        with open_h5(self.path) as h5:
+            yield H5Access(h5[self.groups[int(self.episode_ids[0])]], self.path)
 
     def _read_episodes(self, ids):
         parts = []

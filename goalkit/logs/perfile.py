@@ -7,6 +7,7 @@ order of their names (``ep2.npz`` before ``ep10.npz``). Opening reads only the a
 
 from __future__ import annotations
 
+import contextlib
 import fnmatch
 import os
 
@@ -51,6 +52,10 @@ class PerFileSource(EpisodicSource):
 
     def _file_of(self, episode):
         return self.files[episode]
+
+    @contextlib.contextmanager
+    def _first_access(self):
+        yield NpzAccess(NpzArrays(self.files[int(self.episode_ids[0])]))
 
     def _read_episodes(self, ids):
         parts = []

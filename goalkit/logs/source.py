@@ -208,6 +208,25 @@ class BaseSource:
                 raise LogError(f"expected finite values, got NaN or inf (first bad {what})",
                                file=self._file_of(e), key=self._key_of(e, key), episode=e, step=step)
 
+    def key_info(self) -> list[dict]:
+        """Role, key, stored dtype and shape of every mapped key (first kept episode for logs
+        with one container per episode; ``"attribute"`` marks a task id stored as one)."""
+        lay = self.layout
+        pairs = [(r, key) for r, key in lay.keys.items()] + [(f"field {n}", key) for n, key in lay.fields]
+        if lay.boundaries is not None:
+            pairs.append((f"boundary ({lay.boundaries.kind})", lay.boundaries.key))
+        out = []
+        with self._first_access() as acc:
+            for role, key in pairs:
+                if acc.has(key):
+                    out.append({"role": role, "key": acc.where(key), "dtype": str(acc.dtype(key)),
+                                "shape": list(acc.shape(key))})
+                else:
+                    value = acc.attr(key)
+                    dtype = "" if value is None else str(getattr(value, "dtype", type(value).__name__))
+                    out.append({"role": role, "key": acc.where(key), "dtype": dtype, "shape": "attribute"})
+        return out
+
     def __repr__(self):
         return (f"{type(self).__name__}({self.path!r}, episodes={self.num_episodes}, "
                 f"transitions={int(self.lengths.sum())})")

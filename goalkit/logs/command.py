@@ -1,0 +1,137 @@
+"""The ``goalkit scan`` command: check task logs, summarise them, propose a layout."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import click
+
+from goalkit.cli_support import echo_json, progress, user_errors
+from goalkit.errors import GoalkitError, LogError
+
+
+def write_text_atomic(path, text: str) -> None:
+    """Write ``text`` to ``path`` via a temporary file in the same directory, then rename."""
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        tmp.write_text(text, encoding="utf-8")
+        os.replace(tmp, path)
+    except OSError as exc:
+        tmp.unlink(missing_ok=True)
+        raise GoalkitError(f"cannot write ({exc.strerror or exc})", file=path) from None
+
+
+def _fmt(x) -> str:
+    return f"{x:.6g}" if isinstance(x, float) else str(x)
+
+
+def render_report(report: dict) -> list[str]:
+    """The human-readable form of a :func:`~goalkit.logs.scan.scan_logs` report."""
+    conv = {"T+1": "T+1 observations per episode", "pairs": "observation / next-observation pairs",
+            "T": "T observations per episode (last action dropped)"}[report["convention"]]
+    L = report["lengths"]
+    kept = report["episodes"]
+    total = report["episodes_in_log"]
+    out = [f"log:          {report['path']}",
+           f"stored as:    {report['shape']}, {conv}",
+           f"episodes:     {kept}" + (f" usable of {total}" if total != kept else ""),
+           f"transitions:  {report['steps']}",
+           f"length:       shortest {L['min']}, median {_fmt(L['median'])}, mean {L['mean']:.2f}, "
+           f"longest {L['max']}",
+           "", "keys read:"]
+    rows = [(k["role"], k["key"], k["dtype"], "attribute" if k["shape"] == "attribute"
+             else str(tuple(k["shape"]))) for k in report["keys"]]
+    out += _table(("role", "key", "dtype", "stored shape"), rows)
+    out += ["", "observation range:"]
+    out += _table(("dim", "field", "lowest", "highest"),
+                  [(d["dim"], d["field"] or "-", _fmt(d["min"]), _fmt(d["max"]))
+                   for d in report["observation_range"]])
+    if report["success_by_task"] is not None:
+        out += ["", "success by task (an episode succeeds when its flag is ever true):"]
+        out += _table(("task", "episodes", "succeeded", "share"),
+                      [("all" if t["task"] is None else t["task"], t["episodes"], t["succeeded"],
+                        f"{t['rate']:.1%}") for t in report["success_by_task"]])
+    if report["rewards"] is not None:
+        r = report["rewards"]
+        out += ["", f"rewards:      lowest {_fmt(r['min'])}, highest {_fmt(r['max'])}, "
+                    f"mean {r['mean']:.4g}"]
+    for title, items in (("notes", report["notes"]), ("findings", report["problems"])):
+        if items:
+            out += ["", f"{title}:"] + [f"  - {x}" for x in items]
+    if report["skipped"]:
+        out += ["", f"skipped episodes ({len(report['skipped'])}):"]
+        out += [f"  - episode {s['episode']}: {s['reason']}" for s in report["skipped"][:20]]
+        if len(report["skipped"]) > 20:
+            out.append(f"  ... and {len(report['skipped']) - 20} more (see --json)")
+    return out
+
+
+def _table(header, rows) -> list[str]:
+    cells = [tuple(str(c) for c in header)] + [tuple(str(c) for c in r) for r in rows]
+    widths = [max(len(r[i]) for r in cells) for i in range(len(header))]
+    return ["  " + "  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in cells]
+
+
+@click.command("scan", context_settings={"show_default": True})
+@click.argument("logs", type=click.Path(), metavar="LOGS")
+@click.option("--layout", "layout_file", type=click.Path(dir_okay=False), default=None,
+              help="Layout file (TOML) mapping the log's keys to roles. Without it a layout is "
+                   "proposed from the log and printed.")
+@click.option("--json", "as_json", is_flag=True, help="Print the report as one JSON object.")
+@click.option("--write-layout", "write_layout", type=click.Path(dir_okay=False), default=None,
+              help="Save the layout used (given or proposed) to this file.")
+@click.option("--skip-bad-episodes", is_flag=True,
+              help="Skip episodes with problems (listed in the report) instead of stopping.")
+@click.option("--chunk", "chunk", type=click.IntRange(min=1), default=200_000,
+              help="Transitions read per chunk.")
+@click.option("--quiet", is_flag=True, help="No progress bar, and no report unless --json.")
+@user_errors
+def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, quiet):
+    """Check the task logs LOGS and summarise them; propose a layout when none is given.
+
+    LOGS is an HDF5 file, a .npz file or a directory of per-episode .npz files.
+    """
+    from goalkit.logs.layout import layout_to_toml, load_layout
+    from goalkit.logs.opener import open_logs
+    from goalkit.logs.scan import scan_logs
+
+    if layout_file is not None:
+        layout = load_layout(layout_file)
+        proposed = False
+    else:
+        from goalkit.logs.detect import propose_layout
+
+        layout = propose_layout(logs)
+        proposed = True
+    try:
+        source = open_logs(logs, layout, skip_bad_episodes=skip_bad_episodes)
+        with progress(int(source.lengths.sum()), "scan", quiet=quiet or as_json) as bar:
+            report = scan_logs(source, max_transitions=chunk, advance=bar.update)
+    except LogError as exc:
+        if exc.episode is not None and not skip_bad_episodes:
+            exc.message += " (--skip-bad-episodes skips such episodes)"
+        raise
+    text = layout_to_toml(layout)
+    if proposed:
+        report["notes"].insert(0, "no layout given: read with the proposed layout below")
+    report["layout"] = text
+    report["layout_proposed"] = proposed
+    if write_layout is not None:
+        write_text_atomic(write_layout, text)
+        report["layout_written"] = str(write_layout)
+    if as_json:
+        echo_json(report)
+        return
+    if quiet:
+        return
+    for line in render_report(report):
+        click.echo(line)
+    if proposed:
+        click.echo("")
+        click.echo("proposed layout:" if write_layout is None else f"proposed layout (saved to {write_layout}):")
+        for line in text.splitlines():
+            click.echo(f"  {line}".rstrip())
+    elif write_layout is not None:
+        click.echo(f"\nlayout saved to {write_layout}")
