@@ -95,6 +95,11 @@ def concat_pairs(parts: Sequence[LabelledPairs]) -> LabelledPairs:
 
 
 # ---- checking shared by both file kinds --------------------------------------------------
+def _show(x) -> str:
+    """A value as the user wrote it: 3 rather than np.int64(3), 2.0 for a float."""
+    return repr(x.item() if isinstance(x, np.generic) else x)
+
+
 def _check_pairs(achieved, goal, reached, episode, *, file, where) -> LabelledPairs:
     """Check arrays; ``where(i)`` turns a row index into the message prefix."""
     a = achieved
@@ -114,7 +119,7 @@ def _check_pairs(achieved, goal, reached, episode, *, file, where) -> LabelledPa
     r = reached.astype(np.float64)
     bad = np.flatnonzero((r != 0) & (r != 1))
     if bad.size:
-        raise LabelError(f"{where(bad[0])}: expected 0 or 1, got {reached[bad[0]]!r}", file=file,
+        raise LabelError(f"{where(bad[0])}: expected 0 or 1, got {_show(reached[bad[0]])}", file=file,
                          key="reached")
     if episode is None:
         groups, grouped = np.arange(m, dtype=np.int64), False
@@ -125,7 +130,7 @@ def _check_pairs(achieved, goal, reached, episode, *, file, where) -> LabelledPa
         e = episode.astype(np.float64)
         bad = np.flatnonzero(~np.isfinite(e) | (e != np.round(e)))
         if bad.size:
-            raise LabelError(f"{where(bad[0])}: expected an integer episode id, got {episode[bad[0]]!r}",
+            raise LabelError(f"{where(bad[0])}: expected an integer episode id, got {_show(episode[bad[0]])}",
                              file=file, key="episode")
         groups, grouped = e.astype(np.int64), True
     return LabelledPairs(np.asarray(a, dtype=np.float64), np.asarray(goal, dtype=np.float64),
@@ -216,6 +221,8 @@ def _load_csv(path: Path) -> LabelledPairs:
         raise  # pragma: no cover - _raise_bad_cell always raises
     if table.shape[0] == 0:
         raise LabelError("no rows after the header line", file=path)
+    if table.shape[1] != len(header):
+        _raise_bad_cell(path, header)
     g = len(cols["achieved"])
     pick = lambda kind: table[:, [cols[kind][i] for i in range(g)]]  # noqa: E731
     episode = table[:, special["episode"]] if "episode" in special else None

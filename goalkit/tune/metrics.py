@@ -68,12 +68,12 @@ def check_labelled(distances, labels, groups=None, *, source=None):
         raise TuningError("expected at least one labelled pair, got none", file=source)
     bad = np.flatnonzero(~np.isfinite(d) | (d < 0))
     if bad.size:
-        raise TuningError(f"row {bad[0]}: expected finite distances >= 0, got {d[bad[0]]!r}",
+        raise TuningError(f"row {bad[0]}: expected finite distances >= 0, got {d[bad[0]].item()!r}",
                           file=source, key="distances")
     y = y_raw.astype(np.int64)
     bad = np.flatnonzero((y != y_raw) | ((y != 0) & (y != 1)))
     if bad.size:
-        raise TuningError(f"row {bad[0]}: expected label 0 or 1, got {y_raw[bad[0]]!r}",
+        raise TuningError(f"row {bad[0]}: expected label 0 or 1, got {y_raw[bad[0]].item()!r}",
                           file=source, key="labels")
     g = None
     if groups is not None:
