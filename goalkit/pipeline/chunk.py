@@ -70,7 +70,7 @@ def relabel_chunk(plan, chunk) -> ChunkRows:
     achieved = phi_chunk[next_rows]
     goal = goal_vectors(plan, chunk, phi_chunk, rows, src_pos, src_ep).astype(gdtype).astype(np.float64)
     d = rule.distance(achieved, goal)
-    reached = rule._reached_from(d)
+    reached = rule.reached_from(d)
     reward = rule.reward_from(d)
     terminal = reached if rule.end_on_reach else np.zeros_like(reached)
     gpos = plan.positions(src_ep)
@@ -95,7 +95,7 @@ def relabel_chunk(plan, chunk) -> ChunkRows:
         cols["observation"] = chunk.observations[t + src_pos]
         cols["action"] = chunk.actions[t]
         cols["next_observation"] = chunk.observations[next_rows]
-        cols["achieved_goal"] = achieved
+        cols["reached_goal"] = achieved
     if "task_reward" in plan.columns:
         cols["task_reward"] = chunk.rewards[t]
     split = plan.splits[gpos]

@@ -42,7 +42,7 @@ MATERIAL_COLUMNS = {
     "observation": ("obs", "obs", "s_t"),
     "action": ("act", "act", "a_t"),
     "next_observation": ("obs", "obs", "s_t+1"),
-    "achieved_goal": ("goal", "goal", "phi(s_t+1)"),
+    "reached_goal": ("goal", "goal", "phi(s_t+1)"),
 }
 
 #: Optional column, present when the logs carry a task reward.

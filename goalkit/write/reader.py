@@ -110,7 +110,7 @@ class GoalSet:
         start, stop : int
             Row range.
         resolve : bool
-            In an indexed set, fetch observation, action, next_observation and achieved_goal
+            In an indexed set, fetch observation, action, next_observation and reached_goal
             from the source logs.
 
         Returns

@@ -79,6 +79,6 @@ def resolve_rows(logs: LogsOfSet, episode_ids, steps, names) -> dict:
         out["next_observation"] = chunk.observations[cur + 1]
     if "action" in names:
         out["action"] = chunk.actions[trans]
-    if "achieved_goal" in names:
-        out["achieved_goal"] = logs.goal_map(chunk, cur + 1).astype(logs.goal_dtype)
+    if "reached_goal" in names:
+        out["reached_goal"] = logs.goal_map(chunk, cur + 1).astype(logs.goal_dtype)
     return out

@@ -98,11 +98,11 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
                 report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): {name} is not the logged value")
     phi = plan.goal_map(chunk, np.arange(chunk.observations.shape[0])).astype(gd)
     achieved = phi[cur + 1]
-    if "achieved_goal" in cols:
-        diff = np.any(cols["achieved_goal"] != achieved, axis=1)
+    if "reached_goal" in cols:
+        diff = np.any(cols["reached_goal"] != achieved, axis=1)
         if diff.any():
             i = _first(diff)
-            report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): achieved_goal is not phi(s_t+1)")
+            report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): reached_goal is not phi(s_t+1)")
     # goals: phi at the recorded goal address, from the logs
     ge, gs = cols["goal_episode"], cols["goal_step"]
     internal = ge >= 0
@@ -139,8 +139,8 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
     rule = plan.recipe.reward
     d = rule.distance(achieved.astype(np.float64), cols["goal"].astype(np.float64))
     for name, ref in (("goal_distance", d.astype(np.float32)), ("reward", rule.reward_from(d)),
-                      ("reached", rule._reached_from(d).astype(np.uint8)),
-                      ("terminal", (rule._reached_from(d) & rule.end_on_reach).astype(np.uint8))):
+                      ("reached", rule.reached_from(d).astype(np.uint8)),
+                      ("terminal", (rule.reached_from(d) & rule.end_on_reach).astype(np.uint8))):
         diff = cols[name] != ref
         if diff.any():
             i = _first(diff)

@@ -34,7 +34,7 @@ def test_rows_match_a_direct_computation(tmp_path, episodes, source):
             np.testing.assert_array_equal(r["next_observation"], episodes.observations[so[e] + t + 1])
             np.testing.assert_array_equal(r["action"], episodes.actions[episodes.offsets[e] + t])
             # the goal reached by transition t is phi(s_t+1): the head field, columns 0..2
-            np.testing.assert_array_equal(r["achieved_goal"], episodes.observations[so[e] + t + 1, :3])
+            np.testing.assert_array_equal(r["reached_goal"], episodes.observations[so[e] + t + 1, :3])
             internal = r["goal_episode"] >= 0
             ge, gj = r["goal_episode"][internal], r["goal_step"][internal]
             np.testing.assert_array_equal(r["goal"][internal], episodes.observations[so[ge] + gj, :3])
@@ -42,7 +42,7 @@ def test_rows_match_a_direct_computation(tmp_path, episodes, source):
             np.testing.assert_array_equal(
                 r["goal"][ext], episodes.task_goals[episodes.offsets[e[ext]] + t[ext]].astype(np.float32))
             # reward recomputes from the stored goal vectors (euclidean, inclusive 0.05, sparse)
-            d = np.linalg.norm(r["achieved_goal"].astype(np.float64) - r["goal"].astype(np.float64), axis=1)
+            d = np.linalg.norm(r["reached_goal"].astype(np.float64) - r["goal"].astype(np.float64), axis=1)
             np.testing.assert_array_equal(r["reward"], (d <= 0.05).astype(np.float32))
             np.testing.assert_allclose(r["goal_distance"], d, rtol=1e-6)
             # rows sorted by (episode, step, slot)

@@ -1,0 +1,146 @@
+"""On-the-fly relabelling for training loops that want fresh goals every minibatch.
+
+The sampler uses the recipe's own goal map, strategies and reward rule, so a batch is scored
+exactly as a built set would be; only the goals differ from batch to batch. Batch ``b`` is a
+pure function of (recipe seed, b), so a training run can be replayed.
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+import numpy as np
+
+from goalkit import rng
+from goalkit.errors import RecipeError
+from goalkit.logs.episodes import EpisodeSet, chunk_bounds
+
+
+def take_episodes(parts: list[EpisodeSet]) -> EpisodeSet:
+    """Concatenate EpisodeSets (each of whole episodes) into one."""
+    if len(parts) == 1:
+        return parts[0]
+    def cat(name):
+        vals = [getattr(p, name) for p in parts]
+        return None if vals[0] is None else np.concatenate(vals)
+    lengths = np.concatenate([p.lengths for p in parts])
+    return EpisodeSet(
+        observations=cat("observations"), actions=cat("actions"),
+        offsets=np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64),
+        episode_ids=cat("episode_ids"), rewards=cat("rewards"), success=cat("success"),
+        task_ids=cat("task_ids"), task_goals=cat("task_goals"), frames=cat("frames"),
+        fields=dict(parts[0].fields), source=parts[0].source)
+
+
+class GoalSampler:
+    """Draw minibatches of (transition, fresh goal) rows from one split of the logs.
+
+    Parameters
+    ----------
+    recipe : Recipe
+        Goal map, strategy weights, reward rule, split and seed come from it;
+        ``goals_per_transition`` is ignored (one goal per sampled transition).
+    split : {"train", "validation"}
+        Which episodes to sample from.
+    source : LogSource, optional
+        Opened logs (default: the recipe's).
+
+    Notes
+    -----
+    The split's episodes are held in memory (read a chunk at a time). For logs larger than
+    memory, build an indexed set instead and stream it with the reader.
+
+    Examples
+    --------
+    >>> sampler = GoalSampler(load_recipe("gantry-demo/gantry-recipe.toml"))   # doctest: +SKIP
+    >>> batch = sampler.batch(256, index=0)                                       # doctest: +SKIP
+    >>> batch["goal"].shape, batch["reward"].dtype                                # doctest: +SKIP
+    ((256, 6), dtype('float32'))
+    """
+
+    def __init__(self, recipe, split: str = "train", source=None):
+        from goalkit.pipeline.plan import make_plan
+
+        if split not in ("train", "validation"):
+            raise RecipeError(f"unknown split {split!r}; splits are train, validation", file=recipe.file)
+        self.recipe = recipe
+        self.plan, source = make_plan(recipe, source)
+        code = ("train", "validation").index(split)
+        parts = []
+        for a, b in chunk_bounds(self.plan.lengths, 500_000):
+            chunk = source.read(a, b)
+            keep = np.flatnonzero(self.plan.splits[a:b] == code)
+            for lo, hi in _runs(keep):
+                parts.append(chunk.select(lo, hi))
+        if not parts:
+            raise RecipeError(f"the {split} split holds no episode", file=recipe.file, key="split.validation")
+        self.episodes = take_episodes(parts)
+        self.mixture = replace(recipe.mixture, goals_per_transition=1)
+        gd = np.dtype(recipe.goal.dtype)
+        self.phi = self.plan.goal_map(self.episodes, np.arange(self.episodes.observations.shape[0])).astype(gd)
+
+    @property
+    def num_transitions(self) -> int:
+        """Transitions available to sample from."""
+        return self.episodes.num_transitions
+
+    def batch(self, batch_size: int, index: int) -> dict:
+        """Return batch number ``index``: ``batch_size`` transitions, each with a fresh goal.
+
+        Returns
+        -------
+        dict of ndarray
+            observation, action, next_observation, reached_goal, goal, goal_distance, reward,
+            reached, terminal, strategy, source_episode, source_step, goal_episode, goal_step,
+            steps_to_goal.
+        """
+        eps, rule = self.episodes, self.recipe.reward
+        seed = self.recipe.seed
+        pick = rng.integers(seed, 0, eps.num_transitions, episode=np.full(batch_size, index),
+                            step=np.arange(batch_size), stream="sampler")
+        batch_seed = int(rng.hash64(seed, index, 0, 0, "sampler")[0] >> np.uint64(1))
+        order = np.argsort(pick, kind="stable")
+        rows = self.mixture.assign(eps, batch_seed, self.plan.context, transitions=pick[order])
+        inv = np.empty_like(order)
+        inv[order] = np.arange(batch_size)
+        sel = inv  # row i of the output is sampled draw i
+        t_idx = rows.transition[sel]
+        pos = eps.transition_episode()[t_idx]
+        step = t_idx - eps.offsets[pos]
+        cur = t_idx + pos
+        achieved = self.phi[cur + 1].astype(np.float64)
+        ge, gs = rows.goal_episode[sel], rows.goal_step[sel]
+        goal = np.empty_like(achieved)
+        internal = ge >= 0
+        if internal.any():
+            goal[internal] = self.phi[eps.state_row(eps.position_of(ge[internal]), gs[internal])]
+        if (~internal).any():
+            goal[~internal] = rows.external[sel][~internal].astype(self.phi.dtype)
+        d = rule.distance(achieved, goal)
+        reached = rule.reached_from(d)
+        return {
+            "observation": eps.observations[cur], "action": eps.actions[t_idx],
+            "next_observation": eps.observations[cur + 1],
+            "reached_goal": achieved.astype(self.phi.dtype), "goal": goal.astype(self.phi.dtype),
+            "goal_distance": d.astype(np.float32), "reward": rule.reward_from(d),
+            "reached": reached.astype(np.uint8),
+            "terminal": (reached & rule.end_on_reach).astype(np.uint8),
+            "strategy": rows.strategy[sel], "source_episode": eps.episode_ids[pos], "source_step": step,
+            "goal_episode": ge, "goal_step": gs, "steps_to_goal": rows.steps_to_goal[sel],
+        }
+
+    def __iter__(self):
+        index = 0
+        while True:
+            yield self.batch(256, index)
+            index += 1
+
+
+def _runs(positions: np.ndarray):
+    """Consecutive runs ``(start, stop)`` in a sorted array of positions."""
+    if len(positions) == 0:
+        return []
+    breaks = np.flatnonzero(np.diff(positions) != 1) + 1
+    starts = np.concatenate([[0], breaks])
+    stops = np.concatenate([breaks, [len(positions)]])
+    return [(int(positions[a]), int(positions[b - 1]) + 1) for a, b in zip(starts, stops)]
