@@ -38,9 +38,10 @@ def render(head: np.ndarray, trays: np.ndarray, params: GantryParams) -> np.ndar
     Examples
     --------
     >>> p = GantryParams(trays=3)
-    >>> f = render(np.array([[0.6, 0.3, 0.1]]), np.array([[0.3, 0.4, 0.5]]), p)
-    >>> f.shape, f.dtype.name, int(f[0, 16, 16]) > 200
-    ((1, 32, 32), 'uint8', True)
+    >>> head = np.array([[16.5 * 1.2 / 32, 16.5 * 0.6 / 32, 0.1]])   # over pixel (16, 16)
+    >>> f = render(head, np.array([[0.3, 0.4, 0.5]]), p)
+    >>> f.shape, f.dtype.name, int(f[0, 16, 16]), int(f[0, 0, 0])
+    ((1, 32, 32), 'uint8', 255, 40)
     """
     n = FRAME_SIZE
     xs = (np.arange(n) + 0.5) * params.length / n           # columns

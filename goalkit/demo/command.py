@@ -9,9 +9,9 @@ from goalkit.demo.files import write_demo
 
 
 @click.command("demo", context_settings={"show_default": True})
-@click.argument("directory", type=click.Path(file_okay=False, dir_okay=True), metavar="DIR")
+@click.argument("directory", type=click.Path(), metavar="DIR")
 @click.option("--episodes", default=200, type=click.IntRange(min=1), help="Number of episodes to simulate.")
-@click.option("--seed", default=0, type=click.IntRange(min=0, max=2**63 - 1),
+@click.option("--seed", default=0, type=click.IntRange(min=0),
               help="Seed; the same seed writes byte-identical files.")
 @click.option("--frames", is_flag=True, help="Also store 32x32 top-down camera frames.")
 @click.option("--quiet", is_flag=True, help="No progress bar and no summary.")
@@ -36,3 +36,4 @@ def demo(directory, episodes, seed, frames, quiet, as_json):
     rates = ", ".join(f"{kind} {rate:.0%}" if rate == rate else f"{kind} -"
                       for kind, rate in report.success_rates.items())
     click.echo(f"success by controller: {rates}")
+    click.echo(f"next:   goalkit build {report.recipe}")
