@@ -308,3 +308,32 @@ def diagnose(episodes: EpisodeSet, goal_map, rule, *, horizons=HORIZONS, quantil
         horizon=horizon_displacement(episodes, goal_map, rule, horizons, quantiles, goals=g),
         other=other_episode_distances(episodes, goal_map, rule, sample=sample, seed=seed, goals=g),
         threshold=thr)
+
+
+def threshold_warnings(summary: dict, *, low_quantile: str = "0.05", high_fraction: float = 0.5) -> list[str]:
+    """Plain-language warnings about a threshold, from :meth:`Diagnostics.summary`.
+
+    Two heuristics of ours (not published rules):
+
+    * the threshold is below the ``low_quantile`` of the one-step displacement: nearly every
+      step moves farther than the threshold, so only goals hit (almost) exactly are reached;
+    * more than ``high_fraction`` of the sampled states have a state of *another* episode
+      within the threshold: goals borrowed from other episodes are often reached for free.
+
+    Returns
+    -------
+    list of str
+        Empty when neither applies (or the summary lacks the numbers).
+    """
+    out = []
+    thr = summary.get("threshold")
+    step_q = summary.get("step_displacement", {}).get("quantiles", {})
+    if thr is not None and low_quantile in step_q and thr < step_q[low_quantile]:
+        out.append(f"threshold {thr:.4g} is below the {float(low_quantile):.0%} quantile of the one-step "
+                   f"goal change ({step_q[low_quantile]:.4g}): goals count as reached only when hit "
+                   f"almost exactly")
+    frac = summary.get("fraction_other_episode_within_threshold")
+    if thr is not None and frac is not None and frac > high_fraction:
+        out.append(f"{frac:.0%} of sampled states have a state of another episode within threshold "
+                   f"{thr:.4g}: goals from other episodes are often reached without effort")
+    return out

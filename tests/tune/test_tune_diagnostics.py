@@ -109,3 +109,23 @@ def test_diagnose_summary_places_the_threshold():
     assert s["fraction_steps_within_threshold"] == pytest.approx(13 / 16)  # speeds 0.1 and 0.05
     assert s["step_displacement"]["n"] == 16
     assert s["horizon_displacement"]["counts"] == [16, 13]
+
+
+def test_threshold_warnings_fire_on_their_conditions():
+    from goalkit.tune.diagnostics import threshold_warnings
+    ep = _lines()
+    gm = IndexGoalMap((0, 1, 2))
+    small = diagnose(ep, gm, RewardRule("euclidean", 0.01), horizons=[1], sample=100).summary()
+    assert any("below the 5% quantile" in w for w in threshold_warnings(small))
+    # every episode starts at the origin, so other episodes' states are within any threshold
+    # for the first steps; a huge threshold covers all of them
+    big = diagnose(ep, gm, RewardRule("euclidean", 10.0), horizons=[1], sample=100).summary()
+    assert big["fraction_other_episode_within_threshold"] == 1.0
+    assert any("another episode" in w for w in threshold_warnings(big))
+    # episodes far apart (starts 1.0 apart, at most 0.5 of travel): neither warning
+    apart = EpisodeSet(observations=ep.observations + np.repeat([[0, 0, 0], [0, 0, 1.0], [0, 0, 2.0]],
+                                                                [6, 4, 9], axis=0),
+                       actions=ep.actions, offsets=ep.offsets, episode_ids=ep.episode_ids)
+    fine = diagnose(apart, gm, RewardRule("euclidean", 0.25), horizons=[1], sample=100).summary()
+    assert fine["fraction_other_episode_within_threshold"] == 0.0
+    assert threshold_warnings(fine) == []
