@@ -96,3 +96,28 @@ def test_controller_shares_roughly_as_designed():
     # designed shares 0.4 / 0.4 / 0.2; 4 binomial standard errors at n = 600 is about 0.08
     np.testing.assert_allclose(share, [0.4, 0.4, 0.2], atol=0.08)
     assert np.bincount(r.tasks, minlength=6).min() > 60   # six tasks, each about 100 times
+
+
+def test_recipe_reward_rule_reaches_every_watering_success(logs):
+    """The recipe's own reward rule (loaded by goalkit.pipeline) scores each watering success
+    step as reached against its task goal; the steps before the hold completes may also be."""
+    from pathlib import Path
+
+    from goalkit.pipeline.recipe import load_recipe
+
+    recipe = load_recipe(Path(logs).with_name("gantry-recipe.toml"))
+    achieved, goals, flags = [], [], []
+    with h5py.File(logs) as f:
+        K = int(f.attrs["trays"])
+        for g in f["bench"].values():
+            if int(g.attrs["task"]) >= K:
+                continue
+            achieved.append(np.concatenate([g["head"][1:], g["trays"][1:]], axis=1))
+            goals.append(g["task_goal"][()])
+            flags.append(g["success"][()].astype(bool))
+    achieved, goals, flags = map(np.concatenate, (achieved, goals, flags))
+    reached = recipe.reward.reached(achieved, goals)
+    assert flags.sum() > 5
+    assert reached[flags].all()
+    assert reached.sum() > flags.sum()        # reached also before the 3-step hold completes
+    np.testing.assert_array_equal(reached, np.linalg.norm(achieved - goals, axis=1) <= WATER_RADIUS)
