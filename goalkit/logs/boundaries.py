@@ -71,7 +71,7 @@ def counts_from_done(done, *, file=None, key=None) -> tuple[np.ndarray, bool]:
     elif done.dtype.kind in "iuf":
         bad = np.flatnonzero((done != 0) & (done != 1))
         if bad.size:
-            raise LogError(f"expected a bool or 0/1 done flag, got {done[bad[0]]!r} at row {bad[0]}",
+            raise LogError(f"expected a bool or 0/1 done flag, got {done[bad[0]].item()!r} at row {bad[0]}",
                            file=file, key=key)
         flag = done != 0
     else:

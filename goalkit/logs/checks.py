@@ -74,7 +74,7 @@ def flags(values: np.ndarray, *, file, key, episode=None) -> np.ndarray:
     if values.dtype.kind in "iuf":
         bad = np.flatnonzero((values != 0) & (values != 1))
         if bad.size:
-            raise LogError(f"expected a bool or 0/1 flag, got {values[bad[0]]!r}", file=file,
+            raise LogError(f"expected a bool or 0/1 flag, got {values[bad[0]].item()!r}", file=file,
                            key=key, episode=episode, step=int(bad[0]))
         return values != 0
     raise LogError(f"expected a bool or 0/1 flag, got dtype {values.dtype}", file=file, key=key,
@@ -90,10 +90,10 @@ def task_value(value, *, file, key, episode=None) -> int:
             raise LogError("expected a task id, got an empty array", file=file, key=key, episode=episode)
         changed = np.flatnonzero(flat != flat[0])
         if changed.size:
-            raise LogError(f"expected one task id per episode, the value changes from {flat[0]!r} to "
-                           f"{flat[changed[0]]!r}", file=file, key=key, episode=episode,
+            raise LogError(f"expected one task id per episode, the value changes from {flat[0].item()!r} to "
+                           f"{flat[changed[0]].item()!r}", file=file, key=key, episode=episode,
                            step=int(changed[0]))
         arr = flat[0]
     if arr.dtype.kind in "iu" or (arr.dtype.kind == "f" and bool(np.isfinite(arr)) and float(arr) == int(arr)):
         return int(arr)
-    raise LogError(f"expected an integer task id, got {arr!r}", file=file, key=key, episode=episode)
+    raise LogError(f"expected an integer task id, got {arr.item()!r}", file=file, key=key, episode=episode)

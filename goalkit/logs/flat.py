@@ -157,7 +157,15 @@ class FlatSource(BaseSource):
                                     else counts, 0).astype(np.int64)
         self.step_start = step_start.astype(np.int64)
         self.state_start = state_start.astype(np.int64)
-        self.frame_start = _cumsum0(self.steps_all + 1)[:-1]
+        # states per episode (rows of a frame array): T + 1, or the stored rows of an empty episode
+        if self.convention == "T" or (self.convention == "T+1" and space == "state"):
+            states = counts
+        elif self.convention == "T+1":
+            states = counts + 1
+        else:
+            states = np.where(counts > 0, counts + 1, 0)
+        self.state_rows = states.astype(np.int64)
+        self.frame_start = _cumsum0(self.state_rows)[:-1]
         for e in np.flatnonzero(steps <= 0).tolist():
             extra = (" (with one observation per action the last action is dropped)"
                      if self.convention == "T" else "")
@@ -217,7 +225,7 @@ class FlatSource(BaseSource):
         if k.frame is not None:
             self._need(acc, k.frame)
             shape, dt = acc.shape(k.frame), acc.dtype(k.frame)
-            want = int((self.steps_all + 1).sum())
+            want = int(self.state_rows.sum())
             if dt != np.uint8 or len(shape) not in (3, 4) or shape[0] != want:
                 raise LogError(f"has dtype {dt} and shape {shape}; expected uint8 frames of shape "
                                f"({want}, H, W[, C]) (one per state, T+1 per episode)", file=f, key=k.frame)
@@ -319,7 +327,7 @@ class FlatSource(BaseSource):
         bad = np.flatnonzero((values != 0) & (values != 1))
         if bad.size:
             pos = int(np.searchsorted(offsets[:-1], bad[0], side="right") - 1)
-            raise LogError(f"expected a bool or 0/1 flag, got {values[bad[0]]!r}", file=self.path,
+            raise LogError(f"expected a bool or 0/1 flag, got {values[bad[0]].item()!r}", file=self.path,
                            key=self.layout.keys.success, episode=int(ids[pos]),
                            step=int(bad[0] - offsets[pos]))
         return values != 0
