@@ -246,6 +246,7 @@ def rewarded_fraction(achieved, goal, strategy, rule, thresholds) -> RewardedFra
     ([0, 2], [[1.0, 1.0], [0.3333333333333333, 0.6666666666666666]])
     """
     s = np.asarray(strategy).astype(np.int64)
+    rule.check_dim(np.shape(achieved)[-1])
     d = rule.distance(achieved, goal)
     if s.shape != d.shape:
         raise TuningError(f"expected one strategy code per goal row ({d.shape[0]}), got shape {s.shape}",
@@ -300,7 +301,16 @@ class Diagnostics:
 
 def diagnose(episodes: EpisodeSet, goal_map, rule, *, horizons=HORIZONS, quantiles=QUANTILES,
              sample: int = 2000, seed: int = 0) -> Diagnostics:
-    """Run every label-free diagnostic on ``episodes`` (goal vectors computed once)."""
+    """Run every label-free diagnostic on ``episodes`` (goal vectors computed once).
+
+    ``episodes`` is held in memory whole: pass a chunk or a sample of episodes of a large log.
+
+    Raises
+    ------
+    RecipeError
+        If the rule's tolerances or weights do not match the goal map's dimension.
+    """
+    rule.check_dim(goal_map.dim)
     g = state_goals(episodes, goal_map)
     thr = 1.0 if rule.distance_name == "box" else float(rule.threshold)
     return Diagnostics(

@@ -129,3 +129,12 @@ def test_threshold_warnings_fire_on_their_conditions():
     fine = diagnose(apart, gm, RewardRule("euclidean", 0.25), horizons=[1], sample=100).summary()
     assert fine["fraction_other_episode_within_threshold"] == 0.0
     assert threshold_warnings(fine) == []
+
+
+def test_rule_of_the_wrong_dimension_is_a_recipe_error():
+    from goalkit.errors import RecipeError
+    with pytest.raises(RecipeError, match="expected 3 tolerances"):
+        diagnose(_lines(), IndexGoalMap((0, 1, 2)), RewardRule("box", (0.1, 0.1)))
+    with pytest.raises(RecipeError, match="expected 2 weights"):
+        rewarded_fraction(np.zeros((3, 2)), np.zeros((3, 2)), [0, 0, 0],
+                          RewardRule("l1", 0.1, weights=(1.0, 1.0, 1.0)), [0.1])
