@@ -63,7 +63,11 @@ class IndexSettings:
     k : int
         Neighbours per query the recall is tuned for.
     target_recall : float
-        Smallest acceptable recall@k on the sample (approximate methods).
+        Smallest acceptable recall@k (approximate methods).
+    confidence_z : float
+        The tuned breadth must reach ``target_recall`` with the measured recall minus this
+        many standard errors (1.645: a one-sided 95% normal bound; common practice), so that
+        new queries of the same kind reach the target too.
     seed : int
         Seed of the k-means and of the training / recall samples.
     recall_queries : int
@@ -86,6 +90,7 @@ class IndexSettings:
     method: str = "auto"
     k: int = 10
     target_recall: float = 0.95
+    confidence_z: float = 1.645
     seed: int = 0
     recall_queries: int = 1000
     exact_below: int = 50_000
@@ -106,6 +111,8 @@ class IndexSettings:
                 raise EmbeddingError(f"expected {name} a positive integer, got {v!r}", key=name)
         if not 0.0 < float(self.target_recall) <= 1.0:
             raise EmbeddingError(f"expected target_recall in (0, 1], got {self.target_recall!r}", key="target_recall")
+        if not 0.0 <= float(self.confidence_z) <= 10.0:
+            raise EmbeddingError(f"expected confidence_z in [0, 10], got {self.confidence_z!r}", key="confidence_z")
         if self.nlist is not None and (not isinstance(self.nlist, (int, np.integer)) or self.nlist < 1):
             raise EmbeddingError(f"expected nlist a positive integer or None, got {self.nlist!r}", key="nlist")
 
@@ -125,8 +132,14 @@ class IndexReport:
     target_recall : float
         Requested recall@k.
     recall : float
-        recall@k measured on ``recall_queries`` sample queries against exact search
+        recall@k measured on ``recall_queries`` calibration queries against exact search
         (exact search: 1.0 by construction, ``recall_queries`` 0).
+    recall_lower : float
+        ``recall`` minus ``confidence_z`` standard errors over the calibration queries; the
+        search breadth is the smallest one whose lower bound reaches ``target_recall``.
+    calibration : str
+        ``"indexed"`` (a sample of the indexed vectors), ``"given"`` (queries passed in) or
+        ``"none"`` (exact search).
     recall_queries : int
     nlist, nprobe : int
         IVF lists and lists probed per query (0 otherwise).
@@ -143,7 +156,9 @@ class IndexReport:
     k: int
     target_recall: float
     recall: float
+    recall_lower: float
     recall_queries: int
+    calibration: str = "indexed"
     nlist: int = 0
     nprobe: int = 0
     hnsw_m: int = 0
@@ -186,14 +201,27 @@ def exact_sq_distances(vectors: np.ndarray, queries: np.ndarray, ids: np.ndarray
     return np.where(ids >= 0, d, np.inf)
 
 
-def recall_at_k(vectors, queries, approx_ids, exact_ids) -> float:
-    """Tie-aware recall@k (see the module notes) of ``approx_ids`` against ``exact_ids``."""
+def recall_per_query(vectors, queries, approx_ids, exact_ids) -> np.ndarray:
+    """Tie-aware recall@k of each query (see the module notes), float64 (M,)."""
     k = exact_ids.shape[1]
     d_exact = exact_sq_distances(vectors, queries, exact_ids)
     kth = d_exact.max(axis=1, where=np.isfinite(d_exact), initial=0.0)
     d_approx = exact_sq_distances(vectors, queries, approx_ids)
     ok = d_approx <= kth[:, None] * (1 + 1e-9) + 1e-12
-    return float(ok.sum(axis=1).mean() / k)
+    return ok.sum(axis=1) / k
+
+
+def recall_at_k(vectors, queries, approx_ids, exact_ids) -> float:
+    """Tie-aware recall@k (see the module notes) of ``approx_ids`` against ``exact_ids``."""
+    return float(recall_per_query(vectors, queries, approx_ids, exact_ids).mean())
+
+
+def lower_bound(per_query: np.ndarray, z: float) -> float:
+    """Mean minus ``z`` standard errors (normal approximation; 0 queries -> the mean)."""
+    m = float(per_query.mean())
+    if per_query.shape[0] < 2 or z == 0:
+        return m
+    return m - z * float(per_query.std(ddof=1)) / np.sqrt(per_query.shape[0])
 
 
 class NeighbourIndex:
@@ -262,33 +290,37 @@ def _serialised_size(index) -> int:
     return int(faiss.serialize_index(index).nbytes)
 
 
-def _tune(index, set_breadth, candidates_max: int, start: int, vectors, queries, exact_ids, k, target):
-    """Raise the search breadth (doubling, then bisection) until recall@k >= target."""
+def _tune(index, set_breadth, candidates_max: int, start: int, vectors, queries, exact_ids, k, target, z):
+    """Raise the search breadth (doubling, then bisection) until the recall's lower bound >= target.
+
+    Returns the breadth, its measured recall@k and the lower bound (mean - z standard errors).
+    """
     def recall(b):
         set_breadth(b)
         _, ids = index.search(queries, k)
-        return recall_at_k(vectors, queries, ids.astype(np.int64), exact_ids)
+        per = recall_per_query(vectors, queries, ids.astype(np.int64), exact_ids)
+        return float(per.mean()), lower_bound(per, z)
 
     b = max(1, start)
     lo = b - 1  # never go below the starting breadth
     r = recall(b)
-    while r < target and b < candidates_max:
+    while r[1] < target and b < candidates_max:
         lo, b = b, min(2 * b, candidates_max)
         r = recall(b)
     hi, r_hi = b, r
-    if r_hi >= target:
+    if r_hi[1] >= target:
         while hi - lo > 1:  # smallest passing breadth between the last failing and first passing
             mid = (lo + hi) // 2
             r_mid = recall(mid)
-            if r_mid >= target:
+            if r_mid[1] >= target:
                 hi, r_hi = mid, r_mid
             else:
                 lo = mid
     set_breadth(hi)
-    return hi, r_hi
+    return hi, r_hi[0], r_hi[1]
 
 
-def build_index(vectors, settings: IndexSettings | None = None, *, labels=None) -> NeighbourIndex:
+def build_index(vectors, settings: IndexSettings | None = None, *, labels=None, calibration=None) -> NeighbourIndex:
     """Build a neighbour index over ``vectors`` and measure the recall it reaches.
 
     Parameters
@@ -299,6 +331,12 @@ def build_index(vectors, settings: IndexSettings | None = None, *, labels=None) 
         Method, k, target recall, seed, ... (defaults: :class:`IndexSettings`).
     labels : array_like of int, shape (N,), optional
         Returned by :meth:`NeighbourIndex.search` instead of positions.
+    calibration : array_like, shape (M, D), optional
+        Queries to tune and measure the recall on, drawn like the queries the index will
+        answer. Default: ``settings.recall_queries`` of the indexed vectors themselves, which
+        is right for "states near this logged state" but optimistic for queries from
+        elsewhere (e.g. goals of a library): the neighbours of a logged state are mostly
+        the adjacent states of its own trajectory, which sit in the same IVF list.
 
     Returns
     -------
@@ -331,11 +369,16 @@ def build_index(vectors, settings: IndexSettings | None = None, *, labels=None) 
         flat = faiss.IndexFlatL2(d)
         flat.add(X)
         if method == "exact":
-            report = IndexReport("exact", n, d, k, float(s.target_recall), 1.0, 0, seed=seed,
+            report = IndexReport("exact", n, d, k, float(s.target_recall), 1.0, 1.0, 0, "none", seed=seed,
                                  memory_bytes=_serialised_size(flat))
             return NeighbourIndex(flat, X, report, labels, s.threads)
-        qrows = sample_rows(n, s.recall_queries, seed, slot=1)
-        queries = X[qrows]
+        cal = "indexed" if calibration is None else "given"
+        if calibration is None:
+            queries = X[sample_rows(n, s.recall_queries, seed, slot=1)]
+        else:
+            queries = _as_float32(calibration, d, "calibration queries")
+            if queries.shape[0] < 1:
+                raise EmbeddingError("expected at least one calibration query, got none")
         _, exact_ids = flat.search(queries, k)
         exact_ids = exact_ids.astype(np.int64)
         del flat
@@ -348,17 +391,17 @@ def build_index(vectors, settings: IndexSettings | None = None, *, labels=None) 
             index.cp.max_points_per_centroid = max(s.train_per_list, 1)
             index.train(X[sample_rows(n, s.train_per_list * nlist, seed, slot=2)])
             index.add(X)
-            nprobe, recall = _tune(index, lambda b: setattr(index, "nprobe", int(b)), nlist, 1,
-                                   X, queries, exact_ids, k, s.target_recall)
-            report = IndexReport("ivf", n, d, k, float(s.target_recall), recall, len(qrows), nlist=nlist,
+            nprobe, recall, low = _tune(index, lambda b: setattr(index, "nprobe", int(b)), nlist, 1,
+                                        X, queries, exact_ids, k, s.target_recall, s.confidence_z)
+            report = IndexReport("ivf", n, d, k, float(s.target_recall), recall, low, len(queries), cal, nlist=nlist,
                                  nprobe=nprobe, seed=seed, memory_bytes=_serialised_size(index))
         else:  # hnsw: insertion order must not depend on scheduling, so one thread
             index = faiss.IndexHNSWFlat(d, int(s.hnsw_m))
             index.hnsw.efConstruction = int(s.hnsw_ef_construction)
             with faiss_threads(1):
                 index.add(X)
-            ef, recall = _tune(index, lambda b: setattr(index.hnsw, "efSearch", int(b)), max(n, k), k,
-                               X, queries, exact_ids, k, s.target_recall)
-            report = IndexReport("hnsw", n, d, k, float(s.target_recall), recall, len(qrows),
+            ef, recall, low = _tune(index, lambda b: setattr(index.hnsw, "efSearch", int(b)), max(n, k), k,
+                                    X, queries, exact_ids, k, s.target_recall, s.confidence_z)
+            report = IndexReport("hnsw", n, d, k, float(s.target_recall), recall, low, len(queries), cal,
                                  hnsw_m=int(s.hnsw_m), ef_search=ef, seed=seed, memory_bytes=_serialised_size(index))
     return NeighbourIndex(index, X, report, labels, s.threads)

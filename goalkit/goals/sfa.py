@@ -17,7 +17,11 @@ from goalkit.errors import EmbeddingError
 from goalkit.goals.base import Embedding, register
 from goalkit.goals.checks import check_features, check_offsets, successive_pairs
 from goalkit.goals.linear import constant_mask
-from goalkit.goals.moments import CHUNK_ROWS, mean_var
+from goalkit.goals.moments import mean_var
+
+#: rows per chunk of the expanded signal (small enough to stay in cache; fixed, so results are
+#: identical run to run)
+CHUNK_ROWS = 8192
 
 #: sphering drops directions whose variance is below this fraction of the largest one
 RANK_TOL = 1e-10
@@ -31,8 +35,14 @@ def quadratic_expand(Z: np.ndarray) -> np.ndarray:
     >>> quadratic_expand(np.array([[2., 3.]])).tolist()
     [[2.0, 3.0, 4.0, 6.0, 9.0]]
     """
-    iu, ju = np.triu_indices(Z.shape[1])
-    return np.concatenate([Z, Z[:, iu] * Z[:, ju]], axis=1)
+    n, d = Z.shape
+    out = np.empty((n, d + d * (d + 1) // 2))
+    out[:, :d] = Z
+    col = d
+    for i in range(d):  # loop over input dimensions (order of numpy's triu_indices), not rows
+        np.multiply(Z[:, i:i + 1], Z[:, i:], out=out[:, col:col + d - i])
+        col += d - i
+    return out
 
 
 def expanded_dim(d: int, degree: int) -> int:
