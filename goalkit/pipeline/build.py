@@ -16,7 +16,7 @@ from goalkit.write.provenance import describe_files
 from goalkit.write.writer import SetWriter
 
 #: Default number of output rows produced per chunk task (bounds the build's memory).
-CHUNK_ROWS = 400_000
+CHUNK_ROWS = 131_072
 
 
 @dataclass(frozen=True)

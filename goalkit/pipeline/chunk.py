@@ -75,7 +75,7 @@ def relabel_chunk(plan, chunk) -> ChunkRows:
     terminal = reached if rule.end_on_reach else np.zeros_like(reached)
     gpos = plan.positions(src_ep)
     keys = (plan.transition_offsets[gpos] + src_step) * SLOT_SPAN + rows.slot
-    cols = {
+    scalars = {
         "source_episode": src_ep,
         "source_step": src_step,
         "slot": rows.slot,
@@ -85,24 +85,28 @@ def relabel_chunk(plan, chunk) -> ChunkRows:
         "hop_episode": rows.hop_episode,
         "hop_step": rows.hop_step,
         "steps_to_goal": rows.steps_to_goal,
-        "goal": goal,
-        "goal_distance": d,
+        "goal": goal.astype(gdtype),
+        "goal_distance": d.astype(np.float32),
         "reward": reward,
-        "reached": reached,
-        "terminal": terminal,
+        "reached": reached.astype(np.uint8),
+        "terminal": terminal.astype(np.uint8),
     }
-    if "observation" in plan.columns:
-        cols["observation"] = chunk.observations[t + src_pos]
-        cols["action"] = chunk.actions[t]
-        cols["next_observation"] = chunk.observations[next_rows]
-        cols["reached_goal"] = achieved
-    if "task_reward" in plan.columns:
-        cols["task_reward"] = chunk.rewards[t]
     split = plan.splits[gpos]
     out_cols, out_keys = {}, {}
     for code, name in ((0, "train"), (1, "validation")):
-        mask = split == code
-        if mask.any():
-            out_cols[name] = {k: v[mask] for k, v in cols.items()}
-            out_keys[name] = keys[mask]
+        idx = np.flatnonzero(split == code)
+        if idx.size == 0:
+            continue
+        whole = idx.size == split.size
+        cols = {k: (v if whole else np.take(v, idx, axis=0)) for k, v in scalars.items()}
+        ti, pi = (t, src_pos) if whole else (t[idx], src_pos[idx])
+        if "observation" in plan.columns:
+            cols["observation"] = np.take(chunk.observations, ti + pi, axis=0)
+            cols["action"] = np.take(chunk.actions, ti, axis=0)
+            cols["next_observation"] = np.take(chunk.observations, ti + pi + 1, axis=0)
+            cols["reached_goal"] = np.take(phi_chunk, ti + pi + 1, axis=0).astype(gdtype)
+        if "task_reward" in plan.columns:
+            cols["task_reward"] = np.take(chunk.rewards, ti, axis=0).astype(np.float32)
+        out_cols[name] = cols
+        out_keys[name] = keys if whole else keys[idx]
     return ChunkRows(out_cols, out_keys)

@@ -28,7 +28,7 @@ def format_summary(path, summary: dict) -> str:
 @click.option("--out", "out", type=click.Path(dir_okay=False), default=None,
               help="Write the dataset here instead of the recipe's [output] path.")
 @click.option("--seed", type=int, default=None, help="Override the recipe's seed.")
-@click.option("--chunk-rows", type=click.IntRange(min=1000), default=400_000,
+@click.option("--chunk-rows", type=click.IntRange(min=1000), default=131_072,
               help="Output rows per processing chunk (memory only; the output bytes do not depend on it).")
 @click.option("--json", "as_json", is_flag=True, help="Print the summary as one JSON object.")
 @click.option("--quiet", is_flag=True, help="No progress bar.")

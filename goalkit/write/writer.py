@@ -28,34 +28,44 @@ def temporary_path(path: Path) -> Path:
 
 
 class _SplitBuffer:
+    """Rows queued for one split, as a list of parts; blocks are cut without copying when a
+    block lies inside one part."""
+
     def __init__(self, names):
         self.names = names
-        self.parts: dict[str, list[np.ndarray]] = {n: [] for n in names}
-        self.keys: list[np.ndarray] = []
+        self.parts: list[tuple[dict, np.ndarray]] = []
         self.pending = 0
 
     def add(self, columns: dict, keys: np.ndarray):
-        for n in self.names:
-            self.parts[n].append(columns[n])
-        self.keys.append(keys)
+        self.parts.append(({n: columns[n] for n in self.names}, keys))
         self.pending += len(keys)
+
+    def _cut(self, rows: int):
+        """Remove and return the first ``rows`` queued rows as (columns, keys)."""
+        pieces, need = [], rows
+        while need:
+            cols, keys = self.parts[0]
+            n = len(keys)
+            if n <= need:
+                pieces.append((cols, keys))
+                self.parts.pop(0)
+                need -= n
+            else:
+                pieces.append(({k: v[:need] for k, v in cols.items()}, keys[:need]))
+                self.parts[0] = ({k: v[need:] for k, v in cols.items()}, keys[need:])
+                need = 0
+        self.pending -= rows
+        if len(pieces) == 1:
+            return pieces[0]
+        return ({k: np.concatenate([p[0][k] for p in pieces]) for k in self.names},
+                np.concatenate([p[1] for p in pieces]))
 
     def take_blocks(self, rows: int, final: bool):
         """Cut complete blocks of ``rows`` rows (and the remainder when ``final``)."""
-        if self.pending == 0 or (self.pending < rows and not final):
-            return []
-        cols = {n: np.concatenate(p) if len(p) > 1 else p[0] for n, p in self.parts.items()}
-        keys = np.concatenate(self.keys) if len(self.keys) > 1 else self.keys[0]
-        full = (self.pending // rows) * rows
-        stop = self.pending if final else full
         blocks = []
-        for a in range(0, stop, rows):
-            b = min(a + rows, stop)
-            blocks.append((int(keys[b - 1]), {n: c[a:b] for n, c in cols.items()}))
-        rest = {n: c[stop:] for n, c in cols.items()}
-        self.parts = {n: [rest[n]] for n in self.names}
-        self.keys = [keys[stop:]]
-        self.pending -= stop
+        while self.pending >= rows or (final and self.pending):
+            cols, keys = self._cut(min(rows, self.pending))
+            blocks.append((int(keys[-1]), cols))
         return blocks
 
 
