@@ -34,7 +34,7 @@ ROLE_NAMES = {
 #: Boundary kind -> names looked for, in the order the kinds are preferred.
 BOUNDARY_NAMES = {
     "offsets": ("offsets", "episode_offsets", "episode_starts", "episode_start", "starts"),
-    "episode_id": ("episode_id", "episode_ids", "episode", "episode_index", "ep"),
+    "episode_id": ("episode_id", "episode_ids", "episode", "episode_index", "ep", "ids"),
     "done": ("done", "dones", "terminal", "terminals", "episode_end"),
 }
 
