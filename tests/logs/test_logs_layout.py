@@ -113,3 +113,18 @@ def test_load_layout_file_errors(tmp_path):
     bad.write_text("shape = grouped\n")
     with pytest.raises(LayoutError, match="not valid TOML"):
         load_layout(bad)
+
+
+def test_every_example_in_the_user_docs_parses():
+    import re
+    from pathlib import Path
+
+    text = (Path(__file__).resolve().parents[2] / "docs" / "layout.md").read_text()
+    blocks = re.findall(r"```toml\n(.*?)```", text, flags=re.S)
+    assert len(blocks) >= 5
+    for block in blocks:
+        doc = tomllib.loads(block)
+        if "shape" not in doc:                  # a fragment ([fields] only)
+            continue
+        lay = parse_layout(doc, "docs/layout.md")
+        assert parse_layout(tomllib.loads(layout_to_toml(lay))) == lay
