@@ -126,7 +126,13 @@ def _build(data, prefix: str, file) -> Embedding:
             raise EmbeddingError(f"expected fitted array '{name}' of a {kind} embedding, it is missing",
                                  file=file, key=key)
         arrays[name] = data[key]
-    emb.set_state(arrays, file=file)
+    try:
+        emb.set_state(arrays, file=file)
+    except EmbeddingError as exc:
+        if prefix and exc.key is not None and not exc.key.startswith(prefix):
+            exc.key = prefix + exc.key
+            exc.args = (exc.render(),)
+        raise
     return emb
 
 
