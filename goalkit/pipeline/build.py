@@ -29,10 +29,13 @@ class BuildResult:
         The dataset.
     summary : dict
         Rows per split, per-strategy counts and reached fractions, distance quantiles, warnings.
+    shards : dict or None
+        Sharded builds only: ``{"total", "reused", "computed", "runner"}``.
     """
 
     path: Path
     summary: dict
+    shards: dict | None = None
 
 
 def chunk_transitions(plan, rows_per_chunk: int = CHUNK_ROWS) -> int:
@@ -40,8 +43,12 @@ def chunk_transitions(plan, rows_per_chunk: int = CHUNK_ROWS) -> int:
     return max(1, rows_per_chunk // plan.recipe.mixture.goals_per_transition)
 
 
-def provenance(plan, source) -> dict:
-    """The dataset's provenance record (what it was built from, and how)."""
+def provenance(plan, source, log_files=None) -> dict:
+    """The dataset's provenance record (what it was built from, and how).
+
+    ``log_files`` is the log files' description if already computed
+    (:func:`goalkit.write.provenance.describe_files` of ``source.files``).
+    """
     recipe = plan.recipe
     files = list(source.files)
     if recipe.layout_path is not None:
@@ -57,7 +64,7 @@ def provenance(plan, source) -> dict:
         "logs_path": str(recipe.logs_path),
         "layout_path": str(recipe.layout_path) if recipe.layout_path else "",
         "layout_text": layout_text,
-        "log_files": describe_files(files),
+        "log_files": describe_files(files) if log_files is None else log_files,
         "embedding_files": extra,
         "goal_map": plan.goal_map.describe(),
         "reward": recipe.reward.describe(),
@@ -71,8 +78,9 @@ def provenance(plan, source) -> dict:
     }
 
 
-def build(recipe, *, source=None, max_rows_per_chunk: int = CHUNK_ROWS, progress=None) -> BuildResult:
-    """Build the dataset a recipe describes, in this process.
+def build(recipe, *, source=None, max_rows_per_chunk: int = CHUNK_ROWS, progress=None, workers: int = 0,
+          scheduler: str | None = None, client=None, fresh: bool = False) -> BuildResult:
+    """Build the dataset a recipe describes, in this process or scaled out over shards.
 
     Parameters
     ----------
@@ -84,11 +92,34 @@ def build(recipe, *, source=None, max_rows_per_chunk: int = CHUNK_ROWS, progress
         Already opened logs (default: open the recipe's logs with its layout).
     progress : callable, optional
         Called as ``progress(transitions_done_in_chunk, total_transitions)`` after each chunk.
+    workers : int
+        0: build in this process (no shards). N >= 1: N local worker processes, each chunk a
+        resumable shard (see docs/scaling.md).
+    scheduler : str, optional
+        Address of a running dask.distributed scheduler to run the shards on.
+    client : distributed.Client, optional
+        An existing Dask client to run the shards on (not closed).
+    fresh : bool
+        Sharded builds: discard the shards of an interrupted run instead of resuming.
 
     Returns
     -------
     BuildResult
+        The same file bytes, summary and provenance whichever way it was built.
     """
+    if workers or scheduler is not None or client is not None:
+        from goalkit.pipeline.sharded import build_sharded
+
+        if scheduler is not None or client is not None:
+            from goalkit.pipeline.dask_build import DaskRunner
+
+            runner = DaskRunner(address=scheduler, client=client)
+        else:
+            from goalkit.pipeline.workers import LocalRunner
+
+            runner = LocalRunner(workers)
+        return build_sharded(recipe, runner, source=source, rows_per_shard=max_rows_per_chunk,
+                             progress=progress, fresh=fresh)
     plan, source = make_plan(recipe, source)
     per_chunk = chunk_transitions(plan, max_rows_per_chunk)
     gpt = recipe.mixture.goals_per_transition

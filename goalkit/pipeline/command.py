@@ -5,6 +5,7 @@ from __future__ import annotations
 import click
 
 from goalkit.cli_support import ChunkProgress, echo_json, user_errors
+from goalkit.errors import GoalkitError
 
 
 def format_summary(path, summary: dict) -> str:
@@ -30,23 +31,39 @@ def format_summary(path, summary: dict) -> str:
 @click.option("--seed", type=int, default=None, help="Override the recipe's seed.")
 @click.option("--chunk-rows", type=click.IntRange(min=1000), default=131_072,
               help="Output rows per processing chunk (memory only; the output bytes do not depend on it).")
+@click.option("--workers", type=click.IntRange(min=0), default=0,
+              help="Local worker processes; 0 builds in this process. With N >= 1 every chunk is a "
+                   "shard file in .NAME.shards/ beside the output, and a re-run resumes.")
+@click.option("--scheduler", default=None, metavar="ADDRESS",
+              help="Run the shards on this running dask.distributed scheduler (e.g. tcp://host:8786).")
+@click.option("--restart", is_flag=True,
+              help="With --workers/--scheduler: discard the shards of an interrupted build instead of resuming.")
 @click.option("--json", "as_json", is_flag=True, help="Print the summary as one JSON object.")
 @click.option("--quiet", is_flag=True, help="No progress bar.")
 @user_errors
-def build(recipe, out, seed, chunk_rows, as_json, quiet):
+def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, as_json, quiet):
     """Build the goal-conditioned dataset that RECIPE describes.
 
     Reads the logs a chunk of episodes at a time, relabels every transition with the recipe's
     strategy mixture, scores each (transition, goal) pair with its reward rule and writes one
-    HDF5 file (under a temporary name, renamed when complete).
+    HDF5 file (under a temporary name, renamed when complete). The file's bytes are the same
+    whatever --chunk-rows, --workers or --scheduler.
     """
     from goalkit.pipeline.build import build as run_build
     from goalkit.pipeline.recipe import load_recipe
 
+    if workers and scheduler is not None:
+        raise GoalkitError("give --workers or --scheduler, not both", key="--scheduler")
     parsed = load_recipe(recipe).with_overrides(seed=seed, out=out)
     with ChunkProgress("build", quiet=quiet) as bar:
-        result = run_build(parsed, max_rows_per_chunk=chunk_rows, progress=bar)
+        result = run_build(parsed, max_rows_per_chunk=chunk_rows, progress=bar, workers=workers,
+                           scheduler=scheduler, fresh=restart)
+    extra = {"shards": result.shards} if result.shards is not None else {}
     if as_json:
-        echo_json({"path": str(result.path), **result.summary})
+        echo_json({"path": str(result.path), **result.summary, **extra})
     else:
         click.echo(format_summary(result.path, result.summary))
+        if result.shards is not None:
+            s = result.shards
+            click.echo(f"  shards: {s['total']} ({s['reused']} reused from an interrupted run, "
+                       f"{s['computed']} computed on {s['runner']})")

@@ -1,0 +1,95 @@
+"""Run shard tasks on a dask.distributed cluster.
+
+The payload (plan and log index) is scattered once with ``broadcast=True``, so every worker holds
+one copy and each task carries only its :class:`~goalkit.pipeline.shards.ShardSpec`. Workers read
+the logs and write shard files themselves, so the logs and the build folder must be reachable
+under the same paths from every worker (one machine, or a shared filesystem).
+"""
+
+from __future__ import annotations
+
+import uuid
+
+from goalkit.errors import GoalkitError
+from goalkit.pipeline.workers import failure, run_shard
+
+
+class DaskRunner:
+    """Submit shard tasks to a running dask.distributed scheduler.
+
+    Parameters
+    ----------
+    address : str, optional
+        Scheduler address (``tcp://host:8786``); ignored when ``client`` is given.
+    client : distributed.Client, optional
+        An existing client (e.g. of a ``LocalCluster``); not closed by the runner.
+    timeout : float
+        Seconds to wait for the scheduler.
+    """
+
+    def __init__(self, address: str | None = None, client=None, timeout: float = 20.0):
+        if address is None and client is None:
+            raise ValueError("give a scheduler address or a client")
+        self.address = address
+        self.client = client
+        self.own_client = client is None
+        self.timeout = timeout
+        self.futures = []
+        self.payload = None
+
+    @property
+    def description(self) -> str:
+        return f"Dask scheduler {self.address or self.client.scheduler.address}"
+
+    def start(self, payload) -> None:
+        """Connect (when needed) and scatter ``payload`` to every worker once."""
+        from distributed import Client
+
+        if self.client is None:
+            try:
+                self.client = Client(self.address, timeout=self.timeout, set_as_default=False)
+            except (OSError, TimeoutError, ValueError) as exc:
+                raise GoalkitError(f"cannot reach the Dask scheduler ({exc}); expected a running "
+                                   f"dask.distributed scheduler address such as tcp://host:8786",
+                                   key="--scheduler") from None
+        self.payload = self.client.scatter(payload, broadcast=True, hash=False)
+
+    def run(self, specs, folder, build_key: str):
+        """Submit every shard; yield task outcomes in completion order."""
+        from distributed import as_completed
+
+        run_id = uuid.uuid4().hex[:8]
+        by_key = {}
+        for s in specs:
+            fut = self.client.submit(run_shard, self.payload, s, str(folder), build_key, pure=False,
+                                     key=f"goalkit-shard-{s.index}-{build_key[:8]}-{run_id}")
+            by_key[fut.key] = (fut, s)
+        self.futures = [f for f, _ in by_key.values()]
+        for fut in as_completed(self.futures):
+            spec = by_key[fut.key][1]
+            try:
+                yield fut.result()
+            except Exception as exc:  # a worker died or the task could not run
+                yield failure(spec, exc)
+
+    def close(self) -> None:
+        """Cancel unfinished tasks; close the client when the runner opened it."""
+        if self.client is None:
+            return
+        try:
+            if self.futures:
+                self.client.cancel(self.futures)
+            if self.payload is not None:
+                self.client.cancel([self.payload])
+        finally:
+            if self.own_client:
+                self.client.close()
+                self.client = None
+            self.futures, self.payload = [], None
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+        return False

@@ -1,0 +1,152 @@
+"""The coordinator of a scaled-out build: shards out, one dataset in.
+
+1. Plan as the single-process build does (open the logs, check the recipe, split, goal table).
+2. Cut the kept episodes into shards; compute the build key; open (or resume) the build folder.
+3. Reuse every shard file already there that belongs to this key and matches its checksum;
+   submit the others to a runner (local processes or Dask).
+4. As shards finish, feed their rows to :class:`~goalkit.write.writer.SetWriter` and the summary
+   strictly in shard order. The writer's output does not depend on how rows were chunked, so the
+   file is byte-identical to the single-process build's.
+5. Close the writer (temporary name, rename) and delete the build folder.
+
+A failure stops the build with one line naming the shard and its episodes; finished shards stay
+for the next run.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from goalkit import __version__
+from goalkit.errors import DatasetError, GoalkitError
+from goalkit.pipeline.buildfolder import BuildFolder, build_key
+from goalkit.pipeline.plan import make_plan, strategy_names
+from goalkit.pipeline.shards import ShardError, check_shard, plan_shards, read_shard
+from goalkit.pipeline.summary import SummaryBuilder
+from goalkit.write.provenance import describe_files
+from goalkit.write.writer import SetWriter
+
+
+def shard_error(spec, err: dict, folder) -> GoalkitError:
+    """The one-line error for a failed shard task (``err`` from :func:`workers.failure`)."""
+    where = spec.describe()
+    if err.get("goalkit"):
+        parts = [str(err[k]) if k == "file" else f"{k} {err[k]}"
+                 for k in ("file", "key", "episode", "step") if err.get(k) is not None]
+        return ShardError(f"{where}: " + ": ".join(parts + [err["message"]]))
+    if err.get("os_error"):
+        reason = err.get("strerror") or err["message"]
+        return ShardError(f"{where}: cannot write its shard file ({reason}); the finished shards are kept "
+                          f"and the same command resumes", file=folder)
+    return ShardError(f"{where}: the worker failed: {err['type']}: {err['message']}")
+
+
+def _layout_text(recipe) -> str:
+    if recipe.layout_path is None:
+        return ""
+    from pathlib import Path
+
+    return Path(recipe.layout_path).read_text(encoding="utf-8")
+
+
+def build_sharded(recipe, runner, *, source=None, rows_per_shard: int = 400_000, progress=None,
+                  fresh: bool = False):
+    """Build the dataset a recipe describes with shard tasks run by ``runner``.
+
+    Parameters
+    ----------
+    recipe : Recipe
+    runner : LocalRunner or DaskRunner
+        Runs :func:`goalkit.pipeline.workers.run_shard`; closed here.
+    source : LogSource, optional
+        Already opened logs.
+    rows_per_shard : int
+        Output rows per shard (about); only speed, memory and resume granularity depend on it.
+    progress : callable, optional
+        ``progress(transitions, total_transitions)`` as shards are assembled (reused ones too).
+    fresh : bool
+        Discard the shards of an interrupted run instead of resuming.
+
+    Returns
+    -------
+    BuildResult
+        With ``shards = {"total", "reused", "computed", "runner"}``.
+
+    Raises
+    ------
+    GoalkitError
+        ShardError naming the shard and episodes when a task fails; DatasetError when the build
+        folder or the output cannot be written.
+    """
+    from goalkit.pipeline.build import BuildResult, chunk_transitions, provenance
+    from goalkit.pipeline.workers import make_payload
+
+    plan, source = make_plan(recipe, source)
+    specs = plan_shards(plan, chunk_transitions(plan, rows_per_shard))
+    log_files = describe_files(list(source.files))
+    emb = describe_files([recipe.goal.embedding]) if recipe.goal.embedding is not None else []
+    key, record = build_key(recipe, _layout_text(recipe), log_files, emb, specs)
+    folder = BuildFolder(recipe.output.path)
+    columns = list(plan.columns)
+    try:
+        resumed = folder.open(key, record, fresh=fresh)
+        ready = {s.index for s in specs if resumed and check_shard(folder.path, s, key, columns)}
+        pending = [s for s in specs if s.index not in ready]
+        reused = len(ready)
+        gpt = recipe.mixture.goals_per_transition
+        summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed)
+        out = recipe.output
+        with SetWriter(out.path, plan.columns, chunk_rows=out.chunk_rows, compression=out.compression) as writer:
+            cursor = 0
+
+            def assemble():
+                nonlocal cursor
+                while cursor < len(specs) and specs[cursor].index in ready:
+                    spec = specs[cursor]
+                    rows = read_shard(folder.path, spec, key, columns)
+                    for split, cols in rows.columns.items():
+                        writer.add(split, cols, rows.keys[split])
+                        summary.add(split, cols, rows.keys[split])
+                    _write(writer.flush)
+                    if progress is not None:
+                        progress(spec.transitions, plan.total_transitions)
+                    cursor += 1
+
+            assemble()
+            if pending:
+                try:
+                    runner.start(make_payload(plan, source, folder.path))
+                except OSError as exc:
+                    raise DatasetError(f"cannot write the build folder ({exc.strerror or exc})",
+                                       file=folder.path) from None
+                by_index = {s.index: s for s in pending}
+                for outcome in runner.run(pending, folder.path, key):
+                    if not outcome["ok"]:
+                        raise shard_error(by_index[outcome["index"]], outcome["error"], folder.path)
+                    ready.add(outcome["index"])
+                    assemble()
+            runner.close()
+            result = summary.result()
+            prov = provenance(plan, source, log_files=log_files)
+            episodes = {s: int(np.sum(plan.splits == c)) for c, s in enumerate(("train", "validation"))}
+            path = _write(lambda: writer.close(
+                attrs={"goalkit_version": __version__, "mode": out.mode, "seed": recipe.seed,
+                       "recipe": recipe.text, "provenance": prov, "summary": result},
+                split_attrs={s: {"episodes": n} for s, n in episodes.items()}))
+    except BaseException:
+        runner.close()
+        folder.release()
+        raise
+    folder.remove()
+    info = {"total": len(specs), "reused": reused, "computed": len(specs) - reused,
+            "runner": runner.description}
+    return BuildResult(path=path, summary=result, shards=info)
+
+
+def _write(step):
+    """Run a writer step, turning a failed write (disk full, no permission) into one line."""
+    try:
+        return step()
+    except OSError as exc:
+        raise DatasetError(f"cannot write the dataset ({exc.strerror or exc}); the finished shards are "
+                           f"kept and the same command resumes") from None

@@ -1,0 +1,230 @@
+"""Shards of a scaled-out build: which episodes each holds, and the shard files themselves.
+
+A shard is a run of consecutive kept episodes (cut by :func:`~goalkit.logs.episodes.chunk_bounds`
+over episode lengths, by output rows). A worker relabels one shard and writes its rows, exactly as
+:func:`~goalkit.pipeline.chunk.relabel_chunk` returned them (no cast), to one HDF5 file::
+
+    /train/keys, /train/<column> ...      row keys (int64) and columns of the train rows
+    /validation/keys, /validation/<column>
+    attributes: format, build_key, index, start, stop, first_episode, last_episode,
+                transitions, rows_train, rows_validation, columns (JSON), sha256
+
+``sha256`` covers, split by split (train, validation), the keys and then every column in the
+plan's column order, each as C-order bytes with a short header (name, dtype, shape). A shard is
+written under a temporary name in the same folder and renamed, so a shard file that exists is
+complete unless the disk lied; the checksum catches that.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from goalkit.errors import GoalkitError
+from goalkit.logs.episodes import chunk_bounds
+from goalkit.write.format import SPLITS
+
+SHARD_FORMAT = "goalkit-shard"
+SHARD_FORMAT_VERSION = 1
+
+
+class ShardError(GoalkitError):
+    """A shard could not be computed, written or read back; names the shard and its episodes."""
+
+
+@dataclass(frozen=True)
+class ShardSpec:
+    """One shard: kept-episode positions ``start .. stop - 1``.
+
+    Attributes
+    ----------
+    index : int
+        Position of the shard in the build (the order rows are assembled in).
+    start, stop : int
+        Positions among the kept episodes (what :meth:`LogSource.read` takes).
+    first_episode, last_episode : int
+        Episode ids (positions in the whole log) of its first and last episode.
+    transitions : int
+        Transitions it holds.
+    """
+
+    index: int
+    start: int
+    stop: int
+    first_episode: int
+    last_episode: int
+    transitions: int
+
+    @property
+    def name(self) -> str:
+        """File name of the shard inside the build folder."""
+        return f"shard-{self.index:05d}.h5"
+
+    def describe(self) -> str:
+        """``"shard 3 (episodes 120..179)"``, for messages."""
+        return f"shard {self.index} (episodes {self.first_episode}..{self.last_episode})"
+
+
+def plan_shards(plan, transitions_per_shard: int) -> list[ShardSpec]:
+    """Cut the plan's kept episodes into shards of at most ``transitions_per_shard`` transitions.
+
+    Parameters
+    ----------
+    plan : BuildPlan
+    transitions_per_shard : int
+        Upper bound per shard; an episode longer than this is a shard of its own.
+
+    Returns
+    -------
+    list of ShardSpec
+        Consecutive, covering every kept episode exactly once, in order.
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace
+    >>> p = SimpleNamespace(lengths=np.array([3, 3, 3, 10]), episode_ids=np.array([0, 1, 2, 4]))
+    >>> [(s.start, s.stop, s.last_episode) for s in plan_shards(p, 6)]
+    [(0, 2, 1), (2, 3, 2), (3, 4, 4)]
+    """
+    lengths = np.asarray(plan.lengths, dtype=np.int64)
+    ids = np.asarray(plan.episode_ids, dtype=np.int64)
+    out = []
+    for i, (a, b) in enumerate(chunk_bounds(lengths, max(1, int(transitions_per_shard)))):
+        out.append(ShardSpec(index=i, start=a, stop=b, first_episode=int(ids[a]), last_episode=int(ids[b - 1]),
+                             transitions=int(lengths[a:b].sum())))
+    return out
+
+
+def rows_digest(rows, column_order) -> str:
+    """SHA-256 of a shard's rows (keys then columns, split by split; see the module notes)."""
+    h = hashlib.sha256()
+    for split in SPLITS:
+        if split not in rows.keys:
+            continue
+        items = [("keys", rows.keys[split])] + [(n, rows.columns[split][n]) for n in column_order]
+        for name, arr in items:
+            arr = np.ascontiguousarray(arr)
+            h.update(f"{split}/{name}:{arr.dtype.str}:{arr.shape}".encode())
+            h.update(arr.tobytes())
+    return h.hexdigest()
+
+
+def _temporary(path: Path) -> Path:
+    return path.with_name(f".{path.name}.partial-{os.getpid()}")
+
+
+def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order) -> dict:
+    """Write one shard's rows to ``folder / spec.name`` (temporary name, then rename).
+
+    Parameters
+    ----------
+    folder : Path
+        The build folder.
+    spec : ShardSpec
+    build_key : str
+        Key of the build (see :func:`goalkit.pipeline.buildfolder.build_key`).
+    rows : ChunkRows
+        What :func:`~goalkit.pipeline.chunk.relabel_chunk` returned for the shard.
+    column_order : list of str
+        The plan's column names.
+
+    Returns
+    -------
+    dict
+        ``{"index", "rows", "sha256"}``.
+
+    Raises
+    ------
+    OSError
+        When the file cannot be written (disk full, no permission); the temporary file is removed.
+    """
+    import h5py
+
+    path = Path(folder) / spec.name
+    tmp = _temporary(path)
+    digest = rows_digest(rows, column_order)
+    counts = {s: int(len(rows.keys[s])) if s in rows.keys else 0 for s in SPLITS}
+    try:
+        with h5py.File(tmp, "w") as f:
+            for split in SPLITS:
+                if split not in rows.keys:
+                    continue
+                g = f.create_group(split)
+                g.create_dataset("keys", data=np.ascontiguousarray(rows.keys[split]), track_times=False)
+                for name in column_order:
+                    g.create_dataset(name, data=np.ascontiguousarray(rows.columns[split][name]), track_times=False)
+            attrs = {"format": SHARD_FORMAT, "format_version": SHARD_FORMAT_VERSION, "build_key": build_key,
+                     "index": spec.index, "start": spec.start, "stop": spec.stop,
+                     "first_episode": spec.first_episode, "last_episode": spec.last_episode,
+                     "transitions": spec.transitions, "rows_train": counts["train"],
+                     "rows_validation": counts["validation"], "columns": json.dumps(list(column_order)),
+                     "sha256": digest}
+            for k, v in attrs.items():
+                f.attrs[k] = v
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    return {"index": spec.index, "rows": counts, "sha256": digest}
+
+
+def read_shard(folder, spec: ShardSpec, build_key: str, column_order):
+    """Read one shard back and check it belongs to this build and matches its checksum.
+
+    Returns
+    -------
+    ChunkRows
+
+    Raises
+    ------
+    ShardError
+        When the file is missing, unreadable, from another build or another partition, or its
+        rows do not match its checksum.
+    """
+    import h5py
+
+    from goalkit.pipeline.chunk import ChunkRows
+
+    path = Path(folder) / spec.name
+    try:
+        with h5py.File(path, "r") as f:
+            a = f.attrs
+            expect = {"format": SHARD_FORMAT, "build_key": build_key, "index": spec.index, "start": spec.start,
+                      "stop": spec.stop, "transitions": spec.transitions}
+            for k, v in expect.items():
+                if k not in a or a[k] != v:
+                    raise ShardError(f"{spec.describe()}: attribute {k} is {a.get(k)!r}, expected {v!r}",
+                                     file=path)
+            if json.loads(a["columns"]) != list(column_order):
+                raise ShardError(f"{spec.describe()}: columns differ from the build's", file=path)
+            cols, keys = {}, {}
+            for split in SPLITS:
+                if split in f:
+                    g = f[split]
+                    keys[split] = g["keys"][()]
+                    cols[split] = {n: g[n][()] for n in column_order}
+            stored = str(a["sha256"])
+    except ShardError:
+        raise
+    except (OSError, KeyError, ValueError) as exc:
+        raise ShardError(f"{spec.describe()}: unreadable shard file ({exc})", file=path) from None
+    rows = ChunkRows(cols, keys)
+    if rows_digest(rows, column_order) != stored:
+        raise ShardError(f"{spec.describe()}: rows do not match the shard's SHA-256", file=path)
+    return rows
+
+
+def check_shard(folder, spec: ShardSpec, build_key: str, column_order) -> bool:
+    """True when the shard file exists and :func:`read_shard` accepts it."""
+    if not (Path(folder) / spec.name).is_file():
+        return False
+    try:
+        read_shard(folder, spec, build_key, column_order)
+    except ShardError:
+        return False
+    return True
