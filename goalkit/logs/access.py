@@ -6,6 +6,7 @@ Key names in messages are the full path of the dataset inside the file.
 
 from __future__ import annotations
 
+import h5py
 import numpy as np
 
 from goalkit.errors import LogError
@@ -13,12 +14,18 @@ from goalkit.logs.npzfile import NpzArrays
 
 
 class H5Access:
-    """Arrays inside one HDF5 group (``group`` is an open ``h5py.Group``)."""
+    """Arrays inside one HDF5 group (``group`` is an open ``h5py.Group``).
+
+    Dataset metadata is looked up once per key through h5py's low-level API (opening a
+    dataset through the high-level one costs several times more, which matters for logs with
+    many thousands of episode groups).
+    """
 
     def __init__(self, group, file):
         self.group = group
         self.file = str(file)
         self.prefix = group.name.strip("/")
+        self._info = {}
 
     def where(self, key: str) -> str:
         """The key's full path inside the file, for messages."""
@@ -26,40 +33,49 @@ class H5Access:
 
     def names(self) -> list[str]:
         """Names of the datasets directly in the group (for messages)."""
-        import h5py
-
         return sorted(k for k, v in self.group.items() if isinstance(v, h5py.Dataset))
 
+    def _lookup(self, key: str):
+        if key not in self._info:
+            try:
+                dsid = h5py.h5d.open(self.group.id, key.encode("utf-8"))
+                self._info[key] = (dsid, tuple(int(n) for n in dsid.shape), dsid.dtype)
+            except (KeyError, ValueError, OSError, TypeError):
+                self._info[key] = None
+        return self._info[key]
+
     def has(self, key: str) -> bool:
-        import h5py
+        return self._lookup(key) is not None
 
-        try:
-            return isinstance(self.group.get(key), h5py.Dataset)
-        except (KeyError, ValueError, OSError):
-            return False
-
-    def _ds(self, key):
-        try:
-            return self.group[key]
-        except (KeyError, OSError) as exc:
-            raise LogError(f"cannot read dataset ({exc})", file=self.file, key=self.where(key)) from None
+    def _require(self, key):
+        info = self._lookup(key)
+        if info is None:
+            raise LogError("cannot open dataset: missing, not a dataset, or the file is corrupt",
+                           file=self.file, key=self.where(key))
+        return info
 
     def shape(self, key: str) -> tuple:
-        return tuple(self._ds(key).shape)
+        return self._require(key)[1]
 
     def dtype(self, key: str) -> np.dtype:
-        return self._ds(key).dtype
+        return self._require(key)[2]
 
     def read(self, key: str, start=None, stop=None) -> np.ndarray:
         """Rows ``start:stop`` (default all) of dataset ``key``."""
-        ds = self._ds(key)
+        dsid, shape, dtype = self._require(key)
         try:
-            if ds.shape == ():
-                return np.asarray(ds[()])
-            if start is None and stop is None:
-                return ds[...]
-            return ds[slice(start, stop)]
-        except (OSError, ValueError, TypeError) as exc:
+            if shape == ():
+                return np.asarray(self.group[key][()])
+            n = shape[0]
+            a = 0 if start is None else max(0, min(int(start), n))
+            b = n if stop is None else max(a, min(int(stop), n))
+            if (a, b) == (0, n) and dtype.kind in "biuf":
+                out = np.empty(shape, dtype=dtype)
+                if out.size:
+                    dsid.read(h5py.h5s.ALL, h5py.h5s.ALL, out)
+                return out
+            return self.group[key][a:b]
+        except (OSError, ValueError, TypeError, KeyError) as exc:
             raise LogError(f"cannot read dataset, the file may be truncated or corrupt ({exc})",
                            file=self.file, key=self.where(key)) from None
 
@@ -103,8 +119,6 @@ class NpzAccess:
 def open_h5(path):
     """Open ``path`` read-only with h5py, turning every failure into a one-line LogError."""
     import os
-
-    import h5py
 
     path = str(path)
     if not os.path.exists(path):
