@@ -13,6 +13,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import h5py
@@ -101,6 +102,10 @@ class SetWriter:
         except OSError as exc:
             raise DatasetError(f"cannot create the output file ({exc})", file=self.tmp) from None
         self.hashes = {s: {n: hashlib.sha256() for n in columns} for s in SPLITS}
+        # Checksums are updated on one background thread (hashlib releases the GIL), in the
+        # order blocks are written, so hashing overlaps with relabelling and HDF5 writes.
+        self._hasher = ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-sha256")
+        self._pending_hash = None
         self.rows = {s: 0 for s in SPLITS}
         self.buffers = {s: _SplitBuffer(list(columns)) for s in SPLITS}
         filt = {"gzip": dict(compression="gzip", compression_opts=4, shuffle=True),
@@ -138,12 +143,18 @@ class SetWriter:
             ds = self.datasets[split, name]
             ds.resize(a + n, axis=0)
             ds[a:a + n] = data
-            self.hashes[split][name].update(data.tobytes())
+            self._pending_hash = self._hasher.submit(self.hashes[split][name].update, data)
         self.rows[split] = a + n
 
     # ---- finishing -------------------------------------------------------------------
+    def _finish_hashing(self) -> None:
+        self._hasher.shutdown(wait=True)
+        if self._pending_hash is not None:
+            self._pending_hash.result()
+
     def manifest(self) -> dict:
         """SHA-256 of every column's bytes, keyed ``"split/column"``."""
+        self._finish_hashing()
         return {f"{s}/{n}": self.hashes[s][n].hexdigest() for s in SPLITS for n in self.columns}
 
     def close(self, attrs: dict, split_attrs: dict | None = None) -> Path:
@@ -172,6 +183,7 @@ class SetWriter:
     def abort(self) -> None:
         """Close and remove the temporary file."""
         try:
+            self._hasher.shutdown(wait=True, cancel_futures=True)
             self.file.close()
         finally:
             self.tmp.unlink(missing_ok=True)
