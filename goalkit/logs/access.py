@@ -40,8 +40,11 @@ class H5Access:
             try:
                 dsid = h5py.h5d.open(self.group.id, key.encode("utf-8"))
                 self._info[key] = (dsid, tuple(int(n) for n in dsid.shape), dsid.dtype)
-            except (KeyError, ValueError, OSError, TypeError):
+            except KeyError:                 # missing, or not a dataset
                 self._info[key] = None
+            except (ValueError, OSError, TypeError) as exc:
+                raise LogError(f"cannot open dataset, the file may be corrupt ({exc})",
+                               file=self.file, key=self.where(key)) from None
         return self._info[key]
 
     def has(self, key: str) -> bool:

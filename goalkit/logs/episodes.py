@@ -152,6 +152,11 @@ class LogSource(Protocol):
         Transitions per episode, known without reading the bulk data.
     fields : mapping of str to (int, int)
         Named observation fields.
+
+    The readers of :func:`goalkit.logs.open_logs` also provide ``files`` (list of str, every
+    file read, for checksums), ``episode_ids`` (int64 (E,), each kept episode's position in the
+    whole log; equal to ``arange(E)`` when nothing was skipped), ``notes`` (list of str) and
+    ``skipped`` (list of (episode, reason)).
     """
 
     path: str
@@ -159,7 +164,10 @@ class LogSource(Protocol):
     fields: Mapping[str, tuple[int, int]]
 
     def read(self, start: int, stop: int) -> EpisodeSet:
-        """Read episodes at positions ``start .. stop - 1`` (ids ``start .. stop - 1``)."""
+        """Read kept episodes at positions ``start .. stop - 1``.
+
+        Their ids are ``episode_ids[start:stop]`` (``start .. stop - 1`` when nothing was skipped).
+        """
         ...
 
 
