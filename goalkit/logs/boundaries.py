@@ -34,18 +34,36 @@ def counts_from_ids(ids, *, file=None, key=None) -> np.ndarray:
     [3, 2, 1]
     """
     ids = _as_1d(ids, file=file, key=key, what="episode-id")
-    if not (np.issubdtype(ids.dtype, np.integer) or ids.dtype.kind in "US"):
-        raise LogError(f"expected an integer episode-id array, got dtype {ids.dtype}", file=file, key=key)
-    change = np.flatnonzero(ids[1:] != ids[:-1]) + 1
-    starts = np.concatenate([[0], change]).astype(np.int64)
-    first_ids = ids[starts]
-    uniq, first_pos, counts_seen = np.unique(first_ids, return_index=True, return_counts=True)
+    return counts_from_id_blocks([ids], file=file, key=key)
+
+
+def counts_from_id_blocks(blocks, *, file=None, key=None) -> np.ndarray:
+    """:func:`counts_from_ids` over consecutive blocks of the array (read a block at a time)."""
+    starts, first_ids, prev, pos = [], [], None, 0
+    for block in blocks:
+        block = np.asarray(block)
+        if not (np.issubdtype(block.dtype, np.integer) or block.dtype.kind in "US"):
+            raise LogError(f"expected an integer episode-id array, got dtype {block.dtype}",
+                           file=file, key=key)
+        if block.shape[0] == 0:
+            continue
+        d = np.flatnonzero(block[1:] != block[:-1]) + 1
+        if prev is None or block[0] != prev:
+            d = np.concatenate([[0], d]).astype(np.int64)
+        starts.append(d + pos)
+        first_ids.append(block[d])
+        prev, pos = block[-1], pos + block.shape[0]
+    if pos == 0:
+        raise LogError("expected a non-empty episode-id array, got 0 rows", file=file, key=key)
+    starts = np.concatenate(starts).astype(np.int64)
+    first_ids = np.concatenate(first_ids)
+    uniq, counts_seen = np.unique(first_ids, return_counts=True)
     if np.any(counts_seen > 1):
         bad = uniq[counts_seen > 1][0]
         again = starts[np.flatnonzero(first_ids == bad)[1]]
-        raise LogError(f"episode id {bad} comes back at row {again} after other episodes; "
+        raise LogError(f"episode id {bad.item()!r} comes back at row {again} after other episodes; "
                        f"expected each episode's rows to be contiguous", file=file, key=key)
-    return np.diff(np.concatenate([starts, [ids.shape[0]]])).astype(np.int64)
+    return np.diff(np.concatenate([starts, [pos]])).astype(np.int64)
 
 
 def counts_from_done(done, *, file=None, key=None) -> tuple[np.ndarray, bool]:
@@ -66,21 +84,35 @@ def counts_from_done(done, *, file=None, key=None) -> tuple[np.ndarray, bool]:
     ([3, 2], True)
     """
     done = _as_1d(done, file=file, key=key, what="done-flag")
-    if done.dtype.kind == "b":
-        flag = done
-    elif done.dtype.kind in "iuf":
-        bad = np.flatnonzero((done != 0) & (done != 1))
-        if bad.size:
-            raise LogError(f"expected a bool or 0/1 done flag, got {done[bad[0]].item()!r} at row {bad[0]}",
-                           file=file, key=key)
-        flag = done != 0
-    else:
-        raise LogError(f"expected a bool or 0/1 done flag, got dtype {done.dtype}", file=file, key=key)
-    ends = np.flatnonzero(flag) + 1
-    ended = bool(flag[-1])
-    if not ended:
-        ends = np.concatenate([ends, [flag.shape[0]]])
-    return np.diff(np.concatenate([[0], ends])).astype(np.int64), ended
+    return counts_from_done_blocks([done], file=file, key=key)
+
+
+def counts_from_done_blocks(blocks, *, file=None, key=None) -> tuple[np.ndarray, bool]:
+    """:func:`counts_from_done` over consecutive blocks of the array (read a block at a time)."""
+    ends, pos, last = [], 0, False
+    for block in blocks:
+        block = np.asarray(block)
+        if block.dtype.kind == "b":
+            flag = block
+        elif block.dtype.kind in "iuf":
+            bad = np.flatnonzero((block != 0) & (block != 1))
+            if bad.size:
+                raise LogError(f"expected a bool or 0/1 done flag, got {block[bad[0]].item()!r} at "
+                               f"row {pos + bad[0]}", file=file, key=key)
+            flag = block != 0
+        else:
+            raise LogError(f"expected a bool or 0/1 done flag, got dtype {block.dtype}", file=file, key=key)
+        if flag.shape[0] == 0:
+            continue
+        ends.append(np.flatnonzero(flag) + 1 + pos)
+        pos += flag.shape[0]
+        last = bool(flag[-1])
+    if pos == 0:
+        raise LogError("expected a non-empty done-flag array, got 0 rows", file=file, key=key)
+    ends = np.concatenate(ends).astype(np.int64)
+    if not last:
+        ends = np.concatenate([ends, [pos]])
+    return np.diff(np.concatenate([[0], ends])).astype(np.int64), last
 
 
 def counts_from_offsets(offsets, total: int, *, file=None, key=None) -> np.ndarray:

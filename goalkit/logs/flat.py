@@ -26,6 +26,9 @@ from goalkit.logs.access import H5Access, NpzAccess, open_h5
 from goalkit.logs.npzfile import NpzArrays
 from goalkit.logs.source import BaseSource
 
+#: Rows of a per-step boundary or task array read at a time when opening a flat log.
+BLOCK_ROWS = 1 << 22
+
 
 def _cumsum0(x) -> np.ndarray:
     return np.concatenate([[0], np.cumsum(x)]).astype(np.int64)
@@ -176,27 +179,36 @@ class FlatSource(BaseSource):
         problems += self._tasks(acc, n_act, E)
         return problems
 
+    def _blocks(self, acc, key, n):
+        """Rows of a 1-D array ``key`` in blocks of BLOCK_ROWS (never the whole array at once)."""
+        for lo in range(0, n, BLOCK_ROWS):
+            yield acc.read(key, lo, min(n, lo + BLOCK_ROWS))
+
     def _boundaries(self, acc, n_act, n_obs):
         b, f = self.layout.boundaries, self.path
         self._need(acc, b.key)
-        values = acc.read(b.key)
         problems = []
         if b.kind == "offsets":
+            values = acc.read(b.key)             # one entry per episode: small
             if values.ndim == 1 and values.shape[0] and n_obs != n_act and values[-1] == n_obs:
                 return bnd.counts_from_offsets(values, n_obs, file=f, key=b.key), "state", problems
             return bnd.counts_from_offsets(values, n_act, file=f, key=b.key), "step", problems
-        L = values.shape[0] if values.ndim else -1
+        shape = acc.shape(b.key)
+        L = shape[0] if len(shape) == 1 else -1
         if L == n_act:
             space = "step"
         elif L == n_obs:
             space = "state"
         else:
-            raise LogError(f"has shape {values.shape}; expected ({n_act},) (one per action)"
+            raise LogError(f"has shape {tuple(shape)}; expected ({n_act},) (one per action)"
                            + (f" or ({n_obs},) (one per observation)" if n_obs != n_act else ""),
                            file=f, key=b.key)
+        if L == 0:
+            raise LogError("expected a non-empty boundary array, got 0 rows", file=f, key=b.key)
+        blocks = self._blocks(acc, b.key, L)
         if b.kind == "episode_id":
-            return bnd.counts_from_ids(values, file=f, key=b.key), space, problems
-        counts, ended = bnd.counts_from_done(values, file=f, key=b.key)
+            return bnd.counts_from_id_blocks(blocks, file=f, key=b.key), space, problems
+        counts, ended = bnd.counts_from_done_blocks(blocks, file=f, key=b.key)
         if not ended:
             e = counts.shape[0] - 1
             problems.append((e, LogError(f"the done flag never ends the last episode: its last "
@@ -236,25 +248,37 @@ class FlatSource(BaseSource):
         if key is None:
             return []
         self._need(acc, key)
-        values = np.asarray(acc.read(key))
-        if values.ndim == 0:
-            self.task_of = np.full(E, checks.task_value(values, file=f, key=key), dtype=np.int64)
+        shape = acc.shape(key)
+        if shape == ():
+            self.task_of = np.full(E, checks.task_value(acc.read(key), file=f, key=key), dtype=np.int64)
             return []
-        if values.ndim != 1 or values.shape[0] not in (n_act, E):
-            raise LogError(f"has shape {values.shape}; expected ({n_act},) (one per action), ({E},) "
+        if len(shape) != 1 or shape[0] not in (n_act, E):
+            raise LogError(f"has shape {tuple(shape)}; expected ({n_act},) (one per action), ({E},) "
                            f"(one per episode) or a scalar", file=f, key=key)
-        if values.shape[0] == E and E != n_act:
-            per = values
-            problems = []
+        problems = []
+        if shape[0] == E and E != n_act:
+            per = acc.read(key)                  # one per episode
         else:
-            starts = np.minimum(self.step_start, max(n_act - 1, 0))
-            per = values[starts]
-            change = values != np.repeat(per, self.step_rows)
-            problems = []
-            for e in np.unique(np.repeat(np.arange(E), self.step_rows)[change]).tolist():
-                row = int(np.flatnonzero(change[self.step_start[e]:self.step_start[e] + self.step_rows[e]])[0])
+            # one per action row: the episode's value is its first row's; read block by block
+            per, first_change = None, {}
+            ends = self.step_start + self.step_rows
+            for i, block in enumerate(self._blocks(acc, key, n_act)):
+                lo = i * BLOCK_ROWS
+                if per is None:
+                    per = np.zeros(E, dtype=block.dtype)
+                here = np.flatnonzero((self.step_start >= lo) & (self.step_start < lo + block.shape[0])
+                                      & (self.step_rows > 0))
+                per[here] = block[self.step_start[here] - lo]
+                rows = np.arange(lo, lo + block.shape[0])
+                ep = np.searchsorted(self.step_start, rows, side="right") - 1
+                inside = (ep >= 0) & (rows < ends[np.maximum(ep, 0)])
+                bad = np.flatnonzero(inside & (block != per[np.maximum(ep, 0)]))
+                eps_bad, first = np.unique(ep[bad], return_index=True)
+                for e, r in zip(eps_bad.tolist(), bad[first].tolist()):   # one per bad episode
+                    first_change.setdefault(e, lo + r)
+            for e, row in sorted(first_change.items()):
                 problems.append((e, LogError("expected one task id per episode, the value changes",
-                                             file=f, key=key, episode=e, step=row)))
+                                             file=f, key=key, episode=e, step=int(row - self.step_start[e]))))
         if per.dtype.kind not in "iu":
             if per.dtype.kind == "f" and np.all(np.isfinite(per)) and np.all(per == np.round(per)):
                 per = per.astype(np.int64)

@@ -8,7 +8,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from goalkit.errors import LogError
-from goalkit.logs.boundaries import counts_from_done, counts_from_ids, counts_from_offsets
+from goalkit.logs.boundaries import (counts_from_done, counts_from_done_blocks, counts_from_id_blocks,
+                                     counts_from_ids, counts_from_offsets)
 from goalkit.logs.flat import ranges_index
 
 lengths_st = st.lists(st.integers(min_value=1, max_value=30), min_size=1, max_size=40)
@@ -88,3 +89,24 @@ def test_bad_done_values():
         counts_from_done(np.array([0, 2, 1]))
     with pytest.raises(LogError, match="expected a 1-D done-flag array"):
         counts_from_done(np.zeros((3, 2), dtype=bool))
+
+
+def split_blocks(arr, cuts):
+    edges = sorted({0, len(arr), *[c % (len(arr) + 1) for c in cuts]})
+    return [arr[a:b] for a, b in zip(edges[:-1], edges[1:])]
+
+
+@SETTINGS
+@given(lengths=lengths_st, cuts=st.lists(st.integers(0, 10**6), max_size=6))
+def test_block_by_block_equals_whole_array(lengths, cuts):
+    ids = np.repeat(np.arange(len(lengths)) * 2 + 1, lengths)
+    assert counts_from_id_blocks(split_blocks(ids, cuts)).tolist() == lengths
+    done = np.zeros(sum(lengths), dtype=bool)
+    done[np.cumsum(lengths) - 1] = True
+    counts, ended = counts_from_done_blocks(split_blocks(done, cuts))
+    assert ended and counts.tolist() == lengths
+
+
+def test_id_coming_back_across_blocks():
+    with pytest.raises(LogError, match="episode id 3 comes back at row 5"):
+        counts_from_id_blocks([np.array([3, 3]), np.array([4, 4, 4]), np.array([3])])

@@ -183,3 +183,23 @@ def test_source_pickles(tmp_path):
     src.read(1, 2)
     again = pickle.loads(pickle.dumps(src))
     assert_matches(again.read(0, 3), eps, [0, 1, 2])
+
+
+@pytest.mark.parametrize("boundary", ["episode_id", "done"])
+def test_flat_open_reads_boundaries_and_tasks_block_by_block(tmp_path, monkeypatch, boundary):
+    """With tiny blocks (7 rows) opening gives the same episodes and task ids."""
+    import goalkit.logs.flat as flat_mod
+
+    eps = make_episodes(LENGTHS, seed=12)
+    table = write_flat(tmp_path / "f.h5", eps, "T+1", boundary)
+    whole = open_logs(tmp_path / "f.h5", table)
+    monkeypatch.setattr(flat_mod, "BLOCK_ROWS", 7)
+    src = open_logs(tmp_path / "f.h5", table)
+    np.testing.assert_array_equal(src.lengths, whole.lengths)
+    np.testing.assert_array_equal(src.task_of, [e["task"] for e in eps])
+    check_source(src, eps)
+    # a task id changing inside an episode that spans two blocks is still found
+    with h5py.File(tmp_path / "f.h5", "a") as f:
+        f["task"][9] = 42                      # episode 2 owns action rows 4..10
+    with pytest.raises(Exception, match="episode 2: step 5: expected one task id per episode"):
+        open_logs(tmp_path / "f.h5", table)
