@@ -204,6 +204,11 @@ class BaseSource:
             if found is not None:
                 pos, step = found
                 e = int(es.episode_ids[pos])
+                if state_level and self.layout.fields:
+                    row = values[int(es.state_offsets()[pos]) + step]
+                    col = int(np.flatnonzero(~np.isfinite(row))[0])
+                    key = next(k for (name, k) in self.layout.fields
+                               if self.fields[name][0] <= col < self.fields[name][1])
                 what = "state" if state_level else "step"
                 raise LogError(f"expected finite values, got NaN or inf (first bad {what})",
                                file=self._file_of(e), key=self._key_of(e, key), episode=e, step=step)

@@ -275,3 +275,12 @@ def test_bad_layout_argument(tmp_path):
     with pytest.raises(LayoutError, match="did you mean 'observation'"):
         open_logs(tmp_path, {"shape": "flat", "keys": {"observaton": "o", "action": "a"},
                              "boundaries": {"done": "d"}})
+
+
+def test_nan_in_a_field_names_the_field_key(tmp_path):
+    path, table, _ = grouped(tmp_path, lambda f: f["runs/ep1/trays"].__setitem__((3, 1), np.inf),
+                             fields=True)
+    src = open_logs(path, table)
+    with pytest.raises(LogError) as info:
+        src.read(0, 4)
+    assert "key runs/ep1/trays: episode 1: step 3: expected finite values, got NaN or inf" in one_line(info.value)
