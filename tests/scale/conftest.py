@@ -1,0 +1,61 @@
+"""Fixtures for the scale-out tests: small invented gantry logs and a recipe with a goal table."""
+
+import hashlib
+import sys
+from pathlib import Path
+
+import pytest
+
+from goalkit.demo import make_demo
+
+GOALKIT = str(Path(sys.executable).with_name("goalkit"))
+
+#: Weights with a cross-episode strategy, so the plan carries a goal table to the workers.
+RECIPE = """version = 1
+seed = {seed}
+[logs]
+path = "gantry-logs.h5"
+layout = "gantry-layout.toml"
+[goal]
+fields = ["head", "trays"]
+[relabel]
+goals_per_transition = 5
+gamma = 0.9
+[relabel.weights]
+original = 1
+future = 2
+geometric = 1
+other_episode = 1
+[reward]
+threshold = 0.04
+[split]
+validation = 0.2
+[output]
+path = "scale-goals.h5"
+chunk_rows = 512
+"""
+
+
+def sha256(path) -> str:
+    """SHA-256 (FIPS 180-4, via hashlib) of a whole file."""
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+
+
+@pytest.fixture(scope="session")
+def gantry(tmp_path_factory):
+    """Demo logs of 240 episodes (about 11k transitions) and the scale recipe beside them."""
+    d = tmp_path_factory.mktemp("gantry")
+    make_demo(d, episodes=240, seed=11)
+    (d / "scale-recipe.toml").write_text(RECIPE.format(seed=3), encoding="utf-8")
+    return d
+
+
+@pytest.fixture(scope="session")
+def reference(gantry, tmp_path_factory):
+    """The single-process build of the scale recipe and its SHA-256."""
+    from goalkit.pipeline.build import build
+    from goalkit.pipeline.recipe import load_recipe
+
+    out = tmp_path_factory.mktemp("ref") / "scale-goals.h5"
+    build(load_recipe(gantry / "scale-recipe.toml").with_overrides(out=out))
+    return out, sha256(out)
