@@ -106,7 +106,11 @@ def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, qui
         layout = propose_layout(logs)
         proposed = True
     try:
-        source = open_logs(logs, layout, skip_bad_episodes=skip_bad_episodes)
+        if skip_bad_episodes:   # opening reads the log once to find episodes with bad values
+            with progress(None, "check", quiet=quiet or as_json) as bar:
+                source = open_logs(logs, layout, skip_bad_episodes=True, advance=bar.update)
+        else:
+            source = open_logs(logs, layout)
         with progress(int(source.lengths.sum()), "scan", quiet=quiet or as_json) as bar:
             report = scan_logs(source, max_transitions=chunk, advance=bar.update)
     except LogError as exc:

@@ -63,8 +63,8 @@ def is_npz(path) -> bool:
 class FlatSource(BaseSource):
     """A flat HDF5 or .npz log. Use :func:`goalkit.logs.open_logs` to make one."""
 
-    def __init__(self, path, layout, skip_bad_episodes=False):
-        super().__init__(path, layout, skip_bad_episodes)
+    def __init__(self, path, layout, skip_bad_episodes=False, advance=None):
+        super().__init__(path, layout, skip_bad_episodes, advance)
         if not os.path.exists(self.path):
             raise LogError("file not found", file=self.path)
         if os.path.isdir(self.path):

@@ -37,8 +37,8 @@ def match_groups(h5file, pattern: str) -> list[str]:
 class GroupedSource(EpisodicSource):
     """HDF5 log, one group per episode. Use :func:`goalkit.logs.open_logs` to make one."""
 
-    def __init__(self, path, layout, skip_bad_episodes=False):
-        super().__init__(path, layout, skip_bad_episodes)
+    def __init__(self, path, layout, skip_bad_episodes=False, advance=None):
+        super().__init__(path, layout, skip_bad_episodes, advance)
         self.files = [self.path]
         with open_h5(self.path) as h5:
             self.groups = match_groups(h5, layout.episode_groups)

@@ -9,7 +9,7 @@ from goalkit.errors import LayoutError
 from goalkit.logs.layout import Layout, load_layout, parse_layout
 
 
-def open_logs(path, layout=None, skip_bad_episodes: bool = False):
+def open_logs(path, layout=None, skip_bad_episodes: bool = False, *, advance=None):
     """Open task logs for reading, chunk by chunk.
 
     Parameters
@@ -24,6 +24,8 @@ def open_logs(path, layout=None, skip_bad_episodes: bool = False):
         Skip episodes with per-episode problems (recorded in ``skipped``) instead of raising.
         File-level problems always raise. Finding bad values needs one read of the whole log,
         done here, chunk by chunk.
+    advance : callable, optional
+        Called with a number of transitions as that check proceeds (a progress bar's update).
 
     Returns
     -------
@@ -58,7 +60,7 @@ def open_logs(path, layout=None, skip_bad_episodes: bool = False):
     elif not isinstance(layout, Layout):
         raise LayoutError(f"expected a Layout, a layout file or a table, got {type(layout).__name__}")
     reader = {"grouped": GroupedSource, "flat": FlatSource, "per-file": PerFileSource}[layout.shape]
-    source = reader(path, layout, skip_bad_episodes=skip_bad_episodes)
+    source = reader(path, layout, skip_bad_episodes=skip_bad_episodes, advance=advance)
     if proposed:
         source.notes.insert(0, "no layout given: read with a proposed layout")
     return source

@@ -35,8 +35,8 @@ def episode_files(directory, pattern: str) -> list[str]:
 class PerFileSource(EpisodicSource):
     """A directory of per-episode .npz files. Use :func:`goalkit.logs.open_logs` to make one."""
 
-    def __init__(self, path, layout, skip_bad_episodes=False):
-        super().__init__(path, layout, skip_bad_episodes)
+    def __init__(self, path, layout, skip_bad_episodes=False, advance=None):
+        super().__init__(path, layout, skip_bad_episodes, advance)
         self.files = episode_files(self.path, layout.file_pattern)
         metas, problems = [], []
         for e, f in enumerate(self.files):

@@ -51,8 +51,9 @@ class BaseSource:
         How observations were stored: ``"T+1"``, ``"pairs"`` or ``"T"``.
     """
 
-    def __init__(self, path, layout, skip_bad_episodes=False):
+    def __init__(self, path, layout, skip_bad_episodes=False, advance=None):
         self.path = str(path)
+        self._advance = advance          # progress of the open-time value check; not kept
         self.layout = layout
         self.skip_bad_episodes = bool(skip_bad_episodes)
         self.files: list[str] = []
@@ -99,6 +100,7 @@ class BaseSource:
         self._check_kept()
         if self.skip_bad_episodes:
             self._skip_bad_values()
+        self._advance = None             # keep the source picklable
 
     def _check_kept(self):
         if self.episode_ids.shape[0] == 0:
@@ -109,6 +111,8 @@ class BaseSource:
         """Read the kept episodes once, chunk by chunk, and skip those with bad values."""
         bad_ids = []
         for a, b in chunk_bounds(self.lengths, CHECK_CHUNK):
+            if self._advance is not None:
+                self._advance(int(self.lengths[a:b].sum()))
             try:
                 self.read(a, b)
                 continue
