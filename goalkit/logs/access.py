@@ -48,6 +48,7 @@ class H5Access:
         return self._info[key]
 
     def has(self, key: str) -> bool:
+        """True when ``key`` is a dataset of the group."""
         return self._lookup(key) is not None
 
     def _require(self, key):
@@ -58,9 +59,11 @@ class H5Access:
         return info
 
     def shape(self, key: str) -> tuple:
+        """Shape of dataset ``key``."""
         return self._require(key)[1]
 
     def dtype(self, key: str) -> np.dtype:
+        """Dtype of dataset ``key``."""
         return self._require(key)[2]
 
     def read(self, key: str, start=None, stop=None) -> np.ndarray:
@@ -98,24 +101,31 @@ class NpzAccess:
         self.file = arrays.path
 
     def where(self, key: str) -> str:
+        """The key as named in messages (array names are used as they are)."""
         return key
 
     def names(self) -> list[str]:
+        """Names of the arrays (for messages)."""
         return sorted(self.arrays.keys())
 
     def has(self, key: str) -> bool:
+        """True when the file holds array ``key``."""
         return key in self.arrays
 
     def shape(self, key: str) -> tuple:
+        """Shape of array ``key``."""
         return self.arrays.shape(key)
 
     def dtype(self, key: str) -> np.dtype:
+        """Dtype of array ``key``."""
         return self.arrays.dtype(key)
 
     def read(self, key: str, start=None, stop=None) -> np.ndarray:
+        """Rows ``start:stop`` (default all) of array ``key``."""
         return self.arrays.read(key, start, stop)
 
     def attr(self, key: str):
+        """Always None: .npz files have no attributes."""
         return None
 
 

@@ -11,7 +11,6 @@ from __future__ import annotations
 import contextlib
 import fnmatch
 
-import numpy as np
 
 from goalkit.errors import LogError
 from goalkit.logs.access import H5Access, open_h5
