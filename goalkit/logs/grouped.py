@@ -11,7 +11,6 @@ from __future__ import annotations
 import contextlib
 import fnmatch
 
-
 from goalkit.errors import LogError
 from goalkit.logs.access import H5Access, open_h5
 from goalkit.logs.episodic import EpisodicSource, join_parts, plan_episode, read_episode

@@ -110,3 +110,27 @@ def test_block_by_block_equals_whole_array(lengths, cuts):
 def test_id_coming_back_across_blocks():
     with pytest.raises(LogError, match="episode id 3 comes back at row 5"):
         counts_from_id_blocks([np.array([3, 3]), np.array([4, 4, 4]), np.array([3])])
+
+
+@settings(max_examples=40, deadline=None)
+@given(lengths=st.lists(st.integers(min_value=1, max_value=12), min_size=1, max_size=15),
+       boundary=st.sampled_from(["episode_id", "done", "offsets", "starts"]),
+       convention=st.sampled_from(["T+1", "pairs"]),
+       aligned=st.sampled_from(["step", "state"]))
+def test_flat_reader_offsets_equal_the_truth(lengths, boundary, convention, aligned):
+    """End to end: a flat .npz of random episode lengths is read with the true offsets."""
+    import tempfile
+
+    from goalkit.logs import open_logs
+    from logs_testdata import make_episodes, write_flat
+
+    if boundary == "starts" or convention == "pairs":
+        aligned = "step"                         # starts always count action rows
+    eps = make_episodes(lengths, seed=len(lengths))
+    with tempfile.TemporaryDirectory() as tmp:
+        path = f"{tmp}/f.npz"
+        table = write_flat(path, eps, convention, boundary, aligned=aligned, fmt="npz")
+        src = open_logs(path, table)
+        es = src.read(0, len(lengths))
+    np.testing.assert_array_equal(es.offsets, np.concatenate([[0], np.cumsum(lengths)]))
+    np.testing.assert_array_equal(es.state_offsets()[1:] - es.state_offsets()[:-1], np.array(lengths) + 1)
