@@ -32,7 +32,7 @@ def summarise(gm, source, output) -> dict:
     out.update({"output": str(output), "logs": source.path, "input": gm.input,
                 "episodes": int(len(source.lengths)), "states": int(source.lengths.sum() + len(source.lengths)),
                 "fields": list(gm.fields), "indices": None if gm.indices is None else list(gm.indices),
-                "fingerprint": gm.describe()["fingerprint"]})
+                "fingerprint": gm.describe()["fingerprint"], "notes": list(getattr(source, "notes", []))})
     return out
 
 
@@ -48,6 +48,7 @@ def format_summary(s: dict) -> str:
     if "delta" in s:
         lines.append(f"  slowness (delta, slowest first): {', '.join(f'{v:.3g}' for v in s['delta'][:8])}"
                      f"{', ...' if len(s['delta']) > 8 else ''}")
+    lines.extend(f"  note: {n}" for n in s.get("notes", []))
     return "\n".join(lines)
 
 
