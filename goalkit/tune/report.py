@@ -56,11 +56,12 @@ def _labelled(d: dict) -> list[str]:
     p = first["pairs"]
     eps = f", {p['episodes']:,} episodes" if p["grouped"] else ", no episode column"
     out = [f"pairs:      {p['pairs']:,} ({p['reached']:,} reached{eps})", ""]
-    rows = []
+    rows, failed = [], []
     conf = None
     for c in d["candidates"]:
         if c.get("choice") is None:
-            rows.append((c["distance"], "-", "-", "failed: " + (c["error"] or ""), "", "", "", "", ""))
+            rows.append((c["distance"], *["-"] * 8))
+            failed.append(f"  {c['distance']}: not tuned: {c['error']}")
             continue
         k = c["choice"]
         iv = c["interval"]
@@ -73,7 +74,7 @@ def _labelled(d: dict) -> list[str]:
                      "-" if iv is None else f"{_g(iv['low'])} .. {_g(iv['high'])}"))
     head = ("distance", "ROC AUC", "PR AUC", "threshold", "precision", "recall", "FPR", "F1",
             f"{conf:.0%} interval" if conf else "interval")
-    out += _table(head, rows)
+    out += _table(head, rows) + failed
     crit = {"f1": "largest F1", "youden": "largest TPR - FPR",
             "recall": f"largest threshold with precision >= {_g(ch['target'])}"}[ch["criterion"]]
     out.append(f"  (* chosen; {ch['chooser']}: {crit}; interval: bootstrap over episodes)")
@@ -85,9 +86,9 @@ def _labelled(d: dict) -> list[str]:
     out += ["", f"suggested:  [reward] distance = \"{ch['distance']}\", threshold = {_g(ch['threshold'], 6)}"]
     b = d["box_suggestion"]
     if b is not None:
+        fa = "-" if b["false_accept"] is None or math.isnan(b["false_accept"]) else f"{b['false_accept']:.1%}"
         out.append(f"box rule:   tolerances {_g(b['tolerances'])} keep {b['recall']:.1%} of the reached "
-                   f"pairs and admit {_g(b['false_accept'], 3)} of the others (precision "
-                   f"{_g(b['precision'], 3)})")
+                   f"pairs and admit {fa} of the others (precision {_g(b['precision'], 3)})")
         for n in b["notes"]:
             out.append(f"            {n}")
     return out

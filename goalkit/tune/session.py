@@ -369,8 +369,10 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
                                             n_resamples=n_resamples, seed=recipe.seed,
                                             box_recall=BOX_RECALL).fit(pairs)
             except TuningError as exc:
+                if exc.key == "target":  # name the option the user gave
+                    exc = TuningError(exc.message, file=exc.file, key="--target-precision")
                 if len(names) == 1:
-                    raise
+                    raise exc from None
                 cand.error = str(exc)
             candidates.append(cand)
         ok = [c for c in candidates if c.tuner is not None]
