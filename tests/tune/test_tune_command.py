@@ -252,3 +252,54 @@ def test_from_success_without_success_flags_in_the_layout(gantry, tmp_path):
     assert res.exit_code == 2
     assert res.stderr.count("\n") == 1 and "key success: the logs carry no success flags" in res.stderr
     assert not (tmp_path / "out.toml").exists()
+
+
+# ---- the other choosers, against scikit-learn's curves ---------------------------------------
+def test_youden_and_target_precision_choosers(gantry, raw_logs):
+    from sklearn.metrics import roc_curve
+
+    y = raw_logs["success"]
+    a, g = stored(raw_logs["achieved"]), stored(raw_logs["task_goal"])
+    d = np.sqrt(np.sum((a - g) ** 2, axis=1))
+    out = run_json(gantry / "gantry-recipe.toml", "--from-success", "--chooser", "youden",
+                   "--resamples", "0")
+    fpr, tpr, _ = roc_curve(y, -d)
+    ch = out["chosen"]
+    assert ch["criterion"] == "youden" and ch["interval"] is None
+    assert ch["recall"] - ch["fpr"] == pytest.approx(np.max(tpr - fpr), rel=1e-12)   # Youden (1950)
+    # target-precision: the largest threshold whose precision meets the target
+    target = 0.5
+    out = run_json(gantry / "gantry-recipe.toml", "--from-success", "--chooser", "target-precision",
+                   "--target-precision", str(target), "--resamples", "0")
+    thr = out["chosen"]["threshold"]
+    assert precision_score(y, d <= thr) >= target
+    larger = np.unique(d[d > thr])
+    prec = np.array([precision_score(y, d <= t) for t in larger[:400]])  # the next 400 candidates
+    assert np.all(prec < target)
+    p, r, t = precision_recall_curve(y, -d)                       # all candidates at once
+    ok = -t[p[:-1] >= target]
+    assert thr >= ok.max() and out["chosen"]["recall"] == pytest.approx(recall_score(y, d <= thr))
+
+
+def test_text_report_and_a_real_subprocess_run(gantry, tmp_path):
+    import subprocess
+    import sys
+
+    a, g = np.zeros((4, 6)), np.zeros((4, 6))
+    a[2:, 0] = 0.5
+    np.savez(tmp_path / "p.npz", achieved=a, goal=g, reached=np.array([1, 1, 0, 0]),
+             episode=np.array([0, 1, 2, 3]))
+    res = run(gantry / "gantry-recipe.toml", "--labels", tmp_path / "p.npz", "--resamples", "10",
+              "--write-recipe", tmp_path / "t.toml", "--quiet")
+    assert res.exit_code == 0, res.output
+    assert "labelled pairs from" in res.stdout and "euclidean *" in res.stdout
+    assert "suggested:  [reward] distance = \"euclidean\", threshold = 0.25" in res.stdout
+    assert "wrote:      " in res.stdout and load_recipe(tmp_path / "t.toml").reward.threshold == 0.25
+    help_ = subprocess.run([sys.executable, "-m", "goalkit.cli", "tune", "--help"], capture_output=True,
+                           text=True, check=True).stdout
+    for default in ("[default: max-f1]", "[default: 1000]", "[default:", "200000]"):
+        assert default in help_
+    done = subprocess.run([sys.executable, "-m", "goalkit.cli", "tune", str(gantry / "gantry-recipe.toml"),
+                           "--json"], capture_output=True, text=True)
+    assert done.returncode == 0 and done.stderr == ""            # no bar when piped
+    assert json.loads(done.stdout)["labels_used"] is False
