@@ -13,6 +13,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+from collections import deque
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
@@ -28,46 +29,64 @@ def temporary_path(path: Path) -> Path:
     return path.with_name(f".{path.name}.partial-{os.getpid()}")
 
 
-class _SplitBuffer:
-    """Rows queued for one split, as a list of parts; blocks are cut without copying when a
-    block lies inside one part."""
+class _SplitBlocks:
+    """One split's rows on their way to the file: queued parts and two reused block buffers.
 
-    def __init__(self, names):
-        self.names = names
-        self.parts: list[tuple[dict, np.ndarray]] = []
-        self.pending = 0
+    Rows are copied from the queued parts into a preallocated block of ``rows`` rows; a full
+    block is written and hashed while the other buffer fills. Reusing the buffers keeps the
+    writer's memory fixed however long the build runs.
+    """
 
-    def add(self, columns: dict, keys: np.ndarray):
-        self.parts.append(({n: columns[n] for n in self.names}, keys))
-        self.pending += len(keys)
+    def __init__(self, columns: dict, rows: int):
+        self.columns = columns
+        self.rows = rows
+        self.parts: deque = deque()   # (columns dict, keys) queued since the last flush
+        self.queued = 0
+        self.bufs = [None, None]
+        self.waits = [[], []]          # hash futures still reading each buffer
+        self.cur = 0
+        self.fill = 0
+        self.last_key = -1
 
-    def _cut(self, rows: int):
-        """Remove and return the first ``rows`` queued rows as (columns, keys)."""
-        pieces, need = [], rows
-        while need:
+    def buffer(self) -> dict:
+        if self.bufs[self.cur] is None:
+            self.bufs[self.cur] = {n: np.empty((self.rows, *shape), dtype=dtype)
+                                   for n, (dtype, shape) in self.columns.items()}
+        for f in self.waits[self.cur]:
+            f.result()
+        self.waits[self.cur] = []
+        return self.bufs[self.cur]
+
+    def completions(self) -> list[tuple[int, int]]:
+        """(key, queued rows consumed) at each point where the queued rows complete a block."""
+        if not self.queued:
+            return []
+        keys = np.concatenate([k for _, k in self.parts]) if len(self.parts) > 1 else self.parts[0][1]
+        ends = np.arange(self.rows - self.fill, self.queued + 1, self.rows)
+        return [(int(keys[e - 1]), int(e)) for e in ends]
+
+    def consume(self, count: int) -> None:
+        """Copy the next ``count`` queued rows into the current buffer (it must have room)."""
+        buf = self.buffer()
+        while count:
             cols, keys = self.parts[0]
-            n = len(keys)
-            if n <= need:
-                pieces.append((cols, keys))
-                self.parts.pop(0)
-                need -= n
+            m = min(count, len(keys))
+            for n in self.columns:
+                buf[n][self.fill:self.fill + m] = cols[n][:m]
+            self.last_key = int(keys[m - 1])
+            self.fill += m
+            count -= m
+            self.queued -= m
+            if m == len(keys):
+                self.parts.popleft()
             else:
-                pieces.append(({k: v[:need] for k, v in cols.items()}, keys[:need]))
-                self.parts[0] = ({k: v[need:] for k, v in cols.items()}, keys[need:])
-                need = 0
-        self.pending -= rows
-        if len(pieces) == 1:
-            return pieces[0]
-        return ({k: np.concatenate([p[0][k] for p in pieces]) for k in self.names},
-                np.concatenate([p[1] for p in pieces]))
+                self.parts[0] = ({n: v[m:] for n, v in cols.items()}, keys[m:])
 
-    def take_blocks(self, rows: int, final: bool):
-        """Cut complete blocks of ``rows`` rows (and the remainder when ``final``)."""
-        blocks = []
-        while self.pending >= rows or (final and self.pending):
-            cols, keys = self._cut(min(rows, self.pending))
-            blocks.append((int(keys[-1]), cols))
-        return blocks
+    def take(self) -> dict:
+        """Hand over the filled part of the current buffer and switch to the other buffer."""
+        block = {n: v[:self.fill] for n, v in self.bufs[self.cur].items()}
+        self.cur, self.fill = 1 - self.cur, 0
+        return block
 
 
 class SetWriter:
@@ -105,9 +124,8 @@ class SetWriter:
         # Checksums are updated on one background thread (hashlib releases the GIL), in the
         # order blocks are written, so hashing overlaps with relabelling and HDF5 writes.
         self._hasher = ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-sha256")
-        self._pending_hash = None
         self.rows = {s: 0 for s in SPLITS}
-        self.buffers = {s: _SplitBuffer(list(columns)) for s in SPLITS}
+        self.blocks = {s: _SplitBlocks(columns, self.chunk_rows) for s in SPLITS}
         filt = {"gzip": dict(compression="gzip", compression_opts=4, shuffle=True),
                 "lzf": dict(compression="lzf", shuffle=True), "none": {}}[compression]
         self.datasets = {}
@@ -120,37 +138,63 @@ class SetWriter:
 
     # ---- writing ---------------------------------------------------------------------
     def add(self, split: str, columns: dict, keys: np.ndarray) -> None:
-        """Queue rows for ``split``; ``keys`` (int64, increasing) order all rows of the build."""
+        """Queue rows for ``split``; ``keys`` (int64, increasing) order all rows of the build.
+
+        The arrays are not copied until :meth:`flush`; do not change them before it.
+        """
         if len(keys):
-            self.buffers[split].add(columns, np.asarray(keys, dtype=np.int64))
+            missing = set(self.columns) - set(columns)
+            if missing:
+                raise ValueError(f"missing columns: {sorted(missing)}")
+            sb = self.blocks[split]
+            sb.parts.append((columns, np.asarray(keys, dtype=np.int64)))
+            sb.queued += len(keys)
 
     def flush(self, final: bool = False) -> None:
-        """Write every complete block, in the order of their last row's key."""
-        blocks = []
-        for s in SPLITS:
-            blocks += [(key, s, cols) for key, cols in self.buffers[s].take_blocks(self.chunk_rows, final)]
-        blocks.sort(key=lambda b: (b[0], SPLITS.index(b[1])))
-        for _, s, cols in blocks:
-            self._write_block(s, cols)
+        """Write every block the queued rows complete, in the order of their last row's key.
 
-    def _write_block(self, split: str, cols: dict) -> None:
-        n = len(next(iter(cols.values())))
+        With ``final``, also write the partly filled blocks (the end of each split).
+        """
+        events = []
+        for s in SPLITS:
+            events += [(key, SPLITS.index(s), upto) for key, upto in self.blocks[s].completions()]
+        events.sort()
+        consumed = {s: 0 for s in SPLITS}
+        for _, si, upto in events:
+            s = SPLITS[si]
+            self.blocks[s].consume(upto - consumed[s])
+            consumed[s] = upto
+            self._write_block(s)
+        for s in SPLITS:
+            sb = self.blocks[s]
+            if sb.queued:
+                sb.consume(sb.queued)
+        if final:
+            tails = sorted((self.blocks[s].last_key, SPLITS.index(s)) for s in SPLITS if self.blocks[s].fill)
+            for _, si in tails:
+                self._write_block(SPLITS[si])
+
+    def _write_block(self, split: str) -> None:
+        sb = self.blocks[split]
+        used = sb.cur
+        block = sb.take()
+        n = len(next(iter(block.values())))
         a = self.rows[split]
-        for name, (dtype, shape) in self.columns.items():
-            data = np.ascontiguousarray(cols[name], dtype=dtype)
-            if data.shape != (n, *shape):
-                raise ValueError(f"column {name}: shape {data.shape}, expected {(n, *shape)}")
+        futures = []
+        for name in self.columns:
             ds = self.datasets[split, name]
             ds.resize(a + n, axis=0)
-            ds[a:a + n] = data
-            self._pending_hash = self._hasher.submit(self.hashes[split][name].update, data)
+            ds[a:a + n] = block[name]
+            futures.append(self._hasher.submit(self.hashes[split][name].update, block[name]))
+        sb.waits[used] = futures  # the buffer is refilled only after these hashes have read it
         self.rows[split] = a + n
 
     # ---- finishing -------------------------------------------------------------------
     def _finish_hashing(self) -> None:
         self._hasher.shutdown(wait=True)
-        if self._pending_hash is not None:
-            self._pending_hash.result()
+        for sb in self.blocks.values():
+            for f in sb.waits[0] + sb.waits[1]:
+                f.result()
 
     def manifest(self) -> dict:
         """SHA-256 of every column's bytes, keyed ``"split/column"``."""
