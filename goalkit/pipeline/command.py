@@ -56,8 +56,12 @@ def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, as_json, q
         raise GoalkitError("give --workers or --scheduler, not both", key="--scheduler")
     parsed = load_recipe(recipe).with_overrides(seed=seed, out=out)
     with ChunkProgress("build", quiet=quiet) as bar:
-        result = run_build(parsed, max_rows_per_chunk=chunk_rows, progress=bar, workers=workers,
-                           scheduler=scheduler, fresh=restart)
+        try:
+            result = run_build(parsed, max_rows_per_chunk=chunk_rows, progress=bar, workers=workers,
+                               scheduler=scheduler, fresh=restart)
+        except GoalkitError as exc:
+            _exit_if_hdf5_wedged(exc)
+            raise
     extra = {"shards": result.shards} if result.shards is not None else {}
     if as_json:
         echo_json({"path": str(result.path), **result.summary, **extra})
@@ -67,3 +71,29 @@ def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, as_json, q
             s = result.shards
             click.echo(f"  shards: {s['total']} ({s['reused']} reused from an interrupted run, "
                        f"{s['computed']} computed on {s['runner']})")
+
+
+def _exit_if_hdf5_wedged(exc) -> None:
+    """Exit now (status 2) when a failed write left an HDF5 file the library cannot close.
+
+    After a write fails (disk full, file size limit) HDF5 cannot flush the file, so it stays
+    open, and the library's own clean-up at interpreter exit then crashes. The temporary file
+    is already removed; print the one-line error and leave without that clean-up.
+    """
+    import os
+    import sys
+
+    from goalkit.cli_support import EXIT_BAD_INPUT, debug_enabled
+
+    from goalkit.pipeline.sharded import OutputWriteError
+
+    if debug_enabled() or not isinstance(exc, OutputWriteError):
+        return
+    import h5py
+
+    if not h5py.h5f.get_obj_ids(types=h5py.h5f.OBJ_FILE):
+        return
+    click.echo(f"goalkit: error: {exc}", err=True)
+    sys.stdout.flush()
+    sys.stderr.flush()
+    os._exit(EXIT_BAD_INPUT)

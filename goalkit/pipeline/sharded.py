@@ -15,6 +15,9 @@ for the next run.
 
 from __future__ import annotations
 
+import gc
+import os
+
 import numpy as np
 
 from goalkit import __version__
@@ -27,6 +30,10 @@ from goalkit.write.provenance import describe_files
 from goalkit.write.writer import SetWriter
 
 
+class OutputWriteError(DatasetError):
+    """The dataset file could not be written (disk full, no permission, file size limit)."""
+
+
 def shard_error(spec, err: dict, folder) -> GoalkitError:
     """The one-line error for a failed shard task (``err`` from :func:`workers.failure`)."""
     where = spec.describe()
@@ -35,7 +42,7 @@ def shard_error(spec, err: dict, folder) -> GoalkitError:
                  for k in ("file", "key", "episode", "step") if err.get(k) is not None]
         return ShardError(f"{where}: " + ": ".join(parts + [err["message"]]))
     if err.get("os_error"):
-        reason = err.get("strerror") or err["message"]
+        reason = os.strerror(err["errno"]) if err.get("errno") else _reason(OSError(err["message"]))
         return ShardError(f"{where}: cannot write its shard file ({reason}); the finished shards are kept "
                           f"and the same command resumes", file=folder)
     return ShardError(f"{where}: the worker failed: {err['type']}: {err['message']}")
@@ -107,7 +114,7 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int = 400_000,
                     for split, cols in rows.columns.items():
                         writer.add(split, cols, rows.keys[split])
                         summary.add(split, cols, rows.keys[split])
-                    _write(writer.flush)
+                    writer.flush()
                     if progress is not None:
                         progress(spec.transitions, plan.total_transitions)
                     cursor += 1
@@ -117,7 +124,7 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int = 400_000,
                 try:
                     runner.start(make_payload(plan, source, folder.path))
                 except OSError as exc:
-                    raise DatasetError(f"cannot write the build folder ({exc.strerror or exc})",
+                    raise DatasetError(f"cannot write the build folder ({_reason(exc)})",
                                        file=folder.path) from None
                 by_index = {s.index: s for s in pending}
                 for outcome in runner.run(pending, folder.path, key):
@@ -129,24 +136,37 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int = 400_000,
             result = summary.result()
             prov = provenance(plan, source, log_files=log_files)
             episodes = {s: int(np.sum(plan.splits == c)) for c, s in enumerate(("train", "validation"))}
-            path = _write(lambda: writer.close(
+            path = writer.close(
                 attrs={"goalkit_version": __version__, "mode": out.mode, "seed": recipe.seed,
                        "recipe": recipe.text, "provenance": prov, "summary": result},
-                split_attrs={s: {"episodes": n} for s, n in episodes.items()}))
+                split_attrs={s: {"episodes": n} for s, n in episodes.items()})
+    except OSError as exc:  # the output could not be written (disk full, no permission)
+        runner.close()
+        folder.release()
+        failed = _reason(exc)
     except BaseException:
         runner.close()
         folder.release()
         raise
+    else:
+        failed = None
+    if failed is not None:
+        # raised outside the handler, so no traceback keeps the failed HDF5 objects alive
+        gc.collect()
+        raise OutputWriteError(f"cannot write the dataset ({failed}); the finished shards are kept and the "
+                           f"same command resumes", file=recipe.output.path)
     folder.remove()
     info = {"total": len(specs), "reused": reused, "computed": len(specs) - reused,
             "runner": runner.description}
     return BuildResult(path=path, summary=result, shards=info)
 
 
-def _write(step):
-    """Run a writer step, turning a failed write (disk full, no permission) into one line."""
-    try:
-        return step()
-    except OSError as exc:
-        raise DatasetError(f"cannot write the dataset ({exc.strerror or exc}); the finished shards are "
-                           f"kept and the same command resumes") from None
+def _reason(exc: OSError) -> str:
+    """The OS's reason for a failed write, on one line (HDF5 wraps it in a longer message)."""
+    import re
+
+    if exc.errno:
+        return os.strerror(exc.errno)
+    text = " ".join(str(exc).split())
+    found = re.search(r"error message = '([^']+)'", text)
+    return found.group(1) if found else text

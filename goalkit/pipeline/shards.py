@@ -2,12 +2,16 @@
 
 A shard is a run of consecutive kept episodes (cut by :func:`~goalkit.logs.episodes.chunk_bounds`
 over episode lengths, by output rows). A worker relabels one shard and writes its rows, exactly as
-:func:`~goalkit.pipeline.chunk.relabel_chunk` returned them (no cast), to one HDF5 file::
+:func:`~goalkit.pipeline.chunk.relabel_chunk` returned them (no cast), to one uncompressed
+``.npz`` file (a zip of ``.npy`` arrays)::
 
-    /train/keys, /train/<column> ...      row keys (int64) and columns of the train rows
-    /validation/keys, /validation/<column>
-    attributes: format, build_key, index, start, stop, first_episode, last_episode,
-                transitions, rows_train, rows_validation, columns (JSON), sha256
+    train/keys, train/<column> ...        row keys (int64) and columns of the train rows
+    validation/keys, validation/<column>
+    meta                                  UTF-8 JSON: format, build_key, index, start, stop,
+                                          first_episode, last_episode, transitions, rows, columns, sha256
+
+Plain file writes, so a full disk or a size limit surfaces as one OSError (an HDF5 file with
+many datasets can fail repeatedly while its metadata cache is flushed on close).
 
 ``sha256`` covers, split by split (train, validation), the keys and then every column in the
 plan's column order, each as C-order bytes with a short header (name, dtype, shape). A shard is
@@ -63,7 +67,7 @@ class ShardSpec:
     @property
     def name(self) -> str:
         """File name of the shard inside the build folder."""
-        return f"shard-{self.index:05d}.h5"
+        return f"shard-{self.index:05d}.npz"
 
     def describe(self) -> str:
         """``"shard 3 (episodes 120..179)"``, for messages."""
@@ -143,34 +147,34 @@ def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order) -> 
     OSError
         When the file cannot be written (disk full, no permission); the temporary file is removed.
     """
-    import h5py
-
     path = Path(folder) / spec.name
     tmp = _temporary(path)
     digest = rows_digest(rows, column_order)
     counts = {s: int(len(rows.keys[s])) if s in rows.keys else 0 for s in SPLITS}
+    meta = {"format": SHARD_FORMAT, "format_version": SHARD_FORMAT_VERSION, "build_key": build_key,
+            "index": spec.index, "start": spec.start, "stop": spec.stop, "first_episode": spec.first_episode,
+            "last_episode": spec.last_episode, "transitions": spec.transitions, "rows": counts,
+            "columns": list(column_order), "sha256": digest}
+    arrays = {"meta": np.frombuffer(json.dumps(meta, sort_keys=True).encode(), dtype=np.uint8)}
+    for split in SPLITS:
+        if split in rows.keys:
+            arrays[f"{split}/keys"] = np.ascontiguousarray(rows.keys[split])
+            for name in column_order:
+                arrays[f"{split}/{name}"] = np.ascontiguousarray(rows.columns[split][name])
     try:
-        with h5py.File(tmp, "w") as f:
-            for split in SPLITS:
-                if split not in rows.keys:
-                    continue
-                g = f.create_group(split)
-                g.create_dataset("keys", data=np.ascontiguousarray(rows.keys[split]), track_times=False)
-                for name in column_order:
-                    g.create_dataset(name, data=np.ascontiguousarray(rows.columns[split][name]), track_times=False)
-            attrs = {"format": SHARD_FORMAT, "format_version": SHARD_FORMAT_VERSION, "build_key": build_key,
-                     "index": spec.index, "start": spec.start, "stop": spec.stop,
-                     "first_episode": spec.first_episode, "last_episode": spec.last_episode,
-                     "transitions": spec.transitions, "rows_train": counts["train"],
-                     "rows_validation": counts["validation"], "columns": json.dumps(list(column_order)),
-                     "sha256": digest}
-            for k, v in attrs.items():
-                f.attrs[k] = v
+        with open(tmp, "wb") as f:
+            np.savez(f, **arrays)
         os.replace(tmp, path)
     except BaseException:
         tmp.unlink(missing_ok=True)
         raise
     return {"index": spec.index, "rows": counts, "sha256": digest}
+
+
+def shard_meta(path) -> dict:
+    """The ``meta`` record of a shard file."""
+    with np.load(path, allow_pickle=False) as z:
+        return json.loads(z["meta"].tobytes().decode())
 
 
 def read_shard(folder, spec: ShardSpec, build_key: str, column_order):
@@ -186,35 +190,28 @@ def read_shard(folder, spec: ShardSpec, build_key: str, column_order):
         When the file is missing, unreadable, from another build or another partition, or its
         rows do not match its checksum.
     """
-    import h5py
-
     from goalkit.pipeline.chunk import ChunkRows
 
     path = Path(folder) / spec.name
     try:
-        with h5py.File(path, "r") as f:
-            a = f.attrs
+        with np.load(path, allow_pickle=False) as z:
+            meta = json.loads(z["meta"].tobytes().decode())
             expect = {"format": SHARD_FORMAT, "build_key": build_key, "index": spec.index, "start": spec.start,
-                      "stop": spec.stop, "transitions": spec.transitions}
+                      "stop": spec.stop, "transitions": spec.transitions, "columns": list(column_order)}
             for k, v in expect.items():
-                if k not in a or a[k] != v:
-                    raise ShardError(f"{spec.describe()}: attribute {k} is {a.get(k)!r}, expected {v!r}",
-                                     file=path)
-            if json.loads(a["columns"]) != list(column_order):
-                raise ShardError(f"{spec.describe()}: columns differ from the build's", file=path)
+                if meta.get(k) != v:
+                    raise ShardError(f"{spec.describe()}: {k} is {meta.get(k)!r}, expected {v!r}", file=path)
             cols, keys = {}, {}
             for split in SPLITS:
-                if split in f:
-                    g = f[split]
-                    keys[split] = g["keys"][()]
-                    cols[split] = {n: g[n][()] for n in column_order}
-            stored = str(a["sha256"])
+                if meta["rows"].get(split):
+                    keys[split] = z[f"{split}/keys"]
+                    cols[split] = {n: z[f"{split}/{n}"] for n in column_order}
     except ShardError:
         raise
-    except (OSError, KeyError, ValueError) as exc:
+    except (OSError, KeyError, ValueError, EOFError) as exc:
         raise ShardError(f"{spec.describe()}: unreadable shard file ({exc})", file=path) from None
     rows = ChunkRows(cols, keys)
-    if rows_digest(rows, column_order) != stored:
+    if rows_digest(rows, column_order) != meta.get("sha256"):
         raise ShardError(f"{spec.describe()}: rows do not match the shard's SHA-256", file=path)
     return rows
 

@@ -79,7 +79,7 @@ def make_payload(plan, source, folder: Path, spill: bool = True) -> Payload:
 def failure(spec, exc: BaseException) -> dict:
     """A task outcome describing ``exc`` as plain data."""
     err = {"type": type(exc).__name__, "message": str(exc), "goalkit": isinstance(exc, GoalkitError),
-           "os_error": isinstance(exc, OSError), "strerror": getattr(exc, "strerror", None)}
+           "os_error": isinstance(exc, OSError), "errno": getattr(exc, "errno", None)}
     if isinstance(exc, GoalkitError):
         err.update(message=exc.message, file=exc.file, key=exc.key, episode=exc.episode, step=exc.step)
     return {"ok": False, "index": spec.index, "error": err}

@@ -1,0 +1,132 @@
+"""Shard partition, shard files, build keys and payload spilling (unit level)."""
+
+import json
+from dataclasses import replace
+from types import SimpleNamespace
+
+import numpy as np
+import pytest
+from hypothesis import given, settings, strategies as st
+
+from goalkit.pipeline.buildfolder import BuildFolder, build_key, folder_of
+from goalkit.pipeline.chunk import ChunkRows
+from goalkit.pipeline.shards import ShardError, check_shard, plan_shards, read_shard, shard_meta, write_shard
+from goalkit.pipeline.workers import GOAL_TABLE_FILE, make_payload
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.integers(1, 50), min_size=1, max_size=60), st.integers(1, 120), st.integers(0, 5))
+def test_shards_cover_every_episode_once_in_order(lengths, limit, gap):
+    # episode ids with gaps, as when bad episodes are skipped
+    ids = np.cumsum(np.full(len(lengths), gap + 1)) - 1
+    plan = SimpleNamespace(lengths=np.array(lengths), episode_ids=ids)
+    specs = plan_shards(plan, limit)
+    assert [s.index for s in specs] == list(range(len(specs)))
+    assert specs[0].start == 0 and specs[-1].stop == len(lengths)
+    for a, b in zip(specs, specs[1:]):
+        assert a.stop == b.start
+    for s in specs:
+        assert s.stop > s.start
+        assert s.transitions == sum(lengths[s.start:s.stop])
+        assert (s.first_episode, s.last_episode) == (ids[s.start], ids[s.stop - 1])
+        # at most `limit` transitions, unless a single episode is longer than that
+        assert s.transitions <= limit or s.stop - s.start == 1
+        # greedy: the next episode would not have fitted
+        if s.stop < len(lengths):
+            assert s.transitions + lengths[s.stop] > limit
+
+
+def _rows(seed=0):
+    g = np.random.default_rng(seed)
+    cols = {"source_episode": np.arange(6, dtype=np.int64), "goal": g.normal(size=(6, 3)),
+            "reached": g.random(6) < 0.5}
+    return ChunkRows({"train": cols}, {"train": np.arange(6, dtype=np.int64) * 7})
+
+
+def test_shard_file_round_trip_and_checks(tmp_path):
+    spec = plan_shards(SimpleNamespace(lengths=np.array([3, 3]), episode_ids=np.array([4, 9])), 10)[0]
+    order = ["source_episode", "goal", "reached"]
+    rows = _rows()
+    info = write_shard(tmp_path, spec, "k1", rows, order)
+    assert info["rows"] == {"train": 6, "validation": 0}
+    back = read_shard(tmp_path, spec, "k1", order)
+    for name in order:
+        np.testing.assert_array_equal(back.columns["train"][name], rows.columns["train"][name])
+        assert back.columns["train"][name].dtype == rows.columns["train"][name].dtype
+    np.testing.assert_array_equal(back.keys["train"], rows.keys["train"])
+    assert shard_meta(tmp_path / spec.name)["last_episode"] == 9
+    assert not list(tmp_path.glob("*.partial-*"))
+    # another build's key, another partition, a changed value: all refused
+    with pytest.raises(ShardError, match="build_key"):
+        read_shard(tmp_path, spec, "k2", order)
+    with pytest.raises(ShardError, match="stop"):
+        read_shard(tmp_path, replace(spec, stop=1), "k1", order)
+    with np.load(tmp_path / spec.name) as z:
+        arrays = {k: z[k] for k in z.files}
+    arrays["train/goal"][2, 1] += 1e-12
+    np.savez(tmp_path / spec.name, **arrays)
+    assert not check_shard(tmp_path, spec, "k1", order)
+    with pytest.raises(ShardError, match=r"shard 0 \(episodes 4\.\.9\): rows do not match"):
+        read_shard(tmp_path, spec, "k1", order)
+    (tmp_path / spec.name).write_bytes(b"not a zip")
+    assert not check_shard(tmp_path, spec, "k1", order)
+
+
+def _recipe(text="seed = 0", seed=0):
+    return SimpleNamespace(text=text, seed=seed)
+
+
+def test_build_key_changes_with_every_input():
+    specs = plan_shards(SimpleNamespace(lengths=np.array([3, 3, 3]), episode_ids=np.arange(3)), 4)
+    logs = [{"path": "/l.h5", "bytes": 10, "sha256": "a" * 64}]
+    base, record = build_key(_recipe(), "layout", logs, [], specs)
+    assert base == build_key(_recipe(), "layout", logs, [], specs)[0]
+    assert json.loads(json.dumps(record)) == record
+    variants = [
+        build_key(_recipe(text="seed = 1"), "layout", logs, [], specs),
+        build_key(_recipe(seed=5), "layout", logs, [], specs),
+        build_key(_recipe(), "layout2", logs, [], specs),
+        build_key(_recipe(), "layout", [dict(logs[0], sha256="b" * 64)], [], specs),
+        build_key(_recipe(), "layout", [dict(logs[0], bytes=11)], [], specs),
+        build_key(_recipe(), "layout", logs, [{"path": "/e.npz", "bytes": 1, "sha256": "c" * 64}], specs),
+        build_key(_recipe(), "layout", logs, [], specs[:1]),
+    ]
+    assert len({base} | {k for k, _ in variants}) == len(variants) + 1
+
+
+def test_folder_of_another_key_is_emptied(tmp_path):
+    out = tmp_path / "set.h5"
+    folder = BuildFolder(out)
+    assert folder.open("k1", {}) is False
+    (folder.path / "shard-00000.npz").write_bytes(b"x")
+    (folder.path / ".shard-00001.npz.partial-99999999").write_bytes(b"x")
+    folder.release()
+    again = BuildFolder(out)
+    assert again.open("k1", {}) is True
+    assert (folder.path / "shard-00000.npz").exists()
+    assert not (folder.path / ".shard-00001.npz.partial-99999999").exists()  # a killed run's temporary
+    again.release()
+    other = BuildFolder(out)
+    assert other.open("k2", {}) is False
+    assert not (folder.path / "shard-00000.npz").exists()
+    other.remove()
+    assert not folder_of(out).exists()
+
+
+def test_large_goal_table_is_spilled_once_and_mapped(tmp_path):
+    from dataclasses import dataclass
+
+    @dataclass(frozen=True)
+    class P:  # the one BuildPlan field the payload touches
+        goal_table: object
+
+    table = np.arange(600_000, dtype=np.float32).reshape(-1, 3)  # 2.4 MB
+
+    payload = make_payload(P(table), None, tmp_path)
+    assert payload.plan.goal_table is None and payload.goal_table_file == str(tmp_path / GOAL_TABLE_FILE)
+    mapped = payload.resolve().goal_table
+    assert isinstance(mapped, np.memmap)
+    np.testing.assert_array_equal(mapped, table)
+    small = make_payload(P(table[:10]), None, tmp_path / "nowhere")
+    assert small.goal_table_file is None and small.plan.goal_table is not None
+    assert small.resolve().goal_table is small.plan.goal_table
