@@ -30,7 +30,7 @@ The label-free *suggested range* is goalkit's own rule of thumb, not a published
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -345,7 +345,7 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
     total = int(sub.lengths.sum())
     for a, b in chunk_bounds(sub.lengths, chunk_transitions):  # a loop over chunks
         chunk = sub.read(a, b)
-        parts.append(chunk)
+        parts.append(replace(chunk, frames=None))  # the diagnostics never look at camera frames
         if from_success:
             p = pairs_from_success(chunk, gmap)
             succ.append(LabelledPairs(_cast(p.achieved, gdtype), _cast(p.goal, gdtype), p.reached,
