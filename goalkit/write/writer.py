@@ -117,7 +117,8 @@ class SetWriter:
         if not self.path.parent.is_dir():
             raise DatasetError("the output folder does not exist", file=self.path.parent)
         try:
-            self.file = h5py.File(self.tmp, "w", libver="earliest")
+            # whole chunks are written once and never read back: no chunk cache (it only grows)
+            self.file = h5py.File(self.tmp, "w", libver="earliest", rdcc_nbytes=0)
         except OSError as exc:
             raise DatasetError(f"cannot create the output file ({exc})", file=self.tmp) from None
         self.hashes = {s: {n: hashlib.sha256() for n in columns} for s in SPLITS}
