@@ -53,6 +53,10 @@ def provenance(plan, source, log_files=None) -> dict:
     files = list(source.files)
     if recipe.layout_path is not None:
         layout_text = Path(recipe.layout_path).read_text(encoding="utf-8")
+    elif getattr(source, "layout", None) is not None:
+        from goalkit.logs.layout import layout_to_toml
+
+        layout_text = layout_to_toml(source.layout)  # the detected layout, so verify reads the same way
     else:
         layout_text = ""
     extra = []

@@ -116,13 +116,18 @@ def strategy_names(mixture) -> dict:
     return {int(c): n for n, c in CODES.items()}
 
 
-def check_mixture(recipe, first, context) -> None:
+def check_mixture(recipe, first, context, goal_dim: int) -> None:
     """Refuse a mixture the logs cannot serve, before anything is written."""
     active = active_strategies(recipe.mixture)
     if "original" in active and first.task_goals is None:
         raise RecipeError("strategy 'original' needs the log's own task goals, but the layout maps no "
                           "task_goal key; give it a weight of 0 or add [keys] task_goal to the layout",
                           file=recipe.file, key="relabel.weights.original")
+    if "original" in active and first.task_goals.shape[1] != goal_dim:
+        raise RecipeError(f"strategy 'original' uses the log's task goals as goals, but they have "
+                          f"{first.task_goals.shape[1]} columns and the goal map gives {goal_dim}; the task goals "
+                          f"must be in the recipe's goal space (give 'original' a weight of 0 with an embedding "
+                          f"goal map)", file=recipe.file, key="relabel.weights.original")
     if "other_episode" in active:
         for code, ids in context.split_episode_ids.items():
             if len(ids) < 2:
@@ -175,7 +180,7 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
     context = RelabelContext({c: ids[splits == c] for c in np.unique(splits).tolist()},
                              {c: lengths[splits == c] for c in np.unique(splits).tolist()},
                              _SplitLookup(ids, splits))
-    check_mixture(recipe, first, context)
+    check_mixture(recipe, first, context, goal_map.dim)
     cols = _columns(recipe, obs_shape, act_shape, first.observations.dtype, first.actions.dtype,
                     goal_map.dim, first.rewards is not None)
     table = None

@@ -155,3 +155,12 @@ def test_original_without_task_goals_is_refused(tmp_path):
     with pytest.raises(RecipeError, match="task_goal"):
         build(recipe, source=MemorySource(eps))
     assert list(tmp_path.iterdir()) == []
+
+
+def test_original_needs_task_goals_in_goal_space(tmp_path):
+    from goalkit.errors import RecipeError
+
+    eps = make_episodes()  # task goals have 3 columns
+    text = recipe_text(tmp_path / "x.h5").replace('fields = ["head"]', "indices = [0, 1]")
+    with pytest.raises(RecipeError, match="3 columns and the goal map gives 2"):
+        build(parse_recipe(text), source=MemorySource(eps))
