@@ -23,7 +23,9 @@ STREAMS = {
     "split": 5,      # reserved
     "sampler": 6,    # on-the-fly relabelling in the training sampler
     "subsample": 7,  # subsampling for fitting / recall measurement
+    "bootstrap": 8,  # threshold tuning: episode resamples (goalkit.tune.bootstrap)
 }
+# Stream numbers 1001-1005 are taken by the demo simulator (goalkit.demo.controllers.DEMO_STREAMS).
 
 
 def _mix(z: np.ndarray) -> np.ndarray:

@@ -27,9 +27,8 @@ from goalkit import rng
 from goalkit.tune.errors import TuningError
 from goalkit.tune.metrics import _run_ends, check_chooser, check_labelled, choose_index, place
 
-#: goalkit.rng stream of the bootstrap draws (tuning is not part of a build, so it shares no
-#: numbers with one; see the report about adding a named stream to goalkit.rng.STREAMS).
-BOOTSTRAP_STREAM = 8
+#: goalkit.rng stream of the bootstrap draws (its own stream, so it shares no numbers with a build).
+BOOTSTRAP_STREAM = rng.STREAMS["bootstrap"]
 
 
 @dataclass(frozen=True)
