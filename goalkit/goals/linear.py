@@ -4,10 +4,12 @@ from __future__ import annotations
 
 import numpy as np
 
+
 from goalkit.errors import EmbeddingError
 from goalkit.goals.base import Embedding, register
 from goalkit.goals.checks import check_features, check_offsets
 from goalkit.goals.moments import mean_cov, mean_var
+from goalkit.goals.rowwise import rowwise_product
 
 
 def _prepare_fit(X, offsets, min_rows=1):
@@ -202,7 +204,7 @@ class PCA(Embedding):
     def transform(self, X) -> np.ndarray:
         self._check_fitted()
         X = check_features(X, n_features=self.n_features_in_)
-        Y = (X - self.mean_) @ self.components_.T
+        Y = rowwise_product(X - self.mean_, self.components_.T)
         if self.whiten:
             Y /= np.sqrt(self.explained_variance_)
         return Y

@@ -13,11 +13,13 @@ from __future__ import annotations
 
 import numpy as np
 
+
 from goalkit.errors import EmbeddingError
 from goalkit.goals.base import Embedding, register
 from goalkit.goals.checks import check_features, check_offsets, successive_pairs
 from goalkit.goals.linear import constant_mask
 from goalkit.goals.moments import mean_var
+from goalkit.goals.rowwise import rowwise_product
 
 #: rows per chunk of the expanded signal (small enough to stay in cache; fixed, so results are
 #: identical run to run)
@@ -198,7 +200,8 @@ class SFA(Embedding):
         X = check_features(X, n_features=self.n_features_in_)
         out = np.empty((X.shape[0], self.output_dim_))
         for a in range(0, X.shape[0], CHUNK_ROWS):  # the expansion is wide: bound its memory
-            out[a:a + CHUNK_ROWS] = (self._expand(X[a:a + CHUNK_ROWS]) - self.expansion_mean_) @ self.weights_
+            out[a:a + CHUNK_ROWS] = rowwise_product(self._expand(X[a:a + CHUNK_ROWS]) - self.expansion_mean_,
+                                                    self.weights_)
         return out
 
     def summary(self) -> dict:
