@@ -120,3 +120,29 @@ def test_cli_exit_status(copy, tmp_path):
     junk.write_bytes(b"not hdf5 at all")
     res = runner.invoke(main, ["verify", str(junk)])
     assert res.exit_code == 2 and "not a readable HDF5 file" in res.output
+
+
+def test_indexed_set_with_an_embedding_goal_map_verifies(tmp_path):
+    from goalkit.goals import SFA, fit_on_logs
+    from goalkit.logs import load_layout, open_logs
+    from goalkit.write.reader import open_set
+
+    make_demo(tmp_path, episodes=25, seed=9)
+    source = open_logs(tmp_path / "gantry-logs.h5", load_layout(tmp_path / "gantry-layout.toml"))
+    fit_on_logs(source, SFA(n_components=3)).save(tmp_path / "emb.npz")
+    text = (tmp_path / "gantry-recipe.toml").read_text()
+    text = text.replace('fields = ["head", "trays"]', 'embedding = "emb.npz"').replace("original = 1", "original = 0")
+    text = text.replace('mode = "materialised"', 'mode = "indexed"').replace("gantry-goals.h5", "emb-goals.h5")
+    (tmp_path / "emb-recipe.toml").write_text(text)
+    build(load_recipe(tmp_path / "emb-recipe.toml"))
+    report = verify_set(tmp_path / "emb-goals.h5")
+    assert report.ok, report.failures
+    with open_set(tmp_path / "emb-goals.h5") as gs:
+        assert gs.mode == "indexed"
+        r = gs.read("train", start=0, stop=50)       # observations resolved from the logs
+        assert r["observation"].shape == (50, 9) and r["reached_goal"].shape == (50, 3)
+        assert gs.provenance["embedding_files"][0]["path"].endswith("emb.npz")
+    # a changed embedding file is caught
+    fit_on_logs(source, SFA(n_components=3, degree=2)).save(tmp_path / "emb.npz")
+    report = verify_set(tmp_path / "emb-goals.h5")
+    assert not report.ok and "emb.npz: changed since the build" in report.failures[0]
