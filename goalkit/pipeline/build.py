@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -36,6 +37,28 @@ class BuildResult:
     path: Path
     summary: dict
     shards: dict | None = None
+
+
+def relabelled_chunks(plan, source, bounds, ahead: bool = True):
+    """Yield ``(start, stop, ChunkRows)`` for each chunk of episodes, in order.
+
+    With ``ahead``, the next chunk is read and relabelled on a helper thread while the caller
+    writes the current one (numpy and HDF5 reads release the GIL for much of that work); the
+    results, and so the output bytes, are the same either way.
+    """
+    if not ahead:
+        for a, b in bounds:
+            yield a, b, relabel_chunk(plan, source.read(a, b))
+        return
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-chunk") as pool:
+        pending = None
+        for a, b in bounds:
+            job = (a, b, pool.submit(lambda a=a, b=b: relabel_chunk(plan, source.read(a, b))))
+            if pending is not None:
+                yield pending[0], pending[1], pending[2].result()
+            pending = job
+        if pending is not None:
+            yield pending[0], pending[1], pending[2].result()
 
 
 def chunk_transitions(plan, rows_per_chunk: int = CHUNK_ROWS) -> int:
@@ -130,9 +153,7 @@ def build(recipe, *, source=None, max_rows_per_chunk: int = CHUNK_ROWS, progress
     summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed)
     out = recipe.output
     with SetWriter(out.path, plan.columns, chunk_rows=out.chunk_rows, compression=out.compression) as writer:
-        for a, b in chunk_bounds(plan.lengths, per_chunk):
-            chunk = source.read(a, b)
-            rows = relabel_chunk(plan, chunk)
+        for a, b, rows in relabelled_chunks(plan, source, chunk_bounds(plan.lengths, per_chunk)):
             for split, cols in rows.columns.items():
                 writer.add(split, cols, rows.keys[split])
                 summary.add(split, cols, rows.keys[split])
