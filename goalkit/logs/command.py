@@ -2,25 +2,11 @@
 
 from __future__ import annotations
 
-import os
-from pathlib import Path
-
 import click
 
+from goalkit.atomic import write_text_atomic
 from goalkit.cli_support import echo_json, progress, user_errors
-from goalkit.errors import GoalkitError, LogError
-
-
-def write_text_atomic(path, text: str) -> None:
-    """Write ``text`` to ``path`` via a temporary file in the same directory, then rename."""
-    path = Path(path)
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    try:
-        tmp.write_text(text, encoding="utf-8")
-        os.replace(tmp, path)
-    except OSError as exc:
-        tmp.unlink(missing_ok=True)
-        raise GoalkitError(f"cannot write ({exc.strerror or exc})", file=path) from None
+from goalkit.errors import LogError
 
 
 def _fmt(x) -> str:

@@ -198,3 +198,46 @@ def iter_chunks(source: LogSource, max_transitions: int = 1_000_000) -> Iterator
     """Yield the log's episodes as EpisodeSets of at most ``max_transitions`` transitions each."""
     for start, stop in chunk_bounds(source.lengths, max_transitions):
         yield source.read(start, stop)
+
+
+def concat_episodes(parts: "list[EpisodeSet]") -> EpisodeSet:
+    """Concatenate EpisodeSets of whole episodes, in order, into one.
+
+    Examples
+    --------
+    >>> a = EpisodeSet(observations=np.zeros((3, 1)), actions=np.zeros((2, 1)),
+    ...                offsets=np.array([0, 2]), episode_ids=np.array([4]))
+    >>> concat_episodes([a, a]).offsets.tolist()
+    [0, 2, 4]
+    """
+    if len(parts) == 1:
+        return parts[0]
+
+    def cat(name):
+        vals = [getattr(p, name) for p in parts]
+        return None if vals[0] is None else np.concatenate(vals)
+
+    lengths = np.concatenate([p.lengths for p in parts])
+    return EpisodeSet(
+        observations=cat("observations"), actions=cat("actions"),
+        offsets=np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64),
+        episode_ids=cat("episode_ids"), rewards=cat("rewards"), success=cat("success"),
+        task_ids=cat("task_ids"), task_goals=cat("task_goals"), frames=cat("frames"),
+        fields=dict(parts[0].fields), source=parts[0].source)
+
+
+def consecutive_runs(positions) -> list[tuple[int, int]]:
+    """Index ranges ``(a, b)`` into sorted ``positions`` over which the positions are consecutive.
+
+    Examples
+    --------
+    >>> consecutive_runs(np.array([2, 3, 4, 9, 11, 12]))
+    [(0, 3), (3, 4), (4, 6)]
+    """
+    positions = np.asarray(positions)
+    if positions.size == 0:
+        return []
+    breaks = np.flatnonzero(np.diff(positions) != 1) + 1
+    starts = np.concatenate([[0], breaks])
+    stops = np.concatenate([breaks, [positions.size]])
+    return list(zip(starts.tolist(), stops.tolist()))

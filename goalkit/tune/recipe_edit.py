@@ -25,6 +25,7 @@ from pathlib import Path
 
 from goalkit.config import parse_toml
 from goalkit.errors import GoalkitError, RecipeError
+from goalkit.atomic import write_text_atomic
 
 #: Keys holding paths that are relative to the recipe's folder.
 PATH_KEYS = ("logs.path", "logs.layout", "goal.embedding", "output.path")
@@ -324,19 +325,6 @@ def _edit(text: str, changes: dict, note: str) -> str:
     for a, b, new in edits:
         out = out[:a] + new + out[b:]
     return out
-
-
-def write_text_atomic(path, text: str) -> Path:
-    """Write ``text`` to ``path`` through a temporary file in the same folder, then rename."""
-    path = Path(path)
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    try:
-        tmp.write_text(text, encoding="utf-8")
-        os.replace(tmp, path)
-    except OSError as exc:
-        tmp.unlink(missing_ok=True)
-        raise GoalkitError(f"cannot write ({exc.strerror or exc})", file=path) from None
-    return path
 
 
 def write_tuned_recipe(recipe, out, *, threshold, distance: str | None = None, note: str = "") -> RecipeEdit:

@@ -17,7 +17,7 @@ from __future__ import annotations
 import numpy as np
 
 from goalkit import rng
-from goalkit.logs.episodes import EpisodeSet
+from goalkit.logs.episodes import EpisodeSet, concat_episodes, consecutive_runs  # noqa: F401 (re-exported)
 
 #: The per-episode address used for the sample key (no per-state draw uses step -1).
 SAMPLE_STEP = -1
@@ -60,34 +60,6 @@ def sample_episodes(episode_ids, lengths, max_transitions: int, seed: int) -> np
     return np.sort(order[:take]).astype(np.int64)
 
 
-def _runs(positions: np.ndarray) -> list[tuple[int, int]]:
-    """Index ranges ``(a, b)`` into ``positions`` where the positions are consecutive."""
-    if positions.size == 0:
-        return []
-    breaks = np.flatnonzero(np.diff(positions) != 1) + 1
-    starts = np.r_[0, breaks]
-    stops = np.r_[breaks, positions.size]
-    return list(zip(starts.tolist(), stops.tolist()))
-
-
-def concat_episodes(parts: list[EpisodeSet]) -> EpisodeSet:
-    """Concatenate EpisodeSets of whole episodes, in order."""
-    if len(parts) == 1:
-        return parts[0]
-
-    def cat(name):
-        vals = [getattr(p, name) for p in parts]
-        return None if vals[0] is None else np.concatenate(vals)
-
-    lengths = np.concatenate([p.lengths for p in parts])
-    return EpisodeSet(
-        observations=cat("observations"), actions=cat("actions"),
-        offsets=np.r_[0, np.cumsum(lengths)].astype(np.int64),
-        episode_ids=cat("episode_ids"), rewards=cat("rewards"), success=cat("success"),
-        task_ids=cat("task_ids"), task_goals=cat("task_goals"), frames=cat("frames"),
-        fields=dict(parts[0].fields), source=parts[0].source)
-
-
 class SampledSource:
     """The chosen episodes of a log, as a log of their own.
 
@@ -122,7 +94,7 @@ class SampledSource:
     def read(self, start: int, stop: int) -> EpisodeSet:
         """Read chosen episodes ``start .. stop - 1`` (positions within the sample)."""
         pos = self.positions[start:stop]
-        parts = [self.source.read(int(pos[a]), int(pos[b - 1]) + 1) for a, b in _runs(pos)]
+        parts = [self.source.read(int(pos[a]), int(pos[b - 1]) + 1) for a, b in consecutive_runs(pos)]
         return concat_episodes(parts)
 
     def __getattr__(self, name):

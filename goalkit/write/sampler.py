@@ -13,23 +13,7 @@ import numpy as np
 
 from goalkit import rng
 from goalkit.errors import RecipeError
-from goalkit.logs.episodes import EpisodeSet, chunk_bounds
-
-
-def take_episodes(parts: list[EpisodeSet]) -> EpisodeSet:
-    """Concatenate EpisodeSets (each of whole episodes) into one."""
-    if len(parts) == 1:
-        return parts[0]
-    def cat(name):
-        vals = [getattr(p, name) for p in parts]
-        return None if vals[0] is None else np.concatenate(vals)
-    lengths = np.concatenate([p.lengths for p in parts])
-    return EpisodeSet(
-        observations=cat("observations"), actions=cat("actions"),
-        offsets=np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64),
-        episode_ids=cat("episode_ids"), rewards=cat("rewards"), success=cat("success"),
-        task_ids=cat("task_ids"), task_goals=cat("task_goals"), frames=cat("frames"),
-        fields=dict(parts[0].fields), source=parts[0].source)
+from goalkit.logs.episodes import chunk_bounds, concat_episodes, consecutive_runs
 
 
 class GoalSampler:
@@ -70,11 +54,11 @@ class GoalSampler:
         for a, b in chunk_bounds(self.plan.lengths, 500_000):
             chunk = source.read(a, b)
             keep = np.flatnonzero(self.plan.splits[a:b] == code)
-            for lo, hi in _runs(keep):
-                parts.append(chunk.select(lo, hi))
+            for lo, hi in consecutive_runs(keep):
+                parts.append(chunk.select(int(keep[lo]), int(keep[hi - 1]) + 1))
         if not parts:
             raise RecipeError(f"the {split} split holds no episode", file=recipe.file, key="split.validation")
-        self.episodes = take_episodes(parts)
+        self.episodes = concat_episodes(parts)
         self.mixture = replace(recipe.mixture, goals_per_transition=1)
         gd = np.dtype(recipe.goal.dtype)
         self.phi = self.plan.goal_map(self.episodes, np.arange(self.episodes.observations.shape[0])).astype(gd)
@@ -135,12 +119,3 @@ class GoalSampler:
             yield self.batch(256, index)
             index += 1
 
-
-def _runs(positions: np.ndarray):
-    """Consecutive runs ``(start, stop)`` in a sorted array of positions."""
-    if len(positions) == 0:
-        return []
-    breaks = np.flatnonzero(np.diff(positions) != 1) + 1
-    starts = np.concatenate([[0], breaks])
-    stops = np.concatenate([breaks, [len(positions)]])
-    return [(int(positions[a]), int(positions[b - 1]) + 1) for a, b in zip(starts, stops)]
