@@ -25,12 +25,10 @@ import argparse
 import json
 import math
 import os
-import random
 import subprocess
 import sys
 import tempfile
 import textwrap
-import time
 from pathlib import Path
 
 import h5py

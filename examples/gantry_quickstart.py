@@ -34,8 +34,9 @@ def main(workdir: Path) -> dict:
     with open_set(result.path) as goals:
         for batch in goals.batches("train", batch_size=512, shuffle=True, seed=0):
             obs, act, goal, rew = batch["observation"], batch["action"], batch["goal"], batch["reward"]
-            seen += len(rew)
-    print(f"streamed {seen} rows; goal width {goal.shape[1]}, mean reward {float(np.mean(rew)):.3f}")
+            seen += len(rew)  # a training step would consume (obs, act, goal, rew) here
+    print(f"streamed {seen} rows; observation width {obs.shape[1]}, action width {act.shape[1]}, "
+          f"goal width {goal.shape[1]}, last batch's mean reward {float(np.mean(rew)):.3f}")
 
     sampler = GoalSampler(recipe)
     fresh = sampler.batch(256, index=0)

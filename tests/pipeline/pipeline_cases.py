@@ -3,7 +3,6 @@
 import numpy as np
 
 from goalkit.logs.episodes import EpisodeSet
-from goalkit.logs.memory import MemorySource
 
 
 def make_episodes(n_episodes=60, seed=0, low=3, high=40, obs_dim=6, task_goals=True) -> EpisodeSet:
