@@ -242,6 +242,47 @@ class NeighbourIndex:
         self.labels = labels
         self._threads = threads
 
+    def __getstate__(self) -> dict:
+        """Pickle support: the faiss index travels serialised (faiss objects do not pickle)."""
+        import faiss
+
+        state = dict(self.__dict__)
+        state["_index"] = faiss.serialize_index(self._index)
+        return state
+
+    def __setstate__(self, state: dict) -> None:
+        import faiss
+
+        state = dict(state)
+        state["_index"] = faiss.deserialize_index(state["_index"])
+        self.__dict__.update(state)
+
+    @property
+    def breadth(self) -> int:
+        """Search breadth: IVF ``nprobe`` or HNSW ``efSearch`` (0 for exact search)."""
+        if self.report.method == "ivf":
+            return int(self._index.nprobe)
+        if self.report.method == "hnsw":
+            return int(self._index.hnsw.efSearch)
+        return 0
+
+    @property
+    def max_breadth(self) -> int:
+        """Largest useful breadth: ``nlist`` for IVF, the vector count for HNSW, 0 for exact."""
+        return {"ivf": int(self.report.nlist), "hnsw": len(self)}.get(self.report.method, 0)
+
+    def set_breadth(self, value: int) -> None:
+        """Set the search breadth (IVF ``nprobe`` / HNSW ``efSearch``); no effect on exact search.
+
+        For callers that tune the breadth on their own kind of queries (e.g. filtered ones);
+        :attr:`report` keeps describing the breadth :func:`build_index` chose.
+        """
+        value = max(1, int(value))
+        if self.report.method == "ivf":
+            self._index.nprobe = min(value, self.max_breadth)
+        elif self.report.method == "hnsw":
+            self._index.hnsw.efSearch = value
+
     @property
     def dim(self) -> int:
         """Width of the indexed vectors."""

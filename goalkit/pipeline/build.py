@@ -13,6 +13,7 @@ from goalkit.logs.episodes import chunk_bounds
 from goalkit.pipeline.chunk import relabel_chunk
 from goalkit.pipeline.plan import make_plan, strategy_names
 from goalkit.pipeline.summary import SummaryBuilder
+from goalkit.relabel.attach import add_to_summary, search_provenance
 from goalkit.write.provenance import describe_files
 from goalkit.write.writer import SetWriter
 
@@ -102,6 +103,7 @@ def provenance(plan, source, log_files=None) -> dict:
         "log_notes": list(getattr(source, "notes", [])),
         "skipped_episodes": [[int(e), str(r)] for e, r in getattr(source, "skipped", [])],
         "strategies": {int(k): v for k, v in strategy_names(recipe.mixture).items()},
+        **search_provenance(plan.context),
     }
 
 
@@ -160,7 +162,7 @@ def build(recipe, *, source=None, max_rows_per_chunk: int = CHUNK_ROWS, progress
             writer.flush()
             if progress is not None:
                 progress(int(plan.lengths[a:b].sum()), plan.total_transitions)
-        result = summary.result()
+        result = add_to_summary(summary.result(), plan.context)
         prov = provenance(plan, source)
         episodes = {s: int(np.sum(plan.splits == c)) for c, s in enumerate(("train", "validation"))}
         path = writer.close(

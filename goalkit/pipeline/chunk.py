@@ -84,6 +84,7 @@ def relabel_chunk(plan, chunk) -> ChunkRows:
         "goal_step": rows.goal_step,
         "hop_episode": rows.hop_episode,
         "hop_step": rows.hop_step,
+        "join_step": rows.join_step,
         "steps_to_goal": rows.steps_to_goal,
         "goal": goal.astype(gdtype),
         "goal_distance": d.astype(np.float32),

@@ -105,8 +105,8 @@ def active_strategies(mixture) -> list[str]:
 
 
 def needs_goal_table(mixture) -> bool:
-    """True when a strategy of the mixture takes goals from other episodes."""
-    return any(n in CROSS_EPISODE for n in active_strategies(mixture))
+    """True when a strategy of the mixture takes goals from other episodes (or matches a library)."""
+    return any(n in CROSS_EPISODE + ("library",) for n in active_strategies(mixture))
 
 
 def strategy_names(mixture) -> dict:
@@ -186,6 +186,10 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
     table = None
     if needs_goal_table(recipe.mixture):
         table = goal_table(source, goal_map, np.dtype(recipe.goal.dtype), max_transitions)
+    if table is not None:
+        from goalkit.relabel.attach import attach_searches
+
+        context = attach_searches(recipe, context, table, goal_map, ids, lengths, splits)
     plan = BuildPlan(recipe=recipe, goal_map=goal_map, episode_ids=ids, lengths=lengths,
                      transition_offsets=offsets, splits=splits, context=context, goal_table=table,
                      columns=cols)

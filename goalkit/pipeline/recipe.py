@@ -230,6 +230,11 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None) -> Recipe
     expect_type(skip, bool, file=file, key="logs.skip_bad_episodes", what="true or false", error=RecipeError)
     goal = _parse_goal(_table(doc, "goal", file), base, file)
     mixture = Mixture.from_table(_table(doc, "relabel", file), file)
+    if mixture.library is not None:  # relative to the recipe's folder, like every other path
+        lib = _path(mixture.library, base, file, "relabel.library")
+        if not lib.is_file():
+            raise RecipeError(f"no such goal library file: {lib}", file=file, key="relabel.library")
+        mixture = replace(mixture, library=str(lib))
     reward = RewardRule.from_table(_table(doc, "reward", file), file)
     validation, salt = _parse_split(_table(doc, "split", file, required=False), file)
     output = _parse_output(_table(doc, "output", file), base, file)

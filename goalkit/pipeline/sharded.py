@@ -92,6 +92,8 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int = 400_000,
     specs = plan_shards(plan, chunk_transitions(plan, rows_per_shard))
     log_files = describe_files(list(source.files))
     emb = describe_files([recipe.goal.embedding]) if recipe.goal.embedding is not None else []
+    if getattr(recipe.mixture, "library", None) is not None:  # a changed library invalidates shards
+        emb = emb + describe_files([recipe.mixture.library])
     key, record = build_key(recipe, _layout_text(recipe), log_files, emb, specs)
     folder = BuildFolder(recipe.output.path)
     columns = list(plan.columns)
@@ -133,7 +135,9 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int = 400_000,
                     ready.add(outcome["index"])
                     assemble()
             runner.close()
-            result = summary.result()
+            from goalkit.relabel.attach import add_to_summary
+
+            result = add_to_summary(summary.result(), plan.context)
             prov = provenance(plan, source, log_files=log_files)
             episodes = {s: int(np.sum(plan.splits == c)) for c, s in enumerate(("train", "validation"))}
             path = writer.close(

@@ -15,7 +15,11 @@ from goalkit.logs.episodes import EpisodeSet
 from goalkit.relabel.strategies import CODES, PAST_END, STRATEGIES, locate
 
 #: Keys of the recipe's ``[relabel]`` table.
-TABLE_KEYS = ("goals_per_transition", "gamma", "past_end", "weights")
+TABLE_KEYS = ("goals_per_transition", "gamma", "past_end", "weights", "neighbours", "library", "recall",
+              "index")
+
+#: Values of the ``index`` key (see :class:`goalkit.goals.neighbours.IndexSettings`).
+INDEX_METHODS = ("auto", "exact", "ivf", "hnsw")
 
 
 def _is_number(x) -> bool:
@@ -44,9 +48,13 @@ class GoalRows:
     hop_episode, hop_step : ndarray of int64 (M,)
         Intermediate state of neighbour goals; -1 otherwise.
     steps_to_goal : ndarray of int64 (M,)
-        ``j - t`` for a goal at a later state of the transition's own episode (``j > t``);
-        -1 otherwise (other episodes, external goals, and same-episode goals at or before
-        ``s_t``, to which the log shows no path).
+        ``j - t`` for a goal at a later state of the transition's own episode (``j > t``),
+        and for a library target matched at step ``j > t``; -1 otherwise (other episodes,
+        other external goals, and same-episode goals at or before ``s_t``, to which the log
+        shows no path).
+    join_step : ndarray of int64 (M,) or None
+        Step ``j`` of the own episode a neighbour, library or near-miss goal is joined at;
+        -1 for other strategies (filled with -1 when omitted).
     """
 
     transition: np.ndarray
@@ -58,6 +66,11 @@ class GoalRows:
     hop_episode: np.ndarray
     hop_step: np.ndarray
     steps_to_goal: np.ndarray
+    join_step: np.ndarray | None = None
+
+    def __post_init__(self):
+        if self.join_step is None:
+            object.__setattr__(self, "join_step", np.full(len(self.transition), -1, np.int64))
 
     def __len__(self) -> int:
         return int(self.transition.shape[0])
@@ -77,6 +90,14 @@ class Mixture:
         Discount of the geometric strategy, in (0, 1).
     past_end : {"clip", "truncate"}, default "clip"
         Geometric offsets past the episode's end (see :mod:`goalkit.relabel.strategies`).
+    neighbours : int, default 10
+        ``k`` of the neighbour and near-miss strategies (candidates per join state).
+    library : str or None
+        Goal library file (``.npy`` / ``.npz``) of the library strategy.
+    recall : float, default 0.95
+        Target recall@k of an approximate neighbour index, in (0, 1].
+    index : {"auto", "exact", "ivf", "hnsw"}, default "auto"
+        Neighbour index kind (``auto``: exact up to 50,000 states per split, IVF above).
 
     Examples
     --------
@@ -94,6 +115,10 @@ class Mixture:
     goals_per_transition: int = 4
     gamma: float = 0.9
     past_end: str = "clip"
+    neighbours: int = 10
+    library: str | None = None
+    recall: float = 0.95
+    index: str = "auto"
 
     def __post_init__(self):
         object.__setattr__(self, "weights", dict(self.weights))
@@ -134,6 +159,22 @@ class Mixture:
             tip = f"; did you mean '{hint}'?" if hint else ""
             raise RecipeError(f"unknown past_end {self.past_end!r}{tip} valid: {', '.join(PAST_END)}",
                               file=file, key="relabel.past_end")
+        k = self.neighbours
+        if isinstance(k, (bool, np.bool_)) or not isinstance(k, (int, np.integer)) or not 1 <= k <= 1024:
+            raise RecipeError(f"expected an integer from 1 to 1024, got {k!r}", file=file, key="relabel.neighbours")
+        if not _is_number(self.recall) or not 0.0 < self.recall <= 1.0:
+            raise RecipeError(f"expected a recall in (0, 1], got {self.recall!r}", file=file, key="relabel.recall")
+        if self.index not in INDEX_METHODS:
+            hint = closest(str(self.index), INDEX_METHODS)
+            tip = f"; did you mean '{hint}'?" if hint else ""
+            raise RecipeError(f"unknown index {self.index!r}{tip} valid: {', '.join(INDEX_METHODS)}",
+                              file=file, key="relabel.index")
+        if self.library is not None and (not isinstance(self.library, str) or not self.library):
+            raise RecipeError(f"expected the path of a .npy or .npz file, got {self.library!r}", file=file,
+                              key="relabel.library")
+        if self.weights.get("library", 0) > 0 and self.library is None:
+            raise RecipeError("strategy 'library' needs target goals: add library = \"targets.npy\" "
+                              "(an .npy/.npz file) to [relabel]", file=file, key="relabel.library")
 
     @classmethod
     def from_table(cls, table: Mapping[str, Any], file=None) -> "Mixture":
@@ -162,9 +203,13 @@ class Mixture:
 
     def describe(self) -> dict:
         """Return a JSON-able description (the ``[relabel]`` table that rebuilds this mixture)."""
-        return {"weights": {k: float(v) for k, v in self.weights.items()},
-                "goals_per_transition": int(self.goals_per_transition),
-                "gamma": float(self.gamma), "past_end": self.past_end}
+        out = {"weights": {k: float(v) for k, v in self.weights.items()},
+               "goals_per_transition": int(self.goals_per_transition),
+               "gamma": float(self.gamma), "past_end": self.past_end,
+               "neighbours": int(self.neighbours), "recall": float(self.recall), "index": self.index}
+        if self.library is not None:
+            out["library"] = self.library
+        return out
 
     # ---- assignment --------------------------------------------------------------------
     def _active(self) -> list[tuple[str, float]]:
@@ -202,7 +247,7 @@ class Mixture:
         seed : int
             The build's seed.
         context : RelabelContext, optional
-            Needed by ``other_episode`` (and later neighbour / library strategies).
+            Needed by ``other_episode``, ``neighbour``, ``near_miss`` and ``library``.
         transitions : ndarray of int64, optional
             Transition indices (into ``chunk``) to relabel, e.g. a sampled minibatch; all
             transitions when omitted. Rows come out sorted by (transition, slot) when the
@@ -226,6 +271,9 @@ class Mixture:
         goal_step = np.full(m, -1, np.int64)
         hop_ep = np.full(m, -1, np.int64)
         hop_step = np.full(m, -1, np.int64)
+        join_step = np.full(m, -1, np.int64)
+        steps_override = np.zeros(m, bool)
+        steps_given = np.full(m, -1, np.int64)
         external = None
         active = [STRATEGIES[n] for n, _ in self._active()]
         ext_dims = [s.external_dim(chunk, context) for s in active if s.external_dim is not None]
@@ -247,7 +295,13 @@ class Mixture:
             if got.hop_episode is not None:
                 hop_ep[rows] = got.hop_episode
                 hop_step[rows] = got.hop_step
+            if got.join_step is not None:
+                join_step[rows] = got.join_step
+            if got.steps_to_goal is not None:
+                steps_override[rows] = True
+                steps_given[rows] = got.steps_to_goal
         same = (goal_ep == eid) & (goal_step > t)
         steps_to_goal = np.where(same, goal_step - t, -1).astype(np.int64)
+        steps_to_goal = np.where(steps_override, steps_given, steps_to_goal)
         return GoalRows(tr, slot, strategy, goal_ep, goal_step, external, hop_ep, hop_step,
-                        steps_to_goal)
+                        steps_to_goal, join_step)

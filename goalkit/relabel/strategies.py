@@ -76,6 +76,11 @@ class StrategyGoals:
         Goal vectors, valid where ``goal_episode == -1``.
     hop_episode, hop_step : ndarray of int64 (M,) or None
         Intermediate state for neighbour goals; None (all -1) otherwise.
+    join_step : ndarray of int64 (M,) or None
+        Step of the transition's own episode the goal is joined at (neighbour, library,
+        near_miss); None (all -1) otherwise.
+    steps_to_goal : ndarray of int64 (M,) or None
+        Overrides the mixture's default ``j - t`` rule when given (e.g. library goals).
     """
 
     goal_episode: np.ndarray
@@ -83,6 +88,8 @@ class StrategyGoals:
     external: np.ndarray | None = None
     hop_episode: np.ndarray | None = None
     hop_step: np.ndarray | None = None
+    join_step: np.ndarray | None = None
+    steps_to_goal: np.ndarray | None = None
 
 
 @dataclass(frozen=True)

@@ -29,6 +29,7 @@ INDEX_COLUMNS = {
     "goal_step": ("int64", "", "step j of the goal state s_j, -1 when external"),
     "hop_episode": ("int64", "", "neighbour goals: the episode joined through, else -1"),
     "hop_step": ("int64", "", "neighbour goals: the step joined at, else -1"),
+    "join_step": ("int64", "", "neighbour, library, near-miss goals: own step j joined at, else -1"),
     "steps_to_goal": ("int64", "", "j - t for goals from the same episode, else -1"),
     "goal": ("goal", "goal", "the goal vector g"),
     "goal_distance": ("float32", "", "distance between phi(s_t+1) and g under the reward rule"),

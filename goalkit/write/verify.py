@@ -136,6 +136,9 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
         if mask.any():
             i = _first(mask)
             report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): {message}")
+    from goalkit.write.joined_checks import check_joined
+
+    check_joined(plan, chunk, cols, phi, pos, split_name, report, row0, _row_text)
     rule = plan.recipe.reward
     d = rule.distance(achieved.astype(np.float64), cols["goal"].astype(np.float64))
     for name, ref in (("goal_distance", d.astype(np.float32)), ("reward", rule.reward_from(d)),
@@ -186,7 +189,8 @@ def verify_set(path, max_failures: int = 20, progress=None) -> VerifyReport:
     report = VerifyReport(max_failures=max_failures)
     with GoalSet(path) as gs:
         # 1. source files
-        for entry in gs.provenance.get("log_files", []) + gs.provenance.get("embedding_files", []):
+        library_files = (gs.provenance.get("library") or {}).get("files", [])
+        for entry in gs.provenance.get("log_files", []) + gs.provenance.get("embedding_files", []) + library_files:
             try:
                 digest = file_digest(entry["path"])
             except OSError as exc:

@@ -129,9 +129,10 @@ def test_relabel_unknown_strategy_lists_valid_and_closest():
     assert "original, final, future, episode, geometric, other_episode" in err.message
 
 
-def test_relabel_reserved_strategy_not_available_yet():
-    err = relabel_error({"weights": {"neighbour": 1}})
-    assert err.key == "relabel.weights.neighbour" and "not available" in err.message
+def test_relabel_library_strategy_needs_a_library_file():
+    # codes 6-8 are available now; the library strategy without its file is refused
+    err = relabel_error({"weights": {"library": 1}})
+    assert err.key == "relabel.library" and "targets" in err.message
 
 
 @pytest.mark.parametrize("w", [-1, "2", float("nan"), True])
