@@ -19,6 +19,9 @@ def format_summary(path, summary: dict) -> str:
     q = summary.get("goal_distance_quantiles")
     if q:
         lines.append("  goal distance quantiles: " + "  ".join(f"{k}={v:.4g}" for k, v in q.items()))
+    from goalkit.relabel.attach import summary_lines
+
+    lines += summary_lines(summary)
     for w in summary.get("warnings", []):
         lines.append(f"  warning: {w}")
     return "\n".join(lines)

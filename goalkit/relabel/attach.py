@@ -101,3 +101,17 @@ def search_provenance(context) -> dict:
 
         out["library"] = {**lib.describe(), "files": describe_files([lib.file])}
     return out
+
+
+def summary_lines(summary: dict) -> list:
+    """Text lines of the build summary for the neighbour index and the library (may be empty)."""
+    lines = []
+    for split, r in (summary.get("neighbour_index") or {}).items():
+        lines.append(f"  neighbour index ({split}): {r['method']}, recall@{r['k']} {r['recall']:.3f} "
+                     f"(lower bound {r['recall_lower']:.3f}, target {r['target_recall']}, "
+                     f"{r['recall_queries']} queries)")
+    lib = summary.get("library")
+    if lib:
+        lines.append(f"  library: {lib['targets']} targets, {lib['matched_states']:,} matched states, "
+                     f"{len(lib['unreached'])} never reached")
+    return lines
