@@ -58,11 +58,15 @@ def progress(total: int, desc: str, quiet: bool = False, unit: str = "step"):
     unit : str
         Unit name for the rate.
     """
+    import shutil
+
     from tqdm import tqdm
 
     disable = quiet or not sys.stderr.isatty()
+    # a terminal that reports no size (a fresh pseudo-terminal) would get no bar at all
+    size = shutil.get_terminal_size((80, 24))
     return tqdm(total=total, desc=desc, unit=unit, unit_scale=True, disable=disable,
-                file=sys.stderr, leave=False, dynamic_ncols=True)
+                file=sys.stderr, leave=False, ncols=size.columns, nrows=size.lines)
 
 
 def _default(obj):
