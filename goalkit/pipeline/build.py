@@ -162,12 +162,27 @@ def build(recipe, *, source=None, max_rows_per_chunk: int = CHUNK_ROWS, progress
             writer.flush()
             if progress is not None:
                 progress(int(plan.lengths[a:b].sum()), plan.total_transitions)
-        result = add_to_summary(summary.result(), plan.context)
-        prov = provenance(plan, source)
-        episodes = {s: int(np.sum(plan.splits == c)) for c, s in enumerate(("train", "validation"))}
-        path = writer.close(
-            attrs={"goalkit_version": __version__, "mode": out.mode, "seed": recipe.seed,
-                   "recipe": recipe.text, "provenance": prov, "summary": result},
-            split_attrs={s: {"episodes": n} for s, n in episodes.items()},
-        )
+        path, result = close_dataset(writer, plan, source, summary)
     return BuildResult(path=path, summary=result)
+
+
+def close_dataset(writer, plan, source, summary, log_files=None):
+    """Finish a build's file: summary, provenance and attributes, then the writer's rename.
+
+    Shared by the single-process and the sharded build, so their files cannot drift apart.
+
+    Returns
+    -------
+    (Path, dict)
+        The dataset path and its summary.
+    """
+    recipe, out = plan.recipe, plan.recipe.output
+    result = add_to_summary(summary.result(), plan.context)
+    prov = provenance(plan, source, log_files=log_files)
+    episodes = {s: int(np.sum(plan.splits == c)) for c, s in enumerate(("train", "validation"))}
+    path = writer.close(
+        attrs={"goalkit_version": __version__, "mode": out.mode, "seed": recipe.seed,
+               "recipe": recipe.text, "provenance": prov, "summary": result},
+        split_attrs={s: {"episodes": n} for s, n in episodes.items()},
+    )
+    return path, result

@@ -18,9 +18,6 @@ from __future__ import annotations
 import gc
 import os
 
-import numpy as np
-
-from goalkit import __version__
 from goalkit.errors import DatasetError, GoalkitError
 from goalkit.pipeline.buildfolder import BuildFolder, build_key
 from goalkit.pipeline.plan import make_plan, strategy_names
@@ -85,7 +82,7 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int = 400_000,
         ShardError naming the shard and episodes when a task fails; DatasetError when the build
         folder or the output cannot be written.
     """
-    from goalkit.pipeline.build import BuildResult, chunk_transitions, provenance
+    from goalkit.pipeline.build import BuildResult, chunk_transitions, close_dataset
     from goalkit.pipeline.workers import make_payload
 
     plan, source = make_plan(recipe, source)
@@ -135,15 +132,7 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int = 400_000,
                     ready.add(outcome["index"])
                     assemble()
             runner.close()
-            from goalkit.relabel.attach import add_to_summary
-
-            result = add_to_summary(summary.result(), plan.context)
-            prov = provenance(plan, source, log_files=log_files)
-            episodes = {s: int(np.sum(plan.splits == c)) for c, s in enumerate(("train", "validation"))}
-            path = writer.close(
-                attrs={"goalkit_version": __version__, "mode": out.mode, "seed": recipe.seed,
-                       "recipe": recipe.text, "provenance": prov, "summary": result},
-                split_attrs={s: {"episodes": n} for s, n in episodes.items()})
+            path, result = close_dataset(writer, plan, source, summary, log_files=log_files)
     except OSError as exc:  # the output could not be written (disk full, no permission)
         runner.close()
         folder.release()

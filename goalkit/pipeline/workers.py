@@ -2,8 +2,8 @@
 
 Every worker gets the build's :class:`Payload` once (the plan and the opened log's index, no
 log arrays): at process start for the local pool, by one ``scatter`` for Dask. Large plan
-objects (the goal table; later a neighbour index) are spilled by the coordinator to files in the
-build folder and memory-mapped by each worker, so they cross no pipe and local workers share
+fields (the goal table; later a neighbour index, see :func:`register_spill`) are spilled by the
+coordinator to files in the build folder and memory-mapped by each worker, so they cross no pipe and local workers share
 their pages. A task gets only a :class:`~goalkit.pipeline.shards.ShardSpec`: it reads its
 episodes from the logs itself, relabels them and writes a shard file. It never raises: it returns
 ``{"ok": True, ...}`` or ``{"ok": False, "error": {...}}``, so any failure reaches the
@@ -20,17 +20,80 @@ from __future__ import annotations
 import os
 import threading
 import time
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, fields, replace
+from dataclasses import field as dataclass_field
 from pathlib import Path
+from typing import Callable
 
 import numpy as np
 
 from goalkit.errors import GoalkitError
 from goalkit.pipeline.shards import write_shard
 
-#: Goal tables larger than this are spilled to a memory-mapped file instead of pickled.
+#: Arrays larger than this are spilled to a memory-mapped file instead of pickled.
 SPILL_BYTES = 1 << 20
-GOAL_TABLE_FILE = "goal-table.npy"
+GOAL_TABLE_FILE = "goal_table.npy"
+
+
+@dataclass(frozen=True)
+class Spill:
+    """How a large plan field travels to workers: saved once by the coordinator, loaded by each.
+
+    Attributes
+    ----------
+    save : callable
+        ``save(value, path)``; writes the file (the caller renames it into place).
+    load : callable
+        ``load(path) -> value`` in the worker (a module-level function, pickled by reference);
+        should memory-map where it can.
+    suffix : str
+        File name suffix.
+    worth : callable
+        ``worth(value) -> bool``: spill this value (else it is pickled with the plan).
+    """
+
+    save: Callable
+    load: Callable
+    suffix: str
+    worth: Callable
+
+
+def _save_npy(value, path) -> None:
+    with open(path, "wb") as f:
+        np.save(f, np.ascontiguousarray(value), allow_pickle=False)
+
+
+def load_npy(path):
+    """Memory-map a spilled array read-only."""
+    return np.load(path, mmap_mode="r")
+
+
+def _big_array(value) -> bool:
+    return value is not None and value.nbytes > SPILL_BYTES
+
+
+#: Plan field -> how it is spilled. A strategy that adds a large plan field (a neighbour index)
+#: registers it with :func:`register_spill`.
+SPILLS: dict = {"goal_table": Spill(_save_npy, load_npy, ".npy", _big_array)}
+
+
+def register_spill(field_name: str, save, load, suffix: str, worth=lambda value: value is not None) -> None:
+    """Ship plan field ``field_name`` to workers as a file in the build folder.
+
+    Parameters
+    ----------
+    field_name : str
+        A field of :class:`~goalkit.pipeline.plan.BuildPlan`.
+    save, load, suffix, worth
+        See :class:`Spill`; ``load`` must be importable in the worker (module level).
+
+    Examples
+    --------
+    >>> import faiss                                                  # doctest: +SKIP
+    >>> register_spill("neighbour_index", lambda ix, p: faiss.write_index(ix, str(p)),
+    ...                load_index, ".faiss")                           # doctest: +SKIP
+    """
+    SPILLS[field_name] = Spill(save, load, suffix, worth)
 
 
 @dataclass(frozen=True)
@@ -40,40 +103,47 @@ class Payload:
     Attributes
     ----------
     plan : BuildPlan
-        The plan, possibly with ``goal_table`` spilled (then None here).
+        The plan, with its spilled fields set to None.
     source : LogSource
         The coordinator's opened log: paths and per-episode index, no arrays; the worker opens
         the files itself when it reads its shard.
-    goal_table_file : str or None
-        Where the spilled goal table is (a ``.npy`` file, memory-mapped read-only).
+    files : dict
+        Spilled field -> (file path, loader).
     """
 
     plan: object
     source: object
-    goal_table_file: str | None = None
+    files: dict = dataclass_field(default_factory=dict)
 
     def resolve(self):
-        """The plan with its spilled objects mapped back in."""
-        if self.goal_table_file is None:
+        """The plan with its spilled fields loaded back (memory-mapped where possible)."""
+        if not self.files:
             return self.plan
-        table = np.load(self.goal_table_file, mmap_mode="r")
-        return replace(self.plan, goal_table=table)
+        return replace(self.plan, **{name: load(path) for name, (path, load) in self.files.items()})
 
 
 def make_payload(plan, source, folder: Path, spill: bool = True) -> Payload:
-    """Build the payload; with ``spill``, write a large goal table to ``folder`` (temp + rename)."""
-    table = plan.goal_table
-    if not spill or table is None or table.nbytes <= SPILL_BYTES:
-        return Payload(plan, source)
-    path = Path(folder) / GOAL_TABLE_FILE
-    tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
-    try:
-        with open(tmp, "wb") as f:
-            np.save(f, np.ascontiguousarray(table), allow_pickle=False)
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)
-    return Payload(replace(plan, goal_table=None), source, str(path))
+    """Build the payload; with ``spill``, write each large plan field to ``folder`` once.
+
+    Files are written under a temporary name and renamed; they live in the build folder and go
+    with it.
+    """
+    known = {f.name for f in fields(plan)}
+    files, changes = {}, {}
+    for name, how in SPILLS.items():
+        value = getattr(plan, name, None) if name in known else None
+        if not spill or not how.worth(value):
+            continue
+        path = Path(folder) / f"{name}{how.suffix}"
+        tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
+        try:
+            how.save(value, tmp)
+            os.replace(tmp, path)
+        finally:
+            tmp.unlink(missing_ok=True)
+        files[name] = (str(path), how.load)
+        changes[name] = None
+    return Payload(replace(plan, **changes) if changes else plan, source, files)
 
 
 def failure(spec, exc: BaseException) -> dict:

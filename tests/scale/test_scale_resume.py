@@ -13,7 +13,6 @@ import time
 
 import numpy as np
 import psutil
-import pytest
 
 from goalkit.pipeline.buildfolder import folder_of
 from goalkit.pipeline.shards import shard_meta

@@ -123,10 +123,10 @@ def test_large_goal_table_is_spilled_once_and_mapped(tmp_path):
     table = np.arange(600_000, dtype=np.float32).reshape(-1, 3)  # 2.4 MB
 
     payload = make_payload(P(table), None, tmp_path)
-    assert payload.plan.goal_table is None and payload.goal_table_file == str(tmp_path / GOAL_TABLE_FILE)
+    assert payload.plan.goal_table is None and payload.files["goal_table"][0] == str(tmp_path / GOAL_TABLE_FILE)
     mapped = payload.resolve().goal_table
     assert isinstance(mapped, np.memmap)
     np.testing.assert_array_equal(mapped, table)
     small = make_payload(P(table[:10]), None, tmp_path / "nowhere")
-    assert small.goal_table_file is None and small.plan.goal_table is not None
+    assert small.files == {} and small.plan.goal_table is not None
     assert small.resolve().goal_table is small.plan.goal_table
