@@ -206,3 +206,12 @@ def test_recipe_errors_name_file_and_key(demo, tmp_path):
     assert e.key == "relabel.recall"
     e = err(base.replace("neighbours = 4", "neighbours = 0"))
     assert e.key == "relabel.neighbours"
+
+
+def test_worker_processes_give_the_same_bytes(demo, tmp_path):
+    # the goal search and the library ride to the workers inside the plan (faiss index serialised)
+    d, recipe, result = demo
+    single = digest(result.path)
+    out = build(recipe, workers=2, max_rows_per_chunk=3000)
+    assert out.shards["computed"] >= 2
+    assert digest(out.path) == single
