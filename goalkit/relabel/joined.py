@@ -110,12 +110,13 @@ def library(chunk, transitions, slots, seed: int, context=None) -> StrategyGoals
                              steps_to_goal=minus.copy())
     first, count = lib.later_matches(eid, t)
     matched = count > 0
+    # one draw per row: a match index among the later matches, or (unmatched) a target index
     k = rng.integers(seed, 0, np.where(matched, count, len(lib.targets)), eid, t, slots, "neighbour")
-    idx = np.where(matched, first + k, 0)
-    target = np.where(matched, lib.match_target[np.minimum(idx, max(len(lib.match_target) - 1, 0))]
-                      if len(lib.match_target) else 0, k)
-    j = np.where(matched, lib.match_step[np.minimum(idx, max(len(lib.match_step) - 1, 0))]
-                 if len(lib.match_step) else -1, -1).astype(np.int64)
+    target = k.copy()
+    j = minus.copy()
+    idx = first[matched] + k[matched]
+    target[matched] = lib.match_target[idx]
+    j[matched] = lib.match_step[idx]
     steps = np.where(matched, j - t, -1).astype(np.int64)
     return StrategyGoals(minus, minus.copy(), lib.targets[target], join_step=j, steps_to_goal=steps)
 

@@ -126,6 +126,8 @@ def tamper(path, split, column, edit):
     (6, "hop_episode", "neighbour goal must be a state s_m of the hop episode"),
     (7, "join_step", "library goal must be external, joined at a later step"),
     (8, "hop_step", "near-miss goal must be the hop state"),
+    (7, "goal", "library goal must be one of the library's targets"),
+    (8, "goal", "near-miss goal must lie beyond the threshold of the join state"),
 ])
 def test_tampering_is_caught_per_strategy(demo, tmp_path, code, column, expect):
     d, recipe, result = demo
@@ -141,6 +143,12 @@ def test_tampering_is_caught_per_strategy(demo, tmp_path, code, column, expect):
         tamper(copy, "train", column, lambda a: a.__setitem__(row, src[row]))
     elif column == "join_step":      # library match at the transition itself
         tamper(copy, "train", column, lambda a: a.__setitem__(row, t[row]))
+    elif column == "goal" and code == 7:   # a library goal that is no target
+        tamper(copy, "train", column, lambda g: g.__setitem__((row, 0), g[row, 0] + 0.25))
+    elif column == "goal":           # a near-miss goal moved onto its join state
+        plan, _ = make_plan(recipe)
+        at = plan.goal_table[plan.global_state_rows(src[row:row + 1], join[row:row + 1])][0]
+        tamper(copy, "train", column, lambda g: g.__setitem__(row, at))
     else:                            # near-miss hop step no longer the goal's step
         tamper(copy, "train", column, lambda a: a.__setitem__(row, a[row] + 1))
     report = verify_set(copy)

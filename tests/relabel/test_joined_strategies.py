@@ -158,6 +158,16 @@ def test_near_miss_of_a_dense_split_uses_exhaustive_search():
     assert np.all(cnt == 2) and np.all(eps == 2) and np.array_equal(steps, [[0, 1]] * 3)
 
 
+def test_a_split_of_one_episode_is_refused():
+    import pytest
+
+    from goalkit.errors import RecipeError
+
+    with pytest.raises(RecipeError) as info:
+        world([5, 6, 7], np.array([0, 0, 1]), 2, 0, 2)
+    assert "validation split has 1" in info.value.message and info.value.key == "relabel.weights.neighbour"
+
+
 def rule_for(metric):
     name = {"euclidean": "euclidean", "cityblock": "l1", "chebyshev": "chebyshev", "cosine": "cosine"}[metric]
     return RewardRule(name, {"euclidean": 0.3, "cityblock": 0.4, "chebyshev": 0.2, "cosine": 0.05}[metric])
