@@ -19,12 +19,15 @@ The nearest states of a logged state are mostly its own trajectory. The index is
 with ``k + min(T + 1, 1024)`` results (``T + 1`` states of the own episode), own-episode results
 are dropped, and queries left with fewer than ``k`` results are searched again with twice the
 depth, up to 4096; any still short are answered by exhaustive search (exact, in blocks).
+Near misses are ranked by the rule's own distance; the search goes deeper until no state
+beyond the fetched depth can be nearer under the rule (:meth:`GoalSearch.rule_lower_bound`),
+so with exact search they are the rule's true nearest (up to depth 4096, then as found).
 
 Determinism
 -----------
 The answer for an episode's states depends only on the index and that episode: every query
-batch is one whole episode (or a fixed sample for calibration), never a mix that depends on
-chunking, so float32 near-ties inside faiss resolve the same way in every build.
+batch is one whole episode (in fixed blocks of 2048 states for long ones; a fixed sample for
+calibration), never a mix that depends on chunking, so float32 near-ties inside faiss resolve the same way in every build.
 
 Recall
 ------
@@ -46,6 +49,9 @@ from goalkit.goals.neighbours import IndexSettings, build_index, lower_bound, sa
 #: First search depth beyond k is k + min(T + 1, FIRST_EXTRA); depth doubles up to DEPTH_CAP.
 FIRST_EXTRA = 1024
 DEPTH_CAP = 4096
+#: States of one episode searched per call (fixed blocks of the episode: memory stays bounded
+#: for long episodes and the answers still depend on the episode only).
+EPISODE_BLOCK = 2048
 #: Exhaustive search blocks (queries x database rows).
 QUERY_BLOCK = 8
 DB_BLOCK = 32768
@@ -145,7 +151,8 @@ class GoalSearch:
     settings : IndexSettings
     """
 
-    def __init__(self, splits: dict, rule, k: int, settings: IndexSettings):
+    def __init__(self, splits: dict, rule, k: int, settings: IndexSettings, dim: int = 1):
+        self.dim = int(dim)
         self.splits = splits
         self.rule = rule
         self.k = int(k)
@@ -188,9 +195,13 @@ class GoalSearch:
         """
         sp, p = self._where(int(episode_id))
         a, b = int(sp.state_offsets[p]), int(sp.state_offsets[p + 1])
-        q = np.arange(a, b, dtype=np.int64)
-        ids, _, cnt = self._filtered(sp, sp.index, q, np.full(len(q), a), np.full(len(q), b),
-                                     kind == "near_miss")
+        parts = []
+        for s in range(a, b, EPISODE_BLOCK):  # loop over blocks of the episode's states
+            q = np.arange(s, min(b, s + EPISODE_BLOCK), dtype=np.int64)
+            parts.append(self._filtered(sp, sp.index, q, np.full(len(q), a), np.full(len(q), b),
+                                        kind == "near_miss"))
+        ids = np.concatenate([p_[0] for p_ in parts])
+        cnt = np.concatenate([p_[2] for p_ in parts])
         own = sp.owner(np.maximum(ids, 0))
         eps = np.where(ids >= 0, sp.episode_ids[own], -1)
         steps = np.where(ids >= 0, ids - sp.state_offsets[own], -1)
@@ -237,20 +248,39 @@ class GoalSearch:
             kk = min(depth, n)
             d, ids = index.search(sp.vectors[q[todo]], kk)
             sel, skey, c = self._select(sp, q[todo], ids, d, lo[todo], hi[todo], beyond)
-            exhausted = kk >= n and index.report.method == "exact"
-            done = (c >= k) | exhausted
+            full = c >= k
+            if beyond:  # no unfetched state can be nearer under the rule than the k-th found
+                reach = np.max(np.where(np.isfinite(d), d, 0.0), axis=1)
+                full &= self.rule_lower_bound(reach) >= skey[:, k - 1]
+            ran_out = (ids < 0).any(axis=1)  # an approximate index returned fewer than asked
+            at_cap = depth >= DEPTH_CAP or kk >= n
+            if kk >= n and index.report.method == "exact":
+                done = np.ones(len(todo), bool)
+            else:
+                done = full | ((c >= k) & (ran_out | at_cap))
             out[todo[done]], outk[todo[done]], cnt[todo[done]] = sel[done], skey[done], c[done]
-            short = todo[~done]
-            partial = (ids[~done] < 0).any(axis=1)  # an approximate index ran out of results
-            if depth >= DEPTH_CAP or kk >= n:
-                partial[:] = True
-            if partial.any():
-                rows = short[partial]
+            exhaust = ~done & (ran_out | at_cap)
+            if exhaust.any():
+                rows = todo[exhaust]
                 e_ids, e_key, e_cnt = self._exhaustive(sp, q[rows], lo[rows], hi[rows], beyond)
                 out[rows], outk[rows], cnt[rows] = e_ids, e_key, e_cnt
-            todo = short[~partial]
+            todo = todo[~done & ~exhaust]
             depth *= 2
         return out, outk, cnt
+
+    def rule_lower_bound(self, d) -> np.ndarray:
+        """Smallest rule distance of two states ``d`` apart in the search space.
+
+        euclidean, l1: ``d``; chebyshev, box: ``d / sqrt(G)``; cosine: ``d**2 / 2``.
+        """
+        d = np.asarray(d, dtype=np.float64)
+        kind = self.rule.distance_name
+        dim = self.dim
+        if kind in ("chebyshev", "box"):
+            return d / np.sqrt(dim)
+        if kind == "cosine":
+            return d * d / 2.0
+        return d
 
     def _exhaustive(self, sp, q, lo, hi, beyond):
         """Exact filtered top-k against every state of the split, in blocks."""
@@ -369,7 +399,7 @@ def build_goal_search(goal_table, episode_ids, lengths, splits, rule, *, k: int 
     offsets = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
     settings = IndexSettings(method=method, k=int(k), target_recall=float(target_recall),
                              seed=int(seed), threads=int(threads))
-    search = GoalSearch({}, rule, k, settings)
+    search = GoalSearch({}, rule, k, settings, dim=int(np.shape(goal_table)[1]))
     for code in np.unique(splits).tolist():
         pos = np.flatnonzero(splits == code)
         if len(pos) < 2:

@@ -222,3 +222,23 @@ def test_library_strategy_takes_a_later_match_or_flags_none():
         later = np.arange(starts[src[r]] + t[r] + 1, starts[src[r]] + lengths[src[r]] + 1)
         assert reach[later].any()
     assert matched.any() and (~matched).any()
+
+
+def test_near_miss_under_chebyshev_and_box_rules_against_cdist():
+    # the search space scales box tolerances; beyond-threshold is judged by the rule itself
+    lengths = [12, 9, 15, 11]
+    owner = np.repeat(np.arange(4), np.asarray(lengths) + 1)
+    for rule, metric, scale in ((RewardRule("chebyshev", 0.04), "chebyshev", np.ones(2)),
+                                (RewardRule("box", [0.02, 0.08]), "chebyshev", 1 / np.array([0.02, 0.08]))):
+        table, starts, search, ctx, _ = world(lengths, np.zeros(4, np.int64), 2, 5, 3, rule=rule)
+        D = cdist(table.astype(np.float64) * scale, table.astype(np.float64) * scale, metric=metric)
+        thr = 1.0 if rule.distance_name == "box" else 0.04
+        for e in range(4):
+            eps, steps, cnt = search.candidates("near_miss", e)
+            for j in range(lengths[e] + 1):
+                d = np.where((owner != e) & (D[starts[e] + j] > thr), D[starts[e] + j], np.inf)
+                got = D[starts[e] + j, starts[eps[j, :cnt[j]]] + steps[j, :cnt[j]]]
+                assert np.all(got > thr)
+                # nearest beyond the threshold among the searched candidates: never nearer than the true k-th
+                assert cnt[j] == min(3, np.isfinite(d).sum())
+                np.testing.assert_allclose(np.sort(got), np.sort(d)[:cnt[j]], rtol=1e-6)
