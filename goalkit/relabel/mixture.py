@@ -187,7 +187,9 @@ class Mixture:
         RecipeError
             On an unknown key or strategy name (lists the valid ones and the closest), a
             negative, non-numeric or all-zero weight, ``gamma`` outside (0, 1),
-            ``goals_per_transition`` < 1 or not an integer, an unknown ``past_end``.
+            ``goals_per_transition`` < 1 or not an integer, an unknown ``past_end`` or
+            ``index``, ``neighbours`` outside 1 .. 1024, ``recall`` outside (0, 1], a weighted
+            ``library`` strategy without a ``library`` file.
         """
         if not isinstance(table, Mapping):
             raise RecipeError(f"expected a table, got {table!r}", file=file, key="relabel")

@@ -25,7 +25,13 @@ episode         3     ``j`` uniform on ``{0, ..., T}``
 geometric       4     ``j = t + K``, ``K ~ Geometric(1 - gamma)`` on ``{1, 2, ...}`` (see below)
 other_episode   5     a different episode of the same split, uniformly; ``j`` uniform on
                       ``{0, ..., T'}`` of that episode
+neighbour       6     a later state of another episode joined through a neighbour of ``s_j``
+library         7     a library target reached at ``s_j``, ``j > t`` (external)
+near_miss       8     a state of another episode near ``s_j`` but beyond the threshold
 ==============  ====  =======================================================================
+
+Codes 6-8 live in :mod:`goalkit.relabel.joined` (conventions there) and need the goal search
+and library that the build plan attaches to the context (:mod:`goalkit.relabel.attach`).
 
 Geometric draws ``K`` by the inverse CDF ``K = max(1, ceil(log(1 - u) / log(gamma)))`` of one
 uniform ``u``. ``past_end`` says what happens when ``t + K > T``:

@@ -223,3 +223,15 @@ def test_worker_processes_give_the_same_bytes(demo, tmp_path):
     out = build(recipe, workers=2, max_rows_per_chunk=3000)
     assert out.shards["computed"] >= 2
     assert digest(out.path) == single
+
+
+def test_changed_library_file_is_caught(demo, tmp_path):
+    d, _, _ = demo
+    target = tmp_path / "copy"
+    shutil.copytree(d, target, ignore=shutil.ignore_patterns("*.h5.shards"))
+    res = build(load_recipe(target / "joined-recipe.toml"))
+    assert verify_set(res.path).ok
+    targets = np.load(target / "targets.npy")
+    np.save(target / "targets.npy", targets[::-1])
+    report = verify_set(res.path)
+    assert not report.ok and "targets.npy: changed since the build" in report.failures[0]
