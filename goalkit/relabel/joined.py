@@ -54,8 +54,11 @@ def _hops(kind, chunk, transitions, slots, seed, context):
     if m == 0:
         return eid, t, slots, j, hop_ep, hop_step
     j = _join_steps(seed, eid, t, length, slots)
-    for e in np.unique(eid).tolist():  # loop over episodes, not transitions
-        rows = np.flatnonzero(eid == e)
+    order = np.argsort(eid, kind="stable")
+    uniq, start = np.unique(eid[order], return_index=True)
+    stop = np.append(start[1:], len(order))
+    for e, a, b in zip(uniq.tolist(), start.tolist(), stop.tolist()):  # loop over episodes
+        rows = order[a:b]
         eps, steps, cnt = search.candidates(kind, e)
         c = cnt[j[rows]]
         has = c > 0
