@@ -178,6 +178,11 @@ def close_dataset(writer, plan, source, summary, log_files=None):
     """
     recipe, out = plan.recipe, plan.recipe.output
     result = add_to_summary(summary.result(), plan.context)
+    skipped = list(getattr(source, "skipped", []))
+    result["skipped_episodes"] = len(skipped)
+    if skipped:
+        result["warnings"].append(f"{len(skipped)} episode(s) of the logs failed validation and were skipped "
+                                  f"(first: episode {skipped[0][0]}); the provenance lists them")
     prov = provenance(plan, source, log_files=log_files)
     episodes = {s: int(np.sum(plan.splits == c)) for c, s in enumerate(("train", "validation"))}
     path = writer.close(

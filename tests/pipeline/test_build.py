@@ -164,3 +164,25 @@ def test_original_needs_task_goals_in_goal_space(tmp_path):
     text = recipe_text(tmp_path / "x.h5").replace('fields = ["head"]', "indices = [0, 1]")
     with pytest.raises(RecipeError, match="3 columns and the goal map gives 2"):
         build(parse_recipe(text), source=MemorySource(eps))
+
+
+def test_skipped_episodes_are_reported(tmp_path):
+    import h5py
+
+    from goalkit.demo import make_demo
+    from goalkit.pipeline.recipe import load_recipe
+
+    info = make_demo(tmp_path, episodes=12, seed=2)
+    with h5py.File(info["logs"], "r+") as f:
+        d = f["bench/ep_00004/head"]
+        x = d[:]
+        x[2, 0] = np.nan
+        d[...] = x
+    text = open(info["recipe"]).read().replace("skip_bad_episodes = false", "skip_bad_episodes = true")
+    open(info["recipe"], "w").write(text)
+    result = build(load_recipe(info["recipe"]))
+    assert result.summary["skipped_episodes"] == 1
+    assert any("episode 4" in w for w in result.summary["warnings"])
+    with open_set(result.path) as gs:
+        assert 4 not in set(gs.read("train", ["source_episode"])["source_episode"].tolist())
+        assert gs.provenance["skipped_episodes"][0][0] == 4
