@@ -15,7 +15,9 @@ Reported: wall seconds and transitions per second of each, the planning time (se
 coordinator), the 2-worker speed-up over 1 worker and its scaling efficiency
 (``t1 / (2 * t2)``), the Dask path's overhead against the single-process build
 (``t_dask1 / t_single - 1``), and the SHA-256 of every output (they must all be equal).
-The machine is shared: its load average before and after is recorded.
+The machine is shared: its load average before and after each run is recorded, and the CPU
+seconds of each local run (this process and its finished worker processes; Dask's worker
+processes are not counted) show how many cores the build actually got.
 
 Usage::
 
@@ -32,6 +34,7 @@ import hashlib
 import json
 import os
 import platform
+import resource
 import sys
 import time
 from pathlib import Path
@@ -68,14 +71,21 @@ def logs(folder: Path, episodes: int, seed: int) -> dict:
     return info
 
 
+def cpu_seconds() -> float:
+    """User + system CPU of this process and its finished children (local workers, not Dask's)."""
+    me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    return me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
+
+
 def timed(label, fn, out: Path, results: dict, transitions: int) -> None:
     out.unlink(missing_ok=True)
-    t0 = time.perf_counter()
+    c0, t0 = cpu_seconds(), time.perf_counter()
     res = fn()
-    dt = time.perf_counter() - t0
+    dt, cpu = time.perf_counter() - t0, cpu_seconds() - c0
     results[label] = {"seconds": dt, "transitions_per_second": transitions / dt, "sha256": sha256(out),
-                      "shards": res.shards}
-    print(f"{label:<10} {dt:8.1f} s  {transitions / dt:10,.0f} transitions/s", flush=True)
+                      "shards": res.shards, "cpu_seconds": cpu, "cores_busy": cpu / dt,
+                      "load_average_after": os.getloadavg()}
+    print(f"{label:<10} {dt:8.1f} s  {transitions / dt:10,.0f} transitions/s  cpu {cpu:6.1f} s", flush=True)
 
 
 def main(argv=None) -> dict:

@@ -53,7 +53,7 @@ def _layout_text(recipe) -> str:
     return Path(recipe.layout_path).read_text(encoding="utf-8")
 
 
-def build_sharded(recipe, runner, *, source=None, rows_per_shard: int = 400_000, progress=None,
+def build_sharded(recipe, runner, *, source=None, rows_per_shard: int | None = None, progress=None,
                   fresh: bool = False):
     """Build the dataset a recipe describes with shard tasks run by ``runner``.
 
@@ -64,8 +64,9 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int = 400_000,
         Runs :func:`goalkit.pipeline.workers.run_shard`; closed here.
     source : LogSource, optional
         Already opened logs.
-    rows_per_shard : int
-        Output rows per shard (about); only speed, memory and resume granularity depend on it.
+    rows_per_shard : int, optional
+        Output rows per shard (about; default :data:`goalkit.pipeline.build.CHUNK_ROWS`); only
+        speed, memory and resume granularity depend on it.
     progress : callable, optional
         ``progress(transitions, total_transitions)`` as shards are assembled (reused ones too).
     fresh : bool
@@ -82,11 +83,11 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int = 400_000,
         ShardError naming the shard and episodes when a task fails; DatasetError when the build
         folder or the output cannot be written.
     """
-    from goalkit.pipeline.build import BuildResult, chunk_transitions, close_dataset
+    from goalkit.pipeline.build import CHUNK_ROWS, BuildResult, chunk_transitions, close_dataset
     from goalkit.pipeline.workers import make_payload
 
     plan, source = make_plan(recipe, source)
-    specs = plan_shards(plan, chunk_transitions(plan, rows_per_shard))
+    specs = plan_shards(plan, chunk_transitions(plan, rows_per_shard or CHUNK_ROWS))
     log_files = describe_files(list(source.files))
     emb = describe_files([recipe.goal.embedding]) if recipe.goal.embedding is not None else []
     if getattr(recipe.mixture, "library", None) is not None:  # a changed library invalidates shards

@@ -71,3 +71,18 @@ def test_workers_and_scheduler_together_are_refused(gantry, tmp_path):
     assert res.exit_code == 2
     assert "give --workers or --scheduler, not both" in res.output
     assert not (tmp_path / "x.h5").exists()
+
+
+def test_neighbour_goals_on_workers_match_one_process(gantry, tmp_path):
+    # neighbour goals need the plan's faiss index: it travels once per worker with the payload
+    text = (gantry / "scale-recipe.toml").read_text().replace("other_episode = 1", "neighbour = 2\nnear_miss = 1")
+    recipe_file = gantry / "neighbour-recipe.toml"
+    recipe_file.write_text(text, encoding="utf-8")
+    one, two = tmp_path / "one.h5", tmp_path / "two.h5"
+    recipe = load_recipe(recipe_file)
+    single = build(recipe.with_overrides(out=one))
+    sharded = build(recipe.with_overrides(out=two), workers=2, max_rows_per_chunk=6000)
+    assert sha256(one) == sha256(two)
+    assert single.summary == sharded.summary
+    assert single.summary["strategies"]["neighbour"]["rows"] > 0
+    assert "neighbour_index" in sharded.summary
