@@ -134,14 +134,13 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int | None = N
                     assemble()
             runner.close()
             path, result = close_dataset(writer, plan, source, summary, log_files=log_files)
-    except OSError as exc:  # the output could not be written (disk full, no permission)
+    except BaseException as exc:
         runner.close()
         folder.release()
-        failed = _reason(exc)
-    except BaseException:
-        runner.close()
-        folder.release()
-        raise
+        os_error = _os_error_in(exc)
+        if os_error is None:
+            raise
+        failed = _reason(os_error)  # the output could not be written (disk full, no permission)
     else:
         failed = None
     if failed is not None:
@@ -153,6 +152,20 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int | None = N
     info = {"total": len(specs), "reused": reused, "computed": len(specs) - reused,
             "runner": runner.description}
     return BuildResult(path=path, summary=result, shards=info)
+
+
+def _os_error_in(exc: BaseException):
+    """The OSError behind ``exc``: itself, or one it was raised while handling (HDF5 often fails
+    again while closing a file whose write failed). None for other errors."""
+    seen = 0
+    while exc is not None and seen < 10:
+        if isinstance(exc, OSError):
+            return exc
+        if isinstance(exc, GoalkitError):
+            return None
+        exc = exc.__cause__ or exc.__context__
+        seen += 1
+    return None
 
 
 def _reason(exc: OSError) -> str:
