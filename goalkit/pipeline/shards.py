@@ -6,9 +6,12 @@ over episode lengths, by output rows). A worker relabels one shard and writes it
 ``.npz`` file (a zip of ``.npy`` arrays)::
 
     train/keys, train/<column> ...        row keys (int64) and columns of the train rows
-    validation/keys, validation/<column>
+    train/<column>@transition             a column stored once per transition (repeated on read
+    train/counts                          by the rows of each transition, ``counts``)
+    validation/...                        the same for the validation rows
     meta                                  UTF-8 JSON: format, build_key, index, start, stop,
-                                          first_episode, last_episode, transitions, rows, columns, sha256
+                                          first_episode, last_episode, transitions, rows, columns,
+                                          per_transition, sha256
 
 Plain file writes, so a full disk or a size limit surfaces as one OSError (an HDF5 file with
 many datasets can fail repeatedly while its metadata cache is flushed on close).
@@ -118,6 +121,50 @@ def rows_digest(rows, column_order) -> str:
     return h.hexdigest()
 
 
+#: Suffix of a column stored once per transition (with ``SPLIT/counts``: rows per transition).
+PER_TRANSITION = "@transition"
+
+
+def _pack_split(split, keys, columns, column_order) -> dict:
+    """Arrays of one split; a column whose rows repeat per transition is stored once per transition.
+
+    Rows are in key order, and every goal slot of a transition repeats its observation, action,
+    next observation, reached goal and task reward; those columns are stored once per transition
+    (about half the bytes with five goals per transition). A column is packed only when
+    repeating the packed values gives back exactly its bytes, so nothing depends on which
+    columns repeat.
+    """
+    from goalkit.pipeline.plan import SLOT_SPAN
+
+    keys = np.ascontiguousarray(keys)
+    out = {f"{split}/keys": keys}
+    tid = keys // SLOT_SPAN
+    starts = np.flatnonzero(np.r_[True, tid[1:] != tid[:-1]]) if len(tid) else np.zeros(0, np.int64)
+    counts = np.diff(np.r_[starts, len(tid)]).astype(np.int64)
+    packed = len(starts) < len(tid)
+    if packed:
+        out[f"{split}/counts"] = counts
+    for name in column_order:
+        col = np.ascontiguousarray(columns[name])
+        if packed:
+            once = np.ascontiguousarray(col[starts])
+            if np.repeat(once, counts, axis=0).tobytes() == col.tobytes():
+                out[f"{split}/{name}{PER_TRANSITION}"] = once
+                continue
+        out[f"{split}/{name}"] = col
+    return out
+
+
+def _unpack_split(z, split, column_order):
+    keys = z[f"{split}/keys"]
+    counts = z[f"{split}/counts"] if f"{split}/counts" in z.files else None
+    cols = {}
+    for name in column_order:
+        once = f"{split}/{name}{PER_TRANSITION}"
+        cols[name] = np.repeat(z[once], counts, axis=0) if once in z.files else z[f"{split}/{name}"]
+    return keys, cols
+
+
 def _temporary(path: Path) -> Path:
     return path.with_name(f".{path.name}.partial-{os.getpid()}")
 
@@ -155,12 +202,12 @@ def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order) -> 
             "index": spec.index, "start": spec.start, "stop": spec.stop, "first_episode": spec.first_episode,
             "last_episode": spec.last_episode, "transitions": spec.transitions, "rows": counts,
             "columns": list(column_order), "sha256": digest}
-    arrays = {"meta": np.frombuffer(json.dumps(meta, sort_keys=True).encode(), dtype=np.uint8)}
+    arrays = {}
     for split in SPLITS:
         if split in rows.keys:
-            arrays[f"{split}/keys"] = np.ascontiguousarray(rows.keys[split])
-            for name in column_order:
-                arrays[f"{split}/{name}"] = np.ascontiguousarray(rows.columns[split][name])
+            arrays.update(_pack_split(split, rows.keys[split], rows.columns[split], column_order))
+    meta["per_transition"] = sorted(k for k in arrays if k.endswith(PER_TRANSITION))
+    arrays["meta"] = np.frombuffer(json.dumps(meta, sort_keys=True).encode(), dtype=np.uint8)
     try:
         with open(tmp, "wb") as f:
             np.savez(f, **arrays)
@@ -204,8 +251,7 @@ def read_shard(folder, spec: ShardSpec, build_key: str, column_order):
             cols, keys = {}, {}
             for split in SPLITS:
                 if meta["rows"].get(split):
-                    keys[split] = z[f"{split}/keys"]
-                    cols[split] = {n: z[f"{split}/{n}"] for n in column_order}
+                    keys[split], cols[split] = _unpack_split(z, split, column_order)
     except ShardError:
         raise
     except (OSError, KeyError, ValueError, EOFError) as exc:

@@ -130,3 +130,28 @@ def test_large_goal_table_is_spilled_once_and_mapped(tmp_path):
     small = make_payload(P(table[:10]), None, tmp_path / "nowhere")
     assert small.files == {} and small.plan.goal_table is not None
     assert small.resolve().goal_table is small.plan.goal_table
+
+
+def test_per_transition_columns_are_stored_once_and_read_back_exactly(tmp_path):
+    from goalkit.pipeline.plan import SLOT_SPAN
+
+    g = np.random.default_rng(3)
+    n_t, slots = 40, 4
+    t = np.repeat(np.arange(n_t, dtype=np.int64), slots)
+    obs = np.repeat(g.normal(size=(n_t, 5)), slots, axis=0)
+    signed = np.repeat(np.zeros(n_t, dtype=np.float32), slots)
+    signed[1] = -0.0  # equal as numbers, not as bytes: must not be packed
+    nan = np.repeat(np.full(n_t, np.nan), slots)
+    cols = {"observation": obs, "goal": g.normal(size=(len(t), 3)), "signed": signed, "nan": nan}
+    rows = ChunkRows({"train": cols}, {"train": t * SLOT_SPAN + np.tile(np.arange(slots), n_t)})
+    order = list(cols)
+    spec = plan_shards(SimpleNamespace(lengths=np.array([n_t]), episode_ids=np.array([0])), 10_000)[0]
+    write_shard(tmp_path, spec, "k", rows, order)
+    meta = shard_meta(tmp_path / spec.name)
+    assert meta["per_transition"] == ["train/nan@transition", "train/observation@transition"]
+    back = read_shard(tmp_path, spec, "k", order)
+    for name in order:
+        assert back.columns["train"][name].tobytes() == cols[name].tobytes(), name
+    with np.load(tmp_path / spec.name) as z:
+        assert z["train/observation@transition"].shape == (n_t, 5)
+        assert z["train/signed"].shape == (n_t * slots,)
