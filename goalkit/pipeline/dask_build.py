@@ -11,7 +11,7 @@ from __future__ import annotations
 import uuid
 
 from goalkit.errors import GoalkitError
-from goalkit.pipeline.workers import failure, run_shard
+from goalkit.pipeline.workers import failure, lost_worker, run_shard
 
 
 class DaskRunner:
@@ -70,7 +70,7 @@ class DaskRunner:
             try:
                 yield fut.result()
             except Exception as exc:  # a worker died or the task could not run
-                yield failure(spec, exc)
+                yield lost_worker(spec) if type(exc).__name__ == "KilledWorker" else failure(spec, exc)
 
     def close(self) -> None:
         """Cancel unfinished tasks; close the client when the runner opened it."""

@@ -42,6 +42,8 @@ def shard_error(spec, err: dict, folder) -> GoalkitError:
         reason = os.strerror(err["errno"]) if err.get("errno") else _reason(OSError(err["message"]))
         return ShardError(f"{where}: cannot write its shard file ({reason}); the finished shards are kept "
                           f"and the same command resumes", file=folder)
+    if err.get("type") == "WorkerLost":
+        return ShardError(f"{where}: {err['message']}; the finished shards are kept and the same command resumes")
     return ShardError(f"{where}: the worker failed: {err['type']}: {err['message']}")
 
 

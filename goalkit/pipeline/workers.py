@@ -155,6 +155,14 @@ def failure(spec, exc: BaseException) -> dict:
     return {"ok": False, "index": spec.index, "error": err}
 
 
+def lost_worker(spec) -> dict:
+    """A task outcome for a shard whose worker process died (killed, out of memory)."""
+    return {"ok": False, "index": spec.index,
+            "error": {"type": "WorkerLost", "goalkit": False, "os_error": False,
+                      "message": "a worker process died (killed, or out of memory?) while this shard was "
+                                 "queued or running"}}
+
+
 def run_shard(payload: Payload, spec, folder, build_key: str) -> dict:
     """Read, relabel and write one shard (the task every worker runs).
 
@@ -261,8 +269,8 @@ class LocalRunner:
             spec = by_future[fut]
             try:
                 yield fut.result()
-            except BrokenProcessPool as exc:
-                yield failure(spec, RuntimeError(f"a worker process died ({exc})"))
+            except BrokenProcessPool:
+                yield lost_worker(spec)
             except Exception as exc:
                 yield failure(spec, exc)
 
