@@ -43,8 +43,11 @@ class DaskRunner:
 
     def start(self, payload) -> None:
         """Connect (when needed) and scatter ``payload`` to every worker once."""
-        from distributed import Client
-
+        try:
+            from distributed import Client
+        except ImportError:
+            raise GoalkitError("--scheduler needs dask.distributed; install it with "
+                               "pip install 'goalkit[dask]'", key="--scheduler") from None
         if self.client is None:
             try:
                 self.client = Client(self.address, timeout=self.timeout, set_as_default=False)
