@@ -86,3 +86,28 @@ def test_neighbour_goals_on_workers_match_one_process(gantry, tmp_path):
     assert single.summary == sharded.summary
     assert single.summary["strategies"]["neighbour"]["rows"] > 0
     assert "neighbour_index" in sharded.summary
+
+
+def test_skipped_episodes_stay_skipped_on_workers(gantry, tmp_path):
+    # the opened log's skip decisions travel with the payload: workers read the same kept episodes
+    import shutil
+
+    import numpy as np
+
+    for name in ("gantry-logs.h5", "gantry-layout.toml"):
+        shutil.copy(gantry / name, tmp_path / name)
+    with h5py.File(tmp_path / "gantry-logs.h5", "r+") as f:
+        f["bench/ep_00007/head"][3, 1] = np.nan
+        f["bench/ep_00200/trays"][0, 0] = np.inf
+    text = (gantry / "scale-recipe.toml").read_text().replace('layout = "gantry-layout.toml"',
+                                                              'layout = "gantry-layout.toml"\nskip_bad_episodes = true')
+    (tmp_path / "r.toml").write_text(text, encoding="utf-8")
+    recipe = load_recipe(tmp_path / "r.toml")
+    one, two = tmp_path / "one.h5", tmp_path / "two.h5"
+    single = build(recipe.with_overrides(out=one))
+    build(recipe.with_overrides(out=two), workers=2, max_rows_per_chunk=8000)
+    assert sha256(one) == sha256(two)
+    assert single.summary["skipped_episodes"] == 2
+    with h5py.File(two, "r") as f:
+        ids = np.union1d(f["train/source_episode"][()], f["validation/source_episode"][()])
+    assert 7 not in ids and 200 not in ids and len(ids) == 238
