@@ -24,11 +24,7 @@ from goalkit.pipeline.plan import make_plan, strategy_names
 from goalkit.pipeline.shards import ShardError, check_shard, plan_shards, read_shard
 from goalkit.pipeline.summary import SummaryBuilder
 from goalkit.write.provenance import describe_files
-from goalkit.write.writer import SetWriter
-
-
-class OutputWriteError(DatasetError):
-    """The dataset file could not be written (disk full, no permission, file size limit)."""
+from goalkit.write.writer import OutputWriteError, SetWriter, os_reason
 
 
 def shard_error(spec, err: dict, folder) -> GoalkitError:
@@ -39,7 +35,7 @@ def shard_error(spec, err: dict, folder) -> GoalkitError:
                  for k in ("file", "key", "episode", "step") if err.get(k) is not None]
         return ShardError(f"{where}: " + ": ".join(parts + [err["message"]]))
     if err.get("os_error"):
-        reason = os.strerror(err["errno"]) if err.get("errno") else _reason(OSError(err["message"]))
+        reason = os.strerror(err["errno"]) if err.get("errno") else os_reason(OSError(err["message"]))
         return ShardError(f"{where}: cannot write its shard file ({reason}); the finished shards are kept "
                           f"and the same command resumes", file=folder)
     if err.get("type") == "WorkerLost":
@@ -126,7 +122,7 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int | None = N
                 try:
                     runner.start(make_payload(plan, source, folder.path))
                 except OSError as exc:
-                    raise DatasetError(f"cannot write the build folder ({_reason(exc)})",
+                    raise DatasetError(f"cannot write the build folder ({os_reason(exc)})",
                                        file=folder.path) from None
                 by_index = {s.index: s for s in pending}
                 for outcome in runner.run(pending, folder.path, key):
@@ -139,10 +135,13 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int | None = N
     except BaseException as exc:
         runner.close()
         folder.release()
-        os_error = _os_error_in(exc)
-        if os_error is None:
-            raise
-        failed = _reason(os_error)  # the output could not be written (disk full, no permission)
+        if isinstance(exc, OutputWriteError):
+            failed = exc.reason  # the output could not be written (disk full, no permission)
+        else:
+            os_error = _os_error_in(exc)
+            if os_error is None:
+                raise
+            failed = os_reason(os_error)
     else:
         failed = None
     if failed is not None:
@@ -170,12 +169,3 @@ def _os_error_in(exc: BaseException):
     return None
 
 
-def _reason(exc: OSError) -> str:
-    """The OS's reason for a failed write, on one line (HDF5 wraps it in a longer message)."""
-    import re
-
-    if exc.errno:
-        return os.strerror(exc.errno)
-    text = " ".join(str(exc).split())
-    found = re.search(r"error message = '([^']+)'", text)
-    return found.group(1) if found else text

@@ -24,6 +24,31 @@ from goalkit.errors import DatasetError
 from goalkit.write.format import FORMAT_NAME, FORMAT_VERSION, SPLITS
 
 
+class OutputWriteError(DatasetError):
+    """The dataset file could not be written (disk full, no permission, file size limit).
+
+    Attributes
+    ----------
+    reason : str
+        The operating system's reason, on one line.
+    """
+
+    def __init__(self, reason: str, *, file):
+        self.reason = reason
+        super().__init__(f"cannot write the dataset ({reason})", file=file)
+
+
+def os_reason(exc: BaseException) -> str:
+    """The OS's reason for a failed write, on one line (HDF5 wraps it in a longer message)."""
+    import re
+
+    if isinstance(exc, OSError) and exc.errno:
+        return os.strerror(exc.errno)
+    text = " ".join(str(exc).split())
+    found = re.search(r"error message = '([^']+)'", text)
+    return found.group(1) if found else text
+
+
 def temporary_path(path: Path) -> Path:
     """A temporary sibling of ``path`` (same folder, so the final rename is atomic)."""
     return path.with_name(f".{path.name}.partial-{os.getpid()}")
@@ -184,8 +209,11 @@ class SetWriter:
         futures = []
         for name in self.columns:
             ds = self.datasets[split, name]
-            ds.resize(a + n, axis=0)
-            ds[a:a + n] = block[name]
+            try:
+                ds.resize(a + n, axis=0)
+                ds[a:a + n] = block[name]
+            except OSError as exc:
+                raise OutputWriteError(os_reason(exc), file=self.path) from None
             futures.append(self._hasher.submit(self.hashes[split][name].update, block[name]))
         sb.waits[used] = futures  # the buffer is refilled only after these hashes have read it
         self.rows[split] = a + n
@@ -215,14 +243,17 @@ class SetWriter:
         self.flush(final=True)
         root = {"format": FORMAT_NAME, "format_version": FORMAT_VERSION, **attrs,
                 "manifest": self.manifest()}
-        for key in sorted(root):
-            self.file.attrs[key] = _attr(root[key])
-        for s in SPLITS:
-            self.file[s].attrs["rows"] = self.rows[s]
-            for key, value in sorted((split_attrs or {}).get(s, {}).items()):
-                self.file[s].attrs[key] = _attr(value)
-        self.file.close()
-        os.replace(self.tmp, self.path)
+        try:
+            for key in sorted(root):
+                self.file.attrs[key] = _attr(root[key])
+            for s in SPLITS:
+                self.file[s].attrs["rows"] = self.rows[s]
+                for key, value in sorted((split_attrs or {}).get(s, {}).items()):
+                    self.file[s].attrs[key] = _attr(value)
+            self.file.close()
+            os.replace(self.tmp, self.path)
+        except (OSError, RuntimeError) as exc:  # HDF5 reports a failed final flush as RuntimeError
+            raise OutputWriteError(os_reason(exc), file=self.path) from None
         return self.path
 
     def abort(self) -> None:
@@ -230,6 +261,8 @@ class SetWriter:
         try:
             self._hasher.shutdown(wait=True, cancel_futures=True)
             self.file.close()
+        except (OSError, RuntimeError):
+            pass  # a file whose writes failed may not close cleanly; it is removed below either way
         finally:
             self.tmp.unlink(missing_ok=True)
 

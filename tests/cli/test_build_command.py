@@ -109,3 +109,22 @@ def test_readme_and_ci_run_the_same_test_command():
     test_command = blocks[1]
     assert "pytest" in test_command
     assert test_command in ci.splitlines()
+
+
+def test_full_disk_is_one_line_and_leaves_nothing(tmp_path):
+    # a file-size limit makes writes fail as a full disk does (EFBIG instead of ENOSPC)
+    import resource
+
+    info = make_demo(tmp_path, episodes=60, seed=4)
+    exe = Path(sys.executable).with_name("goalkit")
+
+    def limit():
+        resource.setrlimit(resource.RLIMIT_FSIZE, (200_000, 200_000))
+
+    proc = subprocess.run([str(exe), "build", str(info["recipe"]), "--quiet"], capture_output=True, text=True,
+                          preexec_fn=limit)
+    assert proc.returncode == 2, proc.stderr
+    assert proc.stderr.strip().endswith("cannot write the dataset (File too large)")
+    assert len(proc.stderr.strip().splitlines()) == 1 and "Traceback" not in proc.stderr
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["gantry-layout.toml", "gantry-logs.h5",
+                                                           "gantry-recipe.toml"]
