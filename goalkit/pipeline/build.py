@@ -11,7 +11,7 @@ import numpy as np
 from goalkit import __version__
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.pipeline.chunk import relabel_chunk
-from goalkit.pipeline.plan import make_plan, strategy_names
+from goalkit.pipeline.plan import make_plan, split_rows, strategy_names
 from goalkit.pipeline.summary import SummaryBuilder
 from goalkit.relabel.attach import add_to_summary, search_provenance
 from goalkit.write.provenance import describe_files
@@ -154,7 +154,8 @@ def build(recipe, *, source=None, max_rows_per_chunk: int = CHUNK_ROWS, progress
     gpt = recipe.mixture.goals_per_transition
     summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed)
     out = recipe.output
-    with SetWriter(out.path, plan.columns, chunk_rows=out.chunk_rows, compression=out.compression) as writer:
+    with SetWriter(out.path, plan.columns, chunk_rows=out.chunk_rows, compression=out.compression,
+                       total_rows=split_rows(plan)) as writer:
         for a, b, rows in relabelled_chunks(plan, source, chunk_bounds(plan.lengths, per_chunk)):
             for split, cols in rows.columns.items():
                 writer.add(split, cols, rows.keys[split])

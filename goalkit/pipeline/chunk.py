@@ -54,28 +54,44 @@ def relabel_chunk(plan, chunk) -> ChunkRows:
         Columns and row keys for each split present in the chunk, rows in
         (source_episode, source_step, slot) order.
     """
-    recipe = plan.recipe
-    rule = recipe.reward
-    gdtype = np.dtype(recipe.goal.dtype)
-    rows = recipe.mixture.assign(chunk, recipe.seed, plan.context)
-    t = rows.transition
-    ep_of_t = chunk.transition_episode()
-    src_pos = ep_of_t[t]
-    src_ep = chunk.episode_ids[src_pos]
-    src_step = t - chunk.offsets[src_pos]
+    gdtype = np.dtype(plan.recipe.goal.dtype)
+    # the chunk's episodes are consecutive kept episodes: their positions follow from the first
+    first = int(plan.positions(chunk.episode_ids[:1])[0])
+    if not np.array_equal(plan.episode_ids[first:first + chunk.num_episodes], chunk.episode_ids):
+        raise ValueError("relabel_chunk needs consecutive kept episodes of the plan")
     # phi of every state of the chunk once; cast to the stored precision first, so that rewards
     # recompute exactly from the stored goal vectors.
     phi_chunk = plan.goal_map(chunk, np.arange(chunk.observations.shape[0])).astype(gdtype).astype(np.float64)
-    next_rows = t + src_pos + 1
-    achieved = phi_chunk[next_rows]
-    goal = goal_vectors(plan, chunk, phi_chunk, rows, src_pos, src_ep).astype(gdtype).astype(np.float64)
-    d = rule.distance(achieved, goal)
+    episode_split = plan.splits[first:first + chunk.num_episodes]
+    out_cols, out_keys = {}, {}
+    for code, name in ((0, "train"), (1, "validation")):
+        members = episode_split == code
+        if not members.any():
+            continue
+        if members.all():
+            transitions = None  # every transition of the chunk
+        else:  # the split's transitions, in order: rows come out per split, with no masking after
+            transitions = np.flatnonzero(np.repeat(members, chunk.lengths))
+        out_cols[name], out_keys[name] = _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype)
+    return ChunkRows(out_cols, out_keys)
+
+
+def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype):
+    """Columns and keys of the rows of ``transitions`` (chunk indices; None: all)."""
+    rule = plan.recipe.reward
+    rows = plan.recipe.mixture.assign(chunk, plan.recipe.seed, plan.context, transitions=transitions)
+    t = rows.transition
+    src_pos = chunk.transition_episode()[t]
+    src_ep = chunk.episode_ids[src_pos]
+    src_step = t - chunk.offsets[src_pos]
+    cur = t + src_pos
+    achieved = phi_chunk[cur + 1]
+    goal = goal_vectors(plan, chunk, phi_chunk, rows, src_pos, src_ep).astype(gdtype)
+    d = rule.distance(achieved, goal.astype(np.float64))
     reached = rule.reached_from(d)
-    reward = rule.reward_from(d)
     terminal = reached if rule.end_on_reach else np.zeros_like(reached)
-    gpos = plan.positions(src_ep)
-    keys = (plan.transition_offsets[gpos] + src_step) * SLOT_SPAN + rows.slot
-    scalars = {
+    keys = (plan.transition_offsets[first + src_pos] + src_step) * SLOT_SPAN + rows.slot
+    cols = {
         "source_episode": src_ep,
         "source_step": src_step,
         "slot": rows.slot,
@@ -86,28 +102,17 @@ def relabel_chunk(plan, chunk) -> ChunkRows:
         "hop_step": rows.hop_step,
         "join_step": rows.join_step,
         "steps_to_goal": rows.steps_to_goal,
-        "goal": goal.astype(gdtype),
+        "goal": goal,
         "goal_distance": d.astype(np.float32),
-        "reward": reward,
+        "reward": rule.reward_from(d),
         "reached": reached.astype(np.uint8),
         "terminal": terminal.astype(np.uint8),
     }
-    split = plan.splits[gpos]
-    out_cols, out_keys = {}, {}
-    for code, name in ((0, "train"), (1, "validation")):
-        idx = np.flatnonzero(split == code)
-        if idx.size == 0:
-            continue
-        whole = idx.size == split.size
-        cols = {k: (v if whole else np.take(v, idx, axis=0)) for k, v in scalars.items()}
-        ti, pi = (t, src_pos) if whole else (t[idx], src_pos[idx])
-        if "observation" in plan.columns:
-            cols["observation"] = np.take(chunk.observations, ti + pi, axis=0)
-            cols["action"] = np.take(chunk.actions, ti, axis=0)
-            cols["next_observation"] = np.take(chunk.observations, ti + pi + 1, axis=0)
-            cols["reached_goal"] = np.take(phi_chunk, ti + pi + 1, axis=0).astype(gdtype)
-        if "task_reward" in plan.columns:
-            cols["task_reward"] = np.take(chunk.rewards, ti, axis=0).astype(np.float32)
-        out_cols[name] = cols
-        out_keys[name] = keys if whole else keys[idx]
-    return ChunkRows(out_cols, out_keys)
+    if "observation" in plan.columns:
+        cols["observation"] = np.take(chunk.observations, cur, axis=0)
+        cols["action"] = np.take(chunk.actions, t, axis=0)
+        cols["next_observation"] = np.take(chunk.observations, cur + 1, axis=0)
+        cols["reached_goal"] = achieved.astype(gdtype)
+    if "task_reward" in plan.columns:
+        cols["task_reward"] = np.take(chunk.rewards, t, axis=0).astype(np.float32)
+    return cols, keys

@@ -210,3 +210,10 @@ def goal_table(source, goal_map, dtype, max_transitions: int) -> np.ndarray:
         out[row:row + n] = goal_map(chunk, np.arange(n))
         row += n
     return out
+
+
+def split_rows(plan) -> dict:
+    """Rows each split of the output will hold: goals_per_transition per transition."""
+    gpt = plan.recipe.mixture.goals_per_transition
+    return {name: int(plan.lengths[plan.splits == code].sum()) * gpt
+            for code, name in enumerate(("train", "validation"))}

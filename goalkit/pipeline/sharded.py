@@ -20,7 +20,7 @@ import os
 
 from goalkit.errors import DatasetError, GoalkitError
 from goalkit.pipeline.buildfolder import BuildFolder, build_key
-from goalkit.pipeline.plan import make_plan, strategy_names
+from goalkit.pipeline.plan import make_plan, split_rows, strategy_names
 from goalkit.pipeline.shards import ShardError, check_shard, plan_shards, read_shard
 from goalkit.pipeline.summary import SummaryBuilder
 from goalkit.write.provenance import describe_files
@@ -101,7 +101,8 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int | None = N
         gpt = recipe.mixture.goals_per_transition
         summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed)
         out = recipe.output
-        with SetWriter(out.path, plan.columns, chunk_rows=out.chunk_rows, compression=out.compression) as writer:
+        with SetWriter(out.path, plan.columns, chunk_rows=out.chunk_rows, compression=out.compression,
+                       total_rows=split_rows(plan)) as writer:
             cursor = 0
 
             def assemble():
