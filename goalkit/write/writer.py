@@ -107,6 +107,23 @@ class _SplitBlocks:
             else:
                 self.parts[0] = ({n: v[m:] for n, v in cols.items()}, keys[m:])
 
+    def direct(self, count: int, dtypes: dict):
+        """The next ``count`` queued rows as views, without a copy, when they lie in one queued
+        part of the stored dtypes and the current buffer is empty; else None."""
+        if self.fill or not self.parts or len(self.parts[0][1]) < count:
+            return None
+        cols, keys = self.parts[0]
+        if any(cols[n].dtype != dtypes[n] or not cols[n].flags.c_contiguous for n in self.columns):
+            return None
+        block = {n: cols[n][:count] for n in self.columns}
+        self.last_key = int(keys[count - 1])
+        self.queued -= count
+        if count == len(keys):
+            self.parts.popleft()
+        else:
+            self.parts[0] = ({n: v[count:] for n, v in cols.items()}, keys[count:])
+        return block
+
     def take(self) -> dict:
         """Hand over the filled part of the current buffer and switch to the other buffer."""
         block = {n: v[:self.fill] for n, v in self.bufs[self.cur].items()}
@@ -157,6 +174,8 @@ class SetWriter:
         self.rows = {s: 0 for s in SPLITS}
         self.total_rows = {s: int((total_rows or {}).get(s, 0)) for s in SPLITS}
         self.blocks = {s: _SplitBlocks(columns, self.chunk_rows) for s in SPLITS}
+        self._dtypes = {n: np.dtype(dtype) for n, (dtype, _) in columns.items()}
+        self._view_hashes: deque = deque()
         filt = {"gzip": dict(compression="gzip", compression_opts=4, shuffle=True),
                 "lzf": dict(compression="lzf", shuffle=True), "none": {}}[compression]
         self.datasets = {}
@@ -199,9 +218,13 @@ class SetWriter:
         consumed = {s: 0 for s in SPLITS}
         for _, si, upto in events:
             s = SPLITS[si]
-            self.blocks[s].consume(upto - consumed[s])
+            block = self.blocks[s].direct(upto - consumed[s], self._dtypes)
+            if block is not None:  # the block lies inside one queued array: write it as it is
+                self._write_rows(s, block, None)
+            else:
+                self.blocks[s].consume(upto - consumed[s])
+                self._write_block(s)
             consumed[s] = upto
-            self._write_block(s)
         for s in SPLITS:
             sb = self.blocks[s]
             if sb.queued:
@@ -214,7 +237,11 @@ class SetWriter:
     def _write_block(self, split: str) -> None:
         sb = self.blocks[split]
         used = sb.cur
-        block = sb.take()
+        self._write_rows(split, sb.take(), used)
+
+    def _write_rows(self, split: str, block: dict, buffer_index) -> None:
+        """Write one block; ``buffer_index`` is the split buffer it lives in (None: a view)."""
+        sb = self.blocks[split]
         n = len(next(iter(block.values())))
         a = self.rows[split]
         futures = []
@@ -229,12 +256,21 @@ class SetWriter:
             except OSError as exc:
                 raise OutputWriteError(os_reason(exc), file=self.path) from None
             futures.append(self._hasher.submit(self.hashes[split][name].update, block[name]))
-        sb.waits[used] = futures  # the buffer is refilled only after these hashes have read it
+        if buffer_index is not None:
+            sb.waits[buffer_index] = futures  # the buffer is refilled only after these hashes read it
+        else:  # views keep their arrays alive until hashed: bound how many wait
+            self._view_hashes.append(futures)
+            while len(self._view_hashes) > 2:
+                for f in self._view_hashes.popleft():
+                    f.result()
         self.rows[split] = a + n
 
     # ---- finishing -------------------------------------------------------------------
     def _finish_hashing(self) -> None:
         self._hasher.shutdown(wait=True)
+        for futures in self._view_hashes:
+            for f in futures:
+                f.result()
         for sb in self.blocks.values():
             for f in sb.waits[0] + sb.waits[1]:
                 f.result()
