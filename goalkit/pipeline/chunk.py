@@ -24,8 +24,10 @@ def goal_vectors(plan, chunk, phi_chunk, rows, src_pos, src_ep) -> np.ndarray:
     episodes from the plan's goal table, external goals from ``rows.external``.
     """
     m = len(rows.goal_episode)
-    out = np.empty((m, plan.goal_map.dim), dtype=np.float64)
     same = rows.goal_episode == src_ep
+    if same.all():  # the common case (final, future, episode, geometric): one gather
+        return phi_chunk[chunk.state_row(src_pos, rows.goal_step)]
+    out = np.empty((m, plan.goal_map.dim), dtype=np.float64)
     if same.any():
         srow = chunk.state_row(src_pos[same], rows.goal_step[same])
         out[same] = phi_chunk[srow]
