@@ -342,23 +342,39 @@ def _tune(index, set_breadth, candidates_max: int, start: int, vectors, queries,
         per = recall_per_query(vectors, queries, ids.astype(np.int64), exact_ids)
         return float(per.mean()), lower_bound(per, z)
 
+    hi, (mean, low) = smallest_breadth(recall, start, candidates_max, target)
+    set_breadth(hi)
+    return hi, mean, low
+
+
+def smallest_breadth(measure, start: int, top: int, target: float):
+    """The smallest search breadth >= ``start`` whose recall lower bound reaches ``target``.
+
+    Doubles from ``start`` (up to ``top``), then bisects between the last failing and the first
+    passing breadth. ``measure(b)`` returns ``(recall, lower_bound)``. When even ``top`` fails,
+    returns ``top``.
+
+    Returns
+    -------
+    (int, (float, float))
+        The breadth and its measured ``(recall, lower_bound)``.
+    """
     b = max(1, start)
     lo = b - 1  # never go below the starting breadth
-    r = recall(b)
-    while r[1] < target and b < candidates_max:
-        lo, b = b, min(2 * b, candidates_max)
-        r = recall(b)
+    r = measure(b)
+    while r[1] < target and b < top:
+        lo, b = b, min(2 * b, top)
+        r = measure(b)
     hi, r_hi = b, r
     if r_hi[1] >= target:
-        while hi - lo > 1:  # smallest passing breadth between the last failing and first passing
+        while hi - lo > 1:
             mid = (lo + hi) // 2
-            r_mid = recall(mid)
+            r_mid = measure(mid)
             if r_mid[1] >= target:
                 hi, r_hi = mid, r_mid
             else:
                 lo = mid
-    set_breadth(hi)
-    return hi, r_hi[0], r_hi[1]
+    return hi, r_hi
 
 
 def build_index(vectors, settings: IndexSettings | None = None, *, labels=None, calibration=None) -> NeighbourIndex:

@@ -44,7 +44,7 @@ from __future__ import annotations
 import numpy as np
 
 from goalkit.errors import RecipeError
-from goalkit.goals.neighbours import IndexSettings, build_index, lower_bound, sample_rows
+from goalkit.goals.neighbours import IndexSettings, build_index, lower_bound, sample_rows, smallest_breadth
 
 #: First search depth beyond k is k + min(T + 1, FIRST_EXTRA); depth doubles up to DEPTH_CAP.
 FIRST_EXTRA = 1024
@@ -335,21 +335,8 @@ class GoalSearch:
             per = hit.sum(axis=1) / np.maximum(ref_cnt, 1)
             return float(per.mean()), lower_bound(per, s.confidence_z)
 
-        target = float(s.target_recall)
-        b, top = max(1, sp.index.breadth), max(1, sp.index.max_breadth)
-        lo_b, r = b - 1, measure(b)
-        while r[1] < target and b < top:
-            lo_b, b = b, min(2 * b, top)
-            r = measure(b)
-        hi_b, r_hi = b, r
-        if r_hi[1] >= target:
-            while hi_b - lo_b > 1:
-                mid = (lo_b + hi_b) // 2
-                r_mid = measure(mid)
-                if r_mid[1] >= target:
-                    hi_b, r_hi = mid, r_mid
-                else:
-                    lo_b = mid
+        hi_b, r_hi = smallest_breadth(measure, sp.index.breadth, max(1, sp.index.max_breadth),
+                                      float(s.target_recall))
         sp.index.set_breadth(hi_b)
         extra.update(recall=r_hi[0], recall_lower=r_hi[1], recall_queries=int(len(q)), breadth=int(hi_b))
         sp.report_extra = extra
