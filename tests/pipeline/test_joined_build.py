@@ -7,7 +7,6 @@ Logs are the invented irrigation-gantry demo.
 """
 
 import hashlib
-import json
 import shutil
 
 import h5py
@@ -22,6 +21,7 @@ from goalkit.pipeline.plan import goal_table, make_plan
 from goalkit.pipeline.recipe import load_recipe, parse_recipe
 from goalkit.write.reader import open_set
 from goalkit.write.verify import verify_set
+from tamper_cases import tamper
 
 RELABEL = '''[relabel]
 goals_per_transition = 4
@@ -110,16 +110,6 @@ def test_near_miss_goals_lie_beyond_the_threshold_of_their_join_state(demo):
     d_nm = np.linalg.norm(at - r["goal"][nm].astype(np.float64), axis=1)
     assert np.all(d_nm > recipe.reward.threshold)
     assert np.all(r["join_step"][nm] > r["source_step"][nm])
-
-
-def tamper(path, split, column, edit):
-    with h5py.File(path, "r+") as f:
-        data = f[split][column][:]
-        edit(data)
-        f[split][column][...] = data
-        manifest = json.loads(f.attrs["manifest"])
-        manifest[f"{split}/{column}"] = hashlib.sha256(np.ascontiguousarray(data).tobytes()).hexdigest()
-        f.attrs["manifest"] = json.dumps(manifest, sort_keys=True)
 
 
 @pytest.mark.parametrize("code,column,expect", [
