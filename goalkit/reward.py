@@ -214,12 +214,16 @@ class RewardRule:
         return a, g
 
     def distance(self, achieved, goal) -> np.ndarray:
-        """Return the distances, float64 of shape (M,), of (M, G) arrays ``achieved``, ``goal``."""
-        a, g = self._pair(achieved, goal)
+        """Return the distances, float64 of shape (M,), of (M, G) arrays ``achieved``, ``goal``.
+
+        Computed in float64 whatever the input dtype. Each row's value depends only on that
+        row (per-dimension terms are accumulated in dimension order), so the bits do not
+        depend on how rows are batched.
+        """
         kind = self.distance_name
-        if kind == "box":
-            tol = np.asarray(self.threshold, dtype=np.float64)
-            return np.max(np.abs(a - g) / tol, axis=1, initial=0.0)
+        if kind != "cosine":
+            return self._distance_by_dimension(achieved, goal)
+        a, g = self._pair(achieved, goal)
         w = None if self.weights is None else np.asarray(self.weights, dtype=np.float64)
         if kind == "cosine":
             ww = np.ones(a.shape[1]) if w is None else w
@@ -232,16 +236,41 @@ class RewardRule:
             za, zg = na == 0, ng == 0
             out = np.where(za & zg, 0.0, np.where(za | zg, 1.0, out))
             return np.clip(out, 0.0, 2.0)
-        delta = np.abs(a - g)
-        if w is not None:
+        raise AssertionError(kind)  # pragma: no cover
+
+    def _distance_by_dimension(self, achieved, goal) -> np.ndarray:
+        """Euclidean, L1, Chebyshev and box distances, one goal dimension at a time.
+
+        Works on columns of the (M, G) inputs, so there is no (M, G) float64 temporary and no
+        short-axis reduction (both dominate the cost for the small G of goal spaces).
+        """
+        a, g = np.asarray(achieved), np.asarray(goal)
+        if a.ndim != 2 or a.shape != g.shape:
+            raise ValueError(f"expected achieved and goal of one shape (M, G), got {a.shape} and {g.shape}")
+        kind = self.distance_name
+        dim = len(self.threshold) if kind == "box" else (
+            len(self.weights) if self.weights is not None else a.shape[1])
+        if a.shape[1] != dim:
+            raise ValueError(f"the rule is for goals of dimension {dim}, got {a.shape[1]}")
+        weights = [float(x) for x in self.weights] if self.weights is not None else None
+        out = np.zeros(a.shape[0], dtype=np.float64)
+        col = np.empty(a.shape[0], dtype=np.float64)
+        for k in range(dim):
+            np.subtract(a[:, k], g[:, k], out=col, dtype=np.float64)
+            np.abs(col, out=col)
             if kind == "euclidean":
-                return np.sqrt(np.sum(w * delta * delta, axis=1))
-            delta = w * delta
+                np.multiply(col, col, out=col)
+            if kind == "box":
+                np.divide(col, float(self.threshold[k]), out=col)
+            elif weights is not None:
+                np.multiply(col, weights[k], out=col)
+            if kind in ("euclidean", "l1"):
+                np.add(out, col, out=out)
+            else:  # chebyshev, box: the largest per-dimension term (0 when G = 0)
+                np.maximum(out, col, out=out)
         if kind == "euclidean":
-            return np.sqrt(np.sum(delta * delta, axis=1))
-        if kind == "l1":
-            return np.sum(delta, axis=1)
-        return np.max(delta, axis=1, initial=0.0)  # chebyshev
+            np.sqrt(out, out=out)
+        return out
 
     def reached(self, achieved, goal) -> np.ndarray:
         """Return the reached flags, bool of shape (M,)."""

@@ -40,21 +40,30 @@ class BuildResult:
     shards: dict | None = None
 
 
-def relabelled_chunks(plan, source, bounds, ahead: bool = True):
+def relabelled_chunks(plan, source, bounds, ahead: bool = True, summary=None):
     """Yield ``(start, stop, ChunkRows)`` for each chunk of episodes, in order.
 
     With ``ahead``, the next chunk is read and relabelled on a helper thread while the caller
     writes the current one (numpy and HDF5 reads release the GIL for much of that work); the
-    results, and so the output bytes, are the same either way.
+    results, and so the output bytes, are the same either way. With ``summary`` (a
+    :class:`SummaryBuilder`), each chunk's rows are also counted into it, on the same thread
+    and in chunk order.
     """
+    def task(a, b):
+        rows = relabel_chunk(plan, source.read(a, b))
+        if summary is not None:
+            for split, cols in rows.columns.items():
+                summary.add(split, cols, rows.keys[split])
+        return rows
+
     if not ahead:
         for a, b in bounds:
-            yield a, b, relabel_chunk(plan, source.read(a, b))
+            yield a, b, task(a, b)
         return
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-chunk") as pool:
         pending = None
         for a, b in bounds:
-            job = (a, b, pool.submit(lambda a=a, b=b: relabel_chunk(plan, source.read(a, b))))
+            job = (a, b, pool.submit(task, a, b))
             if pending is not None:
                 yield pending[0], pending[1], pending[2].result()
             pending = job
@@ -154,16 +163,19 @@ def build(recipe, *, source=None, max_rows_per_chunk: int = CHUNK_ROWS, progress
     gpt = recipe.mixture.goals_per_transition
     summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed)
     out = recipe.output
-    with SetWriter(out.path, plan.columns, chunk_rows=out.chunk_rows, compression=out.compression,
-                       total_rows=split_rows(plan)) as writer:
-        for a, b, rows in relabelled_chunks(plan, source, chunk_bounds(plan.lengths, per_chunk)):
+    # the log files' checksums (provenance) are read on their own thread, alongside the build
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-logsum") as side, \
+            SetWriter(out.path, plan.columns, chunk_rows=out.chunk_rows, compression=out.compression,
+                      total_rows=split_rows(plan)) as writer:
+        log_files = side.submit(describe_files, list(source.files))
+        for a, b, rows in relabelled_chunks(plan, source, chunk_bounds(plan.lengths, per_chunk),
+                                            summary=summary):
             for split, cols in rows.columns.items():
                 writer.add(split, cols, rows.keys[split])
-                summary.add(split, cols, rows.keys[split])
             writer.flush()
             if progress is not None:
                 progress(int(plan.lengths[a:b].sum()), plan.total_transitions)
-        path, result = close_dataset(writer, plan, source, summary)
+        path, result = close_dataset(writer, plan, source, summary, log_files=log_files.result())
     return BuildResult(path=path, summary=result)
 
 

@@ -18,7 +18,7 @@ class ChunkRows:
 
 
 def goal_vectors(plan, chunk, phi_chunk, rows, src_pos, src_ep) -> np.ndarray:
-    """Goal vector of every goal row, float64 of shape (M, G).
+    """Goal vector of every goal row, of shape (M, G) and the dtype of ``phi_chunk``.
 
     Same-episode goals are read from ``phi_chunk`` (phi of the chunk's states), goals of other
     episodes from the plan's goal table, external goals from ``rows.external``.
@@ -26,8 +26,8 @@ def goal_vectors(plan, chunk, phi_chunk, rows, src_pos, src_ep) -> np.ndarray:
     m = len(rows.goal_episode)
     same = rows.goal_episode == src_ep
     if same.all():  # the common case (final, future, episode, geometric): one gather
-        return phi_chunk[chunk.state_row(src_pos, rows.goal_step)]
-    out = np.empty((m, plan.goal_map.dim), dtype=np.float64)
+        return np.take(phi_chunk, chunk.state_row(src_pos, rows.goal_step), axis=0)
+    out = np.empty((m, plan.goal_map.dim), dtype=phi_chunk.dtype)
     if same.any():
         srow = chunk.state_row(src_pos[same], rows.goal_step[same])
         out[same] = phi_chunk[srow]
@@ -61,9 +61,9 @@ def relabel_chunk(plan, chunk) -> ChunkRows:
     first = int(plan.positions(chunk.episode_ids[:1])[0])
     if not np.array_equal(plan.episode_ids[first:first + chunk.num_episodes], chunk.episode_ids):
         raise ValueError("relabel_chunk needs consecutive kept episodes of the plan")
-    # phi of every state of the chunk once; cast to the stored precision first, so that rewards
-    # recompute exactly from the stored goal vectors.
-    phi_chunk = plan.goal_map(chunk, np.arange(chunk.observations.shape[0])).astype(gdtype).astype(np.float64)
+    # phi of every state of the chunk once, in the stored precision, so that rewards recompute
+    # exactly from the stored goal vectors (distances are computed in float64 from these).
+    phi_chunk = plan.goal_map(chunk, np.arange(chunk.observations.shape[0])).astype(gdtype)
     episode_split = plan.splits[first:first + chunk.num_episodes]
     out_cols, out_keys = {}, {}
     for code, name in ((0, "train"), (1, "validation")):
@@ -87,9 +87,9 @@ def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype):
     src_ep = chunk.episode_ids[src_pos]
     src_step = t - chunk.offsets[src_pos]
     cur = t + src_pos
-    achieved = phi_chunk[cur + 1]
-    goal = goal_vectors(plan, chunk, phi_chunk, rows, src_pos, src_ep).astype(gdtype)
-    d = rule.distance(achieved, goal.astype(np.float64))
+    achieved = np.take(phi_chunk, cur + 1, axis=0)
+    goal = goal_vectors(plan, chunk, phi_chunk, rows, src_pos, src_ep)
+    d = rule.distance(achieved, goal)
     reached = rule.reached_from(d)
     terminal = reached if rule.end_on_reach else np.zeros_like(reached)
     keys = (plan.transition_offsets[first + src_pos] + src_step) * SLOT_SPAN + rows.slot
@@ -114,7 +114,7 @@ def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype):
         cols["observation"] = np.take(chunk.observations, cur, axis=0)
         cols["action"] = np.take(chunk.actions, t, axis=0)
         cols["next_observation"] = np.take(chunk.observations, cur + 1, axis=0)
-        cols["reached_goal"] = achieved.astype(gdtype)
+        cols["reached_goal"] = achieved
     if "task_reward" in plan.columns:
         cols["task_reward"] = np.take(chunk.rewards, t, axis=0).astype(np.float32)
     return cols, keys

@@ -171,10 +171,24 @@ def locate(chunk: EpisodeSet, transitions) -> tuple[np.ndarray, np.ndarray, np.n
     n = chunk.num_transitions
     if transitions.size and (transitions.min() < 0 or transitions.max() >= n):
         raise ValueError(f"transition indices must lie in 0..{n - 1}")
-    pos = np.searchsorted(chunk.offsets, transitions, side="right") - 1
+    pos = episode_positions(chunk.offsets, transitions)
     t = transitions - chunk.offsets[pos]
     length = chunk.offsets[pos + 1] - chunk.offsets[pos]
     return pos, np.asarray(chunk.episode_ids, dtype=np.int64)[pos], t, length
+
+
+def episode_positions(offsets: np.ndarray, transitions: np.ndarray) -> np.ndarray:
+    """Position of the episode holding each transition index: ``offsets[p] <= i < offsets[p+1]``.
+
+    Same result as ``searchsorted(offsets, transitions, "right") - 1``; for sorted indices (as
+    a build passes them) it is found by cutting the indices at the episode offsets instead,
+    which costs a search per episode rather than per index.
+    """
+    transitions = np.asarray(transitions, dtype=np.int64)
+    if transitions.size > 1 and bool(np.all(transitions[1:] >= transitions[:-1])):
+        cut = np.searchsorted(transitions, offsets, side="left")
+        return np.repeat(np.arange(len(offsets) - 1, dtype=np.int64), np.diff(cut))
+    return np.searchsorted(offsets, transitions, side="right") - 1
 
 
 def _slots(slots, transitions) -> np.ndarray:

@@ -178,6 +178,9 @@ class SetWriter:
         self._view_hashes: deque = deque()
         filt = {"gzip": dict(compression="gzip", compression_opts=4, shuffle=True),
                 "lzf": dict(compression="lzf", shuffle=True), "none": {}}[compression]
+        # without filters a whole chunk's stored bytes are its rows' bytes: such chunks are
+        # handed to HDF5 as they are (H5Dwrite_chunk), skipping the selection machinery
+        self._raw_chunks = compression == "none"
         self.datasets = {}
         for s in SPLITS:
             group = self.file.create_group(s)
@@ -252,7 +255,11 @@ class SetWriter:
                     ds.resize(a + n, axis=0)
                 elif a + n > self.total_rows[split]:
                     raise ValueError(f"{split}: more rows than the {self.total_rows[split]} announced")
-                ds[a:a + n] = block[name]
+                if self._raw_chunks and n == ds.chunks[0] and a % n == 0:
+                    data = np.ascontiguousarray(block[name], dtype=self._dtypes[name])
+                    ds.id.write_direct_chunk((a,) + (0,) * (data.ndim - 1), data)
+                else:
+                    ds[a:a + n] = block[name]
             except OSError as exc:
                 raise OutputWriteError(os_reason(exc), file=self.path) from None
             futures.append(self._hasher.submit(self.hashes[split][name].update, block[name]))

@@ -42,12 +42,14 @@ validation = {validation}
 path = "{out}"
 chunk_rows = {chunk_rows}
 mode = "{mode}"
+compression = "{compression}"
 """
 
 
 def recipe_text(out, seed=1, gpt=5, weights="original = 1\nfuture = 4", threshold=0.05,
-                validation=0.2, chunk_rows=512, mode="materialised", reward_extra=""):
+                validation=0.2, chunk_rows=512, mode="materialised", reward_extra="", compression="gzip"):
     return RECIPE.format(out=out, seed=seed, gpt=gpt, weights=weights, threshold=threshold,
-                         validation=validation, chunk_rows=chunk_rows, mode=mode, reward_extra=reward_extra)
+                         validation=validation, chunk_rows=chunk_rows, mode=mode, reward_extra=reward_extra,
+                         compression=compression)
 
 

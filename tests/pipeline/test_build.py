@@ -20,9 +20,11 @@ def digest(path):
     return hashlib.sha256(open(path, "rb").read()).hexdigest()
 
 
-def test_rows_match_a_direct_computation(tmp_path, episodes, source):
+@pytest.mark.parametrize("compression", ["gzip", "none"])
+def test_rows_match_a_direct_computation(tmp_path, episodes, source, compression):
     out = tmp_path / "set.h5"
-    recipe = parse_recipe(recipe_text(out, weights="future = 1\nfinal = 1\nepisode = 1\noriginal = 1"))
+    recipe = parse_recipe(recipe_text(out, weights="future = 1\nfinal = 1\nepisode = 1\noriginal = 1",
+                                      compression=compression))
     build(recipe, source=source)
     so = episodes.state_offsets()
     with open_set(out) as gs:
@@ -50,10 +52,13 @@ def test_rows_match_a_direct_computation(tmp_path, episodes, source):
             assert np.all(np.diff(key) > 0)
 
 
-def test_byte_identical_whatever_the_chunk_size(tmp_path, source):
-    # the recipe's text (with its output path) is stored, so build every variant to one path
+@pytest.mark.parametrize("compression", ["gzip", "none"])
+def test_byte_identical_whatever_the_chunk_size(tmp_path, source, compression):
+    # the recipe's text (with its output path) is stored, so build every variant to one path;
+    # "none" writes whole chunks raw, gzip through HDF5's filter pipeline
     same = tmp_path / "same.h5"
-    recipe = parse_recipe(recipe_text(same, weights="future = 2\nother_episode = 1\ngeometric = 1\noriginal = 1"))
+    recipe = parse_recipe(recipe_text(same, weights="future = 2\nother_episode = 1\ngeometric = 1\noriginal = 1",
+                                      compression=compression))
     digests = set()
     for rows in (1000, 4321, 1_000_000):
         build(recipe, source=source, max_rows_per_chunk=rows)

@@ -9,6 +9,7 @@ from scipy import stats
 from goalkit.errors import RecipeError
 from goalkit.relabel import (RelabelContext, episode, final, future, geometric, geometric_offsets,
                              original, other_episode)
+from goalkit.relabel.strategies import episode_positions
 from relabel_testdata import make_set
 
 
@@ -185,6 +186,23 @@ def test_strategies_do_not_depend_on_the_rows_asked_for(layout):
         part = fn(whole, pick, np.zeros(len(pick), np.int64), seed, ctx)
         assert np.array_equal(full.goal_step[pick], part.goal_step)
         assert np.array_equal(full.goal_episode[pick], part.goal_episode)
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.integers(0, 6), min_size=1, max_size=12), st.data())
+def test_episode_positions_equal_a_search_of_the_offsets(lengths, data):
+    # the sorted fast path and the general path agree with numpy's own search, including
+    # repeated indices and empty episodes (which own no transition)
+    offsets = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
+    n = int(offsets[-1])
+    if n == 0:
+        return
+    idx = np.asarray(data.draw(st.lists(st.integers(0, n - 1), min_size=1, max_size=40)), np.int64)
+    for tr in (idx, np.sort(idx)):
+        want = np.searchsorted(offsets, tr, side="right") - 1
+        got = episode_positions(offsets, tr)
+        assert np.array_equal(got, want)
+        assert np.all(offsets[got] <= tr) and np.all(tr < offsets[got + 1])
 
 
 def test_original_without_task_goals_is_a_recipe_error():
