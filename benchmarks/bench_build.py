@@ -11,12 +11,19 @@ transition, euclidean 0.04 sparse, 10 % validation, materialised, no compression
 Baselines, on the same files in the same run:
   floor  a plain h5py read of the log's arrays and a write of the same bytes the build writes
          (same datasets, dtypes, shapes, chunking, no compression), in large slices;
+  floor_raw_chunks  the same read, and the same bytes written as whole raw chunks
+         (``write_direct_chunk``, the fastest h5py write path; reported, not a target);
   loop   a straightforward per-transition Python loop doing the same relabelling and scoring
          and writing the same columns (run on the first --loop-transitions transitions).
 Peak memory is each build's own peak RSS, in a fresh process.
 
+Timings on a shared 2-core machine vary run to run (page-cache write-back, page faults), so
+every measurement runs --repeats times, in fresh processes, build and baselines interleaved,
+after an ``os.sync()``; the ratios use the median of each, and every run is recorded.
+
 Targets: build >= 0.5 x floor throughput, >= 20 x loop throughput, peak RSS at the largest size
-within 1.2 x of that at the smallest. Results: benchmarks/results/build.json.
+within 1.2 x of that at the smallest (largest peak of the repeats). Results:
+benchmarks/results/build.json.
 """
 
 from __future__ import annotations
@@ -25,10 +32,12 @@ import argparse
 import json
 import math
 import os
+import statistics
 import subprocess
 import sys
 import tempfile
 import textwrap
+import time
 from pathlib import Path
 
 import h5py
@@ -126,8 +135,32 @@ def time_build(recipe_path: Path) -> dict:
     """))
 
 
-def time_floor(logs: Path, built: Path) -> dict:
-    """Read the log's arrays, write the same bytes the build wrote (same datasets and chunks)."""
+def time_floor(logs: Path, built: Path, raw_chunks: bool = False) -> dict:
+    """Read the log's arrays, write the same bytes the build wrote (same datasets and chunks).
+
+    ``raw_chunks``: write whole chunks with ``write_direct_chunk`` instead of slice assignment.
+    """
+    if raw_chunks:
+        return run_child(textwrap.dedent(f"""
+        import time, h5py, numpy as np
+        t = time.perf_counter()
+        step = 1 << 20
+        with h5py.File({str(logs)!r}) as src, h5py.File({str(built)!r}) as ref, \\
+             h5py.File({str(built) + '.floor'!r}, "w", rdcc_nbytes=0) as dst:
+            for a in [src[k] for k in ("observations", "actions", "rewards")]:
+                for i in range(0, a.shape[0], step):
+                    a[i:i + step]
+            for split in ("train", "validation"):
+                g = dst.create_group(split)
+                for name, ds in ref[split].items():
+                    out = g.create_dataset(name, ds.shape, ds.dtype, chunks=ds.chunks, maxshape=ds.maxshape)
+                    c = ds.chunks[0]
+                    buf = np.zeros((c,) + ds.shape[1:], ds.dtype)
+                    for i in range(0, ds.shape[0], c):
+                        out.id.write_direct_chunk((i,) + (0,) * (buf.ndim - 1), buf)
+        RESULT = {{"seconds": time.perf_counter() - t}}
+        import os; os.remove({str(built) + '.floor'!r})
+        """))
     return run_child(textwrap.dedent(f"""
         import time, h5py, numpy as np
         t = time.perf_counter()
@@ -198,11 +231,18 @@ def time_loop(logs: Path, out: Path, limit: int) -> dict:
     """))
 
 
+def settle() -> None:
+    """Write back dirty pages and pause, so one run's write-back does not land in the next."""
+    os.sync()
+    time.sleep(1.0)
+
+
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("--sizes", default="1000000,10000000", help="transition counts, comma-separated")
     p.add_argument("--loop-transitions", type=int, default=100_000, help="transitions for the loop baseline")
     p.add_argument("--work", default=str(HERE / "work"), help="folder for logs and outputs (deleted after)")
+    p.add_argument("--repeats", type=int, default=3, help="runs of each measurement (medians are used)")
     p.add_argument("--out", default=str(HERE / "results" / "build.json"))
     args = p.parse_args(argv)
     work = Path(args.work)
@@ -215,17 +255,37 @@ def main(argv=None) -> int:
         meta = make_logs(logs, n)
         layout.write_text(LAYOUT)
         recipe.write_text(RECIPE.format(logs=logs, layout=layout, goal=GOAL_COLS, thr=THRESHOLD, out=out))
-        b = time_build(recipe)
-        f = time_floor(logs, out)
-        row = {**meta, "build_seconds": b["seconds"], "build_peak_rss_mb": b["peak_rss_mb"],
-               "build_transitions_per_s": meta["transitions"] / b["seconds"],
-               "floor_seconds": f["seconds"], "floor_transitions_per_s": meta["transitions"] / f["seconds"],
+        runs = {"build": [], "floor": [], "floor_raw_chunks": []}
+        peaks = []
+        for _ in range(args.repeats):
+            settle()
+            b = time_build(recipe)
+            runs["build"].append(b["seconds"])
+            peaks.append(b["peak_rss_mb"])
+            settle()
+            runs["floor"].append(time_floor(logs, out)["seconds"])
+            settle()
+            runs["floor_raw_chunks"].append(time_floor(logs, out, raw_chunks=True)["seconds"])
+        sec = {k: statistics.median(v) for k, v in runs.items()}
+        tps = meta["transitions"]
+        row = {**meta, "build_seconds": sec["build"], "build_peak_rss_mb": max(peaks),
+               "build_transitions_per_s": tps / sec["build"],
+               "floor_seconds": sec["floor"], "floor_transitions_per_s": tps / sec["floor"],
+               "floor_raw_chunks_seconds": sec["floor_raw_chunks"],
+               "runs_seconds": runs, "runs_peak_rss_mb": peaks,
                "output_bytes": out.stat().st_size}
-        row["build_over_floor"] = row["build_transitions_per_s"] / row["floor_transitions_per_s"]
+        row["build_over_floor"] = sec["floor"] / sec["build"]
+        row["build_over_floor_raw_chunks"] = sec["floor_raw_chunks"] / sec["build"]
         if n == sizes[0]:
-            lp = time_loop(logs, work / "loop.h5", min(args.loop_transitions, meta["transitions"]))
-            results["loop"] = {"transitions": lp["transitions"], "seconds": lp["seconds"],
-                               "transitions_per_s": lp["transitions"] / lp["seconds"]}
+            limit = min(args.loop_transitions, meta["transitions"])
+            loops = []
+            for _ in range(args.repeats):
+                settle()
+                loops.append(time_loop(logs, work / "loop.h5", limit))
+            lsec = statistics.median(lp["seconds"] for lp in loops)
+            results["loop"] = {"transitions": loops[0]["transitions"], "seconds": lsec,
+                               "runs_seconds": [lp["seconds"] for lp in loops],
+                               "transitions_per_s": loops[0]["transitions"] / lsec}
             row["build_over_loop"] = row["build_transitions_per_s"] / results["loop"]["transitions_per_s"]
         results["sizes"][str(n)] = row
         print(json.dumps({str(n): row}), flush=True)

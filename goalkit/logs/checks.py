@@ -41,6 +41,8 @@ def first_bad_row(values: np.ndarray) -> int:
     """Index of the first row holding a NaN or inf, or -1 (only float arrays can hold them)."""
     if values.dtype.kind != "f" or values.size == 0:
         return -1
+    if np.isfinite(values).all():  # the usual case, one flat pass
+        return -1
     ok = np.isfinite(values.reshape(values.shape[0], -1)).all(axis=1)
     bad = np.flatnonzero(~ok)
     return int(bad[0]) if bad.size else -1

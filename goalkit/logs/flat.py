@@ -296,6 +296,8 @@ class FlatSource(BaseSource):
                 lo = int(starts.min())
                 hi = int((starts + counts).max())
                 block = acc.read(key, lo, hi)
+                if int(counts.sum()) == hi - lo and np.array_equal(starts[1:], (starts + counts)[:-1]):
+                    return block  # the ranges tile the slice (episodes back to back): no gather
                 return block[ranges_index(starts - lo, counts)]
 
             # runs of consecutive episodes keep the covering slice small when some are skipped
@@ -306,7 +308,7 @@ class FlatSource(BaseSource):
                 part = self._read_run(gather, rid, self.steps_all[rid])
                 for name, v in part.items():
                     pieces.setdefault(name, []).append(v)
-            cols = {name: np.concatenate(v) for name, v in pieces.items()}
+            cols = {name: v[0] if len(v) == 1 else np.concatenate(v) for name, v in pieces.items()}
         if k.success is not None:
             cols["success"] = self._flags(cols["success"], _cumsum0(T), ids)
         if self.task_of is not None:

@@ -43,6 +43,9 @@ class BuildResult:
 def relabelled_chunks(plan, source, bounds, ahead: bool = True, summary=None):
     """Yield ``(start, stop, ChunkRows)`` for each chunk of episodes, in order.
 
+    The observation and action columns come as deferred gathers, for :class:`SetWriter` to
+    copy straight into its blocks (see :func:`~goalkit.pipeline.chunk.relabel_chunk`).
+
     With ``ahead``, the next chunk is read and relabelled on a helper thread while the caller
     writes the current one (numpy and HDF5 reads release the GIL for much of that work); the
     results, and so the output bytes, are the same either way. With ``summary`` (a
@@ -50,7 +53,7 @@ def relabelled_chunks(plan, source, bounds, ahead: bool = True, summary=None):
     and in chunk order.
     """
     def task(a, b):
-        rows = relabel_chunk(plan, source.read(a, b))
+        rows = relabel_chunk(plan, source.read(a, b), defer_gathers=True)
         if summary is not None:
             for split, cols in rows.columns.items():
                 summary.add(split, cols, rows.keys[split])

@@ -7,6 +7,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from goalkit.pipeline.plan import SLOT_SPAN
+from goalkit.write.gather import RowGather
 
 
 @dataclass(frozen=True)
@@ -41,7 +42,7 @@ def goal_vectors(plan, chunk, phi_chunk, rows, src_pos, src_ep) -> np.ndarray:
     return out
 
 
-def relabel_chunk(plan, chunk) -> ChunkRows:
+def relabel_chunk(plan, chunk, defer_gathers: bool = False) -> ChunkRows:
     """Relabel one chunk of episodes and score every row.
 
     Parameters
@@ -49,6 +50,10 @@ def relabel_chunk(plan, chunk) -> ChunkRows:
     plan : BuildPlan
     chunk : EpisodeSet
         Consecutive kept episodes.
+    defer_gathers : bool
+        Give the observation, next_observation and action columns as
+        :class:`~goalkit.write.gather.RowGather` (rows of the chunk's arrays, copied when
+        written) instead of arrays. The written bytes are the same.
 
     Returns
     -------
@@ -74,11 +79,12 @@ def relabel_chunk(plan, chunk) -> ChunkRows:
             transitions = None  # every transition of the chunk
         else:  # the split's transitions, in order: rows come out per split, with no masking after
             transitions = np.flatnonzero(np.repeat(members, chunk.lengths))
-        out_cols[name], out_keys[name] = _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype)
+        out_cols[name], out_keys[name] = _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype,
+                                                     defer_gathers)
     return ChunkRows(out_cols, out_keys)
 
 
-def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype):
+def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gathers):
     """Columns and keys of the rows of ``transitions`` (chunk indices; None: all)."""
     rule = plan.recipe.reward
     rows = plan.recipe.mixture.assign(chunk, plan.recipe.seed, plan.context, transitions=transitions)
@@ -111,9 +117,10 @@ def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype):
         "terminal": terminal.astype(np.uint8),
     }
     if "observation" in plan.columns:
-        cols["observation"] = np.take(chunk.observations, cur, axis=0)
-        cols["action"] = np.take(chunk.actions, t, axis=0)
-        cols["next_observation"] = np.take(chunk.observations, cur + 1, axis=0)
+        gather = RowGather if defer_gathers else (lambda a, i: np.take(a, i, axis=0))
+        cols["observation"] = gather(chunk.observations, cur)
+        cols["action"] = gather(chunk.actions, t)
+        cols["next_observation"] = gather(chunk.observations, cur + 1)
         cols["reached_goal"] = achieved
     if "task_reward" in plan.columns:
         cols["task_reward"] = np.take(chunk.rewards, t, axis=0).astype(np.float32)

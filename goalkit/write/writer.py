@@ -22,6 +22,7 @@ import numpy as np
 
 from goalkit.errors import DatasetError
 from goalkit.write.format import FORMAT_NAME, FORMAT_VERSION, SPLITS
+from goalkit.write.gather import RowGather
 
 
 class OutputWriteError(DatasetError):
@@ -97,7 +98,11 @@ class _SplitBlocks:
             cols, keys = self.parts[0]
             m = min(count, len(keys))
             for n in self.columns:
-                buf[n][self.fill:self.fill + m] = cols[n][:m]
+                col = cols[n]
+                if isinstance(col, RowGather):  # gathered straight into the block
+                    col[:m].into(buf[n][self.fill:self.fill + m])
+                else:
+                    buf[n][self.fill:self.fill + m] = col[:m]
             self.last_key = int(keys[m - 1])
             self.fill += m
             count -= m
@@ -113,7 +118,8 @@ class _SplitBlocks:
         if self.fill or not self.parts or len(self.parts[0][1]) < count:
             return None
         cols, keys = self.parts[0]
-        if any(cols[n].dtype != dtypes[n] or not cols[n].flags.c_contiguous for n in self.columns):
+        if any(isinstance(cols[n], RowGather) or cols[n].dtype != dtypes[n] or not cols[n].flags.c_contiguous
+               for n in self.columns):
             return None
         block = {n: cols[n][:count] for n in self.columns}
         self.last_key = int(keys[count - 1])
@@ -199,7 +205,9 @@ class SetWriter:
     def add(self, split: str, columns: dict, keys: np.ndarray) -> None:
         """Queue rows for ``split``; ``keys`` (int64, increasing) order all rows of the build.
 
-        The arrays are not copied until :meth:`flush`; do not change them before it.
+        A column is an array or a :class:`~goalkit.write.gather.RowGather` (rows gathered
+        straight into the block buffers). Nothing is copied until :meth:`flush`; do not change
+        the arrays before it.
         """
         if len(keys):
             missing = set(self.columns) - set(columns)

@@ -82,3 +82,62 @@ def test_failure_leaves_nothing_behind(tmp_path):
 def test_missing_output_folder(tmp_path):
     with pytest.raises(DatasetError, match="output folder does not exist"):
         SetWriter(tmp_path / "nope" / "out.h5", COLUMNS)
+
+
+@settings(max_examples=25, deadline=None)
+@given(n=st.integers(1, 200), cuts=st.lists(st.integers(1, 199), max_size=6), chunk=st.sampled_from([16, 33]),
+       sized=st.booleans())
+def test_deferred_gathers_write_the_same_bytes(tmp_path_factory, n, cuts, chunk, sized):
+    # a column given as RowGather(source, index) is written exactly as the array source[index]
+    from goalkit.write.gather import RowGather
+
+    d = tmp_path_factory.mktemp("g")
+    cols, keys, split = rows(n)
+    source = np.random.default_rng(1).normal(size=(n + 7, 3)).astype(np.float32)
+    index = np.random.default_rng(2).integers(0, n + 7, size=n)
+    eager = dict(cols, x=source[index])
+    cuts = sorted({c for c in cuts if c < n})
+    want = write(d / "a.h5", eager, keys, split, cuts, chunk, sized)
+
+    lazy_cols = {"x": RowGather(source, index), "k": cols["k"]}
+    got = write_lazy(d / "a.h5", lazy_cols, keys, split, cuts, chunk, sized)
+    assert got == want
+    with h5py.File(d / "a.h5") as f:
+        np.testing.assert_array_equal(f["train"]["x"][:], source[index][~split])
+
+
+def write_lazy(path, cols, keys, split, cuts, chunk_rows, sized):
+    """Like ``write``, for columns holding a RowGather: each piece is a contiguous run of rows
+    of one split, as the build feeds them."""
+    from goalkit.write.gather import RowGather
+
+    total = {"train": int((~split).sum()), "validation": int(split.sum())} if sized else None
+    order = {s: np.flatnonzero(m) for s, m in (("train", ~split), ("validation", split))}
+    with SetWriter(path, COLUMNS, chunk_rows=chunk_rows, compression="none", total_rows=total) as w:
+        a = 0
+        for b in list(cuts) + [len(keys)]:
+            for name in ("train", "validation"):
+                rows_here = order[name][(order[name] >= a) & (order[name] < b)]
+                part = {c: (RowGather(v.source, v.index[rows_here]) if isinstance(v, RowGather) else v[rows_here])
+                        for c, v in cols.items()}
+                w.add(name, part, keys[rows_here])
+            w.flush()
+            a = b
+        w.close({"note": "test"})
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def test_row_gather_slices_and_materialises():
+    from goalkit.write.gather import RowGather, materialise
+
+    src = np.arange(12, dtype=np.float32).reshape(6, 2)
+    g = RowGather(src, np.array([5, 0, 3, 3]))
+    assert g.shape == (4, 2) and g.dtype == np.float32 and len(g) == 4
+    np.testing.assert_array_equal(np.asarray(g[1:3]), src[[0, 3]])
+    out = np.empty((4, 2), np.float64)  # another dtype: cast on the way
+    g.into(out)
+    np.testing.assert_array_equal(out, src[[5, 0, 3, 3]].astype(np.float64))
+    cols = materialise({"a": g, "b": np.ones(4)})
+    assert isinstance(cols["a"], np.ndarray) and cols["a"].shape == (4, 2)
+    with pytest.raises(TypeError):
+        g[[0, 1]]
