@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections import deque
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
@@ -19,6 +20,8 @@ from goalkit.write.writer import SetWriter
 
 #: Default number of output rows produced per chunk task (bounds the build's memory).
 CHUNK_ROWS = 131_072
+#: Chunks relabelled ahead of the one being written.
+LOOKAHEAD = 2
 
 
 @dataclass(frozen=True)
@@ -64,14 +67,15 @@ def relabelled_chunks(plan, source, bounds, ahead: bool = True, summary=None):
             yield a, b, task(a, b)
         return
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-chunk") as pool:
-        pending = None
+        pending: deque = deque()
         for a, b in bounds:
-            job = (a, b, pool.submit(task, a, b))
-            if pending is not None:
-                yield pending[0], pending[1], pending[2].result()
-            pending = job
-        if pending is not None:
-            yield pending[0], pending[1], pending[2].result()
+            pending.append((a, b, pool.submit(task, a, b)))
+            if len(pending) > LOOKAHEAD:
+                a0, b0, job = pending.popleft()
+                yield a0, b0, job.result()
+        while pending:
+            a0, b0, job = pending.popleft()
+            yield a0, b0, job.result()
 
 
 def chunk_transitions(plan, rows_per_chunk: int = CHUNK_ROWS) -> int:
