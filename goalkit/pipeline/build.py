@@ -10,7 +10,7 @@ from pathlib import Path
 import numpy as np
 
 from goalkit import __version__
-from goalkit.logs.episodes import chunk_bounds
+from goalkit.logs.episodes import EpisodeSet, chunk_bounds
 from goalkit.pipeline.chunk import relabel_chunk
 from goalkit.pipeline.plan import make_plan, split_rows, strategy_names
 from goalkit.pipeline.summary import SummaryBuilder
@@ -49,14 +49,16 @@ def relabelled_chunks(plan, source, bounds, ahead: bool = True, summary=None):
     The observation and action columns come as deferred gathers, for :class:`SetWriter` to
     copy straight into its blocks (see :func:`~goalkit.pipeline.chunk.relabel_chunk`).
 
-    With ``ahead``, the next chunk is read and relabelled on a helper thread while the caller
-    writes the current one (numpy and HDF5 reads release the GIL for much of that work); the
-    results, and so the output bytes, are the same either way. With ``summary`` (a
+    With ``ahead``, the next chunks are read (on one helper thread) and relabelled (on another)
+    while the caller writes the current one (numpy, hashing and HDF5 I/O release the GIL for
+    much of that work); the results, and so the output bytes, are the same either way. With ``summary`` (a
     :class:`SummaryBuilder`), each chunk's rows are also counted into it, on the same thread
     and in chunk order.
     """
-    def task(a, b):
-        rows = relabel_chunk(plan, source.read(a, b), defer_gathers=True)
+    def task(chunk):
+        if not isinstance(chunk, EpisodeSet):
+            chunk = chunk.result()
+        rows = relabel_chunk(plan, chunk, defer_gathers=True)
         if summary is not None:
             for split, cols in rows.columns.items():
                 summary.add(split, cols, rows.keys[split])
@@ -64,12 +66,14 @@ def relabelled_chunks(plan, source, bounds, ahead: bool = True, summary=None):
 
     if not ahead:
         for a, b in bounds:
-            yield a, b, task(a, b)
+            yield a, b, task(source.read(a, b))
         return
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-chunk") as pool:
+    # two stages on their own threads: reading chunk k + 1 overlaps relabelling chunk k
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-read") as reader, \
+            ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-chunk") as pool:
         pending: deque = deque()
         for a, b in bounds:
-            pending.append((a, b, pool.submit(task, a, b)))
+            pending.append((a, b, pool.submit(task, reader.submit(source.read, a, b))))
             if len(pending) > LOOKAHEAD:
                 a0, b0, job = pending.popleft()
                 yield a0, b0, job.result()
