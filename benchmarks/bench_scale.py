@@ -42,7 +42,7 @@ from pathlib import Path
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from goalkit.demo import make_demo  # noqa: E402
-from goalkit.pipeline.build import CHUNK_ROWS, build  # noqa: E402
+from goalkit.pipeline.build import SHARD_ROWS, build  # noqa: E402
 from goalkit.pipeline.plan import make_plan  # noqa: E402
 from goalkit.pipeline.recipe import load_recipe  # noqa: E402
 
@@ -93,7 +93,7 @@ def main(argv=None) -> dict:
     ap.add_argument("--episodes", type=int, default=21_000, help="demo episodes (about 47 transitions each)")
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--data", default="/tmp/goalkit-bench-scale", help="folder for the generated logs")
-    ap.add_argument("--rows-per-shard", type=int, default=CHUNK_ROWS)
+    ap.add_argument("--rows-per-shard", type=int, default=SHARD_ROWS)
     ap.add_argument("--skip-dask", action="store_true")
     ap.add_argument("--out", default=str(Path(__file__).with_name("results") / "scale.json"))
     args = ap.parse_args(argv)

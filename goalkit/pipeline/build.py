@@ -18,10 +18,13 @@ from goalkit.relabel.attach import add_to_summary, search_provenance
 from goalkit.write.provenance import describe_files
 from goalkit.write.writer import SetWriter
 
-#: Default number of output rows produced per chunk task (bounds the build's memory).
-CHUNK_ROWS = 131_072
+#: Default output rows per chunk of a build in one process (bounds the build's memory).
+CHUNK_ROWS = 65_536
+#: Default output rows per shard of a sharded build (each shard is a task and a file).
+SHARD_ROWS = 131_072
 #: Chunks relabelled ahead of the one being written.
 LOOKAHEAD = 2
+SEPARATE_READER = True
 
 
 @dataclass(frozen=True)
@@ -73,7 +76,8 @@ def relabelled_chunks(plan, source, bounds, ahead: bool = True, summary=None):
             ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-chunk") as pool:
         pending: deque = deque()
         for a, b in bounds:
-            pending.append((a, b, pool.submit(task, reader.submit(source.read, a, b))))
+            pending.append((a, b, pool.submit(lambda a=a, b=b: task(source.read(a, b))) if not SEPARATE_READER else
+                            pool.submit(task, reader.submit(source.read, a, b))))
             if len(pending) > LOOKAHEAD:
                 a0, b0, job = pending.popleft()
                 yield a0, b0, job.result()
@@ -127,7 +131,7 @@ def provenance(plan, source, log_files=None) -> dict:
     }
 
 
-def build(recipe, *, source=None, max_rows_per_chunk: int = CHUNK_ROWS, progress=None, workers: int = 0,
+def build(recipe, *, source=None, max_rows_per_chunk: int | None = None, progress=None, workers: int = 0,
           scheduler: str | None = None, client=None, fresh: bool = False) -> BuildResult:
     """Build the dataset a recipe describes, in this process or scaled out over shards.
 
@@ -135,8 +139,9 @@ def build(recipe, *, source=None, max_rows_per_chunk: int = CHUNK_ROWS, progress
     ----------
     recipe : Recipe
         A checked recipe (see :func:`goalkit.pipeline.recipe.load_recipe`).
-    max_rows_per_chunk : int
+    max_rows_per_chunk : int, optional
         Output rows per chunk task; only memory and speed depend on it, never the output bytes.
+        Default :data:`CHUNK_ROWS` in one process, :data:`SHARD_ROWS` per shard.
     source : LogSource, optional
         Already opened logs (default: open the recipe's logs with its layout).
     progress : callable, optional
@@ -167,10 +172,10 @@ def build(recipe, *, source=None, max_rows_per_chunk: int = CHUNK_ROWS, progress
             from goalkit.pipeline.workers import LocalRunner
 
             runner = LocalRunner(workers)
-        return build_sharded(recipe, runner, source=source, rows_per_shard=max_rows_per_chunk,
+        return build_sharded(recipe, runner, source=source, rows_per_shard=max_rows_per_chunk or SHARD_ROWS,
                              progress=progress, fresh=fresh)
     plan, source = make_plan(recipe, source)
-    per_chunk = chunk_transitions(plan, max_rows_per_chunk)
+    per_chunk = chunk_transitions(plan, max_rows_per_chunk or CHUNK_ROWS)
     gpt = recipe.mixture.goals_per_transition
     summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed)
     out = recipe.output

@@ -32,8 +32,10 @@ def format_summary(path, summary: dict) -> str:
 @click.option("--out", "out", type=click.Path(dir_okay=False), default=None,
               help="Write the dataset here instead of the recipe's [output] path.")
 @click.option("--seed", type=int, default=None, help="Override the recipe's seed.")
-@click.option("--chunk-rows", type=click.IntRange(min=1000), default=131_072,
-              help="Output rows per processing chunk (memory only; the output bytes do not depend on it).")
+@click.option("--chunk-rows", type=click.IntRange(min=1000), default=None, show_default=False,
+              help="Output rows per processing chunk, or per shard with --workers/--scheduler (memory "
+                   "and speed only; the output bytes do not depend on it).  [default: 65536 in one "
+                   "process, 131072 per shard]")
 @click.option("--workers", type=click.IntRange(min=0), default=0,
               help="Local worker processes; 0 builds in this process. With N >= 1 every chunk is a "
                    "shard file in .NAME.shards/ beside the output, and a re-run resumes.")

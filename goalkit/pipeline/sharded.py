@@ -63,7 +63,7 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int | None = N
     source : LogSource, optional
         Already opened logs.
     rows_per_shard : int, optional
-        Output rows per shard (about; default :data:`goalkit.pipeline.build.CHUNK_ROWS`); only
+        Output rows per shard (about; default :data:`goalkit.pipeline.build.SHARD_ROWS`); only
         speed, memory and resume granularity depend on it.
     progress : callable, optional
         ``progress(transitions, total_transitions)`` as shards are assembled (reused ones too).
@@ -81,11 +81,11 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int | None = N
         ShardError naming the shard and episodes when a task fails; DatasetError when the build
         folder or the output cannot be written.
     """
-    from goalkit.pipeline.build import CHUNK_ROWS, BuildResult, chunk_transitions, close_dataset
+    from goalkit.pipeline.build import SHARD_ROWS, BuildResult, chunk_transitions, close_dataset
     from goalkit.pipeline.workers import make_payload
 
     plan, source = make_plan(recipe, source)
-    specs = plan_shards(plan, chunk_transitions(plan, rows_per_shard or CHUNK_ROWS))
+    specs = plan_shards(plan, chunk_transitions(plan, rows_per_shard or SHARD_ROWS))
     log_files = describe_files(list(source.files))
     emb = describe_files([recipe.goal.embedding]) if recipe.goal.embedding is not None else []
     if getattr(recipe.mixture, "library", None) is not None:  # a changed library invalidates shards
