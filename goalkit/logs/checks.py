@@ -66,6 +66,56 @@ def first_bad(values: np.ndarray, offsets: np.ndarray, *, state_level: bool = Fa
     return pos, row - int(starts[pos])
 
 
+#: Tolerances of the pairs-convention check ``next_observation[t] == observation[t+1]``
+#: (numpy.isclose's own defaults: common practice, not tuned).
+PAIRS_RTOL, PAIRS_ATOL = 1e-5, 1e-8
+
+
+def first_discontinuity(obs: np.ndarray, nxt: np.ndarray, lengths: np.ndarray):
+    """Find the first step where ``next_observation[t]`` is not ``observation[t+1]``.
+
+    Parameters
+    ----------
+    obs, nxt : ndarray, shape (N, D)
+        Observation and next observation rows of consecutive episodes (one row per action).
+    lengths : ndarray of int
+        Transitions per episode (summing to N).
+
+    Returns
+    -------
+    (int, int, float) or None
+        Episode position, step ``t`` and the largest absolute difference there; None when every
+        pair agrees within :data:`PAIRS_RTOL` / :data:`PAIRS_ATOL` (NaNs compare equal here:
+        they are reported by the finite-value check).
+    """
+    n = obs.shape[0]
+    if n < 2:
+        return None
+    inner = np.ones(n - 1, dtype=bool)           # row r pairs with r + 1 inside its episode
+    ends = np.cumsum(lengths)[:-1] - 1             # last row of every episode but the final one
+    inner[ends[(ends >= 0) & (ends < n - 1)]] = False
+    a = nxt[:-1].reshape(n - 1, -1)
+    b = obs[1:].reshape(n - 1, -1)
+    ok = np.isclose(a, b, rtol=PAIRS_RTOL, atol=PAIRS_ATOL, equal_nan=True).all(axis=1) | ~inner
+    bad = np.flatnonzero(~ok)
+    if bad.size == 0:
+        return None
+    r = int(bad[0])
+    starts = np.concatenate([[0], np.cumsum(lengths)[:-1]])
+    pos = int(np.searchsorted(starts, r, side="right") - 1)
+    diff = float(np.nanmax(np.abs(a[r].astype(np.float64) - b[r].astype(np.float64))))
+    return pos, r - int(starts[pos]), diff
+
+
+def pairs_error(step: int, diff: float, *, file, key, episode) -> LogError:
+    """The error for a next observation that is not the following observation."""
+    return LogError(f"next_observation at step {step} differs from observation at step {step + 1} "
+                    f"(largest difference {diff:.3g}); expected them equal within rtol "
+                    f"{PAIRS_RTOL:g} and atol {PAIRS_ATOL:g} -- a reset, dropped frame or "
+                    f"misplaced episode boundary inside the episode", file=file, key=key,
+                    episode=episode, step=step)
+
+
 def flags(values: np.ndarray, *, file, key, episode=None) -> np.ndarray:
     """Turn a bool, integer or 0./1. float array into bool, refusing other values."""
     values = np.asarray(values)

@@ -9,7 +9,9 @@ log):
 
 * ``"T+1"``: observation has one row more than action (``s_0..s_T``);
 * ``"pairs"``: ``next_observation`` is given; observation and next_observation have one row per
-  action; ``s_0..s_{T-1}`` are observation's rows and ``s_T`` is next_observation's last row;
+  action; ``s_0..s_{T-1}`` are observation's rows and ``s_T`` is next_observation's last row
+  (the other rows must repeat the following observation, see
+  :func:`goalkit.logs.checks.first_discontinuity`);
 * ``"T"``: observation has as many rows as action; the last action (and reward, success, goal)
   has no following state and is dropped.
 """
@@ -190,7 +192,12 @@ def read_episode(acc, layout, meta: EpisodeMeta, episode: int, obs_dtype, action
     out = {}
     if meta.convention == "pairs":
         obs = acc.read(k.observation).reshape(T, -1)
-        last = acc.read(k.next_observation, T - 1, T).reshape(1, -1)
+        nxt = acc.read(k.next_observation, 0, T).reshape(T, -1)
+        found = checks.first_discontinuity(obs, nxt, np.array([T]))
+        if found is not None:
+            raise checks.pairs_error(found[1], found[2], file=acc.file, key=acc.where(k.next_observation),
+                                     episode=episode)
+        last = nxt[T - 1:T]
         out["observations"] = np.concatenate([obs.astype(obs_dtype, copy=False),
                                               last.astype(obs_dtype, copy=False)])
     else:

@@ -321,7 +321,12 @@ class FlatSource(BaseSource):
         s_start, o_start = self.step_start[rid], self.state_start[rid]
         if self.convention == "pairs":
             obs = gather(k.observation, o_start, T).reshape(-1, self.obs_width)
-            last = gather(k.next_observation, o_start + T - 1, np.ones_like(T)).reshape(-1, self.obs_width)
+            nxt = gather(k.next_observation, o_start, T).reshape(-1, self.obs_width)
+            found = checks.first_discontinuity(obs, nxt, T)
+            if found is not None:
+                raise checks.pairs_error(found[1], found[2], file=self.path, key=k.next_observation,
+                                         episode=int(rid[found[0]]))
+            last = nxt[np.cumsum(T) - 1]
             full = np.empty((obs.shape[0] + last.shape[0], self.obs_width), dtype=self.obs_dtype)
             final_row = np.zeros(full.shape[0], dtype=bool)
             final_row[_cumsum0(T + 1)[1:] - 1] = True
