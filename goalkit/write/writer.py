@@ -22,7 +22,11 @@ import numpy as np
 
 from goalkit.errors import DatasetError
 from goalkit.write.format import FORMAT_NAME, FORMAT_VERSION, SPLITS
+from goalkit.write.chunkcodec import GZIP_LEVEL, gzip_chunk
 from goalkit.write.gather import RowGather
+
+#: Threads compressing whole chunks of gzip sets.
+ENCODE_THREADS = 2
 
 
 class OutputWriteError(DatasetError):
@@ -182,11 +186,14 @@ class SetWriter:
         self.blocks = {s: _SplitBlocks(columns, self.chunk_rows) for s in SPLITS}
         self._dtypes = {n: np.dtype(dtype) for n, (dtype, _) in columns.items()}
         self._view_hashes: deque = deque()
-        filt = {"gzip": dict(compression="gzip", compression_opts=4, shuffle=True),
+        filt = {"gzip": dict(compression="gzip", compression_opts=GZIP_LEVEL, shuffle=True),
                 "lzf": dict(compression="lzf", shuffle=True), "none": {}}[compression]
-        # without filters a whole chunk's stored bytes are its rows' bytes: such chunks are
-        # handed to HDF5 as they are (H5Dwrite_chunk), skipping the selection machinery
-        self._raw_chunks = compression == "none"
+        # Whole chunks bypass HDF5's selection and filter machinery (H5Dwrite_chunk): without
+        # filters their stored bytes are the rows' bytes; with gzip they are shuffled and
+        # deflated here (goalkit.write.chunkcodec), on threads that do not hold h5py's lock.
+        self.compression = compression
+        self._encoder = (ThreadPoolExecutor(max_workers=ENCODE_THREADS, thread_name_prefix="goalkit-gzip")
+                         if compression == "gzip" else None)
         self.datasets = {}
         for s in SPLITS:
             group = self.file.create_group(s)
@@ -256,6 +263,11 @@ class SetWriter:
         n = len(next(iter(block.values())))
         a = self.rows[split]
         futures = []
+        whole = {name: n == self.datasets[split, name].chunks[0] and a % n == 0 for name in self.columns}
+        encoded = {}
+        if self._encoder is not None:  # compress every whole chunk of the block at once
+            encoded = {name: self._encoder.submit(gzip_chunk, block[name])
+                       for name in self.columns if whole[name]}
         for name in self.columns:
             ds = self.datasets[split, name]
             try:
@@ -263,10 +275,12 @@ class SetWriter:
                     ds.resize(a + n, axis=0)
                 elif a + n > self.total_rows[split]:
                     raise ValueError(f"{split}: more rows than the {self.total_rows[split]} announced")
-                if self._raw_chunks and n == ds.chunks[0] and a % n == 0:
-                    data = np.ascontiguousarray(block[name], dtype=self._dtypes[name])
-                    ds.id.write_direct_chunk((a,) + (0,) * (data.ndim - 1), data)
-                else:
+                offset = (a,) + (0,) * (len(ds.shape) - 1)
+                if name in encoded:
+                    ds.id.write_direct_chunk(offset, encoded[name].result())
+                elif whole[name] and self.compression == "none":
+                    ds.id.write_direct_chunk(offset, np.ascontiguousarray(block[name], dtype=self._dtypes[name]))
+                else:  # a partial chunk (the end of a split), or lzf: through HDF5's pipeline
                     ds[a:a + n] = block[name]
             except OSError as exc:
                 raise OutputWriteError(os_reason(exc), file=self.path) from None
@@ -282,6 +296,8 @@ class SetWriter:
 
     # ---- finishing -------------------------------------------------------------------
     def _finish_hashing(self) -> None:
+        if self._encoder is not None:
+            self._encoder.shutdown(wait=True)
         self._hasher.shutdown(wait=True)
         for futures in self._view_hashes:
             for f in futures:
@@ -327,6 +343,8 @@ class SetWriter:
     def abort(self) -> None:
         """Close and remove the temporary file."""
         try:
+            if self._encoder is not None:
+                self._encoder.shutdown(wait=True, cancel_futures=True)
             self._hasher.shutdown(wait=True, cancel_futures=True)
             self.file.close()
         except (OSError, RuntimeError):

@@ -1,0 +1,45 @@
+"""Whole HDF5 chunks encoded outside HDF5: the byte shuffle and deflate filters, in numpy and zlib.
+
+The writer compresses whole chunks itself and hands the bytes to HDF5 with
+``write_direct_chunk``. HDF5 then stores them as if its own filter pipeline had made them, and
+every reader decodes them with the filters the dataset declares. Doing the work here means it
+runs on worker threads that do not hold h5py's global lock, so reading the logs and relabelling
+go on while a chunk is compressed.
+
+The encoding follows the dataset's declared pipeline, shuffle then deflate:
+
+* shuffle (HDF5's ``H5Z_FILTER_SHUFFLE``): the k-th bytes of all elements first, then all the
+  (k+1)-th bytes, and so on, for elements of the dtype's item size;
+* deflate (``H5Z_FILTER_DEFLATE``): a zlib stream at the dataset's level, the format of zlib's
+  ``compress2``.
+"""
+
+from __future__ import annotations
+
+import zlib
+
+import numpy as np
+
+#: gzip level of every compressed dataset (see goalkit.write.writer).
+GZIP_LEVEL = 4
+
+
+def shuffle_bytes(chunk: np.ndarray) -> bytes:
+    """The chunk's bytes in HDF5's shuffled order (element size = the dtype's item size).
+
+    Examples
+    --------
+    >>> shuffle_bytes(np.array([1, 2], dtype="<u2"))
+    b'\\x01\\x02\\x00\\x00'
+    """
+    chunk = np.ascontiguousarray(chunk)
+    size = chunk.dtype.itemsize
+    raw = chunk.reshape(-1).view(np.uint8)
+    if size == 1:
+        return raw.tobytes()
+    return raw.reshape(-1, size).T.tobytes()
+
+
+def gzip_chunk(chunk: np.ndarray, level: int = GZIP_LEVEL) -> bytes:
+    """The stored bytes of one whole chunk under HDF5's shuffle + deflate filters."""
+    return zlib.compress(shuffle_bytes(chunk), level)
