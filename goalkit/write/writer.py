@@ -266,7 +266,7 @@ class SetWriter:
         whole = {name: n == self.datasets[split, name].chunks[0] and a % n == 0 for name in self.columns}
         encoded = {}
         if self._encoder is not None:  # compress every whole chunk of the block at once
-            encoded = {name: self._encoder.submit(gzip_chunk, block[name])
+            encoded = {name: self._encoder.submit(gzip_chunk, np.asarray(block[name], dtype=self._dtypes[name]))
                        for name in self.columns if whole[name]}
         for name in self.columns:
             ds = self.datasets[split, name]
