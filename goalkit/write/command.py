@@ -33,9 +33,14 @@ def verify(dataset, max_failures, as_json, quiet):
             click.echo(f"consistent: {dataset} ({rows.get('train', 0):,} train and {rows.get('validation', 0):,} "
                        f"validation rows re-derived from {report.checked.get('episodes', 0):,} episodes; "
                        f"{report.checked.get('columns', 0)} column checksums and "
-                       f"{report.checked.get('source_files', 0)} source files match)")
+                       f"{_count(report.checked.get('source_files', 0), 'source file')} match)")
         else:
             click.echo(f"NOT consistent: {dataset}")
             for f in report.failures:
                 click.echo(f"  - {f}")
     sys.exit(0 if report.ok else 1)
+
+
+def _count(n: int, noun: str) -> str:
+    """``"1 source file"``, ``"2 source files"``."""
+    return f"{n} {noun}" if n == 1 else f"{n} {noun}s"
