@@ -141,32 +141,23 @@ def time_floor(logs: Path, built: Path, raw_chunks: bool = False) -> dict:
     ``raw_chunks``: write whole chunks with ``write_direct_chunk`` instead of slice assignment.
     """
     if raw_chunks:
-        return run_child(textwrap.dedent(f"""
-        import time, h5py, numpy as np
-        t = time.perf_counter()
-        step = 1 << 20
-        with h5py.File({str(logs)!r}) as src, h5py.File({str(built)!r}) as ref, \\
-             h5py.File({str(built) + '.floor'!r}, "w", rdcc_nbytes=0) as dst:
-            for a in [src[k] for k in ("observations", "actions", "rewards")]:
-                for i in range(0, a.shape[0], step):
-                    a[i:i + step]
-            for split in ("train", "validation"):
-                g = dst.create_group(split)
-                for name, ds in ref[split].items():
-                    out = g.create_dataset(name, ds.shape, ds.dtype, chunks=ds.chunks, maxshape=ds.maxshape)
+        options, write = ', rdcc_nbytes=0', """
                     c = ds.chunks[0]
                     buf = np.zeros((c,) + ds.shape[1:], ds.dtype)
                     for i in range(0, ds.shape[0], c):
-                        out.id.write_direct_chunk((i,) + (0,) * (buf.ndim - 1), buf)
-        RESULT = {{"seconds": time.perf_counter() - t}}
-        import os; os.remove({str(built) + '.floor'!r})
-        """))
+                        out.id.write_direct_chunk((i,) + (0,) * (buf.ndim - 1), buf)"""
+    else:
+        options, write = '', """
+                    buf = np.zeros((min(step, ds.shape[0]),) + ds.shape[1:], ds.dtype)
+                    for i in range(0, ds.shape[0], step):
+                        n = min(step, ds.shape[0] - i)
+                        out[i:i + n] = buf[:n]"""
     return run_child(textwrap.dedent(f"""
         import time, h5py, numpy as np
         t = time.perf_counter()
         step = 1 << 20
         with h5py.File({str(logs)!r}) as src, h5py.File({str(built)!r}) as ref, \\
-             h5py.File({str(built) + '.floor'!r}, "w") as dst:
+             h5py.File({str(built) + '.floor'!r}, "w"{options}) as dst:
             arrays = [src[k] for k in ("observations", "actions", "rewards")]
             for a in arrays:                      # the read half
                 for i in range(0, a.shape[0], step):
@@ -174,11 +165,7 @@ def time_floor(logs: Path, built: Path, raw_chunks: bool = False) -> dict:
             for split in ("train", "validation"):  # the write half: same datasets, same bytes
                 g = dst.create_group(split)
                 for name, ds in ref[split].items():
-                    out = g.create_dataset(name, ds.shape, ds.dtype, chunks=ds.chunks, maxshape=ds.maxshape)
-                    buf = np.zeros((min(step, ds.shape[0]),) + ds.shape[1:], ds.dtype)
-                    for i in range(0, ds.shape[0], step):
-                        n = min(step, ds.shape[0] - i)
-                        out[i:i + n] = buf[:n]
+                    out = g.create_dataset(name, ds.shape, ds.dtype, chunks=ds.chunks, maxshape=ds.maxshape){write}
         RESULT = {{"seconds": time.perf_counter() - t}}
         import os; os.remove({str(built) + '.floor'!r})
     """))

@@ -203,8 +203,8 @@ class RewardRule:
 
     # ---- scoring -----------------------------------------------------------------------
     def _pair(self, achieved, goal) -> tuple[np.ndarray, np.ndarray]:
-        a = np.asarray(achieved, dtype=np.float64)
-        g = np.asarray(goal, dtype=np.float64)
+        """The two (M, G) inputs as arrays (dtype kept), checked against the rule's dimension."""
+        a, g = np.asarray(achieved), np.asarray(goal)
         if a.ndim != 2 or a.shape != g.shape:
             raise ValueError(f"expected achieved and goal of one shape (M, G), got {a.shape} and {g.shape}")
         dim = len(self.threshold) if self.distance_name == "box" else (
@@ -220,42 +220,32 @@ class RewardRule:
         row (per-dimension terms are accumulated in dimension order), so the bits do not
         depend on how rows are batched.
         """
-        kind = self.distance_name
-        if kind != "cosine":
-            return self._distance_by_dimension(achieved, goal)
         a, g = self._pair(achieved, goal)
-        w = None if self.weights is None else np.asarray(self.weights, dtype=np.float64)
-        if kind == "cosine":
-            ww = np.ones(a.shape[1]) if w is None else w
-            dot = np.sum(ww * a * g, axis=1)
-            na = np.sum(ww * a * a, axis=1)
-            ng = np.sum(ww * g * g, axis=1)
-            with np.errstate(invalid="ignore", divide="ignore"):
-                sim = dot / np.sqrt(na * ng)
-            out = 1.0 - sim
-            za, zg = na == 0, ng == 0
-            out = np.where(za & zg, 0.0, np.where(za | zg, 1.0, out))
-            return np.clip(out, 0.0, 2.0)
-        raise AssertionError(kind)  # pragma: no cover
+        if self.distance_name != "cosine":
+            return self._distance_by_dimension(a, g)
+        a, g = a.astype(np.float64, copy=False), g.astype(np.float64, copy=False)
+        ww = np.ones(a.shape[1]) if self.weights is None else np.asarray(self.weights, dtype=np.float64)
+        dot = np.sum(ww * a * g, axis=1)
+        na = np.sum(ww * a * a, axis=1)
+        ng = np.sum(ww * g * g, axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            sim = dot / np.sqrt(na * ng)
+        out = 1.0 - sim
+        za, zg = na == 0, ng == 0
+        out = np.where(za & zg, 0.0, np.where(za | zg, 1.0, out))
+        return np.clip(out, 0.0, 2.0)
 
-    def _distance_by_dimension(self, achieved, goal) -> np.ndarray:
-        """Euclidean, L1, Chebyshev and box distances, one goal dimension at a time.
+    def _distance_by_dimension(self, a: np.ndarray, g: np.ndarray) -> np.ndarray:
+        """Euclidean, L1, Chebyshev and box distances of checked inputs, one goal dimension at a time.
 
         Works on columns of the (M, G) inputs, so there is no (M, G) float64 temporary and no
         short-axis reduction (both dominate the cost for the small G of goal spaces).
         """
-        a, g = np.asarray(achieved), np.asarray(goal)
-        if a.ndim != 2 or a.shape != g.shape:
-            raise ValueError(f"expected achieved and goal of one shape (M, G), got {a.shape} and {g.shape}")
         kind = self.distance_name
-        dim = len(self.threshold) if kind == "box" else (
-            len(self.weights) if self.weights is not None else a.shape[1])
-        if a.shape[1] != dim:
-            raise ValueError(f"the rule is for goals of dimension {dim}, got {a.shape[1]}")
         weights = [float(x) for x in self.weights] if self.weights is not None else None
         out = np.zeros(a.shape[0], dtype=np.float64)
         col = np.empty(a.shape[0], dtype=np.float64)
-        for k in range(dim):
+        for k in range(a.shape[1]):
             np.subtract(a[:, k], g[:, k], out=col, dtype=np.float64)
             np.abs(col, out=col)
             if kind == "euclidean":

@@ -91,9 +91,10 @@ def first_discontinuity(obs: np.ndarray, nxt: np.ndarray, lengths: np.ndarray):
     n = obs.shape[0]
     if n < 2:
         return None
+    starts = np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(np.int64)
     inner = np.ones(n - 1, dtype=bool)           # row r pairs with r + 1 inside its episode
-    ends = np.cumsum(lengths)[:-1] - 1             # last row of every episode but the final one
-    inner[ends[(ends >= 0) & (ends < n - 1)]] = False
+    ends = starts[1:] - 1                        # last row of every episode but the final one
+    inner[ends[ends >= 0]] = False
     a = nxt[:-1].reshape(n - 1, -1)
     b = obs[1:].reshape(n - 1, -1)
     ok = np.isclose(a, b, rtol=PAIRS_RTOL, atol=PAIRS_ATOL, equal_nan=True).all(axis=1) | ~inner
@@ -101,7 +102,6 @@ def first_discontinuity(obs: np.ndarray, nxt: np.ndarray, lengths: np.ndarray):
     if bad.size == 0:
         return None
     r = int(bad[0])
-    starts = np.concatenate([[0], np.cumsum(lengths)[:-1]])
     pos = int(np.searchsorted(starts, r, side="right") - 1)
     diff = float(np.nanmax(np.abs(a[r].astype(np.float64) - b[r].astype(np.float64))))
     return pos, r - int(starts[pos]), diff

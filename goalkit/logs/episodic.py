@@ -222,6 +222,28 @@ def read_episode(acc, layout, meta: EpisodeMeta, episode: int, obs_dtype, action
 class EpisodicSource(BaseSource):
     """Base of readers whose episodes live in separate containers (groups, files)."""
 
+    def _plan_all(self, accesses):
+        """Plan every episode from its access object, in order.
+
+        A per-episode problem is recorded (the episode's meta is None); a file-level one, or
+        one raised while making the next access object, propagates.
+
+        Returns
+        -------
+        (list, list)
+            ``metas`` and ``problems`` for :meth:`_adopt`.
+        """
+        metas, problems = [], []
+        for e, acc in enumerate(accesses):
+            try:
+                metas.append(plan_episode(acc, self.layout, e))
+            except LogError as exc:
+                if exc.episode is None:
+                    raise
+                metas.append(None)
+                problems.append((e, exc))
+        return metas, problems
+
     def _adopt(self, metas, problems):
         """Check that episodes agree with the first good one, then apply the skip policy."""
         good = [m for m in metas if m is not None]

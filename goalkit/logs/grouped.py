@@ -13,7 +13,7 @@ import fnmatch
 
 from goalkit.errors import LogError
 from goalkit.logs.access import H5Access, open_h5
-from goalkit.logs.episodic import EpisodicSource, join_parts, plan_episode, read_episode
+from goalkit.logs.episodic import EpisodicSource, join_parts, read_episode
 from goalkit.logs.naming import natural_sorted
 
 
@@ -45,15 +45,7 @@ class GroupedSource(EpisodicSource):
                 raise LogError(f"no groups match episode_groups = \"{layout.episode_groups}\"; top-level "
                                f"names: {', '.join(top) if top else 'none'}", file=self.path,
                                key="episode_groups")
-            metas, problems = [], []
-            for e, g in enumerate(self.groups):
-                try:
-                    metas.append(plan_episode(H5Access(h5[g], self.path), layout, e))
-                except LogError as exc:
-                    if exc.episode is None:
-                        raise
-                    metas.append(None)
-                    problems.append((e, exc))
+            metas, problems = self._plan_all(H5Access(h5[g], self.path) for g in self.groups)
         self._adopt(metas, problems)
 
     def _key_of(self, episode, key):

@@ -13,7 +13,7 @@ import os
 
 from goalkit.errors import LogError
 from goalkit.logs.access import NpzAccess
-from goalkit.logs.episodic import EpisodicSource, join_parts, plan_episode, read_episode
+from goalkit.logs.episodic import EpisodicSource, join_parts, read_episode
 from goalkit.logs.naming import natural_sorted
 from goalkit.logs.npzfile import NpzArrays
 
@@ -38,17 +38,8 @@ class PerFileSource(EpisodicSource):
     def __init__(self, path, layout, skip_bad_episodes=False, advance=None):
         super().__init__(path, layout, skip_bad_episodes, advance)
         self.files = episode_files(self.path, layout.file_pattern)
-        metas, problems = [], []
-        for e, f in enumerate(self.files):
-            arrays = NpzArrays(f)              # a file that is not an .npz: file-level error
-            try:
-                metas.append(plan_episode(NpzAccess(arrays), layout, e))
-            except LogError as exc:
-                if exc.episode is None:
-                    raise
-                metas.append(None)
-                problems.append((e, exc))
-        self._adopt(metas, problems)
+        # a file that is not an .npz fails in NpzArrays: a file-level error, not skipped
+        self._adopt(*self._plan_all(NpzAccess(NpzArrays(f)) for f in self.files))
 
     def _file_of(self, episode):
         return self.files[episode]

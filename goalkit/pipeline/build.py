@@ -12,7 +12,7 @@ from pathlib import Path
 import numpy as np
 
 from goalkit import __version__
-from goalkit.logs.episodes import EpisodeSet, chunk_bounds
+from goalkit.logs.episodes import chunk_bounds
 from goalkit.pipeline.chunk import relabel_chunk
 from goalkit.pipeline.plan import make_plan, split_rows, strategy_names
 from goalkit.pipeline.summary import SummaryBuilder
@@ -60,8 +60,6 @@ def relabelled_chunks(plan, source, bounds, ahead: bool = True, summary=None):
     and in chunk order.
     """
     def task(chunk):
-        if not isinstance(chunk, EpisodeSet):
-            chunk = chunk.result()
         rows = relabel_chunk(plan, chunk, defer_gathers=True)
         if summary is not None:
             for split, cols in rows.columns.items():
@@ -77,7 +75,8 @@ def relabelled_chunks(plan, source, bounds, ahead: bool = True, summary=None):
             ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-chunk") as pool:
         pending: deque = deque()
         for a, b in bounds:
-            pending.append((a, b, pool.submit(task, reader.submit(source.read, a, b))))
+            read = reader.submit(source.read, a, b)
+            pending.append((a, b, pool.submit(lambda read=read: task(read.result()))))
             if len(pending) > LOOKAHEAD:
                 a0, b0, job = pending.popleft()
                 yield a0, b0, job.result()

@@ -195,6 +195,7 @@ class SetWriter:
         self._encoder = (ThreadPoolExecutor(max_workers=ENCODE_THREADS, thread_name_prefix="goalkit-gzip")
                          if compression == "gzip" else None)
         self.datasets = {}
+        self._chunk_len = {}   # rows per HDF5 chunk of each dataset (asking h5py costs a call)
         for s in SPLITS:
             group = self.file.create_group(s)
             for name, (dtype, shape) in columns.items():
@@ -207,6 +208,7 @@ class SetWriter:
                     self.datasets[s, name] = group.create_dataset(
                         name, shape=(0, *shape), maxshape=(None, *shape), dtype=dtype,
                         chunks=(self.chunk_rows, *shape), track_times=False, **filt)
+                self._chunk_len[s, name] = self.datasets[s, name].chunks[0]
 
     # ---- writing ---------------------------------------------------------------------
     def add(self, split: str, columns: dict, keys: np.ndarray) -> None:
@@ -263,11 +265,13 @@ class SetWriter:
         n = len(next(iter(block.values())))
         a = self.rows[split]
         futures = []
-        whole = {name: n == self.datasets[split, name].chunks[0] and a % n == 0 for name in self.columns}
-        encoded = {}
-        if self._encoder is not None:  # compress every whole chunk of the block at once
-            encoded = {name: self._encoder.submit(gzip_chunk, np.asarray(block[name], dtype=self._dtypes[name]))
-                       for name in self.columns if whole[name]}
+        # a whole chunk goes to HDF5 as its stored bytes: raw, or gzip-encoded on the encoder threads
+        whole = {}
+        if self.compression != "lzf":
+            whole = {name: np.ascontiguousarray(block[name], dtype=self._dtypes[name]) for name in self.columns
+                     if n == self._chunk_len[split, name] and a % n == 0}
+        if self._encoder is not None:
+            whole = {name: self._encoder.submit(gzip_chunk, data) for name, data in whole.items()}
         for name in self.columns:
             ds = self.datasets[split, name]
             try:
@@ -275,11 +279,10 @@ class SetWriter:
                     ds.resize(a + n, axis=0)
                 elif a + n > self.total_rows[split]:
                     raise ValueError(f"{split}: more rows than the {self.total_rows[split]} announced")
-                offset = (a,) + (0,) * (len(ds.shape) - 1)
-                if name in encoded:
-                    ds.id.write_direct_chunk(offset, encoded[name].result())
-                elif whole[name] and self.compression == "none":
-                    ds.id.write_direct_chunk(offset, np.ascontiguousarray(block[name], dtype=self._dtypes[name]))
+                if name in whole:
+                    data = whole[name]
+                    ds.id.write_direct_chunk((a,) + (0,) * len(self.columns[name][1]),
+                                             data.result() if self._encoder is not None else data)
                 else:  # a partial chunk (the end of a split), or lzf: through HDF5's pipeline
                     ds[a:a + n] = block[name]
             except OSError as exc:
