@@ -14,6 +14,7 @@ from goalkit.pipeline.split import split_codes
 from goalkit.write.reader import open_set
 
 from pipeline_cases import make_episodes, recipe_text
+from published_fetch_reward import fetch_reward_and_success, fetch_threshold
 
 
 def digest(path):
@@ -99,29 +100,38 @@ def test_her_future_k4_share_of_relabelled_rows(tmp_path):
     assert stats.binomtest(relabelled, len(s), 0.75).pvalue < 1e-6
 
 
-def test_sparse_negative_5cm_rule_end_to_end(tmp_path):
-    # The multi-goal robotics environments of Plappert et al. (2018, arXiv:1802.09464, sec. 1)
-    # use a sparse reward of -1 unless the achieved goal is within 5 cm of the desired goal
-    # (value from memory; their comparison is strict, d < 0.05 -> reward 0). Our
-    # inclusive = false reproduces it. Goals are placed at known distances from s_t+1.
+@pytest.mark.parametrize("inclusive", [True, False])
+def test_sparse_negative_5cm_rule_end_to_end(tmp_path, inclusive):
+    # The multi-goal robotics environments of Plappert et al. (2018, arXiv:1802.09464, sec. 1):
+    # reward -1 unless the achieved goal is within the 5 cm threshold. The published code
+    # (Gymnasium-Robotics, run here) rewards -(d > threshold), inclusive, and flags success
+    # with d < threshold, strict. A set built with inclusive = true must carry their reward;
+    # with inclusive = false its reached flag must be their success flag. Goals are placed at
+    # known distances from s_t+1.
     from goalkit.logs.episodes import EpisodeSet
 
+    threshold = fetch_threshold()
     d = np.array([0.0, 0.049, 0.05, 0.051, 0.2])
     n = len(d)
     obs = np.zeros((2 * n, 3), np.float64)          # n one-step episodes: s_0 = 0, s_1 = 0
     goals = np.zeros((n, 3))
     goals[:, 0] = d                                  # the log's own goal at distance d from s_1
+    their_reward, their_success = fetch_reward_and_success(np.zeros((n, 3)), goals, threshold)
     eps = EpisodeSet(observations=obs, actions=np.zeros((n, 1)), offsets=np.arange(n + 1),
                      episode_ids=np.arange(n), task_goals=goals, fields={"head": (0, 3)})
-    out = tmp_path / "plappert.h5"
-    text = recipe_text(out, gpt=1, weights="original = 1", threshold=0.05, validation=0.0,
-                       reward_extra='form = "sparse-negative"\ninclusive = false').replace(
+    out = tmp_path / "five-cm.h5"
+    text = recipe_text(out, gpt=1, weights="original = 1", threshold=threshold, validation=0.0,
+                       reward_extra=f'form = "sparse-negative"\ninclusive = {str(inclusive).lower()}').replace(
         'fields = ["head"]', 'fields = ["head"]\ndtype = "float64"')
     build(parse_recipe(text), source=MemorySource(eps))
     with open_set(out) as gs:
         r = gs.read("train", ["reward", "reached"])
-    np.testing.assert_array_equal(r["reward"], [0, 0, -1, -1, -1])
-    np.testing.assert_array_equal(r["reached"], [1, 1, 0, 0, 0])
+    if inclusive:
+        np.testing.assert_array_equal(r["reward"], their_reward)
+        np.testing.assert_array_equal(r["reward"], [0, 0, 0, -1, -1])
+    else:
+        np.testing.assert_array_equal(r["reached"].astype(bool), their_success)
+        np.testing.assert_array_equal(r["reached"], [1, 1, 0, 0, 0])
 
 
 def test_indexed_mode_resolves_like_materialised(tmp_path, episodes, source):

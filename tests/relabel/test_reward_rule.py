@@ -8,6 +8,8 @@ from scipy.spatial import distance as sd
 
 from goalkit.reward import DISTANCES, FORMS, RewardRule
 
+from published_fetch_reward import fetch_reward_and_success, fetch_threshold
+
 GEN = np.random.default_rng(11)  # invented test vectors (unit-test data only)
 A = GEN.normal(size=(40, 4))
 G = GEN.normal(size=(40, 4))
@@ -68,20 +70,25 @@ def test_cosine_zero_vectors():
 
 
 def test_five_centimetre_sparse_negative_rule():
-    # Plappert et al. (2018, arXiv:1802.09464), multi-goal robotics environments; value from
-    # memory: distance_threshold = 0.05 and reward = -(d > threshold), i.e. 0 when d <= 0.05,
-    # while their success flag is d < 0.05 (strict). Our inclusive=True + "sparse-negative"
-    # reproduces their reward; inclusive=False reproduces their success flag.
-    a = np.array([[0.049, 0.0, 0.0], [0.05, 0.0, 0.0], [0.051, 0.0, 0.0]])
+    # Plappert et al. (2018, arXiv:1802.09464, sec. 1): the Fetch tasks' sparse reward. Checked
+    # against the published environment code in Gymnasium-Robotics, run here (not from memory):
+    # its reward -(d > threshold) is inclusive (0 at d == threshold); its success flag
+    # d < threshold is strict. Our inclusive=True + "sparse-negative" gives their reward,
+    # inclusive=False gives their success flag.
+    threshold = fetch_threshold()
+    assert threshold == 0.05
+    a = np.array([[0.049, 0.0, 0.0], [0.05, 0.0, 0.0], [0.051, 0.0, 0.0], [0.0, 0.03, 0.04]])
     g = np.zeros_like(a)
-    incl = RewardRule("euclidean", 0.05, inclusive=True, form="sparse-negative")
+    their_reward, their_success = fetch_reward_and_success(a, g, threshold)
+    assert their_reward.tolist() == [0.0, 0.0, -1.0, 0.0]
+    incl = RewardRule("euclidean", threshold, inclusive=True, form="sparse-negative")
     excl = incl.replace(inclusive=False)
     r = incl.reward(a, g)
     assert r.dtype == np.float32
-    assert r.tolist() == [0.0, 0.0, -1.0]
-    assert excl.reward(a, g).tolist() == [0.0, -1.0, -1.0]
-    assert incl.reached(a, g).tolist() == [True, True, False]
-    assert excl.reached(a, g).tolist() == [True, False, False]
+    np.testing.assert_array_equal(r, their_reward)
+    np.testing.assert_array_equal(excl.reached(a, g), their_success)
+    assert incl.reached(a, g).tolist() == [True, True, False, True]
+    assert excl.reward(a, g).tolist() == [0.0, -1.0, -1.0, -1.0]
 
 
 def test_forms():
