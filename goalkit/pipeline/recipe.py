@@ -96,6 +96,18 @@ class Recipe:
     salt: int
     output: OutputSpec
 
+    def inputs(self) -> list[tuple[str, Path]]:
+        """Every file or folder a build of this recipe reads, labelled for messages.
+
+        The recipe file itself, the logs (a folder counts with its files), the layout, the goal
+        embedding and the goal library, when given.
+        """
+        items = [("recipe", self.file if self.file and self.file != "<recipe>" else None),
+                 ("[logs] path", self.logs_path), ("[logs] layout", self.layout_path),
+                 ("[goal] embedding", self.goal.embedding),
+                 ("[relabel] library", getattr(self.mixture, "library", None))]
+        return [(label, Path(p)) for label, p in items if p is not None]
+
     def with_overrides(self, *, seed: int | None = None, out: str | Path | None = None) -> "Recipe":
         """Return a copy with the seed and/or output path replaced (CLI ``--seed`` / ``--out``)."""
         new = self

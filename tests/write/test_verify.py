@@ -32,7 +32,7 @@ def copy(built, tmp_path):
     target = tmp_path / "demo"
     shutil.copytree(d, target)
     # the stored provenance points at the original logs; rebuild in the copy instead
-    build(load_recipe(target / "gantry-recipe.toml"))
+    build(load_recipe(target / "gantry-recipe.toml"), replace=True)
     return target, target / "gantry-goals.h5"
 
 
