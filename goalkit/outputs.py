@@ -308,6 +308,29 @@ def refuse_existing(path, *, replace: bool = False, ours: Callable | None = None
     return True
 
 
+def small_toml(path, max_bytes: int = 1 << 20) -> dict | None:
+    """The TOML table in a small regular file, or None (too big, not UTF-8, not TOML, a link).
+
+    For the "ours" tests of TOML outputs (layouts, recipes).
+    """
+    import tomllib
+
+    try:
+        fd = open_no_follow(path, os.O_RDONLY, 0)
+    except OSError:
+        return None
+    with os.fdopen(fd, "rb") as f:
+        if not stat.S_ISREG(os.fstat(f.fileno()).st_mode):
+            return None
+        data = f.read(max_bytes + 1)
+    if len(data) > max_bytes:
+        return None
+    try:
+        return tomllib.loads(data.decode("utf-8"))
+    except (UnicodeDecodeError, tomllib.TOMLDecodeError):
+        return None
+
+
 def _safe_ours(ours, path) -> bool:
     try:
         return bool(ours(path))

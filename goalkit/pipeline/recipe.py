@@ -265,3 +265,16 @@ def load_recipe(path) -> Recipe:
 def _read_text(path: Path) -> str:
     load_toml(path, RecipeError)  # uniform not-found / not-TOML messages
     return path.read_text(encoding="utf-8")
+
+
+def is_recipe_file(path) -> bool:
+    """True when ``path`` is a small TOML file with a recipe's keys only, [logs] and [output] among them.
+
+    The test that lets ``--replace`` replace an existing recipe (``tune --write-recipe``,
+    ``demo``); anything else at the path is never replaced.
+    """
+    from goalkit.outputs import small_toml
+
+    doc = small_toml(path)
+    return (doc is not None and isinstance(doc.get("logs"), dict) and isinstance(doc.get("output"), dict)
+            and set(doc) <= set(TOP_KEYS))

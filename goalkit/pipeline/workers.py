@@ -28,7 +28,7 @@ from typing import Callable
 import numpy as np
 
 from goalkit.errors import GoalkitError
-from goalkit.outputs import write_own_file
+from goalkit.outputs import open_no_follow, write_own_file
 from goalkit.pipeline.shards import write_shard
 
 #: Arrays larger than this are spilled to a memory-mapped file instead of pickled.
@@ -61,7 +61,7 @@ class Spill:
 
 
 def _save_npy(value, path) -> None:
-    with open(path, "wb") as f:
+    with os.fdopen(open_no_follow(path, os.O_WRONLY | os.O_TRUNC), "wb") as f:   # our new temporary file
         np.save(f, np.ascontiguousarray(value), allow_pickle=False)
 
 
