@@ -7,6 +7,7 @@ never fails half-way on a typo.
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass, replace
 from pathlib import Path
 
@@ -114,7 +115,8 @@ class Recipe:
         if seed is not None:
             new = replace(new, seed=_check_seed(seed, new.file))
         if out is not None:
-            new = replace(new, output=replace(new.output, path=Path(out).resolve()))
+            # absolute but not resolved: a link given as the output is refused, never followed
+            new = replace(new, output=replace(new.output, path=Path(os.path.abspath(Path(out).expanduser()))))
         return new
 
 
@@ -135,12 +137,15 @@ def _table(doc, name, file, required=True) -> dict:
     return value
 
 
-def _path(value, base: Path, file, key) -> Path:
+def _path(value, base: Path, file, key, resolve: bool = True) -> Path:
+    """An absolute path; with ``resolve``, links resolved too (inputs; outputs keep their links
+    so that a link at an output path is refused rather than followed)."""
     expect_type(value, str, file=file, key=key, what="a path (string)", error=RecipeError)
     if not value:
         raise RecipeError("expected a path, got an empty string", file=file, key=key)
     p = Path(value).expanduser()
-    return (p if p.is_absolute() else base / p).resolve()
+    p = p if p.is_absolute() else base / p
+    return p.resolve() if resolve else Path(os.path.abspath(p))
 
 
 def _parse_goal(table, base, file) -> GoalSpec:
@@ -197,7 +202,8 @@ def _parse_output(table, base, file) -> OutputSpec:
     if isinstance(rows, bool) or not isinstance(rows, int) or not 256 <= rows <= 2 ** 24:
         raise RecipeError(f"expected a whole number from 256 to 16777216, got {rows!r}", file=file,
                           key="output.chunk_rows")
-    return OutputSpec(path=_path(table["path"], base, file, "output.path"), mode=mode, compression=comp,
+    return OutputSpec(path=_path(table["path"], base, file, "output.path", resolve=False), mode=mode,
+                      compression=comp,
                       chunk_rows=rows)
 
 
