@@ -9,8 +9,9 @@ hold everywhere (see the README's "Safety of your files"):
 * **Exclusive temporary names.** Data is written to a temporary sibling of the output, named
   ``.NAME~goalkit-PID-HOST-TOKEN.tmp`` (:func:`temporary_name`): PID is the writing process,
   HOST eight hex digits of a hash of the machine's name, TOKEN twelve random hex digits. It is
-  created with ``O_CREAT | O_EXCL | O_NOFOLLOW``, so a file or link already at that name is
-  never opened, followed or truncated; another random name is tried instead.
+  created with ``O_CREAT | O_EXCL | O_NOFOLLOW`` (HDF5 files: h5py's exclusive mode ``"x"``,
+  which HDF5 opens with ``O_CREAT | O_EXCL``), so a file or link already at that name is never
+  opened, followed or truncated; another random name is tried instead.
 * **No half-written outputs.** The temporary file becomes the output only when complete: with
   a hard link that fails if anything (even a dangling link) is at the output path, or, when an
   existing output may be replaced, a rename.
@@ -227,38 +228,41 @@ def discard(tmp) -> None:
 
 
 def open_hdf5(path, **kwargs):
-    """Create a temporary sibling of ``path`` exclusively and open it with h5py for writing.
+    """Create a new temporary sibling of ``path`` with h5py, exclusively, and open it for writing.
 
-    h5py opens files by name; the name was just created exclusively and is random, and the
-    file h5py opened is checked to be that very file (same device and inode), so a link swapped
-    in between is detected.
+    h5py's mode ``"x"`` makes HDF5 open the file with ``O_CREAT | O_EXCL``, which fails on any
+    existing name, a link (even a dangling one) included, so nothing is followed or truncated;
+    another random name is tried instead. The file h5py opened is then checked to be the regular
+    file at the temporary name (same device and inode).
 
     Returns
     -------
     (Path, h5py.File)
-        The temporary path and the open file (mode ``"w"``, ``kwargs`` passed on).
+        The temporary path and the open file (``kwargs`` passed on to ``h5py.File``).
     """
     import h5py
 
-    tmp, fd = create_temporary(path)
-    try:
-        ident = identity(fd)
-    finally:
-        os.close(fd)
-    try:
-        f = h5py.File(tmp, "w", **kwargs)
-    except OSError as exc:
-        discard(tmp)
-        raise OutputError(f"cannot create the output file ({exc})", file=path) from None
-    try:
-        handle = f.id.get_vfd_handle()
-        same = identity(int(handle)) == ident if isinstance(handle, int) else identity(os.lstat(tmp)) == ident
-    except (OSError, ValueError, TypeError):
-        same = False
-    if not same:
-        f.close()
-        raise OutputError("the temporary file was replaced while it was opened; nothing written", file=path)
-    return tmp, f
+    path = Path(path)
+    remove_stale_temporaries(path)
+    for _ in range(TRIES):
+        tmp = temporary_name(path)
+        try:
+            f = h5py.File(tmp, "x", **kwargs)
+        except FileExistsError:
+            continue
+        except OSError as exc:
+            raise OutputError(f"cannot create the output file ({exc})", file=path) from None
+        try:
+            handle = f.id.get_vfd_handle()
+            st = os.lstat(tmp)
+            same = stat.S_ISREG(st.st_mode) and (not isinstance(handle, int) or identity(handle) == identity(st))
+        except (OSError, ValueError, TypeError):
+            same = False
+        if not same:  # pragma: no cover - needs a race with another process
+            f.close()
+            raise OutputError("the temporary file was replaced while it was opened; nothing written", file=path)
+        return tmp, f
+    raise OutputError("cannot find an unused temporary name beside the output", file=path)
 
 
 # ---- existing outputs -----------------------------------------------------------------------
