@@ -317,7 +317,10 @@ def small_toml(path, max_bytes: int = 1 << 20) -> dict | None:
 
     For the "ours" tests of TOML outputs (layouts, recipes).
     """
-    import tomllib
+    try:
+        import tomllib
+    except ImportError:  # Python 3.10
+        import tomli as tomllib
 
     try:
         fd = open_no_follow(path, os.O_RDONLY, 0)
