@@ -19,7 +19,6 @@ from collections import deque
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
-import h5py
 import numpy as np
 
 from goalkit.errors import DatasetError
