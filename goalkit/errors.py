@@ -70,3 +70,7 @@ class DatasetError(GoalkitError):
 
 class EmbeddingError(GoalkitError):
     """An embedding file is malformed or does not fit the goal features."""
+
+
+class OutputError(GoalkitError):
+    """An output cannot be written safely: it is an input, it exists, or a link is in the way."""

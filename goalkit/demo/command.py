@@ -14,17 +14,21 @@ from goalkit.demo.files import write_demo
 @click.option("--seed", default=0, type=click.IntRange(min=0),
               help="Seed; the same seed writes byte-identical files.")
 @click.option("--frames", is_flag=True, help="Also store 32x32 top-down camera frames.")
+@click.option("--replace", is_flag=True,
+              help="Replace the demo's files in DIR if they exist (only demo logs, layout and recipe "
+                   "files; without this option existing files are refused).")
 @click.option("--quiet", is_flag=True, help="No progress bar and no summary.")
 @click.option("--json", "as_json", is_flag=True, help="Print what was written as one JSON object.")
 @user_errors
-def demo(directory, episodes, seed, frames, quiet, as_json):
+def demo(directory, episodes, seed, frames, replace, quiet, as_json):
     """Write invented demo logs of the irrigation-gantry bench into DIR.
 
     Writes DIR/gantry-logs.h5 (HDF5, one group per episode), DIR/gantry-layout.toml and
     DIR/gantry-recipe.toml (a ready recipe whose output is DIR/gantry-goals.h5).
     """
     with progress(episodes, "demo", quiet=quiet or as_json, unit="episode") as bar:
-        report = write_demo(directory, episodes=episodes, seed=seed, frames=frames, advance=bar.update)
+        report = write_demo(directory, episodes=episodes, seed=seed, frames=frames, advance=bar.update,
+                            replace=replace)
     if as_json:
         echo_json(report.as_dict())
         return

@@ -1,13 +1,14 @@
 """Write the demo's files: HDF5 logs, layout file and recipe, each via a temporary name.
 
 File names inside the output directory: :data:`LOGS_NAME`, :data:`LAYOUT_NAME`,
-:data:`RECIPE_NAME`; the recipe's output is :data:`GOALS_NAME`.
+:data:`RECIPE_NAME`; the recipe's output is :data:`GOALS_NAME`. Files are written through
+:mod:`goalkit.outputs`: existing files are replaced only with ``replace`` and only if they are
+demo logs (root attribute ``scenario``), a layout file and a recipe respectively.
 """
 
 from __future__ import annotations
 
 import json
-import os
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
@@ -20,6 +21,9 @@ from goalkit.demo.controllers import CONTROLLERS
 from goalkit.demo.simulate import Rollouts, simulate
 from goalkit.demo.tasks import WATER_HOLD, WATER_RADIUS, task_name
 from goalkit.errors import GoalkitError
+from goalkit.logs.layout import is_layout_file
+from goalkit.outputs import discard, open_hdf5, publish, refuse_existing, write_text
+from goalkit.pipeline.recipe import is_recipe_file
 
 LOGS_NAME = "gantry-logs.h5"
 LAYOUT_NAME = "gantry-layout.toml"
@@ -64,27 +68,18 @@ class DemoReport:
                 "episodes": self.episodes, "steps": self.steps}
 
 
-def _temporary(path: Path) -> Path:
-    return path.with_name(f".{path.name}.{os.getpid()}.tmp")
+#: Root attribute ``scenario`` of the demo logs: what makes an existing logs file "ours".
+SCENARIO = "irrigation gantry over a seedling bench"
 
 
-def _replace(tmp: Path, path: Path) -> None:
+def is_demo_logs(path) -> bool:
+    """True when ``path`` is an HDF5 file written by :func:`write_logs` (its ``scenario`` attribute)."""
     try:
-        os.replace(tmp, path)
-    except OSError as exc:
-        tmp.unlink(missing_ok=True)
-        raise GoalkitError(f"cannot write ({exc.strerror or exc})", file=path) from None
-
-
-def write_text(path: Path, text: str) -> None:
-    """Write ``text`` to ``path`` through a temporary file in the same directory."""
-    tmp = _temporary(path)
-    try:
-        tmp.write_text(text, encoding="utf-8")
-    except OSError as exc:
-        tmp.unlink(missing_ok=True)
-        raise GoalkitError(f"cannot write ({exc.strerror or exc})", file=path) from None
-    _replace(tmp, path)
+        with h5py.File(path, "r") as f:
+            value = f.attrs.get("scenario")
+    except (OSError, ValueError):
+        return False
+    return (value.decode() if isinstance(value, bytes) else value) == SCENARIO
 
 
 def episode_name(index: int, episodes: int) -> str:
@@ -100,7 +95,8 @@ def _dataset(group, name, data):
                          shuffle=True, track_times=False)
 
 
-def write_logs(path, rollouts: Rollouts, *, advance: Callable[[int], None] | None = None) -> None:
+def write_logs(path, rollouts: Rollouts, *, advance: Callable[[int], None] | None = None,
+               replace: bool = False) -> None:
     """Write rollouts as HDF5 logs, one group per episode (see ``docs/demo.md``).
 
     Parameters
@@ -111,15 +107,18 @@ def write_logs(path, rollouts: Rollouts, *, advance: Callable[[int], None] | Non
         The episodes.
     advance : callable, optional
         Called with 1 after each episode is written (progress).
+    replace : bool
+        Replace existing demo logs at ``path`` (nothing else there is ever replaced).
     """
     path = Path(path)
     p = rollouts.params
     E = rollouts.num_episodes
-    tmp = _temporary(path)
+    refuse_existing(path, replace=replace, ours=is_demo_logs, what="demo logs")
+    tmp, f = open_hdf5(path, libver=("v110", "v110"), track_order=False)
     try:
-        with h5py.File(tmp, "w", libver=("v110", "v110"), track_order=False) as f:
+        with f:
             a = f.attrs
-            a["scenario"] = "irrigation gantry over a seedling bench"
+            a["scenario"] = SCENARIO
             a["format_version"] = FORMAT_VERSION
             a["seed"] = rollouts.seed
             a["trays"] = p.trays
@@ -152,12 +151,12 @@ def write_logs(path, rollouts: Rollouts, *, advance: Callable[[int], None] | Non
                 if advance is not None:
                     advance(1)
     except OSError as exc:
-        tmp.unlink(missing_ok=True)
+        discard(tmp)
         raise GoalkitError(f"cannot write HDF5 ({exc})", file=path) from None
     except BaseException:
-        tmp.unlink(missing_ok=True)
+        discard(tmp)
         raise
-    _replace(tmp, path)
+    publish(tmp, path, replace=replace, ours=is_demo_logs, what="demo logs")
 
 
 def layout_text(frames: bool) -> str:
@@ -241,7 +240,7 @@ def _check(episodes, seed, trays):
 
 
 def write_demo(directory, episodes: int = 200, seed: int = 0, frames: bool = False, trays: int = 3,
-               *, advance: Callable[[int], None] | None = None) -> DemoReport:
+               *, advance: Callable[[int], None] | None = None, replace: bool = False) -> DemoReport:
     """Simulate the bench and write logs, layout and recipe into ``directory``.
 
     Parameters
@@ -258,6 +257,10 @@ def write_demo(directory, episodes: int = 200, seed: int = 0, frames: bool = Fal
         Number of trays ``K`` (1 to 6).
     advance : callable, optional
         Progress callback, called with 1 per episode written.
+    replace : bool
+        Replace the demo's files when they already exist (only demo logs, a layout file and a
+        recipe; anything else at those names is never replaced). Without it an existing file
+        is refused before anything is simulated.
 
     Returns
     -------
@@ -276,18 +279,21 @@ def write_demo(directory, episodes: int = 200, seed: int = 0, frames: bool = Fal
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise GoalkitError(f"cannot create directory ({exc.strerror or exc})", file=out) from None
-    rollouts = simulate(int(episodes), int(seed), GantryParams(trays=int(trays)), frames=frames)
     logs, layout, recipe = out / LOGS_NAME, out / LAYOUT_NAME, out / RECIPE_NAME
-    write_logs(logs, rollouts, advance=advance)
-    write_text(layout, layout_text(frames))
-    write_text(recipe, recipe_text(seed))
+    for path, ours, what in ((logs, is_demo_logs, "demo logs"), (layout, is_layout_file, "demo file"),
+                             (recipe, is_recipe_file, "demo file")):
+        refuse_existing(path, replace=replace, ours=ours, what=what)
+    rollouts = simulate(int(episodes), int(seed), GantryParams(trays=int(trays)), frames=frames)
+    write_logs(logs, rollouts, advance=advance, replace=replace)
+    write_text(layout, layout_text(frames), replace=replace, ours=is_layout_file, what="demo file")
+    write_text(recipe, recipe_text(seed), replace=replace, ours=is_recipe_file, what="demo file")
     rates = {c: rollouts.success_rate(c) for c in CONTROLLERS}
     return DemoReport(logs=str(logs), layout=str(layout), recipe=str(recipe),
                       episodes=int(episodes), steps=int(rollouts.lengths.sum()), success_rates=rates)
 
 
 def make_demo(directory, episodes: int = 200, seed: int = 0, frames: bool = False,
-              trays: int = 3) -> dict:
+              trays: int = 3, replace: bool = False) -> dict:
     """Write the irrigation-gantry demo into ``directory`` and return what was written.
 
     Parameters
@@ -302,6 +308,8 @@ def make_demo(directory, episodes: int = 200, seed: int = 0, frames: bool = Fals
         Also store 32 x 32 uint8 top-down camera frames (key ``camera``).
     trays : int
         Number of seedling trays (1 to 6).
+    replace : bool
+        Replace the demo's files when they already exist (see :func:`write_demo`).
 
     Returns
     -------
@@ -315,4 +323,4 @@ def make_demo(directory, episodes: int = 200, seed: int = 0, frames: bool = Fals
     >>> out["episodes"], sorted(out)
     (5, ['episodes', 'layout', 'logs', 'recipe', 'steps'])
     """
-    return write_demo(directory, episodes, seed, frames, trays).as_dict()
+    return write_demo(directory, episodes, seed, frames, trays, replace=replace).as_dict()

@@ -75,12 +75,15 @@ def format_summary(s: dict) -> str:
 @click.option("--chunk-steps", type=click.IntRange(min=1), default=200_000,
               help="Transitions read per chunk (memory only; the result does not depend on it).")
 @click.option("-o", "--output", type=click.Path(dir_okay=False), required=True,
-              help="Embedding file to write (.npz).")
+              help="Embedding file to write (.npz); never one of the inputs.")
+@click.option("--replace", is_flag=True,
+              help="Replace an existing embedding file at OUTPUT (only a goalkit embedding file is ever "
+                   "replaced; without this option an existing file is refused).")
 @click.option("--json", "as_json", is_flag=True, help="Print the summary as one JSON object.")
 @click.option("--quiet", is_flag=True, help="No progress bar and no summary.")
 @user_errors
 def embed(logs, layout, method, dims, input_, fields, degree, whiten, block, values, chunk_steps, output,
-          as_json, quiet):
+          replace, as_json, quiet):
     """Fit a goal embedding on the states of LOGS and save it to OUTPUT.
 
     The embedding file can then be named in a recipe ([goal] embedding = "FILE").
@@ -88,8 +91,14 @@ def embed(logs, layout, method, dims, input_, fields, degree, whiten, block, val
     import numpy as np
 
     from goalkit.errors import EmbeddingError
+    from goalkit.goals.embedfile import is_embedding_file
     from goalkit.goals.fitlogs import fit_on_logs, precomputed_on_logs
     from goalkit.logs import open_logs
+    from goalkit.outputs import check_no_overlap, refuse_existing
+
+    # before any work: never over an input, never over a file that is not a goalkit embedding
+    check_no_overlap([("logs", logs), ("layout", layout), ("values", values)], [("--output", output)])
+    refuse_existing(output, replace=replace, ours=is_embedding_file, what="embedding file")
 
     names = [f.strip() for f in fields.split(",") if f.strip()] if fields else []
     if method == "precomputed":
@@ -118,7 +127,7 @@ def embed(logs, layout, method, dims, input_, fields, degree, whiten, block, val
         with progress(total, "embed", quiet=quiet or as_json) as bar:
             gm = fit_on_logs(source, embedding, input=input_, fields=names, block=block, chunk_steps=chunk_steps,
                              advance=bar.update)
-    gm.save(output)
+    gm.save(output, replace=replace)
     summary = summarise(gm, source, output)
     if as_json:
         echo_json(summary)

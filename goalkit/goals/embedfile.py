@@ -11,8 +11,10 @@ Keys of the archive (all plain arrays; strings are 0-d unicode arrays):
 ``goal_map``          JSON object: ``input`` (observation/frame/state), ``indices``, ``fields``
 ``summary``           JSON object: fit diagnostics (informational, not read back)
 
-Files are written to a temporary name in the same directory and renamed, so an output
-path never holds a half-written file. ``np.savez`` stores a fixed member timestamp, so the
+Files are written through :mod:`goalkit.outputs` (an exclusive temporary name in the same
+directory, then published), so an output path never holds a half-written file, and an existing
+file is replaced only when asked for and only if it is a goalkit embedding file
+(:func:`is_embedding_file`). ``np.savez`` stores a fixed member timestamp, so the
 same embedding gives byte-identical files.
 """
 
@@ -20,7 +22,6 @@ from __future__ import annotations
 
 import json
 import os
-import tempfile
 import zipfile
 from pathlib import Path
 
@@ -28,6 +29,7 @@ import numpy as np
 
 from goalkit.errors import EmbeddingError
 from goalkit.goals.base import KINDS, Embedding
+from goalkit.outputs import output_file
 
 FORMAT = "goalkit-embedding"
 VERSION = 1
@@ -43,7 +45,19 @@ def _flatten(emb: Embedding, prefix: str) -> dict[str, np.ndarray]:
     return out
 
 
-def save_embedding(path, embedding: Embedding, goal_map: dict | None = None) -> Path:
+def is_embedding_file(path) -> bool:
+    """True when ``path`` is an ``.npz`` archive whose ``format`` member is :data:`FORMAT`.
+
+    Only such a file is replaced by :func:`save_embedding` (and only with ``replace``).
+    """
+    try:
+        with np.load(path, allow_pickle=False) as npz:
+            return bool(npz["format"].shape == () and str(npz["format"]) == FORMAT)
+    except (OSError, ValueError, KeyError, AttributeError, EOFError, zipfile.BadZipFile):
+        return False
+
+
+def save_embedding(path, embedding: Embedding, goal_map: dict | None = None, replace: bool = False) -> Path:
     """Write a fitted embedding to ``path`` (``.npz``), atomically.
 
     Parameters
@@ -54,6 +68,8 @@ def save_embedding(path, embedding: Embedding, goal_map: dict | None = None) -> 
         A fitted embedding.
     goal_map : dict, optional
         How a goal map reads states for it: ``{"input": ..., "indices": ..., "fields": ...}``.
+    replace : bool
+        Replace an existing goalkit embedding file at ``path`` (anything else is never replaced).
 
     Returns
     -------
@@ -68,15 +84,8 @@ def save_embedding(path, embedding: Embedding, goal_map: dict | None = None) -> 
     arrays["goal_map"] = np.asarray(json.dumps(goal_map or {"input": embedding.input_kind, "indices": None,
                                                             "fields": []}, sort_keys=True))
     arrays["summary"] = np.asarray(json.dumps(embedding.summary(), sort_keys=True))
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent if str(path.parent) else ".")
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            np.savez(fh, **arrays)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    with output_file(path, replace=replace, ours=is_embedding_file, what="embedding file") as fh:
+        np.savez(fh, **arrays)
     return path
 
 

@@ -148,10 +148,14 @@ class EmbeddingGoalMap:
         return json.loads(json.dumps(out))
 
     # ---- files ---------------------------------------------------------------------------
-    def save(self, path):
-        """Write the embedding and this map's input settings to an embedding file (atomically)."""
+    def save(self, path, replace: bool = False):
+        """Write the embedding and this map's input settings to an embedding file (atomically).
+
+        An existing file is replaced only with ``replace`` and only if it is a goalkit embedding file.
+        """
         return save_embedding(path, self.embedding, {"input": self.input, "fields": list(self.fields),
-                                                     "indices": None if self.indices is None else list(self.indices)})
+                                                     "indices": None if self.indices is None else list(self.indices)},
+                              replace=replace)
 
     @classmethod
     def load(cls, path) -> "EmbeddingGoalMap":

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import click
 
-from goalkit.atomic import write_text_atomic
 from goalkit.cli_support import echo_json, progress, user_errors
 from goalkit.errors import LogError
 
@@ -67,22 +66,29 @@ def _table(header, rows) -> list[str]:
                    "proposed from the log and printed.")
 @click.option("--json", "as_json", is_flag=True, help="Print the report as one JSON object.")
 @click.option("--write-layout", "write_layout", type=click.Path(dir_okay=False), default=None,
-              help="Save the layout used (given or proposed) to this file.")
+              help="Save the layout used (given or proposed) to this file (never one of the inputs).")
+@click.option("--replace", is_flag=True,
+              help="With --write-layout: replace an existing layout file there (only a layout file is "
+                   "ever replaced; without this option an existing file is refused).")
 @click.option("--skip-bad-episodes", is_flag=True,
               help="Skip episodes with problems (listed in the report) instead of stopping.")
 @click.option("--chunk", "chunk", type=click.IntRange(min=1), default=200_000,
               help="Transitions read per chunk.")
 @click.option("--quiet", is_flag=True, help="No progress bar, and no report unless --json.")
 @user_errors
-def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, quiet):
+def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, quiet, replace):
     """Check the task logs LOGS and summarise them; propose a layout when none is given.
 
     LOGS is an HDF5 file, a .npz file or a directory of per-episode .npz files.
     """
-    from goalkit.logs.layout import layout_to_toml, load_layout
+    from goalkit.logs.layout import is_layout_file, layout_to_toml, load_layout
     from goalkit.logs.opener import open_logs
     from goalkit.logs.scan import scan_logs
+    from goalkit.outputs import check_no_overlap, refuse_existing, write_text
 
+    if write_layout is not None:   # before any work: never over an input, never over a foreign file
+        check_no_overlap([("logs", logs), ("layout", layout_file)], [("--write-layout", write_layout)])
+        refuse_existing(write_layout, replace=replace, ours=is_layout_file, what="layout file")
     if layout_file is not None:
         layout = load_layout(layout_file)
         proposed = False
@@ -109,7 +115,7 @@ def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, qui
     report["layout"] = text
     report["layout_proposed"] = proposed
     if write_layout is not None:
-        write_text_atomic(write_layout, text)
+        write_text(write_layout, text, replace=replace, ours=is_layout_file, what="layout file")
         report["layout_written"] = str(write_layout)
     if as_json:
         echo_json(report)

@@ -267,3 +267,15 @@ def layout_to_toml(layout: Layout) -> str:
     if layout.boundaries is not None:
         lines += ["", "[boundaries]", f"{layout.boundaries.kind} = {_tstr(layout.boundaries.key)}"]
     return "\n".join(lines) + "\n"
+
+
+def is_layout_file(path) -> bool:
+    """True when ``path`` is a small TOML file with a layout's keys only, ``shape`` among them.
+
+    The test that lets ``--replace`` replace an existing layout file (``scan --write-layout``,
+    ``demo``); anything else at the path is never replaced.
+    """
+    from goalkit.outputs import small_toml
+
+    doc = small_toml(path)
+    return doc is not None and doc.get("shape") in SHAPES and set(doc) <= set(TOP_KEYS)

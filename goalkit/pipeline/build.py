@@ -131,7 +131,7 @@ def provenance(plan, source, log_files=None) -> dict:
 
 
 def build(recipe, *, source=None, max_rows_per_chunk: int | None = None, progress=None, workers: int = 0,
-          scheduler: str | None = None, client=None, fresh: bool = False) -> BuildResult:
+          scheduler: str | None = None, client=None, fresh: bool = False, replace: bool = False) -> BuildResult:
     """Build the dataset a recipe describes, in this process or scaled out over shards.
 
     Parameters
@@ -154,13 +154,24 @@ def build(recipe, *, source=None, max_rows_per_chunk: int | None = None, progres
         An existing Dask client to run the shards on (not closed).
     fresh : bool
         Sharded builds: discard the shards of an interrupted run instead of resuming.
+    replace : bool
+        Replace an existing goalkit set at the output path (``--replace``). Without it an existing
+        output is refused before any work; a file that is not a goalkit set is never replaced.
 
     Returns
     -------
     BuildResult
         The same file bytes, summary and provenance whichever way it was built.
+
+    Raises
+    ------
+    OutputError
+        Before any work, when the output (or the build folder of a sharded build) is or touches
+        an input, or exists and may not be replaced.
     """
-    if workers or scheduler is not None or client is not None:
+    sharded = bool(workers) or scheduler is not None or client is not None
+    check_outputs(recipe, sharded=sharded, replace=replace, source=source)
+    if sharded:
         from goalkit.pipeline.sharded import build_sharded
 
         if scheduler is not None or client is not None:
@@ -172,9 +183,32 @@ def build(recipe, *, source=None, max_rows_per_chunk: int | None = None, progres
 
             runner = LocalRunner(workers)
         return build_sharded(recipe, runner, source=source, rows_per_shard=max_rows_per_chunk or SHARD_ROWS,
-                             progress=progress, fresh=fresh)
+                             progress=progress, fresh=fresh, replace=replace)
     with short_gil_switch():
-        return _build_here(recipe, source, max_rows_per_chunk or CHUNK_ROWS, progress)
+        return _build_here(recipe, source, max_rows_per_chunk or CHUNK_ROWS, progress, replace)
+
+
+def check_outputs(recipe, *, sharded: bool = False, replace: bool = False, source=None) -> None:
+    """Refuse, before any work, a build that would write over one of its inputs or an existing output.
+
+    The inputs are the recipe's (:meth:`Recipe.inputs`: recipe file, logs with every file of a
+    log folder, layout, embedding, goal library) and an opened ``source``'s files; the outputs
+    are the dataset and, for a sharded build, its build folder ``.NAME.shards``.
+
+    Raises
+    ------
+    OutputError
+        One line naming the output and the input, or saying how to replace an existing output.
+    """
+    from goalkit.outputs import check_no_overlap, refuse_existing
+    from goalkit.pipeline.buildfolder import folder_of
+    from goalkit.write.format import is_goal_set
+
+    out = recipe.output.path
+    inputs = list(recipe.inputs()) + [("log file", f) for f in getattr(source, "files", None) or []]
+    outputs = [("output", out)] + ([("build folder", folder_of(out))] if sharded else [])
+    check_no_overlap(inputs, outputs)
+    refuse_existing(out, replace=replace, ours=is_goal_set, what="dataset")
 
 
 #: GIL switch interval (s) while a build runs its thread pipeline in this process.
@@ -198,7 +232,7 @@ def short_gil_switch(interval: float = SWITCH_INTERVAL):
         sys.setswitchinterval(before)
 
 
-def _build_here(recipe, source, rows_per_chunk: int, progress) -> BuildResult:
+def _build_here(recipe, source, rows_per_chunk: int, progress, replace: bool = False) -> BuildResult:
     """The single-process build (see :func:`build`)."""
     plan, source = make_plan(recipe, source)
     per_chunk = chunk_transitions(plan, rows_per_chunk)
@@ -208,7 +242,7 @@ def _build_here(recipe, source, rows_per_chunk: int, progress) -> BuildResult:
     # the log files' checksums (provenance) are read on their own thread, alongside the build
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-logsum") as side, \
             SetWriter(out.path, plan.columns, chunk_rows=out.chunk_rows, compression=out.compression,
-                      total_rows=split_rows(plan)) as writer:
+                      total_rows=split_rows(plan), replace=replace) as writer:
         log_files = side.submit(describe_files, list(source.files))
         for a, b, rows in relabelled_chunks(plan, source, chunk_bounds(plan.lengths, per_chunk),
                                             summary=summary):

@@ -10,6 +10,11 @@ effective seed (``--seed`` included), the layout text, the SHA-256 and size of e
 embedding file, the shard partition and the goalkit version. Any change gives another key, and
 the folder's old shards are deleted before anything else is written: shards of different
 builds are never mixed.
+
+The folder is created exclusively and refused when it is a symbolic link or not a folder; files
+in it are written through :mod:`goalkit.outputs` (exclusive temporary names). Only names goalkit
+gives its own files there (:func:`is_own_entry`) are ever deleted; anything else is left, and the
+folder with it.
 """
 
 from __future__ import annotations
@@ -17,11 +22,13 @@ from __future__ import annotations
 import hashlib
 import json
 import os
-import shutil
+import re
+import stat
 from pathlib import Path
 
 from goalkit import __version__
-from goalkit.errors import DatasetError
+from goalkit.errors import DatasetError, GoalkitError
+from goalkit.outputs import open_no_follow, own_folder, parse_temporary, write_text
 
 try:  # POSIX advisory locks; elsewhere builds are not guarded against running twice
     import fcntl
@@ -30,6 +37,16 @@ except ImportError:  # pragma: no cover
 
 KEY_FILE = "build.json"
 LOCK_FILE = "lock"
+_SHARD_NAME = re.compile(r"^shard-[0-9]{5,}\.npz$")
+
+
+def is_own_entry(name: str) -> bool:
+    """True for the names goalkit gives its files in a build folder (the only ones it deletes)."""
+    if name in (KEY_FILE, LOCK_FILE) or _SHARD_NAME.match(name) or parse_temporary(name) is not None:
+        return True
+    from goalkit.pipeline.workers import SPILLS
+
+    return any(name == f"{field}{how.suffix}" for field, how in SPILLS.items())
 
 
 def folder_of(output) -> Path:
@@ -102,8 +119,10 @@ class BuildFolder:
             When the folder cannot be created or written, or another build holds it.
         """
         try:
-            self.path.mkdir(exist_ok=True)
-            self._lock = open(self.path / LOCK_FILE, "a+")
+            own_folder(self.path, what="build folder")
+            self._lock = os.fdopen(open_no_follow(self.path / LOCK_FILE, os.O_RDWR | os.O_CREAT), "a+")
+        except GoalkitError as exc:
+            raise DatasetError(exc.message, file=exc.file) from None
         except OSError as exc:
             raise _os_error(exc, "create the build folder", self.path) from None
         if fcntl is not None:
@@ -118,37 +137,55 @@ class BuildFolder:
         try:
             self._sweep(keep_shards=same)
             if not same:
-                tmp = self.path / f".{KEY_FILE}.partial-{os.getpid()}"
-                tmp.write_text(json.dumps({"key": key, **record}, sort_keys=True, indent=1), encoding="utf-8")
-                os.replace(tmp, self.path / KEY_FILE)
+                write_text(self.path / KEY_FILE, json.dumps({"key": key, **record}, sort_keys=True, indent=1),
+                           what="build record")
         except OSError as exc:
             raise _os_error(exc, "write the build folder", self.path) from None
         return same
 
     def _stored_key(self):
         try:
-            return json.loads((self.path / KEY_FILE).read_text(encoding="utf-8")).get("key")
+            fd = open_no_follow(self.path / KEY_FILE, os.O_RDONLY)
+            with os.fdopen(fd, encoding="utf-8") as f:
+                return json.loads(f.read()).get("key")
         except (OSError, ValueError, AttributeError):
             return None
 
+    def _own_entries(self):
+        """Our files in the folder (never a sub-folder, never a foreign name)."""
+        for name in sorted(os.listdir(self.path)):
+            if is_own_entry(name):
+                p = self.path / name
+                try:
+                    if not stat.S_ISDIR(os.lstat(p).st_mode):
+                        yield p
+                except FileNotFoundError:
+                    continue
+
     def _sweep(self, keep_shards: bool) -> None:
-        """Remove temporary files of killed runs (and the old shards unless ``keep_shards``)."""
-        for p in self.path.iterdir():
-            if p.name == LOCK_FILE:
+        """Remove temporary files of killed runs (and our old files unless ``keep_shards``).
+
+        The folder is locked, so no other build is writing in it: every temporary file in it is
+        a killed run's. A link is removed as a link; its target is untouched.
+        """
+        for p in self._own_entries():
+            if p.name == LOCK_FILE or (keep_shards and parse_temporary(p.name) is None):
                 continue
-            if ".partial-" in p.name or not keep_shards:
-                if p.is_dir():
-                    shutil.rmtree(p)
-                else:
-                    p.unlink(missing_ok=True)
-        for p in self.output.parent.glob(f".{self.output.name}.partial-*"):
-            pid = p.name.rsplit("-", 1)[-1]
-            if pid.isdigit() and not _alive(int(pid)):
-                p.unlink(missing_ok=True)
+            p.unlink(missing_ok=True)
 
     def remove(self) -> None:
-        """Delete the folder (after a successful build) and release the lock."""
-        shutil.rmtree(self.path, ignore_errors=True)
+        """Delete our files and the folder (after a successful build) and release the lock.
+
+        A file goalkit did not name stays, and the folder with it.
+        """
+        try:
+            for p in self._own_entries():
+                if p.name != LOCK_FILE:
+                    p.unlink(missing_ok=True)
+            (self.path / LOCK_FILE).unlink(missing_ok=True)
+            os.rmdir(self.path)
+        except OSError:
+            pass
         self.release()
 
     def release(self) -> None:
@@ -156,15 +193,3 @@ class BuildFolder:
         if self._lock is not None:
             self._lock.close()
             self._lock = None
-
-
-def _alive(pid: int) -> bool:
-    if pid == os.getpid():
-        return True
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True

@@ -43,16 +43,20 @@ def format_summary(path, summary: dict) -> str:
               help="Run the shards on this running dask.distributed scheduler (e.g. tcp://host:8786).")
 @click.option("--restart", is_flag=True,
               help="With --workers/--scheduler: discard the shards of an interrupted build instead of resuming.")
+@click.option("--replace", is_flag=True,
+              help="Replace an existing dataset at the output path. Only a goalkit set is ever replaced; "
+                   "without this option an existing output is refused.")
 @click.option("--json", "as_json", is_flag=True, help="Print the summary as one JSON object.")
 @click.option("--quiet", is_flag=True, help="No progress bar.")
 @user_errors
-def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, as_json, quiet):
+def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, replace, as_json, quiet):
     """Build the goal-conditioned dataset that RECIPE describes.
 
     Reads the logs a chunk of episodes at a time, relabels every transition with the recipe's
     strategy mixture, scores each (transition, goal) pair with its reward rule and writes one
     HDF5 file (under a temporary name, renamed when complete). The file's bytes are the same
-    whatever --chunk-rows, --workers or --scheduler.
+    whatever --chunk-rows, --workers or --scheduler. The output may not be, or lie in, any of the
+    recipe's inputs, and an existing output is replaced only with --replace.
     """
     from goalkit.pipeline.build import build as run_build
     from goalkit.pipeline.recipe import load_recipe
@@ -63,7 +67,7 @@ def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, as_json, q
     with ChunkProgress("build", quiet=quiet) as bar:
         try:
             result = run_build(parsed, max_rows_per_chunk=chunk_rows, progress=bar, workers=workers,
-                               scheduler=scheduler, fresh=restart)
+                               scheduler=scheduler, fresh=restart, replace=replace)
         except GoalkitError as exc:
             _exit_if_hdf5_wedged(exc)
             raise

@@ -7,6 +7,7 @@ never fails half-way on a typo.
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass, replace
 from pathlib import Path
 
@@ -96,13 +97,26 @@ class Recipe:
     salt: int
     output: OutputSpec
 
+    def inputs(self) -> list[tuple[str, Path]]:
+        """Every file or folder a build of this recipe reads, labelled for messages.
+
+        The recipe file itself, the logs (a folder counts with its files), the layout, the goal
+        embedding and the goal library, when given.
+        """
+        items = [("recipe", self.file if self.file and self.file != "<recipe>" else None),
+                 ("[logs] path", self.logs_path), ("[logs] layout", self.layout_path),
+                 ("[goal] embedding", self.goal.embedding),
+                 ("[relabel] library", getattr(self.mixture, "library", None))]
+        return [(label, Path(p)) for label, p in items if p is not None]
+
     def with_overrides(self, *, seed: int | None = None, out: str | Path | None = None) -> "Recipe":
         """Return a copy with the seed and/or output path replaced (CLI ``--seed`` / ``--out``)."""
         new = self
         if seed is not None:
             new = replace(new, seed=_check_seed(seed, new.file))
         if out is not None:
-            new = replace(new, output=replace(new.output, path=Path(out).resolve()))
+            # absolute but not resolved: a link given as the output is refused, never followed
+            new = replace(new, output=replace(new.output, path=Path(os.path.abspath(Path(out).expanduser()))))
         return new
 
 
@@ -123,12 +137,15 @@ def _table(doc, name, file, required=True) -> dict:
     return value
 
 
-def _path(value, base: Path, file, key) -> Path:
+def _path(value, base: Path, file, key, resolve: bool = True) -> Path:
+    """An absolute path; with ``resolve``, links resolved too (inputs; outputs keep their links
+    so that a link at an output path is refused rather than followed)."""
     expect_type(value, str, file=file, key=key, what="a path (string)", error=RecipeError)
     if not value:
         raise RecipeError("expected a path, got an empty string", file=file, key=key)
     p = Path(value).expanduser()
-    return (p if p.is_absolute() else base / p).resolve()
+    p = p if p.is_absolute() else base / p
+    return p.resolve() if resolve else Path(os.path.abspath(p))
 
 
 def _parse_goal(table, base, file) -> GoalSpec:
@@ -185,7 +202,8 @@ def _parse_output(table, base, file) -> OutputSpec:
     if isinstance(rows, bool) or not isinstance(rows, int) or not 256 <= rows <= 2 ** 24:
         raise RecipeError(f"expected a whole number from 256 to 16777216, got {rows!r}", file=file,
                           key="output.chunk_rows")
-    return OutputSpec(path=_path(table["path"], base, file, "output.path"), mode=mode, compression=comp,
+    return OutputSpec(path=_path(table["path"], base, file, "output.path", resolve=False), mode=mode,
+                      compression=comp,
                       chunk_rows=rows)
 
 
@@ -253,3 +271,16 @@ def load_recipe(path) -> Recipe:
 def _read_text(path: Path) -> str:
     load_toml(path, RecipeError)  # uniform not-found / not-TOML messages
     return path.read_text(encoding="utf-8")
+
+
+def is_recipe_file(path) -> bool:
+    """True when ``path`` is a small TOML file with a recipe's keys only, [logs] and [output] among them.
+
+    The test that lets ``--replace`` replace an existing recipe (``tune --write-recipe``,
+    ``demo``); anything else at the path is never replaced.
+    """
+    from goalkit.outputs import small_toml
+
+    doc = small_toml(path)
+    return (doc is not None and isinstance(doc.get("logs"), dict) and isinstance(doc.get("output"), dict)
+            and set(doc) <= set(TOP_KEYS))

@@ -52,7 +52,7 @@ def _layout_text(recipe) -> str:
 
 
 def build_sharded(recipe, runner, *, source=None, rows_per_shard: int | None = None, progress=None,
-                  fresh: bool = False):
+                  fresh: bool = False, replace: bool = False):
     """Build the dataset a recipe describes with shard tasks run by ``runner``.
 
     Parameters
@@ -69,6 +69,8 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int | None = N
         ``progress(transitions, total_transitions)`` as shards are assembled (reused ones too).
     fresh : bool
         Discard the shards of an interrupted run instead of resuming.
+    replace : bool
+        Replace an existing goalkit set at the output path.
 
     Returns
     -------
@@ -102,7 +104,7 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int | None = N
         summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed)
         out = recipe.output
         with SetWriter(out.path, plan.columns, chunk_rows=out.chunk_rows, compression=out.compression,
-                       total_rows=split_rows(plan)) as writer:
+                       total_rows=split_rows(plan), replace=replace) as writer:
             cursor = 0
 
             def assemble():

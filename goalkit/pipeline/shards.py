@@ -26,7 +26,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -34,6 +33,7 @@ import numpy as np
 
 from goalkit.errors import GoalkitError
 from goalkit.logs.episodes import chunk_bounds
+from goalkit.outputs import write_own_file
 from goalkit.write.format import SPLITS
 
 SHARD_FORMAT = "goalkit-shard"
@@ -165,10 +165,6 @@ def _unpack_split(z, split, column_order):
     return keys, cols
 
 
-def _temporary(path: Path) -> Path:
-    return path.with_name(f".{path.name}.partial-{os.getpid()}")
-
-
 def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order) -> dict:
     """Write one shard's rows to ``folder / spec.name`` (temporary name, then rename).
 
@@ -193,9 +189,10 @@ def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order) -> 
     ------
     OSError
         When the file cannot be written (disk full, no permission); the temporary file is removed.
+    OutputError
+        When something that is not a file (a link, a folder) is at the shard's name.
     """
     path = Path(folder) / spec.name
-    tmp = _temporary(path)
     digest = rows_digest(rows, column_order)
     counts = {s: int(len(rows.keys[s])) if s in rows.keys else 0 for s in SPLITS}
     meta = {"format": SHARD_FORMAT, "format_version": SHARD_FORMAT_VERSION, "build_key": build_key,
@@ -208,13 +205,7 @@ def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order) -> 
             arrays.update(_pack_split(split, rows.keys[split], rows.columns[split], column_order))
     meta["per_transition"] = sorted(k for k in arrays if k.endswith(PER_TRANSITION))
     arrays["meta"] = np.frombuffer(json.dumps(meta, sort_keys=True).encode(), dtype=np.uint8)
-    try:
-        with open(tmp, "wb") as f:
-            np.savez(f, **arrays)
-        os.replace(tmp, path)
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
+    write_own_file(path, lambda f: np.savez(f, **arrays), what="shard file")
     return {"index": spec.index, "rows": counts, "sha256": digest}
 
 

@@ -28,6 +28,7 @@ from typing import Callable
 import numpy as np
 
 from goalkit.errors import GoalkitError
+from goalkit.outputs import open_no_follow, write_own_file
 from goalkit.pipeline.shards import write_shard
 
 #: Arrays larger than this are spilled to a memory-mapped file instead of pickled.
@@ -42,7 +43,8 @@ class Spill:
     Attributes
     ----------
     save : callable
-        ``save(value, path)``; writes the file (the caller renames it into place).
+        ``save(value, path)``; writes the file at ``path`` (an empty temporary file that the
+        caller renames into place).
     load : callable
         ``load(path) -> value`` in the worker (a module-level function, pickled by reference);
         should memory-map where it can.
@@ -59,7 +61,7 @@ class Spill:
 
 
 def _save_npy(value, path) -> None:
-    with open(path, "wb") as f:
+    with os.fdopen(open_no_follow(path, os.O_WRONLY | os.O_TRUNC), "wb") as f:   # our new temporary file
         np.save(f, np.ascontiguousarray(value), allow_pickle=False)
 
 
@@ -125,8 +127,8 @@ class Payload:
 def make_payload(plan, source, folder: Path, spill: bool = True) -> Payload:
     """Build the payload; with ``spill``, write each large plan field to ``folder`` once.
 
-    Files are written under a temporary name and renamed; they live in the build folder and go
-    with it.
+    Files are written under an exclusive temporary name and renamed (:func:`goalkit.outputs.write_own_file`);
+    they live in the build folder and go with it.
     """
     known = {f.name for f in fields(plan)}
     files, changes = {}, {}
@@ -135,12 +137,8 @@ def make_payload(plan, source, folder: Path, spill: bool = True) -> Payload:
         if not spill or not how.worth(value):
             continue
         path = Path(folder) / f"{name}{how.suffix}"
-        tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
-        try:
-            how.save(value, tmp)
-            os.replace(tmp, path)
-        finally:
-            tmp.unlink(missing_ok=True)
+        write_own_file(path, lambda tmp, value=value, how=how: how.save(value, tmp), what="build folder file",
+                       by_path=True)
         files[name] = (str(path), how.load)
         changes[name] = None
     return Payload(replace(plan, **changes) if changes else plan, source, files)

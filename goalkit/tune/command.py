@@ -26,14 +26,18 @@ from goalkit.tune.session import CHUNK_TRANSITIONS, MAX_TRANSITIONS
 @click.option("--plots", "plots", type=click.Path(file_okay=False), default=None,
               help="Write PNG plots into this folder.")
 @click.option("--write-recipe", "write_recipe", type=click.Path(dir_okay=False), default=None,
-              help="Write a copy of the recipe with the chosen threshold (needs labels).")
+              help="Write a copy of the recipe with the chosen threshold (needs labels); never over the "
+                   "recipe or another input.")
+@click.option("--replace", is_flag=True,
+              help="Replace an existing tuned recipe (only a recipe) and existing plots (only PNG files); "
+                   "without this option existing outputs are refused.")
 @click.option("--max-transitions", type=int, default=MAX_TRANSITIONS,
               help="Read at most this many transitions: whole episodes, a fixed sample by seed.")
 @click.option("--json", "as_json", is_flag=True, help="Print the result as one JSON object.")
 @click.option("--quiet", is_flag=True, help="No progress bar.")
 @user_errors
 def tune(recipe, labels, from_success, distances, chooser, target, resamples, plots, write_recipe,
-         max_transitions, as_json, quiet):
+         replace, max_transitions, as_json, quiet):
     """Choose the goal-match threshold of RECIPE's [reward] rule.
 
     With labels (--labels FILE or --from-success) every distinct distance is tried as a
@@ -53,13 +57,15 @@ def tune(recipe, labels, from_success, distances, chooser, target, resamples, pl
         raise TuningError("writing a tuned recipe needs labels (--labels FILE or --from-success); "
                           "without labels tune only suggests a range", key="--write-recipe")
     parsed = load_recipe(recipe)
+    _check_outputs(parsed, labels=labels, from_success=from_success, distances=distances, plots=plots,
+                   write_recipe=write_recipe, replace=replace)
     with ChunkProgress("tune", quiet=quiet) as bar:
         result = tune_recipe(parsed, labels=labels, from_success=from_success, distances=distances,
                              chooser=chooser, target=target, n_resamples=resamples,
                              max_transitions=max_transitions, chunk_transitions=CHUNK_TRANSITIONS,
                              progress=bar)
     out = result.as_dict()
-    out["plots"] = [str(p) for p in result.write_plots(plots)] if plots else []
+    out["plots"] = [str(p) for p in result.write_plots(plots, replace=replace)] if plots else []
     out["written_recipe"] = None
     if write_recipe is not None:
         from goalkit.tune.recipe_edit import write_tuned_recipe
@@ -69,7 +75,7 @@ def tune(recipe, labels, from_success, distances, chooser, target, resamples, pl
                 f"({'success flags' if out['mode'] == 'success-flags' else 'labelled pairs'}); "
                 f"was {parsed.reward.distance_name} {_value(parsed.reward.describe()['threshold'])}")
         edit = write_tuned_recipe(parsed, write_recipe, threshold=result.recipe_threshold(),
-                                  distance=result.recipe_distance(), note=note)
+                                  distance=result.recipe_distance(), note=note, replace=replace)
         out["written_recipe"] = {"path": str(write_recipe), "kept_comments": edit.kept_comments,
                                  "changes": list(edit.changes)}
     if as_json:
@@ -82,6 +88,23 @@ def tune(recipe, labels, from_success, distances, chooser, target, resamples, pl
         w = out["written_recipe"]
         how = "" if w["kept_comments"] else " (written afresh: the original's comments could not be kept)"
         click.echo(f"wrote:      {w['path']}: {'; '.join(w['changes'])}{how}")
+
+
+def _check_outputs(parsed, *, labels, from_success, distances, plots, write_recipe, replace) -> None:
+    """Before any work: no output over an input, no existing output without --replace."""
+    from goalkit.outputs import check_no_overlap, refuse_existing
+    from goalkit.pipeline.recipe import is_recipe_file
+    from goalkit.tune.plots import is_png, plot_paths
+    from goalkit.tune.session import check_distances
+
+    names = check_distances(distances) or [parsed.reward.distance_name]
+    pngs = plot_paths(plots, names, labelled=labels is not None or from_success) if plots else []
+    outputs = [("--write-recipe", write_recipe)] + [("--plots", p) for p in pngs]
+    check_no_overlap(list(parsed.inputs()) + [("labels", labels)], outputs)
+    if write_recipe is not None:
+        refuse_existing(write_recipe, replace=replace, ours=is_recipe_file, what="tuned recipe")
+    for p in pngs:
+        refuse_existing(p, replace=replace, ours=is_png, what="plot")
 
 
 def _value(x) -> str:

@@ -1,9 +1,11 @@
 """PNG plots of threshold tuning, drawn with matplotlib's Agg canvas (no pyplot, no display).
 
-File names are fixed (see :data:`FILE_NAMES`, with an optional prefix), so a rerun
-replaces the same files. Each file is written to a temporary name in the same directory and
-renamed into place, so an interrupted run never leaves a half-written PNG. PNG metadata
-carries no software version, so the same inputs give the same bytes with one matplotlib.
+File names are fixed (see :data:`FILE_NAMES`, with an optional prefix), so a rerun with
+``replace`` (``tune --replace``) replaces the same files; an existing file that is not a PNG is
+never replaced. Each file is written through :mod:`goalkit.outputs` (an exclusive temporary
+name in the same directory, then published), so an interrupted run never leaves a half-written
+PNG. PNG metadata carries no software version, so the same inputs give the same bytes with one
+matplotlib.
 """
 
 from __future__ import annotations
@@ -12,6 +14,8 @@ import os
 from pathlib import Path
 
 import numpy as np
+
+from goalkit.outputs import open_no_follow, output_file
 
 #: plot kind -> file name.
 FILE_NAMES = {
@@ -34,17 +38,43 @@ def _figure(width=5.0, height=4.0):
     return fig, fig.add_subplot(1, 1, 1)
 
 
-def save_png(fig, path) -> Path:
-    """Write ``fig`` to ``path`` through a temporary file in the same directory."""
-    path = Path(path)
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+#: The first bytes of every PNG file (ISO/IEC 15948, section 5.2).
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
+LABELLED_KINDS = ("roc", "pr", "f1")
+DIAGNOSTIC_KINDS = ("step", "horizon", "other", "rewarded")
+
+
+def is_png(path) -> bool:
+    """True when ``path`` is a regular file starting with the PNG signature (the "ours" test of plots)."""
     try:
-        fig.savefig(tmp, format="png", metadata={"Software": None})
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-    return path
+        with os.fdopen(open_no_follow(path, os.O_RDONLY, 0), "rb") as f:
+            return f.read(len(PNG_SIGNATURE)) == PNG_SIGNATURE
+    except OSError:
+        return False
+
+
+def plot_paths(out_dir, distances, labelled: bool, prefix: str = "") -> list[Path]:
+    """Every file a tune run may write into ``out_dir`` (for the checks before any work).
+
+    Labelled plots carry no distance prefix when one candidate is tuned, else ``DISTANCE-``;
+    both forms are listed when several distances are tried, since failed candidates are not
+    plotted.
+    """
+    out = Path(out_dir)
+    prefixes = {prefix} | ({f"{prefix}{d}-" for d in distances} if len(distances) > 1 else set())
+    names = [f"{p}{FILE_NAMES[k]}" for p in sorted(prefixes) for k in LABELLED_KINDS] if labelled else []
+    names += [f"{prefix}{FILE_NAMES[k]}" for k in DIAGNOSTIC_KINDS]
+    return [out / n for n in names]
+
+
+def save_png(fig, path, replace: bool = False) -> Path:
+    """Write ``fig`` to the new file ``path`` (exclusive temporary name, then published).
+
+    An existing file is replaced only with ``replace`` and only if it is a PNG.
+    """
+    with output_file(path, replace=replace, ours=is_png, what="plot") as f:
+        fig.savefig(f, format="png", metadata={"Software": None})
+    return Path(path)
 
 
 def _target(out_dir, kind, prefix) -> Path:
@@ -53,7 +83,7 @@ def _target(out_dir, kind, prefix) -> Path:
     return out / f"{prefix}{FILE_NAMES[kind]}"
 
 
-def plot_labelled(sweep, choice, out_dir, *, prefix: str = "", current=None) -> dict[str, Path]:
+def plot_labelled(sweep, choice, out_dir, *, prefix: str = "", current=None, replace: bool = False) -> dict[str, Path]:
     """Draw ROC, precision-recall and F1-versus-threshold curves with the choice marked.
 
     Parameters
@@ -66,6 +96,8 @@ def plot_labelled(sweep, choice, out_dir, *, prefix: str = "", current=None) -> 
         Prepended to every file name.
     current : dict, optional
         :meth:`ThresholdSweep.at` of the recipe's current threshold, marked too.
+    replace : bool
+        Replace existing PNG files of the same names.
 
     Returns
     -------
@@ -86,7 +118,7 @@ def plot_labelled(sweep, choice, out_dir, *, prefix: str = "", current=None) -> 
     ax.set(xlabel="false positive rate", ylabel="true positive rate", xlim=(0, 1), ylim=(0, 1.02),
            title="Goal-match ROC")
     ax.legend(loc="lower right", fontsize=8)
-    written["roc"] = save_png(fig, _target(out_dir, "roc", prefix))
+    written["roc"] = save_png(fig, _target(out_dir, "roc", prefix), replace)
 
     fig, ax = _figure()
     ax.step(np.r_[0.0, sweep.recall], np.r_[sweep.precision[0], sweep.precision], where="pre",
@@ -98,7 +130,7 @@ def plot_labelled(sweep, choice, out_dir, *, prefix: str = "", current=None) -> 
                 label=f"current: {current['threshold']:.4g}")
     ax.set(xlabel="recall", ylabel="precision", xlim=(0, 1), ylim=(0, 1.02), title="Precision-recall")
     ax.legend(loc="lower left", fontsize=8)
-    written["pr"] = save_png(fig, _target(out_dir, "pr", prefix))
+    written["pr"] = save_png(fig, _target(out_dir, "pr", prefix), replace)
 
     fig, ax = _figure()
     ax.plot(sweep.thresholds, sweep.f1, color="tab:blue", lw=1.5, label="F1")
@@ -111,12 +143,12 @@ def plot_labelled(sweep, choice, out_dir, *, prefix: str = "", current=None) -> 
         ax.axvline(current["threshold"], color="tab:green", lw=1.0, ls=":", label="current")
     ax.set(xlabel="threshold (distance)", ylabel="score", ylim=(0, 1.02), title="Scores by threshold")
     ax.legend(loc="best", fontsize=8)
-    written["f1"] = save_png(fig, _target(out_dir, "f1", prefix))
+    written["f1"] = save_png(fig, _target(out_dir, "f1", prefix), replace)
     return written
 
 
 def plot_diagnostics(diagnostics, out_dir, *, prefix: str = "", rewarded=None,
-                     strategy_names=None) -> dict[str, Path]:
+                     strategy_names=None, replace: bool = False) -> dict[str, Path]:
     """Draw the label-free diagnostics (and the rewarded fraction, when given).
 
     Parameters
@@ -127,6 +159,8 @@ def plot_diagnostics(diagnostics, out_dir, *, prefix: str = "", rewarded=None,
     rewarded : RewardedFraction, optional
     strategy_names : mapping of int to str, optional
         Legend names of strategy codes.
+    replace : bool
+        Replace existing PNG files of the same names.
     """
     written = {}
     thr = diagnostics.threshold
@@ -137,7 +171,7 @@ def plot_diagnostics(diagnostics, out_dir, *, prefix: str = "", rewarded=None,
     ax.axvline(thr, color="tab:red", ls="--", label=f"threshold {thr:.4g}")
     ax.set(xlabel="one-step displacement (distance)", ylabel="transitions", title="Goal change per step")
     ax.legend(fontsize=8)
-    written["step"] = save_png(fig, _target(out_dir, "step", prefix))
+    written["step"] = save_png(fig, _target(out_dir, "step", prefix), replace)
 
     fig, ax = _figure()
     hp = diagnostics.horizon
@@ -147,7 +181,7 @@ def plot_diagnostics(diagnostics, out_dir, *, prefix: str = "", rewarded=None,
     ax.set_xscale("log", base=2)
     ax.set(xlabel="horizon h (steps)", ylabel="distance after h steps", title="Goal change by horizon")
     ax.legend(fontsize=8)
-    written["horizon"] = save_png(fig, _target(out_dir, "horizon", prefix))
+    written["horizon"] = save_png(fig, _target(out_dir, "horizon", prefix), replace)
 
     fig, ax = _figure()
     oth = diagnostics.other.distance[np.isfinite(diagnostics.other.distance)]
@@ -157,7 +191,7 @@ def plot_diagnostics(diagnostics, out_dir, *, prefix: str = "", rewarded=None,
     ax.set(xlabel="distance to nearest state of another episode", ylabel="sampled states",
            title="Separation between episodes")
     ax.legend(fontsize=8)
-    written["other"] = save_png(fig, _target(out_dir, "other", prefix))
+    written["other"] = save_png(fig, _target(out_dir, "other", prefix), replace)
 
     if rewarded is not None:
         fig, ax = _figure()
@@ -168,5 +202,5 @@ def plot_diagnostics(diagnostics, out_dir, *, prefix: str = "", rewarded=None,
         ax.set(xlabel="threshold", ylabel="fraction rewarded", ylim=(0, 1.02),
                title="Rewarded goal rows by strategy")
         ax.legend(fontsize=8)
-        written["rewarded"] = save_png(fig, _target(out_dir, "rewarded", prefix))
+        written["rewarded"] = save_png(fig, _target(out_dir, "rewarded", prefix), replace)
     return written

@@ -25,7 +25,7 @@ from pathlib import Path
 
 from goalkit.config import parse_toml
 from goalkit.errors import GoalkitError, RecipeError
-from goalkit.atomic import write_text_atomic
+from goalkit.outputs import write_text
 
 #: Keys holding paths that are relative to the recipe's folder.
 PATH_KEYS = ("logs.path", "logs.layout", "goal.embedding", "output.path")
@@ -327,27 +327,32 @@ def _edit(text: str, changes: dict, note: str) -> str:
     return out
 
 
-def write_tuned_recipe(recipe, out, *, threshold, distance: str | None = None, note: str = "") -> RecipeEdit:
+def write_tuned_recipe(recipe, out, *, threshold, distance: str | None = None, note: str = "",
+                       replace: bool = False) -> RecipeEdit:
     """Write a copy of ``recipe`` (a loaded Recipe) to ``out`` with the new threshold.
 
     The copy is read back with :func:`goalkit.pipeline.recipe.parse_recipe` before it is
-    written, so a copy that would not load is never written.
+    written, so a copy that would not load is never written. ``out`` may not be one of the
+    recipe's inputs; an existing file there is replaced only with ``replace`` and only if it is
+    a recipe.
 
     Raises
     ------
     GoalkitError
         When ``out`` is a folder or its folder does not exist, or the file cannot be written.
     """
-    from goalkit.pipeline.recipe import parse_recipe
+    from goalkit.outputs import check_no_overlap
+    from goalkit.pipeline.recipe import is_recipe_file, parse_recipe
 
     out = Path(out)
     if out.is_dir():
         raise GoalkitError("expected a file name for the tuned recipe, got a folder", file=out)
+    check_no_overlap(recipe.inputs(), [("--write-recipe", out)])
     if not out.parent.resolve().is_dir():
         raise GoalkitError("the folder of the tuned recipe does not exist", file=out)
     src_dir = Path(recipe.file).resolve().parent
     edit = tuned_recipe_text(recipe.text, threshold=threshold, distance=distance, note=note,
                              source_dir=src_dir, target_dir=out.parent, file=recipe.file)
     parse_recipe(edit.text, file=str(out), base=out.parent.resolve())
-    write_text_atomic(out, edit.text)
+    write_text(out, edit.text, replace=replace, ours=is_recipe_file, what="tuned recipe")
     return edit

@@ -148,8 +148,11 @@ class TuneResult:
             "notes": list(self.notes),
         }
 
-    def write_plots(self, out_dir, prefix: str = "") -> list[Path]:
-        """Write every plot into ``out_dir`` (created); return the files, sorted by name."""
+    def write_plots(self, out_dir, prefix: str = "", replace: bool = False) -> list[Path]:
+        """Write every plot into ``out_dir`` (created); return the files, sorted by name.
+
+        Existing PNG files of the same names are replaced only with ``replace``.
+        """
         from goalkit.tune.plots import plot_diagnostics, plot_labelled
 
         written: list[Path] = []
@@ -158,9 +161,9 @@ class TuneResult:
             p = prefix if len(ok) == 1 else f"{prefix}{c.distance}-"
             cur = c.tuner.current_ if c.distance == self.recipe.reward.distance_name else None
             written += plot_labelled(c.tuner.sweep_, c.tuner.choice_, out_dir, prefix=p,
-                                     current=cur).values()
+                                     current=cur, replace=replace).values()
         written += plot_diagnostics(self.diagnostics, out_dir, prefix=prefix, rewarded=self.rewarded,
-                                    strategy_names=self.strategy_names).values()
+                                    strategy_names=self.strategy_names, replace=replace).values()
         return sorted(written)
 
 

@@ -58,3 +58,21 @@ def column_names(mode: str, has_task_reward: bool) -> list[str]:
     if has_task_reward:
         names.append(TASK_REWARD_COLUMN[0])
     return names
+
+
+def is_goal_set(path) -> bool:
+    """True when ``path`` is an HDF5 file whose root attribute ``format`` is :data:`FORMAT_NAME`.
+
+    This is what makes an existing file "ours": only such a file is replaced by a build, and only
+    when replacing is asked for (``--replace``).
+    """
+    import h5py
+
+    try:
+        with h5py.File(path, "r") as f:
+            fmt = f.attrs.get("format")
+    except (OSError, ValueError):
+        return False
+    if isinstance(fmt, bytes):
+        fmt = fmt.decode("utf-8", "replace")
+    return fmt == FORMAT_NAME

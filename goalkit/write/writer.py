@@ -5,7 +5,9 @@ go to one of two splits. To make the file byte-identical whatever the processing
 the writer only ever writes whole HDF5 chunks of ``chunk_rows`` rows, and writes the blocks that
 a batch of rows completes in the order of their last row's key. Every split's columns are
 written together, in a fixed column order, and each column's SHA-256 is updated block by block.
-The file is written under a temporary name in the output's folder and renamed at the end.
+The file is written under an exclusive temporary name in the output's folder and published
+at the end (:mod:`goalkit.outputs`): an existing output is replaced only when asked for, and
+only if it is a goalkit set.
 """
 
 from __future__ import annotations
@@ -17,11 +19,11 @@ from collections import deque
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
-import h5py
 import numpy as np
 
 from goalkit.errors import DatasetError
-from goalkit.write.format import FORMAT_NAME, FORMAT_VERSION, SPLITS
+from goalkit.outputs import discard, open_hdf5, publish, refuse_existing
+from goalkit.write.format import FORMAT_NAME, FORMAT_VERSION, SPLITS, is_goal_set
 from goalkit.write.chunkcodec import GZIP_LEVEL, gzip_chunk
 from goalkit.write.gather import RowGather
 
@@ -52,11 +54,6 @@ def os_reason(exc: BaseException) -> str:
     text = " ".join(str(exc).split())
     found = re.search(r"error message = '([^']+)'", text)
     return found.group(1) if found else text
-
-
-def temporary_path(path: Path) -> Path:
-    """A temporary sibling of ``path`` (same folder, so the final rename is atomic)."""
-    return path.with_name(f".{path.name}.partial-{os.getpid()}")
 
 
 class _SplitBlocks:
@@ -157,6 +154,8 @@ class SetWriter:
     total_rows : dict of str to int, optional
         Rows each split will hold, when known: the datasets are then created at their final
         size instead of grown block by block (faster; the count is checked at :meth:`close`).
+    replace : bool
+        Replace an existing goalkit set at ``path`` (anything else there is never replaced).
 
     Notes
     -----
@@ -165,18 +164,16 @@ class SetWriter:
     """
 
     def __init__(self, path, columns: dict, chunk_rows: int = 65536, compression: str = "gzip",
-                 total_rows: dict | None = None):
+                 total_rows: dict | None = None, replace: bool = False):
         self.path = Path(path)
         self.columns = columns
         self.chunk_rows = int(chunk_rows)
-        self.tmp = temporary_path(self.path)
+        self.replace = bool(replace)
         if not self.path.parent.is_dir():
             raise DatasetError("the output folder does not exist", file=self.path.parent)
-        try:
-            # whole chunks are written once and never read back: no chunk cache (it only grows)
-            self.file = h5py.File(self.tmp, "w", libver="earliest", rdcc_nbytes=0)
-        except OSError as exc:
-            raise DatasetError(f"cannot create the output file ({exc})", file=self.tmp) from None
+        refuse_existing(self.path, replace=self.replace, ours=is_goal_set, what="dataset")
+        # whole chunks are written once and never read back: no chunk cache (it only grows)
+        self.tmp, self.file = open_hdf5(self.path, libver="earliest", rdcc_nbytes=0)
         self.hashes = {s: {n: hashlib.sha256() for n in columns} for s in SPLITS}
         # Checksums are updated on one background thread (hashlib releases the GIL), in the
         # order blocks are written, so hashing overlaps with relabelling and HDF5 writes.
@@ -338,10 +335,9 @@ class SetWriter:
                 for key, value in sorted((split_attrs or {}).get(s, {}).items()):
                     self.file[s].attrs[key] = _attr(value)
             self.file.close()
-            os.replace(self.tmp, self.path)
         except (OSError, RuntimeError) as exc:  # HDF5 reports a failed final flush as RuntimeError
             raise OutputWriteError(os_reason(exc), file=self.path) from None
-        return self.path
+        return publish(self.tmp, self.path, replace=self.replace, ours=is_goal_set, what="dataset")
 
     def abort(self) -> None:
         """Close and remove the temporary file."""
@@ -353,7 +349,7 @@ class SetWriter:
         except (OSError, RuntimeError):
             pass  # a file whose writes failed may not close cleanly; it is removed below either way
         finally:
-            self.tmp.unlink(missing_ok=True)
+            discard(self.tmp)
 
     def __enter__(self):
         return self

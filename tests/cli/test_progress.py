@@ -33,7 +33,7 @@ def test_build_shows_a_bar_on_a_terminal_only(tmp_path):
     code, err = stderr_on_a_terminal(["build", info["recipe"], "--chunk-rows", "2000"])
     assert code == 0
     assert "build" in err and "transition" in err and "%" in err
-    code, err = stderr_on_a_terminal(["build", info["recipe"], "--quiet"])
+    code, err = stderr_on_a_terminal(["build", info["recipe"], "--quiet", "--replace"])
     assert code == 0 and err == ""
-    piped = subprocess.run([EXE, "build", str(info["recipe"])], capture_output=True, text=True)
+    piped = subprocess.run([EXE, "build", str(info["recipe"]), "--replace"], capture_output=True, text=True)
     assert piped.returncode == 0 and piped.stderr == ""

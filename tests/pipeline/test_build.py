@@ -61,12 +61,12 @@ def test_byte_identical_whatever_the_chunk_size(tmp_path, source, compression):
     recipe = parse_recipe(recipe_text(same, weights="future = 2\nother_episode = 1\ngeometric = 1\noriginal = 1",
                                       compression=compression))
     digests = set()
-    for rows in (1000, 4321, 1_000_000):
-        build(recipe, source=source, max_rows_per_chunk=rows)
+    for rows in (1000, 4321, 1_000_000):   # each build replaces the previous one (replace=True)
+        build(recipe, source=source, max_rows_per_chunk=rows, replace=True)
         digests.add(digest(same))
     assert len(digests) == 1
     # a different seed gives a different file
-    build(recipe.with_overrides(seed=99), source=source)
+    build(recipe.with_overrides(seed=99), source=source, replace=True)
     assert digest(same) not in digests
 
 

@@ -67,7 +67,7 @@ def demo(tmp_path_factory):
 def test_byte_identical_for_two_chunk_sizes_and_verify_passes(demo):
     d, recipe, result = demo
     first = digest(result.path)
-    build(recipe, max_rows_per_chunk=1000)
+    build(recipe, max_rows_per_chunk=1000, replace=True)   # rebuild over the first set
     assert digest(result.path) == first
     report = verify_set(result.path)
     assert report.ok, report.failures
@@ -210,7 +210,7 @@ def test_worker_processes_give_the_same_bytes(demo, tmp_path):
     # the goal search and the library ride to the workers inside the plan (faiss index serialised)
     d, recipe, result = demo
     single = digest(result.path)
-    out = build(recipe, workers=2, max_rows_per_chunk=3000)
+    out = build(recipe, workers=2, max_rows_per_chunk=3000, replace=True)  # over the single-process set
     assert out.shards["computed"] >= 2
     assert digest(out.path) == single
 
@@ -219,7 +219,7 @@ def test_changed_library_file_is_caught(demo, tmp_path):
     d, _, _ = demo
     target = tmp_path / "copy"
     shutil.copytree(d, target, ignore=shutil.ignore_patterns("*.h5.shards"))
-    res = build(load_recipe(target / "joined-recipe.toml"))
+    res = build(load_recipe(target / "joined-recipe.toml"), replace=True)  # over the copied set
     assert verify_set(res.path).ok
     targets = np.load(target / "targets.npy")
     np.save(target / "targets.npy", targets[::-1])

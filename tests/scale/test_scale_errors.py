@@ -70,7 +70,7 @@ def test_file_size_limit_stops_the_build_and_the_rerun_completes(gantry, referen
     assert "\n" not in line and "cannot write the dataset (File too large)" in line, line
     kept = len(list(folder_of(out).glob("shard-*.npz")))
     assert kept >= 1 and not out.exists()
-    assert not list(tmp_path.glob(".scale-goals.h5.partial-*"))
+    assert not list(tmp_path.glob(".scale-goals.h5~goalkit-*"))
     # 3. without the limit the same command resumes and gives the uninterrupted build's bytes
     res = subprocess.run(cmd, capture_output=True, text=True, timeout=120)
     assert res.returncode == 0, res.stderr

@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
 
+from goalkit.outputs import host_tag
 from goalkit.pipeline.buildfolder import BuildFolder, build_key, folder_of
 from goalkit.pipeline.chunk import ChunkRows
 from goalkit.pipeline.shards import ShardError, check_shard, plan_shards, read_shard, shard_meta, write_shard
@@ -55,7 +56,7 @@ def test_shard_file_round_trip_and_checks(tmp_path):
         assert back.columns["train"][name].dtype == rows.columns["train"][name].dtype
     np.testing.assert_array_equal(back.keys["train"], rows.keys["train"])
     assert shard_meta(tmp_path / spec.name)["last_episode"] == 9
-    assert not list(tmp_path.glob("*.partial-*"))
+    assert [p.name for p in tmp_path.iterdir()] == [spec.name]  # no temporary file left
     # another build's key, another partition, a changed value: all refused
     with pytest.raises(ShardError, match="build_key"):
         read_shard(tmp_path, spec, "k2", order)
@@ -99,18 +100,35 @@ def test_folder_of_another_key_is_emptied(tmp_path):
     folder = BuildFolder(out)
     assert folder.open("k1", {}) is False
     (folder.path / "shard-00000.npz").write_bytes(b"x")
-    (folder.path / ".shard-00001.npz.partial-99999999").write_bytes(b"x")
+    killed = f".shard-00001.npz~goalkit-99999999-{host_tag()}-0123456789ab.tmp"  # a killed run's temporary
+    (folder.path / killed).write_bytes(b"x")
     folder.release()
     again = BuildFolder(out)
     assert again.open("k1", {}) is True
     assert (folder.path / "shard-00000.npz").exists()
-    assert not (folder.path / ".shard-00001.npz.partial-99999999").exists()  # a killed run's temporary
+    assert not (folder.path / killed).exists()
     again.release()
     other = BuildFolder(out)
     assert other.open("k2", {}) is False
     assert not (folder.path / "shard-00000.npz").exists()
     other.remove()
     assert not folder_of(out).exists()
+
+
+def test_a_foreign_file_in_the_build_folder_is_never_deleted(tmp_path):
+    out = tmp_path / "set.h5"
+    folder = BuildFolder(out)
+    folder.open("k1", {})
+    (folder.path / "shard-00000.npz").write_bytes(b"x")
+    (folder.path / "notes.txt").write_bytes(b"mine")
+    (folder.path / "shard-00000.npz.bak").write_bytes(b"mine too")
+    folder.release()
+    other = BuildFolder(out)
+    other.open("k2", {})       # another key: our old files go, the user's stay
+    assert not (folder.path / "shard-00000.npz").exists()
+    other.remove()             # the folder stays because it holds files goalkit did not name
+    assert sorted(p.name for p in folder.path.iterdir()) == ["notes.txt", "shard-00000.npz.bak"]
+    assert (folder.path / "notes.txt").read_bytes() == b"mine"
 
 
 def test_large_goal_table_is_spilled_once_and_mapped(tmp_path):

@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 
 from goalkit.cli_support import _default
+from goalkit.errors import GoalkitError
 from goalkit.goals.goalmap import IndexGoalMap
 from goalkit.logs.episodes import EpisodeSet
 from goalkit.reward import RewardRule
@@ -40,7 +41,9 @@ def test_labelled_plots_are_deterministic_pngs(tmp_path):
     assert sorted(x.name for x in w1.values()) == sorted("run-" + FILE_NAMES[k] for k in ("roc", "pr", "f1"))
     first = {k: v.read_bytes() for k, v in w1.items()}
     assert all(b.startswith(PNG) and len(b) > 5000 for b in first.values())
-    w2 = plot_labelled(s, ch, tmp_path, prefix="run-", current=s.at(0.05))
+    with pytest.raises(GoalkitError, match="give --replace to replace it"):   # existing plots are kept
+        plot_labelled(s, ch, tmp_path, prefix="run-", current=s.at(0.05))
+    w2 = plot_labelled(s, ch, tmp_path, prefix="run-", current=s.at(0.05), replace=True)
     assert {k: v.read_bytes() for k, v in w2.items()} == first
     assert sorted(x.name for x in tmp_path.iterdir()) == sorted(x.name for x in w1.values())
 
@@ -60,17 +63,21 @@ def test_diagnostic_plots(tmp_path):
 
 def test_failed_write_leaves_the_old_file_and_no_temporary(tmp_path):
     target = tmp_path / "threshold-roc.png"
-    target.write_bytes(b"old")
+    target.write_bytes(PNG + b"old")
 
     class Broken:
-        def savefig(self, path, **kw):  # writes part of a file, then fails
-            open(path, "wb").write(b"partial")
-            raise OSError("disk full")
+        def savefig(self, f, **kw):  # writes part of a file, then fails
+            f.write(b"partial")
+            raise OSError(28, "No space left on device")
 
-    with pytest.raises(OSError):
-        save_png(Broken(), target)
-    assert target.read_bytes() == b"old"
+    with pytest.raises(GoalkitError, match="No space left on device"):
+        save_png(Broken(), target, replace=True)
+    assert target.read_bytes() == PNG + b"old"
     assert [x.name for x in tmp_path.iterdir()] == ["threshold-roc.png"]
+    target.write_bytes(b"not a picture")     # a file that is not a PNG is never replaced
+    with pytest.raises(GoalkitError, match="not a plot written by goalkit"):
+        save_png(Broken(), target, replace=True)
+    assert target.read_bytes() == b"not a picture"
 
 
 def test_tuner_on_separable_pairs_and_json_summary():

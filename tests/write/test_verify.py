@@ -32,7 +32,7 @@ def copy(built, tmp_path):
     target = tmp_path / "demo"
     shutil.copytree(d, target)
     # the stored provenance points at the original logs; rebuild in the copy instead
-    build(load_recipe(target / "gantry-recipe.toml"))
+    build(load_recipe(target / "gantry-recipe.toml"), replace=True)
     return target, target / "gantry-goals.h5"
 
 
@@ -135,6 +135,6 @@ def test_indexed_set_with_an_embedding_goal_map_verifies(tmp_path):
         assert r["observation"].shape == (50, 9) and r["reached_goal"].shape == (50, 3)
         assert gs.provenance["embedding_files"][0]["path"].endswith("emb.npz")
     # a changed embedding file is caught
-    fit_on_logs(source, SFA(n_components=3, degree=2)).save(tmp_path / "emb.npz")
+    fit_on_logs(source, SFA(n_components=3, degree=2)).save(tmp_path / "emb.npz", replace=True)
     report = verify_set(tmp_path / "emb-goals.h5")
     assert not report.ok and "emb.npz: changed since the build" in report.failures[0]

@@ -26,7 +26,8 @@ def write(path, cols, keys, split, cuts, chunk_rows=16, sized=False, compression
     ``sized``: announce each split's row count (datasets created at their final size).
     """
     total = {"train": int((~split).sum()), "validation": int(split.sum())} if sized else None
-    with SetWriter(path, COLUMNS, chunk_rows=chunk_rows, compression=compression, total_rows=total) as w:
+    with SetWriter(path, COLUMNS, chunk_rows=chunk_rows, compression=compression, total_rows=total,
+                   replace=True) as w:   # examples rewrite the same paths
         a = 0
         for b in list(cuts) + [len(keys)]:
             for name, mask in (("train", ~split[a:b]), ("validation", split[a:b])):
@@ -113,7 +114,8 @@ def write_lazy(path, cols, keys, split, cuts, chunk_rows, sized):
 
     total = {"train": int((~split).sum()), "validation": int(split.sum())} if sized else None
     order = {s: np.flatnonzero(m) for s, m in (("train", ~split), ("validation", split))}
-    with SetWriter(path, COLUMNS, chunk_rows=chunk_rows, compression="none", total_rows=total) as w:
+    with SetWriter(path, COLUMNS, chunk_rows=chunk_rows, compression="none", total_rows=total,
+                   replace=True) as w:   # examples rewrite the same paths
         a = 0
         for b in list(cuts) + [len(keys)]:
             for name in ("train", "validation"):
