@@ -45,7 +45,7 @@ class LawRows:
 def uniform_law(x, low, high, v) -> LawRows:
     """``x`` uniform on the integers ``{low, ..., high}`` (high >= low)."""
     x, low, high = (np.asarray(z, dtype=np.int64) for z in (x, low, high))
-    n = (high - low + 1).astype(np.float64)
+    n = np.maximum(high - low + 1, 1).astype(np.float64)   # rows outside the law's domain get NaN
     inside = (x >= low) & (x <= high)
     pit = np.where(inside, (x - low + np.asarray(v)) / n, np.nan)
     return LawRows(pit, x == low, x == high, 1.0 / n, 1.0 / n, 1.0 / n)
@@ -63,7 +63,7 @@ def geometric_law(k, room, gamma: float, past_end: str, v) -> LawRows:
     g = float(gamma)
     inside = (k >= 1) & (k <= room)
     kk = np.clip(k, 1, np.maximum(room, 1)).astype(np.float64)
-    r = room.astype(np.float64)
+    r = np.maximum(room, 1).astype(np.float64)
     if past_end == "clip":
         below = 1.0 - g ** (kk - 1.0)                      # F(k - 1)
         pmf = np.where(kk < r, (1.0 - g) * g ** (kk - 1.0), g ** (r - 1.0))

@@ -380,3 +380,16 @@ class _Auditor:
 def share_power_note(n: int = 100_000, share: float = 0.2, checks: int = 25, alpha: float = ALPHA) -> float:
     """The shift quoted in the help of ``verify --sample`` (see docs/audit.md)."""
     return share_power(n, share, alpha / checks)
+
+
+def audit_into(path, report, sample: int | None = None) -> AuditReport:
+    """Run :func:`audit_set` and record its outcome in a verify report.
+
+    Each audit failure becomes a failure of ``report`` (``report.fail``), and the audit's
+    summary goes to ``report.checked["audit"]``.
+    """
+    result = audit_set(path, sample=sample)
+    for message in result.failures:
+        report.fail(f"audit: {message}")
+    report.checked["audit"] = result.as_dict()
+    return result
