@@ -10,7 +10,7 @@ from goalkit.cli_support import ChunkProgress, echo_json, user_errors
 
 #: Quoted in the help of --sample; pinned by tests/audit/test_power.py against
 #: goalkit.audit.run.share_power_note() (100,000 rows, share 0.2, 25 checks, family error 1e-6).
-SAMPLE_POWER_NOTE = "0.0145"
+SAMPLE_POWER_NOTE = "0.0086"
 
 
 @click.command(context_settings={"show_default": True})

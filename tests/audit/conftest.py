@@ -45,6 +45,7 @@ end_on_reach = {end_on_reach}
 
 [split]
 validation = 0.2
+salt = {salt}
 
 [output]
 path = "set.h5"
@@ -54,10 +55,11 @@ chunk_rows = 4096
 
 
 def write_recipe(folder: Path, name: str = "recipe.toml", *, seed: int = 3, threshold: float = 0.04,
-                 form: str = "sparse-negative", end_on_reach: str = "true", past_end: str = "clip") -> Path:
+                 form: str = "sparse-negative", end_on_reach: str = "true", past_end: str = "clip",
+                 salt: int = 0) -> Path:
     """Write a recipe for the demo logs in ``folder``; returns its path."""
     path = folder / name
-    path.write_text(RECIPE.format(seed=seed, threshold=threshold, form=form, end_on_reach=end_on_reach,
+    path.write_text(RECIPE.format(seed=seed, threshold=threshold, form=form, end_on_reach=end_on_reach, salt=salt,
                                   past_end=past_end), encoding="utf-8")
     return path
 
