@@ -302,9 +302,12 @@ class _Auditor:
                 full = np.zeros(len(ep), bool)
                 full[idx] = mask
                 self.violated(rule, message, full, split, a, c)
-            if task is not None:
-                orig = sub["strategy"] == ORIGINAL
-                wrong = orig & np.any(sub["goal"] != task.astype(sub["goal"].dtype), axis=1)
+            orig = sub["strategy"] == ORIGINAL
+            if orig.any():
+                if task is None or task.shape[1] != sub["goal"].shape[1]:
+                    wrong = orig
+                else:
+                    wrong = orig & np.any(sub["goal"] != task.astype(sub["goal"].dtype), axis=1)
                 full = np.zeros(len(ep), bool)
                 full[idx] = wrong
                 self.violated("original", "original: the goal is not the log's task goal of step t", full,
