@@ -16,13 +16,13 @@ from goalkit.audit.rowrules import (EPISODE, FUTURE, GEOMETRIC, NEAR_MISS, NEIGH
                                     address_rules, reward_rules)
 from goalkit.audit.stattests import (FINE_BINS, binom_check, count_bound_check, grid_chi2_check, holm,
                                      share_power, uniform_chi2_check)
-from goalkit.errors import DatasetError
+from goalkit.errors import DatasetError, GoalkitError
 
 #: Family error of the statistical checks: a correct set fails any of them with at most this chance.
 ALPHA = 1e-6
 #: Transitions per block of rows read at once (full audit) and per sampled block (``sample``).
 BLOCK_TRANSITIONS = 8192
-SAMPLE_BLOCK_TRANSITIONS = 256
+SAMPLE_BLOCK_TRANSITIONS = 256   # at least; else one storage chunk of rows
 #: Salt mixed with the set's seed for the PIT jitter (a fixed, documented generator).
 JITTER_SALT = 0x61756469
 
@@ -148,8 +148,8 @@ def audit_set(path, sample: int | None = None, alpha: float = ALPHA) -> AuditRep
     ----------
     path : str or Path
     sample : int, optional
-        Audit about this many rows, in blocks of whole transitions at positions drawn with the
-        set's seed, instead of every row. Row positions do not depend on the draws, so every
+        Audit at least this many rows, in blocks of whole transitions (about one storage chunk
+        each) at positions drawn with the set's seed, instead of every row. Row positions do not depend on the draws, so every
         statistical check stays valid on the sample.
     alpha : float
         Family error of the statistical checks (Holm).
@@ -174,7 +174,11 @@ def audit_set(path, sample: int | None = None, alpha: float = ALPHA) -> AuditRep
         if stored_codes is not None and {int(k): v for k, v in stored_codes.items()} != CODE_NAMES:
             report.ok = False
             report.failures.append("strategy code table in the provenance differs from the documented one")
-        logs = _Logs(prov, rc, path)
+        try:
+            logs = _Logs(prov, rc, path)
+        except GoalkitError as exc:
+            raise DatasetError(f"the audit cannot reopen the logs this set was built from: {exc}",
+                               file=path) from None
         _Auditor(f, rc, logs, report, seed, sample, alpha).run()
     return report
 
@@ -205,7 +209,7 @@ class _Auditor:
         members = {}
         for s in SPLITS:
             ep = f[s]["source_episode"]
-            parts = [np.unique(ep[a:a + 1 << 22]) for a in range(0, ep.shape[0], 1 << 22)]
+            parts = [np.unique(ep[a:a + (1 << 22)]) for a in range(0, ep.shape[0], 1 << 22)]
             members[s] = np.unique(np.concatenate(parts)) if parts else np.zeros(0, np.int64)
         self.members = members
         both = np.intersect1d(members["train"], members["validation"])
@@ -251,13 +255,15 @@ class _Auditor:
         if self.sample is None:
             step = BLOCK_TRANSITIONS * g
             return [(s, a, min(a + step, rows[s])) for s in SPLITS for a in range(0, rows[s], step)]
-        step = SAMPLE_BLOCK_TRANSITIONS * g
+        # blocks of about one storage chunk (whole transitions), so a sample decompresses little
+        # more than it audits
+        chunk = self.f["train"]["source_episode"].chunks or self.f["validation"]["source_episode"].chunks
+        step = max(SAMPLE_BLOCK_TRANSITIONS, (chunk[0] if chunk else 0) // g) * g
         allb = [(s, a, min(a + step, rows[s])) for s in SPLITS for a in range(0, rows[s], step)]
-        want = -(-int(self.sample) // step)
-        if want >= len(allb):
-            return allb
-        pick = np.sort(np.random.default_rng([self.seed, JITTER_SALT, 1]).choice(len(allb), want, replace=False))
-        return [allb[i] for i in pick.tolist()]
+        order = np.random.default_rng([self.seed, JITTER_SALT, 1]).permutation(len(allb))
+        sizes = np.array([allb[i][2] - allb[i][1] for i in order.tolist()], dtype=np.int64)
+        take = int(np.searchsorted(np.cumsum(sizes), int(self.sample))) + 1   # blocks until >= sample rows
+        return [allb[i] for i in np.sort(order[:take]).tolist()]
 
     def block(self, split, a, b, counts):
         rc, logs = self.rc, self.logs

@@ -17,8 +17,9 @@ SAMPLE_POWER_NOTE = "0.0086"
 @click.argument("dataset", type=click.Path(dir_okay=False))
 @click.option("--max-failures", type=click.IntRange(min=1), default=20, help="List at most this many failures.")
 @click.option("--sample", type=click.IntRange(min=1), default=None, metavar="ROWS",
-              help="Run only the independent audit (rules and laws, docs/audit.md) on about ROWS rows, in "
-                   "blocks of whole transitions at positions drawn with the set's seed; no replay. Power: at "
+              help="Run only the independent audit (rules and laws, docs/audit.md) on at least ROWS rows, "
+                   "in blocks of whole transitions (about one storage chunk) at positions drawn with the set's "
+                   "seed; no replay. Power: at "
                    f"100,000 rows a strategy share of 0.2 that is really 0.2 + {SAMPLE_POWER_NOTE} or more "
                    "fails with probability >= 90% (exact binomial test at the audit's per-check level); "
                    "the report gives this shift for the rows audited.")

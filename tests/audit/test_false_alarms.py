@@ -58,7 +58,7 @@ def test_audit_uses_the_sets_own_seed(demo_logs, tmp_path):
     a = audit_set(out)
     assert a.seed == 7 and a.ok, a.failures
     b = audit_set(out, sample=2000)
-    assert b.seed == 7 and b.ok and 2000 <= sum(b.rows.values()) < 2000 + 4 * 256
+    assert b.seed == 7 and b.ok and 2000 <= sum(b.rows.values()) < 2000 + 4096   # blocks of one storage chunk
 
 
 def test_verify_lists_the_checks(demo_logs, tmp_path):
@@ -77,7 +77,7 @@ def test_verify_lists_the_checks(demo_logs, tmp_path):
     assert res.exit_code == 0, res.output
     got = json.loads(res.output)
     assert got["ok"] and got["checked"]["audit"]["sample"] == 3000
-    assert 3000 <= sum(got["checked"]["audit"]["rows"].values()) < 3000 + 4 * 256
+    assert 3000 <= sum(got["checked"]["audit"]["rows"].values()) < 3000 + 4096
     assert "0.0086" in CliRunner().invoke(main, ["verify", "--help"]).output
 
 
