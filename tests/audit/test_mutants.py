@@ -63,12 +63,16 @@ MUTANTS = {
     "terminal ignores end_on_reach": (
         "pipeline/chunk.py", "terminal = reached if rule.end_on_reach else np.zeros_like(reached)",
         "terminal = np.zeros_like(reached)", "main", "row rule 'terminal'"),
+    "truncate conditions on K <= T - t - 1": (
+        "relabel/strategies.py", "u = u * -np.expm1(room * log_g)", "u = u * -np.expm1((room - 1) * log_g)",
+        "truncate", "check 'geometric offset: last value of the range'"),
     "split fraction inverted": (
         "pipeline/split.py", "return (u < validation).astype(np.int8)",
         "return (u < 1.0 - validation).astype(np.int8)", "main", "check 'split fraction'"),
 }
 
-RECIPES = {"main": {}, "exact": {"threshold": 0.0, "form": "sparse", "end_on_reach": "false"}}
+RECIPES = {"main": {}, "exact": {"threshold": 0.0, "form": "sparse", "end_on_reach": "false"},
+           "truncate": {"past_end": "truncate"}}
 
 
 @pytest.fixture(scope="module")
