@@ -126,9 +126,17 @@ class _Draws:
         self.counts = np.zeros(256, np.int64)
         self.hist = {}
         self.ends = {}
-        self.pairs_same_strategy = [0, 0.0]
-        self.pairs_same_step = [0, 0.0]
+        self.pairs_same_strategy = [0, {}]
+        self.pairs_same_step = [0, {}]
         self.grid = np.zeros((10, 10), np.int64)
+
+    @staticmethod
+    def add(acc, hits, probs):
+        """Add events to ``acc = [hits, {probability: events}]``."""
+        acc[0] += int(np.count_nonzero(hits))
+        values, counts = np.unique(np.asarray(probs, dtype=np.float64), return_counts=True)
+        for v, c in zip(values.tolist(), counts.tolist()):
+            acc[1][v] = acc[1].get(v, 0) + c
 
     def law(self, name, rows_law, mask):
         pit = rows_law.pit[mask]
@@ -136,9 +144,8 @@ class _Draws:
         h = self.hist.setdefault(name, np.zeros(FINE_BINS, np.int64))
         h += np.bincount(np.minimum((pit[ok] * FINE_BINS).astype(np.int64), FINE_BINS - 1), minlength=FINE_BINS)
         for end, hit, p in (("low", rows_law.at_low, rows_law.p_low), ("high", rows_law.at_high, rows_law.p_high)):
-            acc = self.ends.setdefault((name, end), [0, 0.0])
-            acc[0] += int(np.asarray(hit)[mask][ok].sum())
-            acc[1] += float(np.broadcast_to(p, mask.shape)[mask][ok].sum())
+            acc = self.ends.setdefault((name, end), [0, {}])
+            self.add(acc, np.asarray(hit)[mask][ok], np.broadcast_to(p, mask.shape)[mask][ok])
 
 
 def audit_set(path, sample: int | None = None, alpha: float = ALPHA) -> AuditReport:
@@ -352,11 +359,9 @@ class _Auditor:
                            & valid[:-1] & valid[1:])
         if i.size:
             sa, sb = s[i], s[i + 1]
-            d.pairs_same_strategy[0] += int(np.count_nonzero(sa == sb))
-            d.pairs_same_strategy[1] += i.size * sum(p * p for p in rc.weights.values())
+            d.add(d.pairs_same_strategy, sa == sb, np.full(i.size, sum(p * p for p in rc.weights.values())))
             same_law = (sa == sb) & np.isin(sa, (FUTURE, EPISODE, GEOMETRIC))
-            d.pairs_same_step[0] += int(np.count_nonzero(same_law & (j[i] == j[i + 1])))
-            d.pairs_same_step[1] += float(same_p[i][same_law].sum())
+            d.add(d.pairs_same_step, same_law & (j[i] == j[i + 1]), same_p[i][same_law])
             ua, ub = main[i], main[i + 1]
             both = np.isfinite(ua) & np.isfinite(ub)
             ga = np.minimum((ua[both] * 10).astype(np.int64), 9)
@@ -375,13 +380,13 @@ class _Auditor:
         for name in sorted(d.hist):
             out.append(uniform_chi2_check(f"law of {name}", d.hist[name], f"PIT of the {name}"))
             for end in ("low", "high"):
-                hit, mu = d.ends[(name, end)]
+                hit, probs = d.ends[(name, end)]
                 out.append(count_bound_check(f"{name}: {'first' if end == 'low' else 'last'} value of the range",
-                                             hit, mu, "rows"))
-        out.append(count_bound_check("slot pairs: same strategy", d.pairs_same_strategy[0],
-                                     d.pairs_same_strategy[1], "pairs of slots (2k, 2k+1) with one strategy"))
-        out.append(count_bound_check("slot pairs: same goal step", d.pairs_same_step[0], d.pairs_same_step[1],
-                                     "same-strategy slot pairs with one goal step"))
+                                             hit, list(probs), list(probs.values()), "rows"))
+        for name, (hit, probs), what in (
+                ("slot pairs: same strategy", d.pairs_same_strategy, "pairs of slots (2k, 2k+1) with one strategy"),
+                ("slot pairs: same goal step", d.pairs_same_step, "same-strategy slot pairs with one goal step")):
+            out.append(count_bound_check(name, hit, list(probs), list(probs.values()), what))
         out.append(grid_chi2_check("slot pairs: independent draws", d.grid, "PIT pairs of slots (2k, 2k+1)"))
         return [c for c in out if c is not None]
 

@@ -53,25 +53,48 @@ class Check:
                 "passed": bool(self.passed), "detail": self.detail}
 
 
-def count_bound_check(name: str, observed: int, mean: float, what: str) -> Check | None:
-    """Two-sided test of a count of independent Bernoulli events with known mean.
+def count_bound_check(name: str, observed: int, probs, counts, what: str) -> Check | None:
+    """Two-sided test of a count of independent Bernoulli events with known probabilities.
 
-    ``S`` is a sum of independent Bernoulli(p_i), ``mean = sum p_i``. For any such sum,
-    ``E exp(l S) <= exp(mean (e^l - 1))``, which gives the Chernoff bound
-    ``P(S >= a) <= exp(-mean + a + a log(mean / a))`` for ``a > mean`` and the same expression
-    for ``P(S <= a)``, ``a < mean``. Twice the bound on the observed side is a valid
-    (conservative) two-sided p-value whatever the p_i and however small the counts.
-    Returns None when ``mean`` is 0 and nothing was observed (nothing to test).
+    ``S`` is a sum of independent Bernoulli(p_i); ``probs`` holds the distinct p_i and
+    ``counts`` how many events have each. The Chernoff bound
+    ``P(S >= a) <= min over l > 0 of exp(K(l) - l a)`` (``l < 0`` for ``P(S <= a)``), with
+    ``K(l) = sum_i log(1 + p_i (e^l - 1))`` the cumulant generating function of ``S``, holds
+    for any such sum; twice the bound on the observed side is a valid (conservative) two-sided
+    p-value however small the counts. Returns None when no event can happen and none did.
     """
-    a, mu = float(observed), float(mean)
+    from scipy.optimize import minimize_scalar
+
+    p = np.asarray(probs, dtype=np.float64)
+    n = np.asarray(counts, dtype=np.float64)
+    # certain events (p = 1) always happen: test the rest against what remains of the count
+    certain = float(np.sum(n[p >= 1.0]))
+    keep = (p > 0.0) & (p < 1.0)
+    p, n = p[keep], n[keep]
+    observed = observed - certain
+    if observed < 0 or observed > np.sum(n):
+        return Check(name, "count vs expectation (Chernoff bound)", float(observed + certain), 0.0,
+                     detail=f"{what}: {int(observed + certain)} seen, impossible under the law")
+    a, mu = float(observed), float(np.sum(p * n))
     if mu <= 0:
         if a == 0:
             return None
         return Check(name, "count vs expectation (Chernoff bound)", a, 0.0, detail=f"{what}: {int(a)} seen, 0 possible")
-    log_bound = -mu + a + (a * math.log(mu / a) if a > 0 else 0.0)
-    p = min(1.0, 2.0 * math.exp(min(0.0, log_bound)))
-    return Check(name, "count vs expectation (Chernoff bound)", a, p,
-                 detail=f"{what}: {int(a)} seen, {mu:.1f} expected")
+
+    log_p1, log_q = np.log(p), np.log1p(-p)
+
+    def log_bound(lam):   # K(lam) - lam a, with log(1 - p + p e^lam) computed stably
+        return float(np.sum(n * np.logaddexp(log_q, log_p1 + lam))) - lam * a
+
+    if a == mu:
+        log_p = 0.0
+    else:
+        lo, hi = (1e-12, 60.0) if a > mu else (-60.0, -1e-12)
+        res = minimize_scalar(log_bound, bounds=(lo, hi), method="bounded", options={"xatol": 1e-10})
+        log_p = min(0.0, res.fun, log_bound(hi if a > mu else lo))
+    pval = min(1.0, 2.0 * math.exp(log_p))
+    return Check(name, "count vs expectation (Chernoff bound)", a + certain, pval,
+                 detail=f"{what}: {int(a + certain)} seen, {mu + certain:.1f} expected")
 
 
 def uniform_chi2_check(name: str, fine_hist: np.ndarray, what: str) -> Check | None:

@@ -81,20 +81,36 @@ def test_randomised_pit_is_uniform_under_the_law():
     assert kstest(bad, "uniform").pvalue < 1e-12
 
 
-@pytest.mark.parametrize("n,p", [(50, 0.02), (400, 0.1), (5000, 0.3)])
+@pytest.mark.parametrize("n,p", [(50, 0.02), (400, 0.1), (5000, 0.3), (30, 0.9)])
 def test_count_bound_is_above_the_exact_binomial_tail(n, p):
     # a valid p-value: never below twice the exact one-sided binomial tail (scipy.stats.binom)
     mu = n * p
     for a in range(0, n + 1, max(1, n // 200)):
-        c = count_bound_check("x", a, mu, "rows")
+        c = count_bound_check("x", a, [p], [n], "rows")
         exact = binom.cdf(a, n, p) if a < mu else binom.sf(a - 1, n, p)
-        assert c.p_value >= min(1.0, 2 * exact) * (1 - 1e-9)
+        assert c.p_value >= min(1.0, 2 * exact) * (1 - 1e-6)
+    # and not much above it far in the tail (Chernoff: within a factor polynomial in n)
+    a = int(mu + 6 * math.sqrt(mu * (1 - p)) + 1)
+    if a <= n:
+        c = count_bound_check("x", a, [p], [n], "rows")
+        assert c.p_value <= 2 * binom.sf(a - 1, n, p) * 10 * n
+
+
+def test_count_bound_with_mixed_probabilities_against_simulation():
+    # two groups of events; the exact tail by convolving two scipy.stats.binom pmfs
+    probs, counts = [0.5, 0.02], [40, 2000]
+    pmf = np.convolve(binom.pmf(np.arange(41), 40, 0.5), binom.pmf(np.arange(2001), 2000, 0.02))
+    for a in (0, 20, 35, 60, 90, 120):
+        c = count_bound_check("x", a, probs, counts, "rows")
+        exact = pmf[:a + 1].sum() if a < 60 else pmf[a:].sum()
+        assert c.p_value >= min(1.0, 2 * exact) * (1 - 1e-6)
 
 
 def test_count_bound_size_under_the_null():
     gen = np.random.default_rng(2)
     p = gen.uniform(0.001, 0.2, 3000)
-    ps = [count_bound_check("x", int((gen.random(3000) < p).sum()), p.sum(), "rows").p_value for _ in range(400)]
+    ps = [count_bound_check("x", int((gen.random(3000) < p).sum()), p, np.ones(3000), "rows").p_value
+          for _ in range(200)]
     assert np.mean(np.array(ps) <= 0.05) <= 0.05
 
 
@@ -136,3 +152,11 @@ def test_chisquare_bins_of_a_fine_histogram():
     c = uniform_chi2_check("x", fine, "rows")
     assert c.test.startswith("chi-square, 50") and c.p_value == pytest.approx(chisquare(np.full(50, 60)).pvalue)
     assert uniform_chi2_check("x", np.ones(1000, int) * 0, "rows") is None
+
+
+def test_count_bound_with_certain_events():
+    # ten events of probability 1 must all happen; the rest follow Binomial(10, 0.5)
+    assert count_bound_check("x", 5, [1.0, 0.5], [10, 10], "rows").p_value == 0.0
+    assert count_bound_check("x", 15, [1.0, 0.5], [10, 10], "rows").p_value == 1.0
+    c = count_bound_check("x", 20, [1.0, 0.5], [10, 10], "rows")
+    assert 2 * binom.sf(9, 10, 0.5) * (1 - 1e-9) <= c.p_value < 0.05   # at a = n the bound is exact
