@@ -173,10 +173,19 @@ def audit_set(path, sample: int | None = None, alpha: float = ALPHA) -> AuditRep
     with f:
         if f.attrs.get("format") != "goalkit-goal-set":
             raise DatasetError("not a goalkit set", file=path, key="format")
-        seed = int(f.attrs["seed"])   # the set's own seed (a --seed override is stored here)
-        rc = parse_audit_recipe(str(f.attrs["recipe"]))
-        prov = json.loads(f.attrs["provenance"])
+        try:
+            seed = int(f.attrs["seed"])   # the set's own seed (a --seed override is stored here)
+            rc = parse_audit_recipe(str(f.attrs["recipe"]))
+            prov = json.loads(f.attrs["provenance"])
+        except (KeyError, ValueError, TypeError) as exc:  # tomllib and json errors are ValueErrors
+            raise DatasetError(f"the audit cannot read the stored seed, recipe or provenance ({exc})",
+                               file=path) from None
         report = AuditReport(seed=seed, sample=sample, alpha=alpha)
+        missing = [f"{s}/{k}" for s in SPLITS for k in INDEX if s not in f or k not in f[s]]
+        if missing:
+            report.ok = False
+            report.failures.append(f"column {missing[0]} is missing; rows not audited")
+            return report
         stored_codes = prov.get("strategies")
         if stored_codes is not None and {int(k): v for k, v in stored_codes.items()} != CODE_NAMES:
             report.ok = False

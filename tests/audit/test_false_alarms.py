@@ -95,3 +95,24 @@ def test_sample_audit_catches_a_tampered_share(demo_logs, tmp_path):
         f["train"]["strategy"][:] = s
     res = CliRunner().invoke(main, ["verify", str(out), "--sample", "4000"])
     assert res.exit_code == 1 and "audit FAILED" in res.output and "check 'share of episode'" in res.output
+
+
+def test_unreadable_inputs_are_one_line_errors(demo_logs, tmp_path):
+    import h5py
+
+    recipe = write_recipe(demo_logs, "bad.toml", seed=4)
+    out = tmp_path / "b.h5"
+    assert CliRunner().invoke(main, ["build", str(recipe), "--out", str(out), "--quiet"]).exit_code == 0
+    with h5py.File(out, "r+") as f:
+        del f["validation"]["steps_to_goal"]
+    res = CliRunner().invoke(main, ["verify", str(out), "--sample", "100"])
+    assert res.exit_code == 1 and "column validation/steps_to_goal is missing" in res.output
+    with h5py.File(out, "r+") as f:
+        f.attrs["recipe"] = "[relabel.weights]\nfuturre = 1\n"
+    res = CliRunner().invoke(main, ["verify", str(out), "--sample", "100"])
+    assert res.exit_code == 2 and "Traceback" not in res.output and "futurre" in res.output
+    plain = tmp_path / "plain.h5"
+    with h5py.File(plain, "w") as f:
+        f["x"] = [1, 2]
+    res = CliRunner().invoke(main, ["verify", str(plain), "--sample", "100"])
+    assert res.exit_code == 2 and "not a goalkit set" in res.output
