@@ -26,7 +26,7 @@ fields = ["head", "trays"]
 dtype = "float32"
 
 [relabel]
-goals_per_transition = 4
+goals_per_transition = 4          # k = 4 goals per transition, as HER's best "future" setting (Andrychowicz et al. 2017, section 4.5; from memory)
 gamma = 0.8
 past_end = "{past_end}"
 [relabel.weights]
