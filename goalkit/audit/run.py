@@ -364,11 +364,14 @@ class _Auditor:
             d.law("other_episode step", uniform_law(j, 0, T_goal, v[:, 2]), mask)
         # disjoint slot pairs (0, 1), (2, 3), ... of one transition: independent under the recipe
         slot = c["slot"]
-        i = np.flatnonzero((slot[:-1] % 2 == 0) & (slot[1:] == slot[:-1] + 1) & (ep[1:] == ep[:-1]) & (t[1:] == t[:-1])
-                           & valid[:-1] & valid[1:])
+        paired = (slot[:-1] % 2 == 0) & (slot[1:] == slot[:-1] + 1) & (ep[1:] == ep[:-1]) & (t[1:] == t[:-1])
+        # strategies of every pair (whatever their goals), goal steps of pairs whose rows keep the rules
+        drawn = np.isin(s, list(rc.weights))
+        k = np.flatnonzero(paired & drawn[:-1] & drawn[1:])
+        d.add(d.pairs_same_strategy, s[k] == s[k + 1], np.full(k.size, sum(p * p for p in rc.weights.values())))
+        i = np.flatnonzero(paired & valid[:-1] & valid[1:])
         if i.size:
             sa, sb = s[i], s[i + 1]
-            d.add(d.pairs_same_strategy, sa == sb, np.full(i.size, sum(p * p for p in rc.weights.values())))
             same_law = (sa == sb) & np.isin(sa, (FUTURE, EPISODE, GEOMETRIC))
             d.add(d.pairs_same_step, same_law & (j[i] == j[i + 1]), same_p[i][same_law])
             ua, ub = main[i], main[i + 1]
