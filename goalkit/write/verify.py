@@ -165,7 +165,7 @@ def _goal_at(plan, chunk, phi_chunk, episodes, steps) -> np.ndarray:
     return out
 
 
-def verify_set(path, max_failures: int = 20, progress=None) -> VerifyReport:
+def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) -> VerifyReport:
     """Verify the set at ``path``; see the module docstring for what is checked.
 
     Parameters
@@ -175,6 +175,8 @@ def verify_set(path, max_failures: int = 20, progress=None) -> VerifyReport:
         Stop collecting messages after this many.
     progress : callable, optional
         Called as ``progress(transitions_done_in_chunk, total_transitions)`` after each chunk.
+    audit : bool
+        Also run :func:`goalkit.audit.audit_set` (its result goes to ``checked["audit"]``).
 
     Returns
     -------
@@ -235,6 +237,10 @@ def verify_set(path, max_failures: int = 20, progress=None) -> VerifyReport:
                 report.fail(f"{s}: {total[s]} rows stored, the recipe produces {cursor[s]}")
         report.checked["rows"] = {s: total[s] for s in SPLITS}
         report.checked["episodes"] = int(len(plan.episode_ids))
+    if audit:  # 5. rules and laws re-stated independently of the builder (docs/audit.md)
+        from goalkit.audit import audit_into
+
+        audit_into(path, report)
     return report
 
 

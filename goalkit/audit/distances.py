@@ -1,0 +1,45 @@
+"""The documented goal distances (docs/reward.md), written a second time for the audit."""
+
+from __future__ import annotations
+
+import numpy as np
+
+
+def rule_distance(kind: str, a, g, weights=None, threshold=None) -> np.ndarray:
+    """Distance of rows of ``a`` to rows of ``g`` (both (M, G)), float64 (M,).
+
+    Parameters
+    ----------
+    kind : {"euclidean", "l1", "chebyshev", "cosine", "box"}
+    a, g : array_like (M, G)
+        Achieved goals phi(s_t+1) and goals.
+    weights : sequence of float, optional
+        Per-dimension weights (euclidean weights the squared difference, l1 and chebyshev the
+        absolute difference, cosine the products).
+    threshold : sequence of float
+        Per-dimension tolerances of ``box``.
+
+    Returns
+    -------
+    ndarray of float64
+    """
+    a = np.asarray(a, dtype=np.float64)
+    g = np.asarray(g, dtype=np.float64)
+    w = np.ones(a.shape[1]) if weights is None else np.asarray(weights, dtype=np.float64)
+    diff = np.abs(a - g)
+    if kind == "euclidean":
+        return np.sqrt((w * diff * diff).sum(axis=1))
+    if kind == "l1":
+        return (w * diff).sum(axis=1)
+    if kind == "chebyshev":
+        return (w * diff).max(axis=1, initial=0.0)
+    if kind == "box":
+        return (diff / np.asarray(threshold, dtype=np.float64)).max(axis=1, initial=0.0)
+    if kind == "cosine":
+        na = (w * a * a).sum(axis=1)
+        ng = (w * g * g).sum(axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            d = 1.0 - (w * a * g).sum(axis=1) / np.sqrt(na * ng)
+        d = np.where((na == 0) & (ng == 0), 0.0, np.where((na == 0) | (ng == 0), 1.0, d))
+        return np.clip(d, 0.0, 2.0)
+    raise ValueError(f"unknown distance {kind!r}")

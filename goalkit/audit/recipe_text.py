@@ -1,0 +1,90 @@
+"""The parts of a stored recipe the audit needs, parsed from its TOML text with tomllib.
+
+Defaults are the documented ones (docs/relabel.md, docs/reward.md, docs/recipe.md), written
+here a second time rather than taken from the builder's classes.
+"""
+
+from __future__ import annotations
+
+import tomllib
+from dataclasses import dataclass
+
+#: Strategy codes as documented in docs/dataset.md (never renumbered).
+CODE_NAMES = {0: "original", 1: "final", 2: "future", 3: "episode", 4: "geometric",
+              5: "other_episode", 6: "neighbour", 7: "library", 8: "near_miss"}
+NAME_CODES = {v: k for k, v in CODE_NAMES.items()}
+
+
+@dataclass(frozen=True)
+class AuditRecipe:
+    """What the audit reads from the recipe text.
+
+    Attributes
+    ----------
+    weights : dict of int to float
+        Strategy code -> probability (normalised, positive weights only).
+    goals_per_transition : int
+    gamma : float
+    past_end : str
+    distance : str
+    threshold : float or tuple of float
+    inclusive, end_on_reach : bool
+    form : str
+    weights_dim : tuple of float or None
+        The reward rule's per-dimension weights.
+    clip : float or None
+    validation : float
+        Fraction of episodes in the validation split.
+    goal : dict
+        The ``[goal]`` table.
+    skip_bad_episodes : bool
+    """
+
+    weights: dict
+    goals_per_transition: int
+    gamma: float
+    past_end: str
+    distance: str
+    threshold: object
+    inclusive: bool
+    form: str
+    weights_dim: tuple | None
+    clip: float | None
+    end_on_reach: bool
+    validation: float
+    goal: dict
+    skip_bad_episodes: bool
+
+
+def parse_audit_recipe(text: str) -> AuditRecipe:
+    """Parse the stored recipe ``text``; raises ``ValueError`` on what the audit cannot use."""
+    doc = tomllib.loads(text)
+    relabel = doc.get("relabel", {})
+    raw = relabel.get("weights", {"future": 1})
+    unknown = [n for n in raw if n not in NAME_CODES]
+    if unknown:
+        raise ValueError(f"unknown strategy {unknown[0]!r} in the stored recipe")
+    positive = {NAME_CODES[n]: float(w) for n, w in raw.items() if float(w) > 0}
+    total = sum(positive.values())
+    if not positive or total <= 0:
+        raise ValueError("the stored recipe has no positive strategy weight")
+    reward = doc.get("reward", {})
+    thr = reward["threshold"]
+    thr = tuple(float(x) for x in thr) if isinstance(thr, list) else float(thr)
+    w = reward.get("weights")
+    return AuditRecipe(
+        weights={c: positive[c] / total for c in sorted(positive)},
+        goals_per_transition=int(relabel.get("goals_per_transition", 4)),
+        gamma=float(relabel.get("gamma", 0.9)),
+        past_end=str(relabel.get("past_end", "clip")),
+        distance=str(reward.get("distance", "euclidean")),
+        threshold=thr,
+        inclusive=bool(reward.get("inclusive", True)),
+        form=str(reward.get("form", "sparse")),
+        weights_dim=tuple(float(x) for x in w) if w is not None else None,
+        clip=float(reward["clip"]) if "clip" in reward else None,
+        end_on_reach=bool(reward.get("end_on_reach", False)),
+        validation=float(doc.get("split", {}).get("validation", 0.1)),
+        goal=dict(doc.get("goal", {})),
+        skip_bad_episodes=bool(doc.get("logs", {}).get("skip_bad_episodes", False)),
+    )

@@ -1,0 +1,421 @@
+"""Run the audit on a built set: read it with h5py, reopen its logs, check rows, test the draws."""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+from types import SimpleNamespace
+
+import h5py
+import numpy as np
+
+from goalkit.audit.laws import geometric_law, uniform_law
+from goalkit.audit.recipe_text import CODE_NAMES, parse_audit_recipe
+from goalkit.audit.rowrules import (EPISODE, FUTURE, GEOMETRIC, NEAR_MISS, NEIGHBOUR, ORIGINAL, OTHER,
+                                    address_rules, reward_rules)
+from goalkit.audit.stattests import (FINE_BINS, binom_check, count_bound_check, grid_chi2_check, holm,
+                                     share_power, uniform_chi2_check)
+from goalkit.errors import DatasetError, GoalkitError
+
+#: Family error of the statistical checks: a correct set fails any of them with at most this chance.
+ALPHA = 1e-6
+#: Transitions per block of rows read at once (full audit) and per sampled block (``sample``).
+BLOCK_TRANSITIONS = 8192
+SAMPLE_BLOCK_TRANSITIONS = 256   # at least; else one storage chunk of rows
+#: Salt mixed with the set's seed for the PIT jitter (a fixed, documented generator).
+JITTER_SALT = 0x61756469
+
+INDEX = ("source_episode", "source_step", "slot", "strategy", "goal_episode", "goal_step", "hop_episode",
+         "hop_step", "join_step", "steps_to_goal", "goal", "goal_distance", "reward", "reached", "terminal")
+SPLITS = ("train", "validation")
+
+
+@dataclass
+class AuditReport:
+    """Outcome of :func:`audit_set`.
+
+    Attributes
+    ----------
+    ok : bool
+        No row rule was broken and no statistical check failed.
+    failures : list of str
+        One line per broken row rule (with its first row) and per failed check.
+    checks : list of Check
+        Every statistical check with statistic, p-value and Holm threshold.
+    rows : dict
+        Rows audited per split.
+    seed : int
+        The set's stored seed (seeds the PIT jitter and the sample).
+    sample : int or None
+        Rows asked for with ``sample``; None for a full audit.
+    share_shift : float
+        Smallest upward shift of the smallest strategy share detected with 90% power at the
+        audited row count (see :func:`goalkit.audit.stattests.share_power`).
+    """
+
+    ok: bool = True
+    failures: list = field(default_factory=list)
+    checks: list = field(default_factory=list)
+    rows: dict = field(default_factory=dict)
+    seed: int = 0
+    sample: int | None = None
+    alpha: float = ALPHA
+    share_shift: float = float("nan")
+    rule_violations: dict = field(default_factory=dict)
+
+    def as_dict(self) -> dict:
+        return {"ok": self.ok, "failures": list(self.failures), "checks": [c.as_dict() for c in self.checks],
+                "rows": dict(self.rows), "seed": self.seed, "sample": self.sample, "alpha": self.alpha,
+                "share_shift_90": self.share_shift, "rule_violations": dict(self.rule_violations)}
+
+
+class _Logs:
+    """The set's logs reopened with its stored layout, and its goal map."""
+
+    def __init__(self, prov: dict, rc, path):
+        from goalkit.config import parse_toml
+        from goalkit.logs import open_logs
+        from goalkit.logs.layout import parse_layout
+        from goalkit.pipeline.goal import make_goal_map
+
+        layout = None
+        if prov.get("layout_text"):
+            layout = parse_layout(parse_toml(prov["layout_text"], f"{path}:layout", DatasetError), f"{path}:layout")
+        self.source = open_logs(Path(prov["logs_path"]), layout, skip_bad_episodes=rc.skip_bad_episodes)
+        self.ids = np.asarray(self.source.episode_ids, dtype=np.int64)
+        self.lengths = np.asarray(self.source.lengths, dtype=np.int64)
+        base = Path(prov["recipe_file"]).parent if prov.get("recipe_file") else Path.cwd()
+        goal = rc.goal
+        emb = goal.get("embedding")
+        spec = SimpleNamespace(fields=tuple(goal.get("fields", ())), indices=tuple(goal.get("indices", ())),
+                               embedding=(base / emb) if emb else None)
+        first = self.source.read(0, 1)
+        self.goal_map = make_goal_map(spec, self.source, first.observations.shape[1])
+        self.goal_dtype = np.dtype(goal.get("dtype", "float32"))
+
+    def known(self, episodes) -> np.ndarray:
+        pos = np.minimum(np.searchsorted(self.ids, episodes), len(self.ids) - 1)
+        return self.ids[pos] == episodes
+
+    def length_of(self, episodes) -> np.ndarray:
+        """Transition count per episode id (-1 for ids not in the logs)."""
+        episodes = np.asarray(episodes, dtype=np.int64)
+        pos = np.minimum(np.searchsorted(self.ids, episodes), len(self.ids) - 1)
+        return np.where(self.ids[pos] == episodes, self.lengths[pos], -1)
+
+    def achieved_and_task_goal(self, episodes, steps):
+        """phi(s_t+1) (goal dtype) and the log's task goal (or None) of each (episode, t)."""
+        pos = np.searchsorted(self.ids, episodes)
+        a, b = int(pos.min()), int(pos.max()) + 1
+        chunk = self.source.read(a, b)
+        local = pos - a
+        cur = chunk.state_row(local, steps)
+        achieved = np.asarray(self.goal_map(chunk, cur + 1)).astype(self.goal_dtype)
+        task = None
+        if chunk.task_goals is not None:
+            tg = np.asarray(chunk.task_goals)
+            task = tg.reshape(len(tg), -1)[chunk.offsets[local] + steps]
+        return achieved, task
+
+
+class _Draws:
+    """Accumulated statistics of the draws, merged over blocks."""
+
+    def __init__(self):
+        self.counts = np.zeros(256, np.int64)
+        self.hist = {}
+        self.ends = {}
+        self.pairs_same_strategy = [0, {}]
+        self.pairs_same_step = [0, {}]
+        self.grid = np.zeros((10, 10), np.int64)
+
+    @staticmethod
+    def add(acc, hits, probs):
+        """Add events to ``acc = [hits, {probability: events}]``."""
+        acc[0] += int(np.count_nonzero(hits))
+        values, counts = np.unique(np.asarray(probs, dtype=np.float64), return_counts=True)
+        for v, c in zip(values.tolist(), counts.tolist()):
+            acc[1][v] = acc[1].get(v, 0) + c
+
+    def law(self, name, rows_law, mask):
+        pit = rows_law.pit[mask]
+        ok = np.isfinite(pit)
+        h = self.hist.setdefault(name, np.zeros(FINE_BINS, np.int64))
+        h += np.bincount(np.minimum((pit[ok] * FINE_BINS).astype(np.int64), FINE_BINS - 1), minlength=FINE_BINS)
+        for end, hit, p in (("low", rows_law.at_low, rows_law.p_low), ("high", rows_law.at_high, rows_law.p_high)):
+            acc = self.ends.setdefault((name, end), [0, {}])
+            self.add(acc, np.asarray(hit)[mask][ok], np.broadcast_to(p, mask.shape)[mask][ok])
+
+
+def audit_set(path, sample: int | None = None, alpha: float = ALPHA) -> AuditReport:
+    """Audit the set at ``path`` against the documented rules and laws (docs/audit.md).
+
+    Parameters
+    ----------
+    path : str or Path
+    sample : int, optional
+        Audit at least this many rows, in blocks of whole transitions (about one storage chunk
+        each) at positions drawn with the set's seed, instead of every row. Row positions do not depend on the draws, so every
+        statistical check stays valid on the sample.
+    alpha : float
+        Family error of the statistical checks (Holm).
+
+    Returns
+    -------
+    AuditReport
+    """
+    path = Path(path)
+    try:
+        f = h5py.File(path, "r")
+    except OSError as exc:
+        raise DatasetError(f"not a readable HDF5 file ({exc})", file=path) from None
+    with f:
+        if f.attrs.get("format") != "goalkit-goal-set":
+            raise DatasetError("not a goalkit set", file=path, key="format")
+        try:
+            seed = int(f.attrs["seed"])   # the set's own seed (a --seed override is stored here)
+            rc = parse_audit_recipe(str(f.attrs["recipe"]))
+            prov = json.loads(f.attrs["provenance"])
+        except (KeyError, ValueError, TypeError) as exc:  # tomllib and json errors are ValueErrors
+            raise DatasetError(f"the audit cannot read the stored seed, recipe or provenance ({exc})",
+                               file=path) from None
+        report = AuditReport(seed=seed, sample=sample, alpha=alpha)
+        missing = [f"{s}/{k}" for s in SPLITS for k in INDEX if s not in f or k not in f[s]]
+        if missing:
+            report.ok = False
+            report.failures.append(f"column {missing[0]} is missing; rows not audited")
+            return report
+        stored_codes = prov.get("strategies")
+        if stored_codes is not None and {int(k): v for k, v in stored_codes.items()} != CODE_NAMES:
+            report.ok = False
+            report.failures.append("strategy code table in the provenance differs from the documented one")
+        try:
+            logs = _Logs(prov, rc, path)
+        except GoalkitError as exc:
+            raise DatasetError(f"the audit cannot reopen the logs this set was built from: {exc}",
+                               file=path) from None
+        _Auditor(f, rc, logs, report, seed, sample, alpha).run()
+    return report
+
+
+class _Auditor:
+    def __init__(self, f, rc, logs, report, seed, sample, alpha):
+        self.f, self.rc, self.logs, self.report = f, rc, logs, report
+        self.sample, self.alpha, self.seed = sample, alpha, seed
+        self.jitter = np.random.default_rng([seed, JITTER_SALT])
+        self.draws = _Draws()
+        self.violations = {}
+        self.first = {}
+
+    # ---- failures ------------------------------------------------------------------------
+    def violated(self, rule, message, mask, split, row0, c):
+        n = int(np.count_nonzero(mask))
+        if n == 0:
+            return
+        self.violations[rule] = self.violations.get(rule, 0) + n
+        if rule not in self.first:
+            i = int(np.flatnonzero(mask)[0])
+            self.first[rule] = (f"{split} row {row0 + i} (episode {int(c['source_episode'][i])} step "
+                                f"{int(c['source_step'][i])} slot {int(c['slot'][i])}): {message}")
+
+    # ---- the run -------------------------------------------------------------------------
+    def run(self):
+        rc, f = self.rc, self.f
+        members = {}
+        for s in SPLITS:
+            ep = f[s]["source_episode"]
+            parts = [np.unique(ep[a:a + (1 << 22)]) for a in range(0, ep.shape[0], 1 << 22)]
+            members[s] = np.unique(np.concatenate(parts)) if parts else np.zeros(0, np.int64)
+        self.members = members
+        both = np.intersect1d(members["train"], members["validation"])
+        if both.size:
+            self.report.failures.append(f"episode {int(both[0])} has rows in both splits")
+        unknown = np.setdiff1d(np.union1d(members["train"], members["validation"]), self.logs.ids)
+        if unknown.size:
+            self.report.failures.append(f"episode {int(unknown[0])} is not in the logs")
+        blocks = self.blocks()
+        counts = {s: np.zeros(len(self.logs.ids), np.int64) for s in SPLITS}
+        self.report.rows = {s: 0 for s in SPLITS}
+        for s, a, b in blocks:
+            self.block(s, a, b, counts[s])
+        if self.sample is None:
+            missing = np.setdiff1d(self.logs.ids, np.union1d(members["train"], members["validation"]))
+            if missing.size:
+                self.report.failures.append(f"episode {int(missing[0])} of the logs has no rows")
+            for s in SPLITS:
+                pos = np.searchsorted(self.logs.ids, members[s][np.isin(members[s], self.logs.ids)])
+                expect = self.logs.lengths[pos] * rc.goals_per_transition
+                bad = counts[s][pos] != expect
+                if bad.any():
+                    k = int(np.flatnonzero(bad)[0])
+                    self.report.failures.append(
+                        f"{s}: episode {int(self.logs.ids[pos[k]])} has {int(counts[s][pos[k]])} rows, expected "
+                        f"T x goals_per_transition = {int(expect[k])}")
+        for rule, n in self.violations.items():
+            self.report.failures.append(f"row rule '{rule}' broken by {n} rows; first: {self.first[rule]}")
+        self.report.rule_violations = dict(self.violations)
+        self.report.checks = holm(self.checks(), self.alpha)
+        for c in self.report.checks:
+            if not c.passed:
+                self.report.failures.append(f"check '{c.name}' failed: p = {c.p_value:.3g} <= {c.threshold:.3g} "
+                                            f"({c.test}; {c.detail})")
+        n = sum(self.report.rows.values())
+        m = max(len(self.report.checks), 1)
+        self.report.share_shift = share_power(n, min(rc.weights.values()), self.alpha / m) if n else float("nan")
+        self.report.ok = not self.report.failures
+
+    def blocks(self):
+        g = self.rc.goals_per_transition
+        rows = {s: int(self.f[s]["source_episode"].shape[0]) for s in SPLITS}
+        if self.sample is None:
+            step = BLOCK_TRANSITIONS * g
+            return [(s, a, min(a + step, rows[s])) for s in SPLITS for a in range(0, rows[s], step)]
+        # blocks of about one storage chunk (whole transitions), so a sample decompresses little
+        # more than it audits
+        chunk = self.f["train"]["source_episode"].chunks or self.f["validation"]["source_episode"].chunks
+        step = max(SAMPLE_BLOCK_TRANSITIONS, (chunk[0] if chunk else 0) // g) * g
+        allb = [(s, a, min(a + step, rows[s])) for s in SPLITS for a in range(0, rows[s], step)]
+        order = np.random.default_rng([self.seed, JITTER_SALT, 1]).permutation(len(allb))
+        sizes = np.array([allb[i][2] - allb[i][1] for i in order.tolist()], dtype=np.int64)
+        take = int(np.searchsorted(np.cumsum(sizes), int(self.sample))) + 1   # blocks until >= sample rows
+        return [allb[i] for i in np.sort(order[:take]).tolist()]
+
+    def block(self, split, a, b, counts):
+        rc, logs = self.rc, self.logs
+        grp = self.f[split]
+        c = {k: grp[k][a:b] for k in INDEX}
+        n = b - a
+        v = self.jitter.random((n, 3))
+        self.report.rows[split] += n
+        ep, t, slot = c["source_episode"], c["source_step"], c["slot"]
+        s = c["strategy"].astype(np.int64)
+        self.draws.counts += np.bincount(s, minlength=256)[:256]
+        # order (ep, t, slot) strictly increasing
+        if n > 1:
+            inc = (ep[1:] > ep[:-1]) | ((ep[1:] == ep[:-1]) & ((t[1:] > t[:-1]) | ((t[1:] == t[:-1]) & (slot[1:] > slot[:-1]))))
+            bad = np.zeros(n, bool)
+            bad[1:] = ~inc
+            self.violated("row order", "rows are not sorted by (source_episode, source_step, slot)", bad, split, a, c)
+        known = logs.known(ep)
+        self.violated("source episode", "source episode not in the logs", ~known, split, a, c)
+        if not known.all():
+            c = {k: val[known] for k, val in c.items()}
+            v, s = v[known], s[known]
+            ep, t, slot = c["source_episode"], c["source_step"], c["slot"]
+        if len(ep) == 0:
+            return
+        pos = np.searchsorted(logs.ids, ep)
+        np.add.at(counts, pos, 1)
+        T = logs.lengths[pos]
+        other = np.where(c["hop_episode"] >= 0, c["hop_episode"], c["goal_episode"])
+        T_goal = logs.length_of(other)
+        same_split = np.isin(other, self.members[split])
+        valid = np.ones(len(ep), bool)
+        for rule, message, mask in address_rules(c, T, T_goal, same_split, rc):
+            self.violated(rule, message, mask, split, a, c)
+            valid &= ~mask
+        inside = (t >= 0) & (t < T)
+        if inside.any():
+            idx = np.flatnonzero(inside)
+            achieved, task = logs.achieved_and_task_goal(ep[idx], t[idx])
+            sub = {k: val[idx] for k, val in c.items()}
+            for rule, message, mask in reward_rules(sub, achieved, sub["goal"], rc):
+                full = np.zeros(len(ep), bool)
+                full[idx] = mask
+                self.violated(rule, message, full, split, a, c)
+            orig = sub["strategy"] == ORIGINAL
+            if orig.any():
+                if task is None or task.shape[1] != sub["goal"].shape[1]:
+                    wrong = orig
+                else:
+                    wrong = orig & np.any(sub["goal"] != task.astype(sub["goal"].dtype), axis=1)
+                full = np.zeros(len(ep), bool)
+                full[idx] = wrong
+                self.violated("original", "original: the goal is not the log's task goal of step t", full,
+                              split, a, c)
+        self.laws(c, s, T, T_goal, v, valid, split)
+
+    def laws(self, c, s, T, T_goal, v, valid, split):
+        rc, d = self.rc, self.draws
+        ep, t, j, join = c["source_episode"], c["source_step"], c["goal_step"], c["join_step"]
+        main = np.full(len(s), np.nan)
+        same_p = np.full(len(s), np.nan)
+        for code, name, law in (
+                (FUTURE, "future step", lambda: uniform_law(j, t + 1, T, v[:, 0])),
+                (EPISODE, "episode step", lambda: uniform_law(j, 0, T, v[:, 0])),
+                (GEOMETRIC, "geometric offset", lambda: geometric_law(j - t, T - t, rc.gamma, rc.past_end, v[:, 0])),
+                (NEIGHBOUR, "neighbour join step", lambda: uniform_law(join, t + 1, T, v[:, 0])),
+                (NEAR_MISS, "near_miss join step", lambda: uniform_law(join, t + 1, T, v[:, 0]))):
+            mask = valid & (s == code)
+            if code in rc.weights:
+                rows = law()
+                d.law(name, rows, mask)
+                main[mask] = rows.pit[mask]
+                same_p[mask] = np.broadcast_to(rows.p_same, mask.shape)[mask]
+        mask = valid & (s == OTHER)
+        if OTHER in rc.weights:
+            ids = self.members[split]
+            ge = c["goal_episode"]
+            rank = np.searchsorted(ids, ge) - (ge > ep)
+            rows = uniform_law(rank, 0, max(len(ids) - 2, 0), v[:, 1])
+            d.law("other_episode episode", rows, mask)
+            main[mask] = rows.pit[mask]
+            d.law("other_episode step", uniform_law(j, 0, T_goal, v[:, 2]), mask)
+        # disjoint slot pairs (0, 1), (2, 3), ... of one transition: independent under the recipe
+        slot = c["slot"]
+        paired = (slot[:-1] % 2 == 0) & (slot[1:] == slot[:-1] + 1) & (ep[1:] == ep[:-1]) & (t[1:] == t[:-1])
+        # strategies of every pair (whatever their goals), goal steps of pairs whose rows keep the rules
+        drawn = np.isin(s, list(rc.weights))
+        k = np.flatnonzero(paired & drawn[:-1] & drawn[1:])
+        d.add(d.pairs_same_strategy, s[k] == s[k + 1], np.full(k.size, sum(p * p for p in rc.weights.values())))
+        i = np.flatnonzero(paired & valid[:-1] & valid[1:])
+        if i.size:
+            sa, sb = s[i], s[i + 1]
+            same_law = (sa == sb) & np.isin(sa, (FUTURE, EPISODE, GEOMETRIC))
+            d.add(d.pairs_same_step, same_law & (j[i] == j[i + 1]), same_p[i][same_law])
+            ua, ub = main[i], main[i + 1]
+            both = np.isfinite(ua) & np.isfinite(ub)
+            ga = np.minimum((ua[both] * 10).astype(np.int64), 9)
+            gb = np.minimum((ub[both] * 10).astype(np.int64), 9)
+            np.add.at(d.grid, (ga, gb), 1)
+
+    def checks(self):
+        rc, d = self.rc, self.draws
+        out = []
+        n = int(d.counts.sum())
+        for code, p in rc.weights.items():
+            out.append(binom_check(f"share of {CODE_NAMES[code]}", int(d.counts[code]), n, p,
+                                   f"rows drawing {CODE_NAMES[code]}"))
+        n_val, n_eps = len(self.members["validation"]), len(self.members["train"]) + len(self.members["validation"])
+        out.append(binom_check("split fraction", n_val, n_eps, rc.validation, "validation episodes"))
+        for name in sorted(d.hist):
+            out.append(uniform_chi2_check(f"law of {name}", d.hist[name], f"PIT of the {name}"))
+            for end in ("low", "high"):
+                hit, probs = d.ends[(name, end)]
+                out.append(count_bound_check(f"{name}: {'first' if end == 'low' else 'last'} value of the range",
+                                             hit, list(probs), list(probs.values()), "rows"))
+        for name, (hit, probs), what in (
+                ("slot pairs: same strategy", d.pairs_same_strategy, "pairs of slots (2k, 2k+1) with one strategy"),
+                ("slot pairs: same goal step", d.pairs_same_step, "same-strategy slot pairs with one goal step")):
+            out.append(count_bound_check(name, hit, list(probs), list(probs.values()), what))
+        out.append(grid_chi2_check("slot pairs: independent draws", d.grid, "PIT pairs of slots (2k, 2k+1)"))
+        return [c for c in out if c is not None]
+
+
+def share_power_note(n: int = 100_000, share: float = 0.2, checks: int = 25, alpha: float = ALPHA) -> float:
+    """The shift quoted in the help of ``verify --sample`` (see docs/audit.md)."""
+    return share_power(n, share, alpha / checks)
+
+
+def audit_into(path, report, sample: int | None = None) -> AuditReport:
+    """Run :func:`audit_set` and record its outcome in a verify report.
+
+    Each audit failure becomes a failure of ``report`` (``report.fail``), and the audit's
+    summary goes to ``report.checked["audit"]``.
+    """
+    result = audit_set(path, sample=sample)
+    for message in result.failures:
+        report.fail(f"audit: {message}")
+    report.checked["audit"] = result.as_dict()
+    return result
