@@ -8,7 +8,7 @@ docs/reward.md) a second time, small and separately written, and checks a set ag
   distance -> reached -> reward -> terminal), vectorised over blocks of rows;
 * :mod:`goalkit.audit.laws`: the documented law of each strategy's goal step, as a
   probability-integral transform and end-point probabilities;
-* :mod:`goalkit.audit.tests`: the statistical tests and Holm's step-down control;
+* :mod:`goalkit.audit.stattests`: the statistical tests and Holm's step-down control;
 * :mod:`goalkit.audit.run`: reading a set with h5py and running everything.
 
 Nothing here imports ``goalkit.relabel``, ``goalkit.reward``, ``goalkit.pipeline.chunk`` or
