@@ -36,6 +36,20 @@ class LazyGroup(click.Group):
         module, attr = target.split(":")
         return getattr(importlib.import_module(module), attr)
 
+    def parse_args(self, ctx, args):
+        ctx.meta["goalkit.args"] = list(args)  # kept for "run the same command again" advice
+        return super().parse_args(ctx, args)
+
+    def invoke(self, ctx):
+        """Run the subcommand under the one exit convention (goalkit.cli_support.run_guarded).
+
+        Each command is decorated too; this covers what happens around it (loading the command's
+        module, an interruption before the command starts).
+        """
+        from goalkit.cli_support import run_guarded
+
+        return run_guarded(super().invoke, ctx)
+
     def format_commands(self, ctx, formatter):
         rows = [(name, help_) for name, (_, help_) in COMMANDS.items()]
         with formatter.section("Commands"):
@@ -44,12 +58,17 @@ class LazyGroup(click.Group):
 
 @click.group(cls=LazyGroup, context_settings={"help_option_names": ["-h", "--help"], "show_default": True})
 @click.version_option(__version__, prog_name="goalkit")
-@click.option("--debug", is_flag=True, help="Show full tracebacks instead of one-line errors.")
+@click.option("--debug", is_flag=True,
+              help="Also print the traceback before an error's one line (the exit status is the same).")
 @click.pass_context
 def main(ctx, debug):
     """goalkit: turn existing task logs into goal-conditioned training sets.
 
     Typical flow: scan the logs, write a recipe, build, verify.
+
+    Exit status, every command: 0 success; 1 verify found the set inconsistent; 2 bad input or a
+    refused output (one line on stderr); 3 internal error (a bug; rerun with --debug and report
+    it); 130 interrupted (Ctrl-C; one line says what was kept).
     """
     ctx.ensure_object(dict)
     ctx.obj["debug"] = debug

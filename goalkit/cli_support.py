@@ -11,8 +11,23 @@ import numpy as np
 
 from goalkit.errors import GoalkitError
 
-#: Exit status for bad input (a GoalkitError).
+#: Exit statuses, the same for every command (docs/cli.md).
+EXIT_OK = 0
+#: ``verify`` only: the set was checked and found wanting.
+EXIT_FOUND_WANTING = 1
+#: Bad input (a GoalkitError, an unreadable or unwritable file) or a refused output; click's own
+#: usage errors (unknown option, bad option value) also exit 2.
 EXIT_BAD_INPUT = 2
+#: An unexpected exception: a bug in goalkit.
+EXIT_INTERNAL = 3
+#: Interrupted (SIGINT, Ctrl-C): 128 + 2, as shells report a death by SIGINT.
+EXIT_INTERRUPTED = 130
+
+#: Help text of every command's ``--quiet`` (one convention for all commands).
+QUIET_HELP = ("No progress bar and no report on stdout; warnings and errors still go to stderr, "
+              "and --json output is still printed.")
+
+_NOTE_KEY = "goalkit.interrupt_note"
 
 
 def debug_enabled() -> bool:
@@ -25,21 +40,108 @@ def debug_enabled() -> bool:
     return False
 
 
-def user_errors(func):
-    """Decorate a click command: a GoalkitError becomes one line on stderr and exit status 2.
+def quiet_option(func):
+    """The ``--quiet`` flag, with the same meaning and help text in every command."""
+    return click.option("--quiet", is_flag=True, help=QUIET_HELP)(func)
 
-    With ``goalkit --debug`` the traceback is shown instead.
+
+def warn(text: str) -> None:
+    """One warning line on stderr (shown with ``--quiet`` too)."""
+    click.echo(f"goalkit: warning: {text}", err=True)
+
+
+def on_interrupt(note) -> None:
+    """Say what an interruption of the running command leaves behind.
+
+    Parameters
+    ----------
+    note : str or callable
+        The text after ``"goalkit: interrupted; "`` (e.g. ``"nothing was written at OUT"``), or a
+        function returning it, called when the interruption happens (so it can count what was
+        kept). The default is ``"nothing was written"``.
     """
+    ctx = click.get_current_context(silent=True)
+    if ctx is not None:
+        ctx.meta[_NOTE_KEY] = note
+
+
+def command_line() -> str:
+    """The command as the user typed it after ``goalkit`` (for "run it again" advice)."""
+    import shlex
+
+    ctx = click.get_current_context(silent=True)
+    args = ctx.meta.get("goalkit.args") if ctx is not None else None
+    if args is None:
+        args = sys.argv[1:]
+    return shlex.join(["goalkit", *map(str, args)])
+
+
+def _interrupt_note() -> str:
+    ctx = click.get_current_context(silent=True)
+    note = ctx.meta.get(_NOTE_KEY) if ctx is not None else None
+    if callable(note):
+        try:
+            note = note()
+        except Exception:  # the note must never hide the interruption itself
+            note = None
+    return note or "nothing was written"
+
+
+def _one_line(text: str) -> str:
+    return " ".join(str(text).split())
+
+
+def _leave(status: int, line: str, exc: BaseException) -> None:
+    """Print the traceback (only with --debug), then the one line, then exit with ``status``."""
+    if debug_enabled():
+        import traceback
+
+        sys.stdout.flush()
+        traceback.print_exception(exc, file=sys.stderr)
+    click.echo(line, err=True)
+    sys.exit(status)
+
+
+def run_guarded(func, *args, **kwargs):
+    """Run ``func`` under the one exit convention of every command (see docs/cli.md).
+
+    - :class:`~goalkit.errors.GoalkitError`: ``goalkit: error: ...`` and exit 2.
+    - ``OSError`` naming a file (unreadable input, unwritable output): the same, exit 2.
+    - ``KeyboardInterrupt`` (SIGINT) or ``click.Abort``: ``goalkit: interrupted; <what was kept>``
+      (see :func:`on_interrupt`) and exit 130.
+    - any other exception is a bug: ``goalkit: internal error: ...`` and exit 3.
+
+    Each is one line on stderr; ``goalkit --debug`` prints the traceback before that line and
+    never changes the exit status. click's own exits and usage errors pass through unchanged.
+    """
+    try:
+        return func(*args, **kwargs)
+    except (SystemExit, click.exceptions.Exit, click.ClickException):
+        raise
+    except GoalkitError as exc:
+        _leave(EXIT_BAD_INPUT, f"goalkit: error: {_one_line(exc)}", exc)
+    except (KeyboardInterrupt, click.Abort) as exc:
+        _leave(EXIT_INTERRUPTED, f"goalkit: interrupted; {_one_line(_interrupt_note())}", exc)
+    except OSError as exc:
+        if exc.filename is None:
+            _leave(EXIT_INTERNAL, _internal_line(exc), exc)
+        _leave(EXIT_BAD_INPUT, f"goalkit: error: {exc.filename}: {_one_line(exc.strerror or exc)}", exc)
+    except Exception as exc:  # a bug: say so, and how to get the details
+        _leave(EXIT_INTERNAL, _internal_line(exc), exc)
+
+
+def _internal_line(exc: BaseException) -> str:
+    hint = "" if debug_enabled() else "rerun with goalkit --debug for the traceback and "
+    return (f"goalkit: internal error: {type(exc).__name__}: {_one_line(exc)[:300]} "
+            f"(a bug in goalkit: {hint}please report it)")
+
+
+def user_errors(func):
+    """Decorate a click command with the exit convention of :func:`run_guarded`."""
 
     @functools.wraps(func)
     def wrapper(*args, **kwargs):
-        try:
-            return func(*args, **kwargs)
-        except GoalkitError as exc:
-            if debug_enabled():
-                raise
-            click.echo(f"goalkit: error: {exc}", err=True)
-            sys.exit(EXIT_BAD_INPUT)
+        return run_guarded(func, *args, **kwargs)
 
     return wrapper
 
