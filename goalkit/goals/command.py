@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import click
 
-from goalkit.cli_support import echo_json, progress, user_errors
+from goalkit.cli_support import echo_json, on_interrupt, progress, quiet_option, user_errors
 
 METHOD_NAMES = ("raw", "standardised", "pca", "sfa", "precomputed")
 
@@ -77,7 +77,7 @@ def format_summary(s: dict) -> str:
 @click.option("-o", "--output", type=click.Path(dir_okay=False), required=True,
               help="Embedding file to write (.npz).")
 @click.option("--json", "as_json", is_flag=True, help="Print the summary as one JSON object.")
-@click.option("--quiet", is_flag=True, help="No progress bar and no summary.")
+@quiet_option
 @user_errors
 def embed(logs, layout, method, dims, input_, fields, degree, whiten, block, values, chunk_steps, output,
           as_json, quiet):
@@ -91,6 +91,7 @@ def embed(logs, layout, method, dims, input_, fields, degree, whiten, block, val
     from goalkit.goals.fitlogs import fit_on_logs, precomputed_on_logs
     from goalkit.logs import open_logs
 
+    on_interrupt(f"nothing was written at {output}")
     names = [f.strip() for f in fields.split(",") if f.strip()] if fields else []
     if method == "precomputed":
         if values is None:

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import click
 
-from goalkit.cli_support import ChunkProgress, echo_json, user_errors
+from goalkit.cli_support import ChunkProgress, echo_json, on_interrupt, quiet_option, user_errors, warn
 from goalkit.tune.session import CHUNK_TRANSITIONS, MAX_TRANSITIONS
 
 
@@ -30,7 +30,7 @@ from goalkit.tune.session import CHUNK_TRANSITIONS, MAX_TRANSITIONS
 @click.option("--max-transitions", type=int, default=MAX_TRANSITIONS,
               help="Read at most this many transitions: whole episodes, a fixed sample by seed.")
 @click.option("--json", "as_json", is_flag=True, help="Print the result as one JSON object.")
-@click.option("--quiet", is_flag=True, help="No progress bar.")
+@quiet_option
 @user_errors
 def tune(recipe, labels, from_success, distances, chooser, target, resamples, plots, write_recipe,
          max_transitions, as_json, quiet):
@@ -53,6 +53,8 @@ def tune(recipe, labels, from_success, distances, chooser, target, resamples, pl
         raise TuningError("writing a tuned recipe needs labels (--labels FILE or --from-success); "
                           "without labels tune only suggests a range", key="--write-recipe")
     parsed = load_recipe(recipe)
+    if plots:
+        on_interrupt(f"plots already written in {plots} are kept; no tuned recipe was written")
     with ChunkProgress("tune", quiet=quiet) as bar:
         result = tune_recipe(parsed, labels=labels, from_success=from_success, distances=distances,
                              chooser=chooser, target=target, n_resamples=resamples,
@@ -74,6 +76,10 @@ def tune(recipe, labels, from_success, distances, chooser, target, resamples, pl
                                  "changes": list(edit.changes)}
     if as_json:
         echo_json(out)
+        return
+    if quiet:
+        for w in out.get("warnings", []):
+            warn(w)
         return
     click.echo(render(out))
     if out["plots"]:

@@ -355,7 +355,7 @@ class SetWriter:
             self._hasher.shutdown(wait=True, cancel_futures=True)
             self.file.close()
         except (OSError, RuntimeError):
-            _close_ids_of(self.tmp)  # a file whose writes failed may not close cleanly: drop its ids
+            pass  # a file whose writes failed may not close cleanly; it is removed below either way
         finally:
             self.tmp.unlink(missing_ok=True)
 
@@ -366,23 +366,6 @@ class SetWriter:
         if exc_type is not None:
             self.abort()
         return False
-
-
-def _close_ids_of(path: Path) -> None:
-    """Close every HDF5 id still open on ``path`` (after a failed write HDF5 may keep the file
-    open; left open, the library's own clean-up at interpreter exit fails on it)."""
-    want = os.path.abspath(path)
-    for fid in h5py.h5f.get_obj_ids(types=h5py.h5f.OBJ_FILE):
-        try:
-            if os.path.abspath(fid.name.decode()) != want:
-                continue
-            for oid in h5py.h5f.get_obj_ids(fid, types=h5py.h5f.OBJ_ALL & ~h5py.h5f.OBJ_FILE):
-                if oid.valid:
-                    oid.close()
-            if fid.valid:
-                fid.close()
-        except (OSError, RuntimeError, ValueError):
-            pass
 
 
 def _attr(value):
