@@ -65,15 +65,21 @@ def on_interrupt(note) -> None:
         ctx.meta[_NOTE_KEY] = note
 
 
-def command_line() -> str:
-    """The command as the user typed it after ``goalkit`` (for "run it again" advice)."""
+def command_line(drop=()) -> str:
+    """The command as the user typed it after ``goalkit`` (for "run it again" advice).
+
+    Parameters
+    ----------
+    drop : sequence of str
+        Flags to leave out (e.g. ``--restart``, which would discard what is to be resumed).
+    """
     import shlex
 
     ctx = click.get_current_context(silent=True)
     args = ctx.meta.get("goalkit.args") if ctx is not None else None
     if args is None:
         args = sys.argv[1:]
-    return shlex.join(["goalkit", *map(str, args)])
+    return shlex.join(["goalkit", *(str(a) for a in args if str(a) not in drop)])
 
 
 def _interrupt_note() -> str:
@@ -102,6 +108,32 @@ def _leave(status: int, line: str, exc: BaseException) -> None:
     sys.exit(status)
 
 
+#: Set when Python swallowed a KeyboardInterrupt (raised inside a weakref callback or __del__,
+#: where an exception is "ignored"); the next progress step raises it again.
+_SWALLOWED: list = []
+
+
+def check_interrupt() -> None:
+    """Raise KeyboardInterrupt if a Ctrl-C was swallowed since the last check.
+
+    Python cannot raise an exception out of a weakref callback or ``__del__``; a SIGINT that
+    lands there (h5py frees such objects all the time) would be printed as "Exception ignored"
+    and lost. :func:`run_guarded` records it instead, and every progress step calls this.
+    """
+    if _SWALLOWED:
+        _SWALLOWED.clear()
+        raise KeyboardInterrupt
+
+
+def _watch_swallowed(previous):
+    def hook(unraisable):
+        if isinstance(unraisable.exc_value, KeyboardInterrupt):
+            _SWALLOWED.append(True)
+            return
+        previous(unraisable)
+    return hook
+
+
 def run_guarded(func, *args, **kwargs):
     """Run ``func`` under the one exit convention of every command (see docs/cli.md).
 
@@ -114,6 +146,8 @@ def run_guarded(func, *args, **kwargs):
     Each is one line on stderr; ``goalkit --debug`` prints the traceback before that line and
     never changes the exit status. click's own exits and usage errors pass through unchanged.
     """
+    previous_hook = sys.unraisablehook
+    sys.unraisablehook = _watch_swallowed(previous_hook)
     try:
         return func(*args, **kwargs)
     except (SystemExit, click.exceptions.Exit, click.ClickException):
@@ -128,6 +162,8 @@ def run_guarded(func, *args, **kwargs):
         _leave(EXIT_BAD_INPUT, f"goalkit: error: {exc.filename}: {_one_line(exc.strerror or exc)}", exc)
     except Exception as exc:  # a bug: say so, and how to get the details
         _leave(EXIT_INTERNAL, _internal_line(exc), exc)
+    finally:
+        sys.unraisablehook = previous_hook
 
 
 def _internal_line(exc: BaseException) -> str:
@@ -167,7 +203,13 @@ def progress(total: int, desc: str, quiet: bool = False, unit: str = "step"):
     disable = quiet or not sys.stderr.isatty()
     # a terminal that reports no size (a fresh pseudo-terminal) would get no bar at all
     size = shutil.get_terminal_size((80, 24))
-    return tqdm(total=total, desc=desc, unit=unit, unit_scale=True, disable=disable,
+
+    class Bar(tqdm):
+        def update(self, n=1):
+            check_interrupt()
+            return super().update(n)
+
+    return Bar(total=total, desc=desc, unit=unit, unit_scale=True, disable=disable,
                 file=sys.stderr, leave=False, ncols=size.columns, nrows=size.lines)
 
 
@@ -206,6 +248,7 @@ class ChunkProgress:
         self.bar = None
 
     def __call__(self, done: int, total: int) -> None:
+        check_interrupt()
         if self.bar is None:
             self.bar = progress(total=total, desc=self.desc, quiet=self.quiet, unit=self.unit)
         self.bar.update(done)

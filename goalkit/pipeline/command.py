@@ -87,4 +87,4 @@ def interrupted_note(output, sharded: bool) -> str:
     folder = folder_of(output)
     kept = len(list(folder.glob("shard-*.npz"))) if folder.is_dir() else 0
     return (f"nothing was written at {output}; {kept} finished shard{'' if kept == 1 else 's'} kept in "
-            f"{folder}/; run the same command again to resume: {command_line()}")
+            f"{folder}/; run this to resume: {command_line(drop=('--restart',))}")
