@@ -36,6 +36,29 @@ class LazyGroup(click.Group):
         module, attr = target.split(":")
         return getattr(importlib.import_module(module), attr)
 
+    def main(self, args=None, prog_name=None, complete_var=None, standalone_mode=True, **extra):
+        """click's main, with its usage errors on one line like every other error (exit 2)."""
+        if not standalone_mode:
+            return super().main(args, prog_name, complete_var, standalone_mode=False, **extra)
+        import sys
+
+        from goalkit.cli_support import EXIT_INTERRUPTED
+
+        try:
+            rv = super().main(args, prog_name, complete_var, standalone_mode=False, **extra)
+        except click.exceptions.NoArgsIsHelpError as exc:
+            exc.show()  # `goalkit` alone: the help text
+            sys.exit(exc.exit_code)
+        except click.ClickException as exc:
+            ctx = getattr(exc, "ctx", None)
+            where = f" ({ctx.command_path} --help lists the options)" if ctx is not None else ""
+            click.echo(f"goalkit: error: {' '.join(exc.format_message().split())}{where}", err=True)
+            sys.exit(exc.exit_code)
+        except click.Abort:  # Ctrl-C before a command started
+            click.echo("goalkit: interrupted; nothing was written", err=True)
+            sys.exit(EXIT_INTERRUPTED)
+        sys.exit(rv if isinstance(rv, int) else 0)
+
     def parse_args(self, ctx, args):
         ctx.meta["goalkit.args"] = list(args)  # kept for "run the same command again" advice
         return super().parse_args(ctx, args)
