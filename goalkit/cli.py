@@ -51,7 +51,8 @@ class LazyGroup(click.Group):
             sys.exit(exc.exit_code)
         except click.ClickException as exc:
             ctx = getattr(exc, "ctx", None)
-            where = f" ({ctx.command_path} --help lists the options)" if ctx is not None else ""
+            path = " ".join(["goalkit", *ctx.command_path.split()[1:]]) if ctx is not None else ""
+            where = f" ({path} --help lists the options)" if ctx is not None else ""
             click.echo(f"goalkit: error: {' '.join(exc.format_message().split())}{where}", err=True)
             sys.exit(exc.exit_code)
         except click.Abort:  # Ctrl-C before a command started
