@@ -318,7 +318,7 @@ def random_cases(seed: int, n: int):
 
 def generate(seed: int = 0) -> list[Case]:
     """The whole corpus (deterministic for a seed); names are unique."""
-    cases = [*recipe_cases(), *layout_cases(), *option_cases(), *verify_cases(), *random_cases(seed, 60)]
+    cases = [*recipe_cases(), *layout_cases(), *option_cases(), *verify_cases(), *random_cases(seed, 120)]
     names = [c.name for c in cases]
     dupes = {n for n in names if names.count(n) > 1}
     assert not dupes, dupes
