@@ -54,7 +54,7 @@ def tune(recipe, labels, from_success, distances, chooser, target, resamples, pl
                           "without labels tune only suggests a range", key="--write-recipe")
     parsed = load_recipe(recipe)
     if plots:
-        on_interrupt(f"plots already written in {plots} are kept; no tuned recipe was written")
+        on_interrupt(f"no tuned recipe was written; plots already written in {plots}, if any, are kept")
     with ChunkProgress("tune", quiet=quiet) as bar:
         result = tune_recipe(parsed, labels=labels, from_success=from_success, distances=distances,
                              chooser=chooser, target=target, n_resamples=resamples,

@@ -87,7 +87,7 @@ def test_worker_build_keeps_its_shards_and_the_printed_command_resumes(big, tmp_
     out = tmp_path / "goals.h5"
     folder = tmp_path / ".goals.h5.shards"
     args = ["build", str(big / "gantry-recipe.toml"), "--out", str(out), "--workers", "2", "--chunk-rows", "20000"]
-    proc = start(args, tmp_path)
+    proc = start([*args, "--restart"], tmp_path)  # the advice must leave --restart out: it discards shards
     code, _, err = interrupt_when(proc, lambda: len(list(folder.glob("shard-*.npz"))) >= 2)
     assert code == 130, err
     line = one_line(err)
