@@ -106,6 +106,10 @@ def embed(logs, layout, method, dims, input_, fields, degree, whiten, block, val
         raise EmbeddingError("--fields selects observation columns; it does not apply to --input frame",
                              key="--fields")
     source = open_logs(logs, layout)
+    unknown = [n for n in names if n not in source.fields]
+    if unknown:
+        raise EmbeddingError(f"goal field '{unknown[0]}' is not an observation field of the logs; fields are: "
+                             f"{', '.join(source.fields) or '(none: the layout names no fields)'}", key="--fields")
     if method == "precomputed":
         try:
             arr = np.load(values, allow_pickle=False, mmap_mode="r")

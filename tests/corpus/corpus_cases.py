@@ -217,10 +217,12 @@ def option_cases():
     for opts in (["--method", "bogus"], ["--method", "pca", "--dims", "0"], ["--method", "raw", "--dims", "2"],
                  ["--method", "pca", "--degree", "2"], ["--method", "precomputed"],
                  ["--method", "precomputed", "--values", "{dir}/garbage.npz"], ["--method", "raw", "--block", "0"],
-                 ["--method", "raw", "--fields", "nope"], ["--method", "raw", "--input", "frame"],
+ ["--method", "raw", "--input", "frame"],
                  ["--method", "raw", "--chunk-steps", "0"]):
         yield Case(f"embed:option {' '.join(opts)}", ("embed", logs, "--layout", "{base}/gantry-layout.toml", *opts,
                                                       "-o", "{dir}/e.npz"), files=dict(PROPS))
+    yield Case("embed:option --fields nope", ("embed", logs, "--layout", "{base}/gantry-layout.toml", "--method", "raw",
+                                              "--fields", "nope", "-o", "{dir}/e.npz"), contains="key --fields: goal field 'nope'")
     yield Case("embed:output-is-folder", ("embed", logs, "--method", "raw", "-o", "{dir}/folder"), files=dict(PROPS))
     yield Case("embed:values-device", ("embed", logs, "--method", "precomputed", "--values", "/dev/zero",
                                        "-o", "{dir}/e.npz"), subprocess=True, seconds=60.0)
