@@ -142,28 +142,49 @@ def run_guarded(func, *args, **kwargs):
     - ``KeyboardInterrupt`` (SIGINT) or ``click.Abort``: ``goalkit: interrupted; <what was kept>``
       (see :func:`on_interrupt`) and exit 130.
     - any other exception is a bug: ``goalkit: internal error: ...`` and exit 3.
+    - after a SIGINT, any exception counts as the interruption (130): a library may turn the
+      KeyboardInterrupt into an error of its own (dask.distributed does).
 
     Each is one line on stderr; ``goalkit --debug`` prints the traceback before that line and
     never changes the exit status. click's own exits and usage errors pass through unchanged.
     """
+    import signal
+    import threading
+
     previous_hook = sys.unraisablehook
     sys.unraisablehook = _watch_swallowed(previous_hook)
+    seen = []  # a SIGINT arrived: whatever a library turned it into, the command was interrupted
+
+    def on_sigint(signum, frame):
+        seen.append(signum)
+        signal.default_int_handler(signum, frame)
+
+    main_thread = threading.current_thread() is threading.main_thread()
+    previous_handler = signal.signal(signal.SIGINT, on_sigint) if main_thread else None
     try:
         return func(*args, **kwargs)
     except (SystemExit, click.exceptions.Exit, click.ClickException):
         raise
-    except GoalkitError as exc:
-        _leave(EXIT_BAD_INPUT, f"goalkit: error: {_one_line(exc)}", exc)
+    except Exception as exc:
+        if not seen:
+            _classify(exc)
+        # e.g. dask.distributed can turn the KeyboardInterrupt into an error of its own
+        _leave(EXIT_INTERRUPTED, f"goalkit: interrupted; {_one_line(_interrupt_note())}", exc)
     except (KeyboardInterrupt, click.Abort) as exc:
         _leave(EXIT_INTERRUPTED, f"goalkit: interrupted; {_one_line(_interrupt_note())}", exc)
-    except OSError as exc:
-        if exc.filename is None:
-            _leave(EXIT_INTERNAL, _internal_line(exc), exc)
-        _leave(EXIT_BAD_INPUT, f"goalkit: error: {exc.filename}: {_one_line(exc.strerror or exc)}", exc)
-    except Exception as exc:  # a bug: say so, and how to get the details
-        _leave(EXIT_INTERNAL, _internal_line(exc), exc)
     finally:
         sys.unraisablehook = previous_hook
+        if main_thread:
+            signal.signal(signal.SIGINT, previous_handler)
+
+
+def _classify(exc: Exception) -> None:
+    """Leave with the status and line of a non-interrupt exception (see :func:`run_guarded`)."""
+    if isinstance(exc, GoalkitError):
+        _leave(EXIT_BAD_INPUT, f"goalkit: error: {_one_line(exc)}", exc)
+    if isinstance(exc, OSError) and exc.filename is not None:
+        _leave(EXIT_BAD_INPUT, f"goalkit: error: {exc.filename}: {_one_line(exc.strerror or exc)}", exc)
+    _leave(EXIT_INTERNAL, _internal_line(exc), exc)  # a bug: say so, and how to get the details
 
 
 def _internal_line(exc: BaseException) -> str:

@@ -60,7 +60,8 @@ def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, as_json, q
     if workers and scheduler is not None:
         raise GoalkitError("give --workers or --scheduler, not both", key="--scheduler")
     parsed = load_recipe(recipe).with_overrides(seed=seed, out=out)
-    on_interrupt(lambda: interrupted_note(parsed.output.path, sharded=bool(workers or scheduler)))
+    on_interrupt(lambda: interrupted_note(parsed.output.path, sharded=bool(workers or scheduler),
+                                          cluster=scheduler is not None))
     with ChunkProgress("build", quiet=quiet) as bar:
         result = run_build(parsed, max_rows_per_chunk=chunk_rows, progress=bar, workers=workers,
                            scheduler=scheduler, fresh=restart)
@@ -78,13 +79,20 @@ def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, as_json, q
                        f"{s['computed']} computed on {s['runner']})")
 
 
-def interrupted_note(output, sharded: bool) -> str:
-    """What an interrupted build leaves: nothing at the output; with shards, the finished ones."""
+def interrupted_note(output, sharded: bool, cluster: bool = False) -> str:
+    """What an interrupted build leaves: nothing at the output; with shards, the finished ones.
+
+    Local workers have finished or dropped their shards when this is asked; tasks already
+    running on a Dask cluster may still add shard files afterwards, so the count is a floor.
+    """
     from goalkit.pipeline.buildfolder import folder_of
 
     if not sharded:
         return f"nothing was written at {output}"
     folder = folder_of(output)
     kept = len(list(folder.glob("shard-*.npz"))) if folder.is_dir() else 0
+    if not kept and not cluster:
+        return f"nothing was written at {output}, and no shard had finished"
+    more = " (tasks still running on the cluster may add more)" if cluster else ""
     return (f"nothing was written at {output}; {kept} finished shard{'' if kept == 1 else 's'} kept in "
-            f"{folder}/; run this to resume: {command_line(drop=('--restart',))}")
+            f"{folder}/{more}; run this to resume: {command_line(drop=('--restart',))}")
