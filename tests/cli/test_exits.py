@@ -149,3 +149,46 @@ def test_verify_quiet_failure_is_one_stderr_line(demo, tmp_path):
     assert res.exit_code == 1 and res.stdout == ""
     line, = res.stderr.strip().splitlines()
     assert line.startswith(f"goalkit: NOT consistent: {bad} (") and "run without --quiet" in line
+
+
+# ---- interruptions that libraries hide ------------------------------------------------------------
+class _InterruptedWhileFreed:
+    def __del__(self):
+        raise KeyboardInterrupt  # where a SIGINT can land; Python prints "Exception ignored" and goes on
+
+
+@click.command()
+@user_errors
+def _swallowing():
+    """Work during which Python swallows a Ctrl-C, then a progress step."""
+    from goalkit.cli_support import ChunkProgress
+
+    obj = _InterruptedWhileFreed()
+    del obj
+    with ChunkProgress("work", quiet=True) as bar:
+        bar(1, 10)
+    click.echo("finished")
+
+
+@click.command()
+@user_errors
+def _converting():
+    """A library that turns the KeyboardInterrupt of a real SIGINT into an error of its own."""
+    import signal
+
+    try:
+        signal.raise_signal(signal.SIGINT)
+    except KeyboardInterrupt:
+        raise ValueError("No clients found") from None
+
+
+def test_a_swallowed_ctrl_c_is_raised_at_the_next_progress_step():
+    res = CliRunner().invoke(_swallowing, [])
+    assert res.exit_code == 130 and res.stdout == ""
+    assert res.stderr.strip().splitlines() == ["goalkit: interrupted; nothing was written"]
+
+
+def test_an_error_after_a_sigint_counts_as_the_interruption():
+    res = CliRunner().invoke(_converting, [])
+    assert res.exit_code == 130
+    assert res.stderr.strip().splitlines() == ["goalkit: interrupted; nothing was written"]
