@@ -30,14 +30,45 @@ def load_toml(path, error=GoalkitError) -> dict:
     dict
         The parsed document.
     """
+    return parse_toml(read_text_file(path, error), path, error)
+
+
+#: Largest TOML file read (recipes and layouts are a few kB; this bounds what a wrong path costs).
+MAX_TOML_BYTES = 1 << 20
+
+
+def read_text_file(path, error=GoalkitError, limit: int = MAX_TOML_BYTES) -> str:
+    """Read a small UTF-8 text file, refusing folders, devices, pipes and files over ``limit``.
+
+    Every failure is a one-line ``error`` naming the file; a device such as ``/dev/zero`` is
+    refused before it is read, so a wrong path can neither hang nor fill memory.
+    """
+    import stat
+
     path = Path(path)
     try:
-        text = path.read_text(encoding="utf-8")
+        info = path.stat()
     except FileNotFoundError:
         raise error("file not found", file=path) from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise error(f"cannot read as UTF-8 text ({exc})", file=path) from None
-    return parse_toml(text, path, error)
+    except OSError as exc:
+        raise error(f"cannot read ({exc.strerror or exc})", file=path) from None
+    if stat.S_ISDIR(info.st_mode):
+        raise error("expected a file, got a folder", file=path)
+    if not stat.S_ISREG(info.st_mode):
+        raise error("expected a regular file, got a device, pipe or socket", file=path)
+    if info.st_size > limit:
+        raise error(f"expected a text file of at most {limit:,} bytes, got {info.st_size:,}", file=path)
+    try:
+        with open(path, "rb") as fh:
+            data = fh.read(limit + 1)
+    except OSError as exc:
+        raise error(f"cannot read ({exc.strerror or exc})", file=path) from None
+    if len(data) > limit:
+        raise error(f"expected a text file of at most {limit:,} bytes", file=path)
+    try:
+        return data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise error(f"cannot read as UTF-8 text (byte {exc.start}: {exc.reason})", file=path) from None
 
 
 def parse_toml(text: str, path, error=GoalkitError) -> dict:

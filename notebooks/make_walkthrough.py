@@ -101,9 +101,9 @@ assert load_recipe(tuned_path).reward.threshold == tuned.recipe_threshold()"""),
 each (transition, goal) row with the tuned rule; `goalkit verify` re-derives every row from the
 logs and checks the stored checksums."""),
     ("code", """dataset = work / "gantry-goals-tuned.h5"
-res = goalkit("build", tuned_path, "--out", dataset, "--quiet")
+res = goalkit("build", tuned_path, "--out", dataset)
 assert res.returncode == 0
-res = goalkit("verify", dataset, "--quiet")
+res = goalkit("verify", dataset)
 assert res.returncode == 0, "verify found a problem\""""),
     ("md", """## 4. Read batches
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import click
 
-from goalkit.cli_support import echo_json, progress, user_errors
+from goalkit.cli_support import echo_json, on_interrupt, progress, quiet_option, user_errors
 from goalkit.demo.files import write_demo
 
 
@@ -17,7 +17,7 @@ from goalkit.demo.files import write_demo
 @click.option("--replace", is_flag=True,
               help="Replace the demo's files in DIR if they exist (only demo logs, layout and recipe "
                    "files; without this option existing files are refused).")
-@click.option("--quiet", is_flag=True, help="No progress bar and no summary.")
+@quiet_option
 @click.option("--json", "as_json", is_flag=True, help="Print what was written as one JSON object.")
 @user_errors
 def demo(directory, episodes, seed, frames, replace, quiet, as_json):
@@ -26,6 +26,8 @@ def demo(directory, episodes, seed, frames, replace, quiet, as_json):
     Writes DIR/gantry-logs.h5 (HDF5, one group per episode), DIR/gantry-layout.toml and
     DIR/gantry-recipe.toml (a ready recipe whose output is DIR/gantry-goals.h5).
     """
+    on_interrupt(f"each file in {directory} is written whole or not at all; run the same command again "
+                 f"to write them all")
     with progress(episodes, "demo", quiet=quiet or as_json, unit="episode") as bar:
         report = write_demo(directory, episodes=episodes, seed=seed, frames=frames, advance=bar.update,
                             replace=replace)

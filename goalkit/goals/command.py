@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import click
 
-from goalkit.cli_support import echo_json, progress, user_errors
+from goalkit.cli_support import echo_json, on_interrupt, progress, quiet_option, user_errors
 
 METHOD_NAMES = ("raw", "standardised", "pca", "sfa", "precomputed")
 
@@ -80,7 +80,7 @@ def format_summary(s: dict) -> str:
               help="Replace an existing embedding file at OUTPUT (only a goalkit embedding file is ever "
                    "replaced; without this option an existing file is refused).")
 @click.option("--json", "as_json", is_flag=True, help="Print the summary as one JSON object.")
-@click.option("--quiet", is_flag=True, help="No progress bar and no summary.")
+@quiet_option
 @user_errors
 def embed(logs, layout, method, dims, input_, fields, degree, whiten, block, values, chunk_steps, output,
           replace, as_json, quiet):
@@ -100,6 +100,7 @@ def embed(logs, layout, method, dims, input_, fields, degree, whiten, block, val
     check_no_overlap([("logs", logs), ("layout", layout), ("values", values)], [("--output", output)])
     refuse_existing(output, replace=replace, ours=is_embedding_file, what="embedding file")
 
+    on_interrupt(f"nothing was written at {output}")
     names = [f.strip() for f in fields.split(",") if f.strip()] if fields else []
     if method == "precomputed":
         if values is None:
@@ -114,6 +115,10 @@ def embed(logs, layout, method, dims, input_, fields, degree, whiten, block, val
         raise EmbeddingError("--fields selects observation columns; it does not apply to --input frame",
                              key="--fields")
     source = open_logs(logs, layout)
+    unknown = [n for n in names if n not in source.fields]
+    if unknown:
+        raise EmbeddingError(f"goal field '{unknown[0]}' is not an observation field of the logs; fields are: "
+                             f"{', '.join(source.fields) or '(none: the layout names no fields)'}", key="--fields")
     if method == "precomputed":
         try:
             arr = np.load(values, allow_pickle=False, mmap_mode="r")

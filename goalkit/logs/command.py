@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import click
 
-from goalkit.cli_support import echo_json, progress, user_errors
+from goalkit.cli_support import echo_json, progress, quiet_option, user_errors
 from goalkit.errors import LogError
 
 
@@ -74,7 +74,7 @@ def _table(header, rows) -> list[str]:
               help="Skip episodes with problems (listed in the report) instead of stopping.")
 @click.option("--chunk", "chunk", type=click.IntRange(min=1), default=200_000,
               help="Transitions read per chunk.")
-@click.option("--quiet", is_flag=True, help="No progress bar, and no report unless --json.")
+@quiet_option
 @user_errors
 def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, quiet, replace):
     """Check the task logs LOGS and summarise them; propose a layout when none is given.

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import click
 
-from goalkit.cli_support import ChunkProgress, echo_json, user_errors
+from goalkit.cli_support import ChunkProgress, command_line, echo_json, on_interrupt, quiet_option, user_errors, warn
 from goalkit.errors import GoalkitError
 
 
@@ -47,7 +47,7 @@ def format_summary(path, summary: dict) -> str:
               help="Replace an existing dataset at the output path. Only a goalkit set is ever replaced; "
                    "without this option an existing output is refused.")
 @click.option("--json", "as_json", is_flag=True, help="Print the summary as one JSON object.")
-@click.option("--quiet", is_flag=True, help="No progress bar.")
+@quiet_option
 @user_errors
 def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, replace, as_json, quiet):
     """Build the goal-conditioned dataset that RECIPE describes.
@@ -64,16 +64,17 @@ def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, replace, a
     if workers and scheduler is not None:
         raise GoalkitError("give --workers or --scheduler, not both", key="--scheduler")
     parsed = load_recipe(recipe).with_overrides(seed=seed, out=out)
+    on_interrupt(lambda: interrupted_note(parsed.output.path, sharded=bool(workers or scheduler),
+                                          cluster=scheduler is not None))
     with ChunkProgress("build", quiet=quiet) as bar:
-        try:
-            result = run_build(parsed, max_rows_per_chunk=chunk_rows, progress=bar, workers=workers,
-                               scheduler=scheduler, fresh=restart, replace=replace)
-        except GoalkitError as exc:
-            _exit_if_hdf5_wedged(exc)
-            raise
+        result = run_build(parsed, max_rows_per_chunk=chunk_rows, progress=bar, workers=workers,
+                           scheduler=scheduler, fresh=restart, replace=replace)
     extra = {"shards": result.shards} if result.shards is not None else {}
     if as_json:
         echo_json({"path": str(result.path), **result.summary, **extra})
+    elif quiet:
+        for w in result.summary.get("warnings", []):
+            warn(w)
     else:
         click.echo(format_summary(result.path, result.summary))
         if result.shards is not None:
@@ -82,27 +83,20 @@ def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, replace, a
                        f"{s['computed']} computed on {s['runner']})")
 
 
-def _exit_if_hdf5_wedged(exc) -> None:
-    """Exit now (status 2) when a failed write left an HDF5 file the library cannot close.
+def interrupted_note(output, sharded: bool, cluster: bool = False) -> str:
+    """What an interrupted build leaves: nothing at the output; with shards, the finished ones.
 
-    After a write fails (disk full, file size limit) HDF5 cannot flush the file, so it stays
-    open, and the library's own clean-up at interpreter exit then crashes. The temporary file
-    is already removed; print the one-line error and leave without that clean-up.
+    Local workers have finished or dropped their shards when this is asked; tasks already
+    running on a Dask cluster may still add shard files afterwards, so the count is a floor.
     """
-    import os
-    import sys
+    from goalkit.pipeline.buildfolder import folder_of
 
-    from goalkit.cli_support import EXIT_BAD_INPUT, debug_enabled
-
-    from goalkit.pipeline.sharded import OutputWriteError
-
-    if debug_enabled() or not isinstance(exc, OutputWriteError):
-        return
-    import h5py
-
-    if not h5py.h5f.get_obj_ids(types=h5py.h5f.OBJ_FILE):
-        return
-    click.echo(f"goalkit: error: {exc}", err=True)
-    sys.stdout.flush()
-    sys.stderr.flush()
-    os._exit(EXIT_BAD_INPUT)
+    if not sharded:
+        return f"nothing was written at {output}"
+    folder = folder_of(output)
+    kept = len(list(folder.glob("shard-*.npz"))) if folder.is_dir() else 0
+    if not kept and not cluster:
+        return f"nothing was written at {output}, and no shard had finished"
+    more = " (tasks still running on the cluster may add more)" if cluster else ""
+    return (f"nothing was written at {output}; {kept} finished shard{'' if kept == 1 else 's'} kept in "
+            f"{folder}/{more}; run this to resume: {command_line(drop=('--restart',))}")

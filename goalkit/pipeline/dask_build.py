@@ -68,7 +68,7 @@ class DaskRunner:
                                      key=f"goalkit-shard-{s.index}-{build_key[:8]}-{run_id}")
             by_key[fut.key] = (fut, s)
         self.futures = [f for f, _ in by_key.values()]
-        for fut in as_completed(self.futures):
+        for fut in as_completed(self.futures, loop=self.client.loop):  # the client need not be the default
             spec = by_key[fut.key][1]
             try:
                 yield fut.result()

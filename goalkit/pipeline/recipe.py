@@ -11,7 +11,7 @@ import os
 from dataclasses import dataclass, replace
 from pathlib import Path
 
-from goalkit.config import check_keys, expect_type, load_toml, parse_toml
+from goalkit.config import check_keys, expect_type, parse_toml, read_text_file
 from goalkit.errors import RecipeError
 
 RECIPE_VERSION = 1
@@ -269,8 +269,7 @@ def load_recipe(path) -> Recipe:
 
 
 def _read_text(path: Path) -> str:
-    load_toml(path, RecipeError)  # uniform not-found / not-TOML messages
-    return path.read_text(encoding="utf-8")
+    return read_text_file(path, RecipeError)  # not-found, folder, device, size, UTF-8: one line
 
 
 def is_recipe_file(path) -> bool:

@@ -150,8 +150,8 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int | None = N
     if failed is not None:
         # raised outside the handler, so no traceback keeps the failed HDF5 objects alive
         gc.collect()
-        raise OutputWriteError(f"cannot write the dataset ({failed}); the finished shards are kept and the "
-                           f"same command resumes", file=recipe.output.path)
+        raise OutputWriteError(failed, file=recipe.output.path,
+                               advice="the finished shards are kept and the same command resumes")
     folder.remove()
     info = {"total": len(specs), "reused": reused, "computed": len(specs) - reused,
             "runner": runner.description}

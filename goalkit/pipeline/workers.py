@@ -216,6 +216,13 @@ def _watch_parent(parent: int, every: float = 0.2) -> None:
 
 
 def _init_worker(payload: Payload, parent: int) -> None:
+    import signal
+
+    # Ctrl-C reaches the whole process group: the coordinator stops the build and reports what
+    # was kept; a worker finishes its shard file and is stopped by the coordinator. It was
+    # started with SIGINT blocked (see LocalRunner.run); one pending since then is discarded.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
     _WORKER["payload"] = payload
     threading.Thread(target=_watch_parent, args=(parent,), daemon=True).start()
 
@@ -261,7 +268,15 @@ class LocalRunner:
         from concurrent.futures import as_completed
         from concurrent.futures.process import BrokenProcessPool
 
-        by_future = {self.pool.submit(_pool_task, s, str(folder), build_key): s for s in specs}
+        import signal
+
+        # submitting starts the processes: they inherit a blocked SIGINT until _init_worker
+        # ignores it, so a Ctrl-C while they start prints no traceback from a half-started worker
+        blocked = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+        try:
+            by_future = {self.pool.submit(_pool_task, s, str(folder), build_key): s for s in specs}
+        finally:
+            signal.pthread_sigmask(signal.SIG_SETMASK, blocked)
         self.futures = list(by_future)
         for fut in as_completed(by_future):
             spec = by_future[fut]

@@ -15,6 +15,10 @@ from goalkit.logs.episodes import EpisodeSet
 from goalkit.relabel.strategies import CODES, PAST_END, STRATEGIES, locate
 
 #: Keys of the recipe's ``[relabel]`` table.
+#: Most goals per transition a recipe may ask for: the set has this many rows per logged
+#: transition, so a larger number is almost surely a typo (and would fill the disk).
+MAX_GOALS_PER_TRANSITION = 1024
+
 TABLE_KEYS = ("goals_per_transition", "gamma", "past_end", "weights", "neighbours", "library", "recall",
               "index")
 
@@ -148,8 +152,9 @@ class Mixture:
             raise RecipeError("all strategy weights are zero; give at least one a weight > 0",
                               file=file, key="relabel.weights")
         g = self.goals_per_transition
-        if isinstance(g, (bool, np.bool_)) or not isinstance(g, (int, np.integer)) or g < 1:
-            raise RecipeError(f"expected an integer >= 1, got {g!r}", file=file,
+        if (isinstance(g, (bool, np.bool_)) or not isinstance(g, (int, np.integer))
+                or not 1 <= g <= MAX_GOALS_PER_TRANSITION):
+            raise RecipeError(f"expected an integer from 1 to {MAX_GOALS_PER_TRANSITION}, got {g!r}", file=file,
                               key="relabel.goals_per_transition")
         if not _is_number(self.gamma) or not 0.0 < self.gamma < 1.0:
             raise RecipeError(f"expected a number strictly between 0 and 1, got {self.gamma!r}",
@@ -187,7 +192,7 @@ class Mixture:
         RecipeError
             On an unknown key or strategy name (lists the valid ones and the closest), a
             negative, non-numeric or all-zero weight, ``gamma`` outside (0, 1),
-            ``goals_per_transition`` < 1 or not an integer, an unknown ``past_end`` or
+            ``goals_per_transition`` not an integer from 1 to 1024, an unknown ``past_end`` or
             ``index``, ``neighbours`` outside 1 .. 1024, ``recall`` outside (0, 1], a weighted
             ``library`` strategy without a ``library`` file.
         """

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import click
 
-from goalkit.cli_support import ChunkProgress, echo_json, user_errors
+from goalkit.cli_support import ChunkProgress, echo_json, on_interrupt, quiet_option, user_errors, warn
 from goalkit.tune.session import CHUNK_TRANSITIONS, MAX_TRANSITIONS
 
 
@@ -34,7 +34,7 @@ from goalkit.tune.session import CHUNK_TRANSITIONS, MAX_TRANSITIONS
 @click.option("--max-transitions", type=int, default=MAX_TRANSITIONS,
               help="Read at most this many transitions: whole episodes, a fixed sample by seed.")
 @click.option("--json", "as_json", is_flag=True, help="Print the result as one JSON object.")
-@click.option("--quiet", is_flag=True, help="No progress bar.")
+@quiet_option
 @user_errors
 def tune(recipe, labels, from_success, distances, chooser, target, resamples, plots, write_recipe,
          replace, max_transitions, as_json, quiet):
@@ -59,6 +59,8 @@ def tune(recipe, labels, from_success, distances, chooser, target, resamples, pl
     parsed = load_recipe(recipe)
     _check_outputs(parsed, labels=labels, from_success=from_success, distances=distances, plots=plots,
                    write_recipe=write_recipe, replace=replace)
+    if plots:
+        on_interrupt(f"no tuned recipe was written; plots already written in {plots}, if any, are kept")
     with ChunkProgress("tune", quiet=quiet) as bar:
         result = tune_recipe(parsed, labels=labels, from_success=from_success, distances=distances,
                              chooser=chooser, target=target, n_resamples=resamples,
@@ -80,6 +82,10 @@ def tune(recipe, labels, from_success, distances, chooser, target, resamples, pl
                                  "changes": list(edit.changes)}
     if as_json:
         echo_json(out)
+        return
+    if quiet:
+        for w in out.get("warnings", []):
+            warn(w)
         return
     click.echo(render(out))
     if out["plots"]:

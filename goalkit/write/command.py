@@ -6,7 +6,7 @@ import sys
 
 import click
 
-from goalkit.cli_support import ChunkProgress, echo_json, user_errors
+from goalkit.cli_support import EXIT_FOUND_WANTING, EXIT_OK, ChunkProgress, echo_json, quiet_option, user_errors
 
 #: Quoted in the help of --sample; pinned by tests/audit/test_power.py against
 #: goalkit.audit.run.share_power_note() (100,000 rows, share 0.2, 25 checks, family error 1e-6).
@@ -24,7 +24,7 @@ SAMPLE_POWER_NOTE = "0.0086"
                    "fails with probability >= 90% (exact binomial test at the audit's per-check level); "
                    "the report gives this shift for the rows audited.")
 @click.option("--json", "as_json", is_flag=True, help="Print the report as one JSON object.")
-@click.option("--quiet", is_flag=True, help="No progress bar.")
+@quiet_option
 @user_errors
 def verify(dataset, max_failures, sample, as_json, quiet):
     """Check DATASET against the logs it was built from, trusting nothing stored in it.
@@ -33,17 +33,22 @@ def verify(dataset, max_failures, sample, as_json, quiet):
     the documented rules and tests the draws against their documented laws (family error
     1e-6, Holm); its checks are listed with their p-values.
 
-    Exit status 0 when every check passes, 1 when some fail (the first failures are listed),
-    2 when the file cannot be read as a goalkit dataset.
+    Exit status 0 when every check passes, 1 when some fail (the first failures are listed;
+    with --quiet one line on stderr says how many), 2 when the file cannot be read as a goalkit
+    dataset, 130 when interrupted (verify writes nothing).
     """
     if sample is not None:
-        _audit_only(dataset, sample, max_failures, as_json)
+        _audit_only(dataset, sample, max_failures, as_json, quiet)
     from goalkit.write.verify import verify_set
 
     with ChunkProgress("verify", quiet=quiet) as bar:
         report = verify_set(dataset, max_failures=max_failures, progress=bar)
     if as_json:
         echo_json({"path": dataset, **report.as_dict()})
+    elif quiet:
+        if not report.ok:
+            click.echo(f"goalkit: NOT consistent: {dataset} ({_count(len(report.failures), 'failure')} listed; "
+                       f"run without --quiet to see them)", err=True)
     else:
         rows = report.checked.get("rows", {})
         if report.ok:
@@ -57,23 +62,27 @@ def verify(dataset, max_failures, sample, as_json, quiet):
                 click.echo(f"  - {f}")
         if "audit" in report.checked:
             _echo_checks(report.checked["audit"])
-    sys.exit(0 if report.ok else 1)
+    sys.exit(EXIT_OK if report.ok else EXIT_FOUND_WANTING)
 
 
-def _audit_only(dataset, sample, max_failures, as_json):
+def _audit_only(dataset, sample, max_failures, as_json, quiet):
     from goalkit.audit import audit_set
 
     result = audit_set(dataset, sample=sample)
     failures = result.failures[:max_failures]
     if as_json:
         echo_json({"path": dataset, "ok": result.ok, "failures": failures, "checked": {"audit": result.as_dict()}})
+    elif quiet:
+        if not result.ok:
+            click.echo(f"goalkit: audit FAILED: {dataset} ({_count(len(result.failures), 'failure')}; run "
+                       f"without --quiet to see them)", err=True)
     else:
         rows = sum(result.rows.values())
         click.echo(f"{'audit passed' if result.ok else 'audit FAILED'}: {dataset} ({rows:,} sampled rows)")
         for f in failures:
             click.echo(f"  - {f}")
         _echo_checks(result.as_dict())
-    sys.exit(0 if result.ok else 1)
+    sys.exit(EXIT_OK if result.ok else EXIT_FOUND_WANTING)
 
 
 def _echo_checks(audit: dict) -> None:

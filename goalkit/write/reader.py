@@ -51,10 +51,15 @@ class GoalSet:
             self.file.close()
             raise DatasetError(f"not a goalkit set: attribute 'format' is {attrs.get('format')!r}, "
                                f"expected {FORMAT_NAME!r}", file=self.path, key="format")
-        version = int(attrs.get("format_version", -1))
-        if version > FORMAT_VERSION or version < 1:
+        raw = attrs.get("format_version", -1)
+        try:
+            version = int(raw)
+        except (TypeError, ValueError):
+            version = None
+        if version is None or version > FORMAT_VERSION or version < 1:
             self.file.close()
-            raise DatasetError(f"format version {version} is not supported by this goalkit "
+            shown = version if version is not None else repr(raw)
+            raise DatasetError(f"format version {shown} is not supported by this goalkit "
                                f"(reads version 1 .. {FORMAT_VERSION})", file=self.path, key="format_version")
         self.mode = str(attrs["mode"])
         self.seed = int(attrs["seed"])

@@ -38,11 +38,15 @@ class OutputWriteError(DatasetError):
     ----------
     reason : str
         The operating system's reason, on one line.
+    advice : str or None
+        What the user can do or what was kept, appended after ``"; "``.
     """
 
-    def __init__(self, reason: str, *, file):
+    def __init__(self, reason: str, *, file, advice: str | None = None):
         self.reason = reason
-        super().__init__(f"cannot write the dataset ({reason})", file=file)
+        self.advice = advice
+        tail = f"; {advice}" if advice else ""
+        super().__init__(f"cannot write the dataset ({reason}){tail}", file=file)
 
 
 def os_reason(exc: BaseException) -> str:

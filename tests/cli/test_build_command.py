@@ -72,8 +72,11 @@ def test_missing_logs_and_recipe(demo, tmp_path):
 def test_debug_shows_the_traceback(demo, tmp_path):
     recipe = write_recipe(demo, tmp_path, lambda t: t.replace("gamma = 0.9", "gamma = 1.5"))
     res = CliRunner().invoke(main, ["--debug", "build", str(recipe)])
-    assert res.exit_code != 0 and res.exc_info is not None
-    assert type(res.exception).__name__ == "RecipeError"
+    # --debug adds the traceback and never changes the exit status (2, as without it)
+    assert res.exit_code == 2, res.output
+    assert "Traceback (most recent call last)" in res.stderr and "RecipeError" in res.stderr
+    assert res.stderr.strip().splitlines()[-1].startswith("goalkit: error: ")
+    assert res.stdout == ""
 
 
 def test_json_summary_and_overrides(demo, tmp_path):

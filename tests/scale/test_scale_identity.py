@@ -111,3 +111,21 @@ def test_skipped_episodes_stay_skipped_on_workers(gantry, tmp_path):
     with h5py.File(two, "r") as f:
         ids = np.union1d(f["train/source_episode"][()], f["validation/source_episode"][()])
     assert 7 not in ids and 200 not in ids and len(ids) == 238
+
+
+def test_scheduler_option_from_another_process(gantry, reference, tmp_path):
+    # `goalkit build --scheduler` in its own process has no default Dask client; waiting for
+    # the shards must use the runner's own client (this once failed with "No clients found")
+    import subprocess
+    import sys
+
+    distributed = pytest.importorskip("distributed")
+    _, ref_digest = reference
+    out = tmp_path / "sub.h5"
+    with distributed.LocalCluster(processes=False, protocol="tcp", n_workers=1, threads_per_worker=2,
+                                  dashboard_address=None) as cluster:
+        res = subprocess.run([sys.executable, "-m", "goalkit.cli", "build", str(gantry / "scale-recipe.toml"),
+                              "--out", str(out), "--scheduler", cluster.scheduler_address, "--chunk-rows", "5000",
+                              "--quiet"], capture_output=True, text=True, timeout=300)
+    assert res.returncode == 0, res.stderr
+    assert sha256(out) == ref_digest

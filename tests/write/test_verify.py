@@ -95,7 +95,8 @@ def test_cli_exit_status(copy, tmp_path):
     ok = runner.invoke(main, ["verify", str(path), "--json"])
     assert ok.exit_code == 0, ok.output
     assert json.loads(ok.output)["ok"] is True
-    text = runner.invoke(main, ["verify", str(path), "--quiet"])
+    assert runner.invoke(main, ["verify", str(path), "--quiet"]).stdout == ""  # the status is the answer
+    text = runner.invoke(main, ["verify", str(path)])
     assert text.exit_code == 0 and text.output.startswith(f"consistent: {path} (")
     assert "column checksums and 1 source file match)" in text.output  # one log file here
     tamper(path, "train", "reached", lambda r: r.__setitem__(0, 1 - r[0]))

@@ -1,0 +1,194 @@
+"""One exit convention and one --quiet for every command (docs/cli.md)."""
+
+import json
+import resource
+import subprocess
+import sys
+
+import click
+import pytest
+from click.testing import CliRunner
+
+from goalkit.cli import COMMANDS, main
+from goalkit.cli_support import QUIET_HELP, user_errors
+from goalkit.demo import make_demo
+
+CLI = [sys.executable, "-m", "goalkit.cli"]
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    d = tmp_path_factory.mktemp("exits")
+    info = make_demo(d, episodes=24, seed=2)
+    res = CliRunner().invoke(main, ["build", str(info["recipe"]), "--out", str(d / "set.h5"), "--quiet"])
+    assert res.exit_code == 0, res.output
+    return d
+
+
+def invoke(*args):
+    return CliRunner().invoke(main, [str(a) for a in args])
+
+
+def _limit(nbytes):
+    def apply():
+        resource.setrlimit(resource.RLIMIT_FSIZE, (nbytes, resource.RLIM_INFINITY))
+    return apply
+
+
+# ---- exit statuses --------------------------------------------------------------------------------
+def bad_inputs(d, tmp):
+    """One bad input per command, with the status it must give."""
+    (tmp / "bad.toml").write_text("version = 1\n[reward]\nthreshold = -1\n")
+    return {
+        "demo": (["demo", tmp / "x", "--episodes", "0"], 2),
+        "scan": (["scan", tmp / "missing.h5"], 2),
+        "build": (["build", tmp / "bad.toml"], 2),
+        "verify": (["verify", d / "gantry-layout.toml"], 2),
+        "embed": (["embed", d / "gantry-logs.h5", "--method", "raw", "--dims", "2", "-o", tmp / "e.npz"], 2),
+        "tune": (["tune", tmp / "bad.toml"], 2),
+    }
+
+
+@pytest.mark.parametrize("command", list(COMMANDS))
+def test_debug_adds_the_traceback_and_keeps_the_status(demo, tmp_path, command):
+    args, status = bad_inputs(demo, tmp_path)[command]
+    plain = invoke(*args)
+    assert plain.exit_code == status, plain.output
+    lines = plain.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("goalkit: error: ") and "Traceback" not in plain.stderr
+    debug = invoke("--debug", *args)
+    assert debug.exit_code == status, debug.output
+    if command == "demo":  # a click usage error: raised before any goalkit code, nothing to trace
+        assert debug.stderr == plain.stderr
+    else:
+        assert "Traceback (most recent call last)" in debug.stderr
+        assert debug.stderr.strip().splitlines()[-1] == lines[0]
+
+
+def test_usage_errors_are_one_line_exit_2():
+    res = invoke("build", "x.toml", "--chunk-rows", "5")
+    assert res.exit_code == 2
+    assert res.stderr.strip().splitlines() == [
+        "goalkit: error: Invalid value for '--chunk-rows': 5 is not in the range x>=1000. "
+        "(goalkit build --help lists the options)"]
+    res = invoke("frobnicate")
+    assert res.exit_code == 2 and res.stderr.startswith("goalkit: error: No such command 'frobnicate'")
+    assert invoke("--help").exit_code == 0 and invoke("--version").exit_code == 0
+
+
+@click.command()
+@user_errors
+def _broken():
+    """A command with a bug in it: the convention's internal-error path."""
+    {}["missing"]
+
+
+def test_an_unexpected_exception_is_an_internal_error_exit_3():
+    res = CliRunner().invoke(_broken, [])
+    assert res.exit_code == 3
+    assert res.stderr.strip().splitlines() == [
+        "goalkit: internal error: KeyError: 'missing' (a bug in goalkit: rerun with goalkit --debug for the "
+        "traceback and please report it)"]
+
+
+def test_file_size_limit_says_cannot_write_once(tmp_path):
+    # RLIMIT_FSIZE (POSIX setrlimit): writes past the limit fail with EFBIG, as on a full disk
+    info = make_demo(tmp_path, episodes=240, seed=11)
+    out = tmp_path / "gantry-goals.h5"
+    for extra, limit, tail in (([], 200_000, "cannot write the dataset (File too large)"),
+                               (["--workers", "2", "--chunk-rows", "1000"], 1_000_000,
+                                "cannot write the dataset (File too large); the finished shards are kept and the "
+                                "same command resumes")):
+        res = subprocess.run([*CLI, "build", str(info["recipe"]), *extra], capture_output=True, text=True,
+                             timeout=180, preexec_fn=_limit(limit))
+        assert res.returncode == 2, res.stderr
+        lines = res.stderr.strip().splitlines()
+        assert len(lines) == 1 and lines[0].endswith(tail), res.stderr
+        assert lines[0].count("cannot write the dataset") == 1
+        assert not out.exists() and not list(tmp_path.glob(".gantry-goals.h5.partial-*"))
+
+
+# ---- --quiet --------------------------------------------------------------------------------------
+def quiet_runs(d, tmp):
+    """Per command: arguments of a run that succeeds and prints a report."""
+    return {
+        "demo": ["demo", tmp / "d", "--episodes", "3"],
+        "scan": ["scan", d / "gantry-logs.h5", "--layout", d / "gantry-layout.toml"],
+        "build": ["build", d / "gantry-recipe.toml", "--out", tmp / "q.h5"],
+        "verify": ["verify", d / "set.h5"],
+        "embed": ["embed", d / "gantry-logs.h5", "--layout", d / "gantry-layout.toml", "--method", "pca",
+                  "-o", tmp / "e.npz"],
+        "tune": ["tune", d / "gantry-recipe.toml", "--resamples", "0"],
+    }
+
+
+@pytest.mark.parametrize("command", list(COMMANDS))
+def test_quiet_means_no_report_and_json_is_still_printed(demo, tmp_path, command):
+    args = quiet_runs(demo, tmp_path)[command]
+    loud = invoke(*args)
+    assert loud.exit_code == 0 and loud.stdout.strip(), loud.output
+    quiet = invoke(*args, "--quiet")
+    assert quiet.exit_code == 0 and quiet.stdout == "" and quiet.stderr == "", quiet.output
+    both = invoke(*args, "--quiet", "--json")
+    assert both.exit_code == 0 and isinstance(json.loads(both.stdout), dict)
+    help_text = " ".join(invoke(command, "--help").stdout.split())
+    assert QUIET_HELP in help_text
+
+
+def test_verify_quiet_failure_is_one_stderr_line(demo, tmp_path):
+    import shutil
+
+    import h5py
+
+    bad = tmp_path / "bad.h5"
+    shutil.copy(demo / "set.h5", bad)
+    with h5py.File(bad, "r+") as f:
+        r = f["train/reached"]
+        r[0] = 1 - r[0]
+    res = invoke("verify", bad, "--quiet")
+    assert res.exit_code == 1 and res.stdout == ""
+    line, = res.stderr.strip().splitlines()
+    assert line.startswith(f"goalkit: NOT consistent: {bad} (") and "run without --quiet" in line
+
+
+# ---- interruptions that libraries hide ------------------------------------------------------------
+class _InterruptedWhileFreed:
+    def __del__(self):
+        raise KeyboardInterrupt  # where a SIGINT can land; Python prints "Exception ignored" and goes on
+
+
+@click.command()
+@user_errors
+def _swallowing():
+    """Work during which Python swallows a Ctrl-C, then a progress step."""
+    from goalkit.cli_support import ChunkProgress
+
+    obj = _InterruptedWhileFreed()
+    del obj
+    with ChunkProgress("work", quiet=True) as bar:
+        bar(1, 10)
+    click.echo("finished")
+
+
+@click.command()
+@user_errors
+def _converting():
+    """A library that turns the KeyboardInterrupt of a real SIGINT into an error of its own."""
+    import signal
+
+    try:
+        signal.raise_signal(signal.SIGINT)
+    except KeyboardInterrupt:
+        raise ValueError("No clients found") from None
+
+
+def test_a_swallowed_ctrl_c_is_raised_at_the_next_progress_step():
+    res = CliRunner().invoke(_swallowing, [])
+    assert res.exit_code == 130 and res.stdout == ""
+    assert res.stderr.strip().splitlines() == ["goalkit: interrupted; nothing was written"]
+
+
+def test_an_error_after_a_sigint_counts_as_the_interruption():
+    res = CliRunner().invoke(_converting, [])
+    assert res.exit_code == 130
+    assert res.stderr.strip().splitlines() == ["goalkit: interrupted; nothing was written"]
