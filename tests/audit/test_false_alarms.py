@@ -71,7 +71,7 @@ def test_verify_lists_the_checks(demo_logs, tmp_path):
     names = {c["name"] for c in audit["checks"]}
     assert {"share of future", "split fraction", "law of geometric offset", "slot pairs: same strategy"} <= names
     assert all(0.0 <= c["p_value"] <= 1.0 and c["threshold"] <= 1e-6 for c in audit["checks"])
-    res = CliRunner().invoke(main, ["verify", str(out), "--quiet"])
+    res = CliRunner().invoke(main, ["verify", str(out)])
     assert res.exit_code == 0 and "audit: " in res.output and "share of future: p = " in res.output
     res = CliRunner().invoke(main, ["verify", str(out), "--sample", "3000", "--json"])
     assert res.exit_code == 0, res.output

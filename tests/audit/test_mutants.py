@@ -125,7 +125,7 @@ def test_verify_alone_catches_the_mutant(name, correct, tmp_path):
     assert done.returncode == 0, done.stderr
     # the slip really changes the built set
     assert _manifest(out) != _manifest(good)
-    done = run_goalkit(package, tmp_path, "verify", out, "--quiet")
+    done = run_goalkit(package, tmp_path, "verify", out)
     assert done.returncode == 1, done.stdout[-3000:]
     assert "NOT consistent" in done.stdout
     # the replay agrees with the mutated builder; the audit names the slip (verify's own rule

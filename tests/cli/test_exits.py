@@ -44,7 +44,7 @@ def bad_inputs(d, tmp):
         "scan": (["scan", tmp / "missing.h5"], 2),
         "build": (["build", tmp / "bad.toml"], 2),
         "verify": (["verify", d / "gantry-layout.toml"], 2),
-        "embed": (["embed", d / "gantry-logs.h5", "--method", "raw", "--dims", "2", "-o", tmp / "e.npz"], 2),
+        "embed": (["embed", d / "gantry-logs.h5", "--method", "raw", "--dims", "2", "-o", tmp / "e.npz", "--replace"], 2),
         "tune": (["tune", tmp / "bad.toml"], 2),
     }
 
@@ -112,12 +112,12 @@ def test_file_size_limit_says_cannot_write_once(tmp_path):
 def quiet_runs(d, tmp):
     """Per command: arguments of a run that succeeds and prints a report."""
     return {
-        "demo": ["demo", tmp / "d", "--episodes", "3"],
+        "demo": ["demo", tmp / "d", "--episodes", "3", "--replace"],
         "scan": ["scan", d / "gantry-logs.h5", "--layout", d / "gantry-layout.toml"],
-        "build": ["build", d / "gantry-recipe.toml", "--out", tmp / "q.h5"],
+        "build": ["build", d / "gantry-recipe.toml", "--out", tmp / "q.h5", "--replace"],
         "verify": ["verify", d / "set.h5"],
         "embed": ["embed", d / "gantry-logs.h5", "--layout", d / "gantry-layout.toml", "--method", "pca",
-                  "-o", tmp / "e.npz"],
+                  "-o", tmp / "e.npz", "--replace"],
         "tune": ["tune", d / "gantry-recipe.toml", "--resamples", "0"],
     }
 
@@ -127,7 +127,7 @@ def test_quiet_means_no_report_and_json_is_still_printed(demo, tmp_path, command
     args = quiet_runs(demo, tmp_path)[command]
     loud = invoke(*args)
     assert loud.exit_code == 0 and loud.stdout.strip(), loud.output
-    quiet = invoke(*args, "--quiet")
+    quiet = invoke(*args, "--quiet")  # the second run replaces the first run's output (--replace)
     assert quiet.exit_code == 0 and quiet.stdout == "" and quiet.stderr == "", quiet.output
     both = invoke(*args, "--quiet", "--json")
     assert both.exit_code == 0 and isinstance(json.loads(both.stdout), dict)
