@@ -13,11 +13,20 @@ The local pool is a :class:`concurrent.futures.ProcessPoolExecutor` with the ``s
 no fork of a coordinator that holds open HDF5 files and threads, no Dask scheduler or ports for a
 one-machine build, and a start-up of about a second. Each worker watches its parent and exits
 when the coordinator is gone (a SIGKILLed build leaves no orphans working on).
+
+The payload reaches local workers as a file, never through the start-up pipe. ``spawn`` writes
+a new process's start-up data to a pipe whose read end the parent itself still holds until the
+write ends; a payload larger than the pipe buffer (64 KiB on Linux) and a worker killed before
+reading it all would block the coordinator in that write for ever. With only a path and a
+SHA-256 on the pipe, a worker that dies at any moment (starting, loading the payload, mid-shard,
+after writing) is seen by the pool as a broken pool and the build stops in one line.
 """
 
 from __future__ import annotations
 
+import hashlib
 import os
+import pickle
 import threading
 import time
 from dataclasses import dataclass, fields, replace
@@ -217,9 +226,34 @@ def _watch_parent(parent: int, every: float = 0.2) -> None:
             os._exit(1)
 
 
-def _init_worker(payload: Payload, parent: int) -> None:
-    _WORKER["payload"] = payload
+PAYLOAD_FILE = "payload.pickle"
+
+
+def save_payload(payload: Payload, folder) -> tuple[str, str]:
+    """Pickle ``payload`` to ``folder``/payload.pickle (temporary name, then rename).
+
+    Returns
+    -------
+    (str, str)
+        The file's path and the SHA-256 of its bytes (checked by each worker before unpickling).
+    """
+    data = pickle.dumps(payload, protocol=pickle.HIGHEST_PROTOCOL)
+    path = Path(folder) / PAYLOAD_FILE
+    tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
+    try:
+        tmp.write_bytes(data)
+        os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+    return str(path), hashlib.sha256(data).hexdigest()
+
+
+def _init_worker(payload_path: str, digest: str, parent: int) -> None:
     threading.Thread(target=_watch_parent, args=(parent,), daemon=True).start()
+    data = Path(payload_path).read_bytes()
+    if hashlib.sha256(data).hexdigest() != digest:  # not the file this build wrote: refuse it
+        raise RuntimeError(f"{payload_path}: the payload file changed after the coordinator wrote it")
+    _WORKER["payload"] = pickle.loads(data)
 
 
 def _pool_task(spec, folder, build_key):
@@ -237,7 +271,7 @@ class LocalRunner:
     Examples
     --------
     >>> with LocalRunner(2) as runner:                                   # doctest: +SKIP
-    ...     runner.start(payload)
+    ...     runner.start(payload, folder)
     ...     for outcome in runner.run(specs, folder, key): ...
     """
 
@@ -250,13 +284,20 @@ class LocalRunner:
         self.pool = None
         self.futures = []
 
-    def start(self, payload: Payload) -> None:
-        """Start the processes; each receives ``payload`` once."""
+    def start(self, payload: Payload, folder) -> None:
+        """Start the processes; each loads ``payload`` once, from a file written to ``folder``.
+
+        Raises
+        ------
+        OSError
+            When the payload file cannot be written.
+        """
         import multiprocessing
         from concurrent.futures import ProcessPoolExecutor
 
+        path, digest = save_payload(payload, folder)
         self.pool = ProcessPoolExecutor(self.workers, mp_context=multiprocessing.get_context("spawn"),
-                                        initializer=_init_worker, initargs=(payload, os.getpid()))
+                                        initializer=_init_worker, initargs=(path, digest, os.getpid()))
 
     def run(self, specs, folder, build_key: str):
         """Submit every shard; yield task outcomes in completion order."""
