@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import hashlib
-import json
 from pathlib import Path
 from typing import Iterator
 
@@ -11,7 +10,7 @@ import h5py
 import numpy as np
 
 from goalkit.errors import DatasetError
-from goalkit.write.format import FORMAT_NAME, FORMAT_VERSION, MATERIAL_COLUMNS, SPLITS
+from goalkit.write.format import MATERIAL_COLUMNS, SPLITS
 
 
 class GoalSet:
@@ -46,22 +45,19 @@ class GoalSet:
             self.file = h5py.File(self.path, "r")
         except OSError as exc:
             raise DatasetError(f"not a readable HDF5 file ({exc})", file=self.path) from None
-        attrs = self.file.attrs
-        if attrs.get("format") != FORMAT_NAME:
+        from goalkit.write.seal import read_attrs
+
+        try:
+            self.stored = read_attrs(self.file, self.path)
+        except DatasetError:
             self.file.close()
-            raise DatasetError(f"not a goalkit set: attribute 'format' is {attrs.get('format')!r}, "
-                               f"expected {FORMAT_NAME!r}", file=self.path, key="format")
-        version = int(attrs.get("format_version", -1))
-        if version > FORMAT_VERSION or version < 1:
-            self.file.close()
-            raise DatasetError(f"format version {version} is not supported by this goalkit "
-                               f"(reads version 1 .. {FORMAT_VERSION})", file=self.path, key="format_version")
-        self.mode = str(attrs["mode"])
-        self.seed = int(attrs["seed"])
-        self.recipe = str(attrs["recipe"])
-        self.provenance = json.loads(attrs["provenance"])
-        self.summary = json.loads(attrs["summary"])
-        self.manifest = json.loads(attrs["manifest"])
+            raise
+        self.mode = self.stored.mode
+        self.seed = self.stored.seed
+        self.recipe = self.stored.recipe
+        self.provenance = self.stored.provenance
+        self.summary = self.stored.summary
+        self.manifest = self.stored.manifest
         self._logs = None
 
     # ---- context manager -------------------------------------------------------------
@@ -80,11 +76,15 @@ class GoalSet:
     def _group(self, split: str):
         if split not in SPLITS:
             raise DatasetError(f"unknown split {split!r}; splits are {', '.join(SPLITS)}", file=self.path)
-        return self.file[split]
+        from goalkit.write.seal import split_group
+
+        return split_group(self.file, split, self.path)
 
     def rows(self, split: str = "train") -> int:
         """Number of rows in ``split``."""
-        return int(self._group(split).attrs["rows"])
+        from goalkit.write.seal import split_rows
+
+        return split_rows(self.file, split, self.path)
 
     def columns(self, split: str = "train") -> list[str]:
         """Column names stored in ``split`` (writing order)."""

@@ -24,6 +24,7 @@ from goalkit.errors import DatasetError
 from goalkit.write.format import FORMAT_NAME, FORMAT_VERSION, SPLITS
 from goalkit.write.chunkcodec import GZIP_LEVEL, gzip_chunk
 from goalkit.write.gather import RowGather
+from goalkit.write.seal import write_seal
 
 #: Threads compressing whole chunks of gzip sets.
 ENCODE_THREADS = 2
@@ -337,6 +338,7 @@ class SetWriter:
                 self.file[s].attrs["rows"] = self.rows[s]
                 for key, value in sorted((split_attrs or {}).get(s, {}).items()):
                     self.file[s].attrs[key] = _attr(value)
+            write_seal(self.file)  # last: covers every attribute above and the datasets' layout
             self.file.close()
             os.replace(self.tmp, self.path)
         except (OSError, RuntimeError) as exc:  # HDF5 reports a failed final flush as RuntimeError
