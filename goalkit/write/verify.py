@@ -31,7 +31,7 @@ from pathlib import Path
 
 import numpy as np
 
-from goalkit.errors import DatasetError
+from goalkit.errors import DatasetError, GoalkitError
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.write.format import SPLITS
 from goalkit.write.provenance import file_digest
@@ -232,7 +232,10 @@ def verify_set(path, max_failures: int = 20, progress=None) -> VerifyReport:
         recipe = stored_recipe(gs, report)
         if recipe is None:
             return report
-        plan, source = make_plan(recipe)
+        try:
+            plan, source = make_plan(recipe)
+        except GoalkitError as exc:
+            raise DatasetError(f"cannot reopen what this set was built from: {exc}", file=gs.path) from None
         if not _check_shape(gs, plan, split_rows(plan), report):
             return report
         # 4 + 5. rows, checked and re-derived; the summary re-derived alongside
@@ -361,6 +364,15 @@ def _check_shape(gs, plan, rows_expected: dict, report) -> bool:
             if ds.dtype != np.dtype(dtype) or tuple(ds.shape[1:]) != tuple(shape):
                 raise DatasetError(f"column of dtype {ds.dtype} and row shape {tuple(ds.shape[1:])}, expected "
                                    f"{np.dtype(dtype)} and {tuple(shape)}", file=gs.path, key=f"{s}/{name}")
+        out = plan.recipe.output
+        for name in sorted(stored & set(expected)):
+            ds = gs.file[s][name]
+            chunk = (min(out.chunk_rows, ds.shape[0]) if ds.shape[0] else out.chunk_rows)
+            if (ds.chunks or (None,))[0] != chunk or (ds.compression or "none") != out.compression:
+                report.fail(f"{s}/{name}: stored in chunks of {(ds.chunks or (None,))[0]} rows with "
+                            f"{ds.compression or 'no'} compression, the recipe writes {chunk} rows with "
+                            f"{out.compression}")
+                break
         if gs.rows(s) != rows_expected[s]:
             report.fail(f"{s}: rows attribute is {gs.rows(s)}, the recipe produces {rows_expected[s]} rows")
         episodes = int(np.sum(plan.splits == SPLITS.index(s)))
