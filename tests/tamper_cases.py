@@ -185,9 +185,15 @@ def _link(split, name, kind):
     return edit
 
 
-def _huge_rows(split):
+def _huge_rows(split, columns_too=False):
     def edit(f, tmp):
         f[split].attrs["rows"] = 10 ** 12
+        if columns_too:  # every column declared that long (nothing stored: a few bytes of file)
+            for name in list(f[split]):
+                ds = f[split][name]
+                dtype, shape = ds.dtype, ds.shape[1:]
+                del f[split][name]
+                f[split].create_dataset(name, shape=(10 ** 12, *shape), dtype=dtype, chunks=(4096, *shape))
     return edit
 
 
@@ -284,6 +290,7 @@ def tamper_suite(path, full=False):
         cases.append((f"group {s}: extra attribute", _set_attr("note", 1, s), True))
         cases.append((f"group {s}: a row appended to every column, rows kept", _append_to_every_column(s), True))
         cases.append((f"group {s}: rows attribute 10**12", _huge_rows(s), True))
+        cases.append((f"group {s}: rows attribute and every column 10**12 rows", _huge_rows(s, True), True))
     # columns
     kinds = ("value", "delete", "delete+manifest", "extra", "append", "truncate", "dtype")
     for s in SPLITS:

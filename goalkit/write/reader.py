@@ -123,9 +123,14 @@ class GoalSet:
         want = list(columns) if columns is not None else stored + (
             list(MATERIAL_COLUMNS) if self.mode == "indexed" and resolve else [])
         out = {}
+        rows = self.rows(split)
         for name in want:
             if name in stored:
-                out[name] = group[name][start:stop]
+                ds = group[name]
+                if not isinstance(ds, h5py.Dataset) or ds.ndim < 1 or ds.shape[0] != rows:
+                    raise DatasetError(f"expected a column of {rows} rows (the split's rows attribute), found "
+                                       f"{getattr(ds, 'shape', 'a group')}", file=self.path, key=f"{split}/{name}")
+                out[name] = ds[start:stop]
             elif name in MATERIAL_COLUMNS and self.mode == "indexed" and resolve:
                 continue
             else:

@@ -6,16 +6,17 @@ Checks, in order:
    long as its split's ``rows`` attribute, the manifest listing exactly the stored columns) and
    its seal matches (format version 2; see :mod:`goalkit.write.seal`);
 1. the source log files (regular files only) still have the checksums recorded at build time;
-2. every column matches the manifest's SHA-256;
-3. row by row, from the logs: observations, actions and next observations are the logged
-   steps; every goal equals phi at its recorded source step (or the log's task goal for
+2. the stored recipe, run with the set's ``seed`` attribute, produces exactly the stored columns
+   (names, dtypes, row shapes, chunking, compression) and the ``rows`` and ``episodes``
+   attributes of each split (checked before any column is read);
+3. every column matches the manifest's SHA-256; row by row, from the logs: observations,
+   actions and next observations are the logged steps; every goal equals phi at its recorded source step (or the log's task goal for
    ``original`` rows); each strategy's rule holds (future goals come from the same episode
    strictly after the transition, final goals are the last state, and so on); no goal crosses
    the split; ``steps_to_goal`` is ``j - t``; distance, reward, reached flag and terminal flag
    recompute from the reward rule;
 4. the rows are exactly what the stored recipe and the set's ``seed`` attribute produce (the
-   relabelling is re-run), as are the columns, their dtypes and shapes, and the ``rows`` and
-   ``episodes`` attributes of each split;
+   relabelling is re-run);
 5. the summary and the provenance equal the ones re-derived from those rows, the recipe and the
    logs (only ``provenance.recipe_file`` and ``goalkit_version`` are recorded facts, covered by
    the seal; the latter must agree with the root attribute).
@@ -224,11 +225,8 @@ def verify_set(path, max_failures: int = 20, progress=None) -> VerifyReport:
         report.checked["source_files"] = len(gs.provenance.get("log_files", []))
         if not report.ok:
             return report
-        # 2. manifest
-        for message in gs.check_manifest():
-            report.fail(message)
-        report.checked["columns"] = len(gs.manifest)
-        # 3. the recipe with the set's own seed; the columns and row counts it produces
+        # 2. the recipe with the set's own seed; the columns and row counts it produces (before
+        #    any column is read, so a huge declared column is never read)
         recipe = stored_recipe(gs, report)
         if recipe is None:
             return report
@@ -238,6 +236,10 @@ def verify_set(path, max_failures: int = 20, progress=None) -> VerifyReport:
             raise DatasetError(f"cannot reopen what this set was built from: {exc}", file=gs.path) from None
         if not _check_shape(gs, plan, split_rows(plan), report):
             return report
+        # 3. manifest
+        for message in gs.check_manifest():
+            report.fail(message)
+        report.checked["columns"] = len(gs.manifest)
         # 4 + 5. rows, checked and re-derived; the summary re-derived alongside
         gpt = recipe.mixture.goals_per_transition
         summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed)
