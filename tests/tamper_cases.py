@@ -288,6 +288,7 @@ def tamper_suite(path, full=False):
             cases.append((f"group {s}.{a}: deleted", _del_attr(a, s), True))
             cases.append((f"group {s}.{a}: text", _set_attr(a, "7", s), True))
         cases.append((f"group {s}: extra attribute", _set_attr("note", 1, s), True))
+        cases.append((f"column {s}/goal: extra attribute", _set_attr("note", 1, f"{s}/goal"), True))
         cases.append((f"group {s}: a row appended to every column, rows kept", _append_to_every_column(s), True))
         cases.append((f"group {s}: rows attribute 10**12", _huge_rows(s), True))
         cases.append((f"group {s}: rows attribute and every column 10**12 rows", _huge_rows(s, True), True))

@@ -212,6 +212,8 @@ def check_layout(file: h5py.File, path, stored: StoredAttrs) -> list[str]:
                                    file=path, key=key)
             if ds.shape[0] > rows:
                 failures.append(f"{key}: {ds.shape[0]} rows stored, more than the split's rows attribute ({rows})")
+            if len(ds.attrs):
+                failures.append(f"{key}: attributes not part of a set: {', '.join(sorted(ds.attrs))}")
             names[split].append(name)
     if sorted(names["train"]) != sorted(names["validation"]):
         failures.append(f"the splits hold different columns (train: {', '.join(sorted(names['train']))}; "
