@@ -240,7 +240,7 @@ def _recipe_line(i, new):
 
 
 #: Columns whose edits are also checked resealed in the default suite (all with ``full``).
-RESEALED_COLUMNS = ("goal", "observation", "reward", "source_step", "strategy")
+RESEALED_COLUMNS = ("goal", "reward", "strategy")
 
 
 def tamper_suite(path, full=False):
