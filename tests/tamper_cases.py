@@ -276,6 +276,9 @@ def tamper_suite(path, full=False):
                   _edit_json("provenance", ("layout_text",), lambda v: "[[[ not toml"), True))
     cases.append(("attr seed: changed to 7", _set_attr("seed", np.int64(7)), True))
     cases.append(("extra root attribute", _set_attr("note", "hello"), True))
+    cases.append(("extra root attribute without a value", _set_attr("note", h5py.Empty("f4")), True))
+    cases.append(("attr seed: no value", _set_attr("seed", h5py.Empty("i8")), True))
+    cases.append(("group train.rows: no value", _set_attr("rows", h5py.Empty("i8"), "train"), True))
     cases.append(("extra root member", lambda f, tmp: f.create_group("extra"), True))
     # split groups
     for s in SPLITS:

@@ -234,10 +234,19 @@ def _encode(value):
         return ["str", value]
     if isinstance(value, bytes):
         return ["bytes", value.hex()]
-    arr = np.asarray(value)
-    if arr.dtype.kind == "O":
-        return ["objects", [_encode(v) for v in arr.ravel().tolist()], list(arr.shape)]
-    return ["array", arr.dtype.str, list(arr.shape), np.ascontiguousarray(arr).tobytes().hex()]
+    if isinstance(value, (np.ndarray, np.generic, int, float, bool)):
+        arr = np.asarray(value)
+        if arr.dtype.kind != "O":
+            return ["array", arr.dtype.str, list(arr.shape), np.ascontiguousarray(arr).tobytes().hex()]
+        return ["objects", [v if isinstance(v, str) else repr(v) for v in arr.ravel().tolist()], list(arr.shape)]
+    return ["other", type(value).__name__, repr(value)]  # e.g. h5py.Empty: never in a set as written
+
+
+def _encode_attr(attrs, key):
+    try:
+        return _encode(attrs[key])
+    except (OSError, TypeError, ValueError) as exc:  # a type h5py cannot read back
+        return ["unreadable", str(exc)]
 
 
 def _dataset_record(ds: h5py.Dataset) -> list:
@@ -256,7 +265,7 @@ def seal_of(file: h5py.File) -> str:
     record = {"attributes": {}, "datasets": {}, "groups": []}
 
     def attributes(obj, where):
-        record["attributes"][where] = {k: _encode(obj.attrs[k]) for k in sorted(obj.attrs) if
+        record["attributes"][where] = {k: _encode_attr(obj.attrs, k) for k in sorted(obj.attrs) if
                                        not (where == "/" and k == SEAL_ATTR)}
 
     attributes(file, "/")
