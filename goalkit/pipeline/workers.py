@@ -304,7 +304,14 @@ class LocalRunner:
         from concurrent.futures import as_completed
         from concurrent.futures.process import BrokenProcessPool
 
-        by_future = {self.pool.submit(_pool_task, s, str(folder), build_key): s for s in specs}
+        by_future = {}
+        for s in specs:
+            try:
+                by_future[self.pool.submit(_pool_task, s, str(folder), build_key)] = s
+            except BrokenProcessPool:  # a worker died while the shards were being handed out
+                self.futures = list(by_future)
+                yield lost_worker(s)
+                return
         self.futures = list(by_future)
         for fut in as_completed(by_future):
             spec = by_future[fut]

@@ -41,6 +41,8 @@ class GoalSet:
         self.path = Path(path)
         if not self.path.exists():
             raise DatasetError("file not found", file=self.path)
+        if not self.path.is_file():  # a FIFO or a device would block or never end
+            raise DatasetError("not a regular file (a folder, device or FIFO)", file=self.path)
         try:
             self.file = h5py.File(self.path, "r")
         except OSError as exc:

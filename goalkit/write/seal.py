@@ -120,7 +120,7 @@ def read_attrs(file: h5py.File, path) -> StoredAttrs:
         or when the file is not a goalkit set of a supported format version.
     """
     attrs = file.attrs
-    fmt = attrs.get("format") if "format" in attrs else None
+    fmt = _get(attrs, "format", path) if "format" in attrs else None
     if isinstance(fmt, bytes):
         fmt = fmt.decode("utf-8", "replace")
     if fmt != FORMAT_NAME:

@@ -238,3 +238,28 @@ def test_a_killed_worker_stops_the_build_in_one_line_and_the_rerun_resumes(gantr
     report = finish(cmd)
     assert report["shards"]["reused"] >= 3
     assert sha256(out) == ref_digest
+
+
+def test_a_pool_broken_while_shards_are_handed_out_reports_a_lost_worker(tmp_path):
+    # The race the start-up kill can hit: a worker dies before every shard is submitted, so
+    # submitting the next one raises BrokenProcessPool in the coordinator (not in a future).
+    from concurrent.futures.process import BrokenProcessPool
+
+    from goalkit.pipeline.shards import ShardSpec
+    from goalkit.pipeline.workers import LocalRunner, Payload
+
+    specs = [ShardSpec(index=i, start=i, stop=i + 1, first_episode=i, last_episode=i, transitions=5)
+             for i in range(4)]
+    runner = LocalRunner(1)
+    try:
+        runner.start(Payload(plan=None, source=None), tmp_path)
+        assert (tmp_path / "payload.pickle").is_file()
+        dying = runner.pool.submit(os._exit, 1)      # the worker process ends abruptly
+        assert isinstance(dying.exception(timeout=EXIT_WITHIN), BrokenProcessPool)
+        outcomes = list(runner.run(specs, tmp_path, "key"))
+    finally:
+        started = time.monotonic()
+        runner.close()
+        assert time.monotonic() - started < EXIT_WITHIN
+    assert [o["index"] for o in outcomes] == [0]
+    assert outcomes[0]["ok"] is False and outcomes[0]["error"]["type"] == "WorkerLost"

@@ -152,6 +152,15 @@ def test_a_fifo_named_as_a_log_file_is_reported_not_read(demo_set, tmp_path):
     assert f"source file {fifo}: not a regular file" in res.stdout
 
 
+def test_a_fifo_given_as_the_set_is_refused_not_opened(tmp_path):
+    fifo = tmp_path / "set.h5"
+    os.mkfifo(fifo)
+    res = subprocess.run([str(Path(sys.executable).with_name("goalkit")), "verify", str(fifo), "--quiet"],
+                         capture_output=True, text=True, timeout=60)
+    assert res.returncode == 2
+    assert res.stderr.strip() == f"goalkit: error: {fifo}: not a regular file (a folder, device or FIFO)"
+
+
 def test_set_built_with_a_seed_option_verifies_and_an_edited_seed_is_caught(demo_set, tmp_path):
     d = tmp_path / "demo"
     shutil.copytree(demo_set.parent, d)
