@@ -6,7 +6,8 @@ means something, resealed as a deliberate editor would (manifest entries and sea
 so that only verify's re-derivation can tell. Every case must end as a failure (exit 1) or a
 one-line DatasetError (exit 2): never a pass, a traceback or a hang.
 
-GOALKIT_FULL_CORPUS=1 also reseals every column edit of every column.
+GOALKIT_FULL_CORPUS=1 applies every column edit to every column of both splits, as is and resealed
+(the default: every column of the train split, three columns resealed; about 40 s on 2 busy cores).
 """
 
 import json
@@ -112,7 +113,7 @@ def test_every_single_modification_is_reported(demo_set, tmp_path):
     assert not wrong, wrong
     assert sorted(blind) == ["provenance.recipe_file: changed", "provenance.recipe_file: deleted",
                              "recipe line 3: seed = 6"]
-    assert len(cases) >= 500 and resealed >= 180
+    assert len(cases) >= 400 and resealed >= 180
 
 
 def test_cli_exit_status_and_one_line_for_broken_sets(demo_set, tmp_path):
