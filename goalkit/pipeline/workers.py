@@ -39,6 +39,8 @@ import numpy as np
 from goalkit.errors import GoalkitError
 from goalkit.pipeline.shards import write_shard
 
+#: Seconds between checks that every local worker process is still alive.
+LIVENESS_SECONDS = 0.2
 #: Arrays larger than this are spilled to a memory-mapped file instead of pickled.
 SPILL_BYTES = 1 << 20
 GOAL_TABLE_FILE = "goal_table.npy"
@@ -283,6 +285,7 @@ class LocalRunner:
         self.workers = int(workers)
         self.pool = None
         self.futures = []
+        self.broken = False
 
     def start(self, payload: Payload, folder) -> None:
         """Start the processes; each loads ``payload`` once, from a file written to ``folder``.
@@ -300,8 +303,15 @@ class LocalRunner:
                                         initializer=_init_worker, initargs=(path, digest, os.getpid()))
 
     def run(self, specs, folder, build_key: str):
-        """Submit every shard; yield task outcomes in completion order."""
-        from concurrent.futures import as_completed
+        """Submit every shard; yield task outcomes in completion order.
+
+        Besides the pool's own detection of a dead worker (a broken pool), the worker processes
+        are checked every :data:`LIVENESS_SECONDS` while shards are outstanding: the pool can miss
+        a worker that dies just as it is started (its exit is not among the events the pool is
+        waiting for) while the other workers wait on a queue lock the dead one held, and then
+        nothing would ever complete.
+        """
+        from concurrent.futures import FIRST_COMPLETED, wait
         from concurrent.futures.process import BrokenProcessPool
 
         by_future = {}
@@ -310,23 +320,45 @@ class LocalRunner:
                 by_future[self.pool.submit(_pool_task, s, str(folder), build_key)] = s
             except BrokenProcessPool:  # a worker died while the shards were being handed out
                 self.futures = list(by_future)
+                self.broken = True
                 yield lost_worker(s)
                 return
         self.futures = list(by_future)
-        for fut in as_completed(by_future):
-            spec = by_future[fut]
-            try:
-                yield fut.result()
-            except BrokenProcessPool:
-                yield lost_worker(spec)
-            except Exception as exc:
-                yield failure(spec, exc)
+        pending = set(by_future)
+        while pending:
+            done, pending = wait(pending, timeout=LIVENESS_SECONDS, return_when=FIRST_COMPLETED)
+            for fut in sorted(done, key=lambda f: by_future[f].index):
+                spec = by_future[fut]
+                try:
+                    yield fut.result()
+                except BrokenProcessPool:
+                    self.broken = True
+                    yield lost_worker(spec)
+                except Exception as exc:
+                    yield failure(spec, exc)
+            if pending and not done and self.dead_workers():
+                self.broken = True
+                yield lost_worker(min((by_future[f] for f in pending), key=lambda sp: sp.index))
+                return
+
+    def dead_workers(self) -> list:
+        """Process ids of pool workers that have exited (workers only exit at shutdown)."""
+        procs = getattr(self.pool, "_processes", None) or {}  # the pool's own map of its processes
+        return [pid for pid, proc in list(procs.items()) if proc.exitcode is not None]
 
     def close(self) -> None:
-        """Cancel queued shards, wait for running ones (they finish their shard files), stop."""
+        """Cancel queued shards, wait for running ones (they finish their shard files), stop.
+
+        When a worker has died, the others are terminated first: the pool's queues may be left
+        locked by the dead process, and waiting on them could take for ever.
+        """
         if self.pool is not None:
             for f in self.futures:
                 f.cancel()
+            if self.broken or self.dead_workers():
+                for proc in list((getattr(self.pool, "_processes", None) or {}).values()):
+                    if proc.exitcode is None:
+                        proc.terminate()
             self.pool.shutdown(wait=True, cancel_futures=True)
             self.pool = None
 
