@@ -266,12 +266,7 @@ def close_dataset(writer, plan, source, summary, log_files=None):
         The dataset path and its summary.
     """
     recipe, out = plan.recipe, plan.recipe.output
-    result = add_to_summary(summary.result(), plan.context)
-    skipped = list(getattr(source, "skipped", []))
-    result["skipped_episodes"] = len(skipped)
-    if skipped:
-        result["warnings"].append(f"{len(skipped)} episode(s) of the logs failed validation and were skipped "
-                                  f"(first: episode {skipped[0][0]}); the provenance lists them")
+    result = final_summary(summary, plan, source)
     prov = provenance(plan, source, log_files=log_files)
     episodes = {s: int(np.sum(plan.splits == c)) for c, s in enumerate(("train", "validation"))}
     path = writer.close(
@@ -280,3 +275,14 @@ def close_dataset(writer, plan, source, summary, log_files=None):
         split_attrs={s: {"episodes": n} for s, n in episodes.items()},
     )
     return path, result
+
+
+def final_summary(summary, plan, source) -> dict:
+    """The summary stored in a set, from a filled :class:`SummaryBuilder` (shared with verify)."""
+    result = add_to_summary(summary.result(), plan.context)
+    skipped = list(getattr(source, "skipped", []))
+    result["skipped_episodes"] = len(skipped)
+    if skipped:
+        result["warnings"].append(f"{len(skipped)} episode(s) of the logs failed validation and were skipped "
+                                  f"(first: episode {skipped[0][0]}); the provenance lists them")
+    return result

@@ -41,8 +41,8 @@ class DaskRunner:
     def description(self) -> str:
         return f"Dask scheduler {self.address or self.client.scheduler.address}"
 
-    def start(self, payload) -> None:
-        """Connect (when needed) and scatter ``payload`` to every worker once."""
+    def start(self, payload, folder=None) -> None:
+        """Connect (when needed) and scatter ``payload`` to every worker once (``folder`` unused)."""
         try:
             from distributed import Client
         except ImportError:

@@ -123,7 +123,7 @@ def build_sharded(recipe, runner, *, source=None, rows_per_shard: int | None = N
             assemble()
             if pending:
                 try:
-                    runner.start(make_payload(plan, source, folder.path))
+                    runner.start(make_payload(plan, source, folder.path), folder.path)
                 except OSError as exc:
                     raise DatasetError(f"cannot write the build folder ({os_reason(exc)})",
                                        file=folder.path) from None

@@ -13,11 +13,20 @@ The local pool is a :class:`concurrent.futures.ProcessPoolExecutor` with the ``s
 no fork of a coordinator that holds open HDF5 files and threads, no Dask scheduler or ports for a
 one-machine build, and a start-up of about a second. Each worker watches its parent and exits
 when the coordinator is gone (a SIGKILLed build leaves no orphans working on).
+
+The payload reaches local workers as a file, never through the start-up pipe. ``spawn`` writes
+a new process's start-up data to a pipe whose read end the parent itself still holds until the
+write ends; a payload larger than the pipe buffer (64 KiB on Linux) and a worker killed before
+reading it all would block the coordinator in that write for ever. With only a path and a
+SHA-256 on the pipe, a worker that dies at any moment (starting, loading the payload, mid-shard,
+after writing) is seen by the pool as a broken pool and the build stops in one line.
 """
 
 from __future__ import annotations
 
+import hashlib
 import os
+import pickle
 import threading
 import time
 from dataclasses import dataclass, fields, replace
@@ -31,6 +40,8 @@ from goalkit.errors import GoalkitError
 from goalkit.outputs import open_no_follow, write_own_file
 from goalkit.pipeline.shards import write_shard
 
+#: Seconds between checks that every local worker process is still alive.
+LIVENESS_SECONDS = 0.2
 #: Arrays larger than this are spilled to a memory-mapped file instead of pickled.
 SPILL_BYTES = 1 << 20
 GOAL_TABLE_FILE = "goal_table.npy"
@@ -215,7 +226,24 @@ def _watch_parent(parent: int, every: float = 0.2) -> None:
             os._exit(1)
 
 
-def _init_worker(payload: Payload, parent: int) -> None:
+PAYLOAD_FILE = "payload.pickle"
+
+
+def save_payload(payload: Payload, folder) -> tuple[str, str]:
+    """Pickle ``payload`` to ``folder``/payload.pickle (exclusive temporary name, then rename).
+
+    Returns
+    -------
+    (str, str)
+        The file's path and the SHA-256 of its bytes (checked by each worker before unpickling).
+    """
+    data = pickle.dumps(payload, protocol=pickle.HIGHEST_PROTOCOL)
+    path = Path(folder) / PAYLOAD_FILE
+    write_own_file(path, lambda f: f.write(data), what="build folder file")
+    return str(path), hashlib.sha256(data).hexdigest()
+
+
+def _init_worker(payload_path: str, digest: str, parent: int) -> None:
     import signal
 
     # Ctrl-C reaches the whole process group: the coordinator stops the build and reports what
@@ -223,8 +251,11 @@ def _init_worker(payload: Payload, parent: int) -> None:
     # started with SIGINT blocked (see LocalRunner.run); one pending since then is discarded.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
-    _WORKER["payload"] = payload
     threading.Thread(target=_watch_parent, args=(parent,), daemon=True).start()
+    data = Path(payload_path).read_bytes()
+    if hashlib.sha256(data).hexdigest() != digest:  # not the file this build wrote: refuse it
+        raise RuntimeError(f"{payload_path}: the payload file changed after the coordinator wrote it")
+    _WORKER["payload"] = pickle.loads(data)
 
 
 def _pool_task(spec, folder, build_key):
@@ -242,7 +273,7 @@ class LocalRunner:
     Examples
     --------
     >>> with LocalRunner(2) as runner:                                   # doctest: +SKIP
-    ...     runner.start(payload)
+    ...     runner.start(payload, folder)
     ...     for outcome in runner.run(specs, folder, key): ...
     """
 
@@ -254,44 +285,92 @@ class LocalRunner:
         self.workers = int(workers)
         self.pool = None
         self.futures = []
+        self.broken = False
 
-    def start(self, payload: Payload) -> None:
-        """Start the processes; each receives ``payload`` once."""
+    def start(self, payload: Payload, folder) -> None:
+        """Start the processes; each loads ``payload`` once, from a file written to ``folder``.
+
+        Raises
+        ------
+        OSError
+            When the payload file cannot be written.
+        """
         import multiprocessing
         from concurrent.futures import ProcessPoolExecutor
 
+        path, digest = save_payload(payload, folder)
         self.pool = ProcessPoolExecutor(self.workers, mp_context=multiprocessing.get_context("spawn"),
-                                        initializer=_init_worker, initargs=(payload, os.getpid()))
+                                        initializer=_init_worker, initargs=(path, digest, os.getpid()))
 
     def run(self, specs, folder, build_key: str):
-        """Submit every shard; yield task outcomes in completion order."""
-        from concurrent.futures import as_completed
+        """Submit every shard; yield task outcomes in completion order.
+
+        Besides the pool's own detection of a dead worker (a broken pool), the worker processes
+        are checked every :data:`LIVENESS_SECONDS` while shards are outstanding: the pool can miss
+        a worker that dies just as it is started (its exit is not among the events the pool is
+        waiting for) while the other workers wait on a queue lock the dead one held, and then
+        nothing would ever complete.
+        """
+        from concurrent.futures import FIRST_COMPLETED, wait
         from concurrent.futures.process import BrokenProcessPool
 
         import signal
 
+        by_future = {}
         # submitting starts the processes: they inherit a blocked SIGINT until _init_worker
         # ignores it, so a Ctrl-C while they start prints no traceback from a half-started worker
         blocked = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+        broken_at = None
         try:
-            by_future = {self.pool.submit(_pool_task, s, str(folder), build_key): s for s in specs}
+            for s in specs:
+                try:
+                    by_future[self.pool.submit(_pool_task, s, str(folder), build_key)] = s
+                except BrokenProcessPool:  # a worker died while the shards were being handed out
+                    broken_at = s
+                    break
         finally:
             signal.pthread_sigmask(signal.SIG_SETMASK, blocked)
+        if broken_at is not None:
+            self.futures = list(by_future)
+            self.broken = True
+            yield lost_worker(broken_at)
+            return
         self.futures = list(by_future)
-        for fut in as_completed(by_future):
-            spec = by_future[fut]
-            try:
-                yield fut.result()
-            except BrokenProcessPool:
-                yield lost_worker(spec)
-            except Exception as exc:
-                yield failure(spec, exc)
+        pending = set(by_future)
+        while pending:
+            done, pending = wait(pending, timeout=LIVENESS_SECONDS, return_when=FIRST_COMPLETED)
+            for fut in sorted(done, key=lambda f: by_future[f].index):
+                spec = by_future[fut]
+                try:
+                    yield fut.result()
+                except BrokenProcessPool:
+                    self.broken = True
+                    yield lost_worker(spec)
+                except Exception as exc:
+                    yield failure(spec, exc)
+            if pending and not done and self.dead_workers():
+                self.broken = True
+                yield lost_worker(min((by_future[f] for f in pending), key=lambda sp: sp.index))
+                return
+
+    def dead_workers(self) -> list:
+        """Process ids of pool workers that have exited (workers only exit at shutdown)."""
+        procs = getattr(self.pool, "_processes", None) or {}  # the pool's own map of its processes
+        return [pid for pid, proc in list(procs.items()) if proc.exitcode is not None]
 
     def close(self) -> None:
-        """Cancel queued shards, wait for running ones (they finish their shard files), stop."""
+        """Cancel queued shards, wait for running ones (they finish their shard files), stop.
+
+        When a worker has died, the others are terminated first: the pool's queues may be left
+        locked by the dead process, and waiting on them could take for ever.
+        """
         if self.pool is not None:
             for f in self.futures:
                 f.cancel()
+            if self.broken or self.dead_workers():
+                for proc in list((getattr(self.pool, "_processes", None) or {}).values()):
+                    if proc.exitcode is None:
+                        proc.terminate()
             self.pool.shutdown(wait=True, cancel_futures=True)
             self.pool = None
 

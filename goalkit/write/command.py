@@ -56,6 +56,9 @@ def verify(dataset, max_failures, sample, as_json, quiet):
                        f"validation rows re-derived from {report.checked.get('episodes', 0):,} episodes; "
                        f"{report.checked.get('columns', 0)} column checksums and "
                        f"{_count(report.checked.get('source_files', 0), 'source file')} match)")
+            if not report.checked.get("sealed", True):
+                click.echo(f"  note: a format version {report.checked.get('format_version')} set has no seal: its "
+                           f"attributes were checked by re-derivation only")
         else:
             click.echo(f"NOT consistent: {dataset}")
             for f in report.failures:

@@ -3,18 +3,21 @@
 A built set is one HDF5 file::
 
     /                     attributes: format, format_version, goalkit_version, mode, seed,
-                          recipe (TOML text), provenance (JSON), summary (JSON), manifest (JSON)
+                          recipe (TOML text), provenance (JSON), summary (JSON), manifest (JSON),
+                          seal (format version 2)
     /train/<column>       one row per (transition, goal) pair, rows sorted by
-    /validation/<column>  (source_episode, source_step, slot)
+    /validation/<column>  (source_episode, source_step, slot); group attributes rows, episodes
 
 Every column is chunked along rows. ``manifest`` maps ``"split/column"`` to the SHA-256 of the
-column's bytes in C order, so a reader can check any array without trusting the file.
+column's bytes in C order, so a reader can check any array without trusting the file. ``seal``
+is the SHA-256 of every attribute and every column's dtype, shape and storage (see
+:mod:`goalkit.write.seal`). Version 1 sets (no seal) are still read and verified.
 """
 
 from __future__ import annotations
 
 FORMAT_NAME = "goalkit-goal-set"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 SPLITS = ("train", "validation")
 SPLIT_CODES = {"train": 0, "validation": 1}
 

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import hashlib
-import json
 from pathlib import Path
 from typing import Iterator
 
@@ -11,7 +10,7 @@ import h5py
 import numpy as np
 
 from goalkit.errors import DatasetError
-from goalkit.write.format import FORMAT_NAME, FORMAT_VERSION, MATERIAL_COLUMNS, SPLITS
+from goalkit.write.format import MATERIAL_COLUMNS, SPLITS
 
 
 class GoalSet:
@@ -42,31 +41,25 @@ class GoalSet:
         self.path = Path(path)
         if not self.path.exists():
             raise DatasetError("file not found", file=self.path)
+        if not self.path.is_file():  # a FIFO or a device would block or never end
+            raise DatasetError("not a regular file (a folder, device or FIFO)", file=self.path)
         try:
             self.file = h5py.File(self.path, "r")
         except OSError as exc:
             raise DatasetError(f"not a readable HDF5 file ({exc})", file=self.path) from None
-        attrs = self.file.attrs
-        if attrs.get("format") != FORMAT_NAME:
-            self.file.close()
-            raise DatasetError(f"not a goalkit set: attribute 'format' is {attrs.get('format')!r}, "
-                               f"expected {FORMAT_NAME!r}", file=self.path, key="format")
-        raw = attrs.get("format_version", -1)
+        from goalkit.write.seal import read_attrs
+
         try:
-            version = int(raw)
-        except (TypeError, ValueError):
-            version = None
-        if version is None or version > FORMAT_VERSION or version < 1:
+            self.stored = read_attrs(self.file, self.path)
+        except DatasetError:
             self.file.close()
-            shown = version if version is not None else repr(raw)
-            raise DatasetError(f"format version {shown} is not supported by this goalkit "
-                               f"(reads version 1 .. {FORMAT_VERSION})", file=self.path, key="format_version")
-        self.mode = str(attrs["mode"])
-        self.seed = int(attrs["seed"])
-        self.recipe = str(attrs["recipe"])
-        self.provenance = json.loads(attrs["provenance"])
-        self.summary = json.loads(attrs["summary"])
-        self.manifest = json.loads(attrs["manifest"])
+            raise
+        self.mode = self.stored.mode
+        self.seed = self.stored.seed
+        self.recipe = self.stored.recipe
+        self.provenance = self.stored.provenance
+        self.summary = self.stored.summary
+        self.manifest = self.stored.manifest
         self._logs = None
 
     # ---- context manager -------------------------------------------------------------
@@ -85,11 +78,15 @@ class GoalSet:
     def _group(self, split: str):
         if split not in SPLITS:
             raise DatasetError(f"unknown split {split!r}; splits are {', '.join(SPLITS)}", file=self.path)
-        return self.file[split]
+        from goalkit.write.seal import split_group
+
+        return split_group(self.file, split, self.path)
 
     def rows(self, split: str = "train") -> int:
         """Number of rows in ``split``."""
-        return int(self._group(split).attrs["rows"])
+        from goalkit.write.seal import split_rows
+
+        return split_rows(self.file, split, self.path)
 
     def columns(self, split: str = "train") -> list[str]:
         """Column names stored in ``split`` (writing order)."""
@@ -128,9 +125,14 @@ class GoalSet:
         want = list(columns) if columns is not None else stored + (
             list(MATERIAL_COLUMNS) if self.mode == "indexed" and resolve else [])
         out = {}
+        rows = self.rows(split)
         for name in want:
             if name in stored:
-                out[name] = group[name][start:stop]
+                ds = group[name]
+                if not isinstance(ds, h5py.Dataset) or ds.ndim < 1 or ds.shape[0] != rows:
+                    raise DatasetError(f"expected a column of {rows} rows (the split's rows attribute), found "
+                                       f"{getattr(ds, 'shape', 'a group')}", file=self.path, key=f"{split}/{name}")
+                out[name] = ds[start:stop]
             elif name in MATERIAL_COLUMNS and self.mode == "indexed" and resolve:
                 continue
             else:

@@ -31,8 +31,15 @@ def recipe_of(goalset):
     from goalkit.pipeline.recipe import parse_recipe
 
     prov = goalset.provenance
+    for key, required in (("recipe_file", False), ("layout_path", False), ("logs_path", True)):
+        value = prov.get(key)
+        if (required and not value) or not isinstance(value, (str, type(None))):
+            raise DatasetError("expected the path as text", file=goalset.path, key=f"provenance.{key}")
     base = Path(prov["recipe_file"]).parent if prov.get("recipe_file") else Path.cwd()
-    recipe = parse_recipe(goalset.recipe, file=f"{goalset.path}:recipe", base=base)
+    try:
+        recipe = parse_recipe(goalset.recipe, file=f"{goalset.path}:recipe", base=base)
+    except GoalkitError as exc:
+        raise DatasetError(f"the stored recipe cannot be used: {exc}", file=goalset.path, key="recipe") from None
     layout = Path(prov["layout_path"]) if prov.get("layout_path") else None
     return replace(recipe, logs_path=Path(prov["logs_path"]), layout_path=layout)
 
@@ -46,6 +53,8 @@ def open_logs_of(goalset) -> LogsOfSet:
     recipe = recipe_of(goalset)
     prov = goalset.provenance
     layout = None
+    if not isinstance(prov.get("layout_text", ""), str):
+        raise DatasetError("expected TOML text", file=goalset.path, key="provenance.layout_text")
     if prov.get("layout_text"):
         layout = parse_layout(parse_toml(prov["layout_text"], f"{goalset.path}:layout", DatasetError),
                               f"{goalset.path}:layout")

@@ -2,15 +2,26 @@
 
 Checks, in order:
 
-1. the source log files still have the checksums recorded at build time;
-2. every column matches the manifest's SHA-256;
-3. row by row, from the logs: observations, actions and next observations are the logged
-   steps; every goal equals phi at its recorded source step (or the log's task goal for
+0. the file holds what a set holds and nothing else (attributes, groups, columns, each column as
+   long as its split's ``rows`` attribute, the manifest listing exactly the stored columns) and
+   its seal matches (format version 2; see :mod:`goalkit.write.seal`);
+1. the source log files (regular files only) still have the checksums recorded at build time;
+2. the stored recipe, run with the set's ``seed`` attribute, produces exactly the stored columns
+   (names, dtypes, row shapes, chunking, compression) and the ``rows`` and ``episodes``
+   attributes of each split (checked before any column is read);
+3. every column matches the manifest's SHA-256; row by row, from the logs: observations,
+   actions and next observations are the logged steps; every goal equals phi at its recorded source step (or the log's task goal for
    ``original`` rows); each strategy's rule holds (future goals come from the same episode
    strictly after the transition, final goals are the last state, and so on); no goal crosses
    the split; ``steps_to_goal`` is ``j - t``; distance, reward, reached flag and terminal flag
    recompute from the reward rule;
-4. the rows are exactly what the recipe and seed produce (the relabelling is re-run).
+4. the rows are exactly what the stored recipe and the set's ``seed`` attribute produce (the
+   relabelling is re-run);
+5. the summary and the provenance equal the ones re-derived from those rows, the recipe and the
+   logs (only ``provenance.recipe_file`` and ``goalkit_version`` are recorded facts, covered by
+   the seal; the latter must agree with the root attribute);
+6. an audit that shares no code with the builder (:mod:`goalkit.audit`, docs/audit.md): every
+   row against the documented rules, and the draws against their documented laws.
 """
 
 from __future__ import annotations
@@ -19,9 +30,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from goalkit.errors import DatasetError, GoalkitError
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.write.format import SPLITS
-from goalkit.write.provenance import file_digest
 
 
 @dataclass
@@ -181,38 +192,58 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) 
     Returns
     -------
     VerifyReport
+
+    Raises
+    ------
+    DatasetError
+        When the file cannot be read as a set (naming the file and the key).
     """
-    from goalkit.pipeline.build import chunk_transitions
+    from goalkit.pipeline.build import chunk_transitions, final_summary
     from goalkit.pipeline.chunk import relabel_chunk
-    from goalkit.pipeline.plan import make_plan
+    from goalkit.pipeline.plan import make_plan, split_rows, strategy_names
+    from goalkit.pipeline.summary import SummaryBuilder
     from goalkit.write.reader import GoalSet
-    from goalkit.write.resolve import recipe_of
+    from goalkit.write.rederive import (as_stored, check_columns, differences, provenance_differences,
+                                        source_entries, source_problem, stored_recipe)
+    from goalkit.write.seal import check_layout, check_seal
 
     report = VerifyReport(max_failures=max_failures)
     with GoalSet(path) as gs:
+        # 0. what is stored: attributes, groups and columns as a set has them; the seal
+        for message in check_layout(gs.file, gs.path, gs.stored) + check_seal(gs.file, gs.stored):
+            report.fail(message)
+        report.checked["sealed"] = gs.stored.seal is not None
+        report.checked["format_version"] = gs.stored.version
+        if not report.ok:
+            return report
         # 1. source files
-        library_files = (gs.provenance.get("library") or {}).get("files", [])
-        for entry in gs.provenance.get("log_files", []) + gs.provenance.get("embedding_files", []) + library_files:
-            try:
-                digest = file_digest(entry["path"])
-            except OSError as exc:
-                report.fail(f"source file {entry['path']}: cannot be read ({exc.strerror})")
-                continue
-            if digest != entry["sha256"]:
-                report.fail(f"source file {entry['path']}: changed since the build (checksum differs)")
+        entries = source_entries(gs)
+        digests = {}
+        for entry in entries:
+            problem = source_problem(entry, digests)
+            if problem:
+                report.fail(f"source file {entry['path']}: {problem}")
         report.checked["source_files"] = len(gs.provenance.get("log_files", []))
         if not report.ok:
             return report
-        # 2. manifest
+        # 2. the recipe with the set's own seed; the columns and row counts it produces (before
+        #    any column is read, so a huge declared column is never read)
+        recipe = stored_recipe(gs, report)
+        if recipe is None:
+            return report
+        try:
+            plan, source = make_plan(recipe)
+        except GoalkitError as exc:
+            raise DatasetError(f"cannot reopen what this set was built from: {exc}", file=gs.path) from None
+        if not check_columns(gs, plan, split_rows(plan), report):
+            return report
+        # 3. manifest
         for message in gs.check_manifest():
             report.fail(message)
         report.checked["columns"] = len(gs.manifest)
-        # 3 + 4. rows
-        recipe = recipe_of(gs)
-        from dataclasses import replace
-
-        recipe = replace(recipe, output=replace(recipe.output, mode=gs.mode))
-        plan, source = make_plan(recipe)
+        # 4 + 5. rows, checked and re-derived; the summary re-derived alongside
+        gpt = recipe.mixture.goals_per_transition
+        summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed)
         cursor = {s: 0 for s in SPLITS}
         total = {s: gs.rows(s) for s in SPLITS}
         stored_names = {s: gs.columns(s) for s in SPLITS}
@@ -229,6 +260,7 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) 
                 check_rows(plan, chunk, stored, s, report, lo)
                 if n:
                     _compare(fresh.columns[s], stored, s, lo, report)
+                    summary.add(s, fresh.columns[s], fresh.keys[s])
                 cursor[s] = hi
             if progress is not None:
                 progress(int(plan.lengths[a:b].sum()), plan.total_transitions)
@@ -237,7 +269,12 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) 
                 report.fail(f"{s}: {total[s]} rows stored, the recipe produces {cursor[s]}")
         report.checked["rows"] = {s: total[s] for s in SPLITS}
         report.checked["episodes"] = int(len(plan.episode_ids))
-    if audit:  # 5. rules and laws re-stated independently of the builder (docs/audit.md)
+        # 5. summary and provenance, re-derived
+        for message in differences(as_stored(final_summary(summary, plan, source)), gs.summary, "summary"):
+            report.fail(message)
+        for message in provenance_differences(gs, plan, source, digests):
+            report.fail(message)
+    if audit:  # 6. rules and laws re-stated independently of the builder (docs/audit.md)
         from goalkit.audit import audit_into
 
         audit_into(path, report)

@@ -26,6 +26,7 @@ from goalkit.outputs import discard, open_hdf5, publish, refuse_existing
 from goalkit.write.format import FORMAT_NAME, FORMAT_VERSION, SPLITS, is_goal_set
 from goalkit.write.chunkcodec import GZIP_LEVEL, gzip_chunk
 from goalkit.write.gather import RowGather
+from goalkit.write.seal import write_seal
 
 #: Threads compressing whole chunks of gzip sets.
 ENCODE_THREADS = 2
@@ -338,6 +339,7 @@ class SetWriter:
                 self.file[s].attrs["rows"] = self.rows[s]
                 for key, value in sorted((split_attrs or {}).get(s, {}).items()):
                     self.file[s].attrs[key] = _attr(value)
+            write_seal(self.file)  # last: covers every attribute above and the datasets' layout
             self.file.close()
         except (OSError, RuntimeError) as exc:  # HDF5 reports a failed final flush as RuntimeError
             raise OutputWriteError(os_reason(exc), file=self.path) from None

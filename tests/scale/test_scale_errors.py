@@ -57,8 +57,10 @@ def test_file_size_limit_stops_the_build_and_the_rerun_completes(gantry, referen
     out = tmp_path / "scale-goals.h5"
     cmd = [GOALKIT, "build", str(gantry / "scale-recipe.toml"), "--out", str(out), "--workers", "2",
            "--chunk-rows", "1000", "--quiet", "--json"]
-    # 1. a limit below one shard file: the first shard the workers write fails
-    res = subprocess.run(cmd, capture_output=True, text=True, timeout=120, preexec_fn=_limit_file_size(50_000))
+    # 1. a limit below one shard file (larger shards here) but above the workers' payload file
+    #    (about 0.3 MB, written by the coordinator first): the first shard the workers write fails
+    big = [a if a != "1000" else "20000" for a in cmd]
+    res = subprocess.run(big, capture_output=True, text=True, timeout=120, preexec_fn=_limit_file_size(1_000_000))
     assert res.returncode == 2, res.stderr
     line = res.stderr.strip()
     assert "\n" not in line and re.search(r"shard \d+ \(episodes \d+\.\.\d+\): cannot write its shard file "

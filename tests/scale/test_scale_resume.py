@@ -14,6 +14,7 @@ import time
 
 import numpy as np
 import psutil
+import pytest
 
 from goalkit.pipeline.buildfolder import folder_of
 from goalkit.pipeline.shards import shard_meta
@@ -124,6 +125,96 @@ def test_changed_seed_clears_old_shards_and_a_corrupt_shard_is_recomputed(gantry
     assert sha256(out) == sha256(ref)
 
 
+def _workers(pid):
+    """The pool's worker processes (spawned interpreters) of the build process ``pid``."""
+    out = []
+    for child in psutil.Process(pid).children():
+        try:
+            if "spawn_main" in " ".join(child.cmdline()):
+                out.append(child)
+        except psutil.Error:
+            pass
+    return out
+
+
+def _partial_shards(out):
+    """pid -> temporary shard file currently being written by that worker."""
+    folder = folder_of(out)
+    found = {}
+    for p in folder.glob(".shard-*.npz.partial-*") if folder.exists() else []:
+        found[int(p.name.rsplit("-", 1)[1])] = p
+    return found
+
+
+def _kill_at(proc, out, moment, deadline):
+    """Wait for ``moment`` of the build's life and SIGKILL one worker; return the kill time."""
+    first_seen, writing = None, set()
+    while True:
+        assert proc.poll() is None, f"the build ended before the kill point ({moment}): {proc.communicate()}"
+        assert time.monotonic() < deadline, f"never reached the kill point {moment}"
+        workers = _workers(proc.pid)
+        victim = None
+        if moment == "start-up" and workers:
+            victim = workers[0].pid            # just spawned: still starting its interpreter
+        elif moment == "loading" and first_seen is not None and time.monotonic() - first_seen > 0.3:
+            victim = workers[0].pid            # about 0.3 s in: importing goalkit, loading the payload
+        elif moment == "mid-shard" and len(shard_files(out)) >= 3 and len(workers) == 2:
+            victim = workers[0].pid
+        elif moment in ("writing", "after-writing"):
+            partial = _partial_shards(out)
+            if moment == "writing" and partial:
+                victim = next(iter(partial))   # its shard file is half written
+            elif moment == "after-writing":
+                gone = [pid for pid in writing if pid not in partial]
+                writing = set(partial)
+                if gone and len(shard_files(out)) >= 2:
+                    victim = gone[0]           # it has just renamed its shard into place
+        if workers and first_seen is None:
+            first_seen = time.monotonic()
+        if victim is not None:
+            try:
+                os.kill(victim, signal.SIGKILL)
+            except ProcessLookupError:
+                continue
+            return time.monotonic()
+        time.sleep(0.001)
+
+
+#: Moments of a worker's life at which it is killed (each must stop the build in one line).
+#: Start-up is tried three times: a worker dying as the pool starts it could go unnoticed by the
+#: pool (about one run in two hung before the runner checked its workers' liveness).
+KILL_MOMENTS = ("start-up", "start-up", "start-up", "loading", "mid-shard", "writing", "after-writing")
+
+
+@pytest.mark.parametrize("moment", KILL_MOMENTS)
+def test_a_worker_killed_at_any_moment_stops_the_build_in_one_line(gantry, tmp_path, moment):
+    # A hang fails the test: the build must exit (status 2) within seconds of the kill.
+    out = tmp_path / "scale-goals.h5"
+    proc = subprocess.Popen(command(gantry, out), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        killed = _kill_at(proc, out, moment, time.monotonic() + 60)
+        _, err = proc.communicate(timeout=EXIT_WITHIN)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait(10)
+    took = time.monotonic() - killed
+    assert proc.returncode == 2, (moment, err)
+    line = err.strip()
+    assert "\n" not in line and "Traceback" not in line, line
+    assert re.search(r"shard \d+ \(episodes \d+\.\.\d+\): a worker process died", line), line
+    assert took < EXIT_WITHIN
+    print(f"worker killed at {moment}: build exited 2 after {took:.2f} s")
+    assert not out.exists()
+    # every finished shard is kept and checks out for the next run
+    for p in shard_files(out):
+        assert shard_meta(p)["format"] == "goalkit-shard"
+
+
+#: Seconds a build may take to stop after one of its workers is killed.
+EXIT_WITHIN = 15
+
+
 def test_a_killed_worker_stops_the_build_in_one_line_and_the_rerun_resumes(gantry, reference, tmp_path):
     _, ref_digest = reference
     out = tmp_path / "scale-goals.h5"
@@ -133,11 +224,14 @@ def test_a_killed_worker_stops_the_build_in_one_line_and_the_rerun_resumes(gantr
     while len(shard_files(out)) < 3:
         assert proc.poll() is None and time.monotonic() < deadline
         time.sleep(0.002)
-    workers = [p for p in psutil.Process(proc.pid).children()
-               if "resource_tracker" not in " ".join(p.cmdline())]
+    workers = _workers(proc.pid)
     assert len(workers) == 2
     os.kill(workers[0].pid, signal.SIGKILL)
-    _, err = proc.communicate(timeout=60)
+    try:
+        _, err = proc.communicate(timeout=EXIT_WITHIN)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
     assert proc.returncode == 2
     line = err.strip()
     assert "\n" not in line and "Traceback" not in line
@@ -146,3 +240,28 @@ def test_a_killed_worker_stops_the_build_in_one_line_and_the_rerun_resumes(gantr
     report = finish(cmd)
     assert report["shards"]["reused"] >= 3
     assert sha256(out) == ref_digest
+
+
+def test_a_pool_broken_while_shards_are_handed_out_reports_a_lost_worker(tmp_path):
+    # The race the start-up kill can hit: a worker dies before every shard is submitted, so
+    # submitting the next one raises BrokenProcessPool in the coordinator (not in a future).
+    from concurrent.futures.process import BrokenProcessPool
+
+    from goalkit.pipeline.shards import ShardSpec
+    from goalkit.pipeline.workers import LocalRunner, Payload
+
+    specs = [ShardSpec(index=i, start=i, stop=i + 1, first_episode=i, last_episode=i, transitions=5)
+             for i in range(4)]
+    runner = LocalRunner(1)
+    try:
+        runner.start(Payload(plan=None, source=None), tmp_path)
+        assert (tmp_path / "payload.pickle").is_file()
+        dying = runner.pool.submit(os._exit, 1)      # the worker process ends abruptly
+        assert isinstance(dying.exception(timeout=EXIT_WITHIN), BrokenProcessPool)
+        outcomes = list(runner.run(specs, tmp_path, "key"))
+    finally:
+        started = time.monotonic()
+        runner.close()
+        assert time.monotonic() - started < EXIT_WITHIN
+    assert [o["index"] for o in outcomes] == [0]
+    assert outcomes[0]["ok"] is False and outcomes[0]["error"]["type"] == "WorkerLost"
