@@ -36,13 +36,15 @@ except ImportError:  # pragma: no cover
     fcntl = None
 
 KEY_FILE = "build.json"
+#: The plan and log index handed to local worker processes (goalkit.pipeline.workers).
+PAYLOAD_FILE = "payload.pickle"
 LOCK_FILE = "lock"
 _SHARD_NAME = re.compile(r"^shard-[0-9]{5,}\.npz$")
 
 
 def is_own_entry(name: str) -> bool:
     """True for the names goalkit gives its files in a build folder (the only ones it deletes)."""
-    if name in (KEY_FILE, LOCK_FILE) or _SHARD_NAME.match(name) or parse_temporary(name) is not None:
+    if name in (KEY_FILE, LOCK_FILE, PAYLOAD_FILE) or _SHARD_NAME.match(name) or parse_temporary(name) is not None:
         return True
     from goalkit.pipeline.workers import SPILLS
 

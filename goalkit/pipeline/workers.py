@@ -38,6 +38,7 @@ import numpy as np
 
 from goalkit.errors import GoalkitError
 from goalkit.outputs import open_no_follow, write_own_file
+from goalkit.pipeline.buildfolder import PAYLOAD_FILE
 from goalkit.pipeline.shards import write_shard
 
 #: Seconds between checks that every local worker process is still alive.
@@ -224,9 +225,6 @@ def _watch_parent(parent: int, every: float = 0.2) -> None:
         time.sleep(every)
         if os.getppid() != parent:
             os._exit(1)
-
-
-PAYLOAD_FILE = "payload.pickle"
 
 
 def save_payload(payload: Payload, folder) -> tuple[str, str]:

@@ -139,10 +139,14 @@ def _workers(pid):
 
 def _partial_shards(out):
     """pid -> temporary shard file currently being written by that worker."""
+    from goalkit.outputs import parse_temporary
+
     folder = folder_of(out)
     found = {}
-    for p in folder.glob(".shard-*.npz.partial-*") if folder.exists() else []:
-        found[int(p.name.rsplit("-", 1)[1])] = p
+    for p in folder.iterdir() if folder.exists() else []:
+        parts = parse_temporary(p.name)
+        if parts is not None and parts["stem"].startswith("shard-"):
+            found[parts["pid"]] = p
     return found
 
 

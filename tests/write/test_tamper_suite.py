@@ -147,7 +147,7 @@ def test_a_fifo_named_as_a_log_file_is_reported_not_read(demo_set, tmp_path):
         prov["log_files"][0]["path"] = str(fifo)
         f.attrs["provenance"] = json.dumps(prov)
     reseal(path)
-    res = subprocess.run([str(Path(sys.executable).with_name("goalkit")), "verify", str(path), "--quiet"],
+    res = subprocess.run([str(Path(sys.executable).with_name("goalkit")), "verify", str(path)],
                          capture_output=True, text=True, timeout=60)
     assert res.returncode == 1, res.stderr
     assert f"source file {fifo}: not a regular file" in res.stdout
@@ -171,7 +171,7 @@ def test_set_built_with_a_seed_option_verifies_and_an_edited_seed_is_caught(demo
     assert res.exit_code == 0, res.output
     with h5py.File(d / "s7.h5") as f:
         assert int(f.attrs["seed"]) == 7 and "seed = 5" in f.attrs["recipe"]
-    res = runner.invoke(main, ["verify", str(d / "s7.h5"), "--quiet"])
+    res = runner.invoke(main, ["verify", str(d / "s7.h5")])
     assert res.exit_code == 0 and res.output.startswith("consistent:"), res.output
     # the seed attribute edited: the seal no longer matches
     shutil.copy(d / "s7.h5", d / "edited.h5")
@@ -191,7 +191,7 @@ def test_a_format_version_1_set_still_verifies_with_a_note(demo_set, tmp_path):
     with h5py.File(path, "r+") as f:  # what goalkit wrote before the seal
         del f.attrs["seal"]
         f.attrs["format_version"] = 1
-    res = CliRunner().invoke(main, ["verify", str(path), "--quiet"])
+    res = CliRunner().invoke(main, ["verify", str(path)])
     assert res.exit_code == 0, res.output
     assert "note: a format version 1 set has no seal" in res.output
     with h5py.File(path, "r+") as f:  # a v1 set with an attribute v1 sets never had
