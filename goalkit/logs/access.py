@@ -201,8 +201,8 @@ class H5Access:
             raise self._error(problem, key)
         try:
             dsid = h5py.h5d.open(self.group.id, key.encode("utf-8"))
-        except KeyError:                     # missing, or not a dataset
-            return None
+        except KeyError as exc:              # missing, not a dataset, or a damaged object header
+            return self._why_not_opened(key, exc)
         except READ_ERRORS as exc:
             raise self._error(f"cannot open dataset, the file may be corrupt ({short(exc)})", key) from exc
         try:
@@ -231,6 +231,22 @@ class H5Access:
                                   f"link or key shared by episodes); expected each episode to hold "
                                   f"its own data", key)
         return (dsid, shape, dtype)
+
+    def _why_not_opened(self, key, exc):
+        """None when ``key`` is missing or names a group; a LogError when its object is damaged."""
+        try:
+            exists = self.group.id.links.exists(key.encode("utf-8"))
+        except READ_ERRORS:
+            exists = False
+        if not exists:
+            return None
+        try:
+            obj = h5py.h5o.open(self.group.id, key.encode("utf-8"))
+        except READ_ERRORS as exc2:
+            raise self._error(f"cannot open dataset, the file may be corrupt ({short(exc2)})", key) from exc
+        if isinstance(obj, h5py.h5d.DatasetID):
+            raise self._error(f"cannot open dataset, the file may be corrupt ({short(exc)})", key) from exc
+        return None
 
     def has(self, key: str) -> bool:
         """True when ``key`` is a dataset of the group."""

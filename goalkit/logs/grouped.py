@@ -22,7 +22,7 @@ import h5py
 
 from goalkit.errors import LogError
 from goalkit.logs import limits
-from goalkit.logs.access import READ_ERRORS, H5Access, describe_link, guard, open_h5
+from goalkit.logs.access import READ_ERRORS, H5Access, describe_link, guard, open_h5, short
 from goalkit.logs.episodic import EpisodicSource, join_parts, read_episode
 from goalkit.logs.naming import natural_sorted
 
@@ -72,7 +72,11 @@ def match_groups(h5file, pattern: str, file=None) -> list[str]:
         level = nxt
     seen = {}
     for path, obj in level:
-        info = h5py.h5o.get_info(obj.id)
+        try:
+            info = h5py.h5o.get_info(obj.id)
+        except READ_ERRORS as exc:
+            raise LogError(f"cannot read the group, the file may be corrupt ({short(exc)})", file=file,
+                           key=path) from None
         other = seen.setdefault((info.fileno, info.addr), path)
         if other != path:
             raise LogError(f"is the same group as {other} (a link); expected each episode group to "

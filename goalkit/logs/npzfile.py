@@ -101,7 +101,8 @@ class NpzArrays:
                     stored = info.compress_type == zipfile.ZIP_STORED
                     offset = info.header_offset + _local_header_size(fh, info.header_offset) if stored else 0
                 except _ZIP_ERRORS as exc:
-                    raise LogError(f"not a valid .npy array inside the .npz ({exc})",
+                    raise LogError(f"not a readable .npy array inside the .npz, the file may be corrupt "
+                                   f"({exc})",
                                    file=self.path, key=name, episode=episode) from None
                 self.members[name] = Member(name, tuple(shape), np.dtype(dtype), bool(fortran),
                                             data_start, stored, offset)

@@ -128,7 +128,10 @@ def _path(value, base: Path, file, key) -> Path:
     if not value:
         raise RecipeError("expected a path, got an empty string", file=file, key=key)
     p = Path(value).expanduser()
-    return (p if p.is_absolute() else base / p).resolve()
+    try:
+        return (p if p.is_absolute() else base / p).resolve()
+    except (RuntimeError, OSError):          # a symbolic link loop (RuntimeError before Python 3.13)
+        raise RecipeError(f"expected a path, got a symbolic link loop: {value}", file=file, key=key) from None
 
 
 def _parse_goal(table, base, file) -> GoalSpec:
