@@ -14,6 +14,7 @@ header) become one LogError naming the file, the key, the episode and the rows.
 from __future__ import annotations
 
 import contextlib
+import math
 import posixpath
 import zipfile
 import zlib
@@ -108,28 +109,43 @@ def describe_link(h5file, path: str) -> str | None:
     return f"is a chain of more than 64 soft links ({' -> '.join(chain[:4])} -> ...)"
 
 
+_PREFIXES: dict = {}
+
+
+def _prefixes(key: str) -> list:
+    """``[(prefix, prefix as bytes), ...]`` of each path component of ``key`` (cached)."""
+    found = _PREFIXES.get(key)
+    if found is None:
+        parts = [p for p in key.split("/") if p]
+        base = "/" if key.startswith("/") else ""
+        found = [(base + "/".join(parts[: i + 1]),) for i in range(len(parts))]
+        found = _PREFIXES[key] = [(p, p.encode("utf-8")) for (p,) in found]
+    return found
+
+
 def link_problem(group, key: str) -> str | None:
     """A phrase when some component of ``key`` inside ``group`` is an external link or a soft
     link that does not resolve; None when every component is a hard link or a good soft link,
     or the key is simply missing (one low-level look-up per component)."""
-    parts = [p for p in key.split("/") if p]
-    base = "/" if key.startswith("/") else ""
-    for i in range(len(parts)):
-        prefix = base + "/".join(parts[: i + 1])
+    links = group.id.links
+    for prefix, raw in _prefixes(key):
         try:
-            info = group.id.links.get_info(prefix.encode("utf-8"))
+            kind = links.get_info(raw).type
         except READ_ERRORS:
             break                                    # missing (or behind a broken link: see below)
-        if info.type == h5py.h5l.TYPE_HARD:
+        if kind == _HARD:
             continue
         full = prefix if prefix.startswith("/") else posixpath.join(group.name, prefix)
-        if info.type == h5py.h5l.TYPE_EXTERNAL:
+        if kind == h5py.h5l.TYPE_EXTERNAL:
             return describe_link(group.file, full)
         try:
-            h5py.h5o.open(group.id, prefix.encode("utf-8"))
+            h5py.h5o.open(group.id, raw)
         except READ_ERRORS:
             return describe_link(group.file, full) or "is a soft link that does not resolve"
     return None
+
+
+_HARD = h5py.h5l.TYPE_HARD
 
 
 class H5Access:
@@ -211,14 +227,16 @@ class H5Access:
         except READ_ERRORS as exc:
             raise self._error(f"cannot read the dataset's shape or type, the file may be corrupt "
                               f"({short(exc)})", key) from exc
-        bound = None
-        if self.file_size is not None and shape and dtype.itemsize:
-            declared = int(np.prod(shape, dtype=object)) * dtype.itemsize
-            bound = limits.h5_byte_bound(dsid, declared, self.file_size)
-        limits.check_declared(shape, dtype, max_rows=self.max_rows,
-                              max_bytes=None if bound is None else bound[0],
-                              bound="" if bound is None else bound[1],
-                              file=self.file, key=self.where(key), episode=self.episode)
+        if shape:
+            per_row = math.prod(shape[1:])
+            declared = shape[0] * per_row * dtype.itemsize
+            if not (0 < per_row <= limits.MAX_ROW_VALUES and shape[0] <= self.max_rows
+                    and (self.file_size is None or declared <= self.file_size)):
+                bound = None if self.file_size is None else limits.h5_byte_bound(dsid, declared, self.file_size)
+                limits.check_declared(shape, dtype, max_rows=self.max_rows,
+                                      max_bytes=None if bound is None else bound[0],
+                                      bound="" if bound is None else bound[1],
+                                      file=self.file, key=self.where(key), episode=self.episode)
         if self.seen is not None:
             try:
                 info = h5py.h5o.get_info(dsid)
@@ -269,19 +287,23 @@ class H5Access:
     def read(self, key: str, start=None, stop=None) -> np.ndarray:
         """Rows ``start:stop`` (default all) of dataset ``key``."""
         dsid, shape, dtype = self._require(key)
-        if shape == ():
-            with guard(self.file, self.where(key), self.episode, "cannot read dataset"):
+        a = b = None
+        try:
+            if shape == ():
                 return np.asarray(self.group[key][()])
-        n = shape[0]
-        a = 0 if start is None else max(0, min(int(start), n))
-        b = n if stop is None else max(a, min(int(stop), n))
-        with guard(self.file, self.where(key), self.episode, "cannot read dataset", rows=(a, b)):
+            n = shape[0]
+            a = 0 if start is None else max(0, min(int(start), n))
+            b = n if stop is None else max(a, min(int(stop), n))
             if (a, b) == (0, n) and dtype.kind in "biuf":
                 out = np.empty(shape, dtype=dtype)
                 if out.size:
                     dsid.read(h5py.h5s.ALL, h5py.h5s.ALL, out, mtype=memory_type(dtype))
                 return out
             return self.group[key][a:b]
+        except READ_ERRORS as exc:
+            rows = "" if a is None else f" (rows {a}:{b})"
+            raise self._error(f"cannot read dataset{rows}, the file may be truncated or corrupt "
+                              f"({short(exc)})", key) from exc
 
     def attr(self, key: str):
         """Attribute ``key`` of the group, or None."""
