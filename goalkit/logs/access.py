@@ -30,6 +30,9 @@ from goalkit.logs.npzfile import NpzArrays
 READ_ERRORS = (OSError, RuntimeError, KeyError, ValueError, TypeError, EOFError,
                zipfile.BadZipFile, zlib.error)
 
+#: Most values of an attribute that is read (a task id stored as an attribute is one value).
+MAX_ATTR_VALUES = 2 ** 20
+
 _MEMORY_TYPES: dict = {}
 
 
@@ -306,9 +309,22 @@ class H5Access:
                               f"({short(exc)})", key) from exc
 
     def attr(self, key: str):
-        """Attribute ``key`` of the group, or None."""
+        """Attribute ``key`` of the group, or None.
+
+        Its declared shape is checked first: an attribute holding more than
+        :data:`MAX_ATTR_VALUES` values is refused rather than read.
+        """
         try:
-            return self.group.attrs[key] if key in self.group.attrs else None
+            if key not in self.group.attrs:
+                return None
+            n = math.prod(h5py.h5a.open(self.group.id, key.encode("utf-8")).shape)
+        except READ_ERRORS:
+            return None
+        if n > MAX_ATTR_VALUES:
+            raise self._error(f"attribute declares {n} values; expected at most {MAX_ATTR_VALUES} "
+                              f"(a task id is one value)", key)
+        try:
+            return self.group.attrs[key]
         except READ_ERRORS:
             return None
 

@@ -170,6 +170,8 @@ def test_fifo_device_and_loop_never_hang(tmp_path):
          "symbolic link loop"),
         (["embed", fifo, "--layout", layout, "--method", "raw", "-o", tmp_path / "e.npz"], "pipe.h5", "FIFO"),
         (["scan", eps_dir, "--layout", pf_layout], "ep9.npz", "FIFO"),
+        (["embed", tmp_path / "g.h5", "--layout", layout, "--method", "precomputed", "--values", fifo,
+          "-o", tmp_path / "e.npz"], "pipe.h5", "FIFO"),
     ]
     for argv, name, what in runs:
         proc = subprocess.run([EXE, *map(str, argv)], capture_output=True, text=True, timeout=60,
@@ -189,6 +191,21 @@ def test_a_few_cases_as_real_processes(tmp_path):
         d = tmp_path / str(i)
         d.mkdir()
         run_case(cases[name], d, runner="subprocess")
+
+
+def test_large_task_attribute_is_refused_before_it_is_read(tmp_path, monkeypatch):
+    """An attribute is read whole, so its declared size is checked first (limit lowered here:
+    a real attribute over the limit needs megabytes of dense attribute storage)."""
+    import goalkit.logs.access as access
+    from goalkit.errors import LogError
+    from goalkit.logs import open_logs
+
+    monkeypatch.setattr(access, "MAX_ATTR_VALUES", 2)
+    path, table = grouped_log(tmp_path, edit=lambda f: f["runs/ep3"].attrs.__setitem__("task", [7, 7, 7]))
+    with pytest.raises(LogError) as info:
+        open_logs(path, table)
+    assert str(info.value) == (f"{path}: key runs/ep3/task: episode 3: attribute declares 3 values; "
+                               f"expected at most 2 (a task id is one value)")
 
 
 # ---- the precomputed embedding of width 0 is refused when read, too ---------------------------
