@@ -253,3 +253,15 @@ def test_full_corpus(tmp_path, capsys):
         print(f"\nfull hostile corpus: {len(in_process)} grid cases + {len(damaged)} damaged logs; "
               f"command runs by outcome: {dict(sorted(outcomes.items()))}")
     assert outcomes[("grid", "refused")] > 0 and outcomes[("random damage", "refused")] > 0
+
+
+def test_deflate_ratio_bound_against_zlib():
+    """DEFLATE_MAX_RATIO (1032, zlib's figure for deflate, from memory) bounds what zlib itself
+    achieves on the most compressible input there is (all zero bytes), and is tight."""
+    import zlib
+
+    from goalkit.logs.limits import DEFLATE_MAX_RATIO
+
+    n = 10 ** 7
+    ratio = n / len(zlib.compress(bytes(n), 9))
+    assert 1000 < ratio <= DEFLATE_MAX_RATIO
