@@ -53,7 +53,7 @@ def format_summary(s: dict) -> str:
 
 
 @click.command("embed", context_settings={"show_default": True})
-@click.argument("logs", type=click.Path(exists=True), metavar="LOGS")
+@click.argument("logs", type=click.Path(), metavar="LOGS")
 @click.option("--layout", "layout", type=click.Path(dir_okay=False, exists=True), default=None,
               help="Layout file (TOML) of the logs; proposed from the logs when omitted.")
 @click.option("--method", type=click.Choice(METHOD_NAMES), required=True,
@@ -120,12 +120,9 @@ def embed(logs, layout, method, dims, input_, fields, degree, whiten, block, val
         raise EmbeddingError(f"goal field '{unknown[0]}' is not an observation field of the logs; fields are: "
                              f"{', '.join(source.fields) or '(none: the layout names no fields)'}", key="--fields")
     if method == "precomputed":
-        try:
-            arr = np.load(values, allow_pickle=False, mmap_mode="r")
-        except (ValueError, OSError) as exc:
-            raise EmbeddingError(f"expected a .npy array, could not read it ({type(exc).__name__})",
-                                 file=values) from None
-        gm = precomputed_on_logs(source, arr, file=values)
+        from goalkit.goals.precomputed import load_values
+
+        gm = precomputed_on_logs(source, load_values(values), file=values)
     else:
         embedding = _make(method, dims, degree, whiten)
         total = int(np.sum(source.lengths))

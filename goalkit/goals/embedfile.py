@@ -23,6 +23,7 @@ from __future__ import annotations
 import json
 import os
 import zipfile
+import zlib
 from pathlib import Path
 
 import numpy as np
@@ -154,15 +155,27 @@ def load_embedding_file(path) -> tuple[Embedding, dict]:
         The file is missing, not an ``.npz`` archive, holds pickled objects, is not a goalkit
         embedding, has an unknown kind or version, or inconsistent arrays (naming the key).
     """
+    from goalkit.errors import LogError
+    from goalkit.logs import limits
+    from goalkit.logs.npzfile import NpzArrays
+
     file = str(path)
-    if not os.path.isfile(file):
+    if not os.path.lexists(file):
         raise EmbeddingError("expected an embedding file (.npz), it does not exist", file=file)
+    limits.regular_file(file, what="an embedding file (.npz)", error=EmbeddingError)
     try:
         npz = np.load(file, allow_pickle=False)
     except (zipfile.BadZipFile, ValueError, OSError, EOFError) as exc:
         raise EmbeddingError(f"expected an .npz archive, could not read it ({type(exc).__name__})", file=file) from None
     if not isinstance(npz, np.lib.npyio.NpzFile):
         raise EmbeddingError("expected an .npz archive, got a single .npy array", file=file)
+    try:                  # declared shapes checked against the archive before any member is loaded
+        headers = NpzArrays(file)
+        for key in headers.keys():
+            headers.shape(key)
+    except LogError as exc:
+        npz.close()
+        raise EmbeddingError(exc.message, file=file, key=exc.key) from None
     with npz:
         data = {}
         for key in npz.files:
@@ -171,7 +184,7 @@ def load_embedding_file(path) -> tuple[Embedding, dict]:
             except ValueError:
                 raise EmbeddingError("expected a plain array, got pickled objects (not loaded)", file=file,
                                      key=key) from None
-            except (zipfile.BadZipFile, OSError, EOFError) as exc:
+            except (zipfile.BadZipFile, OSError, EOFError, zlib.error) as exc:
                 raise EmbeddingError(f"expected a readable array, got a damaged member ({type(exc).__name__})",
                                      file=file, key=key) from None
     fmt = _string(data, "format", file)

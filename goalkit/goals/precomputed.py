@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from goalkit.errors import EmbeddingError
+from goalkit.errors import EmbeddingError, LogError
 from goalkit.goals.base import Embedding, register
 from goalkit.goals.checks import check_features, check_offsets
 
@@ -38,6 +38,9 @@ class Precomputed(Embedding):
 
     def fit(self, X, offsets=None) -> "Precomputed":
         arr = np.asarray(X)
+        if arr.ndim == 2 and arr.shape[1] < 1:
+            raise EmbeddingError(f"expected precomputed values with at least 1 column (a goal needs a "
+                                 f"dimension), got shape {arr.shape}")
         off = check_offsets(offsets, arr.shape[0] if arr.ndim else 0)
         checked = check_features(arr, name="precomputed values", offsets=off)
         self.values_ = arr.astype(np.float32) if arr.dtype == np.float32 else checked
@@ -46,8 +49,10 @@ class Precomputed(Embedding):
         return self
 
     def _after_load(self, file) -> None:
-        if np.ndim(self.values_) != 2 or not np.issubdtype(np.asarray(self.values_).dtype, np.floating):
-            raise self._shape_error("values_", "a 2-D float array (states x dimensions)", self.values_, file)
+        if (np.ndim(self.values_) != 2 or not np.issubdtype(np.asarray(self.values_).dtype, np.floating)
+                or np.shape(self.values_)[1] < 1):
+            raise self._shape_error("values_", "a 2-D float array (states x dimensions) with at least 1 "
+                                    "dimension", self.values_, file)
         off = np.asarray(self.offsets_)
         if (off.ndim != 1 or off.shape[0] < 2 or not np.issubdtype(off.dtype, np.integer)
                 or off[0] != 0 or off[-1] != np.shape(self.values_)[0] or np.any(np.diff(off) < 0)):
@@ -117,3 +122,41 @@ class Precomputed(Embedding):
             i = int(np.flatnonzero(bad)[0])
             raise EmbeddingError(f"expected {int(want[i])} precomputed states (the log's episode length + 1), "
                                  f"the array has {int(have[i])}", file=file, episode=int(ep[i]))
+
+
+def load_values(path) -> np.ndarray:
+    """Open a ``.npy`` array of precomputed goal vectors (memory-mapped, never unpickled).
+
+    The file must be a regular file (a FIFO or a device is never opened) whose header declares a
+    2-D shape with at least one column and no more data than the file holds.
+
+    Raises
+    ------
+    EmbeddingError
+        Naming the file and what was expected.
+    """
+    from goalkit.logs import limits
+
+    path = str(path)
+    size = limits.regular_file(path, what="a .npy array", error=EmbeddingError)
+    try:
+        with open(path, "rb") as fh:
+            version = np.lib.format.read_magic(fh)
+            read_header = (np.lib.format.read_array_header_1_0 if version == (1, 0)
+                           else np.lib.format.read_array_header_2_0)
+            shape, _, dtype = read_header(fh)
+            start = fh.tell()
+    except (ValueError, OSError, EOFError) as exc:
+        raise EmbeddingError(f"expected a .npy array, could not read its header ({exc})", file=path) from None
+    if len(shape) != 2 or shape[1] < 1:
+        raise EmbeddingError(f"expected an array of shape (states, G) with G >= 1, got shape {shape}", file=path)
+    if not dtype.hasobject:
+        try:
+            limits.check_declared(shape, dtype, max_rows=limits.MAX_LOG_ROWS, max_bytes=size - start,
+                                  bound=f"{size - start} bytes of data after the header", file=path, key=None)
+        except LogError as exc:
+            raise EmbeddingError(exc.message, file=path) from None
+    try:
+        return np.load(path, allow_pickle=False, mmap_mode="r")
+    except (ValueError, OSError) as exc:
+        raise EmbeddingError(f"expected a .npy array, could not read it ({type(exc).__name__})", file=path) from None

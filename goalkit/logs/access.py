@@ -2,16 +2,36 @@
 
 Readers ask for shapes and dtypes first (cheap: metadata only) and read rows by slice later.
 Key names in messages are the full path of the dataset inside the file.
+
+Every key is checked from metadata before a row is read (see :mod:`goalkit.logs.limits`): its
+links (an external link is refused: it would read another file; a soft link must resolve inside
+the file, a dangling one or a loop is refused by name), its declared shape and dtype against the
+limits and the file's size, and, for logs with one group per episode, that no two episodes
+share one dataset. Errors h5py raises while reading (a damaged chunk, a broken B-tree or object
+header) become one LogError naming the file, the key, the episode and the rows.
 """
 
 from __future__ import annotations
+
+import contextlib
+import math
+import posixpath
+import zipfile
+import zlib
 
 import h5py
 import numpy as np
 
 from goalkit.errors import LogError
+from goalkit.logs import limits
 from goalkit.logs.npzfile import NpzArrays
 
+#: What h5py, zipfile and zlib raise on damaged files (turned into one-line LogErrors).
+READ_ERRORS = (OSError, RuntimeError, KeyError, ValueError, TypeError, EOFError,
+               zipfile.BadZipFile, zlib.error)
+
+#: Most values of an attribute that is read (a task id stored as an attribute is one value).
+MAX_ATTR_VALUES = 2 ** 20
 
 _MEMORY_TYPES: dict = {}
 
@@ -28,39 +48,226 @@ def memory_type(dtype: np.dtype):
     return found
 
 
+def short(exc: BaseException) -> str:
+    """An exception's text on one line, shortened (h5py's messages can be long)."""
+    text = " ".join(str(exc).split()) or type(exc).__name__
+    return text if len(text) <= 200 else text[:197] + "..."
+
+
+@contextlib.contextmanager
+def guard(file, key=None, episode=None, what="cannot read the log", rows=None):
+    """Turn what h5py, zipfile or zlib raise on a damaged file into one LogError.
+
+    LogErrors pass through unchanged.
+
+    Parameters
+    ----------
+    file, key, episode : optional
+        Where, for the message.
+    what : str
+        What was being done (``"cannot read the episode group"``).
+    rows : (int, int), optional
+        The rows being read, for the message.
+    """
+    try:
+        yield
+    except LogError:
+        raise
+    except READ_ERRORS as exc:
+        where = f" (rows {rows[0]}:{rows[1]})" if rows is not None else ""
+        raise LogError(f"{what}{where}, the file may be truncated or corrupt ({short(exc)})",
+                       file=file, key=key, episode=episode) from exc
+
+
+def describe_link(h5file, path: str) -> str | None:
+    """Why the object at absolute ``path`` cannot be opened, if a link is the reason.
+
+    Follows soft links by name without letting HDF5 recurse: returns a phrase for an external
+    link, a dangling soft link or a soft-link loop, and None when links are not the problem.
+    """
+    chain = [path]
+    cur = path
+    for _ in range(64):
+        try:
+            link = h5file.get(cur, getlink=True)
+        except READ_ERRORS:
+            link = None
+        if link is None:
+            if cur == path:
+                return None                          # plainly missing
+            return f"is a soft link to {cur}, which does not exist (a dangling link)"
+        if isinstance(link, h5py.ExternalLink):
+            return (f"is an external link to {link.path} in file {link.filename}; links to other "
+                    f"files are refused (they would read another file)") if cur == path else (
+                f"is a soft link to {cur}, an external link to file {link.filename}; links to "
+                f"other files are refused")
+        if not isinstance(link, h5py.SoftLink):
+            return None                              # a hard link: the object itself is the problem
+        target = link.path if link.path.startswith("/") else posixpath.join(posixpath.dirname(cur), link.path)
+        target = posixpath.normpath(target)
+        if target in chain:
+            return f"is a soft link loop ({' -> '.join(chain + [target])})"
+        chain.append(target)
+        cur = target
+    return f"is a chain of more than 64 soft links ({' -> '.join(chain[:4])} -> ...)"
+
+
+_PREFIXES: dict = {}
+
+
+def _prefixes(key: str) -> list:
+    """``[(prefix, prefix as bytes), ...]`` of each path component of ``key`` (cached)."""
+    found = _PREFIXES.get(key)
+    if found is None:
+        parts = [p for p in key.split("/") if p]
+        base = "/" if key.startswith("/") else ""
+        found = [(base + "/".join(parts[: i + 1]),) for i in range(len(parts))]
+        found = _PREFIXES[key] = [(p, p.encode("utf-8")) for (p,) in found]
+    return found
+
+
+def link_problem(group, key: str) -> str | None:
+    """A phrase when some component of ``key`` inside ``group`` is an external link or a soft
+    link that does not resolve; None when every component is a hard link or a good soft link,
+    or the key is simply missing (one low-level look-up per component)."""
+    links = group.id.links
+    for prefix, raw in _prefixes(key):
+        try:
+            kind = links.get_info(raw).type
+        except READ_ERRORS:
+            break                                    # missing (or behind a broken link: see below)
+        if kind == _HARD:
+            continue
+        full = prefix if prefix.startswith("/") else posixpath.join(group.name, prefix)
+        if kind == h5py.h5l.TYPE_EXTERNAL:
+            return describe_link(group.file, full)
+        try:
+            h5py.h5o.open(group.id, raw)
+        except READ_ERRORS:
+            return describe_link(group.file, full) or "is a soft link that does not resolve"
+    return None
+
+
+_HARD = h5py.h5l.TYPE_HARD
+
+
 class H5Access:
     """Arrays inside one HDF5 group (``group`` is an open ``h5py.Group``).
 
     Dataset metadata is looked up once per key through h5py's low-level API (opening a
     dataset through the high-level one costs several times more, which matters for logs with
     many thousands of episode groups).
+
+    Parameters
+    ----------
+    group : h5py.Group
+    file : str
+        The file, for messages.
+    file_size : int, optional
+        The file's size in bytes (declared shapes are checked against it).
+    max_rows : int
+        Most rows of one array (:data:`~goalkit.logs.limits.MAX_EPISODE_STEPS` for an episode
+        group, :data:`~goalkit.logs.limits.MAX_LOG_ROWS` for a flat log).
+    episode : int, optional
+        The episode the group holds (errors name it and are then per-episode problems).
+    seen : dict, optional
+        Shared by the episodes of one log: dataset identity -> (episode, key); a dataset
+        reached from two episodes is refused.
     """
 
-    def __init__(self, group, file):
+    def __init__(self, group, file, *, file_size=None, max_rows=limits.MAX_LOG_ROWS, episode=None,
+                 seen=None):
         self.group = group
         self.file = str(file)
         self.prefix = group.name.strip("/")
+        self.file_size = file_size
+        self.max_rows = max_rows
+        self.episode = episode
+        self.seen = seen
         self._info = {}
 
     def where(self, key: str) -> str:
         """The key's full path inside the file, for messages."""
+        if key.startswith("/"):
+            return key.strip("/")
         return f"{self.prefix}/{key}" if self.prefix else key
+
+    def _error(self, message, key) -> LogError:
+        return LogError(message, file=self.file, key=self.where(key), episode=self.episode)
 
     def names(self) -> list[str]:
         """Names of the datasets directly in the group (for messages)."""
-        return sorted(k for k, v in self.group.items() if isinstance(v, h5py.Dataset))
+        out = []
+        try:
+            for name in self.group.keys():
+                try:
+                    if isinstance(self.group.get(name), h5py.Dataset):
+                        out.append(name)
+                except READ_ERRORS:
+                    continue
+        except READ_ERRORS:
+            pass
+        return sorted(out)
 
     def _lookup(self, key: str):
         if key not in self._info:
-            try:
-                dsid = h5py.h5d.open(self.group.id, key.encode("utf-8"))
-                self._info[key] = (dsid, tuple(int(n) for n in dsid.shape), dsid.dtype)
-            except KeyError:                 # missing, or not a dataset
-                self._info[key] = None
-            except (ValueError, OSError, TypeError) as exc:
-                raise LogError(f"cannot open dataset, the file may be corrupt ({exc})",
-                               file=self.file, key=self.where(key)) from None
+            self._info[key] = self._open(key)
         return self._info[key]
+
+    def _open(self, key: str):
+        problem = link_problem(self.group, key)
+        if problem is not None:
+            raise self._error(problem, key)
+        try:
+            dsid = h5py.h5d.open(self.group.id, key.encode("utf-8"))
+        except KeyError as exc:              # missing, not a dataset, or a damaged object header
+            return self._why_not_opened(key, exc)
+        except READ_ERRORS as exc:
+            raise self._error(f"cannot open dataset, the file may be corrupt ({short(exc)})", key) from exc
+        try:
+            shape = tuple(int(n) for n in dsid.shape)
+            dtype = dsid.dtype
+        except READ_ERRORS as exc:
+            raise self._error(f"cannot read the dataset's shape or type, the file may be corrupt "
+                              f"({short(exc)})", key) from exc
+        if shape:
+            per_row = math.prod(shape[1:])
+            declared = shape[0] * per_row * dtype.itemsize
+            if not (0 < per_row <= limits.MAX_ROW_VALUES and shape[0] <= self.max_rows
+                    and (self.file_size is None or declared <= self.file_size)):
+                bound = None if self.file_size is None else limits.h5_byte_bound(dsid, declared, self.file_size)
+                limits.check_declared(shape, dtype, max_rows=self.max_rows,
+                                      max_bytes=None if bound is None else bound[0],
+                                      bound="" if bound is None else bound[1],
+                                      file=self.file, key=self.where(key), episode=self.episode)
+        if self.seen is not None:
+            try:
+                info = h5py.h5o.get_info(dsid)
+                ident = (info.fileno, info.addr)
+            except READ_ERRORS as exc:
+                raise self._error(f"cannot read the dataset's header ({short(exc)})", key) from exc
+            other = self.seen.setdefault(ident, (self.episode, self.where(key)))
+            if other[0] != self.episode:
+                raise self._error(f"is the same dataset as key {other[1]} of episode {other[0]} (a "
+                                  f"link or key shared by episodes); expected each episode to hold "
+                                  f"its own data", key)
+        return (dsid, shape, dtype)
+
+    def _why_not_opened(self, key, exc):
+        """None when ``key`` is missing or names a group; a LogError when its object is damaged."""
+        try:
+            exists = self.group.id.links.exists(key.encode("utf-8"))
+        except READ_ERRORS:
+            exists = False
+        if not exists:
+            return None
+        try:
+            obj = h5py.h5o.open(self.group.id, key.encode("utf-8"))
+        except READ_ERRORS as exc2:
+            raise self._error(f"cannot open dataset, the file may be corrupt ({short(exc2)})", key) from exc
+        if isinstance(obj, h5py.h5d.DatasetID):
+            raise self._error(f"cannot open dataset, the file may be corrupt ({short(exc)})", key) from exc
+        return None
 
     def has(self, key: str) -> bool:
         """True when ``key`` is a dataset of the group."""
@@ -69,8 +276,7 @@ class H5Access:
     def _require(self, key):
         info = self._lookup(key)
         if info is None:
-            raise LogError("cannot open dataset: missing, not a dataset, or the file is corrupt",
-                           file=self.file, key=self.where(key))
+            raise self._error("cannot open dataset: missing, not a dataset, or the file is corrupt", key)
         return info
 
     def shape(self, key: str) -> tuple:
@@ -84,6 +290,7 @@ class H5Access:
     def read(self, key: str, start=None, stop=None) -> np.ndarray:
         """Rows ``start:stop`` (default all) of dataset ``key``."""
         dsid, shape, dtype = self._require(key)
+        a = b = None
         try:
             if shape == ():
                 return np.asarray(self.group[key][()])
@@ -96,24 +303,39 @@ class H5Access:
                     dsid.read(h5py.h5s.ALL, h5py.h5s.ALL, out, mtype=memory_type(dtype))
                 return out
             return self.group[key][a:b]
-        except (OSError, ValueError, TypeError, KeyError) as exc:
-            raise LogError(f"cannot read dataset, the file may be truncated or corrupt ({exc})",
-                           file=self.file, key=self.where(key)) from None
+        except READ_ERRORS as exc:
+            rows = "" if a is None else f" (rows {a}:{b})"
+            raise self._error(f"cannot read dataset{rows}, the file may be truncated or corrupt "
+                              f"({short(exc)})", key) from exc
 
     def attr(self, key: str):
-        """Attribute ``key`` of the group, or None."""
+        """Attribute ``key`` of the group, or None.
+
+        Its declared shape is checked first: an attribute holding more than
+        :data:`MAX_ATTR_VALUES` values is refused rather than read.
+        """
         try:
-            return self.group.attrs[key] if key in self.group.attrs else None
-        except (OSError, TypeError):
+            if key not in self.group.attrs:
+                return None
+            n = math.prod(h5py.h5a.open(self.group.id, key.encode("utf-8")).shape)
+        except READ_ERRORS:
+            return None
+        if n > MAX_ATTR_VALUES:
+            raise self._error(f"attribute declares {n} values; expected at most {MAX_ATTR_VALUES} "
+                              f"(a task id is one value)", key)
+        try:
+            return self.group.attrs[key]
+        except READ_ERRORS:
             return None
 
 
 class NpzAccess:
     """Arrays of one .npz file."""
 
-    def __init__(self, arrays: NpzArrays):
+    def __init__(self, arrays: NpzArrays, episode=None):
         self.arrays = arrays
         self.file = arrays.path
+        self.episode = episode
 
     def where(self, key: str) -> str:
         """The key as named in messages (array names are used as they are)."""
@@ -137,7 +359,8 @@ class NpzAccess:
 
     def read(self, key: str, start=None, stop=None) -> np.ndarray:
         """Rows ``start:stop`` (default all) of array ``key``."""
-        return self.arrays.read(key, start, stop)
+        with guard(self.file, key, self.episode, "cannot read array"):
+            return self.arrays.read(key, start, stop)
 
     def attr(self, key: str):
         """Always None: .npz files have no attributes."""
@@ -145,20 +368,18 @@ class NpzAccess:
 
 
 def open_h5(path):
-    """Open ``path`` read-only with h5py, turning every failure into a one-line LogError."""
-    import os
+    """Open ``path`` read-only with h5py, turning every failure into a one-line LogError.
 
+    The path must be a regular file (a FIFO or a device is never opened, a link loop is named).
+    """
     path = str(path)
-    if not os.path.exists(path):
-        raise LogError("file not found", file=path)
-    if os.path.isdir(path):
-        raise LogError("expected an HDF5 file, got a directory", file=path)
+    limits.regular_file(path, what="an HDF5 file")
     try:
         if not h5py.is_hdf5(path):
             raise LogError("not an HDF5 file (no HDF5 signature); expected an .h5 file", file=path)
         return h5py.File(path, "r")
     except LogError:
         raise
-    except OSError as exc:
-        raise LogError(f"cannot open as HDF5, the file may be truncated or corrupt ({exc})",
+    except READ_ERRORS as exc:
+        raise LogError(f"cannot open as HDF5, the file may be truncated or corrupt ({short(exc)})",
                        file=path) from None

@@ -9,6 +9,7 @@ from __future__ import annotations
 import numpy as np
 
 from goalkit.errors import LogError
+from goalkit.logs.limits import MAX_WIDTH
 
 
 def numeric(dtype, *, file, key, episode=None, what="a numeric array") -> np.dtype:
@@ -20,11 +21,16 @@ def numeric(dtype, *, file, key, episode=None, what="a numeric array") -> np.dty
 
 
 def rows_2d(shape, *, file, key, episode=None, what) -> tuple[int, int]:
-    """Return ``(rows, width)`` of a ``(n,)`` or ``(n, k)`` array, refusing other ranks."""
+    """Return ``(rows, width)`` of a ``(n,)`` or ``(n, k)`` array, refusing other ranks and
+    widths outside 1 .. :data:`~goalkit.logs.limits.MAX_WIDTH`."""
     if len(shape) == 1:
         return int(shape[0]), 1
     if len(shape) == 2:
-        return int(shape[0]), int(shape[1])
+        width = int(shape[1])
+        if not 1 <= width <= MAX_WIDTH:
+            raise LogError(f"expected {what} with 1 to {MAX_WIDTH} values per row, got shape "
+                           f"{tuple(shape)}", file=file, key=key, episode=episode)
+        return int(shape[0]), width
     raise LogError(f"expected {what} of shape (n,) or (n, k), got shape {tuple(shape)}",
                    file=file, key=key, episode=episode)
 
@@ -133,6 +139,58 @@ def flags(values: np.ndarray, *, file, key, episode=None) -> np.ndarray:
                    episode=episode)
 
 
+#: Task ids are kept as int64: the range every integer dtype's values must fit.
+TASK_MIN, TASK_MAX = int(np.iinfo(np.int64).min), int(np.iinfo(np.int64).max)
+
+
+def task_dtype(dtype, *, file, key, episode=None) -> np.dtype:
+    """Refuse task-id dtypes other than integers and floats (floats must hold integers)."""
+    dtype = np.dtype(dtype)
+    if dtype.kind not in "iuf":
+        raise LogError(f"expected integer task ids, got dtype {dtype}", file=file, key=key, episode=episode)
+    return dtype
+
+
+def task_ids(values, *, file, key, locate=None) -> np.ndarray:
+    """Task ids as int64, refusing values int64 cannot hold exactly.
+
+    Any integer dtype is accepted when its values fit int64 (uint64 values above 2**63 - 1 are
+    refused); float ids are accepted when every value is finite, integral and inside int64's
+    range (``3.0`` is task 3, ``2.5`` is refused).
+
+    Parameters
+    ----------
+    values : ndarray
+        Task ids.
+    locate : callable, optional
+        Element index -> ``{"episode": ..., "step": ...}`` for messages.
+
+    Raises
+    ------
+    LogError
+        Naming the first offending value and where it is.
+    """
+    arr = np.asarray(values)
+    task_dtype(arr.dtype, file=file, key=key)
+    flat = arr.reshape(-1)
+    if arr.dtype.kind == "i":
+        return flat.astype(np.int64)
+    if arr.dtype.kind == "u":
+        bad = flat > np.uint64(TASK_MAX)
+        why = f"is above the int64 maximum {TASK_MAX}"
+    else:
+        with np.errstate(invalid="ignore"):
+            bad = ~np.isfinite(flat) | (flat != np.floor(flat)) | (flat < -2.0 ** 63) | (flat >= 2.0 ** 63)
+        why = "is not an integer that int64 can hold"
+    hits = np.flatnonzero(bad)
+    if hits.size:
+        i = int(hits[0])
+        where = {} if locate is None else locate(i)
+        raise LogError(f"task id {flat[i].item()!r} {why}; expected integer task ids that fit int64",
+                       file=file, key=key, **where)
+    return flat.astype(np.int64)
+
+
 def task_value(value, *, file, key, episode=None) -> int:
     """Turn a scalar task id (attribute, scalar dataset, constant array) into an int."""
     arr = np.asarray(value)
@@ -145,7 +203,12 @@ def task_value(value, *, file, key, episode=None) -> int:
             raise LogError(f"expected one task id per episode, the value changes from {flat[0].item()!r} to "
                            f"{flat[changed[0]].item()!r}", file=file, key=key, episode=episode,
                            step=int(changed[0]))
-        arr = flat[0]
-    if arr.dtype.kind in "iu" or (arr.dtype.kind == "f" and bool(np.isfinite(arr)) and float(arr) == int(arr)):
-        return int(arr)
-    raise LogError(f"expected an integer task id, got {arr.item()!r}", file=file, key=key, episode=episode)
+        arr = flat[:1]
+        with_step = True
+    else:
+        with_step = False
+    if arr.dtype.kind not in "iuf":
+        raise LogError(f"expected an integer task id, got {arr.reshape(-1)[0].item()!r}", file=file,
+                       key=key, episode=episode)
+    return int(task_ids(arr.reshape(-1), file=file, key=key,
+                        locate=lambda i: {"episode": episode, "step": 0 if with_step else None})[0])

@@ -121,11 +121,12 @@ def propose_layout(path) -> Layout:
         When the path is missing or unreadable.
     """
     path = str(path)
-    if not os.path.exists(path):
-        raise LogError("not found", file=path)
     if os.path.isdir(path):
         return _per_file(path)
     from goalkit.logs.flat import is_npz
+    from goalkit.logs.limits import regular_file
+
+    regular_file(path, what="an HDF5 file, an .npz file or a directory of .npz files")
 
     if is_npz(path):
         from goalkit.logs.npzfile import NpzArrays
@@ -176,17 +177,17 @@ def _flat(path, arrays, where, prefix="") -> Layout:
 def _hdf5(path) -> Layout:
     import h5py
 
-    from goalkit.logs.access import open_h5
+    from goalkit.logs.access import guard, open_h5
     from goalkit.logs.grouped import match_groups
 
-    with open_h5(path) as h5:
-        root_arrays = [n for n, v in h5.items() if isinstance(v, h5py.Dataset)]
+    with open_h5(path) as h5, guard(path, what="cannot read the log"):
+        root_arrays = _members(h5, path, h5py.Dataset)
         if _pick(root_arrays, ROLE_NAMES["action"]) is not None:
             return _flat(path, root_arrays, "at the top level")
-        subgroups = [n for n, v in h5.items() if isinstance(v, h5py.Group)]
+        subgroups = _members(h5, path, h5py.Group)
         if not root_arrays and len(subgroups) == 1:
             inner = h5[subgroups[0]]
-            inner_arrays = [n for n, v in inner.items() if isinstance(v, h5py.Dataset)]
+            inner_arrays = _members(inner, path, h5py.Dataset)
             if _pick(inner_arrays, ROLE_NAMES["action"]) is not None:
                 return _flat(path, inner_arrays, f"in group {subgroups[0]}", prefix=subgroups[0] + "/")
         episodes = _episode_groups(h5)
@@ -200,13 +201,13 @@ def _hdf5(path) -> Layout:
                               f"{', '.join(episodes[:3])}); write a layout with episode_groups",
                               file=path, key="episode_groups")
         g = h5[episodes[0]]
-        arrays = [n for n, v in g.items() if isinstance(v, h5py.Dataset)]
-        groups = [n for n, v in g.items() if isinstance(v, h5py.Group)]
+        arrays = _members(g, path, h5py.Dataset)
+        groups = _members(g, path, h5py.Group)
         roles = _roles(arrays, groups)
         fields = None
         if "observation_group" in roles:
             og = g[roles["observation_group"]]
-            names = natural_sorted(n for n, v in og.items() if isinstance(v, h5py.Dataset))
+            names = natural_sorted(_members(og, path, h5py.Dataset))
             fields = {n: f"{roles['observation_group']}/{n}" for n in names}
         if fields is None and "observation" not in roles and "action" in roles:
             from goalkit.logs.access import H5Access
@@ -223,20 +224,30 @@ def _hdf5(path) -> Layout:
         return parse_layout(doc, path)
 
 
+def _members(group, file, kind) -> list[str]:
+    """Names in ``group`` of objects of ``kind`` (h5py.Dataset or h5py.Group); links are looked
+    at first (an external link or a soft link that does not resolve is refused by name)."""
+    from goalkit.logs.grouped import linked
+
+    return [n for n in group.keys() if isinstance(linked(group, n, file), kind)]
+
+
 def _episode_groups(h5, max_depth: int = 4) -> list[str]:
     """Paths of groups directly holding an action-like dataset (searched to ``max_depth``)."""
     import h5py
+
+    from goalkit.logs.grouped import linked
 
     found, level = [], [("", h5)]
     for _ in range(max_depth):
         nxt = []
         for path, group in level:
             for name in natural_sorted(group.keys()):
-                obj = group.get(name)
+                obj = linked(group, name, h5.filename)
                 if not isinstance(obj, h5py.Group):
                     continue
                 sub = f"{path}/{name}" if path else name
-                arrays = [n for n, v in obj.items() if isinstance(v, h5py.Dataset)]
+                arrays = _members(obj, h5.filename, h5py.Dataset)
                 if _pick(arrays, ROLE_NAMES["action"]) is not None:
                     found.append(sub)
                 else:

@@ -15,14 +15,13 @@ Opening reads the boundary array (and a task-id array) in full, and the shapes o
 from __future__ import annotations
 
 import contextlib
-import os
 
 import numpy as np
 
 from goalkit.errors import LogError
 from goalkit.logs import boundaries as bnd
-from goalkit.logs import checks
-from goalkit.logs.access import H5Access, NpzAccess, open_h5
+from goalkit.logs import checks, limits
+from goalkit.logs.access import H5Access, NpzAccess, guard, open_h5
 from goalkit.logs.npzfile import NpzArrays
 from goalkit.logs.source import BaseSource
 
@@ -65,14 +64,10 @@ class FlatSource(BaseSource):
 
     def __init__(self, path, layout, skip_bad_episodes=False, advance=None):
         super().__init__(path, layout, skip_bad_episodes, advance)
-        if not os.path.exists(self.path):
-            raise LogError("file not found", file=self.path)
-        if os.path.isdir(self.path):
-            raise LogError("expected one HDF5 or .npz file for shape = \"flat\", got a directory",
-                           file=self.path)
+        self.file_size = limits.regular_file(self.path, what="one HDF5 or .npz file for shape = \"flat\"")
         self.files = [self.path]
         self._npz = NpzArrays(self.path) if is_npz(self.path) else None
-        with self._access() as acc:
+        with self._access() as acc, guard(self.path, what="cannot read the log"):
             problems = self._plan(acc)
         self._settle(self.steps_all, problems)
 
@@ -85,7 +80,7 @@ class FlatSource(BaseSource):
             yield NpzAccess(self._npz)
         else:
             with open_h5(self.path) as h5:
-                yield H5Access(h5, self.path)
+                yield H5Access(h5, self.path, file_size=self.file_size, max_rows=limits.MAX_LOG_ROWS)
 
     # ---- open: shapes, boundaries, per-episode rows ----------------------------------------
     def _need(self, acc, key):
@@ -255,6 +250,7 @@ class FlatSource(BaseSource):
         if len(shape) != 1 or shape[0] not in (n_act, E):
             raise LogError(f"has shape {tuple(shape)}; expected ({n_act},) (one per action), ({E},) "
                            f"(one per episode) or a scalar", file=f, key=key)
+        checks.task_dtype(acc.dtype(key), file=f, key=key)
         problems = []
         if shape[0] == E and E != n_act:
             per = acc.read(key)                  # one per episode
@@ -279,12 +275,9 @@ class FlatSource(BaseSource):
             for e, row in sorted(first_change.items()):
                 problems.append((e, LogError("expected one task id per episode, the value changes",
                                              file=f, key=key, episode=e, step=int(row - self.step_start[e]))))
-        if per.dtype.kind not in "iu":
-            if per.dtype.kind == "f" and np.all(np.isfinite(per)) and np.all(per == np.round(per)):
-                per = per.astype(np.int64)
-            else:
-                raise LogError(f"expected integer task ids, got dtype {per.dtype}", file=f, key=key)
-        self.task_of = per.astype(np.int64)
+        per_row = not (shape[0] == E and E != n_act)
+        self.task_of = checks.task_ids(per, file=f, key=key,
+                                       locate=lambda e: {"episode": e, "step": 0 if per_row else None})
         return problems
 
     # ---- read -------------------------------------------------------------------------------
@@ -305,7 +298,15 @@ class FlatSource(BaseSource):
             pieces = {}
             for run in runs:
                 rid = ids[run]
-                part = self._read_run(gather, rid, self.steps_all[rid])
+                try:
+                    with guard(self.path, what="cannot read the log"):
+                        part = self._read_run(gather, rid, self.steps_all[rid])
+                except LogError as exc:
+                    if exc.episode is None:      # a damaged block: say which episodes it holds
+                        exc.message += (f" (reading episode {int(rid[0])})" if rid.shape[0] == 1 else
+                                        f" (reading episodes {int(rid[0])} to {int(rid[-1])})")
+                        exc.args = (exc.render(),)
+                    raise
                 for name, v in part.items():
                     pieces.setdefault(name, []).append(v)
             cols = {name: v[0] if len(v) == 1 else np.concatenate(v) for name, v in pieces.items()}

@@ -1,9 +1,16 @@
 """Reader for HDF5 logs with one group per episode (layout shape ``"grouped"``).
 
 The ``episode_groups`` pattern has one component per nesting level (``"runs/*"``,
-``"day*/ep_*"``); each component is matched with :mod:`fnmatch` against the group names at
+``"day*/ep_*"``); each component is matched with :mod:`fnmatch` against the link names at
 that level, and names are taken in natural order (``ep2`` before ``ep10``), level by level.
 Only each episode's own datasets are read, one episode group at a time.
+
+Links among the matched names are looked at before they are followed: an external link (it
+would read another file), a dangling soft link or a soft-link loop is refused by name, and so
+is a name that reaches the same group as another episode. Inside each episode group the keys
+are checked the same way (see :class:`~goalkit.logs.access.H5Access`), and a dataset reached
+from two episodes is refused. Anything h5py raises on a damaged file becomes one LogError
+naming the file, the group or key and the episode.
 """
 
 from __future__ import annotations
@@ -11,25 +18,70 @@ from __future__ import annotations
 import contextlib
 import fnmatch
 
+import h5py
+
 from goalkit.errors import LogError
-from goalkit.logs.access import H5Access, open_h5
+from goalkit.logs import limits
+from goalkit.logs.access import READ_ERRORS, H5Access, describe_link, guard, open_h5, short
 from goalkit.logs.episodic import EpisodicSource, join_parts, read_episode
 from goalkit.logs.naming import natural_sorted
 
 
-def match_groups(h5file, pattern: str) -> list[str]:
-    """Paths of the groups matching ``pattern``, in natural order level by level."""
-    import h5py
+def linked(group, name: str, file, path: str | None = None):
+    """The object linked as ``name`` in ``group``, refusing external links and soft links that
+    do not resolve, by name (``path``: the name's full path, for messages)."""
+    if path is None:
+        path = f"{group.name.strip('/')}/{name}".strip("/")
+    try:
+        kind = group.id.links.get_info(name.encode("utf-8")).type
+    except READ_ERRORS as exc:
+        raise LogError(f"cannot read the link, the file may be corrupt ({exc})", file=file, key=path) from None
+    if kind == h5py.h5l.TYPE_EXTERNAL:
+        raise LogError(describe_link(group.file, "/" + path), file=file, key=path)
+    try:
+        obj = group.get(name)
+    except READ_ERRORS as exc:
+        why = describe_link(group.file, "/" + path) if kind == h5py.h5l.TYPE_SOFT else None
+        raise LogError(why or f"cannot open, the file may be corrupt ({exc})", file=file, key=path) from None
+    if obj is None and kind == h5py.h5l.TYPE_SOFT:
+        raise LogError(describe_link(group.file, "/" + path) or "is a soft link that does not resolve",
+                       file=file, key=path)
+    return obj
 
-    paths = [""]
+
+def match_groups(h5file, pattern: str, file=None) -> list[str]:
+    """Paths of the groups matching ``pattern``, in natural order level by level.
+
+    Raises
+    ------
+    LogError
+        A matching name is an external link, a soft link that does not resolve, or reaches the
+        same group as another matching name.
+    """
+    file = h5file.filename if file is None else file
+    level = [("", h5file)]
     for part in pattern.strip("/").split("/"):
         nxt = []
-        for p in paths:
-            group = h5file[p] if p else h5file
-            names = [n for n, v in group.items() if isinstance(v, h5py.Group) and fnmatch.fnmatchcase(n, part)]
-            nxt += [f"{p}/{n}" if p else n for n in natural_sorted(names)]
-        paths = nxt
-    return paths
+        for p, group in level:
+            names = [n for n in group.keys() if fnmatch.fnmatchcase(n, part)]
+            for n in natural_sorted(names):
+                path = f"{p}/{n}" if p else n
+                obj = linked(group, n, file, path)
+                if isinstance(obj, h5py.Group):
+                    nxt.append((path, obj))
+        level = nxt
+    seen = {}
+    for path, obj in level:
+        try:
+            info = h5py.h5o.get_info(obj.id)
+        except READ_ERRORS as exc:
+            raise LogError(f"cannot read the group, the file may be corrupt ({short(exc)})", file=file,
+                           key=path) from None
+        other = seen.setdefault((info.fileno, info.addr), path)
+        if other != path:
+            raise LogError(f"is the same group as {other} (a link); expected each episode group to "
+                           f"hold its own data", file=file, key=path)
+    return [path for path, _ in level]
 
 
 class GroupedSource(EpisodicSource):
@@ -38,29 +90,39 @@ class GroupedSource(EpisodicSource):
     def __init__(self, path, layout, skip_bad_episodes=False, advance=None):
         super().__init__(path, layout, skip_bad_episodes, advance)
         self.files = [self.path]
-        with open_h5(self.path) as h5:
-            self.groups = match_groups(h5, layout.episode_groups)
+        self.file_size = limits.regular_file(self.path, what="an HDF5 file")
+        with open_h5(self.path) as h5, guard(self.path, what="cannot read the log"):
+            self.groups = match_groups(h5, layout.episode_groups, self.path)
             if not self.groups:
                 top = natural_sorted(h5.keys())[:10]
                 raise LogError(f"no groups match episode_groups = \"{layout.episode_groups}\"; top-level "
                                f"names: {', '.join(top) if top else 'none'}", file=self.path,
                                key="episode_groups")
-            metas, problems = self._plan_all(H5Access(h5[g], self.path) for g in self.groups)
+            seen = {}
+            metas, problems = self._plan_all(self._episode_access(h5, e, seen)
+                                             for e in range(len(self.groups)))
         self._adopt(metas, problems)
+
+    def _episode_access(self, h5, e, seen=None) -> H5Access:
+        with guard(self.path, self.groups[e], e, "cannot open the episode group"):
+            return H5Access(h5[self.groups[e]], self.path, file_size=self.file_size,
+                            max_rows=limits.MAX_EPISODE_STEPS, episode=e, seen=seen)
 
     def _key_of(self, episode, key):
         return f"{self.groups[episode]}/{key}" if key else self.groups[episode]
 
     @contextlib.contextmanager
     def _first_access(self):
-        with open_h5(self.path) as h5:
-            yield H5Access(h5[self.groups[int(self.episode_ids[0])]], self.path)
+        e = int(self.episode_ids[0])
+        with open_h5(self.path) as h5, guard(self.path, self.groups[e], e):
+            yield self._episode_access(h5, e)
 
     def _read_episodes(self, ids):
         parts = []
         with open_h5(self.path) as h5:
             for e in ids.tolist():
-                acc = H5Access(h5[self.groups[e]], self.path)
-                parts.append(read_episode(acc, self.layout, self.metas[e], e, self.obs_dtype,
-                                          self.action_dtype))
+                acc = self._episode_access(h5, e)
+                with guard(self.path, self.groups[e], e, "cannot read the episode"):
+                    parts.append(read_episode(acc, self.layout, self.metas[e], e, self.obs_dtype,
+                                              self.action_dtype))
         return join_parts(parts, [self.metas[e].task for e in ids.tolist()], self.layout)

@@ -198,6 +198,12 @@ def parse_layout(doc: Mapping, file="<layout>") -> Layout:
         if any(p == "" for p in parts) or "*" not in episode_groups:
             raise LayoutError(f"expected a group pattern with '*' components such as \"runs/*\", "
                               f"got {episode_groups!r}", file=file, key="episode_groups")
+        named = [(f"keys.{r}", k) for r, k in keys.items()] + [(f"fields.{n}", k) for n, k in field_pairs]
+        for name, key in named:
+            if key.startswith("/"):
+                raise LayoutError(f"expected a path inside each episode group, got the absolute path "
+                                  f"{key!r}: every episode would read the same dataset", file=file,
+                                  key=name)
     elif shape == "per-file":
         file_pattern = _string(doc.get("file_pattern", "*.npz"), file=file, key="file_pattern",
                                what="a glob such as \"*.npz\"")

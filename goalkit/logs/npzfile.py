@@ -6,17 +6,29 @@ numpy's own format functions and then reads just the requested bytes: by seeking
 for stored (uncompressed) members, and by a kept-open decompressing stream for deflated ones
 (cheap for the forward, chunk-by-chunk reads a build does). Object arrays are refused, as with
 ``np.load(..., allow_pickle=False)``.
+
+Before a member is read, its declared shape is checked (see :mod:`goalkit.logs.limits`):
+against the row and width limits, and against the member's uncompressed size in the zip
+directory (which must hold the declared data); a deflated member may not claim to expand more
+than deflate can. Damaged archives (bad zip structure, a corrupt deflate stream, a CRC
+mismatch) become one LogError naming the file and the member.
 """
 
 from __future__ import annotations
 
 import struct
 import zipfile
+import zlib
 from dataclasses import dataclass
 
 import numpy as np
 
 from goalkit.errors import LogError
+from goalkit.logs import limits
+
+#: What reading a damaged archive raises.
+_ZIP_ERRORS = (zipfile.BadZipFile, zlib.error, OSError, EOFError, ValueError, struct.error,
+               NotImplementedError, RuntimeError)
 
 
 @dataclass(frozen=True)
@@ -48,24 +60,31 @@ class NpzArrays:
     ----------
     path : str
         The file.
+    max_rows : int
+        Most rows of one array (:data:`~goalkit.logs.limits.MAX_LOG_ROWS` for a flat log,
+        :data:`~goalkit.logs.limits.MAX_EPISODE_STEPS` for an episode file).
+    episode : int, optional
+        The episode the file holds (errors about its arrays name it).
 
     Raises
     ------
     LogError
-        When the file is missing, is not a zip archive, or a member is not a valid ``.npy``.
+        When the file is missing or not a regular file, is not a zip archive, a member is not a
+        valid ``.npy``, or declares a shape the limits or the archive cannot hold.
     """
 
-    def __init__(self, path):
+    def __init__(self, path, max_rows=limits.MAX_LOG_ROWS, episode=None):
         self.path = str(path)
         self._streams = {}
+        self.episode = episode
+        limits.regular_file(self.path, what="an .npz file")
         try:
             zf = zipfile.ZipFile(self.path)
-        except FileNotFoundError:
-            raise LogError("file not found", file=self.path) from None
-        except (zipfile.BadZipFile, OSError) as exc:
+        except _ZIP_ERRORS as exc:
             raise LogError(f"cannot open as .npz (expected a zip archive of .npy arrays): {exc}",
                            file=self.path) from None
         self.members = {}
+        self._sizes = {}
         with zf, open(self.path, "rb") as fh:
             for info in zf.infolist():
                 if not info.filename.endswith(".npy"):
@@ -81,11 +100,38 @@ class NpzArrays:
                         data_start = f.tell()
                     stored = info.compress_type == zipfile.ZIP_STORED
                     offset = info.header_offset + _local_header_size(fh, info.header_offset) if stored else 0
-                except (ValueError, OSError, zipfile.BadZipFile, EOFError) as exc:
-                    raise LogError(f"not a valid .npy array inside the .npz ({exc})",
-                                   file=self.path, key=name) from None
+                except _ZIP_ERRORS as exc:
+                    raise LogError(f"not a readable .npy array inside the .npz, the file may be corrupt "
+                                   f"({exc})",
+                                   file=self.path, key=name, episode=episode) from None
                 self.members[name] = Member(name, tuple(shape), np.dtype(dtype), bool(fortran),
                                             data_start, stored, offset)
+                self._sizes[name] = (info, max_rows)
+
+    def _member(self, name) -> Member:
+        """The member, its declared shape checked on first use (arrays never asked for are not)."""
+        m = self.members[name]
+        if name in self._sizes:
+            info, max_rows = self._sizes[name]
+            self._check_member(info, name, m.shape, m.dtype, m.data_start, max_rows)
+            del self._sizes[name]
+        return m
+
+    def _check_member(self, info, name, shape, dtype, data_start, max_rows):
+        """Refuse a declared shape the limits or the zip directory's sizes cannot hold."""
+        if dtype.hasobject:                  # refused when read; its size means nothing
+            limits.check_declared(shape, np.dtype(np.uint8), max_rows=max_rows, max_bytes=None,
+                                  file=self.path, key=name, episode=self.episode)
+            return
+        held = max(int(info.file_size) - int(data_start), 0)
+        how = f"the zip directory gives the member {held} bytes of data"
+        if info.compress_type != zipfile.ZIP_STORED and info.file_size > (
+                info.compress_size * limits.DEFLATE_MAX_RATIO + 1024):
+            held = int(info.compress_size) * limits.DEFLATE_MAX_RATIO
+            how = (f"its {info.compress_size} compressed bytes expand to at most {held} "
+                   f"(x {limits.DEFLATE_MAX_RATIO}, the most deflate can)")
+        limits.check_declared(shape, dtype, max_rows=max_rows, max_bytes=held, bound=how,
+                              file=self.path, key=name, episode=self.episode)
 
     def __getstate__(self):
         state = dict(self.__dict__)
@@ -108,18 +154,18 @@ class NpzArrays:
 
     def shape(self, name) -> tuple:
         """Shape of array ``name``."""
-        return self.members[name].shape
+        return self._member(name).shape
 
     def dtype(self, name) -> np.dtype:
         """Dtype of array ``name``."""
-        return self.members[name].dtype
+        return self._member(name).dtype
 
     def read(self, name, start=None, stop=None) -> np.ndarray:
         """Return rows ``start:stop`` (default all) of array ``name`` along the first axis."""
-        m = self.members[name]
+        m = self._member(name)
         if m.dtype.hasobject:
             raise LogError("expected a numeric array, got an object array (not loaded: "
-                           "pickled data is refused)", file=self.path, key=name)
+                           "pickled data is refused)", file=self.path, key=name, episode=self.episode)
         if len(m.shape) == 0:
             return self._read_bytes(m, 0, m.dtype.itemsize).reshape(())
         n = m.shape[0]
@@ -133,21 +179,29 @@ class NpzArrays:
         return flat.reshape((stop - start,) + m.shape[1:])
 
     def _read_fortran(self, m: Member) -> np.ndarray:
-        with zipfile.ZipFile(self.path) as zf, zf.open(m.name + ".npy") as f:
-            return np.lib.format.read_array(f, allow_pickle=False)
+        try:
+            with zipfile.ZipFile(self.path) as zf, zf.open(m.name + ".npy") as f:
+                return np.lib.format.read_array(f, allow_pickle=False)
+        except _ZIP_ERRORS as exc:
+            raise LogError(f"cannot read the array, the file may be truncated or corrupt ({exc})",
+                           file=self.path, key=m.name, episode=self.episode) from None
 
     def _read_bytes(self, m: Member, offset: int, nbytes: int) -> np.ndarray:
         if nbytes == 0:
             return np.empty(0, dtype=m.dtype)
         if m.stored:
-            with open(self.path, "rb") as fh:
-                fh.seek(m.file_offset + m.data_start + offset)
-                buf = fh.read(nbytes)
+            try:
+                with open(self.path, "rb") as fh:
+                    fh.seek(m.file_offset + m.data_start + offset)
+                    buf = fh.read(nbytes)
+            except OSError as exc:
+                raise LogError(f"cannot read the array ({exc.strerror})", file=self.path, key=m.name,
+                               episode=self.episode) from None
         else:
             buf = self._read_deflated(m, offset, nbytes)
         if len(buf) != nbytes:
             raise LogError(f"file is truncated: expected {nbytes} bytes of data at byte {offset}, "
-                           f"got {len(buf)}", file=self.path, key=m.name)
+                           f"got {len(buf)}", file=self.path, key=m.name, episode=self.episode)
         return np.frombuffer(buf, dtype=m.dtype).copy()
 
     def _read_deflated(self, m: Member, offset: int, nbytes: int) -> bytes:
@@ -165,6 +219,7 @@ class NpzArrays:
             f = entry[1]
             f.seek(pos)
             return f.read(nbytes)
-        except (zipfile.BadZipFile, OSError, EOFError) as exc:
+        except _ZIP_ERRORS as exc:
             self._streams.pop(m.name, None)
-            raise LogError(f"cannot read compressed data ({exc})", file=self.path, key=m.name) from None
+            raise LogError(f"cannot read compressed data, the file may be corrupt ({exc})",
+                           file=self.path, key=m.name, episode=self.episode) from None

@@ -3,6 +3,10 @@
 Episode files are those matching ``file_pattern`` directly inside the directory, in natural
 order of their names (``ep2.npz`` before ``ep10.npz``). Opening reads only the array headers;
 :meth:`read` loads the requested episodes' files (without unpickling anything).
+
+Every matching name must be a regular file (a dangling link, a link loop, a FIFO, a device or
+a sub-directory is refused by name; a FIFO is never opened), and no two names may be the same
+file (a symbolic or hard link would give two episodes the same data).
 """
 
 from __future__ import annotations
@@ -12,6 +16,7 @@ import fnmatch
 import os
 
 from goalkit.errors import LogError
+from goalkit.logs import limits
 from goalkit.logs.access import NpzAccess
 from goalkit.logs.episodic import EpisodicSource, join_parts, read_episode
 from goalkit.logs.naming import natural_sorted
@@ -25,11 +30,19 @@ def episode_files(directory, pattern: str) -> list[str]:
         raise LogError("directory not found", file=directory)
     if not os.path.isdir(directory):
         raise LogError("expected a directory of per-episode files, got a file", file=directory)
-    names = [n for n in os.listdir(directory)
-             if fnmatch.fnmatchcase(n, pattern) and os.path.isfile(os.path.join(directory, n))]
+    names = [n for n in os.listdir(directory) if fnmatch.fnmatchcase(n, pattern)]
     if not names:
         raise LogError(f"no files match file_pattern = \"{pattern}\"", file=directory, key="file_pattern")
-    return [os.path.join(directory, n) for n in natural_sorted(names)]
+    paths = [os.path.join(directory, n) for n in natural_sorted(names)]
+    seen = {}
+    for p in paths:
+        limits.regular_file(p, what="a per-episode .npz file")
+        st = os.stat(p)
+        other = seen.setdefault((st.st_dev, st.st_ino), p)
+        if other != p:
+            raise LogError(f"is the same file as {other} (a link); expected each episode in its own file",
+                           file=p, key="file_pattern")
+    return paths
 
 
 class PerFileSource(EpisodicSource):
@@ -39,20 +52,26 @@ class PerFileSource(EpisodicSource):
         super().__init__(path, layout, skip_bad_episodes, advance)
         self.files = episode_files(self.path, layout.file_pattern)
         # a file that is not an .npz fails in NpzArrays: a file-level error, not skipped
-        self._adopt(*self._plan_all(NpzAccess(NpzArrays(f)) for f in self.files))
+        self._adopt(*self._plan_all(self._episode_access(e) for e in range(len(self.files))))
+
+    def _episode_access(self, e) -> NpzAccess:
+        arrays = NpzArrays(self.files[e], max_rows=limits.MAX_EPISODE_STEPS, episode=e)
+        return NpzAccess(arrays, episode=e)
 
     def _file_of(self, episode):
         return self.files[episode]
 
     @contextlib.contextmanager
     def _first_access(self):
-        yield NpzAccess(NpzArrays(self.files[int(self.episode_ids[0])]))
+        yield self._episode_access(int(self.episode_ids[0]))
 
     def _read_episodes(self, ids):
         parts = []
         for e in ids.tolist():
-            arrays = NpzArrays(self.files[e])
-            parts.append(read_episode(NpzAccess(arrays), self.layout, self.metas[e], e,
-                                      self.obs_dtype, self.action_dtype))
-            arrays.close()
+            acc = self._episode_access(e)
+            try:
+                parts.append(read_episode(acc, self.layout, self.metas[e], e, self.obs_dtype,
+                                          self.action_dtype))
+            finally:
+                acc.arrays.close()
         return join_parts(parts, [self.metas[e].task for e in ids.tolist()], self.layout)

@@ -145,7 +145,10 @@ def _path(value, base: Path, file, key, resolve: bool = True) -> Path:
         raise RecipeError("expected a path, got an empty string", file=file, key=key)
     p = Path(value).expanduser()
     p = p if p.is_absolute() else base / p
-    return p.resolve() if resolve else Path(os.path.abspath(p))
+    try:
+        return p.resolve() if resolve else Path(os.path.abspath(p))
+    except (RuntimeError, OSError):          # a symbolic link loop (RuntimeError before Python 3.13)
+        raise RecipeError(f"expected a path, got a symbolic link loop: {value}", file=file, key=key) from None
 
 
 def _parse_goal(table, base, file) -> GoalSpec:

@@ -160,4 +160,4 @@ def test_real_subprocess(tmp_path):
     bad = subprocess.run([str(exe), "scan", str(tmp_path / "absent")], capture_output=True, text=True,
                          env=env, timeout=120)
     assert bad.returncode == 2 and "Traceback" not in bad.stderr
-    assert bad.stderr.strip().endswith("absent: not found")
+    assert bad.stderr.strip().endswith("absent: file not found")
