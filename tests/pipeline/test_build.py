@@ -103,9 +103,9 @@ def test_her_future_k4_share_of_relabelled_rows(tmp_path):
 @pytest.mark.parametrize("inclusive", [True, False])
 def test_sparse_negative_5cm_rule_end_to_end(tmp_path, inclusive):
     # The multi-goal robotics environments of Plappert et al. (2018, arXiv:1802.09464, sec. 1):
-    # reward -1 unless the achieved goal is within the 5 cm threshold. The published code
-    # (Gymnasium-Robotics, run here) rewards -(d > threshold), inclusive, and flags success
-    # with d < threshold, strict. A set built with inclusive = true must carry their reward;
+    # reward -1 unless the achieved goal is within the 5 cm threshold. Their published code
+    # (from memory; see published_fetch_reward.py) rewards -(d > threshold), inclusive, and
+    # flags success with d < threshold, strict. A set built with inclusive = true must carry their reward;
     # with inclusive = false its reached flag must be their success flag. Goals are placed at
     # known distances from s_t+1.
     from goalkit.logs.episodes import EpisodeSet

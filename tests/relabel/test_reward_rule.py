@@ -70,10 +70,9 @@ def test_cosine_zero_vectors():
 
 
 def test_five_centimetre_sparse_negative_rule():
-    # Plappert et al. (2018, arXiv:1802.09464, sec. 1): the Fetch tasks' sparse reward. Checked
-    # against the published environment code in Gymnasium-Robotics, run here (not from memory):
-    # its reward -(d > threshold) is inclusive (0 at d == threshold); its success flag
-    # d < threshold is strict. Our inclusive=True + "sparse-negative" gives their reward,
+    # Plappert et al. (2018, arXiv:1802.09464, sec. 1): the Fetch tasks' sparse reward. Their
+    # published environment code (from memory; see published_fetch_reward.py) rewards
+    # -(d > threshold), inclusive (0 at d == threshold); its success flag d < threshold is strict. Our inclusive=True + "sparse-negative" gives their reward,
     # inclusive=False gives their success flag.
     threshold = fetch_threshold()
     assert threshold == 0.05
