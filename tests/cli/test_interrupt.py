@@ -134,3 +134,23 @@ def test_embed(big, tmp_path):
     assert code == 130 and stdout == ""
     assert one_line(err) == f"goalkit: interrupted; nothing was written at {out}"
     assert list(tmp_path.iterdir()) == []
+
+
+def test_scan_writing_a_layout(big, tmp_path):
+    out = tmp_path / "proposed.toml"
+    proc = start(["scan", big / "gantry-logs.h5", "--write-layout", out], tmp_path)
+    code, stdout, err = interrupt_when(proc, busy(proc))
+    assert code == 130 and stdout == ""
+    assert one_line(err).startswith("goalkit: interrupted; ")
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_demo(tmp_path):
+    out = tmp_path / "bench"
+    proc = start(["demo", out, "--episodes", str(4 * EPISODES)], tmp_path)
+    code, stdout, err = interrupt_when(proc, busy(proc))
+    assert code == 130 and stdout == ""
+    assert one_line(err).startswith("goalkit: interrupted; ")
+    # each file is written whole or not at all: no temporary file is left behind
+    left = [p.name for p in out.iterdir()] if out.exists() else []
+    assert all(not name.startswith(".") for name in left), left
