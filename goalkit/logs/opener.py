@@ -59,7 +59,12 @@ def open_logs(path, layout=None, skip_bad_episodes: bool = False, *, advance=Non
         layout = parse_layout(layout)
     elif not isinstance(layout, Layout):
         raise LayoutError(f"expected a Layout, a layout file or a table, got {type(layout).__name__}")
-    reader = {"grouped": GroupedSource, "flat": FlatSource, "per-file": PerFileSource}[layout.shape]
+    if layout.shape == "bag":
+        from goalkit.logs.bagfile import BagSource as reader
+    elif layout.shape == "table":
+        from goalkit.logs.steptable import TableSource as reader
+    else:
+        reader = {"grouped": GroupedSource, "flat": FlatSource, "per-file": PerFileSource}[layout.shape]
     source = reader(path, layout, skip_bad_episodes=skip_bad_episodes, advance=advance)
     if proposed:
         source.notes.insert(0, "no layout given: read with a proposed layout")
