@@ -1,0 +1,170 @@
+"""Bags written with rosbags' own writers (ROS 2 MCAP, ROS 2 SQLite, ROS 1) read back aligned
+exactly as an independent numpy alignment of the same messages says.
+
+The independent alignment below does not use goalkit.logs.align: "latest" counts the messages at
+or before each step with np.searchsorted, "nearest" takes the argmin of |t_msg - t_step| over a
+full distance matrix, "interpolate" is numpy's own np.interp per column.
+"""
+
+import numpy as np
+import pytest
+
+from bag_testdata import CAM, CMD, JOINTS, LAYOUT, REC, T0, TIP, make_truth, write_bag
+from goalkit.errors import LayoutError, LogError
+from goalkit.logs import open_logs
+
+
+def ref_latest(t, v, s):
+    return v[np.searchsorted(t, s, side="right") - 1]
+
+
+def ref_nearest(t, v, s):
+    d = np.abs(s[:, None].astype(np.float64) - t[None, :].astype(np.float64))
+    return v[np.argmin(d, axis=1)]           # argmin takes the first (earlier) on a tie
+
+
+def ref_interp(t, v, s):
+    x = (t - T0).astype(np.float64)
+    return np.stack([np.interp((s - T0).astype(np.float64), x, v[:, j]) for j in range(v.shape[1])], axis=1)
+
+
+REF = {"latest": ref_latest, "nearest": ref_nearest, "interpolate": ref_interp}
+
+
+def expected(truth, rules, step_topic=CMD, period=None, window=None):
+    """Step times and aligned columns computed from the truth alone."""
+    sub = {}
+    for topic, (t, v) in truth.items():
+        if topic == REC:
+            continue
+        keep = np.ones(t.size, bool) if window is None else (t >= window[0]) & (t <= window[1])
+        sub[topic] = (t[keep], v[keep])
+    start = max(t[0] for t, _ in sub.values())
+    interp = [tp for tp in sub if rules.get(tp) == "interpolate"]
+    stop = min(sub[tp][0][-1] for tp in interp) if interp else (
+        window[1] if window is not None else max(t[-1] for t, _ in sub.values()))
+    if period is None:
+        s = sub[step_topic][0]
+        s = s[(s >= start) & (s <= stop)]
+    else:
+        p = int(round(period * 1e9))
+        s = start + np.arange((stop - start) // p + 1) * p
+    col = {tp: REF[rules.get(tp, "latest")](*sub[tp], s) for tp in (JOINTS, TIP)}
+    obs = np.concatenate([col[JOINTS], col[TIP]], axis=1)
+    act = REF[rules.get(CMD, "latest")](*sub[CMD], s[:-1])
+    return s, obs, act, sub
+
+
+def layout_with(rules, **bag):
+    lay = {k: (dict(v) if isinstance(v, dict) else v) for k, v in LAYOUT.items()}
+    lay["bag"] = {"step_topic": CMD, "align": dict(rules)} | bag
+    if "step_period" in bag:
+        del lay["bag"]["step_topic"]
+    return lay
+
+
+@pytest.mark.parametrize("kind", ["mcap", "sqlite", "ros1"])
+@pytest.mark.parametrize("rules", [
+    {JOINTS: "interpolate", TIP: "nearest", CMD: "latest"},
+    {JOINTS: "latest", TIP: "interpolate", CMD: "nearest"},
+    {JOINTS: "nearest", TIP: "latest", CMD: "latest"},
+])
+def test_aligned_arrays_equal_an_independent_alignment(tmp_path, kind, rules):
+    truth = make_truth(seed=7)
+    bag = write_bag(tmp_path / ("rec.bag" if kind == "ros1" else "rec"), truth, kind)
+    src = open_logs(bag, layout_with(rules))
+    s, obs, act, _ = expected(truth, rules)
+    assert src.lengths.tolist() == [s.size - 1]
+    es = src.read(0, 1)
+    np.testing.assert_allclose(es.observations, obs, rtol=0, atol=1e-12)
+    np.testing.assert_array_equal(es.actions, act)
+    assert src.fields == {"joints": (0, 2), "nozzle": (2, 5)}
+    assert any(f.endswith("metadata.yaml") for f in src.files) == (kind != "ros1")
+
+
+def test_step_period_that_divides_no_rate(tmp_path):
+    truth = make_truth(seed=3)
+    rules = {JOINTS: "interpolate", TIP: "interpolate", CMD: "latest"}
+    bag = write_bag(tmp_path / "rec", truth, "mcap")
+    src = open_logs(bag, layout_with(rules, step_period=0.0213))
+    s, obs, act, _ = expected(truth, rules, period=0.0213)
+    es = src.read(0, 1)
+    assert es.num_transitions == s.size - 1 > 100
+    np.testing.assert_allclose(es.observations, obs, rtol=0, atol=1e-12)
+    np.testing.assert_array_equal(es.actions, act)
+
+
+def test_one_bag_per_episode(tmp_path):
+    rules = LAYOUT["bag"]["align"]
+    truths = [make_truth(seed=i, segments=((0.0, 1.0 + 0.5 * i),)) for i in range(3)]
+    for i, tr in enumerate(truths):
+        write_bag(tmp_path / "bags" / f"take{i + 1}", tr, "sqlite") if i == 0 else \
+            write_bag(tmp_path / "bags" / f"take{i + 1}", tr, "mcap")
+    (tmp_path / "bags").mkdir(exist_ok=True)
+    src = open_logs(tmp_path / "bags", layout_with(rules))
+    assert src.num_episodes == 3
+    es = src.read(0, 3)
+    for e, tr in enumerate(truths):
+        s, obs, act, _ = expected(tr, rules)
+        got = es.select(e, e + 1)
+        np.testing.assert_allclose(got.observations, obs, atol=1e-12)
+        np.testing.assert_array_equal(got.actions, act)
+
+
+def test_episodes_cut_by_gaps(tmp_path):
+    rules = {JOINTS: "interpolate", TIP: "nearest"}
+    truth = make_truth(seed=5, segments=((0.0, 1.5), (3.5, 5.0), (6.2, 7.0)))
+    bag = write_bag(tmp_path / "rec", truth, "mcap")
+    src = open_logs(bag, layout_with(rules, episodes="gap", cut_gap=0.8))
+    assert src.num_episodes == 3
+    cmd_t = truth[CMD][0]
+    for e, (a, b) in enumerate(((0.0, 1.5), (3.5, 5.0), (6.2, 7.0))):
+        ct = cmd_t[(cmd_t >= T0 + a * 1e9) & (cmd_t <= T0 + b * 1e9)]
+        s, obs, act, _ = expected(truth, rules, window=(ct[0], ct[-1]))
+        es = src.read(e, e + 1)
+        np.testing.assert_allclose(es.observations, obs, atol=1e-12)
+        np.testing.assert_array_equal(es.actions, act)
+
+
+def test_episodes_cut_by_a_bool_marker(tmp_path):
+    rules = {JOINTS: "interpolate", TIP: "nearest"}
+    marks = [(0.4, True), (1.7, False), (2.0, False), (2.3, True), (2.9, True), (3.6, False)]
+    truth = make_truth(seed=9, segments=((0.0, 4.0),), marker=marks)
+    bag = write_bag(tmp_path / "rec", truth, "ros1" if False else "mcap")
+    src = open_logs(bag, layout_with(rules, episodes="marker", marker_topic=REC))
+    assert src.num_episodes == 2
+    for e, (a, b) in enumerate(((0.4, 1.7), (2.3, 3.6))):
+        s, obs, act, _ = expected(truth, rules, window=(T0 + int(a * 1e9), T0 + int(b * 1e9) - 1))
+        es = src.read(e, e + 1)
+        np.testing.assert_allclose(es.observations, obs, atol=1e-12)
+        np.testing.assert_array_equal(es.actions, act)
+
+
+def test_camera_frames_follow_the_steps_and_are_resized(tmp_path):
+    truth = make_truth(seed=2, image=True)
+    bag = write_bag(tmp_path / "rec", truth, "mcap")
+    lay = layout_with({JOINTS: "interpolate", TIP: "nearest", CAM: "latest"})
+    lay["keys"]["frame"] = CAM
+    es = open_logs(bag, lay).read(0, 1)
+    s, *_ = expected(truth, {JOINTS: "interpolate", TIP: "nearest", CAM: "latest"})
+    np.testing.assert_array_equal(es.frames, ref_latest(*truth[CAM], s))
+    lay["bag"]["frame_size"] = [3, 4]
+    small = open_logs(bag, lay).read(0, 1).frames
+    assert small.shape == (s.size, 3, 4, 3) and small.dtype == np.uint8
+    lay["bag"]["align"][CAM] = "interpolate"
+    with pytest.raises(LayoutError, match="images are not interpolated"):
+        open_logs(bag, lay)
+
+
+def test_sidecar_outcomes(tmp_path):
+    for i in range(2):
+        write_bag(tmp_path / "bags" / f"take{i}", make_truth(seed=i, segments=((0, 1.0),)), "mcap")
+    (tmp_path / "bags" / "outcomes.toml").write_text(
+        "[[episode]]\ntask = 2\nsuccess = true\n\n[[episode]]\ntask = 0\nsuccess = false\n")
+    lay = layout_with(LAYOUT["bag"]["align"], sidecar="outcomes.toml")
+    lay["keys"].update(task="@sidecar", success="@sidecar")
+    src = open_logs(tmp_path / "bags", lay)
+    es = src.read(0, 2)
+    assert es.task_ids.tolist() == [2, 0]
+    assert es.success.sum() == 1 and es.success[es.offsets[1] - 1]
+    assert str(tmp_path / "bags" / "outcomes.toml") in src.files
