@@ -97,6 +97,32 @@ def open_reader(bag: Path):
     return reader
 
 
+def header_reader(reader, conn):
+    """A function reading the header stamp (ns) of a raw message without decoding it, or None
+    when the message type does not start with a std_msgs/Header.
+
+    CDR (ROS 2): 4-byte encapsulation header (byte 1 odd = little endian), then int32 sec and
+    uint32 nanosec (OMG DDS-XTypes CDR; builtin_interfaces/Time). ROS 1: uint32 seq, then
+    uint32 sec and uint32 nsec (ROS 1 serialization of std_msgs/Header).
+    """
+    import struct
+
+    fields = reader.typestore.fielddefs.get(conn.msgtype, ((), ()))[1]
+    if not fields or fields[0][0] != "header" or fields[0][1][1] != "std_msgs/msg/Header":
+        return None
+    if reader.is2:
+        le, be = struct.Struct("<iI").unpack_from, struct.Struct(">iI").unpack_from
+        def read(raw):
+            sec, nsec = (le if raw[1] & 1 else be)(raw, 4)
+            return sec * 1_000_000_000 + nsec
+    else:
+        unpack = struct.Struct("<II").unpack_from
+        def read(raw):
+            sec, nsec = unpack(raw, 4)
+            return sec * 1_000_000_000 + nsec
+    return read
+
+
 def _seconds(t, t0) -> str:
     return f"t = {(int(t) - int(t0)) / 1e9:.3f} s into the bag"
 
@@ -233,9 +259,20 @@ class BagSource(BaseSource):
             conns = [c for c in reader.connections if c.topic in self.topics]
             cid = {c.id: c.topic for c in conns}
             stamps = {t: [] for t in self.topics}
-            for conn, t, _ in reader.messages(connections=conns):   # times only, no decoding
-                stamps[cid[conn.id]].append(t)
+            if spec.clock == "header":
+                rec = {t: [] for t in self.topics}
+                heads = {c.id: header_reader(reader, c) for c in conns}
+                for conn, t, raw in reader.messages(connections=conns):   # no decoding
+                    rec[cid[conn.id]].append(t)
+                    h = heads[conn.id]
+                    stamps[cid[conn.id]].append(t if h is None else h(raw))
+                rec = {t: np.asarray(v, dtype=np.int64) for t, v in rec.items()}
+            else:
+                for conn, t, _ in reader.messages(connections=conns):   # times only, no decoding
+                    stamps[cid[conn.id]].append(t)
             times = {t: np.asarray(v, dtype=np.int64) for t, v in stamps.items()}
+            if spec.clock != "header":
+                rec = times
             if b == 0:
                 self._probe(reader, bag)
             marker = None
@@ -256,7 +293,11 @@ class BagSource(BaseSource):
             except LogError as exc:
                 problems.append((e, exc))
                 steps = np.zeros(0, dtype=np.int64)
-            self.windows.append((b, steps, t0, begin, end))
+            lo = min(int(r[np.searchsorted(t, begin, "left"):np.searchsorted(t, end, "right")].min(initial=end))
+                     for t, r in zip(times.values(), rec.values()))
+            hi = max(int(r[np.searchsorted(t, begin, "left"):np.searchsorted(t, end, "right")].max(initial=begin))
+                     for t, r in zip(times.values(), rec.values()))
+            self.windows.append((b, steps, t0, begin, end, lo, hi))
             lengths.append(max(steps.shape[0] - 1, 0))
 
     def _probe(self, reader, bag):
@@ -395,7 +436,8 @@ class BagSource(BaseSource):
         return cols
 
     def _read_one(self, reader, e):
-        b, st, t0, lo, hi = self.windows[e]
+        b, st, t0, begin, end, lo, hi = self.windows[e]
+        header = self.spec.clock == "header"
         bag = self.bags[b]
         k = self.layout.keys
         conns = [c for c in reader.connections if c.topic in self.topics]
@@ -414,6 +456,10 @@ class BagSource(BaseSource):
                 m = deser(raw, conn.msgtype)
             except Exception:
                 self._decode(reader, raw, conn, bag, e, t, t0)     # raises the one-line error
+            if header and hasattr(m, "header"):
+                t = m.header.stamp.sec * 1_000_000_000 + m.header.stamp.nanosec
+                if not begin <= t <= end:
+                    continue
             slot[0].append(t)
             for ref, out in slot[1]:
                 out.append(ref.getter(m))

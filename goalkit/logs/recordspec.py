@@ -28,7 +28,9 @@ from goalkit.errors import LayoutError
 ALIGN_RULES = ("latest", "nearest", "interpolate")
 #: How a recording is cut into episodes.
 EPISODE_CUTS = ("per-bag", "marker", "start", "gap")
-BAG_KEYS = ("step_topic", "step_period", "align", "episodes", "marker_topic", "cut_gap",
+#: Which time a message has: the bag's record time, or the stamp of its header.
+CLOCKS = ("record", "header")
+BAG_KEYS = ("clock", "step_topic", "step_period", "align", "episodes", "marker_topic", "cut_gap",
             "max_gap", "sidecar", "frame_size")
 TABLE_KEYS = ("episode_column", "file_pattern")
 
@@ -46,6 +48,7 @@ class BagSpec:
     max_gap: float | None = None
     sidecar: str | None = None
     frame_size: tuple | None = None
+    clock: str = "record"
 
     def rule(self, topic: str) -> str:
         """The alignment rule of a topic."""
@@ -125,7 +128,10 @@ def parse_bag(t, file) -> BagSpec:
             raise LayoutError(f"expected [height, width] in pixels, got {size!r}", file=file,
                               key="bag.frame_size")
         size = (int(size[0]), int(size[1]))
-    return BagSpec(step_topic=step_topic, step_period=step_period,
+    clock = t.get("clock", "record")
+    if clock not in CLOCKS:
+        raise LayoutError(f"expected one of {', '.join(CLOCKS)}, got {clock!r}", file=file, key="bag.clock")
+    return BagSpec(clock=clock, step_topic=step_topic, step_period=step_period,
                    align=tuple((str(k), str(v)) for k, v in align_t.items()), episodes=cut,
                    marker_topic=marker, cut_gap=cut_gap, max_gap=_seconds(t, "max_gap", file),
                    sidecar=_text(t, "sidecar", file, "bag"), frame_size=size)
@@ -159,6 +165,8 @@ def spec_to_toml(spec) -> list[str]:
     else:
         lines.append(f"step_period = {spec.step_period!r}")
     lines.append(f"episodes = {_q(spec.episodes)}")
+    if spec.clock != "record":
+        lines.append(f"clock = {_q(spec.clock)}")
     if spec.marker_topic is not None:
         lines.append(f"marker_topic = {_q(spec.marker_topic)}")
     for name in ("cut_gap", "max_gap"):

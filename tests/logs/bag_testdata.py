@@ -94,8 +94,13 @@ TYPES = {JOINTS: "sensor_msgs/msg/JointState", TIP: "geometry_msgs/msg/PoseStamp
          CMD: "std_msgs/msg/Float64MultiArray", CAM: "sensor_msgs/msg/Image", REC: "std_msgs/msg/Bool"}
 
 
-def write_bag(path, truth, kind="mcap", encoding=None):
-    """Write ``truth`` as a bag: kind ``"mcap"`` or ``"sqlite"`` (ROS 2) or ``"ros1"``."""
+def write_bag(path, truth, kind="mcap", encoding=None, delay_seed=None, header_edit=None, garbage=None):
+    """Write ``truth`` as a bag: kind ``"mcap"`` or ``"sqlite"`` (ROS 2) or ``"ros1"``.
+
+    The truth's times are the header stamps; the record times are the same, or later by a
+    random 0-4 ms transport delay (``delay_seed``). ``header_edit(topic, times)`` changes the
+    stamps written; ``garbage`` is a topic whose third message is written as junk bytes.
+    """
     path = Path(path)
     ros1 = kind == "ros1"
     ts = get_typestore(Stores.ROS1_NOETIC if ros1 else Stores.ROS2_HUMBLE)
@@ -109,10 +114,17 @@ def write_bag(path, truth, kind="mcap", encoding=None):
         events = []
         for topic, (times, values) in truth.items():
             conn = writer.add_connection(topic, TYPES[topic], typestore=ts)
-            for t, msg in zip(times, _messages(ts, topic, times, values, ros1)):
+            stamps = times if header_edit is None else header_edit(topic, times.copy())
+            rec = times
+            if delay_seed is not None:
+                rec = times + np.random.default_rng([delay_seed, len(events)]).integers(0, 4_000_000, times.size)
+            for i, (t, msg) in enumerate(zip(rec, _messages(ts, topic, stamps, values, ros1))):
                 if encoding and topic == CAM:
                     msg.encoding = encoding
-                events.append((int(t), conn, ser(msg, TYPES[topic])))
+                raw = ser(msg, TYPES[topic])
+                if topic == garbage and i == 2:
+                    raw = bytes(raw[:6])
+                events.append((int(t), conn, raw))
         events.sort(key=lambda x: x[0])
         for t, conn, raw in events:
             writer.write(conn, t, raw)

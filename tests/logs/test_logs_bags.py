@@ -168,3 +168,108 @@ def test_sidecar_outcomes(tmp_path):
     assert es.task_ids.tolist() == [2, 0]
     assert es.success.sum() == 1 and es.success[es.offsets[1] - 1]
     assert str(tmp_path / "bags" / "outcomes.toml") in src.files
+
+
+def test_header_clock_aligns_on_the_stamps_not_the_record_times(tmp_path):
+    rules = {JOINTS: "interpolate", TIP: "nearest", CMD: "latest"}
+    truth = make_truth(seed=11)
+    # record times are the stamps plus a 0-4 ms transport delay; the command topic has no
+    # header, so its record time is its time under either clock
+    bag = write_bag(tmp_path / "rec", truth, "mcap", delay_seed=4)
+    src = open_logs(bag, layout_with(rules, clock="header", step_period=0.02))
+    st = src.windows[0][1]
+    first = max(truth[JOINTS][0][0], truth[TIP][0][0])
+    assert first <= st[0] <= first + 4_000_000 or st[0] <= truth[CMD][0][0] + 4_000_000
+    assert st[-1] <= truth[JOINTS][0][-1] and (np.diff(st) == 20_000_000).all() and st.size > 100
+    es = src.read(0, 1)
+    np.testing.assert_allclose(es.observations[:, :2], ref_interp(*truth[JOINTS], st), atol=1e-12)
+    np.testing.assert_allclose(es.observations[:, 2:], ref_nearest(*truth[TIP], st), atol=1e-12)
+    # the record clock sees the delayed times: different joint values at its own steps
+    es_rec = open_logs(bag, layout_with(rules, step_period=0.02)).read(0, 1)
+    assert not np.allclose(es_rec.observations[:, :2], ref_interp(*truth[JOINTS], st[:es_rec.observations.shape[0]]),
+                           atol=1e-9)
+
+
+@pytest.mark.parametrize("case, pattern", [
+    ("topic", r"rec: key /gantry/joint_state: no such topic; topics: .*closest: /gantry/joint_states"),
+    ("field", r"key /gantry/nozzle_pose:pose.positon: no field 'positon' in geometry_msgs/msg/PoseStamped pose; fields: position, orientation \(closest: position\)"),
+    ("string", r"key /gantry/joint_states:name: field 'name'"),
+    ("interp_flag", r"holds flags; expected latest or nearest"),
+])
+def test_layout_mistakes_are_one_line(tmp_path, case, pattern):
+    truth = make_truth(seed=1, marker=[(0.2, True)])
+    bag = write_bag(tmp_path / "rec", truth, "mcap")
+    lay = layout_with({JOINTS: "interpolate"})
+    if case == "topic":
+        lay["fields"]["joints"] = "/gantry/joint_state:position"
+    elif case == "field":
+        lay["fields"]["nozzle"] = f"{TIP}:pose.positon"
+    elif case == "string":
+        lay["fields"]["joints"] = f"{JOINTS}:name"
+    else:
+        lay["keys"]["success"] = f"{REC}:data"
+        lay["bag"]["align"][REC] = "interpolate"
+    with pytest.raises((LogError, LayoutError), match=pattern):
+        open_logs(bag, lay)
+
+
+def _cli_error(tmp_path, bag, lay, *extra):
+    from click.testing import CliRunner
+
+    from goalkit.cli import main
+    from goalkit.logs.layout import layout_to_toml, parse_layout
+    p = tmp_path / "lay.toml"
+    p.write_text(layout_to_toml(parse_layout(lay)))
+    res = CliRunner().invoke(main, ["scan", str(bag), "--layout", str(p), "--quiet", *extra])
+    return res
+
+
+def test_bad_recordings_are_one_line_exit_2(tmp_path):
+    rules = {JOINTS: "interpolate", TIP: "nearest"}
+    # time going backwards in the header stamps
+    def back(topic, t):
+        if topic == JOINTS:
+            t[40], t[41] = t[41], t[40]
+        return t
+    bag = write_bag(tmp_path / "back", make_truth(seed=2), "mcap", header_edit=back)
+    res = _cli_error(tmp_path, bag, layout_with(rules, clock="header"))
+    assert res.exit_code == 2 and len(res.output.strip().splitlines()) == 1, res.output
+    assert "key /gantry/joint_states: time goes backwards at t = " in res.output
+    # a message that cannot be decoded
+    bag = write_bag(tmp_path / "junk", make_truth(seed=2), "sqlite", garbage=TIP)
+    res = _cli_error(tmp_path, bag, layout_with(rules))
+    assert res.exit_code == 2 and "key /gantry/nozzle_pose: episode 0: cannot decode a " \
+        "geometry_msgs/msg/PoseStamped message at t = " in res.output, res.output
+    # a gap longer than allowed, then skipped with --skip-bad-episodes
+    tr = make_truth(seed=2, segments=((0.0, 1.0), (3.0, 4.0), (6.0, 7.0)))
+    t, v = tr[TIP]
+    keep = ~((t > T0 + 3.2e9) & (t < T0 + 3.9e9))
+    tr[TIP] = (t[keep], v[keep])
+    bag = write_bag(tmp_path / "gap", tr, "mcap")
+    lay = layout_with(rules, episodes="gap", cut_gap=1.5, max_gap=0.3)
+    res = _cli_error(tmp_path, bag, lay)
+    assert res.exit_code == 2 and "key /gantry/nozzle_pose: episode 1: gap of 0." in res.output, res.output
+    assert "expected at most max_gap = 0.3 s" in res.output
+    res = _cli_error(tmp_path, bag, lay, "--skip-bad-episodes", "--json")
+    assert res.exit_code == 0, res.output
+    import json
+    rep = json.loads(res.output)
+    assert rep["episodes"] == 2 and rep["skipped"][0]["episode"] == 1
+    # a topic with no message in an episode
+    tr = make_truth(seed=2, segments=((0.0, 1.0), (3.0, 4.0)))
+    t, v = tr[TIP]
+    tr[TIP] = (t[t < T0 + 2e9], v[t < T0 + 2e9])
+    bag = write_bag(tmp_path / "none", tr, "mcap")
+    res = _cli_error(tmp_path, bag, layout_with(rules, episodes="gap", cut_gap=1.5))
+    assert res.exit_code == 2 and "key /gantry/nozzle_pose: episode 1: no message on this topic " \
+        "in the episode (t = 3.0" in res.output, res.output
+
+
+def test_unsupported_image_encoding(tmp_path):
+    bag = write_bag(tmp_path / "rec", make_truth(seed=2, image=True), "mcap", encoding="bayer_rggb8")
+    lay = layout_with({JOINTS: "interpolate", TIP: "nearest"})
+    lay["keys"]["frame"] = CAM
+    res = _cli_error(tmp_path, bag, lay)
+    assert res.exit_code == 2 and len(res.output.strip().splitlines()) == 1
+    assert "key /gantry/camera: episode 0: image encoding 'bayer_rggb8' at t = " in res.output
+    assert "expected one of mono8, rgb8, bgr8" in res.output
