@@ -532,5 +532,6 @@ class BagSource(BaseSource):
         out = [{"role": r.role, "key": r.text, "dtype": {"f": "float", "b": "bool"}.get(r.kind, "int"),
                 "shape": [r.width]} for r in self.refs]
         if self.frame_topic:
-            out.append({"role": "frame", "key": self.frame_topic, "dtype": "uint8", "shape": "image"})
+            out.append({"role": "frame", "key": self.frame_topic, "dtype": "uint8",
+                        "shape": list(self.spec.frame_size or ())})
         return out

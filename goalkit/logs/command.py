@@ -7,6 +7,7 @@ import click
 from goalkit.atomic import write_text_atomic
 from goalkit.cli_support import echo_json, progress, user_errors
 from goalkit.errors import LogError
+from goalkit.logs.bagfile import is_bag_path
 
 
 def _fmt(x) -> str:
@@ -77,15 +78,27 @@ def _table(header, rows) -> list[str]:
 def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, quiet):
     """Check the task logs LOGS and summarise them; propose a layout when none is given.
 
-    LOGS is an HDF5 file, a .npz file or a directory of per-episode .npz files.
+    LOGS is an HDF5 file, a .npz file, a directory of per-episode .npz files, a Parquet step
+    table (with --layout), or a ROS bag (ROS 1 .bag, ROS 2 bag directory) or a folder of bags:
+    for bags the topics are listed and a layout is proposed from their message types.
     """
     from goalkit.logs.layout import layout_to_toml, load_layout
     from goalkit.logs.opener import open_logs
     from goalkit.logs.scan import scan_logs
 
+    listing = None
+    if is_bag_path(logs):
+        from goalkit.logs.bagscan import list_topics
+
+        listing = list_topics(logs)
     if layout_file is not None:
         layout = load_layout(layout_file)
         proposed = False
+    elif listing is not None:
+        from goalkit.logs.bagscan import propose_bag_layout
+
+        layout = propose_bag_layout(listing)
+        proposed = True
     else:
         from goalkit.logs.detect import propose_layout
 
@@ -108,6 +121,8 @@ def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, qui
         report["notes"].insert(0, "no layout given: read with the proposed layout below")
     report["layout"] = text
     report["layout_proposed"] = proposed
+    if listing is not None:
+        report["topics"] = listing["topics"]
     if write_layout is not None:
         write_text_atomic(write_layout, text)
         report["layout_written"] = str(write_layout)
@@ -116,6 +131,11 @@ def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, qui
         return
     if quiet:
         return
+    if listing is not None:
+        from goalkit.logs.bagscan import render_topics
+
+        for line in render_topics(listing):
+            click.echo(line)
     for line in render_report(report):
         click.echo(line)
     if proposed:

@@ -49,9 +49,15 @@ def open_logs(path, layout=None, skip_bad_episodes: bool = False, *, advance=Non
 
     proposed = False
     if layout is None:
+        from goalkit.logs.bagfile import is_bag_path
         from goalkit.logs.detect import propose_layout
 
-        layout = propose_layout(path)
+        if is_bag_path(path):
+            from goalkit.logs.bagscan import list_topics, propose_bag_layout
+
+            layout = propose_bag_layout(list_topics(path))
+        else:
+            layout = propose_layout(path)
         proposed = True
     elif isinstance(layout, (str, Path)):
         layout = load_layout(layout)
