@@ -27,6 +27,7 @@ import numpy as np
 from goalkit.config import closest, load_toml
 from goalkit.errors import LayoutError, LogError
 from goalkit.logs import align as al
+from goalkit.logs.bagfast import fixed_layout_values
 from goalkit.logs.naming import natural_sorted
 from goalkit.logs.recordspec import split_ref
 from goalkit.logs.source import BaseSource
@@ -441,40 +442,58 @@ class BagSource(BaseSource):
         bag = self.bags[b]
         k = self.layout.keys
         conns = [c for c in reader.connections if c.topic in self.topics]
-        by_conn, slots = {}, {}
-        for topic in self.topics:
-            refs = [r for r in self.refs if r.topic == topic]
-            slots[topic] = ([], [(r, []) for r in refs], [])   # times, (ref, values), images
-        for c in conns:
-            by_conn[c.id] = slots[c.topic]
-        deser = reader.typestore.deserialize_cdr if reader.is2 else reader.typestore.deserialize_ros1
-        frame = self.frame_topic
+        topic_of = {c.id: c.topic for c in conns}
+        type_of = {c.topic: c for c in conns}
+        raws = {topic: [] for topic in self.topics}
+        recs = {topic: [] for topic in self.topics}
         # every message of the episode's window (the latest one before the first step included)
         for conn, t, raw in reader.messages(connections=conns, start=lo, stop=hi + 1):
-            slot = by_conn[conn.id]
-            try:
-                m = deser(raw, conn.msgtype)
-            except Exception:
-                self._decode(reader, raw, conn, bag, e, t, t0)     # raises the one-line error
-            if header and hasattr(m, "header"):
-                t = m.header.stamp.sec * 1_000_000_000 + m.header.stamp.nanosec
-                if not begin <= t <= end:
-                    continue
-            slot[0].append(t)
-            for ref, out in slot[1]:
-                out.append(ref.getter(m))
-            if conn.topic == frame:
-                slot[2].append(m)
-        aligned = {}
-        for topic, (ts, refs, _) in slots.items():
-            t = np.asarray(ts, dtype=np.int64)
-            for ref, out in refs:
+            topic = topic_of[conn.id]
+            recs[topic].append(t)
+            raws[topic].append(raw)
+        deser = reader.typestore.deserialize_cdr if reader.is2 else reader.typestore.deserialize_ros1
+        frame = self.frame_topic
+        aligned, images = {}, None
+        for topic in self.topics:
+            conn, raw_list = type_of[topic], raws[topic]
+            t = np.asarray(recs[topic], dtype=np.int64)
+            read_stamp = header_reader(reader, conn)
+            if self.spec.clock == "header" and read_stamp is not None:
+                t = np.fromiter(map(read_stamp, raw_list), dtype=np.int64, count=len(raw_list))
+                keep = (t >= begin) & (t <= end)
+                t = t[keep]
+                raw_list = [r for r, kp in zip(raw_list, keep.tolist()) if kp]
+            refs = [r for r in self.refs if r.topic == topic]
+            if not refs and topic != frame:
+                continue                               # the step topic: times only
+            if not raw_list:
+                raise LogError("no message on this topic in the episode", file=bag, key=topic, episode=e)
+
+            def decode(i, raw):
+                try:
+                    return deser(raw, conn.msgtype)
+                except Exception:
+                    self._decode(reader, raw, conn, bag, e, int(t[i]), t0)   # raises one line
+
+            fast = None
+            if topic != frame:
+                fast = fixed_layout_values(raw_list, decode(0, raw_list[0]), refs, reader.typestore,
+                                           ros1=not reader.is2, header=read_stamp is not None)
+            if fast is not None:
+                for ref in refs:
+                    aligned[ref.text] = (t, fast[ref.text])
+                continue
+            msgs = [decode(i, raw) for i, raw in enumerate(raw_list)]
+            if topic == frame:
+                images = (t, msgs)
+            for ref in refs:
+                out = [ref.getter(m) for m in msgs]
                 try:
                     v = np.asarray(out, dtype=np.float64 if ref.kind == "f" else None).reshape(len(out), -1)
                 except ValueError:
                     v = None
                 if v is None or v.shape[1] != ref.width:
-                    widths = sorted({np.size(x) for x in out})
+                    widths = sorted({int(np.size(x)) for x in out})
                     raise LogError(f"has values of widths {widths}; expected {ref.width} in every "
                                    f"message", file=bag, key=ref.text, episode=e)
                 aligned[ref.text] = (t, v)
@@ -508,18 +527,18 @@ class BagSource(BaseSource):
         if k.task_goal is not None:
             out["task_goals"] = at(self.role_refs["task_goal"], st[:-1]).astype(np.float64)
         if frame is not None:
-            out["frames"] = self._frames(slots[frame], st, bag, e, t0)
+            out["frames"] = self._frames(images, st, bag, e, t0)
         return out
 
     def _frames(self, slot, st, bag, e, t0):
         from goalkit.logs.bagimage import decode_image
 
-        t = np.asarray(slot[0], dtype=np.int64)
+        t, msgs = slot
         rule = self.spec.rule(self.frame_topic)
         idx = al.latest_index(t, st) if rule == "latest" else al.nearest_index(t, st)
         uniq, inv = np.unique(idx, return_inverse=True)
         size = self.spec.frame_size
-        pics = [decode_image(slot[2][i], size, file=bag, key=self.frame_topic, episode=e,
+        pics = [decode_image(msgs[i], size, file=bag, key=self.frame_topic, episode=e,
                              when=_seconds(t[i], t0)) for i in uniq.tolist()]
         shapes = {p.shape for p in pics}
         if len(shapes) > 1:
