@@ -273,3 +273,39 @@ def test_unsupported_image_encoding(tmp_path):
     assert res.exit_code == 2 and len(res.output.strip().splitlines()) == 1
     assert "key /gantry/camera: episode 0: image encoding 'bayer_rggb8' at t = " in res.output
     assert "expected one of mono8, rgb8, bgr8" in res.output
+
+
+def test_fixed_layout_path_equals_per_message_decoding(tmp_path, monkeypatch):
+    """The whole-topic decoding gives what rosbags' per-message deserialisation gives; a topic
+    whose messages change structure (frame ids of different lengths) falls back to it."""
+    import goalkit.logs.bagfast as fast
+    truth = make_truth(seed=21)
+    rules = {JOINTS: "interpolate", TIP: "nearest"}
+    for kind in ("mcap", "ros1"):
+        bag = write_bag(tmp_path / (kind + (".bag" if kind == "ros1" else "")), truth, kind)
+        quick = open_logs(bag, layout_with(rules)).read(0, 1)
+        monkeypatch.setattr(fast, "ENABLED", False)
+        slow = open_logs(bag, layout_with(rules)).read(0, 1)
+        monkeypatch.setattr(fast, "ENABLED", True)
+        np.testing.assert_array_equal(quick.observations, slow.observations)
+        np.testing.assert_array_equal(quick.actions, slow.actions)
+    # frame ids that change length move the fields: the check must refuse the fast path
+    from rosbags.typesys import Stores, get_typestore
+    ts = get_typestore(Stores.ROS2_HUMBLE)
+    msgs = []
+    # same total length, different structure: the joint name takes what the frame id gives up
+    for i, (fid, name) in enumerate([("abc", "abcdefg"), ("abcdefg", "abc"), ("abc", "abcdefg")]):
+        h = ts.types["std_msgs/msg/Header"](stamp=ts.types["builtin_interfaces/msg/Time"](sec=i, nanosec=0),
+                                            frame_id=fid)
+        m = ts.types["sensor_msgs/msg/JointState"](header=h, name=[name], position=np.array([0.5 + i]),
+                                                   velocity=np.zeros(1), effort=np.zeros(1))
+        msgs.append(ts.serialize_cdr(m, "sensor_msgs/msg/JointState").tobytes())
+    from goalkit.logs.bagfile import Ref, resolve
+    ref = Ref("x", f"{JOINTS}:position", JOINTS, "position")
+    proto = ts.deserialize_cdr(msgs[0], "sensor_msgs/msg/JointState")
+    resolve(ref, proto, "sensor_msgs/msg/JointState", "f")
+    assert len({len(m) for m in msgs}) == 1
+    assert fast.fixed_layout_values(msgs, proto, [ref], ts, ros1=False, header=True) is None
+    same = [msgs[0]] * 2
+    got = fast.fixed_layout_values(same, proto, [ref], ts, ros1=False, header=True)
+    assert got[ref.text].tolist() == [[0.5], [0.5]]
