@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import operator
 import os
+from array import array
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -259,19 +260,21 @@ class BagSource(BaseSource):
                                    + (f" (closest: {near})" if near else ""), file=bag, key=t)
             conns = [c for c in reader.connections if c.topic in self.topics]
             cid = {c.id: c.topic for c in conns}
-            stamps = {t: [] for t in self.topics}
+            stamps = {t: array("q") for t in self.topics}     # 8 bytes per message
             if spec.clock == "header":
-                rec = {t: [] for t in self.topics}
+                rec = {t: array("q") for t in self.topics}
                 heads = {c.id: header_reader(reader, c) for c in conns}
                 for conn, t, raw in reader.messages(connections=conns):   # no decoding
                     rec[cid[conn.id]].append(t)
                     h = heads[conn.id]
                     stamps[cid[conn.id]].append(t if h is None else h(raw))
-                rec = {t: np.asarray(v, dtype=np.int64) for t, v in rec.items()}
+                rec = {t: np.frombuffer(v, dtype=np.int64) if len(v) else np.zeros(0, np.int64)
+                       for t, v in rec.items()}
             else:
                 for conn, t, _ in reader.messages(connections=conns):   # times only, no decoding
                     stamps[cid[conn.id]].append(t)
-            times = {t: np.asarray(v, dtype=np.int64) for t, v in stamps.items()}
+            times = {t: np.frombuffer(v, dtype=np.int64) if len(v) else np.zeros(0, np.int64)
+                     for t, v in stamps.items()}
             if spec.clock != "header":
                 rec = times
             if b == 0:
