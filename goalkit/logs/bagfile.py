@@ -26,7 +26,7 @@ from pathlib import Path
 import numpy as np
 
 from goalkit.config import closest, load_toml
-from goalkit.errors import LayoutError, LogError
+from goalkit.errors import GoalkitError, LayoutError, LogError
 from goalkit.logs import align as al
 from goalkit.logs.bagfast import fixed_layout_values
 from goalkit.logs.naming import natural_sorted
@@ -248,43 +248,57 @@ class BagSource(BaseSource):
         return v
 
     def _plan_bag(self, b, bag, problems, lengths):
-        spec = self.spec
         reader = open_reader(bag)
         try:
-            topics = reader.topics
-            need = list(self.topics) + ([spec.marker_topic] if spec.marker_topic else [])
-            for t in need:
-                if t not in topics:
-                    near = closest(t, list(topics))
-                    raise LogError(f"no such topic; topics: {', '.join(sorted(topics)) or 'none'}"
-                                   + (f" (closest: {near})" if near else ""), file=bag, key=t)
-            conns = [c for c in reader.connections if c.topic in self.topics]
-            cid = {c.id: c.topic for c in conns}
-            stamps = {t: array("q") for t in self.topics}     # 8 bytes per message
-            if spec.clock == "header":
-                rec = {t: array("q") for t in self.topics}
-                heads = {c.id: header_reader(reader, c) for c in conns}
-                for conn, t, raw in reader.messages(connections=conns):   # no decoding
-                    rec[cid[conn.id]].append(t)
-                    h = heads[conn.id]
-                    stamps[cid[conn.id]].append(t if h is None else h(raw))
-                rec = {t: np.frombuffer(v, dtype=np.int64) if len(v) else np.zeros(0, np.int64)
-                       for t, v in rec.items()}
-            else:
-                for conn, t, _ in reader.messages(connections=conns):   # times only, no decoding
-                    stamps[cid[conn.id]].append(t)
-            times = {t: np.frombuffer(v, dtype=np.int64) if len(v) else np.zeros(0, np.int64)
-                     for t, v in stamps.items()}
-            if spec.clock != "header":
-                rec = times
-            if b == 0:
-                self._probe(reader, bag)
-            marker = None
-            if spec.marker_topic is not None:
-                marker = self._markers(reader, bag)
-            t0 = reader.start_time
+            self._scan_bag(b, bag, reader, problems, lengths)
+        except GoalkitError:
+            raise
+        except Exception as exc:   # a damaged storage file surfaces as many exception types
+            raise LogError(f"cannot read the bag's messages ({type(exc).__name__}: {exc})", file=bag) from None
         finally:
             reader.close()
+
+    def _scan_bag(self, b, bag, reader, problems, lengths):
+        spec = self.spec
+        topics = reader.topics
+        need = list(self.topics) + ([spec.marker_topic] if spec.marker_topic else [])
+        for t in need:
+            if t not in topics:
+                near = closest(t, list(topics))
+                raise LogError(f"no such topic; topics: {', '.join(sorted(topics)) or 'none'}"
+                               + (f" (closest: {near})" if near else ""), file=bag, key=t)
+        conns = [c for c in reader.connections if c.topic in self.topics]
+        types = {c.topic: c.msgtype for c in conns}
+        if b == 0:
+            self._types = types
+        for t, ty in types.items():
+            if ty != self._types.get(t, ty):
+                raise LogError(f"carries {ty}; the first bag's carries {self._types[t]}; expected "
+                               f"one message type per topic", file=bag, key=t)
+        cid = {c.id: c.topic for c in conns}
+        stamps = {t: array("q") for t in self.topics}     # 8 bytes per message
+        if spec.clock == "header":
+            rec = {t: array("q") for t in self.topics}
+            heads = {c.id: header_reader(reader, c) for c in conns}
+            for conn, t, raw in reader.messages(connections=conns):   # no decoding
+                rec[cid[conn.id]].append(t)
+                h = heads[conn.id]
+                stamps[cid[conn.id]].append(t if h is None else h(raw))
+            rec = {t: np.frombuffer(v, dtype=np.int64) if len(v) else np.zeros(0, np.int64)
+                   for t, v in rec.items()}
+        else:
+            for conn, t, _ in reader.messages(connections=conns):   # times only, no decoding
+                stamps[cid[conn.id]].append(t)
+        times = {t: np.frombuffer(v, dtype=np.int64) if len(v) else np.zeros(0, np.int64)
+                 for t, v in stamps.items()}
+        if spec.clock != "header":
+            rec = times
+        if b == 0:
+            self._probe(reader, bag)
+        marker = None
+        if spec.marker_topic is not None:
+            marker = self._markers(reader, bag)
+        t0 = reader.start_time
         for topic, t in times.items():
             back = np.flatnonzero(np.diff(t) < 0)
             if back.size:
@@ -450,10 +464,14 @@ class BagSource(BaseSource):
         raws = {topic: [] for topic in self.topics}
         recs = {topic: [] for topic in self.topics}
         # every message of the episode's window (the latest one before the first step included)
-        for conn, t, raw in reader.messages(connections=conns, start=lo, stop=hi + 1):
-            topic = topic_of[conn.id]
-            recs[topic].append(t)
-            raws[topic].append(raw)
+        try:
+            for conn, t, raw in reader.messages(connections=conns, start=lo, stop=hi + 1):
+                topic = topic_of[conn.id]
+                recs[topic].append(t)
+                raws[topic].append(raw)
+        except Exception as exc:   # a damaged storage file surfaces as many exception types
+            raise LogError(f"cannot read the bag's messages ({type(exc).__name__}: {exc})", file=bag,
+                           episode=e) from None
         deser = reader.typestore.deserialize_cdr if reader.is2 else reader.typestore.deserialize_ros1
         frame = self.frame_topic
         aligned, images = {}, None
@@ -484,6 +502,9 @@ class BagSource(BaseSource):
                                            ros1=not reader.is2, header=read_stamp is not None)
             if fast is not None:
                 for ref in refs:
+                    if fast[ref.text].shape[1] != ref.width:
+                        raise LogError(f"has values of width {fast[ref.text].shape[1]}; expected "
+                                       f"{ref.width} in every message", file=bag, key=ref.text, episode=e)
                     aligned[ref.text] = (t, fast[ref.text])
                 continue
             msgs = [decode(i, raw) for i, raw in enumerate(raw_list)]

@@ -309,3 +309,31 @@ def test_fixed_layout_path_equals_per_message_decoding(tmp_path, monkeypatch):
     same = [msgs[0]] * 2
     got = fast.fixed_layout_values(same, proto, [ref], ts, ros1=False, header=True)
     assert got[ref.text].tolist() == [[0.5], [0.5]]
+
+
+def test_bags_that_disagree(tmp_path):
+    """A topic whose type or width changes from one bag to the next is refused in one line."""
+    write_bag(tmp_path / "bags" / "take1", make_truth(seed=1, segments=((0, 1.0),)), "mcap")
+    tr = make_truth(seed=2, segments=((0, 1.0),))
+    t, v = tr[JOINTS]
+    tr[JOINTS] = (t, np.concatenate([v, v[:, :1]], axis=1))       # a third joint appears
+    write_bag(tmp_path / "bags" / "take2", tr, "mcap")
+    src = open_logs(tmp_path / "bags", layout_with({JOINTS: "interpolate"}))
+    with pytest.raises(LogError, match=r"take2: key /gantry/joint_states:position: episode 1: has "
+                                       r"values of width 3; expected 2 in every message"):
+        src.read(0, 2)
+    skipping = open_logs(tmp_path / "bags", layout_with({JOINTS: "interpolate"}), skip_bad_episodes=True)
+    assert skipping.episode_ids.tolist() == [0] and skipping.skipped[0][0] == 1
+    # a second bag whose pose topic carries another message type
+    from rosbags.rosbag2 import StoragePlugin, Writer
+    from rosbags.typesys import Stores, get_typestore
+    write_bag(tmp_path / "mixed" / "a", make_truth(seed=3, segments=((0, 1.0),)), "mcap")
+    ts = get_typestore(Stores.ROS2_HUMBLE)
+    with Writer(tmp_path / "mixed" / "b", version=9, storage_plugin=StoragePlugin.MCAP) as w:
+        for topic, ty in ((JOINTS, "sensor_msgs/msg/JointState"), (CMD, "std_msgs/msg/Float64MultiArray"),
+                          (TIP, "std_msgs/msg/Bool")):
+            w.add_connection(topic, ty, typestore=ts)
+        w.write(w.connections[2], T0, ts.serialize_cdr(ts.types["std_msgs/msg/Bool"](data=True), "std_msgs/msg/Bool"))
+    with pytest.raises(LogError, match=r"b: key /gantry/nozzle_pose: carries std_msgs/msg/Bool; "
+                                       r"the first bag's carries geometry_msgs/msg/PoseStamped"):
+        open_logs(tmp_path / "mixed", layout_with({JOINTS: "interpolate"}))
