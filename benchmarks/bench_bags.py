@@ -12,7 +12,9 @@ nearest, command latest.
 Floor: a plain loop over rosbags' AnyReader.messages() calling the typestore's
 deserialize_cdr on every message of the same bag (decode only, nothing kept).
 goalkit: open_logs (one pass over the bag reading times only) and reading every episode in
-chunks of 100k transitions (decode, field look-ups, alignment). Each run is a fresh process;
+chunks of 100k transitions (decode, field look-ups, alignment); also measured with the
+whole-topic decoding switched off (every message through rosbags' deserialize_cdr), reported
+as per_message (not a target). Each run is a fresh process;
 the median of --repeats runs is used. Peak RSS is each process's own.
 
 Targets: goalkit >= 0.8 x the floor's message rate; goalkit's peak RSS at the larger size
@@ -116,6 +118,8 @@ print(json.dumps({{"seconds": time.perf_counter() - t, "messages": n,
 
 OURS = PEAK + """
 import json, time
+import goalkit.logs.bagfast
+goalkit.logs.bagfast.ENABLED = {fast}
 from goalkit.logs import open_logs
 from goalkit.logs.episodes import iter_chunks
 t = time.perf_counter()
@@ -148,19 +152,22 @@ def main(argv=None):
             t = time.perf_counter()
             n = write_recording(bag, size)
             print(f"wrote {n} messages in {time.perf_counter() - t:.1f} s", flush=True)
-            floor, ours = [], []
+            floor, ours, slow = [], [], []
             for _ in range(args.repeats):           # interleaved
                 floor.append(run(FLOOR.format(bag=str(bag))))
-                ours.append(run(OURS.format(bag=str(bag), layout=LAYOUT)))
+                ours.append(run(OURS.format(bag=str(bag), layout=LAYOUT, fast=True)))
+                slow.append(run(OURS.format(bag=str(bag), layout=LAYOUT, fast=False)))
             f_s = statistics.median(r["seconds"] for r in floor)
             o_s = statistics.median(r["seconds"] for r in ours)
+            p_s = statistics.median(r["seconds"] for r in slow)
             row = {"messages": n, "floor_seconds": f_s, "goalkit_seconds": o_s,
                    "floor_msgs_per_s": n / f_s, "goalkit_msgs_per_s": n / o_s,
                    "ratio_to_floor": f_s / o_s,
+                   "per_message_seconds": p_s, "per_message_ratio_to_floor": f_s / p_s,
                    "floor_peak_rss_mb": max(r["peak_rss_mb"] for r in floor),
                    "goalkit_peak_rss_mb": max(r["peak_rss_mb"] for r in ours),
                    "episodes": ours[0]["episodes"], "steps": ours[0]["steps"],
-                   "runs": {"floor": floor, "goalkit": ours}}
+                   "runs": {"floor": floor, "goalkit": ours, "goalkit_per_message": slow}}
             print(json.dumps({k: v for k, v in row.items() if k != "runs"}), flush=True)
             results["sizes"].append(row)
     s = results["sizes"]

@@ -337,3 +337,43 @@ def test_bags_that_disagree(tmp_path):
     with pytest.raises(LogError, match=r"b: key /gantry/nozzle_pose: carries std_msgs/msg/Bool; "
                                        r"the first bag's carries geometry_msgs/msg/PoseStamped"):
         open_logs(tmp_path / "mixed", layout_with({JOINTS: "interpolate"}))
+
+
+def test_compressed_images_are_decoded_with_pillow(tmp_path):
+    """sensor_msgs/msg/CompressedImage with PNG data (lossless) reads back the original pixels."""
+    import io
+
+    from PIL import Image
+    from rosbags.rosbag2 import StoragePlugin, Writer
+    from rosbags.typesys import Stores, get_typestore
+
+    truth = make_truth(seed=4, image=True)
+    cam_t, cam_v = truth.pop(CAM)
+    ts = get_typestore(Stores.ROS2_HUMBLE)
+    T = ts.types
+    bag2 = tmp_path / "rec"
+    with Writer(bag2, version=8, storage_plugin=StoragePlugin.SQLITE3) as w:
+        conns = {}
+        from bag_testdata import TYPES, _messages
+        events = []
+        for topic, (t, v) in truth.items():
+            conns[topic] = w.add_connection(topic, TYPES[topic], typestore=ts)
+            events += [(int(x), topic, ts.serialize_cdr(m, TYPES[topic]))
+                       for x, m in zip(t, _messages(ts, topic, t, v, False))]
+        conns[CAM] = w.add_connection(CAM, "sensor_msgs/msg/CompressedImage", typestore=ts)
+        for x, img in zip(cam_t, cam_v):
+            buf = io.BytesIO()
+            Image.fromarray(img).save(buf, format="PNG")
+            h = T["std_msgs/msg/Header"](stamp=T["builtin_interfaces/msg/Time"](sec=int(x // 10**9), nanosec=int(x % 10**9)),
+                                         frame_id="cam")
+            m = T["sensor_msgs/msg/CompressedImage"](header=h, format="png",
+                                                     data=np.frombuffer(buf.getvalue(), dtype=np.uint8))
+            events.append((int(x), CAM, ts.serialize_cdr(m, "sensor_msgs/msg/CompressedImage")))
+        for x, topic, raw in sorted(events, key=lambda e: e[0]):
+            w.write(conns[topic], x, raw)
+    lay = layout_with({JOINTS: "interpolate", TIP: "nearest", CAM: "nearest"})
+    lay["keys"]["frame"] = CAM
+    es = open_logs(bag2, lay).read(0, 1)
+    truth[CAM] = (cam_t, cam_v)
+    s, *_ = expected(truth, {JOINTS: "interpolate", TIP: "nearest", CAM: "nearest"})
+    np.testing.assert_array_equal(es.frames, ref_nearest(cam_t, cam_v, s))
