@@ -209,7 +209,9 @@ class BagSource(BaseSource):
             raise LayoutError("expected [keys] action = \"TOPIC:FIELD\"", key="keys.action")
         self.topics = sorted({r.topic for r in self.refs} | ({self.frame_topic} if self.frame_topic else set())
                              | ({spec.step_topic} if spec.step_topic else set()))
-        self.windows = []        # (bag index, step times) per episode
+        # per episode: bag index, step times, bag start, window begin and end (episode clock),
+        # first and last record time of its messages (what a read asks rosbags for)
+        self.windows = []
         problems, lengths = [], []
         for b, bag in enumerate(self.bags):
             self._plan_bag(b, bag, problems, lengths)
