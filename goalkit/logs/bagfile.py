@@ -304,8 +304,9 @@ class BagSource(BaseSource):
         for topic, t in times.items():
             back = np.flatnonzero(np.diff(t) < 0)
             if back.size:
-                raise LogError(f"time goes backwards at {_seconds(t[back[0] + 1], t0)} (before: "
-                               f"{_seconds(t[back[0]], t0)})", file=bag, key=topic)
+                raise LogError(f"time goes backwards at {_seconds(t[back[0] + 1], t0)} (the message "
+                               f"before is at {_seconds(t[back[0]], t0)}); expected times that never "
+                               f"decrease along a topic", file=bag, key=topic)
         for begin, end in self._cut(times, marker, t0):
             e = len(lengths)
             try:

@@ -94,6 +94,11 @@ def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, qui
     if layout_file is not None:
         layout = load_layout(layout_file)
         proposed = False
+    elif str(logs).lower().endswith(".parquet"):
+        from goalkit.errors import LayoutError
+
+        raise LayoutError("Parquet step tables need a layout with shape = \"table\" (--layout); "
+                          "see docs/layout.md", file=logs)
     elif listing is not None:
         from goalkit.logs.bagscan import propose_bag_layout
 

@@ -377,3 +377,32 @@ def test_compressed_images_are_decoded_with_pillow(tmp_path):
     truth[CAM] = (cam_t, cam_v)
     s, *_ = expected(truth, {JOINTS: "interpolate", TIP: "nearest", CAM: "nearest"})
     np.testing.assert_array_equal(es.frames, ref_nearest(cam_t, cam_v, s))
+
+
+def test_header_clock_reads_ros1_and_cdr_stamps_alike(tmp_path):
+    """The raw-byte stamp reader agrees on ROS 1 and CDR layouts: both bags read the same."""
+    truth = make_truth(seed=12)
+    rules = {JOINTS: "interpolate", TIP: "nearest"}
+    lay = layout_with(rules, clock="header", step_period=0.025)
+    got = [open_logs(write_bag(tmp_path / name, truth, kind), lay).read(0, 1)
+           for name, kind in (("a.bag", "ros1"), ("b", "mcap"))]
+    np.testing.assert_array_equal(got[0].observations, got[1].observations)
+    st = open_logs(tmp_path / "a.bag", lay).windows[0][1]
+    np.testing.assert_allclose(got[0].observations[:, :2], ref_interp(*truth[JOINTS], st), atol=1e-12)
+
+
+def test_episodes_started_by_messages(tmp_path):
+    marks = [(0.3, True), (1.4, True), (2.6, True)]
+    truth = make_truth(seed=13, segments=((0.0, 3.5),), marker=marks)
+    bag = write_bag(tmp_path / "rec", truth, "sqlite")
+    rules = {JOINTS: "interpolate", TIP: "nearest"}
+    src = open_logs(bag, layout_with(rules, episodes="start", marker_topic=REC))
+    assert src.num_episodes == 3
+    ends = [1.4, 2.6, None]
+    for e, ((a, _), z) in enumerate(zip(marks, ends)):
+        last = max(t[-1] for tp, (t, _) in truth.items() if tp != REC)
+        window = (T0 + int(a * 1e9), T0 + int(z * 1e9) - 1 if z else last)
+        s, obs, act, _ = expected(truth, rules, window=window)
+        es = src.read(e, e + 1)
+        np.testing.assert_allclose(es.observations, obs, atol=1e-12)
+        np.testing.assert_array_equal(es.actions, act)
