@@ -143,7 +143,7 @@ class TableSource(BaseSource):
             _, counts = np.unique(labels, return_counts=True)
             if np.any(counts > 1):
                 dup = labels[np.isin(labels, np.unique(labels)[counts > 1])][0]
-                raise LogError(f"episode {dup!r} is split into several runs of rows; expected each "
+                raise LogError(f"episode {getattr(dup, 'item', lambda: dup)()!r} is split into several runs of rows; expected each "
                                f"episode's rows together", file=f, key=col)
             stops = np.concatenate([starts[1:], [ep.size]])
             for a, b in zip(starts.tolist(), stops.tolist()):

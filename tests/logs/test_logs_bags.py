@@ -406,3 +406,19 @@ def test_episodes_started_by_messages(tmp_path):
         es = src.read(e, e + 1)
         np.testing.assert_allclose(es.observations, obs, atol=1e-12)
         np.testing.assert_array_equal(es.actions, act)
+
+
+def test_success_flag_from_a_topic_is_the_outcome_of_each_step(tmp_path):
+    """A Bool topic read as the success flag: transition t takes the latest value at step t + 1."""
+    marks = [(0.0, False), (1.1, True), (1.9, False), (2.5, True)]
+    truth = make_truth(seed=14, marker=marks)
+    bag = write_bag(tmp_path / "rec.bag", truth, "ros1")
+    rules = {JOINTS: "interpolate", TIP: "nearest"}
+    lay = layout_with(rules)
+    lay["keys"]["success"] = f"{REC}:data"
+    es = open_logs(bag, lay).read(0, 1)
+    sub = {tp: v for tp, v in truth.items() if tp != REC}
+    s, *_ = expected(sub, rules)
+    want = ref_latest(*truth[REC], s[1:])
+    assert want.any() and not want.all()
+    np.testing.assert_array_equal(es.success, want)

@@ -140,3 +140,27 @@ def _write(tmp_path, layout):
     p = tmp_path / "lay.toml"
     p.write_text(layout_to_toml(parse_layout(layout)))
     return p
+
+
+def test_table_problems(demo, tmp_path):
+    es, layout = write_table(demo, tmp_path / "steps.parquet", "list")
+    t = pq.read_table(tmp_path / "steps.parquet")
+    # an episode whose rows come back later
+    ep = t.column("episode").to_numpy().copy()
+    ep[-3:] = 0
+    pq.write_table(t.set_column(0, "episode", pa.array(ep)), tmp_path / "split.parquet")
+    with pytest.raises(LogError, match="episode 0 is split into several runs of rows"):
+        open_logs(tmp_path / "split.parquet", layout)
+    # a variable-length list column
+    var = pa.array([list(r) for r in es.observations[:, :3]], type=pa.list_(pa.float64()))
+    pq.write_table(t.set_column(t.schema.get_field_index("head"), "head", var), tmp_path / "var.parquet")
+    with pytest.raises(LogError, match="key head: is a variable-length list column"):
+        open_logs(tmp_path / "var.parquet", layout)
+    # a null observation is a NaN: one line naming the episode and the step
+    head = np.asarray(t.column("head").combine_chunks().values).reshape(-1, 3)
+    mask = np.zeros(len(head), bool)
+    mask[5] = True
+    nulls = pa.FixedSizeListArray.from_arrays(pa.array(head.reshape(-1)), 3, mask=pa.array(mask))
+    pq.write_table(t.set_column(t.schema.get_field_index("head"), "head", nulls), tmp_path / "null.parquet")
+    with pytest.raises(LogError, match="key head: episode 0: step 5: expected finite values"):
+        open_logs(tmp_path / "null.parquet", layout).read(0, 2)
