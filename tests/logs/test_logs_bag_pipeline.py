@@ -61,3 +61,23 @@ def test_scan_propose_build_verify(tmp_path):
     mcap.write_bytes(bytes(data))
     res = run("verify", tmp_path / "goals.h5")
     assert res.exit_code != 0 and "take3" in res.output, res.output
+
+
+def test_bag_camera_frames_feed_a_frame_embedding(tmp_path):
+    """Frames read from image topics go to `goalkit embed --input frame` unchanged."""
+    from bag_testdata import CAM
+
+    folder = tmp_path / "takes"
+    for i in range(3):
+        write_bag(folder / f"take{i}", make_truth(seed=i, image=True, segments=((0.0, 1.2),)), "mcap")
+    res = run("scan", folder, "--write-layout", tmp_path / "layout.toml", "--quiet")
+    assert res.exit_code == 0, res.output
+    text = (tmp_path / "layout.toml").read_text()
+    assert f'frame = "{CAM}"' in text
+    res = run("embed", folder, "--layout", tmp_path / "layout.toml", "--method", "pca", "--dims", "3",
+              "--input", "frame", "--block", "2", "-o", tmp_path / "emb.npz")
+    assert res.exit_code == 0, res.output
+    with np.load(tmp_path / "emb.npz", allow_pickle=False) as emb:
+        assert emb["attr.frame_shape_"].tolist() == [6, 8, 3]        # the bags' rgb8 images
+        assert emb["inner.attr.components_"].shape == (3, 3 * 4 * 3)  # 2 x 2 tiles averaged
+    assert "3 episodes" in res.output
