@@ -123,6 +123,14 @@ def test_build_on_a_table_gives_the_same_rows(demo, tmp_path):
     assert outs["h5"].keys() == outs["pq"].keys() and len(outs["h5"]) > 3
     for k in outs["h5"]:
         np.testing.assert_array_equal(outs["h5"][k], outs["pq"][k], err_msg=k)
+    # verify re-reads the table by checksum: a rewritten table is found
+    t = pq.read_table(tmp_path / "steps.parquet")
+    r = t.column("reward").to_numpy().copy()
+    r[0] += 1.0
+    pq.write_table(t.set_column(t.schema.get_field_index("reward"), "reward", pa.array(r)),
+                   tmp_path / "steps.parquet", row_group_size=37)
+    res = CliRunner().invoke(main, ["verify", str(tmp_path / "pq.h5")])
+    assert res.exit_code != 0 and "steps.parquet" in res.output, res.output
 
 
 def test_table_errors_name_the_column(demo, tmp_path):
