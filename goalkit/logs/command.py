@@ -6,6 +6,7 @@ import click
 
 from goalkit.cli_support import echo_json, progress, quiet_option, user_errors
 from goalkit.errors import LogError
+from goalkit.logs.bagfile import is_bag_path
 
 
 def _fmt(x) -> str:
@@ -79,7 +80,9 @@ def _table(header, rows) -> list[str]:
 def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, quiet, replace):
     """Check the task logs LOGS and summarise them; propose a layout when none is given.
 
-    LOGS is an HDF5 file, a .npz file or a directory of per-episode .npz files.
+    LOGS is an HDF5 file, a .npz file, a directory of per-episode .npz files, a Parquet step
+    table (with --layout), or a ROS bag (ROS 1 .bag, ROS 2 bag directory) or a folder of bags:
+    for bags the topics are listed and a layout is proposed from their message types.
     """
     from goalkit.logs.layout import is_layout_file, layout_to_toml, load_layout
     from goalkit.logs.opener import open_logs
@@ -89,9 +92,24 @@ def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, qui
     if write_layout is not None:   # before any work: never over an input, never over a foreign file
         check_no_overlap([("logs", logs), ("layout", layout_file)], [("--write-layout", write_layout)])
         refuse_existing(write_layout, replace=replace, ours=is_layout_file, what="layout file")
+    listing = None
+    if is_bag_path(logs):
+        from goalkit.logs.bagscan import list_topics
+
+        listing = list_topics(logs)
     if layout_file is not None:
         layout = load_layout(layout_file)
         proposed = False
+    elif str(logs).lower().endswith(".parquet"):
+        from goalkit.errors import LayoutError
+
+        raise LayoutError("Parquet step tables need a layout with shape = \"table\" (--layout); "
+                          "see docs/layout.md", file=logs)
+    elif listing is not None:
+        from goalkit.logs.bagscan import propose_bag_layout
+
+        layout = propose_bag_layout(listing)
+        proposed = True
     else:
         from goalkit.logs.detect import propose_layout
 
@@ -114,6 +132,8 @@ def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, qui
         report["notes"].insert(0, "no layout given: read with the proposed layout below")
     report["layout"] = text
     report["layout_proposed"] = proposed
+    if listing is not None:
+        report["topics"] = listing["topics"]
     if write_layout is not None:
         write_text(write_layout, text, replace=replace, ours=is_layout_file, what="layout file")
         report["layout_written"] = str(write_layout)
@@ -122,6 +142,11 @@ def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, qui
         return
     if quiet:
         return
+    if listing is not None:
+        from goalkit.logs.bagscan import render_topics
+
+        for line in render_topics(listing):
+            click.echo(line)
     for line in render_report(report):
         click.echo(line)
     if proposed:

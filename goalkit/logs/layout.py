@@ -14,9 +14,10 @@ from goalkit.config import check_keys, load_toml
 from goalkit.errors import LayoutError
 
 #: The storage shapes a layout can describe.
-SHAPES = ("grouped", "flat", "per-file")
+SHAPES = ("grouped", "flat", "per-file", "bag", "table")
 #: Top-level keys of a layout file.
-TOP_KEYS = ("version", "shape", "episode_groups", "file_pattern", "keys", "fields", "boundaries")
+TOP_KEYS = ("version", "shape", "episode_groups", "file_pattern", "keys", "fields", "boundaries",
+            "bag", "table")
 #: Roles in the ``[keys]`` table.
 ROLES = ("observation", "next_observation", "action", "reward", "success", "task", "frame",
          "task_goal")
@@ -103,6 +104,8 @@ class Layout:
     file_pattern: str | None = None
     boundaries: Boundaries | None = None
     version: int = VERSION
+    #: Shapes "bag" and "table": their section (see :mod:`goalkit.logs.recordspec`).
+    record: object = None
 
     def observation_keys(self) -> list[str]:
         """Keys whose arrays, concatenated in order, make the observation vector."""
@@ -186,6 +189,8 @@ def parse_layout(doc: Mapping, file="<layout>") -> Layout:
     only("episode_groups", "grouped")
     only("file_pattern", "per-file")
     only("boundaries", "flat")
+    only("bag", "bag")
+    only("table", "table")
 
     episode_groups = file_pattern = boundaries = None
     if shape == "grouped":
@@ -210,6 +215,14 @@ def parse_layout(doc: Mapping, file="<layout>") -> Layout:
         if "/" in file_pattern:
             raise LayoutError(f"expected a file-name glob without '/', got {file_pattern!r}",
                               file=file, key="file_pattern")
+    elif shape in ("bag", "table"):
+        from goalkit.logs import recordspec
+
+        parse = recordspec.parse_bag if shape == "bag" else recordspec.parse_table
+        if shape == "table" and "table" not in doc:
+            raise LayoutError("missing [table]; expected episode_column = \"...\"", file=file, key="table")
+        record = parse(doc.get(shape, {}), file)
+        return Layout(shape=shape, keys=keys, fields=field_pairs, record=record, version=version)
     else:
         b_t = _table(doc, "boundaries", file)
         check_keys(b_t, BOUNDARY_KINDS, file=file, section="[boundaries]", error=LayoutError)
@@ -272,6 +285,10 @@ def layout_to_toml(layout: Layout) -> str:
         lines += [f"{_tkey(name)} = {_tstr(key)}" for name, key in layout.fields]
     if layout.boundaries is not None:
         lines += ["", "[boundaries]", f"{layout.boundaries.kind} = {_tstr(layout.boundaries.key)}"]
+    if layout.record is not None:
+        from goalkit.logs.recordspec import spec_to_toml
+
+        lines += spec_to_toml(layout.record)
     return "\n".join(lines) + "\n"
 
 

@@ -49,9 +49,15 @@ def open_logs(path, layout=None, skip_bad_episodes: bool = False, *, advance=Non
 
     proposed = False
     if layout is None:
+        from goalkit.logs.bagfile import is_bag_path
         from goalkit.logs.detect import propose_layout
 
-        layout = propose_layout(path)
+        if is_bag_path(path):
+            from goalkit.logs.bagscan import list_topics, propose_bag_layout
+
+            layout = propose_bag_layout(list_topics(path))
+        else:
+            layout = propose_layout(path)
         proposed = True
     elif isinstance(layout, (str, Path)):
         layout = load_layout(layout)
@@ -59,7 +65,12 @@ def open_logs(path, layout=None, skip_bad_episodes: bool = False, *, advance=Non
         layout = parse_layout(layout)
     elif not isinstance(layout, Layout):
         raise LayoutError(f"expected a Layout, a layout file or a table, got {type(layout).__name__}")
-    reader = {"grouped": GroupedSource, "flat": FlatSource, "per-file": PerFileSource}[layout.shape]
+    if layout.shape == "bag":
+        from goalkit.logs.bagfile import BagSource as reader
+    elif layout.shape == "table":
+        from goalkit.logs.steptable import TableSource as reader
+    else:
+        reader = {"grouped": GroupedSource, "flat": FlatSource, "per-file": PerFileSource}[layout.shape]
     source = reader(path, layout, skip_bad_episodes=skip_bad_episodes, advance=advance)
     if proposed:
         source.notes.insert(0, "no layout given: read with a proposed layout")

@@ -81,7 +81,7 @@ def test_misspelt_keys_name_the_closest_and_list_valid(doc, closest, section):
 
 
 @pytest.mark.parametrize("doc, expected", [
-    (with_(FLAT, shape="flattened"), "expected one of grouped, flat, per-file, got 'flattened'"),
+    (with_(FLAT, shape="flattened"), "expected one of grouped, flat, per-file, bag, table, got 'flattened'"),
     (with_(FLAT, shape=None), "missing 'shape'"),
     (with_(FLAT, version=2), "expected version = 1"),
     (with_(FLAT, boundaries={}), "expected exactly one of episode_id, done, offsets in [boundaries], got 0"),

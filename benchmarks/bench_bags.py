@@ -1,0 +1,186 @@
+"""Reading and aligning ROS 2 bags against a plain rosbags read loop, and memory at two sizes.
+
+    .venv/bin/python benchmarks/bench_bags.py                        # 250k and 1M messages
+    .venv/bin/python benchmarks/bench_bags.py --sizes 100000,250000 --repeats 1
+
+Recording (invented, irrigation-gantry arm): three topics in one ROS 2 MCAP bag written with
+rosbags' own writer -- sensor_msgs/msg/JointState (6 joints, 500 Hz), geometry_msgs/msg/
+PoseStamped (250 Hz) and std_msgs/msg/Float64MultiArray commands (250 Hz, the steps); 20 s
+episodes separated by 3 s pauses, cut with ``episodes = "gap"``; joints interpolated, pose
+nearest, command latest.
+
+Floor: a plain loop over rosbags' AnyReader.messages() calling the typestore's
+deserialize_cdr on every message of the same bag (decode only, nothing kept).
+goalkit: open_logs (one pass over the bag reading times only) and reading every episode in
+chunks of 100k transitions (decode, field look-ups, alignment); also measured with the
+whole-topic decoding switched off (every message through rosbags' deserialize_cdr), reported
+as per_message (not a target). Each run is a fresh process;
+the median of --repeats runs is used. Peak RSS is each process's own.
+
+Targets: goalkit >= 0.8 x the floor's message rate; goalkit's peak RSS at the larger size
+within 1.3 x of that at the smaller (memory bounded by a chunk of episodes plus the open
+bag's message times). Results: benchmarks/results/bags.json.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+RATES = {"/arm/joints": 500.0, "/arm/tip": 250.0, "/arm/cmd": 250.0}
+EPISODE_S, PAUSE_S = 20.0, 3.0
+T0 = 1_700_000_000 * 10**9
+
+LAYOUT = {
+    "shape": "bag",
+    "keys": {"action": "/arm/cmd:data"},
+    "fields": {"joints": "/arm/joints:position", "tip": "/arm/tip:pose.position"},
+    "bag": {"step_topic": "/arm/cmd", "episodes": "gap", "cut_gap": 1.0,
+            "align": {"/arm/joints": "interpolate", "/arm/tip": "nearest", "/arm/cmd": "latest"}},
+}
+
+
+def write_recording(path: Path, messages: int, seed: int = 0) -> int:
+    """Write a bag of about ``messages`` messages; return the exact count."""
+    from rosbags.rosbag2 import StoragePlugin, Writer
+    from rosbags.typesys import Stores, get_typestore
+
+    ts = get_typestore(Stores.ROS2_HUMBLE)
+    T = ts.types
+    rng = np.random.default_rng(seed)
+    per_s = sum(RATES.values())
+    episodes = max(1, int(round(messages / (per_s * EPISODE_S))))
+    events = []
+    for e in range(episodes):
+        a = T0 + int(e * (EPISODE_S + PAUSE_S) * 1e9)
+        for topic, rate in RATES.items():
+            n = int(EPISODE_S * rate)
+            t = a + (np.arange(n) * (1e9 / rate) + rng.uniform(0, 0.2e9 / rate, n)).astype(np.int64)
+            events += [(int(x), topic) for x in t]
+    events.sort()
+    stamp = T["builtin_interfaces/msg/Time"]
+    header = T["std_msgs/msg/Header"]
+    names = ["j%d" % i for i in range(6)]
+    with Writer(path, version=9, storage_plugin=StoragePlugin.MCAP) as w:
+        types = {"/arm/joints": "sensor_msgs/msg/JointState", "/arm/tip": "geometry_msgs/msg/PoseStamped",
+                 "/arm/cmd": "std_msgs/msg/Float64MultiArray"}
+        conns = {tp: w.add_connection(tp, ty, typestore=ts) for tp, ty in types.items()}
+        lay = T["std_msgs/msg/MultiArrayLayout"](dim=[], data_offset=0)
+        for t, topic in events:
+            s = (t - T0) / 1e9
+            h = header(stamp=stamp(sec=t // 10**9, nanosec=t % 10**9), frame_id="arm")
+            if topic == "/arm/joints":
+                m = T["sensor_msgs/msg/JointState"](header=h, name=names, position=np.sin(s + np.arange(6.0)),
+                                                    velocity=np.zeros(6), effort=np.zeros(6))
+            elif topic == "/arm/tip":
+                p = T["geometry_msgs/msg/Point"](x=np.sin(s), y=np.cos(s), z=0.1 * s)
+                q = T["geometry_msgs/msg/Quaternion"](x=0.0, y=0.0, z=0.0, w=1.0)
+                m = T["geometry_msgs/msg/PoseStamped"](header=h, pose=T["geometry_msgs/msg/Pose"](position=p, orientation=q))
+            else:
+                m = T["std_msgs/msg/Float64MultiArray"](layout=lay, data=np.array([np.sin(2 * s), np.cos(2 * s), s]))
+            w.write(conns[topic], t, ts.serialize_cdr(m, types[topic]))
+    return len(events)
+
+
+# VmHWM is the peak RSS of this process image; ru_maxrss would include the parent's peak at
+# fork (Linux keeps it across execve), which holds the written bag's events.
+PEAK = """
+def peak_mb():
+    for line in open("/proc/self/status"):
+        if line.startswith("VmHWM:"):
+            return int(line.split()[1]) / 1024
+"""
+
+FLOOR = PEAK + """
+import json, time
+from pathlib import Path
+from rosbags.highlevel import AnyReader
+from rosbags.typesys import Stores, get_typestore
+t = time.perf_counter()
+n = 0
+with AnyReader([Path({bag!r})], default_typestore=get_typestore(Stores.LATEST)) as r:
+    deser = r.typestore.deserialize_cdr
+    for c, _, raw in r.messages():
+        deser(raw, c.msgtype)
+        n += 1
+print(json.dumps({{"seconds": time.perf_counter() - t, "messages": n,
+                  "peak_rss_mb": peak_mb()}}))
+"""
+
+OURS = PEAK + """
+import json, time
+import goalkit.logs.bagfast
+goalkit.logs.bagfast.ENABLED = {fast}
+from goalkit.logs import open_logs
+from goalkit.logs.episodes import iter_chunks
+t = time.perf_counter()
+src = open_logs({bag!r}, {layout!r})
+steps = 0
+for es in iter_chunks(src, 100_000):
+    steps += es.num_transitions
+print(json.dumps({{"seconds": time.perf_counter() - t, "episodes": src.num_episodes, "steps": steps,
+                  "peak_rss_mb": peak_mb()}}))
+"""
+
+
+def run(code: str) -> dict:
+    out = subprocess.run([sys.executable, "-c", code], check=True,
+                         capture_output=True, text=True)
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--sizes", default="250000,1000000", help="messages per bag, comma separated")
+    ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--out", default=str(HERE / "results" / "bags.json"))
+    args = ap.parse_args(argv)
+    sizes = [int(s) for s in args.sizes.split(",")]
+    results = {"what": "bag read+align vs plain rosbags deserialise loop", "sizes": []}
+    with tempfile.TemporaryDirectory() as tmp:
+        for size in sizes:
+            bag = Path(tmp) / f"rec{size}"
+            t = time.perf_counter()
+            n = write_recording(bag, size)
+            print(f"wrote {n} messages in {time.perf_counter() - t:.1f} s", flush=True)
+            floor, ours, slow = [], [], []
+            for _ in range(args.repeats):           # interleaved
+                floor.append(run(FLOOR.format(bag=str(bag))))
+                ours.append(run(OURS.format(bag=str(bag), layout=LAYOUT, fast=True)))
+                slow.append(run(OURS.format(bag=str(bag), layout=LAYOUT, fast=False)))
+            f_s = statistics.median(r["seconds"] for r in floor)
+            o_s = statistics.median(r["seconds"] for r in ours)
+            p_s = statistics.median(r["seconds"] for r in slow)
+            row = {"messages": n, "floor_seconds": f_s, "goalkit_seconds": o_s,
+                   "floor_msgs_per_s": n / f_s, "goalkit_msgs_per_s": n / o_s,
+                   "ratio_to_floor": f_s / o_s,
+                   "per_message_seconds": p_s, "per_message_ratio_to_floor": f_s / p_s,
+                   "floor_peak_rss_mb": max(r["peak_rss_mb"] for r in floor),
+                   "goalkit_peak_rss_mb": max(r["peak_rss_mb"] for r in ours),
+                   "episodes": ours[0]["episodes"], "steps": ours[0]["steps"],
+                   "runs": {"floor": floor, "goalkit": ours, "goalkit_per_message": slow}}
+            print(json.dumps({k: v for k, v in row.items() if k != "runs"}), flush=True)
+            results["sizes"].append(row)
+    s = results["sizes"]
+    results["target_ratio"] = 0.8
+    results["ratio_met"] = all(r["ratio_to_floor"] >= 0.8 for r in s)
+    if len(s) > 1:
+        results["rss_growth"] = s[-1]["goalkit_peak_rss_mb"] / s[0]["goalkit_peak_rss_mb"]
+        results["target_rss_growth"] = 1.3
+        results["rss_met"] = results["rss_growth"] <= 1.3
+    Path(args.out).parent.mkdir(parents=True, exist_ok=True)
+    Path(args.out).write_text(json.dumps(results, indent=2) + "\n")
+    print(f"written {args.out}")
+
+
+if __name__ == "__main__":
+    main()
