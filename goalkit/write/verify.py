@@ -32,6 +32,7 @@ import numpy as np
 
 from goalkit.errors import DatasetError, GoalkitError
 from goalkit.logs.episodes import chunk_bounds
+from goalkit.reward import score
 from goalkit.write.format import SPLITS
 
 
@@ -150,11 +151,7 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
     from goalkit.write.joined_checks import check_joined
 
     check_joined(plan, chunk, cols, phi, pos, split_name, report, row0, _row_text)
-    rule = plan.recipe.reward
-    d = rule.distance(achieved.astype(np.float64), cols["goal"].astype(np.float64))
-    for name, ref in (("goal_distance", d.astype(np.float32)), ("reward", rule.reward_from(d)),
-                      ("reached", rule.reached_from(d).astype(np.uint8)),
-                      ("terminal", (rule.reached_from(d) & rule.end_on_reach).astype(np.uint8))):
+    for name, ref in score(plan.recipe.reward, achieved, cols["goal"]).columns().items():
         diff = cols[name] != ref
         if diff.any():
             i = _first(diff)

@@ -55,13 +55,13 @@ MUTANTS = {
         "relabel/mixture.py", "steps_to_goal = np.where(same, goal_step - t, -1)",
         "steps_to_goal = np.where(same, goal_step - t - 1, -1)", "main", "row rule 'future'"),
     "strict threshold when inclusive": (
-        "reward.py", "return d <= thr if self.inclusive else d < thr",
-        "return d < thr if self.inclusive else d < thr", "exact", "row rule 'reached'"),
+        "reward.py", "return d <= threshold if inclusive else d < threshold",
+        "return d < threshold if inclusive else d < threshold", "exact", "row rule 'reached'"),
     "sparse-negative sign slip": (
-        "reward.py", "return self.reached_from(d).astype(np.float32) - np.float32(1.0)",
-        "return np.float32(1.0) - self.reached_from(d).astype(np.float32)", "main", "row rule 'reward'"),
+        "reward.py", "return reached.astype(np.float32) - np.float32(1.0)",
+        "return np.float32(1.0) - reached.astype(np.float32)", "main", "row rule 'reward'"),
     "terminal ignores end_on_reach": (
-        "pipeline/chunk.py", "terminal = reached if rule.end_on_reach else np.zeros_like(reached)",
+        "reward.py", "terminal = reached if rule.end_on_reach else np.zeros_like(reached)",
         "terminal = np.zeros_like(reached)", "main", "row rule 'terminal'"),
     "truncate conditions on K <= T - t - 1": (
         "relabel/strategies.py", "u = u * -np.expm1(room * log_g)", "u = u * -np.expm1((room - 1) * log_g)",
