@@ -137,9 +137,6 @@ class Mixture:
         for name, w in self.weights.items():
             key = f"relabel.weights.{name}"
             if name not in STRATEGIES:
-                if name in CODES:
-                    raise RecipeError(f"strategy '{name}' is not available in this version; "
-                                      f"available: {', '.join(STRATEGIES)}", file=file, key=key)
                 hint = closest(str(name), STRATEGIES)
                 tip = f"; did you mean '{hint}'?" if hint else ""
                 raise RecipeError(f"unknown strategy '{name}'{tip} valid: {', '.join(STRATEGIES)}",

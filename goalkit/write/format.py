@@ -6,7 +6,8 @@ A built set is one HDF5 file::
                           recipe (TOML text), provenance (JSON), summary (JSON), manifest (JSON),
                           seal (format version 2)
     /train/<column>       one row per (transition, goal) pair, rows sorted by
-    /validation/<column>  (source_episode, source_step, slot); group attributes rows, episodes
+    /validation/<column>  (source_episode, source_step, slot); group attributes rows, episodes;
+                          the strategy column's attribute codes (JSON code -> name)
 
 Every column is chunked along rows. ``manifest`` maps ``"split/column"`` to the SHA-256 of the
 column's bytes in C order, so a reader can check any array without trusting the file. ``seal``
@@ -16,10 +17,13 @@ is the SHA-256 of every attribute and every column's dtype, shape and storage (s
 
 from __future__ import annotations
 
+import json
+
 from goalkit.rows import INDEX_FIELDS, MATERIAL_FIELDS, SPLIT_CODES, SPLITS, TASK_REWARD_FIELD
 
 __all__ = ["FORMAT_NAME", "FORMAT_VERSION", "INDEX_COLUMNS", "MATERIAL_COLUMNS", "SPLITS", "SPLIT_CODES",
-           "TASK_REWARD_COLUMN", "column_names", "is_goal_set"]
+           "TASK_REWARD_COLUMN", "COLUMN_ATTRS", "STRATEGY_CODES_ATTR", "column_names", "is_goal_set",
+           "strategy_codes_text"]
 
 FORMAT_NAME = "goalkit-goal-set"
 FORMAT_VERSION = 2
@@ -32,6 +36,17 @@ MATERIAL_COLUMNS = {f.name: (f.dtype, f.kind, f.meaning) for f in MATERIAL_FIELD
 
 #: Optional column, present when the logs carry a task reward: (name, dtype, meaning).
 TASK_REWARD_COLUMN = (TASK_REWARD_FIELD.name, TASK_REWARD_FIELD.dtype, TASK_REWARD_FIELD.meaning)
+
+
+#: Attributes a column may carry: the ``strategy`` column's ``codes`` is the set's own strategy
+#: table, JSON text ``{"code": "name", ...}`` (sets written before it have no column attributes).
+STRATEGY_CODES_ATTR = "codes"
+COLUMN_ATTRS = {"strategy": (STRATEGY_CODES_ATTR,)}
+
+
+def strategy_codes_text(names: dict) -> str:
+    """The ``codes`` attribute of the strategy column for a code -> name table."""
+    return json.dumps({str(int(c)): str(names[c]) for c in sorted(names)}, separators=(", ", ": "))
 
 
 def column_names(mode: str, has_task_reward: bool) -> list[str]:

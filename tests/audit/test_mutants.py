@@ -26,7 +26,8 @@ MUTANTS = {
     "future includes t (builder and verify's rule table)": (
         "relabel/strategies.py", 'rng.integers(seed, t + 1, length + 1, eid, t, slots, "goal")',
         'rng.integers(seed, t, length + 1, eid, t, slots, "goal")', "main", "row rule 'future'",
-        ("write/rules.py", "(s == FUTURE) & ~(same & (j > t) & (j <= T))", "(s == FUTURE) & ~(same & (j >= t) & (j <= T))")),
+        ("relabel/strategies.py", "lambda r: r.same & (r.j > r.t) & (r.j <= r.T))",
+         "lambda r: r.same & (r.j >= r.t) & (r.j <= r.T))")),
     "future excludes T": (
         "relabel/strategies.py", 'rng.integers(seed, t + 1, length + 1, eid, t, slots, "goal")',
         'rng.integers(seed, t + 1, length, eid, t, slots, "goal")', "main", "row rule 'future'"),
@@ -129,7 +130,7 @@ def test_verify_alone_catches_the_mutant(name, correct, tmp_path):
     assert done.returncode == 1, done.stdout[-3000:]
     assert "NOT consistent" in done.stdout
     # the replay agrees with the mutated builder; the audit names the slip (verify's own rule
-    # table, write/rules.py, may catch it too when it is not part of the slip)
+    # table, the strategies' row rules, may catch it too when it is not part of the slip)
     failures = [line for line in done.stdout.splitlines() if line.startswith("  - ")]
     assert "differs from what the recipe and seed produce" not in done.stdout
     audit = [line for line in failures if line.startswith("  - audit: ")]
