@@ -34,6 +34,10 @@ def _is_number(x) -> bool:
 class GoalRows:
     """Goal assignments of a chunk, one row per (transition, slot), sorted by (transition, slot).
 
+    ``slot``, ``strategy`` and the goal-address fields (:data:`goalkit.rows.GOAL_ADDRESS`) are
+    the stored columns of the same names (:data:`goalkit.rows.INDEX_FIELDS`); the builder copies
+    them into the set by those names.
+
     Attributes
     ----------
     transition : ndarray of int64 (M,)
