@@ -89,3 +89,16 @@ def test_a_built_set_and_the_sampler_use_the_schema(demo):
     assert set(SCORE_COLUMNS) <= set(batch)
     for name in SCORE_COLUMNS:
         assert batch[name].dtype == np.dtype(ALL_FIELDS[name].dtype)
+
+
+def test_the_schema_module_states_no_rules_and_imports_nothing_of_goalkit():
+    # goalkit/rows.py holds names, dtypes and meanings only: no strategy code and no rule, so it
+    # is not on the audit's forbidden list (tests/audit/test_imports.py); the audit does not
+    # import it either, and keeps its own statement of the rules.
+    import ast
+    import goalkit.rows as rows
+    tree = ast.parse(Path(rows.__file__).read_text(encoding="utf-8"))
+    imported = [n.module for n in ast.walk(tree) if isinstance(n, ast.ImportFrom)]
+    imported += [a.name for n in ast.walk(tree) if isinstance(n, ast.Import) for a in n.names]
+    assert [m for m in imported if m and m.startswith("goalkit")] == []
+    assert not any(name in vars(rows) for name in ("CODES", "STRATEGIES", "score"))
