@@ -44,6 +44,16 @@ FORMS = ("sparse", "sparse-negative", "negative-distance", "clipped-negative-dis
 TABLE_KEYS = ("distance", "threshold", "inclusive", "form", "weights", "clip", "end_on_reach")
 
 
+def within(d, threshold, inclusive: bool) -> np.ndarray:
+    """The reach comparison: ``d <= threshold`` when ``inclusive``, ``d < threshold`` otherwise.
+
+    ``d`` and ``threshold`` broadcast (tuning compares one distance with many thresholds).
+    Distances are compared in float64.
+    """
+    d = np.asarray(d, dtype=np.float64)
+    return d <= threshold if inclusive else d < threshold
+
+
 def _choice_error(what: str, value, valid, *, file, key) -> RecipeError:
     hint = closest(str(value), valid)
     tip = f"; did you mean '{hint}'?" if hint else ""
@@ -272,9 +282,7 @@ class RewardRule:
         ``d <= threshold`` when inclusive, ``d < threshold`` otherwise; for ``box`` the
         (normalised) distance is compared with 1.
         """
-        d = np.asarray(d, dtype=np.float64)
-        thr = 1.0 if self.distance_name == "box" else float(self.threshold)
-        return d <= thr if self.inclusive else d < thr
+        return within(d, self.reach_threshold, self.inclusive)
 
     _reached_from = reached_from  # kept: callers written against the first version use it
 
@@ -291,18 +299,21 @@ class RewardRule:
     def reward_from(self, d: np.ndarray) -> np.ndarray:
         """Return the rewards, float32 (M,), for precomputed distances ``d`` (M,)."""
         d = np.asarray(d, dtype=np.float64)
+        return self._reward(d, self.reached_from(d) if self.form.startswith("sparse") else None)
+
+    def _reward(self, d: np.ndarray, reached) -> np.ndarray:
+        """Rewards for float64 distances ``d`` and their reached flags (used by the sparse forms)."""
         if self.form == "sparse":
-            return self.reached_from(d).astype(np.float32)
+            return reached.astype(np.float32)
         if self.form == "sparse-negative":
-            return self.reached_from(d).astype(np.float32) - np.float32(1.0)
+            return reached.astype(np.float32) - np.float32(1.0)
         if self.form == "negative-distance":
             return (-d).astype(np.float32)
         return (-np.minimum(d, self.clip)).astype(np.float32)
 
     def terminal(self, achieved, goal) -> np.ndarray:
         """Return the episode-end flags, bool (M,): ``reached`` if ``end_on_reach``, else all False."""
-        r = self.reached(achieved, goal)
-        return r if self.end_on_reach else np.zeros_like(r)
+        return score(self, achieved, goal).terminal
 
     def describe(self) -> dict:
         """Return a JSON-able description (the ``[reward]`` table that rebuilds this rule)."""
@@ -376,3 +387,63 @@ class RewardRule:
                        end_on_reach=table.get("end_on_reach", False))
         except RecipeError as exc:
             raise RecipeError(exc.message, file=file, key=exc.key) from None
+
+
+@dataclass(frozen=True, eq=False)
+class Scores:
+    """What a reward rule gives a batch of goal rows (see :func:`score`).
+
+    Attributes
+    ----------
+    distance : ndarray of float64 (M,)
+    reached : ndarray of bool (M,)
+    reward : ndarray of float32 (M,)
+    terminal : ndarray of bool (M,)
+        ``reached`` when the rule ends episodes on reaching (``end_on_reach``), else all False.
+    """
+
+    distance: np.ndarray
+    reached: np.ndarray
+    reward: np.ndarray
+    terminal: np.ndarray
+
+    def columns(self) -> dict:
+        """The stored columns (:data:`goalkit.rows.SCORE_COLUMNS`) in their stored dtypes."""
+        return {"goal_distance": self.distance.astype(np.float32), "reward": self.reward,
+                "reached": self.reached.astype(np.uint8), "terminal": self.terminal.astype(np.uint8)}
+
+
+def score(rule: RewardRule, reached_goal, goal) -> Scores:
+    """Score goal rows: distance -> reached -> reward -> terminal, the one place this is done.
+
+    The builder, verify, the sampler and tuning all score rows here, so a stored row, a
+    re-derived row and a sampled row agree bit for bit.
+
+    Parameters
+    ----------
+    rule : RewardRule
+    reached_goal : array_like (M, G)
+        ``phi(s_{t+1})`` of each row's transition (any float dtype; the distance is float64).
+    goal : array_like (M, G)
+        The goal of each row.
+
+    Returns
+    -------
+    Scores
+
+    Examples
+    --------
+    >>> rule = RewardRule("l1", 1.0, form="sparse-negative", end_on_reach=True)
+    >>> s = score(rule, np.array([[0.5], [2.0]]), np.zeros((2, 1)))
+    >>> s.distance.tolist(), s.reached.tolist(), s.reward.tolist(), s.terminal.tolist()
+    ([0.5, 2.0], [True, False], [0.0, -1.0], [True, False])
+    """
+    return score_distances(rule, rule.distance(reached_goal, goal))
+
+
+def score_distances(rule: RewardRule, d) -> Scores:
+    """:func:`score` for precomputed distances ``d`` (M,) of ``rule``."""
+    d = np.asarray(d, dtype=np.float64)
+    reached = rule.reached_from(d)
+    terminal = reached if rule.end_on_reach else np.zeros_like(reached)
+    return Scores(d, reached, rule._reward(d, reached), terminal)

@@ -7,6 +7,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from goalkit.pipeline.plan import SLOT_SPAN
+from goalkit.reward import score
+from goalkit.rows import GOAL_ADDRESS, SPLITS
 from goalkit.write.gather import RowGather
 
 
@@ -71,7 +73,7 @@ def relabel_chunk(plan, chunk, defer_gathers: bool = False) -> ChunkRows:
     phi_chunk = plan.goal_map(chunk, np.arange(chunk.observations.shape[0])).astype(gdtype)
     episode_split = plan.splits[first:first + chunk.num_episodes]
     out_cols, out_keys = {}, {}
-    for code, name in ((0, "train"), (1, "validation")):
+    for code, name in enumerate(SPLITS):
         members = episode_split == code
         if not members.any():
             continue
@@ -95,27 +97,11 @@ def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gather
     cur = t + src_pos
     achieved = np.take(phi_chunk, cur + 1, axis=0)
     goal = goal_vectors(plan, chunk, phi_chunk, rows, src_pos, src_ep)
-    d = rule.distance(achieved, goal)
-    reached = rule.reached_from(d)
-    terminal = reached if rule.end_on_reach else np.zeros_like(reached)
+    scores = score(rule, achieved, goal).columns()
     keys = (plan.transition_offsets[first + src_pos] + src_step) * SLOT_SPAN + rows.slot
-    cols = {
-        "source_episode": src_ep,
-        "source_step": src_step,
-        "slot": rows.slot,
-        "strategy": rows.strategy,
-        "goal_episode": rows.goal_episode,
-        "goal_step": rows.goal_step,
-        "hop_episode": rows.hop_episode,
-        "hop_step": rows.hop_step,
-        "join_step": rows.join_step,
-        "steps_to_goal": rows.steps_to_goal,
-        "goal": goal,
-        "goal_distance": d.astype(np.float32),
-        "reward": rule.reward_from(d),
-        "reached": reached.astype(np.uint8),
-        "terminal": terminal.astype(np.uint8),
-    }
+    # the columns in the order of the row schema (goalkit.rows.INDEX_FIELDS)
+    cols = {"source_episode": src_ep, "source_step": src_step, "slot": rows.slot, "strategy": rows.strategy,
+            **{name: getattr(rows, name) for name in GOAL_ADDRESS}, "goal": goal, **scores}
     if "observation" in plan.columns:
         gather = RowGather if defer_gathers else (lambda a, i: np.take(a, i, axis=0))
         cols["observation"] = gather(chunk.observations, cur)

@@ -15,6 +15,9 @@ from goalkit.errors import RecipeError
 
 from goalkit.pipeline.goal import make_goal_map
 from goalkit.pipeline.split import split_codes
+from goalkit.relabel.strategies import STRATEGIES
+from goalkit.relabel.strategies import strategy_names as table_names
+from goalkit.rows import SPLITS
 from goalkit.write.format import INDEX_COLUMNS, MATERIAL_COLUMNS, TASK_REWARD_COLUMN
 
 #: Row keys are ``global transition index * SLOT_SPAN + slot``.
@@ -85,7 +88,6 @@ def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_t
 
 
 #: Strategies whose goals may come from episodes outside the chunk.
-CROSS_EPISODE = ("other_episode", "neighbour", "near_miss")
 
 
 @dataclass(frozen=True)
@@ -106,14 +108,12 @@ def active_strategies(mixture) -> list[str]:
 
 def needs_goal_table(mixture) -> bool:
     """True when a strategy of the mixture takes goals from other episodes (or matches a library)."""
-    return any(n in CROSS_EPISODE + ("library",) for n in active_strategies(mixture))
+    return any(STRATEGIES[n].goal_table for n in active_strategies(mixture))
 
 
 def strategy_names(mixture) -> dict:
-    """Strategy code -> name of every known strategy."""
-    from goalkit.relabel import CODES
-
-    return {int(c): n for n, c in CODES.items()}
+    """Strategy code -> name of every strategy in the strategy table."""
+    return table_names()
 
 
 def check_mixture(recipe, first, context, goal_dim: int) -> None:
@@ -131,7 +131,7 @@ def check_mixture(recipe, first, context, goal_dim: int) -> None:
     if "other_episode" in active:
         for code, ids in context.split_episode_ids.items():
             if len(ids) < 2:
-                name = ("train", "validation")[code]
+                name = SPLITS[code]
                 raise RecipeError(f"strategy 'other_episode' needs at least 2 episodes in every split; the "
                                   f"{name} split has {len(ids)}", file=recipe.file,
                                   key="relabel.weights.other_episode")
@@ -216,4 +216,4 @@ def split_rows(plan) -> dict:
     """Rows each split of the output will hold: goals_per_transition per transition."""
     gpt = plan.recipe.mixture.goals_per_transition
     return {name: int(plan.lengths[plan.splits == code].sum()) * gpt
-            for code, name in enumerate(("train", "validation"))}
+            for code, name in enumerate(SPLITS)}

@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from goalkit import rng
+from goalkit.rows import SPLITS
 
 #: About this many rows' distances are kept (a hash-chosen sample) for the quantiles.
 SAMPLE_ROWS = 200_000
@@ -31,8 +32,8 @@ class SummaryBuilder:
         self.rate = min(1.0, SAMPLE_ROWS / max(total_rows, 1))
         self.seed = seed
         size = max(strategy_names) + 1 if strategy_names else 1
-        self.rows = {s: np.zeros(size, np.int64) for s in ("train", "validation")}
-        self.reached = {s: np.zeros(size, np.int64) for s in ("train", "validation")}
+        self.rows = {s: np.zeros(size, np.int64) for s in SPLITS}
+        self.reached = {s: np.zeros(size, np.int64) for s in SPLITS}
         self.sample: list[np.ndarray] = []
         self.sample_keys: list[np.ndarray] = []
 

@@ -130,6 +130,17 @@ def _library_dim(chunk, context) -> int:
     return context.library.dim
 
 
-register("neighbour", neighbour)
-register("library", library, external_dim=_library_dim)
-register("near_miss", near_miss)
+# ---- their entries in the strategy table ------------------------------------------------
+register("neighbour", neighbour, 6, join="later", hops=True, goal_table=True, rules=[
+    ("a neighbour goal must be a state s_m of the hop episode with hop step <= m <= its length, the hop "
+     "episode another episode than the source",
+     lambda r: (r.he >= 0) & (r.he != r.ep) & (r.ge == r.he) & (r.hs >= 0) & (r.j >= r.hs) & (r.j <= r.goal_T))])
+register("library", library, 7, external_dim=_library_dim, join="later_or_none", steps_from_join=True,
+         goal_table=True, rules=[
+    ("a library goal must be external, joined at a later step (t < join_step <= T) or unmatched (-1)",
+     lambda r: (r.ge == -1) & (r.j == -1) & (r.he == -1) & (r.hs == -1) & (r.later_join | (r.join == -1)))])
+register("near_miss", near_miss, 8, join="later", hops=True, goal_table=True, rules=[
+    ("a near-miss goal must be the hop state, in another episode (0 <= step <= its length)",
+     lambda r: (r.he < 0) | ((r.ge == r.he) & (r.j == r.hs) & (r.he != r.ep) & (r.hs >= 0) & (r.hs <= r.hop_T))),
+    ("a near-miss goal without a hop state must be its join state s_j of the source episode",
+     lambda r: (r.he >= 0) | (r.same & (r.j == r.join) & (r.hs == -1)))])

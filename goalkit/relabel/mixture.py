@@ -34,6 +34,10 @@ def _is_number(x) -> bool:
 class GoalRows:
     """Goal assignments of a chunk, one row per (transition, slot), sorted by (transition, slot).
 
+    ``slot``, ``strategy`` and the goal-address fields (:data:`goalkit.rows.GOAL_ADDRESS`) are
+    the stored columns of the same names (:data:`goalkit.rows.INDEX_FIELDS`); the builder copies
+    them into the set by those names.
+
     Attributes
     ----------
     transition : ndarray of int64 (M,)
@@ -137,9 +141,6 @@ class Mixture:
         for name, w in self.weights.items():
             key = f"relabel.weights.{name}"
             if name not in STRATEGIES:
-                if name in CODES:
-                    raise RecipeError(f"strategy '{name}' is not available in this version; "
-                                      f"available: {', '.join(STRATEGIES)}", file=file, key=key)
                 hint = closest(str(name), STRATEGIES)
                 tip = f"; did you mean '{hint}'?" if hint else ""
                 raise RecipeError(f"unknown strategy '{name}'{tip} valid: {', '.join(STRATEGIES)}",

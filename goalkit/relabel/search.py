@@ -45,6 +45,7 @@ import numpy as np
 
 from goalkit.errors import RecipeError
 from goalkit.goals.neighbours import IndexSettings, build_index, lower_bound, sample_rows, smallest_breadth
+from goalkit.rows import SPLITS
 
 #: First search depth beyond k is k + min(T + 1, FIRST_EXTRA); depth doubles up to DEPTH_CAP.
 FIRST_EXTRA = 1024
@@ -55,7 +56,7 @@ EPISODE_BLOCK = 2048
 #: Exhaustive search blocks (queries x database rows).
 QUERY_BLOCK = 8
 DB_BLOCK = 32768
-SPLIT_NAMES = ("train", "validation")
+SPLIT_NAMES = SPLITS  # split code -> name
 
 
 def search_space(rule, values) -> np.ndarray:

@@ -43,10 +43,14 @@ uniform ``u``. ``past_end`` says what happens when ``t + K > T``:
 
 Adding a strategy
 -----------------
-Write a function with the signature above and register it in :data:`STRATEGIES` with
-:func:`register` (name, code from :data:`CODES`, the option names it reads from the mixture,
-and, for strategies returning external vectors, a function giving their dimension).
-:class:`goalkit.relabel.Mixture` and the ``[relabel]`` table pick it up from that one table.
+Write a function with the signature above and give it one entry in the strategy table with
+:func:`register`: its name, its code (stored in sets, never reused), the row rules a stored
+row of it must satisfy (``verify`` checks them), the mixture options it reads and, for
+strategies returning external vectors, a function giving their dimension.
+:class:`goalkit.relabel.Mixture`, the ``[relabel]`` table, the build, ``verify``, the sampler and
+the set's own code table (the ``strategy`` column's ``codes`` attribute) pick it up from that
+one table. The audit (:mod:`goalkit.audit`) keeps its own, independent statement of the rules
+and checks only the strategies it knows.
 """
 
 from __future__ import annotations
@@ -60,9 +64,9 @@ from goalkit import rng
 from goalkit.errors import RecipeError
 from goalkit.logs.episodes import EpisodeSet
 
-#: Strategy codes stored in datasets (uint8, never renumbered).
-CODES = {"original": 0, "final": 1, "future": 2, "episode": 3, "geometric": 4,
-         "other_episode": 5, "neighbour": 6, "library": 7, "near_miss": 8}
+#: Strategy name -> code stored in datasets (uint8, never renumbered); filled by :func:`register`
+#: from the strategy table, so it always agrees with :data:`STRATEGIES`.
+CODES: dict[str, int] = {}
 
 #: Values of the geometric strategy's ``past_end`` option.
 PAST_END = ("clip", "truncate")
@@ -98,6 +102,58 @@ class StrategyGoals:
     steps_to_goal: np.ndarray | None = None
 
 
+@dataclass(frozen=True, eq=False)
+class StoredRows:
+    """Stored goal rows as the row rules of the strategy table see them.
+
+    Attributes
+    ----------
+    strategy : ndarray of uint8 (M,)
+    ep, t : ndarray of int64 (M,)
+        Source episode id and step.
+    ge, j : ndarray of int64 (M,)
+        Goal episode id and step (-1 when external).
+    he, hs : ndarray of int64 (M,)
+        Hop episode id and step (-1 when none).
+    join : ndarray of int64 (M,)
+        Join step (-1 when none).
+    T : ndarray of int64 (M,)
+        Transition count of the source episode.
+    goal_T, hop_T : ndarray of int64 (M,)
+        Transition count of the goal / hop episode (any value where there is none).
+    """
+
+    strategy: np.ndarray
+    ep: np.ndarray
+    t: np.ndarray
+    ge: np.ndarray
+    j: np.ndarray
+    he: np.ndarray
+    hs: np.ndarray
+    join: np.ndarray
+    T: np.ndarray
+    goal_T: np.ndarray
+    hop_T: np.ndarray
+
+    @property
+    def same(self) -> np.ndarray:
+        """The goal is a state of the source episode."""
+        return self.ge == self.ep
+
+    @property
+    def later_join(self) -> np.ndarray:
+        """Joined at a later step of the source episode: ``t < join <= T``."""
+        return (self.join > self.t) & (self.join <= self.T)
+
+
+#: A row rule: ``(message, ok)`` with ``ok(rows: StoredRows) -> bool mask`` true where a row of
+#: the strategy obeys it.
+RowRule = tuple[str, Callable[[StoredRows], np.ndarray]]
+
+#: Values of a table entry's ``join``: no join step, joined at a later step, or later / none.
+JOINS = ("", "later", "later_or_none")
+
+
 @dataclass(frozen=True)
 class StrategySpec:
     """One entry of the strategy table.
@@ -114,6 +170,19 @@ class StrategySpec:
         Mixture attributes passed to ``func`` as keyword arguments (e.g. ``("gamma",)``).
     external_dim : callable, optional
         ``external_dim(chunk, context) -> int`` for strategies returning external goal vectors.
+    rules : tuple of RowRule
+        What a stored row of this strategy must satisfy (checked by ``verify``).
+    join : {"", "later", "later_or_none"}
+        Whether its rows have a join step (``join_step``): none (-1), always at a later own step,
+        or at a later own step or none.
+    hops : bool
+        Its rows may have a hop state (``hop_episode``, ``hop_step``).
+    steps_from_join : bool
+        ``steps_to_goal`` is ``join_step - t`` for joined rows (instead of ``j - t`` for later
+        goals of the same episode).
+    goal_table : bool
+        It takes goals from other episodes (or matches library targets), so the build needs
+        the goal table of every state.
     """
 
     name: str
@@ -121,35 +190,69 @@ class StrategySpec:
     func: Callable[..., StrategyGoals]
     options: tuple[str, ...] = ()
     external_dim: Callable[[EpisodeSet, object], int] | None = None
+    rules: tuple = ()
+    join: str = ""
+    hops: bool = False
+    steps_from_join: bool = False
+    goal_table: bool = False
 
 
 #: Registered strategies, by name.
 STRATEGIES: dict[str, StrategySpec] = {}
 
 
-def register(name: str, func, options=(), external_dim=None) -> StrategySpec:
-    """Add a strategy to :data:`STRATEGIES` and return its entry.
+def register(name: str, func, code: int, rules=(), options=(), external_dim=None, **flags) -> StrategySpec:
+    """Add a strategy to the strategy table (:data:`STRATEGIES`, :data:`CODES`) and return its entry.
 
     Parameters
     ----------
     name : str
-        Strategy name as written in ``[relabel.weights]``; must be a key of :data:`CODES`.
+        Strategy name as written in ``[relabel.weights]``.
     func : callable
         ``func(chunk, transitions, slots, seed, context=None, **options) -> StrategyGoals``.
+    code : int
+        Code stored in sets, 0 .. 255; a code is never reused for another strategy.
+    rules : sequence of RowRule
+        ``(message, ok)`` pairs a stored row of the strategy must satisfy.
     options : sequence of str
         :class:`~goalkit.relabel.Mixture` attributes passed to ``func`` as keywords.
     external_dim : callable, optional
         ``external_dim(chunk, context) -> int`` if ``func`` returns external goal vectors.
+    **flags
+        ``join``, ``hops``, ``steps_from_join``, ``goal_table`` (see :class:`StrategySpec`).
 
     Returns
     -------
     StrategySpec
+
+    Raises
+    ------
+    ValueError
+        If the code is outside 0 .. 255 or belongs to another strategy, or ``join`` is unknown.
     """
-    if name not in CODES:
-        raise ValueError(f"no strategy code for {name!r}; add it to CODES (never renumber)")
-    spec = StrategySpec(name, CODES[name], func, tuple(options), external_dim)
+    code = int(code)
+    if not 0 <= code <= 255:
+        raise ValueError(f"strategy codes are stored as uint8; got {code}")
+    taken = {c: n for n, c in CODES.items()}
+    if taken.get(code, name) != name:
+        raise ValueError(f"code {code} belongs to strategy {taken[code]!r} (codes are never reused)")
+    if flags.get("join", "") not in JOINS:
+        raise ValueError(f"join must be one of {JOINS}, got {flags['join']!r}")
+    spec = StrategySpec(name, code, func, tuple(options), external_dim, tuple(rules), **flags)
     STRATEGIES[name] = spec
+    CODES[name] = code
     return spec
+
+
+def unregister(name: str) -> None:
+    """Remove a strategy from the table (for tests and plug-ins that add one temporarily)."""
+    STRATEGIES.pop(name, None)
+    CODES.pop(name, None)
+
+
+def strategy_names() -> dict[int, str]:
+    """Code -> name of every strategy in the table, in code order."""
+    return {spec.code: spec.name for spec in sorted(STRATEGIES.values(), key=lambda sp: sp.code)}
 
 
 # ---- helpers ---------------------------------------------------------------------------
@@ -355,9 +458,20 @@ def other_episode(chunk: EpisodeSet, transitions, slots, seed: int, context=None
     return StrategyGoals(goal_ep, goal_step)
 
 
-register("original", original, external_dim=_task_goal_dim)
-register("final", final)
-register("future", future)
-register("episode", episode)
-register("geometric", geometric, options=("gamma", "past_end"))
-register("other_episode", other_episode)
+# ---- the strategy table: codes 0-5 (6-8 in goalkit.relabel.joined) -------------------------
+register("original", original, 0, external_dim=_task_goal_dim, rules=[
+    ("an original goal must be external (goal_episode -1)", lambda r: r.ge == -1)])
+register("final", final, 1, rules=[
+    ("a final goal must be the last state s_T of the same episode", lambda r: r.same & (r.j == r.T))])
+register("future", future, 2, rules=[
+    ("a future goal must come from the same episode strictly after the transition (t < j <= T)",
+     lambda r: r.same & (r.j > r.t) & (r.j <= r.T))])
+register("episode", episode, 3, rules=[
+    ("an episode goal must come from the same episode (0 <= j <= T)",
+     lambda r: r.same & (r.j >= 0) & (r.j <= r.T))])
+register("geometric", geometric, 4, options=("gamma", "past_end"), rules=[
+    ("a geometric-future goal must come from the same episode after the transition (t < j <= T)",
+     lambda r: r.same & (r.t < r.j) & (r.j <= r.T))])
+register("other_episode", other_episode, 5, goal_table=True, rules=[
+    ("an other-episode goal must come from a different episode (0 <= j <= its length)",
+     lambda r: (r.ge >= 0) & ~r.same & (r.j >= 0) & (r.j <= r.goal_T))])

@@ -37,7 +37,7 @@ import numpy as np
 
 from goalkit.config import closest
 from goalkit.logs.episodes import chunk_bounds
-from goalkit.reward import DISTANCES, RewardRule
+from goalkit.reward import DISTANCES, RewardRule, within
 from goalkit.tune.box import suggest_box
 from goalkit.tune.diagnostics import diagnose, rewarded_fraction, threshold_warnings
 from goalkit.tune.errors import LabelError, TuningError
@@ -272,7 +272,7 @@ def _rewarded_at(achieved, goal, strategy, rule, points: dict, names: dict) -> d
     values = np.array([points[k] for k in labels], dtype=np.float64)
     rf = rewarded_fraction(achieved, goal, strategy, rule, values)
     d = rule.distance(achieved, goal)
-    side = d[:, None] <= values[None, :] if rule.inclusive else d[:, None] < values[None, :]
+    side = within(d[:, None], values[None, :], rule.inclusive)
     out = {"thresholds": dict(zip(labels, values.tolist())), "strategies": {},
            "all": {"rows": int(d.size), "fraction": dict(zip(labels, side.mean(axis=0).tolist()))}}
     for i, code in enumerate(rf.strategies.tolist()):

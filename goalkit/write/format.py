@@ -6,7 +6,8 @@ A built set is one HDF5 file::
                           recipe (TOML text), provenance (JSON), summary (JSON), manifest (JSON),
                           seal (format version 2)
     /train/<column>       one row per (transition, goal) pair, rows sorted by
-    /validation/<column>  (source_episode, source_step, slot); group attributes rows, episodes
+    /validation/<column>  (source_episode, source_step, slot); group attributes rows, episodes;
+                          the strategy column's attribute codes (JSON code -> name)
 
 Every column is chunked along rows. ``manifest`` maps ``"split/column"`` to the SHA-256 of the
 column's bytes in C order, so a reader can check any array without trusting the file. ``seal``
@@ -16,41 +17,36 @@ is the SHA-256 of every attribute and every column's dtype, shape and storage (s
 
 from __future__ import annotations
 
+import json
+
+from goalkit.rows import INDEX_FIELDS, MATERIAL_FIELDS, SPLIT_CODES, SPLITS, TASK_REWARD_FIELD
+
+__all__ = ["FORMAT_NAME", "FORMAT_VERSION", "INDEX_COLUMNS", "MATERIAL_COLUMNS", "SPLITS", "SPLIT_CODES",
+           "TASK_REWARD_COLUMN", "COLUMN_ATTRS", "STRATEGY_CODES_ATTR", "column_names", "is_goal_set",
+           "strategy_codes_text"]
+
 FORMAT_NAME = "goalkit-goal-set"
 FORMAT_VERSION = 2
-SPLITS = ("train", "validation")
-SPLIT_CODES = {"train": 0, "validation": 1}
-
-#: Columns present in every mode: name -> (dtype, per-row shape kind, meaning).
-#: Shape kind "" is a scalar per row, "goal" is (G,), "obs" is (D,), "act" is (A,).
-INDEX_COLUMNS = {
-    "source_episode": ("int64", "", "episode id of the transition"),
-    "source_step": ("int64", "", "step t of the transition (s_t, a_t, s_t+1)"),
-    "slot": ("int64", "", "goal slot of the transition, 0 .. goals_per_transition - 1"),
-    "strategy": ("uint8", "", "relabelling strategy code (see the strategy table)"),
-    "goal_episode": ("int64", "", "episode id the goal was taken from, -1 when external"),
-    "goal_step": ("int64", "", "step j of the goal state s_j, -1 when external"),
-    "hop_episode": ("int64", "", "neighbour goals: the episode joined through, else -1"),
-    "hop_step": ("int64", "", "neighbour goals: the step joined at, else -1"),
-    "join_step": ("int64", "", "neighbour, library, near-miss goals: own step j joined at, else -1"),
-    "steps_to_goal": ("int64", "", "j - t for goals from the same episode, else -1"),
-    "goal": ("goal", "goal", "the goal vector g"),
-    "goal_distance": ("float32", "", "distance between phi(s_t+1) and g under the reward rule"),
-    "reward": ("float32", "", "reward R(phi(s_t+1), g)"),
-    "reached": ("uint8", "", "1 when phi(s_t+1) is within the threshold of g"),
-    "terminal": ("uint8", "", "1 when the episode ends here for this goal (end_on_reach)"),
-}
+#: Column name -> (dtype, per-row shape kind, meaning), from the one row schema
+#: (:mod:`goalkit.rows`). Shape kind "" is a scalar per row, "goal" is (G,), "obs" (D,), "act" (A,).
+INDEX_COLUMNS = {f.name: (f.dtype, f.kind, f.meaning) for f in INDEX_FIELDS.values()}
 
 #: Extra columns of a materialised set.
-MATERIAL_COLUMNS = {
-    "observation": ("obs", "obs", "s_t"),
-    "action": ("act", "act", "a_t"),
-    "next_observation": ("obs", "obs", "s_t+1"),
-    "reached_goal": ("goal", "goal", "phi(s_t+1)"),
-}
+MATERIAL_COLUMNS = {f.name: (f.dtype, f.kind, f.meaning) for f in MATERIAL_FIELDS.values()}
 
-#: Optional column, present when the logs carry a task reward.
-TASK_REWARD_COLUMN = ("task_reward", "float32", "the log's own task reward of the transition")
+#: Optional column, present when the logs carry a task reward: (name, dtype, meaning).
+TASK_REWARD_COLUMN = (TASK_REWARD_FIELD.name, TASK_REWARD_FIELD.dtype, TASK_REWARD_FIELD.meaning)
+
+
+#: Attributes a column may carry: the ``strategy`` column's ``codes`` is the set's own strategy
+#: table, JSON text ``{"code": "name", ...}`` (sets written before it have no column attributes).
+STRATEGY_CODES_ATTR = "codes"
+COLUMN_ATTRS = {"strategy": (STRATEGY_CODES_ATTR,)}
+
+
+def strategy_codes_text(names: dict) -> str:
+    """The ``codes`` attribute of the strategy column for a code -> name table."""
+    return json.dumps({str(int(c)): str(names[c]) for c in sorted(names)}, separators=(", ", ": "))
 
 
 def column_names(mode: str, has_task_reward: bool) -> list[str]:

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from goalkit.write.rules import LIBRARY, NEAR_MISS
+from goalkit.relabel.strategies import CODES
 
 
 def check_joined(plan, chunk, cols, phi, pos, split_name, report, row0, row_text) -> None:
@@ -39,12 +39,12 @@ def check_joined(plan, chunk, cols, phi, pos, split_name, report, row0, row_text
         at = phi[chunk.state_row(pos[rows], join[rows])].astype(np.float64)
         return rule.reached(at, cols["goal"][rows].astype(np.float64))
 
-    miss = np.flatnonzero((s == NEAR_MISS) & (cols["hop_episode"] >= 0) & usable)
+    miss = np.flatnonzero((s == CODES["near_miss"]) & (cols["hop_episode"] >= 0) & usable)
     if miss.size:
         bad = np.zeros(len(s), bool)
         bad[miss] = reached_at_join(miss)
         fail(bad, "a near-miss goal must lie beyond the threshold of the join state phi(s_join_step)")
-    lib_rows = np.flatnonzero(s == LIBRARY)
+    lib_rows = np.flatnonzero(s == CODES["library"])
     if lib_rows.size == 0:
         return
     library = getattr(plan.context, "library", None)

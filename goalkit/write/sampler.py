@@ -14,6 +14,8 @@ import numpy as np
 from goalkit import rng
 from goalkit.errors import RecipeError
 from goalkit.logs.episodes import chunk_bounds, concat_episodes, consecutive_runs
+from goalkit.reward import score
+from goalkit.rows import SPLIT_CODES, SPLITS
 
 
 class GoalSampler:
@@ -45,11 +47,11 @@ class GoalSampler:
     def __init__(self, recipe, split: str = "train", source=None):
         from goalkit.pipeline.plan import make_plan
 
-        if split not in ("train", "validation"):
-            raise RecipeError(f"unknown split {split!r}; splits are train, validation", file=recipe.file)
+        if split not in SPLIT_CODES:
+            raise RecipeError(f"unknown split {split!r}; splits are {', '.join(SPLITS)}", file=recipe.file)
         self.recipe = recipe
         self.plan, source = make_plan(recipe, source)
-        code = ("train", "validation").index(split)
+        code = SPLIT_CODES[split]
         parts = []
         for a, b in chunk_bounds(self.plan.lengths, 500_000):
             chunk = source.read(a, b)
@@ -100,15 +102,11 @@ class GoalSampler:
             goal[internal] = self.phi[eps.state_row(eps.position_of(ge[internal]), gs[internal])]
         if (~internal).any():
             goal[~internal] = rows.external[sel][~internal].astype(self.phi.dtype)
-        d = rule.distance(achieved, goal)
-        reached = rule.reached_from(d)
         return {
             "observation": eps.observations[cur], "action": eps.actions[t_idx],
             "next_observation": eps.observations[cur + 1],
             "reached_goal": achieved.astype(self.phi.dtype), "goal": goal.astype(self.phi.dtype),
-            "goal_distance": d.astype(np.float32), "reward": rule.reward_from(d),
-            "reached": reached.astype(np.uint8),
-            "terminal": (reached & rule.end_on_reach).astype(np.uint8),
+            **score(rule, achieved, goal).columns(),
             "strategy": rows.strategy[sel], "source_episode": eps.episode_ids[pos], "source_step": step,
             "goal_episode": ge, "goal_step": gs, "steps_to_goal": rows.steps_to_goal[sel],
         }

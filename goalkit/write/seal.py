@@ -32,7 +32,7 @@ import h5py
 import numpy as np
 
 from goalkit.errors import DatasetError
-from goalkit.write.format import FORMAT_NAME, FORMAT_VERSION, SPLITS
+from goalkit.write.format import COLUMN_ATTRS, FORMAT_NAME, FORMAT_VERSION, SPLITS, STRATEGY_CODES_ATTR
 
 #: Root attributes of every set, and the one added in format version 2.
 ROOT_ATTRS = ("format", "format_version", "goalkit_version", "mode", "seed", "recipe", "provenance",
@@ -164,6 +164,40 @@ def split_rows(file: h5py.File, split: str, path) -> int:
                   f" in group {split}")
 
 
+def stored_strategy_codes(ds: h5py.Dataset, key) -> dict | None:
+    """The ``codes`` attribute of a strategy column as {code: name}, None when absent.
+
+    Raises
+    ------
+    DatasetError
+        When the attribute is not JSON text of an object mapping codes 0 .. 255 to names.
+    """
+    if STRATEGY_CODES_ATTR not in ds.attrs:
+        return None
+    value = ds.attrs[STRATEGY_CODES_ATTR]
+    if isinstance(value, bytes):
+        value = value.decode("utf-8", "replace")
+    try:
+        table = json.loads(value) if isinstance(value, str) else None
+    except ValueError:
+        table = None
+    if (not isinstance(table, dict) or not all(isinstance(n, str) for n in table.values())
+            or not all(k.isdigit() and int(k) <= 255 for k in table)):
+        raise DatasetError("expected JSON text mapping strategy codes (0 .. 255) to names",
+                           file=ds.file.filename, key=f"{key}@{STRATEGY_CODES_ATTR}")
+    return {int(k): n for k, n in table.items()}
+
+
+def _column_attr_problems(ds: h5py.Dataset, key) -> list[str]:
+    """Messages for a column attribute of the right name but the wrong form."""
+    if STRATEGY_CODES_ATTR in ds.attrs and key.endswith("/strategy"):
+        try:
+            stored_strategy_codes(ds, key)
+        except DatasetError as exc:
+            return [f"{key}: attribute {STRATEGY_CODES_ATTR}: {exc.message}"]
+    return []
+
+
 def check_layout(file: h5py.File, path, stored: StoredAttrs) -> list[str]:
     """Check what is stored against what a set holds; return failures (empty: as expected).
 
@@ -212,8 +246,10 @@ def check_layout(file: h5py.File, path, stored: StoredAttrs) -> list[str]:
                                    file=path, key=key)
             if ds.shape[0] > rows:
                 failures.append(f"{key}: {ds.shape[0]} rows stored, more than the split's rows attribute ({rows})")
-            if len(ds.attrs):
-                failures.append(f"{key}: attributes not part of a set: {', '.join(sorted(ds.attrs))}")
+            extra = sorted(set(ds.attrs) - set(COLUMN_ATTRS.get(name, ())))
+            if extra:
+                failures.append(f"{key}: attributes not part of a set: {', '.join(extra)}")
+            failures += _column_attr_problems(ds, key)
             names[split].append(name)
     if sorted(names["train"]) != sorted(names["validation"]):
         failures.append(f"the splits hold different columns (train: {', '.join(sorted(names['train']))}; "

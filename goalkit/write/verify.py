@@ -32,7 +32,10 @@ import numpy as np
 
 from goalkit.errors import DatasetError, GoalkitError
 from goalkit.logs.episodes import chunk_bounds
-from goalkit.write.format import SPLITS
+from goalkit.relabel.strategies import strategy_names
+from goalkit.reward import score
+from goalkit.write.format import SPLIT_CODES, SPLITS
+from goalkit.write.seal import stored_strategy_codes
 
 
 @dataclass
@@ -94,7 +97,7 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
         return
     cur = chunk.state_row(pos, t)
     trans = chunk.offsets[pos] + t
-    code = {"train": 0, "validation": 1}[split_name]
+    code = SPLIT_CODES[split_name]
     gpos_src = plan.positions(src_ep)
     wrong_split = plan.splits[gpos_src] != code
     if wrong_split.any():
@@ -150,16 +153,27 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
     from goalkit.write.joined_checks import check_joined
 
     check_joined(plan, chunk, cols, phi, pos, split_name, report, row0, _row_text)
-    rule = plan.recipe.reward
-    d = rule.distance(achieved.astype(np.float64), cols["goal"].astype(np.float64))
-    for name, ref in (("goal_distance", d.astype(np.float32)), ("reward", rule.reward_from(d)),
-                      ("reached", rule.reached_from(d).astype(np.uint8)),
-                      ("terminal", (rule.reached_from(d) & rule.end_on_reach).astype(np.uint8))):
+    for name, ref in score(plan.recipe.reward, achieved, cols["goal"]).columns().items():
         diff = cols[name] != ref
         if diff.any():
             i = _first(diff)
             report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): {name} {cols[name][i]!r} does not "
                         f"recompute from the reward rule (expected {ref[i]!r})")
+
+
+def _strategy_code_problems(file) -> list[str]:
+    """The strategy columns' own code tables (when stored) against the strategy table."""
+    table = strategy_names()
+    out = []
+    for split in SPLITS:
+        if "strategy" not in file[split]:
+            continue
+        stored = stored_strategy_codes(file[split]["strategy"], f"{split}/strategy")
+        wrong = sorted(c for c, name in (stored or {}).items() if table.get(c) != name)
+        if wrong:
+            out.append(f"{split}/strategy: attribute codes names code {wrong[0]} "
+                       f"{stored[wrong[0]]!r}, the strategy table calls it {table.get(wrong[0])!r}")
+    return out
 
 
 def _goal_at(plan, chunk, phi_chunk, episodes, steps) -> np.ndarray:
@@ -216,6 +230,8 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) 
         report.checked["format_version"] = gs.stored.version
         if not report.ok:
             return report
+        for message in _strategy_code_problems(gs.file):
+            report.fail(message)
         # 1. source files
         entries = source_entries(gs)
         digests = {}

@@ -23,7 +23,9 @@ import numpy as np
 
 from goalkit.errors import DatasetError
 from goalkit.outputs import discard, open_hdf5, publish, refuse_existing
-from goalkit.write.format import FORMAT_NAME, FORMAT_VERSION, SPLITS, is_goal_set
+from goalkit.relabel.strategies import strategy_names
+from goalkit.write.format import (FORMAT_NAME, FORMAT_VERSION, SPLITS, STRATEGY_CODES_ATTR, is_goal_set,
+                                  strategy_codes_text)
 from goalkit.write.chunkcodec import GZIP_LEVEL, gzip_chunk
 from goalkit.write.gather import RowGather
 from goalkit.write.seal import write_seal
@@ -335,10 +337,13 @@ class SetWriter:
         try:
             for key in sorted(root):
                 self.file.attrs[key] = _attr(root[key])
+            codes = strategy_codes_text(strategy_names())
             for s in SPLITS:
                 self.file[s].attrs["rows"] = self.rows[s]
                 for key, value in sorted((split_attrs or {}).get(s, {}).items()):
                     self.file[s].attrs[key] = _attr(value)
+                if "strategy" in self.file[s]:  # the set describes its own strategy codes
+                    self.file[s]["strategy"].attrs[STRATEGY_CODES_ATTR] = codes
             write_seal(self.file)  # last: covers every attribute above and the datasets' layout
             self.file.close()
         except (OSError, RuntimeError) as exc:  # HDF5 reports a failed final flush as RuntimeError

@@ -26,7 +26,8 @@ MUTANTS = {
     "future includes t (builder and verify's rule table)": (
         "relabel/strategies.py", 'rng.integers(seed, t + 1, length + 1, eid, t, slots, "goal")',
         'rng.integers(seed, t, length + 1, eid, t, slots, "goal")', "main", "row rule 'future'",
-        ("write/rules.py", "(s == FUTURE) & ~(same & (j > t) & (j <= T))", "(s == FUTURE) & ~(same & (j >= t) & (j <= T))")),
+        ("relabel/strategies.py", "lambda r: r.same & (r.j > r.t) & (r.j <= r.T))",
+         "lambda r: r.same & (r.j >= r.t) & (r.j <= r.T))")),
     "future excludes T": (
         "relabel/strategies.py", 'rng.integers(seed, t + 1, length + 1, eid, t, slots, "goal")',
         'rng.integers(seed, t + 1, length, eid, t, slots, "goal")', "main", "row rule 'future'"),
@@ -55,13 +56,13 @@ MUTANTS = {
         "relabel/mixture.py", "steps_to_goal = np.where(same, goal_step - t, -1)",
         "steps_to_goal = np.where(same, goal_step - t - 1, -1)", "main", "row rule 'future'"),
     "strict threshold when inclusive": (
-        "reward.py", "return d <= thr if self.inclusive else d < thr",
-        "return d < thr if self.inclusive else d < thr", "exact", "row rule 'reached'"),
+        "reward.py", "return d <= threshold if inclusive else d < threshold",
+        "return d < threshold if inclusive else d < threshold", "exact", "row rule 'reached'"),
     "sparse-negative sign slip": (
-        "reward.py", "return self.reached_from(d).astype(np.float32) - np.float32(1.0)",
-        "return np.float32(1.0) - self.reached_from(d).astype(np.float32)", "main", "row rule 'reward'"),
+        "reward.py", "return reached.astype(np.float32) - np.float32(1.0)",
+        "return np.float32(1.0) - reached.astype(np.float32)", "main", "row rule 'reward'"),
     "terminal ignores end_on_reach": (
-        "pipeline/chunk.py", "terminal = reached if rule.end_on_reach else np.zeros_like(reached)",
+        "reward.py", "terminal = reached if rule.end_on_reach else np.zeros_like(reached)",
         "terminal = np.zeros_like(reached)", "main", "row rule 'terminal'"),
     "truncate conditions on K <= T - t - 1": (
         "relabel/strategies.py", "u = u * -np.expm1(room * log_g)", "u = u * -np.expm1((room - 1) * log_g)",
@@ -129,7 +130,7 @@ def test_verify_alone_catches_the_mutant(name, correct, tmp_path):
     assert done.returncode == 1, done.stdout[-3000:]
     assert "NOT consistent" in done.stdout
     # the replay agrees with the mutated builder; the audit names the slip (verify's own rule
-    # table, write/rules.py, may catch it too when it is not part of the slip)
+    # table, the strategies' row rules, may catch it too when it is not part of the slip)
     failures = [line for line in done.stdout.splitlines() if line.startswith("  - ")]
     assert "differs from what the recipe and seed produce" not in done.stdout
     audit = [line for line in failures if line.startswith("  - audit: ")]

@@ -1,0 +1,103 @@
+"""The goal row: one definition of every column a built set stores, and of its splits.
+
+A goal row is one (transition, goal) pair. :data:`INDEX_FIELDS` are stored in every set,
+:data:`MATERIAL_FIELDS` only in materialised sets, :data:`TASK_REWARD_FIELD` when the logs
+carry a task reward. The builder (:mod:`goalkit.pipeline.chunk`), the file format
+(:mod:`goalkit.write.format`), the relabelling rows (:class:`goalkit.relabel.GoalRows`) and the
+sampler (:mod:`goalkit.write.sampler`) take their column names from here, and the column table
+of docs/dataset.md is checked against it by a test.
+
+This module states *what* a row holds, not the rules its values obey: those live with the
+strategies (:data:`goalkit.relabel.STRATEGIES`) and the reward rule (:func:`goalkit.reward.score`).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+#: Split names, in code order (code = position), as stored in every set.
+SPLITS = ("train", "validation")
+#: Split name -> code.
+SPLIT_CODES = {name: code for code, name in enumerate(SPLITS)}
+
+#: Per-row shape kinds: "" one value per row, "goal" (G,), "obs" (D,), "act" (A,).
+SHAPE_KINDS = {"": "(M,)", "goal": "(M, G)", "obs": "(M, D)", "act": "(M, A)"}
+
+
+@dataclass(frozen=True)
+class Field:
+    """One column of a goal row.
+
+    Attributes
+    ----------
+    name : str
+        Column name in the set.
+    dtype : str
+        A numpy dtype name, or ``"goal"`` (the recipe's goal dtype), ``"obs"`` / ``"act"``
+        (the logs' observation / action dtype).
+    kind : str
+        Per-row shape kind, a key of :data:`SHAPE_KINDS`.
+    meaning : str
+        What the value is (the text of docs/dataset.md's column table).
+    """
+
+    name: str
+    dtype: str
+    kind: str
+    meaning: str
+
+    @property
+    def shape_text(self) -> str:
+        """The column's shape as docs/dataset.md writes it, e.g. ``(M, G)``."""
+        return SHAPE_KINDS[self.kind]
+
+    @property
+    def dtype_text(self) -> str:
+        """The dtype as docs/dataset.md writes it (``goal dtype``, ``log dtype`` or a numpy name)."""
+        return {"goal": "goal dtype", "obs": "log dtype", "act": "log dtype"}.get(self.dtype, self.dtype)
+
+
+def _fields(*rows) -> dict[str, Field]:
+    return {name: Field(name, dtype, kind, meaning) for name, dtype, kind, meaning in rows}
+
+
+#: Columns of every set, in the order they are written.
+INDEX_FIELDS = _fields(
+    ("source_episode", "int64", "", "episode id of the transition (its position in the log)"),
+    ("source_step", "int64", "", "t, for transition (s_t, a_t, s_t+1)"),
+    ("slot", "int64", "", "goal slot 0 .. goals_per_transition-1"),
+    ("strategy", "uint8", "", "strategy code (table below)"),
+    ("goal_episode", "int64", "", "episode id the goal state comes from; -1 for an external goal"),
+    ("goal_step", "int64", "", "j, the goal is phi(s_j); -1 for an external goal"),
+    ("hop_episode", "int64", "", "neighbour and near-miss goals: episode of the neighbour state found; else -1"),
+    ("hop_step", "int64", "", "neighbour and near-miss goals: step of the neighbour state found; else -1"),
+    ("join_step", "int64", "", "neighbour, library and near-miss goals: the own step j they are joined at "
+                               "(-1 for an unmatched library goal); else -1"),
+    ("steps_to_goal", "int64", "", "j - t when the goal is a later state of the same episode, else -1"),
+    ("goal", "goal", "goal", "g"),
+    ("goal_distance", "float32", "", "distance(phi(s_t+1), g) under the reward rule"),
+    ("reward", "float32", "", "R(phi(s_t+1), g)"),
+    ("reached", "uint8", "", "1 when phi(s_t+1) is within the threshold of g"),
+    ("terminal", "uint8", "", "1 when the episode ends for this goal (`end_on_reach`); time limits are "
+                              "never terminal"),
+)
+
+#: Extra columns of a materialised set, in the order they are written.
+MATERIAL_FIELDS = _fields(
+    ("observation", "obs", "obs", "s_t (materialised mode only)"),
+    ("action", "act", "act", "a_t (materialised mode only)"),
+    ("next_observation", "obs", "obs", "s_t+1 (materialised mode only)"),
+    ("reached_goal", "goal", "goal", "phi(s_t+1) (materialised mode only)"),
+)
+
+#: Optional column, present when the logs carry a task reward.
+TASK_REWARD_FIELD = Field("task_reward", "float32", "",
+                          "the log's own reward of the transition (when the logs have one)")
+
+#: The columns a relabelling strategy fills (the rest come from the logs and the reward rule).
+GOAL_ADDRESS = ("goal_episode", "goal_step", "hop_episode", "hop_step", "join_step", "steps_to_goal")
+#: The columns :func:`goalkit.reward.score` fills, in this order.
+SCORE_COLUMNS = ("goal_distance", "reward", "reached", "terminal")
+
+#: Every column, by name.
+ALL_FIELDS = {**INDEX_FIELDS, **MATERIAL_FIELDS, TASK_REWARD_FIELD.name: TASK_REWARD_FIELD}
