@@ -49,8 +49,13 @@ LAYOUT = {
 }
 
 
-def write_recording(path: Path, messages: int, seed: int = 0) -> int:
-    """Write a bag of about ``messages`` messages; return the exact count."""
+def write_recording(path: Path, messages: int, seed: int = 0, vary: bool = False) -> int:
+    """Write a bag of about ``messages`` messages; return the exact count.
+
+    ``vary``: joint names and frame ids change length from message to message (as when a driver
+    reports the joints it currently sees), so raw messages of a topic differ in length and
+    goalkit's fixed-layout decoding cannot apply to the joint and pose topics.
+    """
     from rosbags.rosbag2 import StoragePlugin, Writer
     from rosbags.typesys import Stores, get_typestore
 
@@ -70,6 +75,8 @@ def write_recording(path: Path, messages: int, seed: int = 0) -> int:
     stamp = T["builtin_interfaces/msg/Time"]
     header = T["std_msgs/msg/Header"]
     names = ["j%d" % i for i in range(6)]
+    long_names = ["wrist_joint_%d" % i for i in range(6)]
+    count = 0
     with Writer(path, version=9, storage_plugin=StoragePlugin.MCAP) as w:
         types = {"/arm/joints": "sensor_msgs/msg/JointState", "/arm/tip": "geometry_msgs/msg/PoseStamped",
                  "/arm/cmd": "std_msgs/msg/Float64MultiArray"}
@@ -77,9 +84,11 @@ def write_recording(path: Path, messages: int, seed: int = 0) -> int:
         lay = T["std_msgs/msg/MultiArrayLayout"](dim=[], data_offset=0)
         for t, topic in events:
             s = (t - T0) / 1e9
-            h = header(stamp=stamp(sec=t // 10**9, nanosec=t % 10**9), frame_id="arm")
+            odd = vary and count % 2 == 1
+            count += 1
+            h = header(stamp=stamp(sec=t // 10**9, nanosec=t % 10**9), frame_id="arm_base" if odd else "arm")
             if topic == "/arm/joints":
-                m = T["sensor_msgs/msg/JointState"](header=h, name=names, position=np.sin(s + np.arange(6.0)),
+                m = T["sensor_msgs/msg/JointState"](header=h, name=long_names if odd else names, position=np.sin(s + np.arange(6.0)),
                                                     velocity=np.zeros(6), effort=np.zeros(6))
             elif topic == "/arm/tip":
                 p = T["geometry_msgs/msg/Point"](x=np.sin(s), y=np.cos(s), z=0.1 * s)

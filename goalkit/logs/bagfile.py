@@ -29,6 +29,7 @@ from goalkit.config import closest, load_toml
 from goalkit.errors import GoalkitError, LayoutError, LogError
 from goalkit.logs import align as al
 from goalkit.logs.bagfast import fixed_layout_values
+from goalkit.logs.bagindex import WindowReader, record_times
 from goalkit.logs.naming import natural_sorted
 from goalkit.logs.recordspec import split_ref
 from goalkit.logs.source import BaseSource
@@ -279,7 +280,10 @@ class BagSource(BaseSource):
                                f"one message type per topic", file=bag, key=t)
         cid = {c.id: c.topic for c in conns}
         stamps = {t: array("q") for t in self.topics}     # 8 bytes per message
-        if spec.clock == "header":
+        indexed = record_times(reader, self.topics) if spec.clock != "header" else None
+        if indexed is not None:
+            pass                                       # from the bag's indexes, no record read
+        elif spec.clock == "header":
             rec = {t: array("q") for t in self.topics}
             heads = {c.id: header_reader(reader, c) for c in conns}
             for conn, t, raw in reader.messages(connections=conns):   # no decoding
@@ -291,8 +295,8 @@ class BagSource(BaseSource):
         else:
             for conn, t, _ in reader.messages(connections=conns):   # times only, no decoding
                 stamps[cid[conn.id]].append(t)
-        times = {t: np.frombuffer(v, dtype=np.int64) if len(v) else np.zeros(0, np.int64)
-                 for t, v in stamps.items()}
+        times = indexed if indexed is not None else {
+            t: np.frombuffer(v, dtype=np.int64) if len(v) else np.zeros(0, np.int64) for t, v in stamps.items()}
         if spec.clock != "header":
             rec = times
         if b == 0:
@@ -449,14 +453,15 @@ class BagSource(BaseSource):
                 j += 1
             reader = open_reader(self.bags[b])
             try:
-                parts += [self._read_one(reader, e) for e in ids[i:j]]
+                windows = WindowReader.make(reader, self.topics)
+                parts += [self._read_one(reader, e, windows) for e in ids[i:j]]
             finally:
                 reader.close()
             i = j
         cols = {name: np.concatenate([p[name] for p in parts]) for name in parts[0]}
         return cols
 
-    def _read_one(self, reader, e):
+    def _read_one(self, reader, e, windows=None):
         b, st, t0, begin, end, lo, hi = self.windows[e]
         header = self.spec.clock == "header"
         bag = self.bags[b]
@@ -468,10 +473,14 @@ class BagSource(BaseSource):
         recs = {topic: [] for topic in self.topics}
         # every message of the episode's window (the latest one before the first step included)
         try:
-            for conn, t, raw in reader.messages(connections=conns, start=lo, stop=hi + 1):
-                topic = topic_of[conn.id]
-                recs[topic].append(t)
-                raws[topic].append(raw)
+            if windows is not None:                   # sliced out of chunks via the indexes
+                for topic, (t, r) in windows.window(lo, hi).items():
+                    recs[topic], raws[topic] = t, r
+            else:
+                for conn, t, raw in reader.messages(connections=conns, start=lo, stop=hi + 1):
+                    topic = topic_of[conn.id]
+                    recs[topic].append(t)
+                    raws[topic].append(raw)
         except Exception as exc:   # a damaged storage file surfaces as many exception types
             raise LogError(f"cannot read the bag's messages ({type(exc).__name__}: {exc})", file=bag,
                            episode=e) from None
