@@ -144,7 +144,11 @@ class WindowReader:
     @classmethod
     def make(cls, reader, topics):
         """A WindowReader for ``reader``'s bag, or None when it is not an indexed MCAP bag."""
-        storages = _storage_list(_top(reader))
+        top = _top(reader)
+        storages = _storage_list(top)
+        meta = getattr(top, "metadata", None)
+        if meta is not None and getattr(meta, "compression_mode", None) == "message":
+            return None                    # each message zstd-compressed: rosbags unpacks them
         if not storages or any(_kind(st) != "mcap" or not st.chunks for st in storages):
             return None
         return cls(storages, topics)
