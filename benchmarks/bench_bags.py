@@ -10,7 +10,8 @@ episodes separated by 3 s pauses, cut with ``episodes = "gap"``; joints interpol
 nearest, command latest.
 
 Floor: a plain loop over rosbags' AnyReader.messages() calling the typestore's
-deserialize_cdr on every message of the same bag (decode only, nothing kept).
+deserialize_cdr (deserialize_ros1 for ROS 1) on every message of the same bag (decode only,
+nothing kept). ``--storage sqlite`` or ``ros1`` writes the same recording in that storage.
 goalkit: open_logs (message times from the bag's indexes) and reading every episode in
 chunks of 100k transitions (decode, field look-ups, alignment); also measured with the
 whole-topic decoding switched off (every message through rosbags' deserialize_cdr), reported
@@ -54,17 +55,21 @@ LAYOUT = {
 }
 
 
-def write_recording(path: Path, messages: int, seed: int = 0, vary: bool = False) -> int:
+def write_recording(path: Path, messages: int, seed: int = 0, vary: bool = False, storage: str = "mcap") -> int:
     """Write a bag of about ``messages`` messages; return the exact count.
 
     ``vary``: joint names and frame ids change length from message to message (as when a driver
     reports the joints it currently sees), so raw messages of a topic differ in length and
-    goalkit's fixed-layout decoding cannot apply to the joint and pose topics.
+    goalkit's fixed-layout decoding cannot apply to the joint and pose topics. ``storage``:
+    "mcap" or "sqlite" (ROS 2) or "ros1" (``path`` then gets a .bag suffix).
     """
+    from rosbags.rosbag1 import Writer as Writer1
     from rosbags.rosbag2 import StoragePlugin, Writer
     from rosbags.typesys import Stores, get_typestore
 
-    ts = get_typestore(Stores.ROS2_HUMBLE)
+    ros1 = storage == "ros1"
+    ts = get_typestore(Stores.ROS1_NOETIC if ros1 else Stores.ROS2_HUMBLE)
+    ser = ts.serialize_ros1 if ros1 else ts.serialize_cdr
     T = ts.types
     rng = np.random.default_rng(seed)
     per_s = sum(RATES.values())
@@ -82,7 +87,9 @@ def write_recording(path: Path, messages: int, seed: int = 0, vary: bool = False
     names = ["j%d" % i for i in range(6)]
     long_names = ["wrist_joint_%d" % i for i in range(6)]
     count = 0
-    with Writer(path, version=9, storage_plugin=StoragePlugin.MCAP) as w:
+    w = (Writer1(path) if ros1 else
+         Writer(path, version=9, storage_plugin=StoragePlugin.MCAP if storage == "mcap" else StoragePlugin.SQLITE3))
+    with w:
         types = {"/arm/joints": "sensor_msgs/msg/JointState", "/arm/tip": "geometry_msgs/msg/PoseStamped",
                  "/arm/cmd": "std_msgs/msg/Float64MultiArray"}
         conns = {tp: w.add_connection(tp, ty, typestore=ts) for tp, ty in types.items()}
@@ -91,7 +98,8 @@ def write_recording(path: Path, messages: int, seed: int = 0, vary: bool = False
             s = (t - T0) / 1e9
             odd = vary and count % 2 == 1
             count += 1
-            h = header(stamp=stamp(sec=t // 10**9, nanosec=t % 10**9), frame_id="arm_base" if odd else "arm")
+            h = header(**({"seq": count} if ros1 else {}), stamp=stamp(sec=t // 10**9, nanosec=t % 10**9),
+                       frame_id="arm_base" if odd else "arm")
             if topic == "/arm/joints":
                 m = T["sensor_msgs/msg/JointState"](header=h, name=long_names if odd else names, position=np.sin(s + np.arange(6.0)),
                                                     velocity=np.zeros(6), effort=np.zeros(6))
@@ -101,7 +109,7 @@ def write_recording(path: Path, messages: int, seed: int = 0, vary: bool = False
                 m = T["geometry_msgs/msg/PoseStamped"](header=h, pose=T["geometry_msgs/msg/Pose"](position=p, orientation=q))
             else:
                 m = T["std_msgs/msg/Float64MultiArray"](layout=lay, data=np.array([np.sin(2 * s), np.cos(2 * s), s]))
-            w.write(conns[topic], t, ts.serialize_cdr(m, types[topic]))
+            w.write(conns[topic], t, ser(m, types[topic]))
     return len(events)
 
 
@@ -157,16 +165,19 @@ def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--sizes", default="250000,1000000", help="messages per bag, comma separated")
     ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--storage", default="mcap", choices=["mcap", "sqlite", "ros1"])
     ap.add_argument("--out", default=str(HERE / "results" / "bags.json"))
     args = ap.parse_args(argv)
     sizes = [int(s) for s in args.sizes.split(",")]
-    results = {"what": "bag read+align vs plain rosbags deserialise loop", "sizes": []}
+    results = {"what": "bag read+align vs plain rosbags deserialise loop", "storage": args.storage,
+               "sizes": []}
     with tempfile.TemporaryDirectory() as tmp:
         for size in sizes:
-            bag, vbag = Path(tmp) / f"rec{size}", Path(tmp) / f"vary{size}"
+            ext = ".bag" if args.storage == "ros1" else ""
+            bag, vbag = Path(tmp) / f"rec{size}{ext}", Path(tmp) / f"vary{size}{ext}"
             t = time.perf_counter()
-            n = write_recording(bag, size)
-            nv = write_recording(vbag, size, vary=True)
+            n = write_recording(bag, size, storage=args.storage)
+            nv = write_recording(vbag, size, vary=True, storage=args.storage)
             print(f"wrote 2 x {n} messages in {time.perf_counter() - t:.1f} s", flush=True)
             runs = {k: [] for k in ("floor", "goalkit", "goalkit_per_message", "floor_varying",
                                     "goalkit_varying", "goalkit_varying_no_index")}

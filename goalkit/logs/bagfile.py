@@ -29,7 +29,7 @@ from goalkit.config import closest, load_toml
 from goalkit.errors import GoalkitError, LayoutError, LogError
 from goalkit.logs import align as al
 from goalkit.logs.bagfast import fixed_layout_values
-from goalkit.logs.bagindex import WindowReader, record_times
+from goalkit.logs.bagindex import record_times, window_reader
 from goalkit.logs.naming import natural_sorted
 from goalkit.logs.recordspec import split_ref
 from goalkit.logs.source import BaseSource
@@ -453,7 +453,7 @@ class BagSource(BaseSource):
                 j += 1
             reader = open_reader(self.bags[b])
             try:
-                windows = WindowReader.make(reader, self.topics)
+                windows = window_reader(reader, self.topics)
                 parts += [self._read_one(reader, e, windows) for e in ids[i:j]]
             finally:
                 reader.close()

@@ -8,10 +8,12 @@ rosbags reads a bag record by record in Python. Two things goalkit needs can be 
   MCAP specification, "Message Index" record), a ROS 2 SQLite bag's ``timestamp`` column
   (queried alone, without the message data);
 * the raw messages of a few topics in a time window of an MCAP file: the message index gives
-  each message's offset in its decompressed chunk, so only the wanted records are sliced out.
+  each message's offset in its decompressed chunk, so only the wanted records are sliced out;
+  of a ROS 1 bag: rosbags reads them, from an index cut to the window.
 
-Both return None when the bag is of another kind or lacks the indexes (an unindexed MCAP file);
-the caller then reads through rosbags' message loop. The order is rosbags' own: per storage file
+Both return None when the bag is of another kind or lacks the indexes (an unindexed MCAP file,
+messages compressed one by one); the caller then reads through rosbags' message loop (a ROS 2
+SQLite bag's window is one SQL query on the indexed timestamp column, already cheap). The order is rosbags' own: per storage file
 in turn, messages by time (ties: by chunk, then by position in the chunk).
 """
 
@@ -216,3 +218,46 @@ class WindowReader:
                     d = datas[t]
                     raws[t] += [d[i] for i in order.tolist()]
         return {t: (np.concatenate(times[t]) if times[t] else _EMPTY, raws[t]) for t in self.topics}
+
+
+class Ros1Windows:
+    """Raw messages of some topics in time windows of one ROS 1 bag.
+
+    rosbags' ROS 1 reader walks its index from the bag's first message to the window's start
+    on every call (time linear in the bag, so reading all episodes is quadratic); here each
+    window reads a private copy of the reader whose per-connection index lists are cut to the
+    window by binary search, so rosbags parses only the window's records, in its own order.
+    """
+
+    def __init__(self, top, topics):
+        import copy
+
+        self.conns = [c for c in top.connections if c.topic in set(topics)]
+        self.full = {c.id: top.indexes.get(c.id, []) for c in self.conns}
+        self.times = {cid: np.fromiter((x.time for x in idx), dtype=np.int64, count=len(idx))
+                      for cid, idx in self.full.items()}
+        self.topics = list(topics)
+        self.reader = copy.copy(top)       # its own index and current chunk; shares the file
+
+    def window(self, lo: int, hi: int) -> dict:
+        """``{topic: (times, raws)}`` of the messages with record time in ``[lo, hi]``."""
+        cut = {}
+        for cid, t in self.times.items():
+            a, b = np.searchsorted(t, lo, "left"), np.searchsorted(t, hi, "right")
+            cut[cid] = self.full[cid][int(a):int(b)]
+        self.reader.indexes = cut
+        times = {t: [] for t in self.topics}
+        raws = {t: [] for t in self.topics}
+        for c, t, raw in self.reader.messages(connections=self.conns):
+            times[c.topic].append(t)
+            raws[c.topic].append(raw)
+        return {t: (np.asarray(times[t], dtype=np.int64), raws[t]) for t in self.topics}
+
+
+def window_reader(reader, topics):
+    """A reader of time windows for ``reader``'s bag (an indexed MCAP bag or a ROS 1 bag), or
+    None (read windows through rosbags' message loop)."""
+    top = _top(reader)
+    if top is not None and type(top).__module__.startswith("rosbags.rosbag1") and hasattr(top, "indexes"):
+        return Ros1Windows(top, topics)
+    return WindowReader.make(reader, topics)

@@ -97,12 +97,26 @@ def test_mcap_windows_equal_the_message_loop_across_chunks(tmp_path, mode):
         reader.close()
 
 
-@pytest.mark.parametrize("kind", ["sqlite", "ros1"])
-def test_window_reader_is_only_for_mcap(tmp_path, kind):
-    bag = write_bag(tmp_path / ("rec.bag" if kind == "ros1" else "rec"), make_truth(seed=6), kind)
+@pytest.mark.parametrize("kind", ["mcap", "sqlite", "ros1"])
+def test_windows_equal_the_message_loop(tmp_path, kind):
+    bag = write_bag(tmp_path / ("rec.bag" if kind == "ros1" else "rec"),
+                    make_truth(seed=6, segments=((0.0, 2.0), (3.0, 5.0))), kind, delay_seed=2)
+    topics = [JOINTS, TIP, CMD]
     reader = open_reader(Path(bag))
     try:
-        assert bagindex.WindowReader.make(reader, [JOINTS]) is None
+        win = bagindex.window_reader(reader, topics)
+        if kind == "sqlite":                 # one SQL query per window already: rosbags' loop
+            assert win is None
+            return
+        t0 = reader.start_time
+        # windows read in time order, then one going back (a later read of an earlier episode)
+        for lo, hi in [(t0, t0 + 700_000_000), (t0 + 700_000_001, t0 + 3_500_000_000),
+                       (t0 + 3_500_000_001, t0 + 9_000_000_000), (t0 + 100_000_000, t0 + 150_000_000)]:
+            got, want = win.window(lo, hi), _loop(reader, topics, lo, hi)
+            for t in topics:
+                assert len(want[t][0]) > 0
+                np.testing.assert_array_equal(got[t][0], np.asarray(want[t][0], dtype=np.int64))
+                assert [bytes(r) for r in got[t][1]] == want[t][1]
     finally:
         reader.close()
 
