@@ -1,12 +1,14 @@
 """Reader for robot recordings (layout shape ``"bag"``): ROS 1 bags and ROS 2 bags in SQLite
 or MCAP storage, read through ``rosbags`` (no ROS installation needed).
 
-Times are the bag's record times in int64 nanoseconds. Opening reads every bag once without
-decoding messages (only times; marker messages are decoded), cuts episodes and computes each
-episode's step times; :meth:`BagSource.read` decodes the messages of the requested episodes
-(one ``deserialize`` per message, then attribute look-ups) and aligns each topic to the steps
-with :mod:`goalkit.logs.align`. Memory: the message times of the open bag plus one episode's
-decoded values.
+Times are the bag's record times in int64 nanoseconds. Opening takes every bag's message
+times from its indexes (:mod:`goalkit.logs.bagindex`; with ``clock = "header"`` it reads the
+messages once without decoding them; marker messages are decoded), cuts episodes and computes
+each episode's step times; :meth:`BagSource.read` decodes the messages of the requested
+episodes (all at once when the layout is fixed, :mod:`goalkit.logs.bagfast`; otherwise one
+``deserialize`` per message, then attribute look-ups) and aligns each topic to the steps with
+:mod:`goalkit.logs.align`. Memory: the message times of the open bag while opening, then one
+episode's decoded values.
 
 Steps of an episode: the messages of ``step_topic``, or every ``step_period`` seconds, from the
 time every topic has a message (and no earlier than the episode's start) to the last message
