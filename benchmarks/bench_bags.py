@@ -130,7 +130,7 @@ from rosbags.typesys import Stores, get_typestore
 t = time.perf_counter()
 n = 0
 with AnyReader([Path({bag!r})], default_typestore=get_typestore(Stores.LATEST)) as r:
-    deser = r.typestore.deserialize_cdr
+    deser = r.typestore.deserialize_cdr if r.is2 else r.typestore.deserialize_ros1
     for c, _, raw in r.messages():
         deser(raw, c.msgtype)
         n += 1

@@ -123,8 +123,8 @@ def record_times(reader, topics) -> dict | None:
             for t, cids in ids.items():
                 q = (f"SELECT timestamp FROM messages WHERE topic_id IN ({','.join('?' * len(cids))}) "
                      f"ORDER BY timestamp")
-                rows = st.dbconn.execute(q, tuple(cids)).fetchall()
-                parts[t].append(np.fromiter((r[0] for r in rows), dtype=np.int64, count=len(rows)))
+                rows = st.dbconn.execute(q, tuple(cids))          # streamed: no list of rows
+                parts[t].append(np.fromiter((r[0] for r in rows), dtype=np.int64))
         else:
             return None
     return {t: np.concatenate(v) if v else _EMPTY for t, v in parts.items()}
