@@ -76,6 +76,15 @@ def _by_topic(storage, topics):
 
 
 def record_times(reader, topics) -> dict | None:
+    """See :func:`_record_times`; None also when rosbags' reader objects lack the attributes
+    read here (another rosbags release)."""
+    try:
+        return _record_times(reader, topics)
+    except AttributeError:
+        return None
+
+
+def _record_times(reader, topics) -> dict | None:
     """Record times (int64 ns) of every message of each topic, in rosbags' read order.
 
     Parameters
@@ -257,7 +266,10 @@ class Ros1Windows:
 def window_reader(reader, topics):
     """A reader of time windows for ``reader``'s bag (an indexed MCAP bag or a ROS 1 bag), or
     None (read windows through rosbags' message loop)."""
-    top = _top(reader)
-    if top is not None and type(top).__module__.startswith("rosbags.rosbag1") and hasattr(top, "indexes"):
-        return Ros1Windows(top, topics)
-    return WindowReader.make(reader, topics)
+    try:
+        top = _top(reader)
+        if top is not None and type(top).__module__.startswith("rosbags.rosbag1") and hasattr(top, "indexes"):
+            return Ros1Windows(top, topics)
+        return WindowReader.make(reader, topics)
+    except AttributeError:                 # another rosbags release: read through its loop
+        return None
