@@ -1,12 +1,14 @@
 """Reader for robot recordings (layout shape ``"bag"``): ROS 1 bags and ROS 2 bags in SQLite
 or MCAP storage, read through ``rosbags`` (no ROS installation needed).
 
-Times are the bag's record times in int64 nanoseconds. Opening reads every bag once without
-decoding messages (only times; marker messages are decoded), cuts episodes and computes each
-episode's step times; :meth:`BagSource.read` decodes the messages of the requested episodes
-(one ``deserialize`` per message, then attribute look-ups) and aligns each topic to the steps
-with :mod:`goalkit.logs.align`. Memory: the message times of the open bag plus one episode's
-decoded values.
+Times are the bag's record times in int64 nanoseconds. Opening takes every bag's message
+times from its indexes (:mod:`goalkit.logs.bagindex`; with ``clock = "header"`` it reads the
+messages once without decoding them; marker messages are decoded), cuts episodes and computes
+each episode's step times; :meth:`BagSource.read` decodes the messages of the requested
+episodes (all at once when the layout is fixed, :mod:`goalkit.logs.bagfast`; otherwise one
+``deserialize`` per message, then attribute look-ups) and aligns each topic to the steps with
+:mod:`goalkit.logs.align`. Memory: the message times of the open bag while opening, then one
+episode's decoded values.
 
 Steps of an episode: the messages of ``step_topic``, or every ``step_period`` seconds, from the
 time every topic has a message (and no earlier than the episode's start) to the last message
@@ -17,6 +19,7 @@ and success flag at step ``t + 1`` (the outcome of the action).
 
 from __future__ import annotations
 
+import gc
 import operator
 import os
 from array import array
@@ -29,6 +32,7 @@ from goalkit.config import closest, load_toml
 from goalkit.errors import GoalkitError, LayoutError, LogError
 from goalkit.logs import align as al
 from goalkit.logs.bagfast import fixed_layout_values
+from goalkit.logs.bagindex import record_times, window_reader
 from goalkit.logs.naming import natural_sorted
 from goalkit.logs.recordspec import split_ref
 from goalkit.logs.source import BaseSource
@@ -279,7 +283,10 @@ class BagSource(BaseSource):
                                f"one message type per topic", file=bag, key=t)
         cid = {c.id: c.topic for c in conns}
         stamps = {t: array("q") for t in self.topics}     # 8 bytes per message
-        if spec.clock == "header":
+        indexed = record_times(reader, self.topics) if spec.clock != "header" else None
+        if indexed is not None:
+            pass                                       # from the bag's indexes, no record read
+        elif spec.clock == "header":
             rec = {t: array("q") for t in self.topics}
             heads = {c.id: header_reader(reader, c) for c in conns}
             for conn, t, raw in reader.messages(connections=conns):   # no decoding
@@ -291,8 +298,8 @@ class BagSource(BaseSource):
         else:
             for conn, t, _ in reader.messages(connections=conns):   # times only, no decoding
                 stamps[cid[conn.id]].append(t)
-        times = {t: np.frombuffer(v, dtype=np.int64) if len(v) else np.zeros(0, np.int64)
-                 for t, v in stamps.items()}
+        times = indexed if indexed is not None else {
+            t: np.frombuffer(v, dtype=np.int64) if len(v) else np.zeros(0, np.int64) for t, v in stamps.items()}
         if spec.clock != "header":
             rec = times
         if b == 0:
@@ -449,14 +456,15 @@ class BagSource(BaseSource):
                 j += 1
             reader = open_reader(self.bags[b])
             try:
-                parts += [self._read_one(reader, e) for e in ids[i:j]]
+                windows = window_reader(reader, self.topics)
+                parts += [self._read_one(reader, e, windows) for e in ids[i:j]]
             finally:
                 reader.close()
             i = j
         cols = {name: np.concatenate([p[name] for p in parts]) for name in parts[0]}
         return cols
 
-    def _read_one(self, reader, e):
+    def _read_one(self, reader, e, windows=None):
         b, st, t0, begin, end, lo, hi = self.windows[e]
         header = self.spec.clock == "header"
         bag = self.bags[b]
@@ -468,10 +476,14 @@ class BagSource(BaseSource):
         recs = {topic: [] for topic in self.topics}
         # every message of the episode's window (the latest one before the first step included)
         try:
-            for conn, t, raw in reader.messages(connections=conns, start=lo, stop=hi + 1):
-                topic = topic_of[conn.id]
-                recs[topic].append(t)
-                raws[topic].append(raw)
+            if windows is not None:                   # sliced out of chunks via the indexes
+                for topic, (t, r) in windows.window(lo, hi).items():
+                    recs[topic], raws[topic] = t, r
+            else:
+                for conn, t, raw in reader.messages(connections=conns, start=lo, stop=hi + 1):
+                    topic = topic_of[conn.id]
+                    recs[topic].append(t)
+                    raws[topic].append(raw)
         except Exception as exc:   # a damaged storage file surfaces as many exception types
             raise LogError(f"cannot read the bag's messages ({type(exc).__name__}: {exc})", file=bag,
                            episode=e) from None
@@ -510,7 +522,15 @@ class BagSource(BaseSource):
                                        f"{ref.width} in every message", file=bag, key=ref.text, episode=e)
                     aligned[ref.text] = (t, fast[ref.text])
                 continue
-            msgs = [decode(i, raw) for i, raw in enumerate(raw_list)]
+            # many small objects and no cycles: the cyclic collector would rescan them all
+            # again and again while the list grows (about a fifth of the decoding time)
+            collect = gc.isenabled()
+            gc.disable()
+            try:
+                msgs = [decode(i, raw) for i, raw in enumerate(raw_list)]
+            finally:
+                if collect:
+                    gc.enable()
             if topic == frame:
                 images = (t, msgs)
             for ref in refs:
