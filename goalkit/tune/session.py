@@ -43,6 +43,7 @@ from goalkit.tune.diagnostics import diagnose, rewarded_fraction, threshold_warn
 from goalkit.tune.errors import LabelError, TuningError
 from goalkit.tune.labels import LabelledPairs, concat_pairs, load_labelled_pairs, pairs_from_success
 from goalkit.tune.metrics import CHOOSERS, check_chooser
+from goalkit.tune.report import render as render_report
 from goalkit.tune.sample import SampledSource, concat_episodes, sample_episodes
 from goalkit.tune.tuner import ThresholdTuner
 
@@ -109,6 +110,10 @@ class TuneResult:
     def recipe_distance(self) -> str | None:
         """The winning distance name (None without labels)."""
         return None if self.winner is None else self.winner.distance
+
+    def render(self) -> str:
+        """The terminal table ``goalkit tune`` prints for this result."""
+        return render_report(self.as_dict())
 
     def as_dict(self) -> dict:
         """JSON-able summary (what ``goalkit tune --json`` prints)."""
