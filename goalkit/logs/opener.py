@@ -6,7 +6,13 @@ from collections.abc import Mapping
 from pathlib import Path
 
 from goalkit.errors import LayoutError
+from goalkit.logs.bagfile import is_bag_path
+from goalkit.logs.bagscan import list_topics, propose_bag_layout
+from goalkit.logs.detect import propose_layout
+from goalkit.logs.flat import FlatSource
+from goalkit.logs.grouped import GroupedSource
 from goalkit.logs.layout import Layout, load_layout, parse_layout
+from goalkit.logs.perfile import PerFileSource
 
 
 def open_logs(path, layout=None, skip_bad_episodes: bool = False, *, advance=None):
@@ -43,18 +49,9 @@ def open_logs(path, layout=None, skip_bad_episodes: bool = False, *, advance=Non
     >>> src = open_logs("gantry.h5", "layout.toml")          # doctest: +SKIP
     >>> chunk = src.read(0, 10)                               # doctest: +SKIP
     """
-    from goalkit.logs.flat import FlatSource
-    from goalkit.logs.grouped import GroupedSource
-    from goalkit.logs.perfile import PerFileSource
-
     proposed = False
     if layout is None:
-        from goalkit.logs.bagfile import is_bag_path
-        from goalkit.logs.detect import propose_layout
-
         if is_bag_path(path):
-            from goalkit.logs.bagscan import list_topics, propose_bag_layout
-
             layout = propose_bag_layout(list_topics(path))
         else:
             layout = propose_layout(path)
