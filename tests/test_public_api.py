@@ -129,3 +129,14 @@ def test_build_from_a_path_gives_the_same_bytes_with_each_local_runner(tmp_path)
     report = goalkit.verify(tmp_path / "set-0.h5")
     assert isinstance(report, goalkit.VerifyReport) and report.ok, report.failures
     assert goalkit.scan(demo["logs"], demo["layout"])["episodes"] == 12
+
+
+def test_goalkit_help_loads_no_command_and_no_numpy():
+    # the CLI loads a command's module only when that command runs (goalkit.cli.LazyGroup)
+    code = ("import sys\nfrom goalkit.cli import main\n"
+            "try:\n    main(['--help'])\nexcept SystemExit:\n    pass\n"
+            "print(','.join(sorted(m for m in sys.modules if m.startswith('goalkit') or "
+            "m.split('.')[0] in ('numpy', 'h5py', 'faiss', 'matplotlib', 'dask'))))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    loaded = out.stdout.strip().splitlines()[-1].split(",")
+    assert loaded == ["goalkit", "goalkit.cli", "goalkit.cli_support", "goalkit.errors"]
