@@ -140,3 +140,20 @@ def test_goalkit_help_loads_no_command_and_no_numpy():
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     loaded = out.stdout.strip().splitlines()[-1].split(",")
     assert loaded == ["goalkit", "goalkit.cli", "goalkit.cli_support", "goalkit.errors"]
+
+
+def test_build_on_a_dask_cluster_by_client_and_by_address_gives_the_same_bytes(tmp_path):
+    import hashlib
+
+    distributed = pytest.importorskip("distributed")
+    demo = goalkit.make_demo(tmp_path / "demo", episodes=12, seed=5)
+    ref = goalkit.build(demo["recipe"], out=tmp_path / "ref.h5").path
+    digest = lambda p: hashlib.sha256(p.read_bytes()).hexdigest()  # noqa: E731
+    with distributed.LocalCluster(processes=False, protocol="tcp", n_workers=1, threads_per_worker=2,
+                                  dashboard_address=None) as cluster, distributed.Client(cluster) as client:
+        by_client = goalkit.build(demo["recipe"], runner=goalkit.DaskCluster(client), out=tmp_path / "c.h5")
+        by_address = goalkit.build(demo["recipe"], runner=goalkit.DaskCluster(cluster.scheduler_address),
+                                   out=tmp_path / "a.h5")
+        assert client.status == "running"   # an existing client is used, not closed
+    assert by_client.shards["total"] >= 1
+    assert digest(by_client.path) == digest(by_address.path) == digest(ref)
