@@ -3,10 +3,80 @@
 The flow is reader -> goal map -> relabelling strategies -> reward rule -> writer.
 Everything downstream of the reader sees only an :class:`~goalkit.logs.episodes.EpisodeSet`
 and a goal map, never a file format.
+
+The public API is the names in ``goalkit.__all__``; use them as ``goalkit.NAME`` or
+``from goalkit import NAME``. They are loaded on first use (PEP 562 module ``__getattr__``), so
+``import goalkit`` imports neither h5py, faiss, matplotlib nor Dask. Every other module is
+internal and may change.
+
+Examples
+--------
+>>> import goalkit                                                      # doctest: +SKIP
+>>> result = goalkit.build("gantry-recipe.toml", runner=goalkit.LocalWorkers(2))  # doctest: +SKIP
+>>> goalkit.verify(result.path).ok                                      # doctest: +SKIP
+True
 """
+
+from __future__ import annotations
+
+import importlib
 
 __version__ = "0.1.0"
 
-from goalkit.errors import GoalkitError  # noqa: E402
+from goalkit.errors import (DatasetError, EmbeddingError, GoalkitError, LayoutError,  # noqa: E402
+                            LogError, OutputError, RecipeError)
 
-__all__ = ["GoalkitError", "__version__"]
+#: Public name -> the module that defines it (imported on first use).
+_LAZY = {
+    # the main job
+    "load_recipe": "goalkit.pipeline.recipe", "Recipe": "goalkit.pipeline.recipe",
+    "build": "goalkit.api", "BuildResult": "goalkit.pipeline.build",
+    "InProcess": "goalkit.api", "LocalWorkers": "goalkit.api", "DaskCluster": "goalkit.api",
+    "verify": "goalkit.api", "VerifyReport": "goalkit.write.verify",
+    "open_set": "goalkit.write.reader", "GoalSet": "goalkit.write.reader",
+    "GoalSampler": "goalkit.write.sampler",
+    "make_demo": "goalkit.demo.files",
+    # logs
+    "open_logs": "goalkit.logs.opener", "scan": "goalkit.api", "load_layout": "goalkit.logs.layout",
+    "Layout": "goalkit.logs.layout", "propose_layout": "goalkit.logs.detect",
+    "iter_chunks": "goalkit.logs.episodes", "EpisodeSet": "goalkit.logs.episodes",
+    "LogSource": "goalkit.logs.episodes",
+    # relabelling and reward
+    "Mixture": "goalkit.relabel.mixture", "RelabelContext": "goalkit.relabel.context",
+    "RewardRule": "goalkit.reward",
+    # goal maps and embeddings
+    "Embedding": "goalkit.goals.base", "Raw": "goalkit.goals.linear", "Standardised": "goalkit.goals.linear",
+    "PCA": "goalkit.goals.linear", "SFA": "goalkit.goals.sfa", "FrameEmbedding": "goalkit.goals.frames",
+    "Precomputed": "goalkit.goals.precomputed", "EmbeddingGoalMap": "goalkit.goals.embedmap",
+    "load_embedding": "goalkit.goals.embedfile", "save_embedding": "goalkit.goals.embedfile",
+    "fit_on_logs": "goalkit.goals.fitlogs",
+    "IndexSettings": "goalkit.goals.neighbours", "build_index": "goalkit.goals.neighbours",
+    # tuning
+    "TuneResult": "goalkit.tune.session", "ThresholdTuner": "goalkit.tune.tuner",
+    "load_labelled_pairs": "goalkit.tune.labels", "plot_labelled": "goalkit.tune.plots",
+    "write_tuned_recipe": "goalkit.tune.recipe_edit",
+    "LabelError": "goalkit.tune.errors", "TuningError": "goalkit.tune.errors",
+}
+
+_ERRORS = ["GoalkitError", "LogError", "LayoutError", "RecipeError", "DatasetError", "EmbeddingError",
+           "OutputError"]
+
+# ``tune`` is also the name of the subpackage goalkit.tune, which Python binds as an attribute of
+# goalkit once any of its modules is imported; that package is made callable (it calls
+# goalkit.api.tune), so ``goalkit.tune(recipe, ...)`` works either way.
+__all__ = sorted([*_LAZY, *_ERRORS, "tune", "__version__"])
+
+
+def __getattr__(name: str):
+    if name == "tune":
+        return importlib.import_module("goalkit.tune")
+    module = _LAZY.get(name)
+    if module is None:
+        raise AttributeError(f"module 'goalkit' has no attribute {name!r}")
+    value = getattr(importlib.import_module(module), name)
+    globals()[name] = value  # later look-ups skip __getattr__
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(__all__) | {k for k in globals() if not k.startswith("_")} | {"__version__"})

@@ -7,10 +7,12 @@ Commands are loaded lazily, so ``goalkit --help`` stays fast and a command's hea
 from __future__ import annotations
 
 import importlib
+import sys
 
 import click
 
 from goalkit import __version__
+from goalkit.cli_support import EXIT_INTERRUPTED, run_guarded
 
 #: command name -> "module:function" (a click.Command); help text shown in the listing.
 COMMANDS = {
@@ -40,10 +42,6 @@ class LazyGroup(click.Group):
         """click's main, with its usage errors on one line like every other error (exit 2)."""
         if not standalone_mode:
             return super().main(args, prog_name, complete_var, standalone_mode=False, **extra)
-        import sys
-
-        from goalkit.cli_support import EXIT_INTERRUPTED
-
         try:
             rv = super().main(args, prog_name, complete_var, standalone_mode=False, **extra)
         except click.exceptions.NoArgsIsHelpError as exc:
@@ -70,8 +68,6 @@ class LazyGroup(click.Group):
         Each command is decorated too; this covers what happens around it (loading the command's
         module, an interruption before the command starts).
         """
-        from goalkit.cli_support import run_guarded
-
         return run_guarded(super().invoke, ctx)
 
     def format_commands(self, ctx, formatter):

@@ -7,7 +7,6 @@ import json
 import sys
 
 import click
-import numpy as np
 
 from goalkit.errors import GoalkitError
 
@@ -235,14 +234,11 @@ def progress(total: int, desc: str, quiet: bool = False, unit: str = "step"):
 
 
 def _default(obj):
-    if isinstance(obj, np.integer):
-        return int(obj)
-    if isinstance(obj, np.floating):
-        return float(obj)
-    if isinstance(obj, np.bool_):
-        return bool(obj)
-    if isinstance(obj, np.ndarray):
-        return obj.tolist()
+    # numpy scalars and arrays (their .tolist() gives Python numbers and lists), without
+    # importing numpy here: the CLI's entry point imports this module on every run
+    tolist = getattr(obj, "tolist", None)
+    if callable(tolist):
+        return tolist()
     raise TypeError(f"not JSON serialisable: {type(obj).__name__}")
 
 

@@ -29,15 +29,15 @@ from pathlib import Path
 
 from IPython.display import Image, display
 
-from goalkit.demo import make_demo
+import goalkit
 
 work = Path(tempfile.mkdtemp(prefix="goalkit-walkthrough-"))
-demo = make_demo(work, episodes=200, seed=0)
+demo = goalkit.make_demo(work, episodes=200, seed=0)
 recipe_path = Path(demo["recipe"])
 print(json.dumps(demo, indent=1))
 
 
-def goalkit(*args):
+def command(*args):
     \"\"\"Run a goalkit command in a subprocess, print what it says, return the result.\"\"\"
     res = subprocess.run([sys.executable, "-m", "goalkit.cli", *map(str, args)],
                          capture_output=True, text=True)
@@ -47,7 +47,7 @@ def goalkit(*args):
 
 `goalkit scan` reads the logs chunk by chunk with the layout file and reports what it found:
 keys, episode lengths, the range of every observation dimension, success by task."""),
-    ("code", """res = goalkit("scan", demo["logs"], "--layout", demo["layout"])
+    ("code", """res = command("scan", demo["logs"], "--layout", demo["layout"])
 assert res.returncode == 0"""),
     ("md", """## 2. Tune the threshold
 
@@ -57,22 +57,18 @@ good threshold? First, **without labels**: goalkit describes how far goals move 
 and after `h` steps, how close other episodes come, and which share of each strategy's
 rows a threshold would reward. This puts the threshold in proportion but cannot say which
 value is right."""),
-    ("code", """from goalkit.pipeline.recipe import load_recipe
-from goalkit.tune.report import render
-from goalkit.tune.session import tune_recipe
-
-recipe = load_recipe(recipe_path)
-plain = tune_recipe(recipe)
-print(render(plain.as_dict()))
+    ("code", """recipe = goalkit.load_recipe(recipe_path)
+plain = goalkit.tune(recipe)
+print(plain.render())
 plots = plain.write_plots(work / "plots-no-labels")
 for name in ("goal-step-displacement.png", "goal-rewarded-fraction.png"):
     display(Image(filename=str(work / "plots-no-labels" / name)))"""),
     ("md", """Now **with labels**: each logged transition is a pair (reached goal, the task's goal)
 labelled by the log's success flag. We let two distances compete; every distinct distance is
 a candidate threshold, `max-f1` picks one, and a bootstrap over episodes gives its interval."""),
-    ("code", """tuned = tune_recipe(recipe, from_success=True, distances=["euclidean", "l1"], n_resamples=200)
+    ("code", """tuned = goalkit.tune(recipe, from_success=True, distances=["euclidean", "l1"], n_resamples=200)
 report = tuned.as_dict()
-print(render(report))
+print(tuned.render())
 tuned.write_plots(work / "plots")
 prefix = "" if len(tuned.candidates) == 1 else f"{tuned.recipe_distance()}-"
 for name in ("threshold-roc.png", "threshold-f1.png"):
@@ -86,34 +82,30 @@ the whole flow; with real labels (`--labels pairs.csv`) the same steps apply."""
     ("md", """Write a copy of the recipe with the chosen threshold (and distance, if the other one
 won). Only those values change; the comments stay. The same from the command line:
 `goalkit tune RECIPE --from-success --write-recipe tuned.toml`."""),
-    ("code", """from goalkit.tune.recipe_edit import write_tuned_recipe
-
-tuned_path = work / "gantry-recipe-tuned.toml"
-edit = write_tuned_recipe(recipe, tuned_path, threshold=tuned.recipe_threshold(),
+    ("code", """tuned_path = work / "gantry-recipe-tuned.toml"
+edit = goalkit.write_tuned_recipe(recipe, tuned_path, threshold=tuned.recipe_threshold(),
                           distance=tuned.recipe_distance(), note="goalkit tune: max-f1 on success flags")
 print("; ".join(edit.changes))
 text = tuned_path.read_text()
 print(text[text.index("[reward]"):text.index("[split]")])
-assert load_recipe(tuned_path).reward.threshold == tuned.recipe_threshold()"""),
+assert goalkit.load_recipe(tuned_path).reward.threshold == tuned.recipe_threshold()"""),
     ("md", """## 3. Build and verify
 
 `goalkit build` relabels every transition with the recipe's mixture of strategies and scores
 each (transition, goal) row with the tuned rule; `goalkit verify` re-derives every row from the
 logs and checks the stored checksums."""),
     ("code", """dataset = work / "gantry-goals-tuned.h5"
-res = goalkit("build", tuned_path, "--out", dataset)
+res = command("build", tuned_path, "--out", dataset)
 assert res.returncode == 0
-res = goalkit("verify", dataset)
+res = command("verify", dataset)
 assert res.returncode == 0, "verify found a problem\""""),
     ("md", """## 4. Read batches
 
-A built set is one HDF5 file; `GoalSet.batches` yields dictionaries of numpy arrays, shuffled
+A built set is one HDF5 file; `goalkit.open_set(path).batches` yields dictionaries of numpy arrays, shuffled
 in bounded memory when asked."""),
     ("code", """import numpy as np
 
-from goalkit.write.reader import GoalSet
-
-with GoalSet(dataset) as gs:
+with goalkit.open_set(dataset) as gs:
     print("rows:", gs.rows("train"), "train,", gs.rows("validation"), "validation")
     batch = next(gs.batches("train", batch_size=256, shuffle=True, seed=1))
     for key in ("observation", "action", "goal", "reward", "strategy"):

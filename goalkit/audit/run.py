@@ -16,7 +16,11 @@ from goalkit.audit.rowrules import (EPISODE, FUTURE, GEOMETRIC, NEAR_MISS, NEIGH
                                     address_rules, reward_rules)
 from goalkit.audit.stattests import (FINE_BINS, binom_check, count_bound_check, grid_chi2_check, holm,
                                      share_power, uniform_chi2_check)
+from goalkit.config import parse_toml
 from goalkit.errors import DatasetError, GoalkitError
+from goalkit.logs import open_logs
+from goalkit.logs.layout import parse_layout
+from goalkit.pipeline.goal import make_goal_map
 
 #: Family error of the statistical checks: a correct set fails any of them with at most this chance.
 ALPHA = 1e-6
@@ -74,11 +78,6 @@ class _Logs:
     """The set's logs reopened with its stored layout, and its goal map."""
 
     def __init__(self, prov: dict, rc, path):
-        from goalkit.config import parse_toml
-        from goalkit.logs import open_logs
-        from goalkit.logs.layout import parse_layout
-        from goalkit.pipeline.goal import make_goal_map
-
         layout = None
         if prov.get("layout_text"):
             layout = parse_layout(parse_toml(prov["layout_text"], f"{path}:layout", DatasetError), f"{path}:layout")

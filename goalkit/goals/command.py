@@ -5,15 +5,19 @@ from __future__ import annotations
 import click
 
 from goalkit.cli_support import echo_json, on_interrupt, progress, quiet_option, user_errors
+from goalkit.errors import EmbeddingError
+from goalkit.goals.embedfile import is_embedding_file
+from goalkit.goals.fitlogs import fit_on_logs, precomputed_on_logs
+from goalkit.goals.linear import PCA, Raw, Standardised
+from goalkit.goals.precomputed import load_values
+from goalkit.goals.sfa import SFA
+from goalkit.logs import open_logs
+from goalkit.outputs import check_no_overlap, refuse_existing
 
 METHOD_NAMES = ("raw", "standardised", "pca", "sfa", "precomputed")
 
 
 def _make(method: str, dims, degree: int, whiten: bool):
-    from goalkit.errors import EmbeddingError
-    from goalkit.goals.linear import PCA, Raw, Standardised
-    from goalkit.goals.sfa import SFA
-
     if dims is not None and method not in ("pca", "sfa"):
         raise EmbeddingError(f"--dims applies to pca and sfa, not {method}", key="--dims")
     if whiten and method != "pca":
@@ -90,12 +94,6 @@ def embed(logs, layout, method, dims, input_, fields, degree, whiten, block, val
     """
     import numpy as np
 
-    from goalkit.errors import EmbeddingError
-    from goalkit.goals.embedfile import is_embedding_file
-    from goalkit.goals.fitlogs import fit_on_logs, precomputed_on_logs
-    from goalkit.logs import open_logs
-    from goalkit.outputs import check_no_overlap, refuse_existing
-
     # before any work: never over an input, never over a file that is not a goalkit embedding
     check_no_overlap([("logs", logs), ("layout", layout), ("values", values)], [("--output", output)])
     refuse_existing(output, replace=replace, ours=is_embedding_file, what="embedding file")
@@ -120,8 +118,6 @@ def embed(logs, layout, method, dims, input_, fields, degree, whiten, block, val
         raise EmbeddingError(f"goal field '{unknown[0]}' is not an observation field of the logs; fields are: "
                              f"{', '.join(source.fields) or '(none: the layout names no fields)'}", key="--fields")
     if method == "precomputed":
-        from goalkit.goals.precomputed import load_values
-
         gm = precomputed_on_logs(source, load_values(values), file=values)
     else:
         embedding = _make(method, dims, degree, whiten)

@@ -28,8 +28,10 @@ from pathlib import Path
 
 import numpy as np
 
-from goalkit.errors import EmbeddingError
+from goalkit.errors import EmbeddingError, LogError
 from goalkit.goals.base import KINDS, Embedding
+from goalkit.logs import limits
+from goalkit.logs.npzfile import NpzArrays
 from goalkit.outputs import output_file
 
 FORMAT = "goalkit-embedding"
@@ -155,10 +157,6 @@ def load_embedding_file(path) -> tuple[Embedding, dict]:
         The file is missing, not an ``.npz`` archive, holds pickled objects, is not a goalkit
         embedding, has an unknown kind or version, or inconsistent arrays (naming the key).
     """
-    from goalkit.errors import LogError
-    from goalkit.logs import limits
-    from goalkit.logs.npzfile import NpzArrays
-
     file = str(path)
     if not os.path.lexists(file):
         raise EmbeddingError("expected an embedding file (.npz), it does not exist", file=file)

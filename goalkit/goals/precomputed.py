@@ -7,6 +7,7 @@ import numpy as np
 from goalkit.errors import EmbeddingError, LogError
 from goalkit.goals.base import Embedding, register
 from goalkit.goals.checks import check_features, check_offsets
+from goalkit.logs import limits
 
 
 @register
@@ -135,8 +136,6 @@ def load_values(path) -> np.ndarray:
     EmbeddingError
         Naming the file and what was expected.
     """
-    from goalkit.logs import limits
-
     path = str(path)
     size = limits.regular_file(path, what="a .npy array", error=EmbeddingError)
     try:

@@ -1,5 +1,6 @@
 """Reading task logs: layout files, readers for each storage shape, the EpisodeSet."""
 
+from goalkit.logs.detect import propose_layout
 from goalkit.logs.episodes import EpisodeSet, LogSource, iter_chunks
 from goalkit.logs.layout import Layout, layout_to_toml, load_layout, parse_layout
 from goalkit.logs.opener import open_logs
@@ -7,10 +8,3 @@ from goalkit.logs.opener import open_logs
 __all__ = ["EpisodeSet", "LogSource", "iter_chunks", "Layout", "layout_to_toml", "load_layout",
            "parse_layout", "open_logs", "propose_layout"]
 
-
-def __getattr__(name):
-    if name == "propose_layout":
-        from goalkit.logs.detect import propose_layout
-
-        return propose_layout
-    raise AttributeError(name)

@@ -32,6 +32,7 @@ from goalkit.config import closest, load_toml
 from goalkit.errors import GoalkitError, LayoutError, LogError
 from goalkit.logs import align as al
 from goalkit.logs.bagfast import fixed_layout_values
+from goalkit.logs.bagimage import decode_image
 from goalkit.logs.bagindex import record_times, window_reader
 from goalkit.logs.naming import natural_sorted
 from goalkit.logs.recordspec import split_ref
@@ -578,8 +579,6 @@ class BagSource(BaseSource):
         return out
 
     def _frames(self, slot, st, bag, e, t0):
-        from goalkit.logs.bagimage import decode_image
-
         t, msgs = slot
         rule = self.spec.rule(self.frame_topic)
         idx = al.latest_index(t, st) if rule == "latest" else al.nearest_index(t, st)

@@ -5,8 +5,15 @@ from __future__ import annotations
 import click
 
 from goalkit.cli_support import echo_json, progress, quiet_option, user_errors
-from goalkit.errors import LogError
+from goalkit.errors import LayoutError, LogError
 from goalkit.logs.bagfile import is_bag_path
+from goalkit.logs.bagscan import list_topics, propose_bag_layout, render_topics
+from goalkit.logs.detect import propose_layout
+from goalkit.logs.layout import is_layout_file, layout_to_toml, load_layout
+from goalkit.logs.opener import open_logs
+from goalkit.logs.scan import scan_logs
+from goalkit.logs.textable import text_table
+from goalkit.outputs import check_no_overlap, refuse_existing, write_text
 
 
 def _fmt(x) -> str:
@@ -29,16 +36,16 @@ def render_report(report: dict) -> list[str]:
            "", "keys read:"]
     rows = [(k["role"], k["key"], k["dtype"], "attribute" if k["shape"] == "attribute"
              else str(tuple(k["shape"]))) for k in report["keys"]]
-    out += _table(("role", "key", "dtype", "stored shape"), rows)
+    out += text_table(("role", "key", "dtype", "stored shape"), rows)
     out += ["", "observation range:"]
-    out += _table(("dim", "field", "lowest", "highest"),
-                  [(d["dim"], d["field"] or "-", _fmt(d["min"]), _fmt(d["max"]))
-                   for d in report["observation_range"]])
+    out += text_table(("dim", "field", "lowest", "highest"),
+                      [(d["dim"], d["field"] or "-", _fmt(d["min"]), _fmt(d["max"]))
+                       for d in report["observation_range"]])
     if report["success_by_task"] is not None:
         out += ["", "success by task (an episode succeeds when its flag is ever true):"]
-        out += _table(("task", "episodes", "succeeded", "share"),
-                      [("all" if t["task"] is None else t["task"], t["episodes"], t["succeeded"],
-                        f"{t['rate']:.1%}") for t in report["success_by_task"]])
+        out += text_table(("task", "episodes", "succeeded", "share"),
+                          [("all" if t["task"] is None else t["task"], t["episodes"], t["succeeded"],
+                            f"{t['rate']:.1%}") for t in report["success_by_task"]])
     if report["rewards"] is not None:
         r = report["rewards"]
         out += ["", f"rewards:      lowest {_fmt(r['min'])}, highest {_fmt(r['max'])}, "
@@ -52,12 +59,6 @@ def render_report(report: dict) -> list[str]:
         if len(report["skipped"]) > 20:
             out.append(f"  ... and {len(report['skipped']) - 20} more (see --json)")
     return out
-
-
-def _table(header, rows) -> list[str]:
-    cells = [tuple(str(c) for c in header)] + [tuple(str(c) for c in r) for r in rows]
-    widths = [max(len(r[i]) for r in cells) for i in range(len(header))]
-    return ["  " + "  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in cells]
 
 
 @click.command("scan", context_settings={"show_default": True})
@@ -84,35 +85,22 @@ def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, qui
     table (with --layout), or a ROS bag (ROS 1 .bag, ROS 2 bag directory) or a folder of bags:
     for bags the topics are listed and a layout is proposed from their message types.
     """
-    from goalkit.logs.layout import is_layout_file, layout_to_toml, load_layout
-    from goalkit.logs.opener import open_logs
-    from goalkit.logs.scan import scan_logs
-    from goalkit.outputs import check_no_overlap, refuse_existing, write_text
-
     if write_layout is not None:   # before any work: never over an input, never over a foreign file
         check_no_overlap([("logs", logs), ("layout", layout_file)], [("--write-layout", write_layout)])
         refuse_existing(write_layout, replace=replace, ours=is_layout_file, what="layout file")
     listing = None
     if is_bag_path(logs):
-        from goalkit.logs.bagscan import list_topics
-
         listing = list_topics(logs)
     if layout_file is not None:
         layout = load_layout(layout_file)
         proposed = False
     elif str(logs).lower().endswith(".parquet"):
-        from goalkit.errors import LayoutError
-
         raise LayoutError("Parquet step tables need a layout with shape = \"table\" (--layout); "
                           "see docs/layout.md", file=logs)
     elif listing is not None:
-        from goalkit.logs.bagscan import propose_bag_layout
-
         layout = propose_bag_layout(listing)
         proposed = True
     else:
-        from goalkit.logs.detect import propose_layout
-
         layout = propose_layout(logs)
         proposed = True
     try:
@@ -143,8 +131,6 @@ def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, qui
     if quiet:
         return
     if listing is not None:
-        from goalkit.logs.bagscan import render_topics
-
         for line in render_topics(listing):
             click.echo(line)
     for line in render_report(report):

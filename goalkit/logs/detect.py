@@ -16,8 +16,13 @@ import os
 import numpy as np
 
 from goalkit.errors import LayoutError, LogError
+from goalkit.logs.access import H5Access, NpzAccess, guard, open_h5
+from goalkit.logs.flat import is_npz
+from goalkit.logs.grouped import linked, match_groups
 from goalkit.logs.layout import Layout, parse_layout
+from goalkit.logs.limits import regular_file
 from goalkit.logs.naming import natural_sorted
+from goalkit.logs.npzfile import NpzArrays
 
 #: Role -> names looked for, best first (all compared in lower case).
 ROLE_NAMES = {
@@ -123,27 +128,20 @@ def propose_layout(path) -> Layout:
     path = str(path)
     if os.path.isdir(path):
         return _per_file(path)
-    from goalkit.logs.flat import is_npz
-    from goalkit.logs.limits import regular_file
 
     regular_file(path, what="an HDF5 file, an .npz file or a directory of .npz files")
 
     if is_npz(path):
-        from goalkit.logs.npzfile import NpzArrays
-
         return _flat(path, NpzArrays(path).keys(), "in the .npz")
     return _hdf5(path)
 
 
 def _per_file(path) -> Layout:
-    from goalkit.logs.npzfile import NpzArrays
-
     names = [n for n in os.listdir(path) if fnmatch.fnmatchcase(n, "*.npz")]
     if not names:
         raise LayoutError(f"could not decide the shape: the directory holds no .npz files (found: "
                           f"{_what_found(os.listdir(path))}); expected per-episode .npz files",
                           file=path, key="file_pattern")
-    from goalkit.logs.access import NpzAccess
 
     first = os.path.join(path, natural_sorted(names)[0])
     acc = NpzAccess(NpzArrays(first))
@@ -177,9 +175,6 @@ def _flat(path, arrays, where, prefix="") -> Layout:
 def _hdf5(path) -> Layout:
     import h5py
 
-    from goalkit.logs.access import guard, open_h5
-    from goalkit.logs.grouped import match_groups
-
     with open_h5(path) as h5, guard(path, what="cannot read the log"):
         root_arrays = _members(h5, path, h5py.Dataset)
         if _pick(root_arrays, ROLE_NAMES["action"]) is not None:
@@ -210,8 +205,6 @@ def _hdf5(path) -> Layout:
             names = natural_sorted(_members(og, path, h5py.Dataset))
             fields = {n: f"{roles['observation_group']}/{n}" for n in names}
         if fields is None and "observation" not in roles and "action" in roles:
-            from goalkit.logs.access import H5Access
-
             fields = _state_fields(H5Access(g, path), roles)
         if "task" not in roles:
             attr = _pick(list(g.attrs.keys()), ROLE_NAMES["task"])
@@ -227,16 +220,12 @@ def _hdf5(path) -> Layout:
 def _members(group, file, kind) -> list[str]:
     """Names in ``group`` of objects of ``kind`` (h5py.Dataset or h5py.Group); links are looked
     at first (an external link or a soft link that does not resolve is refused by name)."""
-    from goalkit.logs.grouped import linked
-
     return [n for n in group.keys() if isinstance(linked(group, n, file), kind)]
 
 
 def _episode_groups(h5, max_depth: int = 4) -> list[str]:
     """Paths of groups directly holding an action-like dataset (searched to ``max_depth``)."""
     import h5py
-
-    from goalkit.logs.grouped import linked
 
     found, level = [], [("", h5)]
     for _ in range(max_depth):

@@ -12,6 +12,9 @@ from typing import Mapping
 
 from goalkit.config import check_keys, load_toml
 from goalkit.errors import LayoutError
+from goalkit.logs import recordspec
+from goalkit.logs.recordspec import spec_to_toml
+from goalkit.outputs import small_toml
 
 #: The storage shapes a layout can describe.
 SHAPES = ("grouped", "flat", "per-file", "bag", "table")
@@ -216,8 +219,6 @@ def parse_layout(doc: Mapping, file="<layout>") -> Layout:
             raise LayoutError(f"expected a file-name glob without '/', got {file_pattern!r}",
                               file=file, key="file_pattern")
     elif shape in ("bag", "table"):
-        from goalkit.logs import recordspec
-
         parse = recordspec.parse_bag if shape == "bag" else recordspec.parse_table
         if shape == "table" and "table" not in doc:
             raise LayoutError("missing [table]; expected episode_column = \"...\"", file=file, key="table")
@@ -286,8 +287,6 @@ def layout_to_toml(layout: Layout) -> str:
     if layout.boundaries is not None:
         lines += ["", "[boundaries]", f"{layout.boundaries.kind} = {_tstr(layout.boundaries.key)}"]
     if layout.record is not None:
-        from goalkit.logs.recordspec import spec_to_toml
-
         lines += spec_to_toml(layout.record)
     return "\n".join(lines) + "\n"
 
@@ -298,7 +297,5 @@ def is_layout_file(path) -> bool:
     The test that lets ``--replace`` replace an existing layout file (``scan --write-layout``,
     ``demo``); anything else at the path is never replaced.
     """
-    from goalkit.outputs import small_toml
-
     doc = small_toml(path)
     return doc is not None and doc.get("shape") in SHAPES and set(doc) <= set(TOP_KEYS)

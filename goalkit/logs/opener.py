@@ -6,7 +6,14 @@ from collections.abc import Mapping
 from pathlib import Path
 
 from goalkit.errors import LayoutError
+from goalkit.logs.bagfile import BagSource, is_bag_path
+from goalkit.logs.bagscan import list_topics, propose_bag_layout
+from goalkit.logs.detect import propose_layout
+from goalkit.logs.flat import FlatSource
+from goalkit.logs.grouped import GroupedSource
 from goalkit.logs.layout import Layout, load_layout, parse_layout
+from goalkit.logs.perfile import PerFileSource
+from goalkit.logs.steptable import TableSource
 
 
 def open_logs(path, layout=None, skip_bad_episodes: bool = False, *, advance=None):
@@ -43,18 +50,9 @@ def open_logs(path, layout=None, skip_bad_episodes: bool = False, *, advance=Non
     >>> src = open_logs("gantry.h5", "layout.toml")          # doctest: +SKIP
     >>> chunk = src.read(0, 10)                               # doctest: +SKIP
     """
-    from goalkit.logs.flat import FlatSource
-    from goalkit.logs.grouped import GroupedSource
-    from goalkit.logs.perfile import PerFileSource
-
     proposed = False
     if layout is None:
-        from goalkit.logs.bagfile import is_bag_path
-        from goalkit.logs.detect import propose_layout
-
         if is_bag_path(path):
-            from goalkit.logs.bagscan import list_topics, propose_bag_layout
-
             layout = propose_bag_layout(list_topics(path))
         else:
             layout = propose_layout(path)
@@ -65,12 +63,8 @@ def open_logs(path, layout=None, skip_bad_episodes: bool = False, *, advance=Non
         layout = parse_layout(layout)
     elif not isinstance(layout, Layout):
         raise LayoutError(f"expected a Layout, a layout file or a table, got {type(layout).__name__}")
-    if layout.shape == "bag":
-        from goalkit.logs.bagfile import BagSource as reader
-    elif layout.shape == "table":
-        from goalkit.logs.steptable import TableSource as reader
-    else:
-        reader = {"grouped": GroupedSource, "flat": FlatSource, "per-file": PerFileSource}[layout.shape]
+    reader = {"grouped": GroupedSource, "flat": FlatSource, "per-file": PerFileSource, "bag": BagSource,
+              "table": TableSource}[layout.shape]
     source = reader(path, layout, skip_bad_episodes=skip_bad_episodes, advance=advance)
     if proposed:
         source.notes.insert(0, "no layout given: read with a proposed layout")

@@ -24,6 +24,9 @@ OUTPUT_KEYS = ("path", "mode", "compression", "chunk_rows")
 GOAL_DTYPES = ("float32", "float64")
 MODES = ("materialised", "indexed")
 COMPRESSIONS = ("gzip", "lzf", "none")
+#: Every key whose value is a path relative to the recipe's folder (a copy of the recipe
+#: written to another folder rewrites exactly these; see goalkit.tune.recipe_edit).
+PATH_KEYS = ("logs.path", "logs.layout", "goal.embedding", "relabel.library", "output.path")
 
 
 @dataclass(frozen=True)

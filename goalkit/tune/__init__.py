@@ -11,3 +11,23 @@ Modules: :mod:`~goalkit.tune.metrics` (sweep, ROC / PR, choosers),
 (its terminal table), :mod:`~goalkit.tune.recipe_edit` (the tuned copy of a recipe) and
 :mod:`~goalkit.tune.command` (the command).
 """
+
+import sys
+import types
+
+
+class _TunePackage(types.ModuleType):
+    """This package, callable as :func:`goalkit.tune` (see :func:`goalkit.api.tune`).
+
+    ``goalkit.tune`` names both the public function and this package (Python binds a
+    subpackage as an attribute of its parent), so the package calls the function.
+    """
+
+    def __call__(self, recipe, **options):
+        # imported here: goalkit.api imports goalkit.tune.session, which needs this package first
+        from goalkit.api import tune
+
+        return tune(recipe, **options)
+
+
+sys.modules[__name__].__class__ = _TunePackage

@@ -5,7 +5,14 @@ from __future__ import annotations
 import click
 
 from goalkit.cli_support import ChunkProgress, echo_json, on_interrupt, quiet_option, user_errors, warn
-from goalkit.tune.session import CHUNK_TRANSITIONS, MAX_TRANSITIONS
+from goalkit.outputs import check_no_overlap, refuse_existing
+from goalkit.pipeline.recipe import is_recipe_file, load_recipe
+from goalkit.tune.errors import TuningError
+from goalkit.tune.plots import is_png, plot_paths
+from goalkit.tune.recipe_edit import write_tuned_recipe
+from goalkit.tune.report import render
+from goalkit.tune.session import (CHUNK_TRANSITIONS, MAX_TRANSITIONS, check_distances, check_options,
+                                  tune_recipe)
 
 
 @click.command(context_settings={"show_default": True})
@@ -46,11 +53,6 @@ def tune(recipe, labels, from_success, distances, chooser, target, resamples, pl
     described (motion per step and after h steps, distance to other episodes, rewarded
     share per strategy), with a rule-of-thumb range. Logs are read a chunk at a time.
     """
-    from goalkit.pipeline.recipe import load_recipe
-    from goalkit.tune.errors import TuningError
-    from goalkit.tune.report import render
-    from goalkit.tune.session import check_options, tune_recipe
-
     check_options(labels=labels, from_success=from_success, chooser=chooser, target=target,
                   n_resamples=resamples, max_transitions=max_transitions)
     if write_recipe is not None and labels is None and not from_success:
@@ -70,8 +72,6 @@ def tune(recipe, labels, from_success, distances, chooser, target, resamples, pl
     out["plots"] = [str(p) for p in result.write_plots(plots, replace=replace)] if plots else []
     out["written_recipe"] = None
     if write_recipe is not None:
-        from goalkit.tune.recipe_edit import write_tuned_recipe
-
         ch = out["chosen"]
         note = (f"goalkit tune: {ch['chooser']} on {out['sample']['episodes']} episodes "
                 f"({'success flags' if out['mode'] == 'success-flags' else 'labelled pairs'}); "
@@ -98,11 +98,6 @@ def tune(recipe, labels, from_success, distances, chooser, target, resamples, pl
 
 def _check_outputs(parsed, *, labels, from_success, distances, plots, write_recipe, replace) -> None:
     """Before any work: no output over an input, no existing output without --replace."""
-    from goalkit.outputs import check_no_overlap, refuse_existing
-    from goalkit.pipeline.recipe import is_recipe_file
-    from goalkit.tune.plots import is_png, plot_paths
-    from goalkit.tune.session import check_distances
-
     names = check_distances(distances) or [parsed.reward.distance_name]
     pngs = plot_paths(plots, names, labelled=labels is not None or from_success) if plots else []
     outputs = [("--write-recipe", write_recipe)] + [("--plots", p) for p in pngs]

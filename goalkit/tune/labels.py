@@ -34,7 +34,7 @@ from typing import Sequence
 
 import numpy as np
 
-from goalkit.logs.episodes import EpisodeSet
+from goalkit.logs.episodes import EpisodeSet, iter_chunks
 from goalkit.tune.errors import LabelError
 
 #: Array keys of a labelled-pairs .npz file.
@@ -290,8 +290,6 @@ def pairs_from_logs(source, goal_map, *, max_transitions: int = 1_000_000, progr
 
     ``progress``, if given, is called with the number of transitions of each chunk read.
     """
-    from goalkit.logs.episodes import iter_chunks
-
     parts = []
     for chunk in iter_chunks(source, max_transitions):  # a loop over chunks
         parts.append(pairs_from_success(chunk, goal_map))

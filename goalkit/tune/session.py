@@ -37,12 +37,17 @@ import numpy as np
 
 from goalkit.config import closest
 from goalkit.logs.episodes import chunk_bounds
+from goalkit.pipeline.chunk import relabel_chunk
+from goalkit.pipeline.plan import make_plan, open_source, strategy_names
+from goalkit.pipeline.summary import HIGH_REACHED, LOW_REACHED
 from goalkit.reward import DISTANCES, RewardRule, within
 from goalkit.tune.box import suggest_box
 from goalkit.tune.diagnostics import diagnose, rewarded_fraction, threshold_warnings
 from goalkit.tune.errors import LabelError, TuningError
 from goalkit.tune.labels import LabelledPairs, concat_pairs, load_labelled_pairs, pairs_from_success
 from goalkit.tune.metrics import CHOOSERS, check_chooser
+from goalkit.tune.plots import plot_diagnostics, plot_labelled
+from goalkit.tune.report import render as render_report
 from goalkit.tune.sample import SampledSource, concat_episodes, sample_episodes
 from goalkit.tune.tuner import ThresholdTuner
 
@@ -110,6 +115,10 @@ class TuneResult:
         """The winning distance name (None without labels)."""
         return None if self.winner is None else self.winner.distance
 
+    def render(self) -> str:
+        """The terminal table ``goalkit tune`` prints for this result."""
+        return render_report(self.as_dict())
+
     def as_dict(self) -> dict:
         """JSON-able summary (what ``goalkit tune --json`` prints)."""
         cands = []
@@ -153,8 +162,6 @@ class TuneResult:
 
         Existing PNG files of the same names are replaced only with ``replace``.
         """
-        from goalkit.tune.plots import plot_diagnostics, plot_labelled
-
         written: list[Path] = []
         ok = [c for c in self.candidates if c.tuner is not None]
         for c in ok:
@@ -231,8 +238,6 @@ def _cast(x, dtype) -> np.ndarray:
 
 def _chunk_rows(plan, chunk, gdtype):
     """(achieved, goal, strategy) of every goal row the build makes for ``chunk``."""
-    from goalkit.pipeline.chunk import relabel_chunk
-
     rows = relabel_chunk(plan, chunk)
     phi = _cast(plan.goal_map(chunk, np.arange(chunk.observations.shape[0])), gdtype)
     out = []
@@ -321,8 +326,6 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
     GoalkitError
         (LabelError, TuningError, RecipeError, LogError) on bad input, naming file and key.
     """
-    from goalkit.pipeline.plan import make_plan, open_source, strategy_names
-
     check_options(labels=labels, from_success=from_success, chooser=chooser, target=target,
                   n_resamples=n_resamples, max_transitions=max_transitions)
     names = check_distances(distances) or [recipe.reward.distance_name]
@@ -417,7 +420,6 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
     ref = max(points.values()) if points else 1.0
     top = max(2.0 * ref, float(np.quantile(d, 0.95)) if d.size else 1.0, 1e-12)
     curve = rewarded_fraction(achieved, goal, strategy, diag_rule, np.linspace(0.0, top, CURVE_POINTS))
-    from goalkit.pipeline.summary import HIGH_REACHED, LOW_REACHED
 
     for label, frac in rewarded_at["all"]["fraction"].items():
         if label in ("recipe", "suggested") and not LOW_REACHED <= frac <= HIGH_REACHED:

@@ -6,7 +6,9 @@ import sys
 
 import click
 
+from goalkit.audit import audit_set
 from goalkit.cli_support import EXIT_FOUND_WANTING, EXIT_OK, ChunkProgress, echo_json, quiet_option, user_errors
+from goalkit.write.verify import verify_set
 
 #: Quoted in the help of --sample; pinned by tests/audit/test_power.py against
 #: goalkit.audit.run.share_power_note() (100,000 rows, share 0.2, 25 checks, family error 1e-6).
@@ -39,7 +41,6 @@ def verify(dataset, max_failures, sample, as_json, quiet):
     """
     if sample is not None:
         _audit_only(dataset, sample, max_failures, as_json, quiet)
-    from goalkit.write.verify import verify_set
 
     with ChunkProgress("verify", quiet=quiet) as bar:
         report = verify_set(dataset, max_failures=max_failures, progress=bar)
@@ -69,8 +70,6 @@ def verify(dataset, max_failures, sample, as_json, quiet):
 
 
 def _audit_only(dataset, sample, max_failures, as_json, quiet):
-    from goalkit.audit import audit_set
-
     result = audit_set(dataset, sample=sample)
     failures = result.failures[:max_failures]
     if as_json:

@@ -1,0 +1,244 @@
+"""The functions behind goalkit's public API (``goalkit.build``, ``goalkit.verify``, ...).
+
+A thin facade over the engine and the commands' own functions: it takes a recipe or its path,
+and one ``runner`` object (:class:`InProcess`, :class:`LocalWorkers`, :class:`DaskCluster`)
+instead of the engine's separate ``workers`` / ``scheduler`` / ``client`` arguments. Import the
+names from :mod:`goalkit`, not from here: ``goalkit`` loads this module only when one of them
+is first used, so ``import goalkit`` stays fast.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+from typing import Any
+
+from goalkit.errors import GoalkitError
+from goalkit.logs.opener import open_logs
+from goalkit.logs.scan import scan_logs
+from goalkit.pipeline.build import BuildResult
+from goalkit.pipeline.build import build as _engine_build
+from goalkit.pipeline.recipe import Recipe, load_recipe
+from goalkit.tune.session import CHUNK_TRANSITIONS, MAX_TRANSITIONS, TuneResult, tune_recipe
+from goalkit.write.verify import VerifyReport, verify_set
+
+__all__ = ["InProcess", "LocalWorkers", "DaskCluster", "build", "verify", "scan", "tune"]
+
+
+@dataclass(frozen=True)
+class InProcess:
+    """Run a build in this process (threads); the default runner."""
+
+    def engine_arguments(self) -> dict:
+        """The keyword arguments of the engine's build for this runner."""
+        return {}
+
+
+@dataclass(frozen=True)
+class LocalWorkers:
+    """Run a build on ``n`` local worker processes, each chunk a resumable shard.
+
+    Parameters
+    ----------
+    n : int
+        Number of worker processes, at least 1.
+    """
+
+    n: int
+
+    def __post_init__(self):
+        if isinstance(self.n, bool) or not isinstance(self.n, int) or self.n < 1:
+            raise GoalkitError(f"expected a whole number of worker processes >= 1, got {self.n!r}",
+                               key="LocalWorkers.n")
+
+    def engine_arguments(self) -> dict:
+        """The keyword arguments of the engine's build for this runner."""
+        return {"workers": self.n}
+
+
+@dataclass(frozen=True)
+class DaskCluster:
+    """Run a build's shards on a Dask cluster (needs ``pip install 'goalkit[dask]'``).
+
+    Parameters
+    ----------
+    cluster : str or distributed.Client
+        The address of a running scheduler (``"tcp://head:8786"``), or an existing client
+        (used, not closed).
+    """
+
+    cluster: Any
+
+    def __post_init__(self):
+        if isinstance(self.cluster, str) and not self.cluster.strip():
+            raise GoalkitError("expected a Dask scheduler address or client, got an empty string",
+                               key="DaskCluster.cluster")
+
+    def engine_arguments(self) -> dict:
+        """The keyword arguments of the engine's build for this runner."""
+        if isinstance(self.cluster, str):
+            return {"scheduler": self.cluster}
+        return {"client": self.cluster}
+
+
+RUNNERS = (InProcess, LocalWorkers, DaskCluster)
+
+
+def _recipe(recipe) -> Recipe:
+    if isinstance(recipe, Recipe):
+        return recipe
+    if isinstance(recipe, (str, os.PathLike)):
+        return load_recipe(recipe)
+    raise GoalkitError(f"expected a Recipe or the path of a recipe file, got {type(recipe).__name__}",
+                       key="recipe")
+
+
+def build(recipe, *, runner=None, out=None, seed: int | None = None, max_rows_per_chunk: int | None = None,
+          progress=None, fresh: bool = False, replace: bool = False) -> BuildResult:
+    """Build the goal-conditioned set a recipe describes.
+
+    Parameters
+    ----------
+    recipe : Recipe, str or Path
+        A loaded recipe (:func:`goalkit.load_recipe`) or the path of a recipe file.
+    runner : InProcess, LocalWorkers or DaskCluster, optional
+        Where the chunks are relabelled: this process (default), ``LocalWorkers(n)`` local
+        worker processes, or ``DaskCluster(address_or_client)``. The file's bytes are the same
+        whichever runner builds it.
+    out : str or Path, optional
+        Write the set here instead of the recipe's ``[output] path``.
+    seed : int, optional
+        Use this seed instead of the recipe's.
+    max_rows_per_chunk : int, optional
+        Output rows per chunk; only memory and speed depend on it, never the bytes.
+    progress : callable, optional
+        Called as ``progress(transitions_done_in_chunk, total_transitions)`` after each chunk.
+    fresh : bool
+        Runners with shards: discard the shards of an interrupted run instead of resuming.
+    replace : bool
+        Replace an existing goalkit set at the output path (never any other file).
+
+    Returns
+    -------
+    BuildResult
+        ``path`` of the set and its ``summary``.
+
+    Raises
+    ------
+    GoalkitError
+        On a bad recipe, bad logs, an unknown runner, or an output that would touch an input or
+        exists without ``replace``.
+
+    Examples
+    --------
+    >>> import goalkit                                                  # doctest: +SKIP
+    >>> goalkit.build("gantry-recipe.toml", runner=goalkit.LocalWorkers(2))  # doctest: +SKIP
+    """
+    runner = InProcess() if runner is None else runner
+    if not isinstance(runner, RUNNERS):
+        raise GoalkitError(f"expected a runner (goalkit.InProcess(), goalkit.LocalWorkers(n) or "
+                           f"goalkit.DaskCluster(address_or_client)), got {type(runner).__name__}",
+                           key="runner")
+    parsed = _recipe(recipe)
+    if out is not None or seed is not None:
+        parsed = parsed.with_overrides(seed=seed, out=out)
+    return _engine_build(parsed, max_rows_per_chunk=max_rows_per_chunk, progress=progress, fresh=fresh,
+                         replace=replace, **runner.engine_arguments())
+
+
+def verify(path, *, max_failures: int = 20, progress=None, audit: bool = True) -> VerifyReport:
+    """Re-derive a built set from its logs and recipe and check every row and checksum.
+
+    Parameters
+    ----------
+    path : str or Path
+        The set (an HDF5 file written by :func:`build`).
+    max_failures : int
+        Stop collecting failure messages after this many.
+    progress : callable, optional
+        Called as ``progress(transitions_done_in_chunk, total_transitions)`` after each chunk.
+    audit : bool
+        Also run the statistical audit of the rows.
+
+    Returns
+    -------
+    VerifyReport
+        ``ok`` (True when consistent), ``failures`` (messages) and ``checked`` (what was checked).
+
+    Raises
+    ------
+    DatasetError
+        When the file cannot be read as a goalkit set.
+    """
+    return verify_set(path, max_failures=max_failures, progress=progress, audit=audit)
+
+
+def scan(logs, layout=None, *, skip_bad_episodes: bool = False, max_transitions: int = 200_000) -> dict:
+    """Read task logs once and report what is in them (what ``goalkit scan`` prints).
+
+    Parameters
+    ----------
+    logs : str or Path
+        An HDF5 file, ``.npz`` file, folder of per-episode files, bag or step table.
+    layout : Layout, str, Path or mapping, optional
+        The layout (a file, a parsed table or a :class:`Layout`); None proposes one.
+    skip_bad_episodes : bool
+        Skip episodes with per-episode problems instead of raising.
+    max_transitions : int
+        Transitions per chunk read.
+
+    Returns
+    -------
+    dict
+        ``episodes``, ``steps``, ``lengths``, ``keys``, ``observation_range``,
+        ``success_by_task``, ``rewards``, ``notes``, ``skipped`` and ``problems``.
+
+    Raises
+    ------
+    LogError, LayoutError
+        On unreadable logs or a layout that does not fit them.
+    """
+    source = open_logs(logs, layout, skip_bad_episodes=skip_bad_episodes)
+    return scan_logs(source, max_transitions=max_transitions)
+
+
+def tune(recipe, *, labels=None, from_success: bool = False, distances=(), chooser: str = "max-f1",
+         target: float | None = None, n_resamples: int = 1000, max_transitions: int = MAX_TRANSITIONS,
+         progress=None) -> TuneResult:
+    """Choose a recipe's goal-match threshold from labels, or describe its goal space without.
+
+    Parameters
+    ----------
+    recipe : Recipe, str or Path
+        A loaded recipe or the path of a recipe file.
+    labels : str or Path, optional
+        A labelled-pairs file (.npz or .csv: achieved, goal, reached, episode).
+    from_success : bool
+        Label each logged transition by its success flag against its task goal.
+    distances : sequence of str
+        Candidate distances (default: the recipe's).
+    chooser : {"max-f1", "target-precision", "youden"}
+        How the threshold is picked.
+    target : float, optional
+        Precision that ``target-precision`` must keep, in (0, 1].
+    n_resamples : int
+        Bootstrap resamples over episodes for the interval (0: none).
+    max_transitions : int
+        Read at most this many transitions (whole episodes, a fixed sample by the recipe's seed).
+    progress : callable, optional
+        Called as ``progress(transitions_done_in_chunk, total_transitions)``.
+
+    Returns
+    -------
+    TuneResult
+        ``recipe_threshold()``, ``recipe_distance()``, ``as_dict()``, ``render()`` and
+        ``write_plots(folder)``; :func:`goalkit.write_tuned_recipe` writes the tuned copy.
+
+    Raises
+    ------
+    GoalkitError
+        (LabelError, TuningError, RecipeError, LogError) on bad input, naming file and key.
+    """
+    return tune_recipe(_recipe(recipe), labels=labels, from_success=from_success, distances=distances,
+                       chooser=chooser, target=target, n_resamples=n_resamples,
+                       max_transitions=max_transitions, chunk_transitions=CHUNK_TRANSITIONS, progress=progress)
