@@ -8,6 +8,7 @@ import numpy as np
 from goalkit.errors import LayoutError
 from goalkit.logs.bagfile import bag_files, find_bags, open_reader
 from goalkit.logs.layout import parse_layout
+from goalkit.logs.texttable import text_table
 
 #: A gap is listed when it is longer than this many median periods of its topic.
 GAP_FACTOR = 5.0
@@ -142,11 +143,9 @@ def propose_bag_layout(listing: dict):
 
 def render_topics(listing: dict) -> list[str]:
     """The human-readable topic table."""
-    from goalkit.logs.command import _table
-
     rows = [(t["topic"], t["type"], t["count"], f"{t['rate_hz']:.1f}",
              "-" if t["first_s"] is None else f"{t['first_s']:.3f} .. {t['last_s']:.3f}",
              f"{t['longest_gap_s']:.3f}", t["gaps"]) for t in listing["topics"]]
     out = [f"bags:         {len(listing['bags'])}", "", "topics:"]
-    return out + _table(("topic", "type", "messages", "rate Hz", "time s", "longest gap s",
+    return out + text_table(("topic", "type", "messages", "rate Hz", "time s", "longest gap s",
                          f"gaps > {GAP_FACTOR:g}x period"), rows) + [""]

@@ -7,6 +7,7 @@ import click
 from goalkit.cli_support import echo_json, progress, quiet_option, user_errors
 from goalkit.errors import LogError
 from goalkit.logs.bagfile import is_bag_path
+from goalkit.logs.texttable import text_table
 
 
 def _fmt(x) -> str:
@@ -29,14 +30,14 @@ def render_report(report: dict) -> list[str]:
            "", "keys read:"]
     rows = [(k["role"], k["key"], k["dtype"], "attribute" if k["shape"] == "attribute"
              else str(tuple(k["shape"]))) for k in report["keys"]]
-    out += _table(("role", "key", "dtype", "stored shape"), rows)
+    out += text_table(("role", "key", "dtype", "stored shape"), rows)
     out += ["", "observation range:"]
-    out += _table(("dim", "field", "lowest", "highest"),
+    out += text_table(("dim", "field", "lowest", "highest"),
                   [(d["dim"], d["field"] or "-", _fmt(d["min"]), _fmt(d["max"]))
                    for d in report["observation_range"]])
     if report["success_by_task"] is not None:
         out += ["", "success by task (an episode succeeds when its flag is ever true):"]
-        out += _table(("task", "episodes", "succeeded", "share"),
+        out += text_table(("task", "episodes", "succeeded", "share"),
                       [("all" if t["task"] is None else t["task"], t["episodes"], t["succeeded"],
                         f"{t['rate']:.1%}") for t in report["success_by_task"]])
     if report["rewards"] is not None:
@@ -52,12 +53,6 @@ def render_report(report: dict) -> list[str]:
         if len(report["skipped"]) > 20:
             out.append(f"  ... and {len(report['skipped']) - 20} more (see --json)")
     return out
-
-
-def _table(header, rows) -> list[str]:
-    cells = [tuple(str(c) for c in header)] + [tuple(str(c) for c in r) for r in rows]
-    widths = [max(len(r[i]) for r in cells) for i in range(len(header))]
-    return ["  " + "  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in cells]
 
 
 @click.command("scan", context_settings={"show_default": True})
