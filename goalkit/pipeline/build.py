@@ -27,7 +27,6 @@ file's bytes are the same for every producer.
 
 from __future__ import annotations
 
-import gc
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
@@ -279,9 +278,7 @@ def run_build(recipe, producer, *, source=None, rows_per_chunk: int | None = Non
                 raise
         else:
             failed = None
-    if failed is not None:
-        # raised outside the handler, so no traceback keeps the failed HDF5 objects alive
-        gc.collect()
+    if failed is not None:  # raised outside the handler: one line, no chained traceback
         raise OutputWriteError(failed, file=out.path, advice=producer.resume_advice)
     producer.cleanup()
     return BuildResult(path=path, summary=result, shards=producer.info())

@@ -37,6 +37,7 @@ import numpy as np
 from goalkit.errors import GoalkitError
 from goalkit.outputs import open_no_follow, write_own_file
 from goalkit.pipeline.buildfolder import GOAL_TABLE_FILE, PAYLOAD_FILE
+from goalkit.pipeline.chunk import relabel_chunk
 from goalkit.pipeline.shards import write_shard
 
 #: Seconds between checks that every local worker process is still alive.
@@ -129,8 +130,6 @@ def run_shard(payload: Payload, spec, folder, build_key: str) -> dict:
     dict
         ``{"ok": True, "index", "rows", "sha256", "seconds"}`` or ``{"ok": False, "index", "error"}``.
     """
-    from goalkit.pipeline.chunk import relabel_chunk
-
     t0 = time.perf_counter()
     try:
         plan = _resolved(payload)
