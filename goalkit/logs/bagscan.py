@@ -8,7 +8,7 @@ import numpy as np
 from goalkit.errors import LayoutError
 from goalkit.logs.bagfile import bag_files, find_bags, open_reader
 from goalkit.logs.layout import parse_layout
-from goalkit.logs.textable import text_table
+from goalkit.logs.texttable import text_table
 
 #: A gap is listed when it is longer than this many median periods of its topic.
 GAP_FACTOR = 5.0

@@ -12,7 +12,7 @@ from goalkit.logs.detect import propose_layout
 from goalkit.logs.layout import is_layout_file, layout_to_toml, load_layout
 from goalkit.logs.opener import open_logs
 from goalkit.logs.scan import scan_logs
-from goalkit.logs.textable import text_table
+from goalkit.logs.texttable import text_table
 from goalkit.outputs import check_no_overlap, refuse_existing, write_text
 
 

@@ -1,10 +1,32 @@
-"""Single-process build: plan, stream chunks through the chunk task, write, summarise."""
+"""The build engine: one build, whichever producer computes its chunk rows.
+
+Every build runs the same steps, here:
+
+1. Check the outputs against the inputs (:func:`check_outputs`), before any work.
+2. Plan (:func:`~goalkit.pipeline.plan.make_plan`: open the logs, check the recipe, split, goal
+   table) and cut the kept episodes into ordered chunks
+   (:func:`~goalkit.pipeline.shards.plan_shards`).
+3. Read the build's inputs once (:class:`BuildInputs`: recipe text and seed, layout text, SHA-256
+   of every log, embedding and library file), on a side thread; they give both the shard key and
+   the provenance.
+4. A producer hands back each chunk's rows, strictly in chunk order; they go to one
+   :class:`~goalkit.write.writer.SetWriter` and one :class:`~goalkit.pipeline.summary.SummaryBuilder`.
+5. Close: summary, provenance and attributes (:func:`close_dataset`), then the writer's rename.
+
+Only the producer varies:
+
+- :class:`~goalkit.pipeline.inprocess.InProcessProducer`: threads in this process (the default);
+- :class:`~goalkit.pipeline.sharded.ShardProducer` with
+  :class:`~goalkit.pipeline.workers.LocalRunner` (``workers=N``) or
+  :class:`~goalkit.pipeline.dask_build.DaskRunner` (``scheduler=`` or ``client=``): resumable
+  shard files computed by worker processes.
+
+The writer's output does not depend on how the rows were chunked or who computed them, so the
+file's bytes are the same for every producer.
+"""
 
 from __future__ import annotations
 
-import sys
-from collections import deque
-from contextlib import contextmanager
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
@@ -12,20 +34,23 @@ from pathlib import Path
 import numpy as np
 
 from goalkit import __version__
-from goalkit.logs.episodes import chunk_bounds
-from goalkit.pipeline.chunk import relabel_chunk
+from goalkit.logs.layout import layout_to_toml
+from goalkit.outputs import check_no_overlap, refuse_existing
+from goalkit.pipeline.buildfolder import folder_of
+from goalkit.pipeline.dask_build import DaskRunner
+from goalkit.pipeline.inprocess import CHUNK_ROWS, InProcessProducer
 from goalkit.pipeline.plan import make_plan, split_rows, strategy_names
+from goalkit.pipeline.sharded import SHARD_ROWS, ShardProducer
+from goalkit.pipeline.shards import plan_shards
 from goalkit.pipeline.summary import SummaryBuilder
+from goalkit.pipeline.workers import LocalRunner
 from goalkit.relabel.attach import add_to_summary, search_provenance
+from goalkit.write.format import is_goal_set
 from goalkit.write.provenance import describe_files
-from goalkit.write.writer import SetWriter
+from goalkit.write.writer import OutputWriteError, SetWriter
 
-#: Default output rows per chunk of a build in one process (bounds the build's memory).
-CHUNK_ROWS = 65_536
-#: Default output rows per shard of a sharded build (each shard is a task and a file).
-SHARD_ROWS = 131_072
-#: Chunks relabelled ahead of the one being written.
-LOOKAHEAD = 2
+__all__ = ["CHUNK_ROWS", "SHARD_ROWS", "BuildInputs", "BuildResult", "build", "check_outputs",
+           "chunk_transitions", "close_dataset", "final_summary", "provenance", "read_inputs"]
 
 
 @dataclass(frozen=True)
@@ -47,42 +72,72 @@ class BuildResult:
     shards: dict | None = None
 
 
-def relabelled_chunks(plan, source, bounds, ahead: bool = True, summary=None):
-    """Yield ``(start, stop, ChunkRows)`` for each chunk of episodes, in order.
+@dataclass(frozen=True)
+class BuildInputs:
+    """Everything outside the plan that a build's rows depend on, read once.
 
-    The observation and action columns come as deferred gathers, for :class:`SetWriter` to
-    copy straight into its blocks (see :func:`~goalkit.pipeline.chunk.relabel_chunk`).
-
-    With ``ahead``, the next chunks are read (on one helper thread) and relabelled (on another)
-    while the caller writes the current one (numpy, hashing and HDF5 I/O release the GIL for
-    much of that work); the results, and so the output bytes, are the same either way. With ``summary`` (a
-    :class:`SummaryBuilder`), each chunk's rows are also counted into it, on the same thread
-    and in chunk order.
+    Attributes
+    ----------
+    recipe_text : str
+    seed : int
+        The effective seed (``--seed`` included).
+    layout_text : str
+        The layout file's text, or the detected layout as TOML ("" when there is neither).
+    log_files, embedding_files, library_files : list of dict
+        ``{"path", "bytes", "sha256"}`` of each file (:func:`goalkit.write.provenance.describe_files`);
+        ``library_files`` only when read for a shard key.
     """
-    def task(chunk):
-        rows = relabel_chunk(plan, chunk, defer_gathers=True)
-        if summary is not None:
-            for split, cols in rows.columns.items():
-                summary.add(split, cols, rows.keys[split])
-        return rows
 
-    if not ahead:
-        for a, b in bounds:
-            yield a, b, task(source.read(a, b))
-        return
-    # two stages on their own threads: reading chunk k + 1 overlaps relabelling chunk k
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-read") as reader, \
-            ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-chunk") as pool:
-        pending: deque = deque()
-        for a, b in bounds:
-            read = reader.submit(source.read, a, b)
-            pending.append((a, b, pool.submit(lambda read=read: task(read.result()))))
-            if len(pending) > LOOKAHEAD:
-                a0, b0, job = pending.popleft()
-                yield a0, b0, job.result()
-        while pending:
-            a0, b0, job = pending.popleft()
-            yield a0, b0, job.result()
+    recipe_text: str
+    seed: int
+    layout_text: str
+    log_files: list
+    embedding_files: list
+    library_files: list
+
+    def key_record(self) -> dict:
+        """The JSON-able record a shard build key is hashed from (with the partition added,
+        see :func:`goalkit.pipeline.buildfolder.build_key`)."""
+        return {
+            "goalkit_version": __version__,
+            "recipe_text": self.recipe_text,
+            "seed": self.seed,
+            "layout_text": self.layout_text,
+            "log_files": [[f["path"], f["bytes"], f["sha256"]] for f in self.log_files],
+            # a changed embedding or goal library invalidates shards
+            "embedding_files": [[f["path"], f["bytes"], f["sha256"]]
+                                for f in self.embedding_files + self.library_files],
+        }
+
+
+def read_inputs(plan, source, log_files=None, with_library: bool = True) -> BuildInputs:
+    """Read a build's inputs: layout text and the digests of its files.
+
+    Parameters
+    ----------
+    plan : BuildPlan
+    source : LogSource
+    log_files : list of dict, optional
+        The log files' description if already computed (else computed from ``source.files``).
+    with_library : bool
+        Also digest the recipe's goal library (a shard key needs it; the provenance does not).
+    """
+    recipe = plan.recipe
+    if recipe.layout_path is not None:
+        layout_text = Path(recipe.layout_path).read_text(encoding="utf-8")
+    elif getattr(source, "layout", None) is not None:
+        layout_text = layout_to_toml(source.layout)  # the detected layout, so verify reads the same way
+    else:
+        layout_text = ""
+    library = getattr(recipe.mixture, "library", None)
+    return BuildInputs(
+        recipe_text=recipe.text,
+        seed=recipe.seed,
+        layout_text=layout_text,
+        log_files=describe_files(list(source.files)) if log_files is None else log_files,
+        embedding_files=describe_files([recipe.goal.embedding]) if recipe.goal.embedding is not None else [],
+        library_files=describe_files([library]) if with_library and library is not None else [],
+    )
 
 
 def chunk_transitions(plan, rows_per_chunk: int = CHUNK_ROWS) -> int:
@@ -90,33 +145,23 @@ def chunk_transitions(plan, rows_per_chunk: int = CHUNK_ROWS) -> int:
     return max(1, rows_per_chunk // plan.recipe.mixture.goals_per_transition)
 
 
-def provenance(plan, source, log_files=None) -> dict:
+def provenance(plan, source, log_files=None, inputs: BuildInputs | None = None) -> dict:
     """The dataset's provenance record (what it was built from, and how).
 
-    ``log_files`` is the log files' description if already computed
-    (:func:`goalkit.write.provenance.describe_files` of ``source.files``).
+    ``inputs`` are the build's inputs if already read (else read here, with ``log_files`` as the
+    log files' description if already computed).
     """
     recipe = plan.recipe
-    files = list(source.files)
-    if recipe.layout_path is not None:
-        layout_text = Path(recipe.layout_path).read_text(encoding="utf-8")
-    elif getattr(source, "layout", None) is not None:
-        from goalkit.logs.layout import layout_to_toml
-
-        layout_text = layout_to_toml(source.layout)  # the detected layout, so verify reads the same way
-    else:
-        layout_text = ""
-    extra = []
-    if recipe.goal.embedding is not None:
-        extra = describe_files([recipe.goal.embedding])
+    if inputs is None:
+        inputs = read_inputs(plan, source, log_files=log_files, with_library=False)
     return {
         "goalkit_version": __version__,
         "recipe_file": str(Path(recipe.file).resolve()) if recipe.file else "",
         "logs_path": str(recipe.logs_path),
         "layout_path": str(recipe.layout_path) if recipe.layout_path else "",
-        "layout_text": layout_text,
-        "log_files": describe_files(files) if log_files is None else log_files,
-        "embedding_files": extra,
+        "layout_text": inputs.layout_text,
+        "log_files": inputs.log_files,
+        "embedding_files": inputs.embedding_files,
         "goal_map": plan.goal_map.describe(),
         "reward": recipe.reward.describe(),
         "relabel": recipe.mixture.describe(),
@@ -168,24 +213,75 @@ def build(recipe, *, source=None, max_rows_per_chunk: int | None = None, progres
     OutputError
         Before any work, when the output (or the build folder of a sharded build) is or touches
         an input, or exists and may not be replaced.
+    GoalkitError
+        Sharded builds: ShardError naming the shard and episodes when a task fails;
+        DatasetError when the build folder or the output cannot be written.
     """
     sharded = bool(workers) or scheduler is not None or client is not None
     check_outputs(recipe, sharded=sharded, replace=replace, source=source)
-    if sharded:
-        from goalkit.pipeline.sharded import build_sharded
+    if scheduler is not None or client is not None:
+        producer = ShardProducer(DaskRunner(address=scheduler, client=client), fresh=fresh)
+    elif workers:
+        producer = ShardProducer(LocalRunner(workers), fresh=fresh)
+    else:
+        producer = InProcessProducer()
+    return run_build(recipe, producer, source=source, rows_per_chunk=max_rows_per_chunk,
+                     progress=progress, replace=replace)
 
-        if scheduler is not None or client is not None:
-            from goalkit.pipeline.dask_build import DaskRunner
 
-            runner = DaskRunner(address=scheduler, client=client)
+def run_build(recipe, producer, *, source=None, rows_per_chunk: int | None = None, progress=None,
+              replace: bool = False) -> BuildResult:
+    """Run a build with ``producer`` (see the module's description; outputs already checked).
+
+    Parameters
+    ----------
+    recipe : Recipe
+    producer : InProcessProducer or ShardProducer
+    source, progress, replace
+        As for :func:`build`.
+    rows_per_chunk : int, optional
+        Output rows per chunk (default: the producer's ``rows_per_chunk``).
+
+    Returns
+    -------
+    BuildResult
+    """
+    plan, source = make_plan(recipe, source)
+    chunks = plan_shards(plan, chunk_transitions(plan, rows_per_chunk or producer.rows_per_chunk))
+    gpt = recipe.mixture.goals_per_transition
+    summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed)
+
+    def count(rows):
+        for split, cols in rows.columns.items():
+            summary.add(split, cols, rows.keys[split])
+
+    out = recipe.output
+    # the inputs (file checksums) are read on their own thread, alongside the build
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-inputs") as side:
+        inputs = side.submit(read_inputs, plan, source, with_library=producer.sharded)
+        try:
+            producer.open(plan, source, chunks, inputs)
+            with SetWriter(out.path, plan.columns, chunk_rows=out.chunk_rows, compression=out.compression,
+                           total_rows=split_rows(plan), replace=replace) as writer:
+                for spec, rows in producer.rows(count):
+                    for split, cols in rows.columns.items():
+                        writer.add(split, cols, rows.keys[split])
+                    writer.flush()
+                    if progress is not None:
+                        progress(spec.transitions, plan.total_transitions)
+                producer.finish()
+                path, result = close_dataset(writer, plan, source, summary, inputs=inputs.result())
+        except BaseException as exc:
+            producer.abandon()
+            failed = producer.write_failure(exc)
+            if failed is None:
+                raise
         else:
-            from goalkit.pipeline.workers import LocalRunner
-
-            runner = LocalRunner(workers)
-        return build_sharded(recipe, runner, source=source, rows_per_shard=max_rows_per_chunk or SHARD_ROWS,
-                             progress=progress, fresh=fresh, replace=replace)
-    with short_gil_switch():
-        return _build_here(recipe, source, max_rows_per_chunk or CHUNK_ROWS, progress, replace)
+            failed = None
+    if failed is not None:  # raised outside the handler: one line, no chained traceback
+        raise OutputWriteError(failed, file=out.path, advice=producer.resume_advice)
+    producer.cleanup()
+    return BuildResult(path=path, summary=result, shards=producer.info())
 
 
 def check_outputs(recipe, *, sharded: bool = False, replace: bool = False, source=None) -> None:
@@ -200,10 +296,6 @@ def check_outputs(recipe, *, sharded: bool = False, replace: bool = False, sourc
     OutputError
         One line naming the output and the input, or saying how to replace an existing output.
     """
-    from goalkit.outputs import check_no_overlap, refuse_existing
-    from goalkit.pipeline.buildfolder import folder_of
-    from goalkit.write.format import is_goal_set
-
     out = recipe.output.path
     inputs = list(recipe.inputs()) + [("log file", f) for f in getattr(source, "files", None) or []]
     outputs = [("output", out)] + ([("build folder", folder_of(out))] if sharded else [])
@@ -211,54 +303,8 @@ def check_outputs(recipe, *, sharded: bool = False, replace: bool = False, sourc
     refuse_existing(out, replace=replace, ours=is_goal_set, what="dataset")
 
 
-#: GIL switch interval (s) while a build runs its thread pipeline in this process.
-SWITCH_INTERVAL = 0.001
-
-
-@contextmanager
-def short_gil_switch(interval: float = SWITCH_INTERVAL):
-    """Shorten the interpreter's GIL switch interval for the duration of the block.
-
-    The build's stages hand the GIL to each other around every HDF5 write, read and hash;
-    with the default 5 ms interval a thread coming back from one waits behind another
-    thread's Python code, and the stages run in convoy. The previous interval is restored
-    afterwards. Only the timing of thread switches changes, never the output.
-    """
-    before = sys.getswitchinterval()
-    sys.setswitchinterval(min(before, interval))
-    try:
-        yield
-    finally:
-        sys.setswitchinterval(before)
-
-
-def _build_here(recipe, source, rows_per_chunk: int, progress, replace: bool = False) -> BuildResult:
-    """The single-process build (see :func:`build`)."""
-    plan, source = make_plan(recipe, source)
-    per_chunk = chunk_transitions(plan, rows_per_chunk)
-    gpt = recipe.mixture.goals_per_transition
-    summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed)
-    out = recipe.output
-    # the log files' checksums (provenance) are read on their own thread, alongside the build
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-logsum") as side, \
-            SetWriter(out.path, plan.columns, chunk_rows=out.chunk_rows, compression=out.compression,
-                      total_rows=split_rows(plan), replace=replace) as writer:
-        log_files = side.submit(describe_files, list(source.files))
-        for a, b, rows in relabelled_chunks(plan, source, chunk_bounds(plan.lengths, per_chunk),
-                                            summary=summary):
-            for split, cols in rows.columns.items():
-                writer.add(split, cols, rows.keys[split])
-            writer.flush()
-            if progress is not None:
-                progress(int(plan.lengths[a:b].sum()), plan.total_transitions)
-        path, result = close_dataset(writer, plan, source, summary, log_files=log_files.result())
-    return BuildResult(path=path, summary=result)
-
-
-def close_dataset(writer, plan, source, summary, log_files=None):
+def close_dataset(writer, plan, source, summary, log_files=None, inputs: BuildInputs | None = None):
     """Finish a build's file: summary, provenance and attributes, then the writer's rename.
-
-    Shared by the single-process and the sharded build, so their files cannot drift apart.
 
     Returns
     -------
@@ -267,7 +313,7 @@ def close_dataset(writer, plan, source, summary, log_files=None):
     """
     recipe, out = plan.recipe, plan.recipe.output
     result = final_summary(summary, plan, source)
-    prov = provenance(plan, source, log_files=log_files)
+    prov = provenance(plan, source, log_files=log_files, inputs=inputs)
     episodes = {s: int(np.sum(plan.splits == c)) for c, s in enumerate(("train", "validation"))}
     path = writer.close(
         attrs={"goalkit_version": __version__, "mode": out.mode, "seed": recipe.seed,

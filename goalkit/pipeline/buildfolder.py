@@ -1,13 +1,15 @@
 """The build folder of a scaled-out build: ``.NAME.shards/`` next to the output ``NAME``.
 
 It holds ``build.json`` (the build key and what it was computed from), ``lock`` (an exclusive
-``flock`` while a build runs), finished shard files and the spilled large plan objects (the goal
-table as ``goal-table.npy``, memory-mapped by workers). It survives an interrupted build, so the
+``flock`` while a build runs), ``payload.pickle`` (the plan and log index for local workers),
+finished shard files and the goal table when it is large (``goal_table.npy``, memory-mapped by
+workers). It survives an interrupted build, so the
 same command resumes; it is removed when the dataset has been written.
 
-The build key is a SHA-256 over everything a shard's rows depend on: the recipe text, the
-effective seed (``--seed`` included), the layout text, the SHA-256 and size of every log and
-embedding file, the shard partition and the goalkit version. Any change gives another key, and
+The build key is a SHA-256 over everything a shard's rows depend on: the build's inputs
+(:meth:`goalkit.pipeline.build.BuildInputs.key_record`: the recipe text, the effective seed
+(``--seed`` included), the layout text, the SHA-256 and size of every log, embedding and library
+file, the goalkit version) and the shard partition. Any change gives another key, and
 the folder's old shards are deleted before anything else is written: shards of different
 builds are never mixed.
 
@@ -38,17 +40,16 @@ except ImportError:  # pragma: no cover
 KEY_FILE = "build.json"
 #: The plan and log index handed to local worker processes (goalkit.pipeline.workers).
 PAYLOAD_FILE = "payload.pickle"
+#: A large goal table, memory-mapped by the workers (goalkit.pipeline.workers).
+GOAL_TABLE_FILE = "goal_table.npy"
 LOCK_FILE = "lock"
 _SHARD_NAME = re.compile(r"^shard-[0-9]{5,}\.npz$")
 
 
 def is_own_entry(name: str) -> bool:
     """True for the names goalkit gives its files in a build folder (the only ones it deletes)."""
-    if name in (KEY_FILE, LOCK_FILE, PAYLOAD_FILE) or _SHARD_NAME.match(name) or parse_temporary(name) is not None:
-        return True
-    from goalkit.pipeline.workers import SPILLS
-
-    return any(name == f"{field}{how.suffix}" for field, how in SPILLS.items())
+    return (name in (KEY_FILE, LOCK_FILE, PAYLOAD_FILE, GOAL_TABLE_FILE) or _SHARD_NAME.match(name) is not None
+            or parse_temporary(name) is not None)
 
 
 def folder_of(output) -> Path:
@@ -57,32 +58,22 @@ def folder_of(output) -> Path:
     return output.with_name(f".{output.name}.shards")
 
 
-def build_key(recipe, layout_text: str, log_files: list, embedding_files: list, specs) -> tuple[str, dict]:
+def build_key(inputs: dict, specs) -> tuple[str, dict]:
     """The key of a build and the record it was hashed from.
 
     Parameters
     ----------
-    recipe : Recipe
-    layout_text : str
-        The layout file's text ("" when detected).
-    log_files, embedding_files : list of dict
-        ``{"path", "bytes", "sha256"}`` of each file (:func:`goalkit.write.provenance.describe_files`).
+    inputs : dict
+        The build's inputs as a JSON-able record (:meth:`goalkit.pipeline.build.BuildInputs.key_record`).
     specs : list of ShardSpec
+        The shard partition.
 
     Returns
     -------
     (str, dict)
-        Hex SHA-256 and the JSON-able record.
+        Hex SHA-256 and the JSON-able record (``inputs`` with the partition added).
     """
-    record = {
-        "goalkit_version": __version__,
-        "recipe_text": recipe.text,
-        "seed": recipe.seed,
-        "layout_text": layout_text,
-        "log_files": [[f["path"], f["bytes"], f["sha256"]] for f in log_files],
-        "embedding_files": [[f["path"], f["bytes"], f["sha256"]] for f in embedding_files],
-        "shards": [[s.start, s.stop] for s in specs],
-    }
+    record = {**inputs, "shards": [[s.start, s.stop] for s in specs]}
     text = json.dumps(record, sort_keys=True)
     return hashlib.sha256(text.encode()).hexdigest(), record
 

@@ -1,13 +1,17 @@
-"""The coordinator of a scaled-out build: shards out, one dataset in.
+"""The sharded producer of a build's chunk rows: shard files computed by a runner.
 
-1. Plan as the single-process build does (open the logs, check the recipe, split, goal table).
-2. Cut the kept episodes into shards; compute the build key; open (or resume) the build folder.
-3. Reuse every shard file already there that belongs to this key and matches its checksum;
-   submit the others to a runner (local processes or Dask).
-4. As shards finish, feed their rows to :class:`~goalkit.write.writer.SetWriter` and the summary
-   strictly in shard order. The writer's output does not depend on how rows were chunked, so the
-   file is byte-identical to the single-process build's.
-5. Close the writer (temporary name, rename) and delete the build folder.
+Used by the engine (:mod:`goalkit.pipeline.build`) with a runner of local worker processes
+(:class:`~goalkit.pipeline.workers.LocalRunner`) or of a Dask cluster
+(:class:`~goalkit.pipeline.dask_build.DaskRunner`):
+
+1. The engine's chunks are the shards; the build key is the SHA-256 of the build's inputs
+   (:class:`~goalkit.pipeline.build.BuildInputs`, read once) and the shard partition. Open (or
+   resume) the build folder with it.
+2. Reuse every shard file already there that belongs to this key and matches its checksum;
+   submit the others to the runner.
+3. As shards finish, hand their rows back strictly in shard order; the engine writes and counts
+   them exactly as it does the in-process producer's rows.
+4. After the dataset is written, delete the build folder.
 
 A failure stops the build with one line naming the shard and its episodes; finished shards stay
 for the next run.
@@ -15,16 +19,16 @@ for the next run.
 
 from __future__ import annotations
 
-import gc
 import os
 
 from goalkit.errors import DatasetError, GoalkitError
 from goalkit.pipeline.buildfolder import BuildFolder, build_key
-from goalkit.pipeline.plan import make_plan, split_rows, strategy_names
-from goalkit.pipeline.shards import ShardError, check_shard, plan_shards, read_shard
-from goalkit.pipeline.summary import SummaryBuilder
-from goalkit.write.provenance import describe_files
-from goalkit.write.writer import OutputWriteError, SetWriter, os_reason
+from goalkit.pipeline.shards import ShardError, check_shard, read_shard
+from goalkit.pipeline.workers import make_payload
+from goalkit.write.writer import OutputWriteError, os_reason
+
+#: Default output rows per shard of a sharded build (each shard is a task and a file).
+SHARD_ROWS = 131_072
 
 
 def shard_error(spec, err: dict, folder) -> GoalkitError:
@@ -43,119 +47,108 @@ def shard_error(spec, err: dict, folder) -> GoalkitError:
     return ShardError(f"{where}: the worker failed: {err['type']}: {err['message']}")
 
 
-def _layout_text(recipe) -> str:
-    if recipe.layout_path is None:
-        return ""
-    from pathlib import Path
-
-    return Path(recipe.layout_path).read_text(encoding="utf-8")
-
-
-def build_sharded(recipe, runner, *, source=None, rows_per_shard: int | None = None, progress=None,
-                  fresh: bool = False, replace: bool = False):
-    """Build the dataset a recipe describes with shard tasks run by ``runner``.
+class ShardProducer:
+    """Compute the chunks as resumable shard files with ``runner``; hand their rows back in order.
 
     Parameters
     ----------
-    recipe : Recipe
     runner : LocalRunner or DaskRunner
-        Runs :func:`goalkit.pipeline.workers.run_shard`; closed here.
-    source : LogSource, optional
-        Already opened logs.
-    rows_per_shard : int, optional
-        Output rows per shard (about; default :data:`goalkit.pipeline.build.SHARD_ROWS`); only
-        speed, memory and resume granularity depend on it.
-    progress : callable, optional
-        ``progress(transitions, total_transitions)`` as shards are assembled (reused ones too).
+        Runs :func:`goalkit.pipeline.workers.run_shard`; closed by :meth:`finish` or :meth:`abandon`.
     fresh : bool
         Discard the shards of an interrupted run instead of resuming.
-    replace : bool
-        Replace an existing goalkit set at the output path.
-
-    Returns
-    -------
-    BuildResult
-        With ``shards = {"total", "reused", "computed", "runner"}``.
-
-    Raises
-    ------
-    GoalkitError
-        ShardError naming the shard and episodes when a task fails; DatasetError when the build
-        folder or the output cannot be written.
     """
-    from goalkit.pipeline.build import SHARD_ROWS, BuildResult, chunk_transitions, close_dataset
-    from goalkit.pipeline.workers import make_payload
 
-    plan, source = make_plan(recipe, source)
-    specs = plan_shards(plan, chunk_transitions(plan, rows_per_shard or SHARD_ROWS))
-    log_files = describe_files(list(source.files))
-    emb = describe_files([recipe.goal.embedding]) if recipe.goal.embedding is not None else []
-    if getattr(recipe.mixture, "library", None) is not None:  # a changed library invalidates shards
-        emb = emb + describe_files([recipe.mixture.library])
-    key, record = build_key(recipe, _layout_text(recipe), log_files, emb, specs)
-    folder = BuildFolder(recipe.output.path)
-    columns = list(plan.columns)
-    try:
-        resumed = folder.open(key, record, fresh=fresh)
-        ready = {s.index for s in specs if resumed and check_shard(folder.path, s, key, columns)}
-        pending = [s for s in specs if s.index not in ready]
-        reused = len(ready)
-        gpt = recipe.mixture.goals_per_transition
-        summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed)
-        out = recipe.output
-        with SetWriter(out.path, plan.columns, chunk_rows=out.chunk_rows, compression=out.compression,
-                       total_rows=split_rows(plan), replace=replace) as writer:
-            cursor = 0
+    sharded = True
+    rows_per_chunk = SHARD_ROWS
+    #: Added to the one-line error when the output cannot be written.
+    resume_advice = "the finished shards are kept and the same command resumes"
 
-            def assemble():
-                nonlocal cursor
-                while cursor < len(specs) and specs[cursor].index in ready:
-                    spec = specs[cursor]
-                    rows = read_shard(folder.path, spec, key, columns)
-                    for split, cols in rows.columns.items():
-                        writer.add(split, cols, rows.keys[split])
-                        summary.add(split, cols, rows.keys[split])
-                    writer.flush()
-                    if progress is not None:
-                        progress(spec.transitions, plan.total_transitions)
-                    cursor += 1
+    def __init__(self, runner, fresh: bool = False):
+        self.runner = runner
+        self.fresh = fresh
+        self.folder = None
+        self.reused = 0
+        self.chunks = []
 
-            assemble()
-            if pending:
-                try:
-                    runner.start(make_payload(plan, source, folder.path), folder.path)
-                except OSError as exc:
-                    raise DatasetError(f"cannot write the build folder ({os_reason(exc)})",
-                                       file=folder.path) from None
-                by_index = {s.index: s for s in pending}
-                for outcome in runner.run(pending, folder.path, key):
-                    if not outcome["ok"]:
-                        raise shard_error(by_index[outcome["index"]], outcome["error"], folder.path)
-                    ready.add(outcome["index"])
-                    assemble()
-            runner.close()
-            path, result = close_dataset(writer, plan, source, summary, log_files=log_files)
-    except BaseException as exc:
-        runner.close()
-        folder.release()
+    def open(self, plan, source, chunks, inputs) -> None:
+        """Compute the build key from ``inputs`` (a future of :class:`BuildInputs`), open the folder.
+
+        Raises
+        ------
+        DatasetError
+            When the build folder cannot be created or written, or another build holds it.
+        """
+        self.plan, self.source, self.chunks = plan, source, chunks
+        self.columns = list(plan.columns)
+        self.key, record = build_key(inputs.result().key_record(), chunks)
+        self.folder = BuildFolder(plan.recipe.output.path)
+        resumed = self.folder.open(self.key, record, fresh=self.fresh)
+        self.ready = {s.index for s in chunks
+                      if resumed and check_shard(self.folder.path, s, self.key, self.columns)}
+        self.reused = len(self.ready)
+
+    def rows(self, count):
+        """Yield ``(spec, ChunkRows)`` for each shard, in order (reused ones first as far as they go).
+
+        ``count(rows)`` is called on each shard's rows, in order, before they are yielded.
+
+        Raises
+        ------
+        ShardError
+            Naming the shard and its episodes when a task fails.
+        """
+        folder = self.folder.path
+        pending = [s for s in self.chunks if s.index not in self.ready]
+        self.cursor = 0
+        yield from self._assembled(count)
+        if not pending:
+            return
+        try:
+            self.runner.start(make_payload(self.plan, self.source, folder), folder)
+        except OSError as exc:
+            raise DatasetError(f"cannot write the build folder ({os_reason(exc)})", file=folder) from None
+        by_index = {s.index: s for s in pending}
+        for outcome in self.runner.run(pending, folder, self.key):
+            if not outcome["ok"]:
+                raise shard_error(by_index[outcome["index"]], outcome["error"], folder)
+            self.ready.add(outcome["index"])
+            yield from self._assembled(count)
+
+    def _assembled(self, count):
+        """The next shards in order whose files are ready."""
+        specs = self.chunks
+        while self.cursor < len(specs) and specs[self.cursor].index in self.ready:
+            spec = specs[self.cursor]
+            rows = read_shard(self.folder.path, spec, self.key, self.columns)
+            count(rows)
+            self.cursor += 1
+            yield spec, rows
+
+    def finish(self) -> None:
+        """Stop the runner (every shard has been read back)."""
+        self.runner.close()
+
+    def abandon(self) -> None:
+        """After a failure: stop the runner, release the folder; its finished shards stay."""
+        self.runner.close()
+        if self.folder is not None:
+            self.folder.release()
+
+    def write_failure(self, exc: BaseException):
+        """The reason text when ``exc`` is a failed write of the output or of the build folder, else None."""
         if isinstance(exc, OutputWriteError):
-            failed = exc.reason  # the output could not be written (disk full, no permission)
-        else:
-            os_error = _os_error_in(exc)
-            if os_error is None:
-                raise
-            failed = os_reason(os_error)
-    else:
-        failed = None
-    if failed is not None:
-        # raised outside the handler, so no traceback keeps the failed HDF5 objects alive
-        gc.collect()
-        raise OutputWriteError(failed, file=recipe.output.path,
-                               advice="the finished shards are kept and the same command resumes")
-    folder.remove()
-    info = {"total": len(specs), "reused": reused, "computed": len(specs) - reused,
-            "runner": runner.description}
-    return BuildResult(path=path, summary=result, shards=info)
+            return exc.reason  # the output could not be written (disk full, no permission)
+        os_error = _os_error_in(exc)
+        return None if os_error is None else os_reason(os_error)
+
+    def cleanup(self) -> None:
+        """After the dataset is written: delete the build folder."""
+        self.folder.remove()
+
+    def info(self) -> dict:
+        """``{"total", "reused", "computed", "runner"}``."""
+        return {"total": len(self.chunks), "reused": self.reused, "computed": len(self.chunks) - self.reused,
+                "runner": self.runner.description}
 
 
 def _os_error_in(exc: BaseException):
@@ -170,5 +163,3 @@ def _os_error_in(exc: BaseException):
         exc = exc.__cause__ or exc.__context__
         seen += 1
     return None
-
-

@@ -34,6 +34,8 @@ import numpy as np
 from goalkit.errors import GoalkitError
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.outputs import write_own_file
+from goalkit.pipeline.chunk import ChunkRows
+from goalkit.pipeline.plan import SLOT_SPAN
 from goalkit.write.format import SPLITS
 
 SHARD_FORMAT = "goalkit-shard"
@@ -134,8 +136,6 @@ def _pack_split(split, keys, columns, column_order) -> dict:
     repeating the packed values gives back exactly its bytes, so nothing depends on which
     columns repeat.
     """
-    from goalkit.pipeline.plan import SLOT_SPAN
-
     keys = np.ascontiguousarray(keys)
     out = {f"{split}/keys": keys}
     tid = keys // SLOT_SPAN
@@ -228,8 +228,6 @@ def read_shard(folder, spec: ShardSpec, build_key: str, column_order):
         When the file is missing, unreadable, from another build or another partition, or its
         rows do not match its checksum.
     """
-    from goalkit.pipeline.chunk import ChunkRows
-
     path = Path(folder) / spec.name
     try:
         with np.load(path, allow_pickle=False) as z:

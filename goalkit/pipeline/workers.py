@@ -1,10 +1,9 @@
 """The shard task and the local worker pool.
 
 Every worker gets the build's :class:`Payload` once (the plan and the opened log's index, no
-log arrays): at process start for the local pool, by one ``scatter`` for Dask. Large plan
-fields (the goal table; later a neighbour index, see :func:`register_spill`) are spilled by the
-coordinator to files in the build folder and memory-mapped by each worker, so they cross no pipe and local workers share
-their pages. A task gets only a :class:`~goalkit.pipeline.shards.ShardSpec`: it reads its
+log arrays): at process start for the local pool, by one ``scatter`` for Dask. A large goal
+table is spilled by the coordinator to a file in the build folder and memory-mapped by each
+worker, so it crosses no pipe and local workers share its pages. A task gets only a :class:`~goalkit.pipeline.shards.ShardSpec`: it reads its
 episodes from the logs itself, relabels them and writes a shard file. It never raises: it returns
 ``{"ok": True, ...}`` or ``{"ok": False, "error": {...}}``, so any failure reaches the
 coordinator as plain data whatever the transport.
@@ -29,47 +28,22 @@ import os
 import pickle
 import threading
 import time
-from dataclasses import dataclass, fields, replace
+from dataclasses import dataclass, replace
 from dataclasses import field as dataclass_field
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 
 from goalkit.errors import GoalkitError
 from goalkit.outputs import open_no_follow, write_own_file
-from goalkit.pipeline.buildfolder import PAYLOAD_FILE
+from goalkit.pipeline.buildfolder import GOAL_TABLE_FILE, PAYLOAD_FILE
+from goalkit.pipeline.chunk import relabel_chunk
 from goalkit.pipeline.shards import write_shard
 
 #: Seconds between checks that every local worker process is still alive.
 LIVENESS_SECONDS = 0.2
 #: Arrays larger than this are spilled to a memory-mapped file instead of pickled.
 SPILL_BYTES = 1 << 20
-GOAL_TABLE_FILE = "goal_table.npy"
-
-
-@dataclass(frozen=True)
-class Spill:
-    """How a large plan field travels to workers: saved once by the coordinator, loaded by each.
-
-    Attributes
-    ----------
-    save : callable
-        ``save(value, path)``; writes the file at ``path`` (an empty temporary file that the
-        caller renames into place).
-    load : callable
-        ``load(path) -> value`` in the worker (a module-level function, pickled by reference);
-        should memory-map where it can.
-    suffix : str
-        File name suffix.
-    worth : callable
-        ``worth(value) -> bool``: spill this value (else it is pickled with the plan).
-    """
-
-    save: Callable
-    load: Callable
-    suffix: str
-    worth: Callable
 
 
 def _save_npy(value, path) -> None:
@@ -80,34 +54,6 @@ def _save_npy(value, path) -> None:
 def load_npy(path):
     """Memory-map a spilled array read-only."""
     return np.load(path, mmap_mode="r")
-
-
-def _big_array(value) -> bool:
-    return value is not None and value.nbytes > SPILL_BYTES
-
-
-#: Plan field -> how it is spilled. A strategy that adds a large plan field (a neighbour index)
-#: registers it with :func:`register_spill`.
-SPILLS: dict = {"goal_table": Spill(_save_npy, load_npy, ".npy", _big_array)}
-
-
-def register_spill(field_name: str, save, load, suffix: str, worth=lambda value: value is not None) -> None:
-    """Ship plan field ``field_name`` to workers as a file in the build folder.
-
-    Parameters
-    ----------
-    field_name : str
-        A field of :class:`~goalkit.pipeline.plan.BuildPlan`.
-    save, load, suffix, worth
-        See :class:`Spill`; ``load`` must be importable in the worker (module level).
-
-    Examples
-    --------
-    >>> import faiss                                                  # doctest: +SKIP
-    >>> register_spill("neighbour_index", lambda ix, p: faiss.write_index(ix, str(p)),
-    ...                load_index, ".faiss")                           # doctest: +SKIP
-    """
-    SPILLS[field_name] = Spill(save, load, suffix, worth)
 
 
 @dataclass(frozen=True)
@@ -137,23 +83,18 @@ class Payload:
 
 
 def make_payload(plan, source, folder: Path, spill: bool = True) -> Payload:
-    """Build the payload; with ``spill``, write each large plan field to ``folder`` once.
+    """Build the payload; with ``spill``, write a large goal table to ``folder`` once.
 
-    Files are written under an exclusive temporary name and renamed (:func:`goalkit.outputs.write_own_file`);
-    they live in the build folder and go with it.
+    The goal table (larger than :data:`SPILL_BYTES`) goes to :data:`GOAL_TABLE_FILE`, written under
+    an exclusive temporary name and renamed (:func:`goalkit.outputs.write_own_file`); it lives in the
+    build folder and goes with it.
     """
-    known = {f.name for f in fields(plan)}
-    files, changes = {}, {}
-    for name, how in SPILLS.items():
-        value = getattr(plan, name, None) if name in known else None
-        if not spill or not how.worth(value):
-            continue
-        path = Path(folder) / f"{name}{how.suffix}"
-        write_own_file(path, lambda tmp, value=value, how=how: how.save(value, tmp), what="build folder file",
-                       by_path=True)
-        files[name] = (str(path), how.load)
-        changes[name] = None
-    return Payload(replace(plan, **changes) if changes else plan, source, files)
+    table = getattr(plan, "goal_table", None)
+    if not spill or table is None or table.nbytes <= SPILL_BYTES:
+        return Payload(plan, source)
+    path = Path(folder) / GOAL_TABLE_FILE
+    write_own_file(path, lambda tmp: _save_npy(table, tmp), what="build folder file", by_path=True)
+    return Payload(replace(plan, goal_table=None), source, {"goal_table": (str(path), load_npy)})
 
 
 def failure(spec, exc: BaseException) -> dict:
@@ -189,8 +130,6 @@ def run_shard(payload: Payload, spec, folder, build_key: str) -> dict:
     dict
         ``{"ok": True, "index", "rows", "sha256", "seconds"}`` or ``{"ok": False, "index", "error"}``.
     """
-    from goalkit.pipeline.chunk import relabel_chunk
-
     t0 = time.perf_counter()
     try:
         plan = _resolved(payload)

@@ -203,22 +203,20 @@ def test_skipped_episodes_are_reported(tmp_path):
         assert gs.provenance["skipped_episodes"][0][0] == 4
 
 
-def test_gil_switch_interval_is_short_during_a_build_and_restored_after(tmp_path, source):
+def test_a_build_leaves_the_interpreter_switch_interval_alone(tmp_path, source):
     import sys
-
-    from goalkit.pipeline.build import SWITCH_INTERVAL
 
     seen = []
     before = sys.getswitchinterval()
     recipe = parse_recipe(recipe_text(tmp_path / "s.h5"))
     build(recipe, source=source, max_rows_per_chunk=1000,
           progress=lambda done, total: seen.append(sys.getswitchinterval()))
-    assert seen and max(seen) <= SWITCH_INTERVAL
-    assert sys.getswitchinterval() == before
-    # and after a failed build too: the output folder does not exist
-    bad = parse_recipe(recipe_text(tmp_path / "missing" / "s.h5"))
+    assert seen and set(seen) == {before}   # a library call does not retune the host program's threads
+
+
+def test_a_build_into_a_missing_folder_fails_in_one_line(tmp_path, source):
     from goalkit.errors import DatasetError
 
+    bad = parse_recipe(recipe_text(tmp_path / "missing" / "s.h5"))
     with pytest.raises(DatasetError, match="output folder does not exist"):
         build(bad, source=source)
-    assert sys.getswitchinterval() == before

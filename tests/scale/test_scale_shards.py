@@ -73,24 +73,29 @@ def test_shard_file_round_trip_and_checks(tmp_path):
     assert not check_shard(tmp_path, spec, "k1", order)
 
 
-def _recipe(text="seed = 0", seed=0):
-    return SimpleNamespace(text=text, seed=seed)
+def _inputs(text="seed = 0", seed=0, layout="layout", logs=None, embeddings=(), library=()):
+    from goalkit.pipeline.build import BuildInputs
+
+    logs = [{"path": "/l.h5", "bytes": 10, "sha256": "a" * 64}] if logs is None else logs
+    return BuildInputs(text, seed, layout, logs, list(embeddings), list(library)).key_record()
 
 
 def test_build_key_changes_with_every_input():
     specs = plan_shards(SimpleNamespace(lengths=np.array([3, 3, 3]), episode_ids=np.arange(3)), 4)
     logs = [{"path": "/l.h5", "bytes": 10, "sha256": "a" * 64}]
-    base, record = build_key(_recipe(), "layout", logs, [], specs)
-    assert base == build_key(_recipe(), "layout", logs, [], specs)[0]
+    emb = {"path": "/e.npz", "bytes": 1, "sha256": "c" * 64}
+    base, record = build_key(_inputs(), specs)
+    assert base == build_key(_inputs(), specs)[0]
     assert json.loads(json.dumps(record)) == record
     variants = [
-        build_key(_recipe(text="seed = 1"), "layout", logs, [], specs),
-        build_key(_recipe(seed=5), "layout", logs, [], specs),
-        build_key(_recipe(), "layout2", logs, [], specs),
-        build_key(_recipe(), "layout", [dict(logs[0], sha256="b" * 64)], [], specs),
-        build_key(_recipe(), "layout", [dict(logs[0], bytes=11)], [], specs),
-        build_key(_recipe(), "layout", logs, [{"path": "/e.npz", "bytes": 1, "sha256": "c" * 64}], specs),
-        build_key(_recipe(), "layout", logs, [], specs[:1]),
+        build_key(_inputs(text="seed = 1"), specs),
+        build_key(_inputs(seed=5), specs),
+        build_key(_inputs(layout="layout2"), specs),
+        build_key(_inputs(logs=[dict(logs[0], sha256="b" * 64)]), specs),
+        build_key(_inputs(logs=[dict(logs[0], bytes=11)]), specs),
+        build_key(_inputs(embeddings=[emb]), specs),
+        build_key(_inputs(library=[dict(emb, path="/lib.npz")]), specs),
+        build_key(_inputs(), specs[:1]),
     ]
     assert len({base} | {k for k, _ in variants}) == len(variants) + 1
 
