@@ -262,7 +262,10 @@ class LocalRunner:
             for s in specs:
                 try:
                     by_future[self.pool.submit(_pool_task, s, str(folder), build_key)] = s
-                except BrokenProcessPool:  # a worker died while the shards were being handed out
+                except (BrokenProcessPool, OSError, RuntimeError):
+                    # a worker died while the shards were being handed out: the pool is broken,
+                    # or (Python 3.11) its wake-up pipe was closed under submit ("handle is
+                    # closed"), or it shut down ("cannot schedule new futures")
                     broken_at = s
                     break
         finally:
