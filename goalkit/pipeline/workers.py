@@ -287,7 +287,13 @@ class LocalRunner:
                     self.broken = True
                     yield lost_worker(spec)
                 except Exception as exc:
-                    yield failure(spec, exc)
+                    if not isinstance(exc, GoalkitError) and self.dead_workers():
+                        # the pool's own plumbing failing after a worker died (e.g. Python 3.11's
+                        # "handle is closed"): the cause is the dead worker, say so
+                        self.broken = True
+                        yield lost_worker(spec)
+                    else:
+                        yield failure(spec, exc)
             if pending and not done and self.dead_workers():
                 self.broken = True
                 yield lost_worker(min((by_future[f] for f in pending), key=lambda sp: sp.index))
