@@ -88,7 +88,7 @@ def main(ctx, debug):
 
     Exit status, every command: 0 success; 1 verify found the set inconsistent; 2 bad input or a
     refused output (one line on stderr); 3 internal error (a bug; rerun with --debug and report
-    it); 130 interrupted (Ctrl-C; one line says what was kept).
+    it); 130 interrupted (Ctrl-C; one line says what was kept); 141 stdout closed by its reader.
     """
     ctx.ensure_object(dict)
     ctx.obj["debug"] = debug

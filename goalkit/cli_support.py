@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import functools
 import json
+import os
 import sys
 
 import click
@@ -21,6 +22,9 @@ EXIT_BAD_INPUT = 2
 EXIT_INTERNAL = 3
 #: Interrupted (SIGINT, Ctrl-C): 128 + 2, as shells report a death by SIGINT.
 EXIT_INTERRUPTED = 130
+#: Standard output closed by its reader (``goalkit verify SET | head``): 128 + SIGPIPE, as shells
+#: report a death by SIGPIPE; nothing is printed.
+EXIT_OUTPUT_CLOSED = 141
 
 #: Help text of every command's ``--quiet`` (one convention for all commands).
 QUIET_HELP = ("No progress bar and no report on stdout; warnings and errors still go to stderr, "
@@ -179,11 +183,28 @@ def run_guarded(func, *args, **kwargs):
 
 def _classify(exc: Exception) -> None:
     """Leave with the status and line of a non-interrupt exception (see :func:`run_guarded`)."""
+    if isinstance(exc, BrokenPipeError) and _stdout_closed():
+        # the reader of our stdout went away (piped into head): not an error of ours; point
+        # stdout at /dev/null so the interpreter's final flush does not fail again
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        sys.exit(EXIT_OUTPUT_CLOSED)
     if isinstance(exc, GoalkitError):
         _leave(EXIT_BAD_INPUT, f"goalkit: error: {_one_line(exc)}", exc)
     if isinstance(exc, OSError) and exc.filename is not None:
         _leave(EXIT_BAD_INPUT, f"goalkit: error: {exc.filename}: {_one_line(exc.strerror or exc)}", exc)
     _leave(EXIT_INTERNAL, _internal_line(exc), exc)  # a bug: say so, and how to get the details
+
+
+def _stdout_closed() -> bool:
+    """True when standard output is a pipe whose reader has gone (poll reports POLLERR on it)."""
+    import select
+
+    try:
+        poller = select.poll()
+        poller.register(sys.stdout.fileno(), select.POLLOUT)
+        return any(events & select.POLLERR for _, events in poller.poll(0))
+    except (OSError, ValueError, AttributeError):
+        return False
 
 
 def _internal_line(exc: BaseException) -> str:

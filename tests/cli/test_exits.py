@@ -192,3 +192,17 @@ def test_an_error_after_a_sigint_counts_as_the_interruption():
     res = CliRunner().invoke(_converting, [])
     assert res.exit_code == 130
     assert res.stderr.strip().splitlines() == ["goalkit: interrupted; nothing was written"]
+
+
+def test_stdout_closed_by_its_reader_is_141_and_silent(demo):
+    # `goalkit scan ... | head -0`: the reader is gone before the report is written. POSIX shells
+    # report a death by SIGPIPE as 128 + 13 = 141; goalkit exits with that status, silently.
+    import os
+
+    read, write = os.pipe()
+    os.close(read)  # no reader at all, before the command writes anything
+    proc = subprocess.Popen([*CLI, "scan", demo / "gantry-logs.h5", "--layout", demo / "gantry-layout.toml"],
+                            stdout=write, stderr=subprocess.PIPE, text=True)
+    os.close(write)
+    _, err = proc.communicate(timeout=120)
+    assert proc.returncode == 141 and err == "", err
