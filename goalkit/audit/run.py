@@ -7,7 +7,6 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from types import SimpleNamespace
 
-import h5py
 import numpy as np
 
 from goalkit.audit.laws import geometric_law, uniform_law
@@ -21,6 +20,7 @@ from goalkit.errors import DatasetError, GoalkitError
 from goalkit.logs import open_logs
 from goalkit.logs.layout import parse_layout
 from goalkit.pipeline.goal import make_goal_map
+from goalkit.write.format import open_set_file
 
 #: Family error of the statistical checks: a correct set fails any of them with at most this chance.
 ALPHA = 1e-6
@@ -165,11 +165,7 @@ def audit_set(path, sample: int | None = None, alpha: float = ALPHA) -> AuditRep
     AuditReport
     """
     path = Path(path)
-    try:
-        f = h5py.File(path, "r")
-    except OSError as exc:
-        raise DatasetError(f"not a readable HDF5 file ({exc})", file=path) from None
-    with f:
+    with open_set_file(path) as f:
         if f.attrs.get("format") != "goalkit-goal-set":
             raise DatasetError("not a goalkit set", file=path, key="format")
         try:

@@ -18,6 +18,7 @@ is the SHA-256 of every attribute and every column's dtype, shape and storage (s
 from __future__ import annotations
 
 import json
+from pathlib import Path
 
 from goalkit.rows import INDEX_FIELDS, MATERIAL_FIELDS, SPLIT_CODES, SPLITS, TASK_REWARD_FIELD
 
@@ -75,3 +76,27 @@ def is_goal_set(path) -> bool:
     if isinstance(fmt, bytes):
         fmt = fmt.decode("utf-8", "replace")
     return fmt == FORMAT_NAME
+
+
+def open_set_file(path):
+    """Open the HDF5 file of a set read-only, refusing what is not a readable regular file.
+
+    Raises
+    ------
+    DatasetError
+        One line: the file is missing, is not a regular file (a folder, a device or a FIFO,
+        which would block or never end), or is not readable as HDF5.
+    """
+    import h5py
+
+    from goalkit.errors import DatasetError
+
+    path = Path(path)
+    if not path.exists():
+        raise DatasetError("file not found", file=path)
+    if not path.is_file():
+        raise DatasetError("not a regular file (a folder, device or FIFO)", file=path)
+    try:
+        return h5py.File(path, "r")
+    except OSError as exc:
+        raise DatasetError(f"not a readable HDF5 file ({exc})", file=path) from None

@@ -10,7 +10,7 @@ import h5py
 import numpy as np
 
 from goalkit.errors import DatasetError
-from goalkit.write.format import MATERIAL_COLUMNS, SPLITS
+from goalkit.write.format import MATERIAL_COLUMNS, SPLITS, open_set_file
 
 
 class GoalSet:
@@ -39,14 +39,7 @@ class GoalSet:
 
     def __init__(self, path):
         self.path = Path(path)
-        if not self.path.exists():
-            raise DatasetError("file not found", file=self.path)
-        if not self.path.is_file():  # a FIFO or a device would block or never end
-            raise DatasetError("not a regular file (a folder, device or FIFO)", file=self.path)
-        try:
-            self.file = h5py.File(self.path, "r")
-        except OSError as exc:
-            raise DatasetError(f"not a readable HDF5 file ({exc})", file=self.path) from None
+        self.file = open_set_file(self.path)
         from goalkit.write.seal import read_attrs
 
         try:
