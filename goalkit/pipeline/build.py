@@ -5,7 +5,7 @@ Every build runs the same steps, here:
 1. Check the outputs against the inputs (:func:`check_outputs`), before any work.
 2. Plan (:func:`~goalkit.pipeline.plan.make_plan`: open the logs, check the recipe, split, goal
    table) and cut the kept episodes into ordered chunks
-   (:func:`~goalkit.pipeline.shards.plan_shards`).
+   (:func:`~goalkit.pipeline.shardfiles.plan_shards`).
 3. Read the build's inputs once (:class:`BuildInputs`: recipe text and seed, layout text, SHA-256
    of every log, embedding and library file), on a side thread; they give both the shard key and
    the provenance.
@@ -41,10 +41,10 @@ from goalkit.pipeline.dask_build import DaskRunner
 from goalkit.pipeline.inprocess import CHUNK_ROWS, InProcessProducer
 from goalkit.pipeline.plan import make_plan, split_rows, strategy_names
 from goalkit.pipeline.sharded import SHARD_ROWS, ShardProducer
-from goalkit.pipeline.shards import plan_shards
+from goalkit.pipeline.shardfiles import plan_shards
 from goalkit.pipeline.summary import SummaryBuilder
 from goalkit.pipeline.workers import LocalRunner
-from goalkit.relabel.attach import add_to_summary, search_provenance
+from goalkit.pipeline.searchsetup import add_to_summary, search_provenance
 from goalkit.write.format import is_goal_set
 from goalkit.write.provenance import describe_files
 from goalkit.write.writer import OutputWriteError, SetWriter

@@ -6,6 +6,10 @@ import click
 
 from goalkit.cli_support import ChunkProgress, command_line, echo_json, on_interrupt, quiet_option, user_errors, warn
 from goalkit.errors import GoalkitError
+from goalkit.pipeline.build import build as run_build
+from goalkit.pipeline.buildfolder import folder_of
+from goalkit.pipeline.recipe import load_recipe
+from goalkit.pipeline.searchsetup import summary_lines
 
 
 def format_summary(path, summary: dict) -> str:
@@ -19,7 +23,6 @@ def format_summary(path, summary: dict) -> str:
     q = summary.get("goal_distance_quantiles")
     if q:
         lines.append("  goal distance quantiles: " + "  ".join(f"{k}={v:.4g}" for k, v in q.items()))
-    from goalkit.relabel.attach import summary_lines
 
     lines += summary_lines(summary)
     for w in summary.get("warnings", []):
@@ -58,9 +61,6 @@ def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, replace, a
     whatever --chunk-rows, --workers or --scheduler. The output may not be, or lie in, any of the
     recipe's inputs, and an existing output is replaced only with --replace.
     """
-    from goalkit.pipeline.build import build as run_build
-    from goalkit.pipeline.recipe import load_recipe
-
     if workers and scheduler is not None:
         raise GoalkitError("give --workers or --scheduler, not both", key="--scheduler")
     parsed = load_recipe(recipe).with_overrides(seed=seed, out=out)
@@ -89,8 +89,6 @@ def interrupted_note(output, sharded: bool, cluster: bool = False) -> str:
     Local workers have finished or dropped their shards when this is asked; tasks already
     running on a Dask cluster may still add shard files afterwards, so the count is a floor.
     """
-    from goalkit.pipeline.buildfolder import folder_of
-
     if not sharded:
         return f"nothing was written at {output}"
     folder = folder_of(output)

@@ -1,7 +1,7 @@
 """Run shard tasks on a dask.distributed cluster.
 
 The payload (plan and log index) is scattered once with ``broadcast=True``, so every worker holds
-one copy and each task carries only its :class:`~goalkit.pipeline.shards.ShardSpec`. Workers read
+one copy and each task carries only its :class:`~goalkit.pipeline.shardfiles.ShardSpec`. Workers read
 the logs and write shard files themselves, so the logs and the build folder must be reachable
 under the same paths from every worker (one machine, or a shared filesystem).
 """

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from goalkit.errors import RecipeError
+from goalkit.goals import embedding_goal_map
 from goalkit.goals.goalmap import IndexGoalMap, goal_map_from_fields
 
 
@@ -28,6 +29,5 @@ def make_goal_map(spec, source, obs_dim: int, file=None):
             raise RecipeError(f"goal column {bad[0]} is out of range: observations have {obs_dim} columns "
                               f"(0 .. {obs_dim - 1})", file=file, key="goal.indices")
         return IndexGoalMap(tuple(spec.indices))
-    from goalkit.goals import embedding_goal_map
 
     return embedding_goal_map(spec.embedding, source, file=file)

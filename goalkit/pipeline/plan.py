@@ -12,9 +12,13 @@ from dataclasses import dataclass
 import numpy as np
 
 from goalkit.errors import RecipeError
-
+from goalkit.logs import open_logs
+from goalkit.logs.episodes import chunk_bounds
+from goalkit.logs.layout import load_layout
 from goalkit.pipeline.goal import make_goal_map
+from goalkit.pipeline.searchsetup import attach_searches
 from goalkit.pipeline.split import split_codes
+from goalkit.relabel import RelabelContext
 from goalkit.relabel.strategies import STRATEGIES
 from goalkit.relabel.strategies import strategy_names as table_names
 from goalkit.rows import SPLITS
@@ -139,12 +143,8 @@ def check_mixture(recipe, first, context, goal_dim: int) -> None:
 
 def open_source(recipe):
     """Open the recipe's logs with its layout."""
-    from goalkit.logs import open_logs
-
     layout = None
     if recipe.layout_path is not None:
-        from goalkit.logs.layout import load_layout
-
         layout = load_layout(recipe.layout_path)
     return open_logs(recipe.logs_path, layout, skip_bad_episodes=recipe.skip_bad_episodes)
 
@@ -164,8 +164,6 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
     -------
     (BuildPlan, LogSource)
     """
-    from goalkit.relabel import RelabelContext
-
     source = source if source is not None else open_source(recipe)
     ids = np.asarray(source.episode_ids, dtype=np.int64)
     lengths = np.asarray(source.lengths, dtype=np.int64)
@@ -187,8 +185,6 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
     if needs_goal_table(recipe.mixture):
         table = goal_table(source, goal_map, np.dtype(recipe.goal.dtype), max_transitions)
     if table is not None:
-        from goalkit.relabel.attach import attach_searches
-
         context = attach_searches(recipe, context, table, goal_map, ids, lengths, splits)
     plan = BuildPlan(recipe=recipe, goal_map=goal_map, episode_ids=ids, lengths=lengths,
                      transition_offsets=offsets, splits=splits, context=context, goal_table=table,
@@ -198,8 +194,6 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
 
 def goal_table(source, goal_map, dtype, max_transitions: int) -> np.ndarray:
     """phi of every kept state of the log, in global state-row order, cast to ``dtype``."""
-    from goalkit.logs.episodes import chunk_bounds
-
     lengths = np.asarray(source.lengths, dtype=np.int64)
     total = int(lengths.sum() + len(lengths))
     out = np.empty((total, goal_map.dim), dtype=dtype)

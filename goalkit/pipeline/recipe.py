@@ -13,6 +13,9 @@ from pathlib import Path
 
 from goalkit.config import check_keys, expect_type, parse_toml, read_text_file
 from goalkit.errors import RecipeError
+from goalkit.outputs import small_toml
+from goalkit.relabel import Mixture
+from goalkit.reward import RewardRule
 
 RECIPE_VERSION = 1
 
@@ -234,9 +237,6 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None) -> Recipe
     RecipeError
         On any unknown key, missing table or impossible value, naming the key.
     """
-    from goalkit.relabel import Mixture
-    from goalkit.reward import RewardRule
-
     base = (base or Path.cwd()).resolve()
     doc = parse_toml(text, file, RecipeError)
     check_keys(doc, TOP_KEYS, file=file, section="the recipe's top level", error=RecipeError)
@@ -284,8 +284,6 @@ def is_recipe_file(path) -> bool:
     The test that lets ``--replace`` replace an existing recipe (``tune --write-recipe``,
     ``demo``); anything else at the path is never replaced.
     """
-    from goalkit.outputs import small_toml
-
     doc = small_toml(path)
     return (doc is not None and isinstance(doc.get("logs"), dict) and isinstance(doc.get("output"), dict)
             and set(doc) <= set(TOP_KEYS))

@@ -23,7 +23,7 @@ import os
 
 from goalkit.errors import DatasetError, GoalkitError
 from goalkit.pipeline.buildfolder import BuildFolder, build_key
-from goalkit.pipeline.shards import ShardError, check_shard, read_shard
+from goalkit.pipeline.shardfiles import ShardError, check_shard, read_shard
 from goalkit.pipeline.workers import make_payload
 from goalkit.write.writer import OutputWriteError, os_reason
 

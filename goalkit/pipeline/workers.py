@@ -3,7 +3,7 @@
 Every worker gets the build's :class:`Payload` once (the plan and the opened log's index, no
 log arrays): at process start for the local pool, by one ``scatter`` for Dask. A large goal
 table is spilled by the coordinator to a file in the build folder and memory-mapped by each
-worker, so it crosses no pipe and local workers share its pages. A task gets only a :class:`~goalkit.pipeline.shards.ShardSpec`: it reads its
+worker, so it crosses no pipe and local workers share its pages. A task gets only a :class:`~goalkit.pipeline.shardfiles.ShardSpec`: it reads its
 episodes from the logs itself, relabels them and writes a shard file. It never raises: it returns
 ``{"ok": True, ...}`` or ``{"ok": False, "error": {...}}``, so any failure reaches the
 coordinator as plain data whatever the transport.
@@ -38,7 +38,7 @@ from goalkit.errors import GoalkitError
 from goalkit.outputs import open_no_follow, write_own_file
 from goalkit.pipeline.buildfolder import GOAL_TABLE_FILE, PAYLOAD_FILE
 from goalkit.pipeline.chunk import relabel_chunk
-from goalkit.pipeline.shards import write_shard
+from goalkit.pipeline.shardfiles import write_shard
 
 #: Seconds between checks that every local worker process is still alive.
 LIVENESS_SECONDS = 0.2

@@ -10,7 +10,7 @@ from goalkit.relabel.strategies import (CODES, PAST_END, STRATEGIES, StoredRows,
                                         episode, final, future, geometric, geometric_offsets,
                                         locate, original, other_episode, register, strategy_names,
                                         unregister)
-from goalkit.relabel.joined import library, near_miss, neighbour  # registers codes 6-8
+from goalkit.relabel.search_strategies import library, near_miss, neighbour  # registers codes 6-8
 
 __all__ = ["CODES", "PAST_END", "STRATEGIES", "GoalRows", "Mixture", "RelabelContext",
            "StoredRows", "StrategyGoals", "StrategySpec", "episode", "final", "future", "geometric",

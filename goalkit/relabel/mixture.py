@@ -4,15 +4,17 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any, Mapping
+from typing import TYPE_CHECKING, Any, Mapping
 
 import numpy as np
 
 from goalkit import rng
 from goalkit.config import check_keys, closest
 from goalkit.errors import RecipeError
-from goalkit.logs.episodes import EpisodeSet
 from goalkit.relabel.strategies import CODES, PAST_END, STRATEGIES, locate
+
+if TYPE_CHECKING:  # annotations only: goalkit.logs loads the log readers (h5py)
+    from goalkit.logs.episodes import EpisodeSet
 
 #: Keys of the recipe's ``[relabel]`` table.
 #: Most goals per transition a recipe may ask for: the set has this many rows per logged

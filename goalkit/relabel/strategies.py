@@ -30,8 +30,8 @@ library         7     a library target reached at ``s_j``, ``j > t`` (external)
 near_miss       8     a state of another episode near ``s_j`` but beyond the threshold
 ==============  ====  =======================================================================
 
-Codes 6-8 live in :mod:`goalkit.relabel.joined` (conventions there) and need the goal search
-and library that the build plan attaches to the context (:mod:`goalkit.relabel.attach`).
+Codes 6-8 live in :mod:`goalkit.relabel.search_strategies` (conventions there) and need the goal search
+and library that the build plan attaches to the context (:mod:`goalkit.pipeline.searchsetup`).
 
 Geometric draws ``K`` by the inverse CDF ``K = max(1, ceil(log(1 - u) / log(gamma)))`` of one
 uniform ``u``. ``past_end`` says what happens when ``t + K > T``:
@@ -56,13 +56,15 @@ and checks only the strategies it knows.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Callable
+from typing import TYPE_CHECKING, Callable
 
 import numpy as np
 
 from goalkit import rng
 from goalkit.errors import RecipeError
-from goalkit.logs.episodes import EpisodeSet
+
+if TYPE_CHECKING:  # annotations only: goalkit.logs loads the log readers (h5py)
+    from goalkit.logs.episodes import EpisodeSet
 
 #: Strategy name -> code stored in datasets (uint8, never renumbered); filled by :func:`register`
 #: from the strategy table, so it always agrees with :data:`STRATEGIES`.
@@ -458,7 +460,7 @@ def other_episode(chunk: EpisodeSet, transitions, slots, seed: int, context=None
     return StrategyGoals(goal_ep, goal_step)
 
 
-# ---- the strategy table: codes 0-5 (6-8 in goalkit.relabel.joined) -------------------------
+# ---- the strategy table: codes 0-5 (6-8 in goalkit.relabel.search_strategies) -------------------------
 register("original", original, 0, external_dim=_task_goal_dim, rules=[
     ("an original goal must be external (goal_episode -1)", lambda r: r.ge == -1)])
 register("final", final, 1, rules=[

@@ -20,6 +20,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+from goalkit.errors import DatasetError
 from goalkit.rows import INDEX_FIELDS, MATERIAL_FIELDS, SPLIT_CODES, SPLITS, TASK_REWARD_FIELD
 
 __all__ = ["FORMAT_NAME", "FORMAT_VERSION", "INDEX_COLUMNS", "MATERIAL_COLUMNS", "SPLITS", "SPLIT_CODES",
@@ -88,8 +89,6 @@ def open_set_file(path):
         which would block or never end), or is not readable as HDF5.
     """
     import h5py
-
-    from goalkit.errors import DatasetError
 
     path = Path(path)
     if not path.exists():

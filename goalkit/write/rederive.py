@@ -16,8 +16,11 @@ from pathlib import Path
 import numpy as np
 
 from goalkit.errors import DatasetError
+from goalkit.pipeline.build import provenance
 from goalkit.write.format import SPLITS
 from goalkit.write.provenance import file_digest
+from goalkit.write.resolve import recipe_of
+from goalkit.write.writer import _json_default
 
 
 def source_entries(gs) -> list:
@@ -71,8 +74,6 @@ def source_problem(entry: dict, digests: dict):
 
 def stored_recipe(gs, report):
     """The recipe stored in a set, with the set's own seed; None (and failures) when unusable."""
-    from goalkit.write.resolve import recipe_of
-
     recipe = recipe_of(gs)
     recipe = replace(recipe, seed=gs.seed)
     if recipe.output.mode != gs.mode:
@@ -130,8 +131,6 @@ def check_columns(gs, plan, rows_expected: dict, report) -> bool:
 
 def provenance_differences(gs, plan, source, digests) -> list:
     """The stored provenance against the one re-derived from the recipe and the logs."""
-    from goalkit.pipeline.build import provenance
-
     log_files = []
     for f in source.files:
         resolved = str(Path(f).resolve())
@@ -155,8 +154,6 @@ def provenance_differences(gs, plan, source, digests) -> list:
 
 def as_stored(record: dict) -> dict:
     """``record`` as it reads back from the set's JSON attribute (numpy scalars, tuples, int keys)."""
-    from goalkit.write.writer import _json_default
-
     return json.loads(json.dumps(record, sort_keys=True, default=_json_default))
 
 

@@ -9,6 +9,10 @@ import numpy as np
 
 from goalkit.config import parse_toml
 from goalkit.errors import DatasetError, GoalkitError
+from goalkit.logs import open_logs
+from goalkit.logs.layout import parse_layout
+from goalkit.pipeline.goal import make_goal_map
+from goalkit.pipeline.recipe import parse_recipe
 
 
 @dataclass
@@ -28,8 +32,6 @@ def recipe_of(goalset):
     """Parse the recipe stored in a set, with paths as they were resolved at build time."""
     from dataclasses import replace
 
-    from goalkit.pipeline.recipe import parse_recipe
-
     prov = goalset.provenance
     for key, required in (("recipe_file", False), ("layout_path", False), ("logs_path", True)):
         value = prov.get(key)
@@ -46,10 +48,6 @@ def recipe_of(goalset):
 
 def open_logs_of(goalset) -> LogsOfSet:
     """Reopen the logs (with the layout text stored in the set) and the goal map."""
-    from goalkit.logs import open_logs
-    from goalkit.logs.layout import parse_layout
-    from goalkit.pipeline.goal import make_goal_map
-
     recipe = recipe_of(goalset)
     prov = goalset.provenance
     layout = None

@@ -30,12 +30,22 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from goalkit.audit import audit_into
 from goalkit.errors import DatasetError, GoalkitError
 from goalkit.logs.episodes import chunk_bounds
+from goalkit.pipeline.build import chunk_transitions, final_summary
+from goalkit.pipeline.chunk import relabel_chunk
+from goalkit.pipeline.plan import make_plan, split_rows
+from goalkit.pipeline.summary import SummaryBuilder
 from goalkit.relabel.strategies import strategy_names
 from goalkit.reward import score
 from goalkit.write.format import SPLIT_CODES, SPLITS
-from goalkit.write.seal import stored_strategy_codes
+from goalkit.write.reader import GoalSet
+from goalkit.write.rederive import (as_stored, check_columns, differences, provenance_differences,
+                                    source_entries, source_problem, stored_recipe)
+from goalkit.write.rules import check_goal_rules
+from goalkit.write.seal import check_layout, check_seal, stored_strategy_codes
+from goalkit.write.search_checks import check_joined
 
 
 @dataclass
@@ -77,8 +87,6 @@ def _first(mask) -> int:
 
 def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
     """Check stored rows ``cols`` of one chunk against the logs and the rules (no re-derivation)."""
-    from goalkit.write.rules import check_goal_rules
-
     n = len(cols["source_episode"])
     if n == 0:
         return
@@ -150,7 +158,6 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
         if mask.any():
             i = _first(mask)
             report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): {message}")
-    from goalkit.write.joined_checks import check_joined
 
     check_joined(plan, chunk, cols, phi, pos, split_name, report, row0, _row_text)
     for name, ref in score(plan.recipe.reward, achieved, cols["goal"]).columns().items():
@@ -212,15 +219,6 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) 
     DatasetError
         When the file cannot be read as a set (naming the file and the key).
     """
-    from goalkit.pipeline.build import chunk_transitions, final_summary
-    from goalkit.pipeline.chunk import relabel_chunk
-    from goalkit.pipeline.plan import make_plan, split_rows, strategy_names
-    from goalkit.pipeline.summary import SummaryBuilder
-    from goalkit.write.reader import GoalSet
-    from goalkit.write.rederive import (as_stored, check_columns, differences, provenance_differences,
-                                        source_entries, source_problem, stored_recipe)
-    from goalkit.write.seal import check_layout, check_seal
-
     report = VerifyReport(max_failures=max_failures)
     with GoalSet(path) as gs:
         # 0. what is stored: attributes, groups and columns as a set has them; the seal
@@ -259,7 +257,7 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) 
         report.checked["columns"] = len(gs.manifest)
         # 4 + 5. rows, checked and re-derived; the summary re-derived alongside
         gpt = recipe.mixture.goals_per_transition
-        summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed)
+        summary = SummaryBuilder(strategy_names(), plan.total_transitions * gpt, recipe.seed)
         cursor = {s: 0 for s in SPLITS}
         total = {s: gs.rows(s) for s in SPLITS}
         stored_names = {s: gs.columns(s) for s in SPLITS}
@@ -291,8 +289,6 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) 
         for message in provenance_differences(gs, plan, source, digests):
             report.fail(message)
     if audit:  # 6. rules and laws re-stated independently of the builder (docs/audit.md)
-        from goalkit.audit import audit_into
-
         audit_into(path, report)
     return report
 

@@ -78,6 +78,6 @@ def test_the_cycle_finder_finds_a_planted_cycle():
 def test_producers_and_runners_do_not_import_the_engine():
     edges = _imports()
     engine = "goalkit.pipeline.build"
-    for name in ("inprocess", "sharded", "workers", "dask_build", "buildfolder", "shards", "chunk"):
+    for name in ("inprocess", "sharded", "workers", "dask_build", "buildfolder", "shardfiles", "chunk"):
         assert engine not in edges[f"goalkit.pipeline.{name}"], name
     assert {"goalkit.pipeline.inprocess", "goalkit.pipeline.sharded"} <= edges[engine]

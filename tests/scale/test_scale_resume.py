@@ -17,7 +17,7 @@ import psutil
 import pytest
 
 from goalkit.pipeline.buildfolder import folder_of
-from goalkit.pipeline.shards import shard_meta
+from goalkit.pipeline.shardfiles import shard_meta
 
 from conftest import GOALKIT, sha256
 
@@ -251,7 +251,7 @@ def test_a_pool_broken_while_shards_are_handed_out_reports_a_lost_worker(tmp_pat
     # submitting the next one raises BrokenProcessPool in the coordinator (not in a future).
     from concurrent.futures.process import BrokenProcessPool
 
-    from goalkit.pipeline.shards import ShardSpec
+    from goalkit.pipeline.shardfiles import ShardSpec
     from goalkit.pipeline.workers import LocalRunner, Payload
 
     specs = [ShardSpec(index=i, start=i, stop=i + 1, first_episode=i, last_episode=i, transitions=5)

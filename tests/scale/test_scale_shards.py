@@ -11,7 +11,7 @@ from hypothesis import given, settings, strategies as st
 from goalkit.outputs import host_tag
 from goalkit.pipeline.buildfolder import BuildFolder, build_key, folder_of
 from goalkit.pipeline.chunk import ChunkRows
-from goalkit.pipeline.shards import ShardError, check_shard, plan_shards, read_shard, shard_meta, write_shard
+from goalkit.pipeline.shardfiles import ShardError, check_shard, plan_shards, read_shard, shard_meta, write_shard
 from goalkit.pipeline.workers import GOAL_TABLE_FILE, make_payload
 
 

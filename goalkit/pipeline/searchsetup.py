@@ -1,4 +1,4 @@
-"""Give a build's relabelling context its goal search and goal library; report them.
+"""Set up a build's goal search and goal library (codes 6-8) on its relabelling context; report them.
 
 Called once by :func:`goalkit.pipeline.plan.make_plan`. Both objects are picklable plan data
 (the faiss indexes travel serialised), so worker processes and Dask tasks get them with the
@@ -10,6 +10,10 @@ from __future__ import annotations
 from dataclasses import replace
 
 import numpy as np
+
+from goalkit.relabel.library import match_library, read_targets
+from goalkit.relabel.search import build_goal_search
+from goalkit.write.provenance import describe_files
 
 
 def attach_searches(recipe, context, goal_table, goal_map, episode_ids, lengths, splits):
@@ -35,14 +39,10 @@ def attach_searches(recipe, context, goal_table, goal_map, episode_ids, lengths,
     changes = {}
     hops = [n for n in ("neighbour", "near_miss") if n in active]
     if hops:
-        from goalkit.relabel.search import build_goal_search
-
         changes["neighbours"] = build_goal_search(
             goal_table, episode_ids, lengths, splits, recipe.reward, k=mix.neighbours, method=mix.index,
             target_recall=mix.recall, seed=recipe.seed, file=recipe.file, key=f"relabel.weights.{hops[0]}")
     if "library" in active:
-        from goalkit.relabel.library import match_library, read_targets
-
         targets = read_targets(mix.library, goal_map, np.dtype(recipe.goal.dtype))
         changes["library"] = match_library(targets, goal_table, episode_ids, lengths, recipe.reward,
                                            file=mix.library)
@@ -97,8 +97,6 @@ def search_provenance(context) -> dict:
         out["neighbour_index"] = search.describe()
     lib = getattr(context, "library", None)
     if lib is not None:
-        from goalkit.write.provenance import describe_files
-
         out["library"] = {**lib.describe(), "files": describe_files([lib.file])}
     return out
 
