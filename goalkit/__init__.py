@@ -24,7 +24,7 @@ import importlib
 __version__ = "0.1.0"
 
 from goalkit.errors import (DatasetError, EmbeddingError, GoalkitError, LayoutError,  # noqa: E402
-                            LogError, OutputError, RecipeError)
+                            LogError, OutputError, ParameterError, RecipeError, StrategyError)
 
 #: Public name -> the module that defines it (imported on first use).
 _LAZY = {
@@ -59,7 +59,7 @@ _LAZY = {
 }
 
 _ERRORS = ["GoalkitError", "LogError", "LayoutError", "RecipeError", "DatasetError", "EmbeddingError",
-           "OutputError"]
+           "OutputError", "ParameterError", "StrategyError"]
 
 # ``tune`` is also the name of the subpackage goalkit.tune, which Python binds as an attribute of
 # goalkit once any of its modules is imported; that package is made callable (it calls

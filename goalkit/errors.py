@@ -74,3 +74,50 @@ class EmbeddingError(GoalkitError):
 
 class OutputError(GoalkitError):
     """An output cannot be written safely: it is an input, it exists, or a link is in the way."""
+
+
+class ParameterError(GoalkitError, ValueError):
+    """A library object was given an impossible value for one of its own parameters.
+
+    Raised by the domain objects (:class:`~goalkit.reward.RewardRule`,
+    :class:`~goalkit.relabel.Mixture`), whoever builds them: it names the object and the
+    parameter, never a file, e.g. ``RewardRule threshold: expected a finite number >= 0, got
+    -1.0``. The recipe loader re-raises it with :meth:`in_recipe`, naming the recipe file and
+    key. Also a :class:`ValueError`, as Python code building the object would expect.
+
+    Parameters
+    ----------
+    message : str
+        What is wrong and what was expected.
+    owner : str
+        The object's class name, e.g. ``"RewardRule"``.
+    parameter : str, optional
+        The parameter, as named by the constructor; a dotted path for an entry of a mapping
+        (``"weights.future"``). None when the problem is the whole object.
+
+    Examples
+    --------
+    >>> err = ParameterError("expected a finite number >= 0, got -1.0", owner="RewardRule", parameter="threshold")
+    >>> str(err)
+    'RewardRule threshold: expected a finite number >= 0, got -1.0'
+    >>> str(err.in_recipe("recipe.toml", "reward"))
+    'recipe.toml: key reward.threshold: expected a finite number >= 0, got -1.0'
+    """
+
+    def __init__(self, message: str, *, owner: str, parameter: str | None = None):
+        self.owner = owner
+        self.parameter = parameter
+        super().__init__(message)
+
+    def render(self) -> str:
+        where = self.owner if self.parameter is None else f"{self.owner} {self.parameter}"
+        return f"{where}: {self.message}"
+
+    def in_recipe(self, file, table: str) -> "RecipeError":
+        """The same problem as a recipe error: ``file``, key ``table.parameter``."""
+        key = table if self.parameter is None else f"{table}.{self.parameter}"
+        return RecipeError(self.message, file=file, key=key)
+
+
+class StrategyError(GoalkitError):
+    """A relabelling strategy cannot serve the episodes it was given (names the log file and episode)."""

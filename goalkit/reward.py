@@ -34,7 +34,7 @@ from typing import Any, Mapping
 import numpy as np
 
 from goalkit.config import check_keys, closest
-from goalkit.errors import RecipeError
+from goalkit.errors import ParameterError
 
 #: Distance names accepted in ``[reward] distance``.
 DISTANCES = ("euclidean", "l1", "chebyshev", "cosine", "box")
@@ -54,10 +54,15 @@ def within(d, threshold, inclusive: bool) -> np.ndarray:
     return d <= threshold if inclusive else d < threshold
 
 
-def _choice_error(what: str, value, valid, *, file, key) -> RecipeError:
+def _bad(message: str, parameter: str | None = None) -> ParameterError:
+    """A :class:`ParameterError` of :class:`RewardRule`'s ``parameter``."""
+    return ParameterError(message, owner="RewardRule", parameter=parameter)
+
+
+def _choice_error(what: str, value, valid, *, parameter) -> ParameterError:
     hint = closest(str(value), valid)
     tip = f"; did you mean '{hint}'?" if hint else ""
-    return RecipeError(f"unknown {what} {value!r}{tip} valid: {', '.join(valid)}", file=file, key=key)
+    return _bad(f"unknown {what} {value!r}{tip} valid: {', '.join(valid)}", parameter)
 
 
 def _is_number(x) -> bool:
@@ -96,8 +101,8 @@ class RewardRule:
 
     Raises
     ------
-    RecipeError
-        If a value is impossible (see :meth:`from_table` for the list).
+    ParameterError
+        If a value is impossible (see :meth:`from_table` for the list), naming the parameter.
 
     Examples
     --------
@@ -134,82 +139,72 @@ class RewardRule:
                             ("inclusive", inclusive), ("form", form), ("weights", weights),
                             ("clip", clip), ("end_on_reach", end_on_reach)):
             object.__setattr__(self, name, value)
-        self._validate(None)
+        self._validate()
 
     def replace(self, **changes) -> "RewardRule":
         """Return a copy with some constructor arguments changed (e.g. ``threshold=0.1``)."""
         return RewardRule(**{**self.describe(), **changes})
 
     # ---- checking ----------------------------------------------------------------------
-    def _validate(self, file) -> None:
+    def _validate(self) -> None:
         if self.distance_name not in DISTANCES:
-            raise _choice_error("distance", self.distance_name, DISTANCES, file=file, key="reward.distance")
+            raise _choice_error("distance", self.distance_name, DISTANCES, parameter="distance")
         if self.form not in FORMS:
-            raise _choice_error("reward form", self.form, FORMS, file=file, key="reward.form")
+            raise _choice_error("reward form", self.form, FORMS, parameter="form")
         if not isinstance(self.inclusive, (bool, np.bool_)):
-            raise RecipeError(f"expected true or false, got {self.inclusive!r}", file=file,
-                              key="reward.inclusive")
+            raise _bad(f"expected true or false, got {self.inclusive!r}", "inclusive")
         if not isinstance(self.end_on_reach, (bool, np.bool_)):
-            raise RecipeError(f"expected true or false, got {self.end_on_reach!r}", file=file,
-                              key="reward.end_on_reach")
+            raise _bad(f"expected true or false, got {self.end_on_reach!r}", "end_on_reach")
         thr = self.threshold
         if self.distance_name == "box":
             if not isinstance(thr, tuple):
-                raise RecipeError(
-                    f"distance 'box' expects a list of tolerances, one per goal dimension, got "
-                    f"{thr!r} (a single tolerance for every dimension is distance = 'chebyshev')",
-                    file=file, key="reward.threshold")
+                raise _bad(f"distance 'box' expects a list of tolerances, one per goal dimension, got "
+                           f"{thr!r} (a single tolerance for every dimension is distance = 'chebyshev')",
+                           "threshold")
             if len(thr) == 0 or not all(_is_number(x) and math.isfinite(x) and x > 0 for x in thr):
-                raise RecipeError(f"expected finite tolerances > 0, one per goal dimension, got "
-                                  f"{list(thr)}", file=file, key="reward.threshold")
+                raise _bad(f"expected finite tolerances > 0, one per goal dimension, got "
+                           f"{list(thr)}", "threshold")
             if self.weights is not None:
-                raise RecipeError("distance 'box' takes no weights (scale the tolerances in "
-                                  "threshold instead)", file=file, key="reward.weights")
+                raise _bad("distance 'box' takes no weights (scale the tolerances in "
+                           "threshold instead)", "weights")
         else:
             if isinstance(thr, tuple):
-                raise RecipeError(f"a list of tolerances needs distance = 'box'; distance "
-                                  f"'{self.distance_name}' expects one number, got {list(thr)}",
-                                  file=file, key="reward.threshold")
+                raise _bad(f"a list of tolerances needs distance = 'box'; distance "
+                           f"'{self.distance_name}' expects one number, got {list(thr)}", "threshold")
             if not _is_number(thr) or not math.isfinite(thr) or thr < 0:
-                raise RecipeError(f"expected a finite number >= 0, got {thr!r}", file=file,
-                                  key="reward.threshold")
+                raise _bad(f"expected a finite number >= 0, got {thr!r}", "threshold")
         if self.weights is not None:
             w = self.weights
             if not isinstance(w, tuple) or len(w) == 0:
-                raise RecipeError(f"expected a non-empty list of weights, got {w!r}", file=file,
-                                  key="reward.weights")
+                raise _bad(f"expected a non-empty list of weights, got {w!r}", "weights")
             if not all(_is_number(x) and math.isfinite(x) and x >= 0 for x in w):
-                raise RecipeError(f"expected finite weights >= 0, got {list(w)}", file=file,
-                                  key="reward.weights")
+                raise _bad(f"expected finite weights >= 0, got {list(w)}", "weights")
             if not any(x > 0 for x in w):
-                raise RecipeError("expected at least one weight > 0, got all zero", file=file,
-                                  key="reward.weights")
+                raise _bad("expected at least one weight > 0, got all zero", "weights")
         if self.form == "clipped-negative-distance":
             c = self.clip
             if c is None:
-                raise RecipeError("form 'clipped-negative-distance' needs clip (a number > 0)",
-                                  file=file, key="reward.clip")
+                raise _bad("form 'clipped-negative-distance' needs clip (a number > 0)", "clip")
             if not _is_number(c) or not math.isfinite(c) or c <= 0:
-                raise RecipeError(f"expected a finite number > 0, got {c!r}", file=file,
-                                  key="reward.clip")
+                raise _bad(f"expected a finite number > 0, got {c!r}", "clip")
         elif self.clip is not None:
-            raise RecipeError(f"clip is used only with form 'clipped-negative-distance', "
-                              f"not '{self.form}'", file=file, key="reward.clip")
+            raise _bad(f"clip is used only with form 'clipped-negative-distance', "
+                       f"not '{self.form}'", "clip")
 
-    def check_dim(self, goal_dim: int, file=None) -> None:
+    def check_dim(self, goal_dim: int) -> None:
         """Check the rule against the goal dimension ``goal_dim``.
 
         Raises
         ------
-        RecipeError
+        ParameterError
             If the box tolerances or the weights do not have one entry per goal dimension.
         """
         if self.distance_name == "box" and len(self.threshold) != goal_dim:
-            raise RecipeError(f"expected {goal_dim} tolerances (one per goal dimension), got "
-                              f"{len(self.threshold)}", file=file, key="reward.threshold")
+            raise _bad(f"expected {goal_dim} tolerances (one per goal dimension), got "
+                       f"{len(self.threshold)}", "threshold")
         if self.weights is not None and len(self.weights) != goal_dim:
-            raise RecipeError(f"expected {goal_dim} weights (one per goal dimension), got "
-                              f"{len(self.weights)}", file=file, key="reward.weights")
+            raise _bad(f"expected {goal_dim} weights (one per goal dimension), got "
+                       f"{len(self.weights)}", "weights")
 
     # ---- scoring -----------------------------------------------------------------------
     def _pair(self, achieved, goal) -> tuple[np.ndarray, np.ndarray]:
@@ -332,61 +327,55 @@ class RewardRule:
 
     # ---- the recipe table --------------------------------------------------------------
     @classmethod
-    def from_table(cls, table: Mapping[str, Any], file=None) -> "RewardRule":
-        """Build a rule from the recipe's ``[reward]`` table.
+    def from_table(cls, table: Mapping[str, Any]) -> "RewardRule":
+        """Build a rule from a mapping of its parameters, as in the recipe's ``[reward]`` table.
 
         Parameters
         ----------
         table : mapping
-            The parsed ``[reward]`` table. ``threshold`` is required; ``distance`` defaults
-            to ``"euclidean"``, ``form`` to ``"sparse"``, ``inclusive`` to true,
-            ``end_on_reach`` to false.
-        file : str or Path, optional
-            The recipe file, for messages.
+            Parameter name -> value, with TOML's types (lists, not tuples). ``threshold`` is
+            required; ``distance`` defaults to ``"euclidean"``, ``form`` to ``"sparse"``,
+            ``inclusive`` to true, ``end_on_reach`` to false.
 
         Raises
         ------
-        RecipeError
-            On an unknown key (lists the valid keys and the closest), an unknown distance or
-            form (lists the valid ones), a negative or non-numeric threshold, box tolerances
+        ParameterError
+            On an unknown parameter (lists the valid ones and the closest), an unknown distance
+            or form (lists the valid ones), a negative or non-numeric threshold, box tolerances
             that are not a list of positive numbers, negative or all-zero weights, a clip
             <= 0 or missing for ``clipped-negative-distance``, or a clip given for another form.
-            The goal dimension is checked separately by :meth:`check_dim`.
+            The goal dimension is checked separately by :meth:`check_dim`. The recipe loader
+            re-raises it naming the recipe file and key.
         """
         if not isinstance(table, Mapping):
-            raise RecipeError(f"expected a table, got {table!r}", file=file, key="reward")
-        check_keys(table, TABLE_KEYS, file=file, section="[reward]", error=RecipeError)
+            raise _bad(f"expected a table of parameter -> value, got {table!r}")
+        check_keys(table, TABLE_KEYS, file=None, section="[reward]",
+                   error=lambda message, file=None, key=None: _bad(message, key))
         if "threshold" not in table:
-            raise RecipeError("missing threshold (a number >= 0, or for distance 'box' a list of "
-                              "tolerances)", file=file, key="reward.threshold")
+            raise _bad("missing threshold (a number >= 0, or for distance 'box' a list of tolerances)",
+                       "threshold")
         distance = table.get("distance", "euclidean")
         form = table.get("form", "sparse")
         for key, value in (("distance", distance), ("form", form)):
             if not isinstance(value, str):
-                raise RecipeError(f"expected a string, got {value!r}", file=file, key=f"reward.{key}")
+                raise _bad(f"expected a string, got {value!r}", key)
         thr = table["threshold"]
         if isinstance(thr, list):
             if not all(_is_number(x) for x in thr):
-                raise RecipeError(f"expected a list of numbers, got {thr!r}", file=file,
-                                  key="reward.threshold")
+                raise _bad(f"expected a list of numbers, got {thr!r}", "threshold")
             thr = tuple(float(x) for x in thr)
         elif not _is_number(thr):
-            raise RecipeError(f"expected a number, got {thr!r}", file=file, key="reward.threshold")
+            raise _bad(f"expected a number, got {thr!r}", "threshold")
         weights = table.get("weights")
         if weights is not None:
             if not isinstance(weights, list) or not all(_is_number(x) for x in weights):
-                raise RecipeError(f"expected a list of numbers, got {weights!r}", file=file,
-                                  key="reward.weights")
+                raise _bad(f"expected a list of numbers, got {weights!r}", "weights")
             weights = tuple(float(x) for x in weights)
         clip = table.get("clip")
         if clip is not None and not _is_number(clip):
-            raise RecipeError(f"expected a number, got {clip!r}", file=file, key="reward.clip")
-        try:
-            return cls(distance=distance, threshold=thr, inclusive=table.get("inclusive", True),
-                       form=form, weights=weights, clip=clip,
-                       end_on_reach=table.get("end_on_reach", False))
-        except RecipeError as exc:
-            raise RecipeError(exc.message, file=file, key=exc.key) from None
+            raise _bad(f"expected a number, got {clip!r}", "clip")
+        return cls(distance=distance, threshold=thr, inclusive=table.get("inclusive", True),
+                   form=form, weights=weights, clip=clip, end_on_reach=table.get("end_on_reach", False))
 
 
 @dataclass(frozen=True, eq=False)

@@ -11,7 +11,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from goalkit.errors import RecipeError
+from goalkit.errors import ParameterError, RecipeError
 from goalkit.logs import open_logs
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.logs.layout import load_layout
@@ -172,7 +172,10 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
     first = source.read(0, 1)
     obs_shape, act_shape = first.observations.shape[1:], first.actions.shape[1:]
     goal_map = make_goal_map(recipe.goal, source, obs_shape[0] if obs_shape else 0, file=recipe.file)
-    recipe.reward.check_dim(goal_map.dim, file=recipe.file)
+    try:
+        recipe.reward.check_dim(goal_map.dim)
+    except ParameterError as exc:
+        raise exc.in_recipe(recipe.file, "reward") from None
     offsets = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
     splits = split_codes(ids, recipe.validation, recipe.salt)
     context = RelabelContext({c: ids[splits == c] for c in np.unique(splits).tolist()},

@@ -12,7 +12,7 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 
 from goalkit.config import check_keys, expect_type, parse_toml, read_text_file
-from goalkit.errors import RecipeError
+from goalkit.errors import ParameterError, RecipeError
 from goalkit.outputs import small_toml
 from goalkit.relabel import Mixture
 from goalkit.reward import RewardRule
@@ -253,18 +253,26 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None) -> Recipe
     skip = logs.get("skip_bad_episodes", False)
     expect_type(skip, bool, file=file, key="logs.skip_bad_episodes", what="true or false", error=RecipeError)
     goal = _parse_goal(_table(doc, "goal", file), base, file)
-    mixture = Mixture.from_table(_table(doc, "relabel", file), file)
+    mixture = _in_recipe(Mixture.from_table, _table(doc, "relabel", file), file, "relabel")
     if mixture.library is not None:  # relative to the recipe's folder, like every other path
         lib = _path(mixture.library, base, file, "relabel.library")
         if not lib.is_file():
             raise RecipeError(f"no such goal library file: {lib}", file=file, key="relabel.library")
         mixture = replace(mixture, library=str(lib))
-    reward = RewardRule.from_table(_table(doc, "reward", file), file)
+    reward = _in_recipe(RewardRule.from_table, _table(doc, "reward", file), file, "reward")
     validation, salt = _parse_split(_table(doc, "split", file, required=False), file)
     output = _parse_output(_table(doc, "output", file), base, file)
     return Recipe(text=text, file=str(file), seed=seed, logs_path=logs_path, layout_path=layout_path,
                   skip_bad_episodes=skip, goal=goal, mixture=mixture, reward=reward,
                   validation=validation, salt=salt, output=output)
+
+
+def _in_recipe(make, table, file, name: str):
+    """``make(table)``, its :class:`ParameterError` re-raised naming the recipe file and key ``[name]``."""
+    try:
+        return make(table)
+    except ParameterError as exc:
+        raise exc.in_recipe(file, name) from None
 
 
 def load_recipe(path) -> Recipe:

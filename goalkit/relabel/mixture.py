@@ -10,7 +10,7 @@ import numpy as np
 
 from goalkit import rng
 from goalkit.config import check_keys, closest
-from goalkit.errors import RecipeError
+from goalkit.errors import ParameterError
 from goalkit.relabel.strategies import CODES, PAST_END, STRATEGIES, locate
 
 if TYPE_CHECKING:  # annotations only: goalkit.logs loads the log readers (h5py)
@@ -26,6 +26,11 @@ TABLE_KEYS = ("goals_per_transition", "gamma", "past_end", "weights", "neighbour
 
 #: Values of the ``index`` key (see :class:`goalkit.goals.neighbours.IndexSettings`).
 INDEX_METHODS = ("auto", "exact", "ivf", "hnsw")
+
+
+def _bad(message: str, parameter: str | None = None) -> ParameterError:
+    """A :class:`ParameterError` of :class:`Mixture`'s ``parameter``."""
+    return ParameterError(message, owner="Mixture", parameter=parameter)
 
 
 def _is_number(x) -> bool:
@@ -132,84 +137,76 @@ class Mixture:
 
     def __post_init__(self):
         object.__setattr__(self, "weights", dict(self.weights))
-        self._validate(None)
+        self._validate()
 
     # ---- checking ----------------------------------------------------------------------
-    def _validate(self, file) -> None:
+    def _validate(self) -> None:
         if not isinstance(self.weights, Mapping) or not self.weights:
-            raise RecipeError("expected a table of strategy name -> weight with at least one "
-                              f"entry; strategies: {', '.join(STRATEGIES)}", file=file,
-                              key="relabel.weights")
+            raise _bad("expected strategy name -> weight, at least one entry; strategies: "
+                       f"{', '.join(STRATEGIES)}", "weights")
         for name, w in self.weights.items():
-            key = f"relabel.weights.{name}"
+            parameter = f"weights.{name}"
             if name not in STRATEGIES:
                 hint = closest(str(name), STRATEGIES)
                 tip = f"; did you mean '{hint}'?" if hint else ""
-                raise RecipeError(f"unknown strategy '{name}'{tip} valid: {', '.join(STRATEGIES)}",
-                                  file=file, key=key)
+                raise _bad(f"unknown strategy '{name}'{tip} valid: {', '.join(STRATEGIES)}", parameter)
             if not _is_number(w) or not math.isfinite(w):
-                raise RecipeError(f"expected a finite number >= 0, got {w!r}", file=file, key=key)
+                raise _bad(f"expected a finite number >= 0, got {w!r}", parameter)
             if w < 0:
-                raise RecipeError(f"expected a weight >= 0, got {w!r}", file=file, key=key)
+                raise _bad(f"expected a weight >= 0, got {w!r}", parameter)
         if not any(w > 0 for w in self.weights.values()):
-            raise RecipeError("all strategy weights are zero; give at least one a weight > 0",
-                              file=file, key="relabel.weights")
+            raise _bad("all strategy weights are zero; give at least one a weight > 0", "weights")
         g = self.goals_per_transition
         if (isinstance(g, (bool, np.bool_)) or not isinstance(g, (int, np.integer))
                 or not 1 <= g <= MAX_GOALS_PER_TRANSITION):
-            raise RecipeError(f"expected an integer from 1 to {MAX_GOALS_PER_TRANSITION}, got {g!r}", file=file,
-                              key="relabel.goals_per_transition")
+            raise _bad(f"expected an integer from 1 to {MAX_GOALS_PER_TRANSITION}, got {g!r}",
+                       "goals_per_transition")
         if not _is_number(self.gamma) or not 0.0 < self.gamma < 1.0:
-            raise RecipeError(f"expected a number strictly between 0 and 1, got {self.gamma!r}",
-                              file=file, key="relabel.gamma")
+            raise _bad(f"expected a number strictly between 0 and 1, got {self.gamma!r}", "gamma")
         if self.past_end not in PAST_END:
             hint = closest(str(self.past_end), PAST_END)
             tip = f"; did you mean '{hint}'?" if hint else ""
-            raise RecipeError(f"unknown past_end {self.past_end!r}{tip} valid: {', '.join(PAST_END)}",
-                              file=file, key="relabel.past_end")
+            raise _bad(f"unknown past_end {self.past_end!r}{tip} valid: {', '.join(PAST_END)}", "past_end")
         k = self.neighbours
         if isinstance(k, (bool, np.bool_)) or not isinstance(k, (int, np.integer)) or not 1 <= k <= 1024:
-            raise RecipeError(f"expected an integer from 1 to 1024, got {k!r}", file=file, key="relabel.neighbours")
+            raise _bad(f"expected an integer from 1 to 1024, got {k!r}", "neighbours")
         if not _is_number(self.recall) or not 0.0 < self.recall <= 1.0:
-            raise RecipeError(f"expected a recall in (0, 1], got {self.recall!r}", file=file, key="relabel.recall")
+            raise _bad(f"expected a recall in (0, 1], got {self.recall!r}", "recall")
         if self.index not in INDEX_METHODS:
             hint = closest(str(self.index), INDEX_METHODS)
             tip = f"; did you mean '{hint}'?" if hint else ""
-            raise RecipeError(f"unknown index {self.index!r}{tip} valid: {', '.join(INDEX_METHODS)}",
-                              file=file, key="relabel.index")
+            raise _bad(f"unknown index {self.index!r}{tip} valid: {', '.join(INDEX_METHODS)}", "index")
         if self.library is not None and (not isinstance(self.library, str) or not self.library):
-            raise RecipeError(f"expected the path of a .npy or .npz file, got {self.library!r}", file=file,
-                              key="relabel.library")
+            raise _bad(f"expected the path of a .npy or .npz file, got {self.library!r}", "library")
         if self.weights.get("library", 0) > 0 and self.library is None:
-            raise RecipeError("strategy 'library' needs target goals: add library = \"targets.npy\" "
-                              "(an .npy/.npz file) to [relabel]", file=file, key="relabel.library")
+            raise _bad("strategy 'library' needs target goals: give library, the path of an .npy/.npz "
+                       "file of targets (goal vectors)", "library")
 
     @classmethod
-    def from_table(cls, table: Mapping[str, Any], file=None) -> "Mixture":
-        """Build a mixture from the recipe's ``[relabel]`` table (with ``[relabel.weights]``).
+    def from_table(cls, table: Mapping[str, Any]) -> "Mixture":
+        """Build a mixture from a mapping of its parameters, as in the recipe's ``[relabel]`` table.
 
         Missing keys take the defaults of :class:`Mixture` (weights ``{future = 1}``).
 
         Raises
         ------
-        RecipeError
-            On an unknown key or strategy name (lists the valid ones and the closest), a
+        ParameterError
+            On an unknown parameter or strategy name (lists the valid ones and the closest), a
             negative, non-numeric or all-zero weight, ``gamma`` outside (0, 1),
             ``goals_per_transition`` not an integer from 1 to 1024, an unknown ``past_end`` or
             ``index``, ``neighbours`` outside 1 .. 1024, ``recall`` outside (0, 1], a weighted
-            ``library`` strategy without a ``library`` file.
+            ``library`` strategy without a ``library`` file. The recipe loader re-raises it
+            naming the recipe file and key.
         """
         if not isinstance(table, Mapping):
-            raise RecipeError(f"expected a table, got {table!r}", file=file, key="relabel")
-        check_keys(table, TABLE_KEYS, file=file, section="[relabel]", error=RecipeError)
+            raise _bad(f"expected a table of parameter -> value, got {table!r}")
+        check_keys(table, TABLE_KEYS, file=None, section="[relabel]",
+                   error=lambda message, file=None, key=None: _bad(message, key))
         kwargs = {k: table[k] for k in TABLE_KEYS if k in table}
         if "weights" in kwargs and not isinstance(kwargs["weights"], Mapping):
-            raise RecipeError(f"expected a table [relabel.weights] of strategy name -> weight, got "
-                              f"{kwargs['weights']!r}", file=file, key="relabel.weights")
-        try:
-            return cls(**kwargs)
-        except RecipeError as exc:
-            raise RecipeError(exc.message, file=file, key=exc.key) from None
+            raise _bad(f"expected a table [relabel.weights] of strategy name -> weight, got "
+                       f"{kwargs['weights']!r}", "weights")
+        return cls(**kwargs)
 
     def describe(self) -> dict:
         """Return a JSON-able description (the ``[relabel]`` table that rebuilds this mixture)."""

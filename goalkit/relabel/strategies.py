@@ -61,7 +61,7 @@ from typing import TYPE_CHECKING, Callable
 import numpy as np
 
 from goalkit import rng
-from goalkit.errors import RecipeError
+from goalkit.errors import StrategyError
 
 if TYPE_CHECKING:  # annotations only: goalkit.logs loads the log readers (h5py)
     from goalkit.logs.episodes import EpisodeSet
@@ -309,15 +309,14 @@ def original(chunk: EpisodeSet, transitions, slots, seed: int, context=None) -> 
 
     Raises
     ------
-    RecipeError
-        If the logs have no task goals (layout key ``task_goal``).
+    StrategyError
+        If the logs have no task goals (layout key ``task_goal``), naming the log file.
     """
     transitions = np.asarray(transitions, dtype=np.int64)
     _slots(slots, transitions)
     if chunk.task_goals is None:
-        raise RecipeError("strategy 'original' needs the log's own goals, but the logs have none "
-                          "(map them with task_goal in the layout's [keys], or give 'original' "
-                          "weight 0)", file=chunk.source or None, key="relabel.weights.original")
+        raise StrategyError("strategy 'original' needs the log's own goals, but the logs have none "
+                            "(a layout maps them with task_goal in its [keys])", file=chunk.source or None)
     m = len(transitions)
     ext = np.asarray(chunk.task_goals, dtype=np.float64)
     ext = ext.reshape(len(ext), -1)[transitions]
@@ -427,7 +426,7 @@ def other_episode(chunk: EpisodeSet, transitions, slots, seed: int, context=None
 
     Raises
     ------
-    RecipeError
+    StrategyError
         If a split has a single episode (there is no other episode to take a goal from).
     """
     slots = _slots(slots, transitions)
@@ -448,9 +447,8 @@ def other_episode(chunk: EpisodeSet, transitions, slots, seed: int, context=None
         lengths = context.split_lengths[code]
         n = len(ids)
         if n < 2:
-            raise RecipeError(f"strategy 'other_episode' needs at least two episodes in each split; "
-                              f"split {code} has {n}", file=chunk.source or None,
-                              key="relabel.weights.other_episode", episode=int(eid[rows[0]]))
+            raise StrategyError(f"strategy 'other_episode' needs at least two episodes in each split; "
+                                f"split {code} has {n}", file=chunk.source or None, episode=int(eid[rows[0]]))
         e, tt, ss = eid[rows], t[rows], slots[rows]
         own = np.searchsorted(ids, e)
         k = rng.integers(seed, 0, n - 1, e, tt, ss, "episode")

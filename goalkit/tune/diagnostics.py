@@ -307,7 +307,7 @@ def diagnose(episodes: EpisodeSet, goal_map, rule, *, horizons=HORIZONS, quantil
 
     Raises
     ------
-    RecipeError
+    ParameterError
         If the rule's tolerances or weights do not match the goal map's dimension.
     """
     rule.check_dim(goal_map.dim)

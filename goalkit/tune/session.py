@@ -36,6 +36,7 @@ from pathlib import Path
 import numpy as np
 
 from goalkit.config import closest
+from goalkit.errors import ParameterError
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.pipeline.chunk import relabel_chunk
 from goalkit.pipeline.plan import make_plan, open_source, strategy_names
@@ -342,7 +343,10 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
     gmap = plan.goal_map
     gdtype = np.dtype(recipe.goal.dtype)
     for n in names:
-        candidate_rule(recipe.reward, n, gmap.dim).check_dim(gmap.dim, file=recipe.file)
+        try:
+            candidate_rule(recipe.reward, n, gmap.dim).check_dim(gmap.dim)
+        except ParameterError as exc:
+            raise exc.in_recipe(recipe.file, "reward") from None
     if file_pairs is not None and file_pairs.dim != gmap.dim:
         raise LabelError(f"expected pairs of goal dimension {gmap.dim} (the recipe's goal map), got "
                          f"{file_pairs.dim}", file=file_pairs.source, key="achieved")

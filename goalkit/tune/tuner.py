@@ -83,7 +83,7 @@ class ThresholdTuner:
         ------
         TuningError
             If the pairs do not have both labels, or the choice is undefined.
-        RecipeError
+        ParameterError
             If the rule does not fit the pairs' goal dimension.
         """
         check_chooser(self.chooser, self.target, self.placement)

@@ -95,7 +95,7 @@ def test_table_order_does_not_change_the_rows():
 
 def test_describe_round_trip():
     mix = Mixture.from_table({"goals_per_transition": 5, "gamma": 0.95, "past_end": "truncate",
-                              "weights": {"original": 1, "geometric": 4}}, "recipe.toml")
+                              "weights": {"original": 1, "geometric": 4}})
     d = mix.describe()
     assert json.loads(json.dumps(d)) == d
     assert Mixture.from_table(d) == mix

@@ -1,9 +1,11 @@
-"""Every RecipeError of the [reward] and [relabel] tables: key, file and message."""
+"""Every error of the [reward] and [relabel] tables: the domain error (object and parameter, no
+file) that RewardRule and Mixture raise, and the recipe error (file and key) the loader makes of it."""
 
 import numpy as np
 import pytest
 
-from goalkit.errors import RecipeError
+from goalkit.errors import ParameterError, RecipeError, StrategyError
+from goalkit.pipeline.recipe import parse_recipe
 from goalkit.relabel import Mixture, RelabelContext
 from goalkit.reward import RewardRule
 from relabel_testdata import make_set
@@ -11,24 +13,29 @@ from relabel_testdata import make_set
 FILE = "gantry-recipe.toml"
 
 
+def _domain_then_recipe(make, table, owner, name):
+    with pytest.raises(ParameterError) as info:
+        make(table)
+    err = info.value
+    assert err.owner == owner and err.file is None and err.key is None
+    assert str(err) == f"{owner}{'' if err.parameter is None else ' ' + err.parameter}: {err.message}"
+    mapped = err.in_recipe(FILE, name)
+    assert isinstance(mapped, RecipeError) and mapped.file == FILE and mapped.message == err.message
+    return mapped
+
+
 def reward_error(table):
-    with pytest.raises(RecipeError) as info:
-        RewardRule.from_table(table, FILE)
-    assert info.value.file == FILE
-    return info.value
+    return _domain_then_recipe(RewardRule.from_table, table, "RewardRule", "reward")
 
 
 def relabel_error(table):
-    with pytest.raises(RecipeError) as info:
-        Mixture.from_table(table, FILE)
-    assert info.value.file == FILE
-    return info.value
+    return _domain_then_recipe(Mixture.from_table, table, "Mixture", "relabel")
 
 
 # ---- [reward] -----------------------------------------------------------------------------
 def test_reward_unknown_key_lists_valid_keys_and_closest():
     err = reward_error({"threshold": 0.05, "treshold": 0.1})
-    assert err.key == "treshold"
+    assert err.key == "reward.treshold"
     assert "did you mean 'threshold'?" in err.message
     assert "distance, threshold, inclusive, form, weights, clip, end_on_reach" in err.message
 
@@ -66,16 +73,16 @@ def test_reward_bad_box_tolerances(tol):
 
 
 def test_reward_check_dim():
-    box = RewardRule.from_table({"distance": "box", "threshold": [0.1, 0.1, 0.2]}, FILE)
-    box.check_dim(3, FILE)
-    with pytest.raises(RecipeError, match="expected 2 tolerances") as info:
-        box.check_dim(2, FILE)
-    assert info.value.key == "reward.threshold" and info.value.file == FILE
-    weighted = RewardRule.from_table({"threshold": 0.1, "weights": [1, 2]}, FILE)
-    weighted.check_dim(2, FILE)
-    with pytest.raises(RecipeError, match="expected 3 weights") as info:
-        weighted.check_dim(3, FILE)
-    assert info.value.key == "reward.weights"
+    box = RewardRule.from_table({"distance": "box", "threshold": [0.1, 0.1, 0.2]})
+    box.check_dim(3)
+    with pytest.raises(ParameterError, match="expected 2 tolerances") as info:
+        box.check_dim(2)
+    assert info.value.parameter == "threshold" and info.value.file is None
+    weighted = RewardRule.from_table({"threshold": 0.1, "weights": [1, 2]})
+    weighted.check_dim(2)
+    with pytest.raises(ParameterError, match="expected 3 weights") as info:
+        weighted.check_dim(3)
+    assert info.value.parameter == "weights"
 
 
 @pytest.mark.parametrize("weights", [[1.0, -0.5], [0, 0], [], 1.0, [1, "a"], [1, float("nan")]])
@@ -111,14 +118,14 @@ def test_reward_table_must_be_a_table():
 
 
 def test_reward_constructor_checks_too():
-    with pytest.raises(RecipeError):
+    with pytest.raises(ParameterError):
         RewardRule("euclidean", -1.0)
 
 
 # ---- [relabel] ----------------------------------------------------------------------------
 def test_relabel_unknown_key():
     err = relabel_error({"goals_per_transitions": 4})
-    assert err.key == "goals_per_transitions" and "did you mean 'goals_per_transition'?" in err.message
+    assert err.key == "relabel.goals_per_transitions" and "did you mean 'goals_per_transition'?" in err.message
     assert "weights" in err.message and "gamma" in err.message
 
 
@@ -172,9 +179,69 @@ def test_assign_original_without_task_goals():
     # refused even if no slot would draw 'original', so the error does not depend on the seed
     chunk = make_set([2, 3], with_task_goals=False)
     mix = Mixture({"original": 1e-9, "future": 1.0})
-    with pytest.raises(RecipeError, match="own goals") as info:
+    with pytest.raises(StrategyError, match="own goals") as info:
         mix.assign(chunk, 0, RelabelContext.from_lengths([2, 3]))
-    assert info.value.key == "relabel.weights.original"
+    assert info.value.key is None and info.value.file == "bench-log.h5"
     # weight 0 means the strategy is unused: no error
     rows = Mixture({"original": 0, "future": 1.0}).assign(chunk, 0, RelabelContext.from_lengths([2, 3]))
     assert rows.external is None and np.all(rows.goal_episode >= 0)
+
+
+# ---- the same mistakes from Python and in a recipe file ------------------------------------
+def test_python_user_gets_a_domain_error_without_file_or_key():
+    with pytest.raises(ParameterError) as info:
+        RewardRule("euclidean", -0.5)
+    assert str(info.value) == "RewardRule threshold: expected a finite number >= 0, got -0.5"
+    assert info.value.file is None and info.value.key is None
+    assert isinstance(info.value, ValueError)  # what Python code building an object expects
+    with pytest.raises(ParameterError) as info:
+        Mixture({"future": 1.0}, gamma=1.5)
+    assert str(info.value) == "Mixture gamma: expected a number strictly between 0 and 1, got 1.5"
+    with pytest.raises(ParameterError) as info:
+        Mixture({"futur": 1.0})
+    assert str(info.value).startswith("Mixture weights.futur: unknown strategy 'futur'; did you mean 'future'?")
+    assert "gantry" not in str(info.value) and "key" not in str(info.value)
+
+
+RECIPE = """
+[logs]
+path = "logs.h5"
+[goal]
+fields = ["nozzle"]
+[relabel]
+{relabel}
+[reward]
+{reward}
+[output]
+path = "set.h5"
+"""
+
+
+@pytest.mark.parametrize("relabel, reward, key, message", [
+    ("", "threshold = -0.5", "reward.threshold", "expected a finite number >= 0, got -0.5"),
+    ("", "threshold = 0.1\ndistance = \"manhatan\"", "reward.distance", "unknown distance 'manhatan'"),
+    ("", "threshold = 0.1\nform = \"clipped-negative-distance\"", "reward.clip", "needs clip"),
+    ("gamma = 1.5", "threshold = 0.1", "relabel.gamma", "expected a number strictly between 0 and 1, got 1.5"),
+    ("[relabel.weights]\nfutur = 1", "threshold = 0.1", "relabel.weights.futur", "did you mean 'future'?"),
+])
+def test_the_same_mistake_in_a_recipe_names_file_and_key(relabel, reward, key, message):
+    text = RECIPE.format(relabel=relabel, reward=reward)
+    with pytest.raises(RecipeError) as info:
+        parse_recipe(text, file=FILE)
+    err = info.value
+    assert err.file == FILE and err.key == key and message in err.message
+    assert str(err).startswith(f"{FILE}: key {key}: ")
+    assert "RewardRule" not in str(err) and "Mixture" not in str(err)
+
+
+def test_the_cli_prints_one_line_with_file_and_key_and_exits_2(tmp_path):
+    from click.testing import CliRunner
+
+    from goalkit.cli import main
+
+    recipe = tmp_path / "gantry-recipe.toml"
+    recipe.write_text(RECIPE.format(relabel="", reward="threshold = -0.5"))
+    res = CliRunner().invoke(main, ["build", str(recipe)])
+    assert res.exit_code == 2
+    assert res.stderr.strip().splitlines() == [
+        f"goalkit: error: {recipe}: key reward.threshold: expected a finite number >= 0, got -0.5"]

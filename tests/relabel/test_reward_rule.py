@@ -126,10 +126,10 @@ def test_zero_threshold_exact_match():
     {"distance": "cosine", "threshold": 0.01, "form": "clipped-negative-distance", "clip": 0.5},
 ])
 def test_describe_round_trip(table):
-    rule = RewardRule.from_table(table, "recipe.toml")
+    rule = RewardRule.from_table(table)
     d = rule.describe()
     assert json.loads(json.dumps(d)) == d
-    assert RewardRule.from_table(d, "recipe.toml") == rule
+    assert RewardRule.from_table(d) == rule
     assert RewardRule(**d) == rule
     assert d["distance"] in DISTANCES and d["threshold"] == table["threshold"]
 

@@ -131,10 +131,10 @@ def test_threshold_warnings_fire_on_their_conditions():
     assert threshold_warnings(fine) == []
 
 
-def test_rule_of_the_wrong_dimension_is_a_recipe_error():
-    from goalkit.errors import RecipeError
-    with pytest.raises(RecipeError, match="expected 3 tolerances"):
+def test_rule_of_the_wrong_dimension_is_a_parameter_error():
+    from goalkit.errors import ParameterError
+    with pytest.raises(ParameterError, match="RewardRule threshold: expected 3 tolerances"):
         diagnose(_lines(), IndexGoalMap((0, 1, 2)), RewardRule("box", (0.1, 0.1)))
-    with pytest.raises(RecipeError, match="expected 2 weights"):
+    with pytest.raises(ParameterError, match="RewardRule weights: expected 2 weights"):
         rewarded_fraction(np.zeros((3, 2)), np.zeros((3, 2)), [0, 0, 0],
                           RewardRule("l1", 0.1, weights=(1.0, 1.0, 1.0)), [0.1])
