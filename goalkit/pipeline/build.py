@@ -105,8 +105,8 @@ class BuildInputs:
             "layout_text": self.layout_text,
             "log_files": [[f["path"], f["bytes"], f["sha256"]] for f in self.log_files],
             # a changed embedding or goal library invalidates shards
-            "embedding_files": [[f["path"], f["bytes"], f["sha256"]]
-                                for f in self.embedding_files + self.library_files],
+            "embedding_files": [[f["path"], f["bytes"], f["sha256"]] for f in self.embedding_files],
+            "library_files": [[f["path"], f["bytes"], f["sha256"]] for f in self.library_files],
         }
 
 

@@ -76,9 +76,9 @@ class VerifyReport:
         return {"ok": self.ok, "failures": list(self.failures), "checked": dict(self.checked)}
 
 
-def _row_text(cols, i) -> str:
-    return (f"episode {int(cols['source_episode'][i])} step {int(cols['source_step'][i])} "
-            f"slot {int(cols['slot'][i])}")
+def _row_text(cols, row) -> str:
+    return (f"episode {int(cols['source_episode'][row])} step {int(cols['source_step'][row])} "
+            f"slot {int(cols['slot'][row])}")
 
 
 def _first(mask) -> int:
@@ -87,85 +87,85 @@ def _first(mask) -> int:
 
 def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
     """Check stored rows ``cols`` of one chunk against the logs and the rules (no re-derivation)."""
-    n = len(cols["source_episode"])
-    if n == 0:
+    n_rows = len(cols["source_episode"])
+    if n_rows == 0:
         return
-    gd = np.dtype(plan.recipe.goal.dtype)
-    src_ep, t = cols["source_episode"], cols["source_step"]
-    if not np.isin(src_ep, chunk.episode_ids).all():
+    goal_dtype = np.dtype(plan.recipe.goal.dtype)
+    source_ep, steps = cols["source_episode"], cols["source_step"]
+    if not np.isin(source_ep, chunk.episode_ids).all():
         report.fail(f"{split_name} row {row0}: source episodes outside the logs' chunk")
         return
-    pos = chunk.position_of(src_ep)
+    pos = chunk.position_of(source_ep)
     lengths = chunk.lengths[pos]
-    bad = (t < 0) | (t >= lengths)
+    bad = (steps < 0) | (steps >= lengths)
     if bad.any():
-        i = _first(bad)
-        report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): step outside the episode "
-                    f"(0 .. {int(lengths[i]) - 1})")
+        row = _first(bad)
+        report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): step outside the episode "
+                    f"(0 .. {int(lengths[row]) - 1})")
         return
-    cur = chunk.state_row(pos, t)
-    trans = chunk.offsets[pos] + t
+    cur = chunk.state_row(pos, steps)
+    trans = chunk.offsets[pos] + steps
     code = SPLIT_CODES[split_name]
-    gpos_src = plan.positions(src_ep)
+    gpos_src = plan.positions(source_ep)
     wrong_split = plan.splits[gpos_src] != code
     if wrong_split.any():
-        i = _first(wrong_split)
-        report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): the episode belongs to the other split")
+        row = _first(wrong_split)
+        report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): the episode belongs to the other split")
     if "observation" in cols:
         for name, ref in (("observation", chunk.observations[cur]), ("action", chunk.actions[trans]),
                           ("next_observation", chunk.observations[cur + 1])):
-            diff = np.any(np.asarray(cols[name]).reshape(n, -1) != np.asarray(ref, dtype=cols[name].dtype).reshape(n, -1), axis=1)
+            diff = np.any(np.asarray(cols[name]).reshape(n_rows, -1) != np.asarray(ref, dtype=cols[name].dtype).reshape(n_rows, -1), axis=1)
             if diff.any():
-                i = _first(diff)
-                report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): {name} is not the logged value")
-    phi = plan.goal_map(chunk, np.arange(chunk.observations.shape[0])).astype(gd)
+                row = _first(diff)
+                report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): {name} is not the logged value")
+    phi = plan.goal_map(chunk, np.arange(chunk.observations.shape[0])).astype(goal_dtype)
     achieved = phi[cur + 1]
     if "reached_goal" in cols:
         diff = np.any(cols["reached_goal"] != achieved, axis=1)
         if diff.any():
-            i = _first(diff)
-            report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): reached_goal is not phi(s_t+1)")
+            row = _first(diff)
+            report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): reached_goal is not phi(s_t+1)")
     # goals: phi at the recorded goal address, from the logs
-    ge, gs = cols["goal_episode"], cols["goal_step"]
-    internal = ge >= 0
+    goal_ep, goal_step = cols["goal_episode"], cols["goal_step"]
+    internal = goal_ep >= 0
     if internal.any():
-        known = np.isin(ge[internal], plan.episode_ids)
+        known = np.isin(goal_ep[internal], plan.episode_ids)
         if not known.all():
-            i = _first(internal) if known.all() else np.flatnonzero(internal)[_first(~known)]
-            report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): goal episode "
-                        f"{int(ge[i])} is not in the logs")
+            row = _first(internal) if known.all() else np.flatnonzero(internal)[_first(~known)]
+            report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): goal episode "
+                        f"{int(goal_ep[row])} is not in the logs")
             return
-        gpos = plan.positions(ge[internal])
+        gpos = plan.positions(goal_ep[internal])
         glen = plan.lengths[gpos]
-        out = (gs[internal] < 0) | (gs[internal] > glen)
+        out = (goal_step[internal] < 0) | (goal_step[internal] > glen)
         if out.any():
-            i = np.flatnonzero(internal)[_first(out)]
-            report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): goal step {int(gs[i])} outside "
-                        f"episode {int(ge[i])}")
+            row = np.flatnonzero(internal)[_first(out)]
+            report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): goal step {int(goal_step[row])} outside "
+                        f"episode {int(goal_ep[row])}")
             return
         crosses = plan.splits[gpos] != code
         if crosses.any():
-            i = np.flatnonzero(internal)[_first(crosses)]
-            report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): the goal comes from episode "
-                        f"{int(ge[i])} of the other split")
-        expect = _goal_at(plan, chunk, phi, ge[internal], gs[internal]).astype(gd)
+            row = np.flatnonzero(internal)[_first(crosses)]
+            report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): the goal comes from episode "
+                        f"{int(goal_ep[row])} of the other split")
+        expect = _goal_at(plan, chunk, phi, goal_ep[internal], goal_step[internal]).astype(goal_dtype)
         diff = np.any(cols["goal"][internal] != expect, axis=1)
         if diff.any():
-            i = np.flatnonzero(internal)[_first(diff)]
-            report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): goal is not phi of episode "
-                        f"{int(ge[i])} step {int(gs[i])}")
-    for message, mask in check_goal_rules(cols, lengths, plan.lengths[plan.positions(np.where(internal, ge, src_ep))]):
+            row = np.flatnonzero(internal)[_first(diff)]
+            report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): goal is not phi of episode "
+                        f"{int(goal_ep[row])} step {int(goal_step[row])}")
+    for message, mask in check_goal_rules(cols, lengths, plan.lengths[plan.positions(np.where(internal, goal_ep, source_ep))]):
         if mask.any():
-            i = _first(mask)
-            report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): {message}")
+            row = _first(mask)
+            report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): {message}")
 
     check_joined(plan, chunk, cols, phi, pos, split_name, report, row0, _row_text)
     for name, ref in score(plan.recipe.reward, achieved, cols["goal"]).columns().items():
         diff = cols[name] != ref
         if diff.any():
-            i = _first(diff)
-            report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): {name} {cols[name][i]!r} does not "
-                        f"recompute from the reward rule (expected {ref[i]!r})")
+            row = _first(diff)
+            report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): {name} {cols[name][row]!r} does not "
+                        f"recompute from the reward rule (expected {ref[row]!r})")
 
 
 def _strategy_code_problems(file) -> list[str]:
@@ -176,7 +176,7 @@ def _strategy_code_problems(file) -> list[str]:
         if "strategy" not in file[split]:
             continue
         stored = stored_strategy_codes(file[split]["strategy"], f"{split}/strategy")
-        wrong = sorted(c for c, name in (stored or {}).items() if table.get(c) != name)
+        wrong = sorted(code for code, name in (stored or {}).items() if table.get(code) != name)
         if wrong:
             out.append(f"{split}/strategy: attribute codes names code {wrong[0]} "
                        f"{stored[wrong[0]]!r}, the strategy table calls it {table.get(wrong[0])!r}")
@@ -188,8 +188,8 @@ def _goal_at(plan, chunk, phi_chunk, episodes, steps) -> np.ndarray:
     out = np.empty((len(episodes), phi_chunk.shape[1]), dtype=phi_chunk.dtype)
     inside = np.isin(episodes, chunk.episode_ids)
     if inside.any():
-        p = chunk.position_of(episodes[inside])
-        out[inside] = phi_chunk[chunk.state_row(p, steps[inside])]
+        positions = chunk.position_of(episodes[inside])
+        out[inside] = phi_chunk[chunk.state_row(positions, steps[inside])]
     if (~inside).any():
         if plan.goal_table is None:
             raise RuntimeError("goal table needed for goals from other chunks")
@@ -220,73 +220,74 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) 
         When the file cannot be read as a set (naming the file and the key).
     """
     report = VerifyReport(max_failures=max_failures)
-    with GoalSet(path) as gs:
+    with GoalSet(path) as goal_set:
         # 0. what is stored: attributes, groups and columns as a set has them; the seal
-        for message in check_layout(gs.file, gs.path, gs.stored) + check_seal(gs.file, gs.stored):
+        stored_as = goal_set.stored
+        for message in check_layout(goal_set.file, goal_set.path, stored_as) + check_seal(goal_set.file, stored_as):
             report.fail(message)
-        report.checked["sealed"] = gs.stored.seal is not None
-        report.checked["format_version"] = gs.stored.version
+        report.checked["sealed"] = goal_set.stored.seal is not None
+        report.checked["format_version"] = goal_set.stored.version
         if not report.ok:
             return report
-        for message in _strategy_code_problems(gs.file):
+        for message in _strategy_code_problems(goal_set.file):
             report.fail(message)
         # 1. source files
-        entries = source_entries(gs)
+        entries = source_entries(goal_set)
         digests = {}
         for entry in entries:
             problem = source_problem(entry, digests)
             if problem:
                 report.fail(f"source file {entry['path']}: {problem}")
-        report.checked["source_files"] = len(gs.provenance.get("log_files", []))
+        report.checked["source_files"] = len(goal_set.provenance.get("log_files", []))
         if not report.ok:
             return report
         # 2. the recipe with the set's own seed; the columns and row counts it produces (before
         #    any column is read, so a huge declared column is never read)
-        recipe = stored_recipe(gs, report)
+        recipe = stored_recipe(goal_set, report)
         if recipe is None:
             return report
         try:
             plan, source = make_plan(recipe)
         except GoalkitError as exc:
-            raise DatasetError(f"cannot reopen what this set was built from: {exc}", file=gs.path) from None
-        if not check_columns(gs, plan, split_rows(plan), report):
+            raise DatasetError(f"cannot reopen what this set was built from: {exc}", file=goal_set.path) from None
+        if not check_columns(goal_set, plan, split_rows(plan), report):
             return report
         # 3. manifest
-        for message in gs.check_manifest():
+        for message in goal_set.check_manifest():
             report.fail(message)
-        report.checked["columns"] = len(gs.manifest)
+        report.checked["columns"] = len(goal_set.manifest)
         # 4 + 5. rows, checked and re-derived; the summary re-derived alongside
         gpt = recipe.mixture.goals_per_transition
         summary = SummaryBuilder(strategy_names(), plan.total_transitions * gpt, recipe.seed)
-        cursor = {s: 0 for s in SPLITS}
-        total = {s: gs.rows(s) for s in SPLITS}
-        stored_names = {s: gs.columns(s) for s in SPLITS}
-        for a, b in chunk_bounds(plan.lengths, chunk_transitions(plan)):
-            chunk = source.read(a, b)
+        cursor = {split: 0 for split in SPLITS}
+        total = {split: goal_set.rows(split) for split in SPLITS}
+        stored_names = {split: goal_set.columns(split) for split in SPLITS}
+        for first_ep, stop_ep in chunk_bounds(plan.lengths, chunk_transitions(plan)):
+            chunk = source.read(first_ep, stop_ep)
             fresh = relabel_chunk(plan, chunk)
-            for s in SPLITS:
-                n = len(fresh.keys.get(s, ()))
-                lo, hi = cursor[s], cursor[s] + n
-                if hi > total[s]:
-                    report.fail(f"{s}: fewer rows stored ({total[s]}) than the recipe produces")
+            for split in SPLITS:
+                n_rows = len(fresh.keys.get(split, ()))
+                row0, row_stop = cursor[split], cursor[split] + n_rows
+                if row_stop > total[split]:
+                    report.fail(f"{split}: fewer rows stored ({total[split]}) than the recipe produces")
                     return report
-                stored = gs.read(s, stored_names[s], lo, hi, resolve=False)
-                check_rows(plan, chunk, stored, s, report, lo)
-                if n:
-                    _compare(fresh.columns[s], stored, s, lo, report)
-                    summary.add(s, fresh.columns[s], fresh.keys[s])
-                cursor[s] = hi
+                stored = goal_set.read(split, stored_names[split], row0, row_stop, resolve=False)
+                check_rows(plan, chunk, stored, split, report, row0)
+                if n_rows:
+                    _compare(fresh.columns[split], stored, split, row0, report)
+                    summary.add(split, fresh.columns[split], fresh.keys[split])
+                cursor[split] = row_stop
             if progress is not None:
-                progress(int(plan.lengths[a:b].sum()), plan.total_transitions)
-        for s in SPLITS:
-            if cursor[s] != total[s]:
-                report.fail(f"{s}: {total[s]} rows stored, the recipe produces {cursor[s]}")
-        report.checked["rows"] = {s: total[s] for s in SPLITS}
+                progress(int(plan.lengths[first_ep:stop_ep].sum()), plan.total_transitions)
+        for split in SPLITS:
+            if cursor[split] != total[split]:
+                report.fail(f"{split}: {total[split]} rows stored, the recipe produces {cursor[split]}")
+        report.checked["rows"] = {split: total[split] for split in SPLITS}
         report.checked["episodes"] = int(len(plan.episode_ids))
         # 5. summary and provenance, re-derived
-        for message in differences(as_stored(final_summary(summary, plan, source)), gs.summary, "summary"):
+        for message in differences(as_stored(final_summary(summary, plan, source)), goal_set.summary, "summary"):
             report.fail(message)
-        for message in provenance_differences(gs, plan, source, digests):
+        for message in provenance_differences(goal_set, plan, source, digests):
             report.fail(message)
     if audit:  # 6. rules and laws re-stated independently of the builder (docs/audit.md)
         audit_into(path, report)
@@ -300,6 +301,6 @@ def _compare(fresh: dict, stored: dict, split: str, row0: int, report: VerifyRep
         diff = value.reshape(len(value), -1) != ref.reshape(len(ref), -1)
         bad = np.any(diff, axis=1)
         if bad.any():
-            i = _first(bad)
-            report.fail(f"{split} row {row0 + i} ({_row_text(stored, i)}): {name} differs from what the recipe "
+            row = _first(bad)
+            report.fail(f"{split} row {row0 + row} ({_row_text(stored, row)}): {name} differs from what the recipe "
                         f"and seed produce")

@@ -83,7 +83,8 @@ def _inputs(text="seed = 0", seed=0, layout="layout", logs=None, embeddings=(), 
 def test_build_key_changes_with_every_input():
     specs = plan_shards(SimpleNamespace(lengths=np.array([3, 3, 3]), episode_ids=np.arange(3)), 4)
     logs = [{"path": "/l.h5", "bytes": 10, "sha256": "a" * 64}]
-    emb = {"path": "/e.npz", "bytes": 1, "sha256": "c" * 64}
+    embedding_file = {"path": "/e.npz", "bytes": 1, "sha256": "c" * 64}
+    library_file = dict(embedding_file, path="/lib.npz")
     base, record = build_key(_inputs(), specs)
     assert base == build_key(_inputs(), specs)[0]
     assert json.loads(json.dumps(record)) == record
@@ -93,8 +94,9 @@ def test_build_key_changes_with_every_input():
         build_key(_inputs(layout="layout2"), specs),
         build_key(_inputs(logs=[dict(logs[0], sha256="b" * 64)]), specs),
         build_key(_inputs(logs=[dict(logs[0], bytes=11)]), specs),
-        build_key(_inputs(embeddings=[emb]), specs),
-        build_key(_inputs(library=[dict(emb, path="/lib.npz")]), specs),
+        build_key(_inputs(embeddings=[embedding_file]), specs),
+        build_key(_inputs(library=[library_file]), specs),
+        build_key(_inputs(library=[embedding_file]), specs),  # one file as library, not as embedding
         build_key(_inputs(), specs[:1]),
     ]
     assert len({base} | {k for k, _ in variants}) == len(variants) + 1
