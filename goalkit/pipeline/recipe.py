@@ -26,7 +26,12 @@ SPLIT_KEYS = ("validation", "salt")
 OUTPUT_KEYS = ("path", "mode", "compression", "chunk_rows")
 GOAL_DTYPES = ("float32", "float64")
 MODES = ("materialised", "indexed")
-COMPRESSIONS = ("gzip", "lzf", "none")
+#: Compressions a build writes: with each, a recipe gives the same bytes whatever the producer,
+#: worker count or chunk size.
+COMPRESSIONS = ("gzip", "none")
+#: Compressions of sets an earlier goalkit wrote, still read and verified but never written: HDF5's
+#: LZF filter leaves its match table uninitialised, so its output is not a function of its input.
+STORED_ONLY_COMPRESSIONS = ("lzf",)
 #: Every key whose value is a path relative to the recipe's folder (a copy of the recipe
 #: written to another folder rewrites exactly these; see goalkit.tune.recipe_edit).
 PATH_KEYS = ("logs.path", "logs.layout", "goal.embedding", "relabel.library", "output.path")
@@ -196,7 +201,7 @@ def _parse_split(table, file) -> tuple[float, int]:
     return float(frac), salt
 
 
-def _parse_output(table, base, file) -> OutputSpec:
+def _parse_output(table, base, file, stored: bool = False) -> OutputSpec:
     check_keys(table, OUTPUT_KEYS, file=file, section="[output]", error=RecipeError)
     if "path" not in table:
         raise RecipeError("missing key 'path' in [output]", file=file, key="output.path")
@@ -204,7 +209,12 @@ def _parse_output(table, base, file) -> OutputSpec:
     if mode not in MODES:
         raise RecipeError(f"expected one of {', '.join(MODES)}, got {mode!r}", file=file, key="output.mode")
     comp = table.get("compression", "gzip")
-    if comp not in COMPRESSIONS:
+    if comp in STORED_ONLY_COMPRESSIONS and not stored:
+        raise RecipeError(f"{comp} is not written any more: HDF5's LZF filter leaves its match table "
+                          "uninitialised, so two builds of one recipe can differ in a few bytes; use "
+                          "compression = \"gzip\" (about as fast, smaller files) or \"none\"", file=file,
+                          key="output.compression")
+    if comp not in COMPRESSIONS + (STORED_ONLY_COMPRESSIONS if stored else ()):
         raise RecipeError(f"expected one of {', '.join(COMPRESSIONS)}, got {comp!r}", file=file,
                           key="output.compression")
     rows = table.get("chunk_rows", 65536)
@@ -216,7 +226,7 @@ def _parse_output(table, base, file) -> OutputSpec:
                       chunk_rows=rows)
 
 
-def parse_recipe(text: str, file="<recipe>", base: Path | None = None) -> Recipe:
+def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored: bool = False) -> Recipe:
     """Parse and check recipe ``text``.
 
     Parameters
@@ -227,6 +237,9 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None) -> Recipe
         Name used in messages.
     base : Path, optional
         Directory that relative paths are relative to (default: the current directory).
+    stored : bool
+        The recipe stored in a set (to read or verify it): also accept what an earlier goalkit
+        wrote and this one no longer writes (:data:`STORED_ONLY_COMPRESSIONS`).
 
     Returns
     -------
@@ -261,7 +274,7 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None) -> Recipe
         mixture = replace(mixture, library=str(lib))
     reward = _in_recipe(RewardRule.from_table, _table(doc, "reward", file), file, "reward")
     validation, salt = _parse_split(_table(doc, "split", file, required=False), file)
-    output = _parse_output(_table(doc, "output", file), base, file)
+    output = _parse_output(_table(doc, "output", file), base, file, stored=stored)
     return Recipe(text=text, file=str(file), seed=seed, logs_path=logs_path, layout_path=layout_path,
                   skip_bad_episodes=skip, goal=goal, mixture=mixture, reward=reward,
                   validation=validation, salt=salt, output=output)

@@ -39,7 +39,7 @@ def recipe_of(goalset):
             raise DatasetError("expected the path as text", file=goalset.path, key=f"provenance.{key}")
     base = Path(prov["recipe_file"]).parent if prov.get("recipe_file") else Path.cwd()
     try:
-        recipe = parse_recipe(goalset.recipe, file=f"{goalset.path}:recipe", base=base)
+        recipe = parse_recipe(goalset.recipe, file=f"{goalset.path}:recipe", base=base, stored=True)
     except GoalkitError as exc:
         raise DatasetError(f"the stored recipe cannot be used: {exc}", file=goalset.path, key="recipe") from None
     layout = Path(prov["layout_path"]) if prov.get("layout_path") else None

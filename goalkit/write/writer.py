@@ -156,8 +156,10 @@ class SetWriter:
         Column name -> (dtype, per-row shape), in writing order.
     chunk_rows : int
         Rows per HDF5 chunk and per write.
-    compression : {"gzip", "lzf", "none"}
-        Compression filter of every column.
+    compression : {"gzip", "none", "lzf"}
+        Compression filter of every column. ``"lzf"`` only writes a set as earlier versions
+        did (tests of reading them): HDF5's LZF filter does not give the same bytes for the same
+        rows, so recipes refuse it (:data:`goalkit.pipeline.recipe.STORED_ONLY_COMPRESSIONS`).
     total_rows : dict of str to int, optional
         Rows each split will hold, when known: the datasets are then created at their final
         size instead of grown block by block (faster; the count is checked at :meth:`close`).
