@@ -24,7 +24,8 @@ import importlib
 __version__ = "0.1.0"
 
 from goalkit.errors import (DatasetError, EmbeddingError, GoalkitError, LayoutError,  # noqa: E402
-                            LogError, OutputError, ParameterError, RecipeError, StrategyError)
+                            LabelError, LogError, OutputError, ParameterError, RecipeError, StrategyError,
+                            TuningError)
 
 #: Public name -> the module that defines it (imported on first use).
 _LAZY = {
@@ -32,7 +33,7 @@ _LAZY = {
     "load_recipe": "goalkit.pipeline.recipe", "Recipe": "goalkit.pipeline.recipe",
     "build": "goalkit.api", "BuildResult": "goalkit.pipeline.build",
     "InProcess": "goalkit.api", "LocalWorkers": "goalkit.api", "DaskCluster": "goalkit.api",
-    "verify": "goalkit.api", "VerifyReport": "goalkit.write.verify",
+    "verify": "goalkit.api", "tune": "goalkit.api", "VerifyReport": "goalkit.write.verify",
     "open_set": "goalkit.write.reader", "GoalSet": "goalkit.write.reader",
     "GoalSampler": "goalkit.write.sampler",
     "make_demo": "goalkit.demo.files",
@@ -52,24 +53,18 @@ _LAZY = {
     "fit_on_logs": "goalkit.goals.fitlogs",
     "IndexSettings": "goalkit.goals.neighbours", "build_index": "goalkit.goals.neighbours",
     # tuning
-    "TuneResult": "goalkit.tune.session", "ThresholdTuner": "goalkit.tune.tuner",
-    "load_labelled_pairs": "goalkit.tune.labels", "plot_labelled": "goalkit.tune.plots",
-    "write_tuned_recipe": "goalkit.tune.recipe_edit",
-    "LabelError": "goalkit.tune.errors", "TuningError": "goalkit.tune.errors",
+    "TuneResult": "goalkit.thresholds.session", "ThresholdTuner": "goalkit.thresholds.tuner",
+    "load_labelled_pairs": "goalkit.thresholds.labels", "plot_labelled": "goalkit.thresholds.plots",
+    "write_tuned_recipe": "goalkit.thresholds.recipe_edit",
 }
 
 _ERRORS = ["GoalkitError", "LogError", "LayoutError", "RecipeError", "DatasetError", "EmbeddingError",
-           "OutputError", "ParameterError", "StrategyError"]
+           "OutputError", "ParameterError", "StrategyError", "LabelError", "TuningError"]
 
-# ``tune`` is also the name of the subpackage goalkit.tune, which Python binds as an attribute of
-# goalkit once any of its modules is imported; that package is made callable (it calls
-# goalkit.api.tune), so ``goalkit.tune(recipe, ...)`` works either way.
-__all__ = sorted([*_LAZY, *_ERRORS, "tune", "__version__"])
+__all__ = sorted([*_LAZY, *_ERRORS, "__version__"])
 
 
 def __getattr__(name: str):
-    if name == "tune":
-        return importlib.import_module("goalkit.tune")
     module = _LAZY.get(name)
     if module is None:
         raise AttributeError(f"module 'goalkit' has no attribute {name!r}")

@@ -19,7 +19,7 @@ from goalkit.logs.scan import scan_logs
 from goalkit.pipeline.build import BuildResult
 from goalkit.pipeline.build import build as _engine_build
 from goalkit.pipeline.recipe import Recipe, load_recipe
-from goalkit.tune.session import CHUNK_TRANSITIONS, MAX_TRANSITIONS, TuneResult, tune_recipe
+from goalkit.thresholds.session import CHUNK_TRANSITIONS, MAX_TRANSITIONS, TuneResult, tune_recipe
 from goalkit.write.verify import VerifyReport, verify_set
 
 __all__ = ["InProcess", "LocalWorkers", "DaskCluster", "build", "verify", "scan", "tune"]

@@ -21,7 +21,7 @@ COMMANDS = {
     "build": ("goalkit.pipeline.command:build", "Build a goal-conditioned dataset from a recipe."),
     "verify": ("goalkit.write.command:verify", "Re-derive a built dataset from its logs and check it."),
     "embed": ("goalkit.goals.command:embed", "Fit a goal embedding on task logs and save it."),
-    "tune": ("goalkit.tune.command:tune", "Choose the goal-match threshold from labels or diagnostics."),
+    "tune": ("goalkit.thresholds.command:tune", "Choose the goal-match threshold from labels or diagnostics."),
 }
 
 

@@ -121,3 +121,11 @@ class ParameterError(GoalkitError, ValueError):
 
 class StrategyError(GoalkitError):
     """A relabelling strategy cannot serve the episodes it was given (names the log file and episode)."""
+
+
+class LabelError(GoalkitError):
+    """A labelled-pairs file, or the logs' own success labels, cannot be used (threshold tuning)."""
+
+
+class TuningError(GoalkitError):
+    """The labelled data cannot answer the question asked (e.g. no reached pairs at all)."""

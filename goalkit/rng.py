@@ -24,7 +24,7 @@ STREAMS = {
     "sampler": 6,    # on-the-fly relabelling in the training sampler
     "subsample": 7,  # subsampling for fitting / recall measurement
     "hop": 8,        # neighbour goals: the later step taken along the joined episode
-    "bootstrap": 9,  # threshold tuning: episode resamples (goalkit.tune.bootstrap)
+    "bootstrap": 9,  # threshold tuning: episode resamples (goalkit.thresholds.bootstrap)
 }
 # Stream numbers 1001-1005 are taken by the demo simulator (goalkit.demo.controllers.DEMO_STREAMS).
 

@@ -53,13 +53,12 @@ def test_errors_are_goalkit_errors():
             assert issubclass(obj, goalkit.GoalkitError), name
 
 
-def test_tune_is_callable_whether_or_not_its_package_was_imported():
-    import goalkit.tune.session  # noqa: F401  binds the subpackage as goalkit.tune
-
-    assert callable(goalkit.tune) and goalkit.tune is sys.modules["goalkit.tune"]
+def test_tune_is_the_public_function_whatever_was_imported_before():
+    import goalkit.thresholds.session  # noqa: F401  (the package goalkit.tune once was)
     from goalkit import tune
+    from goalkit.api import tune as api_tune
 
-    assert tune is goalkit.tune
+    assert tune is goalkit.tune is api_tune and "goalkit.tune" not in sys.modules
 
 
 def test_runner_arguments_are_checked():

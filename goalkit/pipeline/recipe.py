@@ -33,7 +33,7 @@ COMPRESSIONS = ("gzip", "none")
 #: LZF filter leaves its match table uninitialised, so its output is not a function of its input.
 STORED_ONLY_COMPRESSIONS = ("lzf",)
 #: Every key whose value is a path relative to the recipe's folder (a copy of the recipe
-#: written to another folder rewrites exactly these; see goalkit.tune.recipe_edit).
+#: written to another folder rewrites exactly these; see goalkit.thresholds.recipe_edit).
 PATH_KEYS = ("logs.path", "logs.layout", "goal.embedding", "relabel.library", "output.path")
 
 

@@ -12,9 +12,9 @@ from scipy.stats import chisquare
 from goalkit.goals.goalmap import IndexGoalMap
 from goalkit.logs.episodes import EpisodeSet
 from goalkit.reward import RewardRule
-from goalkit.tune.bootstrap import resample_groups
-from goalkit.tune.diagnostics import horizon_displacement, sample_states
-from goalkit.tune.labels import pairs_from_success
+from goalkit.thresholds.bootstrap import resample_groups
+from goalkit.thresholds.diagnostics import horizon_displacement, sample_states
+from goalkit.thresholds.labels import pairs_from_success
 
 lengths_st = st.lists(st.integers(1, 9), min_size=1, max_size=6)
 

@@ -29,8 +29,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from goalkit import rng
+from goalkit.errors import TuningError
 from goalkit.logs.episodes import EpisodeSet
-from goalkit.tune.errors import TuningError
 
 #: Default quantiles of the displacement summaries.
 QUANTILES = (0.05, 0.25, 0.5, 0.75, 0.95)

@@ -11,7 +11,7 @@ from scipy.spatial.distance import cdist
 from goalkit.goals.goalmap import IndexGoalMap
 from goalkit.logs.episodes import EpisodeSet
 from goalkit.reward import RewardRule
-from goalkit.tune.diagnostics import (diagnose, horizon_displacement, other_episode_distances,
+from goalkit.thresholds.diagnostics import (diagnose, horizon_displacement, other_episode_distances,
                                       rewarded_fraction, sample_states, step_displacement)
 
 EUC = RewardRule("euclidean", 0.05)
@@ -112,7 +112,7 @@ def test_diagnose_summary_places_the_threshold():
 
 
 def test_threshold_warnings_fire_on_their_conditions():
-    from goalkit.tune.diagnostics import threshold_warnings
+    from goalkit.thresholds.diagnostics import threshold_warnings
     ep = _lines()
     gm = IndexGoalMap((0, 1, 2))
     small = diagnose(ep, gm, RewardRule("euclidean", 0.01), horizons=[1], sample=100).summary()

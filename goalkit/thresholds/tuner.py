@@ -2,7 +2,7 @@
 
 >>> import numpy as np
 >>> from goalkit.reward import RewardRule
->>> from goalkit.tune.labels import LabelledPairs
+>>> from goalkit.thresholds.labels import LabelledPairs
 >>> a = np.array([[0.01], [0.02], [0.03], [0.30], [0.40], [0.50]])
 >>> pairs = LabelledPairs(a, np.zeros_like(a), np.array([1, 1, 1, 0, 0, 0], bool),
 ...                       np.array([0, 0, 1, 1, 2, 2]), True, "example")
@@ -15,11 +15,11 @@ from __future__ import annotations
 
 import numpy as np
 
-from goalkit.tune.bootstrap import bootstrap_threshold
-from goalkit.tune.box import suggest_box
-from goalkit.tune.errors import TuningError
-from goalkit.tune.labels import LabelledPairs
-from goalkit.tune.metrics import check_chooser, choose_threshold, sweep_thresholds
+from goalkit.errors import TuningError
+from goalkit.thresholds.bootstrap import bootstrap_threshold
+from goalkit.thresholds.box import suggest_box
+from goalkit.thresholds.labels import LabelledPairs
+from goalkit.thresholds.metrics import check_chooser, choose_threshold, sweep_thresholds
 
 
 class ThresholdTuner:

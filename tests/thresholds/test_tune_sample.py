@@ -13,7 +13,7 @@ from hypothesis import strategies as st
 from goalkit import rng
 from goalkit.logs.episodes import EpisodeSet
 from goalkit.logs.memory import MemorySource
-from goalkit.tune.sample import SAMPLE_STEP, SampledSource, sample_episodes
+from goalkit.thresholds.sample import SAMPLE_STEP, SampledSource, sample_episodes
 
 lengths_st = st.lists(st.integers(1, 40), min_size=1, max_size=30)
 

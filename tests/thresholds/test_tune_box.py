@@ -9,8 +9,8 @@ fraction r has tol_d = r**(1/G) w_d.
 import numpy as np
 import pytest
 
-from goalkit.tune.box import suggest_box
-from goalkit.tune.errors import TuningError
+from goalkit.errors import TuningError
+from goalkit.thresholds.box import suggest_box
 
 
 def _uniform_pairs(n=2000, widths=(0.02, 0.1), seed=0):

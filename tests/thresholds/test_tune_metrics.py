@@ -14,8 +14,8 @@ from scipy.stats import norm
 from sklearn.metrics import (average_precision_score, confusion_matrix, f1_score,
                              precision_recall_curve, roc_auc_score, roc_curve)
 
-from goalkit.tune.errors import TuningError
-from goalkit.tune.metrics import choose_threshold, sweep_thresholds
+from goalkit.errors import TuningError
+from goalkit.thresholds.metrics import choose_threshold, sweep_thresholds
 
 
 def _labelled(seed, n=400, ties=True):

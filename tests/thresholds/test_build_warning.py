@@ -13,7 +13,7 @@ import pytest
 from click.testing import CliRunner
 
 from goalkit.cli import main
-from goalkit.tune.recipe_edit import tuned_recipe_text
+from goalkit.thresholds.recipe_edit import tuned_recipe_text
 
 
 def _recipe(gantry, tmp_path, threshold, weights=None):

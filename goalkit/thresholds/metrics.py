@@ -40,7 +40,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from goalkit.tune.errors import TuningError
+from goalkit.errors import TuningError
 
 #: Chooser names.
 CHOOSERS = ("max-f1", "target-precision", "youden")

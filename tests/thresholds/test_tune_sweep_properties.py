@@ -3,7 +3,7 @@
 import numpy as np
 from hypothesis import given, settings, strategies as st
 
-from goalkit.tune.metrics import choose_threshold, sweep_thresholds
+from goalkit.thresholds.metrics import choose_threshold, sweep_thresholds
 
 values = st.sampled_from([0.0, 0.05, 0.1, 0.25, 0.3, 1.0, 2.5])
 pairs = st.integers(1, 40).flatmap(lambda n: st.tuples(

@@ -1,4 +1,4 @@
-"""Labelled pairs: the file formats (our own, see goalkit/tune/labels.py) and the logs' own labels.
+"""Labelled pairs: the file formats (our own, see goalkit/thresholds/labels.py) and the logs' own labels.
 
 The index convention checked here is the project's (docs/internals.md): transition t of an
 episode pairs phi(s_{t+1}) with the task goal of step t, labelled success[t].
@@ -7,10 +7,10 @@ episode pairs phi(s_{t+1}) with the task goal of step t, labelled success[t].
 import numpy as np
 import pytest
 
+from goalkit.errors import LabelError
 from goalkit.goals.goalmap import IndexGoalMap
 from goalkit.logs.episodes import EpisodeSet
-from goalkit.tune.errors import LabelError
-from goalkit.tune.labels import concat_pairs, load_labelled_pairs, pairs_from_success
+from goalkit.thresholds.labels import concat_pairs, load_labelled_pairs, pairs_from_success
 
 
 def _arrays(m=6, g=3, seed=0):

@@ -28,7 +28,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from goalkit.tune.errors import TuningError
+from goalkit.errors import TuningError
 
 #: Suggestion methods.
 BOX_METHODS = ("quantile", "recall")

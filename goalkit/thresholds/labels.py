@@ -34,8 +34,8 @@ from typing import Sequence
 
 import numpy as np
 
+from goalkit.errors import LabelError
 from goalkit.logs.episodes import EpisodeSet, iter_chunks
-from goalkit.tune.errors import LabelError
 
 #: Array keys of a labelled-pairs .npz file.
 NPZ_KEYS = ("achieved", "goal", "reached", "episode")

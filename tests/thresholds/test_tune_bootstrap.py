@@ -17,9 +17,9 @@ import pytest
 from hypothesis import given, settings, strategies as st
 from scipy import stats
 
-from goalkit.tune.bootstrap import bootstrap_threshold, resample_groups
-from goalkit.tune.errors import TuningError
-from goalkit.tune.metrics import choose_threshold, sweep_thresholds
+from goalkit.errors import TuningError
+from goalkit.thresholds.bootstrap import bootstrap_threshold, resample_groups
+from goalkit.thresholds.metrics import choose_threshold, sweep_thresholds
 
 
 def _episodes(seed, n_groups=25):

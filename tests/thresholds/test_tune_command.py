@@ -19,8 +19,8 @@ from sklearn.metrics import (average_precision_score, f1_score, precision_recall
 from goalkit.cli import main
 from goalkit.pipeline.recipe import load_recipe
 from goalkit.relabel import CODES
-from goalkit.tune.plots import FILE_NAMES
-from goalkit.tune.sample import sample_episodes
+from goalkit.thresholds.plots import FILE_NAMES
+from goalkit.thresholds.sample import sample_episodes
 
 
 def run(*args):

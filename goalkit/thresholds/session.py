@@ -1,21 +1,21 @@
 """Tune a recipe's goal-match threshold on its own logs: what ``goalkit tune`` runs.
 
 :func:`tune_recipe` reads a deterministic sample of whole episodes of the recipe's logs
-(:mod:`goalkit.tune.sample`), a chunk at a time, and in that one pass
+(:mod:`goalkit.thresholds.sample`), a chunk at a time, and in that one pass
 
 * relabels every sampled transition with the recipe's own mixture
   (:func:`goalkit.pipeline.chunk.relabel_chunk`, so the goal rows are those a build makes
   for these episodes) and keeps each row's reached goal, goal and strategy;
 * with ``from_success``, collects the labelled pairs ``(phi(s_{t+1}), task_goal[t],
-  success[t])`` (:func:`goalkit.tune.labels.pairs_from_success`).
+  success[t])`` (:func:`goalkit.thresholds.labels.pairs_from_success`).
 
 Goal vectors are cast to the recipe's ``[goal] dtype`` first, as the build does, so the
 distances are those the build would compute. With labels (a labelled-pairs file or the
 success flags) each candidate distance is tuned with a
-:class:`~goalkit.tune.tuner.ThresholdTuner`; the candidate with the best value of the
+:class:`~goalkit.thresholds.tuner.ThresholdTuner`; the candidate with the best value of the
 chooser's own criterion (F1 for ``max-f1``, Youden's J for ``youden``, recall for
 ``target-precision``) wins, ties going to the recipe's distance, then to the order given.
-Label-free diagnostics (:func:`goalkit.tune.diagnostics.diagnose`) and the rewarded
+Label-free diagnostics (:func:`goalkit.thresholds.diagnostics.diagnose`) and the rewarded
 fraction per strategy are computed in every mode, with the winning rule (or the recipe's).
 
 The label-free *suggested range* is goalkit's own rule of thumb, not a published rule:
@@ -36,21 +36,20 @@ from pathlib import Path
 import numpy as np
 
 from goalkit.config import closest
-from goalkit.errors import ParameterError
+from goalkit.errors import LabelError, ParameterError, TuningError
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.pipeline.chunk import relabel_chunk
 from goalkit.pipeline.plan import make_plan, open_source, strategy_names
 from goalkit.pipeline.summary import HIGH_REACHED, LOW_REACHED
 from goalkit.reward import DISTANCES, RewardRule, within
-from goalkit.tune.box import suggest_box
-from goalkit.tune.diagnostics import diagnose, rewarded_fraction, threshold_warnings
-from goalkit.tune.errors import LabelError, TuningError
-from goalkit.tune.labels import LabelledPairs, concat_pairs, load_labelled_pairs, pairs_from_success
-from goalkit.tune.metrics import CHOOSERS, check_chooser
-from goalkit.tune.plots import plot_diagnostics, plot_labelled
-from goalkit.tune.report import render as render_report
-from goalkit.tune.sample import SampledSource, concat_episodes, sample_episodes
-from goalkit.tune.tuner import ThresholdTuner
+from goalkit.thresholds.box import suggest_box
+from goalkit.thresholds.diagnostics import diagnose, rewarded_fraction, threshold_warnings
+from goalkit.thresholds.labels import LabelledPairs, concat_pairs, load_labelled_pairs, pairs_from_success
+from goalkit.thresholds.metrics import CHOOSERS, check_chooser
+from goalkit.thresholds.plots import plot_diagnostics, plot_labelled
+from goalkit.thresholds.report import render as render_report
+from goalkit.thresholds.sample import SampledSource, concat_episodes, sample_episodes
+from goalkit.thresholds.tuner import ThresholdTuner
 
 #: Default transition budget of the sample.
 MAX_TRANSITIONS = 200_000
@@ -298,7 +297,7 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
     recipe : Recipe
         A loaded recipe (:func:`goalkit.pipeline.recipe.load_recipe`).
     labels : str or Path, optional
-        A labelled-pairs file (.npz or .csv, see :mod:`goalkit.tune.labels`).
+        A labelled-pairs file (.npz or .csv, see :mod:`goalkit.thresholds.labels`).
     from_success : bool
         Label the logs' own transitions by their success flags against their task goals.
     distances : sequence of str

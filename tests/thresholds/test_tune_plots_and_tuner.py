@@ -6,16 +6,15 @@ import numpy as np
 import pytest
 
 from goalkit.cli_support import _default
-from goalkit.errors import GoalkitError
+from goalkit.errors import GoalkitError, TuningError
 from goalkit.goals.goalmap import IndexGoalMap
 from goalkit.logs.episodes import EpisodeSet
 from goalkit.reward import RewardRule
-from goalkit.tune.diagnostics import diagnose, rewarded_fraction
-from goalkit.tune.errors import TuningError
-from goalkit.tune.labels import LabelledPairs
-from goalkit.tune.metrics import choose_threshold, sweep_thresholds
-from goalkit.tune.plots import FILE_NAMES, plot_diagnostics, plot_labelled, save_png
-from goalkit.tune.tuner import ThresholdTuner
+from goalkit.thresholds.diagnostics import diagnose, rewarded_fraction
+from goalkit.thresholds.labels import LabelledPairs
+from goalkit.thresholds.metrics import choose_threshold, sweep_thresholds
+from goalkit.thresholds.plots import FILE_NAMES, plot_diagnostics, plot_labelled, save_png
+from goalkit.thresholds.tuner import ThresholdTuner
 
 PNG = b"\x89PNG\r\n\x1a\n"
 

@@ -17,8 +17,8 @@ from hypothesis import strategies as st
 from goalkit.errors import GoalkitError
 from goalkit.pipeline.build import build
 from goalkit.pipeline.recipe import PATH_KEYS, load_recipe
+from goalkit.thresholds.recipe_edit import tuned_recipe_text, write_tuned_recipe
 from goalkit.write.reader import open_set
-from goalkit.tune.recipe_edit import tuned_recipe_text, write_tuned_recipe
 
 REWARD = '''# a recipe of the gantry bench
 version = 1

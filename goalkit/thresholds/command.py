@@ -1,17 +1,17 @@
-"""``goalkit tune``: choose the goal-match threshold of a recipe (thin; see goalkit.tune.session)."""
+"""``goalkit tune``: choose the goal-match threshold of a recipe (thin; see goalkit.thresholds.session)."""
 
 from __future__ import annotations
 
 import click
 
 from goalkit.cli_support import ChunkProgress, echo_json, on_interrupt, quiet_option, user_errors, warn
+from goalkit.errors import TuningError
 from goalkit.outputs import check_no_overlap, refuse_existing
 from goalkit.pipeline.recipe import is_recipe_file, load_recipe
-from goalkit.tune.errors import TuningError
-from goalkit.tune.plots import is_png, plot_paths
-from goalkit.tune.recipe_edit import write_tuned_recipe
-from goalkit.tune.report import render
-from goalkit.tune.session import (CHUNK_TRANSITIONS, MAX_TRANSITIONS, check_distances, check_options,
+from goalkit.thresholds.plots import is_png, plot_paths
+from goalkit.thresholds.recipe_edit import write_tuned_recipe
+from goalkit.thresholds.report import render
+from goalkit.thresholds.session import (CHUNK_TRANSITIONS, MAX_TRANSITIONS, check_distances, check_options,
                                   tune_recipe)
 
 

@@ -24,8 +24,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from goalkit import rng
-from goalkit.tune.errors import TuningError
-from goalkit.tune.metrics import _run_ends, check_chooser, check_labelled, choose_index, place
+from goalkit.errors import TuningError
+from goalkit.thresholds.metrics import _run_ends, check_chooser, check_labelled, choose_index, place
 
 #: goalkit.rng stream of the bootstrap draws (its own stream, so it shares no numbers with a build).
 BOOTSTRAP_STREAM = rng.STREAMS["bootstrap"]
@@ -96,12 +96,12 @@ def bootstrap_threshold(distances, labels, groups=None, *, chooser: str = "max-f
     Parameters
     ----------
     distances, labels : array_like, shape (M,)
-        Labelled distances (see :func:`goalkit.tune.metrics.sweep_thresholds`).
+        Labelled distances (see :func:`goalkit.thresholds.metrics.sweep_thresholds`).
     groups : array_like of int, shape (M,), optional
         Episode of each pair; None makes every pair its own group (then the interval
         ignores within-episode correlation).
     chooser, target, placement, inclusive
-        As in :func:`goalkit.tune.metrics.choose_threshold`.
+        As in :func:`goalkit.thresholds.metrics.choose_threshold`.
     n_resamples : int
         Number of bootstrap resamples.
     confidence : float
