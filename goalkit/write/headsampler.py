@@ -32,8 +32,10 @@ import numpy as np
 
 from goalkit.errors import RecipeError
 from goalkit.heads import SOURCE_CODES, GoalHead
+from goalkit.pipeline.chunk import row_labels
 from goalkit.reward import score
 from goalkit.rng import BatchBits
+from goalkit.rows import LABEL_COLUMNS
 from goalkit.write.sampler import load_split
 
 _CUR, _FUT, _GEO, _RND, _NEG, _FIN, _EPI, _SUB = (SOURCE_CODES[n] for n in (
@@ -42,6 +44,8 @@ _CUR, _FUT, _GEO, _RND, _NEG, _FIN, _EPI, _SUB = (SOURCE_CODES[n] for n in (
 
 def head_labels(steps, gamma) -> tuple[np.ndarray, np.ndarray]:
     """Discount weight and Monte-Carlo return to the goal for ``steps`` (-1: no path).
+
+    The arithmetic of a built set's label columns (:func:`goalkit.pipeline.chunk.row_labels`).
 
     Parameters
     ----------
@@ -52,7 +56,7 @@ def head_labels(steps, gamma) -> tuple[np.ndarray, np.ndarray]:
 
     Returns
     -------
-    (weight, ret) : float64 ndarrays
+    (weight, ret) : float32 ndarrays
         ``gamma**d`` and ``-(1 - gamma**d) / (1 - gamma)``; 0 and ``-1 / (1 - gamma)`` where
         ``steps`` is -1.
 
@@ -62,10 +66,8 @@ def head_labels(steps, gamma) -> tuple[np.ndarray, np.ndarray]:
     >>> round(float(w[0]), 4), round(float(r[0]), 4), float(w[1]), round(float(r[1]), 6)
     (0.9044, -9.5618, 0.0, -100.0)
     """
-    steps = np.asarray(steps)
-    gamma = np.asarray(gamma, dtype=np.float64)
-    weight = np.where(steps >= 0, gamma ** np.maximum(steps, 0), 0.0)
-    return weight, -(1.0 - weight) / (1.0 - gamma)
+    cols = row_labels(steps, gamma, np.zeros(np.shape(steps), np.uint8))
+    return cols["discount_weight"], cols["return_to_goal"]
 
 
 class HeadSampler:
@@ -171,7 +173,6 @@ class HeadSampler:
         self._log_gamma = np.log(self._gamma)
         self._renorm = np.array([h.past_end == "renormalise" for h in heads])[:, None]
         self._scale = True if self._renorm.any() else None
-        self._inv_1mg = 1.0 / (1.0 - self._gamma)
         self._steps = np.array([h.steps for h in heads], dtype=np.int64)[:, None]
         self._bits = BatchBits(self.seed, "heads")
 
@@ -240,16 +241,14 @@ class HeadSampler:
         achieved = self.phi.take(cur + 1, axis=0)
         goal = self.phi.take(row.ravel(), axis=0)
         sc = score(self.rule, np.tile(achieved, (nh, 1)), goal)
-        weight = np.where(steps >= 0, np.exp(steps * self._log_gamma), 0.0)
-        ret = (weight - 1.0) * self._inv_1mg
+        labels = row_labels(steps, self._gamma, sc.terminal.reshape(steps.shape))
         shape = (nh, b)
         dist = sc.distance.astype(np.float32).reshape(shape)
         reward = sc.reward.reshape(shape)
         terminal = sc.terminal.reshape(shape)
         reached = sc.reached.reshape(shape).view(np.uint8)
         goal = goal.reshape((nh, b) + goal.shape[1:])
-        weight, ret = weight.astype(np.float32), ret.astype(np.float32)
-        mask = (~terminal).view(np.uint8)
+        weight, ret, mask = (labels[name] for name in LABEL_COLUMNS)
         terminal = terminal.view(np.uint8)
         gep = self.episode_ids.take(ge)
         out = {"source_episode": self.episode_ids.take(e), "source_step": t, "reached_goal": achieved}

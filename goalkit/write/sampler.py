@@ -14,6 +14,7 @@ import numpy as np
 from goalkit import rng
 from goalkit.errors import RecipeError
 from goalkit.logs.episodes import chunk_bounds, concat_episodes, consecutive_runs
+from goalkit.pipeline.chunk import row_labels
 from goalkit.pipeline.plan import make_plan
 from goalkit.reward import score
 from goalkit.rows import SPLIT_CODES, SPLITS
@@ -104,7 +105,8 @@ class GoalSampler:
         dict of ndarray
             observation, action, next_observation, reached_goal, goal, goal_distance, reward,
             reached, terminal, strategy, source_episode, source_step, goal_episode, goal_step,
-            steps_to_goal.
+            steps_to_goal, discount_weight, return_to_goal, bootstrap_mask (discount: the
+            recipe's ``[relabel] gamma``).
         """
         eps, rule = self.episodes, self.recipe.reward
         seed = self.recipe.seed
@@ -128,13 +130,15 @@ class GoalSampler:
             goal[internal] = self.phi[eps.state_row(eps.position_of(ge[internal]), gs[internal])]
         if (~internal).any():
             goal[~internal] = rows.external[sel][~internal].astype(self.phi.dtype)
+        scores = score(rule, achieved, goal)
         return {
             "observation": eps.observations[cur], "action": eps.actions[t_idx],
             "next_observation": eps.observations[cur + 1],
             "reached_goal": achieved.astype(self.phi.dtype), "goal": goal.astype(self.phi.dtype),
-            **score(rule, achieved, goal).columns(),
+            **scores.columns(),
             "strategy": rows.strategy[sel], "source_episode": eps.episode_ids[pos], "source_step": step,
             "goal_episode": ge, "goal_step": gs, "steps_to_goal": rows.steps_to_goal[sel],
+            **row_labels(rows.steps_to_goal[sel], self.mixture.gamma, scores.terminal),
         }
 
     def __iter__(self):

@@ -32,6 +32,7 @@ import numpy as np
 
 from goalkit.errors import DatasetError, GoalkitError
 from goalkit.logs.episodes import chunk_bounds
+from goalkit.pipeline.chunk import row_labels
 from goalkit.relabel.strategies import strategy_names
 from goalkit.reward import score
 from goalkit.write.format import SPLIT_CODES, SPLITS
@@ -159,6 +160,14 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
             i = _first(diff)
             report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): {name} {cols[name][i]!r} does not "
                         f"recompute from the reward rule (expected {ref[i]!r})")
+    if "discount_weight" in cols:  # the training labels, from the stored steps and terminal flag
+        labels = row_labels(cols["steps_to_goal"], plan.recipe.mixture.gamma, cols["terminal"])
+        for name, ref in labels.items():
+            diff = cols[name] != ref
+            if diff.any():
+                i = _first(diff)
+                report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): {name} {cols[name][i]!r} does "
+                            f"not recompute from steps_to_goal and [relabel] gamma (expected {ref[i]!r})")
 
 
 def _strategy_code_problems(file) -> list[str]:
