@@ -3,6 +3,8 @@
 Sources named beside each check. Figures marked "from memory" were recalled, not re-read.
 """
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 from hypothesis import given, settings
@@ -286,3 +288,22 @@ steps = 25
 def test_public_names():
     assert goalkit.HeadSampler is HeadSampler and goalkit.GoalHead is GoalHead
     assert {"HeadSampler", "GoalHead"} <= set(goalkit.__all__)
+
+
+def test_the_readme_training_loop_runs(tmp_path, monkeypatch):
+    # the README's multi-head training loop, executed as written on the demo logs
+    text = (Path(__file__).resolve().parents[2] / "README.md").read_text(encoding="utf-8")
+    section = text[text.index("### Training with several goal heads"):]
+    code = section[section.index("```python") + len("```python"):]
+    code = code[:code.index("```")]
+    make_demo(tmp_path / "gantry-demo", episodes=20, seed=1)
+    monkeypatch.chdir(tmp_path)
+    names = {}
+    exec(compile(code, "README.md", "exec"), names)
+    for w in ("w_value", "w_policy", "w_subgoal"):
+        assert np.all(np.isfinite(names[w])) and np.any(names[w] != 0), w
+    # the subgoal regression learns something: its error is below that of predicting zero
+    b = names["sampler"].batch(1024, index=10 ** 6)
+    xp = names["features"](b["observation"], b["policy"]["goal"])
+    err = np.mean((xp @ names["w_subgoal"] - b["subgoal"]["goal"]) ** 2)
+    assert err < np.mean(b["subgoal"]["goal"].astype(np.float64) ** 2)
