@@ -162,6 +162,7 @@ def main(argv=None) -> int:
     args = ap.parse_args(argv)
     sizes = [int(s) for s in args.sizes.split(",")]
     runs = []
+    load_before = os.getloadavg()[0]
     for n in sizes:
         r = measure(n, args.batches, args.repeats, args.seed)
         print(json.dumps(r), flush=True)
@@ -169,7 +170,8 @@ def main(argv=None) -> int:
     result = {"benchmark": "multi-head sampler vs plain numpy sampler, same heads, in-memory arrays",
               "heads": [h.describe() | {"name": h.name} for h in HEADS],
               "machine": {"cpus": os.cpu_count(), "python": platform.python_version(),
-                          "numpy": np.__version__},
+                          "numpy": np.__version__,
+                          "load_average_1min_before_after": [round(load_before, 2), round(os.getloadavg()[0], 2)]},
               "runs": runs}
     if len(runs) > 1:
         result["goalkit_growth_largest_over_smallest"] = round(
