@@ -36,6 +36,7 @@ _LAZY = {
     "verify": "goalkit.api", "tune": "goalkit.api", "VerifyReport": "goalkit.write.verify",
     "open_set": "goalkit.write.reader", "GoalSet": "goalkit.write.reader",
     "GoalSampler": "goalkit.write.sampler",
+    "HeadSampler": "goalkit.write.headsampler", "GoalHead": "goalkit.heads",
     "make_demo": "goalkit.demo.files",
     # logs
     "open_logs": "goalkit.logs.opener", "scan": "goalkit.api", "load_layout": "goalkit.logs.layout",

@@ -25,6 +25,7 @@ STREAMS = {
     "subsample": 7,  # subsampling for fitting / recall measurement
     "hop": 8,        # neighbour goals: the later step taken along the joined episode
     "bootstrap": 9,  # threshold tuning: episode resamples (goalkit.thresholds.bootstrap)
+    "heads": 10,     # the multi-head training sampler (goalkit.write.headsampler), per batch
 }
 # Stream numbers 1001-1005 are taken by the demo simulator (goalkit.demo.controllers.DEMO_STREAMS).
 
@@ -90,3 +91,48 @@ def integers(seed: int, low, high, episode, step, slot=0, stream: int | str = 0)
     u = uniform(seed, episode, step, slot, stream)
     out = low + np.floor(u * span).astype(np.int64)
     return np.minimum(out, low + span - 1)
+
+
+class BatchBits:
+    """Raw random words for numbered batches: a pure function of (seed, stream, batch index).
+
+    For samplers that draw a whole batch at once, hashing every address (:func:`hash64`) costs
+    more than the batch's other work. This keeps the addressing convention at batch level: the
+    key of the Philox4x64-10 counter generator (Salmon, Moraes, Dror and Shaw, 2011, SC'11) is
+    ``(seed, stream)`` and batch ``index`` starts its counter at ``index * 2**64``, so batch
+    ``index`` reads the same words whatever batches were drawn before it, and two batches never
+    share words (up to 2**66 words a batch). ``random_raw`` output is the algorithm's own, not a
+    numpy distribution, so it does not change with the numpy version.
+
+    Parameters
+    ----------
+    seed : int
+        Non-negative integer below 2**63.
+    stream : int or str
+        A stream number or a name from :data:`STREAMS`.
+
+    Examples
+    --------
+    >>> bits = BatchBits(7, "heads")
+    >>> a = bits.uniform(3, 4); b = bits.uniform(3, 4)
+    >>> bool((a == b).all()), bool(((0 <= a) & (a < 1)).all()), bool((a != bits.uniform(4, 4)).any())
+    (True, True, True)
+    """
+
+    def __init__(self, seed: int, stream: int | str = 0):
+        if isinstance(stream, str):
+            stream = STREAMS[stream]
+        self._key = np.array([int(seed), int(stream)], dtype=np.uint64)
+        self._gen = np.random.Philox(key=self._key)
+
+    def raw(self, index: int, count: int) -> np.ndarray:
+        """The ``count`` uint64 words of batch ``index`` (non-negative, below 2**64)."""
+        counter = np.array([0, int(index), 0, 0], dtype=np.uint64)
+        self._gen.state = {"bit_generator": "Philox", "state": {"counter": counter, "key": self._key},
+                           "buffer": np.zeros(4, np.uint64), "buffer_pos": 4, "has_uint32": 0,
+                           "uinteger": 0}
+        return self._gen.random_raw(int(count))
+
+    def uniform(self, index: int, count: int) -> np.ndarray:
+        """``count`` float64 uniforms on [0, 1) of batch ``index`` (53 bits each, as :func:`uniform`)."""
+        return (self.raw(index, count) >> np.uint64(11)).astype(np.float64) * (1.0 / 9007199254740992.0)

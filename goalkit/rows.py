@@ -80,6 +80,13 @@ INDEX_FIELDS = _fields(
     ("reached", "uint8", "", "1 when phi(s_t+1) is within the threshold of g"),
     ("terminal", "uint8", "", "1 when the episode ends for this goal (`end_on_reach`); time limits are "
                               "never terminal"),
+    # ---- training labels (discount gamma: the recipe's [relabel] gamma; d = steps_to_goal) ----
+    ("discount_weight", "float32", "", "gamma**d, the discounted relabelling weight; 0 when steps_to_goal "
+                                       "is -1"),
+    ("return_to_goal", "float32", "", "-(1 - gamma**d) / (1 - gamma), the return of reward -1 per step over "
+                                      "the d steps to the goal; -1 / (1 - gamma) when steps_to_goal is -1"),
+    ("bootstrap_mask", "uint8", "", "1 - terminal: 0 only when the goal is reached and `end_on_reach` ends "
+                                    "the episode; a time limit never clears it"),
 )
 
 #: Extra columns of a materialised set, in the order they are written.
@@ -98,6 +105,8 @@ TASK_REWARD_FIELD = Field("task_reward", "float32", "",
 GOAL_ADDRESS = ("goal_episode", "goal_step", "hop_episode", "hop_step", "join_step", "steps_to_goal")
 #: The columns :func:`goalkit.reward.score` fills, in this order.
 SCORE_COLUMNS = ("goal_distance", "reward", "reached", "terminal")
+#: The training-label columns (:func:`goalkit.pipeline.chunk.row_labels` fills them), in this order.
+LABEL_COLUMNS = ("discount_weight", "return_to_goal", "bootstrap_mask")
 
 #: Every column, by name.
 ALL_FIELDS = {**INDEX_FIELDS, **MATERIAL_FIELDS, TASK_REWARD_FIELD.name: TASK_REWARD_FIELD}

@@ -104,3 +104,26 @@ def reward_rules(c: dict, achieved, goal, rc):
     terminal = stored_reached & rc.end_on_reach
     yield "terminal", ("terminal is not the reached flag (end_on_reach = true)" if rc.end_on_reach
                        else "terminal must be 0 (end_on_reach = false)"), c["terminal"].astype(bool) != terminal
+
+
+def label_rules(c: dict, rc):
+    """The training labels (docs/dataset.md, "Training labels") from steps_to_goal and terminal.
+
+    ``d = steps_to_goal``, ``g`` the recipe's ``[relabel] gamma``: ``discount_weight`` is
+    ``g**d`` and ``return_to_goal`` is the sum of ``-g**k`` for ``k < d`` when ``d >= 1``; 0 and
+    ``-1 / (1 - g)`` when ``d`` is -1. ``bootstrap_mask`` is 1 unless the row is terminal.
+    Stored as float32, so compared within float32 rounding.
+    """
+    d = c["steps_to_goal"]
+    g = float(rc.gamma)
+    known = d >= 1
+    weight = np.where(known, g ** np.where(known, d, 0).astype(np.float64), 0.0)
+    # the return as a geometric series, written out rather than taken from the builder
+    ret = np.where(known, -(1.0 - weight) / (1.0 - g), -1.0 / (1.0 - g))
+    tol = 4e-7 * np.maximum(1.0, np.abs(ret))
+    yield "discount_weight", "discount_weight is not gamma**steps_to_goal (0 without a path)", \
+        ~(np.abs(c["discount_weight"].astype(np.float64) - weight) <= 4e-7)
+    yield "return_to_goal", "return_to_goal is not -(1 - gamma**d) / (1 - gamma) (-1 / (1 - gamma) without a path)", \
+        ~(np.abs(c["return_to_goal"].astype(np.float64) - ret) <= tol)
+    yield "bootstrap_mask", "bootstrap_mask is not 1 - terminal", \
+        c["bootstrap_mask"].astype(np.int64) != 1 - c["terminal"].astype(np.int64)

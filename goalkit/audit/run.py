@@ -12,7 +12,7 @@ import numpy as np
 from goalkit.audit.laws import geometric_law, uniform_law
 from goalkit.audit.recipe_text import CODE_NAMES, parse_audit_recipe
 from goalkit.audit.rowrules import (EPISODE, FUTURE, GEOMETRIC, NEAR_MISS, NEIGHBOUR, ORIGINAL, OTHER,
-                                    address_rules, reward_rules)
+                                    address_rules, label_rules, reward_rules)
 from goalkit.audit.stattests import (FINE_BINS, binom_check, count_bound_check, grid_chi2_check, holm,
                                      share_power, uniform_chi2_check)
 from goalkit.config import parse_toml
@@ -32,6 +32,8 @@ JITTER_SALT = 0x61756469
 
 INDEX = ("source_episode", "source_step", "slot", "strategy", "goal_episode", "goal_step", "hop_episode",
          "hop_step", "join_step", "steps_to_goal", "goal", "goal_distance", "reward", "reached", "terminal")
+#: The training-label columns (docs/dataset.md); audited where stored (older sets lack them).
+LABELS = ("discount_weight", "return_to_goal", "bootstrap_mask")
 SPLITS = ("train", "validation")
 
 
@@ -279,7 +281,7 @@ class _Auditor:
     def block(self, split, a, b, counts):
         rc, logs = self.rc, self.logs
         grp = self.f[split]
-        c = {k: grp[k][a:b] for k in INDEX}
+        c = {k: grp[k][a:b] for k in INDEX + tuple(k for k in LABELS if k in grp)}
         n = b - a
         v = self.jitter.random((n, 3))
         self.report.rows[split] += n
@@ -310,6 +312,9 @@ class _Auditor:
         for rule, message, mask in address_rules(c, T, T_goal, same_split, rc):
             self.violated(rule, message, mask, split, a, c)
             valid &= ~mask
+        if all(k in c for k in LABELS):
+            for rule, message, mask in label_rules(c, rc):
+                self.violated(rule, message, mask, split, a, c)
         inside = (t >= 0) & (t < T)
         if inside.any():
             idx = np.flatnonzero(inside)

@@ -13,13 +13,14 @@ from pathlib import Path
 
 from goalkit.config import check_keys, expect_type, parse_toml, read_text_file
 from goalkit.errors import ParameterError, RecipeError
+from goalkit.heads import heads_from_table
 from goalkit.outputs import small_toml
 from goalkit.relabel import Mixture
 from goalkit.reward import RewardRule
 
 RECIPE_VERSION = 1
 
-TOP_KEYS = ("version", "seed", "logs", "goal", "relabel", "reward", "split", "output")
+TOP_KEYS = ("version", "seed", "logs", "goal", "relabel", "reward", "split", "output", "heads")
 LOGS_KEYS = ("path", "layout", "skip_bad_episodes")
 GOAL_KEYS = ("fields", "indices", "embedding", "dtype")
 SPLIT_KEYS = ("validation", "salt")
@@ -93,6 +94,9 @@ class Recipe:
     salt : int
         Salt of the split hash.
     output : OutputSpec
+    heads : tuple of goalkit.heads.GoalHead
+        The optional ``[heads.NAME]`` tables: goal heads of the multi-head training sampler
+        (a build ignores them).
     """
 
     text: str
@@ -107,6 +111,7 @@ class Recipe:
     validation: float
     salt: int
     output: OutputSpec
+    heads: tuple = ()
 
     def inputs(self) -> list[tuple[str, Path]]:
         """Every file or folder a build of this recipe reads, labelled for messages.
@@ -275,9 +280,10 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored
     reward = _in_recipe(RewardRule.from_table, _table(doc, "reward", file), file, "reward")
     validation, salt = _parse_split(_table(doc, "split", file, required=False), file)
     output = _parse_output(_table(doc, "output", file), base, file, stored=stored)
+    heads = heads_from_table(_table(doc, "heads", file, required=False), file)
     return Recipe(text=text, file=str(file), seed=seed, logs_path=logs_path, layout_path=layout_path,
                   skip_bad_episodes=skip, goal=goal, mixture=mixture, reward=reward,
-                  validation=validation, salt=salt, output=output)
+                  validation=validation, salt=salt, output=output, heads=heads)
 
 
 def _in_recipe(make, table, file, name: str):

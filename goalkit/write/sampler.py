@@ -14,8 +14,49 @@ import numpy as np
 from goalkit import rng
 from goalkit.errors import RecipeError
 from goalkit.logs.episodes import chunk_bounds, concat_episodes, consecutive_runs
+from goalkit.pipeline.chunk import row_labels
+from goalkit.pipeline.plan import make_plan
 from goalkit.reward import score
 from goalkit.rows import SPLIT_CODES, SPLITS
+
+
+def load_split(recipe, split: str = "train", source=None):
+    """Read one split of a recipe's logs into memory, with phi of every state.
+
+    Parameters
+    ----------
+    recipe : Recipe
+    split : {"train", "validation"}
+    source : LogSource, optional
+        Opened logs (default: the recipe's).
+
+    Returns
+    -------
+    (plan, episodes, phi) : (BuildPlan, EpisodeSet, ndarray (N + E, G))
+        The build plan, the split's episodes (read a chunk at a time) and the goal vector of
+        every state, in the recipe's goal dtype.
+
+    Raises
+    ------
+    RecipeError
+        On an unknown split or a split without episodes.
+    """
+    if split not in SPLIT_CODES:
+        raise RecipeError(f"unknown split {split!r}; splits are {', '.join(SPLITS)}", file=recipe.file)
+    plan, source = make_plan(recipe, source)
+    code = SPLIT_CODES[split]
+    parts = []
+    for a, b in chunk_bounds(plan.lengths, 500_000):
+        chunk = source.read(a, b)
+        keep = np.flatnonzero(plan.splits[a:b] == code)
+        for lo, hi in consecutive_runs(keep):
+            parts.append(chunk.select(int(keep[lo]), int(keep[hi - 1]) + 1))
+    if not parts:
+        raise RecipeError(f"the {split} split holds no episode", file=recipe.file, key="split.validation")
+    episodes = concat_episodes(parts)
+    gd = np.dtype(recipe.goal.dtype)
+    phi = plan.goal_map(episodes, np.arange(episodes.observations.shape[0])).astype(gd)
+    return plan, episodes, phi
 
 
 class GoalSampler:
@@ -45,25 +86,11 @@ class GoalSampler:
     """
 
     def __init__(self, recipe, split: str = "train", source=None):
-        from goalkit.pipeline.plan import make_plan
-
-        if split not in SPLIT_CODES:
-            raise RecipeError(f"unknown split {split!r}; splits are {', '.join(SPLITS)}", file=recipe.file)
         self.recipe = recipe
-        self.plan, source = make_plan(recipe, source)
-        code = SPLIT_CODES[split]
-        parts = []
-        for a, b in chunk_bounds(self.plan.lengths, 500_000):
-            chunk = source.read(a, b)
-            keep = np.flatnonzero(self.plan.splits[a:b] == code)
-            for lo, hi in consecutive_runs(keep):
-                parts.append(chunk.select(int(keep[lo]), int(keep[hi - 1]) + 1))
-        if not parts:
-            raise RecipeError(f"the {split} split holds no episode", file=recipe.file, key="split.validation")
-        self.episodes = concat_episodes(parts)
+        self.plan, self.episodes, self.phi = load_split(recipe, split, source)
         self.mixture = replace(recipe.mixture, goals_per_transition=1)
-        gd = np.dtype(recipe.goal.dtype)
-        self.phi = self.plan.goal_map(self.episodes, np.arange(self.episodes.observations.shape[0])).astype(gd)
+        # the episode of every transition, once (not rebuilt per batch)
+        self._transition_episode = self.episodes.transition_episode()
 
     @property
     def num_transitions(self) -> int:
@@ -78,7 +105,8 @@ class GoalSampler:
         dict of ndarray
             observation, action, next_observation, reached_goal, goal, goal_distance, reward,
             reached, terminal, strategy, source_episode, source_step, goal_episode, goal_step,
-            steps_to_goal.
+            steps_to_goal, discount_weight, return_to_goal, bootstrap_mask (discount: the
+            recipe's ``[relabel] gamma``).
         """
         eps, rule = self.episodes, self.recipe.reward
         seed = self.recipe.seed
@@ -91,7 +119,7 @@ class GoalSampler:
         inv[order] = np.arange(batch_size)
         sel = inv  # row i of the output is sampled draw i
         t_idx = rows.transition[sel]
-        pos = eps.transition_episode()[t_idx]
+        pos = self._transition_episode[t_idx]
         step = t_idx - eps.offsets[pos]
         cur = t_idx + pos
         achieved = self.phi[cur + 1].astype(np.float64)
@@ -102,13 +130,15 @@ class GoalSampler:
             goal[internal] = self.phi[eps.state_row(eps.position_of(ge[internal]), gs[internal])]
         if (~internal).any():
             goal[~internal] = rows.external[sel][~internal].astype(self.phi.dtype)
+        scores = score(rule, achieved, goal)
         return {
             "observation": eps.observations[cur], "action": eps.actions[t_idx],
             "next_observation": eps.observations[cur + 1],
             "reached_goal": achieved.astype(self.phi.dtype), "goal": goal.astype(self.phi.dtype),
-            **score(rule, achieved, goal).columns(),
+            **scores.columns(),
             "strategy": rows.strategy[sel], "source_episode": eps.episode_ids[pos], "source_step": step,
             "goal_episode": ge, "goal_step": gs, "steps_to_goal": rows.steps_to_goal[sel],
+            **row_labels(rows.steps_to_goal[sel], self.mixture.gamma, scores.terminal),
         }
 
     def __iter__(self):

@@ -34,7 +34,7 @@ from goalkit.audit import audit_into
 from goalkit.errors import DatasetError, GoalkitError
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.pipeline.build import chunk_transitions, final_summary
-from goalkit.pipeline.chunk import relabel_chunk
+from goalkit.pipeline.chunk import relabel_chunk, row_labels
 from goalkit.pipeline.plan import make_plan, split_rows
 from goalkit.pipeline.summary import SummaryBuilder
 from goalkit.relabel.strategies import strategy_names
@@ -166,6 +166,14 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
             row = _first(diff)
             report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): {name} {cols[name][row]!r} does not "
                         f"recompute from the reward rule (expected {ref[row]!r})")
+    if "discount_weight" in cols:  # the training labels, from the stored steps and terminal flag
+        labels = row_labels(cols["steps_to_goal"], plan.recipe.mixture.gamma, cols["terminal"])
+        for name, ref in labels.items():
+            diff = cols[name] != ref
+            if diff.any():
+                row = _first(diff)
+                report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): {name} {cols[name][row]!r} does "
+                            f"not recompute from steps_to_goal and [relabel] gamma (expected {ref[row]!r})")
 
 
 def _strategy_code_problems(file) -> list[str]:

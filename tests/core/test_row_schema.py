@@ -40,7 +40,7 @@ def test_docs_column_table_is_the_schema():
                   for name, dtype, shape, meaning in rows}
     schema = {f.name: (f.dtype_text, f.shape_text, f.meaning) for f in ALL_FIELDS.values()}
     assert documented == schema
-    assert len(documented) == 20   # 15 index columns, 4 materialised, task_reward
+    assert len(documented) == 23   # 18 index columns, 4 materialised, task_reward
 
 
 def test_docs_strategy_table_is_the_strategy_table():
