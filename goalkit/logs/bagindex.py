@@ -131,14 +131,57 @@ def _record_times(reader, topics) -> dict | None:
                 if v:
                     parts[t].append(np.sort(np.concatenate(v).astype(np.int64)))
         elif kind == "sqlite":
-            for t, cids in ids.items():
-                q = (f"SELECT timestamp FROM messages WHERE topic_id IN ({','.join('?' * len(cids))}) "
-                     f"ORDER BY timestamp")
-                rows = st.dbconn.execute(q, tuple(cids))          # streamed: no list of rows
-                parts[t].append(np.fromiter((r[0] for r in rows), dtype=np.int64))
+            got = _sqlite_times(st, ids)
+            for t, v in got.items():
+                parts[t].append(v)
         else:
             return None
     return {t: np.concatenate(v) if v else _EMPTY for t, v in parts.items()}
+
+
+#: Rows of a SQLite bag read per query when taking the message times (a fixed buffer).
+SQLITE_BLOCK = 1 << 16
+
+
+def _sqlite_times(st, ids) -> dict:
+    """Sorted record times of each topic (``{topic: connection ids}``) of one SQLite file.
+
+    The messages table is walked in blocks of :data:`SQLITE_BLOCK` rows by its primary key;
+    each block's (topic id, time) pairs come back as one text that numpy parses, so no Python
+    object is made per message and the buffer is fixed. Falls back to one ordered query per
+    topic when a block does not parse (a damaged or unusual file).
+    """
+    want = sorted({c for cids in ids.values() for c in cids})
+    if not want:
+        return {}
+    marks = ",".join("?" * len(want))
+    q = (f"SELECT max(id), sum(topic_id IN ({marks})), group_concat(CASE WHEN topic_id IN "
+         f"({marks}) THEN topic_id || ',' || timestamp END) FROM (SELECT id, topic_id, timestamp "
+         f"FROM messages WHERE id > ? ORDER BY id LIMIT ?)")
+    parts = {t: [] for t in ids}
+    last = -(1 << 63)
+    try:
+        while True:
+            top, n, text = st.dbconn.execute(q, (*want, *want, last, SQLITE_BLOCK)).fetchone()
+            if top is None:
+                break
+            last = top
+            if not n:
+                continue
+            pairs = np.fromstring(text, dtype=np.int64, sep=",")
+            if pairs.size != 2 * n:
+                raise ValueError("block did not parse")
+            pairs = pairs.reshape(-1, 2)
+            for t, cids in ids.items():
+                parts[t].append(pairs[np.isin(pairs[:, 0], cids), 1])
+    except (ValueError, TypeError, DeprecationWarning):
+        parts = {}
+        for t, cids in ids.items():
+            q = (f"SELECT timestamp FROM messages WHERE topic_id IN ({','.join('?' * len(cids))}) "
+                 f"ORDER BY timestamp")
+            rows = st.dbconn.execute(q, tuple(cids))          # streamed: no list of rows
+            parts[t] = [np.fromiter((r[0] for r in rows), dtype=np.int64)]
+    return {t: np.sort(np.concatenate(v)) if v else _EMPTY for t, v in parts.items()}
 
 
 class WindowReader:
