@@ -556,7 +556,8 @@ class BagSource(BaseSource):
             fast = None
             if topic != frame:
                 fast = fixed_layout_values(raw_list, decode(0, raw_list[0]), refs, reader.typestore,
-                                           ros1=not reader.is2, header=read_stamp is not None)
+                                           ros1=not reader.is2, header=read_stamp is not None,
+                                           decode=lambda i: decode(i, raw_list[i]))
             if fast is not None:
                 for ref in refs:
                     if fast[ref.text].shape[1] != ref.width:

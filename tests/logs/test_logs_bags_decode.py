@@ -176,3 +176,90 @@ def test_ros1_record_slicer_declines_a_connection_record_at_an_index_entry():
     assert _ros1_records(chunk, np.array([0, len(msg)])) is None
     with pytest.raises(ValueError):
         _ros1_records(chunk, np.array([len(chunk) - 2]))
+
+
+def _varying_joint_messages(ts, n, ros1):
+    """JointState messages whose frame id and joint names change length from message to message
+    (several layouts, some of equal total length), positions in radians (REP 103)."""
+    T = ts.types
+    fids = ["arm", "arm_base", "arm_base", "tool0"]
+    names = [["a", "b"], ["carriage", "boom"], ["c", "d"], ["carriage", "b"]]
+    out = []
+    for i in range(n):
+        k = (i * 7 + i // 3) % 4
+        stamp = T["builtin_interfaces/msg/Time"](sec=100 + i // 50, nanosec=(i % 50) * 20_000_000)
+        h = T["std_msgs/msg/Header"](**({"seq": i} if ros1 else {}), stamp=stamp, frame_id=fids[k])
+        out.append(T["sensor_msgs/msg/JointState"](header=h, name=names[k],
+                                                   position=np.array([np.sin(0.01 * i), 0.1 * k]),
+                                                   velocity=np.zeros(2), effort=np.zeros(0)))
+    return out
+
+
+@pytest.mark.parametrize("ros1", [False, True])
+def test_fixed_layout_values_over_several_layouts_equal_rosbags(ros1):
+    from rosbags.typesys import Stores, get_typestore
+
+    import goalkit.logs.bagfast as fast
+    from goalkit.logs.bagfile import Ref, resolve
+
+    ts = get_typestore(Stores.ROS1_NOETIC if ros1 else Stores.ROS2_HUMBLE)
+    name = "sensor_msgs/msg/JointState"
+    ser = ts.serialize_ros1 if ros1 else ts.serialize_cdr
+    de = ts.deserialize_ros1 if ros1 else ts.deserialize_cdr
+    raws = [bytes(ser(m, name)) for m in _varying_joint_messages(ts, 400, ros1)]
+    assert len({len(r) for r in raws}) >= 2
+    ref = Ref("x", "/j:position", "/j", "position")
+    proto = de(raws[0], name)
+    resolve(ref, proto, name, "f")
+    assert fast.fixed_layout_values(raws, proto, [ref], ts, ros1=ros1, header=True) is None
+    got = fast.fixed_layout_values(raws, proto, [ref], ts, ros1=ros1, header=True,
+                                   decode=lambda i: de(raws[i], name))
+    want = np.stack([de(r, name).position for r in raws])
+    np.testing.assert_array_equal(got[ref.text], want)
+    # more layouts than allowed, or a width that changes: left to the per-message path
+    assert fast.fixed_layout_values(raws, proto, [ref], ts, ros1=ros1, header=True,
+                                    decode=lambda i: de(raws[i], name), max_layouts=2) is None
+    T = ts.types
+    wide = T["sensor_msgs/msg/JointState"](header=proto.header, name=["a", "b", "c"],
+                                           position=np.array([1.0, 2.0, 3.0]), velocity=np.zeros(3),
+                                           effort=np.zeros(0))
+    mixed = raws[:5] + [bytes(ser(wide, name))]
+    assert fast.fixed_layout_values(mixed, proto, [ref], ts, ros1=ros1, header=True,
+                                    decode=lambda i: de(mixed[i], name)) is None
+
+
+@pytest.mark.parametrize("kind", ["mcap", "sqlite", "ros1"])
+def test_varying_layouts_read_equal_to_per_message_decoding(tmp_path, monkeypatch, kind):
+    """A recording written with rosbags' writers whose joint names and frame ids vary: read
+    with the several-layout path and with every message through rosbags' deserialiser."""
+    from rosbags.rosbag1 import Writer as Writer1
+    from rosbags.rosbag2 import StoragePlugin, Writer as Writer2
+    from rosbags.typesys import Stores, get_typestore
+
+    import goalkit.logs.bagfast as fast
+
+    ros1 = kind == "ros1"
+    ts = get_typestore(Stores.ROS1_NOETIC if ros1 else Stores.ROS2_HUMBLE)
+    ser = ts.serialize_ros1 if ros1 else ts.serialize_cdr
+    path = tmp_path / ("v.bag" if ros1 else "v")
+    w = Writer1(path) if ros1 else Writer2(path, version=9, storage_plugin=(
+        StoragePlugin.MCAP if kind == "mcap" else StoragePlugin.SQLITE3))
+    T = ts.types
+    lay = T["std_msgs/msg/MultiArrayLayout"](dim=[], data_offset=0)
+    with w:
+        cj = w.add_connection("/j", "sensor_msgs/msg/JointState", typestore=ts)
+        cc = w.add_connection("/c", "std_msgs/msg/Float64MultiArray", typestore=ts)
+        for i, m in enumerate(_varying_joint_messages(ts, 600, ros1)):
+            t = m.header.stamp.sec * 10**9 + m.header.stamp.nanosec
+            w.write(cj, t, bytes(ser(m, "sensor_msgs/msg/JointState")))
+            if i % 3 == 1:
+                c = T["std_msgs/msg/Float64MultiArray"](layout=lay, data=np.array([0.5 * i, -1.0]))
+                w.write(cc, t + 1000, bytes(ser(c, "std_msgs/msg/Float64MultiArray")))
+    lay_ = {"shape": "bag", "keys": {"action": "/c:data"}, "fields": {"joints": "/j:position"},
+            "bag": {"step_topic": "/c", "align": {"/j": "interpolate", "/c": "latest"}}}
+    quick = open_logs(path, lay_).read(0, 1)
+    monkeypatch.setattr(fast, "ENABLED", False)
+    slow = open_logs(path, lay_).read(0, 1)
+    assert quick.observations.shape[0] > 100
+    np.testing.assert_array_equal(quick.observations, slow.observations)
+    np.testing.assert_array_equal(quick.actions, slow.actions)
