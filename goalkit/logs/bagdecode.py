@@ -19,8 +19,9 @@ import numpy as np
 _MSG, _POS = itemgetter(0), itemgetter(1)
 
 
-def decode_all(raws, typestore, msgtype: str, *, ros1: bool):
-    """The decoded messages of ``raws`` (all of type ``msgtype``), or None.
+def decode_all(raws, typestore, msgtype: str, *, ros1: bool, pick=None):
+    """The decoded messages of ``raws`` (all of type ``msgtype``), or what ``pick`` takes from
+    each, or None.
 
     Parameters
     ----------
@@ -30,12 +31,16 @@ def decode_all(raws, typestore, msgtype: str, *, ros1: bool):
     typestore : rosbags Typestore
     msgtype : str
     ros1 : bool
+    pick : callable, optional
+        Applied to each message as soon as it is decoded; the message itself is then dropped
+        (no million live message objects for the cyclic collector to walk).
 
     Returns
     -------
-    list of message, or None
-        Equal to ``[typestore.deserialize_cdr(r, msgtype) for r in raws]`` (or
-        ``deserialize_ros1``); None when that would raise or a check here fails.
+    list, or None
+        Equal to ``[pick(typestore.deserialize_cdr(r, msgtype)) for r in raws]`` (or
+        ``deserialize_ros1``; without ``pick`` the messages); None when that would raise or a
+        check here fails.
     """
     n = len(raws)
     if n == 0:
@@ -51,7 +56,8 @@ def decode_all(raws, typestore, msgtype: str, *, ros1: bool):
         try:
             if ros1:
                 f = msgdef.deserialize_ros1
-                pairs = [f(r, 0, cls, typestore) for r in raws]
+                pairs = ([f(r, 0, cls, typestore) for r in raws] if pick is None else
+                         [(pick(m), p) for m, p in (f(r, 0, cls, typestore) for r in raws)])
             else:
                 if lens.min() < 4:
                     return None
@@ -60,7 +66,8 @@ def decode_all(raws, typestore, msgtype: str, *, ros1: bool):
                 if np.any(buf[starts] != 0) or np.any(buf[starts + 1] != 1):   # little-endian CDR
                     return None
                 f = msgdef.deserialize_cdr_le
-                pairs = [f(r[4:], 0, cls, typestore) for r in raws]
+                pairs = ([f(r[4:], 0, cls, typestore) for r in raws] if pick is None else
+                         [(pick(m), p) for m, p in (f(r[4:], 0, cls, typestore) for r in raws)])
         finally:
             if collect:
                 gc.enable()

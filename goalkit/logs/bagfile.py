@@ -565,8 +565,16 @@ class BagSource(BaseSource):
                                        f"{ref.width} in every message", file=bag, key=ref.text, episode=e)
                     aligned[ref.text] = (t, fast[ref.text])
                 continue
-            msgs = decode_all(raw_list, reader.typestore, conn.msgtype, ros1=not reader.is2)
-            if msgs is None:                           # one by one: the failing one is named
+            picked = None
+            if topic != frame:                         # keep the values, not the messages
+                getters = [r.getter for r in refs]
+                pick = getters[0] if len(getters) == 1 else (lambda m: tuple(g(m) for g in getters))
+                picked = decode_all(raw_list, reader.typestore, conn.msgtype, ros1=not reader.is2,
+                                    pick=pick)
+                msgs = None
+            if picked is None:
+                msgs = decode_all(raw_list, reader.typestore, conn.msgtype, ros1=not reader.is2)
+            if picked is None and msgs is None:        # one by one: the failing one is named
                 collect = gc.isenabled()
                 gc.disable()
                 try:
@@ -576,8 +584,11 @@ class BagSource(BaseSource):
                         gc.enable()
             if topic == frame:
                 images = (t, msgs)
-            for ref in refs:
-                out = [ref.getter(m) for m in msgs]
+            for slot, ref in enumerate(refs):
+                if picked is None:
+                    out = [ref.getter(m) for m in msgs]
+                else:
+                    out = picked if len(refs) == 1 else [v[slot] for v in picked]
                 try:
                     v = np.asarray(out, dtype=np.float64 if ref.kind == "f" else None).reshape(len(out), -1)
                 except ValueError:

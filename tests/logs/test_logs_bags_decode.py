@@ -263,3 +263,39 @@ def test_varying_layouts_read_equal_to_per_message_decoding(tmp_path, monkeypatc
     assert quick.observations.shape[0] > 100
     np.testing.assert_array_equal(quick.observations, slow.observations)
     np.testing.assert_array_equal(quick.actions, slow.actions)
+
+
+def test_two_fields_of_one_topic_read_message_by_message(tmp_path, monkeypatch):
+    """Two fields from one topic (positions and velocities of the joint states) through the
+    per-message path: each column equals the one-field read and rosbags' values (velocities
+    are written as zeros in bag_testdata)."""
+    import goalkit.logs.bagfast as fast
+
+    monkeypatch.setattr(fast, "ENABLED", False)
+    bag = _bag(tmp_path, "mcap", seed=15)
+    two = {**LAYOUT, "fields": {"joints": f"{JOINTS}:position", "speeds": f"{JOINTS}:velocity",
+                                "nozzle": f"{TIP}:pose.position"},
+           "bag": {**LAYOUT["bag"], "align": {JOINTS: "nearest", TIP: "nearest", CMD: "latest"}}}
+    one = {**two, "fields": {"joints": f"{JOINTS}:position", "nozzle": f"{TIP}:pose.position"}}
+    a = open_logs(bag, two).read(0, 1)
+    b = open_logs(bag, one).read(0, 1)
+    np.testing.assert_array_equal(a.observations[:, :2], b.observations[:, :2])
+    np.testing.assert_array_equal(a.observations[:, 2:4], 0.0)
+    np.testing.assert_array_equal(a.observations[:, 4:], b.observations[:, 2:])
+    assert np.ptp(a.observations[:, 0]) > 0.1
+
+
+def test_decode_all_picks_values_as_rosbags_gives_them(tmp_path):
+    from operator import attrgetter
+
+    bag = _bag(tmp_path, "ros1", seed=16)
+    reader = open_reader(Path(bag))
+    try:
+        conns = [c for c in reader.connections if c.topic == TIP]
+        raws = [bytes(raw) for _, _, raw in reader.messages(connections=conns)]
+        pick = attrgetter("pose.position.x", "pose.position.z")
+        got = decode_all(raws, reader.typestore, conns[0].msgtype, ros1=True, pick=pick)
+        want = [pick(reader.typestore.deserialize_ros1(r, conns[0].msgtype)) for r in raws]
+        assert got == want and len(got) > 10
+    finally:
+        reader.close()
