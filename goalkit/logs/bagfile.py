@@ -335,7 +335,7 @@ class BagSource(BaseSource):
             marker = self._markers(reader, bag)
         t0 = reader.start_time
         for topic, t in times.items():
-            back = np.flatnonzero(np.diff(t) < 0)
+            back = np.flatnonzero(t[1:] < t[:-1])          # 1 byte a message, not 8
             if back.size:
                 raise LogError(f"time goes backwards at {_seconds(t[back[0] + 1], t0)} (the message "
                                f"before is at {_seconds(t[back[0]], t0)}); expected times that never "

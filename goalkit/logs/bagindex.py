@@ -110,7 +110,7 @@ def _record_times(reader, topics) -> dict | None:
             if c.topic in topics:
                 idx = top.indexes.get(c.id, [])
                 parts[c.topic].append(np.fromiter((x.time for x in idx), dtype=np.int64, count=len(idx)))
-        return {t: np.sort(np.concatenate(v)) if v else _EMPTY for t, v in parts.items()}
+        return {t: _sorted(v) for t, v in parts.items()}
     storages = _storage_list(top)
     if not storages:
         return None
@@ -126,17 +126,28 @@ def _record_times(reader, topics) -> dict | None:
                     for cid in cids:
                         pairs = _mcap_index(st, ch, cid)
                         if pairs is not None:
-                            got[t].append(pairs[:, 0])
+                            got[t].append(pairs[:, 0].copy())   # not the offsets too
             for t, v in got.items():
                 if v:
-                    parts[t].append(np.sort(np.concatenate(v).astype(np.int64)))
+                    parts[t].append(_sorted(v))           # uint64 log times < 2**63
         elif kind == "sqlite":
             got = _sqlite_times(st, ids)
             for t, v in got.items():
                 parts[t].append(v)
         else:
             return None
-    return {t: np.concatenate(v) if v else _EMPTY for t, v in parts.items()}
+    return {t: (v[0] if len(v) == 1 else np.concatenate(v)) if v else _EMPTY for t, v in parts.items()}
+
+
+def _sorted(parts):
+    """The parts joined and sorted in place as int64: one array of 8 bytes a message, no
+    further copies (the times are the largest thing held while a bag is opened)."""
+    if not parts:
+        return _EMPTY
+    a = parts[0].copy() if len(parts) == 1 else np.concatenate(parts)
+    a = a.view(np.int64) if a.dtype == np.uint64 else a.astype(np.int64, copy=False)
+    a.sort()
+    return a
 
 
 #: Rows of a SQLite bag read per query when taking the message times (a fixed buffer).
@@ -181,7 +192,7 @@ def _sqlite_times(st, ids) -> dict:
                  f"ORDER BY timestamp")
             rows = st.dbconn.execute(q, tuple(cids))          # streamed: no list of rows
             parts[t] = [np.fromiter((r[0] for r in rows), dtype=np.int64)]
-    return {t: np.sort(np.concatenate(v)) if v else _EMPTY for t, v in parts.items()}
+    return {t: _sorted(v) for t, v in parts.items()}
 
 
 class WindowReader:
