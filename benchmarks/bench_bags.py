@@ -14,13 +14,16 @@ deserialize_cdr (deserialize_ros1 for ROS 1) on every message of the same bag (d
 nothing kept). ``--storage sqlite`` or ``ros1`` writes the same recording in that storage.
 goalkit: open_logs (message times from the bag's indexes) and reading every episode in
 chunks of 100k transitions (decode, field look-ups, alignment); also measured with the
-whole-topic decoding switched off (every message through rosbags' deserialize_cdr), reported
-as per_message. A second recording (``vary``: joint names and frame ids change length between
-messages) is one where the whole-topic decoding cannot apply to the joint and pose topics; it
-is measured against its own floor, and once more with goalkit.logs.bagindex switched off (times
-and messages read through rosbags' message loop, as before that module), reported as
-varying_no_index. Each run is a fresh process; the median of --repeats runs is used. Peak RSS
-is each process's own.
+whole-topic decoding switched off (every message through rosbags' generated deserialiser,
+goalkit.logs.bagdecode), reported as per_message. A second recording (``vary``: joint names and
+frame ids change length between messages) is one where the messages of the joint and pose
+topics fall into several layouts (decoded layout by layout); it is measured against its own
+floor, and once more with goalkit.logs.bagindex switched off (times and messages read through
+rosbags' message loop, as before that module), reported as varying_no_index. Each run is a
+fresh process; the median of --repeats runs is used, and ``ratios`` gives the median, min and
+max of the per-repeat ratios (floor and goalkit run next to each other) by wall time and by
+the process's CPU time (steadier on a shared machine); ``load_average`` is the machine's load
+when each size finished. Peak RSS is each process's own.
 
 Targets: goalkit >= 0.8 x the floor's message rate on both recordings and with the whole-topic
 decoding off; goalkit's peak RSS at the larger size
