@@ -14,13 +14,16 @@ deserialize_cdr (deserialize_ros1 for ROS 1) on every message of the same bag (d
 nothing kept). ``--storage sqlite`` or ``ros1`` writes the same recording in that storage.
 goalkit: open_logs (message times from the bag's indexes) and reading every episode in
 chunks of 100k transitions (decode, field look-ups, alignment); also measured with the
-whole-topic decoding switched off (every message through rosbags' deserialize_cdr), reported
-as per_message. A second recording (``vary``: joint names and frame ids change length between
-messages) is one where the whole-topic decoding cannot apply to the joint and pose topics; it
-is measured against its own floor, and once more with goalkit.logs.bagindex switched off (times
-and messages read through rosbags' message loop, as before that module), reported as
-varying_no_index. Each run is a fresh process; the median of --repeats runs is used. Peak RSS
-is each process's own.
+whole-topic decoding switched off (every message through rosbags' generated deserialiser,
+goalkit.logs.bagdecode), reported as per_message. A second recording (``vary``: joint names and
+frame ids change length between messages) is one where the messages of the joint and pose
+topics fall into several layouts (decoded layout by layout); it is measured against its own
+floor, and once more with goalkit.logs.bagindex switched off (times and messages read through
+rosbags' message loop, as before that module), reported as varying_no_index. Each run is a
+fresh process; the median of --repeats runs is used, and ``ratios`` gives the median, min and
+max of the per-repeat ratios (floor and goalkit run next to each other) by wall time and by
+the process's CPU time (steadier on a shared machine); ``load_average`` is the machine's load
+when each size finished. Peak RSS is each process's own.
 
 Targets: goalkit >= 0.8 x the floor's message rate on both recordings and with the whole-topic
 decoding off; goalkit's peak RSS at the larger size
@@ -32,6 +35,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import statistics
 import subprocess
 import sys
@@ -127,14 +131,14 @@ import json, time
 from pathlib import Path
 from rosbags.highlevel import AnyReader
 from rosbags.typesys import Stores, get_typestore
-t = time.perf_counter()
+t, c0 = time.perf_counter(), time.process_time()
 n = 0
 with AnyReader([Path({bag!r})], default_typestore=get_typestore(Stores.LATEST)) as r:
     deser = r.typestore.deserialize_cdr if r.is2 else r.typestore.deserialize_ros1
     for c, _, raw in r.messages():
         deser(raw, c.msgtype)
         n += 1
-print(json.dumps({{"seconds": time.perf_counter() - t, "messages": n,
+print(json.dumps({{"seconds": time.perf_counter() - t, "cpu_seconds": time.process_time() - c0, "messages": n,
                   "peak_rss_mb": peak_mb()}}))
 """
 
@@ -145,12 +149,13 @@ goalkit.logs.bagfast.ENABLED = {fast}
 goalkit.logs.bagindex.ENABLED = {index}
 from goalkit.logs import open_logs
 from goalkit.logs.episodes import iter_chunks
-t = time.perf_counter()
+t, c0 = time.perf_counter(), time.process_time()
 src = open_logs({bag!r}, {layout!r})
 steps = 0
 for es in iter_chunks(src, 100_000):
     steps += es.num_transitions
-print(json.dumps({{"seconds": time.perf_counter() - t, "episodes": src.num_episodes, "steps": steps,
+print(json.dumps({{"seconds": time.perf_counter() - t, "cpu_seconds": time.process_time() - c0,
+                  "episodes": src.num_episodes, "steps": steps,
                   "peak_rss_mb": peak_mb()}}))
 """
 
@@ -170,7 +175,7 @@ def main(argv=None):
     args = ap.parse_args(argv)
     sizes = [int(s) for s in args.sizes.split(",")]
     results = {"what": "bag read+align vs plain rosbags deserialise loop", "storage": args.storage,
-               "sizes": []}
+               "load_average_at_start": os.getloadavg(), "sizes": []}
     with tempfile.TemporaryDirectory() as tmp:
         for size in sizes:
             ext = ".bag" if args.storage == "ros1" else ""
@@ -207,7 +212,17 @@ def main(argv=None):
                    "goalkit_peak_rss_mb": max(r["peak_rss_mb"] for r in runs["goalkit"]),
                    "varying_peak_rss_mb": max(r["peak_rss_mb"] for r in runs["goalkit_varying"]),
                    "episodes": runs["goalkit"][0]["episodes"], "steps": runs["goalkit"][0]["steps"],
+                   "load_average": os.getloadavg(),
                    "runs": runs}
+            # ratio of each repeat (floor and goalkit ran next to each other): median and
+            # spread, by wall time and by CPU time of the process (less sensitive to load)
+            for name, base in (("goalkit", "floor"), ("goalkit_per_message", "floor"),
+                               ("goalkit_varying", "floor_varying"),
+                               ("goalkit_varying_no_index", "floor_varying")):
+                for clock in ("seconds", "cpu_seconds"):
+                    rs = [f[clock] / g[clock] for f, g in zip(runs[base], runs[name])]
+                    row.setdefault("ratios", {})[f"{name}_{'wall' if clock == 'seconds' else 'cpu'}"] = {
+                        "median": statistics.median(rs), "min": min(rs), "max": max(rs)}
             print(json.dumps({k: v for k, v in row.items() if k != "runs"}), flush=True)
             results["sizes"].append(row)
     s = results["sizes"]

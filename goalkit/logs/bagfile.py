@@ -22,6 +22,7 @@ from __future__ import annotations
 import gc
 import operator
 import os
+import threading
 from array import array
 from dataclasses import dataclass
 from pathlib import Path
@@ -31,6 +32,7 @@ import numpy as np
 from goalkit.config import closest, load_toml
 from goalkit.errors import GoalkitError, LayoutError, LogError
 from goalkit.logs import align as al
+from goalkit.logs.bagdecode import decode_all
 from goalkit.logs.bagfast import fixed_layout_values
 from goalkit.logs.bagimage import decode_image
 from goalkit.logs.bagindex import record_times, window_reader
@@ -259,11 +261,34 @@ class BagSource(BaseSource):
         try:
             self._scan_bag(b, bag, reader, problems, lengths)
         except GoalkitError:
+            reader.close()
             raise
         except Exception as exc:   # a damaged storage file surfaces as many exception types
-            raise LogError(f"cannot read the bag's messages ({type(exc).__name__}: {exc})", file=bag) from None
-        finally:
             reader.close()
+            raise LogError(f"cannot read the bag's messages ({type(exc).__name__}: {exc})", file=bag) from None
+        self._keep(b, reader)
+
+    # An opened bag is kept for the next read: opening costs a pass over the bag in rosbags
+    # (a ROS 1 bag's whole index is parsed, a SQLite bag's messages counted), and reads come
+    # in chunks of episodes, mostly from the same bag. One bag is kept; a read from another
+    # thread while it is in use opens its own. Not pickled (workers open their own).
+    def _keep(self, b, reader, windows=None):
+        old = getattr(self, "_kept", None)
+        self._kept = (b, reader, windows)
+        if old is not None and old[1] is not reader:
+            old[1].close()
+
+    def close(self):
+        """Close the bag kept open between reads (reopened when needed)."""
+        old, self._kept = getattr(self, "_kept", None), None
+        if old is not None:
+            old[1].close()
+
+    def __getstate__(self):
+        state = dict(self.__dict__)
+        state["_kept"] = None
+        state.pop("_kept_lock", None)
+        return state
 
     def _scan_bag(self, b, bag, reader, problems, lengths):
         spec = self.spec
@@ -310,7 +335,7 @@ class BagSource(BaseSource):
             marker = self._markers(reader, bag)
         t0 = reader.start_time
         for topic, t in times.items():
-            back = np.flatnonzero(np.diff(t) < 0)
+            back = np.flatnonzero(t[1:] < t[:-1])          # 1 byte a message, not 8
             if back.size:
                 raise LogError(f"time goes backwards at {_seconds(t[back[0] + 1], t0)} (the message "
                                f"before is at {_seconds(t[back[0]], t0)}); expected times that never "
@@ -382,14 +407,15 @@ class BagSource(BaseSource):
     def _cut(self, times, marker, t0):
         """Episode windows ``(begin, end)`` (inclusive ns) of one bag."""
         spec = self.spec
-        every = np.sort(np.concatenate([t for t in times.values()]))
-        if every.size == 0:
+        held = [t for t in times.values() if t.size]     # each sorted (checked before)
+        if not held:
             return []
-        first, last = int(every[0]), int(every[-1])
+        first, last = min(int(t[0]) for t in held), max(int(t[-1]) for t in held)
         if spec.episodes == "per-bag":
             return [(first, last)]
         if spec.episodes == "gap":
-            ref = times[spec.step_topic] if spec.step_topic else every
+            # all topics merged only when no step topic is named (another 8 bytes a message)
+            ref = times[spec.step_topic] if spec.step_topic else np.sort(np.concatenate(held))
             cuts = np.flatnonzero(np.diff(ref) > int(round(spec.cut_gap * 1e9))) + 1
             starts = np.concatenate([[0], cuts])
             stops = np.concatenate([cuts, [ref.size]]) - 1
@@ -455,12 +481,27 @@ class BagSource(BaseSource):
             j = i
             while j < len(ids) and self.windows[ids[j]][0] == b:
                 j += 1
-            reader = open_reader(self.bags[b])
-            try:
-                windows = window_reader(reader, self.topics)
-                parts += [self._read_one(reader, e, windows) for e in ids[i:j]]
-            finally:
-                reader.close()
+            lock = self.__dict__.setdefault("_kept_lock", threading.Lock())
+            if lock.acquire(blocking=False):           # the kept bag, or this one kept next
+                try:
+                    kept = getattr(self, "_kept", None)
+                    if kept is None or kept[0] != b:
+                        self._keep(b, open_reader(self.bags[b]))
+                        kept = self._kept
+                    _, reader, windows = kept
+                    if windows is None:
+                        windows = window_reader(reader, self.topics)
+                        self._kept = (b, reader, windows)
+                    parts += [self._read_one(reader, e, windows) for e in ids[i:j]]
+                finally:
+                    lock.release()
+            else:                                      # another thread reads the kept bag
+                reader = open_reader(self.bags[b])
+                try:
+                    windows = window_reader(reader, self.topics)
+                    parts += [self._read_one(reader, e, windows) for e in ids[i:j]]
+                finally:
+                    reader.close()
             i = j
         cols = {name: np.concatenate([p[name] for p in parts]) for name in parts[0]}
         return cols
@@ -515,7 +556,8 @@ class BagSource(BaseSource):
             fast = None
             if topic != frame:
                 fast = fixed_layout_values(raw_list, decode(0, raw_list[0]), refs, reader.typestore,
-                                           ros1=not reader.is2, header=read_stamp is not None)
+                                           ros1=not reader.is2, header=read_stamp is not None,
+                                           decode=lambda i: decode(i, raw_list[i]))
             if fast is not None:
                 for ref in refs:
                     if fast[ref.text].shape[1] != ref.width:
@@ -523,19 +565,30 @@ class BagSource(BaseSource):
                                        f"{ref.width} in every message", file=bag, key=ref.text, episode=e)
                     aligned[ref.text] = (t, fast[ref.text])
                 continue
-            # many small objects and no cycles: the cyclic collector would rescan them all
-            # again and again while the list grows (about a fifth of the decoding time)
-            collect = gc.isenabled()
-            gc.disable()
-            try:
-                msgs = [decode(i, raw) for i, raw in enumerate(raw_list)]
-            finally:
-                if collect:
-                    gc.enable()
+            picked = None
+            if topic != frame:                         # keep the values, not the messages
+                getters = [r.getter for r in refs]
+                pick = getters[0] if len(getters) == 1 else (lambda m: tuple(g(m) for g in getters))
+                picked = decode_all(raw_list, reader.typestore, conn.msgtype, ros1=not reader.is2,
+                                    pick=pick)
+                msgs = None
+            if picked is None:
+                msgs = decode_all(raw_list, reader.typestore, conn.msgtype, ros1=not reader.is2)
+            if picked is None and msgs is None:        # one by one: the failing one is named
+                collect = gc.isenabled()
+                gc.disable()
+                try:
+                    msgs = [decode(i, raw) for i, raw in enumerate(raw_list)]
+                finally:
+                    if collect:
+                        gc.enable()
             if topic == frame:
                 images = (t, msgs)
-            for ref in refs:
-                out = [ref.getter(m) for m in msgs]
+            for slot, ref in enumerate(refs):
+                if picked is None:
+                    out = [ref.getter(m) for m in msgs]
+                else:
+                    out = picked if len(refs) == 1 else [v[slot] for v in picked]
                 try:
                     v = np.asarray(out, dtype=np.float64 if ref.kind == "f" else None).reshape(len(out), -1)
                 except ValueError:
