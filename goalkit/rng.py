@@ -25,6 +25,7 @@ STREAMS = {
     "subsample": 7,  # subsampling for fitting / recall measurement
     "hop": 8,        # neighbour goals: the later step taken along the joined episode
     "bootstrap": 9,  # threshold tuning: episode resamples (goalkit.tune.bootstrap)
+    "shuffle": 10,   # reading a built set: epoch orders, chunk pools (goalkit.write.epochs)
 }
 # Stream numbers 1001-1005 are taken by the demo simulator (goalkit.demo.controllers.DEMO_STREAMS).
 
@@ -90,3 +91,18 @@ def integers(seed: int, low, high, episode, step, slot=0, stream: int | str = 0)
     u = uniform(seed, episode, step, slot, stream)
     out = low + np.floor(u * span).astype(np.int64)
     return np.minimum(out, low + span - 1)
+
+
+def permutation(seed: int, n: int, episode=0, step=0, stream: int | str = "shuffle") -> np.ndarray:
+    """Return a permutation of ``range(n)`` addressed by (seed, episode, step, stream).
+
+    It is the stable argsort of one 64-bit hash per element (slot = element), so it is a pure
+    function of its address, the same on every platform and numpy version.
+
+    Examples
+    --------
+    >>> p = permutation(3, 5, episode=1)
+    >>> sorted(p.tolist()) == list(range(5)) and p.tolist() == permutation(3, 5, episode=1).tolist()
+    True
+    """
+    return np.argsort(hash64(seed, episode, step, np.arange(int(n), dtype=np.int64), stream), kind="stable")
