@@ -1,6 +1,6 @@
 """Epochs over a built set: every row once, in a shuffled order, in bounded memory, by shard.
 
-Two ways to shuffle (docs/dataset.md, "Shuffled epochs"):
+Three ways to shuffle (docs/dataset.md, "Shuffled epochs"):
 
 * **full**: when the rows one shard needs fit in the memory budget, they are read once (every
   stored chunk decoded once) and batches are consecutive slices of a permutation of the whole
@@ -8,10 +8,15 @@ Two ways to shuffle (docs/dataset.md, "Shuffled epochs"):
 * **pooled**: otherwise the split is cut into pieces (its stored chunks, or shorter pieces when
   one chunk is larger than the budget). The pieces of an epoch are put in a random order and the
   shard's share of them is dealt into pools of at most the budget's rows, *stratified*: sorted by
-  position, the pieces form strata of as many pieces as there are pools, and each stratum gives
-  each pool one piece at random. Every pool therefore spans the whole split, so consecutive
-  batches do not share a region of it; rows are drawn without replacement across the pool, and
-  a batch that straddles two pools takes its last rows from the next one.
+  position, the pieces form strata of as many pieces as there are pools; strata are paired
+  mirrored about the middle (the k-th piece of one goes to the pool that gets the (n-1-k)-th of
+  the other) and each gives each pool one piece, in a random order. Every pool spans the whole
+  split with its mean position near the middle; rows are drawn without replacement across it, and
+  a batch that straddles two pools takes its last rows from the next one. Every chunk is decoded
+  once; how close a batch comes to an independent draw depends on how many episodes a pool holds.
+* **passes**: the permutation of *full*, cut into passes of at most the budget's rows; each pass
+  reads the whole split and keeps its own rows. Batches are exactly those of *full*, at the
+  cost of decoding every chunk once per pass.
 
 Sharding: an epoch is one sequence of the split's rows (the permutation, or the pieces in their
 epoch order). With ``count`` shards, shard ``index`` takes positions ``[index * q, (index + 1) * q)``
@@ -38,8 +43,9 @@ from goalkit.rng import permutation
 #: Bytes of decoded rows one reader (one process or data-loader worker) may hold at once.
 DEFAULT_MEMORY_BUDGET = 2 * 2**30
 
-#: Shuffle modes: False (storage order), "auto" (full when it fits, else pooled), "full", "pooled".
-SHUFFLE_MODES = ("auto", "full", "pooled")
+#: Shuffle modes: False (storage order), "auto" (full when it fits, else pooled), "full", "passes",
+#: "pooled".
+SHUFFLE_MODES = ("auto", "full", "passes", "pooled")
 
 # what a permutation is for (the ``step`` of its address; the epoch is its ``episode``)
 _ROWS, _PIECES, _STRATUM, _POOL = 1, 2, 3, 4
@@ -149,15 +155,30 @@ def pooled_plan(spec: EpochSpec, piece_rows: int, pool_rows: int, shuffle: bool 
             a, b = max(lo, s), min(hi, s + int(lens[order[k]]))
             base = int(starts[order[k]]) - s
             segments.append((a + base, b + base))
+    if not segments:
+        return []
     per_pool = max(1, pool_rows // piece_rows)
     n_pools = -(-len(segments) // per_pool)
     if not shuffle:
         return [segments[p * per_pool:(p + 1) * per_pool] for p in range(n_pools)]
     segments.sort()
     pools = [[] for _ in range(n_pools)]
-    for j, s0 in enumerate(range(0, len(segments), n_pools)):
-        stratum = segments[s0:s0 + n_pools]
-        for seg, pool in zip(stratum, spec.perm(_STRATUM, n_pools, spec.index, spec.count, j).tolist()):
+    # strata of n pieces in pairs mirrored about the middle: the k-th piece of the j-th stratum
+    # from the start goes to pool sigma[k], of the j-th from the end to pool sigma[n - 1 - k];
+    # what is left (an odd stratum, the pieces over) sits in the middle and is dealt at random.
+    # With many pieces a pool, every pool's mean position is near the split's middle.
+    n = n_pools
+    pairs = len(segments) // n // 2
+    tail = len(segments) - pairs * n
+    for j in range(pairs):
+        sigma = spec.perm(_STRATUM, n, spec.index, spec.count, j).tolist()
+        for k in range(n):
+            pools[sigma[k]].append(segments[j * n + k])
+            pools[sigma[n - 1 - k]].append(segments[tail + (pairs - 1 - j) * n + k])
+    middle = segments[pairs * n:tail]
+    for j, m0 in enumerate(range(0, len(middle), n)):
+        sigma = spec.perm(_STRATUM, n, spec.index, spec.count, pairs + j).tolist()
+        for seg, pool in zip(middle[m0:m0 + n], sigma):
             pools[pool].append(seg)
     return [sorted(p) for p in pools if p]
 
@@ -171,7 +192,7 @@ def iter_batches(reader, spec: EpochSpec, batch_size: int, shuffle, memory_budge
     reader : goalkit.write.chunkread.SplitColumns
     spec : EpochSpec
     batch_size : int
-    shuffle : bool or {"auto", "full", "pooled"}
+    shuffle : bool or {"auto", "full", "passes", "pooled"}
         ``True`` means ``"auto"``.
     memory_budget : int, optional
         Bytes of decoded rows held at once (default :data:`DEFAULT_MEMORY_BUDGET`).
@@ -190,39 +211,49 @@ def iter_batches(reader, spec: EpochSpec, batch_size: int, shuffle, memory_budge
     if budget < 1:
         raise DatasetError(f"memory_budget must be a positive number of bytes, got {memory_budget}")
     row_bytes = reader.row_bytes()
-    fits = spec.share * row_bytes <= budget
-    if shuffle == "full" or (shuffle == "auto" and fits):
-        yield from _full_batches(reader, spec, batch_size, drop_last, row_numbers, budget, row_bytes)
-        return
     pool_rows = max(batch_size, budget // row_bytes)
+    if shuffle == "full" or (shuffle == "auto" and spec.share <= pool_rows):
+        yield from _full_batches(reader, spec, batch_size, drop_last, row_numbers, max(spec.share, 1))
+        return
+    if shuffle == "passes":
+        yield from _full_batches(reader, spec, batch_size, drop_last, row_numbers, pool_rows)
+        return
     plan = pooled_plan(spec, reader.chunk_rows, pool_rows, shuffle=bool(shuffle))
     yield from _pooled_batches(reader, spec, plan, batch_size, bool(shuffle), drop_last, row_numbers)
 
 
-def _full_batches(reader, spec, batch_size, drop_last, row_numbers, budget, row_bytes):
+def _full_batches(reader, spec, batch_size, drop_last, row_numbers, pass_rows):
     order = full_order(spec)
-    if spec.count == 1:
-        data, local = reader.read(0, spec.rows), order
-    else:
-        need = np.unique(order)
-        local = np.searchsorted(need, order)
-        # read piece by piece (each chunk decoded once) and keep this shard's rows only
-        step = max(reader.chunk_rows, (budget // max(row_bytes, 1)) // 4 // reader.chunk_rows * reader.chunk_rows)
-        parts = []
-        for a in range(0, spec.rows, step):
-            i0, i1 = np.searchsorted(need, [a, a + step])
-            if i1 > i0:
-                block = reader.read(a, a + step)
-                parts.append({k: v[need[i0:i1] - a] for k, v in block.items()})
-        data = {k: np.concatenate([p[k] for p in parts]) for k in reader.names} if parts else reader.read(0, 0)
-    for b in range(0, len(order), batch_size):
-        idx = local[b:b + batch_size]
-        if drop_last and len(idx) < batch_size:
-            return
-        batch = {k: v[idx] for k, v in data.items()}
-        if row_numbers:
-            batch["row"] = order[b:b + batch_size]
-        yield batch
+    pass_rows = max(batch_size, pass_rows // batch_size * batch_size)  # whole batches in a pass
+    for p0 in range(0, max(len(order), 1), pass_rows):
+        part = order[p0:p0 + pass_rows]
+        if len(part) == len(order) == spec.rows:
+            data, local = reader.read(0, spec.rows), part
+        else:
+            data, local = _gather(reader, part)
+        for b in range(0, len(part), batch_size):
+            idx = local[b:b + batch_size]
+            if drop_last and len(idx) < batch_size:
+                return
+            batch = {k: v[idx] for k, v in data.items()}
+            if row_numbers:
+                batch["row"] = part[b:b + batch_size]
+            yield batch
+
+
+def _gather(reader, rows):
+    """The given rows (any order, repeats allowed), reading the split chunk by chunk (each decoded once)."""
+    need = np.unique(rows)
+    local = np.searchsorted(need, rows)
+    step = reader.chunk_rows * max(1, 4 * 2**20 // (reader.chunk_rows * reader.row_bytes()))  # about 4 MiB a read
+    parts = []
+    for a in range(int(need[0]) - int(need[0]) % step if len(need) else 0, int(need[-1]) + 1 if len(need) else 0, step):
+        i0, i1 = np.searchsorted(need, [a, a + step])
+        if i1 > i0:
+            block = reader.read(a, a + step)
+            parts.append({k: v[need[i0:i1] - a] for k, v in block.items()})
+    data = {k: np.concatenate([p[k] for p in parts]) for k in reader.names} if parts else reader.read(0, 0)
+    return data, local
 
 
 def _pooled_batches(reader, spec, plan, batch_size, shuffle, drop_last, row_numbers):
