@@ -35,6 +35,8 @@ _LAZY = {
     "verify": "goalkit.api", "VerifyReport": "goalkit.write.verify",
     "open_set": "goalkit.write.reader", "GoalSet": "goalkit.write.reader",
     "GoalSampler": "goalkit.write.sampler",
+    "NumpyBatches": "goalkit.write.adapters", "TorchBatches": "goalkit.write.adapters",
+    "TorchRows": "goalkit.write.adapters",
     "make_demo": "goalkit.demo.files",
     # logs
     "open_logs": "goalkit.logs.opener", "scan": "goalkit.api", "load_layout": "goalkit.logs.layout",
