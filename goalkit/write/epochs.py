@@ -213,7 +213,7 @@ def iter_batches(reader, spec: EpochSpec, batch_size: int, shuffle, memory_budge
     row_bytes = reader.row_bytes()
     pool_rows = max(batch_size, budget // row_bytes)
     if shuffle == "full" or (shuffle == "auto" and spec.share <= pool_rows):
-        yield from _full_batches(reader, spec, batch_size, drop_last, row_numbers, max(spec.share, 1))
+        yield from _full_batches(reader, spec, batch_size, drop_last, row_numbers, spec.share)
         return
     if shuffle == "passes":
         yield from _full_batches(reader, spec, batch_size, drop_last, row_numbers, pool_rows)
@@ -224,10 +224,11 @@ def iter_batches(reader, spec: EpochSpec, batch_size: int, shuffle, memory_budge
 
 def _full_batches(reader, spec, batch_size, drop_last, row_numbers, pass_rows):
     order = full_order(spec)
-    pass_rows = max(batch_size, pass_rows // batch_size * batch_size)  # whole batches in a pass
-    for p0 in range(0, max(len(order), 1), pass_rows):
+    if pass_rows < len(order):
+        pass_rows = max(batch_size, pass_rows // batch_size * batch_size)  # whole batches in a pass
+    for p0 in range(0, max(len(order), 1), max(pass_rows, 1)):
         part = order[p0:p0 + pass_rows]
-        if len(part) == len(order) == spec.rows:
+        if len(part) == spec.rows and spec.remainder == "drop":  # the whole split: no selection
             data, local = reader.read(0, spec.rows), part
         else:
             data, local = _gather(reader, part)
