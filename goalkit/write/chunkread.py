@@ -105,8 +105,16 @@ class SplitColumns:
             self._pool_pid = os.getpid()
         return self._pool
 
-    def read_ranges(self, ranges) -> dict:
-        """Rows of the ranges ``[(a, b), ...]`` (in that order), concatenated, as dict of arrays."""
+    def read_ranges(self, ranges, place=None) -> dict:
+        """Rows of the ranges ``[(a, b), ...]`` (in that order), concatenated, as dict of arrays.
+
+        With ``place`` (int64, one entry per row read), the i-th row read lands at row
+        ``place[i]`` of the result: the permutation is applied by the decoding threads.
+        """
+        return self.finish(self.start(ranges, place))
+
+    def start(self, ranges, place=None):
+        """Begin reading (chunks decode on threads meanwhile); :meth:`finish` returns the arrays."""
         ranges = [(int(a), int(b)) for a, b in ranges if b > a]
         total = sum(b - a for a, b in ranges)
         out = {}
@@ -117,24 +125,36 @@ class SplitColumns:
             at = 0
             for a, b in ranges:
                 if self._fast[name]:
-                    jobs += self._chunk_jobs(ds, dest, at, a, b)
-                else:
+                    jobs += self._chunk_jobs(ds, dest, at, a, b, place)
+                elif place is None:
                     ds.read_direct(dest, np.s_[a:b], np.s_[at:at + b - a])
+                else:
+                    dest[place[at:at + b - a]] = ds[a:b]
                 at += b - a
+        return ranges, out, jobs, place
+
+    def finish(self, started) -> dict:
+        """The arrays of a :meth:`start`, once every chunk is decoded."""
+        ranges, out, jobs, place = started
         for job in jobs:
             job.result()
         if self.resolved:
             parts = [self.goalset._resolve(self.group, a, b, self.resolved) for a, b in ranges]
             for name in self.resolved:
-                out[name] = (np.concatenate([p[name] for p in parts]) if len(parts) != 1 else parts[0][name]) \
+                values = (np.concatenate([p[name] for p in parts]) if len(parts) != 1 else parts[0][name]) \
                     if parts else np.zeros((0,))
+                if place is not None and len(values):
+                    moved = np.empty_like(values)
+                    moved[place] = values
+                    values = moved
+                out[name] = values
         return {name: out[name] for name in self.names}
 
     def read(self, start: int, stop: int) -> dict:
         """Rows ``start .. stop - 1``."""
         return self.read_ranges([(start, min(stop, self.rows))])
 
-    def _chunk_jobs(self, ds, dest, at, a, b) -> list:
+    def _chunk_jobs(self, ds, dest, at, a, b, place=None) -> list:
         n = int(ds.chunks[0])
         tail = ds.shape[1:]
         per_row = int(np.prod(tail, dtype=np.int64))
@@ -143,13 +163,20 @@ class SplitColumns:
         pool = self._executor()
         for c0 in range(a - a % n, b, n):
             lo, hi = max(a, c0), min(b, c0 + n)
-            target = dest[at + lo - a:at + hi - a]
+            rows = np.s_[at + lo - a:at + hi - a]
             mask, stored = ds.id.read_direct_chunk((c0,) + (0,) * len(tail))
             if mask:  # a filter was skipped for this chunk: let HDF5 decode it
-                ds.read_direct(dest, np.s_[lo:hi], np.s_[at + lo - a:at + hi - a])
+                if place is None:
+                    ds.read_direct(dest, np.s_[lo:hi], rows)
+                else:
+                    dest[place[rows]] = ds[lo:hi]
                 continue
+            if place is None:
+                target, where = dest[rows], None
+            else:
+                target, where = np.empty((hi - lo, *tail), dtype=ds.dtype), place[rows]
             jobs.append(pool.submit(_inflate_into, stored, target, size, n * per_row, (lo - c0) * per_row,
-                                    (hi - c0) * per_row))
+                                    (hi - c0) * per_row, dest, where))
         return jobs
 
     def close(self) -> None:
@@ -159,7 +186,8 @@ class SplitColumns:
         self._pool = None
 
 
-def _inflate_into(stored: bytes, target: np.ndarray, size: int, elements: int, e0: int, e1: int) -> None:
+def _inflate_into(stored: bytes, target: np.ndarray, size: int, elements: int, e0: int, e1: int,
+                  dest=None, where=None) -> None:
     raw = np.frombuffer(zlib.decompress(stored), dtype=np.uint8)
     if raw.size != elements * size:
         raise DatasetError(f"a stored chunk inflates to {raw.size} bytes, expected {elements * size}")
@@ -168,3 +196,5 @@ def _inflate_into(stored: bytes, target: np.ndarray, size: int, elements: int, e
         flat[:] = raw[e0:e1]
     else:
         flat.reshape(-1, size)[:] = raw.reshape(size, elements)[:, e0:e1].T
+    if where is not None:  # scatter to the rows' places in the permuted result
+        dest[where] = target

@@ -10,7 +10,8 @@ Three ways to shuffle (docs/dataset.md, "Shuffled epochs"):
   shard's share of them is dealt into pools of at most the budget's rows, *stratified*: sorted by
   position, the pieces form strata of as many pieces as there are pools; strata are paired
   mirrored about the middle (the k-th piece of one goes to the pool that gets the (n-1-k)-th of
-  the other) and each gives each pool one piece, in a random order. Every pool spans the whole
+  the other) and each gives each pool one piece, in a random order; the pieces left over go,
+  outermost first, where they bring a pool's mean position closest to the middle. Every pool spans the
   split with its mean position near the middle; rows are drawn without replacement across it, and
   a batch that straddles two pools takes its last rows from the next one. Every chunk is decoded
   once; how close a batch comes to an independent draw depends on how many episodes a pool holds.
@@ -163,23 +164,35 @@ def pooled_plan(spec: EpochSpec, piece_rows: int, pool_rows: int, shuffle: bool 
         return [segments[p * per_pool:(p + 1) * per_pool] for p in range(n_pools)]
     segments.sort()
     pools = [[] for _ in range(n_pools)]
-    # strata of n pieces in pairs mirrored about the middle: the k-th piece of the j-th stratum
-    # from the start goes to pool sigma[k], of the j-th from the end to pool sigma[n - 1 - k];
-    # what is left (an odd stratum, the pieces over) sits in the middle and is dealt at random.
-    # With many pieces a pool, every pool's mean position is near the split's middle.
+    # Whole pieces in strata of n, paired mirrored about the middle: the k-th piece of the j-th
+    # stratum from the start goes to pool sigma[k], of the j-th from the end to pool
+    # sigma[n - 1 - k]. What is left (an odd stratum, the pieces over, short pieces) is dealt one
+    # piece at a time, outermost first, to the pool with room whose mean position it brings
+    # closest to the middle. So every pool spans the split with its mean position near the middle.
     n = n_pools
-    pairs = len(segments) // n // 2
-    tail = len(segments) - pairs * n
+    whole = [seg for seg in segments if seg[1] - seg[0] == piece_rows]
+    pairs = len(whole) // n // 2
     for j in range(pairs):
         sigma = spec.perm(_STRATUM, n, spec.index, spec.count, j).tolist()
         for k in range(n):
-            pools[sigma[k]].append(segments[j * n + k])
-            pools[sigma[n - 1 - k]].append(segments[tail + (pairs - 1 - j) * n + k])
-    middle = segments[pairs * n:tail]
-    for j, m0 in enumerate(range(0, len(middle), n)):
-        sigma = spec.perm(_STRATUM, n, spec.index, spec.count, pairs + j).tolist()
-        for seg, pool in zip(middle[m0:m0 + n], sigma):
-            pools[pool].append(seg)
+            pools[sigma[k]].append(whole[j * n + k])
+            pools[sigma[n - 1 - k]].append(whole[len(whole) - (j + 1) * n + k])
+    paired = set(whole[:pairs * n] + whole[len(whole) - pairs * n:])
+    middle = (segments[0][0] + segments[-1][1]) / 2
+    rest = sorted((seg for seg in segments if seg not in paired), key=lambda seg: -abs(sum(seg) / 2 - middle))
+    tie = spec.perm(_STRATUM, n, spec.index, spec.count, pairs)
+    mass = np.array([sum(b - a for a, b in p) for p in pools], dtype=np.float64)
+    moment = np.array([sum((b - a) * (a + b) / 2 for a, b in p) for p in pools], dtype=np.float64)
+    count = np.array([len(p) for p in pools])
+    for a, b in rest:
+        w = b - a
+        off = np.abs((moment + w * (a + b) / 2) / (mass + w) - middle)
+        off[count >= per_pool] = np.inf
+        best = int(tie[np.argmin(off[tie])])
+        pools[best].append((a, b))
+        mass[best] += w
+        moment[best] += w * (a + b) / 2
+        count[best] += 1
     return [sorted(p) for p in pools if p]
 
 
@@ -224,22 +237,30 @@ def iter_batches(reader, spec: EpochSpec, batch_size: int, shuffle, memory_budge
 
 def _full_batches(reader, spec, batch_size, drop_last, row_numbers, pass_rows):
     order = full_order(spec)
+    if spec.count == 1 and pass_rows >= spec.rows:
+        # the whole split: the decoding threads put every row at its place in the epoch's order,
+        # so batches are consecutive slices
+        place = np.empty(spec.rows, dtype=np.int64)
+        place[order] = np.arange(spec.rows, dtype=np.int64)
+        yield from _slices(reader.read_ranges([(0, spec.rows)], place), order, batch_size, drop_last, row_numbers)
+        return
     if pass_rows < len(order):
         pass_rows = max(batch_size, pass_rows // batch_size * batch_size)  # whole batches in a pass
     for p0 in range(0, max(len(order), 1), max(pass_rows, 1)):
         part = order[p0:p0 + pass_rows]
-        if len(part) == spec.rows and spec.remainder == "drop":  # the whole split: no selection
-            data, local = reader.read(0, spec.rows), part
-        else:
-            data, local = _gather(reader, part)
-        for b in range(0, len(part), batch_size):
-            idx = local[b:b + batch_size]
-            if drop_last and len(idx) < batch_size:
-                return
-            batch = {k: v[idx] for k, v in data.items()}
-            if row_numbers:
-                batch["row"] = part[b:b + batch_size]
-            yield batch
+        data, local = _gather(reader, part)
+        data = {k: v[local] for k, v in data.items()}
+        yield from _slices(data, part, batch_size, drop_last, row_numbers)
+
+
+def _slices(data, rows, batch_size, drop_last, row_numbers):
+    for b in range(0, len(rows), batch_size):
+        if drop_last and b + batch_size > len(rows):
+            return
+        batch = {k: v[b:b + batch_size] for k, v in data.items()}
+        if row_numbers:
+            batch["row"] = rows[b:b + batch_size]
+        yield batch
 
 
 def _gather(reader, rows):
@@ -260,29 +281,30 @@ def _gather(reader, rows):
 def _pooled_batches(reader, spec, plan, batch_size, shuffle, drop_last, row_numbers):
     pending = None  # the first rows of a batch that straddles two pools
     for p, ranges in enumerate(plan):
-        data = reader.read_ranges(ranges)
         rows = np.concatenate([np.arange(a, b, dtype=np.int64) for a, b in ranges])
+        n = len(rows)
+        if shuffle:
+            perm = spec.perm(_POOL, n, spec.index, spec.count, p)
+            place = np.empty(n, dtype=np.int64)
+            place[perm] = np.arange(n, dtype=np.int64)
+            data, rows = reader.read_ranges(ranges, place), rows[perm]
+        else:
+            data = reader.read_ranges(ranges)
         if row_numbers:
             data["row"] = rows
-        n = len(rows)
-        perm = spec.perm(_POOL, n, spec.index, spec.count, p) if shuffle else np.arange(n)
         at = 0
         if pending is not None:
             have = len(next(iter(pending.values())))
-            take = perm[:batch_size - have]
-            pending = {k: np.concatenate([pending[k], v[take]]) for k, v in data.items()}
-            at = len(take)
-            if have + len(take) < batch_size:
+            at = min(batch_size - have, n)
+            pending = {k: np.concatenate([pending[k], v[:at]]) for k, v in data.items()}
+            if have + at < batch_size:
                 continue
             yield pending
             pending = None
-        while at < n:
-            idx = perm[at:at + batch_size]
-            at += len(idx)
-            batch = {k: v[idx] for k, v in data.items()}
-            if len(idx) < batch_size:
-                pending = batch
-                break
-            yield batch
+        full = at + (n - at) // batch_size * batch_size
+        for b in range(at, full, batch_size):
+            yield {k: v[b:b + batch_size] for k, v in data.items()}
+        if full < n:
+            pending = {k: v[full:] for k, v in data.items()}
     if pending is not None and not drop_last:
         yield pending
