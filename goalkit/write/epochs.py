@@ -11,8 +11,9 @@ Three ways to shuffle (docs/dataset.md, "Shuffled epochs"):
   position, the pieces form strata of as many pieces as there are pools; strata are paired
   mirrored about the middle (the k-th piece of one goes to the pool that gets the (n-1-k)-th of
   the other) and each gives each pool one piece, in a random order; the pieces left over go,
-  outermost first, where they bring a pool's mean position closest to the middle. Every pool spans the
-  split with its mean position near the middle; rows are drawn without replacement across it, and
+  outermost first, where they bring a pool's mean position closest to the middle. Every pool
+  spans the split with its mean position near the middle; rows are drawn without replacement
+  across it, and
   a batch that straddles two pools takes its last rows from the next one. Every chunk is decoded
   once; how close a batch comes to an independent draw depends on how many episodes a pool holds.
 * **passes**: the permutation of *full*, cut into passes of at most the budget's rows; each pass
