@@ -108,7 +108,7 @@ class EpochSpec:
     def perm(self, what: int, n: int, *parts: int) -> np.ndarray:
         step = what
         for p in parts:
-            step = step * 1_000_003 + int(p)
+            step = (step * 1_000_003 + int(p)) % 2**62
         return permutation(self.seed, n, episode=self.epoch, step=step)
 
 

@@ -186,7 +186,10 @@ class GoalSet:
         """
         if batch_size < 1:
             raise DatasetError(f"batch_size must be at least 1, got {batch_size}", file=self.path)
-        index, count = shard
+        try:
+            index, count = (int(v) for v in shard)
+        except (TypeError, ValueError):
+            raise DatasetError(f"shard must be (index, count), got {shard!r}", file=self.path) from None
         spec = EpochSpec(self.rows(split), seed=seed, epoch=epoch, index=index, count=count, remainder=remainder)
         reader = SplitColumns(self, split, columns)
         try:
