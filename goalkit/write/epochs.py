@@ -237,31 +237,34 @@ def iter_batches(reader, spec: EpochSpec, batch_size: int, shuffle, memory_budge
 
 
 def _full_batches(reader, spec, batch_size, drop_last, row_numbers, pass_rows):
-    order = full_order(spec)
     if spec.count == 1 and pass_rows >= spec.rows:
-        # the whole split: the decoding threads put every row at its place in the epoch's order,
-        # so batches are consecutive slices
-        place = np.empty(spec.rows, dtype=np.int64)
-        place[order] = np.arange(spec.rows, dtype=np.int64)
-        yield from _slices(reader.read_ranges([(0, spec.rows)], place), order, batch_size, drop_last, row_numbers)
+        # the whole split, each chunk decoded once on threads while the order is drawn; a batch
+        # gathers its rows (faster than scattering the split into the order while decoding)
+        started = reader.start([(0, spec.rows)])
+        order = full_order(spec)
+        data = reader.finish(started)
+        for b in range(0, len(order), batch_size):
+            idx = order[b:b + batch_size]
+            if drop_last and len(idx) < batch_size:
+                return
+            batch = {k: v[idx] for k, v in data.items()}
+            if row_numbers:
+                batch["row"] = idx
+            yield batch
         return
+    order = full_order(spec)
     if pass_rows < len(order):
         pass_rows = max(batch_size, pass_rows // batch_size * batch_size)  # whole batches in a pass
     for p0 in range(0, max(len(order), 1), max(pass_rows, 1)):
         part = order[p0:p0 + pass_rows]
         data, local = _gather(reader, part)
-        data = {k: v[local] for k, v in data.items()}
-        yield from _slices(data, part, batch_size, drop_last, row_numbers)
-
-
-def _slices(data, rows, batch_size, drop_last, row_numbers):
-    for b in range(0, len(rows), batch_size):
-        if drop_last and b + batch_size > len(rows):
-            return
-        batch = {k: v[b:b + batch_size] for k, v in data.items()}
-        if row_numbers:
-            batch["row"] = rows[b:b + batch_size]
-        yield batch
+        for b in range(0, len(part), batch_size):
+            if drop_last and b + batch_size > len(part):
+                return
+            batch = {k: v[local[b:b + batch_size]] for k, v in data.items()}
+            if row_numbers:
+                batch["row"] = part[b:b + batch_size]
+            yield batch
 
 
 def _gather(reader, rows):
@@ -282,30 +285,29 @@ def _gather(reader, rows):
 def _pooled_batches(reader, spec, plan, batch_size, shuffle, drop_last, row_numbers):
     pending = None  # the first rows of a batch that straddles two pools
     for p, ranges in enumerate(plan):
-        rows = np.concatenate([np.arange(a, b, dtype=np.int64) for a, b in ranges])
-        n = len(rows)
-        if shuffle:
-            perm = spec.perm(_POOL, n, spec.index, spec.count, p)
-            place = np.empty(n, dtype=np.int64)
-            place[perm] = np.arange(n, dtype=np.int64)
-            data, rows = reader.read_ranges(ranges, place), rows[perm]
-        else:
-            data = reader.read_ranges(ranges)
+        data = reader.read_ranges(ranges)
         if row_numbers:
-            data["row"] = rows
+            data["row"] = np.concatenate([np.arange(a, b, dtype=np.int64) for a, b in ranges])
+        n = sum(b - a for a, b in ranges)
+        # rows drawn without replacement across the pool
+        perm = spec.perm(_POOL, n, spec.index, spec.count, p) if shuffle else np.arange(n)
         at = 0
         if pending is not None:
             have = len(next(iter(pending.values())))
-            at = min(batch_size - have, n)
-            pending = {k: np.concatenate([pending[k], v[:at]]) for k, v in data.items()}
+            take = perm[:batch_size - have]
+            pending = {k: np.concatenate([pending[k], v[take]]) for k, v in data.items()}
+            at = len(take)
             if have + at < batch_size:
                 continue
             yield pending
             pending = None
-        full = at + (n - at) // batch_size * batch_size
-        for b in range(at, full, batch_size):
-            yield {k: v[b:b + batch_size] for k, v in data.items()}
-        if full < n:
-            pending = {k: v[full:] for k, v in data.items()}
+        while at < n:
+            idx = perm[at:at + batch_size]
+            at += len(idx)
+            batch = {k: v[idx] for k, v in data.items()}
+            if len(idx) < batch_size:
+                pending = batch
+                break
+            yield batch
     if pending is not None and not drop_last:
         yield pending
