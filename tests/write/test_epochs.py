@@ -202,3 +202,19 @@ def test_pooled_shuffle_quality(demo_set):
     assert abs(lag1) < 4 / np.sqrt(batches)
     got, expected, lag1, batches = quality(demo_set, 256, shuffle="passes", seed=0, memory_budget=budget)
     assert abs(got / expected - 1) < 0.05 and abs(lag1) < 4 / np.sqrt(batches)
+
+
+def test_zlib_and_libdeflate_inflate_the_same_rows(small_set, monkeypatch):
+    from goalkit.write import chunkread
+
+    assert chunkread.deflate is not None  # a dependency: libdeflate by default
+    with goalkit.open_set(small_set) as gs:
+        reader = chunkread.SplitColumns(gs, "train", ["observation", "goal", "strategy"])
+        fast = reader.read(0, reader.rows)
+        monkeypatch.setattr(chunkread, "deflate", None)  # the stdlib zlib path
+        plain = reader.read(0, reader.rows)
+        reader.close()
+        stored = gs.read("train", ["observation", "goal", "strategy"])  # HDF5's own filter pipeline
+    for k in stored:
+        np.testing.assert_array_equal(fast[k], stored[k])
+        np.testing.assert_array_equal(plain[k], stored[k])
