@@ -37,6 +37,8 @@ _LAZY = {
     "open_set": "goalkit.write.reader", "GoalSet": "goalkit.write.reader",
     "GoalSampler": "goalkit.write.sampler",
     "HeadSampler": "goalkit.write.headsampler", "GoalHead": "goalkit.heads",
+    "NumpyBatches": "goalkit.write.adapters", "TorchBatches": "goalkit.write.adapters",
+    "TorchRows": "goalkit.write.adapters",
     "make_demo": "goalkit.demo.files",
     # logs
     "open_logs": "goalkit.logs.opener", "scan": "goalkit.api", "load_layout": "goalkit.logs.layout",

@@ -17,7 +17,7 @@ import pytest
 import goalkit
 
 ROOT = Path(__file__).resolve().parents[1]
-HEAVY = ("h5py", "faiss", "matplotlib", "dask", "distributed", "scipy", "sklearn", "tomlkit")
+HEAVY = ("h5py", "faiss", "matplotlib", "dask", "distributed", "scipy", "sklearn", "tomlkit", "torch")
 
 
 def test_import_goalkit_loads_no_heavy_dependency():

@@ -43,3 +43,28 @@ def shuffle_bytes(chunk: np.ndarray) -> bytes:
 def gzip_chunk(chunk: np.ndarray, level: int = GZIP_LEVEL) -> bytes:
     """The stored bytes of one whole chunk under HDF5's shuffle + deflate filters."""
     return zlib.compress(shuffle_bytes(chunk), level)
+
+
+def unshuffle_bytes(raw: bytes, dtype, shape) -> np.ndarray:
+    """Undo :func:`shuffle_bytes`: the elements of ``shape`` and ``dtype`` from shuffled bytes.
+
+    Examples
+    --------
+    >>> unshuffle_bytes(b'\\x01\\x02\\x00\\x00', "<u2", (2,)).tolist()
+    [1, 2]
+    """
+    dtype = np.dtype(dtype)
+    size = dtype.itemsize
+    flat = np.frombuffer(raw, dtype=np.uint8)
+    if size > 1:
+        flat = flat.reshape(size, -1).T.copy()
+    return flat.view(dtype).reshape(shape)
+
+
+def gunzip_chunk(stored: bytes, dtype, shape) -> np.ndarray:
+    """Decode one whole chunk stored under HDF5's shuffle + deflate filters (inverse of :func:`gzip_chunk`).
+
+    ``shape`` is the dataset's chunk shape: HDF5 stores the edge chunk of a dataset at full size.
+    zlib releases the GIL while it inflates, so several chunks decode in parallel on threads.
+    """
+    return unshuffle_bytes(zlib.decompress(stored), dtype, shape)

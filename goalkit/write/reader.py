@@ -10,6 +10,8 @@ import h5py
 import numpy as np
 
 from goalkit.errors import DatasetError
+from goalkit.write.chunkread import SplitColumns
+from goalkit.write.epochs import EpochSpec, iter_batches
 from goalkit.write.format import MATERIAL_COLUMNS, SPLITS, open_set_file
 
 
@@ -147,31 +149,53 @@ class GoalSet:
         step = group["source_step"][start:stop]
         return resolve_rows(self._logs, ep, step, names)
 
-    def batches(self, split: str = "train", batch_size: int = 256, columns=None, shuffle: bool = False,
-                seed: int = 0, drop_last: bool = False) -> Iterator[dict]:
-        """Iterate over ``split`` in batches.
+    def batches(self, split: str = "train", batch_size: int = 256, columns=None, shuffle=False,
+                seed: int = 0, drop_last: bool = False, *, epoch: int = 0, memory_budget: int | None = None,
+                shard: tuple[int, int] = (0, 1), remainder: str = "drop", row_numbers: bool = False
+                ) -> Iterator[dict]:
+        """Iterate over one epoch of ``split`` in batches; every row once (docs/dataset.md).
 
-        With ``shuffle``, batches are contiguous blocks of rows visited in a random order and
-        shuffled inside each block of 64 batches (a bounded-memory shuffle that keeps reads
-        sequential); the order is a pure function of ``seed``.
+        Parameters
+        ----------
+        split : {"train", "validation"}
+        batch_size : int
+        columns : list of str, optional
+            Columns to read (default: all, as :meth:`read`).
+        shuffle : bool or {"auto", "full", "pooled"}
+            ``False``: storage order. ``True`` / ``"auto"``: a permutation of the whole split
+            (``"full"``) when this shard's rows fit in ``memory_budget``, otherwise stratified pools
+            of stored chunks (``"pooled"``); see :mod:`goalkit.write.epochs`.
+        seed, epoch : int
+            The order is a pure function of (seed, epoch, shard).
+        drop_last : bool
+            Leave out the last batch when it is short.
+        memory_budget : int, optional
+            Bytes of decoded rows held at once (default 2 GiB, ``epochs.DEFAULT_MEMORY_BUDGET``).
+        shard : (int, int)
+            ``(index, count)``: read only this shard of the epoch (data-loader workers times
+            processes; ``goalkit.write.epochs.shard_index``). Shards are disjoint and equal.
+        remainder : {"drop", "pad"}
+            The ``rows % count`` rows left after equal shards: left out of the epoch, or padded
+            by repeating rows from the start of the epoch's order.
+        row_numbers : bool
+            Add ``"row"``, each row's number in the split.
+
+        Yields
+        ------
+        dict of str to ndarray
         """
-        n = self.rows(split)
         if batch_size < 1:
             raise DatasetError(f"batch_size must be at least 1, got {batch_size}", file=self.path)
-        block = batch_size * 64
-        starts = np.arange(0, n, block)
-        gen = np.random.default_rng(seed)
-        if shuffle:
-            starts = gen.permutation(starts)
-        for a in starts.tolist():
-            data = self.read(split, columns, a, a + block)
-            m = len(next(iter(data.values())))
-            order = gen.permutation(m) if shuffle else np.arange(m)
-            for b in range(0, m, batch_size):
-                idx = order[b:b + batch_size]
-                if drop_last and len(idx) < batch_size:
-                    continue
-                yield {k: v[idx] for k, v in data.items()}
+        try:
+            index, count = (int(v) for v in shard)
+        except (TypeError, ValueError):
+            raise DatasetError(f"shard must be (index, count), got {shard!r}", file=self.path) from None
+        spec = EpochSpec(self.rows(split), seed=seed, epoch=epoch, index=index, count=count, remainder=remainder)
+        reader = SplitColumns(self, split, columns)
+        try:
+            yield from iter_batches(reader, spec, batch_size, shuffle, memory_budget, drop_last, row_numbers)
+        finally:
+            reader.close()
 
     # ---- checking --------------------------------------------------------------------
     def check_manifest(self, block_rows: int = 1 << 18) -> list[str]:

@@ -1,0 +1,313 @@
+"""Epochs over a built set: every row once, in a shuffled order, in bounded memory, by shard.
+
+Three ways to shuffle (docs/dataset.md, "Shuffled epochs"):
+
+* **full**: when the rows one shard needs fit in the memory budget, they are read once (every
+  stored chunk decoded once) and batches are consecutive slices of a permutation of the whole
+  split, so a batch's rows are a uniform draw without replacement.
+* **pooled**: otherwise the split is cut into pieces (its stored chunks, or shorter pieces when
+  one chunk is larger than the budget). The pieces of an epoch are put in a random order and the
+  shard's share of them is dealt into pools of at most the budget's rows, *stratified*: sorted by
+  position, the pieces form strata of as many pieces as there are pools; strata are paired
+  mirrored about the middle (the k-th piece of one goes to the pool that gets the (n-1-k)-th of
+  the other) and each gives each pool one piece, in a random order; the pieces left over go,
+  outermost first, where they bring a pool's mean position closest to the middle. Every pool
+  spans the split with its mean position near the middle; rows are drawn without replacement
+  across it, and
+  a batch that straddles two pools takes its last rows from the next one. Every chunk is decoded
+  once; how close a batch comes to an independent draw depends on how many episodes a pool holds.
+* **passes**: the permutation of *full*, cut into passes of at most the budget's rows; each pass
+  reads the whole split and keeps its own rows. Batches are exactly those of *full*, at the
+  cost of decoding every chunk once per pass.
+
+Sharding: an epoch is one sequence of the split's rows (the permutation, or the pieces in their
+epoch order). With ``count`` shards, shard ``index`` takes positions ``[index * q, (index + 1) * q)``
+of it, ``q = rows // count``; the ``rows % count`` rows at the end of the sequence (different rows
+each epoch) are left out of that epoch (``remainder="drop"``), or, with ``remainder="pad"``,
+``q = ceil(rows / count)`` and the sequence continues from its start, so a few rows appear twice.
+Shards are disjoint, equal in size, and together cover the split (less the remainder).
+
+Every order is a pure function of (seed, epoch, shard index, shard count, batch size is not part
+of it) through :func:`goalkit.rng.permutation`; the pooled order also depends on the budget's
+pool size and the stored chunk length.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Iterator
+
+import numpy as np
+
+from goalkit.errors import DatasetError
+from goalkit.rng import permutation
+
+#: Bytes of decoded rows one reader (one process or data-loader worker) may hold at once.
+DEFAULT_MEMORY_BUDGET = 2 * 2**30
+
+#: Shuffle modes: False (storage order), "auto" (full when it fits, else pooled), "full", "passes",
+#: "pooled".
+SHUFFLE_MODES = ("auto", "full", "passes", "pooled")
+
+# what a permutation is for (the ``step`` of its address; the epoch is its ``episode``)
+_ROWS, _PIECES, _STRATUM, _POOL = 1, 2, 3, 4
+
+
+@dataclass(frozen=True)
+class EpochSpec:
+    """One epoch of one shard.
+
+    Parameters
+    ----------
+    rows : int
+        Rows in the split.
+    seed, epoch : int
+        The order is a pure function of these (and the shard).
+    index, count : int
+        This shard and the number of shards (data-loader workers times processes).
+    remainder : {"drop", "pad"}
+        What happens to the ``rows % count`` rows that do not divide evenly (module docstring).
+    """
+
+    rows: int
+    seed: int = 0
+    epoch: int = 0
+    index: int = 0
+    count: int = 1
+    remainder: str = "drop"
+
+    def __post_init__(self):
+        if self.count < 1 or not 0 <= self.index < self.count:
+            raise DatasetError(f"shard index must be in 0 .. count - 1, got index {self.index} of {self.count}")
+        if self.remainder not in ("drop", "pad"):
+            raise DatasetError(f"remainder must be 'drop' or 'pad', got {self.remainder!r}")
+        if self.seed < 0 or self.epoch < 0:
+            raise DatasetError(f"seed and epoch must be non-negative, got seed {self.seed}, epoch {self.epoch}")
+
+    @property
+    def share(self) -> int:
+        """Rows of this shard (the same for every shard)."""
+        if self.remainder == "pad":
+            return -(-self.rows // self.count)
+        return self.rows // self.count
+
+    def positions(self) -> list[tuple[int, int]]:
+        """This shard's positions in the epoch's sequence, as ranges (two when padding wraps round)."""
+        q = self.share
+        lo, hi = self.index * q, (self.index + 1) * q
+        if hi <= self.rows or self.rows == 0:
+            return [(lo, min(hi, self.rows))]
+        out = [(lo, self.rows)] if lo < self.rows else []
+        left = hi - max(lo, self.rows)
+        while left > 0:  # the sequence continues from its start
+            take = min(left, self.rows)
+            out.append((0, take))
+            left -= take
+        return out
+
+    def perm(self, what: int, n: int, *parts: int) -> np.ndarray:
+        step = what
+        for p in parts:
+            step = (step * 1_000_003 + int(p)) % 2**62
+        return permutation(self.seed, n, episode=self.epoch, step=step)
+
+
+def shard_index(rank: int = 0, world_size: int = 1, worker: int = 0, workers: int = 1) -> tuple[int, int]:
+    """(index, count) of the shard read by data-loader ``worker`` of process ``rank``.
+
+    Examples
+    --------
+    >>> shard_index(rank=1, world_size=2, worker=1, workers=3)
+    (4, 6)
+    """
+    if not 0 <= rank < world_size or not 0 <= worker < workers:
+        raise DatasetError(f"expected 0 <= rank < world_size and 0 <= worker < workers, got rank {rank} of "
+                           f"{world_size}, worker {worker} of {workers}")
+    return rank * workers + worker, world_size * workers
+
+
+def full_order(spec: EpochSpec, shuffle: bool = True) -> np.ndarray:
+    """Row numbers of the shard, in its epoch order (full mode, or storage order without shuffle)."""
+    seq = spec.perm(_ROWS, spec.rows) if shuffle else np.arange(spec.rows, dtype=np.int64)
+    return np.concatenate([seq[a:b] for a, b in spec.positions()]) if spec.rows else seq
+
+
+def pooled_plan(spec: EpochSpec, piece_rows: int, pool_rows: int, shuffle: bool = True) -> list[list[tuple[int, int]]]:
+    """The shard's pools: each a list of row ranges ``(a, b)`` holding at most ``pool_rows`` rows.
+
+    Parameters
+    ----------
+    piece_rows : int
+        Rows per piece (the stored chunk length, or less when a chunk exceeds the pool).
+    pool_rows : int
+        Rows one pool may hold.
+    """
+    piece_rows = max(1, min(int(piece_rows), int(pool_rows)))
+    starts = np.arange(0, spec.rows, piece_rows, dtype=np.int64)
+    order = spec.perm(_PIECES, len(starts)) if shuffle else np.arange(len(starts))
+    lens = np.minimum(starts + piece_rows, spec.rows) - starts
+    seq_starts = np.cumsum(lens[order]) - lens[order]   # position of each ordered piece in the sequence
+    segments = []
+    for lo, hi in spec.positions():
+        first = int(np.searchsorted(seq_starts, lo, side="right")) - 1
+        for k in range(max(first, 0), len(order)):
+            s = int(seq_starts[k])
+            if s >= hi:
+                break
+            a, b = max(lo, s), min(hi, s + int(lens[order[k]]))
+            base = int(starts[order[k]]) - s
+            segments.append((a + base, b + base))
+    if not segments:
+        return []
+    per_pool = max(1, pool_rows // piece_rows)
+    n_pools = -(-len(segments) // per_pool)
+    if not shuffle:
+        return [segments[p * per_pool:(p + 1) * per_pool] for p in range(n_pools)]
+    segments.sort()
+    pools = [[] for _ in range(n_pools)]
+    # Whole pieces in strata of n, paired mirrored about the middle: the k-th piece of the j-th
+    # stratum from the start goes to pool sigma[k], of the j-th from the end to pool
+    # sigma[n - 1 - k]. What is left (an odd stratum, the pieces over, short pieces) is dealt one
+    # piece at a time, outermost first, to the pool with room whose mean position it brings
+    # closest to the middle. So every pool spans the split with its mean position near the middle.
+    n = n_pools
+    whole = [seg for seg in segments if seg[1] - seg[0] == piece_rows]
+    pairs = len(whole) // n // 2
+    for j in range(pairs):
+        sigma = spec.perm(_STRATUM, n, spec.index, spec.count, j).tolist()
+        for k in range(n):
+            pools[sigma[k]].append(whole[j * n + k])
+            pools[sigma[n - 1 - k]].append(whole[len(whole) - (j + 1) * n + k])
+    paired = set(whole[:pairs * n] + whole[len(whole) - pairs * n:])
+    middle = (segments[0][0] + segments[-1][1]) / 2
+    rest = sorted((seg for seg in segments if seg not in paired), key=lambda seg: -abs(sum(seg) / 2 - middle))
+    tie = spec.perm(_STRATUM, n, spec.index, spec.count, pairs)
+    mass = np.array([sum(b - a for a, b in p) for p in pools], dtype=np.float64)
+    moment = np.array([sum((b - a) * (a + b) / 2 for a, b in p) for p in pools], dtype=np.float64)
+    count = np.array([len(p) for p in pools])
+    for a, b in rest:
+        w = b - a
+        off = np.abs((moment + w * (a + b) / 2) / (mass + w) - middle)
+        off[count >= per_pool] = np.inf
+        best = int(tie[np.argmin(off[tie])])
+        pools[best].append((a, b))
+        mass[best] += w
+        moment[best] += w * (a + b) / 2
+        count[best] += 1
+    return [sorted(p) for p in pools if p]
+
+
+def iter_batches(reader, spec: EpochSpec, batch_size: int, shuffle, memory_budget: int | None = None,
+                 drop_last: bool = False, row_numbers: bool = False) -> Iterator[dict]:
+    """Batches of one epoch of one shard.
+
+    Parameters
+    ----------
+    reader : goalkit.write.chunkread.SplitColumns
+    spec : EpochSpec
+    batch_size : int
+    shuffle : bool or {"auto", "full", "passes", "pooled"}
+        ``True`` means ``"auto"``.
+    memory_budget : int, optional
+        Bytes of decoded rows held at once (default :data:`DEFAULT_MEMORY_BUDGET`).
+    drop_last : bool
+        Leave out the last batch when it is short.
+    row_numbers : bool
+        Add ``"row"``: each row's number in the split.
+    """
+    if shuffle is True:
+        shuffle = "auto"
+    if shuffle not in (False, *SHUFFLE_MODES):
+        raise DatasetError(f"shuffle must be False, True or one of {', '.join(SHUFFLE_MODES)}; got {shuffle!r}")
+    if batch_size < 1:
+        raise DatasetError(f"batch_size must be at least 1, got {batch_size}")
+    budget = DEFAULT_MEMORY_BUDGET if memory_budget is None else int(memory_budget)
+    if budget < 1:
+        raise DatasetError(f"memory_budget must be a positive number of bytes, got {memory_budget}")
+    row_bytes = reader.row_bytes()
+    pool_rows = max(batch_size, budget // row_bytes)
+    if shuffle == "full" or (shuffle == "auto" and spec.share <= pool_rows):
+        yield from _full_batches(reader, spec, batch_size, drop_last, row_numbers, spec.share)
+        return
+    if shuffle == "passes":
+        yield from _full_batches(reader, spec, batch_size, drop_last, row_numbers, pool_rows)
+        return
+    plan = pooled_plan(spec, reader.chunk_rows, pool_rows, shuffle=bool(shuffle))
+    yield from _pooled_batches(reader, spec, plan, batch_size, bool(shuffle), drop_last, row_numbers)
+
+
+def _full_batches(reader, spec, batch_size, drop_last, row_numbers, pass_rows):
+    if spec.count == 1 and pass_rows >= spec.rows:
+        # the whole split, each chunk decoded once on threads while the order is drawn; a batch
+        # gathers its rows (faster than scattering the split into the order while decoding)
+        started = reader.start([(0, spec.rows)])
+        order = full_order(spec)
+        data = reader.finish(started)
+        for b in range(0, len(order), batch_size):
+            idx = order[b:b + batch_size]
+            if drop_last and len(idx) < batch_size:
+                return
+            batch = {k: v[idx] for k, v in data.items()}
+            if row_numbers:
+                batch["row"] = idx
+            yield batch
+        return
+    order = full_order(spec)
+    if pass_rows < len(order):
+        pass_rows = max(batch_size, pass_rows // batch_size * batch_size)  # whole batches in a pass
+    for p0 in range(0, max(len(order), 1), max(pass_rows, 1)):
+        part = order[p0:p0 + pass_rows]
+        data, local = _gather(reader, part)
+        for b in range(0, len(part), batch_size):
+            if drop_last and b + batch_size > len(part):
+                return
+            batch = {k: v[local[b:b + batch_size]] for k, v in data.items()}
+            if row_numbers:
+                batch["row"] = part[b:b + batch_size]
+            yield batch
+
+
+def _gather(reader, rows):
+    """The given rows (any order, repeats allowed), reading the split chunk by chunk (each decoded once)."""
+    need = np.unique(rows)
+    local = np.searchsorted(need, rows)
+    step = reader.chunk_rows * max(1, 4 * 2**20 // (reader.chunk_rows * reader.row_bytes()))  # about 4 MiB a read
+    parts = []
+    for a in range(int(need[0]) - int(need[0]) % step if len(need) else 0, int(need[-1]) + 1 if len(need) else 0, step):
+        i0, i1 = np.searchsorted(need, [a, a + step])
+        if i1 > i0:
+            block = reader.read(a, a + step)
+            parts.append({k: v[need[i0:i1] - a] for k, v in block.items()})
+    data = {k: np.concatenate([p[k] for p in parts]) for k in reader.names} if parts else reader.read(0, 0)
+    return data, local
+
+
+def _pooled_batches(reader, spec, plan, batch_size, shuffle, drop_last, row_numbers):
+    pending = None  # the first rows of a batch that straddles two pools
+    for p, ranges in enumerate(plan):
+        data = reader.read_ranges(ranges)
+        if row_numbers:
+            data["row"] = np.concatenate([np.arange(a, b, dtype=np.int64) for a, b in ranges])
+        n = sum(b - a for a, b in ranges)
+        # rows drawn without replacement across the pool
+        perm = spec.perm(_POOL, n, spec.index, spec.count, p) if shuffle else np.arange(n)
+        at = 0
+        if pending is not None:
+            have = len(next(iter(pending.values())))
+            take = perm[:batch_size - have]
+            pending = {k: np.concatenate([pending[k], v[take]]) for k, v in data.items()}
+            at = len(take)
+            if have + at < batch_size:
+                continue
+            yield pending
+            pending = None
+        while at < n:
+            idx = perm[at:at + batch_size]
+            at += len(idx)
+            batch = {k: v[idx] for k, v in data.items()}
+            if len(idx) < batch_size:
+                pending = batch
+                break
+            yield batch
+    if pending is not None and not drop_last:
+        yield pending
