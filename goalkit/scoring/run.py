@@ -11,8 +11,10 @@ import numpy as np
 from goalkit.errors import DatasetError, GoalkitError
 from goalkit.scoring import metrics
 from goalkit.scoring.entry import load_entry
+from goalkit.scoring.report import render, write_plots
 from goalkit.suites.fileformat import logs_checksum, read_suite, set_checksum
 from goalkit.suites.strata import EPISODE
+from goalkit.write.reader import open_set
 
 #: Said by every report (text, JSON, plots' captions).
 CAUTION = ("These are offline proxies computed against logged behaviour on held-out goals. They are not a "
@@ -32,11 +34,22 @@ class AssessResult:
         Seconds in total, inside the user's callables, and goalkit's own overhead per row.
     predictions : dict
         ``"policy"`` / ``"value"``: list of arrays, one per checkpoint (for the plots).
+    suite_columns : dict
+        The suite's columns.
     """
 
     report: dict
     timing: dict
     predictions: dict = field(default_factory=dict)
+    suite_columns: dict = field(default_factory=dict)
+
+    def write_plots(self, out_dir, *, replace: bool = False) -> list:
+        """Write the PNG plots into ``out_dir`` (see :func:`goalkit.scoring.report.write_plots`)."""
+        return write_plots(self, out_dir, replace=replace)
+
+    def render(self) -> str:
+        """The report as text."""
+        return render(self.report)
 
     def as_dict(self) -> dict:
         """The report with its timing."""
@@ -61,8 +74,6 @@ def check_options(*, policies, values, batch_size, resamples, confidence) -> Non
 
 def check_suite_matches(suite, dataset) -> None:
     """Refuse a suite drawn from another set (or another set's logs), by checksum."""
-    from goalkit.write.reader import open_set
-
     with open_set(dataset) as gs:
         mine, logs = set_checksum(gs), logs_checksum(gs)
     if suite.set_checksum == mine:
@@ -153,7 +164,7 @@ def assess_suite(dataset, suite, *, policies=(), values=(), import_path=None, ba
     calls = len(entries[0]) + len(entries[1])
     timing = {"total_s": total, "callable_s": clock[0], "overhead_s": total - clock[0],
               "overhead_per_row_s": (total - clock[0]) / max(1, len(s) * calls)}
-    return AssessResult(report, timing, preds)
+    return AssessResult(report, timing, preds, cols)
 
 
 def _policy_section(entries, errs, bucket, group, g, draws, names, confidence) -> dict:

@@ -24,6 +24,7 @@ import numpy as np
 from goalkit import __version__
 from goalkit.errors import DatasetError
 from goalkit.outputs import discard, open_hdf5, publish, refuse_existing
+from goalkit.write.format import open_set_file
 
 FORMAT_NAME = "goalkit-goal-suite"
 FORMAT_VERSION = 1
@@ -162,8 +163,6 @@ def read_suite(path) -> Suite:
     DatasetError
         One line naming the file (and key): not a suite, a newer version, a missing or edited column.
     """
-    from goalkit.write.format import open_set_file
-
     path = Path(path)
     f = open_set_file(path)
     with f:

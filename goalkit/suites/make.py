@@ -9,10 +9,12 @@ import numpy as np
 
 from goalkit import rng
 from goalkit.errors import DatasetError, GoalkitError
+from goalkit.goals.neighbours import IndexSettings, build_index
 from goalkit.outputs import check_no_overlap, refuse_existing, write_text
 from goalkit.suites import reach, strata
 from goalkit.suites.card import card_path, is_suite_card, render_card
 from goalkit.suites.fileformat import is_suite_file, logs_checksum, set_checksum, write_suite
+from goalkit.write.reader import open_set
 
 #: Columns read from the validation split.
 _READ = ("source_episode", "source_step", "slot", "goal", "steps_to_goal", "observation", "action",
@@ -112,9 +114,6 @@ def make_suite(dataset, out, *, edges=strata.DEFAULT_EDGES, far_quantile: float 
     -------
     SuiteResult
     """
-    from goalkit.goals.neighbours import IndexSettings, build_index
-    from goalkit.write.reader import open_set
-
     edges = strata.check_edges(edges)
     check_settings(far_quantile=far_quantile, far_distance=far_distance, join_radius=join_radius,
                    join_neighbours=join_neighbours, per_cell=per_cell, candidates=candidates)

@@ -24,6 +24,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from goalkit.goals.neighbours import faiss_threads
 from goalkit.suites.strata import EPISODE, NONE, STITCHED
 
 #: Largest (sources x components) block of distances held at once in the search.
@@ -65,8 +66,6 @@ def _keys(ep, step, span):
 def _knn(vectors: np.ndarray, queries: np.ndarray, k: int):
     """Exact k nearest (squared L2 distances, ids) of each query among ``vectors`` (faiss flat)."""
     import faiss
-
-    from goalkit.goals.neighbours import faiss_threads
 
     index = faiss.IndexFlatL2(vectors.shape[1])
     index.add(np.ascontiguousarray(vectors, dtype=np.float32))
