@@ -130,7 +130,7 @@ def make_suite(dataset, out, *, edges=strata.DEFAULT_EDGES, far_quantile: float 
                                "(build it with [split] validation > 0)", file=dataset, key="validation")
         v = gs.read("validation", list(_READ))
         graph = reach.build_graph(v["source_episode"], v["source_step"], v["reached_goal"], radius=radius,
-                                  k=join_neighbours)
+                                  k=join_neighbours, state_goal=_state_goals(gs, v))
         key = rng.hash64(seed, v["source_episode"], v["source_step"], v["slot"], stream=strata.SUITE_STREAM + 1)
         cand = np.sort(np.argsort(key, kind="stable")[:candidates])
         route, horizon = reach.classify(graph, v["source_episode"][cand], v["source_step"][cand],
@@ -173,6 +173,16 @@ def make_suite(dataset, out, *, edges=strata.DEFAULT_EDGES, far_quantile: float 
     path = write_suite(out, columns, attrs, replace=replace)
     write_text(card, render_card(out, attrs), replace=replace, ours=is_suite_card, what="suite card")
     return SuiteResult(path, card, int(len(rows)), counts, settings)
+
+
+def _state_goals(goalset, v):
+    """phi(s_t) of the validation rows when the set's goal map selects observation columns, else None."""
+    gm = goalset.provenance.get("goal_map", {})
+    idx = gm.get("indices") if gm.get("kind") == "indices" else None
+    obs = v["observation"]
+    if not idx or obs.ndim != 2 or max(idx) >= obs.shape[1]:
+        return None
+    return obs[:, np.asarray(idx, np.int64)].astype(v["reached_goal"].dtype)
 
 
 def _cell_counts(route, bucket, prox, chosen, names) -> list[dict]:

@@ -14,8 +14,9 @@ state of it, steps-to-goal ``j - t``, or a later state of it lies within the joi
 goal: the first such step), ``stitched`` when only the joined graph reaches it (horizon: the
 graph's steps), ``none`` otherwise (horizon -1). Joins use the ``k`` nearest states of each
 state (faiss exact search), so a crowded place may miss joins beyond its ``k``-th neighbour.
-The first state of an episode has no goal vector in a set (goal vectors are stored for
-``s_t+1``) and is joined to nothing unless an earlier step of the same episode is present.
+A set stores goal vectors of ``s_t+1`` only; the goal vector of an episode's first state is
+computed from the stored observation when the set's goal map is a column selection, else that
+state is joined to nothing.
 """
 
 from __future__ import annotations
@@ -74,7 +75,7 @@ def _knn(vectors: np.ndarray, queries: np.ndarray, k: int):
     return d, i
 
 
-def build_graph(episode, step, next_goal, *, radius: float, k: int = 8) -> Graph:
+def build_graph(episode, step, next_goal, *, radius: float, k: int = 8, state_goal=None) -> Graph:
     """Build the joined graph from the held-out transitions.
 
     Parameters
@@ -83,6 +84,9 @@ def build_graph(episode, step, next_goal, *, radius: float, k: int = 8) -> Graph
         Transition ``(e, t)`` of each held-out transition (duplicates allowed).
     next_goal : array, shape (n, G)
         phi(s_t+1) of each transition.
+    state_goal : array, shape (n, G), optional
+        phi(s_t) of each transition, when the goal map can be applied to the stored states (a
+        column selection); otherwise the first state of an episode is joined to nothing.
     radius : float
         Join radius (Euclidean, goal space).
     k : int
@@ -104,6 +108,9 @@ def build_graph(episode, step, next_goal, *, radius: float, k: int = 8) -> Graph
     node_goal = np.zeros((n, nxt.shape[1]), np.float32)
     node_goal[dst] = nxt
     has_goal = np.zeros(n, bool)
+    if state_goal is not None:
+        node_goal[src] = np.asarray(state_goal, np.float32)[first]
+        has_goal[src] = True
     has_goal[dst] = True
 
     with_goal = np.flatnonzero(has_goal)
