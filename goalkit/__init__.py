@@ -56,6 +56,8 @@ _LAZY = {
     "load_labelled_pairs": "goalkit.tune.labels", "plot_labelled": "goalkit.tune.plots",
     "write_tuned_recipe": "goalkit.tune.recipe_edit",
     "LabelError": "goalkit.tune.errors", "TuningError": "goalkit.tune.errors",
+    # held-out suites and offline assessment
+    "make_suite": "goalkit.api", "read_suite": "goalkit.suites.fileformat", "assess": "goalkit.api",
 }
 
 _ERRORS = ["GoalkitError", "LogError", "LayoutError", "RecipeError", "DatasetError", "EmbeddingError",
