@@ -85,7 +85,7 @@ class Entry:
         """Call the user's function on one batch; its exceptions become a :class:`CallableError`."""
         try:
             return self.func(batch)
-        except Exception as exc:  # the user's code: report it as theirs
+        except (Exception, SystemExit) as exc:  # the user's code (sys.exit included): report it as theirs
             raise _theirs(self.spec, self.role, exc,
                           f"on suite rows {start}..{start + len(batch['goal']) - 1}") from None
 
@@ -152,7 +152,7 @@ def load_entry(spec: str, role: str, *, path=None) -> Entry:
                                     f"{exc.name}); expected an importable package.module:callable (give the folder "
                                     f"with --import-path)", key=f"--{role}") from None
             raise _theirs(spec, role, exc, "while importing") from None
-        except Exception as exc:
+        except (Exception, SystemExit) as exc:  # sys.exit at import time is theirs too
             raise _theirs(spec, role, exc, "while importing") from None
     obj = module
     for part in attr.split("."):

@@ -29,6 +29,14 @@ def raises(batch):
 def _inner(batch):
     raise RuntimeError("weights missing")
 
+def exits(batch):
+    raise SystemExit(0)
+
+def writes_inputs(batch):
+    batch["goal"][:] = 0
+    batch["observation"][:] = 0
+    return np.zeros((len(batch["goal"]), 2))
+
 value_2d = lambda batch: np.zeros((len(batch["goal"]), 1))
 not_callable = 3
 '''
@@ -58,6 +66,7 @@ def _run(grid, bad, *args):
     ("nosuchpkg.mod:f", "cannot import module nosuchpkg.mod (no module named nosuchpkg)"),
     ("broken_import:f", "policy broken_import:f raised ZeroDivisionError: division by zero while importing"),
     ("not an entry", "expected an entry point package.module:callable"),
+    ("badck:exits", "policy badck:exits raised SystemExit: 0 on suite rows 0.."),
 ])
 def test_bad_callables_give_one_line_and_exit_2(grid, bad, entry, expected):
     out = _run(grid, bad, "--policy", entry)
@@ -105,3 +114,14 @@ def test_assess_writes_plots_and_refuses_existing_ones(grid, tmp_path):
     again = subprocess.run(args, capture_output=True, text=True)
     assert again.returncode == 2 and "already exists; give --replace" in again.stderr
     assert subprocess.run(args + ["--replace"], capture_output=True, text=True).returncode == 0
+
+
+def test_a_callable_that_writes_into_its_inputs_does_not_change_the_scores(grid, bad):
+    from goalkit.scoring.run import assess_suite
+
+    a = assess_suite(grid["set"], grid["suite"], import_path=bad, policies=["badck:writes_inputs"],
+                     values=["badck:value_2d"], resamples=20)
+    from goalkit.suites.fileformat import read_suite
+
+    cols = read_suite(grid["suite"]).columns
+    assert (a.suite_columns["goal"] == cols["goal"]).all() and (a.suite_columns["state"] == cols["state"]).all()
