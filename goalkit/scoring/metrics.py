@@ -33,6 +33,10 @@ from goalkit import rng
 ASSESS_STREAM = 2003
 #: Resamples evaluated together (bounds memory: block x rows float64 arrays).
 BLOCK_CELLS = 4_000_000
+#: Up to this many episodes, resampled rank statistics use the closed form of
+#: :func:`_closed_form` (cost per resample ~ episodes**3, independent of the rows); above it,
+#: each resample's rows are ranked again (cost per resample ~ rows).
+CLOSED_FORM_MAX_GROUPS = 120
 
 
 @dataclass(frozen=True)
@@ -155,6 +159,86 @@ def roc_auc(score, label) -> float:
     return float(roc_auc_weighted(score, label, np.ones((1, score.size)))[0])
 
 
+# ---- the closed form over episodes -----------------------------------------------------------
+def _rank_parts(x, group, n_groups: int) -> np.ndarray:
+    """``A[e, i]``: rows of episode ``e`` below ``x_i`` plus half of those equal to it (``i`` included).
+
+    With episode ``e`` counted ``W[e]`` times, row ``i``'s average rank in the expanded data is
+    ``W @ A[:, i] + 1/2``.
+    """
+    x = np.asarray(x, np.float64)
+    order = np.argsort(x, kind="stable")
+    xs = x[order]
+    new = np.r_[True, xs[1:] != xs[:-1]]
+    block = np.empty(x.size, np.int64)
+    block[order] = np.cumsum(new) - 1
+    c = np.zeros((n_groups, int(new.sum())))
+    np.add.at(c, (group, block), 1.0)
+    below = np.cumsum(c, axis=1) - c
+    return below[:, block] + c[:, block] / 2.0
+
+
+def _closed_form(stat, x, y, group, n_groups: int, counts: np.ndarray) -> np.ndarray:
+    """``stat`` of every resample (episode draw counts ``counts``, (B, G)) without re-ranking rows.
+
+    Row ``i`` of episode ``e_i`` has weight ``W[e_i]`` and rank ``W @ A_i + 1/2``, so the weighted
+    sums of Spearman's and the Mann-Whitney statistic are polynomials in ``W`` whose
+    coefficients are sums over each episode's rows, computed once: ``sum_i w_i r_i s_i =
+    sum_e W_e (W' T_e W + W' (a_e + b_e) / 2 + n_e / 4)`` with ``T_e = sum_{i in e} A_i B_i'``.
+    The weighted mean rank is always ``(N + 1) / 2``. Equal to the per-resample ranking of
+    :func:`spearman_weighted` / :func:`roc_auc_weighted` up to rounding (a test checks both).
+    """
+    order = np.argsort(group, kind="stable")
+    group = np.asarray(group, np.int64)[order]
+    x = np.asarray(x, np.float64)[order]
+    y = np.asarray(y)[order]
+    g = n_groups
+    bounds = np.searchsorted(group, np.arange(g + 1))
+    spans = list(zip(bounds[:-1], bounds[1:]))
+    n_e = np.diff(bounds).astype(np.float64)
+    W = np.asarray(counts, np.float64)
+    N = W @ n_e
+    A = _rank_parts(x, group, g)
+    row_sums = (lambda M: np.stack([M[:, a:b].sum(axis=1) for a, b in spans]))  # (G', G)
+    if stat is roc_auc_weighted:
+        pos = y.astype(bool)
+        a1 = row_sums(A * pos)
+        n1e = np.bincount(group[pos], minlength=g).astype(np.float64)
+        n1, n0 = W @ n1e, W @ (n_e - n1e)
+        r1 = np.einsum("bp,bq,pq->b", W, W, a1, optimize=True) + n1 / 2.0
+        with np.errstate(invalid="ignore", divide="ignore"):
+            out = (r1 - n1 * (n1 + 1.0) / 2.0) / (n1 * n0)
+        out[~(n1 > 0) | ~(n0 > 0)] = np.nan
+        return out
+    B = _rank_parts(np.asarray(y, np.float64), group, g)
+    sa, sb = row_sums(A), row_sums(B)
+
+    def weighted_products(P, Q, sp, sq):
+        T = np.stack([P[:, a:b] @ Q[:, a:b].T for a, b in spans])  # (G', G, G)
+        return (np.einsum("bp,bq,br,pqr->b", W, W, W, T, optimize=True)
+                + np.einsum("bp,bq,pq->b", W, W, sp + sq, optimize=True) / 2.0 + N / 4.0)
+
+    m2 = N * ((N + 1.0) / 2.0) ** 2
+    cov = weighted_products(A, B, sa, sb) - m2
+    vx = weighted_products(A, A, sa, sa) - m2
+    vy = weighted_products(B, B, sb, sb) - m2
+    tol = 1e-10 * N ** 3  # rounding of the sums; a real spread of ranks is at least about N**2 / 4
+    with np.errstate(invalid="ignore", divide="ignore"):
+        r = cov / np.sqrt(vx * vy)
+    r[~(vx > tol) | ~(vy > tol)] = np.nan
+    return np.clip(r, -1.0, 1.0)
+
+
+def _resampled(stat, x, y, group, n_groups: int, counts: np.ndarray) -> np.ndarray:
+    """``stat`` of every resample: the closed form for few episodes, else ranking each resample."""
+    if n_groups <= CLOSED_FORM_MAX_GROUPS and stat in (spearman_weighted, roc_auc_weighted) and len(x):
+        return _closed_form(stat, x, y, group, n_groups, counts)
+    dist = np.full(counts.shape[0], np.nan)
+    for a, b in _blocks(counts.shape[0], len(x)):
+        dist[a:b] = stat(x, y, counts[a:b][:, group])
+    return dist
+
+
 # ---- bootstrap over episodes -----------------------------------------------------------------
 def _blocks(n_resamples: int, n_rows: int):
     step = max(1, BLOCK_CELLS // max(n_rows, 1))
@@ -200,15 +284,13 @@ def rank_stat_interval(stat, x, y, group, n_groups: int, draws, confidence: floa
     """A weighted rank statistic (:func:`spearman_weighted` or :func:`roc_auc_weighted`) with its interval.
 
     ``stat(x, y, w)`` is evaluated with unit weights (the estimate) and with each resample's
-    row weights (an episode's draw count).
+    row weights (an episode's draw count); for Spearman and ROC AUC on up to
+    :data:`CLOSED_FORM_MAX_GROUPS` episodes, through the closed form of :func:`_closed_form`.
     """
     x = np.asarray(x, np.float64)
     group = np.asarray(group, np.int64)
     est = float(stat(x, y, np.ones((1, x.size)))[0]) if x.size else float("nan")
-    counts = draw_counts(draws, n_groups)
-    dist = np.full(counts.shape[0], np.nan)
-    for a, b in _blocks(counts.shape[0], x.size):
-        dist[a:b] = stat(x, y, counts[a:b][:, group])
+    dist = _resampled(stat, x, y, group, n_groups, draw_counts(draws, n_groups))
     return percentile_interval(est, dist, confidence)
 
 
@@ -219,8 +301,5 @@ def rank_stat_difference(stat, x_a, x_b, y, group, n_groups: int, draws, confide
     one = np.ones((1, n))
     est = float(stat(x_a, y, one)[0] - stat(x_b, y, one)[0]) if n else float("nan")
     counts = draw_counts(draws, n_groups)
-    dist = np.full(counts.shape[0], np.nan)
-    for a, b in _blocks(counts.shape[0], n):
-        w = counts[a:b][:, group]
-        dist[a:b] = stat(x_a, y, w) - stat(x_b, y, w)
+    dist = _resampled(stat, x_a, y, group, n_groups, counts) - _resampled(stat, x_b, y, group, n_groups, counts)
     return percentile_interval(est, dist, confidence)

@@ -200,7 +200,7 @@ def _value_section(entries, vals, cols, group, g, draws, confidence) -> dict:
     out = {"checkpoints": [e.spec for e in entries]}
     sp = [metrics.rank_stat_interval(metrics.spearman_weighted, v[reach], target, group[reach], g, draws,
                                      confidence) for v in vals]
-    auc = [metrics.rank_stat_interval(_auc, v, label, group, g, draws, confidence) for v in vals]
+    auc = [metrics.rank_stat_interval(metrics.roc_auc_weighted, v, label, group, g, draws, confidence) for v in vals]
     out["spearman"] = {"rows": int(reach.sum()), "against": "negative steps-to-goal (reachable rows)",
                        "scores": [x.as_dict() for x in sp], "difference": None}
     out["roc_auc"] = {"rows": int(len(label)), "positives": int(label.sum()),
@@ -211,12 +211,8 @@ def _value_section(entries, vals, cols, group, g, draws, confidence) -> dict:
             metrics.spearman_weighted, vals[0][reach], vals[1][reach], target, group[reach], g, draws,
             confidence).as_dict()
         out["roc_auc"]["difference"] = metrics.rank_stat_difference(
-            _auc, vals[0], vals[1], label, group, g, draws, confidence).as_dict()
+            metrics.roc_auc_weighted, vals[0], vals[1], label, group, g, draws, confidence).as_dict()
     return out
-
-
-def _auc(score, label, w):
-    return metrics.roc_auc_weighted(score, label, w)
 
 
 __all__ = ["CAUTION", "AssessResult", "assess_suite", "check_options", "check_suite_matches"]

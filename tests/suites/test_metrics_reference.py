@@ -41,8 +41,11 @@ def _expand(idx, group):
     return np.concatenate([np.flatnonzero(group == e) for e in idx])
 
 
+@pytest.mark.parametrize("closed_form", [True, False])
 @pytest.mark.parametrize("kind", ["mean", "spearman", "auc"])
-def test_bootstrap_interval_equals_scipy_bootstrap_on_the_same_resamples(kind):
+def test_bootstrap_interval_equals_scipy_bootstrap_on_the_same_resamples(kind, closed_form, monkeypatch):
+    if not closed_form:  # rank every resample's rows again instead of the closed form over episodes
+        monkeypatch.setattr(metrics, "CLOSED_FORM_MAX_GROUPS", 0)
     x, y, label, group, g = _data()
     b, seed = 400, 11
 
@@ -101,3 +104,21 @@ def test_difference_interval_is_on_the_same_resamples():
     assert d.estimate == pytest.approx(2 * a)  # rho(-x, y) = -rho(x, y)
     one = metrics.rank_stat_interval(metrics.spearman_weighted, x, y, group, g, draws, 0.95)
     assert (d.low, d.high) == pytest.approx((2 * one.low, 2 * one.high))
+
+
+@pytest.mark.filterwarnings("ignore::RuntimeWarning")
+@settings(max_examples=40, deadline=None)
+@given(st.integers(0, 2**32 - 1), st.integers(1, 8), st.integers(1, 5))
+def test_closed_form_equals_ranking_every_resample(seed, g, levels):
+    r = np.random.default_rng(seed)
+    n = int(r.integers(2, 60))
+    group = r.integers(0, g, n)
+    x = r.integers(0, levels, n).astype(float)
+    y = r.integers(0, levels, n).astype(float)
+    label = r.integers(0, 2, n)
+    counts = metrics.draw_counts(r.integers(0, g, (30, g)), g)
+    for stat, b in ((metrics.spearman_weighted, y), (metrics.roc_auc_weighted, label)):
+        fast = metrics._closed_form(stat, x, b, group, g, counts)
+        slow = stat(x, b, counts[:, group])
+        np.testing.assert_array_equal(np.isnan(fast), np.isnan(slow))
+        np.testing.assert_allclose(fast[~np.isnan(fast)], slow[~np.isnan(slow)], atol=1e-9)
