@@ -31,12 +31,12 @@ def graph():
     xy, index = cells()
     a, b = [], []
     for (x, y), i in index.items():
-        for nb in ((x + 1, y), (x, y + 1)):
-            if nb in index and (y > 0 or nb[1] == 0 or nb[0] == x):
-                if (nb[1] > 0 and nb[0] != x):
-                    continue
-                a.append(i)
-                b.append(index[nb])
+        if y == 0 and (x + 1, 0) in index:  # along the corridor
+            a.append(i)
+            b.append(index[(x + 1, 0)])
+        if (x, y + 1) in index:  # up the tooth at x
+            a.append(i)
+            b.append(index[(x, y + 1)])
     n = len(xy)
     adj = coo_matrix((np.ones(len(a)), (a, b)), shape=(n, n)).tocsr()
     dist, pred = shortest_path(adj, directed=False, unweighted=True, return_predecessors=True)
