@@ -161,10 +161,10 @@ def roc_auc(score, label) -> float:
 
 # ---- the closed form over episodes -----------------------------------------------------------
 def _rank_parts(x, group, n_groups: int) -> np.ndarray:
-    """``A[e, i]``: rows of episode ``e`` below ``x_i`` plus half of those equal to it (``i`` included).
+    """``A[i, e]``: rows of episode ``e`` below ``x_i`` plus half of those equal to it (``i`` included).
 
     With episode ``e`` counted ``W[e]`` times, row ``i``'s average rank in the expanded data is
-    ``W @ A[:, i] + 1/2``.
+    ``A[i] @ W + 1/2``. Shape (n, G), rows contiguous.
     """
     x = np.asarray(x, np.float64)
     order = np.argsort(x, kind="stable")
@@ -172,16 +172,16 @@ def _rank_parts(x, group, n_groups: int) -> np.ndarray:
     new = np.r_[True, xs[1:] != xs[:-1]]
     block = np.empty(x.size, np.int64)
     block[order] = np.cumsum(new) - 1
-    c = np.zeros((n_groups, int(new.sum())))
-    np.add.at(c, (group, block), 1.0)
-    below = np.cumsum(c, axis=1) - c
-    return below[:, block] + c[:, block] / 2.0
+    c = np.zeros((int(new.sum()), n_groups))
+    np.add.at(c, (block, group), 1.0)
+    part = np.cumsum(c, axis=0) - c / 2.0
+    return part[block]
 
 
 def _closed_form(stat, x, y, group, n_groups: int, counts: np.ndarray) -> np.ndarray:
     """``stat`` of every resample (episode draw counts ``counts``, (B, G)) without re-ranking rows.
 
-    Row ``i`` of episode ``e_i`` has weight ``W[e_i]`` and rank ``W @ A_i + 1/2``, so the weighted
+    Row ``i`` of episode ``e_i`` has weight ``W[e_i]`` and rank ``A_i @ W + 1/2``, so the weighted
     sums of Spearman's and the Mann-Whitney statistic are polynomials in ``W`` whose
     coefficients are sums over each episode's rows, computed once: ``sum_i w_i r_i s_i =
     sum_e W_e (W' T_e W + W' (a_e + b_e) / 2 + n_e / 4)`` with ``T_e = sum_{i in e} A_i B_i'``.
@@ -199,10 +199,10 @@ def _closed_form(stat, x, y, group, n_groups: int, counts: np.ndarray) -> np.nda
     W = np.asarray(counts, np.float64)
     N = W @ n_e
     A = _rank_parts(x, group, g)
-    row_sums = (lambda M: np.stack([M[:, a:b].sum(axis=1) for a, b in spans]))  # (G', G)
+    row_sums = (lambda M: np.stack([M[a:b].sum(axis=0) for a, b in spans]))  # (G', G)
     if stat is roc_auc_weighted:
         pos = y.astype(bool)
-        a1 = row_sums(A * pos)
+        a1 = row_sums(A * pos[:, None])
         n1e = np.bincount(group[pos], minlength=g).astype(np.float64)
         n1, n0 = W @ n1e, W @ (n_e - n1e)
         r1 = np.einsum("bp,bq,pq->b", W, W, a1, optimize=True) + n1 / 2.0
@@ -214,7 +214,7 @@ def _closed_form(stat, x, y, group, n_groups: int, counts: np.ndarray) -> np.nda
     sa, sb = row_sums(A), row_sums(B)
 
     def weighted_products(P, Q, sp, sq):
-        T = np.stack([P[:, a:b] @ Q[:, a:b].T for a, b in spans])  # (G', G, G)
+        T = np.stack([P[a:b].T @ Q[a:b] for a, b in spans])  # (G', G, G)
         return (np.einsum("bp,bq,br,pqr->b", W, W, W, T, optimize=True)
                 + np.einsum("bp,bq,pq->b", W, W, sp + sq, optimize=True) / 2.0 + N / 4.0)
 
@@ -231,6 +231,8 @@ def _closed_form(stat, x, y, group, n_groups: int, counts: np.ndarray) -> np.nda
 
 def _resampled(stat, x, y, group, n_groups: int, counts: np.ndarray) -> np.ndarray:
     """``stat`` of every resample: the closed form for few episodes, else ranking each resample."""
+    if counts.shape[0] == 0:
+        return np.zeros(0)
     if n_groups <= CLOSED_FORM_MAX_GROUPS and stat in (spearman_weighted, roc_auc_weighted) and len(x):
         return _closed_form(stat, x, y, group, n_groups, counts)
     dist = np.full(counts.shape[0], np.nan)
