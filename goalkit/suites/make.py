@@ -119,10 +119,12 @@ def make_suite(dataset, out, *, edges=strata.DEFAULT_EDGES, far_quantile: float 
                    join_neighbours=join_neighbours, per_cell=per_cell, candidates=candidates)
     out = Path(out)
     card = card_path(out)
-    check_no_overlap([("set", dataset)], [("--out", out), ("card", card)])
-    refuse_existing(out, replace=replace, ours=is_suite_file, what="suite file")
-    refuse_existing(card, replace=replace, ours=is_suite_card, what="suite card")
     with open_set(dataset) as gs:
+        logs = gs.provenance.get("logs_path")
+        check_no_overlap([("set", dataset), ("logs", logs if isinstance(logs, str) else None)],
+                         [("--out", out), ("card", card)])
+        refuse_existing(out, replace=replace, ours=is_suite_file, what="suite file")
+        refuse_existing(card, replace=replace, ours=is_suite_card, what="suite card")
         radius = float(join_radius) if join_radius is not None else default_join_radius(gs)
         n_val = gs.rows("validation")
         if n_val == 0:

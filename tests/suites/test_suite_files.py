@@ -63,6 +63,11 @@ def test_existing_outputs_and_inputs_are_never_overwritten(grid, tmp_path):
     with pytest.raises(OutputError, match="refusing to write over an input"):
         make_suite(grid["set"], grid["set"], per_cell=5, replace=True)
     assert _sha(grid["set"]) == before
+    logs = grid["folder"] / "grid-logs.h5"
+    before_logs = _sha(logs)
+    with pytest.raises(OutputError, match="refusing to write over an input: --out .* is the logs"):
+        make_suite(grid["set"], logs, per_cell=5, replace=True)  # the set's logs are inputs too
+    assert _sha(logs) == before_logs
     (tmp_path / "x.md").write_text("my notes")
     with pytest.raises(OutputError):
         make_suite(grid["set"], tmp_path / "x.h5", per_cell=5, replace=True)  # a foreign card is never replaced
