@@ -59,6 +59,8 @@ _LAZY = {
     "TuneResult": "goalkit.thresholds.session", "ThresholdTuner": "goalkit.thresholds.tuner",
     "load_labelled_pairs": "goalkit.thresholds.labels", "plot_labelled": "goalkit.thresholds.plots",
     "write_tuned_recipe": "goalkit.thresholds.recipe_edit",
+    # held-out suites and offline assessment
+    "make_suite": "goalkit.api", "read_suite": "goalkit.suites.fileformat", "assess": "goalkit.api",
 }
 
 _ERRORS = ["GoalkitError", "LogError", "LayoutError", "RecipeError", "DatasetError", "EmbeddingError",

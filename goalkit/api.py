@@ -19,10 +19,14 @@ from goalkit.logs.scan import scan_logs
 from goalkit.pipeline.build import BuildResult
 from goalkit.pipeline.build import build as _engine_build
 from goalkit.pipeline.recipe import Recipe, load_recipe
+from goalkit.scoring.run import AssessResult, assess_suite
+from goalkit.suites.make import SuiteResult
+from goalkit.suites.make import make_suite as _make_suite
+from goalkit.suites.strata import DEFAULT_EDGES
 from goalkit.thresholds.session import CHUNK_TRANSITIONS, MAX_TRANSITIONS, TuneResult, tune_recipe
 from goalkit.write.verify import VerifyReport, verify_set
 
-__all__ = ["InProcess", "LocalWorkers", "DaskCluster", "build", "verify", "scan", "tune"]
+__all__ = ["InProcess", "LocalWorkers", "DaskCluster", "build", "verify", "scan", "tune", "make_suite", "assess"]
 
 
 @dataclass(frozen=True)
@@ -242,3 +246,77 @@ def tune(recipe, *, labels=None, from_success: bool = False, distances=(), choos
     return tune_recipe(_recipe(recipe), labels=labels, from_success=from_success, distances=distances,
                        chooser=chooser, target=target, n_resamples=n_resamples,
                        max_transitions=max_transitions, chunk_transitions=CHUNK_TRANSITIONS, progress=progress)
+
+
+def make_suite(dataset, out, *, edges=DEFAULT_EDGES, far_quantile: float = 0.5, far_distance: float | None = None,
+               join_radius: float | None = None, join_neighbours: int = 8, per_cell: int = 100,
+               candidates: int = 20_000, seed: int = 0, replace: bool = False) -> SuiteResult:
+    """Draw a held-out goal suite from a built set's validation split (``goalkit suite``).
+
+    Rows are (state, goal, horizon, reachable) pairs with the logged action, stratified by route
+    (the own episode reaches the goal; only several held-out episodes joined within
+    ``join_radius`` do; none), horizon bucket (``edges``) and distance to the nearest training
+    goal (near / far). A Markdown card is written beside the suite. See docs/suites.md.
+
+    Parameters
+    ----------
+    dataset, out : str or Path
+        The set, and the suite file to write (never over an input; an existing one only with
+        ``replace``).
+    edges : sequence of int
+        Horizon bucket edges in steps.
+    far_quantile, far_distance : float
+        The near/far cut: a quantile of the candidates' distances, or an explicit distance.
+    join_radius : float, optional
+        Neighbour-join radius in goal space (default: the set's Euclidean reward threshold).
+    join_neighbours, per_cell, candidates, seed : int
+        Neighbours searched, rows per cell, candidate rows, seed.
+    replace : bool
+
+    Returns
+    -------
+    SuiteResult
+
+    Examples
+    --------
+    >>> suite = goalkit.make_suite("gantry-goals.h5", "gantry-suite.h5", per_cell=50)   # doctest: +SKIP
+    """
+    return _make_suite(dataset, out, edges=edges, far_quantile=far_quantile, far_distance=far_distance,
+                       join_radius=join_radius, join_neighbours=join_neighbours, per_cell=per_cell,
+                       candidates=candidates, seed=seed, replace=replace)
+
+
+def assess(dataset, suite, *, policies=(), values=(), import_path=None, batch_size: int = 1024,
+           resamples: int = 1000, confidence: float = 0.95, seed: int = 0) -> AssessResult:
+    """Score up to two policies and two value functions on a suite, offline (``goalkit assess``).
+
+    Entry points are ``package.module:callable`` strings; only the named modules are imported.
+    A policy gets ``{"observation": (B, D), "goal": (B, G)}`` numpy arrays and returns ``(B, A)``
+    actions, a value function returns ``(B,)`` values. Scores are offline proxies, not a
+    substitute for supervised trials on the machine. See docs/suites.md.
+
+    Parameters
+    ----------
+    dataset, suite : str or Path
+        The set and a suite drawn from it (checked by checksum).
+    policies, values : sequence of str
+        Entry points, at most two of each.
+    import_path : str or Path, optional
+        Folder to import the entry points from.
+    batch_size, resamples : int
+    confidence : float
+    seed : int
+        Seed of the episode resamples.
+
+    Returns
+    -------
+    AssessResult
+        ``.report`` (JSON-able), ``.render()`` (text), ``.write_plots(folder)``.
+
+    Examples
+    --------
+    >>> res = goalkit.assess("gantry-goals.h5", "gantry-suite.h5", policies=["mypkg.ck:act"])  # doctest: +SKIP
+    >>> print(res.render())                                                                      # doctest: +SKIP
+    """
+    return assess_suite(dataset, suite, policies=policies, values=values, import_path=import_path,
+                        batch_size=batch_size, resamples=resamples, confidence=confidence, seed=seed)

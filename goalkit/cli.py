@@ -22,6 +22,8 @@ COMMANDS = {
     "verify": ("goalkit.write.command:verify", "Re-derive a built dataset from its logs and check it."),
     "embed": ("goalkit.goals.command:embed", "Fit a goal embedding on task logs and save it."),
     "tune": ("goalkit.thresholds.command:tune", "Choose the goal-match threshold from labels or diagnostics."),
+    "suite": ("goalkit.suites.command:suite", "Draw a held-out goal suite from a built set's validation split."),
+    "assess": ("goalkit.scoring.command:assess", "Score a policy or value function on a suite, offline."),
 }
 
 

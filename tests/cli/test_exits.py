@@ -46,6 +46,8 @@ def bad_inputs(d, tmp):
         "verify": (["verify", d / "gantry-layout.toml"], 2),
         "embed": (["embed", d / "gantry-logs.h5", "--method", "raw", "--dims", "2", "-o", tmp / "e.npz", "--replace"], 2),
         "tune": (["tune", tmp / "bad.toml"], 2),
+        "suite": (["suite", d / "gantry-layout.toml", "--out", tmp / "s.h5"], 2),
+        "assess": (["assess", d / "set.h5", tmp / "missing-suite.h5", "--value", "exitck:value"], 2),
     }
 
 
@@ -119,7 +121,21 @@ def quiet_runs(d, tmp):
         "embed": ["embed", d / "gantry-logs.h5", "--layout", d / "gantry-layout.toml", "--method", "pca",
                   "-o", tmp / "e.npz", "--replace"],
         "tune": ["tune", d / "gantry-recipe.toml", "--resamples", "0"],
+        "suite": ["suite", d / "set.h5", "--out", tmp / "s.h5", "--per-cell", "5", "--replace"],
+        "assess": ["assess", d / "set.h5", _suite_and_checkpoint(d), "--import-path", d / "ck", "--value",
+                   "exitck:value", "--resamples", "20"],
     }
+
+
+def _suite_and_checkpoint(d):
+    """A suite of the demo set and a trivial value function (made once per module)."""
+    from goalkit.suites.make import make_suite
+
+    if not (d / "suite.h5").exists():
+        make_suite(d / "set.h5", d / "suite.h5", per_cell=5)
+        (d / "ck").mkdir()
+        (d / "ck" / "exitck.py").write_text("def value(batch):\n    return batch['goal'][:, 0]\n")
+    return d / "suite.h5"
 
 
 @pytest.mark.parametrize("command", list(COMMANDS))

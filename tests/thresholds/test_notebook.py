@@ -47,3 +47,4 @@ def test_walkthrough_runs_and_shows_plots(tmp_path, monkeypatch):
     text = "".join(o.get("text", "") for o in outputs if o.output_type == "stream")
     assert "NO LABELS USED" in text and "suggested:" in text and "consistent:" in text
     assert "rewarded share of training rows" in text
+    assert "held-out pairs from" in text and "not a substitute for supervised trials on the machine" in text
