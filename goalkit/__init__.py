@@ -35,6 +35,7 @@ _LAZY = {
     "verify": "goalkit.api", "VerifyReport": "goalkit.write.verify",
     "open_set": "goalkit.write.reader", "GoalSet": "goalkit.write.reader",
     "GoalSampler": "goalkit.write.sampler",
+    "info": "goalkit.write.info", "write_card": "goalkit.write.card",
     "make_demo": "goalkit.demo.files",
     # logs
     "open_logs": "goalkit.logs.opener", "scan": "goalkit.api", "load_layout": "goalkit.logs.layout",
