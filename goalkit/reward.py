@@ -34,7 +34,7 @@ from typing import Any, Mapping
 import numpy as np
 
 from goalkit.config import check_keys, closest
-from goalkit.errors import RecipeError
+from goalkit.errors import RecipeError, shown
 
 #: Distance names accepted in ``[reward] distance``.
 DISTANCES = ("euclidean", "l1", "chebyshev", "cosine", "box")
@@ -161,14 +161,14 @@ class RewardRule:
                     file=file, key="reward.threshold")
             if len(thr) == 0 or not all(_is_number(x) and math.isfinite(x) and x > 0 for x in thr):
                 raise RecipeError(f"expected finite tolerances > 0, one per goal dimension, got "
-                                  f"{list(thr)}", file=file, key="reward.threshold")
+                                  f"{shown(list(thr))}", file=file, key="reward.threshold")
             if self.weights is not None:
                 raise RecipeError("distance 'box' takes no weights (scale the tolerances in "
                                   "threshold instead)", file=file, key="reward.weights")
         else:
             if isinstance(thr, tuple):
                 raise RecipeError(f"a list of tolerances needs distance = 'box'; distance "
-                                  f"'{self.distance_name}' expects one number, got {list(thr)}",
+                                  f"'{self.distance_name}' expects one number, got {shown(list(thr))}",
                                   file=file, key="reward.threshold")
             if not _is_number(thr) or not math.isfinite(thr) or thr < 0:
                 raise RecipeError(f"expected a finite number >= 0, got {thr!r}", file=file,
@@ -179,7 +179,7 @@ class RewardRule:
                 raise RecipeError(f"expected a non-empty list of weights, got {w!r}", file=file,
                                   key="reward.weights")
             if not all(_is_number(x) and math.isfinite(x) and x >= 0 for x in w):
-                raise RecipeError(f"expected finite weights >= 0, got {list(w)}", file=file,
+                raise RecipeError(f"expected finite weights >= 0, got {shown(list(w))}", file=file,
                                   key="reward.weights")
             if not any(x > 0 for x in w):
                 raise RecipeError("expected at least one weight > 0, got all zero", file=file,

@@ -10,7 +10,7 @@ import numpy as np
 
 from goalkit import rng
 from goalkit.config import check_keys, closest
-from goalkit.errors import RecipeError
+from goalkit.errors import RecipeError, shown
 from goalkit.logs.episodes import EpisodeSet
 from goalkit.relabel.strategies import CODES, PAST_END, STRATEGIES, locate
 
@@ -146,19 +146,19 @@ class Mixture:
                 raise RecipeError(f"unknown strategy '{name}'{tip} valid: {', '.join(STRATEGIES)}",
                                   file=file, key=key)
             if not _is_number(w) or not math.isfinite(w):
-                raise RecipeError(f"expected a finite number >= 0, got {w!r}", file=file, key=key)
+                raise RecipeError(f"expected a finite number >= 0, got {shown(w)}", file=file, key=key)
             if w < 0:
-                raise RecipeError(f"expected a weight >= 0, got {w!r}", file=file, key=key)
+                raise RecipeError(f"expected a weight >= 0, got {shown(w)}", file=file, key=key)
         if not any(w > 0 for w in self.weights.values()):
             raise RecipeError("all strategy weights are zero; give at least one a weight > 0",
                               file=file, key="relabel.weights")
         g = self.goals_per_transition
         if (isinstance(g, (bool, np.bool_)) or not isinstance(g, (int, np.integer))
                 or not 1 <= g <= MAX_GOALS_PER_TRANSITION):
-            raise RecipeError(f"expected an integer from 1 to {MAX_GOALS_PER_TRANSITION}, got {g!r}", file=file,
+            raise RecipeError(f"expected an integer from 1 to {MAX_GOALS_PER_TRANSITION}, got {shown(g)}", file=file,
                               key="relabel.goals_per_transition")
         if not _is_number(self.gamma) or not 0.0 < self.gamma < 1.0:
-            raise RecipeError(f"expected a number strictly between 0 and 1, got {self.gamma!r}",
+            raise RecipeError(f"expected a number strictly between 0 and 1, got {shown(self.gamma)}",
                               file=file, key="relabel.gamma")
         if self.past_end not in PAST_END:
             hint = closest(str(self.past_end), PAST_END)
@@ -167,9 +167,9 @@ class Mixture:
                               file=file, key="relabel.past_end")
         k = self.neighbours
         if isinstance(k, (bool, np.bool_)) or not isinstance(k, (int, np.integer)) or not 1 <= k <= 1024:
-            raise RecipeError(f"expected an integer from 1 to 1024, got {k!r}", file=file, key="relabel.neighbours")
+            raise RecipeError(f"expected an integer from 1 to 1024, got {shown(k)}", file=file, key="relabel.neighbours")
         if not _is_number(self.recall) or not 0.0 < self.recall <= 1.0:
-            raise RecipeError(f"expected a recall in (0, 1], got {self.recall!r}", file=file, key="relabel.recall")
+            raise RecipeError(f"expected a recall in (0, 1], got {shown(self.recall)}", file=file, key="relabel.recall")
         if self.index not in INDEX_METHODS:
             hint = closest(str(self.index), INDEX_METHODS)
             tip = f"; did you mean '{hint}'?" if hint else ""
@@ -203,7 +203,7 @@ class Mixture:
         kwargs = {k: table[k] for k in TABLE_KEYS if k in table}
         if "weights" in kwargs and not isinstance(kwargs["weights"], Mapping):
             raise RecipeError(f"expected a table [relabel.weights] of strategy name -> weight, got "
-                              f"{kwargs['weights']!r}", file=file, key="relabel.weights")
+                              f"{shown(kwargs['weights'])}", file=file, key="relabel.weights")
         try:
             return cls(**kwargs)
         except RecipeError as exc:

@@ -30,7 +30,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from goalkit.errors import DatasetError, GoalkitError
+from goalkit.errors import DatasetError, GoalkitError, shown
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.relabel.strategies import strategy_names
 from goalkit.reward import score
@@ -157,8 +157,8 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
         diff = cols[name] != ref
         if diff.any():
             i = _first(diff)
-            report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): {name} {cols[name][i]!r} does not "
-                        f"recompute from the reward rule (expected {ref[i]!r})")
+            report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): {name} {shown(cols[name][i])} does not "
+                        f"recompute from the reward rule (expected {shown(ref[i])})")
 
 
 def _strategy_code_problems(file) -> list[str]:
