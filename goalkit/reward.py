@@ -147,17 +147,17 @@ class RewardRule:
         if self.form not in FORMS:
             raise _choice_error("reward form", self.form, FORMS, file=file, key="reward.form")
         if not isinstance(self.inclusive, (bool, np.bool_)):
-            raise RecipeError(f"expected true or false, got {self.inclusive!r}", file=file,
+            raise RecipeError(f"expected true or false, got {shown(self.inclusive)}", file=file,
                               key="reward.inclusive")
         if not isinstance(self.end_on_reach, (bool, np.bool_)):
-            raise RecipeError(f"expected true or false, got {self.end_on_reach!r}", file=file,
+            raise RecipeError(f"expected true or false, got {shown(self.end_on_reach)}", file=file,
                               key="reward.end_on_reach")
         thr = self.threshold
         if self.distance_name == "box":
             if not isinstance(thr, tuple):
                 raise RecipeError(
                     f"distance 'box' expects a list of tolerances, one per goal dimension, got "
-                    f"{thr!r} (a single tolerance for every dimension is distance = 'chebyshev')",
+                    f"{shown(thr)} (a single tolerance for every dimension is distance = 'chebyshev')",
                     file=file, key="reward.threshold")
             if len(thr) == 0 or not all(_is_number(x) and math.isfinite(x) and x > 0 for x in thr):
                 raise RecipeError(f"expected finite tolerances > 0, one per goal dimension, got "
@@ -171,12 +171,12 @@ class RewardRule:
                                   f"'{self.distance_name}' expects one number, got {shown(list(thr))}",
                                   file=file, key="reward.threshold")
             if not _is_number(thr) or not math.isfinite(thr) or thr < 0:
-                raise RecipeError(f"expected a finite number >= 0, got {thr!r}", file=file,
+                raise RecipeError(f"expected a finite number >= 0, got {shown(thr)}", file=file,
                                   key="reward.threshold")
         if self.weights is not None:
             w = self.weights
             if not isinstance(w, tuple) or len(w) == 0:
-                raise RecipeError(f"expected a non-empty list of weights, got {w!r}", file=file,
+                raise RecipeError(f"expected a non-empty list of weights, got {shown(w)}", file=file,
                                   key="reward.weights")
             if not all(_is_number(x) and math.isfinite(x) and x >= 0 for x in w):
                 raise RecipeError(f"expected finite weights >= 0, got {shown(list(w))}", file=file,
@@ -367,11 +367,11 @@ class RewardRule:
         thr = table["threshold"]
         if isinstance(thr, list):
             if not all(_is_number(x) for x in thr):
-                raise RecipeError(f"expected a list of numbers, got {thr!r}", file=file,
+                raise RecipeError(f"expected a list of numbers, got {shown(thr)}", file=file,
                                   key="reward.threshold")
             thr = tuple(float(x) for x in thr)
         elif not _is_number(thr):
-            raise RecipeError(f"expected a number, got {thr!r}", file=file, key="reward.threshold")
+            raise RecipeError(f"expected a number, got {shown(thr)}", file=file, key="reward.threshold")
         weights = table.get("weights")
         if weights is not None:
             if not isinstance(weights, list) or not all(_is_number(x) for x in weights):

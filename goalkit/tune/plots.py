@@ -35,7 +35,9 @@ def _figure(width=5.0, height=4.0):
 
     fig = Figure(figsize=(width, height), dpi=100)
     FigureCanvasAgg(fig)
-    return fig, fig.add_subplot(1, 1, 1)
+    ax = fig.add_subplot(1, 1, 1)
+    ax.title.set_fontsize(11)
+    return fig, ax
 
 
 #: The first bytes of every PNG file (ISO/IEC 15948, section 5.2).
@@ -133,7 +135,7 @@ def labelled_figures(sweep, choice, *, current=None, distance=None) -> dict:
         ax.plot([current["fpr"]], [current["recall"]], "s", color="tab:green",
                 label=f"current: {current['threshold']:.4g}")
     ax.set(xlabel="false positive rate", ylabel="true positive rate", xlim=(0, 1), ylim=(0, 1.02),
-           title=f"Goal-match ROC ({dname})")
+           title=f"Goal-match ROC\n({dname})")
     ax.legend(loc="lower right", fontsize=8)
     figs["roc"] = fig
 
@@ -146,7 +148,7 @@ def labelled_figures(sweep, choice, *, current=None, distance=None) -> dict:
         ax.plot([current["recall"]], [current["precision"]], "s", color="tab:green",
                 label=f"current: {current['threshold']:.4g}")
     ax.set(xlabel="recall", ylabel="precision", xlim=(0, 1), ylim=(0, 1.02),
-           title=f"Precision-recall ({dname})")
+           title=f"Precision-recall\n({dname})")
     ax.legend(loc="lower left", fontsize=8)
     figs["pr"] = fig
 
@@ -163,7 +165,7 @@ def labelled_figures(sweep, choice, *, current=None, distance=None) -> dict:
                    label=f"current: {current['threshold']:.4g}")
         marked.append(current["threshold"])
     ax.set(xlabel=f"threshold ({dname})", ylabel="score", ylim=(0, 1.02), xlim=threshold_window(marked, sweep.thresholds),
-           title=f"Scores by threshold ({dname})")
+           title=f"Scores by threshold\n({dname})")
     ax.legend(loc="best", fontsize=8)
     figs["f1"] = fig
     for f in figs.values():
@@ -224,7 +226,7 @@ def diagnostic_figures(diagnostics, *, rewarded=None, strategy_names=None, dista
         ax.hist(step, bins=50, color="tab:blue", alpha=0.8)
     ax.axvline(thr, color="tab:red", ls="--", label=line)
     ax.set(xlabel=f"one-step displacement ({dname})", ylabel="transitions",
-           title=f"Goal change per step ({dname})")
+           title=f"Goal change per step\n({dname})")
     ax.legend(fontsize=8)
     figs["step"] = fig
 
@@ -234,7 +236,7 @@ def diagnostic_figures(diagnostics, *, rewarded=None, strategy_names=None, dista
         ax.plot(hp.horizons, hp.values[:, j], marker="o", ms=3, lw=1.0, label=f"q {q:g}")
     ax.axhline(thr, color="tab:red", ls="--", label=line)
     ax.set_xscale("log", base=2)
-    ax.set(xlabel="horizon h (steps)", ylabel=f"{dname} after h steps", title=f"Goal change by horizon ({dname})")
+    ax.set(xlabel="horizon h (steps)", ylabel=f"{dname} after h steps", title=f"Goal change by horizon\n({dname})")
     ax.legend(fontsize=8)
     figs["horizon"] = fig
 
@@ -244,7 +246,7 @@ def diagnostic_figures(diagnostics, *, rewarded=None, strategy_names=None, dista
         ax.hist(oth, bins=50, color="tab:blue", alpha=0.8)
     ax.axvline(thr, color="tab:red", ls="--", label=line)
     ax.set(xlabel=f"{dname} to nearest state of another episode", ylabel="sampled states",
-           title=f"Separation between episodes ({dname})")
+           title=f"Separation between episodes\n({dname})")
     ax.legend(fontsize=8)
     figs["other"] = fig
 
@@ -255,7 +257,7 @@ def diagnostic_figures(diagnostics, *, rewarded=None, strategy_names=None, dista
             ax.plot(rewarded.thresholds, rewarded.fraction[i], lw=1.2, label=names.get(code, str(code)))
         ax.axvline(thr, color="tab:red", ls="--", label=line)
         ax.set(xlabel=f"threshold ({dname})", ylabel="fraction rewarded", ylim=(0, 1.02),
-               title=f"Rewarded goal rows by strategy ({dname})")
+               title=f"Rewarded goal rows by strategy\n({dname})")
         ax.legend(fontsize=8)
         figs["rewarded"] = fig
     for f in figs.values():

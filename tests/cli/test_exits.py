@@ -46,6 +46,7 @@ def bad_inputs(d, tmp):
         "verify": (["verify", d / "gantry-layout.toml"], 2),
         "embed": (["embed", d / "gantry-logs.h5", "--method", "raw", "--dims", "2", "-o", tmp / "e.npz", "--replace"], 2),
         "tune": (["tune", tmp / "bad.toml"], 2),
+        "info": (["info", d / "gantry-layout.toml"], 2),
     }
 
 
@@ -119,6 +120,7 @@ def quiet_runs(d, tmp):
         "embed": ["embed", d / "gantry-logs.h5", "--layout", d / "gantry-layout.toml", "--method", "pca",
                   "-o", tmp / "e.npz", "--replace"],
         "tune": ["tune", d / "gantry-recipe.toml", "--resamples", "0"],
+        "info": ["info", d / "set.h5"],
     }
 
 
