@@ -78,8 +78,10 @@ def coverage_goals(path) -> dict:
         out = {}
         for s in SPLITS:
             rows = coverage_rows(gs.rows(s))
-            goals = gs.file[s]["goal"][rows] if len(rows) else np.zeros((0, 0))
-            out[s] = np.asarray(goals, dtype=np.float64).reshape(len(rows), -1)
+            column = gs.file[s]["goal"]
+            width = int(np.prod(column.shape[1:]))
+            goals = column[rows] if len(rows) else np.zeros((0, width))
+            out[s] = np.asarray(goals, dtype=np.float64).reshape(len(rows), width)
     return out
 
 

@@ -283,3 +283,14 @@ def test_build_summary_shows_reward_widths_size_and_time(built, tmp_path):
     assert "  reward: euclidean distance <= 0.04, sparse reward" in r.output
     assert "  widths: observation 9, action 3, goal 6" in r.output
     assert "card: " in r.output
+
+
+def test_a_set_with_an_empty_split_gets_a_card(tmp_path):
+    make_demo(tmp_path, episodes=4, seed=1)
+    text = (tmp_path / "gantry-recipe.toml").read_text().replace("validation = 0.1", "validation = 0.0")
+    (tmp_path / "gantry-recipe.toml").write_text(text)
+    result = goalkit.build(tmp_path / "gantry-recipe.toml")
+    md = result.card[0]
+    assert "0 validation goals" in md.read_text(encoding="utf-8")
+    for t in _parse(md).tables:
+        assert all(len(row) == len(t[0]) for row in t)
