@@ -92,8 +92,23 @@ def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, replace, n
     if workers and scheduler is not None:
         raise GoalkitError("give --workers or --scheduler, not both", key="--scheduler")
     parsed = load_recipe(recipe).with_overrides(seed=seed, out=out)
-    on_interrupt(lambda: interrupted_note(parsed.output.path, sharded=bool(workers or scheduler),
-                                          cluster=scheduler is not None))
+    import os
+    import time
+
+    started = time.time()
+
+    def note():
+        out_path = parsed.output.path
+        try:
+            written = os.stat(out_path).st_mtime >= started - 1.0
+        except OSError:
+            written = False
+        if written and not no_card:  # interrupted while the card was being written
+            return (f"the set was written at {out_path}; its dataset card was not (write it with "
+                    f"goalkit.write_card, or rerun with --replace)")
+        return interrupted_note(out_path, sharded=bool(workers or scheduler), cluster=scheduler is not None)
+
+    on_interrupt(note)
     with ChunkProgress("build", quiet=quiet) as bar:
         result = run_build(parsed, max_rows_per_chunk=chunk_rows, progress=bar, workers=workers,
                            scheduler=scheduler, fresh=restart, replace=replace, card=not no_card)
