@@ -294,3 +294,30 @@ def test_a_set_with_an_empty_split_gets_a_card(tmp_path):
     assert "0 validation goals" in md.read_text(encoding="utf-8")
     for t in _parse(md).tables:
         assert all(len(row) == len(t[0]) for row in t)
+
+
+def test_per_file_counts_of_a_folder_of_episode_files(tmp_path):
+    # Invented gantry episodes, one NPZ file each, of different lengths.
+    rng = np.random.default_rng(0)
+    per = tmp_path / "episodes"
+    per.mkdir()
+    lengths = [5, 7, 9, 11]
+    for i, n in enumerate(lengths):
+        np.savez(per / f"ep{i}.npz", obs=rng.normal(size=(n + 1, 4)).astype(np.float32),
+                 act=rng.normal(size=(n, 2)).astype(np.float32))
+    (tmp_path / "layout.toml").write_text('version = 1\nshape = "per-file"\nfile_pattern = "*.npz"\n'
+                                          '[keys]\nobservation = "obs"\naction = "act"\n')
+    (tmp_path / "recipe.toml").write_text(
+        'version = 1\nseed = 0\n[logs]\npath = "episodes"\nlayout = "layout.toml"\n[goal]\nindices = [0, 1]\n'
+        '[relabel]\ngoals_per_transition = 2\n[relabel.weights]\nfuture = 1\nfinal = 1\n'
+        '[reward]\nthreshold = 0.5\n[split]\nvalidation = 0.5\n[output]\npath = "set.h5"\n')
+    result = goalkit.build(tmp_path / "recipe.toml")
+    counts = goalkit.info(result.path)["sources"]["counts"]
+    assert [Path(c["path"]).name for c in counts] == [f"ep{i}.npz" for i in range(4)]
+    with goalkit.open_set(result.path) as gs:
+        for i, c in enumerate(counts):
+            for split in ("train", "validation"):
+                ep = gs.read(split, ["source_episode"], resolve=False)["source_episode"]
+                mine = int((ep == i).any())
+                assert c["episodes"][split] == mine
+                assert c["transitions"][split] == mine * lengths[i]
