@@ -25,7 +25,7 @@ def format_summary(path, summary: dict, reward: dict | None = None, file_bytes: 
     card : sequence of Path
         The card files written.
     """
-    from goalkit.write.info import reward_text, widths_text
+    from goalkit.write.info import reward_text, widths_text  # here, as the command's other imports
 
     size = f", {file_bytes:,} bytes" if file_bytes is not None else ""
     took = f" in {seconds:.1f} s" if seconds is not None else ""

@@ -22,6 +22,7 @@ import numpy as np
 from goalkit.outputs import open_no_follow, output_file, refuse_existing
 from goalkit.rows import SPLITS
 from goalkit.write.info import reward_text, set_facts, widths_text
+from goalkit.write.reader import GoalSet
 
 #: The card's first line: what makes an existing Markdown file "ours" (replaceable with --replace).
 MARKER = "<!-- goalkit dataset card -->"
@@ -72,8 +73,6 @@ def coverage_rows(n: int, k: int = COVERAGE_ROWS) -> np.ndarray:
 
 def coverage_goals(path) -> dict:
     """The goals of :func:`coverage_rows` of each split, as float64 ``{split: (m, G) array}``."""
-    from goalkit.write.reader import GoalSet
-
     with GoalSet(path) as gs:
         out = {}
         for s in SPLITS:

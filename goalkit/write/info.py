@@ -14,6 +14,7 @@ import shlex
 from pathlib import Path
 
 from goalkit.rows import SPLITS
+from goalkit.write.reader import GoalSet
 
 #: The caution that goes with every set (the README's "Safety" section, shortened).
 SAFETY = ("A set built with goalkit trains policies that may drive real machines. goalkit checks that "
@@ -60,8 +61,6 @@ def set_facts(path) -> dict:
     DatasetError
         When the file is missing or not a readable goalkit set.
     """
-    from goalkit.write.reader import GoalSet
-
     path = Path(path)
     with GoalSet(path) as gs:
         summary, prov = gs.summary, gs.provenance

@@ -22,7 +22,7 @@ def info(dataset, as_json, quiet):
     A set built before goalkit stored a fact says which ones it cannot show ("not stored").
     Writes nothing.
     """
-    from goalkit.write.info import format_info, set_facts
+    from goalkit.write.info import format_info, set_facts  # here: `goalkit --help` stays free of h5py
 
     facts = set_facts(dataset)
     if as_json:
