@@ -6,6 +6,7 @@ import click
 
 from goalkit.cli_support import ChunkProgress, command_line, echo_json, on_interrupt, quiet_option, user_errors, warn
 from goalkit.errors import GoalkitError
+from goalkit.write.info import reward_text, widths_text
 
 
 def format_summary(path, summary: dict, reward: dict | None = None, file_bytes: int | None = None,
@@ -25,7 +26,6 @@ def format_summary(path, summary: dict, reward: dict | None = None, file_bytes: 
     card : sequence of Path
         The card files written.
     """
-    from goalkit.write.info import reward_text, widths_text  # here, as the command's other imports
 
     size = f", {file_bytes:,} bytes" if file_bytes is not None else ""
     took = f" in {seconds:.1f} s" if seconds is not None else ""

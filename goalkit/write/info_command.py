@@ -5,6 +5,7 @@ from __future__ import annotations
 import click
 
 from goalkit.cli_support import echo_json, quiet_option, user_errors
+from goalkit.write.info import format_info, set_facts
 
 
 @click.command(context_settings={"show_default": True})
@@ -22,7 +23,6 @@ def info(dataset, as_json, quiet):
     A set built before goalkit stored a fact says which ones it cannot show ("not stored").
     Writes nothing.
     """
-    from goalkit.write.info import format_info, set_facts  # here: `goalkit --help` stays free of h5py
 
     facts = set_facts(dataset)
     if as_json:
