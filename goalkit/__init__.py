@@ -39,6 +39,7 @@ _LAZY = {
     "HeadSampler": "goalkit.write.headsampler", "GoalHead": "goalkit.heads",
     "NumpyBatches": "goalkit.write.adapters", "TorchBatches": "goalkit.write.adapters",
     "TorchRows": "goalkit.write.adapters",
+    "info": "goalkit.write.info", "write_card": "goalkit.write.card",
     "make_demo": "goalkit.demo.files",
     # logs
     "open_logs": "goalkit.logs.opener", "scan": "goalkit.api", "load_layout": "goalkit.logs.layout",

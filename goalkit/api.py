@@ -98,7 +98,7 @@ def _recipe(recipe) -> Recipe:
 
 
 def build(recipe, *, runner=None, out=None, seed: int | None = None, max_rows_per_chunk: int | None = None,
-          progress=None, fresh: bool = False, replace: bool = False) -> BuildResult:
+          progress=None, fresh: bool = False, replace: bool = False, card: bool = True) -> BuildResult:
     """Build the goal-conditioned set a recipe describes.
 
     Parameters
@@ -120,12 +120,16 @@ def build(recipe, *, runner=None, out=None, seed: int | None = None, max_rows_pe
     fresh : bool
         Runners with shards: discard the shards of an interrupted run instead of resuming.
     replace : bool
-        Replace an existing goalkit set at the output path (never any other file).
+        Replace an existing goalkit set at the output path (never any other file), and an
+        existing card beside it.
+    card : bool
+        Write the dataset card ``NAME.card.md`` and its plot ``NAME.card-goals.png`` beside the
+        set (docs/card.md).
 
     Returns
     -------
     BuildResult
-        ``path`` of the set and its ``summary``.
+        ``path`` of the set, its ``summary``, the ``card`` files, ``seconds`` and ``file_bytes``.
 
     Raises
     ------
@@ -147,7 +151,7 @@ def build(recipe, *, runner=None, out=None, seed: int | None = None, max_rows_pe
     if out is not None or seed is not None:
         parsed = parsed.with_overrides(seed=seed, out=out)
     return _engine_build(parsed, max_rows_per_chunk=max_rows_per_chunk, progress=progress, fresh=fresh,
-                         replace=replace, **runner.engine_arguments())
+                         replace=replace, card=card, **runner.engine_arguments())
 
 
 def verify(path, *, max_failures: int = 20, progress=None, audit: bool = True) -> VerifyReport:

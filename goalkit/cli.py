@@ -20,6 +20,7 @@ COMMANDS = {
     "scan": ("goalkit.logs.command:scan", "Summarise task logs and check them; propose a layout."),
     "build": ("goalkit.pipeline.command:build", "Build a goal-conditioned dataset from a recipe."),
     "verify": ("goalkit.write.command:verify", "Re-derive a built dataset from its logs and check it."),
+    "info": ("goalkit.write.info_command:info", "Print a built dataset's card facts (from the file alone)."),
     "embed": ("goalkit.goals.command:embed", "Fit a goal embedding on task logs and save it."),
     "tune": ("goalkit.thresholds.command:tune", "Choose the goal-match threshold from labels or diagnostics."),
     "suite": ("goalkit.suites.command:suite", "Draw a held-out goal suite from a built set's validation split."),

@@ -12,7 +12,7 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover - exercised on 3.10 only
     import tomli as tomllib
 
-from goalkit.errors import GoalkitError
+from goalkit.errors import GoalkitError, shown
 
 
 def load_toml(path, error=GoalkitError) -> dict:
@@ -114,7 +114,7 @@ def check_keys(table: Mapping[str, Any], valid: Iterable[str], *, file, section:
 def expect_type(value, types, *, file, key, what: str, error=GoalkitError):
     """Return ``value`` if it is an instance of ``types``, else raise ``error`` saying ``what``."""
     if isinstance(value, bool) and bool not in (types if isinstance(types, tuple) else (types,)):
-        raise error(f"expected {what}, got {value!r}", file=file, key=key)
+        raise error(f"expected {what}, got {shown(value)}", file=file, key=key)
     if not isinstance(value, types):
-        raise error(f"expected {what}, got {value!r}", file=file, key=key)
+        raise error(f"expected {what}, got {shown(value)}", file=file, key=key)
     return value

@@ -129,3 +129,27 @@ class LabelError(GoalkitError):
 
 class TuningError(GoalkitError):
     """The labelled data cannot answer the question asked (e.g. no reached pairs at all)."""
+
+
+def shown(value) -> str:
+    """``value`` as a message shows it: numbers plain (``1.0``, never ``np.float32(1.0)``).
+
+    numpy scalars print as their shortest text for their dtype (``str``), arrays, lists and
+    tuples as ``[a, b, ...]`` of such numbers; text keeps its quotes (``repr``), as do other
+    values.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> shown(np.float32(0.04)), shown([np.int64(3), 1.5]), shown("x")
+    ('0.04', '[3, 1.5]', "'x'")
+    """
+    if hasattr(value, "dtype") and getattr(value, "shape", None) == ():  # a numpy scalar or 0-d array
+        return str(value[()] if hasattr(value, "__getitem__") else value)
+    if hasattr(value, "tolist") and hasattr(value, "shape"):
+        value = list(value)
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(shown(v) for v in value) + "]"
+    if isinstance(value, dict):
+        return "{" + ", ".join(f"{shown(k)}: {shown(v)}" for k, v in value.items()) + "}"
+    return repr(value)

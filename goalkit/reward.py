@@ -34,7 +34,7 @@ from typing import Any, Mapping
 import numpy as np
 
 from goalkit.config import check_keys, closest
-from goalkit.errors import ParameterError
+from goalkit.errors import ParameterError, shown
 
 #: Distance names accepted in ``[reward] distance``.
 DISTANCES = ("euclidean", "l1", "chebyshev", "cosine", "box")
@@ -152,14 +152,14 @@ class RewardRule:
         if self.form not in FORMS:
             raise _choice_error("reward form", self.form, FORMS, parameter="form")
         if not isinstance(self.inclusive, (bool, np.bool_)):
-            raise _bad(f"expected true or false, got {self.inclusive!r}", "inclusive")
+            raise _bad(f"expected true or false, got {shown(self.inclusive)}", "inclusive")
         if not isinstance(self.end_on_reach, (bool, np.bool_)):
-            raise _bad(f"expected true or false, got {self.end_on_reach!r}", "end_on_reach")
+            raise _bad(f"expected true or false, got {shown(self.end_on_reach)}", "end_on_reach")
         thr = self.threshold
         if self.distance_name == "box":
             if not isinstance(thr, tuple):
                 raise _bad(f"distance 'box' expects a list of tolerances, one per goal dimension, got "
-                           f"{thr!r} (a single tolerance for every dimension is distance = 'chebyshev')",
+                           f"{shown(thr)} (a single tolerance for every dimension is distance = 'chebyshev')",
                            "threshold")
             if len(thr) == 0 or not all(_is_number(x) and math.isfinite(x) and x > 0 for x in thr):
                 raise _bad(f"expected finite tolerances > 0, one per goal dimension, got "
@@ -172,11 +172,11 @@ class RewardRule:
                 raise _bad(f"a list of tolerances needs distance = 'box'; distance "
                            f"'{self.distance_name}' expects one number, got {list(thr)}", "threshold")
             if not _is_number(thr) or not math.isfinite(thr) or thr < 0:
-                raise _bad(f"expected a finite number >= 0, got {thr!r}", "threshold")
+                raise _bad(f"expected a finite number >= 0, got {shown(thr)}", "threshold")
         if self.weights is not None:
             w = self.weights
             if not isinstance(w, tuple) or len(w) == 0:
-                raise _bad(f"expected a non-empty list of weights, got {w!r}", "weights")
+                raise _bad(f"expected a non-empty list of weights, got {shown(w)}", "weights")
             if not all(_is_number(x) and math.isfinite(x) and x >= 0 for x in w):
                 raise _bad(f"expected finite weights >= 0, got {list(w)}", "weights")
             if not any(x > 0 for x in w):
@@ -362,10 +362,10 @@ class RewardRule:
         thr = table["threshold"]
         if isinstance(thr, list):
             if not all(_is_number(x) for x in thr):
-                raise _bad(f"expected a list of numbers, got {thr!r}", "threshold")
+                raise _bad(f"expected a list of numbers, got {shown(thr)}", "threshold")
             thr = tuple(float(x) for x in thr)
         elif not _is_number(thr):
-            raise _bad(f"expected a number, got {thr!r}", "threshold")
+            raise _bad(f"expected a number, got {shown(thr)}", "threshold")
         weights = table.get("weights")
         if weights is not None:
             if not isinstance(weights, list) or not all(_is_number(x) for x in weights):

@@ -8,7 +8,7 @@ from typing import Sequence
 
 import numpy as np
 
-from goalkit.errors import EmbeddingError
+from goalkit.errors import EmbeddingError, shown
 from goalkit.goals.base import Embedding
 from goalkit.goals.embedfile import _flatten, load_embedding_file, save_embedding
 from goalkit.logs.episodes import EpisodeSet
@@ -80,7 +80,7 @@ class EmbeddingGoalMap:
                                      file=file, key="indices")
             idx = np.asarray(list(indices))
             if idx.ndim != 1 or (idx.size and not np.issubdtype(idx.dtype, np.integer)) or np.any(idx < 0):
-                raise EmbeddingError(f"expected non-negative integer observation indices, got {list(indices)!r}",
+                raise EmbeddingError(f"expected non-negative integer observation indices, got {shown(list(indices))}",
                                      file=file, key="indices")
             if idx.shape[0] != embedding.n_features_in_:
                 raise EmbeddingError(f"expected {embedding.n_features_in_} observation indices (the embedding's "

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from goalkit.errors import EmbeddingError
+from goalkit.errors import EmbeddingError, shown
 from goalkit.goals.base import Embedding, register
 
 #: frames per chunk of the preprocessing (bounds the float64 working memory)
@@ -14,7 +14,7 @@ FRAME_CHUNK = 4096
 def _check_block(block) -> tuple[int, int]:
     b = (block, block) if isinstance(block, (int, np.integer)) and not isinstance(block, bool) else tuple(block)
     if len(b) != 2 or not all(isinstance(v, (int, np.integer)) and not isinstance(v, bool) and v >= 1 for v in b):
-        raise EmbeddingError(f"expected block a positive integer or a pair of them (rows, columns), got {block!r}")
+        raise EmbeddingError(f"expected block a positive integer or a pair of them (rows, columns), got {shown(block)}")
     return int(b[0]), int(b[1])
 
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 
-from goalkit.errors import EmbeddingError
+from goalkit.errors import EmbeddingError, shown
 from goalkit.goals.base import Embedding, register
 from goalkit.goals.checks import check_features, check_offsets
 from goalkit.goals.moments import mean_cov, mean_var
@@ -158,7 +158,7 @@ class PCA(Embedding):
     def _k(self, d: int) -> int:
         k = d if self.n_components is None else self.n_components
         if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or not 1 <= k <= d:
-            raise EmbeddingError(f"expected n_components an integer in 1..{d} (the input width), got {k!r}")
+            raise EmbeddingError(f"expected n_components an integer in 1..{d} (the input width), got {shown(k)}")
         return int(k)
 
     def fit(self, X, offsets=None) -> "PCA":

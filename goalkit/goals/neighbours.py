@@ -34,7 +34,7 @@ from dataclasses import asdict, dataclass
 import numpy as np
 
 from goalkit import rng
-from goalkit.errors import EmbeddingError
+from goalkit.errors import EmbeddingError, shown
 
 METHODS = ("auto", "exact", "ivf", "hnsw")
 
@@ -108,13 +108,13 @@ class IndexSettings:
         for name in ("k", "recall_queries", "train_per_list", "hnsw_m", "hnsw_ef_construction", "threads"):
             v = getattr(self, name)
             if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < 1:
-                raise EmbeddingError(f"expected {name} a positive integer, got {v!r}", key=name)
+                raise EmbeddingError(f"expected {name} a positive integer, got {shown(v)}", key=name)
         if not 0.0 < float(self.target_recall) <= 1.0:
-            raise EmbeddingError(f"expected target_recall in (0, 1], got {self.target_recall!r}", key="target_recall")
+            raise EmbeddingError(f"expected target_recall in (0, 1], got {shown(self.target_recall)}", key="target_recall")
         if not 0.0 <= float(self.confidence_z) <= 10.0:
-            raise EmbeddingError(f"expected confidence_z in [0, 10], got {self.confidence_z!r}", key="confidence_z")
+            raise EmbeddingError(f"expected confidence_z in [0, 10], got {shown(self.confidence_z)}", key="confidence_z")
         if self.nlist is not None and (not isinstance(self.nlist, (int, np.integer)) or self.nlist < 1):
-            raise EmbeddingError(f"expected nlist a positive integer or None, got {self.nlist!r}", key="nlist")
+            raise EmbeddingError(f"expected nlist a positive integer or None, got {shown(self.nlist)}", key="nlist")
 
 
 @dataclass(frozen=True)
@@ -312,7 +312,7 @@ class NeighbourIndex:
         """
         q = _as_float32(queries, self.dim, "queries")
         if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or k < 1:
-            raise EmbeddingError(f"expected k a positive integer, got {k!r}")
+            raise EmbeddingError(f"expected k a positive integer, got {shown(k)}")
         with faiss_threads(self._threads):
             _, ids = self._index.search(q, int(k))
         ids = ids.astype(np.int64)

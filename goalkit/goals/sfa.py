@@ -14,7 +14,7 @@ from __future__ import annotations
 import numpy as np
 
 
-from goalkit.errors import EmbeddingError
+from goalkit.errors import EmbeddingError, shown
 from goalkit.goals.base import Embedding, register
 from goalkit.goals.checks import check_features, check_offsets, successive_pairs
 from goalkit.goals.linear import constant_mask
@@ -103,10 +103,10 @@ class SFA(Embedding):
 
     def _check_params(self) -> None:
         if isinstance(self.degree, bool) or self.degree not in (1, 2):
-            raise EmbeddingError(f"expected SFA degree 1 (linear) or 2 (quadratic expansion), got {self.degree!r}")
+            raise EmbeddingError(f"expected SFA degree 1 (linear) or 2 (quadratic expansion), got {shown(self.degree)}")
         k = self.n_components
         if k is not None and (isinstance(k, bool) or not isinstance(k, (int, np.integer)) or k < 1):
-            raise EmbeddingError(f"expected n_components a positive integer or None, got {k!r}")
+            raise EmbeddingError(f"expected n_components a positive integer or None, got {shown(k)}")
 
     def _expand(self, Xc: np.ndarray) -> np.ndarray:
         Z = (Xc - self.input_mean_) / self.input_scale_

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from goalkit.errors import LogError
+from goalkit.errors import LogError, shown
 from goalkit.logs import checks
 from goalkit.logs.source import BaseSource
 
@@ -57,7 +57,7 @@ def _need(acc, key, episode):
 
 def describe_signature(sig) -> str:
     conv, widths, a, g, fr = sig
-    return (f"observations {conv} with widths {list(widths)}, action width {a}"
+    return (f"observations {conv} with widths {shown(list(widths))}, action width {a}"
             + (f", goal width {g}" if g is not None else "")
             + (f", frames {fr}" if fr is not None else ""))
 

@@ -29,6 +29,7 @@ from __future__ import annotations
 
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from dataclasses import replace as dataclass_replace
 from pathlib import Path
 
 import numpy as np
@@ -45,6 +46,8 @@ from goalkit.pipeline.shardfiles import plan_shards
 from goalkit.pipeline.summary import SummaryBuilder
 from goalkit.pipeline.workers import LocalRunner
 from goalkit.pipeline.searchsetup import add_to_summary, search_provenance
+from goalkit.rows import SPLITS
+from goalkit.write.card import card_paths, check_card_outputs, write_card
 from goalkit.write.format import is_goal_set
 from goalkit.write.provenance import describe_files
 from goalkit.write.writer import OutputWriteError, SetWriter
@@ -65,11 +68,20 @@ class BuildResult:
         Rows per split, per-strategy counts and reached fractions, distance quantiles, warnings.
     shards : dict or None
         Sharded builds only: ``{"total", "reused", "computed", "runner"}``.
+    card : tuple of Path
+        The dataset card and its coverage PNG (empty with ``card=False``).
+    seconds : float or None
+        Wall-clock time of the build (not stored in the set, which must not depend on it).
+    file_bytes : int or None
+        Size of the set file.
     """
 
     path: Path
     summary: dict
     shards: dict | None = None
+    card: tuple = ()
+    seconds: float | None = None
+    file_bytes: int | None = None
 
 
 @dataclass(frozen=True)
@@ -176,7 +188,8 @@ def provenance(plan, source, log_files=None, inputs: BuildInputs | None = None) 
 
 
 def build(recipe, *, source=None, max_rows_per_chunk: int | None = None, progress=None, workers: int = 0,
-          scheduler: str | None = None, client=None, fresh: bool = False, replace: bool = False) -> BuildResult:
+          scheduler: str | None = None, client=None, fresh: bool = False, replace: bool = False,
+          card: bool = True) -> BuildResult:
     """Build the dataset a recipe describes, in this process or scaled out over shards.
 
     Parameters
@@ -202,6 +215,10 @@ def build(recipe, *, source=None, max_rows_per_chunk: int | None = None, progres
     replace : bool
         Replace an existing goalkit set at the output path (``--replace``). Without it an existing
         output is refused before any work; a file that is not a goalkit set is never replaced.
+        The same holds for the dataset card.
+    card : bool
+        Also write the dataset card ``NAME.card.md`` and its plot ``NAME.card-goals.png`` beside
+        the set (:mod:`goalkit.write.card`).
 
     Returns
     -------
@@ -217,16 +234,22 @@ def build(recipe, *, source=None, max_rows_per_chunk: int | None = None, progres
         Sharded builds: ShardError naming the shard and episodes when a task fails;
         DatasetError when the build folder or the output cannot be written.
     """
+    import time
+
+    started = time.perf_counter()
     sharded = bool(workers) or scheduler is not None or client is not None
-    check_outputs(recipe, sharded=sharded, replace=replace, source=source)
+    check_outputs(recipe, sharded=sharded, replace=replace, source=source, card=card)
     if scheduler is not None or client is not None:
         producer = ShardProducer(DaskRunner(address=scheduler, client=client), fresh=fresh)
     elif workers:
         producer = ShardProducer(LocalRunner(workers), fresh=fresh)
     else:
         producer = InProcessProducer()
-    return run_build(recipe, producer, source=source, rows_per_chunk=max_rows_per_chunk,
-                     progress=progress, replace=replace)
+    result = run_build(recipe, producer, source=source, rows_per_chunk=max_rows_per_chunk,
+                       progress=progress, replace=replace)
+    written = tuple(write_card(result.path, replace=replace)) if card else ()
+    return dataclass_replace(result, card=written, seconds=time.perf_counter() - started,
+                             file_bytes=result.path.stat().st_size)
 
 
 def run_build(recipe, producer, *, source=None, rows_per_chunk: int | None = None, progress=None,
@@ -249,7 +272,8 @@ def run_build(recipe, producer, *, source=None, rows_per_chunk: int | None = Non
     plan, source = make_plan(recipe, source)
     chunks = plan_shards(plan, chunk_transitions(plan, rows_per_chunk or producer.rows_per_chunk))
     gpt = recipe.mixture.goals_per_transition
-    summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed)
+    summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed,
+                             distance_unit=recipe.reward.reach_threshold)
 
     def count(rows):
         for split, cols in rows.columns.items():
@@ -284,12 +308,13 @@ def run_build(recipe, producer, *, source=None, rows_per_chunk: int | None = Non
     return BuildResult(path=path, summary=result, shards=producer.info())
 
 
-def check_outputs(recipe, *, sharded: bool = False, replace: bool = False, source=None) -> None:
+def check_outputs(recipe, *, sharded: bool = False, replace: bool = False, source=None, card: bool = False) -> None:
     """Refuse, before any work, a build that would write over one of its inputs or an existing output.
 
     The inputs are the recipe's (:meth:`Recipe.inputs`: recipe file, logs with every file of a
     log folder, layout, embedding, goal library) and an opened ``source``'s files; the outputs
-    are the dataset and, for a sharded build, its build folder ``.NAME.shards``.
+    are the dataset, with ``card`` its card and plot, and, for a sharded build, its build folder
+    ``.NAME.shards``.
 
     Raises
     ------
@@ -299,8 +324,12 @@ def check_outputs(recipe, *, sharded: bool = False, replace: bool = False, sourc
     out = recipe.output.path
     inputs = list(recipe.inputs()) + [("log file", f) for f in getattr(source, "files", None) or []]
     outputs = [("output", out)] + ([("build folder", folder_of(out))] if sharded else [])
+    if card:
+        outputs += list(zip(("dataset card", "card plot"), card_paths(out)))
     check_no_overlap(inputs, outputs)
     refuse_existing(out, replace=replace, ours=is_goal_set, what="dataset")
+    if card:
+        check_card_outputs(out, replace=replace)
 
 
 def close_dataset(writer, plan, source, summary, log_files=None, inputs: BuildInputs | None = None):
@@ -326,9 +355,45 @@ def close_dataset(writer, plan, source, summary, log_files=None, inputs: BuildIn
 def final_summary(summary, plan, source) -> dict:
     """The summary stored in a set, from a filled :class:`SummaryBuilder` (shared with verify)."""
     result = add_to_summary(summary.result(), plan.context)
+    result["composition"].update(widths=dict(plan.shapes or {}), sources=source_counts(plan, source))
     skipped = list(getattr(source, "skipped", []))
     result["skipped_episodes"] = len(skipped)
     if skipped:
         result["warnings"].append(f"{len(skipped)} episode(s) of the logs failed validation and were skipped "
                                   f"(first: episode {skipped[0][0]}); the provenance lists them")
     return result
+
+
+def source_counts(plan, source) -> list:
+    """Kept episodes and transitions per log file, per split (for the dataset card).
+
+    Readers that know which file holds each episode say so; a single-file log holds them all.
+    Returns ``[{"path", "episodes": {split: n}, "transitions": {split: n}}]`` in the order of the
+    source's files (files that hold no kept episode are listed with zeros), or one entry with
+    path "" when the reader cannot tell.
+    """
+    files = [str(Path(f).resolve()) for f in getattr(source, "files", None) or []]
+    file_of = getattr(source, "_file_of", None)
+    if len(files) == 1:
+        where = np.zeros(len(plan.episode_ids), np.int64)
+    elif file_of is not None and files:
+        index = {f: i for i, f in enumerate(files)}
+        try:
+            where = np.array([index.get(str(Path(file_of(int(e))).resolve()), -1) for e in plan.episode_ids],
+                             dtype=np.int64)
+        except Exception:  # a reader that cannot tell  # noqa: BLE001
+            where = None
+        if where is not None and (where < 0).any():
+            where = None
+    else:
+        where = None
+    if where is None:
+        files, where = [""], np.zeros(len(plan.episode_ids), np.int64)
+    out = []
+    for i, f in enumerate(files):
+        mine = where == i
+        out.append({"path": f,
+                    "episodes": {s: int(np.sum(mine & (plan.splits == c))) for c, s in enumerate(SPLITS)},
+                    "transitions": {s: int(plan.lengths[mine & (plan.splits == c)].sum())
+                                    for c, s in enumerate(SPLITS)}})
+    return out

@@ -10,12 +10,33 @@ from goalkit.pipeline.build import build as run_build
 from goalkit.pipeline.buildfolder import folder_of
 from goalkit.pipeline.recipe import load_recipe
 from goalkit.pipeline.searchsetup import summary_lines
+from goalkit.write.info import reward_text, widths_text
 
 
-def format_summary(path, summary: dict) -> str:
-    """The human-readable build summary."""
-    lines = [f"wrote {path}",
+def format_summary(path, summary: dict, reward: dict | None = None, file_bytes: int | None = None,
+                   seconds: float | None = None, card=()) -> str:
+    """The human-readable build summary.
+
+    Parameters
+    ----------
+    path : Path
+        The set written.
+    summary : dict
+        The stored summary (rows, strategies, quantiles, composition, warnings).
+    reward : dict, optional
+        The reward rule (``RewardRule.describe()``): distance, threshold, form.
+    file_bytes, seconds : optional
+        The set's size and the build's wall-clock time.
+    card : sequence of Path
+        The card files written.
+    """
+
+    size = f", {file_bytes:,} bytes" if file_bytes is not None else ""
+    took = f" in {seconds:.1f} s" if seconds is not None else ""
+    lines = [f"wrote {path}{size}{took}",
              f"  rows: {summary['rows']['train']:,} train, {summary['rows']['validation']:,} validation",
+             f"  reward: {reward_text(reward)}",
+             f"  widths: {widths_text((summary.get('composition') or {}).get('widths'))}",
              f"  reached (all rows): {summary['reached_fraction']:.1%}",
              "  strategy          rows        reached"]
     for name, s in summary["strategies"].items():
@@ -27,6 +48,8 @@ def format_summary(path, summary: dict) -> str:
     lines += summary_lines(summary)
     for w in summary.get("warnings", []):
         lines.append(f"  warning: {w}")
+    if card:
+        lines.append(f"  card: {', '.join(str(p) for p in card)} (goalkit info {path} prints its facts)")
     return "\n".join(lines)
 
 
@@ -49,10 +72,12 @@ def format_summary(path, summary: dict) -> str:
 @click.option("--replace", is_flag=True,
               help="Replace an existing dataset at the output path. Only a goalkit set is ever replaced; "
                    "without this option an existing output is refused.")
+@click.option("--no-card", "no_card", is_flag=True,
+              help="Do not write the dataset card (NAME.card.md and NAME.card-goals.png beside the set).")
 @click.option("--json", "as_json", is_flag=True, help="Print the summary as one JSON object.")
 @quiet_option
 @user_errors
-def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, replace, as_json, quiet):
+def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, replace, no_card, as_json, quiet):
     """Build the goal-conditioned dataset that RECIPE describes.
 
     Reads the logs a chunk of episodes at a time, relabels every transition with the recipe's
@@ -60,23 +85,44 @@ def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, replace, a
     HDF5 file (under a temporary name, renamed when complete). The file's bytes are the same
     whatever --chunk-rows, --workers or --scheduler. The output may not be, or lie in, any of the
     recipe's inputs, and an existing output is replaced only with --replace.
+
+    Beside the set goes its dataset card, NAME.card.md with the plot NAME.card-goals.png
+    (docs/card.md; `goalkit info SET` prints the same facts), unless --no-card.
     """
     if workers and scheduler is not None:
         raise GoalkitError("give --workers or --scheduler, not both", key="--scheduler")
     parsed = load_recipe(recipe).with_overrides(seed=seed, out=out)
-    on_interrupt(lambda: interrupted_note(parsed.output.path, sharded=bool(workers or scheduler),
-                                          cluster=scheduler is not None))
+    import os
+    import time
+
+    started = time.time()
+
+    def note():
+        out_path = parsed.output.path
+        try:
+            written = os.stat(out_path).st_mtime >= started - 1.0
+        except OSError:
+            written = False
+        if written and not no_card:  # interrupted while the card was being written
+            return (f"the set was written at {out_path}; its dataset card was not (write it with "
+                    f"goalkit.write_card, or rerun with --replace)")
+        return interrupted_note(out_path, sharded=bool(workers or scheduler), cluster=scheduler is not None)
+
+    on_interrupt(note)
     with ChunkProgress("build", quiet=quiet) as bar:
         result = run_build(parsed, max_rows_per_chunk=chunk_rows, progress=bar, workers=workers,
-                           scheduler=scheduler, fresh=restart, replace=replace)
+                           scheduler=scheduler, fresh=restart, replace=replace, card=not no_card)
     extra = {"shards": result.shards} if result.shards is not None else {}
+    extra.update(reward=parsed.reward.describe(), file_bytes=result.file_bytes, seconds=result.seconds,
+                 card=[str(p) for p in result.card])
     if as_json:
         echo_json({"path": str(result.path), **result.summary, **extra})
     elif quiet:
         for w in result.summary.get("warnings", []):
             warn(w)
     else:
-        click.echo(format_summary(result.path, result.summary))
+        click.echo(format_summary(result.path, result.summary, reward=parsed.reward.describe(),
+                                  file_bytes=result.file_bytes, seconds=result.seconds, card=result.card))
         if result.shards is not None:
             s = result.shards
             click.echo(f"  shards: {s['total']} ({s['reused']} reused from an interrupted run, "

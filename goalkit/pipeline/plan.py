@@ -51,6 +51,8 @@ class BuildPlan:
         episodes; None otherwise.
     columns : dict
         Column name -> (dtype, per-row shape) of the output.
+    shapes : dict or None
+        Per-row shapes ``{"observation", "action", "goal"}`` of the logs and the goal map (lists).
     """
 
     recipe: object
@@ -62,6 +64,7 @@ class BuildPlan:
     context: object
     goal_table: np.ndarray | None
     columns: dict
+    shapes: dict | None = None
 
     def positions(self, episode_ids) -> np.ndarray:
         """Position among the kept episodes of each episode id."""
@@ -191,7 +194,8 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
         context = attach_searches(recipe, context, table, goal_map, ids, lengths, splits)
     plan = BuildPlan(recipe=recipe, goal_map=goal_map, episode_ids=ids, lengths=lengths,
                      transition_offsets=offsets, splits=splits, context=context, goal_table=table,
-                     columns=cols)
+                     columns=cols, shapes={"observation": list(obs_shape), "action": list(act_shape),
+                                           "goal": [int(goal_map.dim)]})
     return plan, source
 
 

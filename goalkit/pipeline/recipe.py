@@ -12,7 +12,7 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 
 from goalkit.config import check_keys, expect_type, parse_toml, read_text_file
-from goalkit.errors import ParameterError, RecipeError
+from goalkit.errors import ParameterError, RecipeError, shown
 from goalkit.heads import heads_from_table
 from goalkit.outputs import small_toml
 from goalkit.relabel import Mixture
@@ -138,7 +138,7 @@ class Recipe:
 
 def _check_seed(seed, file) -> int:
     if isinstance(seed, bool) or not isinstance(seed, int) or not 0 <= seed < 2 ** 63:
-        raise RecipeError(f"expected a whole number from 0 to 2**63 - 1, got {seed!r}", file=file, key="seed")
+        raise RecipeError(f"expected a whole number from 0 to 2**63 - 1, got {shown(seed)}", file=file, key="seed")
     return seed
 
 
@@ -187,10 +187,10 @@ def _parse_goal(table, base, file) -> GoalSpec:
         idx = table["indices"]
         if not (isinstance(idx, list) and idx and all(isinstance(i, int) and not isinstance(i, bool) and i >= 0
                                                        for i in idx)):
-            raise RecipeError(f"expected a non-empty list of non-negative column numbers, got {idx!r}",
+            raise RecipeError(f"expected a non-empty list of non-negative column numbers, got {shown(idx)}",
                               file=file, key="goal.indices")
         if len(set(idx)) != len(idx):
-            raise RecipeError(f"expected distinct column numbers, got {idx!r}", file=file, key="goal.indices")
+            raise RecipeError(f"expected distinct column numbers, got {shown(idx)}", file=file, key="goal.indices")
         return GoalSpec(indices=tuple(idx), dtype=dtype)
     return GoalSpec(embedding=_path(table["embedding"], base, file, "goal.embedding"), dtype=dtype)
 
@@ -199,10 +199,10 @@ def _parse_split(table, file) -> tuple[float, int]:
     check_keys(table, SPLIT_KEYS, file=file, section="[split]", error=RecipeError)
     frac = table.get("validation", 0.1)
     if isinstance(frac, bool) or not isinstance(frac, (int, float)) or not 0.0 <= frac < 1.0:
-        raise RecipeError(f"expected a fraction in [0, 1), got {frac!r}", file=file, key="split.validation")
+        raise RecipeError(f"expected a fraction in [0, 1), got {shown(frac)}", file=file, key="split.validation")
     salt = table.get("salt", 0)
     if isinstance(salt, bool) or not isinstance(salt, int) or not 0 <= salt < 2 ** 63:
-        raise RecipeError(f"expected a whole number >= 0, got {salt!r}", file=file, key="split.salt")
+        raise RecipeError(f"expected a whole number >= 0, got {shown(salt)}", file=file, key="split.salt")
     return float(frac), salt
 
 
@@ -224,7 +224,7 @@ def _parse_output(table, base, file, stored: bool = False) -> OutputSpec:
                           key="output.compression")
     rows = table.get("chunk_rows", 65536)
     if isinstance(rows, bool) or not isinstance(rows, int) or not 256 <= rows <= 2 ** 24:
-        raise RecipeError(f"expected a whole number from 256 to 16777216, got {rows!r}", file=file,
+        raise RecipeError(f"expected a whole number from 256 to 16777216, got {shown(rows)}", file=file,
                           key="output.chunk_rows")
     return OutputSpec(path=_path(table["path"], base, file, "output.path", resolve=False), mode=mode,
                       compression=comp,
@@ -260,7 +260,7 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored
     check_keys(doc, TOP_KEYS, file=file, section="the recipe's top level", error=RecipeError)
     version = doc.get("version", RECIPE_VERSION)
     if version != RECIPE_VERSION:
-        raise RecipeError(f"expected version = {RECIPE_VERSION}, got {version!r}", file=file, key="version")
+        raise RecipeError(f"expected version = {RECIPE_VERSION}, got {shown(version)}", file=file, key="version")
     seed = _check_seed(doc.get("seed", 0), file)
     logs = _table(doc, "logs", file)
     check_keys(logs, LOGS_KEYS, file=file, section="[logs]", error=RecipeError)

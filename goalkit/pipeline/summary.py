@@ -1,4 +1,11 @@
-"""The build summary: rows, rewarded fraction per strategy, goal-distance quantiles, warnings."""
+"""The build summary: rows, rewarded fraction per strategy, goal-distance quantiles, warnings.
+
+It also holds the composition the dataset card and ``goalkit info`` show (key ``composition``):
+rows and reached rows per split and strategy, and exact histograms of the goal distance (in
+multiples of the reach threshold, :data:`DISTANCE_RATIOS`) and of steps-to-goal (powers of two),
+per split. Every count is exact and independent of chunking. Sets built before it was stored
+have no ``composition`` key.
+"""
 
 from __future__ import annotations
 
@@ -12,6 +19,12 @@ SAMPLE_ROWS = 200_000
 QUANTILES = (0.05, 0.25, 0.5, 0.75, 0.95)
 #: The summary warns when the threshold marks fewer / more rows than these as reached.
 LOW_REACHED, HIGH_REACHED = 0.01, 0.90
+#: Upper edges of the goal-distance bins, in multiples of the reach threshold (bin i counts
+#: ``edges[i-1] < d <= edges[i]``, the first bin ``d <= edges[0]``; a last bin counts what lies
+#: beyond, a separate count the NaN distances).
+DISTANCE_RATIOS = (0.25, 0.5, 1.0, 2.0, 4.0, 8.0, 16.0)
+#: Steps-to-goal bins: bin k counts ``2**k <= h < 2**(k+1)``; rows without a horizon (-1) apart.
+HORIZON_BINS = 63
 
 
 class SummaryBuilder:
@@ -27,7 +40,7 @@ class SummaryBuilder:
         The build's seed (the distance sample is a pure function of it and each row's address).
     """
 
-    def __init__(self, strategy_names: dict, total_rows: int, seed: int):
+    def __init__(self, strategy_names: dict, total_rows: int, seed: int, distance_unit: float = 1.0):
         self.names = strategy_names
         self.rate = min(1.0, SAMPLE_ROWS / max(total_rows, 1))
         self.seed = seed
@@ -36,6 +49,10 @@ class SummaryBuilder:
         self.reached = {s: np.zeros(size, np.int64) for s in SPLITS}
         self.sample: list[np.ndarray] = []
         self.sample_keys: list[np.ndarray] = []
+        self.unit = float(distance_unit) if distance_unit and distance_unit > 0 else 1.0
+        self.edges = np.asarray(DISTANCE_RATIOS, dtype=np.float64) * self.unit
+        self.distance = {s: np.zeros(len(DISTANCE_RATIOS) + 2, np.int64) for s in SPLITS}  # + beyond, NaN
+        self.horizon = {s: np.zeros(HORIZON_BINS + 1, np.int64) for s in SPLITS}  # + no horizon
 
     def add(self, split: str, cols: dict, keys: np.ndarray) -> None:
         """Count the rows of one chunk and split."""
@@ -44,6 +61,16 @@ class SummaryBuilder:
         self.reached[split] += np.bincount(cols["strategy"], weights=cols["reached"], minlength=size)[:size].astype(np.int64)
         u = rng.uniform(self.seed, cols["source_episode"], cols["source_step"], cols["slot"], stream="subsample")
         keep = u < self.rate
+        d = np.asarray(cols["goal_distance"], dtype=np.float64)
+        nan = np.isnan(d)
+        bins = np.searchsorted(self.edges, d[~nan], side="left")
+        self.distance[split][:-1] += np.bincount(bins, minlength=len(self.edges) + 1)
+        self.distance[split][-1] += int(nan.sum())
+        h = np.asarray(cols["steps_to_goal"], dtype=np.int64)
+        has = h >= 1
+        k = np.frexp(h[has].astype(np.float64))[1] - 1  # floor(log2(h)), exact below 2**53
+        self.horizon[split][:-1] += np.bincount(np.minimum(k, HORIZON_BINS - 1), minlength=HORIZON_BINS)
+        self.horizon[split][-1] += int((~has).sum())
         self.sample.append(np.asarray(cols["goal_distance"], dtype=np.float64)[keep])
         self.sample_keys.append(keys[keep])
 
@@ -70,4 +97,26 @@ class SummaryBuilder:
             qs = np.quantile(d, QUANTILES)
             out["goal_distance_quantiles"] = {f"q{int(q * 100):02d}": float(v) for q, v in zip(QUANTILES, qs)}
         out["goal_distance_sample_rows"] = int(len(d))
+        out["composition"] = self.composition()
         return out
+
+    def composition(self) -> dict:
+        """Rows and reached rows per split and strategy; distance and horizon histograms per split."""
+        by_split = {}
+        for s in SPLITS:
+            by_split[s] = {name: {"rows": int(self.rows[s][code]), "reached": int(self.reached[s][code])}
+                           for code, name in sorted(self.names.items())
+                           if code < len(self.rows[s]) and self.rows[s][code]}
+        top = max([int(np.flatnonzero(self.horizon[s][:-1]).max()) + 1
+                   for s in SPLITS if self.horizon[s][:-1].any()] or [0])
+        return {
+            "by_split": by_split,
+            "goal_distance_histogram": {
+                "unit": self.unit, "ratios": list(DISTANCE_RATIOS),
+                "counts": {s: self.distance[s][:-1].tolist() for s in SPLITS},
+                "nan": {s: int(self.distance[s][-1]) for s in SPLITS}},
+            "horizon_histogram": {
+                "low": [1 << k for k in range(top)],
+                "counts": {s: self.horizon[s][:top].tolist() for s in SPLITS},
+                "none": {s: int(self.horizon[s][-1]) for s in SPLITS}},
+        }

@@ -10,7 +10,7 @@ import numpy as np
 
 from goalkit import rng
 from goalkit.config import check_keys, closest
-from goalkit.errors import ParameterError
+from goalkit.errors import ParameterError, shown
 from goalkit.relabel.strategies import CODES, PAST_END, STRATEGIES, locate
 
 if TYPE_CHECKING:  # annotations only: goalkit.logs loads the log readers (h5py)
@@ -151,27 +151,27 @@ class Mixture:
                 tip = f"; did you mean '{hint}'?" if hint else ""
                 raise _bad(f"unknown strategy '{name}'{tip} valid: {', '.join(STRATEGIES)}", parameter)
             if not _is_number(w) or not math.isfinite(w):
-                raise _bad(f"expected a finite number >= 0, got {w!r}", parameter)
+                raise _bad(f"expected a finite number >= 0, got {shown(w)}", parameter)
             if w < 0:
-                raise _bad(f"expected a weight >= 0, got {w!r}", parameter)
+                raise _bad(f"expected a weight >= 0, got {shown(w)}", parameter)
         if not any(w > 0 for w in self.weights.values()):
             raise _bad("all strategy weights are zero; give at least one a weight > 0", "weights")
         g = self.goals_per_transition
         if (isinstance(g, (bool, np.bool_)) or not isinstance(g, (int, np.integer))
                 or not 1 <= g <= MAX_GOALS_PER_TRANSITION):
-            raise _bad(f"expected an integer from 1 to {MAX_GOALS_PER_TRANSITION}, got {g!r}",
+            raise _bad(f"expected an integer from 1 to {MAX_GOALS_PER_TRANSITION}, got {shown(g)}",
                        "goals_per_transition")
         if not _is_number(self.gamma) or not 0.0 < self.gamma < 1.0:
-            raise _bad(f"expected a number strictly between 0 and 1, got {self.gamma!r}", "gamma")
+            raise _bad(f"expected a number strictly between 0 and 1, got {shown(self.gamma)}", "gamma")
         if self.past_end not in PAST_END:
             hint = closest(str(self.past_end), PAST_END)
             tip = f"; did you mean '{hint}'?" if hint else ""
             raise _bad(f"unknown past_end {self.past_end!r}{tip} valid: {', '.join(PAST_END)}", "past_end")
         k = self.neighbours
         if isinstance(k, (bool, np.bool_)) or not isinstance(k, (int, np.integer)) or not 1 <= k <= 1024:
-            raise _bad(f"expected an integer from 1 to 1024, got {k!r}", "neighbours")
+            raise _bad(f"expected an integer from 1 to 1024, got {shown(k)}", "neighbours")
         if not _is_number(self.recall) or not 0.0 < self.recall <= 1.0:
-            raise _bad(f"expected a recall in (0, 1], got {self.recall!r}", "recall")
+            raise _bad(f"expected a recall in (0, 1], got {shown(self.recall)}", "recall")
         if self.index not in INDEX_METHODS:
             hint = closest(str(self.index), INDEX_METHODS)
             tip = f"; did you mean '{hint}'?" if hint else ""
@@ -205,7 +205,7 @@ class Mixture:
         kwargs = {k: table[k] for k in TABLE_KEYS if k in table}
         if "weights" in kwargs and not isinstance(kwargs["weights"], Mapping):
             raise _bad(f"expected a table [relabel.weights] of strategy name -> weight, got "
-                       f"{kwargs['weights']!r}", "weights")
+                       f"{shown(kwargs['weights'])}", "weights")
         return cls(**kwargs)
 
     def describe(self) -> dict:

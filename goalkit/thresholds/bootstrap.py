@@ -19,6 +19,8 @@ each pair's episode was drawn), in blocks of resamples so memory stays bounded.
 
 from __future__ import annotations
 
+from goalkit.errors import shown
+
 from dataclasses import dataclass
 
 import numpy as np
@@ -128,7 +130,7 @@ def bootstrap_threshold(distances, labels, groups=None, *, chooser: str = "max-f
     check_chooser(chooser, target, placement)
     d, y, g = check_labelled(distances, labels, groups)
     if not (0.0 < confidence < 1.0):
-        raise TuningError(f"expected a confidence level in (0, 1), got {confidence!r}", key="confidence")
+        raise TuningError(f"expected a confidence level in (0, 1), got {shown(confidence)}", key="confidence")
     if g is None:
         g = np.arange(d.size, dtype=np.int64)
     _, gi = np.unique(g, return_inverse=True)

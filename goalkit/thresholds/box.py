@@ -23,6 +23,8 @@ Quantiles are numpy's ``"linear"`` definition (Hyndman and Fan, 1996, definition
 
 from __future__ import annotations
 
+from goalkit.errors import shown
+
 import math
 from dataclasses import dataclass
 
@@ -138,10 +140,10 @@ def suggest_box(achieved, goal, labels, *, method: str = "quantile", quantile: f
     if method not in BOX_METHODS:
         raise TuningError(f"unknown box method {method!r}; valid: {', '.join(BOX_METHODS)}", key="method")
     if not (0.0 < recall <= 1.0):
-        raise TuningError(f"expected a recall target in (0, 1], got {recall!r}", key="recall")
+        raise TuningError(f"expected a recall target in (0, 1], got {shown(recall)}", key="recall")
     q = (0.95 if method == "quantile" else recall) if quantile is None else float(quantile)
     if not (0.0 < q <= 1.0):
-        raise TuningError(f"expected a quantile in (0, 1], got {quantile!r}", key="quantile")
+        raise TuningError(f"expected a quantile in (0, 1], got {shown(quantile)}", key="quantile")
     delta, y = _deltas(achieved, goal, labels)
     shape, notes = _shape(delta, y, q)
     if method == "quantile":

@@ -24,6 +24,8 @@ The state sample is addressed by (seed, episode id, step) through :mod:`goalkit.
 
 from __future__ import annotations
 
+from goalkit.errors import shown
+
 from dataclasses import dataclass
 
 import numpy as np
@@ -90,7 +92,7 @@ class HorizonProfile:
 def _check_quantiles(quantiles):
     q = np.asarray(quantiles, dtype=np.float64)
     if q.ndim != 1 or q.size == 0 or np.any((q < 0) | (q > 1)):
-        raise TuningError(f"expected quantiles in [0, 1], got {list(np.atleast_1d(q))}", key="quantiles")
+        raise TuningError(f"expected quantiles in [0, 1], got {shown(list(np.atleast_1d(q)))}", key="quantiles")
     return q
 
 
@@ -110,7 +112,7 @@ def horizon_displacement(episodes: EpisodeSet, goal_map, rule, horizons=HORIZONS
     """
     h = np.asarray(horizons, dtype=np.int64)
     if h.ndim != 1 or h.size == 0 or np.any(h < 1):
-        raise TuningError(f"expected horizons >= 1, got {list(np.atleast_1d(h))}", key="horizons")
+        raise TuningError(f"expected horizons >= 1, got {shown(list(np.atleast_1d(h)))}", key="horizons")
     q = _check_quantiles(quantiles)
     g = state_goals(episodes, goal_map) if goals is None else goals
     _, step, length = _state_index(episodes)

@@ -24,7 +24,7 @@ from pathlib import Path
 import tomlkit
 
 from goalkit.config import parse_toml
-from goalkit.errors import GoalkitError, RecipeError
+from goalkit.errors import GoalkitError, RecipeError, shown
 from goalkit.outputs import check_no_overlap, write_text
 from goalkit.pipeline.recipe import PATH_KEYS, is_recipe_file, parse_recipe
 
@@ -52,7 +52,7 @@ class RecipeEdit:
 def toml_value(value) -> str:
     """TOML text of a string, bool, number, or list of those (for messages and notes)."""
     if isinstance(value, float) and not math.isfinite(value):
-        raise RecipeError(f"cannot write the non-finite number {value!r} into a recipe")
+        raise RecipeError(f"cannot write the non-finite number {shown(value)} into a recipe")
     if isinstance(value, (list, tuple)):
         return "[" + ", ".join(toml_value(v) for v in value) + "]"
     return tomlkit.item(value).as_string()

@@ -30,6 +30,8 @@ The label-free *suggested range* is goalkit's own rule of thumb, not a published
 
 from __future__ import annotations
 
+from goalkit.errors import shown
+
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
@@ -168,9 +170,11 @@ class TuneResult:
             p = prefix if len(ok) == 1 else f"{prefix}{c.distance}-"
             cur = c.tuner.current_ if c.distance == self.recipe.reward.distance_name else None
             written += plot_labelled(c.tuner.sweep_, c.tuner.choice_, out_dir, prefix=p,
-                                     current=cur, replace=replace).values()
+                                     current=cur, replace=replace, distance=c.distance).values()
         written += plot_diagnostics(self.diagnostics, out_dir, prefix=prefix, rewarded=self.rewarded,
-                                    strategy_names=self.strategy_names, replace=replace).values()
+                                    strategy_names=self.strategy_names, replace=replace,
+                                    distance=self.rule.distance_name,
+                                    threshold_owner="recipe" if self.winner is None else "suggested").values()
         return sorted(written)
 
 
@@ -206,7 +210,7 @@ def check_options(*, labels, from_success, chooser, target, n_resamples, max_tra
                           f"not {chooser!r}", key="--target-precision")
     if chooser == "target-precision" and (target is None or not 0.0 < float(target) <= 1.0):
         raise TuningError(f"chooser 'target-precision' needs a target precision in (0, 1], got "
-                          f"{target!r}", key="--target-precision")
+                          f"{shown(target)}", key="--target-precision")
     check_chooser(chooser, target, "midpoint")
     if n_resamples < 0:
         raise TuningError(f"expected resamples >= 0, got {n_resamples}", key="--resamples")

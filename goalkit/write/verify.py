@@ -31,7 +31,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from goalkit.audit import audit_into
-from goalkit.errors import DatasetError, GoalkitError
+from goalkit.errors import DatasetError, GoalkitError, shown
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.pipeline.build import chunk_transitions, final_summary
 from goalkit.pipeline.chunk import relabel_chunk, row_labels
@@ -164,16 +164,16 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
         diff = cols[name] != ref
         if diff.any():
             row = _first(diff)
-            report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): {name} {cols[name][row]!r} does not "
-                        f"recompute from the reward rule (expected {ref[row]!r})")
+            report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): {name} {shown(cols[name][row])} does not "
+                        f"recompute from the reward rule (expected {shown(ref[row])})")
     if "discount_weight" in cols:  # the training labels, from the stored steps and terminal flag
         labels = row_labels(cols["steps_to_goal"], plan.recipe.mixture.gamma, cols["terminal"])
         for name, ref in labels.items():
             diff = cols[name] != ref
             if diff.any():
                 row = _first(diff)
-                report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): {name} {cols[name][row]!r} does "
-                            f"not recompute from steps_to_goal and [relabel] gamma (expected {ref[row]!r})")
+                report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): {name} {shown(cols[name][row])} does "
+                            f"not recompute from steps_to_goal and [relabel] gamma (expected {shown(ref[row])})")
 
 
 def _strategy_code_problems(file) -> list[str]:
@@ -266,7 +266,8 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) 
         report.checked["columns"] = len(goal_set.manifest)
         # 4 + 5. rows, checked and re-derived; the summary re-derived alongside
         gpt = recipe.mixture.goals_per_transition
-        summary = SummaryBuilder(strategy_names(), plan.total_transitions * gpt, recipe.seed)
+        summary = SummaryBuilder(strategy_names(), plan.total_transitions * gpt, recipe.seed,
+                                 distance_unit=recipe.reward.reach_threshold)
         cursor = {split: 0 for split in SPLITS}
         total = {split: goal_set.rows(split) for split in SPLITS}
         stored_names = {split: goal_set.columns(split) for split in SPLITS}
@@ -293,7 +294,10 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) 
         report.checked["rows"] = {split: total[split] for split in SPLITS}
         report.checked["episodes"] = int(len(plan.episode_ids))
         # 5. summary and provenance, re-derived
-        for message in differences(as_stored(final_summary(summary, plan, source)), goal_set.summary, "summary"):
+        fresh_summary = as_stored(final_summary(summary, plan, source))
+        if "composition" not in goal_set.summary:  # a set built before the composition was stored
+            fresh_summary.pop("composition", None)
+        for message in differences(fresh_summary, goal_set.summary, "summary"):
             report.fail(message)
         for message in provenance_differences(goal_set, plan, source, digests):
             report.fail(message)

@@ -48,6 +48,7 @@ def bad_inputs(d, tmp):
         "tune": (["tune", tmp / "bad.toml"], 2),
         "suite": (["suite", d / "gantry-layout.toml", "--out", tmp / "s.h5"], 2),
         "assess": (["assess", d / "set.h5", tmp / "missing-suite.h5", "--value", "exitck:value"], 2),
+        "info": (["info", d / "gantry-layout.toml"], 2),
     }
 
 
@@ -124,6 +125,7 @@ def quiet_runs(d, tmp):
         "suite": ["suite", d / "set.h5", "--out", tmp / "s.h5", "--per-cell", "5", "--replace"],
         "assess": ["assess", d / "set.h5", _suite_and_checkpoint(d), "--import-path", d / "ck", "--value",
                    "exitck:value", "--resamples", "20"],
+        "info": ["info", d / "set.h5"],
     }
 
 

@@ -40,7 +40,8 @@ def test_two_local_workers_match_one_process(gantry, reference, tmp_path, monkey
     assert sum(n for n, _ in seen) == total and {t for _, t in seen} == {total}
     assert len(seen) == result.shards["total"]
     assert not folder_of(out).exists()
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["scale-goals.h5"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["scale-goals.h5", "scale-goals.h5.card-goals.png",
+                                                          "scale-goals.h5.card.md"]  # the set and its card
 
 
 def test_dask_local_cluster_matches_one_process(gantry, reference, tmp_path):

@@ -88,7 +88,8 @@ def test_killed_three_times_then_resumed_is_identical(gantry, reference, tmp_pat
     assert report["shards"]["reused"] + report["shards"]["computed"] == report["shards"]["total"]
     assert sha256(out) == ref_digest
     # no build folder and no temporary file of the killed runs left beside the output
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["scale-goals.h5"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["scale-goals.h5", "scale-goals.h5.card-goals.png",
+                                                          "scale-goals.h5.card.md"]  # the set and its card
 
 
 def test_changed_seed_clears_old_shards_and_a_corrupt_shard_is_recomputed(gantry, tmp_path):
