@@ -33,6 +33,9 @@ JITTER_SALT = 0x61756469
 INDEX = ("source_episode", "source_step", "slot", "strategy", "goal_episode", "goal_step", "hop_episode",
          "hop_step", "join_step", "steps_to_goal", "goal", "goal_distance", "reward", "reached", "terminal")
 SPLITS = ("train", "validation")
+#: The environment's end flags: set column -> (layout role, EpisodeSet attribute). Stated here,
+#: apart from the builder's row schema: each column is the log's flag of transition t.
+END_FLAGS = {"termination": ("termination", "terminations"), "time_limit": ("time_limit", "time_limits")}
 
 
 @dataclass
@@ -103,8 +106,17 @@ class _Logs:
         pos = np.minimum(np.searchsorted(self.ids, episodes), len(self.ids) - 1)
         return np.where(self.ids[pos] == episodes, self.lengths[pos], -1)
 
-    def achieved_and_task_goal(self, episodes, steps):
-        """phi(s_t+1) (goal dtype) and the log's task goal (or None) of each (episode, t)."""
+    def end_flag_columns(self) -> list:
+        """The end-flag columns a set of these logs must have (the flags its layout maps)."""
+        keys = self.source.layout.keys
+        return [col for col, (role, _) in END_FLAGS.items() if getattr(keys, role) is not None]
+
+    def achieved_and_task_goal(self, episodes, steps, flags=()):
+        """phi(s_t+1) (goal dtype), the log's task goal (or None) and end flags of each (episode, t).
+
+        Returns ``(achieved, task, flag_values)``: ``flag_values`` maps each of ``flags`` (end-flag
+        column names) to the log's own flag of each (episode, t), as uint8.
+        """
         pos = np.searchsorted(self.ids, episodes)
         a, b = int(pos.min()), int(pos.max()) + 1
         chunk = self.source.read(a, b)
@@ -115,7 +127,11 @@ class _Logs:
         if chunk.task_goals is not None:
             tg = np.asarray(chunk.task_goals)
             task = tg.reshape(len(tg), -1)[chunk.offsets[local] + steps]
-        return achieved, task
+        values = {}
+        for col in flags:
+            logged = getattr(chunk, END_FLAGS[col][1])
+            values[col] = None if logged is None else np.asarray(logged)[chunk.offsets[local] + steps].astype(np.uint8)
+        return achieved, task, values
 
 
 class _Draws:
@@ -190,6 +206,15 @@ def audit_set(path, sample: int | None = None, alpha: float = ALPHA) -> AuditRep
         except GoalkitError as exc:
             raise DatasetError(f"the audit cannot reopen the logs this set was built from: {exc}",
                                file=path) from None
+        flags = logs.end_flag_columns()
+        for s in SPLITS:
+            for col in END_FLAGS:
+                if col in flags and col not in f[s]:
+                    report.failures.append(f"column {s}/{col} is missing: the layout maps the environment's "
+                                           f"{END_FLAGS[col][0]} flag")
+                elif col not in flags and col in f[s]:
+                    report.failures.append(f"column {s}/{col} is stored, but the layout maps no "
+                                           f"{END_FLAGS[col][0]} flag")
         _Auditor(f, rc, logs, report, seed, sample, alpha).run()
     return report
 
@@ -280,6 +305,8 @@ class _Auditor:
         rc, logs = self.rc, self.logs
         grp = self.f[split]
         c = {k: grp[k][a:b] for k in INDEX}
+        flags = [col for col in logs.end_flag_columns() if col in grp]
+        c.update({col: grp[col][a:b] for col in flags})
         n = b - a
         v = self.jitter.random((n, 3))
         self.report.rows[split] += n
@@ -313,8 +340,13 @@ class _Auditor:
         inside = (t >= 0) & (t < T)
         if inside.any():
             idx = np.flatnonzero(inside)
-            achieved, task = logs.achieved_and_task_goal(ep[idx], t[idx])
+            achieved, task, logged = logs.achieved_and_task_goal(ep[idx], t[idx], flags=tuple(flags))
             sub = {k: val[idx] for k, val in c.items()}
+            for col in flags:
+                full = np.zeros(len(ep), bool)
+                full[idx] = sub[col] != logged[col]
+                self.violated(f"{col} flag", f"{col} is not the log's {END_FLAGS[col][0]} flag of transition t",
+                              full, split, a, c)
             for rule, message, mask in reward_rules(sub, achieved, sub["goal"], rc):
                 full = np.zeros(len(ep), bool)
                 full[idx] = mask

@@ -132,7 +132,7 @@ def plan_episode(acc, layout, episode: int) -> EpisodeMeta:
         if key is None:
             return None
         _need(acc, key, episode)
-        if role == "success":
+        if role in ("success", "termination", "time_limit"):
             if acc.dtype(key).kind not in "biuf":
                 raise LogError(f"expected a bool or 0/1 flag, got dtype {acc.dtype(key)}",
                                file=f, key=where(key), episode=episode)
@@ -142,13 +142,15 @@ def plan_episode(acc, layout, episode: int) -> EpisodeMeta:
         if rows != n:
             raise LogError(f"has {rows} rows, expected {n} (one per action)", file=f,
                            key=where(key), episode=episode)
-        if role in ("reward", "success") and width != 1:
+        if role in ("reward", "success", "termination", "time_limit") and width != 1:
             raise LogError(f"expected shape ({n},), got {acc.shape(key)}", file=f, key=where(key),
                            episode=episode)
         return width
 
     per_step("reward", "rewards")
     per_step("success", "success flags")
+    per_step("termination", "termination flags")
+    per_step("time_limit", "time-limit flags")
     goal_width = per_step("task_goal", "goals")
 
     frame_shape = None
@@ -208,9 +210,11 @@ def read_episode(acc, layout, meta: EpisodeMeta, episode: int, obs_dtype, action
     if k.reward is not None:
         r = acc.read(k.reward, 0, T).reshape(T)
         out["rewards"] = r.astype(checks.float_dtype([r.dtype]), copy=False)
-    if k.success is not None:
-        out["success"] = checks.flags(acc.read(k.success, 0, T).reshape(T), file=acc.file,
-                                      key=acc.where(k.success), episode=episode)
+    for role, name in (("success", "success"), ("termination", "terminations"), ("time_limit", "time_limits")):
+        key = getattr(k, role)
+        if key is not None:
+            out[name] = checks.flags(acc.read(key, 0, T).reshape(T), file=acc.file, key=acc.where(key),
+                                     episode=episode)
     if k.task_goal is not None:
         g = acc.read(k.task_goal, 0, T).reshape(T, -1)
         out["task_goals"] = g.astype(checks.float_dtype([g.dtype]), copy=False)

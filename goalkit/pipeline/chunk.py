@@ -8,7 +8,7 @@ import numpy as np
 
 from goalkit.pipeline.plan import SLOT_SPAN
 from goalkit.reward import score
-from goalkit.rows import GOAL_ADDRESS, SPLITS
+from goalkit.rows import END_FLAG_SOURCES, GOAL_ADDRESS, SPLITS
 from goalkit.write.gather import RowGather
 
 
@@ -110,4 +110,8 @@ def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gather
         cols["reached_goal"] = achieved
     if "task_reward" in plan.columns:
         cols["task_reward"] = np.take(chunk.rewards, t, axis=0).astype(np.float32)
+    # the environment's end flags of the logged transition (same for every slot; never scored)
+    for name, attr in END_FLAG_SOURCES.items():
+        if name in plan.columns:
+            cols[name] = np.take(getattr(chunk, attr), t, axis=0).astype(np.uint8)
     return cols, keys

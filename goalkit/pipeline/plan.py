@@ -17,8 +17,8 @@ from goalkit.pipeline.goal import make_goal_map
 from goalkit.pipeline.split import split_codes
 from goalkit.relabel.strategies import STRATEGIES
 from goalkit.relabel.strategies import strategy_names as table_names
-from goalkit.rows import SPLITS
-from goalkit.write.format import INDEX_COLUMNS, MATERIAL_COLUMNS, TASK_REWARD_COLUMN
+from goalkit.rows import END_FLAG_SOURCES, SPLITS
+from goalkit.write.format import END_FLAG_COLUMNS, INDEX_COLUMNS, MATERIAL_COLUMNS, TASK_REWARD_COLUMN
 
 #: Row keys are ``global transition index * SLOT_SPAN + slot``.
 SLOT_SPAN = 1 << 16
@@ -73,7 +73,7 @@ class BuildPlan:
         return int(self.transition_offsets[-1])
 
 
-def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_task_reward) -> dict:
+def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_task_reward, end_flags=()) -> dict:
     goal_dtype = np.dtype(recipe.goal.dtype)
     kinds = {"goal": (goal_dtype, (goal_dim,)), "obs": (obs_dtype, obs_shape), "act": (act_dtype, act_shape)}
     cols = {}
@@ -84,6 +84,9 @@ def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_t
             cols[name] = kinds[kind]
     if has_task_reward:
         cols[TASK_REWARD_COLUMN[0]] = (np.dtype(TASK_REWARD_COLUMN[1]), ())
+    for name, (dtype, _) in END_FLAG_COLUMNS.items():
+        if name in end_flags:
+            cols[name] = (np.dtype(dtype), ())
     return cols
 
 
@@ -182,7 +185,8 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
                              _SplitLookup(ids, splits))
     check_mixture(recipe, first, context, goal_map.dim)
     cols = _columns(recipe, obs_shape, act_shape, first.observations.dtype, first.actions.dtype,
-                    goal_map.dim, first.rewards is not None)
+                    goal_map.dim, first.rewards is not None,
+                    [name for name, attr in END_FLAG_SOURCES.items() if getattr(first, attr) is not None])
     table = None
     if needs_goal_table(recipe.mixture):
         table = goal_table(source, goal_map, np.dtype(recipe.goal.dtype), max_transitions)

@@ -34,6 +34,7 @@ from goalkit.errors import DatasetError, GoalkitError
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.relabel.strategies import strategy_names
 from goalkit.reward import score
+from goalkit.rows import END_FLAG_SOURCES
 from goalkit.write.format import SPLIT_CODES, SPLITS
 from goalkit.write.seal import stored_strategy_codes
 
@@ -110,6 +111,14 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
             if diff.any():
                 i = _first(diff)
                 report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): {name} is not the logged value")
+    for name, attr in END_FLAG_SOURCES.items():   # the environment's end flags, from the logs
+        if name in cols:
+            logged = getattr(chunk, attr)
+            diff = np.ones(n, bool) if logged is None else cols[name] != logged[trans].astype(np.uint8)
+            if diff.any():
+                i = _first(diff)
+                report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): {name} is not the log's "
+                            f"flag of the transition")
     phi = plan.goal_map(chunk, np.arange(chunk.observations.shape[0])).astype(gd)
     achieved = phi[cur + 1]
     if "reached_goal" in cols:
