@@ -108,15 +108,14 @@ class FlatSource(BaseSource):
                                file=f, key=key)
             n_obs = m
             widths.append(w)
-        if k.next_observation is not None:
-            self._need(acc, k.next_observation)
-            dtypes.append(checks.numeric(acc.dtype(k.next_observation), file=f, key=k.next_observation))
-            shape2 = checks.rows_2d(acc.shape(k.next_observation), file=f, key=k.next_observation,
-                                    what="next observations")
-            if shape2 != (n_act, widths[0]) or n_obs != n_act:
-                raise LogError(f"has shape {acc.shape(k.next_observation)}, observation has "
-                               f"{(n_obs, widths[0])} and action {n_act} rows; expected one row per "
-                               f"action in both, of equal widths", file=f, key=k.next_observation)
+        for key, width in zip(lay.next_observation_keys(), widths):
+            self._need(acc, key)
+            dtypes.append(checks.numeric(acc.dtype(key), file=f, key=key))
+            shape2 = checks.rows_2d(acc.shape(key), file=f, key=key, what="next observations")
+            if shape2 != (n_act, width) or n_obs != n_act:
+                raise LogError(f"has shape {acc.shape(key)}, observation has {(n_obs, width)} and action "
+                               f"{n_act} rows; expected one row per action in both, of equal widths",
+                               file=f, key=key)
         self.obs_dtype = checks.float_dtype(dtypes)
         self.obs_width = int(sum(widths))
         if lay.fields:
@@ -355,8 +354,12 @@ class FlatSource(BaseSource):
         out = {}
         s_start, o_start = self.step_start[rid], self.state_start[rid]
         if self.convention == "pairs":
-            obs = gather(k.observation, o_start, T).reshape(-1, self.obs_width)
-            nxt = gather(k.next_observation, o_start, T).reshape(-1, self.obs_width)
+            def side(keys):
+                parts = [gather(key, o_start, T).reshape(int(T.sum()), -1) for key in keys]
+                return parts[0] if len(parts) == 1 else np.concatenate(parts, axis=1)
+
+            obs = side(lay.observation_keys())
+            nxt = side(lay.next_observation_keys())
             found = checks.first_discontinuity(obs, nxt, T)
             if found is not None:
                 raise checks.pairs_error(found[1], found[2], file=self.path, key=k.next_observation,

@@ -13,6 +13,7 @@ from typing import Mapping
 from goalkit.config import check_keys, load_toml
 from goalkit.errors import LayoutError
 from goalkit.logs import recordspec
+from goalkit.logs.columns import ColumnKey, base_key, key_to_toml, parse_key_value
 from goalkit.logs.recordspec import spec_to_toml
 from goalkit.outputs import small_toml
 
@@ -24,6 +25,8 @@ TOP_KEYS = ("version", "shape", "episode_groups", "file_pattern", "keys", "field
 #: Roles in the ``[keys]`` table.
 ROLES = ("observation", "next_observation", "action", "reward", "success", "task", "frame",
          "task_goal", "termination", "time_limit")
+#: Roles whose key may take some columns of an array (``{key = "state", columns = [...]}``).
+COLUMN_ROLES = ("observation", "next_observation", "task_goal")
 #: Roles of the environment's own end-of-episode flags, one per action row (flat, grouped, per-file).
 FLAG_ROLES = ("termination", "time_limit")
 #: Boundary kinds in the ``[boundaries]`` table (flat shape only).
@@ -147,6 +150,26 @@ class Layout:
             return [k for _, k in self.fields]
         return [self.keys.observation]
 
+    def next_observation_keys(self) -> list[str]:
+        """Keys of the next observations, one per observation key (empty without next_observation).
+
+        With ``[fields]`` (all of one array), each field takes its columns from the
+        next_observation array; a column key observation passes its columns on to a plain
+        next_observation key.
+        """
+        nxt = self.keys.next_observation
+        if nxt is None:
+            return []
+        out = []
+        for key in self.observation_keys():
+            if isinstance(nxt, ColumnKey):
+                out.append(nxt)
+            elif isinstance(key, ColumnKey):
+                out.append(key.with_base(nxt))
+            else:
+                out.append(nxt)
+        return out
+
 
 def _string(value, *, file, key, what="a non-empty string"):
     if not isinstance(value, str) or not value:
@@ -197,10 +220,13 @@ def parse_layout(doc: Mapping, file="<layout>") -> Layout:
 
     keys_t = _table(doc, "keys", file)
     check_keys(keys_t, ROLES, file=file, section="[keys]", error=LayoutError)
-    keys = Keys(**{r: _string(v, file=file, key=f"keys.{r}") for r, v in keys_t.items()})
+    columns_ok = shape not in ("bag", "table")
+    keys = Keys(**{r: parse_key_value(v, file=file, key=f"keys.{r}", allow_columns=columns_ok and r in COLUMN_ROLES)
+                   for r, v in keys_t.items()})
 
     fields_t = _table(doc, "fields", file)
-    field_pairs = tuple((str(n), _string(v, file=file, key=f"fields.{n}")) for n, v in fields_t.items())
+    field_pairs = tuple((str(n), parse_key_value(v, file=file, key=f"fields.{n}", allow_columns=columns_ok))
+                        for n, v in fields_t.items())
 
     if keys.action is None:
         raise LayoutError("missing the action key; expected [keys] action = \"...\"", file=file,
@@ -216,9 +242,20 @@ def parse_layout(doc: Mapping, file="<layout>") -> Layout:
             if getattr(keys, role) is not None:
                 raise LayoutError(f"the {role} role is read from flat, grouped and per-file logs; "
                                   f"shape = \"{shape}\" does not carry it", file=file, key=f"keys.{role}")
-    if keys.next_observation is not None and keys.observation is None:
-        raise LayoutError("next_observation needs [keys] observation (not supported with [fields])",
-                          file=file, key="keys.next_observation")
+    if keys.next_observation is not None and field_pairs:
+        bases = sorted({base_key(k) for _, k in field_pairs})
+        if len(bases) != 1:
+            raise LayoutError(f"next_observation with [fields] needs every field to take its columns from one "
+                              f"array (the observation array); the fields read {', '.join(bases)}", file=file,
+                              key="keys.next_observation")
+        if isinstance(keys.next_observation, ColumnKey):
+            raise LayoutError("with [fields], give next_observation as the array's key: each field takes its "
+                              "own columns from it", file=file, key="keys.next_observation")
+    if (isinstance(keys.next_observation, ColumnKey) and isinstance(keys.observation, ColumnKey)
+            and len(keys.next_observation.columns) != len(keys.observation.columns)):
+        raise LayoutError(f"selects {len(keys.next_observation.columns)} columns, observation selects "
+                          f"{len(keys.observation.columns)}; expected the same number", file=file,
+                          key="keys.next_observation")
 
     def only(name, allowed_shape):
         if name in doc and shape != allowed_shape:
@@ -327,10 +364,10 @@ def layout_to_toml(layout: Layout) -> str:
     if layout.file_pattern is not None:
         lines.append(f"file_pattern = {_tstr(layout.file_pattern)}")
     lines += ["", "[keys]"]
-    lines += [f"{role} = {_tstr(key)}" for role, key in layout.keys.items()]
+    lines += [f"{role} = {key_to_toml(key, _tstr)}" for role, key in layout.keys.items()]
     if layout.fields:
         lines += ["", "[fields]"]
-        lines += [f"{_tkey(name)} = {_tstr(key)}" for name, key in layout.fields]
+        lines += [f"{_tkey(name)} = {key_to_toml(key, _tstr)}" for name, key in layout.fields]
     if layout.boundaries is not None:
         b = layout.boundaries
         lines += ["", "[boundaries]"]
