@@ -94,7 +94,7 @@ MATERIAL_FIELDS = _fields(
 TASK_REWARD_FIELD = Field("task_reward", "float32", "",
                           "the log's own reward of the transition (when the logs have one)")
 
-# ---- the environment's own end flags (issue 12) ------------------------------------------
+# ---- the environment's own end flags and the log source (issue 12) -----------------------
 #: Optional columns, present when the layout maps the environment's termination and time-limit
 #: flags (roles ``termination`` and ``time_limit``): facts about the logged transition, the same
 #: for every goal slot, and distinct from the goal-reached ``terminal``. Bootstrapping convention
@@ -107,7 +107,10 @@ END_FLAG_FIELDS = _fields(
 )
 #: EpisodeSet attribute of each end-flag column.
 END_FLAG_SOURCES = {"termination": "terminations", "time_limit": "time_limits"}
-# ---- end of the end-flag block -----------------------------------------------------------
+#: Optional column, present when the recipe names its sources (``[[sources]]``).
+SOURCE_FIELD = Field("source", "uint16", "", "the log source of the transition: its position in the recipe's "
+                                             "[[sources]] (names in the provenance)")
+# ---- end of the end-flag and source block ------------------------------------------------
 
 #: The columns a relabelling strategy fills (the rest come from the logs and the reward rule).
 GOAL_ADDRESS = ("goal_episode", "goal_step", "hop_episode", "hop_step", "join_step", "steps_to_goal")
@@ -116,4 +119,4 @@ SCORE_COLUMNS = ("goal_distance", "reward", "reached", "terminal")
 
 #: Every column, by name.
 ALL_FIELDS = {**INDEX_FIELDS, **MATERIAL_FIELDS, TASK_REWARD_FIELD.name: TASK_REWARD_FIELD,
-              **END_FLAG_FIELDS}
+              **END_FLAG_FIELDS, SOURCE_FIELD.name: SOURCE_FIELD}

@@ -18,6 +18,7 @@ from goalkit.audit.stattests import (FINE_BINS, binom_check, count_bound_check, 
 from goalkit.config import parse_toml
 from goalkit.errors import DatasetError, GoalkitError
 from goalkit.logs import open_logs
+from goalkit.logs.multi import open_sources, specs_from_provenance
 from goalkit.logs.layout import parse_layout
 from goalkit.pipeline.goal import make_goal_map
 from goalkit.write.format import open_set_file
@@ -84,7 +85,11 @@ class _Logs:
         layout = None
         if prov.get("layout_text"):
             layout = parse_layout(parse_toml(prov["layout_text"], f"{path}:layout", DatasetError), f"{path}:layout")
-        self.source = open_logs(Path(prov["logs_path"]), layout, skip_bad_episodes=rc.skip_bad_episodes)
+        if "sources" in prov:    # several files or sources: as read at build time
+            self.source = open_sources(specs_from_provenance(prov["sources"], DatasetError, file=path),
+                                       named=rc.named_sources, file=path)
+        else:
+            self.source = open_logs(Path(prov["logs_path"]), layout, skip_bad_episodes=rc.skip_bad_episodes)
         self.ids = np.asarray(self.source.episode_ids, dtype=np.int64)
         self.lengths = np.asarray(self.source.lengths, dtype=np.int64)
         base = Path(prov["recipe_file"]).parent if prov.get("recipe_file") else Path.cwd()
@@ -208,6 +213,9 @@ def audit_set(path, sample: int | None = None, alpha: float = ALPHA) -> AuditRep
                                file=path) from None
         flags = logs.end_flag_columns()
         for s in SPLITS:
+            if rc.named_sources != ("source" in f[s]):
+                report.failures.append(f"column {s}/source is " + ("missing: the recipe names its sources"
+                                       if rc.named_sources else "stored, but the recipe names no sources"))
             for col in END_FLAGS:
                 if col in flags and col not in f[s]:
                     report.failures.append(f"column {s}/{col} is missing: the layout maps the environment's "
@@ -307,6 +315,8 @@ class _Auditor:
         c = {k: grp[k][a:b] for k in INDEX}
         flags = [col for col in logs.end_flag_columns() if col in grp]
         c.update({col: grp[col][a:b] for col in flags})
+        if "source" in grp and self.rc.named_sources:
+            c["source"] = grp["source"][a:b]
         n = b - a
         v = self.jitter.random((n, 3))
         self.report.rows[split] += n
@@ -329,6 +339,9 @@ class _Auditor:
             return
         pos = np.searchsorted(logs.ids, ep)
         np.add.at(counts, pos, 1)
+        if "source" in c:
+            self.violated("source", "source is not the code of the episode's source in the recipe",
+                          c["source"].astype(np.int64) != logs.source.source_of(ep), split, a, c)
         T = logs.lengths[pos]
         other = np.where(c["hop_episode"] >= 0, c["hop_episode"], c["goal_episode"])
         T_goal = logs.length_of(other)

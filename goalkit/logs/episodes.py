@@ -50,6 +50,8 @@ class EpisodeSet:
     time_limits : ndarray of bool, shape (N,), optional
         The environment's time-limit (truncation) flag of each transition: true when the episode
         was cut after it (only on an episode's last transition). Never a terminal.
+    sources : ndarray of int16, shape (E,), optional
+        The log source (its code in the recipe's ``[[sources]]``) of each episode.
     fields : mapping of str to (int, int)
         Named observation fields and their column range ``[start, stop)``.
     source : str
@@ -67,6 +69,7 @@ class EpisodeSet:
     frames: np.ndarray | None = None
     terminations: np.ndarray | None = None
     time_limits: np.ndarray | None = None
+    sources: np.ndarray | None = None
     fields: Mapping[str, tuple[int, int]] = field(default_factory=dict)
     source: str = ""
 
@@ -143,6 +146,7 @@ class EpisodeSet:
             frames=cut(self.frames, sa, sb),
             terminations=cut(self.terminations, a, b),
             time_limits=cut(self.time_limits, a, b),
+            sources=cut(self.sources, start, stop),
             fields=dict(self.fields),
             source=self.source,
         )
@@ -233,7 +237,7 @@ def concat_episodes(parts: "list[EpisodeSet]") -> EpisodeSet:
         offsets=np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64),
         episode_ids=cat("episode_ids"), rewards=cat("rewards"), success=cat("success"),
         task_ids=cat("task_ids"), task_goals=cat("task_goals"), frames=cat("frames"),
-        terminations=cat("terminations"), time_limits=cat("time_limits"),
+        terminations=cat("terminations"), time_limits=cat("time_limits"), sources=cat("sources"),
         fields=dict(parts[0].fields), source=parts[0].source)
 
 

@@ -114,4 +114,6 @@ def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gather
     for name, attr in END_FLAG_SOURCES.items():
         if name in plan.columns:
             cols[name] = np.take(getattr(chunk, attr), t, axis=0).astype(np.uint8)
+    if "source" in plan.columns:
+        cols["source"] = np.take(chunk.sources, src_pos, axis=0).astype(np.uint16)
     return cols, keys

@@ -18,7 +18,8 @@ from goalkit.pipeline.split import split_codes
 from goalkit.relabel.strategies import STRATEGIES
 from goalkit.relabel.strategies import strategy_names as table_names
 from goalkit.rows import END_FLAG_SOURCES, SPLITS
-from goalkit.write.format import END_FLAG_COLUMNS, INDEX_COLUMNS, MATERIAL_COLUMNS, TASK_REWARD_COLUMN
+from goalkit.logs.multi import open_sources
+from goalkit.write.format import END_FLAG_COLUMNS, INDEX_COLUMNS, MATERIAL_COLUMNS, SOURCE_COLUMN, TASK_REWARD_COLUMN
 
 #: Row keys are ``global transition index * SLOT_SPAN + slot``.
 SLOT_SPAN = 1 << 16
@@ -73,7 +74,8 @@ class BuildPlan:
         return int(self.transition_offsets[-1])
 
 
-def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_task_reward, end_flags=()) -> dict:
+def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_task_reward, end_flags=(),
+             has_source=False) -> dict:
     goal_dtype = np.dtype(recipe.goal.dtype)
     kinds = {"goal": (goal_dtype, (goal_dim,)), "obs": (obs_dtype, obs_shape), "act": (act_dtype, act_shape)}
     cols = {}
@@ -87,6 +89,8 @@ def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_t
     for name, (dtype, _) in END_FLAG_COLUMNS.items():
         if name in end_flags:
             cols[name] = (np.dtype(dtype), ())
+    if has_source:
+        cols[SOURCE_COLUMN[0]] = (np.dtype(SOURCE_COLUMN[1]), ())
     return cols
 
 
@@ -141,7 +145,9 @@ def check_mixture(recipe, first, context, goal_dim: int) -> None:
 
 
 def open_source(recipe):
-    """Open the recipe's logs with its layout."""
+    """Open the recipe's logs with its layout (several files or sources: one MultiSource)."""
+    if recipe.sources is not None:
+        return open_sources(recipe.sources, named=recipe.named_sources, file=recipe.file)
     from goalkit.logs import open_logs
 
     layout = None
@@ -186,7 +192,8 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
     check_mixture(recipe, first, context, goal_map.dim)
     cols = _columns(recipe, obs_shape, act_shape, first.observations.dtype, first.actions.dtype,
                     goal_map.dim, first.rewards is not None,
-                    [name for name, attr in END_FLAG_SOURCES.items() if getattr(first, attr) is not None])
+                    [name for name, attr in END_FLAG_SOURCES.items() if getattr(first, attr) is not None],
+                    bool(recipe.named_sources))
     table = None
     if needs_goal_table(recipe.mixture):
         table = goal_table(source, goal_map, np.dtype(recipe.goal.dtype), max_transitions)

@@ -119,6 +119,11 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
                 i = _first(diff)
                 report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): {name} is not the log's "
                             f"flag of the transition")
+    if "source" in cols:
+        diff = np.ones(n, bool) if chunk.sources is None else cols["source"] != chunk.sources[pos]
+        if diff.any():
+            i = _first(diff)
+            report.fail(f"{split_name} row {row0 + i} ({_row_text(cols, i)}): source is not the episode's source")
     phi = plan.goal_map(chunk, np.arange(chunk.observations.shape[0])).astype(gd)
     achieved = phi[cur + 1]
     if "reached_goal" in cols:
