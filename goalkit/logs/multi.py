@@ -60,8 +60,8 @@ def expand_entries(entries, shape: str | None, *, file=None, key="logs.path") ->
     Raises
     ------
     LogError
-        A missing file or folder, a glob that matches nothing, a folder without logs, or one
-        file named twice (two names of the same file).
+        A missing file or folder, a glob that matches nothing, or a folder without logs. A file
+        named twice (overlapping globs, a link) is kept once, under its first name in order.
     """
     folder_is_log = shape in ("per-file", "bag", "table")
     out = []
@@ -85,15 +85,17 @@ def expand_entries(entries, shape: str | None, *, file=None, key="logs.path") ->
             else:
                 out.append(m)
     out = sorted({os.path.abspath(p) for p in out}, key=_natural_path)
-    seen = {}
-    for p in out:
+    seen, kept = set(), []
+    for p in out:                         # one file named twice (a link, overlapping globs) is read once
         try:
             st = os.stat(p)
+            ident = (st.st_dev, st.st_ino)
         except OSError:
-            continue                      # the reader names a dangling link or a loop
-        other = seen.setdefault((st.st_dev, st.st_ino), p)
-        if other != p:
-            raise LogError(f"{p} is the same file as {other} (a link); expected each log once", file=file, key=key)
+            ident = p                     # the reader names a dangling link or a loop
+        if ident not in seen:
+            seen.add(ident)
+            kept.append(p)
+    out = kept
     return out
 
 

@@ -45,7 +45,7 @@ def recipe_of(goalset):
     layout = Path(prov["layout_path"]) if prov.get("layout_path") else None
     if several:   # the files and layouts as read at build time
         specs = specs_from_provenance(prov["sources"], DatasetError, file=goalset.path)
-        return replace(recipe, logs_path=None, layout_path=None, sources=specs)
+        return replace(recipe, logs_path=None, layout_path=layout, sources=specs)
     return replace(recipe, logs_path=Path(prov["logs_path"]), layout_path=layout)
 
 

@@ -271,3 +271,83 @@ def test_cli_refuses_a_bad_boundaries_table_with_one_line(tmp_path, car):
     assert res.exit_code == 2
     lines = res.stderr.strip().splitlines() if res.stderr_bytes is not None else res.output.strip().splitlines()
     assert len(lines) == 1 and "key boundaries.done" in lines[0] and "lay.toml" in lines[0]
+
+
+def test_over_several_files_and_sources(tmp_path, car, pendulum):
+    """MountainCar episodes cut over three flat files (HDF5 and NPZ) of one source, and Pendulum
+    episodes in a grouped file of another: boundaries, lengths and both flags as the environments
+    reported them, and a built set verified."""
+    from goalkit.logs.layout import layout_to_toml, parse_layout
+    from goalkit.logs.multi import open_sources
+    from goalkit.archive import SourceSpec
+
+    cuts = [(0, 2), (2, 3), (3, len(car))]
+    pairs = {"shape": "flat", "keys": {"observation": "obs", "next_observation": "next_obs", "action": "act",
+                                       "termination": "term", "time_limit": "trunc"},
+             "boundaries": {"done": ["term", "trunc"]}}
+    for i, (a, b) in enumerate(cuts):
+        eps = car[a:b]
+        arrays = {"obs": np.concatenate([e["obs"][:-1] for e in eps]),
+                  "next_obs": np.concatenate([e["obs"][1:] for e in eps]),
+                  "act": np.concatenate([e["act"] for e in eps]).astype(np.float64),
+                  "term": np.concatenate([e["term"] for e in eps]),
+                  "trunc": np.concatenate([e["trunc"] for e in eps])}
+        if i == 1:
+            np.savez(tmp_path / f"car-{i}.npz", **arrays)
+        else:
+            with h5py.File(tmp_path / f"car-{i}.h5", "w") as f:
+                for k, v in arrays.items():
+                    f[k] = v
+    with h5py.File(tmp_path / "pend.h5", "w") as f:
+        for i, e in enumerate(pendulum):
+            g = f.create_group(f"runs/r{i}")
+            g["obs"], g["act"], g["term"], g["trunc"] = e["obs"], e["act"], e["term"], e["trunc"]
+    grouped = {"shape": "grouped", "episode_groups": "runs/*",
+               "keys": {"observation": {"key": "obs", "columns": [0, 1]}, "action": "act",
+                        "termination": "term", "time_limit": "trunc"}}
+    # observations of one width for both: MountainCar (2) and Pendulum's cos/sin columns 0, 1
+    specs = [SourceSpec("car", (str(tmp_path / "car-*"),), parse_layout(pairs)),
+             SourceSpec("pendulum", (str(tmp_path / "pend.h5"),), parse_layout(grouped))]
+    src = open_sources(specs, named=True)
+    want = {"car": car, "pendulum": pendulum}
+    for code, name in enumerate(src.source_names):
+        mine = src.episode_sources == code
+        eps = want[name]
+        np.testing.assert_array_equal(src.lengths[mine], [len(e["act"]) for e in eps])
+        pos = np.flatnonzero(mine)
+        chunk = src.read(int(pos[0]), int(pos[-1]) + 1)
+        np.testing.assert_array_equal(chunk.terminations, np.concatenate([e["term"] for e in eps]))
+        np.testing.assert_array_equal(chunk.time_limits, np.concatenate([e["trunc"] for e in eps]))
+        assert set(chunk.sources.tolist()) == {code}
+    (tmp_path / "car.toml").write_text(layout_to_toml(parse_layout(pairs)))
+    (tmp_path / "pend.toml").write_text(layout_to_toml(parse_layout(grouped)))
+    (tmp_path / "r.toml").write_text("""
+version = 1
+[[sources]]
+name = "car"
+path = ["car-0.h5", "car-1.npz", "car-2.h5"]
+layout = "car.toml"
+[[sources]]
+name = "pendulum"
+path = "pend.h5"
+layout = "pend.toml"
+[goal]
+indices = [0]
+[relabel.weights]
+future = 1
+[reward]
+threshold = 0.05
+[output]
+path = "both.h5"
+""")
+    result = build(load_recipe(tmp_path / "r.toml"))
+    with h5py.File(result.path, "r") as f:
+        for s in ("train", "validation"):
+            g = f[s]
+            src_code, limit = g["source"][:], g["time_limit"][:]
+            last = g["source_step"][:] == 199
+            # Pendulum: every last step is a time limit; MountainCar: time limits only at step 199
+            assert np.all(limit[src_code == 1] == last[src_code == 1])
+            assert np.all(limit[~last] == 0)
+    report = verify(result.path)
+    assert report.ok, report.failures
