@@ -257,3 +257,19 @@ def test_property_a_split_archive_builds_the_set_of_the_concatenated_archive(tmp
     whole = build(load_recipe(recipe(d, "whole", '[logs]\npath = "archive.h5"\nlayout = "layout.toml"\n')))
     parts = build(load_recipe(recipe(d, "parts", f'[logs]\npath = [{listed}]\nlayout = "layout.toml"\n')))
     assert digest(columns(parts.path)) == digest(columns(whole.path))
+
+
+def test_build_prints_rows_per_source(tmp_path):
+    write(tmp_path / "x.h5", episodes(11, 4))
+    write(tmp_path / "y.npz", episodes(12, 2))
+    path = recipe(tmp_path, "cli", '[[sources]]\nname = "teleop"\npath = "x.h5"\nlayout = "layout.toml"\n'
+                                   '[[sources]]\nname = "scripted"\npath = "y.npz"\nlayout = "layout.toml"\n')
+    res = _cli_build(path)
+    assert res.exit_code == 0, res.output
+    with h5py.File(tmp_path / "cli.h5", "r") as f:
+        summary = json.loads(f.attrs["summary"])["sources"]
+    for name in ("teleop", "scripted"):
+        v = summary[name]
+        row = f"  {name:<15} {v['episodes']:>10,} {v['transitions']:>12,}   {v['rows']['train']:,}/{v['rows']['validation']:,}"
+        assert row in res.output
+    assert summary["teleop"]["episodes"] == 4 and summary["scripted"]["episodes"] == 2
