@@ -26,21 +26,30 @@ from goalkit.logs.npzfile import NpzArrays
 
 #: Role -> names looked for, best first (all compared in lower case).
 ROLE_NAMES = {
-    "observation": ("obs", "observation", "observations", "state", "states"),
+    "observation": ("obs", "observation", "observations", "state", "states", "ob", "obs_t", "s_t",
+                    "proprio", "robot_state"),
     "next_observation": ("next_obs", "next_observation", "next_observations", "next_state",
-                         "next_states"),
-    "action": ("act", "action", "actions"),
-    "reward": ("rew", "reward", "rewards"),
-    "success": ("success", "successes", "is_success", "succeeded"),
-    "task": ("task", "task_id", "task_ids", "task_index"),
-    "frame": ("frame", "frames", "image", "images", "rgb", "camera", "cam", "pixels"),
-    "task_goal": ("goal", "goals", "task_goal", "target"),
+                         "next_states", "obs_next", "next_ob", "new_obs", "obs2", "obs_tp1", "s_next",
+                         "s_tp1", "state_next", "next_obs_t"),
+    "action": ("act", "action", "actions", "acts", "ctrl", "ctrls", "control", "controls", "u",
+               "command", "commands", "a_t"),
+    "reward": ("rew", "reward", "rewards", "rews", "r_t"),
+    "success": ("success", "successes", "is_success", "succeeded", "solved", "goal_reached"),
+    "task": ("task", "task_id", "task_ids", "task_index", "task_idx"),
+    "frame": ("frame", "frames", "image", "images", "rgb", "camera", "cam", "pixels", "img", "imgs"),
+    "task_goal": ("goal", "goals", "task_goal", "target", "desired_goal", "goal_pos", "target_pos"),
+    "termination": ("terminated", "terminateds", "term", "terms", "termination", "terminations",
+                    "terminal", "terminals", "is_terminal"),
+    "time_limit": ("truncated", "truncateds", "trunc", "truncs", "truncation", "truncations", "timeout",
+                   "timeouts", "time_limit", "time_limits", "timelimit", "timelimits"),
 }
-#: Boundary kind -> names looked for, in the order the kinds are preferred.
+#: Boundary kind -> names looked for, in the order the kinds are preferred. Without a done
+#: array, the termination and time-limit flags found are the done flags (OR-ed).
 BOUNDARY_NAMES = {
     "offsets": ("offsets", "episode_offsets", "episode_starts", "episode_start", "starts"),
-    "episode_id": ("episode_id", "episode_ids", "episode", "episode_index", "ep", "ids"),
-    "done": ("done", "dones", "terminal", "terminals", "episode_end"),
+    "episode_id": ("episode_id", "episode_ids", "episode", "episode_index", "ep", "ids", "run_id",
+                   "traj_id", "trajectory_id", "episode_idx"),
+    "done": ("done", "dones", "episode_end", "is_last", "ends"),
 }
 
 
@@ -163,6 +172,9 @@ def _flat(path, arrays, where, prefix="") -> Layout:
         if name is not None:
             boundary = {kind: prefix + name}
             break
+    flags = [keys[r] for r in ("termination", "time_limit") if r in keys]
+    if boundary is None and flags:                 # the environment's own end flags, OR-ed
+        boundary = {"done": [prefix + n for n in flags]}
     if boundary is None:
         looked = "; ".join(f"{k}: {', '.join(v)}" for k, v in BOUNDARY_NAMES.items())
         raise LayoutError(f"could not find episode boundaries {where} (found: {_what_found(arrays)}); "

@@ -307,15 +307,19 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None) -> Recipe
 
 def _holds_logs(folder: Path, layout_path) -> bool:
     """A folder given as ``[logs] path`` stands for its HDF5/NPZ log files (several logs) unless it
-    is a per-file folder: its layout says ``shape = "per-file"``, or, without a layout, it holds
-    ``.h5``/``.hdf5`` files (a per-file folder holds only ``.npz``)."""
-    if layout_path is not None:
-        return load_layout(layout_path).shape not in ("per-file", "bag", "table")
+    is a per-file folder: its layout says ``shape = "per-file"`` (or bag, table), or, without a
+    layout, it holds no ``.h5``/``.hdf5``/``.hdf`` file (a per-file folder holds ``.npz`` files).
+    A folder with no log file at all is left to the reader, which names the problem."""
     try:
-        names = os.listdir(folder)
+        names = [n.lower() for n in os.listdir(folder)]
     except OSError:
         return False
-    return any(n.lower().endswith((".h5", ".hdf5", ".hdf")) for n in names)
+    if layout_path is not None:
+        doc = small_toml(layout_path)
+        if doc is not None and doc.get("shape") in ("per-file", "bag", "table"):
+            return False
+        return any(n.endswith((".h5", ".hdf5", ".hdf", ".npz")) for n in names)
+    return any(n.endswith((".h5", ".hdf5", ".hdf")) for n in names)
 
 
 def _entries(value, base: Path, file, key) -> tuple:
