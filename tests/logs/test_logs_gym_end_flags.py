@@ -351,3 +351,34 @@ path = "both.h5"
             assert np.all(limit[~last] == 0)
     report = verify(result.path)
     assert report.ok, report.failures
+
+
+@pytest.mark.parametrize("env", ["car", "pendulum"])
+def test_the_proposed_layout_reads_the_recordings_as_recorded(tmp_path, env, request):
+    """The layout `goalkit scan` proposes for the recordings (confirmed as it is) gives the
+    environment's boundaries, lengths and both flags, in every storage shape."""
+    from goalkit.logs import propose_layout
+
+    eps = request.getfixturevalue(env)
+    lengths = [len(e["act"]) for e in eps]
+    seen = set()
+    for name, path, _ in stores(tmp_path, eps, env):
+        if path in seen:
+            continue
+        seen.add(path)
+        lay = propose_layout(path)
+        assert lay.keys.termination == "term" and lay.keys.time_limit == "trunc", name
+        src = open_logs(path, lay)
+        assert src.lengths.tolist() == lengths, name
+        es = src.read(0, len(eps))
+        np.testing.assert_array_equal(es.terminations, np.concatenate([e["term"] for e in eps]), err_msg=name)
+        np.testing.assert_array_equal(es.time_limits, np.concatenate([e["trunc"] for e in eps]), err_msg=name)
+    assert len(seen) == 4
+    # without an id array, the flags themselves are the proposed boundaries
+    flat = {"obs": np.concatenate([e["obs"][:-1] for e in eps]), "next_obs": np.concatenate([e["obs"][1:] for e in eps]),
+            "acts": np.concatenate([e["act"] for e in eps]), "terminated": np.concatenate([e["term"] for e in eps]),
+            "truncated": np.concatenate([e["trunc"] for e in eps])}
+    np.savez(tmp_path / "bare.npz", **flat)
+    lay = propose_layout(tmp_path / "bare.npz")
+    assert lay.boundaries.done == ("terminated", "truncated") and lay.keys.action == "acts"
+    assert open_logs(tmp_path / "bare.npz", lay).lengths.tolist() == lengths
