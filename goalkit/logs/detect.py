@@ -37,11 +37,11 @@ ROLE_NAMES = {
     "success": ("success", "successes", "is_success", "succeeded", "solved", "goal_reached"),
     "task": ("task", "task_id", "task_ids", "task_index", "task_idx"),
     "frame": ("frame", "frames", "image", "images", "rgb", "camera", "cam", "pixels", "img", "imgs"),
-    "task_goal": ("goal", "goals", "task_goal", "target", "desired_goal", "goal_pos", "target_pos"),
+    "task_goal": ("goal", "goals", "task_goal", "target", "goal_pos", "target_pos"),
     "termination": ("terminated", "terminateds", "term", "terms", "termination", "terminations",
-                    "terminal", "terminals", "is_terminal"),
-    "time_limit": ("truncated", "truncateds", "trunc", "truncs", "truncation", "truncations", "timeout",
-                   "timeouts", "time_limit", "time_limits", "timelimit", "timelimits"),
+                    "terminal", "terminals"),
+    "time_limit": ("truncated", "truncateds", "trunc", "truncs", "truncation", "truncations",
+                   "time_limit", "time_limits", "timelimit", "timelimits"),
 }
 #: Boundary kind -> names looked for, in the order the kinds are preferred. Without a done
 #: array, the termination and time-limit flags found are the done flags (OR-ed).
@@ -49,7 +49,7 @@ BOUNDARY_NAMES = {
     "offsets": ("offsets", "episode_offsets", "episode_starts", "episode_start", "starts"),
     "episode_id": ("episode_id", "episode_ids", "episode", "episode_index", "ep", "ids", "run_id",
                    "traj_id", "trajectory_id", "episode_idx"),
-    "done": ("done", "dones", "episode_end", "is_last", "ends"),
+    "done": ("done", "dones", "episode_end", "ends"),
 }
 
 

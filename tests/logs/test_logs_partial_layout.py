@@ -37,7 +37,7 @@ def test_action_synonyms(tmp_path, act):
 
 
 @pytest.mark.parametrize("term, trunc", [("term", "trunc"), ("terminated", "truncated"),
-                                         ("terminals", "timeouts")])
+                                         ("terminals", "time_limits")])
 def test_end_flag_synonyms_become_roles_and_boundaries(tmp_path, term, trunc):
     _flat(tmp_path / "g.h5", {"obs": "observations", "next": "next_observations", "act": "actions",
                               "term": term, "trunc": trunc})

@@ -273,3 +273,15 @@ def test_build_prints_rows_per_source(tmp_path):
         row = f"  {name:<15} {v['episodes']:>10,} {v['transitions']:>12,}   {v['rows']['train']:,}/{v['rows']['validation']:,}"
         assert row in res.output
     assert summary["teleop"]["episodes"] == 4 and summary["scripted"]["episodes"] == 2
+
+
+def test_an_output_over_a_listed_log_is_refused(tmp_path):
+    write(tmp_path / "a.h5", episodes(13, 3))
+    write(tmp_path / "b.h5", episodes(14, 3))
+    path = recipe(tmp_path, "over", '[logs]\npath = ["a.h5", "*.h5"]\nlayout = "layout.toml"\n')
+    res = CliRunner().invoke(cli_main, ["build", str(path), "--out", str(tmp_path / "b.h5")])
+    assert res.exit_code == 2
+    assert "refusing to write over an input" in res.stderr and "b.h5" in res.stderr
+    assert h5py.is_hdf5(tmp_path / "b.h5")
+    with h5py.File(tmp_path / "b.h5", "r") as f:
+        assert set(f) == {"obs", "act", "ids"}                 # the log is untouched
