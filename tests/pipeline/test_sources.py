@@ -285,3 +285,18 @@ def test_an_output_over_a_listed_log_is_refused(tmp_path):
     assert h5py.is_hdf5(tmp_path / "b.h5")
     with h5py.File(tmp_path / "b.h5", "r") as f:
         assert set(f) == {"obs", "act", "ids"}                 # the log is untouched
+
+
+def test_a_tuned_copy_in_another_folder_keeps_every_source_path(tmp_path):
+    from goalkit.tune.recipe_edit import tuned_recipe_text
+
+    write(tmp_path / "x.h5", episodes(15, 3))
+    write(tmp_path / "y.npz", episodes(16, 3))
+    text = recipe(tmp_path, "t", '[[sources]]\nname = "x"\npath = ["x.h5"]\nlayout = "layout.toml"\n'
+                                 '[[sources]]\nname = "y"\npath = "y*.npz"\nlayout = "layout.toml"\n').read_text()
+    (tmp_path / "sub").mkdir()
+    edit = tuned_recipe_text(text, threshold=0.3, source_dir=tmp_path, target_dir=tmp_path / "sub")
+    (tmp_path / "sub" / "t.toml").write_text(edit.text)
+    moved = load_recipe(tmp_path / "sub" / "t.toml")
+    assert [s.entries for s in moved.sources] == [(str(tmp_path / "x.h5"),), (str(tmp_path / "y*.npz"),)]
+    assert [s.layout_path for s in moved.sources] == [str(tmp_path / "layout.toml")] * 2
