@@ -61,18 +61,18 @@ def render_report(report: dict) -> list[str]:
     return out
 
 
-def _offer_partial(exc: LayoutError, logs, write_layout, replace: bool, silent: bool) -> None:
-    """Detection could not decide: write (or print) a partial layout and say so in the error."""
+def _offer_partial(exc: LayoutError, logs, write_layout, replace: bool) -> None:
+    """Detection could not decide: save a partial layout (with --write-layout) or say how to get one."""
     text = partial_layout(logs, reason=exc.message)
+    if text is None:                       # no array found: nothing to list
+        return
     if write_layout is not None:
         write_text(write_layout, text, replace=replace, ours=is_layout_file, what="layout file")
         exc.message += (f"; a partial layout listing every array with a guess per role was saved to "
                         f"{write_layout}: finish it, then rerun with --layout {write_layout}")
     else:
-        if not silent:
-            click.echo(text, nl=False)
-        exc.message += ("; the partial layout above lists every array with a guess per role: save it with "
-                        "--write-layout FILE and finish it")
+        exc.message += ("; --write-layout FILE saves a partial layout listing every array with a guess per "
+                        "role, for you to finish")
     exc.args = (exc.render(),)
 
 
@@ -119,7 +119,7 @@ def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, qui
         try:
             layout = propose_layout(logs)
         except LayoutError as exc:
-            _offer_partial(exc, logs, write_layout, replace, quiet or as_json)
+            _offer_partial(exc, logs, write_layout, replace)
             raise
         proposed = True
     try:

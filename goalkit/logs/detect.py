@@ -384,7 +384,8 @@ def partial_layout(path, reason: str = "") -> str:
 
     Returns
     -------
-    str
+    str or None
+        None when no array was found (nothing to list).
     """
     path = str(path)
     episode_groups = None
@@ -411,6 +412,8 @@ def partial_layout(path, reason: str = "") -> str:
                 where = f"in episode group {first} (paths inside it)"
             else:
                 shape, where = "flat", "in the file"
+    if not arrays:
+        return None
     guesses = _guess_roles(arrays)
     lines = [f"# A partial layout for {os.path.basename(path)}: goalkit could not decide all of it"
              + (f" ({reason})" if reason else "") + ".",
@@ -419,7 +422,7 @@ def partial_layout(path, reason: str = "") -> str:
              "# A key may take some columns of an array: {key = \"state\", columns = [14, 15, 16]}",
              "# (docs/layout.md). Arrays found " + where + " (key, shape, dtype):"]
     width = max([len(p) for p, _, _ in arrays] + [3])
-    lines += [f"#   {p:<{width}}  {str(s):<16} {d}" for p, s, d in arrays] or ["#   (none)"]
+    lines += [f"#   {p:<{width}}  {str(s):<16} {d}" for p, s, d in arrays]
     if len(arrays) >= MAX_LISTED:
         lines.append(f"#   ... (the first {MAX_LISTED})")
     lines += ["", "version = 1", f"shape = \"{shape}\""]

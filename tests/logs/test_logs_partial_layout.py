@@ -114,7 +114,12 @@ def test_scan_writes_the_partial_layout_and_exits_2(tmp_path):
     ok = CliRunner().invoke(cli_main, ["scan", str(tmp_path / "arm.h5"), "--layout", str(out)])
     assert ok.exit_code == 0, ok.output
     assert "episodes:     4" in ok.output
-    # without --write-layout the partial layout goes to stdout and the error says how to save it
+    # without --write-layout the one error line says how to get the partial layout; stdout stays empty
     shown = CliRunner().invoke(cli_main, ["scan", str(tmp_path / "arm.h5")])
-    assert shown.exit_code == 2 and "version = 1" in shown.stdout
-    assert "save it with --write-layout FILE" in shown.stderr
+    assert shown.exit_code == 2 and shown.stdout == ""
+    assert len(shown.stderr.strip().splitlines()) == 1
+    assert "--write-layout FILE saves a partial layout listing every array" in shown.stderr
+    # a folder without any log: nothing to list, no partial layout
+    (tmp_path / "none").mkdir()
+    none = CliRunner().invoke(cli_main, ["scan", str(tmp_path / "none"), "--write-layout", str(tmp_path / "n.toml")])
+    assert none.exit_code == 2 and not (tmp_path / "n.toml").exists() and "partial layout" not in none.stderr
