@@ -23,7 +23,7 @@ import numpy as np
 
 from goalkit.archive import SOURCE_SHIFT, SourceSpec, is_pattern, source_base
 from goalkit.config import parse_toml
-from goalkit.errors import LogError
+from goalkit.errors import GoalkitError, LogError
 from goalkit.logs.episodes import EpisodeSet, concat_episodes
 from goalkit.logs.layout import load_layout, parse_layout
 from goalkit.logs.naming import natural_key
@@ -173,7 +173,13 @@ class MultiSource:
             files = expand_entries(s.entries, shape, file=file, key=s.key)
             self.file_entries.append((code, files))
             for path in files:
-                log = open_logs(path, layout, skip_bad_episodes=s.skip_bad_episodes)
+                try:
+                    log = open_logs(path, layout, skip_bad_episodes=s.skip_bad_episodes)
+                except GoalkitError as exc:      # say which source the file belongs to
+                    if s.name:
+                        exc.message += f" (source '{s.name}')"
+                        exc.args = (exc.render(),)
+                    raise
                 if offset + log.total_episodes >= base + (1 << SOURCE_SHIFT) and base:
                     raise LogError(f"more than 2**{SOURCE_SHIFT} episodes in one source", file=path)
                 self.parts.append(_Part(code, offset, log))

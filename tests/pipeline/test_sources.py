@@ -182,7 +182,7 @@ def _cli_build(recipe_path):
      r"key sources: expected either \[logs\] or \[\[sources\]\], not both"),
     ("layout disagrees", '[[sources]]\nname = "t"\npath = "a.h5"\nlayout = "layout.toml"\n'
                          '[[sources]]\nname = "u"\npath = "b.npz"\nlayout = "other.toml"\n',
-     r"b.npz: key done: missing array; found: act, ids, obs"),
+     r"b.npz: key done: missing array; found: act, ids, obs \(source 'u'\)"),
     ("sources disagree", '[[sources]]\nname = "t"\npath = "a.h5"\nlayout = "layout.toml"\n'
                          '[[sources]]\nname = "u"\npath = "wide.npz"\nlayout = "layout.toml"\n',
      r"wide.npz: observation width is 5, but 3 in .*a.h5; expected every file of every source to agree "
