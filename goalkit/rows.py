@@ -101,6 +101,24 @@ MATERIAL_FIELDS = _fields(
 TASK_REWARD_FIELD = Field("task_reward", "float32", "",
                           "the log's own reward of the transition (when the logs have one)")
 
+# ---- the environment's own end flags and the log source (issue 12) -----------------------
+#: Optional columns, present when the layout maps the environment's termination and time-limit
+#: flags (roles ``termination`` and ``time_limit``): facts about the logged transition, the same
+#: for every goal slot, and distinct from the goal-reached ``terminal``. Bootstrapping convention
+#: (Pardo et al., 2018, "Time Limits in Reinforcement Learning"): a time limit is never terminal.
+END_FLAG_FIELDS = _fields(
+    ("termination", "uint8", "", "1 when the environment ended the episode at s_t+1 (the log's "
+                                 "termination flag; only on an episode's last transition)"),
+    ("time_limit", "uint8", "", "1 when a time limit cut the episode after this transition (the log's "
+                                "time-limit flag); never a terminal: bootstrap from s_t+1"),
+)
+#: EpisodeSet attribute of each end-flag column.
+END_FLAG_SOURCES = {"termination": "terminations", "time_limit": "time_limits"}
+#: Optional column, present when the recipe names its sources (``[[sources]]``).
+SOURCE_FIELD = Field("source", "uint16", "", "the log source of the transition: its position in the recipe's "
+                                             "[[sources]] (names in the provenance)")
+# ---- end of the end-flag and source block ------------------------------------------------
+
 #: The columns a relabelling strategy fills (the rest come from the logs and the reward rule).
 GOAL_ADDRESS = ("goal_episode", "goal_step", "hop_episode", "hop_step", "join_step", "steps_to_goal")
 #: The columns :func:`goalkit.reward.score` fills, in this order.
@@ -109,4 +127,5 @@ SCORE_COLUMNS = ("goal_distance", "reward", "reached", "terminal")
 LABEL_COLUMNS = ("discount_weight", "return_to_goal", "bootstrap_mask")
 
 #: Every column, by name.
-ALL_FIELDS = {**INDEX_FIELDS, **MATERIAL_FIELDS, TASK_REWARD_FIELD.name: TASK_REWARD_FIELD}
+ALL_FIELDS = {**INDEX_FIELDS, **MATERIAL_FIELDS, TASK_REWARD_FIELD.name: TASK_REWARD_FIELD,
+              **END_FLAG_FIELDS, SOURCE_FIELD.name: SOURCE_FIELD}

@@ -38,6 +38,8 @@ class AuditRecipe:
     goal : dict
         The ``[goal]`` table.
     skip_bad_episodes : bool
+    named_sources : bool
+        The recipe names its sources (``[[sources]]``): rows carry a ``source`` column.
     """
 
     weights: dict
@@ -54,6 +56,7 @@ class AuditRecipe:
     validation: float
     goal: dict
     skip_bad_episodes: bool
+    named_sources: bool = False
 
 
 def parse_audit_recipe(text: str) -> AuditRecipe:
@@ -87,4 +90,5 @@ def parse_audit_recipe(text: str) -> AuditRecipe:
         validation=float(doc.get("split", {}).get("validation", 0.1)),
         goal=dict(doc.get("goal", {})),
         skip_bad_episodes=bool(doc.get("logs", {}).get("skip_bad_episodes", False)),
+        named_sources=isinstance(doc.get("sources"), list),
     )

@@ -18,6 +18,7 @@ from goalkit.audit.stattests import (FINE_BINS, binom_check, count_bound_check, 
 from goalkit.config import parse_toml
 from goalkit.errors import DatasetError, GoalkitError
 from goalkit.logs import open_logs
+from goalkit.logs.multi import open_sources, specs_from_provenance
 from goalkit.logs.layout import parse_layout
 from goalkit.pipeline.goal import make_goal_map
 from goalkit.write.format import open_set_file
@@ -35,6 +36,9 @@ INDEX = ("source_episode", "source_step", "slot", "strategy", "goal_episode", "g
 #: The training-label columns (docs/dataset.md); audited where stored (older sets lack them).
 LABELS = ("discount_weight", "return_to_goal", "bootstrap_mask")
 SPLITS = ("train", "validation")
+#: The environment's end flags: set column -> (layout role, EpisodeSet attribute). Stated here,
+#: apart from the builder's row schema: each column is the log's flag of transition t.
+END_FLAGS = {"termination": ("termination", "terminations"), "time_limit": ("time_limit", "time_limits")}
 
 
 @dataclass
@@ -83,7 +87,11 @@ class _Logs:
         layout = None
         if prov.get("layout_text"):
             layout = parse_layout(parse_toml(prov["layout_text"], f"{path}:layout", DatasetError), f"{path}:layout")
-        self.source = open_logs(Path(prov["logs_path"]), layout, skip_bad_episodes=rc.skip_bad_episodes)
+        if "sources" in prov:    # several files or sources: as read at build time
+            self.source = open_sources(specs_from_provenance(prov["sources"], DatasetError, file=path),
+                                       named=rc.named_sources, file=path)
+        else:
+            self.source = open_logs(Path(prov["logs_path"]), layout, skip_bad_episodes=rc.skip_bad_episodes)
         self.ids = np.asarray(self.source.episode_ids, dtype=np.int64)
         self.lengths = np.asarray(self.source.lengths, dtype=np.int64)
         base = Path(prov["recipe_file"]).parent if prov.get("recipe_file") else Path.cwd()
@@ -105,8 +113,17 @@ class _Logs:
         pos = np.minimum(np.searchsorted(self.ids, episodes), len(self.ids) - 1)
         return np.where(self.ids[pos] == episodes, self.lengths[pos], -1)
 
-    def achieved_and_task_goal(self, episodes, steps):
-        """phi(s_t+1) (goal dtype) and the log's task goal (or None) of each (episode, t)."""
+    def end_flag_columns(self) -> list:
+        """The end-flag columns a set of these logs must have (the flags its layout maps)."""
+        keys = self.source.layout.keys
+        return [col for col, (role, _) in END_FLAGS.items() if getattr(keys, role) is not None]
+
+    def achieved_and_task_goal(self, episodes, steps, flags=()):
+        """phi(s_t+1) (goal dtype), the log's task goal (or None) and end flags of each (episode, t).
+
+        Returns ``(achieved, task, flag_values)``: ``flag_values`` maps each of ``flags`` (end-flag
+        column names) to the log's own flag of each (episode, t), as uint8.
+        """
         pos = np.searchsorted(self.ids, episodes)
         a, b = int(pos.min()), int(pos.max()) + 1
         chunk = self.source.read(a, b)
@@ -117,7 +134,11 @@ class _Logs:
         if chunk.task_goals is not None:
             tg = np.asarray(chunk.task_goals)
             task = tg.reshape(len(tg), -1)[chunk.offsets[local] + steps]
-        return achieved, task
+        values = {}
+        for col in flags:
+            logged = getattr(chunk, END_FLAGS[col][1])
+            values[col] = None if logged is None else np.asarray(logged)[chunk.offsets[local] + steps].astype(np.uint8)
+        return achieved, task, values
 
 
 class _Draws:
@@ -192,6 +213,18 @@ def audit_set(path, sample: int | None = None, alpha: float = ALPHA) -> AuditRep
         except GoalkitError as exc:
             raise DatasetError(f"the audit cannot reopen the logs this set was built from: {exc}",
                                file=path) from None
+        flags = logs.end_flag_columns()
+        for s in SPLITS:
+            if rc.named_sources != ("source" in f[s]):
+                report.failures.append(f"column {s}/source is " + ("missing: the recipe names its sources"
+                                       if rc.named_sources else "stored, but the recipe names no sources"))
+            for col in END_FLAGS:
+                if col in flags and col not in f[s]:
+                    report.failures.append(f"column {s}/{col} is missing: the layout maps the environment's "
+                                           f"{END_FLAGS[col][0]} flag")
+                elif col not in flags and col in f[s]:
+                    report.failures.append(f"column {s}/{col} is stored, but the layout maps no "
+                                           f"{END_FLAGS[col][0]} flag")
         _Auditor(f, rc, logs, report, seed, sample, alpha).run()
     return report
 
@@ -282,6 +315,10 @@ class _Auditor:
         rc, logs = self.rc, self.logs
         grp = self.f[split]
         c = {k: grp[k][a:b] for k in INDEX + tuple(k for k in LABELS if k in grp)}
+        flags = [col for col in logs.end_flag_columns() if col in grp]
+        c.update({col: grp[col][a:b] for col in flags})
+        if "source" in grp and self.rc.named_sources:
+            c["source"] = grp["source"][a:b]
         n = b - a
         v = self.jitter.random((n, 3))
         self.report.rows[split] += n
@@ -304,6 +341,9 @@ class _Auditor:
             return
         pos = np.searchsorted(logs.ids, ep)
         np.add.at(counts, pos, 1)
+        if "source" in c:
+            self.violated("source", "source is not the code of the episode's source in the recipe",
+                          c["source"].astype(np.int64) != logs.source.source_of(ep), split, a, c)
         T = logs.lengths[pos]
         other = np.where(c["hop_episode"] >= 0, c["hop_episode"], c["goal_episode"])
         T_goal = logs.length_of(other)
@@ -318,8 +358,13 @@ class _Auditor:
         inside = (t >= 0) & (t < T)
         if inside.any():
             idx = np.flatnonzero(inside)
-            achieved, task = logs.achieved_and_task_goal(ep[idx], t[idx])
+            achieved, task, logged = logs.achieved_and_task_goal(ep[idx], t[idx], flags=tuple(flags))
             sub = {k: val[idx] for k, val in c.items()}
+            for col in flags:
+                full = np.zeros(len(ep), bool)
+                full[idx] = sub[col] != logged[col]
+                self.violated(f"{col} flag", f"{col} is not the log's {END_FLAGS[col][0]} flag of transition t",
+                              full, split, a, c)
             for rule, message, mask in reward_rules(sub, achieved, sub["goal"], rc):
                 full = np.zeros(len(ep), bool)
                 full[idx] = mask

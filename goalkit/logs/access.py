@@ -24,6 +24,7 @@ import numpy as np
 
 from goalkit.errors import LogError
 from goalkit.logs import limits
+from goalkit.logs.columns import base_key, select, selected_shape
 from goalkit.logs.npzfile import NpzArrays
 
 #: What h5py, zipfile and zlib raise on damaged files (turned into one-line LogErrors).
@@ -188,6 +189,7 @@ class H5Access:
 
     def where(self, key: str) -> str:
         """The key's full path inside the file, for messages."""
+        key = base_key(key)
         if key.startswith("/"):
             return key.strip("/")
         return f"{self.prefix}/{key}" if self.prefix else key
@@ -210,6 +212,7 @@ class H5Access:
         return sorted(out)
 
     def _lookup(self, key: str):
+        key = base_key(key)
         if key not in self._info:
             self._info[key] = self._open(key)
         return self._info[key]
@@ -280,15 +283,19 @@ class H5Access:
         return info
 
     def shape(self, key: str) -> tuple:
-        """Shape of dataset ``key``."""
-        return self._require(key)[1]
+        """Shape of dataset ``key`` (of its selected columns, for a column key)."""
+        return selected_shape(key, self._require(key)[1], file=self.file, where=self.where(key),
+                              episode=self.episode)
 
     def dtype(self, key: str) -> np.dtype:
         """Dtype of dataset ``key``."""
         return self._require(key)[2]
 
     def read(self, key: str, start=None, stop=None) -> np.ndarray:
-        """Rows ``start:stop`` (default all) of dataset ``key``."""
+        """Rows ``start:stop`` (default all) of dataset ``key`` (its selected columns, for a column key)."""
+        if key is not base_key(key):
+            self.shape(key)                  # checks the column indices
+            return select(key, self.read(base_key(key), start, stop))
         dsid, shape, dtype = self._require(key)
         a = b = None
         try:
@@ -339,7 +346,7 @@ class NpzAccess:
 
     def where(self, key: str) -> str:
         """The key as named in messages (array names are used as they are)."""
-        return key
+        return base_key(key)
 
     def names(self) -> list[str]:
         """Names of the arrays (for messages)."""
@@ -347,20 +354,22 @@ class NpzAccess:
 
     def has(self, key: str) -> bool:
         """True when the file holds array ``key``."""
-        return key in self.arrays
+        return base_key(key) in self.arrays
 
     def shape(self, key: str) -> tuple:
-        """Shape of array ``key``."""
-        return self.arrays.shape(key)
+        """Shape of array ``key`` (of its selected columns, for a column key)."""
+        return selected_shape(key, self.arrays.shape(base_key(key)), file=self.file, where=base_key(key),
+                              episode=self.episode)
 
     def dtype(self, key: str) -> np.dtype:
         """Dtype of array ``key``."""
-        return self.arrays.dtype(key)
+        return self.arrays.dtype(base_key(key))
 
     def read(self, key: str, start=None, stop=None) -> np.ndarray:
-        """Rows ``start:stop`` (default all) of array ``key``."""
-        with guard(self.file, key, self.episode, "cannot read array"):
-            return self.arrays.read(key, start, stop)
+        """Rows ``start:stop`` (default all) of array ``key`` (its selected columns, for a column key)."""
+        self.shape(key)                      # checks column indices
+        with guard(self.file, base_key(key), self.episode, "cannot read array"):
+            return select(key, self.arrays.read(base_key(key), start, stop))
 
     def attr(self, key: str):
         """Always None: .npz files have no attributes."""

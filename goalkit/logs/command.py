@@ -8,7 +8,7 @@ from goalkit.cli_support import echo_json, progress, quiet_option, user_errors
 from goalkit.errors import LayoutError, LogError
 from goalkit.logs.bagfile import is_bag_path
 from goalkit.logs.bagscan import list_topics, propose_bag_layout, render_topics
-from goalkit.logs.detect import propose_layout
+from goalkit.logs.detect import partial_layout, propose_layout
 from goalkit.logs.layout import is_layout_file, layout_to_toml, load_layout
 from goalkit.logs.opener import open_logs
 from goalkit.logs.scan import scan_logs
@@ -61,6 +61,21 @@ def render_report(report: dict) -> list[str]:
     return out
 
 
+def _offer_partial(exc: LayoutError, logs, write_layout, replace: bool) -> None:
+    """Detection could not decide: save a partial layout (with --write-layout) or say how to get one."""
+    text = partial_layout(logs, reason=exc.message)
+    if text is None:                       # no array found: nothing to list
+        return
+    if write_layout is not None:
+        write_text(write_layout, text, replace=replace, ours=is_layout_file, what="layout file")
+        exc.message += (f"; a partial layout listing every array with a guess per role was saved to "
+                        f"{write_layout}: finish it, then rerun with --layout {write_layout}")
+    else:
+        exc.message += ("; --write-layout FILE saves a partial layout listing every array with a guess per "
+                        "role, for you to finish")
+    exc.args = (exc.render(),)
+
+
 @click.command("scan", context_settings={"show_default": True})
 @click.argument("logs", type=click.Path(), metavar="LOGS")
 @click.option("--layout", "layout_file", type=click.Path(dir_okay=False), default=None,
@@ -101,7 +116,11 @@ def scan(logs, layout_file, as_json, write_layout, skip_bad_episodes, chunk, qui
         layout = propose_bag_layout(listing)
         proposed = True
     else:
-        layout = propose_layout(logs)
+        try:
+            layout = propose_layout(logs)
+        except LayoutError as exc:
+            _offer_partial(exc, logs, write_layout, replace)
+            raise
         proposed = True
     try:
         if skip_bad_episodes:   # opening reads the log once to find episodes with bad values

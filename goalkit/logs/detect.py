@@ -26,21 +26,30 @@ from goalkit.logs.npzfile import NpzArrays
 
 #: Role -> names looked for, best first (all compared in lower case).
 ROLE_NAMES = {
-    "observation": ("obs", "observation", "observations", "state", "states"),
+    "observation": ("obs", "observation", "observations", "state", "states", "ob", "obs_t", "s_t",
+                    "proprio", "robot_state"),
     "next_observation": ("next_obs", "next_observation", "next_observations", "next_state",
-                         "next_states"),
-    "action": ("act", "action", "actions"),
-    "reward": ("rew", "reward", "rewards"),
-    "success": ("success", "successes", "is_success", "succeeded"),
-    "task": ("task", "task_id", "task_ids", "task_index"),
-    "frame": ("frame", "frames", "image", "images", "rgb", "camera", "cam", "pixels"),
-    "task_goal": ("goal", "goals", "task_goal", "target"),
+                         "next_states", "obs_next", "next_ob", "new_obs", "obs2", "obs_tp1", "s_next",
+                         "s_tp1", "state_next", "next_obs_t"),
+    "action": ("act", "action", "actions", "acts", "ctrl", "ctrls", "control", "controls", "u",
+               "command", "commands", "a_t"),
+    "reward": ("rew", "reward", "rewards", "rews", "r_t"),
+    "success": ("success", "successes", "is_success", "succeeded", "solved", "goal_reached"),
+    "task": ("task", "task_id", "task_ids", "task_index", "task_idx"),
+    "frame": ("frame", "frames", "image", "images", "rgb", "camera", "cam", "pixels", "img", "imgs"),
+    "task_goal": ("goal", "goals", "task_goal", "target", "goal_pos", "target_pos"),
+    "termination": ("terminated", "terminateds", "term", "terms", "termination", "terminations",
+                    "terminal", "terminals"),
+    "time_limit": ("truncated", "truncateds", "trunc", "truncs", "truncation", "truncations",
+                   "time_limit", "time_limits", "timelimit", "timelimits"),
 }
-#: Boundary kind -> names looked for, in the order the kinds are preferred.
+#: Boundary kind -> names looked for, in the order the kinds are preferred. Without a done
+#: array, the termination and time-limit flags found are the done flags (OR-ed).
 BOUNDARY_NAMES = {
     "offsets": ("offsets", "episode_offsets", "episode_starts", "episode_start", "starts"),
-    "episode_id": ("episode_id", "episode_ids", "episode", "episode_index", "ep", "ids"),
-    "done": ("done", "dones", "terminal", "terminals", "episode_end"),
+    "episode_id": ("episode_id", "episode_ids", "episode", "episode_index", "ep", "ids", "run_id",
+                   "traj_id", "trajectory_id", "episode_idx"),
+    "done": ("done", "dones", "episode_end", "ends"),
 }
 
 
@@ -163,6 +172,9 @@ def _flat(path, arrays, where, prefix="") -> Layout:
         if name is not None:
             boundary = {kind: prefix + name}
             break
+    flags = [keys[r] for r in ("termination", "time_limit") if r in keys]
+    if boundary is None and flags:                 # the environment's own end flags, OR-ed
+        boundary = {"done": [prefix + n for n in flags]}
     if boundary is None:
         looked = "; ".join(f"{k}: {', '.join(v)}" for k, v in BOUNDARY_NAMES.items())
         raise LayoutError(f"could not find episode boundaries {where} (found: {_what_found(arrays)}); "
@@ -268,3 +280,173 @@ def _pattern(h5, episodes: list[str], match_groups) -> str | None:
         if "*" in pattern and set(match_groups(h5, pattern)) == target:
             return pattern
     return None
+
+
+# ---- partial layouts: when detection cannot decide ---------------------------------------------
+#: Most arrays listed in a partial layout.
+MAX_LISTED = 200
+#: Roles a partial layout makes a guess for, in the order written.
+GUESS_ROLES = ("observation", "next_observation", "action", "reward", "success", "task", "frame",
+               "task_goal", "termination", "time_limit")
+
+
+def _h5_arrays(h5, max_depth: int = 4) -> list[tuple[str, tuple, str]]:
+    """``(path, shape, dtype)`` of the datasets in an HDF5 file, breadth first, natural order.
+
+    Links are looked at first (external and broken links are skipped); at most MAX_LISTED.
+    """
+    import h5py
+
+    out, level = [], [("", h5)]
+    for _ in range(max_depth):
+        nxt = []
+        for path, group in level:
+            for name in natural_sorted(group.keys()):
+                try:
+                    obj = linked(group, name, h5.filename)
+                except LogError:
+                    continue
+                sub = f"{path}/{name}" if path else name
+                if isinstance(obj, h5py.Dataset):
+                    out.append((sub, tuple(int(n) for n in obj.shape), str(obj.dtype)))
+                elif isinstance(obj, h5py.Group):
+                    nxt.append((sub, obj))
+                if len(out) >= MAX_LISTED:
+                    return out
+        level = nxt
+    return out
+
+
+def _guess_roles(arrays: list[tuple[str, tuple, str]]) -> dict:
+    """Role -> (key, why) guesses from names, then from shapes for the required roles."""
+    by_base = {}
+    for path, shape, dtype in arrays:
+        by_base.setdefault(path.rsplit("/", 1)[-1], (path, shape, dtype))
+    guesses = {}
+    for role in GUESS_ROLES:
+        name = _pick(list(by_base), ROLE_NAMES[role])
+        if name is not None:
+            guesses[role] = (by_base[name][0], "by its name")
+    used = {k for k, _ in guesses.values()}
+    numeric = [(p, s, d) for p, s, d in arrays if p not in used and len(s) in (1, 2)
+               and np.dtype(d).kind in "iuf"]
+    if "observation" not in guesses:
+        floats = [a for a in numeric if np.dtype(a[2]).kind == "f" and len(a[1]) == 2]
+        if floats:
+            best = max(floats, key=lambda a: (a[1][1], a[1][0]))
+            guesses["observation"] = (best[0], "by its shape: the widest float array")
+            used.add(best[0])
+    if "action" not in guesses:
+        obs = next((a for a in arrays if a[0] == guesses.get("observation", ("",))[0]), None)
+        rows = {obs[1][0], obs[1][0] - 1} if obs is not None else set()
+        cands = [a for a in numeric if a[0] not in used and np.dtype(a[2]).kind == "f" and a[1]
+                 and (not rows or a[1][0] in rows)]
+        if cands:
+            best = min(cands, key=lambda a: (a[1][1] if len(a[1]) == 2 else 1, a[0]))
+            guesses["action"] = (best[0], "by its shape: a float array with as many rows, narrower")
+    return guesses
+
+
+def _boundary_guess(arrays) -> tuple[str, list, str] | None:
+    """(kind, keys, why) for a flat log's boundaries, or None."""
+    names = {p.rsplit("/", 1)[-1]: p for p, _, _ in arrays}
+    for kind, wanted in BOUNDARY_NAMES.items():
+        name = _pick(list(names), wanted)
+        if name is not None:
+            return kind, [names[name]], "by its name"
+    flags = [names[n] for r in ("termination", "time_limit") for n in [_pick(list(names), ROLE_NAMES[r])]
+             if n is not None]
+    if flags:
+        return "done", flags, "the termination and time-limit flags, OR-ed"
+    ints = [p for p, s, d in arrays if len(s) == 1 and np.dtype(d).kind in "iu"]
+    if ints:
+        return "episode_id", ints[:1], "by its shape: a 1-D integer array (check: a new episode where it changes)"
+    bools = [p for p, s, d in arrays if len(s) == 1 and np.dtype(d).kind == "b"]
+    if bools:
+        return "done", bools, "by its dtype: 1-D bool arrays (check: true on each episode's last row)"
+    return None
+
+
+def partial_layout(path, reason: str = "") -> str:
+    """A layout to finish by hand: every array found, with its shape and dtype, and a guess per role.
+
+    Written by ``goalkit scan LOGS --write-layout FILE`` when :func:`propose_layout` cannot decide.
+    Roles with a guess are set (with the reason as a comment); the others are commented out with
+    ``"???"`` for the user to fill in. The text is TOML that :func:`parse_layout` reads once the
+    required roles are filled in.
+
+    Parameters
+    ----------
+    path : str or Path
+        An HDF5 file, a ``.npz`` file or a directory of ``.npz`` files.
+    reason : str
+        Why detection could not decide (written at the top).
+
+    Returns
+    -------
+    str or None
+        None when no array was found (nothing to list).
+    """
+    path = str(path)
+    episode_groups = None
+    if os.path.isdir(path):
+        names = natural_sorted(n for n in os.listdir(path) if n.lower().endswith(".npz"))
+        shape, where = "per-file", f"in {names[0]}" if names else "in the folder"
+        arrays = []
+        if names:
+            acc = NpzAccess(NpzArrays(os.path.join(path, names[0])))
+            arrays = [(n, tuple(acc.shape(n)), str(acc.dtype(n))) for n in natural_sorted(acc.names())]
+    elif is_npz(path):
+        acc = NpzAccess(NpzArrays(path))
+        arrays = [(n, tuple(acc.shape(n)), str(acc.dtype(n))) for n in natural_sorted(acc.names())]
+        shape, where = "flat", "in the .npz"
+    else:
+        with open_h5(path) as h5, guard(path, what="cannot read the log"):
+            arrays = _h5_arrays(h5)
+            episodes = _episode_groups(h5)
+            pattern = _pattern(h5, episodes, match_groups) if episodes else None
+            if pattern is not None and len(episodes) > 1:
+                shape, episode_groups = "grouped", pattern
+                first = episodes[0]
+                arrays = [(p[len(first) + 1:], s, d) for p, s, d in arrays if p.startswith(first + "/")]
+                where = f"in episode group {first} (paths inside it)"
+            else:
+                shape, where = "flat", "in the file"
+    if not arrays:
+        return None
+    guesses = _guess_roles(arrays)
+    lines = [f"# A partial layout for {os.path.basename(path)}: goalkit could not decide all of it"
+             + (f" ({reason})" if reason else "") + ".",
+             "# Check every guess, fill in the lines marked ???, then check the logs with:",
+             f"#   goalkit scan {os.path.basename(path)} --layout THIS_FILE",
+             "# A key may take some columns of an array: {key = \"state\", columns = [14, 15, 16]}",
+             "# (docs/layout.md). Arrays found " + where + " (key, shape, dtype):"]
+    width = max([len(p) for p, _, _ in arrays] + [3])
+    lines += [f"#   {p:<{width}}  {str(s):<16} {d}" for p, s, d in arrays]
+    if len(arrays) >= MAX_LISTED:
+        lines.append(f"#   ... (the first {MAX_LISTED})")
+    lines += ["", "version = 1", f"shape = \"{shape}\""]
+    if episode_groups is not None:
+        lines.append(f"episode_groups = \"{episode_groups}\"")
+    lines += ["", "[keys]"]
+    required = ("observation", "action")
+    for role in GUESS_ROLES:
+        if role in guesses:
+            key, why = guesses[role]
+            lines.append(f"{role} = \"{key}\"    # guess: {why}")
+        elif role in required:
+            lines.append(f"# {role} = \"???\"    # required: not found (names looked for: "
+                         f"{', '.join(ROLE_NAMES[role][:8])}, ...)")
+        else:
+            lines.append(f"# {role} = \"???\"    # optional")
+    if shape == "flat":
+        lines += ["", "[boundaries]"]
+        b = _boundary_guess(arrays)
+        if b is None:
+            lines.append("# episode_id = \"???\"    # one of episode_id, done (a key or a list), offsets; "
+                         "several may be given")
+        else:
+            kind, keys, why = b
+            value = f"\"{keys[0]}\"" if len(keys) == 1 else "[" + ", ".join(f"\"{k}\"" for k in keys) + "]"
+            lines.append(f"{kind} = {value}    # guess: {why}")
+    return "\n".join(lines) + "\n"

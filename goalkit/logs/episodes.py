@@ -44,6 +44,14 @@ class EpisodeSet:
         The log's own goal for each transition, in goal space.
     frames : ndarray of uint8, shape (N + E, H, W) or (N + E, H, W, C), optional
         Camera frames aligned with the states.
+    terminations : ndarray of bool, shape (N,), optional
+        The environment's termination flag of each transition: true when ``s_{t+1}`` is a
+        terminal state of the environment (only on an episode's last transition).
+    time_limits : ndarray of bool, shape (N,), optional
+        The environment's time-limit (truncation) flag of each transition: true when the episode
+        was cut after it (only on an episode's last transition). Never a terminal.
+    sources : ndarray of int16, shape (E,), optional
+        The log source (its code in the recipe's ``[[sources]]``) of each episode.
     fields : mapping of str to (int, int)
         Named observation fields and their column range ``[start, stop)``.
     source : str
@@ -59,6 +67,9 @@ class EpisodeSet:
     task_ids: np.ndarray | None = None
     task_goals: np.ndarray | None = None
     frames: np.ndarray | None = None
+    terminations: np.ndarray | None = None
+    time_limits: np.ndarray | None = None
+    sources: np.ndarray | None = None
     fields: Mapping[str, tuple[int, int]] = field(default_factory=dict)
     source: str = ""
 
@@ -133,6 +144,9 @@ class EpisodeSet:
             task_ids=cut(self.task_ids, start, stop),
             task_goals=cut(self.task_goals, a, b),
             frames=cut(self.frames, sa, sb),
+            terminations=cut(self.terminations, a, b),
+            time_limits=cut(self.time_limits, a, b),
+            sources=cut(self.sources, start, stop),
             fields=dict(self.fields),
             source=self.source,
         )
@@ -223,6 +237,7 @@ def concat_episodes(parts: "list[EpisodeSet]") -> EpisodeSet:
         offsets=np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64),
         episode_ids=cat("episode_ids"), rewards=cat("rewards"), success=cat("success"),
         task_ids=cat("task_ids"), task_goals=cat("task_goals"), frames=cat("frames"),
+        terminations=cat("terminations"), time_limits=cat("time_limits"), sources=cat("sources"),
         fields=dict(parts[0].fields), source=parts[0].source)
 
 

@@ -104,17 +104,17 @@ def plan_episode(acc, layout, episode: int) -> EpisodeMeta:
             raise LogError(f"has {m} rows but field key {where(key0)} has {m0}; expected the same "
                            f"number of rows in every field", file=f, key=where(key), episode=episode)
     if k.next_observation is not None:
-        _need(acc, k.next_observation, episode)
-        checks.numeric(acc.dtype(k.next_observation), file=f, key=where(k.next_observation),
-                       episode=episode)
-        m2, w2 = checks.rows_2d(acc.shape(k.next_observation), file=f, key=where(k.next_observation),
-                                episode=episode, what="next observations")
-        if (m0, widths[0]) != (n, w2) or m2 != n:
-            raise LogError(f"observation {(m0, widths[0])}, next observation {(m2, w2)} and action "
-                           f"({n}, ...) disagree; expected one row per action in both with equal "
-                           f"widths", file=f, key=where(k.next_observation), episode=episode)
+        for key, width in zip(layout.next_observation_keys(), widths):
+            _need(acc, key, episode)
+            checks.numeric(acc.dtype(key), file=f, key=where(key), episode=episode)
+            m2, w2 = checks.rows_2d(acc.shape(key), file=f, key=where(key), episode=episode,
+                                    what="next observations")
+            if (m0, width) != (n, w2) or m2 != n:
+                raise LogError(f"observation {(m0, width)}, next observation {(m2, w2)} and action "
+                               f"({n}, ...) disagree; expected one row per action in both with equal "
+                               f"widths", file=f, key=where(key), episode=episode)
+            dtypes.append(acc.dtype(key))
         convention, steps = "pairs", n
-        dtypes.append(acc.dtype(k.next_observation))
     elif m0 == n + 1:
         convention, steps = "T+1", n
     elif m0 == n:
@@ -132,7 +132,7 @@ def plan_episode(acc, layout, episode: int) -> EpisodeMeta:
         if key is None:
             return None
         _need(acc, key, episode)
-        if role == "success":
+        if role in ("success", "termination", "time_limit"):
             if acc.dtype(key).kind not in "biuf":
                 raise LogError(f"expected a bool or 0/1 flag, got dtype {acc.dtype(key)}",
                                file=f, key=where(key), episode=episode)
@@ -142,13 +142,15 @@ def plan_episode(acc, layout, episode: int) -> EpisodeMeta:
         if rows != n:
             raise LogError(f"has {rows} rows, expected {n} (one per action)", file=f,
                            key=where(key), episode=episode)
-        if role in ("reward", "success") and width != 1:
+        if role in ("reward", "success", "termination", "time_limit") and width != 1:
             raise LogError(f"expected shape ({n},), got {acc.shape(key)}", file=f, key=where(key),
                            episode=episode)
         return width
 
     per_step("reward", "rewards")
     per_step("success", "success flags")
+    per_step("termination", "termination flags")
+    per_step("time_limit", "time-limit flags")
     goal_width = per_step("task_goal", "goals")
 
     frame_shape = None
@@ -191,8 +193,12 @@ def read_episode(acc, layout, meta: EpisodeMeta, episode: int, obs_dtype, action
     T = meta.steps
     out = {}
     if meta.convention == "pairs":
-        obs = acc.read(k.observation).reshape(T, -1)
-        nxt = acc.read(k.next_observation, 0, T).reshape(T, -1)
+        def side(keys, stop):
+            parts = [acc.read(key, 0, stop).reshape(T, -1) for key in keys]
+            return parts[0] if len(parts) == 1 else np.concatenate(parts, axis=1)
+
+        obs = side(layout.observation_keys(), None)
+        nxt = side(layout.next_observation_keys(), T)
         found = checks.first_discontinuity(obs, nxt, np.array([T]))
         if found is not None:
             raise checks.pairs_error(found[1], found[2], file=acc.file, key=acc.where(k.next_observation),
@@ -208,9 +214,11 @@ def read_episode(acc, layout, meta: EpisodeMeta, episode: int, obs_dtype, action
     if k.reward is not None:
         r = acc.read(k.reward, 0, T).reshape(T)
         out["rewards"] = r.astype(checks.float_dtype([r.dtype]), copy=False)
-    if k.success is not None:
-        out["success"] = checks.flags(acc.read(k.success, 0, T).reshape(T), file=acc.file,
-                                      key=acc.where(k.success), episode=episode)
+    for role, name in (("success", "success"), ("termination", "terminations"), ("time_limit", "time_limits")):
+        key = getattr(k, role)
+        if key is not None:
+            out[name] = checks.flags(acc.read(key, 0, T).reshape(T), file=acc.file, key=acc.where(key),
+                                     episode=episode)
     if k.task_goal is not None:
         g = acc.read(k.task_goal, 0, T).reshape(T, -1)
         out["task_goals"] = g.astype(checks.float_dtype([g.dtype]), copy=False)

@@ -25,6 +25,9 @@ from goalkit.logs.access import H5Access, NpzAccess, guard, open_h5
 from goalkit.logs.npzfile import NpzArrays
 from goalkit.logs.source import BaseSource
 
+#: Flag roles of the layout -> EpisodeSet column (bool, one per transition).
+FLAG_COLUMNS = {"success": "success", "termination": "terminations", "time_limit": "time_limits"}
+
 #: Rows of a per-step boundary or task array read at a time when opening a flat log.
 BLOCK_ROWS = 1 << 22
 
@@ -105,15 +108,14 @@ class FlatSource(BaseSource):
                                file=f, key=key)
             n_obs = m
             widths.append(w)
-        if k.next_observation is not None:
-            self._need(acc, k.next_observation)
-            dtypes.append(checks.numeric(acc.dtype(k.next_observation), file=f, key=k.next_observation))
-            shape2 = checks.rows_2d(acc.shape(k.next_observation), file=f, key=k.next_observation,
-                                    what="next observations")
-            if shape2 != (n_act, widths[0]) or n_obs != n_act:
-                raise LogError(f"has shape {acc.shape(k.next_observation)}, observation has "
-                               f"{(n_obs, widths[0])} and action {n_act} rows; expected one row per "
-                               f"action in both, of equal widths", file=f, key=k.next_observation)
+        for key, width in zip(lay.next_observation_keys(), widths):
+            self._need(acc, key)
+            dtypes.append(checks.numeric(acc.dtype(key), file=f, key=key))
+            shape2 = checks.rows_2d(acc.shape(key), file=f, key=key, what="next observations")
+            if shape2 != (n_act, width) or n_obs != n_act:
+                raise LogError(f"has shape {acc.shape(key)}, observation has {(n_obs, width)} and action "
+                               f"{n_act} rows; expected one row per action in both, of equal widths",
+                               file=f, key=key)
         self.obs_dtype = checks.float_dtype(dtypes)
         self.obs_width = int(sum(widths))
         if lay.fields:
@@ -148,7 +150,7 @@ class FlatSource(BaseSource):
                 step_start = state_start - np.arange(E)
                 if int(steps.sum()) != n_act:
                     raise LogError(f"has {n_act} rows; expected {int(steps.sum())} (one per state of "
-                                   f"{lay.boundaries.key} minus one per episode)", file=f, key=k.action)
+                                   f"{lay.boundaries.keys_text} minus one per episode)", file=f, key=k.action)
         self.steps_all = np.maximum(steps, 0).astype(np.int64)
         # action rows each episode occupies in the file (T, or T + 1 in convention "T")
         self.step_rows = np.maximum(counts - 1 if space == "state" and self.convention == "T+1"
@@ -169,7 +171,7 @@ class FlatSource(BaseSource):
                      if self.convention == "T" else "")
             problems.append((e, LogError(f"episode is empty: {max(int(steps[e]), 0)} transitions"
                                          f"{extra}; expected at least 1", file=f,
-                                         key=lay.boundaries.key, episode=e)))
+                                         key=lay.boundaries.keys_text, episode=e)))
         self._check_step_arrays(acc, n_act)
         problems += self._tasks(acc, n_act, E)
         return problems
@@ -180,15 +182,50 @@ class FlatSource(BaseSource):
             yield acc.read(key, lo, min(n, lo + BLOCK_ROWS))
 
     def _boundaries(self, acc, n_act, n_obs):
+        """Rows per episode, their row space (``"step"`` or ``"state"``) and per-episode problems.
+
+        With several boundary arrays, an episode ends where any of them ends one; all of them
+        must count the same rows (one per action, or one per observation).
+        """
         b, f = self.layout.boundaries, self.path
-        self._need(acc, b.key)
+        found = [(kind, key) + self._boundary(acc, kind, key, n_act, n_obs) for kind, key in b.items()]
+        spaces = {space for _, _, _, space, _ in found}
+        if len(spaces) > 1:
+            per = {"step": "one per action", "state": "one per observation"}
+            text = ", ".join(f"{key} {per[space]}" for _, key, _, space, _ in found)
+            raise LogError(f"the boundary arrays count different rows ({text}); expected all of them "
+                           f"one per action or all one per observation", file=f, key=b.keys_text)
+        space = spaces.pop()
+        if len(found) == 1:
+            counts, ended = found[0][2], found[0][4]
+        else:
+            ends = [np.cumsum(c) for _, _, c, _, _ in found]
+            offset_ends = [e for e, (kind, *_) in zip(ends, found) if kind == "offsets"]
+            other = np.unique(np.concatenate([e for e, (kind, *_) in zip(ends, found) if kind != "offsets"]
+                                             or [np.zeros(0, np.int64)]))
+            if offset_ends:       # keep the offsets' own empty episodes (reported per episode)
+                other = np.sort(np.concatenate([offset_ends[0], np.setdiff1d(other, offset_ends[0])]))
+            counts = np.diff(np.concatenate([[0], other])).astype(np.int64)
+            ended = any(e for kind, _, _, _, e in found)
         problems = []
-        if b.kind == "offsets":
-            values = acc.read(b.key)             # one entry per episode: small
+        if not ended:
+            e = counts.shape[0] - 1
+            which = "done flag never ends" if len(b.done) == 1 else "done flags never end"
+            problems.append((e, LogError(f"the {which} the last episode: its last {counts[-1]} rows "
+                                         f"have no true value; expected true on the last row", file=f,
+                                         key="+".join(b.done), episode=e, step=int(counts[-1]) - 1)))
+        return counts, space, problems
+
+    def _boundary(self, acc, kind, key, n_act, n_obs):
+        """``(counts, space, ended)`` of one boundary array (``ended``: its last episode ends)."""
+        f = self.path
+        self._need(acc, key)
+        if kind == "offsets":
+            values = acc.read(key)             # one entry per episode: small
             if values.ndim == 1 and values.shape[0] and n_obs != n_act and values[-1] == n_obs:
-                return bnd.counts_from_offsets(values, n_obs, file=f, key=b.key), "state", problems
-            return bnd.counts_from_offsets(values, n_act, file=f, key=b.key), "step", problems
-        shape = acc.shape(b.key)
+                return bnd.counts_from_offsets(values, n_obs, file=f, key=key), "state", True
+            return bnd.counts_from_offsets(values, n_act, file=f, key=key), "step", True
+        shape = acc.shape(key)
         L = shape[0] if len(shape) == 1 else -1
         if L == n_act:
             space = "step"
@@ -197,29 +234,24 @@ class FlatSource(BaseSource):
         else:
             raise LogError(f"has shape {tuple(shape)}; expected ({n_act},) (one per action)"
                            + (f" or ({n_obs},) (one per observation)" if n_obs != n_act else ""),
-                           file=f, key=b.key)
+                           file=f, key=key)
         if L == 0:
-            raise LogError("expected a non-empty boundary array, got 0 rows", file=f, key=b.key)
-        blocks = self._blocks(acc, b.key, L)
-        if b.kind == "episode_id":
-            return bnd.counts_from_id_blocks(blocks, file=f, key=b.key), space, problems
-        counts, ended = bnd.counts_from_done_blocks(blocks, file=f, key=b.key)
-        if not ended:
-            e = counts.shape[0] - 1
-            problems.append((e, LogError(f"the done flag never ends the last episode: its last "
-                                         f"{counts[-1]} rows have no true value; expected true on "
-                                         f"the last row", file=f, key=b.key, episode=e,
-                                         step=int(counts[-1]) - 1)))
-        return counts, space, problems
+            raise LogError("expected a non-empty boundary array, got 0 rows", file=f, key=key)
+        blocks = self._blocks(acc, key, L)
+        if kind == "episode_id":
+            return bnd.counts_from_id_blocks(blocks, file=f, key=key), space, True
+        counts, ended = bnd.counts_from_done_blocks(blocks, file=f, key=key)
+        return counts, space, ended
 
     def _check_step_arrays(self, acc, n_act):
         k, f = self.layout.keys, self.path
-        for role, what in (("reward", "rewards"), ("success", "success flags"), ("task_goal", "goals")):
+        for role, what in (("reward", "rewards"), ("success", "success flags"), ("task_goal", "goals"),
+                           ("termination", "termination flags"), ("time_limit", "time-limit flags")):
             key = getattr(k, role)
             if key is None:
                 continue
             self._need(acc, key)
-            if role == "success":
+            if role in FLAG_COLUMNS:
                 if acc.dtype(key).kind not in "biuf":
                     raise LogError(f"expected a bool or 0/1 flag, got dtype {acc.dtype(key)}", file=f, key=key)
             else:
@@ -310,8 +342,9 @@ class FlatSource(BaseSource):
                 for name, v in part.items():
                     pieces.setdefault(name, []).append(v)
             cols = {name: v[0] if len(v) == 1 else np.concatenate(v) for name, v in pieces.items()}
-        if k.success is not None:
-            cols["success"] = self._flags(cols["success"], _cumsum0(T), ids)
+        for role, name in FLAG_COLUMNS.items():
+            if getattr(k, role) is not None:
+                cols[name] = self._flags(cols[name], _cumsum0(T), ids, getattr(k, role))
         if self.task_of is not None:
             cols["task_ids"] = self.task_of[ids]
         return cols
@@ -321,8 +354,12 @@ class FlatSource(BaseSource):
         out = {}
         s_start, o_start = self.step_start[rid], self.state_start[rid]
         if self.convention == "pairs":
-            obs = gather(k.observation, o_start, T).reshape(-1, self.obs_width)
-            nxt = gather(k.next_observation, o_start, T).reshape(-1, self.obs_width)
+            def side(keys):
+                parts = [gather(key, o_start, T).reshape(int(T.sum()), -1) for key in keys]
+                return parts[0] if len(parts) == 1 else np.concatenate(parts, axis=1)
+
+            obs = side(lay.observation_keys())
+            nxt = side(lay.next_observation_keys())
             found = checks.first_discontinuity(obs, nxt, T)
             if found is not None:
                 raise checks.pairs_error(found[1], found[2], file=self.path, key=k.next_observation,
@@ -343,8 +380,9 @@ class FlatSource(BaseSource):
         if k.reward is not None:
             r = gather(k.reward, s_start, T).reshape(-1)
             out["rewards"] = r.astype(checks.float_dtype([r.dtype]), copy=False)
-        if k.success is not None:
-            out["success"] = gather(k.success, s_start, T).reshape(-1)
+        for role, name in FLAG_COLUMNS.items():
+            if getattr(k, role) is not None:
+                out[name] = gather(getattr(k, role), s_start, T).reshape(-1)
         if k.task_goal is not None:
             g = gather(k.task_goal, s_start, T)
             g = g.reshape(g.shape[0], -1)
@@ -353,13 +391,13 @@ class FlatSource(BaseSource):
             out["frames"] = gather(k.frame, self.frame_start[rid], T + 1)
         return out
 
-    def _flags(self, values, offsets, ids) -> np.ndarray:
+    def _flags(self, values, offsets, ids, key) -> np.ndarray:
         if values.dtype.kind == "b":
             return values
         bad = np.flatnonzero((values != 0) & (values != 1))
         if bad.size:
             pos = int(np.searchsorted(offsets[:-1], bad[0], side="right") - 1)
             raise LogError(f"expected a bool or 0/1 flag, got {values[bad[0]].item()!r}", file=self.path,
-                           key=self.layout.keys.success, episode=int(ids[pos]),
+                           key=key, episode=int(ids[pos]),
                            step=int(bad[0] - offsets[pos]))
         return values != 0

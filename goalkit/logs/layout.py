@@ -13,6 +13,7 @@ from typing import Mapping
 from goalkit.config import check_keys, load_toml
 from goalkit.errors import LayoutError
 from goalkit.logs import recordspec
+from goalkit.logs.columns import ColumnKey, base_key, key_to_toml, parse_key_value
 from goalkit.logs.recordspec import spec_to_toml
 from goalkit.outputs import small_toml
 
@@ -23,7 +24,11 @@ TOP_KEYS = ("version", "shape", "episode_groups", "file_pattern", "keys", "field
             "bag", "table")
 #: Roles in the ``[keys]`` table.
 ROLES = ("observation", "next_observation", "action", "reward", "success", "task", "frame",
-         "task_goal")
+         "task_goal", "termination", "time_limit")
+#: Roles whose key may take some columns of an array (``{key = "state", columns = [...]}``).
+COLUMN_ROLES = ("observation", "next_observation", "task_goal")
+#: Roles of the environment's own end-of-episode flags, one per action row (flat, grouped, per-file).
+FLAG_ROLES = ("termination", "time_limit")
 #: Boundary kinds in the ``[boundaries]`` table (flat shape only).
 BOUNDARY_KINDS = ("episode_id", "done", "offsets")
 #: The layout-file version this code reads and writes.
@@ -46,6 +51,8 @@ class Keys:
     task: str | None = None
     frame: str | None = None
     task_goal: str | None = None
+    termination: str | None = None
+    time_limit: str | None = None
 
     def items(self) -> list[tuple[str, str]]:
         """Return the ``(role, key)`` pairs that are set, in schema order."""
@@ -54,21 +61,48 @@ class Keys:
 
 @dataclass(frozen=True)
 class Boundaries:
-    """How a flat log marks its episodes: exactly one of the three attributes is set."""
+    """How a flat log marks its episodes: any combination of ids, done flags and offsets.
+
+    An episode ends where any of them ends one: where the id changes, after a row on which any
+    of the done flags is true (several flags are OR-ed, e.g. the environment's termination and
+    time-limit flags), or at an offset.
+
+    Attributes
+    ----------
+    episode_id : str or None
+        Key of an episode-id array.
+    done : tuple of str
+        Keys of done flags (empty when none).
+    offsets : str or None
+        Key of an offsets or start-index array.
+    """
 
     episode_id: str | None = None
-    done: str | None = None
+    done: tuple = ()
     offsets: str | None = None
+
+    def items(self) -> list[tuple[str, str]]:
+        """``(kind, key)`` of every boundary array, in the order ids, done flags, offsets."""
+        out = [("episode_id", self.episode_id)] if self.episode_id is not None else []
+        out += [("done", key) for key in self.done]
+        if self.offsets is not None:
+            out.append(("offsets", self.offsets))
+        return out
 
     @property
     def kind(self) -> str:
-        """The boundary kind that is set (``"episode_id"``, ``"done"`` or ``"offsets"``)."""
-        return next(k for k in BOUNDARY_KINDS if getattr(self, k) is not None)
+        """The first boundary kind that is set (``"episode_id"``, ``"done"`` or ``"offsets"``)."""
+        return self.items()[0][0]
 
     @property
     def key(self) -> str:
-        """The key of the boundary array."""
-        return getattr(self, self.kind)
+        """The key of the first boundary array."""
+        return self.items()[0][1]
+
+    @property
+    def keys_text(self) -> str:
+        """Every boundary key joined by ``+``, for messages."""
+        return "+".join(key for _, key in self.items())
 
 
 @dataclass(frozen=True)
@@ -115,6 +149,26 @@ class Layout:
         if self.fields:
             return [k for _, k in self.fields]
         return [self.keys.observation]
+
+    def next_observation_keys(self) -> list[str]:
+        """Keys of the next observations, one per observation key (empty without next_observation).
+
+        With ``[fields]`` (all of one array), each field takes its columns from the
+        next_observation array; a column key observation passes its columns on to a plain
+        next_observation key.
+        """
+        nxt = self.keys.next_observation
+        if nxt is None:
+            return []
+        out = []
+        for key in self.observation_keys():
+            if isinstance(nxt, ColumnKey):
+                out.append(nxt)
+            elif isinstance(key, ColumnKey):
+                out.append(key.with_base(nxt))
+            else:
+                out.append(nxt)
+        return out
 
 
 def _string(value, *, file, key, what="a non-empty string"):
@@ -166,10 +220,13 @@ def parse_layout(doc: Mapping, file="<layout>") -> Layout:
 
     keys_t = _table(doc, "keys", file)
     check_keys(keys_t, ROLES, file=file, section="[keys]", error=LayoutError)
-    keys = Keys(**{r: _string(v, file=file, key=f"keys.{r}") for r, v in keys_t.items()})
+    columns_ok = shape not in ("bag", "table")
+    keys = Keys(**{r: parse_key_value(v, file=file, key=f"keys.{r}", allow_columns=columns_ok and r in COLUMN_ROLES)
+                   for r, v in keys_t.items()})
 
     fields_t = _table(doc, "fields", file)
-    field_pairs = tuple((str(n), _string(v, file=file, key=f"fields.{n}")) for n, v in fields_t.items())
+    field_pairs = tuple((str(n), parse_key_value(v, file=file, key=f"fields.{n}", allow_columns=columns_ok))
+                        for n, v in fields_t.items())
 
     if keys.action is None:
         raise LayoutError("missing the action key; expected [keys] action = \"...\"", file=file,
@@ -180,9 +237,25 @@ def parse_layout(doc: Mapping, file="<layout>") -> Layout:
     if keys.observation is not None and field_pairs:
         raise LayoutError("expected either [keys] observation or a [fields] table, not both",
                           file=file, key="fields")
-    if keys.next_observation is not None and keys.observation is None:
-        raise LayoutError("next_observation needs [keys] observation (not supported with [fields])",
-                          file=file, key="keys.next_observation")
+    if shape in ("bag", "table"):
+        for role in FLAG_ROLES:
+            if getattr(keys, role) is not None:
+                raise LayoutError(f"the {role} role is read from flat, grouped and per-file logs; "
+                                  f"shape = \"{shape}\" does not carry it", file=file, key=f"keys.{role}")
+    if keys.next_observation is not None and field_pairs:
+        bases = sorted({base_key(k) for _, k in field_pairs})
+        if len(bases) != 1:
+            raise LayoutError(f"next_observation with [fields] needs every field to take its columns from one "
+                              f"array (the observation array); the fields read {', '.join(bases)}", file=file,
+                              key="keys.next_observation")
+        if isinstance(keys.next_observation, ColumnKey):
+            raise LayoutError("with [fields], give next_observation as the array's key: each field takes its "
+                              "own columns from it", file=file, key="keys.next_observation")
+    if (isinstance(keys.next_observation, ColumnKey) and isinstance(keys.observation, ColumnKey)
+            and len(keys.next_observation.columns) != len(keys.observation.columns)):
+        raise LayoutError(f"selects {len(keys.next_observation.columns)} columns, observation selects "
+                          f"{len(keys.observation.columns)}; expected the same number", file=file,
+                          key="keys.next_observation")
 
     def only(name, allowed_shape):
         if name in doc and shape != allowed_shape:
@@ -225,17 +298,28 @@ def parse_layout(doc: Mapping, file="<layout>") -> Layout:
         record = parse(doc.get(shape, {}), file)
         return Layout(shape=shape, keys=keys, fields=field_pairs, record=record, version=version)
     else:
-        b_t = _table(doc, "boundaries", file)
-        check_keys(b_t, BOUNDARY_KINDS, file=file, section="[boundaries]", error=LayoutError)
-        given = [k for k in BOUNDARY_KINDS if k in b_t]
-        if len(given) != 1:
-            raise LayoutError(f"expected exactly one of {', '.join(BOUNDARY_KINDS)} in [boundaries], "
-                              f"got {len(given)}" + (f" ({', '.join(given)})" if given else ""),
-                              file=file, key="boundaries")
-        boundaries = Boundaries(**{given[0]: _string(b_t[given[0]], file=file,
-                                                     key=f"boundaries.{given[0]}")})
+        boundaries = _boundaries(_table(doc, "boundaries", file), file)
     return Layout(shape=shape, keys=keys, fields=field_pairs, episode_groups=episode_groups,
                   file_pattern=file_pattern, boundaries=boundaries, version=version)
+
+
+def _boundaries(b_t: Mapping, file) -> Boundaries:
+    """Check a ``[boundaries]`` table: any of episode_id, done (a key or a list), offsets."""
+    check_keys(b_t, BOUNDARY_KINDS, file=file, section="[boundaries]", error=LayoutError)
+    if not b_t:
+        raise LayoutError(f"expected at least one of {', '.join(BOUNDARY_KINDS)} in [boundaries]",
+                          file=file, key="boundaries")
+    done = b_t.get("done", ())
+    if isinstance(done, str):
+        done = (done,)
+    if not isinstance(done, (list, tuple)) or "done" in b_t and not done:
+        raise LayoutError(f"expected a key or a non-empty list of keys, got {b_t['done']!r}", file=file,
+                          key="boundaries.done")
+    done = tuple(_string(d, file=file, key="boundaries.done") for d in done)
+    if len(set(done)) != len(done):
+        raise LayoutError(f"expected each done key once, got {list(done)}", file=file, key="boundaries.done")
+    single = {k: _string(b_t[k], file=file, key=f"boundaries.{k}") for k in ("episode_id", "offsets") if k in b_t}
+    return Boundaries(done=done, **single)
 
 
 def load_layout(path) -> Layout:
@@ -280,12 +364,21 @@ def layout_to_toml(layout: Layout) -> str:
     if layout.file_pattern is not None:
         lines.append(f"file_pattern = {_tstr(layout.file_pattern)}")
     lines += ["", "[keys]"]
-    lines += [f"{role} = {_tstr(key)}" for role, key in layout.keys.items()]
+    lines += [f"{role} = {key_to_toml(key, _tstr)}" for role, key in layout.keys.items()]
     if layout.fields:
         lines += ["", "[fields]"]
-        lines += [f"{_tkey(name)} = {_tstr(key)}" for name, key in layout.fields]
+        lines += [f"{_tkey(name)} = {key_to_toml(key, _tstr)}" for name, key in layout.fields]
     if layout.boundaries is not None:
-        lines += ["", "[boundaries]", f"{layout.boundaries.kind} = {_tstr(layout.boundaries.key)}"]
+        b = layout.boundaries
+        lines += ["", "[boundaries]"]
+        if b.episode_id is not None:
+            lines.append(f"episode_id = {_tstr(b.episode_id)}")
+        if len(b.done) == 1:
+            lines.append(f"done = {_tstr(b.done[0])}")
+        elif b.done:
+            lines.append(f"done = [{', '.join(_tstr(d) for d in b.done)}]")
+        if b.offsets is not None:
+            lines.append(f"offsets = {_tstr(b.offsets)}")
     if layout.record is not None:
         lines += spec_to_toml(layout.record)
     return "\n".join(lines) + "\n"

@@ -186,6 +186,9 @@ class BaseSource:
             cols["success"] = np.zeros(0, dtype=bool)
         if k.task is not None:
             cols["task_ids"] = np.zeros(0, dtype=np.int64)
+        for role, name in (("termination", "terminations"), ("time_limit", "time_limits")):
+            if getattr(k, role) is not None:
+                cols[name] = np.zeros(0, dtype=bool)
         return cols
 
     def _file_of(self, episode: int) -> str:
@@ -216,6 +219,26 @@ class BaseSource:
                 what = "state" if state_level else "step"
                 raise LogError(f"expected finite values, got NaN or inf (first bad {what})",
                                file=self._file_of(e), key=self._key_of(e, key), episode=e, step=step)
+        self._check_end_flags(es)
+
+    def _check_end_flags(self, es: EpisodeSet):
+        """The environment's end flags may be true only on an episode's last transition."""
+        k = self.layout.keys
+        for values, key, what in ((es.terminations, k.termination, "termination"),
+                                  (es.time_limits, k.time_limit, "time-limit")):
+            if values is None or values.shape[0] == 0:
+                continue
+            last = np.zeros(values.shape[0], dtype=bool)
+            last[es.offsets[1:][es.lengths > 0] - 1] = True
+            early = np.flatnonzero(values & ~last)
+            if early.size:
+                row = int(early[0])
+                pos = int(np.searchsorted(es.offsets, row, side="right") - 1)
+                e, step = int(es.episode_ids[pos]), row - int(es.offsets[pos])
+                raise LogError(f"the {what} flag is true at step {step} of {int(es.lengths[pos])}; expected "
+                               f"it only on the episode's last step (do the boundaries agree with the "
+                               f"flags?)", file=self._file_of(e), key=self._key_of(e, key), episode=e,
+                               step=step)
 
     def key_info(self) -> list[dict]:
         """Role, key, stored dtype and shape of every mapped key (first kept episode for logs
@@ -223,7 +246,7 @@ class BaseSource:
         lay = self.layout
         pairs = [(r, key) for r, key in lay.keys.items()] + [(f"field {n}", key) for n, key in lay.fields]
         if lay.boundaries is not None:
-            pairs.append((f"boundary ({lay.boundaries.kind})", lay.boundaries.key))
+            pairs += [(f"boundary ({kind})", key) for kind, key in lay.boundaries.items()]
         out = []
         with self._first_access() as acc:
             for role, key in pairs:

@@ -38,6 +38,7 @@ from goalkit import __version__
 from goalkit.logs.layout import layout_to_toml
 from goalkit.outputs import check_no_overlap, refuse_existing
 from goalkit.pipeline.buildfolder import folder_of
+from goalkit.pipeline.sources import layout_texts, sources_provenance, sources_summary
 from goalkit.pipeline.dask_build import DaskRunner
 from goalkit.pipeline.inprocess import CHUNK_ROWS, InProcessProducer
 from goalkit.pipeline.plan import make_plan, split_rows, strategy_names
@@ -135,7 +136,9 @@ def read_inputs(plan, source, log_files=None, with_library: bool = True) -> Buil
         Also digest the recipe's goal library (a shard key needs it; the provenance does not).
     """
     recipe = plan.recipe
-    if recipe.layout_path is not None:
+    if recipe.sources is not None:   # every source's layout, for the shard key
+        layout_text = "".join(f"# source {c}\n{t}" for c, t in sorted(layout_texts(recipe, source).items()))
+    elif recipe.layout_path is not None:
         layout_text = Path(recipe.layout_path).read_text(encoding="utf-8")
     elif getattr(source, "layout", None) is not None:
         layout_text = layout_to_toml(source.layout)  # the detected layout, so verify reads the same way
@@ -166,12 +169,14 @@ def provenance(plan, source, log_files=None, inputs: BuildInputs | None = None) 
     recipe = plan.recipe
     if inputs is None:
         inputs = read_inputs(plan, source, log_files=log_files, with_library=False)
+    several = {} if recipe.sources is None else {"sources": sources_provenance(recipe, source)}
     return {
         "goalkit_version": __version__,
         "recipe_file": str(Path(recipe.file).resolve()) if recipe.file else "",
-        "logs_path": str(recipe.logs_path),
+        "logs_path": "" if several else str(recipe.logs_path),
         "layout_path": str(recipe.layout_path) if recipe.layout_path else "",
-        "layout_text": inputs.layout_text,
+        "layout_text": "" if several else inputs.layout_text,
+        **several,
         "log_files": inputs.log_files,
         "embedding_files": inputs.embedding_files,
         "goal_map": plan.goal_map.describe(),
@@ -358,6 +363,8 @@ def final_summary(summary, plan, source) -> dict:
     result["composition"].update(widths=dict(plan.shapes or {}), sources=source_counts(plan, source))
     skipped = list(getattr(source, "skipped", []))
     result["skipped_episodes"] = len(skipped)
+    if plan.recipe.sources is not None:
+        result["sources"] = sources_summary(plan, source)
     if skipped:
         result["warnings"].append(f"{len(skipped)} episode(s) of the logs failed validation and were skipped "
                                   f"(first: episode {skipped[0][0]}); the provenance lists them")

@@ -8,7 +8,7 @@ import numpy as np
 
 from goalkit.pipeline.plan import SLOT_SPAN
 from goalkit.reward import score
-from goalkit.rows import GOAL_ADDRESS, LABEL_COLUMNS, SPLITS
+from goalkit.rows import END_FLAG_SOURCES, GOAL_ADDRESS, LABEL_COLUMNS, SPLITS
 from goalkit.write.gather import RowGather
 
 
@@ -141,4 +141,10 @@ def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gather
         cols["reached_goal"] = achieved
     if "task_reward" in plan.columns:
         cols["task_reward"] = np.take(chunk.rewards, t, axis=0).astype(np.float32)
+    # the environment's end flags of the logged transition (same for every slot; never scored)
+    for name, attr in END_FLAG_SOURCES.items():
+        if name in plan.columns:
+            cols[name] = np.take(getattr(chunk, attr), t, axis=0).astype(np.uint8)
+    if "source" in plan.columns:
+        cols["source"] = np.take(chunk.sources, src_pos, axis=0).astype(np.uint16)
     return cols, keys

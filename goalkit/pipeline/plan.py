@@ -21,8 +21,9 @@ from goalkit.pipeline.split import split_codes
 from goalkit.relabel import RelabelContext
 from goalkit.relabel.strategies import STRATEGIES
 from goalkit.relabel.strategies import strategy_names as table_names
-from goalkit.rows import SPLITS
-from goalkit.write.format import INDEX_COLUMNS, MATERIAL_COLUMNS, TASK_REWARD_COLUMN
+from goalkit.rows import END_FLAG_SOURCES, SPLITS
+from goalkit.logs.multi import open_sources
+from goalkit.write.format import END_FLAG_COLUMNS, INDEX_COLUMNS, MATERIAL_COLUMNS, SOURCE_COLUMN, TASK_REWARD_COLUMN
 
 #: Row keys are ``global transition index * SLOT_SPAN + slot``.
 SLOT_SPAN = 1 << 16
@@ -80,7 +81,8 @@ class BuildPlan:
         return int(self.transition_offsets[-1])
 
 
-def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_task_reward) -> dict:
+def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_task_reward, end_flags=(),
+             has_source=False) -> dict:
     goal_dtype = np.dtype(recipe.goal.dtype)
     kinds = {"goal": (goal_dtype, (goal_dim,)), "obs": (obs_dtype, obs_shape), "act": (act_dtype, act_shape)}
     cols = {}
@@ -91,6 +93,11 @@ def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_t
             cols[name] = kinds[kind]
     if has_task_reward:
         cols[TASK_REWARD_COLUMN[0]] = (np.dtype(TASK_REWARD_COLUMN[1]), ())
+    for name, (dtype, _) in END_FLAG_COLUMNS.items():
+        if name in end_flags:
+            cols[name] = (np.dtype(dtype), ())
+    if has_source:
+        cols[SOURCE_COLUMN[0]] = (np.dtype(SOURCE_COLUMN[1]), ())
     return cols
 
 
@@ -145,7 +152,10 @@ def check_mixture(recipe, first, context, goal_dim: int) -> None:
 
 
 def open_source(recipe):
-    """Open the recipe's logs with its layout."""
+    """Open the recipe's logs with its layout (several files or sources: one MultiSource)."""
+    if recipe.sources is not None:
+        return open_sources(recipe.sources, named=recipe.named_sources, file=recipe.file)
+
     layout = None
     if recipe.layout_path is not None:
         layout = load_layout(recipe.layout_path)
@@ -186,7 +196,9 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
                              _SplitLookup(ids, splits))
     check_mixture(recipe, first, context, goal_map.dim)
     cols = _columns(recipe, obs_shape, act_shape, first.observations.dtype, first.actions.dtype,
-                    goal_map.dim, first.rewards is not None)
+                    goal_map.dim, first.rewards is not None,
+                    [name for name, attr in END_FLAG_SOURCES.items() if getattr(first, attr) is not None],
+                    bool(recipe.named_sources))
     table = None
     if needs_goal_table(recipe.mixture):
         table = goal_table(source, goal_map, np.dtype(recipe.goal.dtype), max_transitions)

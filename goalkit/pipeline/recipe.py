@@ -7,11 +7,13 @@ never fails half-way on a typo.
 
 from __future__ import annotations
 
+import glob
 import os
 from dataclasses import dataclass, replace
 from pathlib import Path
 
 from goalkit.config import check_keys, expect_type, parse_toml, read_text_file
+from goalkit.archive import SourceSpec, is_pattern
 from goalkit.errors import ParameterError, RecipeError, shown
 from goalkit.heads import heads_from_table
 from goalkit.outputs import small_toml
@@ -20,8 +22,12 @@ from goalkit.reward import RewardRule
 
 RECIPE_VERSION = 1
 
-TOP_KEYS = ("version", "seed", "logs", "goal", "relabel", "reward", "split", "output", "heads")
+TOP_KEYS = ("version", "seed", "logs", "sources", "goal", "relabel", "reward", "split", "output", "heads")
 LOGS_KEYS = ("path", "layout", "skip_bad_episodes")
+#: Keys of each ``[[sources]]`` table.
+SOURCE_KEYS = ("name", "path", "layout", "skip_bad_episodes")
+#: Longest source name.
+MAX_SOURCE_NAME = 64
 GOAL_KEYS = ("fields", "indices", "embedding", "dtype")
 SPLIT_KEYS = ("validation", "salt")
 OUTPUT_KEYS = ("path", "mode", "compression", "chunk_rows")
@@ -97,6 +103,12 @@ class Recipe:
     heads : tuple of goalkit.heads.GoalHead
         The optional ``[heads.NAME]`` tables: goal heads of the multi-head training sampler
         (a build ignores them).
+    sources : tuple of SourceSpec, optional
+        The logs as several files and/or sources (``[logs] path`` a list, a glob or a folder of
+        log files, or ``[[sources]]``); None for one log file or per-file folder, read by
+        ``logs_path`` and ``layout_path`` as before.
+    named_sources : bool
+        The sources are named (``[[sources]]``): rows carry a ``source`` column.
     """
 
     text: str
@@ -112,6 +124,8 @@ class Recipe:
     salt: int
     output: OutputSpec
     heads: tuple = ()
+    sources: tuple | None = None
+    named_sources: bool = False
 
     def inputs(self) -> list[tuple[str, Path]]:
         """Every file or folder a build of this recipe reads, labelled for messages.
@@ -123,6 +137,13 @@ class Recipe:
                  ("[logs] path", self.logs_path), ("[logs] layout", self.layout_path),
                  ("[goal] embedding", self.goal.embedding),
                  ("[relabel] library", getattr(self.mixture, "library", None))]
+        for spec in self.sources or ():
+            where = f"[[sources]] '{spec.name}'" if spec.name else "[logs] path"
+            for entry in spec.entries:
+                matches = glob.glob(entry) if is_pattern(entry) else [entry]
+                items += [(where, m) for m in sorted(matches)]
+            if spec.layout_path:
+                items.append((f"{where} layout", spec.layout_path))
         return [(label, Path(p)) for label, p in items if p is not None]
 
     def with_overrides(self, *, seed: int | None = None, out: str | Path | None = None) -> "Recipe":
@@ -262,14 +283,30 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored
     if version != RECIPE_VERSION:
         raise RecipeError(f"expected version = {RECIPE_VERSION}, got {shown(version)}", file=file, key="version")
     seed = _check_seed(doc.get("seed", 0), file)
-    logs = _table(doc, "logs", file)
-    check_keys(logs, LOGS_KEYS, file=file, section="[logs]", error=RecipeError)
-    if "path" not in logs:
-        raise RecipeError("missing key 'path' in [logs]", file=file, key="logs.path")
-    logs_path = _path(logs["path"], base, file, "logs.path")
-    layout_path = _path(logs["layout"], base, file, "logs.layout") if "layout" in logs else None
-    skip = logs.get("skip_bad_episodes", False)
-    expect_type(skip, bool, file=file, key="logs.skip_bad_episodes", what="true or false", error=RecipeError)
+    logs_path = layout_path = None
+    skip, sources, named = False, None, False
+    if "sources" in doc:
+        if "logs" in doc:
+            raise RecipeError("expected either [logs] or [[sources]], not both", file=file, key="sources")
+        sources, named = _parse_sources(doc["sources"], base, file), True
+    else:
+        logs = _table(doc, "logs", file)
+        check_keys(logs, LOGS_KEYS, file=file, section="[logs]", error=RecipeError)
+        if "path" not in logs:
+            raise RecipeError("missing key 'path' in [logs]", file=file, key="logs.path")
+        layout_path = _path(logs["layout"], base, file, "logs.layout") if "layout" in logs else None
+        skip = logs.get("skip_bad_episodes", False)
+        expect_type(skip, bool, file=file, key="logs.skip_bad_episodes", what="true or false", error=RecipeError)
+        value = logs["path"]
+        if isinstance(value, str) and not is_pattern(value):
+            logs_path = _path(value, base, file, "logs.path")
+            if logs_path.is_dir() and _holds_logs(logs_path, layout_path):
+                sources = (SourceSpec("", (str(logs_path),), None, skip, "logs.path", str(layout_path or "")),)
+        else:
+            entries = _entries(value, base, file, "logs.path")
+            sources = (SourceSpec("", entries, None, skip, "logs.path", str(layout_path or "")),)
+        if sources is not None:
+            logs_path = None
     goal = _parse_goal(_table(doc, "goal", file), base, file)
     mixture = _in_recipe(Mixture.from_table, _table(doc, "relabel", file), file, "relabel")
     if mixture.library is not None:  # relative to the recipe's folder, like every other path
@@ -283,7 +320,8 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored
     heads = heads_from_table(_table(doc, "heads", file, required=False), file)
     return Recipe(text=text, file=str(file), seed=seed, logs_path=logs_path, layout_path=layout_path,
                   skip_bad_episodes=skip, goal=goal, mixture=mixture, reward=reward,
-                  validation=validation, salt=salt, output=output, heads=heads)
+                  validation=validation, salt=salt, output=output, heads=heads,
+                  sources=sources, named_sources=named)
 
 
 def _in_recipe(make, table, file, name: str):
@@ -292,6 +330,69 @@ def _in_recipe(make, table, file, name: str):
         return make(table)
     except ParameterError as exc:
         raise exc.in_recipe(file, name) from None
+
+
+def _holds_logs(folder: Path, layout_path) -> bool:
+    """A folder given as ``[logs] path`` stands for its HDF5/NPZ log files (several logs) unless it
+    is a per-file folder: its layout says ``shape = "per-file"`` (or bag, table), or, without a
+    layout, it holds no ``.h5``/``.hdf5``/``.hdf`` file (a per-file folder holds ``.npz`` files).
+    A folder with no log file at all is left to the reader, which names the problem."""
+    try:
+        names = [n.lower() for n in os.listdir(folder)]
+    except OSError:
+        return False
+    if layout_path is not None:
+        doc = small_toml(layout_path)
+        if doc is not None and doc.get("shape") in ("per-file", "bag", "table"):
+            return False
+        return any(n.endswith((".h5", ".hdf5", ".hdf", ".npz")) for n in names)
+    return any(n.endswith((".h5", ".hdf5", ".hdf")) for n in names)
+
+
+def _entries(value, base: Path, file, key) -> tuple:
+    """A path, a glob or a list of them, as absolute paths (globs kept as patterns)."""
+    items = [value] if isinstance(value, str) else value
+    if not isinstance(items, list) or not items:
+        raise RecipeError(f"expected a path, a glob or a non-empty list of them, got {value!r}", file=file, key=key)
+    out = []
+    for i, item in enumerate(items):
+        where = key if isinstance(value, str) else f"{key}[{i}]"
+        if not isinstance(item, str) or not item:
+            raise RecipeError(f"expected a path or a glob (a non-empty string), got {item!r}", file=file, key=where)
+        p = Path(item).expanduser()
+        p = p if p.is_absolute() else base / p
+        out.append(os.path.abspath(p) if is_pattern(item) else str(_path(str(p), base, file, where)))
+    return tuple(out)
+
+
+def _parse_sources(value, base: Path, file) -> tuple:
+    """``[[sources]]``: named sources, each with its own files and layout."""
+    if not isinstance(value, list) or not value or not all(isinstance(t, dict) for t in value):
+        raise RecipeError("expected one or more [[sources]] tables", file=file, key="sources")
+    specs, names = [], {}
+    for i, table in enumerate(value):
+        where = f"sources[{i}]"
+        check_keys(table, SOURCE_KEYS, file=file, section=f"[[sources]] number {i + 1}", error=RecipeError)
+        for required in ("name", "path"):
+            if required not in table:
+                raise RecipeError(f"missing key '{required}' in [[sources]] number {i + 1}", file=file,
+                                  key=f"{where}.{required}")
+        name = table["name"]
+        if (not isinstance(name, str) or not name or len(name) > MAX_SOURCE_NAME
+                or not name.isprintable() or name.strip() != name):
+            raise RecipeError(f"expected a source name of 1 to {MAX_SOURCE_NAME} printable characters without "
+                              f"leading or trailing spaces, got {name!r}", file=file, key=f"{where}.name")
+        if name in names:
+            raise RecipeError(f"two sources are named '{name}' (sources[{names[name]}] and {where}); expected "
+                              f"distinct names", file=file, key=f"{where}.name")
+        names[name] = i
+        skip = table.get("skip_bad_episodes", False)
+        expect_type(skip, bool, file=file, key=f"{where}.skip_bad_episodes", what="true or false",
+                    error=RecipeError)
+        layout = _path(table["layout"], base, file, f"{where}.layout") if "layout" in table else None
+        specs.append(SourceSpec(name, _entries(table["path"], base, file, f"{where}.path"), None, skip,
+                                f"{where}.path", str(layout or "")))
+    return tuple(specs)
 
 
 def load_recipe(path) -> Recipe:

@@ -67,6 +67,18 @@ def _rebased(value: str, old_dir: Path, new_dir: Path) -> str | None:
     return Path(os.path.relpath(target, new_dir.resolve())).as_posix()
 
 
+def _rebased_value(value, old_dir: Path, new_dir: Path):
+    """A path or a list of paths and globs (``[logs] path``, ``[[sources]] path``) rebased; None
+    when unchanged or not paths."""
+    if isinstance(value, str):
+        new = _rebased(value, old_dir, new_dir)
+        return new if new is not None and new != value else None
+    if isinstance(value, list) and value and all(isinstance(v, str) for v in value):
+        new = [_rebased(v, old_dir, new_dir) or v for v in value]
+        return new if new != value else None
+    return None
+
+
 def _get(doc, path: str):
     cur = doc
     for part in path.split("."):
@@ -141,13 +153,19 @@ def tuned_recipe_text(text: str, *, threshold, distance: str | None = None, note
     edited["reward"]["threshold"] = expected["reward"]["threshold"] = thr
     if source_dir is not None and target_dir is not None:
         for key in PATH_KEYS:
-            value = _get(doc, key)
-            if isinstance(value, str):
-                new = _rebased(value, Path(source_dir), Path(target_dir))
-                if new is not None and new != value:
-                    _table(edited, key)[key.rsplit(".", 1)[1]] = new
-                    _table(expected, key)[key.rsplit(".", 1)[1]] = new
-                    words.append(f"{key} rewritten relative to the new folder")
+            new = _rebased_value(_get(doc, key), Path(source_dir), Path(target_dir))
+            if new is not None:
+                _table(edited, key)[key.rsplit(".", 1)[1]] = new
+                _table(expected, key)[key.rsplit(".", 1)[1]] = new
+                words.append(f"{key} rewritten relative to the new folder")
+        sources = doc.get("sources")
+        for i, table in enumerate(sources if isinstance(sources, list) else []):
+            for name in ("path", "layout"):
+                new = _rebased_value(table.get(name) if isinstance(table, dict) else None, Path(source_dir),
+                                     Path(target_dir))
+                if new is not None:
+                    edited["sources"][i][name] = expected["sources"][i][name] = new
+                    words.append(f"sources[{i}].{name} rewritten relative to the new folder")
     new_text = _with_comments(edited, comments)
     if parse_toml(new_text, file, RecipeError) == expected:
         return RecipeEdit(new_text, True, tuple(words))

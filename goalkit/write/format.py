@@ -21,10 +21,11 @@ import json
 from pathlib import Path
 
 from goalkit.errors import DatasetError
-from goalkit.rows import INDEX_FIELDS, MATERIAL_FIELDS, SPLIT_CODES, SPLITS, TASK_REWARD_FIELD
+from goalkit.rows import (END_FLAG_FIELDS, INDEX_FIELDS, MATERIAL_FIELDS, SOURCE_FIELD, SPLIT_CODES, SPLITS,
+                          TASK_REWARD_FIELD)
 
 __all__ = ["FORMAT_NAME", "FORMAT_VERSION", "INDEX_COLUMNS", "MATERIAL_COLUMNS", "SPLITS", "SPLIT_CODES",
-           "TASK_REWARD_COLUMN", "COLUMN_ATTRS", "STRATEGY_CODES_ATTR", "column_names", "is_goal_set",
+           "TASK_REWARD_COLUMN", "END_FLAG_COLUMNS", "SOURCE_COLUMN", "COLUMN_ATTRS", "STRATEGY_CODES_ATTR", "column_names", "is_goal_set",
            "strategy_codes_text"]
 
 FORMAT_NAME = "goalkit-goal-set"
@@ -40,6 +41,12 @@ MATERIAL_COLUMNS = {f.name: (f.dtype, f.kind, f.meaning) for f in MATERIAL_FIELD
 TASK_REWARD_COLUMN = (TASK_REWARD_FIELD.name, TASK_REWARD_FIELD.dtype, TASK_REWARD_FIELD.meaning)
 
 
+#: Optional columns, present when the layout maps the environment's end flags: name -> (dtype, meaning).
+END_FLAG_COLUMNS = {f.name: (f.dtype, f.meaning) for f in END_FLAG_FIELDS.values()}
+#: Optional column, present when the recipe names its sources: (name, dtype, meaning).
+SOURCE_COLUMN = (SOURCE_FIELD.name, SOURCE_FIELD.dtype, SOURCE_FIELD.meaning)
+
+
 #: Attributes a column may carry: the ``strategy`` column's ``codes`` is the set's own strategy
 #: table, JSON text ``{"code": "name", ...}`` (sets written before it have no column attributes).
 STRATEGY_CODES_ATTR = "codes"
@@ -51,13 +58,20 @@ def strategy_codes_text(names: dict) -> str:
     return json.dumps({str(int(c)): str(names[c]) for c in sorted(names)}, separators=(", ", ": "))
 
 
-def column_names(mode: str, has_task_reward: bool) -> list[str]:
-    """Return the column names of a set in ``mode``, in the order they are written."""
+def column_names(mode: str, has_task_reward: bool, end_flags=(), has_source: bool = False) -> list[str]:
+    """Return the column names of a set in ``mode``, in the order they are written.
+
+    ``end_flags`` names the end-flag columns present (:data:`END_FLAG_COLUMNS`); ``has_source``:
+    the set has the source column (:data:`SOURCE_COLUMN`).
+    """
     names = list(INDEX_COLUMNS)
     if mode == "materialised":
         names += list(MATERIAL_COLUMNS)
     if has_task_reward:
         names.append(TASK_REWARD_COLUMN[0])
+    names += [n for n in END_FLAG_COLUMNS if n in end_flags]
+    if has_source:
+        names.append(SOURCE_COLUMN[0])
     return names
 
 

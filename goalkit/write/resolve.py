@@ -13,6 +13,7 @@ from goalkit.logs import open_logs
 from goalkit.logs.layout import parse_layout
 from goalkit.pipeline.goal import make_goal_map
 from goalkit.pipeline.recipe import parse_recipe
+from goalkit.logs.multi import open_sources, specs_from_provenance
 
 
 @dataclass
@@ -33,7 +34,8 @@ def recipe_of(goalset):
     from dataclasses import replace
 
     prov = goalset.provenance
-    for key, required in (("recipe_file", False), ("layout_path", False), ("logs_path", True)):
+    several = "sources" in prov
+    for key, required in (("recipe_file", False), ("layout_path", False), ("logs_path", not several)):
         value = prov.get(key)
         if (required and not value) or not isinstance(value, (str, type(None))):
             raise DatasetError("expected the path as text", file=goalset.path, key=f"provenance.{key}")
@@ -43,6 +45,9 @@ def recipe_of(goalset):
     except GoalkitError as exc:
         raise DatasetError(f"the stored recipe cannot be used: {exc}", file=goalset.path, key="recipe") from None
     layout = Path(prov["layout_path"]) if prov.get("layout_path") else None
+    if several:   # the files and layouts as read at build time
+        specs = specs_from_provenance(prov["sources"], DatasetError, file=goalset.path)
+        return replace(recipe, logs_path=None, layout_path=layout, sources=specs)
     return replace(recipe, logs_path=Path(prov["logs_path"]), layout_path=layout)
 
 
@@ -57,7 +62,10 @@ def open_logs_of(goalset) -> LogsOfSet:
         layout = parse_layout(parse_toml(prov["layout_text"], f"{goalset.path}:layout", DatasetError),
                               f"{goalset.path}:layout")
     try:
-        source = open_logs(recipe.logs_path, layout, skip_bad_episodes=recipe.skip_bad_episodes)
+        if recipe.sources is not None:
+            source = open_sources(recipe.sources, named=recipe.named_sources, file=goalset.path)
+        else:
+            source = open_logs(recipe.logs_path, layout, skip_bad_episodes=recipe.skip_bad_episodes)
     except GoalkitError as exc:
         raise DatasetError(f"cannot reopen the logs this set was built from: {exc}", file=goalset.path) from None
     first = source.read(0, 1)

@@ -39,6 +39,7 @@ from goalkit.pipeline.plan import make_plan, split_rows
 from goalkit.pipeline.summary import SummaryBuilder
 from goalkit.relabel.strategies import strategy_names
 from goalkit.reward import score
+from goalkit.rows import END_FLAG_SOURCES
 from goalkit.write.format import SPLIT_CODES, SPLITS
 from goalkit.write.reader import GoalSet
 from goalkit.write.rederive import (as_stored, check_columns, differences, provenance_differences,
@@ -118,6 +119,19 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
             if diff.any():
                 row = _first(diff)
                 report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): {name} is not the logged value")
+    for name, attr in END_FLAG_SOURCES.items():   # the environment's end flags, from the logs
+        if name in cols:
+            logged = getattr(chunk, attr)
+            diff = np.ones(n, bool) if logged is None else cols[name] != logged[trans].astype(np.uint8)
+            if diff.any():
+                row = _first(diff)
+                report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): {name} is not the log's "
+                            f"flag of the transition")
+    if "source" in cols:
+        diff = np.ones(n, bool) if chunk.sources is None else cols["source"] != chunk.sources[pos]
+        if diff.any():
+            row = _first(diff)
+            report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): source is not the episode's source")
     phi = plan.goal_map(chunk, np.arange(chunk.observations.shape[0])).astype(goal_dtype)
     achieved = phi[cur + 1]
     if "reached_goal" in cols:

@@ -134,3 +134,32 @@ def test_flat_reader_offsets_equal_the_truth(lengths, boundary, convention, alig
         es = src.read(0, len(lengths))
     np.testing.assert_array_equal(es.offsets, np.concatenate([[0], np.cumsum(lengths)]))
     np.testing.assert_array_equal(es.state_offsets()[1:] - es.state_offsets()[:-1], np.array(lengths) + 1)
+
+
+def test_boundaries_from_ids_flags_and_offsets_together(tmp_path):
+    """Any combination of ids, several done flags and offsets: an episode ends where any of them
+    ends one; a lone flag leaves the last episode open; all must count the same rows."""
+    import h5py
+
+    from goalkit.logs import open_logs
+
+    n = 12
+    with h5py.File(tmp_path / "c.h5", "w") as f:
+        f["obs"] = np.arange(2 * n, dtype=np.float64).reshape(n, 2)
+        f["next"] = f["obs"][:] + 0.0
+        f["act"] = np.zeros((n, 1))
+        f["ids"] = np.array([0, 0, 0, 0, 1, 1, 1, 1, 1, 1, 1, 1])       # one change, after row 3
+        f["a"] = np.eye(1, n, 6, dtype=bool)[0]                        # ends after row 6
+        f["b"] = np.eye(1, n, 9, dtype=np.uint8)[0]                    # ends after row 9
+        f["starts"] = np.array([0, 2])                                 # a start at row 2
+    base = {"shape": "flat", "keys": {"observation": "obs", "action": "act"}}
+
+    def lengths(**b):
+        return open_logs(tmp_path / "c.h5", dict(base, boundaries=b), skip_bad_episodes=True).lengths.tolist()
+
+    # T observations per action: each episode drops its last row
+    assert lengths(episode_id="ids", done=["a", "b"]) == [3, 2, 2, 1]             # rows 4 | 3 | 3 | 2
+    assert lengths(episode_id="ids", done="a", offsets="starts") == [1, 1, 2, 4]    # rows 2 | 2 | 3 | 5
+    with pytest.raises(LogError, match=r"key a\+b: episode 2: step 1: the done flags never end the last "
+                                       r"episode: its last 2 rows have no true value"):
+        open_logs(tmp_path / "c.h5", dict(base, boundaries={"done": ["a", "b"]}))

@@ -71,7 +71,7 @@ def test_flat_inside_one_group_and_plural_names(tmp_path):
         f["data/terminals"] = np.array([0, 0, 1, 0, 0, 0, 1], dtype=np.uint8)
     lay = propose_layout(tmp_path / "f.h5")
     assert lay.keys.observation == "data/observations" and lay.keys.next_observation == "data/next_observations"
-    assert lay.boundaries.done == "data/terminals"
+    assert lay.boundaries.done == ("data/terminals",)
     src = open_logs(tmp_path / "f.h5")
     assert src.convention == "pairs" and src.lengths.tolist() == [3, 4]
     assert_matches(src.read(0, 2), eps, [0, 1])

@@ -84,9 +84,13 @@ def test_misspelt_keys_name_the_closest_and_list_valid(doc, closest, section):
     (with_(FLAT, shape="flattened"), "expected one of grouped, flat, per-file, bag, table, got 'flattened'"),
     (with_(FLAT, shape=None), "missing 'shape'"),
     (with_(FLAT, version=2), "expected version = 1"),
-    (with_(FLAT, boundaries={}), "expected exactly one of episode_id, done, offsets in [boundaries], got 0"),
-    (with_(FLAT, boundaries={"done": "d", "offsets": "o"}), "got 2 (done, offsets)"),
-    (with_(FLAT, boundaries=None), "got 0"),
+    (with_(FLAT, boundaries={}), "expected at least one of episode_id, done, offsets in [boundaries]"),
+    (with_(FLAT, boundaries=None), "expected at least one of episode_id, done, offsets"),
+    (with_(FLAT, boundaries={"done": []}), "expected a key or a non-empty list of keys, got []"),
+    (with_(FLAT, boundaries={"done": ["t", "t"]}), "expected each done key once"),
+    (with_(FLAT, boundaries={"done": 3}), "key boundaries.done"),
+    (with_(FLAT, boundaries={"offsets": ["o"]}), "key boundaries.offsets"),
+    (with_(FLAT, keys={"action": "a", "observation": "o", "termination": 5}), "key keys.termination"),
     (with_(FLAT, episode_groups="runs/*"), "'episode_groups' is only for shape = \"grouped\""),
     (with_(GROUPED, boundaries={"done": "d"}), "'boundaries' is only for shape = \"flat\""),
     (with_(GROUPED, file_pattern="*.npz"), "'file_pattern' is only for shape = \"per-file\""),
@@ -97,7 +101,19 @@ def test_misspelt_keys_name_the_closest_and_list_valid(doc, closest, section):
     (with_(FLAT, keys={"observation": "o"}), "missing the action key"),
     (with_(FLAT, keys={"action": "a"}), "no observations"),
     (with_(GROUPED, keys={"action": "a", "observation": "o"}), "either [keys] observation or a [fields] table"),
-    (with_(GROUPED, keys={"action": "a", "next_observation": "n"}), "next_observation needs [keys] observation"),
+    (with_(GROUPED, keys={"action": "a", "next_observation": "n"}),
+     "next_observation with [fields] needs every field to take its columns from one array"),
+    (with_(FLAT, keys={"action": "a", "observation": {"key": "s"}}), "expected a table with exactly 'key' and 'columns'"),
+    (with_(FLAT, keys={"action": "a", "observation": {"key": "s", "columns": []}}),
+     "key keys.observation.columns: expected a non-empty list of column indices"),
+    (with_(FLAT, keys={"action": "a", "observation": {"key": "s", "columns": [-1]}}), "indices >= 0"),
+    (with_(FLAT, keys={"action": "a", "observation": {"key": "s", "columns": "3:3"}}), "start < stop"),
+    (with_(FLAT, keys={"action": {"key": "s", "columns": [0]}, "observation": "o"}),
+     "key keys.action: expected a key name (a string)"),
+    (with_(FLAT, keys={"action": "a", "observation": {"key": "s", "columns": [0, 1]},
+                       "next_observation": {"key": "n", "columns": [0]}}), "selects 1 columns, observation selects 2"),
+    (with_(FLAT, keys={"action": "a", "next_observation": {"key": "n", "columns": [0]}},
+           fields={"x": {"key": "s", "columns": [0]}}), "give next_observation as the array's key"),
     (with_(FLAT, keys={"observation": "", "action": "a"}), "expected a non-empty string"),
     (with_(FLAT, keys={"observation": 3, "action": "a"}), "key keys.observation: expected a non-empty string, got 3"),
     (with_(FLAT, keys="obs"), "expected a table [keys]"),
@@ -128,3 +144,23 @@ def test_every_example_in_the_user_docs_parses():
             continue
         lay = parse_layout(doc, "docs/layout.md")
         assert parse_layout(tomllib.loads(layout_to_toml(lay))) == lay
+
+
+def test_column_keys_parse_and_round_trip():
+    from goalkit.logs.columns import ColumnKey
+
+    doc = {"shape": "flat", "keys": {"action": "act", "next_observation": "next_state",
+                                     "task_goal": {"key": "target", "columns": "1:3"}},
+           "fields": {"tip": {"key": "state", "columns": [8, 9]}, "rest": {"key": "state", "columns": "0:8"},
+                      "joint": "state"},
+           "boundaries": {"done": ["term", "trunc"], "episode_id": "run"}}
+    lay = parse_layout(doc, "lay.toml")
+    assert lay.fields[0] == ("tip", ColumnKey("state", [8, 9]))
+    assert lay.fields[1][1].columns == tuple(range(8))
+    assert lay.keys.task_goal == ColumnKey("target", [1, 2])
+    assert lay.keys.task_goal != "target" and ColumnKey("s", [0]) != ColumnKey("s", [1])
+    assert lay.next_observation_keys() == [ColumnKey("next_state", [8, 9]), ColumnKey("next_state", range(8)),
+                                           "next_state"]
+    text = layout_to_toml(lay)
+    assert 'tip = {key = "state", columns = [8, 9]}' in text and 'done = ["term", "trunc"]' in text
+    assert parse_layout(tomllib.loads(text), "again.toml") == lay
