@@ -94,10 +94,16 @@ MATERIAL_FIELDS = _fields(
 TASK_REWARD_FIELD = Field("task_reward", "float32", "",
                           "the log's own reward of the transition (when the logs have one)")
 
+#: Optional column, present when the recipe has a ``[mask]`` table (goal masks, goalkit.goals.masks).
+GOAL_MASK_FIELD = Field("goal_mask", "uint8", "goal",
+                        "1 for each goal dimension the goal constrains (reward, reached and distance use "
+                        "only these; recipes with a [mask] table only)")
+
 #: The columns a relabelling strategy fills (the rest come from the logs and the reward rule).
 GOAL_ADDRESS = ("goal_episode", "goal_step", "hop_episode", "hop_step", "join_step", "steps_to_goal")
 #: The columns :func:`goalkit.reward.score` fills, in this order.
 SCORE_COLUMNS = ("goal_distance", "reward", "reached", "terminal")
 
 #: Every column, by name.
-ALL_FIELDS = {**INDEX_FIELDS, **MATERIAL_FIELDS, TASK_REWARD_FIELD.name: TASK_REWARD_FIELD}
+ALL_FIELDS = {**INDEX_FIELDS, **MATERIAL_FIELDS, TASK_REWARD_FIELD.name: TASK_REWARD_FIELD,
+              GOAL_MASK_FIELD.name: GOAL_MASK_FIELD}

@@ -10,6 +10,7 @@ from types import SimpleNamespace
 import numpy as np
 
 from goalkit.audit.laws import geometric_law, uniform_law
+from goalkit.audit.maskrules import MaskAudit
 from goalkit.audit.recipe_text import CODE_NAMES, parse_audit_recipe
 from goalkit.audit.rowrules import (EPISODE, FUTURE, GEOMETRIC, NEAR_MISS, NEIGHBOUR, ORIGINAL, OTHER,
                                     address_rules, reward_rules)
@@ -92,6 +93,8 @@ class _Logs:
         first = self.source.read(0, 1)
         self.goal_map = make_goal_map(spec, self.source, first.observations.shape[1])
         self.goal_dtype = np.dtype(goal.get("dtype", "float32"))
+        self.field_widths = [(n, first.fields[n][1] - first.fields[n][0]) for n in spec.fields
+                             if n in first.fields]
 
     def known(self, episodes) -> np.ndarray:
         pos = np.minimum(np.searchsorted(self.ids, episodes), len(self.ids) - 1)
@@ -105,6 +108,10 @@ class _Logs:
 
     def achieved_and_task_goal(self, episodes, steps):
         """phi(s_t+1) (goal dtype) and the log's task goal (or None) of each (episode, t)."""
+        return self.achieved_task_goal_and_task(episodes, steps)[:2]
+
+    def achieved_task_goal_and_task(self, episodes, steps):
+        """:meth:`achieved_and_task_goal` and the task id of each row's episode (-1: none)."""
         pos = np.searchsorted(self.ids, episodes)
         a, b = int(pos.min()), int(pos.max()) + 1
         chunk = self.source.read(a, b)
@@ -115,7 +122,9 @@ class _Logs:
         if chunk.task_goals is not None:
             tg = np.asarray(chunk.task_goals)
             task = tg.reshape(len(tg), -1)[chunk.offsets[local] + steps]
-        return achieved, task
+        task_ids = (np.full(len(local), -1, np.int64) if chunk.task_ids is None
+                    else np.asarray(chunk.task_ids, dtype=np.int64)[local])
+        return achieved, task, task_ids
 
 
 class _Draws:
@@ -202,6 +211,7 @@ class _Auditor:
         self.draws = _Draws()
         self.violations = {}
         self.first = {}
+        self.masks = None if rc.mask is None else MaskAudit(rc.mask, logs.goal_map.dim, logs.field_widths)
 
     # ---- failures ------------------------------------------------------------------------
     def violated(self, rule, message, mask, split, row0, c):
@@ -280,6 +290,12 @@ class _Auditor:
         rc, logs = self.rc, self.logs
         grp = self.f[split]
         c = {k: grp[k][a:b] for k in INDEX}
+        if self.masks is not None:
+            if "goal_mask" not in grp:
+                self.violated("goal_mask", "the recipe has a [mask] table but the set no goal_mask column",
+                              np.ones(b - a, bool), split, a, c)
+                return
+            c["goal_mask"] = grp["goal_mask"][a:b]
         n = b - a
         v = self.jitter.random((n, 3))
         self.report.rows[split] += n
@@ -313,8 +329,13 @@ class _Auditor:
         inside = (t >= 0) & (t < T)
         if inside.any():
             idx = np.flatnonzero(inside)
-            achieved, task = logs.achieved_and_task_goal(ep[idx], t[idx])
+            achieved, task, task_ids = logs.achieved_task_goal_and_task(ep[idx], t[idx])
             sub = {k: val[idx] for k, val in c.items()}
+            if self.masks is not None:
+                for rule, message, mask in self.masks.rules(sub["goal_mask"], sub["strategy"], task_ids):
+                    full = np.zeros(len(ep), bool)
+                    full[idx] = mask
+                    self.violated(rule, message, full, split, a, c)
             for rule, message, mask in reward_rules(sub, achieved, sub["goal"], rc):
                 full = np.zeros(len(ep), bool)
                 full[idx] = mask
@@ -395,6 +416,8 @@ class _Auditor:
                 ("slot pairs: same goal step", d.pairs_same_step, "same-strategy slot pairs with one goal step")):
             out.append(count_bound_check(name, hit, list(probs), list(probs.values()), what))
         out.append(grid_chi2_check("slot pairs: independent draws", d.grid, "PIT pairs of slots (2k, 2k+1)"))
+        if self.masks is not None:
+            out.append(self.masks.check())
         return [c for c in out if c is not None]
 
 

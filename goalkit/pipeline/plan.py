@@ -13,12 +13,14 @@ import numpy as np
 
 from goalkit.errors import RecipeError
 
+from goalkit.goals.masks import field_groups
+from goalkit.logs.episodes import chunk_bounds
 from goalkit.pipeline.goal import make_goal_map
 from goalkit.pipeline.split import split_codes
 from goalkit.relabel.strategies import STRATEGIES
 from goalkit.relabel.strategies import strategy_names as table_names
 from goalkit.rows import SPLITS
-from goalkit.write.format import INDEX_COLUMNS, MATERIAL_COLUMNS, TASK_REWARD_COLUMN
+from goalkit.write.format import GOAL_MASK_COLUMN, INDEX_COLUMNS, MATERIAL_COLUMNS, TASK_REWARD_COLUMN
 
 #: Row keys are ``global transition index * SLOT_SPAN + slot``.
 SLOT_SPAN = 1 << 16
@@ -47,6 +49,9 @@ class BuildPlan:
         episodes; None otherwise.
     columns : dict
         Column name -> (dtype, per-row shape) of the output.
+    masks : goalkit.goals.masks.GoalMasks or None
+        The recipe's mask table matched with the goal space and the logs' tasks (None: no
+        ``[mask]`` table).
     """
 
     recipe: object
@@ -58,6 +63,7 @@ class BuildPlan:
     context: object
     goal_table: np.ndarray | None
     columns: dict
+    masks: object = None
 
     def positions(self, episode_ids) -> np.ndarray:
         """Position among the kept episodes of each episode id."""
@@ -84,7 +90,26 @@ def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_t
             cols[name] = kinds[kind]
     if has_task_reward:
         cols[TASK_REWARD_COLUMN[0]] = (np.dtype(TASK_REWARD_COLUMN[1]), ())
+    if recipe.masks is not None:
+        cols[GOAL_MASK_COLUMN[0]] = (np.dtype(GOAL_MASK_COLUMN[1]), (goal_dim,))
     return cols
+
+
+def resolve_masks(recipe, source, first, goal_dim: int, max_transitions: int):
+    """The recipe's ``[mask]`` table matched with the goal space and the logs' tasks (or None).
+
+    When the table names tasks, the task ids of every kept episode are read first (one pass
+    over the logs), so that a task the logs do not have is refused before anything is written.
+    """
+    spec = recipe.masks
+    if spec is None:
+        return None
+    groups = field_groups(recipe.goal.fields, first.fields) if recipe.goal.fields else ()
+    tasks = None
+    if spec.tasks and first.task_ids is not None:
+        seen = [source.read(a, b).task_ids for a, b in chunk_bounds(source.lengths, max_transitions)]
+        tasks = np.unique(np.concatenate(seen)) if seen else np.zeros(0, np.int64)
+    return spec.resolve(goal_dim, groups, tasks, file=recipe.file)
 
 
 #: Strategies whose goals may come from episodes outside the chunk.
@@ -181,6 +206,7 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
                              {c: lengths[splits == c] for c in np.unique(splits).tolist()},
                              _SplitLookup(ids, splits))
     check_mixture(recipe, first, context, goal_map.dim)
+    masks = resolve_masks(recipe, source, first, goal_map.dim, max_transitions)
     cols = _columns(recipe, obs_shape, act_shape, first.observations.dtype, first.actions.dtype,
                     goal_map.dim, first.rewards is not None)
     table = None
@@ -192,13 +218,12 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
         context = attach_searches(recipe, context, table, goal_map, ids, lengths, splits)
     plan = BuildPlan(recipe=recipe, goal_map=goal_map, episode_ids=ids, lengths=lengths,
                      transition_offsets=offsets, splits=splits, context=context, goal_table=table,
-                     columns=cols)
+                     columns=cols, masks=masks)
     return plan, source
 
 
 def goal_table(source, goal_map, dtype, max_transitions: int) -> np.ndarray:
     """phi of every kept state of the log, in global state-row order, cast to ``dtype``."""
-    from goalkit.logs.episodes import chunk_bounds
 
     lengths = np.asarray(source.lengths, dtype=np.int64)
     total = int(lengths.sum() + len(lengths))

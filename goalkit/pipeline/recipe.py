@@ -13,10 +13,11 @@ from pathlib import Path
 
 from goalkit.config import check_keys, expect_type, parse_toml, read_text_file
 from goalkit.errors import RecipeError
+from goalkit.goals.masks import MaskSpec
 
 RECIPE_VERSION = 1
 
-TOP_KEYS = ("version", "seed", "logs", "goal", "relabel", "reward", "split", "output")
+TOP_KEYS = ("version", "seed", "logs", "goal", "relabel", "reward", "split", "output", "mask")
 LOGS_KEYS = ("path", "layout", "skip_bad_episodes")
 GOAL_KEYS = ("fields", "indices", "embedding", "dtype")
 SPLIT_KEYS = ("validation", "salt")
@@ -85,6 +86,8 @@ class Recipe:
     salt : int
         Salt of the split hash.
     output : OutputSpec
+    masks : goalkit.goals.masks.MaskSpec or None
+        The ``[mask]`` table (goal masks); None: no mask column, every goal dimension counts.
     """
 
     text: str
@@ -99,6 +102,7 @@ class Recipe:
     validation: float
     salt: int
     output: OutputSpec
+    masks: MaskSpec | None = None
 
     def inputs(self) -> list[tuple[str, Path]]:
         """Every file or folder a build of this recipe reads, labelled for messages.
@@ -262,9 +266,10 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None) -> Recipe
     reward = RewardRule.from_table(_table(doc, "reward", file), file)
     validation, salt = _parse_split(_table(doc, "split", file, required=False), file)
     output = _parse_output(_table(doc, "output", file), base, file)
+    masks = MaskSpec.from_table(doc["mask"], file) if "mask" in doc else None
     return Recipe(text=text, file=str(file), seed=seed, logs_path=logs_path, layout_path=layout_path,
                   skip_bad_episodes=skip, goal=goal, mixture=mixture, reward=reward,
-                  validation=validation, salt=salt, output=output)
+                  validation=validation, salt=salt, output=output, masks=masks)
 
 
 def load_recipe(path) -> Recipe:

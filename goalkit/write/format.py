@@ -20,10 +20,10 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
-from goalkit.rows import INDEX_FIELDS, MATERIAL_FIELDS, SPLIT_CODES, SPLITS, TASK_REWARD_FIELD
+from goalkit.rows import GOAL_MASK_FIELD, INDEX_FIELDS, MATERIAL_FIELDS, SPLIT_CODES, SPLITS, TASK_REWARD_FIELD
 
 __all__ = ["FORMAT_NAME", "FORMAT_VERSION", "INDEX_COLUMNS", "MATERIAL_COLUMNS", "SPLITS", "SPLIT_CODES",
-           "TASK_REWARD_COLUMN", "COLUMN_ATTRS", "STRATEGY_CODES_ATTR", "column_names", "is_goal_set",
+           "TASK_REWARD_COLUMN", "GOAL_MASK_COLUMN", "COLUMN_ATTRS", "STRATEGY_CODES_ATTR", "column_names", "is_goal_set",
            "strategy_codes_text"]
 
 FORMAT_NAME = "goalkit-goal-set"
@@ -37,6 +37,8 @@ MATERIAL_COLUMNS = {f.name: (f.dtype, f.kind, f.meaning) for f in MATERIAL_FIELD
 
 #: Optional column, present when the logs carry a task reward: (name, dtype, meaning).
 TASK_REWARD_COLUMN = (TASK_REWARD_FIELD.name, TASK_REWARD_FIELD.dtype, TASK_REWARD_FIELD.meaning)
+#: Optional column, present when the recipe has a ``[mask]`` table: (name, dtype, meaning).
+GOAL_MASK_COLUMN = (GOAL_MASK_FIELD.name, GOAL_MASK_FIELD.dtype, GOAL_MASK_FIELD.meaning)
 
 
 #: Attributes a column may carry: the ``strategy`` column's ``codes`` is the set's own strategy
@@ -50,13 +52,15 @@ def strategy_codes_text(names: dict) -> str:
     return json.dumps({str(int(c)): str(names[c]) for c in sorted(names)}, separators=(", ", ": "))
 
 
-def column_names(mode: str, has_task_reward: bool) -> list[str]:
+def column_names(mode: str, has_task_reward: bool, has_goal_mask: bool = False) -> list[str]:
     """Return the column names of a set in ``mode``, in the order they are written."""
     names = list(INDEX_COLUMNS)
     if mode == "materialised":
         names += list(MATERIAL_COLUMNS)
     if has_task_reward:
         names.append(TASK_REWARD_COLUMN[0])
+    if has_goal_mask:
+        names.append(GOAL_MASK_COLUMN[0])
     return names
 
 

@@ -153,7 +153,7 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
     from goalkit.write.joined_checks import check_joined
 
     check_joined(plan, chunk, cols, phi, pos, split_name, report, row0, _row_text)
-    for name, ref in score(plan.recipe.reward, achieved, cols["goal"]).columns().items():
+    for name, ref in score(plan.recipe.reward, achieved, cols["goal"], cols.get("goal_mask")).columns().items():
         diff = cols[name] != ref
         if diff.any():
             i = _first(diff)
