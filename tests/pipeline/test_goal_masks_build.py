@@ -142,3 +142,39 @@ def test_bad_mask_tables_one_line_naming_file_and_key(demo, tmp_path, text, key,
     assert info.value.file == str(recipe) and words in info.value.message
     assert info.value.key is not None and info.value.key.startswith(key)
     assert "\n" not in str(info.value)
+
+
+def test_sampler_scores_with_the_recipe_masks(demo, tmp_path):
+    from goalkit.write.sampler import GoalSampler
+
+    recipe = _recipe(demo, tmp_path, "sampled", mask_table_text(GantryParams(trays=TRAYS)))
+    b = GoalSampler(load_recipe(recipe)).batch(512, 0)
+    assert b["goal_mask"].shape == b["goal"].shape
+    rule = load_recipe(recipe).reward
+    s = score(rule, b["reached_goal"], b["goal"], b["goal_mask"])
+    assert np.array_equal(s.reward, b["reward"])
+    assert set(b["goal_mask"].sum(axis=1).tolist()) <= {1, 3}
+
+
+def test_audit_law_of_random_masks_fails_when_the_masks_are_not_random(demo, tmp_path):
+    """The audit's chi-square test of the random-mask law (goalkit.audit.maskrules) passes on a
+    built set and fails when every relabelled mask is the head group (each still a valid union
+    of groups, so only the law can catch it)."""
+    from goalkit.audit.run import audit_set
+
+    text = ("[mask]\ngroups = { head = [0, 1, 2], tray0 = [3], tray1 = [4], tray2 = [5] }\n"
+            "random_share = 0.5\n")
+    path = goalkit.build(_recipe(demo, tmp_path, "lawaudit", text), replace=True).path
+    good = audit_set(path)
+    law = [c for c in good.checks if c.name == "law of random goal masks"]
+    assert len(law) == 1 and law[0].passed and good.ok, good.failures
+    bad = tmp_path / "biased.h5"
+    bad.write_bytes(Path(path).read_bytes())
+    with h5py.File(bad, "r+") as f:
+        m = f["train/goal_mask"][()]
+        relabelled = f["train/strategy"][()] != 0
+        m[relabelled] = np.array([1, 1, 1, 0, 0, 0], np.uint8)
+        f["train/goal_mask"][...] = m
+    report = audit_set(bad)
+    law = [c for c in report.checks if c.name == "law of random goal masks"]
+    assert len(law) == 1 and not law[0].passed
