@@ -116,6 +116,13 @@ class MaskSpec:
                               key="mask.random_share")
         return cls(tuple(groups), tuple(tasks), others, float(share))
 
+    def describe(self) -> dict:
+        """A JSON-able description (the table as written)."""
+        return {"groups": {n: list(d) for n, d in self.groups},
+                "tasks": {str(t): list(e) for t, e in self.tasks},
+                "others": None if self.others is None else list(self.others),
+                "random_share": self.random_share}
+
     def resolve(self, goal_dim: int, field_groups: Sequence[tuple[str, tuple[int, ...]]] = (),
                 task_ids=None, file=None) -> "GoalMasks":
         """Match the table with a goal space and the logs' tasks.

@@ -179,3 +179,25 @@ def test_region_with_a_position_mask_is_position_at_least_0_45(logs):
         assert (f["train/goal_mask"][()] == np.array([1, 0], np.uint8)).all()
     assert load_recipe(d / "mc-masked.toml").reward.distance_name == "region"
     assert goalkit.verify(res.path).ok
+
+
+def test_tune_places_the_position_bound_between_failures_and_successes(logs):
+    """`goalkit tune --from-success` on a region rule: the tuned bound on position lies between
+    the largest position reached by a transition the environment did not end and the smallest
+    position reached by one it ended (the labels say nothing finer)."""
+    d, eps = logs
+    (d / "mc-tune.toml").write_text(RECIPE.format(out="mc-tune.h5") + '\n[mask]\ntasks = { "0" = ["position"] }\n')
+    result = goalkit.tune(d / "mc-tune.toml", from_success=True, n_resamples=50)
+    out = result.as_dict()
+    region = out["candidates"][0]["region"] if "candidates" in out and out["candidates"] and \
+        "region" in out["candidates"][0] else out.get("region")
+    assert region is not None, sorted(out)
+    goal_position = eps[0]["goal"][0]
+    below = max(float(ep["obs"][1:, 0][~ep["terminated"]].max()) for ep in eps)
+    first = min(float(ep["obs"][1:, 0][ep["terminated"]].min()) for ep in eps if ep["terminated"].any())
+    bound = goal_position + region["lower"][0]
+    assert below < goal_position <= first
+    assert below < bound <= first
+    text = result.render()
+    assert "region: delta0 >= 0" in text and "reached iff delta0 >=" in text and "masks:" in text
+    assert result.recipe_threshold() == region["margin"]
