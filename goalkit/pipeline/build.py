@@ -249,7 +249,8 @@ def run_build(recipe, producer, *, source=None, rows_per_chunk: int | None = Non
     plan, source = make_plan(recipe, source)
     chunks = plan_shards(plan, chunk_transitions(plan, rows_per_chunk or producer.rows_per_chunk))
     gpt = recipe.mixture.goals_per_transition
-    summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed)
+    summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed,
+                             rule=recipe.reward)
 
     def count(rows):
         for split, cols in rows.columns.items():

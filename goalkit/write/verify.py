@@ -259,7 +259,8 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) 
         report.checked["columns"] = len(gs.manifest)
         # 4 + 5. rows, checked and re-derived; the summary re-derived alongside
         gpt = recipe.mixture.goals_per_transition
-        summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed)
+        summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed,
+                                 rule=recipe.reward)
         cursor = {s: 0 for s in SPLITS}
         total = {s: gs.rows(s) for s in SPLITS}
         stored_names = {s: gs.columns(s) for s in SPLITS}

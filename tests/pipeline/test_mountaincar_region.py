@@ -201,3 +201,16 @@ def test_tune_places_the_position_bound_between_failures_and_successes(logs):
     text = result.render()
     assert "region: delta0 >= 0" in text and "reached iff delta0 >=" in text and "masks:" in text
     assert result.recipe_threshold() == region["margin"]
+
+
+def test_build_summary_shows_the_region_and_the_masks(logs):
+    from click.testing import CliRunner
+
+    from goalkit.cli import main
+
+    d, _ = logs
+    (d / "mc-cli.toml").write_text(RECIPE.format(out="mc-cli.h5") + '\n[mask]\ntasks = { "0" = ["position"] }\n')
+    res = CliRunner().invoke(main, ["build", str(d / "mc-cli.toml"), "--replace"])
+    assert res.exit_code == 0, res.output
+    assert "region rule: reached iff 0 <= delta0, 0 <= delta1" in res.output
+    assert "goal masks: rows constraining each goal dimension: 100%, 0%; full masks 0%" in res.output
