@@ -25,7 +25,7 @@ STREAMS = {
     "subsample": 7,  # subsampling for fitting / recall measurement
     "hop": 8,        # neighbour goals: the later step taken along the joined episode
     "bootstrap": 9,  # threshold tuning: episode resamples (goalkit.tune.bootstrap)
-    "mask": 21,      # goal masks: whether a relabelled row gets a random mask (goalkit.goals.masks)
+    "mask": 21,      # goal masks: whether a relabelled row gets a random mask (goalkit.masks)
     "mask_set": 22,  # goal masks: which non-empty subset of the groups it keeps
 }
 # Stream numbers 1001-1005 are taken by the demo simulator (goalkit.demo.controllers.DEMO_STREAMS).

@@ -94,7 +94,7 @@ MATERIAL_FIELDS = _fields(
 TASK_REWARD_FIELD = Field("task_reward", "float32", "",
                           "the log's own reward of the transition (when the logs have one)")
 
-#: Optional column, present when the recipe has a ``[mask]`` table (goal masks, goalkit.goals.masks).
+#: Optional column, present when the recipe has a ``[mask]`` table (goal masks, goalkit.masks).
 GOAL_MASK_FIELD = Field("goal_mask", "uint8", "goal",
                         "1 for each goal dimension the goal constrains (reward, reached and distance use "
                         "only these; recipes with a [mask] table only)")

@@ -1,6 +1,6 @@
 """Goal masks in the audit: the row rule and the law of random masks, from docs/recipe.md.
 
-Written a second time from the documentation, not taken from :mod:`goalkit.goals.masks`:
+Written a second time from the documentation, not taken from :mod:`goalkit.masks`:
 
 * the mask of a row is the task table's mask of its source episode's task (``others`` for a
   task not in the table; every dimension without ``others``);

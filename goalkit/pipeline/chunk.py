@@ -117,7 +117,7 @@ def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gather
 
 
 def row_masks(plan, chunk, src_pos, src_ep, src_step, rows) -> np.ndarray:
-    """The ``goal_mask`` column, uint8 (M, G), of goal rows (see :mod:`goalkit.goals.masks`)."""
+    """The ``goal_mask`` column, uint8 (M, G), of goal rows (see :mod:`goalkit.masks`)."""
     tasks = (np.full(len(src_pos), -1, np.int64) if chunk.task_ids is None
              else np.take(chunk.task_ids, src_pos))
     return plan.masks.row_masks(plan.recipe.seed, src_ep, src_step, rows.slot, rows.strategy, tasks)

@@ -13,7 +13,7 @@ import numpy as np
 
 from goalkit.errors import RecipeError
 
-from goalkit.goals.masks import field_groups
+from goalkit.masks import field_groups
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.pipeline.goal import make_goal_map
 from goalkit.pipeline.split import split_codes
@@ -49,7 +49,7 @@ class BuildPlan:
         episodes; None otherwise.
     columns : dict
         Column name -> (dtype, per-row shape) of the output.
-    masks : goalkit.goals.masks.GoalMasks or None
+    masks : goalkit.masks.GoalMasks or None
         The recipe's mask table matched with the goal space and the logs' tasks (None: no
         ``[mask]`` table).
     """

@@ -13,7 +13,7 @@ from pathlib import Path
 
 from goalkit.config import check_keys, expect_type, parse_toml, read_text_file
 from goalkit.errors import RecipeError
-from goalkit.goals.masks import MaskSpec
+from goalkit.masks import MaskSpec
 
 RECIPE_VERSION = 1
 
@@ -86,7 +86,7 @@ class Recipe:
     salt : int
         Salt of the split hash.
     output : OutputSpec
-    masks : goalkit.goals.masks.MaskSpec or None
+    masks : goalkit.masks.MaskSpec or None
         The ``[mask]`` table (goal masks); None: no mask column, every goal dimension counts.
     """
 
