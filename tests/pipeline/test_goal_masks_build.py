@@ -178,3 +178,23 @@ def test_audit_law_of_random_masks_fails_when_the_masks_are_not_random(demo, tmp
     report = audit_set(bad)
     law = [c for c in report.checks if c.name == "law of random goal masks"]
     assert len(law) == 1 and not law[0].passed
+
+
+@pytest.mark.parametrize("extra, key", [
+    ('[mask]\ntasks = { "99" = ["head"] }\n', "key mask.tasks.99"),
+    ("", "key reward.lower"),
+])
+def test_cli_build_bad_mask_or_region_exits_2_with_one_line(demo, tmp_path, extra, key):
+    from click.testing import CliRunner
+
+    from goalkit.cli import main
+
+    recipe = _recipe(demo, tmp_path, "badcli", extra)
+    if not extra:  # a region whose lower bound lies above its upper bound
+        text = recipe.read_text().replace('distance = "euclidean"', 'distance = "region"\nlower = [0.5, 0, 0, 0, 0, 0]\n'
+                                          'upper = [0.1, 1, 1, 1, 1, 1]').replace("threshold = 0.04", "")
+        recipe.write_text(text)
+    res = CliRunner().invoke(main, ["build", str(recipe)])
+    assert res.exit_code == 2, res.output
+    lines = [line for line in res.output.splitlines() if line.strip()]
+    assert len(lines) == 1 and str(recipe) in lines[0] and key in lines[0] and "Traceback" not in res.output
