@@ -27,6 +27,8 @@ STREAMS = {
     "bootstrap": 9,  # threshold tuning: episode resamples (goalkit.thresholds.bootstrap)
     "heads": 10,     # the multi-head training sampler (goalkit.write.headsampler), per batch
     "shuffle": 11,   # reading a built set: epoch orders, chunk pools (goalkit.write.epochs)
+    "mask": 21,      # goal masks: whether a relabelled row gets a random mask (goalkit.masks)
+    "mask_set": 22,  # goal masks: which non-empty subset of the groups it keeps
 }
 # Stream numbers 1001-1005 are taken by the demo simulator (goalkit.demo.controllers.DEMO_STREAMS).
 

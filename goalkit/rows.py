@@ -118,6 +118,10 @@ END_FLAG_SOURCES = {"termination": "terminations", "time_limit": "time_limits"}
 SOURCE_FIELD = Field("source", "uint16", "", "the log source of the transition: its position in the recipe's "
                                              "[[sources]] (names in the provenance)")
 # ---- end of the end-flag and source block ------------------------------------------------
+#: Optional column, present when the recipe has a ``[mask]`` table (goal masks, goalkit.masks).
+GOAL_MASK_FIELD = Field("goal_mask", "uint8", "goal",
+                        "1 for each goal dimension the goal constrains (reward, reached and distance use "
+                        "only these; recipes with a [mask] table only)")
 
 #: The columns a relabelling strategy fills (the rest come from the logs and the reward rule).
 GOAL_ADDRESS = ("goal_episode", "goal_step", "hop_episode", "hop_step", "join_step", "steps_to_goal")
@@ -128,4 +132,5 @@ LABEL_COLUMNS = ("discount_weight", "return_to_goal", "bootstrap_mask")
 
 #: Every column, by name.
 ALL_FIELDS = {**INDEX_FIELDS, **MATERIAL_FIELDS, TASK_REWARD_FIELD.name: TASK_REWARD_FIELD,
-              **END_FLAG_FIELDS, SOURCE_FIELD.name: SOURCE_FIELD}
+              **END_FLAG_FIELDS, SOURCE_FIELD.name: SOURCE_FIELD,
+              GOAL_MASK_FIELD.name: GOAL_MASK_FIELD}

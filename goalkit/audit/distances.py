@@ -5,12 +5,13 @@ from __future__ import annotations
 import numpy as np
 
 
-def rule_distance(kind: str, a, g, weights=None, threshold=None) -> np.ndarray:
+def rule_distance(kind: str, a, g, weights=None, threshold=None, mask=None, lower=None,
+                  upper=None) -> np.ndarray:
     """Distance of rows of ``a`` to rows of ``g`` (both (M, G)), float64 (M,).
 
     Parameters
     ----------
-    kind : {"euclidean", "l1", "chebyshev", "cosine", "box"}
+    kind : {"euclidean", "l1", "chebyshev", "cosine", "box", "region"}
     a, g : array_like (M, G)
         Achieved goals phi(s_t+1) and goals.
     weights : sequence of float, optional
@@ -18,6 +19,11 @@ def rule_distance(kind: str, a, g, weights=None, threshold=None) -> np.ndarray:
         absolute difference, cosine the products).
     threshold : sequence of float
         Per-dimension tolerances of ``box``.
+    mask : array_like (M, G), optional
+        Goal masks: only dimensions with a nonzero entry count (left out of sums and maxima).
+    lower, upper : sequence of float
+        The bounds of ``achieved - goal`` of ``region``; its distance is the largest of
+        ``lower - delta`` and ``delta - upper`` over the kept dimensions (negative inside).
 
     Returns
     -------
@@ -26,6 +32,12 @@ def rule_distance(kind: str, a, g, weights=None, threshold=None) -> np.ndarray:
     a = np.asarray(a, dtype=np.float64)
     g = np.asarray(g, dtype=np.float64)
     w = np.ones(a.shape[1]) if weights is None else np.asarray(weights, dtype=np.float64)
+    keep = np.ones(a.shape, bool) if mask is None else np.asarray(mask) != 0
+    if kind == "region":
+        delta = a - g
+        over = np.maximum(np.asarray(lower, np.float64) - delta, delta - np.asarray(upper, np.float64))
+        return np.where(keep, over, -np.inf).max(axis=1, initial=-np.inf)
+    w = np.where(keep, w, 0.0)
     diff = np.abs(a - g)
     if kind == "euclidean":
         return np.sqrt((w * diff * diff).sum(axis=1))
@@ -34,7 +46,7 @@ def rule_distance(kind: str, a, g, weights=None, threshold=None) -> np.ndarray:
     if kind == "chebyshev":
         return (w * diff).max(axis=1, initial=0.0)
     if kind == "box":
-        return (diff / np.asarray(threshold, dtype=np.float64)).max(axis=1, initial=0.0)
+        return np.where(keep, diff / np.asarray(threshold, dtype=np.float64), 0.0).max(axis=1, initial=0.0)
     if kind == "cosine":
         na = (w * a * a).sum(axis=1)
         ng = (w * g * g).sum(axis=1)

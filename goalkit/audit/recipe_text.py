@@ -33,6 +33,10 @@ class AuditRecipe:
     weights_dim : tuple of float or None
         The reward rule's per-dimension weights.
     clip : float or None
+    lower, upper : tuple of float or None
+        The bounds of a ``region`` rule.
+    mask : dict or None
+        The ``[mask]`` table as written (None: the set has no goal masks).
     validation : float
         Fraction of episodes in the validation split.
     goal : dict
@@ -57,6 +61,9 @@ class AuditRecipe:
     goal: dict
     skip_bad_episodes: bool
     named_sources: bool = False
+    lower: tuple | None = None
+    upper: tuple | None = None
+    mask: dict | None = None
 
 
 def parse_audit_recipe(text: str) -> AuditRecipe:
@@ -72,7 +79,8 @@ def parse_audit_recipe(text: str) -> AuditRecipe:
     if not positive or total <= 0:
         raise ValueError("the stored recipe has no positive strategy weight")
     reward = doc.get("reward", {})
-    thr = reward["threshold"]
+    # a region rule's threshold (its margin) is 0 when omitted (docs/reward.md)
+    thr = reward["threshold"] if "threshold" in reward or reward.get("distance") != "region" else 0.0
     thr = tuple(float(x) for x in thr) if isinstance(thr, list) else float(thr)
     w = reward.get("weights")
     return AuditRecipe(
@@ -91,4 +99,7 @@ def parse_audit_recipe(text: str) -> AuditRecipe:
         goal=dict(doc.get("goal", {})),
         skip_bad_episodes=bool(doc.get("logs", {}).get("skip_bad_episodes", False)),
         named_sources=isinstance(doc.get("sources"), list),
+        lower=tuple(float(x) for x in reward["lower"]) if "lower" in reward else None,
+        upper=tuple(float(x) for x in reward["upper"]) if "upper" in reward else None,
+        mask=dict(doc["mask"]) if "mask" in doc else None,
     )

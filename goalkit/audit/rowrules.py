@@ -76,12 +76,13 @@ def reward_rules(c: dict, achieved, goal, rc):
     """
     box = rc.distance == "box"
     d = rule_distance(rc.distance, achieved, goal, weights=rc.weights_dim,
-                      threshold=rc.threshold if box else None)
+                      threshold=rc.threshold if box else None, mask=c.get("goal_mask"),
+                      lower=rc.lower, upper=rc.upper)
     thr = 1.0 if box else float(rc.threshold)
-    scale = np.maximum(1.0, np.abs(d))
+    scale = np.maximum(1.0, np.where(np.isfinite(d), np.abs(d), 1.0))
     stored_d = c["goal_distance"].astype(np.float64)
     yield "goal_distance", "goal_distance is not the documented distance of phi(s_t+1) and g", \
-        ~(np.abs(stored_d - d) <= 1e-6 * scale)
+        ~((np.abs(stored_d - d) <= 1e-6 * scale) | (stored_d == d))
     reached = d <= thr if rc.inclusive else d < thr
     # rows whose distance lies within rounding of the threshold (but not on it) may go either way
     unsure = (np.abs(d - thr) <= 1e-9 * max(1.0, thr)) & (d != thr)

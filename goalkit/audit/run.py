@@ -10,6 +10,7 @@ from types import SimpleNamespace
 import numpy as np
 
 from goalkit.audit.laws import geometric_law, uniform_law
+from goalkit.audit.maskrules import MaskAudit
 from goalkit.audit.recipe_text import CODE_NAMES, parse_audit_recipe
 from goalkit.audit.rowrules import (EPISODE, FUTURE, GEOMETRIC, NEAR_MISS, NEIGHBOUR, ORIGINAL, OTHER,
                                     address_rules, label_rules, reward_rules)
@@ -102,6 +103,8 @@ class _Logs:
         first = self.source.read(0, 1)
         self.goal_map = make_goal_map(spec, self.source, first.observations.shape[1])
         self.goal_dtype = np.dtype(goal.get("dtype", "float32"))
+        self.field_widths = [(n, first.fields[n][1] - first.fields[n][0]) for n in spec.fields
+                             if n in first.fields]
 
     def known(self, episodes) -> np.ndarray:
         pos = np.minimum(np.searchsorted(self.ids, episodes), len(self.ids) - 1)
@@ -119,10 +122,11 @@ class _Logs:
         return [col for col, (role, _) in END_FLAGS.items() if getattr(keys, role) is not None]
 
     def achieved_and_task_goal(self, episodes, steps, flags=()):
-        """phi(s_t+1) (goal dtype), the log's task goal (or None) and end flags of each (episode, t).
+        """phi(s_t+1) (goal dtype), the log's task goal (or None), end flags and task ids of each (episode, t).
 
-        Returns ``(achieved, task, flag_values)``: ``flag_values`` maps each of ``flags`` (end-flag
-        column names) to the log's own flag of each (episode, t), as uint8.
+        Returns ``(achieved, task, flag_values, task_ids)``: ``flag_values`` maps each of ``flags`` (end-flag
+        column names) to the log's own flag of each (episode, t), as uint8; ``task_ids`` is the
+        task id of each row's episode (-1: none).
         """
         pos = np.searchsorted(self.ids, episodes)
         a, b = int(pos.min()), int(pos.max()) + 1
@@ -138,7 +142,9 @@ class _Logs:
         for col in flags:
             logged = getattr(chunk, END_FLAGS[col][1])
             values[col] = None if logged is None else np.asarray(logged)[chunk.offsets[local] + steps].astype(np.uint8)
-        return achieved, task, values
+        task_ids = (np.full(len(local), -1, np.int64) if chunk.task_ids is None
+                    else np.asarray(chunk.task_ids, dtype=np.int64)[local])
+        return achieved, task, values, task_ids
 
 
 class _Draws:
@@ -237,6 +243,7 @@ class _Auditor:
         self.draws = _Draws()
         self.violations = {}
         self.first = {}
+        self.masks = None if rc.mask is None else MaskAudit(rc.mask, logs.goal_map.dim, logs.field_widths)
 
     # ---- failures ------------------------------------------------------------------------
     def violated(self, rule, message, mask, split, row0, c):
@@ -319,6 +326,12 @@ class _Auditor:
         c.update({col: grp[col][a:b] for col in flags})
         if "source" in grp and self.rc.named_sources:
             c["source"] = grp["source"][a:b]
+        if self.masks is not None:
+            if "goal_mask" not in grp:
+                self.violated("goal_mask", "the recipe has a [mask] table but the set no goal_mask column",
+                              np.ones(b - a, bool), split, a, c)
+                return
+            c["goal_mask"] = grp["goal_mask"][a:b]
         n = b - a
         v = self.jitter.random((n, 3))
         self.report.rows[split] += n
@@ -358,13 +371,18 @@ class _Auditor:
         inside = (t >= 0) & (t < T)
         if inside.any():
             idx = np.flatnonzero(inside)
-            achieved, task, logged = logs.achieved_and_task_goal(ep[idx], t[idx], flags=tuple(flags))
+            achieved, task, logged, task_ids = logs.achieved_and_task_goal(ep[idx], t[idx], flags=tuple(flags))
             sub = {k: val[idx] for k, val in c.items()}
             for col in flags:
                 full = np.zeros(len(ep), bool)
                 full[idx] = sub[col] != logged[col]
                 self.violated(f"{col} flag", f"{col} is not the log's {END_FLAGS[col][0]} flag of transition t",
                               full, split, a, c)
+            if self.masks is not None:
+                for rule, message, mask in self.masks.rules(sub["goal_mask"], sub["strategy"], task_ids):
+                    full = np.zeros(len(ep), bool)
+                    full[idx] = mask
+                    self.violated(rule, message, full, split, a, c)
             for rule, message, mask in reward_rules(sub, achieved, sub["goal"], rc):
                 full = np.zeros(len(ep), bool)
                 full[idx] = mask
@@ -445,6 +463,8 @@ class _Auditor:
                 ("slot pairs: same goal step", d.pairs_same_step, "same-strategy slot pairs with one goal step")):
             out.append(count_bound_check(name, hit, list(probs), list(probs.values()), what))
         out.append(grid_chi2_check("slot pairs: independent draws", d.grid, "PIT pairs of slots (2k, 2k+1)"))
+        if self.masks is not None:
+            out.append(self.masks.check())
         return [c for c in out if c is not None]
 
 

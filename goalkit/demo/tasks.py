@@ -118,3 +118,24 @@ def success_flags(tasks: np.ndarray, goals: np.ndarray, head: np.ndarray, trays:
     flags = np.where(water[:, None], run, in_strip)
     flags &= np.arange(S - 1)[None, :] < np.asarray(lengths)[:, None]
     return flags
+
+
+def mask_table_text(params: GantryParams, random_share: float = 0.0) -> str:
+    """Return a recipe ``[mask]`` table (TOML) giving each task the goal dimensions it constrains.
+
+    Groups: ``head`` (goal dimensions 0-2) and ``tray<k>`` (dimension ``3 + k``). A watering
+    task constrains the head; a sliding task constrains its tray.
+
+    Examples
+    --------
+    >>> print(mask_table_text(GantryParams(trays=1)))
+    [mask]
+    groups = { head = [0, 1, 2], tray0 = [3] }
+    tasks = { "0" = ["head"], "1" = ["tray0"] }
+    random_share = 0.0
+    <BLANKLINE>
+    """
+    K = params.trays
+    groups = ", ".join(["head = [0, 1, 2]"] + [f"tray{k} = [{3 + k}]" for k in range(K)])
+    tasks = ", ".join([f'"{k}" = ["head"]' for k in range(K)] + [f'"{K + k}" = ["tray{k}"]' for k in range(K)])
+    return f"[mask]\ngroups = {{ {groups} }}\ntasks = {{ {tasks} }}\nrandom_share = {float(random_share)!r}\n"

@@ -278,7 +278,8 @@ def run_build(recipe, producer, *, source=None, rows_per_chunk: int | None = Non
     chunks = plan_shards(plan, chunk_transitions(plan, rows_per_chunk or producer.rows_per_chunk))
     gpt = recipe.mixture.goals_per_transition
     summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed,
-                             distance_unit=recipe.reward.reach_threshold)
+                             distance_unit=recipe.reward.reach_threshold,
+                             rule=recipe.reward)
 
     def count(rows):
         for split, cols in rows.columns.items():

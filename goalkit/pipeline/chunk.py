@@ -127,7 +127,8 @@ def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gather
     cur = t + src_pos
     achieved = np.take(phi_chunk, cur + 1, axis=0)
     goal = goal_vectors(plan, chunk, phi_chunk, rows, src_pos, src_ep)
-    scores = score(rule, achieved, goal).columns()
+    mask = None if plan.masks is None else row_masks(plan, chunk, src_pos, src_ep, src_step, rows)
+    scores = score(rule, achieved, goal, mask).columns()
     keys = (plan.transition_offsets[first + src_pos] + src_step) * SLOT_SPAN + rows.slot
     # the columns in the order of the row schema (goalkit.rows.INDEX_FIELDS)
     cols = {"source_episode": src_ep, "source_step": src_step, "slot": rows.slot, "strategy": rows.strategy,
@@ -147,4 +148,13 @@ def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gather
             cols[name] = np.take(getattr(chunk, attr), t, axis=0).astype(np.uint8)
     if "source" in plan.columns:
         cols["source"] = np.take(chunk.sources, src_pos, axis=0).astype(np.uint16)
+    if mask is not None:
+        cols["goal_mask"] = mask
     return cols, keys
+
+
+def row_masks(plan, chunk, src_pos, src_ep, src_step, rows) -> np.ndarray:
+    """The ``goal_mask`` column, uint8 (M, G), of goal rows (see :mod:`goalkit.masks`)."""
+    tasks = (np.full(len(src_pos), -1, np.int64) if chunk.task_ids is None
+             else np.take(chunk.task_ids, src_pos))
+    return plan.masks.row_masks(plan.recipe.seed, src_ep, src_step, rows.slot, rows.strategy, tasks)

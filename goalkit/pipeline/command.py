@@ -51,12 +51,31 @@ def format_summary(path, summary: dict, reward: dict | None = None, file_bytes: 
     if q:
         lines.append("  goal distance quantiles: " + "  ".join(f"{k}={v:.4g}" for k, v in q.items()))
 
-    lines += summary_lines(summary)
+    lines += summary_lines(summary) + rule_lines(summary)
     for w in summary.get("warnings", []):
         lines.append(f"  warning: {w}")
     if card:
         lines.append(f"  card: {', '.join(str(p) for p in card)} (goalkit info {path} prints its facts)")
     return "\n".join(lines)
+
+
+def rule_lines(summary: dict) -> list[str]:
+    """Summary lines of a region rule and of goal masks (none for other sets)."""
+    lines = []
+    r = summary.get("region")
+    if r:
+        parts = [f"{lo:g} <= delta{k}" if hi == float("inf") else f"delta{k} <= {hi:g}" if lo == -float("inf")
+                 else f"{lo:g} <= delta{k} <= {hi:g}" for k, (lo, hi) in enumerate(zip(r["lower"], r["upper"]))
+                 if not (lo == -float("inf") and hi == float("inf"))]
+        moved = "" if r["margin"] == 0 else f", bounds moved out by {r['margin']:g}"
+        lines.append(f"  region rule: reached iff {', '.join(parts) or 'always'} (delta = achieved - goal{moved})")
+    m = summary.get("goal_masks")
+    if m:
+        total = sum(summary["rows"].values())
+        share = ", ".join(f"{n / total:.0%}" if total else "-" for n in m["rows_per_dimension"])
+        lines.append(f"  goal masks: rows constraining each goal dimension: {share}; "
+                     f"full masks {m['full_mask_rows'] / total:.0%}" if total else "  goal masks: no rows")
+    return lines
 
 
 @click.command(context_settings={"show_default": True})

@@ -15,6 +15,7 @@ from goalkit.errors import ParameterError, RecipeError
 from goalkit.logs import open_logs
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.logs.layout import load_layout
+from goalkit.masks import field_groups
 from goalkit.pipeline.goal import make_goal_map
 from goalkit.pipeline.searchsetup import attach_searches
 from goalkit.pipeline.split import split_codes
@@ -23,7 +24,8 @@ from goalkit.relabel.strategies import STRATEGIES
 from goalkit.relabel.strategies import strategy_names as table_names
 from goalkit.rows import END_FLAG_SOURCES, SPLITS
 from goalkit.logs.multi import open_sources
-from goalkit.write.format import END_FLAG_COLUMNS, INDEX_COLUMNS, MATERIAL_COLUMNS, SOURCE_COLUMN, TASK_REWARD_COLUMN
+from goalkit.write.format import (END_FLAG_COLUMNS, GOAL_MASK_COLUMN, INDEX_COLUMNS, MATERIAL_COLUMNS, SOURCE_COLUMN,
+                                   TASK_REWARD_COLUMN)
 
 #: Row keys are ``global transition index * SLOT_SPAN + slot``.
 SLOT_SPAN = 1 << 16
@@ -54,6 +56,9 @@ class BuildPlan:
         Column name -> (dtype, per-row shape) of the output.
     shapes : dict or None
         Per-row shapes ``{"observation", "action", "goal"}`` of the logs and the goal map (lists).
+    masks : goalkit.masks.GoalMasks or None
+        The recipe's mask table matched with the goal space and the logs' tasks (None: no
+        ``[mask]`` table).
     """
 
     recipe: object
@@ -66,6 +71,7 @@ class BuildPlan:
     goal_table: np.ndarray | None
     columns: dict
     shapes: dict | None = None
+    masks: object = None
 
     def positions(self, episode_ids) -> np.ndarray:
         """Position among the kept episodes of each episode id."""
@@ -98,7 +104,26 @@ def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_t
             cols[name] = (np.dtype(dtype), ())
     if has_source:
         cols[SOURCE_COLUMN[0]] = (np.dtype(SOURCE_COLUMN[1]), ())
+    if recipe.masks is not None:
+        cols[GOAL_MASK_COLUMN[0]] = (np.dtype(GOAL_MASK_COLUMN[1]), (goal_dim,))
     return cols
+
+
+def resolve_masks(recipe, source, first, goal_dim: int, max_transitions: int):
+    """The recipe's ``[mask]`` table matched with the goal space and the logs' tasks (or None).
+
+    When the table names tasks, the task ids of every kept episode are read first (one pass
+    over the logs), so that a task the logs do not have is refused before anything is written.
+    """
+    spec = recipe.masks
+    if spec is None:
+        return None
+    groups = field_groups(recipe.goal.fields, first.fields) if recipe.goal.fields else ()
+    tasks = None
+    if spec.tasks and first.task_ids is not None:
+        seen = [source.read(a, b).task_ids for a, b in chunk_bounds(source.lengths, max_transitions)]
+        tasks = np.unique(np.concatenate(seen)) if seen else np.zeros(0, np.int64)
+    return spec.resolve(goal_dim, groups, tasks, file=recipe.file)
 
 
 #: Strategies whose goals may come from episodes outside the chunk.
@@ -195,6 +220,7 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
                              {c: lengths[splits == c] for c in np.unique(splits).tolist()},
                              _SplitLookup(ids, splits))
     check_mixture(recipe, first, context, goal_map.dim)
+    masks = resolve_masks(recipe, source, first, goal_map.dim, max_transitions)
     cols = _columns(recipe, obs_shape, act_shape, first.observations.dtype, first.actions.dtype,
                     goal_map.dim, first.rewards is not None,
                     [name for name, attr in END_FLAG_SOURCES.items() if getattr(first, attr) is not None],
@@ -207,7 +233,8 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
     plan = BuildPlan(recipe=recipe, goal_map=goal_map, episode_ids=ids, lengths=lengths,
                      transition_offsets=offsets, splits=splits, context=context, goal_table=table,
                      columns=cols, shapes={"observation": list(obs_shape), "action": list(act_shape),
-                                           "goal": [int(goal_map.dim)]})
+                                           "goal": [int(goal_map.dim)]},
+                     masks=masks)
     return plan, source
 
 

@@ -16,13 +16,14 @@ from goalkit.config import check_keys, expect_type, parse_toml, read_text_file
 from goalkit.archive import SourceSpec, is_pattern
 from goalkit.errors import ParameterError, RecipeError, shown
 from goalkit.heads import heads_from_table
+from goalkit.masks import MaskSpec
 from goalkit.outputs import small_toml
 from goalkit.relabel import Mixture
 from goalkit.reward import RewardRule
 
 RECIPE_VERSION = 1
 
-TOP_KEYS = ("version", "seed", "logs", "sources", "goal", "relabel", "reward", "split", "output", "heads")
+TOP_KEYS = ("version", "seed", "logs", "sources", "goal", "relabel", "reward", "split", "output", "heads", "mask")
 LOGS_KEYS = ("path", "layout", "skip_bad_episodes")
 #: Keys of each ``[[sources]]`` table.
 SOURCE_KEYS = ("name", "path", "layout", "skip_bad_episodes")
@@ -109,6 +110,8 @@ class Recipe:
         ``logs_path`` and ``layout_path`` as before.
     named_sources : bool
         The sources are named (``[[sources]]``): rows carry a ``source`` column.
+    masks : goalkit.masks.MaskSpec or None
+        The ``[mask]`` table (goal masks); None: no mask column, every goal dimension counts.
     """
 
     text: str
@@ -126,6 +129,7 @@ class Recipe:
     heads: tuple = ()
     sources: tuple | None = None
     named_sources: bool = False
+    masks: MaskSpec | None = None
 
     def inputs(self) -> list[tuple[str, Path]]:
         """Every file or folder a build of this recipe reads, labelled for messages.
@@ -317,11 +321,12 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored
     reward = _in_recipe(RewardRule.from_table, _table(doc, "reward", file), file, "reward")
     validation, salt = _parse_split(_table(doc, "split", file, required=False), file)
     output = _parse_output(_table(doc, "output", file), base, file, stored=stored)
+    masks = MaskSpec.from_table(doc["mask"], file) if "mask" in doc else None
     heads = heads_from_table(_table(doc, "heads", file, required=False), file)
     return Recipe(text=text, file=str(file), seed=seed, logs_path=logs_path, layout_path=layout_path,
                   skip_bad_episodes=skip, goal=goal, mixture=mixture, reward=reward,
                   validation=validation, salt=salt, output=output, heads=heads,
-                  sources=sources, named_sources=named)
+                  sources=sources, named_sources=named, masks=masks)
 
 
 def _in_recipe(make, table, file, name: str):

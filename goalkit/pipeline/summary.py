@@ -38,9 +38,12 @@ class SummaryBuilder:
         Expected number of rows, to set the sampling rate of the distance quantiles.
     seed : int
         The build's seed (the distance sample is a pure function of it and each row's address).
+    rule : RewardRule, optional
+        The reward rule; a region rule's bounds are stated in the summary (other rules add
+        nothing, so summaries of sets without regions or masks are as before).
     """
 
-    def __init__(self, strategy_names: dict, total_rows: int, seed: int, distance_unit: float = 1.0):
+    def __init__(self, strategy_names: dict, total_rows: int, seed: int, distance_unit: float = 1.0, rule=None):
         self.names = strategy_names
         self.rate = min(1.0, SAMPLE_ROWS / max(total_rows, 1))
         self.seed = seed
@@ -53,6 +56,9 @@ class SummaryBuilder:
         self.edges = np.asarray(DISTANCE_RATIOS, dtype=np.float64) * self.unit
         self.distance = {s: np.zeros(len(DISTANCE_RATIOS) + 2, np.int64) for s in SPLITS}  # + beyond, NaN
         self.horizon = {s: np.zeros(HORIZON_BINS + 1, np.int64) for s in SPLITS}  # + no horizon
+        self.rule = rule
+        self.mask_dims: np.ndarray | None = None   # rows constraining each goal dimension
+        self.mask_full = 0                          # rows constraining every dimension
 
     def add(self, split: str, cols: dict, keys: np.ndarray) -> None:
         """Count the rows of one chunk and split."""
@@ -73,6 +79,11 @@ class SummaryBuilder:
         self.horizon[split][-1] += int((~has).sum())
         self.sample.append(np.asarray(cols["goal_distance"], dtype=np.float64)[keep])
         self.sample_keys.append(keys[keep])
+        if "goal_mask" in cols:
+            m = np.asarray(cols["goal_mask"]) != 0
+            dims = m.sum(axis=0, dtype=np.int64)
+            self.mask_dims = dims if self.mask_dims is None else self.mask_dims + dims
+            self.mask_full += int(m.all(axis=1).sum())
 
     def result(self) -> dict:
         """Return the summary as a JSON-able dict."""
@@ -98,6 +109,11 @@ class SummaryBuilder:
             out["goal_distance_quantiles"] = {f"q{int(q * 100):02d}": float(v) for q, v in zip(QUANTILES, qs)}
         out["goal_distance_sample_rows"] = int(len(d))
         out["composition"] = self.composition()
+        if self.mask_dims is not None:
+            out["goal_masks"] = {"rows_per_dimension": self.mask_dims.tolist(), "full_mask_rows": self.mask_full}
+        if self.rule is not None and self.rule.distance_name == "region":
+            out["region"] = {"lower": list(self.rule.lower), "upper": list(self.rule.upper),
+                             "margin": float(self.rule.threshold)}
         return out
 
     def composition(self) -> dict:

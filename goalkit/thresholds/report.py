@@ -31,7 +31,8 @@ def render(d: dict) -> str:
     cur = d["current_rule"]
     out = [f"recipe:     {d['recipe']}",
            f"rule now:   {cur['distance']} distance, threshold {_g(cur['threshold'])}"
-           f"{'' if cur['inclusive'] else ' (exclusive)'}",
+           f"{'' if cur['inclusive'] else ' (exclusive)'}" + _region_text(cur),
+           *_mask_lines(d.get("masks")),
            f"read:       {s['episodes']:,} of {s['episodes_in_log']:,} episodes "
            f"({s['transitions']:,} of {s['transitions_in_log']:,} transitions), "
            f"{s['goal_rows']:,} goal rows relabelled with the recipe's mixture",
@@ -48,6 +49,31 @@ def render(d: dict) -> str:
     for w in d["warnings"]:
         out.append(f"warning: {w}")
     return "\n".join(out)
+
+
+def _region_text(rule: dict) -> str:
+    """`` (region: delta0 >= 0, ...)`` for a region rule, else empty."""
+    if rule.get("distance") != "region":
+        return ""
+    parts = []
+    for k, (lo, hi) in enumerate(zip(rule["lower"], rule["upper"])):
+        if math.isfinite(lo) and math.isfinite(hi):
+            parts.append(f"{_g(lo)} <= delta{k} <= {_g(hi)}")
+        elif math.isfinite(lo):
+            parts.append(f"delta{k} >= {_g(lo)}")
+        elif math.isfinite(hi):
+            parts.append(f"delta{k} <= {_g(hi)}")
+    return f" (region: {', '.join(parts) or 'every dimension free'})"
+
+
+def _mask_lines(masks) -> list[str]:
+    """The ``masks:`` lines of a recipe with a [mask] table."""
+    if not masks:
+        return []
+    tasks = "; ".join(f"task {t}: {', '.join(map(str, e))}" for t, e in masks["tasks"].items()) or "none"
+    others = "every dimension" if masks["others"] is None else ", ".join(map(str, masks["others"]))
+    return [f"masks:      per task: {tasks}; other tasks: {others}; random share "
+            f"{_g(masks['random_share'])} (tuning pairs are scored on every goal dimension)"]
 
 
 def _labelled(d: dict) -> list[str]:
@@ -84,6 +110,9 @@ def _labelled(d: dict) -> list[str]:
             out.append(f"  the recipe's threshold {_g(k['threshold'])} on these pairs: precision "
                        f"{_g(k['precision'], 3)}, recall {_g(k['recall'], 3)}, F1 {_g(k['f1'], 3)}")
     out += ["", f"suggested:  [reward] distance = \"{ch['distance']}\", threshold = {_g(ch['threshold'], 6)}"]
+    if ch.get("region"):
+        out.append(f"region:     reached iff {ch['region']['bounds']} (delta = achieved - goal; the bounds "
+                   f"moved out by the threshold)")
     b = d["box_suggestion"]
     if b is not None:
         fa = "-" if b["false_accept"] is None or math.isnan(b["false_accept"]) else f"{b['false_accept']:.1%}"

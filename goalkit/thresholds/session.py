@@ -141,7 +141,8 @@ class TuneResult:
                       "criterion": CRITERION[t.chooser], "score": self.winner.score,
                       "interval": None if t.interval_ is None else t.interval_.as_dict(),
                       **{k: getattr(t.choice_, k) for k in ("precision", "recall", "fpr", "f1")},
-                      "roc_auc": t.roc_auc_, "average_precision": t.average_precision_}
+                      "roc_auc": t.roc_auc_, "average_precision": t.average_precision_,
+                      "region": t.summary().get("region")}
         return {
             "recipe": self.recipe.file,
             "mode": self.mode,
@@ -149,6 +150,7 @@ class TuneResult:
             "labels_source": self.labels_source,
             "sample": self.sample,
             "current_rule": self.recipe.reward.describe(),
+            "masks": None if self.recipe.masks is None else self.recipe.masks.describe(),
             "candidates": cands,
             "chosen": chosen,
             "box_suggestion": None if self.box is None else self.box.as_dict(),

@@ -20,6 +20,7 @@ from goalkit.thresholds.bootstrap import bootstrap_threshold
 from goalkit.thresholds.box import suggest_box
 from goalkit.thresholds.labels import LabelledPairs
 from goalkit.thresholds.metrics import check_chooser, choose_threshold, sweep_thresholds
+from goalkit.thresholds.region import describe_bounds, is_region, moved_bounds, shift_of, shifted_back, sweep_distances
 
 
 class ThresholdTuner:
@@ -31,7 +32,10 @@ class ThresholdTuner:
         The rule being tuned: its distance, weights and inclusiveness are kept, only the
         threshold changes. For ``box`` the distance is normalised by the rule's current
         tolerances, the chosen value is a scale ``s``, and the suggested tolerances are
-        ``s * tolerances``; independent per-dimension suggestions are in ``box_``.
+        ``s * tolerances``; independent per-dimension suggestions are in ``box_``. For
+        ``region`` the chosen value is the margin by which every finite bound moves outwards
+        (:mod:`goalkit.thresholds.region`): the suggested rule keeps the bounds with that margin as
+        its threshold, and ``summary()["region"]`` states the bounds it amounts to.
     chooser : {"max-f1", "target-precision", "youden"}
     target : float, optional
         Precision target of ``target-precision``.
@@ -90,6 +94,9 @@ class ThresholdTuner:
         rule = self.rule
         rule.check_dim(pairs.dim)
         d = rule.distance(pairs.achieved, pairs.goal)
+        shift = shift_of(d) if is_region(rule) else 0.0
+        if is_region(rule):  # signed distances: the sweep sees them shifted to >= 0
+            d = sweep_distances(d, shift)
         y = pairs.reached.astype(np.int64)
         sweep = sweep_thresholds(d, y, source=pairs.source or None)
         if sweep.n_pos == 0 or sweep.n_neg == 0:
@@ -104,14 +111,19 @@ class ThresholdTuner:
         self.average_precision_ = sweep.average_precision()
         is_box = rule.distance_name == "box"
         current = 1.0 if is_box else float(rule.threshold)
-        self.current_ = sweep.at(current, rule.inclusive)
+        self.current_ = sweep.at(current - shift, rule.inclusive)
         self.interval_ = None
         if self.n_resamples:
             self.interval_ = bootstrap_threshold(
                 d, y, pairs.groups if pairs.grouped else None, chooser=self.chooser,
                 target=self.target, placement=self.placement, inclusive=rule.inclusive,
                 n_resamples=self.n_resamples, confidence=self.confidence, seed=self.seed)
-        if is_box:
+        if is_region(rule):
+            self.choice_, self.interval_ = shifted_back(self.choice_, self.interval_, shift)
+            self.current_ = {**self.current_, "threshold": current}
+            self.suggested_rule_ = rule.replace(threshold=self.choice_.threshold)
+            self.box_ = None
+        elif is_box:
             tol = np.asarray(rule.threshold, dtype=np.float64)
             self.suggested_rule_ = rule.replace(threshold=tuple((tol * self.choice_.threshold).tolist()))
             self.box_ = suggest_box(pairs.achieved, pairs.goal, y, method=self.box_method,
@@ -141,6 +153,10 @@ class ThresholdTuner:
             "interval": None if self.interval_ is None else self.interval_.as_dict(),
             "box": None if self.box_ is None else self.box_.as_dict(),
         }
+        if is_region(self.rule):
+            moved = moved_bounds(self.rule, self.choice_.threshold)
+            out["region"] = {"margin": self.choice_.threshold, "lower": list(moved.lower),
+                             "upper": list(moved.upper), "bounds": describe_bounds(moved)}
         if self.interval_ is not None and self.rule.distance_name == "box":
             tol = np.asarray(self.rule.threshold, dtype=np.float64)
             out["interval"]["tolerances_low"] = (tol * self.interval_.low).tolist()

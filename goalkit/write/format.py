@@ -21,11 +21,11 @@ import json
 from pathlib import Path
 
 from goalkit.errors import DatasetError
-from goalkit.rows import (END_FLAG_FIELDS, INDEX_FIELDS, MATERIAL_FIELDS, SOURCE_FIELD, SPLIT_CODES, SPLITS,
+from goalkit.rows import (END_FLAG_FIELDS, GOAL_MASK_FIELD, INDEX_FIELDS, MATERIAL_FIELDS, SOURCE_FIELD, SPLIT_CODES, SPLITS,
                           TASK_REWARD_FIELD)
 
 __all__ = ["FORMAT_NAME", "FORMAT_VERSION", "INDEX_COLUMNS", "MATERIAL_COLUMNS", "SPLITS", "SPLIT_CODES",
-           "TASK_REWARD_COLUMN", "END_FLAG_COLUMNS", "SOURCE_COLUMN", "COLUMN_ATTRS", "STRATEGY_CODES_ATTR", "column_names", "is_goal_set",
+           "TASK_REWARD_COLUMN", "END_FLAG_COLUMNS", "SOURCE_COLUMN", "GOAL_MASK_COLUMN", "COLUMN_ATTRS", "STRATEGY_CODES_ATTR", "column_names", "is_goal_set",
            "strategy_codes_text"]
 
 FORMAT_NAME = "goalkit-goal-set"
@@ -39,6 +39,8 @@ MATERIAL_COLUMNS = {f.name: (f.dtype, f.kind, f.meaning) for f in MATERIAL_FIELD
 
 #: Optional column, present when the logs carry a task reward: (name, dtype, meaning).
 TASK_REWARD_COLUMN = (TASK_REWARD_FIELD.name, TASK_REWARD_FIELD.dtype, TASK_REWARD_FIELD.meaning)
+#: Optional column, present when the recipe has a ``[mask]`` table: (name, dtype, meaning).
+GOAL_MASK_COLUMN = (GOAL_MASK_FIELD.name, GOAL_MASK_FIELD.dtype, GOAL_MASK_FIELD.meaning)
 
 
 #: Optional columns, present when the layout maps the environment's end flags: name -> (dtype, meaning).
@@ -58,11 +60,13 @@ def strategy_codes_text(names: dict) -> str:
     return json.dumps({str(int(c)): str(names[c]) for c in sorted(names)}, separators=(", ", ": "))
 
 
-def column_names(mode: str, has_task_reward: bool, end_flags=(), has_source: bool = False) -> list[str]:
+def column_names(mode: str, has_task_reward: bool, end_flags=(), has_source: bool = False,
+                 has_goal_mask: bool = False) -> list[str]:
     """Return the column names of a set in ``mode``, in the order they are written.
 
     ``end_flags`` names the end-flag columns present (:data:`END_FLAG_COLUMNS`); ``has_source``:
-    the set has the source column (:data:`SOURCE_COLUMN`).
+    the set has the source column (:data:`SOURCE_COLUMN`); ``has_goal_mask``: the goal-mask
+    column (:data:`GOAL_MASK_COLUMN`).
     """
     names = list(INDEX_COLUMNS)
     if mode == "materialised":
@@ -72,6 +76,8 @@ def column_names(mode: str, has_task_reward: bool, end_flags=(), has_source: boo
     names += [n for n in END_FLAG_COLUMNS if n in end_flags]
     if has_source:
         names.append(SOURCE_COLUMN[0])
+    if has_goal_mask:
+        names.append(GOAL_MASK_COLUMN[0])
     return names
 
 

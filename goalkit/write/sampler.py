@@ -130,12 +130,17 @@ class GoalSampler:
             goal[internal] = self.phi[eps.state_row(eps.position_of(ge[internal]), gs[internal])]
         if (~internal).any():
             goal[~internal] = rows.external[sel][~internal].astype(self.phi.dtype)
-        scores = score(rule, achieved, goal)
+        mask = None  # goal masks of the recipe's [mask] table, drawn with the batch's seed
+        if self.plan.masks is not None:
+            tasks = np.full(batch_size, -1, np.int64) if eps.task_ids is None else eps.task_ids[pos]
+            mask = self.plan.masks.row_masks(batch_seed, eps.episode_ids[pos], step, rows.slot[sel],
+                                             rows.strategy[sel], tasks)
+        scores = score(rule, achieved, goal, mask)
         return {
             "observation": eps.observations[cur], "action": eps.actions[t_idx],
             "next_observation": eps.observations[cur + 1],
             "reached_goal": achieved.astype(self.phi.dtype), "goal": goal.astype(self.phi.dtype),
-            **scores.columns(),
+            **scores.columns(), **({} if mask is None else {"goal_mask": mask}),
             "strategy": rows.strategy[sel], "source_episode": eps.episode_ids[pos], "source_step": step,
             "goal_episode": ge, "goal_step": gs, "steps_to_goal": rows.steps_to_goal[sel],
             **row_labels(rows.steps_to_goal[sel], self.mixture.gamma, scores.terminal),

@@ -174,7 +174,7 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
             report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): {message}")
 
     check_joined(plan, chunk, cols, phi, pos, split_name, report, row0, _row_text)
-    for name, ref in score(plan.recipe.reward, achieved, cols["goal"]).columns().items():
+    for name, ref in score(plan.recipe.reward, achieved, cols["goal"], cols.get("goal_mask")).columns().items():
         diff = cols[name] != ref
         if diff.any():
             row = _first(diff)
@@ -281,7 +281,7 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) 
         # 4 + 5. rows, checked and re-derived; the summary re-derived alongside
         gpt = recipe.mixture.goals_per_transition
         summary = SummaryBuilder(strategy_names(), plan.total_transitions * gpt, recipe.seed,
-                                 distance_unit=recipe.reward.reach_threshold)
+                                 distance_unit=recipe.reward.reach_threshold, rule=recipe.reward)
         cursor = {split: 0 for split in SPLITS}
         total = {split: goal_set.rows(split) for split in SPLITS}
         stored_names = {split: goal_set.columns(split) for split in SPLITS}

@@ -175,7 +175,7 @@ def test_no_labels_diagnostics_match_the_build_and_the_raw_logs(gantry, raw_logs
 
 def test_json_has_one_object_with_the_documented_keys(gantry):
     out = run_json(gantry / "gantry-recipe.toml", "--from-success", "--resamples", "10")
-    assert set(out) == {"recipe", "mode", "labels_used", "labels_source", "sample", "current_rule",
+    assert set(out) == {"recipe", "mode", "labels_used", "labels_source", "sample", "current_rule", "masks",
                         "candidates", "chosen", "box_suggestion", "diagnostics", "suggested_range",
                         "rewarded_fraction", "warnings", "notes", "plots", "written_recipe"}
     assert set(out["chosen"]) >= {"distance", "threshold", "interval", "precision", "recall", "f1",
