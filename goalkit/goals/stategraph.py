@@ -269,8 +269,9 @@ class StateGraph:
             found_keys.append(new)
             found_levels.append(np.full(len(new), level, np.int64))
             visited = np.sort(np.concatenate([visited, new]), kind="stable")  # two sorted runs: a merge
-            frontier = new
             remaining = remaining[~_member(remaining, new)]
+            # a target whose pairs are all answered stops searching
+            frontier = new[_member(new // n, np.unique(remaining // n))]
         keys = np.concatenate(found_keys)
         levels = np.concatenate(found_levels)
         o = np.argsort(keys, kind="stable")
