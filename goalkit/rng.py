@@ -25,6 +25,7 @@ STREAMS = {
     "subsample": 7,  # subsampling for fitting / recall measurement
     "hop": 8,        # neighbour goals: the later step taken along the joined episode
     "bootstrap": 9,  # threshold tuning: episode resamples (goalkit.thresholds.bootstrap)
+    "graph": 10,     # graph distances: which goal states get one (goalkit.goals.stategraph)
 }
 # Stream numbers 1001-1005 are taken by the demo simulator (goalkit.demo.controllers.DEMO_STREAMS).
 

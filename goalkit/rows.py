@@ -94,10 +94,18 @@ MATERIAL_FIELDS = _fields(
 TASK_REWARD_FIELD = Field("task_reward", "float32", "",
                           "the log's own reward of the transition (when the logs have one)")
 
+# ---- graph distances (issue 15): one block, present when the recipe has a [graph] table ----
+#: Optional column: steps from s_t+1 to the goal state in the logs' graph (goalkit.goals.stategraph).
+GRAPH_STEPS_FIELD = Field("graph_steps", "int64", "",
+                          "shortest path in the logs' graph (logged steps and joins) from s_t+1 to the goal "
+                          "state; -2 no path within the horizon, -1 not computed (with a [graph] table)")
+# ---- end of graph distances ----
+
 #: The columns a relabelling strategy fills (the rest come from the logs and the reward rule).
 GOAL_ADDRESS = ("goal_episode", "goal_step", "hop_episode", "hop_step", "join_step", "steps_to_goal")
 #: The columns :func:`goalkit.reward.score` fills, in this order.
 SCORE_COLUMNS = ("goal_distance", "reward", "reached", "terminal")
 
 #: Every column, by name.
-ALL_FIELDS = {**INDEX_FIELDS, **MATERIAL_FIELDS, TASK_REWARD_FIELD.name: TASK_REWARD_FIELD}
+ALL_FIELDS = {**INDEX_FIELDS, **MATERIAL_FIELDS, TASK_REWARD_FIELD.name: TASK_REWARD_FIELD,
+              GRAPH_STEPS_FIELD.name: GRAPH_STEPS_FIELD}

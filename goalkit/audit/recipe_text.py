@@ -38,6 +38,10 @@ class AuditRecipe:
     goal : dict
         The ``[goal]`` table.
     skip_bad_episodes : bool
+    guard_neighbours : bool
+        ``[graph] guard_neighbours`` (dropped neighbour goals fall back to their join state).
+    graph : dict or None
+        The ``[graph]`` table (graph distances), None without one.
     """
 
     weights: dict
@@ -54,6 +58,8 @@ class AuditRecipe:
     validation: float
     goal: dict
     skip_bad_episodes: bool
+    guard_neighbours: bool = False
+    graph: dict | None = None
 
 
 def parse_audit_recipe(text: str) -> AuditRecipe:
@@ -87,4 +93,6 @@ def parse_audit_recipe(text: str) -> AuditRecipe:
         validation=float(doc.get("split", {}).get("validation", 0.1)),
         goal=dict(doc.get("goal", {})),
         skip_bad_episodes=bool(doc.get("logs", {}).get("skip_bad_episodes", False)),
+        guard_neighbours=bool(doc.get("graph", {}).get("guard_neighbours", False)),
+        graph=dict(doc["graph"]) if isinstance(doc.get("graph"), dict) else None,
     )

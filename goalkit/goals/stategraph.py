@@ -35,6 +35,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
+from goalkit import rng
 from goalkit.errors import ParameterError
 from goalkit.goals.neighbours import IndexSettings, build_index
 
@@ -158,7 +159,7 @@ class StateGraph:
     """
 
     def __init__(self, n_states: int, tails, heads, n_joins: int = 0, horizon: int | None = 200,
-                 batch: int = 256, n_transitions: int | None = None):
+                 batch: int = 256, n_transitions: int | None = None, episode_ids=None, transition_offsets=None):
         tails = np.asarray(tails, dtype=np.int64)
         heads = np.asarray(heads, dtype=np.int64)
         self.n_states_ = int(n_states)
@@ -166,6 +167,8 @@ class StateGraph:
         self.n_transitions_ = int(len(tails) - 2 * n_joins if n_transitions is None else n_transitions)
         self.horizon_ = horizon
         self.batch_ = int(batch)
+        self.episode_ids_ = None if episode_ids is None else np.asarray(episode_ids, dtype=np.int64)
+        self.transition_offsets_ = None if transition_offsets is None else np.asarray(transition_offsets, np.int64)
         # reversed edges (head -> tail) as CSR, duplicates removed: a backward search from a target
         order = np.lexsort((tails, heads))
         h, t = heads[order], tails[order]
@@ -178,7 +181,8 @@ class StateGraph:
         self.rev_indices_ = t
 
     @classmethod
-    def from_logs(cls, goal_vectors, transition_offsets, settings: GraphSettings | None = None) -> "StateGraph":
+    def from_logs(cls, goal_vectors, transition_offsets, settings: GraphSettings | None = None,
+                  episode_ids=None) -> "StateGraph":
         """Build the graph of logged states.
 
         Parameters
@@ -187,6 +191,8 @@ class StateGraph:
             phi of every logged state, in global state row order.
         transition_offsets : array_like of int64, shape (E + 1,)
         settings : GraphSettings, optional
+        episode_ids : array_like of int64, shape (E,), optional
+            Ids of the episodes (increasing), for :meth:`node_of`; default ``0 .. E-1``.
         """
         s = settings or GraphSettings()
         x = np.asarray(goal_vectors)
@@ -197,8 +203,20 @@ class StateGraph:
         ju, jv = join_edges(x, transition_offsets, s)
         tails = np.concatenate([tail, ju, jv])
         heads = np.concatenate([head, jv, ju])
+        off = np.asarray(transition_offsets, dtype=np.int64)
+        ids = np.arange(len(off) - 1, dtype=np.int64) if episode_ids is None else episode_ids
         return cls(x.shape[0], tails, heads, n_joins=len(ju), horizon=s.horizon, batch=s.batch,
-                   n_transitions=len(tail))
+                   n_transitions=len(tail), episode_ids=ids, transition_offsets=off)
+
+    def node_of(self, episode_ids, steps) -> np.ndarray:
+        """Global state row (node) of state ``steps`` of each episode id."""
+        pos = np.searchsorted(self.episode_ids_, np.asarray(episode_ids, dtype=np.int64))
+        return self.transition_offsets_[pos] + pos + np.asarray(steps, dtype=np.int64)
+
+    def describe(self) -> dict:
+        """Sizes of the graph (summary and provenance)."""
+        return {"states": self.n_states_, "transitions": self.n_transitions_, "join_pairs": self.n_joins_,
+                "horizon": self.horizon_}
 
     def csr(self) -> sp.csr_matrix:
         """The forward graph as a scipy CSR matrix of ones (row: tail, column: head)."""
@@ -281,9 +299,98 @@ class StateGraph:
         return np.where(keys[i] == q, levels[i], UNREACHABLE)
 
 
+def graph_steps(graph: StateGraph, spec: GraphSpec, seed: int, strategy, source_episode, source_step,
+                goal_episode, goal_step, always=None) -> np.ndarray:
+    """The ``graph_steps`` column of goal rows.
+
+    Rows with a goal from the logs (``goal_episode >= 0``) whose goal state is drawn into the
+    labelled share (``rng.uniform(seed, goal_episode, goal_step, 0, "graph") < goal_share``), or
+    flagged by ``always``, get the steps from ``s_t+1`` to the goal state; the rest
+    :data:`NOT_COMPUTED`. A pure function of the rows: independent of chunking.
+    """
+    ge = np.asarray(goal_episode, dtype=np.int64)
+    out = np.full(len(ge), NOT_COMPUTED, np.int64)
+    pick = ge >= 0
+    if spec.goal_share < 1.0:
+        u = rng.uniform(seed, np.maximum(ge, 0), np.maximum(goal_step, 0), 0, "graph")
+        pick &= u < spec.goal_share
+    if always is not None:
+        pick |= np.asarray(always, bool) & (ge >= 0)
+    if pick.any():
+        src = graph.node_of(np.asarray(source_episode)[pick], np.asarray(source_step)[pick] + 1)
+        tgt = graph.node_of(ge[pick], np.asarray(goal_step)[pick])
+        out[pick] = graph.distances(src, tgt)
+    return out
+
+
 def _member(a: np.ndarray, sorted_b: np.ndarray) -> np.ndarray:
     """``a[i] in sorted_b`` for every i (``sorted_b`` sorted ascending)."""
     if not len(sorted_b):
         return np.zeros(len(a), bool)
     i = np.minimum(np.searchsorted(sorted_b, a), len(sorted_b) - 1)
     return sorted_b[i] == a
+
+
+#: Keys of the recipe's ``[graph]`` table.
+GRAPH_KEYS = ("join_radius", "join_neighbours", "horizon", "goal_share", "guard_neighbours", "index")
+
+
+@dataclass(frozen=True)
+class GraphSpec:
+    """The recipe's ``[graph]`` table: build the logs' graph and label rows with graph distances.
+
+    Parameters
+    ----------
+    settings : GraphSettings
+    goal_share : float
+        Share of goal states whose rows get a graph distance (drawn per goal state from the
+        build's seed, so a state is in or out whatever the chunking); 1 labels every row with a
+        goal from the logs. Rows of guarded ``neighbour`` goals are always labelled.
+    guard_neighbours : bool
+        Keep a ``neighbour`` goal only when the graph connects the row's next state to it within
+        ``horizon`` steps; otherwise the slot falls back to its join state (a future goal).
+    """
+
+    settings: GraphSettings = GraphSettings()
+    goal_share: float = 1.0
+    guard_neighbours: bool = False
+
+    def __post_init__(self):
+        g = self.goal_share
+        if isinstance(g, bool) or not isinstance(g, (int, float)) or not math.isfinite(float(g)) \
+                or not 0.0 <= float(g) <= 1.0:
+            raise ParameterError(f"expected a fraction in [0, 1], got {g!r}", owner="GraphSpec",
+                                 parameter="goal_share")
+        if not isinstance(self.guard_neighbours, bool):
+            raise ParameterError(f"expected true or false, got {self.guard_neighbours!r}", owner="GraphSpec",
+                                 parameter="guard_neighbours")
+
+    @classmethod
+    def from_table(cls, table: dict) -> "GraphSpec":
+        """Build from the recipe's ``[graph]`` table (unknown keys are refused by the caller).
+
+        ``horizon = 0`` means no bound.
+        """
+        unknown = sorted(set(table) - set(GRAPH_KEYS))
+        if unknown:
+            raise ParameterError(f"unknown key {unknown[0]!r}; valid keys: {', '.join(GRAPH_KEYS)}",
+                                 owner="GraphSpec", parameter=unknown[0])
+        horizon = table.get("horizon", 200)
+        if horizon == 0 and not isinstance(horizon, bool):
+            horizon = None
+        try:
+            settings = GraphSettings(join_radius=table.get("join_radius", 0.0),
+                                     join_neighbours=table.get("join_neighbours", 16), horizon=horizon,
+                                     index_method=table.get("index", "auto"))
+        except ParameterError as exc:
+            key = {"index_method": "index"}.get(exc.parameter, exc.parameter)
+            raise ParameterError(exc.message, owner="GraphSpec", parameter=key) from None
+        return cls(settings=settings, goal_share=table.get("goal_share", 1.0),
+                   guard_neighbours=table.get("guard_neighbours", False))
+
+    def describe(self) -> dict:
+        """JSON-able description (summary and provenance)."""
+        s = self.settings
+        return {"join_radius": float(s.join_radius), "join_neighbours": int(s.join_neighbours),
+                "horizon": s.horizon, "goal_share": float(self.goal_share),
+                "guard_neighbours": self.guard_neighbours, "index": s.index_method}

@@ -6,7 +6,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from goalkit.goals.stategraph import graph_steps
 from goalkit.pipeline.plan import SLOT_SPAN
+from goalkit.relabel.strategies import STRATEGIES
 from goalkit.reward import score
 from goalkit.rows import GOAL_ADDRESS, SPLITS
 from goalkit.write.gather import RowGather
@@ -110,4 +112,9 @@ def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gather
         cols["reached_goal"] = achieved
     if "task_reward" in plan.columns:
         cols["task_reward"] = np.take(chunk.rewards, t, axis=0).astype(np.float32)
+    if plan.graph is not None:  # graph distances (goalkit.goals.stategraph; issue 15)
+        spec = plan.recipe.graph
+        always = rows.strategy == STRATEGIES["neighbour"].code if spec.guard_neighbours else None
+        cols["graph_steps"] = graph_steps(plan.graph, spec, plan.recipe.seed, rows.strategy, src_ep, src_step,
+                                          rows.goal_episode, rows.goal_step, always=always)
     return cols, keys

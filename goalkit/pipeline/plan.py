@@ -7,11 +7,12 @@ map, the per-episode split, the relabelling context and the column layout. Chunk
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
 from goalkit.errors import ParameterError, RecipeError
+from goalkit.goals.stategraph import StateGraph
 from goalkit.logs import open_logs
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.logs.layout import load_layout
@@ -21,7 +22,7 @@ from goalkit.pipeline.split import split_codes
 from goalkit.relabel import RelabelContext
 from goalkit.relabel.strategies import STRATEGIES
 from goalkit.relabel.strategies import strategy_names as table_names
-from goalkit.rows import SPLITS
+from goalkit.rows import GRAPH_STEPS_FIELD, SPLITS
 from goalkit.write.format import INDEX_COLUMNS, MATERIAL_COLUMNS, TASK_REWARD_COLUMN
 
 #: Row keys are ``global transition index * SLOT_SPAN + slot``.
@@ -51,6 +52,8 @@ class BuildPlan:
         episodes; None otherwise.
     columns : dict
         Column name -> (dtype, per-row shape) of the output.
+    graph : goalkit.goals.stategraph.StateGraph or None
+        The logs' graph, when the recipe has a ``[graph]`` table.
     """
 
     recipe: object
@@ -62,6 +65,7 @@ class BuildPlan:
     context: object
     goal_table: np.ndarray | None
     columns: dict
+    graph: object = None
 
     def positions(self, episode_ids) -> np.ndarray:
         """Position among the kept episodes of each episode id."""
@@ -88,6 +92,8 @@ def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_t
             cols[name] = kinds[kind]
     if has_task_reward:
         cols[TASK_REWARD_COLUMN[0]] = (np.dtype(TASK_REWARD_COLUMN[1]), ())
+    if getattr(recipe, "graph", None) is not None:
+        cols[GRAPH_STEPS_FIELD.name] = (np.dtype(GRAPH_STEPS_FIELD.dtype), ())
     return cols
 
 
@@ -185,13 +191,19 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
     cols = _columns(recipe, obs_shape, act_shape, first.observations.dtype, first.actions.dtype,
                     goal_map.dim, first.rewards is not None)
     table = None
-    if needs_goal_table(recipe.mixture):
+    if needs_goal_table(recipe.mixture) or recipe.graph is not None:
         table = goal_table(source, goal_map, np.dtype(recipe.goal.dtype), max_transitions)
     if table is not None:
         context = attach_searches(recipe, context, table, goal_map, ids, lengths, splits)
+    graph = None
+    if recipe.graph is not None:  # the logs' graph over every kept state (both splits)
+        settings = replace(recipe.graph.settings, seed=recipe.seed)
+        graph = StateGraph.from_logs(table, offsets, settings, episode_ids=ids)
+        if recipe.graph.guard_neighbours:
+            context = replace(context, graph=graph)
     plan = BuildPlan(recipe=recipe, goal_map=goal_map, episode_ids=ids, lengths=lengths,
                      transition_offsets=offsets, splits=splits, context=context, goal_table=table,
-                     columns=cols)
+                     columns=cols, graph=graph)
     return plan, source
 
 

@@ -13,13 +13,14 @@ from pathlib import Path
 
 from goalkit.config import check_keys, expect_type, parse_toml, read_text_file
 from goalkit.errors import ParameterError, RecipeError
+from goalkit.goals.stategraph import GraphSpec
 from goalkit.outputs import small_toml
 from goalkit.relabel import Mixture
 from goalkit.reward import RewardRule
 
 RECIPE_VERSION = 1
 
-TOP_KEYS = ("version", "seed", "logs", "goal", "relabel", "reward", "split", "output")
+TOP_KEYS = ("version", "seed", "logs", "goal", "relabel", "reward", "split", "output", "graph")
 LOGS_KEYS = ("path", "layout", "skip_bad_episodes")
 GOAL_KEYS = ("fields", "indices", "embedding", "dtype")
 SPLIT_KEYS = ("validation", "salt")
@@ -93,6 +94,8 @@ class Recipe:
     salt : int
         Salt of the split hash.
     output : OutputSpec
+    graph : goalkit.goals.stategraph.GraphSpec or None
+        The ``[graph]`` table (graph distances, neighbour guard); None without one.
     """
 
     text: str
@@ -107,6 +110,7 @@ class Recipe:
     validation: float
     salt: int
     output: OutputSpec
+    graph: object = None
 
     def inputs(self) -> list[tuple[str, Path]]:
         """Every file or folder a build of this recipe reads, labelled for messages.
@@ -275,9 +279,12 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored
     reward = _in_recipe(RewardRule.from_table, _table(doc, "reward", file), file, "reward")
     validation, salt = _parse_split(_table(doc, "split", file, required=False), file)
     output = _parse_output(_table(doc, "output", file), base, file, stored=stored)
+    graph = None
+    if "graph" in doc:  # graph distances (issue 15); absent: the set is what it was without them
+        graph = _in_recipe(GraphSpec.from_table, _table(doc, "graph", file), file, "graph")
     return Recipe(text=text, file=str(file), seed=seed, logs_path=logs_path, layout_path=layout_path,
                   skip_bad_episodes=skip, goal=goal, mixture=mixture, reward=reward,
-                  validation=validation, salt=salt, output=output)
+                  validation=validation, salt=salt, output=output, graph=graph)
 
 
 def _in_recipe(make, table, file, name: str):

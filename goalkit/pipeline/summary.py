@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from goalkit import rng
+from goalkit.pipeline.graphsummary import GraphSummary
 from goalkit.rows import SPLITS
 
 #: About this many rows' distances are kept (a hash-chosen sample) for the quantiles.
@@ -36,6 +37,7 @@ class SummaryBuilder:
         self.reached = {s: np.zeros(size, np.int64) for s in SPLITS}
         self.sample: list[np.ndarray] = []
         self.sample_keys: list[np.ndarray] = []
+        self.graph = GraphSummary(strategy_names)
 
     def add(self, split: str, cols: dict, keys: np.ndarray) -> None:
         """Count the rows of one chunk and split."""
@@ -46,6 +48,7 @@ class SummaryBuilder:
         keep = u < self.rate
         self.sample.append(np.asarray(cols["goal_distance"], dtype=np.float64)[keep])
         self.sample_keys.append(keys[keep])
+        self.graph.add(split, cols)
 
     def result(self) -> dict:
         """Return the summary as a JSON-able dict."""
@@ -70,4 +73,5 @@ class SummaryBuilder:
             qs = np.quantile(d, QUANTILES)
             out["goal_distance_quantiles"] = {f"q{int(q * 100):02d}": float(v) for q, v in zip(QUANTILES, qs)}
         out["goal_distance_sample_rows"] = int(len(d))
+        out.update(self.graph.result())
         return out

@@ -21,7 +21,7 @@ import json
 from pathlib import Path
 
 from goalkit.errors import DatasetError
-from goalkit.rows import INDEX_FIELDS, MATERIAL_FIELDS, SPLIT_CODES, SPLITS, TASK_REWARD_FIELD
+from goalkit.rows import GRAPH_STEPS_FIELD, INDEX_FIELDS, MATERIAL_FIELDS, SPLIT_CODES, SPLITS, TASK_REWARD_FIELD
 
 __all__ = ["FORMAT_NAME", "FORMAT_VERSION", "INDEX_COLUMNS", "MATERIAL_COLUMNS", "SPLITS", "SPLIT_CODES",
            "TASK_REWARD_COLUMN", "COLUMN_ATTRS", "STRATEGY_CODES_ATTR", "column_names", "is_goal_set",
@@ -51,13 +51,15 @@ def strategy_codes_text(names: dict) -> str:
     return json.dumps({str(int(c)): str(names[c]) for c in sorted(names)}, separators=(", ", ": "))
 
 
-def column_names(mode: str, has_task_reward: bool) -> list[str]:
+def column_names(mode: str, has_task_reward: bool, has_graph: bool = False) -> list[str]:
     """Return the column names of a set in ``mode``, in the order they are written."""
     names = list(INDEX_COLUMNS)
     if mode == "materialised":
         names += list(MATERIAL_COLUMNS)
     if has_task_reward:
         names.append(TASK_REWARD_COLUMN[0])
+    if has_graph:
+        names.append(GRAPH_STEPS_FIELD.name)
     return names
 
 
