@@ -16,7 +16,8 @@ NEIGHBOUR = 6
 
 class GraphSummary:
     """Accumulate per strategy: histogram of finite graph distances, unreachable and not-computed
-    counts, and agreement with ``steps_to_goal``; per split the neighbour goals kept and dropped."""
+    counts, and agreement with ``steps_to_goal`` (``graph_steps == steps_to_goal - 1``: the logs
+    show no shorter way than the episode's own); per split the neighbour goals kept and dropped."""
 
     def __init__(self, strategy_names: dict):
         self.names = strategy_names
@@ -46,8 +47,9 @@ class GraphSummary:
             old = self.hist.get(code, np.zeros(0, np.int64))
             size = max(len(old), len(h))
             self.hist[code] = np.pad(old, (0, size - len(old))) + np.pad(h, (0, size - len(h)))
+            # graph_steps counts from s_t+1, steps_to_goal from s_t: they agree when g = steps - 1
             both = fin & (sm >= 0)
-            agree = both & (gm == sm)
+            agree = both & (gm == sm - 1)
             c = np.array([(gm == -2).sum(), (gm == -1).sum(), both.sum(), agree.sum(), (both & rm).sum(),
                           (agree & rm).sum()], np.int64)
             self.counts[code] = self.counts.get(code, np.zeros(6, np.int64)) + c
@@ -83,7 +85,7 @@ def summary_lines(summary: dict) -> list:
         agree = e.get("agree_with_steps_to_goal")
         lines.append(f"  graph steps ({name}): {e['finite']:,} finite, median {q.get('q50', '-')}, "
                      f"{e['unreachable']:,} beyond the horizon, {e['not_computed']:,} not computed"
-                     + (f"; {agree:.1%} equal steps_to_goal" if agree is not None else ""))
+                     + (f"; {agree:.1%} agree with steps_to_goal" if agree is not None else ""))
     dropped = sum(g["neighbour_dropped"].values())
     if dropped or sum(g["neighbour_kept"].values()):
         lines.append(f"  neighbour guard: {sum(g['neighbour_kept'].values()):,} kept, {dropped:,} dropped "

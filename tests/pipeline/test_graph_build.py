@@ -112,8 +112,13 @@ def test_every_neighbour_goal_is_connected_and_drops_are_counted(demo):
     fut = c["strategy"] == 2
     gs = c["graph_steps"][fut]
     ok = gs >= 0
-    assert (gs[ok] <= c["steps_to_goal"][fut][ok]).all()
-    assert (gs[~ok] == -2).all() and (c["steps_to_goal"][fut][~ok] > HORIZON).all()
+    assert (gs[ok] <= c["steps_to_goal"][fut][ok] - 1).all()   # from s_t+1: one step fewer
+    assert (gs[~ok] == -2).all() and (c["steps_to_goal"][fut][~ok] - 1 > HORIZON).all()
+    both = {k: np.concatenate([c[k], read(result.path, "validation")[k]]) for k in c}
+    fut, gs = both["strategy"] == 2, both["graph_steps"]
+    share = float(np.mean(gs[fut & (gs >= 0)] == both["steps_to_goal"][fut & (gs >= 0)] - 1))
+    assert summary["strategies"]["future"]["agree_with_steps_to_goal"] == pytest.approx(share, abs=1e-12)
+    assert 0.2 < share < 1.0  # joins give shortcuts for some rows, not for all
 
 
 def test_bytes_across_chunk_sizes_and_workers_and_verify(demo, tmp_path):
