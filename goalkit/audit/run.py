@@ -9,6 +9,7 @@ from types import SimpleNamespace
 
 import numpy as np
 
+from goalkit.audit.graphcheck import GraphAudit
 from goalkit.audit.laws import geometric_law, uniform_law
 from goalkit.audit.recipe_text import CODE_NAMES, parse_audit_recipe
 from goalkit.audit.rowrules import (EPISODE, FUTURE, GEOMETRIC, NEAR_MISS, NEIGHBOUR, ORIGINAL, OTHER,
@@ -202,6 +203,7 @@ class _Auditor:
         self.draws = _Draws()
         self.violations = {}
         self.first = {}
+        self.graph = GraphAudit(logs, rc.graph) if rc.graph is not None else None
 
     # ---- failures ------------------------------------------------------------------------
     def violated(self, rule, message, mask, split, row0, c):
@@ -249,6 +251,8 @@ class _Auditor:
                         f"T x goals_per_transition = {int(expect[k])}")
         for rule, n in self.violations.items():
             self.report.failures.append(f"row rule '{rule}' broken by {n} rows; first: {self.first[rule]}")
+        if self.graph is not None:
+            self.report.failures.extend(self.graph.failures())
         self.report.rule_violations = dict(self.violations)
         self.report.checks = holm(self.checks(), self.alpha)
         for c in self.report.checks:
@@ -281,6 +285,8 @@ class _Auditor:
         grp = self.f[split]
         c = {k: grp[k][a:b] for k in INDEX}
         n = b - a
+        if self.graph is not None:
+            self.graph.add(split, a, c, grp["graph_steps"][a:b] if "graph_steps" in grp else None)
         v = self.jitter.random((n, 3))
         self.report.rows[split] += n
         ep, t, slot = c["source_episode"], c["source_step"], c["slot"]

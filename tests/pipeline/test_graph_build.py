@@ -16,6 +16,7 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import shortest_path
 from scipy.spatial.distance import cdist
 
+from goalkit.audit.run import audit_set
 from goalkit.cli import main
 from goalkit.demo import make_demo
 from goalkit.pipeline.build import build
@@ -146,11 +147,22 @@ def test_tampered_graph_steps_fail_verify(demo, tmp_path):
     copy.write_bytes(result.path.read_bytes())
     with h5py.File(copy, "r+") as f:
         col = f["train"]["graph_steps"]
-        v = col[:10]
-        col[:10] = v + 1
+        v = col[:40]
+        col[:40] = np.where(v > 0, 0, v)   # shortcuts the logs do not show
+        assert (v > 0).sum() >= 5
     report = verify_set(copy)
     assert not report.ok
     assert any("graph_steps" in m for m in report.failures)
+    # the independent audit alone (its own graph and forward search) catches it too
+    audit = audit_set(copy)
+    assert not audit.ok
+    assert any("contradicted by the audit's own search" in m for m in audit.failures), audit.failures
+
+
+def test_the_audit_passes_the_built_set(demo):
+    d, recipe, result = demo
+    audit = audit_set(result.path)
+    assert audit.ok, audit.failures
 
 
 def test_without_a_graph_table_no_column(demo):
