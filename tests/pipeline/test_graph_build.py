@@ -22,6 +22,7 @@ from goalkit.demo import make_demo
 from goalkit.pipeline.build import build
 from goalkit.pipeline.plan import make_plan
 from goalkit.pipeline.recipe import load_recipe
+from goalkit.thresholds.graphplot import plot_graph_distance, read_graph_columns
 from goalkit.write.verify import verify_set
 
 RADIUS = 0.15
@@ -183,3 +184,13 @@ def test_bad_join_radius_one_line_exit_2(demo, value):
     lines = [ln for ln in r.output.splitlines() if ln.strip()]
     assert len(lines) == 1, r.output
     assert "bad-graph.toml" in lines[0] and "graph.join_radius" in lines[0] and "Traceback" not in r.output
+
+
+def test_graph_distance_png(demo, tmp_path):
+    d, recipe, result = demo
+    out = plot_graph_distance(result.path, tmp_path / "graph.png")
+    assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (ISO/IEC 15948, 5.2)
+    cols = read_graph_columns(result.path)
+    assert set(np.unique(cols["strategy"]).tolist()) == {2, 6}
+    with pytest.raises(Exception):
+        plot_graph_distance(result.path, tmp_path / "graph.png")   # never over an existing file
