@@ -13,7 +13,7 @@ from pathlib import Path
 
 from goalkit.config import check_keys, expect_type, parse_toml, read_text_file
 from goalkit.errors import ParameterError, RecipeError
-from goalkit.goals.stategraph import GraphSpec
+from goalkit.graphconfig import GraphSpec
 from goalkit.outputs import small_toml
 from goalkit.relabel import Mixture
 from goalkit.reward import RewardRule
