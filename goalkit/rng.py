@@ -29,6 +29,7 @@ STREAMS = {
     "shuffle": 11,   # reading a built set: epoch orders, chunk pools (goalkit.write.epochs)
     "mask": 21,      # goal masks: whether a relabelled row gets a random mask (goalkit.masks)
     "mask_set": 22,  # goal masks: which non-empty subset of the groups it keeps
+    "graph": 12,     # graph distances: which goal states get one (goalkit.goals.stategraph)
 }
 # Stream numbers 1001-1005 are taken by the demo simulator (goalkit.demo.controllers.DEMO_STREAMS).
 

@@ -122,6 +122,12 @@ SOURCE_FIELD = Field("source", "uint16", "", "the log source of the transition: 
 GOAL_MASK_FIELD = Field("goal_mask", "uint8", "goal",
                         "1 for each goal dimension the goal constrains (reward, reached and distance use "
                         "only these; recipes with a [mask] table only)")
+# ---- graph distances (issue 15): one block, present when the recipe has a [graph] table ----
+#: Optional column: steps from s_t+1 to the goal state in the logs' graph (goalkit.goals.stategraph).
+GRAPH_STEPS_FIELD = Field("graph_steps", "int64", "",
+                          "shortest path in the logs' graph (logged steps and joins) from s_t+1 to the goal "
+                          "state; -2 no path within the horizon, -1 not computed (with a [graph] table)")
+# ---- end of graph distances ----
 
 #: The columns a relabelling strategy fills (the rest come from the logs and the reward rule).
 GOAL_ADDRESS = ("goal_episode", "goal_step", "hop_episode", "hop_step", "join_step", "steps_to_goal")
@@ -133,4 +139,5 @@ LABEL_COLUMNS = ("discount_weight", "return_to_goal", "bootstrap_mask")
 #: Every column, by name.
 ALL_FIELDS = {**INDEX_FIELDS, **MATERIAL_FIELDS, TASK_REWARD_FIELD.name: TASK_REWARD_FIELD,
               **END_FLAG_FIELDS, SOURCE_FIELD.name: SOURCE_FIELD,
-              GOAL_MASK_FIELD.name: GOAL_MASK_FIELD}
+              GOAL_MASK_FIELD.name: GOAL_MASK_FIELD,
+              GRAPH_STEPS_FIELD.name: GRAPH_STEPS_FIELD}

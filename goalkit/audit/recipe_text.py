@@ -44,6 +44,10 @@ class AuditRecipe:
     skip_bad_episodes : bool
     named_sources : bool
         The recipe names its sources (``[[sources]]``): rows carry a ``source`` column.
+    guard_neighbours : bool
+        ``[graph] guard_neighbours`` (dropped neighbour goals fall back to their join state).
+    graph : dict or None
+        The ``[graph]`` table (graph distances), None without one.
     """
 
     weights: dict
@@ -64,6 +68,8 @@ class AuditRecipe:
     lower: tuple | None = None
     upper: tuple | None = None
     mask: dict | None = None
+    guard_neighbours: bool = False
+    graph: dict | None = None
 
 
 def parse_audit_recipe(text: str) -> AuditRecipe:
@@ -102,4 +108,6 @@ def parse_audit_recipe(text: str) -> AuditRecipe:
         lower=tuple(float(x) for x in reward["lower"]) if "lower" in reward else None,
         upper=tuple(float(x) for x in reward["upper"]) if "upper" in reward else None,
         mask=dict(doc["mask"]) if "mask" in doc else None,
+        guard_neighbours=bool(doc.get("graph", {}).get("guard_neighbours", False)),
+        graph=dict(doc["graph"]) if isinstance(doc.get("graph"), dict) else None,
     )

@@ -54,9 +54,11 @@ def address_rules(c: dict, T, T_goal, same_split, rc):
         OTHER: ("other_episode: goal s_j of another episode of the same split, 0 <= j <= T', steps-to-goal -1",
                 (ge >= 0) & ~own & same_split & (j >= 0) & (j <= T_goal) & no_hop & no_join & (steps == -1)),
         NEIGHBOUR: ("neighbour: goal s_m of the hop episode (another of the same split), hop step <= m <= T', "
-                    "joined at t < join <= T, steps-to-goal -1",
-                    (he >= 0) & (ge == he) & (he != ep) & same_split & (hs >= 0) & (j >= hs) & (j <= T_goal)
-                    & later_join & (steps == -1)),
+                    "joined at t < join <= T, steps-to-goal -1; guarded ([graph] guard_neighbours), a dropped "
+                    "goal is the join state itself (steps j - t)",
+                    later_join & np.where(he >= 0, (ge == he) & (he != ep) & same_split & (hs >= 0) & (j >= hs)
+                                          & (j <= T_goal) & (steps == -1),
+                                          rc.guard_neighbours & own & (j == join) & (hs == -1) & (steps == j - t))),
         LIBRARY: ("library: external goal, no hop, joined at t < join <= T (steps join - t) or unmatched (-1)",
                   external & no_hop & ((later_join & (steps == join - t)) | (no_join & (steps == -1)))),
         NEAR_MISS: ("near_miss: the hop state of another episode of the same split joined at t < join <= T "

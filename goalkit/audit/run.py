@@ -9,6 +9,7 @@ from types import SimpleNamespace
 
 import numpy as np
 
+from goalkit.audit.graphcheck import GraphAudit
 from goalkit.audit.laws import geometric_law, uniform_law
 from goalkit.audit.maskrules import MaskAudit
 from goalkit.audit.recipe_text import CODE_NAMES, parse_audit_recipe
@@ -244,6 +245,7 @@ class _Auditor:
         self.violations = {}
         self.first = {}
         self.masks = None if rc.mask is None else MaskAudit(rc.mask, logs.goal_map.dim, logs.field_widths)
+        self.graph = GraphAudit(logs, rc.graph) if rc.graph is not None else None
 
     # ---- failures ------------------------------------------------------------------------
     def violated(self, rule, message, mask, split, row0, c):
@@ -291,6 +293,8 @@ class _Auditor:
                         f"T x goals_per_transition = {int(expect[k])}")
         for rule, n in self.violations.items():
             self.report.failures.append(f"row rule '{rule}' broken by {n} rows; first: {self.first[rule]}")
+        if self.graph is not None:
+            self.report.failures.extend(self.graph.failures())
         self.report.rule_violations = dict(self.violations)
         self.report.checks = holm(self.checks(), self.alpha)
         for c in self.report.checks:
@@ -333,6 +337,8 @@ class _Auditor:
                 return
             c["goal_mask"] = grp["goal_mask"][a:b]
         n = b - a
+        if self.graph is not None:
+            self.graph.add(split, a, c, grp["graph_steps"][a:b] if "graph_steps" in grp else None)
         v = self.jitter.random((n, 3))
         self.report.rows[split] += n
         ep, t, slot = c["source_episode"], c["source_step"], c["slot"]

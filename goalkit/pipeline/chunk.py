@@ -6,7 +6,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from goalkit.goals.stategraph import graph_steps
 from goalkit.pipeline.plan import SLOT_SPAN
+from goalkit.relabel.strategies import STRATEGIES
 from goalkit.reward import score
 from goalkit.rows import END_FLAG_SOURCES, GOAL_ADDRESS, LABEL_COLUMNS, SPLITS
 from goalkit.write.gather import RowGather
@@ -150,6 +152,11 @@ def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gather
         cols["source"] = np.take(chunk.sources, src_pos, axis=0).astype(np.uint16)
     if mask is not None:
         cols["goal_mask"] = mask
+    if plan.graph is not None:  # graph distances (goalkit.goals.stategraph; issue 15)
+        spec = plan.recipe.graph
+        always = rows.strategy == STRATEGIES["neighbour"].code if spec.guard_neighbours else None
+        cols["graph_steps"] = graph_steps(plan.graph, spec, plan.recipe.seed, rows.strategy, src_ep, src_step,
+                                          rows.goal_episode, rows.goal_step, always=always)
     return cols, keys
 
 

@@ -9,6 +9,7 @@ from goalkit.errors import GoalkitError
 from goalkit.pipeline.build import build as run_build
 from goalkit.pipeline.buildfolder import folder_of
 from goalkit.pipeline.recipe import load_recipe
+from goalkit.pipeline.graphsummary import summary_lines as graph_lines
 from goalkit.pipeline.searchsetup import summary_lines
 from goalkit.write.info import reward_text, widths_text
 
@@ -52,6 +53,7 @@ def format_summary(path, summary: dict, reward: dict | None = None, file_bytes: 
         lines.append("  goal distance quantiles: " + "  ".join(f"{k}={v:.4g}" for k, v in q.items()))
 
     lines += summary_lines(summary) + rule_lines(summary)
+    lines += graph_lines(summary)
     for w in summary.get("warnings", []):
         lines.append(f"  warning: {w}")
     if card:

@@ -7,11 +7,12 @@ map, the per-episode split, the relabelling context and the column layout. Chunk
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
 from goalkit.errors import ParameterError, RecipeError
+from goalkit.goals.stategraph import StateGraph
 from goalkit.logs import open_logs
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.logs.layout import load_layout
@@ -22,7 +23,7 @@ from goalkit.pipeline.split import split_codes
 from goalkit.relabel import RelabelContext
 from goalkit.relabel.strategies import STRATEGIES
 from goalkit.relabel.strategies import strategy_names as table_names
-from goalkit.rows import END_FLAG_SOURCES, SPLITS
+from goalkit.rows import END_FLAG_SOURCES, GRAPH_STEPS_FIELD, SPLITS
 from goalkit.logs.multi import open_sources
 from goalkit.write.format import (END_FLAG_COLUMNS, GOAL_MASK_COLUMN, INDEX_COLUMNS, MATERIAL_COLUMNS, SOURCE_COLUMN,
                                    TASK_REWARD_COLUMN)
@@ -59,6 +60,8 @@ class BuildPlan:
     masks : goalkit.masks.GoalMasks or None
         The recipe's mask table matched with the goal space and the logs' tasks (None: no
         ``[mask]`` table).
+    graph : goalkit.goals.stategraph.StateGraph or None
+        The logs' graph, when the recipe has a ``[graph]`` table.
     """
 
     recipe: object
@@ -72,6 +75,7 @@ class BuildPlan:
     columns: dict
     shapes: dict | None = None
     masks: object = None
+    graph: object = None
 
     def positions(self, episode_ids) -> np.ndarray:
         """Position among the kept episodes of each episode id."""
@@ -106,6 +110,8 @@ def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_t
         cols[SOURCE_COLUMN[0]] = (np.dtype(SOURCE_COLUMN[1]), ())
     if recipe.masks is not None:
         cols[GOAL_MASK_COLUMN[0]] = (np.dtype(GOAL_MASK_COLUMN[1]), (goal_dim,))
+    if getattr(recipe, "graph", None) is not None:
+        cols[GRAPH_STEPS_FIELD.name] = (np.dtype(GRAPH_STEPS_FIELD.dtype), ())
     return cols
 
 
@@ -226,15 +232,21 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
                     [name for name, attr in END_FLAG_SOURCES.items() if getattr(first, attr) is not None],
                     bool(recipe.named_sources))
     table = None
-    if needs_goal_table(recipe.mixture):
+    if needs_goal_table(recipe.mixture) or recipe.graph is not None:
         table = goal_table(source, goal_map, np.dtype(recipe.goal.dtype), max_transitions)
     if table is not None:
         context = attach_searches(recipe, context, table, goal_map, ids, lengths, splits)
+    graph = None
+    if recipe.graph is not None:  # the logs' graph over every kept state (both splits)
+        settings = replace(recipe.graph.settings, seed=recipe.seed)
+        graph = StateGraph.from_logs(table, offsets, settings, episode_ids=ids)
+        if recipe.graph.guard_neighbours:
+            context = replace(context, graph=graph)
     plan = BuildPlan(recipe=recipe, goal_map=goal_map, episode_ids=ids, lengths=lengths,
                      transition_offsets=offsets, splits=splits, context=context, goal_table=table,
                      columns=cols, shapes={"observation": list(obs_shape), "action": list(act_shape),
                                            "goal": [int(goal_map.dim)]},
-                     masks=masks)
+                     masks=masks, graph=graph)
     return plan, source
 
 

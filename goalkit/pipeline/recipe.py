@@ -15,6 +15,7 @@ from pathlib import Path
 from goalkit.config import check_keys, expect_type, parse_toml, read_text_file
 from goalkit.archive import SourceSpec, is_pattern
 from goalkit.errors import ParameterError, RecipeError, shown
+from goalkit.graphconfig import GraphSpec
 from goalkit.heads import heads_from_table
 from goalkit.masks import MaskSpec
 from goalkit.outputs import small_toml
@@ -23,7 +24,7 @@ from goalkit.reward import RewardRule
 
 RECIPE_VERSION = 1
 
-TOP_KEYS = ("version", "seed", "logs", "sources", "goal", "relabel", "reward", "split", "output", "heads", "mask")
+TOP_KEYS = ("version", "seed", "logs", "sources", "goal", "relabel", "reward", "split", "output", "heads", "mask", "graph")
 LOGS_KEYS = ("path", "layout", "skip_bad_episodes")
 #: Keys of each ``[[sources]]`` table.
 SOURCE_KEYS = ("name", "path", "layout", "skip_bad_episodes")
@@ -112,6 +113,8 @@ class Recipe:
         The sources are named (``[[sources]]``): rows carry a ``source`` column.
     masks : goalkit.masks.MaskSpec or None
         The ``[mask]`` table (goal masks); None: no mask column, every goal dimension counts.
+    graph : goalkit.goals.stategraph.GraphSpec or None
+        The ``[graph]`` table (graph distances, neighbour guard); None without one.
     """
 
     text: str
@@ -130,6 +133,7 @@ class Recipe:
     sources: tuple | None = None
     named_sources: bool = False
     masks: MaskSpec | None = None
+    graph: object = None
 
     def inputs(self) -> list[tuple[str, Path]]:
         """Every file or folder a build of this recipe reads, labelled for messages.
@@ -321,12 +325,15 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored
     reward = _in_recipe(RewardRule.from_table, _table(doc, "reward", file), file, "reward")
     validation, salt = _parse_split(_table(doc, "split", file, required=False), file)
     output = _parse_output(_table(doc, "output", file), base, file, stored=stored)
+    graph = None
+    if "graph" in doc:  # graph distances; absent: the set is what it was without them
+        graph = _in_recipe(GraphSpec.from_table, _table(doc, "graph", file), file, "graph")
     masks = MaskSpec.from_table(doc["mask"], file) if "mask" in doc else None
     heads = heads_from_table(_table(doc, "heads", file, required=False), file)
     return Recipe(text=text, file=str(file), seed=seed, logs_path=logs_path, layout_path=layout_path,
                   skip_bad_episodes=skip, goal=goal, mixture=mixture, reward=reward,
                   validation=validation, salt=salt, output=output, heads=heads,
-                  sources=sources, named_sources=named, masks=masks)
+                  sources=sources, named_sources=named, masks=masks, graph=graph)
 
 
 def _in_recipe(make, table, file, name: str):

@@ -12,6 +12,7 @@ from __future__ import annotations
 import numpy as np
 
 from goalkit import rng
+from goalkit.pipeline.graphsummary import GraphSummary
 from goalkit.rows import SPLITS
 
 #: About this many rows' distances are kept (a hash-chosen sample) for the quantiles.
@@ -59,6 +60,7 @@ class SummaryBuilder:
         self.rule = rule
         self.mask_dims: np.ndarray | None = None   # rows constraining each goal dimension
         self.mask_full = 0                          # rows constraining every dimension
+        self.graph = GraphSummary(strategy_names)
 
     def add(self, split: str, cols: dict, keys: np.ndarray) -> None:
         """Count the rows of one chunk and split."""
@@ -84,6 +86,7 @@ class SummaryBuilder:
             dims = m.sum(axis=0, dtype=np.int64)
             self.mask_dims = dims if self.mask_dims is None else self.mask_dims + dims
             self.mask_full += int(m.all(axis=1).sum())
+        self.graph.add(split, cols)
 
     def result(self) -> dict:
         """Return the summary as a JSON-able dict."""
@@ -114,6 +117,7 @@ class SummaryBuilder:
         if self.rule is not None and self.rule.distance_name == "region":
             out["region"] = {"lower": list(self.rule.lower), "upper": list(self.rule.upper),
                              "margin": float(self.rule.threshold)}
+        out.update(self.graph.result())
         return out
 
     def composition(self) -> dict:

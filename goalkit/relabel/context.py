@@ -41,6 +41,7 @@ class RelabelContext:
     split_of: Callable[[np.ndarray], np.ndarray] | np.ndarray
     neighbours: Any = None
     library: Any = None
+    graph: Any = None
 
     def __post_init__(self):
         if set(self.split_episode_ids) != set(self.split_lengths):

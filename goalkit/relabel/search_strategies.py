@@ -9,6 +9,9 @@ For transition ``t`` of episode ``e`` (``T`` transitions):
     "neighbour"); the goal is ``s_m`` of ``e'`` with ``m`` uniform on ``{i, ..., T'}`` (stream
     "hop"; ``m = i``, the neighbour itself, is allowed). Row: ``hop_episode = goal_episode = e'``,
     ``hop_step = i``, ``join_step = j``, ``steps_to_goal = -1`` (the path joins two logs).
+    Guarded (``[graph] guard_neighbours``, ``context.graph`` set): a goal the logs' graph does not
+    connect to ``s_t+1`` within its horizon is dropped and the slot falls back to its join state
+    ``s_j`` (a future goal: ``hop = -1``, ``steps_to_goal = j - t``), as ``near_miss`` does.
 ``library``
     Among the pairs (step ``j > t`` of ``e``, target ``l``) where ``s_j`` is within the threshold
     of target ``l``, one uniformly (stream "neighbour"); the goal is target ``l`` (external),
@@ -84,8 +87,15 @@ def neighbour(chunk, transitions, slots, seed: int, context=None) -> StrategyGoa
         raise ValueError("a join state has no neighbour in another episode of its split")
     hop_len = context.neighbours.lengths_of(hop_ep)
     m = rng.integers(seed, hop_step, hop_len + 1, eid, t, slots, "hop")
-    return StrategyGoals(hop_ep.copy(), m, hop_episode=hop_ep, hop_step=hop_step, join_step=j,
-                         steps_to_goal=np.full(len(t), -1, np.int64))
+    graph = getattr(context, "graph", None)
+    if graph is None:
+        return StrategyGoals(hop_ep.copy(), m, hop_episode=hop_ep, hop_step=hop_step, join_step=j,
+                             steps_to_goal=np.full(len(t), -1, np.int64))
+    # the guard: keep the goal only when the logs' graph connects s_t+1 to it within the horizon
+    kept = graph.distances(graph.node_of(eid, t + 1), graph.node_of(hop_ep, m)) >= 0
+    return StrategyGoals(np.where(kept, hop_ep, eid), np.where(kept, m, j),
+                         hop_episode=np.where(kept, hop_ep, -1), hop_step=np.where(kept, hop_step, -1),
+                         join_step=j, steps_to_goal=np.where(kept, -1, j - t).astype(np.int64))
 
 
 def near_miss(chunk, transitions, slots, seed: int, context=None) -> StrategyGoals:
@@ -133,8 +143,9 @@ def _library_dim(chunk, context) -> int:
 # ---- their entries in the strategy table ------------------------------------------------
 register("neighbour", neighbour, 6, join="later", hops=True, goal_table=True, rules=[
     ("a neighbour goal must be a state s_m of the hop episode with hop step <= m <= its length, the hop "
-     "episode another episode than the source",
-     lambda r: (r.he >= 0) & (r.he != r.ep) & (r.ge == r.he) & (r.hs >= 0) & (r.j >= r.hs) & (r.j <= r.goal_T))])
+     "episode another episode than the source (guarded and dropped: its join state s_j)",
+     lambda r: np.where(r.he >= 0, (r.he != r.ep) & (r.ge == r.he) & (r.hs >= 0) & (r.j >= r.hs) & (r.j <= r.goal_T),
+                        r.same & (r.j == r.join) & (r.hs == -1)))])
 register("library", library, 7, external_dim=_library_dim, join="later_or_none", steps_from_join=True,
          goal_table=True, rules=[
     ("a library goal must be external, joined at a later step (t < join_step <= T) or unmatched (-1)",

@@ -140,6 +140,11 @@ def _diagnostics(d: dict) -> list[str]:
                f"25%: {_g(oth.get('0.25'))})")
     out.append(f"  rule-of-thumb range:       {_g(r['low'])} .. {_g(r['high'])}"
                f"{'' if r['ok'] else '  (empty: low end above high end)'}")
+    tm = r.get("temporal")
+    if tm and tm.get("threshold") is not None:
+        out.append(f"  temporal-order threshold:  {_g(tm['threshold'])}  (Youden's J {tm['youden_j']:.2f}: "
+                   f"{tm['tpr']:.0%} of pairs <= {tm['near_steps']} step apart reached, {tm['fpr']:.0%} of pairs "
+                   f">= {tm['far_steps']} steps apart; knee of the rewarded share {_g(tm['knee'])})")
     if "tolerances_low" in r and r["tolerances_low"] is not None:
         out.append(f"    as box tolerances:       {_g(r['tolerances_low'])} .. {_g(r['tolerances_high'])}")
     rf = d["rewarded_fraction"]

@@ -45,12 +45,13 @@ from goalkit.pipeline.plan import make_plan, open_source, strategy_names
 from goalkit.pipeline.summary import HIGH_REACHED, LOW_REACHED
 from goalkit.reward import DISTANCES, RewardRule, within
 from goalkit.thresholds.box import suggest_box
-from goalkit.thresholds.diagnostics import diagnose, rewarded_fraction, threshold_warnings
+from goalkit.thresholds.diagnostics import diagnose, rewarded_fraction, state_goals, threshold_warnings
 from goalkit.thresholds.labels import LabelledPairs, concat_pairs, load_labelled_pairs, pairs_from_success
 from goalkit.thresholds.metrics import CHOOSERS, check_chooser
 from goalkit.thresholds.plots import plot_diagnostics, plot_labelled
 from goalkit.thresholds.report import render as render_report
 from goalkit.thresholds.sample import SampledSource, concat_episodes, sample_episodes
+from goalkit.thresholds.temporal import temporal_threshold
 from goalkit.thresholds.tuner import ThresholdTuner
 
 #: Default transition budget of the sample.
@@ -406,6 +407,9 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
     diag = diagnose(episodes, gmap, diag_rule, sample=sample_states, seed=recipe.seed)
     summary = diag.summary()
     rng_ = suggested_range(diag, diag_rule)
+    # label-free, from the logs' temporal order (goalkit.thresholds.temporal): holds when episodes overlap
+    rng_["temporal"] = temporal_threshold(state_goals(episodes, gmap), episodes.offsets, diag_rule.distance,
+                                          seed=recipe.seed).as_dict()
     warnings = threshold_warnings(summary)
     if not rng_["ok"] and rng_["low"] is not None and rng_["high"] is not None:
         warnings.append(f"no clean range: half the typical one-step change ({rng_['low']:.4g}) is above "

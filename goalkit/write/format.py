@@ -21,7 +21,7 @@ import json
 from pathlib import Path
 
 from goalkit.errors import DatasetError
-from goalkit.rows import (END_FLAG_FIELDS, GOAL_MASK_FIELD, INDEX_FIELDS, MATERIAL_FIELDS, SOURCE_FIELD, SPLIT_CODES, SPLITS,
+from goalkit.rows import (END_FLAG_FIELDS, GOAL_MASK_FIELD, GRAPH_STEPS_FIELD, INDEX_FIELDS, MATERIAL_FIELDS, SOURCE_FIELD, SPLIT_CODES, SPLITS,
                           TASK_REWARD_FIELD)
 
 __all__ = ["FORMAT_NAME", "FORMAT_VERSION", "INDEX_COLUMNS", "MATERIAL_COLUMNS", "SPLITS", "SPLIT_CODES",
@@ -61,12 +61,12 @@ def strategy_codes_text(names: dict) -> str:
 
 
 def column_names(mode: str, has_task_reward: bool, end_flags=(), has_source: bool = False,
-                 has_goal_mask: bool = False) -> list[str]:
+                 has_goal_mask: bool = False, has_graph: bool = False) -> list[str]:
     """Return the column names of a set in ``mode``, in the order they are written.
 
     ``end_flags`` names the end-flag columns present (:data:`END_FLAG_COLUMNS`); ``has_source``:
     the set has the source column (:data:`SOURCE_COLUMN`); ``has_goal_mask``: the goal-mask
-    column (:data:`GOAL_MASK_COLUMN`).
+    column (:data:`GOAL_MASK_COLUMN`); ``has_graph``: the ``graph_steps`` column.
     """
     names = list(INDEX_COLUMNS)
     if mode == "materialised":
@@ -78,6 +78,8 @@ def column_names(mode: str, has_task_reward: bool, end_flags=(), has_source: boo
         names.append(SOURCE_COLUMN[0])
     if has_goal_mask:
         names.append(GOAL_MASK_COLUMN[0])
+    if has_graph:
+        names.append(GRAPH_STEPS_FIELD.name)
     return names
 
 

@@ -40,7 +40,7 @@ def test_docs_column_table_is_the_schema():
                   for name, dtype, shape, meaning in rows}
     schema = {f.name: (f.dtype_text, f.shape_text, f.meaning) for f in ALL_FIELDS.values()}
     assert documented == schema
-    assert len(documented) == 27   # 18 index columns, 4 materialised, task_reward, 2 end flags, source, goal_mask
+    assert len(documented) == 28   # 18 index columns, 4 materialised, task_reward, 2 end flags, source, goal_mask, graph_steps
 
 
 def test_docs_strategy_table_is_the_strategy_table():
@@ -54,7 +54,7 @@ def test_format_and_splits_come_from_the_schema():
     assert fmt.MATERIAL_COLUMNS == {f.name: (f.dtype, f.kind, f.meaning) for f in MATERIAL_FIELDS.values()}
     assert fmt.TASK_REWARD_COLUMN == ("task_reward", "float32", TASK_REWARD_FIELD.meaning)
     assert fmt.SPLITS is SPLITS and fmt.SPLIT_CODES is SPLIT_CODES == {"train": 0, "validation": 1}
-    assert fmt.column_names("materialised", True, ("termination", "time_limit"), True, True) == list(ALL_FIELDS)
+    assert fmt.column_names("materialised", True, ("termination", "time_limit"), True, True, True) == list(ALL_FIELDS)
 
 
 def test_goal_rows_and_strategy_goals_carry_the_address_columns():
