@@ -192,14 +192,14 @@ class RewardRule:
                            "threshold")
             if len(thr) == 0 or not all(_is_number(x) and math.isfinite(x) and x > 0 for x in thr):
                 raise _bad(f"expected finite tolerances > 0, one per goal dimension, got "
-                           f"{list(thr)}", "threshold")
+                           f"{shown(list(thr))}", "threshold")
             if self.weights is not None:
                 raise _bad("distance 'box' takes no weights (scale the tolerances in "
                            "threshold instead)", "weights")
         else:
             if isinstance(thr, tuple):
                 raise _bad(f"a list of tolerances needs distance = 'box'; distance "
-                           f"'{self.distance_name}' expects one number, got {list(thr)}", "threshold")
+                           f"'{self.distance_name}' expects one number, got {shown(list(thr))}", "threshold")
             if not _is_number(thr) or not math.isfinite(thr) or thr < 0:
                 raise _bad(f"expected a finite number >= 0, got {shown(thr)}", "threshold")
         if self.weights is not None:
@@ -207,7 +207,7 @@ class RewardRule:
             if not isinstance(w, tuple) or len(w) == 0:
                 raise _bad(f"expected a non-empty list of weights, got {shown(w)}", "weights")
             if not all(_is_number(x) and math.isfinite(x) and x >= 0 for x in w):
-                raise _bad(f"expected finite weights >= 0, got {list(w)}", "weights")
+                raise _bad(f"expected finite weights >= 0, got {shown(list(w))}", "weights")
             if not any(x > 0 for x in w):
                 raise _bad("expected at least one weight > 0, got all zero", "weights")
         if self.form == "clipped-negative-distance":
@@ -215,7 +215,7 @@ class RewardRule:
             if c is None:
                 raise _bad("form 'clipped-negative-distance' needs clip (a number > 0)", "clip")
             if not _is_number(c) or not math.isfinite(c) or c <= 0:
-                raise _bad(f"expected a finite number > 0, got {c!r}", "clip")
+                raise _bad(f"expected a finite number > 0, got {shown(c)}", "clip")
         elif self.clip is not None:
             raise _bad(f"clip is used only with form 'clipped-negative-distance', "
                        f"not '{self.form}'", "clip")
@@ -229,7 +229,7 @@ class RewardRule:
                                   f"dimension; -inf or inf where a side is free)", name)
             if not isinstance(b, tuple) or len(b) == 0 or not all(_is_number(x) and not math.isnan(x)
                                                                     for x in b):
-                raise _bad(f"expected a non-empty list of numbers (inf allowed), got {b!r}", name)
+                raise _bad(f"expected a non-empty list of numbers (inf allowed), got {shown(b)}", name)
         if len(self.lower) != len(self.upper):
             raise _bad(f"expected as many upper bounds as lower bounds ({len(self.lower)}), "
                               f"got {len(self.upper)}", "upper")
@@ -471,16 +471,16 @@ class RewardRule:
         weights = table.get("weights")
         if weights is not None:
             if not isinstance(weights, list) or not all(_is_number(x) for x in weights):
-                raise _bad(f"expected a list of numbers, got {weights!r}", "weights")
+                raise _bad(f"expected a list of numbers, got {shown(weights)}", "weights")
             weights = tuple(float(x) for x in weights)
         clip = table.get("clip")
         if clip is not None and not _is_number(clip):
-            raise _bad(f"expected a number, got {clip!r}", "clip")
+            raise _bad(f"expected a number, got {shown(clip)}", "clip")
         bounds = {}
         for name in ("lower", "upper"):
             b = table.get(name)
             if b is not None and (not isinstance(b, list) or not all(_is_number(x) for x in b)):
-                raise _bad(f"expected a list of numbers (inf and -inf allowed), got {b!r}", name)
+                raise _bad(f"expected a list of numbers (inf and -inf allowed), got {shown(b)}", name)
             bounds[name] = None if b is None else tuple(float(x) for x in b)
         return cls(distance=distance, threshold=thr, inclusive=table.get("inclusive", True),
                    form=form, weights=weights, clip=clip, end_on_reach=table.get("end_on_reach", False), **bounds)

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from goalkit.errors import RecipeError, shown
+from goalkit.errors import ParameterError, shown
 from goalkit.goals.goalmap import IndexGoalMap
 from goalkit.logs.episodes import EpisodeSet
 from goalkit.reward import RewardRule
@@ -111,7 +111,7 @@ def test_messages_show_numbers_plainly():
     assert shown(np.float32(1.0)) == "1.0" and shown([np.int64(2), np.float64(0.5)]) == "[2, 0.5]"
     try:
         RewardRule("euclidean", [np.float64(0.1), np.float64(0.2)])
-    except RecipeError as exc:
+    except ParameterError as exc:
         assert "np." not in str(exc) and "[0.1, 0.2]" in str(exc)
     else:  # pragma: no cover
         raise AssertionError("a list threshold for euclidean must be refused")
