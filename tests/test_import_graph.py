@@ -50,16 +50,11 @@ def test_goalkit_has_no_cycle_of_module_level_imports():
 
 
 def test_function_local_imports_are_few_and_each_says_why():
-    # Issue 11: at most 5, each with a comment saying why (only optional heavy dependencies).
-    # write/reader.py and write/sampler.py are being rewritten apart from this change (batched
-    # reading); their 6 local imports go with that rewrite, so they are counted but not yet held
-    # to the comment rule. Lower the ceiling as they go.
+    # Issue 11: at most 5, each with a comment saying why (only optional heavy dependencies);
+    # goalkit has none left today, and any that comes back must say why on its line or above.
     res = import_graph.analyse(ROOT)
-    assert res["function_local_imports"] <= 6, res["local"]
-    pending = {"goalkit/write/reader.py", "goalkit/write/sampler.py"}
+    assert res["function_local_imports"] <= 5, res["local"]
     for item in res["local"]:
-        if item["file"] in pending:
-            continue
         lines = (ROOT / item["file"]).read_text().splitlines()
         here, above = lines[item["line"] - 1], lines[item["line"] - 2]
         assert "#" in here or above.strip().startswith("#"), f"{item['file']}:{item['line']} needs a comment"

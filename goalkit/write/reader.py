@@ -13,6 +13,8 @@ from goalkit.errors import DatasetError
 from goalkit.write.chunkread import SplitColumns
 from goalkit.write.epochs import EpochSpec, iter_batches
 from goalkit.write.format import MATERIAL_COLUMNS, SPLITS, open_set_file
+from goalkit.write.resolve import open_logs_of, resolve_rows
+from goalkit.write.seal import read_attrs, split_group, split_rows
 
 
 class GoalSet:
@@ -42,8 +44,6 @@ class GoalSet:
     def __init__(self, path):
         self.path = Path(path)
         self.file = open_set_file(self.path)
-        from goalkit.write.seal import read_attrs
-
         try:
             self.stored = read_attrs(self.file, self.path)
         except DatasetError:
@@ -73,14 +73,10 @@ class GoalSet:
     def _group(self, split: str):
         if split not in SPLITS:
             raise DatasetError(f"unknown split {split!r}; splits are {', '.join(SPLITS)}", file=self.path)
-        from goalkit.write.seal import split_group
-
         return split_group(self.file, split, self.path)
 
     def rows(self, split: str = "train") -> int:
         """Number of rows in ``split``."""
-        from goalkit.write.seal import split_rows
-
         return split_rows(self.file, split, self.path)
 
     def columns(self, split: str = "train") -> list[str]:
@@ -139,11 +135,7 @@ class GoalSet:
         return out
 
     def _resolve(self, group, start, stop, names) -> dict:
-        from goalkit.write.resolve import resolve_rows
-
         if self._logs is None:
-            from goalkit.write.resolve import open_logs_of
-
             self._logs = open_logs_of(self)
         ep = group["source_episode"][start:stop]
         step = group["source_step"][start:stop]
