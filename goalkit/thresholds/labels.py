@@ -55,6 +55,9 @@ class LabelledPairs:
         Whether ``groups`` are real episodes.
     source : str
         Where the pairs came from, for messages.
+    mask : ndarray of uint8, shape (M, G), or None
+        The goal dimensions each pair is scored on: its episode's task mask when the recipe
+        has a ``[mask]`` table (:meth:`goalkit.masks.GoalMasks.task_mask`); None: every one.
     """
 
     achieved: np.ndarray
@@ -63,6 +66,7 @@ class LabelledPairs:
     groups: np.ndarray
     grouped: bool
     source: str = ""
+    mask: np.ndarray | None = None
 
     @property
     def size(self) -> int:
@@ -78,7 +82,17 @@ class LabelledPairs:
         """JSON-able summary."""
         return {"source": self.source, "pairs": self.size, "dim": self.dim,
                 "reached": int(self.reached.sum()), "grouped": self.grouped,
-                "episodes": int(np.unique(self.groups).size) if self.grouped else None}
+                "episodes": int(np.unique(self.groups).size) if self.grouped else None,
+                "masked": self.mask is not None}
+
+    def with_mask(self, mask) -> "LabelledPairs":
+        """These pairs scored on the goal dimensions of ``mask`` (uint8 (M, G), or None)."""
+        if mask is not None:
+            mask = np.asarray(mask, dtype=np.uint8)
+            if mask.shape != self.achieved.shape:
+                raise ValueError(f"expected a mask of shape {self.achieved.shape}, got {mask.shape}")
+        return LabelledPairs(self.achieved, self.goal, self.reached, self.groups, self.grouped,
+                             self.source, mask)
 
 
 def concat_pairs(parts: Sequence[LabelledPairs]) -> LabelledPairs:
@@ -91,7 +105,8 @@ def concat_pairs(parts: Sequence[LabelledPairs]) -> LabelledPairs:
         reached=np.concatenate([p.reached for p in parts]),
         groups=np.concatenate([p.groups for p in parts]),
         grouped=all(p.grouped for p in parts),
-        source=parts[0].source)
+        source=parts[0].source,
+        mask=None if any(p.mask is None for p in parts) else np.concatenate([p.mask for p in parts]))
 
 
 # ---- checking shared by both file kinds --------------------------------------------------
@@ -248,11 +263,12 @@ def _raise_bad_cell(path: Path, header: list[str]) -> None:
 
 
 # ---- labels from the logs themselves -----------------------------------------------------
-def pairs_from_success(episodes: EpisodeSet, goal_map) -> LabelledPairs:
+def pairs_from_success(episodes: EpisodeSet, goal_map, masks=None) -> LabelledPairs:
     """Label every transition by the log's own success flag against the log's task goal.
 
     Transition ``t`` gives the pair ``(phi(s_{t+1}), task_goal[t])`` labelled ``success[t]``;
-    its group is the episode id.
+    its group is the episode id. With ``masks`` (:class:`goalkit.masks.GoalMasks`) each pair
+    carries its episode's task mask (episodes without a task id: the table's ``others``).
 
     Parameters
     ----------
@@ -280,19 +296,26 @@ def pairs_from_success(episodes: EpisodeSet, goal_map) -> LabelledPairs:
         raise LabelError(f"expected task goals of width {goal_map.dim} (the goal map's dimension), got "
                          f"{tg.shape[1]}", file=src, key="task_goal")
     achieved = goal_map(episodes, episodes.next_state_rows())
-    groups = episodes.episode_ids[episodes.transition_episode()].astype(np.int64)
+    ep = episodes.transition_episode()
+    groups = episodes.episode_ids[ep].astype(np.int64)
+    mask = None
+    if masks is not None:
+        tasks = (np.full(ep.size, -1, np.int64) if episodes.task_ids is None
+                 else np.asarray(episodes.task_ids, dtype=np.int64)[ep])
+        mask = masks.task_mask(tasks)
     return LabelledPairs(achieved, tg, np.asarray(episodes.success).astype(bool), groups, True,
-                         episodes.source)
+                         episodes.source, mask)
 
 
-def pairs_from_logs(source, goal_map, *, max_transitions: int = 1_000_000, progress=None) -> LabelledPairs:
+def pairs_from_logs(source, goal_map, *, max_transitions: int = 1_000_000, progress=None,
+                    masks=None) -> LabelledPairs:
     """:func:`pairs_from_success` over a whole :class:`~goalkit.logs.episodes.LogSource`, by chunks.
 
     ``progress``, if given, is called with the number of transitions of each chunk read.
     """
     parts = []
     for chunk in iter_chunks(source, max_transitions):  # a loop over chunks
-        parts.append(pairs_from_success(chunk, goal_map))
+        parts.append(pairs_from_success(chunk, goal_map, masks))
         if progress is not None:
             progress(chunk.num_transitions)
     return concat_pairs(parts)

@@ -73,7 +73,8 @@ def _mask_lines(masks) -> list[str]:
     tasks = "; ".join(f"task {t}: {', '.join(map(str, e))}" for t, e in masks["tasks"].items()) or "none"
     others = "every dimension" if masks["others"] is None else ", ".join(map(str, masks["others"]))
     return [f"masks:      per task: {tasks}; other tasks: {others}; random share "
-            f"{_g(masks['random_share'])} (tuning pairs are scored on every goal dimension)"]
+            f"{_g(masks['random_share'])}",
+            "            labelled pairs are scored on their episode's task mask (no random masks)"]
 
 
 def _labelled(d: dict) -> list[str]:

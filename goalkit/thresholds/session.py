@@ -9,6 +9,11 @@
 * with ``from_success``, collects the labelled pairs ``(phi(s_{t+1}), task_goal[t],
   success[t])`` (:func:`goalkit.thresholds.labels.pairs_from_success`).
 
+With a ``[mask]`` table each labelled pair is scored on its episode's task mask only (the
+task table's entry for the episode's task id, or ``others``; never a random mask), so the
+swept distances are those of :meth:`goalkit.reward.RewardRule.distance` with that mask. Pairs
+from a labelled-pairs file find their task through their ``episode`` column.
+
 Goal vectors are cast to the recipe's ``[goal] dtype`` first, as the build does, so the
 distances are those the build would compute. With labels (a labelled-pairs file or the
 success flags) each candidate distance is tuned with a
@@ -293,6 +298,36 @@ def _rewarded_at(achieved, goal, strategy, rule, points: dict, names: dict) -> d
     return out
 
 
+def _file_pair_masks(pairs: LabelledPairs, source, masks, chunk_transitions: int):
+    """``pairs`` with each pair's episode task mask, looked up in the whole log; and a note or None.
+
+    Pairs without an episode column, or whose episode is not in the logs, get the table's
+    ``others`` mask (the note counts them).
+    """
+    tasks = np.full(pairs.size, -1, np.int64)
+    found = np.zeros(pairs.size, bool)
+    if pairs.grouped:
+        ids, tids = [], []
+        for a, b in chunk_bounds(source.lengths, chunk_transitions):  # a loop over chunks
+            chunk = source.read(a, b)
+            ids.append(np.asarray(chunk.episode_ids, np.int64))
+            tids.append(np.full(len(chunk.episode_ids), -1, np.int64) if chunk.task_ids is None
+                        else np.asarray(chunk.task_ids, np.int64))
+        ids, tids = np.concatenate(ids), np.concatenate(tids)
+        order = np.argsort(ids, kind="stable")
+        ids, tids = ids[order], tids[order]
+        at = np.minimum(np.searchsorted(ids, pairs.groups), max(len(ids) - 1, 0))
+        found = (ids[at] == pairs.groups) if len(ids) else found
+        tasks[found] = tids[at[found]]
+    missing = int(pairs.size - found.sum())
+    note = None
+    if missing:
+        why = "the pairs carry no episode column" if not pairs.grouped else "their episode is not in the logs"
+        note = (f"{missing} of {pairs.size} labelled pairs are scored with the [mask] table's mask of "
+                f"other tasks: {why}")
+    return pairs.with_mask(masks.task_mask(tasks)), note
+
+
 def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=(),
                 chooser: str = "max-f1", target=None, n_resamples: int = 1000,
                 max_transitions: int = MAX_TRANSITIONS, chunk_transitions: int = CHUNK_TRANSITIONS,
@@ -363,9 +398,9 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
         chunk = sub.read(a, b)
         parts.append(replace(chunk, frames=None))  # the diagnostics never look at camera frames
         if from_success:
-            p = pairs_from_success(chunk, gmap)
+            p = pairs_from_success(chunk, gmap, plan.masks)
             succ.append(LabelledPairs(_cast(p.achieved, gdtype), _cast(p.goal, gdtype), p.reached,
-                                      p.groups, True, p.source))
+                                      p.groups, True, p.source, p.mask))
         rows += _chunk_rows(plan, chunk, gdtype)
         if progress is not None:
             progress(chunk.num_transitions, total)
@@ -376,6 +411,10 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
 
     pairs = file_pairs if file_pairs is not None else (concat_pairs(succ) if from_success else None)
     candidates, winner, box, notes = [], None, None, []
+    if file_pairs is not None and plan.masks is not None:
+        pairs, note = _file_pair_masks(file_pairs, source, plan.masks, chunk_transitions)
+        if note:
+            notes.append(note)
     if pairs is not None:
         for n in names:
             rule = candidate_rule(recipe.reward, n, gmap.dim)

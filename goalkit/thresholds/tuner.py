@@ -93,7 +93,7 @@ class ThresholdTuner:
         check_chooser(self.chooser, self.target, self.placement)
         rule = self.rule
         rule.check_dim(pairs.dim)
-        d = rule.distance(pairs.achieved, pairs.goal)
+        d = rule.distance(pairs.achieved, pairs.goal, pairs.mask)  # masked pairs: kept dimensions only
         shift = shift_of(d) if is_region(rule) else 0.0
         if is_region(rule):  # signed distances: the sweep sees them shifted to >= 0
             d = sweep_distances(d, shift)
