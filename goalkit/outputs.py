@@ -519,6 +519,30 @@ class _Input:
                     self.files.setdefault(identity(s), p)
 
 
+
+#: The PNG file signature (ISO/IEC 15948, section 5.2).
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
+
+
+def is_png(path) -> bool:
+    """True when ``path`` is a regular file starting with the PNG signature (the "ours" test of plots)."""
+    try:
+        with os.fdopen(open_no_follow(path, os.O_RDONLY, 0), "rb") as f:
+            return f.read(len(PNG_SIGNATURE)) == PNG_SIGNATURE
+    except OSError:
+        return False
+
+
+def save_png(fig, path, replace: bool = False, what: str = "plot") -> Path:
+    """Write the matplotlib figure ``fig`` to the new file ``path`` (temporary name, then published).
+
+    An existing file is replaced only with ``replace`` and only if it is a PNG; the PNG carries
+    no software or time metadata, so the same figure gives the same bytes.
+    """
+    with output_file(path, replace=replace, ours=is_png, what=what) as f:
+        fig.savefig(f, format="png", metadata={"Software": None})
+    return Path(path)
+
 def check_no_overlap(inputs: Iterable, outputs: Iterable) -> None:
     """Refuse (one line, naming both paths) any output that is, or would touch, an input.
 

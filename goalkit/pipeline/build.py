@@ -48,7 +48,7 @@ from goalkit.pipeline.summary import SummaryBuilder
 from goalkit.pipeline.workers import LocalRunner
 from goalkit.pipeline.searchsetup import add_to_summary, search_provenance
 from goalkit.rows import SPLITS
-from goalkit.write.card import card_paths, check_card_outputs, write_card
+from goalkit.write.card import card_paths, check_card_outputs, graph_plot_path, write_card
 from goalkit.write.format import is_goal_set
 from goalkit.write.provenance import describe_files
 from goalkit.write.writer import OutputWriteError, SetWriter
@@ -331,7 +331,7 @@ def check_outputs(recipe, *, sharded: bool = False, replace: bool = False, sourc
     inputs = list(recipe.inputs()) + [("log file", f) for f in getattr(source, "files", None) or []]
     outputs = [("output", out)] + ([("build folder", folder_of(out))] if sharded else [])
     if card:
-        outputs += list(zip(("dataset card", "card plot"), card_paths(out)))
+        outputs += list(zip(("dataset card", "card plot"), card_paths(out))) + [("card plot", graph_plot_path(out))]
     check_no_overlap(inputs, outputs)
     refuse_existing(out, replace=replace, ours=is_goal_set, what="dataset")
     if card:

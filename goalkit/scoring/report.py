@@ -6,7 +6,7 @@ from pathlib import Path
 
 import numpy as np
 
-from goalkit.thresholds.plots import is_png, save_png
+from goalkit.outputs import is_png, save_png
 
 #: Plot files ``goalkit assess --plots DIR`` writes (those of the sections present).
 PLOT_NAMES = {"policy": "assess-action-error.png", "value": "assess-value.png"}

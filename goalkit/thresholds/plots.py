@@ -15,7 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
-from goalkit.outputs import open_no_follow, output_file
+from goalkit.outputs import is_png, save_png
 
 #: plot kind -> file name.
 FILE_NAMES = {
@@ -40,19 +40,8 @@ def _figure(width=5.0, height=4.0):
     return fig, ax
 
 
-#: The first bytes of every PNG file (ISO/IEC 15948, section 5.2).
-PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 LABELLED_KINDS = ("roc", "pr", "f1")
 DIAGNOSTIC_KINDS = ("step", "horizon", "other", "rewarded")
-
-
-def is_png(path) -> bool:
-    """True when ``path`` is a regular file starting with the PNG signature (the "ours" test of plots)."""
-    try:
-        with os.fdopen(open_no_follow(path, os.O_RDONLY, 0), "rb") as f:
-            return f.read(len(PNG_SIGNATURE)) == PNG_SIGNATURE
-    except OSError:
-        return False
 
 
 def plot_paths(out_dir, distances, labelled: bool, prefix: str = "") -> list[Path]:
@@ -67,17 +56,6 @@ def plot_paths(out_dir, distances, labelled: bool, prefix: str = "") -> list[Pat
     names = [f"{p}{FILE_NAMES[k]}" for p in sorted(prefixes) for k in LABELLED_KINDS] if labelled else []
     names += [f"{prefix}{FILE_NAMES[k]}" for k in DIAGNOSTIC_KINDS]
     return [out / n for n in names]
-
-
-def save_png(fig, path, replace: bool = False) -> Path:
-    """Write ``fig`` to the new file ``path`` (exclusive temporary name, then published).
-
-    An existing file is replaced only with ``replace`` and only if it is a PNG. The figures of
-    this module are laid out (``tight_layout``) when drawn, so no label or title is clipped.
-    """
-    with output_file(path, replace=replace, ours=is_png, what="plot") as f:
-        fig.savefig(f, format="png", metadata={"Software": None})
-    return Path(path)
 
 
 def _target(out_dir, kind, prefix) -> Path:

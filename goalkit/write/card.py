@@ -19,15 +19,14 @@ from pathlib import Path
 
 import numpy as np
 
-from goalkit.outputs import open_no_follow, output_file, refuse_existing
+from goalkit.outputs import is_png, open_no_follow, output_file, refuse_existing
 from goalkit.rows import SPLITS
+from goalkit.write.graphplot import has_graph_steps, plot_graph_distance
 from goalkit.write.info import reward_text, set_facts, widths_text
 from goalkit.write.reader import GoalSet
 
 #: The card's first line: what makes an existing Markdown file "ours" (replaceable with --replace).
 MARKER = "<!-- goalkit dataset card -->"
-#: The PNG file signature (ISO/IEC 15948, section 5.2).
-PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 #: Goals per split drawn for the coverage plot (evenly spaced rows).
 COVERAGE_ROWS = 2000
 
@@ -36,6 +35,12 @@ def card_paths(set_path) -> tuple[Path, Path]:
     """The card's Markdown file and its coverage PNG for a set at ``set_path``."""
     p = Path(set_path)
     return p.with_name(f"{p.name}.card.md"), p.with_name(f"{p.name}.card-goals.png")
+
+
+def graph_plot_path(set_path) -> Path:
+    """The card's PNG of graph steps against goal distance (sets built with a ``[graph]`` table)."""
+    p = Path(set_path)
+    return p.with_name(f"{p.name}.card-graph.png")
 
 
 def _starts_with(path, prefix: bytes) -> bool:
@@ -51,16 +56,13 @@ def is_card(path) -> bool:
     return _starts_with(path, MARKER.encode("utf-8"))
 
 
-def is_png(path) -> bool:
-    """True when ``path`` is a regular file starting with the PNG signature."""
-    return _starts_with(path, PNG_SIGNATURE)
-
 
 def check_card_outputs(set_path, replace: bool = False) -> None:
     """Refuse, before any work, existing card files (unless ``replace`` and they are a card / PNG)."""
     md, png = card_paths(set_path)
     refuse_existing(md, replace=replace, ours=is_card, what="dataset card")
     refuse_existing(png, replace=replace, ours=is_png, what="card plot")
+    refuse_existing(graph_plot_path(set_path), replace=replace, ours=is_png, what="card plot")
 
 
 # ---- coverage --------------------------------------------------------------------------------
@@ -146,7 +148,7 @@ def _share(n: int, of: int) -> str:
     return f"{n / of:.2%}" if of else "-"
 
 
-def render(facts: dict, png_name: str, coverage: dict | None = None) -> str:
+def render(facts: dict, png_name: str, coverage: dict | None = None, graph_png: str | None = None) -> str:
     """The card's Markdown text for :func:`~goalkit.write.info.set_facts` facts.
 
     Parameters
@@ -235,6 +237,12 @@ def render(facts: dict, png_name: str, coverage: dict | None = None) -> str:
               "Validation goals far from every train goal are goals a policy has not been trained near.", ""]
     else:
         L += ["No coverage plot was drawn.", ""]
+    if graph_png is not None:
+        L += ["## Graph distances", "",
+              f"![Graph steps against goal distance per strategy]({graph_png})", "",
+              "Steps from s_t+1 to the goal state in the logs' own graph (logged transitions and joins "
+              "between episodes; docs/graph.md) against the goal distance of the reward rule, for a "
+              "sample of rows per strategy. Rows beyond the graph's horizon are counted in each title.", ""]
     # limits
     lim = facts["limits"]
     L += ["## Known limits", ""]
@@ -292,10 +300,14 @@ def write_card(set_path, *, replace: bool = False, plot: bool = True) -> list[Pa
             fig.savefig(f, format="png", metadata={"Software": None})
         written.append(png)
         coverage = {"rows": {s: len(goals[s]) for s in SPLITS}, "ratio": ratio.tolist()}
+    graph_png = None
+    if plot and has_graph_steps(set_path):
+        graph_png = plot_graph_distance(set_path, graph_plot_path(set_path), replace=replace)
+        written.append(graph_png)
     with output_file(md, replace=replace, ours=is_card, what="dataset card") as f:
-        f.write(render(facts, png.name, coverage).encode("utf-8"))
+        f.write(render(facts, png.name, coverage, None if graph_png is None else graph_png.name).encode("utf-8"))
     return [md, *written]
 
 
 __all__ = ["COVERAGE_ROWS", "MARKER", "card_paths", "check_card_outputs", "coverage_goals", "coverage_rows",
-           "coverage_figure", "is_card", "is_png", "project", "render", "write_card"]
+           "coverage_figure", "graph_plot_path", "is_card", "is_png", "project", "render", "write_card"]

@@ -22,7 +22,7 @@ from goalkit.demo import make_demo
 from goalkit.pipeline.build import build
 from goalkit.pipeline.plan import make_plan
 from goalkit.pipeline.recipe import load_recipe
-from goalkit.thresholds.graphplot import plot_graph_distance, read_graph_columns
+from goalkit.write.graphplot import plot_graph_distance, read_graph_columns
 from goalkit.write.verify import verify_set
 
 RADIUS = 0.15
@@ -194,3 +194,13 @@ def test_graph_distance_png(demo, tmp_path):
     assert set(np.unique(cols["strategy"]).tolist()) == {2, 6}
     with pytest.raises(Exception):
         plot_graph_distance(result.path, tmp_path / "graph.png")   # never over an existing file
+
+
+def test_the_card_of_a_graph_set_links_its_graph_plot(demo):
+    # a set built with [graph] gets NAME.card-graph.png beside it, linked from its card
+    d, recipe, result = demo
+    png = result.path.with_name(f"{result.path.name}.card-graph.png")
+    card = result.path.with_name(f"{result.path.name}.card.md")
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"   # PNG signature (ISO/IEC 15948, 5.2)
+    text = card.read_text()
+    assert "## Graph distances" in text and f"]({png.name})" in text

@@ -13,11 +13,17 @@ from pathlib import Path
 import numpy as np
 
 from goalkit.errors import DatasetError
-from goalkit.thresholds.plots import save_png
+from goalkit.outputs import save_png
 from goalkit.write.format import SPLITS, open_set_file
 
 #: Rows read per split at most.
 SAMPLE_ROWS = 20_000
+
+
+def has_graph_steps(path) -> bool:
+    """True when the set at ``path`` stores a ``graph_steps`` column (built with ``[graph]``)."""
+    with open_set_file(path) as f:
+        return all(s in f and "graph_steps" in f[s] for s in SPLITS)
 
 
 def read_graph_columns(path, sample: int = SAMPLE_ROWS) -> dict:
@@ -72,4 +78,4 @@ def plot_graph_distance(path, out, *, replace: bool = False, sample: int = SAMPL
                title=f"{name}: {int(fin.sum())} rows, {int((g == -2).sum())} beyond horizon")
         ax.title.set_fontsize(8)
     fig.tight_layout()
-    return save_png(fig, Path(out), replace)
+    return save_png(fig, Path(out), replace, what="graph plot")
