@@ -126,7 +126,10 @@ class ThresholdTuner:
         elif is_box:
             tol = np.asarray(rule.threshold, dtype=np.float64)
             self.suggested_rule_ = rule.replace(threshold=tuple((tol * self.choice_.threshold).tolist()))
-            self.box_ = suggest_box(pairs.achieved, pairs.goal, y, method=self.box_method,
+            # a dimension a pair's mask leaves out never constrains it: its difference counts as 0
+            achieved = (pairs.achieved if pairs.mask is None
+                        else np.where(pairs.mask.astype(bool), pairs.achieved, pairs.goal))
+            self.box_ = suggest_box(achieved, pairs.goal, y, method=self.box_method,
                                     recall=self.box_recall)
         else:
             self.suggested_rule_ = rule.replace(threshold=self.choice_.threshold)

@@ -52,3 +52,29 @@ def test_dimension_where_no_reached_pair_differs_gets_a_fallback():
     assert s.recall == 1.0 and s.false_accept == 0.0
     with pytest.raises(TuningError, match="at least one pair labelled reached"):
         suggest_box(a, np.zeros_like(a), [0, 0, 0, 0])
+
+
+def test_a_masked_out_dimension_never_widens_the_suggested_box():
+    # Invented pairs: dimension 0 decides success, dimension 1 is noise that the tasks'
+    # masks leave out. With the masks, a left-out dimension's difference counts as 0, so the
+    # suggestion equals suggest_box run directly on pairs with that difference zeroed.
+    from goalkit.reward import RewardRule
+    from goalkit.thresholds.labels import LabelledPairs
+    from goalkit.thresholds.tuner import ThresholdTuner
+
+    rng = np.random.default_rng(4)
+    m = 400
+    goal = np.zeros((m, 2))
+    achieved = np.column_stack([rng.uniform(0, 0.2, m), rng.normal(0, 1.0, m)])
+    reached = achieved[:, 0] <= 0.05
+    mask = np.tile(np.array([1, 0], np.uint8), (m, 1))
+    pairs = LabelledPairs(achieved, goal, reached, np.arange(m), False, "test", mask)
+    rule = RewardRule("box", (0.05, 0.05))
+    tuned = ThresholdTuner(rule, n_resamples=50).fit(pairs)
+    zeroed = achieved.copy()
+    zeroed[:, 1] = 0.0
+    expected = suggest_box(zeroed, goal, reached, method="recall", recall=0.95)
+    assert tuned.box_.tolerances == expected.tolerances
+    unmasked = ThresholdTuner(rule, n_resamples=50).fit(
+        LabelledPairs(achieved, goal, reached, np.arange(m), False, "test"))
+    assert unmasked.box_.tolerances[1] != tuned.box_.tolerances[1]   # the noise did widen it there
