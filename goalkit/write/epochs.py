@@ -21,7 +21,8 @@ Three ways to shuffle (docs/dataset.md, "Shuffled epochs"):
   cost of decoding every chunk once per pass.
 
 Sharding: an epoch is one sequence of the split's rows (the permutation, or the pieces in their
-epoch order). With ``count`` shards, shard ``index`` takes positions ``[index * q, (index + 1) * q)``
+epoch order: a random order of mirrored pairs of pieces, so that a shard's pieces pair up but for
+the ones at its two ends, which are sliced among its pools). With ``count`` shards, shard ``index`` takes positions ``[index * q, (index + 1) * q)``
 of it, ``q = rows // count``; the ``rows % count`` rows at the end of the sequence (different rows
 each epoch) are left out of that epoch (``remainder="drop"``), or, with ``remainder="pad"``,
 ``q = ceil(rows / count)`` and the sequence continues from its start, so a few rows appear twice.
@@ -147,7 +148,15 @@ def pooled_plan(spec: EpochSpec, piece_rows: int, pool_rows: int, shuffle: bool 
     if shuffle and pool_rows >= 3:
         piece_rows = min(piece_rows, pool_rows // 3)  # room for a mirrored pair and slices in a pool
     starts = np.arange(0, spec.rows, piece_rows, dtype=np.int64)
-    order = spec.perm(_PIECES, len(starts)) if shuffle else np.arange(len(starts))
+    if shuffle:
+        # the epoch's sequence of pieces is a random order of mirrored pairs (piece i with piece
+        # w - 1 - i of the w whole ones), the odd middle piece and the short last piece, so that a
+        # shard's share of it is made of whole pairs but for the pieces at its two ends
+        w = spec.rows // piece_rows
+        units = [[i, w - 1 - i] for i in range(w // 2)] + [[w // 2]] * (w % 2) + [[w]] * (len(starts) > w)
+        order = np.array([i for u in spec.perm(_PIECES, len(units)).tolist() for i in units[u]], dtype=np.int64)
+    else:
+        order = np.arange(len(starts))
     lens = np.minimum(starts + piece_rows, spec.rows) - starts
     seq_starts = np.cumsum(lens[order]) - lens[order]   # position of each ordered piece in the sequence
     segments = []
@@ -182,20 +191,22 @@ def _mirrored_pools(spec, segments, piece_rows, pool_rows):
     uncorrelated across a change of pool. A short segment is read once per pool (its chunk
     decoded once per pool); every other chunk once per epoch.
     """
-    whole = [seg for seg in segments if seg[1] - seg[0] == piece_rows]
-    short = [seg for seg in segments if seg[1] - seg[0] != piece_rows]
-    w = len(whole)
-    units = [[whole[i], whole[w - 1 - i]] for i in range(w // 2)]
+    w = spec.rows // piece_rows
+    whole = {seg[0] // piece_rows for seg in segments if seg[1] - seg[0] == piece_rows}
+    units = [[(i * piece_rows, (i + 1) * piece_rows), ((w - 1 - i) * piece_rows, (w - i) * piece_rows)]
+             for i in sorted(whole) if i < w - 1 - i and w - 1 - i in whole]
     units = [units[i] for i in spec.perm(_STRATUM, len(units), spec.index, spec.count).tolist()]
-    if w % 2:
-        units.append([whole[w // 2]])
+    if w % 2 and w // 2 in whole:
+        units.append([(w // 2 * piece_rows, (w // 2 + 1) * piece_rows)])
+    paired = {seg for u in units for seg in u}
+    short = [seg for seg in segments if seg not in paired]  # short pieces and whole ones without their mirror
     if not units:
         return []
-    whole_rows = w * piece_rows
+    whole_rows = sum(b - a for u in units for a, b in u)
     for n in range(-(-len(units) * 2 * piece_rows // pool_rows), len(units) + 1):
         n = max(n, 1)
         pools = [[seg for u in units[p::n] for seg in u] for p in range(n)]
-        mass = np.array([len(p) * piece_rows for p in pools], dtype=np.int64)
+        mass = np.array([sum(b - a for a, b in p) for p in pools], dtype=np.int64)
         # each short segment's rows cut at the pools' cumulative shares of the whole rows
         cuts = np.concatenate([[0], np.cumsum(mass)]) / whole_rows
         extra = np.zeros(n, dtype=np.int64)

@@ -263,3 +263,19 @@ def test_pooled_epoch_few_chunks_a_pool_lag1_is_noise(small_set):
     got, expected, lag1, batches = quality(small_set, 16, shuffle="pooled", seed=5, memory_budget=1600 * 8)
     assert abs(lag1) < 4 / np.sqrt(batches)
     assert got / expected > 0.4  # measured 0.46: a pool holds about a quarter of the 30 episodes
+
+
+@pytest.mark.parametrize("chunk,count", [(65536, 2), (8192, 4)])
+def test_pooled_plan_shards_lag1_is_noise(chunk, count):
+    # each shard of the same split, with a quarter of the split's rows split among the shards
+    from goalkit.write.epochs import _POOL
+
+    rows = 910870
+    for index in range(count):
+        spec = EpochSpec(rows, 1, 0, index, count)
+        plan = pooled_plan(spec, chunk, rows // 4 // count)
+        order = np.concatenate([np.concatenate([np.arange(a, b) for a, b in r])[
+            spec.perm(_POOL, sum(b - a for a, b in r), index, count, p)] for p, r in enumerate(plan)])
+        means = order[:len(order) // 256 * 256].reshape(-1, 256).mean(axis=1) / rows
+        lag1 = float(np.corrcoef(means[:-1], means[1:])[0, 1])
+        assert abs(lag1) < 4 / np.sqrt(len(means)), (index, lag1)
