@@ -22,7 +22,8 @@ Three ways to shuffle (docs/dataset.md, "Shuffled epochs"):
 
 Sharding: an epoch is one sequence of the split's rows (the permutation, or the pieces in their
 epoch order: a random order of mirrored pairs of pieces, so that a shard's pieces pair up but for
-the ones at its two ends, which are sliced among its pools). With ``count`` shards, shard ``index`` takes positions ``[index * q, (index + 1) * q)``
+the ones at its two ends, which are sliced among its pools).
+With ``count`` shards, shard ``index`` takes positions ``[index * q, (index + 1) * q)``
 of it, ``q = rows // count``; the ``rows % count`` rows at the end of the sequence (different rows
 each epoch) are left out of that epoch (``remainder="drop"``), or, with ``remainder="pad"``,
 ``q = ceil(rows / count)`` and the sequence continues from its start, so a few rows appear twice.
