@@ -8,7 +8,7 @@ about 1M rows), measured in one run on the same file, interleaved, medians of ``
 * ``batches(shuffle=True)`` with the default memory budget (the split fits: full permutation);
   target at least 1.0x the baseline;
 * ``batches(shuffle=True)`` with a memory budget of a quarter of the columns' bytes (the set is
-  four times the budget: stratified pools of stored chunks); target at least 0.5x the baseline;
+  four times the budget: pools of mirrored pairs of stored chunks); target at least 0.5x the baseline;
 * for reference, ``shuffle="passes"`` with the same quarter budget (the exact permutation, every
   chunk decoded once per pass).
 

@@ -6,22 +6,24 @@ Three ways to shuffle (docs/dataset.md, "Shuffled epochs"):
   stored chunk decoded once) and batches are consecutive slices of a permutation of the whole
   split, so a batch's rows are a uniform draw without replacement.
 * **pooled**: otherwise the split is cut into pieces (its stored chunks, or shorter pieces when
-  one chunk is larger than the budget). The pieces of an epoch are put in a random order and the
-  shard's share of them is dealt into pools of at most the budget's rows, *stratified*: sorted by
-  position, the pieces form strata of as many pieces as there are pools; strata are paired
-  mirrored about the middle (the k-th piece of one goes to the pool that gets the (n-1-k)-th of
-  the other) and each gives each pool one piece, in a random order; the pieces left over go,
-  outermost first, where they bring a pool's mean position closest to the middle. Every pool
-  spans the split with its mean position near the middle; rows are drawn without replacement
-  across it, and
-  a batch that straddles two pools takes its last rows from the next one. Every chunk is decoded
-  once; how close a batch comes to an independent draw depends on how many episodes a pool holds.
+  a chunk is over a third of the budget's rows). Sorted by position, the whole pieces pair
+  mirrored (first with last, second with second-to-last, ...), so every pair has the same mean
+  position; the pairs, in a random order, are dealt round-robin into the fewest pools of at most
+  the budget's rows, and each short piece (the split's last one, a shard's cut ones) is sliced
+  among the pools in proportion to their rows. So every pool has the shard's mean position, and
+  consecutive batches' mean positions are uncorrelated even when a pool holds two or three
+  chunks. Rows are drawn without replacement across a pool; a batch that straddles two pools
+  takes its last rows from the next one. Every chunk is decoded once, except a short piece's
+  chunk, decoded once per pool; how close a batch comes to an independent draw depends on how
+  many episodes a pool holds.
 * **passes**: the permutation of *full*, cut into passes of at most the budget's rows; each pass
   reads the whole split and keeps its own rows. Batches are exactly those of *full*, at the
   cost of decoding every chunk once per pass.
 
 Sharding: an epoch is one sequence of the split's rows (the permutation, or the pieces in their
-epoch order). With ``count`` shards, shard ``index`` takes positions ``[index * q, (index + 1) * q)``
+epoch order: a random order of mirrored pairs of pieces, so that a shard's pieces pair up but for
+the ones at its two ends, which are sliced among its pools).
+With ``count`` shards, shard ``index`` takes positions ``[index * q, (index + 1) * q)``
 of it, ``q = rows // count``; the ``rows % count`` rows at the end of the sequence (different rows
 each epoch) are left out of that epoch (``remainder="drop"``), or, with ``remainder="pad"``,
 ``q = ceil(rows / count)`` and the sequence continues from its start, so a few rows appear twice.
@@ -142,9 +144,20 @@ def pooled_plan(spec: EpochSpec, piece_rows: int, pool_rows: int, shuffle: bool 
     pool_rows : int
         Rows one pool may hold.
     """
-    piece_rows = max(1, min(int(piece_rows), int(pool_rows)))
+    pool_rows = int(pool_rows)
+    piece_rows = max(1, min(int(piece_rows), pool_rows))
+    if shuffle and pool_rows >= 3:
+        piece_rows = min(piece_rows, pool_rows // 3)  # room for a mirrored pair and slices in a pool
     starts = np.arange(0, spec.rows, piece_rows, dtype=np.int64)
-    order = spec.perm(_PIECES, len(starts)) if shuffle else np.arange(len(starts))
+    if shuffle:
+        # the epoch's sequence of pieces is a random order of mirrored pairs (piece i with piece
+        # w - 1 - i of the w whole ones), the odd middle piece and the short last piece, so that a
+        # shard's share of it is made of whole pairs but for the pieces at its two ends
+        w = spec.rows // piece_rows
+        units = [[i, w - 1 - i] for i in range(w // 2)] + [[w // 2]] * (w % 2) + [[w]] * (len(starts) > w)
+        order = np.array([i for u in spec.perm(_PIECES, len(units)).tolist() for i in units[u]], dtype=np.int64)
+    else:
+        order = np.arange(len(starts))
     lens = np.minimum(starts + piece_rows, spec.rows) - starts
     seq_starts = np.cumsum(lens[order]) - lens[order]   # position of each ordered piece in the sequence
     segments = []
@@ -160,41 +173,54 @@ def pooled_plan(spec: EpochSpec, piece_rows: int, pool_rows: int, shuffle: bool 
     if not segments:
         return []
     per_pool = max(1, pool_rows // piece_rows)
-    n_pools = -(-len(segments) // per_pool)
     if not shuffle:
+        n_pools = -(-len(segments) // per_pool)
         return [segments[p * per_pool:(p + 1) * per_pool] for p in range(n_pools)]
-    segments.sort()
-    pools = [[] for _ in range(n_pools)]
-    # Whole pieces in strata of n, paired mirrored about the middle: the k-th piece of the j-th
-    # stratum from the start goes to pool sigma[k], of the j-th from the end to pool
-    # sigma[n - 1 - k]. What is left (an odd stratum, the pieces over, short pieces) is dealt one
-    # piece at a time, outermost first, to the pool with room whose mean position it brings
-    # closest to the middle. So every pool spans the split with its mean position near the middle.
-    n = n_pools
-    whole = [seg for seg in segments if seg[1] - seg[0] == piece_rows]
-    pairs = len(whole) // n // 2
-    for j in range(pairs):
-        sigma = spec.perm(_STRATUM, n, spec.index, spec.count, j).tolist()
-        for k in range(n):
-            pools[sigma[k]].append(whole[j * n + k])
-            pools[sigma[n - 1 - k]].append(whole[len(whole) - (j + 1) * n + k])
-    paired = set(whole[:pairs * n] + whole[len(whole) - pairs * n:])
-    middle = (segments[0][0] + segments[-1][1]) / 2
-    rest = sorted((seg for seg in segments if seg not in paired), key=lambda seg: -abs(sum(seg) / 2 - middle))
-    tie = spec.perm(_STRATUM, n, spec.index, spec.count, pairs)
-    mass = np.array([sum(b - a for a, b in p) for p in pools], dtype=np.float64)
-    moment = np.array([sum((b - a) * (a + b) / 2 for a, b in p) for p in pools], dtype=np.float64)
-    count = np.array([len(p) for p in pools])
-    for a, b in rest:
-        w = b - a
-        off = np.abs((moment + w * (a + b) / 2) / (mass + w) - middle)
-        off[count >= per_pool] = np.inf
-        best = int(tie[np.argmin(off[tie])])
-        pools[best].append((a, b))
-        mass[best] += w
-        moment[best] += w * (a + b) / 2
-        count[best] += 1
-    return [sorted(p) for p in pools if p]
+    return _mirrored_pools(spec, sorted(segments), piece_rows, pool_rows) or \
+        [[segments[i]] for i in spec.perm(_STRATUM, len(segments), spec.index, spec.count).tolist()]
+
+
+def _mirrored_pools(spec, segments, piece_rows, pool_rows):
+    """Pools whose mean positions are all the same (empty when they cannot fit ``pool_rows``).
+
+    Sorted by position, the whole pieces pair mirrored (the i-th from the start with the i-th from
+    the end; an odd one in the middle stays alone): every pair's mean position is the same. The
+    pairs, in a random order, are dealt round-robin to the fewest pools that hold them, and every
+    short segment (the split's last piece, a shard's cut pieces) is sliced among the pools in
+    proportion to their whole rows, so every pool has the same mean position as the whole shard
+    (exactly when the shard is the whole split), and consecutive batches' mean positions are
+    uncorrelated across a change of pool. A short segment is read once per pool (its chunk
+    decoded once per pool); every other chunk once per epoch.
+    """
+    w = spec.rows // piece_rows
+    whole = {seg[0] // piece_rows for seg in segments if seg[1] - seg[0] == piece_rows}
+    units = [[(i * piece_rows, (i + 1) * piece_rows), ((w - 1 - i) * piece_rows, (w - i) * piece_rows)]
+             for i in sorted(whole) if i < w - 1 - i and w - 1 - i in whole]
+    units = [units[i] for i in spec.perm(_STRATUM, len(units), spec.index, spec.count).tolist()]
+    if w % 2 and w // 2 in whole:
+        units.append([(w // 2 * piece_rows, (w // 2 + 1) * piece_rows)])
+    paired = {seg for u in units for seg in u}
+    short = [seg for seg in segments if seg not in paired]  # short pieces and whole ones without their mirror
+    if not units:
+        return []
+    whole_rows = sum(b - a for u in units for a, b in u)
+    for n in range(-(-len(units) * 2 * piece_rows // pool_rows), len(units) + 1):
+        n = max(n, 1)
+        pools = [[seg for u in units[p::n] for seg in u] for p in range(n)]
+        mass = np.array([sum(b - a for a, b in p) for p in pools], dtype=np.int64)
+        # each short segment's rows cut at the pools' cumulative shares of the whole rows
+        cuts = np.concatenate([[0], np.cumsum(mass)]) / whole_rows
+        extra = np.zeros(n, dtype=np.int64)
+        slices = [[] for _ in range(n)]
+        for a, b in short:
+            edges = a + np.round(cuts * (b - a)).astype(np.int64)
+            for p in range(n):
+                if edges[p + 1] > edges[p]:
+                    slices[p].append((int(edges[p]), int(edges[p + 1])))
+                    extra[p] += edges[p + 1] - edges[p]
+        if int((mass + extra).max()) <= pool_rows:
+            return [sorted(pools[p] + slices[p]) for p in range(n)]
+    return []
 
 
 def iter_batches(reader, spec: EpochSpec, batch_size: int, shuffle, memory_budget: int | None = None,

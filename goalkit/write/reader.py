@@ -155,7 +155,7 @@ class GoalSet:
             Columns to read (default: all, as :meth:`read`).
         shuffle : bool or {"auto", "full", "pooled"}
             ``False``: storage order. ``True`` / ``"auto"``: a permutation of the whole split
-            (``"full"``) when this shard's rows fit in ``memory_budget``, otherwise stratified pools
+            (``"full"``) when this shard's rows fit in ``memory_budget``, otherwise pools of mirrored pairs
             of stored chunks (``"pooled"``); see :mod:`goalkit.write.epochs`.
         seed, epoch : int
             The order is a pure function of (seed, epoch, shard).
