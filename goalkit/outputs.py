@@ -524,13 +524,18 @@ class _Input:
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
 
-def is_png(path) -> bool:
-    """True when ``path`` is a regular file starting with the PNG signature (the "ours" test of plots)."""
+def starts_with(path, prefix: bytes) -> bool:
+    """True when ``path`` is a regular file (no link followed) whose first bytes are ``prefix``."""
     try:
         with os.fdopen(open_no_follow(path, os.O_RDONLY, 0), "rb") as f:
-            return f.read(len(PNG_SIGNATURE)) == PNG_SIGNATURE
+            return f.read(len(prefix)) == prefix
     except OSError:
         return False
+
+
+def is_png(path) -> bool:
+    """True when ``path`` is a regular file starting with the PNG signature (the "ours" test of plots)."""
+    return starts_with(path, PNG_SIGNATURE)
 
 
 def save_png(fig, path, replace: bool = False, what: str = "plot") -> Path:

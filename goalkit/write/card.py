@@ -14,12 +14,12 @@ machine detail, so the same set gives the same card bytes with one matplotlib.
 
 from __future__ import annotations
 
-import os
+import json
 from pathlib import Path
 
 import numpy as np
 
-from goalkit.outputs import is_png, open_no_follow, output_file, refuse_existing
+from goalkit.outputs import is_png, output_file, refuse_existing, starts_with
 from goalkit.rows import SPLITS
 from goalkit.write.graphplot import has_graph_steps, plot_graph_distance
 from goalkit.write.info import reward_text, set_facts, widths_text
@@ -43,17 +43,9 @@ def graph_plot_path(set_path) -> Path:
     return p.with_name(f"{p.name}.card-graph.png")
 
 
-def _starts_with(path, prefix: bytes) -> bool:
-    try:
-        with os.fdopen(open_no_follow(path, os.O_RDONLY, 0), "rb") as f:
-            return f.read(len(prefix)) == prefix
-    except OSError:
-        return False
-
-
 def is_card(path) -> bool:
     """True when ``path`` is a regular file starting with the card's marker line."""
-    return _starts_with(path, MARKER.encode("utf-8"))
+    return starts_with(path, MARKER.encode("utf-8"))
 
 
 
@@ -265,8 +257,6 @@ def render(facts: dict, png_name: str, coverage: dict | None = None, graph_png: 
 
 
 def _json(value) -> str:
-    import json
-
     return json.dumps(value, sort_keys=True)
 
 
