@@ -124,12 +124,12 @@ class SplitColumns:
         for name, ds in self.datasets.items():
             dest = np.empty((total, *ds.shape[1:]), dtype=ds.dtype)
             out[name] = dest
+            if self._fast[name]:
+                jobs += self._chunk_jobs(ds, dest, ranges)
+                continue
             at = 0
             for a, b in ranges:
-                if self._fast[name]:
-                    jobs += self._chunk_jobs(ds, dest, at, a, b)
-                else:
-                    ds.read_direct(dest, np.s_[a:b], np.s_[at:at + b - a])
+                ds.read_direct(dest, np.s_[a:b], np.s_[at:at + b - a])
                 at += b - a
         return ranges, out, jobs
 
@@ -149,22 +149,30 @@ class SplitColumns:
         """Rows ``start .. stop - 1``."""
         return self.read_ranges([(start, min(stop, self.rows))])
 
-    def _chunk_jobs(self, ds, dest, at, a, b) -> list:
+    def _chunk_jobs(self, ds, dest, ranges) -> list:
+        """One job per stored chunk the ranges touch: the chunk inflated once, copied to every
+        place the ranges put its rows (several ranges may share a chunk)."""
         n = int(ds.chunks[0])
         tail = ds.shape[1:]
         per_row = int(np.prod(tail, dtype=np.int64))
         size = ds.dtype.itemsize
+        spans = {}  # chunk start -> [(destination rows, first row, end row)]
+        at = 0
+        for a, b in ranges:
+            for c0 in range(a - a % n, b, n):
+                lo, hi = max(a, c0), min(b, c0 + n)
+                spans.setdefault(c0, []).append((np.s_[at + lo - a:at + hi - a], lo, hi))
+            at += b - a
         jobs = []
         pool = self._executor()
-        for c0 in range(a - a % n, b, n):
-            lo, hi = max(a, c0), min(b, c0 + n)
-            rows = np.s_[at + lo - a:at + hi - a]
+        for c0, parts in spans.items():
             mask, stored = ds.id.read_direct_chunk((c0,) + (0,) * len(tail))
             if mask:  # a filter was skipped for this chunk: let HDF5 decode it
-                ds.read_direct(dest, np.s_[lo:hi], rows)
+                for rows, lo, hi in parts:
+                    ds.read_direct(dest, np.s_[lo:hi], rows)
                 continue
-            jobs.append(pool.submit(_inflate_into, stored, dest[rows], size, n * per_row, (lo - c0) * per_row,
-                                    (hi - c0) * per_row))
+            targets = [(dest[rows], (lo - c0) * per_row, (hi - c0) * per_row) for rows, lo, hi in parts]
+            jobs.append(pool.submit(_inflate_into, stored, targets, size, n * per_row))
         return jobs
 
     def close(self) -> None:
@@ -174,15 +182,17 @@ class SplitColumns:
         self._pool = None
 
 
-def _inflate_into(stored: bytes, target: np.ndarray, size: int, elements: int, e0: int, e1: int) -> None:
+def _inflate_into(stored: bytes, targets, size: int, elements: int) -> None:
+    """Inflate one chunk and copy elements ``e0 .. e1 - 1`` into each ``(target, e0, e1)``."""
     raw = np.frombuffer(_inflate(stored, elements * size), dtype=np.uint8)
     if raw.size != elements * size:
         raise DatasetError(f"a stored chunk inflates to {raw.size} bytes, expected {elements * size}")
-    flat = target.reshape(-1).view(np.uint8)
-    if size == 1:
-        flat[:] = raw[e0:e1]
-    else:
-        flat.reshape(-1, size)[:] = raw.reshape(size, elements)[:, e0:e1].T
+    for target, e0, e1 in targets:
+        flat = target.reshape(-1).view(np.uint8)
+        if size == 1:
+            flat[:] = raw[e0:e1]
+        else:
+            flat.reshape(-1, size)[:] = raw.reshape(size, elements)[:, e0:e1].T
 
 
 def _inflate(stored: bytes, size: int):

@@ -15,7 +15,9 @@ Three ways to shuffle (docs/dataset.md, "Shuffled epochs"):
   chunks. Rows are drawn without replacement across a pool; a batch that straddles two pools
   takes its last rows from the next one. Every chunk is decoded once, except a short piece's
   chunk, decoded once per pool; how close a batch comes to an independent draw depends on how
-  many episodes a pool holds.
+  many episodes a pool holds. When a shard's pieces do not pair (tight shards: a few stored
+  chunks a shard), every piece is cut into ``2n`` slices and each of the ``n`` pools takes a
+  mirrored two of every piece (:func:`_sliced_pools`), so pools still share the shard's mean.
 * **passes**: the permutation of *full*, cut into passes of at most the budget's rows; each pass
   reads the whole split and keeps its own rows. Batches are exactly those of *full*, at the
   cost of decoding every chunk once per pass.
@@ -176,8 +178,42 @@ def pooled_plan(spec: EpochSpec, piece_rows: int, pool_rows: int, shuffle: bool 
     if not shuffle:
         n_pools = -(-len(segments) // per_pool)
         return [segments[p * per_pool:(p + 1) * per_pool] for p in range(n_pools)]
-    return _mirrored_pools(spec, sorted(segments), piece_rows, pool_rows) or \
-        [[segments[i]] for i in spec.perm(_STRATUM, len(segments), spec.index, spec.count).tolist()]
+    return _mirrored_pools(spec, sorted(segments), piece_rows, pool_rows) or _sliced_pools(sorted(segments), pool_rows)
+
+
+def _sliced_pools(segments, pool_rows):
+    """Pools that each hold a mirrored share of every segment (when whole pieces cannot pair).
+
+    With ``n`` pools, each segment is cut into ``2n`` near-equal slices and pool ``p`` takes
+    slices ``p`` and ``2n - 1 - p``: symmetric about the segment's middle, so every pool has the
+    shard's mean position and spans all of its segments (a shard that holds only a few stored
+    chunks of a tight split still mixes all of them in every pool). ``n`` is the fewest pools of
+    at most ``pool_rows`` rows; each touched chunk is decoded once per pool, so about
+    ``rows / pool_rows + 1`` times an epoch, which is small exactly when this plan is used.
+    """
+    total = sum(b - a for a, b in segments)
+    for n in range(max(1, -(-total // pool_rows)), total + 1):
+        pools = [[] for _ in range(n)]
+        for a, b in segments:
+            edges = a + (np.arange(2 * n + 1, dtype=np.int64) * (b - a)) // (2 * n)
+            for p in range(n):
+                for k in (p, 2 * n - 1 - p):
+                    if edges[k + 1] > edges[k]:
+                        pools[p].append((int(edges[k]), int(edges[k + 1])))
+        if max(sum(b - a for a, b in p) for p in pools) <= pool_rows:
+            return [_merge(p) for p in pools if p]
+    return [[seg] for seg in segments]  # not reached: n = total gives pools of one or two rows
+
+
+def _merge(ranges):
+    """Sorted ranges with touching ones joined (the middle two slices of a segment are adjacent)."""
+    out = []
+    for a, b in sorted(ranges):
+        if out and out[-1][1] == a:
+            out[-1] = (out[-1][0], b)
+        else:
+            out.append((a, b))
+    return out
 
 
 def _mirrored_pools(spec, segments, piece_rows, pool_rows):

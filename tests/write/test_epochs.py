@@ -279,3 +279,68 @@ def test_pooled_plan_shards_lag1_is_noise(chunk, count):
         means = order[:len(order) // 256 * 256].reshape(-1, 256).mean(axis=1) / rows
         lag1 = float(np.corrcoef(means[:-1], means[1:])[0, 1])
         assert abs(lag1) < 4 / np.sqrt(len(means)), (index, lag1)
+
+
+# ---- tight shards: a shard holds only a few stored chunks --------------------------------
+# Four shards of the demo-sized split (910870 rows, 65536-row chunks) with a pool of a quarter,
+# an eighth or a sixteenth of the split: a shard holds 3 to 4 chunks. Before, a shard whose
+# pieces did not pair up read each piece as its own pool in turn (lag-1 0.99).
+
+def shard_order(spec, chunk, pool):
+    from goalkit.write.epochs import _POOL  # the pool permutation's address, as iter_batches draws it
+
+    plan = pooled_plan(spec, chunk, pool)
+    assert max(sum(b - a for a, b in p) for p in plan) <= pool
+    return np.concatenate([np.concatenate([np.arange(a, b) for a, b in r])[
+        spec.perm(_POOL, sum(b - a for a, b in r), spec.index, spec.count, p)] for p, r in enumerate(plan)])
+
+
+@pytest.mark.parametrize("pool_div", [4, 8, 16])
+def test_tight_shards_lag1_is_noise_and_episodes_mix(pool_div):
+    rows, chunk, count, batch, ep_rows = 910870, 65536, 4, 256, 217
+    # episodes as the demo set stores them: consecutive runs of about 217 rows (5 goals a step)
+    sizes = np.diff(np.append(np.arange(0, rows, ep_rows), rows))
+    episode = np.arange(rows) // ep_rows
+    expected = independent_distinct(sizes, rows, batch)
+    lags, distinct, every = [], [], []
+    for index in range(count):
+        order = shard_order(EpochSpec(rows, 7, 3, index, count), chunk, rows // pool_div)
+        every.append(order)
+        b = order[:len(order) // batch * batch].reshape(-1, batch)
+        means = b.mean(axis=1) / rows
+        lags.append(float(np.corrcoef(means[:-1], means[1:])[0, 1]))
+        distinct += [len(np.unique(e)) for e in episode[b]]
+        assert abs(lags[-1]) < 4 / np.sqrt(len(means)), (index, lags)  # 4 / sqrt(889) = 0.13
+    every = np.concatenate(every)
+    assert len(np.unique(every)) == len(every) == rows - rows % count
+    # A pool holds at most P = rows / pool_div rows, so a batch can draw from at most the ~P / 217
+    # episodes in it: the best a pool can do is independent draws from P rows of whole episodes,
+    # (P / m) (1 - C(P - m, B) / C(P, B)) for episodes of m rows (the same hypergeometric form).
+    # Measured (seeds 0 and 7): against independent draws over the split 0.89-0.92, 0.73, 0.59
+    # for pools of 1/4, 1/8, 1/16; against the pool's own limit 0.97-1.0, 0.90, 0.89.
+    pool = rows // pool_div
+    limit = pool / ep_rows * (1 - stats.hypergeom.pmf(0, pool, ep_rows, batch))
+    assert np.mean(distinct) / limit > 0.85, (np.mean(distinct) / limit, np.mean(distinct) / expected)
+    assert np.mean(distinct) / expected > {4: 0.85, 8: 0.68, 16: 0.54}[pool_div]
+
+
+def test_tight_shards_epoch_from_a_built_set(small_set):
+    # 4 shards of ~1500 rows (three 512-row chunks each), pools of 750 rows: pieces that do not pair
+    # within a shard; lag-1 per shard averaged over the 4 shards (noise ~1 / sqrt(4 * 187))
+    with goalkit.open_set(small_set) as gs:
+        n = gs.rows("train")
+        sizes = np.unique(gs.read("train", ["source_episode"])["source_episode"], return_counts=True)[1]
+    lags, distinct, seen = [], [], []
+    for index in range(4):
+        with goalkit.open_set(small_set) as gs:
+            got = list(gs.batches("train", 8, columns=["source_episode"], shuffle="pooled", seed=2, epoch=1,
+                                  memory_budget=750 * 8, shard=(index, 4), row_numbers=True, drop_last=True))
+        means = np.array([b["row"].mean() / n for b in got])
+        lags.append(float(np.corrcoef(means[:-1], means[1:])[0, 1]))
+        distinct += [len(np.unique(b["source_episode"])) for b in got]
+        seen.append(np.concatenate([b["row"] for b in got]))
+    seen = np.concatenate(seen)
+    assert len(np.unique(seen)) == len(seen)
+    assert abs(np.mean(lags)) < 4 / np.sqrt(4 * (n // 4 // 8)), lags
+    # a 750-row pool holds only a few of these episodes (up to 400 rows each): measured 0.72
+    assert np.mean(distinct) / independent_distinct(sizes, n, 8) > 0.65
