@@ -46,7 +46,7 @@ HEAD_PAST_END = ("clip", "renormalise")
 HEAD_KEYS = ("weights", "gamma", "past_end", "steps")
 #: Names a head may not take: the shared columns of a batch.
 RESERVED_NAMES = ("observation", "action", "next_observation", "reached_goal", "source_episode",
-                  "source_step")
+                  "source_step", "task_reward", "termination", "time_limit", "source")
 
 
 def _number(x) -> bool:

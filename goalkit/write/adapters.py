@@ -23,9 +23,12 @@ from goalkit.write.chunkread import SplitColumns
 from goalkit.write.epochs import DEFAULT_MEMORY_BUDGET, shard_index
 from goalkit.write.reader import open_set
 
-#: Columns cast by default (float32 is what networks take); others keep their stored dtype.
+#: Columns cast by default (float32 is what networks take; the log source as int64, the index
+#: dtype of embedding look-ups, where PyTorch supports few operations on uint16); others keep
+#: their stored dtype (the end flags ``termination`` / ``time_limit`` stay uint8).
 DEFAULT_DTYPES = {"observation": "float32", "next_observation": "float32", "goal": "float32",
-                  "reached_goal": "float32", "goal_distance": "float32", "reward": "float32"}
+                  "reached_goal": "float32", "goal_distance": "float32", "reward": "float32",
+                  "source": "int64"}
 
 
 def cast_checked(name: str, values: np.ndarray, dtype) -> np.ndarray:

@@ -31,12 +31,13 @@ from __future__ import annotations
 import numpy as np
 
 from goalkit.errors import RecipeError
+from goalkit.goals.stategraph import graph_steps
 from goalkit.heads import SOURCE_CODES, GoalHead
 from goalkit.pipeline.chunk import row_labels
 from goalkit.reward import score
 from goalkit.rng import BatchBits
 from goalkit.rows import LABEL_COLUMNS
-from goalkit.write.sampler import load_split
+from goalkit.write.sampler import load_split, transition_columns
 
 _CUR, _FUT, _GEO, _RND, _NEG, _FIN, _EPI, _SUB = (SOURCE_CODES[n] for n in (
     "current", "future", "geometric", "random", "negative", "final", "episode", "subgoal"))
@@ -101,14 +102,21 @@ class HeadSampler:
 
     def __init__(self, recipe, heads=None, split: str = "train", source=None):
         heads = tuple(recipe.heads if heads is None else heads)
-        _, eps, phi = load_split(recipe, split, source)
+        plan, eps, phi = load_split(recipe, split, source)
         self.recipe = recipe
         self._setup(phi, eps.offsets, recipe.reward, heads, recipe.seed, eps.observations, eps.actions,
                     eps.episode_ids, recipe.file)
+        # the optional columns a set built from the recipe stores, indexed once
+        every_t = np.arange(eps.num_transitions)
+        cols = transition_columns(plan, eps, every_t, eps.transition_episode())
+        self._extra = {k: ("episode", np.take(v, eps.offsets[:-1], axis=0)) if k == "source" else ("transition", v)
+                       for k, v in cols.items()}
+        self._graph = None if plan.graph is None else (plan.graph, recipe.graph)
 
     @classmethod
     def from_arrays(cls, goals, offsets, rule, heads, seed: int = 0, observations=None, actions=None,
-                    episode_ids=None) -> "HeadSampler":
+                    episode_ids=None, *, terminations=None, time_limits=None, sources=None,
+                    task_rewards=None) -> "HeadSampler":
         """A sampler over episodes held as flat arrays.
 
         Parameters
@@ -125,10 +133,30 @@ class HeadSampler:
         actions : ndarray (N, A), optional
         episode_ids : ndarray of int (E,), optional
             Default ``0 .. E - 1``.
+        terminations, time_limits : ndarray of bool (N,), optional
+            The log's end flags of each transition: batches then carry ``termination`` and
+            ``time_limit`` (uint8).
+        sources : ndarray of int (E,), optional
+            The log source of each episode: batches then carry ``source`` (uint16).
+        task_rewards : ndarray (N,), optional
+            The log's own reward of each transition: batches then carry ``task_reward`` (float32).
         """
         self = cls.__new__(cls)
         self.recipe = None
         self._setup(goals, offsets, rule, tuple(heads), seed, observations, actions, episode_ids, None)
+        self._extra = {}
+        for name, values, by, dtype in (("task_reward", task_rewards, "transition", np.float32),
+                                        ("termination", terminations, "transition", np.uint8),
+                                        ("time_limit", time_limits, "transition", np.uint8),
+                                        ("source", sources, "episode", np.uint16)):
+            if values is None:
+                continue
+            values = np.asarray(values)
+            want = self.num_transitions if by == "transition" else len(self.lengths)
+            if values.shape != (want,):
+                raise ValueError(f"{name}: expected one value per {by} ({want}), got shape {values.shape}")
+            self._extra[name] = (by, values.astype(dtype))
+        self._graph = None
         return self
 
     def _setup(self, phi, offsets, rule, heads, seed, observations, actions, episode_ids, file):
@@ -184,10 +212,14 @@ class HeadSampler:
         dict
             Shared columns ``source_episode``, ``source_step`` and, when the sampler has them,
             ``observation``, ``action``, ``next_observation``; ``reached_goal`` (phi(s_t+1));
-            and per head name a dict of ``goal``, ``source`` (uint8 code,
-            :data:`goalkit.heads.SOURCE_CODES`), ``goal_episode``, ``goal_step``,
-            ``steps_to_goal``, ``goal_distance``, ``reward``, ``reached``, ``terminal``,
-            ``discount_weight``, ``return_to_goal``, ``bootstrap_mask``.
+            the transition's facts a built set stores when the logs and recipe give them:
+            ``task_reward``, ``termination``, ``time_limit`` (the log's end flags, uint8) and
+            ``source`` (the log source, uint16); and per head name a dict of ``goal``,
+            ``source`` (the goal source: uint8 code, :data:`goalkit.heads.SOURCE_CODES`),
+            ``goal_episode``, ``goal_step``, ``steps_to_goal``, ``goal_distance``, ``reward``,
+            ``reached``, ``terminal``, ``discount_weight``, ``return_to_goal``,
+            ``bootstrap_mask`` and, with the recipe's ``[graph]`` table, ``graph_steps`` (steps
+            from s_t+1 to the goal state in the logs' graph, as a built set labels them).
         """
         b = int(batch_size)
         if b < 2 and _NEG in self._used:
@@ -257,12 +289,22 @@ class HeadSampler:
             out["next_observation"] = self.observations.take(cur + 1, axis=0)
         if self.actions is not None:
             out["action"] = self.actions.take(i, axis=0)
+        for name, (by, values) in self._extra.items():
+            out[name] = values.take(i if by == "transition" else e)
+        hops = None
+        if self._graph is not None:
+            graph, spec = self._graph
+            ids = np.tile(out["source_episode"], nh)
+            hops = graph_steps(graph, spec, self.seed, None, ids, tt.ravel(), gep.ravel(),
+                               gstep.ravel()).reshape(shape)
         for h, head in enumerate(self.heads):
             out[head.name] = {
                 "goal": goal[h], "source": src[h], "goal_episode": gep[h], "goal_step": gstep[h],
                 "steps_to_goal": steps[h], "goal_distance": dist[h], "reward": reward[h],
                 "reached": reached[h], "terminal": terminal[h], "discount_weight": weight[h],
                 "return_to_goal": ret[h], "bootstrap_mask": mask[h]}
+            if hops is not None:
+                out[head.name]["graph_steps"] = hops[h]
         return out
 
     def __iter__(self):

@@ -13,11 +13,13 @@ import numpy as np
 
 from goalkit import rng
 from goalkit.errors import RecipeError
+from goalkit.goals.stategraph import graph_steps
 from goalkit.logs.episodes import chunk_bounds, concat_episodes, consecutive_runs
 from goalkit.pipeline.chunk import row_labels
 from goalkit.pipeline.plan import make_plan
+from goalkit.relabel.strategies import STRATEGIES
 from goalkit.reward import score
-from goalkit.rows import SPLIT_CODES, SPLITS
+from goalkit.rows import END_FLAG_SOURCES, SPLIT_CODES, SPLITS
 
 
 def load_split(recipe, split: str = "train", source=None):
@@ -57,6 +59,31 @@ def load_split(recipe, split: str = "train", source=None):
     gd = np.dtype(recipe.goal.dtype)
     phi = plan.goal_map(episodes, np.arange(episodes.observations.shape[0])).astype(gd)
     return plan, episodes, phi
+
+
+def transition_columns(plan, episodes, transitions, positions) -> dict:
+    """The optional per-transition columns a set built from ``plan`` stores, for some transitions.
+
+    ``termination`` and ``time_limit`` (the log's end flags, uint8), ``source`` (the log source,
+    uint16) and ``task_reward`` (float32), each only when the plan's columns have it, as the
+    build writes them (:func:`goalkit.pipeline.chunk.relabel_chunk`).
+
+    Parameters
+    ----------
+    plan : BuildPlan
+    episodes : EpisodeSet
+    transitions, positions : ndarray of int
+        Transition indices into ``episodes`` and their episodes' positions.
+    """
+    out = {}
+    if "task_reward" in plan.columns:
+        out["task_reward"] = np.take(episodes.rewards, transitions, axis=0).astype(np.float32)
+    for name, attr in END_FLAG_SOURCES.items():
+        if name in plan.columns:
+            out[name] = np.take(getattr(episodes, attr), transitions, axis=0).astype(np.uint8)
+    if "source" in plan.columns:
+        out["source"] = np.take(episodes.sources, positions, axis=0).astype(np.uint16)
+    return out
 
 
 class GoalSampler:
@@ -106,7 +133,9 @@ class GoalSampler:
             observation, action, next_observation, reached_goal, goal, goal_distance, reward,
             reached, terminal, strategy, source_episode, source_step, goal_episode, goal_step,
             steps_to_goal, discount_weight, return_to_goal, bootstrap_mask (discount: the
-            recipe's ``[relabel] gamma``).
+            recipe's ``[relabel] gamma``); and, when a set built from the recipe would store
+            them, ``task_reward``, ``termination``, ``time_limit``, ``source``, ``goal_mask`` and
+            ``graph_steps`` (with the recipe's ``[graph]`` table).
         """
         eps, rule = self.episodes, self.recipe.reward
         seed = self.recipe.seed
@@ -136,14 +165,22 @@ class GoalSampler:
             mask = self.plan.masks.row_masks(batch_seed, eps.episode_ids[pos], step, rows.slot[sel],
                                              rows.strategy[sel], tasks)
         scores = score(rule, achieved, goal, mask)
+        src_ep = eps.episode_ids[pos]
+        extra = transition_columns(self.plan, eps, t_idx, pos)
+        if self.plan.graph is not None:  # as the build labels rows (goalkit.pipeline.chunk)
+            spec = self.recipe.graph
+            strategy = rows.strategy[sel]
+            always = strategy == STRATEGIES["neighbour"].code if spec.guard_neighbours else None
+            extra["graph_steps"] = graph_steps(self.plan.graph, spec, seed, strategy, src_ep, step, ge, gs,
+                                               always=always)
         return {
             "observation": eps.observations[cur], "action": eps.actions[t_idx],
             "next_observation": eps.observations[cur + 1],
             "reached_goal": achieved.astype(self.phi.dtype), "goal": goal.astype(self.phi.dtype),
             **scores.columns(), **({} if mask is None else {"goal_mask": mask}),
-            "strategy": rows.strategy[sel], "source_episode": eps.episode_ids[pos], "source_step": step,
+            "strategy": rows.strategy[sel], "source_episode": src_ep, "source_step": step,
             "goal_episode": ge, "goal_step": gs, "steps_to_goal": rows.steps_to_goal[sel],
-            **row_labels(rows.steps_to_goal[sel], self.mixture.gamma, scores.terminal),
+            **row_labels(rows.steps_to_goal[sel], self.mixture.gamma, scores.terminal), **extra,
         }
 
     def __iter__(self):
