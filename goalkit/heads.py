@@ -35,7 +35,7 @@ from dataclasses import dataclass, field
 from typing import Any, Mapping
 
 from goalkit.config import check_keys, closest
-from goalkit.errors import RecipeError
+from goalkit.errors import ParameterError, RecipeError
 
 #: Goal source name -> code (uint8 in a batch's ``source`` column; never renumbered).
 SOURCE_CODES = {"current": 0, "future": 1, "geometric": 2, "random": 3, "negative": 4, "final": 5,
@@ -71,8 +71,18 @@ class GoalHead:
     steps : int, default 25
         ``k`` of the subgoal source (``j = min(t + k, T)``), at least 1.
 
+    Raises
+    ------
+    ParameterError
+        Naming ``GoalHead`` and the parameter (``weights.<source>`` for one weight); the recipe
+        loader maps it to the file and key ``heads.NAME.<parameter>``.
+
     Examples
     --------
+    >>> GoalHead("g", {"geometric": 1}, gamma=1.5)
+    Traceback (most recent call last):
+    ...
+    goalkit.errors.ParameterError: GoalHead gamma: expected a number strictly between 0 and 1, got 1.5
     >>> GoalHead("value", {"current": 0.2, "geometric": 0.5, "random": 0.3}).probabilities()
     {'current': 0.2, 'geometric': 0.5, 'random': 0.3}
     """
@@ -85,41 +95,37 @@ class GoalHead:
 
     def __post_init__(self):
         object.__setattr__(self, "weights", dict(self.weights))
-        self._validate(None, f"heads.{self.name}")
+        self._validate()
 
-    def _validate(self, file, key) -> None:
+    def _validate(self) -> None:
+        def bad(message, parameter):
+            return ParameterError(message, owner="GoalHead", parameter=parameter)
+
         if not isinstance(self.name, str) or not self.name.isidentifier():
-            raise RecipeError(f"expected a head name of letters, digits and _, got {self.name!r}", file=file,
-                              key=key)
+            raise bad(f"expected a head name of letters, digits and _, got {self.name!r}", "name")
         if self.name in RESERVED_NAMES:
-            raise RecipeError(f"head name {self.name!r} is a shared column of a batch; "
-                              f"reserved: {', '.join(RESERVED_NAMES)}", file=file, key=key)
+            raise bad(f"head name {self.name!r} is a shared column of a batch; reserved: {', '.join(RESERVED_NAMES)}",
+                      "name")
         if not self.weights:
-            raise RecipeError(f"expected a table of source -> weight; sources: {', '.join(SOURCE_CODES)}",
-                              file=file, key=f"{key}.weights")
+            raise bad(f"expected a table of source -> weight; sources: {', '.join(SOURCE_CODES)}", "weights")
         for src, w in self.weights.items():
             if src not in SOURCE_CODES:
                 hint = closest(str(src), SOURCE_CODES)
                 tip = f"; did you mean '{hint}'?" if hint else ""
-                raise RecipeError(f"unknown goal source '{src}'{tip} valid: {', '.join(SOURCE_CODES)}",
-                                  file=file, key=f"{key}.weights.{src}")
+                raise bad(f"unknown goal source '{src}'{tip} valid: {', '.join(SOURCE_CODES)}", f"weights.{src}")
             if not _number(w) or w < 0:
-                raise RecipeError(f"expected a finite number >= 0, got {w!r}", file=file,
-                                  key=f"{key}.weights.{src}")
+                raise bad(f"expected a finite number >= 0, got {w!r}", f"weights.{src}")
         if not any(w > 0 for w in self.weights.values()):
-            raise RecipeError("all source weights are zero; give at least one a weight > 0", file=file,
-                              key=f"{key}.weights")
+            raise bad("all source weights are zero; give at least one a weight > 0", "weights")
         if not _number(self.gamma) or not 0.0 < self.gamma < 1.0:
-            raise RecipeError(f"expected a number strictly between 0 and 1, got {self.gamma!r}", file=file,
-                              key=f"{key}.gamma")
+            raise bad(f"expected a number strictly between 0 and 1, got {self.gamma!r}", "gamma")
         if self.past_end not in HEAD_PAST_END:
             hint = closest(str(self.past_end), HEAD_PAST_END)
             tip = f"; did you mean '{hint}'?" if hint else ""
-            raise RecipeError(f"unknown past_end {self.past_end!r}{tip} valid: {', '.join(HEAD_PAST_END)}",
-                              file=file, key=f"{key}.past_end")
+            raise bad(f"unknown past_end {self.past_end!r}{tip} valid: {', '.join(HEAD_PAST_END)}", "past_end")
         k = self.steps
         if isinstance(k, bool) or not isinstance(k, int) or k < 1:
-            raise RecipeError(f"expected a whole number of steps >= 1, got {k!r}", file=file, key=f"{key}.steps")
+            raise bad(f"expected a whole number of steps >= 1, got {k!r}", "steps")
 
     def probabilities(self) -> dict[str, float]:
         """Source name -> probability, positive weights only, in code order."""
@@ -139,9 +145,11 @@ def heads_from_table(table: Mapping[str, Any], file=None) -> tuple[GoalHead, ...
     Raises
     ------
     RecipeError
-        On a value that is not a table, an unknown key or source (with the closest valid one),
-        a negative or all-zero weight, ``gamma`` outside (0, 1), an unknown ``past_end``,
-        ``steps`` below 1, or a reserved head name.
+        Naming the file and key: a value that is not a table, an unknown key; and every
+        :class:`~goalkit.errors.ParameterError` of :class:`GoalHead` (an unknown source, with
+        the closest valid one, a negative or all-zero weight, ``gamma`` outside (0, 1), an
+        unknown ``past_end``, ``steps`` below 1, a reserved head name), mapped to
+        ``heads.NAME.<parameter>``.
     """
     if not isinstance(table, Mapping):
         raise RecipeError(f"expected a table of [heads.NAME] tables, got {table!r}", file=file, key="heads")
@@ -157,6 +165,8 @@ def heads_from_table(table: Mapping[str, Any], file=None) -> tuple[GoalHead, ...
                               key=f"{key}.weights")
         try:
             heads.append(GoalHead(name, weights, **{k: sub[k] for k in HEAD_KEYS[1:] if k in sub}))
-        except RecipeError as exc:
-            raise RecipeError(exc.message, file=file, key=exc.key) from None
+        except ParameterError as exc:  # the head's own parameter -> the recipe's key
+            if exc.parameter == "name":  # the name is the table's own key
+                raise RecipeError(exc.message, file=file, key=key) from None
+            raise exc.in_recipe(file, key) from None
     return tuple(heads)

@@ -32,8 +32,8 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from goalkit import rng
-from goalkit.config import check_keys
-from goalkit.errors import RecipeError
+from goalkit.config import closest
+from goalkit.errors import ParameterError
 
 #: Keys of the recipe's ``[mask]`` table.
 MASK_KEYS = ("groups", "tasks", "others", "random_share")
@@ -67,53 +67,52 @@ class MaskSpec:
     random_share: float = 0.0
 
     @classmethod
-    def from_table(cls, table: Mapping[str, Any], file=None) -> "MaskSpec":
+    def from_table(cls, table: Mapping[str, Any]) -> "MaskSpec":
         """Check and read the recipe's ``[mask]`` table.
 
         Raises
         ------
-        RecipeError
-            On an unknown key, a task id that is not a whole number, an empty mask or group,
+        ParameterError
+            Naming ``MaskSpec`` and the table's key (``tasks.<id>``, ``groups.<name>``; the
+            recipe loader maps it to the file and ``mask.<key>``): an unknown key, a task id that is not a whole number, an empty mask or group,
             an entry that is neither a name nor a dimension number, or a ``random_share``
             outside [0, 1]. Names and dimension numbers are checked against the goal space
             by :meth:`resolve`.
         """
         if not isinstance(table, Mapping):
-            raise RecipeError(f"expected a table, got {table!r}", file=file, key="mask")
-        check_keys(table, MASK_KEYS, file=file, section="[mask]", error=RecipeError)
+            raise _bad(f"expected a table, got {table!r}")
+        for key in table:
+            if key not in MASK_KEYS:
+                hint = closest(str(key), MASK_KEYS)
+                tip = f"; did you mean '{hint}'?" if hint else ""
+                raise _bad(f"unknown key '{key}' in [mask]{tip} valid keys: {', '.join(MASK_KEYS)}", str(key))
         groups = []
         raw_groups = table.get("groups", {})
         if not isinstance(raw_groups, Mapping):
-            raise RecipeError(f"expected a table of name = [dimension numbers], got {raw_groups!r}",
-                              file=file, key="mask.groups")
+            raise _bad(f"expected a table of name = [dimension numbers], got {raw_groups!r}", "groups")
         for name, dims in raw_groups.items():
-            key = f"mask.groups.{name}"
+            key = f"groups.{name}"
             if not isinstance(dims, list) or not all(_is_index(d) for d in dims):
-                raise RecipeError(f"expected a list of goal dimension numbers (>= 0), got {dims!r}",
-                                  file=file, key=key)
+                raise _bad(f"expected a list of goal dimension numbers (>= 0), got {dims!r}", key)
             if not dims:
-                raise RecipeError("expected at least one goal dimension, got an empty group",
-                                  file=file, key=key)
+                raise _bad("expected at least one goal dimension, got an empty group", key)
             groups.append((str(name), tuple(int(d) for d in dims)))
         tasks = []
         raw_tasks = table.get("tasks", {})
         if not isinstance(raw_tasks, Mapping):
-            raise RecipeError(f"expected a table of task id = [groups or dimensions], got {raw_tasks!r}",
-                              file=file, key="mask.tasks")
+            raise _bad(f"expected a table of task id = [groups or dimensions], got {raw_tasks!r}", "tasks")
         for task, entries in raw_tasks.items():
-            key = f"mask.tasks.{task}"
+            key = f"tasks.{task}"
             try:
                 tid = int(str(task), 10)
             except ValueError:
-                raise RecipeError(f"expected a task id (a whole number) as the key, got {task!r}",
-                                  file=file, key=key) from None
-            tasks.append((tid, _entries(entries, file, key)))
-        others = None if "others" not in table else _entries(table["others"], file, "mask.others")
+                raise _bad(f"expected a task id (a whole number) as the key, got {task!r}", key) from None
+            tasks.append((tid, _entries(entries, key)))
+        others = None if "others" not in table else _entries(table["others"], "others")
         share = table.get("random_share", 0.0)
         if (isinstance(share, bool) or not isinstance(share, (int, float)) or not math.isfinite(share)
                 or not 0.0 <= share <= 1.0):
-            raise RecipeError(f"expected a probability from 0 to 1, got {share!r}", file=file,
-                              key="mask.random_share")
+            raise _bad(f"expected a probability from 0 to 1, got {share!r}", "random_share")
         return cls(tuple(groups), tuple(tasks), others, float(share))
 
     def describe(self) -> dict:
@@ -124,7 +123,7 @@ class MaskSpec:
                 "random_share": self.random_share}
 
     def resolve(self, goal_dim: int, field_groups: Sequence[tuple[str, tuple[int, ...]]] = (),
-                task_ids=None, file=None) -> "GoalMasks":
+                task_ids=None) -> "GoalMasks":
         """Match the table with a goal space and the logs' tasks.
 
         Parameters
@@ -135,13 +134,11 @@ class MaskSpec:
             The goal's own named groups (one per goal field), used when the table has none.
         task_ids : array_like of int, optional
             Every task id of the logs (None: the logs have no task ids).
-        file : str, optional
-            The recipe, for messages.
 
         Raises
         ------
-        RecipeError
-            Naming ``mask.<key>``: a group dimension outside ``0 .. G-1``, an entry naming an
+        ParameterError
+            Naming ``MaskSpec`` and the table's key (the build maps it to ``mask.<key>``): a group dimension outside ``0 .. G-1``, an entry naming an
             unknown group or dimension, a task the logs do not have (or logs without task ids),
             or more than :data:`MAX_RANDOM_GROUPS` groups for random masks.
         """
@@ -149,8 +146,8 @@ class MaskSpec:
         for name, dims in groups:
             bad = [d for d in dims if d >= goal_dim]
             if bad:
-                raise RecipeError(f"goal dimension {bad[0]} does not exist; the goal has {goal_dim} "
-                                  f"(0 .. {goal_dim - 1})", file=file, key=f"mask.groups.{name}")
+                raise _bad(f"goal dimension {bad[0]} does not exist; the goal has {goal_dim} (0 .. {goal_dim - 1})",
+                           f"groups.{name}")
         by_name = dict(groups)
 
         def vector(entries, key) -> np.ndarray:
@@ -158,12 +155,11 @@ class MaskSpec:
             for e in entries:
                 if isinstance(e, str):
                     if e not in by_name:
-                        raise RecipeError(f"unknown goal dimension group {e!r}; groups are: "
-                                          f"{', '.join(by_name)}", file=file, key=key)
+                        raise _bad(f"unknown goal dimension group {e!r}; groups are: {', '.join(by_name)}", key)
                     out[list(by_name[e])] = 1
                 elif e >= goal_dim:
-                    raise RecipeError(f"goal dimension {e} does not exist; the goal has {goal_dim} "
-                                      f"(0 .. {goal_dim - 1})", file=file, key=key)
+                    raise _bad(f"goal dimension {e} does not exist; the goal has {goal_dim} (0 .. {goal_dim - 1})",
+                               key)
                 else:
                     out[e] = 1
             return out
@@ -171,20 +167,19 @@ class MaskSpec:
         known = None if task_ids is None else set(np.asarray(task_ids, dtype=np.int64).tolist())
         ids, rows = [], []
         for tid, entries in self.tasks:
-            key = f"mask.tasks.{tid}"
+            key = f"tasks.{tid}"
             if known is None:
-                raise RecipeError("the mask table names tasks, but the logs have no task ids (map "
-                                  "them with task in the layout's [keys])", file=file, key=key)
+                raise _bad("the mask table names tasks, but the logs have no task ids (map them with task in the "
+                           "layout's [keys])", key)
             if tid not in known:
-                raise RecipeError(f"task {tid} is not in the logs; their tasks are: "
-                                  f"{', '.join(str(t) for t in sorted(known)) or '(none)'}", file=file, key=key)
+                raise _bad(f"task {tid} is not in the logs; their tasks are: "
+                           f"{', '.join(str(t) for t in sorted(known)) or '(none)'}", key)
             ids.append(tid)
             rows.append(vector(entries, key))
-        others = (np.ones(goal_dim, np.uint8) if self.others is None else vector(self.others, "mask.others"))
+        others = (np.ones(goal_dim, np.uint8) if self.others is None else vector(self.others, "others"))
         if self.random_share > 0 and len(groups) > MAX_RANDOM_GROUPS:
-            raise RecipeError(f"random masks draw from at most {MAX_RANDOM_GROUPS} groups, the goal has "
-                              f"{len(groups)}; name fewer groups in [mask] groups", file=file,
-                              key="mask.random_share")
+            raise _bad(f"random masks draw from at most {MAX_RANDOM_GROUPS} groups, the goal has {len(groups)}; "
+                       "name fewer groups in [mask] groups", "random_share")
         order = np.argsort(np.asarray(ids, dtype=np.int64), kind="stable")
         table = (np.stack(rows) if rows else np.zeros((0, goal_dim), np.uint8))[order]
         group_matrix = np.zeros((len(groups), goal_dim), dtype=np.uint8)
@@ -198,13 +193,16 @@ def _is_index(x) -> bool:
     return isinstance(x, int) and not isinstance(x, bool) and x >= 0
 
 
-def _entries(entries, file, key) -> tuple:
+def _bad(message: str, parameter: str | None = None) -> ParameterError:
+    """A problem with the ``[mask]`` table's ``parameter`` (None: the whole table)."""
+    return ParameterError(message, owner="MaskSpec", parameter=parameter)
+
+
+def _entries(entries, key) -> tuple:
     if not isinstance(entries, list) or not all(isinstance(e, str) or _is_index(e) for e in entries):
-        raise RecipeError(f"expected a list of group names and goal dimension numbers, got {entries!r}",
-                          file=file, key=key)
+        raise _bad(f"expected a list of group names and goal dimension numbers, got {entries!r}", key)
     if not entries:
-        raise RecipeError("expected at least one group or goal dimension, got an empty mask",
-                          file=file, key=key)
+        raise _bad("expected at least one group or goal dimension, got an empty mask", key)
     return tuple(entries)
 
 

@@ -129,7 +129,10 @@ def resolve_masks(recipe, source, first, goal_dim: int, max_transitions: int):
     if spec.tasks and first.task_ids is not None:
         seen = [source.read(a, b).task_ids for a, b in chunk_bounds(source.lengths, max_transitions)]
         tasks = np.unique(np.concatenate(seen)) if seen else np.zeros(0, np.int64)
-    return spec.resolve(goal_dim, groups, tasks, file=recipe.file)
+    try:
+        return spec.resolve(goal_dim, groups, tasks)
+    except ParameterError as exc:  # the table's key -> the recipe's file and mask.<key>
+        raise exc.in_recipe(recipe.file, "mask") from None
 
 
 #: Strategies whose goals may come from episodes outside the chunk.

@@ -328,7 +328,7 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored
     graph = None
     if "graph" in doc:  # graph distances; absent: the set is what it was without them
         graph = _in_recipe(GraphSpec.from_table, _table(doc, "graph", file), file, "graph")
-    masks = MaskSpec.from_table(doc["mask"], file) if "mask" in doc else None
+    masks = _in_recipe(MaskSpec.from_table, doc["mask"], file, "mask") if "mask" in doc else None
     heads = heads_from_table(_table(doc, "heads", file, required=False), file)
     return Recipe(text=text, file=str(file), seed=seed, logs_path=logs_path, layout_path=layout_path,
                   skip_bad_episodes=skip, goal=goal, mixture=mixture, reward=reward,

@@ -133,7 +133,7 @@ def test_no_mask_table_stores_no_mask_column(demo, tmp_path):
     ('[mask]\ntasks = { "0" = [] }\n', "mask.tasks.0", "empty mask"),
     ('[mask]\ngroups = { a = [] }\n', "mask.groups.a", "empty group"),
     ('[mask]\nrandom_share = 1.5\n', "mask.random_share", "probability"),
-    ('[mask]\ntask = {}\n', "task", "did you mean 'tasks'"),
+    ('[mask]\ntask = {}\n', "mask.task", "did you mean 'tasks'"),
 ])
 def test_bad_mask_tables_one_line_naming_file_and_key(demo, tmp_path, text, key, words):
     recipe = _recipe(demo, tmp_path, "bad", text)
@@ -198,3 +198,46 @@ def test_cli_build_bad_mask_or_region_exits_2_with_one_line(demo, tmp_path, extr
     assert res.exit_code == 2, res.output
     lines = [line for line in res.output.splitlines() if line.strip()]
     assert len(lines) == 1 and str(recipe) in lines[0] and key in lines[0] and "Traceback" not in res.output
+
+
+@pytest.mark.parametrize("table, parameter, words", [
+    ({"task": {}}, "task", "did you mean 'tasks'"),
+    ({"groups": {"a": []}}, "groups.a", "empty group"),
+    ({"groups": {"a": [-1]}}, "groups.a", "dimension numbers"),
+    ({"tasks": {"x": ["a"]}}, "tasks.x", "whole number"),
+    ({"tasks": {"0": []}}, "tasks.0", "empty mask"),
+    ({"others": "head"}, "others", "list of group names"),
+    ({"random_share": 1.5}, "random_share", "probability"),
+    ("head", None, "expected a table"),
+])
+def test_mask_spec_raises_parameter_errors_naming_itself(table, parameter, words):
+    # the domain object names its own key, never a recipe file; the loader maps it to mask.<key>
+    from goalkit.errors import ParameterError
+    from goalkit.masks import MaskSpec
+
+    with pytest.raises(ParameterError) as info:
+        MaskSpec.from_table(table)
+    err = info.value
+    assert err.owner == "MaskSpec" and err.parameter == parameter and words in err.message
+    assert not isinstance(err, RecipeError)
+    mapped = err.in_recipe("r.toml", "mask")
+    assert mapped.file == "r.toml" and mapped.key == ("mask" if parameter is None else f"mask.{parameter}")
+
+
+def test_mask_spec_resolve_raises_parameter_errors():
+    from goalkit.errors import ParameterError
+    from goalkit.masks import MaskSpec
+
+    spec = MaskSpec.from_table({"groups": {"head": [0, 1, 2], "tray": [3, 4]}, "tasks": {"0": ["head"], "1": [9]}})
+    for tasks, parameter, words in (([0, 1], "tasks.1", "goal dimension 9 does not exist"),
+                                    ([0], "tasks.1", "task 1 is not in the logs"),
+                                    (None, "tasks.0", "no task ids")):
+        with pytest.raises(ParameterError) as info:
+            spec.resolve(6, task_ids=tasks)
+        assert (info.value.owner, info.value.parameter) == ("MaskSpec", parameter) and words in info.value.message
+    with pytest.raises(ParameterError) as info:
+        MaskSpec.from_table({"groups": {"tray": [3, 7]}}).resolve(6)
+    assert info.value.parameter == "groups.tray"
+    masks = MaskSpec.from_table({"groups": {"head": [0, 1, 2], "tray": [3, 4]}, "tasks": {"0": ["head"]}}).resolve(
+        6, task_ids=[0, 1])
+    np.testing.assert_array_equal(masks.task_mask([0, 1]), [[1, 1, 1, 0, 0, 0], [1, 1, 1, 1, 1, 1]])

@@ -13,7 +13,7 @@ from scipy import stats
 
 import goalkit
 from goalkit.demo import make_demo
-from goalkit.errors import RecipeError
+from goalkit.errors import ParameterError, RecipeError
 from goalkit.logs.episodes import EpisodeSet
 from goalkit.pipeline.recipe import load_recipe, parse_recipe
 from goalkit.relabel import Mixture, RelabelContext
@@ -276,13 +276,36 @@ steps = 25
         parse_recipe(text.replace("subgoal = 1 }", "subgaol = 1 }"), file="r.toml", base=tmp_path)
     assert err.value.key == "heads.subgoal.weights.subgaol" and "subgoal" in str(err.value)
     with pytest.raises(RecipeError) as err:
-        heads_from_table({"v": {"gamma": 1.5}})
-    assert err.value.key == "heads.v.gamma"
+        heads_from_table({"v": {"gamma": 1.5}}, file="r.toml")
+    assert err.value.key == "heads.v.gamma" and err.value.file == "r.toml"
     with pytest.raises(RecipeError) as err:
         heads_from_table({"v": {"past_end": "trunc"}})
     assert err.value.key == "heads.v.past_end"
-    with pytest.raises(RecipeError):
-        GoalHead("observation")
+    with pytest.raises(RecipeError) as err:
+        heads_from_table({"termination": {}}, file="r.toml")
+    assert err.value.key == "heads.termination" and "reserved" in err.value.message
+
+
+@pytest.mark.parametrize("kwargs, parameter, words", [
+    (dict(name="observation"), "name", "shared column"),
+    (dict(name="source"), "name", "shared column"),
+    (dict(name="2x"), "name", "letters, digits"),
+    (dict(name="v", weights={}), "weights", "source -> weight"),
+    (dict(name="v", weights={"futur": 1}), "weights.futur", "did you mean 'future'"),
+    (dict(name="v", weights={"future": -1}), "weights.future", ">= 0"),
+    (dict(name="v", weights={"future": 0}), "weights", "all source weights are zero"),
+    (dict(name="v", gamma=1.0), "gamma", "strictly between 0 and 1"),
+    (dict(name="v", past_end="trunc"), "past_end", "unknown past_end"),
+    (dict(name="v", steps=0), "steps", ">= 1"),
+])
+def test_goal_head_raises_parameter_errors_naming_itself(kwargs, parameter, words):
+    # a domain object names its own parameter, never a recipe file or key (goalkit.errors)
+    with pytest.raises(ParameterError) as err:
+        GoalHead(**kwargs)
+    assert err.value.owner == "GoalHead" and err.value.parameter == parameter and words in err.value.message
+    assert str(err.value).startswith(f"GoalHead {parameter}: ") and not isinstance(err.value, RecipeError)
+    mapped = err.value.in_recipe("r.toml", "heads.v")
+    assert isinstance(mapped, RecipeError) and mapped.key == f"heads.v.{parameter}" and mapped.file == "r.toml"
 
 
 def test_public_names():
