@@ -12,6 +12,13 @@
 * **rewarded fraction**: for relabelled goal rows, the fraction rewarded by each strategy as
   a function of the threshold (vectorised with one sort per strategy).
 
+With goal masks (the recipe's ``[mask]`` table, :class:`goalkit.masks.GoalMasks`), only the
+dimensions a goal constrains count: a state's mask is its episode's task mask (the table's
+entry for the episode's task id, or ``others``), every displacement and other-episode distance
+is the rule's distance over the mask of its first state, the nearest other-episode state is
+searched in those dimensions only, and a rewarded fraction scores each goal row on its own
+``goal_mask``. Without masks (``None``) nothing changes, and a full mask gives the same bits.
+
 ``d`` is the reward rule's distance (``RewardRule.distance``); for ``box`` it is the
 normalised ``max_d |delta_d| / tol_d``, so thresholds are then scales of the current box
 (1 = the recipe's tolerances). The nearest other-episode state is the nearest in plain
@@ -46,6 +53,27 @@ def state_goals(episodes: EpisodeSet, goal_map) -> np.ndarray:
     return np.asarray(goal_map(episodes, rows), dtype=np.float64)
 
 
+def state_masks(episodes: EpisodeSet, masks) -> np.ndarray | None:
+    """The task mask of every state's episode, uint8 (N + E, G); None without ``masks``.
+
+    Parameters
+    ----------
+    episodes : EpisodeSet
+    masks : goalkit.masks.GoalMasks or None
+        Episodes without a task id get the table's ``others`` mask.
+    """
+    if masks is None:
+        return None
+    tasks = (np.full(episodes.num_episodes, -1, np.int64) if episodes.task_ids is None
+             else np.asarray(episodes.task_ids, np.int64))
+    per_episode = masks.task_mask(tasks)
+    return np.repeat(per_episode, episodes.lengths + 1, axis=0)
+
+
+def _rows(mask, rows):
+    return None if mask is None else mask[rows]
+
+
 def _state_index(episodes: EpisodeSet):
     """Episode position, step and episode length of every state row."""
     lengths = episodes.lengths
@@ -54,13 +82,14 @@ def _state_index(episodes: EpisodeSet):
     return pos, step, lengths[pos]
 
 
-def step_displacement(episodes: EpisodeSet, goal_map, rule, goals=None) -> np.ndarray:
+def step_displacement(episodes: EpisodeSet, goal_map, rule, goals=None, mask=None) -> np.ndarray:
     """One-step displacement ``d(phi(s_t), phi(s_{t+1}))`` of every transition, float64 (N,).
 
-    ``goals`` may pass precomputed :func:`state_goals`.
+    ``goals`` may pass precomputed :func:`state_goals`; ``mask`` the :func:`state_masks`.
     """
     g = state_goals(episodes, goal_map) if goals is None else goals
-    return rule.distance(g[episodes.next_state_rows()], g[episodes.current_state_rows()])
+    cur = episodes.current_state_rows()
+    return rule.distance(g[episodes.next_state_rows()], g[cur], _rows(mask, cur))
 
 
 @dataclass(frozen=True)
@@ -97,8 +126,10 @@ def _check_quantiles(quantiles):
 
 
 def horizon_displacement(episodes: EpisodeSet, goal_map, rule, horizons=HORIZONS,
-                         quantiles=QUANTILES, goals=None) -> HorizonProfile:
+                         quantiles=QUANTILES, goals=None, mask=None) -> HorizonProfile:
     """Quantiles of ``d(phi(s_t), phi(s_{t+h}))`` over all ``t`` with ``t + h <= T``, per ``h``.
+
+    ``mask`` (the :func:`state_masks`, optional): the dimensions each state's goals constrain.
 
     Examples
     --------
@@ -122,7 +153,7 @@ def horizon_displacement(episodes: EpisodeSet, goal_map, rule, horizons=HORIZONS
         rows = np.flatnonzero(step + hh <= length)
         counts[i] = rows.size
         if rows.size:
-            values[i] = np.quantile(rule.distance(g[rows + hh], g[rows]), q, method="linear")
+            values[i] = np.quantile(rule.distance(g[rows + hh], g[rows], _rows(mask, rows)), q, method="linear")
     return HorizonProfile(h, q, values, counts)
 
 
@@ -163,11 +194,14 @@ class OtherEpisodeDistances:
 
 
 def other_episode_distances(episodes: EpisodeSet, goal_map, rule, *, sample: int = 2000,
-                            seed: int = 0, goals=None) -> OtherEpisodeDistances:
+                            seed: int = 0, goals=None, mask=None) -> OtherEpisodeDistances:
     """Distance from sampled states to the nearest sampled state of a different episode.
 
     Uses an exact faiss ``IndexFlatL2`` over the sample, asking for ``k`` neighbours and
-    doubling ``k`` for the states whose ``k`` nearest are all from their own episode.
+    doubling ``k`` for the states whose ``k`` nearest are all from their own episode. With
+    ``mask`` (the :func:`state_masks`), each sampled state looks for its nearest in the
+    dimensions of its own mask only (one index per distinct mask, the others set to 0), and
+    both distances count those dimensions only.
     """
     import faiss
 
@@ -177,26 +211,34 @@ def other_episode_distances(episodes: EpisodeSet, goal_map, rule, *, sample: int
     ep = pos[rows]
     x = np.ascontiguousarray(g[rows], dtype=np.float32)
     n = rows.size
-    index = faiss.IndexFlatL2(x.shape[1])
-    index.add(x)
     nb = np.full(n, -1, dtype=np.int64)
-    todo = np.arange(n)
-    k = min(16, n)
-    while todo.size and k > 0:  # a loop over doubling rounds
-        _, found = index.search(x[todo], k)
-        other = (found >= 0) & (ep[np.maximum(found, 0)] != ep[todo][:, None])
-        hit = other.any(axis=1)
-        first = np.argmax(other, axis=1)
-        nb[todo[hit]] = found[hit, first[hit]]
-        todo = todo[~hit]
-        if k >= n:
-            break
-        k = min(2 * k, n)
+    m = _rows(mask, rows)
+    if m is None:
+        groups = [(x, np.arange(n))]
+    else:  # one search space per distinct mask (a handful: one per task of the table)
+        kinds, which = np.unique(m, axis=0, return_inverse=True)
+        groups = [(np.ascontiguousarray(x * kinds[i].astype(np.float32)), np.flatnonzero(which.reshape(-1) == i))
+                  for i in range(len(kinds))]
+    for xs, todo in groups:  # a loop over distinct masks
+        index = faiss.IndexFlatL2(xs.shape[1])
+        index.add(xs)
+        k = min(16, n)
+        while todo.size and k > 0:  # a loop over doubling rounds
+            _, found = index.search(xs[todo], k)
+            other = (found >= 0) & (ep[np.maximum(found, 0)] != ep[todo][:, None])
+            hit = other.any(axis=1)
+            first = np.argmax(other, axis=1)
+            nb[todo[hit]] = found[hit, first[hit]]
+            todo = todo[~hit]
+            if k >= n:
+                break
+            k = min(2 * k, n)
     has = nb >= 0
     nrows = np.where(has, rows[np.maximum(nb, 0)], -1)
     a, b = g[rows], g[rows[np.maximum(nb, 0)]]
-    euc = np.where(has, np.sqrt(np.sum((a - b) ** 2, axis=1)), np.nan)
-    dist = np.where(has, rule.distance(a, b), np.nan)
+    diff2 = (a - b) ** 2 if m is None else (a - b) ** 2 * m  # x * 1 == x: a full mask changes no bit
+    euc = np.where(has, np.sqrt(np.sum(diff2, axis=1)), np.nan)
+    dist = np.where(has, rule.distance(a, b, m), np.nan)
     return OtherEpisodeDistances(rows, nrows, euc, dist)
 
 
@@ -225,7 +267,7 @@ class RewardedFraction:
                 "fraction": self.fraction.tolist(), "counts": self.counts.tolist()}
 
 
-def rewarded_fraction(achieved, goal, strategy, rule, thresholds) -> RewardedFraction:
+def rewarded_fraction(achieved, goal, strategy, rule, thresholds, mask=None) -> RewardedFraction:
     """Fraction of goal rows with ``d <= thr`` (``<`` for an exclusive rule), per strategy.
 
     Parameters
@@ -238,6 +280,8 @@ def rewarded_fraction(achieved, goal, strategy, rule, thresholds) -> RewardedFra
         Gives the distance and the inclusiveness.
     thresholds : array_like of float (K,)
         Thresholds to evaluate (for ``box``: scales of the current tolerances).
+    mask : array_like of uint8 (M, G), optional
+        Each row's ``goal_mask``: only those dimensions count (None: every one).
 
     Examples
     --------
@@ -249,7 +293,7 @@ def rewarded_fraction(achieved, goal, strategy, rule, thresholds) -> RewardedFra
     """
     s = np.asarray(strategy).astype(np.int64)
     rule.check_dim(np.shape(achieved)[-1])
-    d = rule.distance(achieved, goal)
+    d = rule.distance(achieved, goal, mask)
     if s.shape != d.shape:
         raise TuningError(f"expected one strategy code per goal row ({d.shape[0]}), got shape {s.shape}",
                           key="strategy")
@@ -302,10 +346,12 @@ class Diagnostics:
 
 
 def diagnose(episodes: EpisodeSet, goal_map, rule, *, horizons=HORIZONS, quantiles=QUANTILES,
-             sample: int = 2000, seed: int = 0) -> Diagnostics:
+             sample: int = 2000, seed: int = 0, masks=None) -> Diagnostics:
     """Run every label-free diagnostic on ``episodes`` (goal vectors computed once).
 
     ``episodes`` is held in memory whole: pass a chunk or a sample of episodes of a large log.
+    With ``masks`` (:class:`goalkit.masks.GoalMasks`), only the dimensions of each state's
+    episode task mask count (module docstring); a full mask gives the same numbers as None.
 
     Raises
     ------
@@ -314,11 +360,12 @@ def diagnose(episodes: EpisodeSet, goal_map, rule, *, horizons=HORIZONS, quantil
     """
     rule.check_dim(goal_map.dim)
     g = state_goals(episodes, goal_map)
+    m = state_masks(episodes, masks)
     thr = 1.0 if rule.distance_name == "box" else float(rule.threshold)
     return Diagnostics(
-        step=step_displacement(episodes, goal_map, rule, goals=g),
-        horizon=horizon_displacement(episodes, goal_map, rule, horizons, quantiles, goals=g),
-        other=other_episode_distances(episodes, goal_map, rule, sample=sample, seed=seed, goals=g),
+        step=step_displacement(episodes, goal_map, rule, goals=g, mask=m),
+        horizon=horizon_displacement(episodes, goal_map, rule, horizons, quantiles, goals=g, mask=m),
+        other=other_episode_distances(episodes, goal_map, rule, sample=sample, seed=seed, goals=g, mask=m),
         threshold=thr)
 
 

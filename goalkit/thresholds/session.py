@@ -50,7 +50,8 @@ from goalkit.pipeline.plan import make_plan, open_source, strategy_names
 from goalkit.pipeline.summary import HIGH_REACHED, LOW_REACHED
 from goalkit.reward import DISTANCES, RewardRule, within
 from goalkit.thresholds.box import suggest_box
-from goalkit.thresholds.diagnostics import diagnose, rewarded_fraction, state_goals, threshold_warnings
+from goalkit.thresholds.diagnostics import (diagnose, rewarded_fraction, state_goals, state_masks,
+                                            threshold_warnings)
 from goalkit.thresholds.labels import LabelledPairs, concat_pairs, load_labelled_pairs, pairs_from_success
 from goalkit.thresholds.metrics import CHOOSERS, check_chooser
 from goalkit.thresholds.plots import plot_diagnostics, plot_labelled
@@ -249,7 +250,7 @@ def _cast(x, dtype) -> np.ndarray:
 
 
 def _chunk_rows(plan, chunk, gdtype):
-    """(achieved, goal, strategy) of every goal row the build makes for ``chunk``."""
+    """(achieved, goal, strategy, goal_mask or None) of every goal row the build makes for ``chunk``."""
     rows = relabel_chunk(plan, chunk)
     phi = _cast(plan.goal_map(chunk, np.arange(chunk.observations.shape[0])), gdtype)
     out = []
@@ -257,7 +258,7 @@ def _chunk_rows(plan, chunk, gdtype):
         pos = chunk.position_of(cols["source_episode"])
         nxt = chunk.state_row(pos, np.asarray(cols["source_step"], dtype=np.int64) + 1)
         out.append((phi[nxt].astype(gdtype), np.asarray(cols["goal"]).astype(gdtype),
-                    np.asarray(cols["strategy"]).astype(np.uint8)))
+                    np.asarray(cols["strategy"]).astype(np.uint8), cols.get("goal_mask")))
     return out
 
 
@@ -283,12 +284,15 @@ def suggested_range(diagnostics, rule: RewardRule) -> dict:
     return out
 
 
-def _rewarded_at(achieved, goal, strategy, rule, points: dict, names: dict) -> dict:
-    """Rewarded fraction per strategy (and over all rows) at a few named thresholds."""
+def _rewarded_at(achieved, goal, strategy, rule, points: dict, names: dict, mask=None) -> dict:
+    """Rewarded fraction per strategy (and over all rows) at a few named thresholds.
+
+    ``mask``: each row's ``goal_mask`` (only those dimensions count), or None.
+    """
     labels = list(points)
     values = np.array([points[k] for k in labels], dtype=np.float64)
-    rf = rewarded_fraction(achieved, goal, strategy, rule, values)
-    d = rule.distance(achieved, goal)
+    rf = rewarded_fraction(achieved, goal, strategy, rule, values, mask)
+    d = rule.distance(achieved, goal, mask)
     side = within(d[:, None], values[None, :], rule.inclusive)
     out = {"thresholds": dict(zip(labels, values.tolist())), "strategies": {},
            "all": {"rows": int(d.size), "fraction": dict(zip(labels, side.mean(axis=0).tolist()))}}
@@ -408,6 +412,8 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
     achieved = np.concatenate([r[0] for r in rows]).astype(np.float64)
     goal = np.concatenate([r[1] for r in rows]).astype(np.float64)
     strategy = np.concatenate([r[2] for r in rows])
+    # each row's goal_mask as the build stores it (task masks and random masks); None without [mask]
+    row_mask = None if plan.masks is None else np.concatenate([r[3] for r in rows])
 
     pairs = file_pairs if file_pairs is not None else (concat_pairs(succ) if from_success else None)
     candidates, winner, box, notes = [], None, None, []
@@ -443,12 +449,12 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
     else:
         diag_rule = recipe.reward
 
-    diag = diagnose(episodes, gmap, diag_rule, sample=sample_states, seed=recipe.seed)
+    diag = diagnose(episodes, gmap, diag_rule, sample=sample_states, seed=recipe.seed, masks=plan.masks)
     summary = diag.summary()
     rng_ = suggested_range(diag, diag_rule)
     # label-free, from the logs' temporal order (goalkit.thresholds.temporal): holds when episodes overlap
     rng_["temporal"] = temporal_threshold(state_goals(episodes, gmap), episodes.offsets, diag_rule.distance,
-                                          seed=recipe.seed).as_dict()
+                                          seed=recipe.seed, mask=state_masks(episodes, plan.masks)).as_dict()
     warnings = threshold_warnings(summary)
     if not rng_["ok"] and rng_["low"] is not None and rng_["high"] is not None:
         warnings.append(f"no clean range: half the typical one-step change ({rng_['low']:.4g}) is above "
@@ -467,11 +473,11 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
     if rng_["high"] is not None:
         points["range_high"] = rng_["high"]
     snames = strategy_names(recipe.mixture)
-    rewarded_at = _rewarded_at(achieved, goal, strategy, diag_rule, points, snames)
-    d = diag_rule.distance(achieved, goal)
+    rewarded_at = _rewarded_at(achieved, goal, strategy, diag_rule, points, snames, row_mask)
+    d = diag_rule.distance(achieved, goal, row_mask)
     ref = max(points.values()) if points else 1.0
     top = max(2.0 * ref, float(np.quantile(d, 0.95)) if d.size else 1.0, 1e-12)
-    curve = rewarded_fraction(achieved, goal, strategy, diag_rule, np.linspace(0.0, top, CURVE_POINTS))
+    curve = rewarded_fraction(achieved, goal, strategy, diag_rule, np.linspace(0.0, top, CURVE_POINTS), row_mask)
 
     for label, frac in rewarded_at["all"]["fraction"].items():
         if label in ("recipe", "suggested") and not LOW_REACHED <= frac <= HIGH_REACHED:

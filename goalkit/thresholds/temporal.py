@@ -101,7 +101,7 @@ def knee(d, points: int = 200):
 
 
 def temporal_threshold(goals, transition_offsets, distance, *, near_steps: int = 1, far_steps: int = 10,
-                       seed: int = 0, pairs: int = PAIRS) -> TemporalThreshold:
+                       seed: int = 0, pairs: int = PAIRS, mask=None) -> TemporalThreshold:
     """Recommend a goal threshold from the logs' temporal order (no labels).
 
     Parameters
@@ -116,16 +116,22 @@ def temporal_threshold(goals, transition_offsets, distance, *, near_steps: int =
     seed : int
     pairs : int
         Pairs drawn of each kind (same episode, other episode).
+    mask : ndarray of uint8, shape (N, G), optional
+        The goal dimensions of each state's episode task mask: a pair ``(a, b)`` is compared
+        on ``a``'s dimensions only (``distance(x[a], x[b], mask[a])``), and states join in the
+        graph on the dimensions of their own mask; None: every one.
     """
     off = np.asarray(transition_offsets, dtype=np.int64)
     x = np.asarray(goals, dtype=np.float64)
-    graph = StateGraph.from_logs(x, off, GraphSettings(join_radius=0.0, join_neighbours=8,
+    # with masks, states join on the dimensions of their own mask only (x * 1 == x: a full mask
+    # changes no bit), so a dimension no mask keeps never changes the graph
+    graph = StateGraph.from_logs(x if mask is None else x * mask, off, GraphSettings(join_radius=0.0, join_neighbours=8,
                                                        horizon=4 * int(far_steps)))
     a, b = _pairs(off, seed, int(pairs), int(near_steps), int(far_steps))
     steps = graph.distances(a, b)
     near = (steps >= 0) & (steps <= near_steps)
     far = steps >= far_steps
-    d = np.asarray(distance(x[a], x[b]), dtype=np.float64)
+    d = np.asarray(distance(x[a], x[b]) if mask is None else distance(x[a], x[b], mask[a]), dtype=np.float64)
     basis = (f"steps between logged states (the logs' graph: transitions and identical states of other "
              f"episodes): pairs <= {near_steps} step(s) apart against pairs >= {far_steps} steps apart; "
              f"best Youden's J of 'distance <= threshold'")

@@ -163,3 +163,141 @@ def test_labelled_pairs_file_takes_the_task_through_its_episode_column(logs, tmp
     np.testing.assert_array_equal(res.winner.tuner.distances_, full)
     assert any(f"{y.size} of {y.size} labelled pairs are scored with the [mask] table's mask of other "
                f"tasks: the pairs carry no episode column" in n for n in res.notes)
+
+
+# ---- label-free diagnostics and rewarded fractions under masks ------------------------------
+# Property (the masks' contract, docs/reward.md): a dimension no goal's mask keeps never changes
+# a number; a full mask gives the numbers of no mask bit for bit (x * 1 == x and 0 + x == x in
+# IEEE 754 arithmetic).
+
+import json  # noqa: E402
+
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+from goalkit.goals.goalmap import IndexGoalMap  # noqa: E402
+from goalkit.logs.episodes import EpisodeSet  # noqa: E402
+from goalkit.masks import MaskSpec  # noqa: E402
+from goalkit.reward import RewardRule  # noqa: E402
+from goalkit.thresholds.diagnostics import diagnose, rewarded_fraction, state_masks  # noqa: E402
+from goalkit.thresholds.temporal import temporal_threshold  # noqa: E402
+
+G = 4
+
+
+def _episodes(seed, n_eps=12):
+    r = np.random.default_rng(seed)
+    lengths = r.integers(2, 30, n_eps)
+    steps = r.normal(0, 0.05, (int(lengths.sum() + n_eps), G))
+    obs = np.concatenate([np.cumsum(steps[a:a + t + 1], axis=0) + r.uniform(0, 1, G)
+                          for a, t in zip(np.concatenate([[0], np.cumsum(lengths + 1)[:-1]]), lengths)])
+    return EpisodeSet(observations=obs, actions=np.zeros((int(lengths.sum()), 1)),
+                      offsets=np.concatenate([[0], np.cumsum(lengths)]), episode_ids=np.arange(n_eps) + 3,
+                      task_ids=np.arange(n_eps) % 3)
+
+
+def _same(a, b):
+    np.testing.assert_array_equal(np.asarray(a), np.asarray(b))  # NaN equals NaN here
+
+
+def _numbers(eps, rule, masks):
+    diag = diagnose(eps, IndexGoalMap(tuple(range(G))), rule, sample=150, seed=2, masks=masks)
+    goals = np.asarray(eps.observations, dtype=np.float64)
+    temporal = temporal_threshold(goals, eps.offsets, rule.distance, seed=2, pairs=400,
+                                  mask=state_masks(eps, masks)).as_dict()
+    return diag, temporal
+
+
+def _check_equal(x, y):
+    (d1, t1), (d2, t2) = x, y
+    _same(d1.step, d2.step)
+    _same(d1.horizon.values, d2.horizon.values)
+    _same(d1.other.neighbour_rows, d2.other.neighbour_rows)
+    _same(d1.other.distance, d2.other.distance)
+    _same(d1.other.euclidean, d2.other.euclidean)
+    assert json.dumps(d1.summary(), sort_keys=True) == json.dumps(d2.summary(), sort_keys=True)  # NaN-safe
+    assert json.dumps(t1, sort_keys=True) == json.dumps(t2, sort_keys=True)
+
+
+TABLE = {"groups": {"xy": [0, 1], "z": [2]}, "tasks": {"0": ["xy"], "1": [0]}, "others": ["xy"]}
+
+
+@pytest.mark.parametrize("distance", ["euclidean", "l1", "chebyshev"])
+@given(seed=st.integers(0, 2**31), junk=st.integers(0, 2**31))
+@settings(max_examples=15, deadline=None)
+def test_diagnostics_never_see_a_dimension_no_mask_keeps(distance, seed, junk):
+    # every task's mask lies within x-y (dimensions 0, 1): changing z and w (2, 3) changes nothing
+    eps = _episodes(seed)
+    masks = MaskSpec.from_table(TABLE).resolve(G, task_ids=[0, 1, 2])
+    rule = RewardRule(distance, 0.05)
+    before = _numbers(eps, rule, masks)
+    obs = eps.observations.copy()
+    obs[:, 2:] = np.random.default_rng(junk).normal(0, 10, (len(obs), 2))
+    after = _numbers(EpisodeSet(observations=obs, actions=eps.actions, offsets=eps.offsets,
+                                episode_ids=eps.episode_ids, task_ids=eps.task_ids), rule, masks)
+    _check_equal(before, after)
+    # ... while without masks the same change moves them (the check can fail)
+    plain = _numbers(eps, rule, None)[0]
+    moved = _numbers(EpisodeSet(observations=obs, actions=eps.actions, offsets=eps.offsets,
+                                episode_ids=eps.episode_ids, task_ids=eps.task_ids), rule, None)[0]
+    assert not np.array_equal(plain.step, moved.step)
+
+
+@given(seed=st.integers(0, 2**31), junk=st.integers(0, 2**31))
+@settings(max_examples=40, deadline=None)
+def test_rewarded_fraction_never_sees_a_dimension_the_row_mask_leaves_out(seed, junk):
+    r = np.random.default_rng(seed)
+    m = 200
+    achieved, goal = r.normal(0, 0.1, (m, G)), r.normal(0, 0.1, (m, G))
+    mask = (r.random((m, G)) < 0.5).astype(np.uint8)
+    mask[np.arange(m), r.integers(0, G, m)] = 1  # never an empty mask
+    strategy = r.integers(0, 4, m)
+    rule = RewardRule("euclidean", 0.1)
+    thresholds = np.linspace(0, 0.4, 9)
+    before = rewarded_fraction(achieved, goal, strategy, rule, thresholds, mask)
+    noise = np.random.default_rng(junk).normal(0, 10, (2, m, G))
+    out = mask == 0
+    a2, g2 = np.where(out, noise[0], achieved), np.where(out, noise[1], goal)
+    after = rewarded_fraction(a2, g2, strategy, rule, thresholds, mask)
+    _same(before.fraction, after.fraction)
+    _same(before.counts, after.counts)
+
+
+@pytest.mark.parametrize("distance", ["euclidean", "l1", "chebyshev", "box", "cosine"])
+def test_a_full_mask_gives_the_numbers_of_no_mask_bit_for_bit(distance):
+    eps = _episodes(5)
+    full = MaskSpec.from_table({"others": [0, 1, 2, 3]}).resolve(G, task_ids=[0, 1, 2])
+    rule = RewardRule(distance, (0.05,) * G if distance == "box" else 0.05)
+    _check_equal(_numbers(eps, rule, full), _numbers(eps, rule, None))
+    r = np.random.default_rng(1)
+    a, g, s = r.normal(0, 0.1, (300, G)), r.normal(0, 0.1, (300, G)), r.integers(0, 3, 300)
+    t = np.linspace(0, 1, 17)
+    _same(rewarded_fraction(a, g, s, rule, t, np.ones((300, G), np.uint8)).fraction,
+          rewarded_fraction(a, g, s, rule, t).fraction)
+
+
+def test_tune_without_labels_full_mask_equals_no_mask_and_masked_equals_the_masked_goal(logs):
+    d, _ = logs
+    plain = goalkit.tune(_recipe(d, "nolab-plain"), n_resamples=0).as_dict()
+    full = goalkit.tune(_recipe(d, "nolab-full", mask='\n[mask]\nothers = ["pos", "noise"]\n'),
+                        n_resamples=0).as_dict()
+    keys = ("diagnostics", "suggested_range", "rewarded_fraction", "warnings")
+    for k in keys:
+        assert full[k] == plain[k], k
+    assert full["masks"] is not None and plain["masks"] is None
+    # a mask over pos only gives the numbers of a goal of pos alone (the noise column never
+    # counts); future goals here, as the log's task goals have both columns
+    def future(name, fields, mask=""):
+        p = d / f"{name}.toml"
+        p.write_text(RECIPE.format(fields=fields, out=name).replace("original = 1", "future = 1") + mask)
+        return goalkit.tune(p, n_resamples=0).as_dict()
+
+    masked = future("nolab-masked", '["pos", "noise"]', MASK)
+    pos = future("nolab-pos", '["pos"]')
+    plain = future("nolab-both", '["pos", "noise"]')
+    for k in ("suggested_range", "rewarded_fraction"):
+        assert masked[k] == pos[k], k
+    md, pd_ = dict(masked["diagnostics"]), dict(pos["diagnostics"])
+    md.pop("rule"), pd_.pop("rule")
+    assert md == pd_
+    assert masked["diagnostics"] != plain["diagnostics"]
