@@ -2,7 +2,7 @@
 
 References outside the project: scipy.sparse.csgraph.shortest_path (unweighted, i.e.
 breadth-first search; scipy documentation) and networkx.single_source_shortest_path_length
-when networkx is installed. The gridworld logs are generated here: every step moves one cell.
+(networkx is a test dependency; tests/goals/test_stategraph_networkx.py has the fuller check). The gridworld logs are generated here: every step moves one cell.
 """
 
 import numpy as np
@@ -79,7 +79,7 @@ def test_distances_equal_scipy_bfs(one_way):
 
 
 def test_distances_equal_networkx():
-    nx = pytest.importorskip("networkx")
+    import networkx as nx
     cells, offsets = grid_logs(episodes=6, length=20)
     g = StateGraph.from_logs(cells, offsets, GraphSettings(join_neighbours=200, horizon=None))
     G = nx.DiGraph(reference_matrix(cells, offsets))
