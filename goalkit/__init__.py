@@ -38,7 +38,8 @@ _LAZY = {
     "GoalSampler": "goalkit.write.sampler",
     "HeadSampler": "goalkit.write.headsampler", "GoalHead": "goalkit.heads",
     "NumpyBatches": "goalkit.write.adapters", "TorchBatches": "goalkit.write.adapters",
-    "TorchRows": "goalkit.write.adapters",
+    "TorchRows": "goalkit.write.adapters", "SampledBatches": "goalkit.write.adapters",
+    "TorchSampledBatches": "goalkit.write.adapters",
     "info": "goalkit.write.info", "write_card": "goalkit.write.card",
     "make_demo": "goalkit.demo.files",
     # logs

@@ -1,6 +1,7 @@
 """Training-framework adapters over a built set: a numpy batch iterator, and PyTorch datasets.
 
-``NumpyBatches`` needs nothing beyond numpy (JAX, or any other framework, takes its arrays).
+``NumpyBatches`` needs nothing beyond numpy (JAX, or any other framework, takes its arrays);
+``SampledBatches`` and ``TorchSampledBatches`` do the same for the on-the-fly samplers.
 ``TorchRows`` (map-style) and ``TorchBatches`` (iterable, sharded) subclass PyTorch's dataset
 classes; torch is an optional extra (``pip install goalkit[torch]``) imported only when one of
 them is first used, so ``import goalkit`` never imports it.
@@ -87,7 +88,9 @@ def _dtypes(dtypes) -> dict:
 
 
 def _cast(batch: dict, dtypes: dict) -> dict:
-    return {k: cast_checked(k, v, dtypes[k]) if k in dtypes else v for k, v in batch.items()}
+    """Cast the columns named in ``dtypes``; a nested dict (a goal head's columns) by the same names."""
+    return {k: _cast(v, dtypes) if isinstance(v, dict) else cast_checked(k, v, dtypes[k]) if k in dtypes else v
+            for k, v in batch.items()}
 
 
 class NumpyBatches:
@@ -162,6 +165,66 @@ class NumpyBatches:
         return self._batches()
 
 
+class SampledBatches:
+    """Batches of an on-the-fly sampler (:class:`goalkit.GoalSampler`, :class:`goalkit.HeadSampler`).
+
+    Batch indices ``start, start + 1, ...`` (up to ``stop``, or forever) are dealt to shards:
+    shard ``k`` of ``n`` (data-loader workers times processes, :func:`shard_index`) draws indices
+    ``start + k, start + k + n, ...``, so shards never draw the same batch and together draw
+    every index once. Each batch is the sampler's batch of that index: replayable, whatever the
+    sharding. Columns are cast as in :class:`NumpyBatches` (a head's dict by the same names).
+
+    Parameters
+    ----------
+    sampler : GoalSampler or HeadSampler
+        Anything with ``batch(batch_size, index) -> dict``.
+    batch_size : int
+    start : int
+        First batch index (resume a run from here).
+    stop : int, optional
+        One past the last batch index; None: an endless stream.
+    rank, world_size : int
+    dtypes : dict, optional
+        As :class:`NumpyBatches` (default :data:`DEFAULT_DTYPES`; ``{}`` keeps the sampler's dtypes).
+    index : bool
+        Add ``"batch_index"``: the batch's index (a 0-d int64 array).
+
+    Examples
+    --------
+    >>> sampler = HeadSampler(load_recipe("gantry-demo/gantry-recipe.toml"))   # doctest: +SKIP
+    >>> for batch in SampledBatches(sampler, 256, stop=1000):                   # doctest: +SKIP
+    ...     step(batch["observation"], batch["value"]["goal"], batch["value"]["reward"])
+    """
+
+    def __init__(self, sampler, batch_size: int = 256, *, start: int = 0, stop: int | None = None, rank: int = 0,
+                 world_size: int = 1, dtypes=None, index: bool = False):
+        if not callable(getattr(sampler, "batch", None)):
+            raise DatasetError("expected a sampler with a batch(batch_size, index) method")
+        if int(batch_size) < 1 or int(start) < 0 or (stop is not None and int(stop) < int(start)):
+            raise DatasetError(f"expected batch_size >= 1 and 0 <= start <= stop, got batch_size {batch_size}, "
+                               f"start {start}, stop {stop}")
+        self.sampler = sampler
+        self.batch_size = int(batch_size)
+        self.start, self.stop = int(start), None if stop is None else int(stop)
+        self.rank, self.world_size = int(rank), int(world_size)
+        shard_index(self.rank, self.world_size)  # checked here, once
+        self.dtypes = _dtypes(dtypes)
+        self.index = bool(index)
+
+    def _batches(self, worker: int = 0, workers: int = 1) -> Iterator[dict]:
+        shard, count = shard_index(self.rank, self.world_size, worker, workers)
+        b = self.start + shard
+        while self.stop is None or b < self.stop:
+            batch = _cast(self.sampler.batch(self.batch_size, b), self.dtypes)
+            if self.index:
+                batch["batch_index"] = np.array(b, dtype=np.int64)
+            yield batch
+            b += count
+
+    def __iter__(self) -> Iterator[dict]:
+        return self._batches()
+
+
 # ---- PyTorch (imported on first use) -----------------------------------------------------
 
 def _torch():
@@ -173,10 +236,14 @@ def _torch():
 
 
 def _to_tensors(batch: dict, copy: bool = False) -> dict:
-    """Tensors sharing the arrays' memory (``copy``: of copies; a 0-d value gives a 0-d tensor)."""
+    """Tensors sharing the arrays' memory (``copy``: of copies; a 0-d value gives a 0-d tensor);
+    a nested dict (a goal head's columns) becomes a dict of tensors."""
     torch = _torch()
     out = {}
     for k, v in batch.items():
+        if isinstance(v, dict):
+            out[k] = _to_tensors(v, copy)
+            continue
         writable = isinstance(v, np.ndarray) and v.flags.writeable
         out[k] = torch.from_numpy(np.array(v, order="C") if copy or not writable else np.asarray(v, order="C"))
     return out
@@ -288,14 +355,38 @@ def _make_torch_classes() -> dict:
             data = _to_tensors({k: v[idx] for k, v in self._columns().items()})
             return [{k: v[j] for k, v in data.items()} for j in range(len(idx))]
 
-    for cls in (TorchBatches, TorchRows):
+    class TorchSampledBatches(torch.utils.data.IterableDataset):
+        """An on-the-fly sampler's batches as tensors, sharded by worker and process.
+
+        Use with ``DataLoader(dataset, batch_size=None, num_workers=N)``: data-loader worker
+        ``w`` of process ``rank`` draws the batch indices of shard ``(rank * N + w, world_size * N)``
+        (:class:`SampledBatches`), so no two workers draw the same batch. Parameters as
+        :class:`SampledBatches` (``rank`` / ``world_size`` default to ``torch.distributed``'s).
+        """
+
+        def __init__(self, sampler, batch_size: int = 256, *, start: int = 0, stop: int | None = None,
+                     rank: int | None = None, world_size: int | None = None, dtypes=None, index: bool = False):
+            super().__init__()
+            if rank is None or world_size is None:
+                rank, world_size = _distributed()
+            self.source = SampledBatches(sampler, batch_size, start=start, stop=stop, rank=rank,
+                                         world_size=world_size, dtypes=dtypes, index=index)
+
+        def __iter__(self):
+            info = torch.utils.data.get_worker_info()
+            worker, workers = (0, 1) if info is None else (info.id, info.num_workers)
+            for batch in self.source._batches(worker, workers):
+                yield _to_tensors(batch)
+
+    classes = {"TorchBatches": TorchBatches, "TorchRows": TorchRows, "TorchSampledBatches": TorchSampledBatches}
+    for cls in classes.values():
         cls.__module__ = __name__
         cls.__qualname__ = cls.__name__
-    return {"TorchBatches": TorchBatches, "TorchRows": TorchRows}
+    return classes
 
 
 def __getattr__(name: str):
-    if name in ("TorchBatches", "TorchRows"):
+    if name in ("TorchBatches", "TorchRows", "TorchSampledBatches"):
         classes = _make_torch_classes()
         globals().update(classes)
         return classes[name]

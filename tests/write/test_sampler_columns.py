@@ -206,3 +206,38 @@ def test_from_arrays_takes_the_flags_and_sources():
     assert "graph_steps" not in b["g"] and "task_reward" not in b
     with pytest.raises(ValueError, match="termination: expected one value per transition"):
         HeadSampler.from_arrays(goals, offsets, RULE, [GoalHead("g")], terminations=term[:-1])
+
+
+def test_sampler_adapters_shard_batch_indices_and_carry_the_columns(cells):
+    import torch
+    from torch.utils.data import DataLoader
+
+    import goalkit
+
+    recipe, _ = cells
+    sampler = HeadSampler(recipe)
+    # two processes of a distributed job: disjoint batch indices, together 0 .. 9 once each
+    parts = [list(goalkit.SampledBatches(sampler, 64, stop=10, rank=r, world_size=2, index=True)) for r in (0, 1)]
+    got = sorted(int(b["batch_index"]) for p in parts for b in p)
+    assert got == list(range(10)) and len(parts[0]) == len(parts[1]) == 5
+    for b in parts[1]:
+        direct = sampler.batch(64, int(b["batch_index"]))
+        assert b["value"]["goal"].dtype == np.float32 and b["source"].dtype == np.int64  # pinned
+        np.testing.assert_array_equal(b["value"]["goal"], direct["value"]["goal"].astype(np.float32))
+        np.testing.assert_array_equal(b["time_limit"], direct["time_limit"])
+        np.testing.assert_array_equal(b["policy"]["graph_steps"], direct["policy"]["graph_steps"])
+    # PyTorch, two data-loader workers: every batch index once, the same batches as drawn directly
+    ds = goalkit.TorchSampledBatches(sampler, 32, start=3, stop=11, index=True, rank=0, world_size=1)
+    assert isinstance(ds, torch.utils.data.IterableDataset)
+    batches = list(DataLoader(ds, batch_size=None, num_workers=2))
+    assert sorted(int(b["batch_index"]) for b in batches) == list(range(3, 11))
+    for b in batches:
+        direct = sampler.batch(32, int(b["batch_index"]))
+        np.testing.assert_array_equal(b["termination"].numpy(), direct["termination"])
+        np.testing.assert_array_equal(b["value"]["reward"].numpy(), direct["value"]["reward"].astype(np.float32))
+        assert b["observation"].dtype == torch.float32 and b["value"]["graph_steps"].dtype == torch.int64
+    # a GoalSampler too (flat columns)
+    flat = next(iter(goalkit.SampledBatches(GoalSampler(recipe), 16, stop=1)))
+    assert flat["goal"].dtype == np.float32 and {"termination", "time_limit", "graph_steps"} <= set(flat)
+    with pytest.raises(goalkit.DatasetError):
+        goalkit.SampledBatches(object(), 16)
