@@ -74,7 +74,9 @@ def _mask_lines(masks) -> list[str]:
     others = "every dimension" if masks["others"] is None else ", ".join(map(str, masks["others"]))
     return [f"masks:      per task: {tasks}; other tasks: {others}; random share "
             f"{_g(masks['random_share'])}",
-            "            labelled pairs are scored on their episode's task mask (no random masks)"]
+            "            labelled pairs are scored on their episode's task mask (no random masks)",
+            "            diagnostics use each state's episode task mask; rewarded fractions each goal "
+            "row's goal_mask"]
 
 
 def _labelled(d: dict) -> list[str]:
