@@ -130,6 +130,7 @@ def test_masked_tuning_equals_tuning_on_the_masked_column_alone(logs):
 
     text = masked.render()
     assert "labelled pairs are scored on their episode's task mask (no random masks)" in text
+    assert "diagnostics use each state's episode task mask; rewarded fractions each goal row's goal_mask" in text
     assert "every goal dimension" not in text
     assert "masks:" not in plain.render()
 
