@@ -233,10 +233,11 @@ class Ros1Bag:
                 raise BadBag(f"record at byte {at} has op 0x{op[0]:02x}; expected a {what} (op 0x{expect:02x})")
         return fields, at + 4 + hlen
 
-    def _data_len(self, at: int, what: str) -> int:
+    def _data_len(self, at: int, what: str, rec: int) -> int:
+        """The data length of the record at byte ``rec`` (its field is at ``at``)."""
         (n,) = _U32.unpack(self._read(at, 4, what))
         if at + 4 + n > self.size:
-            raise BadBag(f"{what} data at byte {at + 4} declares {n} bytes; the file ends at byte "
+            raise BadBag(f"{what} at byte {rec} declares {n} bytes of data; the file ends at byte "
                          f"{self.size} (truncated bag?)")
         return n
 
@@ -268,8 +269,9 @@ class Ros1Bag:
         at = index_pos
         raw_conns = []
         for _ in range(conn_count):
+            rec = at
             fields, at = self._record_header(at, OP_CONN, "connection record")
-            n = self._data_len(at, "connection record")
+            n = self._data_len(at, "connection record", rec)
             info = _fields(self._read(at + 4, n, "connection record"), at)
             raw_conns.append((fields, info, at))
             at += 4 + n
@@ -283,7 +285,7 @@ class Ros1Bag:
             pos = _u(fields, "chunk_pos", "<Q", start)
             count = _u(fields, "count", "<I", start)
             t_start = _time(fields, "start_time", start) if count else (1 << 63) - 1
-            n = self._data_len(at, "chunk info record")
+            n = self._data_len(at, "chunk info record", start)
             if n != 8 * count:
                 raise BadBag(f"chunk info record at byte {start} holds {n} bytes for {count} connections; "
                              f"expected {8 * count}")
@@ -333,7 +335,7 @@ class Ros1Bag:
         usize = _u(fields, "size", "<I", pos)
         if usize > MAX_CHUNK:
             raise BadBag(f"chunk at byte {pos} declares {usize} uncompressed bytes; expected at most {MAX_CHUNK}")
-        datasize = self._data_len(at, "chunk record")
+        datasize = self._data_len(at, "chunk record", pos)
         datapos = at + 4
         at = datapos + datasize
         entries = []
@@ -347,7 +349,7 @@ class Ros1Bag:
                              f"{_u(fields, 'ver', '<I', start)}; expected 1")
             cid = _u(fields, "conn", "<I", start)
             n = _u(fields, "count", "<I", start)
-            size = self._data_len(at, "index data record")
+            size = self._data_len(at, "index data record", start)
             if size != 12 * n:
                 raise BadBag(f"index data record at byte {start} holds {size} bytes for {n} messages; "
                              f"expected {12 * n}")
