@@ -45,7 +45,7 @@ import numpy as np
 from goalkit.errors import LogError
 
 try:
-    from lz4.frame import decompress as _lz4
+    from lz4.frame import LZ4FrameDecompressor as _lz4
 except ImportError:  # pragma: no cover - rosbags itself needs lz4
     _lz4 = None
 
@@ -472,13 +472,15 @@ class Ros1Bag:
         try:
             if comp == "none":
                 data = raw
-            elif comp == "bz2":
-                data = bz2.decompress(raw)
-            else:
-                if _lz4 is None:
+            else:                           # never more than the header's size is made
+                if comp == "lz4" and _lz4 is None:
                     raise BadBag(f"chunk at byte {pos} is lz4-compressed; reading it needs the lz4 "
                                  f"package (pip install lz4)")
-                data = _lz4(raw)
+                d = bz2.BZ2Decompressor() if comp == "bz2" else _lz4()
+                data = d.decompress(raw, max_length=usize)
+                if not d.eof:
+                    raise BadBag(f"chunk at byte {pos} decompresses to more than the {usize} bytes "
+                                 f"its header gives, or its compressed data is cut short")
         except BadBag:
             raise
         except Exception as exc:            # bz2 and lz4 raise their own types on damaged data

@@ -315,3 +315,15 @@ def test_index_held_after_opening_does_not_grow_per_message(tmp_path):
     ours = (ours4 - ours1) / (n4 - n1)
     assert theirs > 50, theirs            # an IndexData tuple per message
     assert ours < 1.0, (ours, theirs)      # a few entries per chunk of about 1 MiB
+
+
+def test_damaged_compressed_chunk(tmp_path):
+    bag = _good(tmp_path, compression="bz2")
+    data = bytearray(bag.read_bytes())
+    with Reader1(bag) as r:
+        ch = r.chunks[r.chunk_infos[1].pos]
+        pos = r.chunk_infos[1].pos
+    data[ch.datapos + ch.datasize // 2:ch.datapos + ch.datasize // 2 + 16] = bytes(16)
+    bad = tmp_path / "bz.bag"
+    bad.write_bytes(bytes(data))
+    _one_line(_cli_scan(tmp_path, bad), str(bad), f"chunk at byte {pos} ")
