@@ -282,7 +282,7 @@ class BagSource(BaseSource):
         self._keep(b, reader)
 
     # An opened bag is kept for the next read: opening costs a pass over the bag in rosbags
-    # (a ROS 1 bag's whole index is parsed, a SQLite bag's messages counted), and reads come
+    # (a ROS 1 bag's chunk and index records walked, a SQLite bag's messages counted), and reads come
     # in chunks of episodes, mostly from the same bag. One bag is kept; a read from another
     # thread while it is in use opens its own. Not pickled (workers open their own).
     def _keep(self, b, reader, windows=None):
