@@ -173,6 +173,33 @@ def run(code: str) -> dict:
     return json.loads(out.stdout.strip().splitlines()[-1])
 
 
+def memory_only(args):
+    """Peak RSS of goalkit's read of one recording per size (fresh process each)."""
+    sizes = [int(x) for x in args.sizes.split(",")]
+    out = args.out or str(HERE / "results" / f"bags_{args.storage}_memory.json")
+    results = {"what": "goalkit bag read+align alone: peak RSS per size", "storage": args.storage,
+               "load_average_at_start": os.getloadavg(), "sizes": []}
+    with tempfile.TemporaryDirectory() as tmp:
+        for size in sizes:
+            bag = Path(tmp) / f"rec{size}{'.bag' if args.storage == 'ros1' else ''}"
+            n = write_recording(bag, size, storage=args.storage)
+            runs = [run(OURS.format(bag=str(bag), layout=LAYOUT, fast=True, index=True, own=True))
+                    for _ in range(args.repeats)]
+            row = {"messages": n, "peak_rss_mb": max(r["peak_rss_mb"] for r in runs),
+                   "open_peak_rss_mb": max(r["open_peak_rss_mb"] for r in runs),
+                   "cpu_seconds": statistics.median(r["cpu_seconds"] for r in runs),
+                   "episodes": runs[0]["episodes"], "steps": runs[0]["steps"],
+                   "load_average": os.getloadavg(), "runs": runs}
+            print(json.dumps({k: v for k, v in row.items() if k != "runs"}), flush=True)
+            results["sizes"].append(row)
+            bag.unlink()
+    s = results["sizes"]
+    if len(s) > 1:
+        results["rss_growth"] = s[-1]["peak_rss_mb"] / s[0]["peak_rss_mb"]
+    Path(out).write_text(json.dumps(results, indent=2) + "\n")
+    print(f"written {out}")
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--sizes", default="250000,1000000", help="messages per bag, comma separated")
@@ -182,7 +209,12 @@ def main(argv=None):
                     help="results file (default: results/bags.json, bags_sqlite.json or bags_ros1.json)")
     ap.add_argument("--no-varying", action="store_true",
                     help="skip the recording whose layouts vary (fewer runs on a shared machine)")
+    ap.add_argument("--memory-only", action="store_true",
+                    help="run goalkit alone (no floor, no other variants): peak RSS at each size, "
+                         "to see where it levels off")
     args = ap.parse_args(argv)
+    if args.memory_only:
+        return memory_only(args)
     if args.out is None:
         args.out = str(HERE / "results" / ("bags.json" if args.storage == "mcap" else f"bags_{args.storage}.json"))
     ros1 = args.storage == "ros1"
