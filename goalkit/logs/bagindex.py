@@ -381,7 +381,9 @@ def _ros1_records(data: bytes, offs: np.ndarray):
 
 
 class Ros1Windows:
-    """Raw messages of some topics in time windows of one ROS 1 bag.
+    """Raw messages of some topics in time windows of one ROS 1 bag opened by rosbags' own
+    reader (only when :mod:`goalkit.logs.bagros1` is switched off: the reference path of its
+    tests and benchmark).
 
     rosbags' ROS 1 reader walks its index from the bag's first message to the window's start
     on every call (time linear in the bag, so reading all episodes is quadratic), and parses
