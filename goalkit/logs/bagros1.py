@@ -582,7 +582,8 @@ def _typestore(connections, default):
         try:
             typs.update(get_types_from_msg(c.msgdef.data, c.msgtype))
         except Exception as exc:            # rosbags' parser raises its own types
-            err = BadBag(f"message definition of {c.msgtype} does not parse ({type(exc).__name__}: {exc})")
+            first = (str(exc).strip().splitlines() or [""])[0][:160]
+            err = BadBag(f"message definition of {c.msgtype} does not parse ({type(exc).__name__}: {first})")
             err.topic = c.topic
             raise err from None
         if c.digest:

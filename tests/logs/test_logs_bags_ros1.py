@@ -390,3 +390,35 @@ def test_order_and_windows_equal_rosbags_property(tmp_path):
             ref.close()
 
     check()
+
+
+@pytest.mark.parametrize("compression", [None, "bz2"])
+def test_damaged_bags_fail_as_one_line_or_read(tmp_path, compression):
+    """Random damage (a cut, or a few bytes changed anywhere: headers, index, chunk data,
+    message definitions): reading either succeeds or stops with goalkit's one-line error, never
+    another exception. Seeded, 40 damaged copies."""
+    import random
+
+    from goalkit.errors import GoalkitError
+
+    bag = _good(tmp_path, compression=compression)
+    data = bag.read_bytes()
+    lay = {**LAYOUT, "bag": {**LAYOUT["bag"], "episodes": "gap", "cut_gap": 0.5}}
+    rng = random.Random(7)
+    failed = 0
+    for trial in range(40):
+        b = bytearray(data)
+        if trial % 3 == 0:
+            b = b[:rng.randrange(len(b))]
+        else:
+            for _ in range(rng.randint(1, 4)):
+                b[rng.randrange(len(b))] = rng.randrange(256)
+        p = tmp_path / f"d{trial}.bag"
+        p.write_bytes(bytes(b))
+        try:
+            src = open_logs(p, lay)
+            src.read(0, src.num_episodes)
+        except GoalkitError as exc:
+            failed += 1
+            assert "\n" not in str(exc) and str(exc).startswith(str(p)), str(exc)
+    assert failed >= 13                      # every cut bag at least
