@@ -1,4 +1,4 @@
-"""Reading and aligning ROS 2 bags against a plain rosbags read loop, and memory at two sizes.
+"""Reading and aligning ROS bags against a plain rosbags read loop, and memory at two sizes.
 
     .venv/bin/python benchmarks/bench_bags.py                        # 250k and 1M messages
     .venv/bin/python benchmarks/bench_bags.py --sizes 100000,250000 --repeats 1
@@ -201,10 +201,12 @@ def memory_only(args):
 
 
 def main(argv=None):
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0],
+                                 formatter_class=argparse.ArgumentDefaultsHelpFormatter)
     ap.add_argument("--sizes", default="250000,1000000", help="messages per bag, comma separated")
-    ap.add_argument("--repeats", type=int, default=3)
-    ap.add_argument("--storage", default="mcap", choices=["mcap", "sqlite", "ros1"])
+    ap.add_argument("--repeats", type=int, default=3, help="fresh processes per variant and size")
+    ap.add_argument("--storage", default="mcap", choices=["mcap", "sqlite", "ros1"],
+                    help="how the recording is stored")
     ap.add_argument("--out", default=None,
                     help="results file (default: results/bags.json, bags_sqlite.json or bags_ros1.json)")
     ap.add_argument("--no-varying", action="store_true",
