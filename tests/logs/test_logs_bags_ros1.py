@@ -422,3 +422,32 @@ def test_damaged_bags_fail_as_one_line_or_read(tmp_path, compression):
             failed += 1
             assert "\n" not in str(exc) and str(exc).startswith(str(p)), str(exc)
     assert failed >= 13                      # every cut bag at least
+
+
+def test_message_spans_step_over_connection_records():
+    """An index entry that points at a connection record (op 0x07) is followed to the message
+    data record after it, as rosbags' reader does; a record whose connection or time differs
+    from its index entry, or of another op, is refused. Records as the ROS bag format 2.0 lays
+    them out: header length, fields, data length, data."""
+    def rec(fields, data):
+        head = b"".join(len(f).to_bytes(4, "little") + f for f in fields)
+        return len(head).to_bytes(4, "little") + head + len(data).to_bytes(4, "little") + data
+
+    def msg(conn, sec, nsec, data):
+        return rec([b"op=\x02", b"conn=" + struct.pack("<I", conn), b"time=" + struct.pack("<II", sec, nsec)], data)
+
+    conn = rec([b"topic=/bench/valve", b"op=\x07", b"conn=\x01\x00\x00\x00"], b"type=std_msgs/Bool")
+    a, b = msg(0, 5, 7, b"abc"), msg(1, 6, 0, b"tray")
+    chunk = a + conn + conn + b
+    offs = np.array([0, len(a), len(a) + len(conn)])
+    starts, ends = bagros1.message_spans(chunk, offs, np.array([0, 1, 1]),
+                                         np.array([5_000_000_007, 6_000_000_000, 6_000_000_000]))
+    assert [chunk[s:e] for s, e in zip(starts, ends)] == [b"abc", b"tray", b"tray"]
+    with pytest.raises(bagros1.BadBag, match="disagrees with its index entry") as err:
+        bagros1.message_spans(chunk, offs[:2], np.array([0, 2]), np.array([5_000_000_007, 6_000_000_000]))
+    assert err.value.entry == 1
+    bad = a + rec([b"op=\x09"], b"")
+    with pytest.raises(bagros1.BadBag, match=r"expected a message data record \(op 0x02\)"):
+        bagros1.message_spans(bad, np.array([len(a)]), np.array([0]), np.array([0]))
+    with pytest.raises(bagros1.BadBag, match="outside its chunk"):
+        bagros1.message_spans(chunk, np.array([len(chunk) - 2]), np.array([0]), np.array([0]))
