@@ -1,4 +1,4 @@
-"""Reading and aligning ROS 2 bags against a plain rosbags read loop, and memory at two sizes.
+"""Reading and aligning ROS bags against a plain rosbags read loop, and memory at two sizes.
 
     .venv/bin/python benchmarks/bench_bags.py                        # 250k and 1M messages
     .venv/bin/python benchmarks/bench_bags.py --sizes 100000,250000 --repeats 1
@@ -19,16 +19,21 @@ goalkit.logs.bagdecode), reported as per_message. A second recording (``vary``: 
 frame ids change length between messages) is one where the messages of the joint and pose
 topics fall into several layouts (decoded layout by layout); it is measured against its own
 floor, and once more with goalkit.logs.bagindex switched off (times and messages read through
-rosbags' message loop, as before that module), reported as varying_no_index. Each run is a
+rosbags' message loop, as before that module), reported as varying_no_index (``--no-varying``
+skips that recording). With ``--storage ros1`` goalkit reads the bag through its own index
+reading (goalkit.logs.bagros1) and is measured once more through rosbags' own ROS 1 reader,
+which keeps the bag's whole index in memory (rosbags_index). Each run is a
 fresh process; the median of --repeats runs is used, and ``ratios`` gives the median, min and
 max of the per-repeat ratios (floor and goalkit run next to each other) by wall time and by
 the process's CPU time (steadier on a shared machine); ``load_average`` is the machine's load
-when each size finished. Peak RSS is each process's own.
+when each size finished. Peak RSS is each process's own (VmHWM), also taken right after
+opening (open_peak_rss_mb: the message times held while planning episodes).
 
 Targets: goalkit >= 0.8 x the floor's message rate on both recordings and with the whole-topic
 decoding off; goalkit's peak RSS at the larger size
 within 1.3 x of that at the smaller (memory bounded by a chunk of episodes plus the open
-bag's message times). Results: benchmarks/results/bags.json.
+bag's message times). Results: benchmarks/results/bags.json (bags_sqlite.json,
+bags_ros1.json for the other storages).
 """
 
 from __future__ import annotations
@@ -144,18 +149,20 @@ print(json.dumps({{"seconds": time.perf_counter() - t, "cpu_seconds": time.proce
 
 OURS = PEAK + """
 import json, time
-import goalkit.logs.bagfast, goalkit.logs.bagindex
+import goalkit.logs.bagfast, goalkit.logs.bagindex, goalkit.logs.bagros1
 goalkit.logs.bagfast.ENABLED = {fast}
 goalkit.logs.bagindex.ENABLED = {index}
+goalkit.logs.bagros1.ENABLED = {own}
 from goalkit.logs import open_logs
 from goalkit.logs.episodes import iter_chunks
 t, c0 = time.perf_counter(), time.process_time()
 src = open_logs({bag!r}, {layout!r})
+open_peak = peak_mb()
 steps = 0
 for es in iter_chunks(src, 100_000):
     steps += es.num_transitions
 print(json.dumps({{"seconds": time.perf_counter() - t, "cpu_seconds": time.process_time() - c0,
-                  "episodes": src.num_episodes, "steps": steps,
+                  "episodes": src.num_episodes, "steps": steps, "open_peak_rss_mb": open_peak,
                   "peak_rss_mb": peak_mb()}}))
 """
 
@@ -166,59 +173,116 @@ def run(code: str) -> dict:
     return json.loads(out.stdout.strip().splitlines()[-1])
 
 
+def memory_only(args):
+    """Peak RSS of goalkit's read of one recording per size (fresh process each)."""
+    sizes = [int(x) for x in args.sizes.split(",")]
+    out = args.out or str(HERE / "results" / f"bags_{args.storage}_memory.json")
+    results = {"what": "goalkit bag read+align alone: peak RSS per size", "storage": args.storage,
+               "load_average_at_start": os.getloadavg(), "sizes": []}
+    with tempfile.TemporaryDirectory() as tmp:
+        for size in sizes:
+            bag = Path(tmp) / f"rec{size}{'.bag' if args.storage == 'ros1' else ''}"
+            n = write_recording(bag, size, storage=args.storage)
+            runs = [run(OURS.format(bag=str(bag), layout=LAYOUT, fast=True, index=True, own=True))
+                    for _ in range(args.repeats)]
+            row = {"messages": n, "peak_rss_mb": max(r["peak_rss_mb"] for r in runs),
+                   "open_peak_rss_mb": max(r["open_peak_rss_mb"] for r in runs),
+                   "cpu_seconds": statistics.median(r["cpu_seconds"] for r in runs),
+                   "episodes": runs[0]["episodes"], "steps": runs[0]["steps"],
+                   "load_average": os.getloadavg(), "runs": runs}
+            print(json.dumps({k: v for k, v in row.items() if k != "runs"}), flush=True)
+            results["sizes"].append(row)
+            bag.unlink()
+    s = results["sizes"]
+    if len(s) > 1:
+        results["rss_growth"] = s[-1]["peak_rss_mb"] / s[0]["peak_rss_mb"]
+    Path(out).write_text(json.dumps(results, indent=2) + "\n")
+    print(f"written {out}")
+
+
 def main(argv=None):
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0],
+                                 formatter_class=argparse.ArgumentDefaultsHelpFormatter)
     ap.add_argument("--sizes", default="250000,1000000", help="messages per bag, comma separated")
-    ap.add_argument("--repeats", type=int, default=3)
-    ap.add_argument("--storage", default="mcap", choices=["mcap", "sqlite", "ros1"])
-    ap.add_argument("--out", default=str(HERE / "results" / "bags.json"))
+    ap.add_argument("--repeats", type=int, default=3, help="fresh processes per variant and size")
+    ap.add_argument("--storage", default="mcap", choices=["mcap", "sqlite", "ros1"],
+                    help="how the recording is stored")
+    ap.add_argument("--out", default=None,
+                    help="results file (default: results/bags.json, bags_sqlite.json or bags_ros1.json)")
+    ap.add_argument("--no-varying", action="store_true",
+                    help="skip the recording whose layouts vary (fewer runs on a shared machine)")
+    ap.add_argument("--memory-only", action="store_true",
+                    help="run goalkit alone (no floor, no other variants): peak RSS at each size, "
+                         "to see where it levels off")
     args = ap.parse_args(argv)
+    if args.memory_only:
+        return memory_only(args)
+    if args.out is None:
+        args.out = str(HERE / "results" / ("bags.json" if args.storage == "mcap" else f"bags_{args.storage}.json"))
+    ros1 = args.storage == "ros1"
+    varying = not args.no_varying
     sizes = [int(s) for s in args.sizes.split(",")]
     results = {"what": "bag read+align vs plain rosbags deserialise loop", "storage": args.storage,
                "load_average_at_start": os.getloadavg(), "sizes": []}
     with tempfile.TemporaryDirectory() as tmp:
         for size in sizes:
-            ext = ".bag" if args.storage == "ros1" else ""
+            ext = ".bag" if ros1 else ""
             bag, vbag = Path(tmp) / f"rec{size}{ext}", Path(tmp) / f"vary{size}{ext}"
             t = time.perf_counter()
             n = write_recording(bag, size, storage=args.storage)
-            nv = write_recording(vbag, size, vary=True, storage=args.storage)
-            print(f"wrote 2 x {n} messages in {time.perf_counter() - t:.1f} s", flush=True)
-            runs = {k: [] for k in ("floor", "goalkit", "goalkit_per_message", "floor_varying",
-                                    "goalkit_varying", "goalkit_varying_no_index")}
+            nv = write_recording(vbag, size, vary=True, storage=args.storage) if varying else 0
+            print(f"wrote {2 if varying else 1} x {n} messages in {time.perf_counter() - t:.1f} s", flush=True)
+            names = ["floor", "goalkit", "goalkit_per_message"]
+            names += ["floor_varying", "goalkit_varying", "goalkit_varying_no_index"] if varying else []
+            names += ["goalkit_rosbags_index"] if ros1 else []
+            runs = {k: [] for k in names}
+            ours = lambda path, fast=True, index=True, own=True: run(
+                OURS.format(bag=str(path), layout=LAYOUT, fast=fast, index=index, own=own))
             for _ in range(args.repeats):           # interleaved
                 runs["floor"].append(run(FLOOR.format(bag=str(bag))))
-                runs["goalkit"].append(run(OURS.format(bag=str(bag), layout=LAYOUT, fast=True, index=True)))
-                runs["goalkit_per_message"].append(
-                    run(OURS.format(bag=str(bag), layout=LAYOUT, fast=False, index=True)))
-                runs["floor_varying"].append(run(FLOOR.format(bag=str(vbag))))
-                runs["goalkit_varying"].append(
-                    run(OURS.format(bag=str(vbag), layout=LAYOUT, fast=True, index=True)))
-                runs["goalkit_varying_no_index"].append(
-                    run(OURS.format(bag=str(vbag), layout=LAYOUT, fast=True, index=False)))
+                runs["goalkit"].append(ours(bag))
+                runs["goalkit_per_message"].append(ours(bag, fast=False))
+                if ros1:                             # rosbags' own ROS 1 reader (its index in memory)
+                    runs["goalkit_rosbags_index"].append(ours(bag, own=False))
+                if varying:
+                    runs["floor_varying"].append(run(FLOOR.format(bag=str(vbag))))
+                    runs["goalkit_varying"].append(ours(vbag))
+                    runs["goalkit_varying_no_index"].append(ours(vbag, index=False))
             med = {k: statistics.median(r["seconds"] for r in v) for k, v in runs.items()}
-            f_s, fv_s = med["floor"], med["floor_varying"]
+            cpu = {k: statistics.median(r["cpu_seconds"] for r in v) for k, v in runs.items()}
+            f_s = med["floor"]
             row = {"messages": n, "floor_seconds": f_s, "goalkit_seconds": med["goalkit"],
+                   "floor_cpu_seconds": cpu["floor"], "goalkit_cpu_seconds": cpu["goalkit"],
                    "floor_msgs_per_s": n / f_s, "goalkit_msgs_per_s": n / med["goalkit"],
                    "ratio_to_floor": f_s / med["goalkit"],
+                   "cpu_ratio_to_floor": cpu["floor"] / cpu["goalkit"],
                    "per_message_seconds": med["goalkit_per_message"],
                    "per_message_ratio_to_floor": f_s / med["goalkit_per_message"],
-                   "varying_messages": nv, "varying_floor_seconds": fv_s,
-                   "varying_seconds": med["goalkit_varying"],
-                   "varying_ratio_to_floor": fv_s / med["goalkit_varying"],
-                   "varying_no_index_seconds": med["goalkit_varying_no_index"],
-                   "varying_no_index_ratio_to_floor": fv_s / med["goalkit_varying_no_index"],
+                   "per_message_cpu_ratio_to_floor": cpu["floor"] / cpu["goalkit_per_message"],
                    "floor_peak_rss_mb": max(r["peak_rss_mb"] for r in runs["floor"]),
                    "goalkit_peak_rss_mb": max(r["peak_rss_mb"] for r in runs["goalkit"]),
-                   "varying_peak_rss_mb": max(r["peak_rss_mb"] for r in runs["goalkit_varying"]),
-                   "episodes": runs["goalkit"][0]["episodes"], "steps": runs["goalkit"][0]["steps"],
-                   "load_average": os.getloadavg(),
-                   "runs": runs}
+                   "goalkit_open_peak_rss_mb": max(r["open_peak_rss_mb"] for r in runs["goalkit"]),
+                   "episodes": runs["goalkit"][0]["episodes"], "steps": runs["goalkit"][0]["steps"]}
+            if varying:
+                fv_s = med["floor_varying"]
+                row.update({"varying_messages": nv, "varying_floor_seconds": fv_s,
+                            "varying_seconds": med["goalkit_varying"],
+                            "varying_ratio_to_floor": fv_s / med["goalkit_varying"],
+                            "varying_no_index_seconds": med["goalkit_varying_no_index"],
+                            "varying_no_index_ratio_to_floor": fv_s / med["goalkit_varying_no_index"],
+                            "varying_peak_rss_mb": max(r["peak_rss_mb"] for r in runs["goalkit_varying"])})
+            if ros1:
+                row.update({"rosbags_index_seconds": med["goalkit_rosbags_index"],
+                            "rosbags_index_cpu_seconds": cpu["goalkit_rosbags_index"],
+                            "rosbags_index_peak_rss_mb": max(r["peak_rss_mb"] for r in runs["goalkit_rosbags_index"])})
+            row["load_average"] = os.getloadavg()
+            row["runs"] = runs
             # ratio of each repeat (floor and goalkit ran next to each other): median and
             # spread, by wall time and by CPU time of the process (less sensitive to load)
-            for name, base in (("goalkit", "floor"), ("goalkit_per_message", "floor"),
-                               ("goalkit_varying", "floor_varying"),
-                               ("goalkit_varying_no_index", "floor_varying")):
+            pairs = [("goalkit", "floor"), ("goalkit_per_message", "floor")]
+            pairs += [("goalkit_varying", "floor_varying"), ("goalkit_varying_no_index", "floor_varying")] if varying else []
+            pairs += [("goalkit_rosbags_index", "floor")] if ros1 else []
+            for name, base in pairs:
                 for clock in ("seconds", "cpu_seconds"):
                     rs = [f[clock] / g[clock] for f, g in zip(runs[base], runs[name])]
                     row.setdefault("ratios", {})[f"{name}_{'wall' if clock == 'seconds' else 'cpu'}"] = {
@@ -228,13 +292,24 @@ def main(argv=None):
     s = results["sizes"]
     results["target_ratio"] = 0.8
     results["ratio_met"] = all(r["ratio_to_floor"] >= 0.8 for r in s)
+    results["cpu_ratio_met"] = all(r["cpu_ratio_to_floor"] >= 0.8 for r in s)
     results["per_message_ratio_met"] = all(r["per_message_ratio_to_floor"] >= 0.8 for r in s)
-    results["varying_ratio_met"] = all(r["varying_ratio_to_floor"] >= 0.8 for r in s)
+    if varying:
+        results["varying_ratio_met"] = all(r["varying_ratio_to_floor"] >= 0.8 for r in s)
     if len(s) > 1:
-        results["rss_growth"] = s[-1]["goalkit_peak_rss_mb"] / s[0]["goalkit_peak_rss_mb"]
-        results["varying_rss_growth"] = s[-1]["varying_peak_rss_mb"] / s[0]["varying_peak_rss_mb"]
+        grow = lambda key: s[-1][key] / s[0][key]
+        results["rss_growth"] = grow("goalkit_peak_rss_mb")
+        results["open_rss_growth"] = grow("goalkit_open_peak_rss_mb")
+        results["floor_rss_growth"] = grow("floor_peak_rss_mb")
+        worst = results["rss_growth"]
+        if varying:
+            results["varying_rss_growth"] = grow("varying_peak_rss_mb")
+            worst = max(worst, results["varying_rss_growth"])
+        if ros1:
+            results["rosbags_index_rss_growth"] = grow("rosbags_index_peak_rss_mb")
         results["target_rss_growth"] = 1.3
-        results["rss_met"] = max(results["rss_growth"], results["varying_rss_growth"]) <= 1.3
+        results["rss_met"] = worst <= 1.3
+    results["load_average_at_end"] = os.getloadavg()
     Path(args.out).parent.mkdir(parents=True, exist_ok=True)
     Path(args.out).write_text(json.dumps(results, indent=2) + "\n")
     print(f"written {args.out}")

@@ -32,6 +32,7 @@ import numpy as np
 from goalkit.config import closest, load_toml
 from goalkit.errors import GoalkitError, LayoutError, LogError
 from goalkit.logs import align as al
+from goalkit.logs import bagros1
 from goalkit.logs.bagdecode import decode_all
 from goalkit.logs.bagfast import fixed_layout_values
 from goalkit.logs.bagimage import decode_image
@@ -96,8 +97,17 @@ def bag_files(bag: Path) -> list[str]:
 
 
 def open_reader(bag: Path):
-    """An opened rosbags ``AnyReader`` of one bag (close it after use)."""
+    """An opened reader of one bag (close it after use): for a ROS 1 bag goalkit's own index
+    reader (:mod:`goalkit.logs.bagros1`, memory bounded by a chunk), else a rosbags
+    ``AnyReader``."""
     AnyReader, store = _rosbags()
+    if bagros1.ENABLED and Path(bag).is_file() and Path(bag).suffix == ".bag":
+        try:
+            return bagros1.open_bag(bag, store)
+        except GoalkitError:
+            raise
+        except Exception as exc:  # an unreadable file or a definition rosbags refuses
+            raise LogError(f"cannot read as a bag ({type(exc).__name__}: {exc})", file=bag) from None
     try:
         reader = AnyReader([bag], default_typestore=store)
         reader.open()
@@ -263,13 +273,16 @@ class BagSource(BaseSource):
         except GoalkitError:
             reader.close()
             raise
+        except bagros1.BadBag as exc:
+            reader.close()
+            raise bagros1.as_log_error(exc, bag) from None
         except Exception as exc:   # a damaged storage file surfaces as many exception types
             reader.close()
             raise LogError(f"cannot read the bag's messages ({type(exc).__name__}: {exc})", file=bag) from None
         self._keep(b, reader)
 
     # An opened bag is kept for the next read: opening costs a pass over the bag in rosbags
-    # (a ROS 1 bag's whole index is parsed, a SQLite bag's messages counted), and reads come
+    # (a ROS 1 bag's chunk and index records walked, a SQLite bag's messages counted), and reads come
     # in chunks of episodes, mostly from the same bag. One bag is kept; a read from another
     # thread while it is in use opens its own. Not pickled (workers open their own).
     def _keep(self, b, reader, windows=None):
@@ -526,6 +539,8 @@ class BagSource(BaseSource):
                     topic = topic_of[conn.id]
                     recs[topic].append(t)
                     raws[topic].append(raw)
+        except bagros1.BadBag as exc:
+            raise bagros1.as_log_error(exc, bag, episode=e) from None
         except Exception as exc:   # a damaged storage file surfaces as many exception types
             raise LogError(f"cannot read the bag's messages ({type(exc).__name__}: {exc})", file=bag,
                            episode=e) from None

@@ -25,6 +25,8 @@ import struct
 
 import numpy as np
 
+from goalkit.logs.bagros1 import Ros1Bag
+
 #: Switch for tests and measurements (rosbags' message loop is always correct, only slower).
 ENABLED = True
 
@@ -100,6 +102,8 @@ def _record_times(reader, topics) -> dict | None:
     dict of str to ndarray, or None
         None when the bag's indexes cannot give the times (read the messages instead).
     """
+    if isinstance(reader, Ros1Bag):                # goalkit's own ROS 1 index reader
+        return reader.record_times(topics) if ENABLED else None
     top = _top(reader)
     if top is None:
         return None
@@ -377,7 +381,9 @@ def _ros1_records(data: bytes, offs: np.ndarray):
 
 
 class Ros1Windows:
-    """Raw messages of some topics in time windows of one ROS 1 bag.
+    """Raw messages of some topics in time windows of one ROS 1 bag opened by rosbags' own
+    reader (only when :mod:`goalkit.logs.bagros1` is switched off: the reference path of its
+    tests and benchmark).
 
     rosbags' ROS 1 reader walks its index from the bag's first message to the window's start
     on every call (time linear in the bag, so reading all episodes is quadratic), and parses
@@ -465,6 +471,8 @@ class Ros1Windows:
 def window_reader(reader, topics):
     """A reader of time windows for ``reader``'s bag (an indexed MCAP bag, a ROS 2 SQLite bag or
     a ROS 1 bag), or None (read windows through rosbags' message loop)."""
+    if isinstance(reader, Ros1Bag):
+        return reader.windows(topics) if ENABLED else None
     try:
         top = _top(reader)
         if top is not None and type(top).__module__.startswith("rosbags.rosbag1") and hasattr(top, "indexes"):

@@ -6,7 +6,9 @@ from __future__ import annotations
 import numpy as np
 
 from goalkit.errors import LayoutError
+from goalkit.logs import bagros1
 from goalkit.logs.bagfile import bag_files, find_bags, open_reader
+from goalkit.logs.bagindex import record_times
 from goalkit.logs.layout import parse_layout
 from goalkit.logs.texttable import text_table
 
@@ -34,9 +36,14 @@ def list_topics(path) -> dict:
         try:
             t0 = reader.start_time
             cid = {c.id: c for c in reader.connections}
-            times = {}
-            for conn, t, _ in reader.messages():
-                times.setdefault(cid[conn.id].topic, []).append(t)
+            times = record_times(reader, {c.topic for c in reader.connections})   # from the indexes
+            if times is None:
+                times = {}
+                try:
+                    for conn, t, _ in reader.messages():
+                        times.setdefault(cid[conn.id].topic, []).append(t)
+                except bagros1.BadBag as exc:
+                    raise bagros1.as_log_error(exc, bag) from None
             for c in reader.connections:
                 times.setdefault(c.topic, [])
                 a = acc.setdefault(c.topic, {"topic": c.topic, "type": c.msgtype, "count": 0,

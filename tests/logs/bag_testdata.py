@@ -94,8 +94,12 @@ TYPES = {JOINTS: "sensor_msgs/msg/JointState", TIP: "geometry_msgs/msg/PoseStamp
          CMD: "std_msgs/msg/Float64MultiArray", CAM: "sensor_msgs/msg/Image", REC: "std_msgs/msg/Bool"}
 
 
-def write_bag(path, truth, kind="mcap", encoding=None, delay_seed=None, header_edit=None, garbage=None):
+def write_bag(path, truth, kind="mcap", encoding=None, delay_seed=None, header_edit=None, garbage=None,
+              compression=None, chunk_bytes=None):
     """Write ``truth`` as a bag: kind ``"mcap"`` or ``"sqlite"`` (ROS 2) or ``"ros1"``.
+
+    ROS 1 only: ``compression`` ("bz2" or "lz4") compresses the chunks, ``chunk_bytes`` sets
+    the writer's chunk size (many chunks in a small bag).
 
     The truth's times are the header stamps; the record times are the same, or later by a
     random 0-4 ms transport delay (``delay_seed``). ``header_edit(topic, times)`` changes the
@@ -106,6 +110,10 @@ def write_bag(path, truth, kind="mcap", encoding=None, delay_seed=None, header_e
     ts = get_typestore(Stores.ROS1_NOETIC if ros1 else Stores.ROS2_HUMBLE)
     if ros1:
         writer = Writer1(path)
+        if compression:
+            writer.set_compression(getattr(Writer1.CompressionFormat, compression.upper()))
+        if chunk_bytes:
+            writer.chunk_threshold = chunk_bytes
     else:
         writer = Writer2(path, version=9 if kind == "mcap" else 8,
                          storage_plugin=StoragePlugin.MCAP if kind == "mcap" else StoragePlugin.SQLITE3)

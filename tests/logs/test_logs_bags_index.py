@@ -106,7 +106,7 @@ def test_windows_equal_the_message_loop(tmp_path, kind):
     try:
         win = bagindex.window_reader(reader, topics)
         assert type(win).__name__ == {"mcap": "WindowReader", "sqlite": "SqliteWindows",
-                                      "ros1": "Ros1Windows"}[kind]
+                                      "ros1": "Ros1ChunkWindows"}[kind]
         t0 = reader.start_time
         # windows read in time order, then one going back (a later read of an earlier episode)
         for lo, hi in [(t0, t0 + 700_000_000), (t0 + 700_000_001, t0 + 3_500_000_000),
