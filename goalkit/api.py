@@ -14,7 +14,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from goalkit.errors import GoalkitError
-from goalkit.logs.opener import open_logs
+from goalkit.logs.anylogs import open_logs
 from goalkit.logs.scan import scan_logs
 from goalkit.pipeline.build import BuildResult
 from goalkit.pipeline.build import build as _engine_build
@@ -186,8 +186,9 @@ def scan(logs, layout=None, *, skip_bad_episodes: bool = False, max_transitions:
 
     Parameters
     ----------
-    logs : str or Path
-        An HDF5 file, ``.npz`` file, folder of per-episode files, bag or step table.
+    logs : str, Path or list of them
+        An HDF5 file, ``.npz`` file, folder of per-episode files, bag or step table; or several
+        log files as a list of files, globs and folders (as :func:`goalkit.open_logs` takes).
     layout : Layout, str, Path or mapping, optional
         The layout (a file, a parsed table or a :class:`Layout`); None proposes one.
     skip_bad_episodes : bool

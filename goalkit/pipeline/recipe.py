@@ -316,7 +316,8 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored
         if sources is not None:
             logs_path = None
     goal = _parse_goal(_table(doc, "goal", file), base, file)
-    mixture = _in_recipe(Mixture.from_table, _table(doc, "relabel", file), file, "relabel")
+    # tables whose every key has a documented default may be left out (docs/recipe.md)
+    mixture = _in_recipe(Mixture.from_table, _table(doc, "relabel", file, required=False), file, "relabel")
     if mixture.library is not None:  # relative to the recipe's folder, like every other path
         lib = _path(mixture.library, base, file, "relabel.library")
         if not lib.is_file():
