@@ -24,6 +24,9 @@ import numpy as np
 from goalkit.archive import SOURCE_SHIFT, SourceSpec, is_pattern, source_base
 from goalkit.config import parse_toml
 from goalkit.errors import GoalkitError, LogError
+from goalkit.logs.bagfile import is_bag_path
+from goalkit.logs.bagscan import list_topics, propose_bag_layout
+from goalkit.logs.detect import propose_layout
 from goalkit.logs.episodes import EpisodeSet, concat_episodes
 from goalkit.logs.layout import load_layout, parse_layout
 from goalkit.logs.naming import natural_key
@@ -99,6 +102,13 @@ def expand_entries(entries, shape: str | None, *, file=None, key="logs.path") ->
     return out
 
 
+def _name_source(exc, name: str) -> None:
+    """Add the source's name to an error about one of its files."""
+    if name:
+        exc.message += f" (source '{name}')"
+        exc.args = (exc.render(),)
+
+
 @dataclass
 class _Part:
     """One opened file of one source."""
@@ -167,18 +177,25 @@ class MultiSource:
             code = bases[base]
             s = specs[code]
             layout = s.layout if s.layout is not None or not s.layout_path else load_layout(s.layout_path)
-            self.layouts[code] = layout
             shape = layout.shape if layout is not None else None
             offset = base
             files = expand_entries(s.entries, shape, file=file, key=s.key)
+            if layout is None and files:
+                # no layout: the one proposed for the source's first file reads all its files (the
+                # layout a set records for the source, with which verify reopens them)
+                try:
+                    layout = (propose_bag_layout(list_topics(files[0])) if is_bag_path(files[0])
+                              else propose_layout(files[0]))
+                except GoalkitError as exc:
+                    _name_source(exc, s.name)
+                    raise
+            self.layouts[code] = layout
             self.file_entries.append((code, files))
             for path in files:
                 try:
                     log = open_logs(path, layout, skip_bad_episodes=s.skip_bad_episodes)
                 except GoalkitError as exc:      # say which source the file belongs to
-                    if s.name:
-                        exc.message += f" (source '{s.name}')"
-                        exc.args = (exc.render(),)
+                    _name_source(exc, s.name)
                     raise
                 if offset + log.total_episodes >= base + (1 << SOURCE_SHIFT) and base:
                     raise LogError(f"more than 2**{SOURCE_SHIFT} episodes in one source", file=path)
