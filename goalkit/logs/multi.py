@@ -21,9 +21,9 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from goalkit.archive import SOURCE_SHIFT, SourceSpec, is_pattern, source_base
+from goalkit.archive import SOURCE_SHIFT, InlineLayout, SourceSpec, is_pattern, source_base
 from goalkit.config import parse_toml
-from goalkit.errors import GoalkitError, LogError
+from goalkit.errors import GoalkitError, LayoutError, LogError
 from goalkit.logs.bagfile import is_bag_path
 from goalkit.logs.bagscan import list_topics, propose_bag_layout
 from goalkit.logs.detect import propose_layout
@@ -102,6 +102,19 @@ def expand_entries(entries, shape: str | None, *, file=None, key="logs.path") ->
     return out
 
 
+def source_layout(spec):
+    """A source's layout: given, written in the recipe (parsed here), from its file, or None."""
+    if isinstance(spec.layout, InlineLayout):
+        try:
+            return parse_layout(spec.layout.table, spec.layout.file)
+        except LayoutError as exc:          # name the recipe key the table sits under
+            key = spec.layout.key + (f".{exc.key}" if exc.key else "")
+            raise LayoutError(exc.message, file=spec.layout.file, key=key) from None
+    if spec.layout is not None or not spec.layout_path:
+        return spec.layout
+    return load_layout(spec.layout_path)
+
+
 def _name_source(exc, name: str) -> None:
     """Add the source's name to an error about one of its files."""
     if name:
@@ -176,7 +189,7 @@ class MultiSource:
         for base in sorted(bases):
             code = bases[base]
             s = specs[code]
-            layout = s.layout if s.layout is not None or not s.layout_path else load_layout(s.layout_path)
+            layout = source_layout(s)
             shape = layout.shape if layout is not None else None
             offset = base
             files = expand_entries(s.entries, shape, file=file, key=s.key)

@@ -16,8 +16,8 @@ from goalkit.archive import SourceSpec
 from goalkit.errors import GoalkitError
 from goalkit.logs.bagfile import is_bag_path
 from goalkit.logs.detect import found_arrays
-from goalkit.logs.layout import layout_to_toml, load_layout
-from goalkit.logs.multi import MultiSource, expand_entries
+from goalkit.logs.layout import layout_to_toml
+from goalkit.logs.multi import MultiSource, expand_entries, source_layout
 from goalkit.logs.opener import open_logs
 
 
@@ -67,14 +67,15 @@ def scan_sources(recipe) -> dict:
     """
     out = []
     for spec in _specs(recipe):
-        layout = load_layout(spec.layout_path) if spec.layout_path else None
+        layout = source_layout(spec)
         if recipe.sources:
             files = expand_entries(spec.entries, layout.shape if layout is not None else None,
                                    file=recipe.file, key=spec.key)
         else:
             files = [str(recipe.logs_path)]
         item = {"name": spec.name, "key": spec.key, "files": files, "episodes": None, "transitions": None,
-                "lengths": None, "layout": ({"from": "file", "path": spec.layout_path} if layout is not None
+                "lengths": None, "layout": ({"from": "file", "path": spec.layout_path} if spec.layout_path
+                                            else {"from": "recipe"} if layout is not None
                                             else {"from": "detected"}),
                 "arrays": _arrays(files[0]) if files else None, "keys": [], "problem": None}
         try:
@@ -106,7 +107,8 @@ def render_sources(report: dict) -> list[str]:
         if len(s["files"]) > 20:
             lines.append(f"  ... and {len(s['files']) - 20} more (see --json)")
         lay = s["layout"]
-        where = f"layout file {lay['path']}" if lay["from"] == "file" else "layout detected from the files"
+        where = {"file": f"layout file {lay.get('path')}", "recipe": "layout written in the recipe",
+                 "detected": "layout detected from the files"}[lay["from"]]
         if s["problem"] is None:
             L = s["lengths"] or {"min": 0, "max": 0}
             lines.append(f"  episodes {s['episodes']}, transitions {s['transitions']}, length {L['min']} .. "

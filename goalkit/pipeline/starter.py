@@ -13,6 +13,7 @@ import itertools
 import json
 import math
 import os
+import re
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -141,6 +142,15 @@ def _relative(entry: str, folder: str) -> str:
     return rel.replace(os.sep, "/")
 
 
+def inline_layout(layout_text: str, prefix: str) -> list[str]:
+    """A layout file's TOML text as tables under ``prefix`` (``[logs.layout]``, ``[logs.layout.keys]``, ...)."""
+    out = [f"[{prefix}]"]
+    for line in layout_text.splitlines():
+        m = re.match(r"^(\[\[?)([^\[\]]+)(\]\]?)\s*(#.*)?$", line)
+        out.append(f"{m.group(1)}{prefix}.{m.group(2).strip()}{m.group(3)}" if m else line)
+    return out
+
+
 def _output_name(recipe_path: Path) -> str:
     return f"{recipe_path.stem}-goals.h5"
 
@@ -199,10 +209,10 @@ def starter_recipe(entries, recipe_path, *, goal: GoalChoice, threshold: float, 
         L.append(f"layout = {_q(_relative(layout_file, folder))}" + "    # which array plays which role "
                  "(docs/layout.md)")
     else:
-        L += ["# No layout key: goalkit detects the layout each time it opens the logs. The one it",
-              "# detects today is below; to pin or edit it, save it with `goalkit scan ... --write-layout",
-              "# FILE` and add `layout = \"FILE\"` here.",
-              *[f"#   {line}".rstrip() for line in layout_text.splitlines()]]
+        L += ["", "# The layout: which array plays which role (docs/layout.md). This is the one `goalkit scan`",
+              "# proposed for these logs, kept here so that every build reads them the same way; edit it",
+              "# in place, or keep it in a file of its own and write `layout = \"FILE\"` under [logs].",
+              *inline_layout(layout_text, "logs.layout")]
     L += ["", "[goal]                   # how a state becomes a goal: fields, indices or embedding",
           f"# chosen: {goal.why}"]
     if goal.fields:

@@ -104,3 +104,38 @@ def test_scan_of_a_recipe_with_a_bad_source_reports_all_then_exits_2(tmp_path):
     # options that only make sense for logs are refused with a recipe
     res = gk("scan", recipe, "--write-recipe", tmp_path / "x.toml")
     assert res.exit_code == 2 and not (tmp_path / "x.toml").exists()
+
+
+def test_a_layout_written_in_the_recipe(tmp_path):
+    """`[logs.layout]` (and a source's `layout` table) instead of a layout file: the same set, and
+    its errors name the recipe and the key under it."""
+    write_flat(tmp_path / "a.h5", [4, 6, 3], seed=4)
+    (tmp_path / "layout.toml").write_text(LAYOUT)
+    tail = '[goal]\nindices = [0, 1]\n[reward]\nthreshold = 0.5\n[output]\npath = "{out}"\n'
+    (tmp_path / "file.toml").write_text('[logs]\npath = "a.h5"\nlayout = "layout.toml"\n' + tail.format(out="f.h5"))
+    inline = "[logs]\npath = \"a.h5\"\n[logs.layout]\n" + LAYOUT.replace("[keys]", "[logs.layout.keys]").replace(
+        "[boundaries]", "[logs.layout.boundaries]") + tail.format(out="i.h5")
+    (tmp_path / "inline.toml").write_text(inline)
+    for name in ("file", "inline"):
+        assert gk("build", tmp_path / f"{name}.toml", "--quiet").exit_code == 0
+    a, b = open_set(tmp_path / "f.h5"), open_set(tmp_path / "i.h5")
+    for split in ("train", "validation"):
+        ca, cb = a.read(split), b.read(split)
+        assert set(ca) == set(cb)
+        for k in ca:
+            np.testing.assert_array_equal(ca[k], cb[k], err_msg=k)
+    assert gk("verify", tmp_path / "i.h5", "--quiet").exit_code == 0
+    scan = json.loads(gk("scan", tmp_path / "inline.toml", "--json").stdout)
+    assert scan["sources"][0]["layout"]["from"] == "recipe" and scan["sources"][0]["episodes"] == 3
+    # a mistake in the table: one line naming the recipe and the key under [logs.layout]; nothing written
+    (tmp_path / "bad.toml").write_text(inline.replace('action = "act"', 'action = "ac"').replace("i.h5", "bad.h5"))
+    res = gk("build", tmp_path / "bad.toml")
+    assert res.exit_code == 2 and not (tmp_path / "bad.h5").exists()
+    assert "a.h5: key ac: missing array" in res.stderr
+    (tmp_path / "bad.toml").write_text(inline.replace('shape = "flat"', 'shape = "flt"').replace("i.h5", "bad.h5"))
+    res = gk("build", tmp_path / "bad.toml")
+    assert res.exit_code == 2 and not (tmp_path / "bad.h5").exists()
+    assert f"{tmp_path / 'bad.toml'}: key logs.layout.shape: expected one of" in res.stderr
+    (tmp_path / "bad.toml").write_text(inline.replace('shape = "flat"\n', ''))
+    res = gk("build", tmp_path / "bad.toml")
+    assert res.exit_code == 2 and "key logs.layout: expected a layout file name or a layout table" in res.stderr

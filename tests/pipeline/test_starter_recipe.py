@@ -125,7 +125,7 @@ def test_gymnasium_recording_scan_write_recipe_build_verify(tmp_path, env_name, 
         np.testing.assert_array_equal(got[:, 1], e["truncated"])
 
 
-def test_starter_recipe_without_a_layout_file_builds_with_the_detected_layout(tmp_path):
+def test_starter_recipe_without_a_layout_file_keeps_the_layout_inline(tmp_path):
     eps = record("MountainCar-v0", 3, pump, seed=2)
     logs = store_days(tmp_path / "logs", eps, per_file=1)
     recipe = tmp_path / "car.toml"
@@ -135,9 +135,12 @@ def test_starter_recipe_without_a_layout_file_builds_with_the_detected_layout(tm
     assert report["recipe_written"] == str(recipe) and len(report["files"]) == 3
     text = recipe.read_text()
     doc = tomllib.loads(text)
-    assert doc["logs"] == {"path": "logs", "skip_bad_episodes": False}      # the folder as given
-    assert "#   done = [\"terminated\", \"truncated\"]" in text               # the detected layout, shown
-    assert load_recipe(recipe).sources is not None                          # a folder of .h5 files
+    # the folder as given, and the proposed layout written in the recipe as [logs.layout]
+    assert doc["logs"]["path"] == "logs" and doc["logs"]["skip_bad_episodes"] is False
+    assert doc["logs"]["layout"] == {"version": 1, "shape": "flat", "boundaries": {"done": ["terminated", "truncated"]},
+                                     "keys": {"observation": "obs", "next_observation": "next_obs", "action": "act",
+                                              "termination": "terminated", "time_limit": "truncated"}}
+    assert load_recipe(recipe).sources is not None
     assert gk("build", recipe, "--quiet").exit_code == 0
     assert gk("verify", tmp_path / "car-goals.h5", "--quiet").exit_code == 0
     assert set_episodes(tmp_path / "car-goals.h5")[1] == [len(e["act"]) for e in eps]
@@ -153,7 +156,8 @@ def test_demo_logs_get_a_starter_recipe_with_their_task_goals(tmp_path):
     # and head_velocity (as wide as head) is left out as a rate of change
     assert doc["goal"]["fields"] == ["head", "trays"]
     assert doc["relabel"]["weights"] == {"original": 1, "future": 4, "final": 1}
-    assert doc["logs"]["path"] == "demo/gantry-logs.h5" and "layout" not in doc["logs"]
+    assert doc["logs"]["path"] == "demo/gantry-logs.h5"
+    assert doc["logs"]["layout"]["fields"] == {"head": "head", "head_velocity": "head_velocity", "trays": "trays"}
     assert gk("build", recipe, "--quiet").exit_code == 0
     ver = gk("verify", tmp_path / "mine-goals.h5", "--quiet")
     assert ver.exit_code == 0, ver.stderr
