@@ -10,7 +10,7 @@ import click
 
 from goalkit.archive import is_pattern
 from goalkit.cli_support import echo_json, progress, quiet_option, user_errors
-from goalkit.errors import LayoutError, LogError
+from goalkit.errors import LayoutError, LogError, OutputError
 from goalkit.logs.anylogs import holds_log_files, open_logs
 from goalkit.logs.bagfile import is_bag_path
 from goalkit.logs.bagscan import list_topics, propose_bag_layout, render_topics
@@ -23,6 +23,13 @@ from goalkit.outputs import check_no_overlap, refuse_existing, write_text
 from goalkit.pipeline.recipe import load_recipe, parse_recipe
 from goalkit.pipeline.scansources import render_sources, scan_sources
 from goalkit.pipeline.starter import choose_goal, placeholder_threshold, starter_recipe
+
+
+def _refuse_any_file(path) -> None:
+    """A starter recipe never replaces anything (there is no --replace for it)."""
+    if os.path.isfile(path) and not os.path.islink(path):
+        raise OutputError("the recipe already exists; scan never replaces a file (choose another path)", file=path)
+    refuse_existing(path, replace=False, what="recipe")
 
 
 def _is_recipe_argument(logs) -> bool:
@@ -112,7 +119,7 @@ def scan(logs, layout_file, as_json, write_layout, write_recipe, skip_bad_episod
     if write_layout is not None:
         refuse_existing(write_layout, replace=replace, ours=is_layout_file, what="layout file")
     if write_recipe is not None:
-        refuse_existing(write_recipe, replace=False, what="recipe")
+        _refuse_any_file(write_recipe)
     listing = list_topics(first) if is_bag_path(first) else None
     proposed = layout is None
     if layout is None and str(first).lower().endswith(".parquet"):
