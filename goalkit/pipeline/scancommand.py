@@ -57,7 +57,8 @@ def _scan_recipe(path, as_json, quiet, others) -> None:
             click.echo(line)
     bad = next((s for s in report["sources"] if s["problem"] is not None), None)
     if bad is not None:
-        raise LogError(bad["problem"] + (f" (source '{bad['name']}')" if bad["name"] else ""))
+        tag = f" (source '{bad['name']}')" if bad["name"] else ""
+        raise LogError(bad["problem"] + ("" if bad["problem"].endswith(tag) else tag))
 
 
 def _starter_text(path, logs, source, report, layout_text, layout_file, skip) -> str:

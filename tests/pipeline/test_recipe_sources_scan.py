@@ -9,6 +9,7 @@ import h5py
 import numpy as np
 from click.testing import CliRunner
 
+import goalkit
 from goalkit import info, load_recipe, open_set
 from goalkit.cli import main as cli_main
 from goalkit.relabel import Mixture
@@ -79,6 +80,7 @@ def test_scan_of_a_recipe_reports_every_source(tmp_path):
     assert 'episode_id = "ids"' in scripted["layout"]["text"]
     assert {a["key"]: (a["shape"], a["dtype"]) for a in scripted["arrays"]["arrays"]} == {
         "act": ([13, 1], "float64"), "ids": ([13], "int64"), "obs": ([13, 2], "float64")}
+    assert goalkit.scan(load_recipe(recipe)) == rep          # the Python API gives the same report
     text = gk("scan", recipe)
     assert text.exit_code == 0
     assert "source 'teleop' (sources[0].path): 2 file(s)" in text.stdout
