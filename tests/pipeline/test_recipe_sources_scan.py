@@ -141,3 +141,21 @@ def test_a_layout_written_in_the_recipe(tmp_path):
     (tmp_path / "bad.toml").write_text(inline.replace('shape = "flat"\n', ''))
     res = gk("build", tmp_path / "bad.toml")
     assert res.exit_code == 2 and "key logs.layout: expected a layout file name or a layout table" in res.stderr
+
+
+def test_a_source_layout_written_in_the_recipe(tmp_path):
+    recipe = archive(tmp_path)
+    text = recipe.read_text().replace('name = "scripted"\npath = "scripted.npz"\n',
+                                      'name = "scripted"\npath = "scripted.npz"\n[sources.layout]\n'
+                                      + LAYOUT.replace("[keys]", "[sources.layout.keys]")
+                                      .replace("[boundaries]", "[sources.layout.boundaries]"))
+    recipe.write_text(text)
+    rep = json.loads(gk("scan", recipe, "--json").stdout)
+    assert [s["layout"]["from"] for s in rep["sources"]] == ["file", "recipe"]
+    assert gk("build", recipe, "--quiet").exit_code == 0
+    assert gk("verify", tmp_path / "s.h5", "--quiet").exit_code == 0
+    assert info(tmp_path / "s.h5")["transitions"] == 12 + 10
+    recipe.write_text(text.replace('action = "act"', 'action = 5').replace('"s.h5"', '"t.h5"'))
+    res = gk("build", recipe)
+    assert res.exit_code == 2 and "key sources[1].layout.keys.action" in res.stderr
+    assert not (tmp_path / "t.h5").exists()
