@@ -9,6 +9,7 @@ threshold that is only a placeholder for ``goalkit tune`` to replace.
 
 from __future__ import annotations
 
+import fnmatch
 import itertools
 import json
 import math
@@ -18,6 +19,9 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+
+from goalkit.archive import is_pattern
+from goalkit.logs.multi import LOG_SUFFIXES
 
 #: Parts of field names that mark rates of change or efforts rather than where things are
 #: (a goal is usually where things are; compared in lower case).
@@ -151,7 +155,26 @@ def inline_layout(layout_text: str, prefix: str) -> list[str]:
     return out
 
 
-def _output_name(recipe_path: Path) -> str:
+def _read_as_log(path: str, entries) -> bool:
+    """Whether a build would read ``path`` as one of the logs (a glob matches it, or it would sit
+    directly in a folder of logs with a log file's suffix)."""
+    for e in entries:
+        e = os.path.abspath(os.path.expanduser(str(e)))
+        if is_pattern(e) and fnmatch.fnmatchcase(path, e):
+            return True
+        if os.path.dirname(path) == e and path.lower().endswith(LOG_SUFFIXES):
+            return True
+    return False
+
+
+def output_name(recipe_path, entries) -> str:
+    """The set's file name beside the recipe: ``STEM-goals.h5``, or ``STEM.goalset`` when the logs'
+    globs or folders would read the former back as a log on the next build."""
+    recipe_path = Path(recipe_path)
+    folder = os.path.dirname(os.path.abspath(recipe_path))
+    for name in (f"{recipe_path.stem}-goals.h5", f"{recipe_path.stem}.goalset"):
+        if not _read_as_log(os.path.join(folder, name), entries):
+            return name
     return f"{recipe_path.stem}-goals.h5"
 
 
@@ -242,7 +265,7 @@ def starter_recipe(entries, recipe_path, *, goal: GoalChoice, threshold: float, 
           "", f"[split]                  # {episodes} episodes found; a stable hash of each episode id picks its split",
           "validation = 0.1         # share of episodes held out for validation",
           "", "[output]",
-          f"path = {_q(_output_name(recipe_path))}" + "    # the set; an existing file is never replaced "
+          f"path = {_q(output_name(recipe_path, entries))}" + "    # the set; an existing file is never replaced "
           "without build --replace",
           "mode = \"materialised\"    # every row stores its observations (\"indexed\": rows point into the logs)",
           ""]

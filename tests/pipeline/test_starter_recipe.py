@@ -28,7 +28,7 @@ from click.testing import CliRunner
 
 from goalkit import load_recipe, make_demo, open_set
 from goalkit.cli import main as cli_main
-from goalkit.pipeline.starter import choose_goal, placeholder_threshold
+from goalkit.pipeline.starter import choose_goal, output_name, placeholder_threshold
 
 
 def gk(*args):
@@ -228,3 +228,9 @@ def test_choose_goal_and_placeholder():
     rng = [{"dim": i, "min": 0.0, "max": m} for i, m in enumerate((3.0, 4.0, 100.0))]
     assert placeholder_threshold(rng, (0, 1)) == 0.25          # 0.05 * hypot(3, 4)
     assert placeholder_threshold(rng, ()) == 0.01
+
+
+def test_the_set_is_never_named_where_the_logs_globs_would_read_it(tmp_path):
+    assert output_name(tmp_path / "start.toml", [str(tmp_path / "logs")]) == "start-goals.h5"
+    assert output_name(tmp_path / "start.toml", [str(tmp_path / "*.h5")]) == "start.goalset"
+    assert output_name(tmp_path / "start.toml", [str(tmp_path)]) == "start.goalset"
