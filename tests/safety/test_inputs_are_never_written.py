@@ -167,7 +167,7 @@ def _world_paths(world: Path) -> dict:
 
 def test_case_count():
     # (command x output option x input x link kind); each runs plain and with --replace
-    assert len(PARAMS) == 141
+    assert len(PARAMS) == 153   # 141 + scan --write-recipe: (logs, layout) x 3 kinds + (layout + folder) x 3
     assert len({(o, n, k) for o, n, k in PARAMS}) == len(PARAMS)
 
 
