@@ -164,6 +164,12 @@ def test_demo_logs_get_a_starter_recipe_with_their_task_goals(tmp_path):
     s = open_set(tmp_path / "mine-goals.h5")
     strategies = set(np.unique(s.read("train", columns=["strategy"])["strategy"]).tolist())
     assert strategies == {0, 1, 2}          # original, final, future (codes: docs/relabel.md)
+    # the placeholder threshold is for `goalkit tune` to replace: from the logs' own success flags here
+    tuned = tmp_path / "tuned.toml"
+    res = gk("tune", recipe, "--from-success", "--resamples", "0", "--write-recipe", tuned, "--quiet")
+    assert res.exit_code == 0, res.stderr
+    new = tomllib.loads(tuned.read_text())["reward"]["threshold"]
+    assert new != doc["reward"]["threshold"] and f"was euclidean {doc['reward']['threshold']}" in tuned.read_text()
 
 
 def test_an_existing_recipe_is_never_replaced_and_nothing_is_written(tmp_path):
