@@ -110,7 +110,8 @@ def choose_goal(fields: dict, obs_width: int, task_goal_width: int | None) -> Go
         if fitting:
             best = min(fitting, key=lambda s: (sum(_rate_like(n) for n in s), subsets.index(s)))
             return GoalChoice(fields=best, columns=cols_of(best), original=True,
-                              why=f"the fields as wide as the logs' task goals ({task_goal_width} columns)")
+                              why=f"the fields as wide as the logs' task goals ({task_goal_width} columns); "
+                                  "check that they are what the task goals describe")
     plain = tuple(n for n in names if not _rate_like(n)) or tuple(names)
     left = [n for n in names if n not in plain]
     why = "the layout's fields" + (f" except the rates of change ({', '.join(left)})" if left else "")
