@@ -43,7 +43,7 @@ _LAZY = {
     "info": "goalkit.write.info", "write_card": "goalkit.write.card",
     "make_demo": "goalkit.demo.files",
     # logs
-    "open_logs": "goalkit.logs.opener", "scan": "goalkit.api", "load_layout": "goalkit.logs.layout",
+    "open_logs": "goalkit.logs.anylogs", "scan": "goalkit.api", "load_layout": "goalkit.logs.layout",
     "Layout": "goalkit.logs.layout", "propose_layout": "goalkit.logs.detect",
     "iter_chunks": "goalkit.logs.episodes", "EpisodeSet": "goalkit.logs.episodes",
     "LogSource": "goalkit.logs.episodes",

@@ -14,11 +14,12 @@ from dataclasses import dataclass
 from typing import Any
 
 from goalkit.errors import GoalkitError
-from goalkit.logs.opener import open_logs
+from goalkit.logs.anylogs import open_logs
 from goalkit.logs.scan import scan_logs
 from goalkit.pipeline.build import BuildResult
 from goalkit.pipeline.build import build as _engine_build
 from goalkit.pipeline.recipe import Recipe, load_recipe
+from goalkit.pipeline.scansources import scan_sources
 from goalkit.scoring.run import AssessResult, assess_suite
 from goalkit.suites.make import SuiteResult
 from goalkit.suites.make import make_suite as _make_suite
@@ -186,8 +187,11 @@ def scan(logs, layout=None, *, skip_bad_episodes: bool = False, max_transitions:
 
     Parameters
     ----------
-    logs : str or Path
-        An HDF5 file, ``.npz`` file, folder of per-episode files, bag or step table.
+    logs : str, Path or list of them
+        An HDF5 file, ``.npz`` file, folder of per-episode files, bag or step table; or several
+        log files as a list of files, globs and folders (as :func:`goalkit.open_logs` takes); or a
+        loaded :class:`Recipe`, whose every source is reported on its own (what ``goalkit scan
+        RECIPE.toml`` prints; ``layout`` and the other arguments are then not used).
     layout : Layout, str, Path or mapping, optional
         The layout (a file, a parsed table or a :class:`Layout`); None proposes one.
     skip_bad_episodes : bool
@@ -199,13 +203,16 @@ def scan(logs, layout=None, *, skip_bad_episodes: bool = False, max_transitions:
     -------
     dict
         ``episodes``, ``steps``, ``lengths``, ``keys``, ``observation_range``,
-        ``success_by_task``, ``rewards``, ``notes``, ``skipped`` and ``problems``.
+        ``success_by_task``, ``rewards``, ``notes``, ``skipped`` and ``problems``. For a recipe:
+        ``recipe``, ``ok`` and ``sources`` (see ``docs/layout.md``, "Scanning a recipe's sources").
 
     Raises
     ------
     LogError, LayoutError
         On unreadable logs or a layout that does not fit them.
     """
+    if isinstance(logs, Recipe):
+        return scan_sources(logs)
     source = open_logs(logs, layout, skip_bad_episodes=skip_bad_episodes)
     return scan_logs(source, max_transitions=max_transitions)
 

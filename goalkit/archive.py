@@ -37,6 +37,22 @@ def source_base(name: str) -> int:
 
 
 @dataclass(frozen=True)
+class InlineLayout:
+    """A layout written in the recipe itself (``[logs.layout]`` or a source's ``layout`` table).
+
+    Kept as its TOML table here (loading a recipe stays light); :mod:`goalkit.logs.multi` parses
+    it when the logs are opened, naming ``file`` and ``key`` in its errors.
+    """
+
+    table: dict
+    file: str = "<recipe>"
+    key: str = "logs.layout"
+
+    def __hash__(self):
+        return hash((self.file, self.key, repr(self.table)))
+
+
+@dataclass(frozen=True)
 class SourceSpec:
     """One source of a recipe.
 
@@ -46,8 +62,8 @@ class SourceSpec:
         The user's name for it ("" for the one source of ``[logs]``).
     entries : tuple of str
         Absolute files, folders and glob patterns.
-    layout : goalkit.logs.layout.Layout or None
-        Its layout (None: proposed for each file).
+    layout : goalkit.logs.layout.Layout, InlineLayout or None
+        Its layout (None: proposed from its first file, or read from ``layout_path``).
     skip_bad_episodes : bool
     key : str
         The recipe key it came from, for messages (``logs.path``, ``sources[1].path``).

@@ -17,7 +17,7 @@ from goalkit.cli_support import EXIT_INTERRUPTED, run_guarded
 #: command name -> "module:function" (a click.Command); help text shown in the listing.
 COMMANDS = {
     "demo": ("goalkit.demo.command:demo", "Write invented demo logs of the irrigation-gantry bench."),
-    "scan": ("goalkit.logs.command:scan", "Summarise task logs and check them; propose a layout."),
+    "scan": ("goalkit.pipeline.scancommand:scan", "Summarise task logs and check them; propose a layout."),
     "build": ("goalkit.pipeline.command:build", "Build a goal-conditioned dataset from a recipe."),
     "verify": ("goalkit.write.command:verify", "Re-derive a built dataset from its logs and check it."),
     "info": ("goalkit.write.info_command:info", "Print a built dataset's card facts (from the file alone)."),

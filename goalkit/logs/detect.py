@@ -367,25 +367,26 @@ def _boundary_guess(arrays) -> tuple[str, list, str] | None:
     return None
 
 
-def partial_layout(path, reason: str = "") -> str:
-    """A layout to finish by hand: every array found, with its shape and dtype, and a guess per role.
-
-    Written by ``goalkit scan LOGS --write-layout FILE`` when :func:`propose_layout` cannot decide.
-    Roles with a guess are set (with the reason as a comment); the others are commented out with
-    ``"???"`` for the user to fill in. The text is TOML that :func:`parse_layout` reads once the
-    required roles are filled in.
+def found_arrays(path) -> tuple[str, str, list, str | None]:
+    """Every array in a log (HDF5, ``.npz``, a folder of per-episode ``.npz``), with shape and dtype.
 
     Parameters
     ----------
     path : str or Path
-        An HDF5 file, a ``.npz`` file or a directory of ``.npz`` files.
-    reason : str
-        Why detection could not decide (written at the top).
+        The log.
 
     Returns
     -------
-    str or None
-        None when no array was found (nothing to list).
+    shape : str
+        The storage shape it looks like: ``"grouped"`` (several episode groups), ``"flat"`` or
+        ``"per-file"``.
+    where : str
+        Where the arrays were listed ("in the file", "in episode group runs/r0 (paths inside it)").
+    arrays : list of (str, tuple, str)
+        ``(key, shape, dtype)`` in natural order, at most :data:`MAX_LISTED`; for ``grouped`` the
+        keys are paths inside the first episode group, for ``per-file`` arrays of the first file.
+    episode_groups : str or None
+        The episode-group pattern (``grouped`` only).
     """
     path = str(path)
     episode_groups = None
@@ -412,6 +413,31 @@ def partial_layout(path, reason: str = "") -> str:
                 where = f"in episode group {first} (paths inside it)"
             else:
                 shape, where = "flat", "in the file"
+    return shape, where, arrays, episode_groups
+
+
+def partial_layout(path, reason: str = "") -> str:
+    """A layout to finish by hand: every array found, with its shape and dtype, and a guess per role.
+
+    Written by ``goalkit scan LOGS --write-layout FILE`` when :func:`propose_layout` cannot decide.
+    Roles with a guess are set (with the reason as a comment); the others are commented out with
+    ``"???"`` for the user to fill in. The text is TOML that :func:`parse_layout` reads once the
+    required roles are filled in.
+
+    Parameters
+    ----------
+    path : str or Path
+        An HDF5 file, a ``.npz`` file or a directory of ``.npz`` files.
+    reason : str
+        Why detection could not decide (written at the top).
+
+    Returns
+    -------
+    str or None
+        None when no array was found (nothing to list).
+    """
+    path = str(path)
+    shape, where, arrays, episode_groups = found_arrays(path)
     if not arrays:
         return None
     guesses = _guess_roles(arrays)

@@ -21,9 +21,12 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from goalkit.archive import SOURCE_SHIFT, SourceSpec, is_pattern, source_base
+from goalkit.archive import SOURCE_SHIFT, InlineLayout, SourceSpec, is_pattern, source_base
 from goalkit.config import parse_toml
-from goalkit.errors import GoalkitError, LogError
+from goalkit.errors import GoalkitError, LayoutError, LogError
+from goalkit.logs.bagfile import is_bag_path
+from goalkit.logs.bagscan import list_topics, propose_bag_layout
+from goalkit.logs.detect import propose_layout
 from goalkit.logs.episodes import EpisodeSet, concat_episodes
 from goalkit.logs.layout import load_layout, parse_layout
 from goalkit.logs.naming import natural_key
@@ -99,6 +102,26 @@ def expand_entries(entries, shape: str | None, *, file=None, key="logs.path") ->
     return out
 
 
+def source_layout(spec):
+    """A source's layout: given, written in the recipe (parsed here), from its file, or None."""
+    if isinstance(spec.layout, InlineLayout):
+        try:
+            return parse_layout(spec.layout.table, spec.layout.file)
+        except LayoutError as exc:          # name the recipe key the table sits under
+            key = spec.layout.key + (f".{exc.key}" if exc.key else "")
+            raise LayoutError(exc.message, file=spec.layout.file, key=key) from None
+    if spec.layout is not None or not spec.layout_path:
+        return spec.layout
+    return load_layout(spec.layout_path)
+
+
+def _name_source(exc, name: str) -> None:
+    """Add the source's name to an error about one of its files."""
+    if name:
+        exc.message += f" (source '{name}')"
+        exc.args = (exc.render(),)
+
+
 @dataclass
 class _Part:
     """One opened file of one source."""
@@ -166,19 +189,26 @@ class MultiSource:
         for base in sorted(bases):
             code = bases[base]
             s = specs[code]
-            layout = s.layout if s.layout is not None or not s.layout_path else load_layout(s.layout_path)
-            self.layouts[code] = layout
+            layout = source_layout(s)
             shape = layout.shape if layout is not None else None
             offset = base
             files = expand_entries(s.entries, shape, file=file, key=s.key)
+            if layout is None and files:
+                # no layout: the one proposed for the source's first file reads all its files (the
+                # layout a set records for the source, with which verify reopens them)
+                try:
+                    layout = (propose_bag_layout(list_topics(files[0])) if is_bag_path(files[0])
+                              else propose_layout(files[0]))
+                except GoalkitError as exc:
+                    _name_source(exc, s.name)
+                    raise
+            self.layouts[code] = layout
             self.file_entries.append((code, files))
             for path in files:
                 try:
                     log = open_logs(path, layout, skip_bad_episodes=s.skip_bad_episodes)
                 except GoalkitError as exc:      # say which source the file belongs to
-                    if s.name:
-                        exc.message += f" (source '{s.name}')"
-                        exc.args = (exc.render(),)
+                    _name_source(exc, s.name)
                     raise
                 if offset + log.total_episodes >= base + (1 << SOURCE_SHIFT) and base:
                     raise LogError(f"more than 2**{SOURCE_SHIFT} episodes in one source", file=path)

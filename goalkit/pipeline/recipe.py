@@ -13,7 +13,7 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 
 from goalkit.config import check_keys, expect_type, parse_toml, read_text_file
-from goalkit.archive import SourceSpec, is_pattern
+from goalkit.archive import InlineLayout, SourceSpec, is_pattern
 from goalkit.errors import ParameterError, RecipeError, shown
 from goalkit.graphconfig import GraphSpec
 from goalkit.heads import heads_from_table
@@ -302,11 +302,16 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored
         check_keys(logs, LOGS_KEYS, file=file, section="[logs]", error=RecipeError)
         if "path" not in logs:
             raise RecipeError("missing key 'path' in [logs]", file=file, key="logs.path")
-        layout_path = _path(logs["layout"], base, file, "logs.layout") if "layout" in logs else None
+        inline = logs.get("layout") if isinstance(logs.get("layout"), dict) else None
+        layout_path = (_path(logs["layout"], base, file, "logs.layout") if "layout" in logs and inline is None
+                       else None)
         skip = logs.get("skip_bad_episodes", False)
         expect_type(skip, bool, file=file, key="logs.skip_bad_episodes", what="true or false", error=RecipeError)
         value = logs["path"]
-        if isinstance(value, str) and not is_pattern(value):
+        if inline is not None:   # a layout written in the recipe: read as a source (goalkit.logs.multi)
+            sources = (SourceSpec("", _entries(value, base, file, "logs.path"), _inline_layout(inline, file, "logs"),
+                                  skip, "logs.path", ""),)
+        elif isinstance(value, str) and not is_pattern(value):
             logs_path = _path(value, base, file, "logs.path")
             if logs_path.is_dir() and _holds_logs(logs_path, layout_path):
                 sources = (SourceSpec("", (str(logs_path),), None, skip, "logs.path", str(layout_path or "")),)
@@ -316,7 +321,8 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored
         if sources is not None:
             logs_path = None
     goal = _parse_goal(_table(doc, "goal", file), base, file)
-    mixture = _in_recipe(Mixture.from_table, _table(doc, "relabel", file), file, "relabel")
+    # tables whose every key has a documented default may be left out (docs/recipe.md)
+    mixture = _in_recipe(Mixture.from_table, _table(doc, "relabel", file, required=False), file, "relabel")
     if mixture.library is not None:  # relative to the recipe's folder, like every other path
         lib = _path(mixture.library, base, file, "relabel.library")
         if not lib.is_file():
@@ -377,6 +383,14 @@ def _entries(value, base: Path, file, key) -> tuple:
     return tuple(out)
 
 
+def _inline_layout(table: dict, file, where: str) -> InlineLayout:
+    """A layout written in the recipe as a table (``[logs.layout]``); parsed when the logs are opened."""
+    if "shape" not in table:
+        raise RecipeError("expected a layout file name or a layout table with at least 'shape' (docs/layout.md)",
+                          file=file, key=f"{where}.layout")
+    return InlineLayout(table=table, file=str(file), key=f"{where}.layout")
+
+
 def _parse_sources(value, base: Path, file) -> tuple:
     """``[[sources]]``: named sources, each with its own files and layout."""
     if not isinstance(value, list) or not value or not all(isinstance(t, dict) for t in value):
@@ -401,8 +415,10 @@ def _parse_sources(value, base: Path, file) -> tuple:
         skip = table.get("skip_bad_episodes", False)
         expect_type(skip, bool, file=file, key=f"{where}.skip_bad_episodes", what="true or false",
                     error=RecipeError)
-        layout = _path(table["layout"], base, file, f"{where}.layout") if "layout" in table else None
-        specs.append(SourceSpec(name, _entries(table["path"], base, file, f"{where}.path"), None, skip,
+        inline = _inline_layout(table["layout"], file, where) if isinstance(table.get("layout"), dict) else None
+        layout = (_path(table["layout"], base, file, f"{where}.layout") if "layout" in table and inline is None
+                  else None)
+        specs.append(SourceSpec(name, _entries(table["path"], base, file, f"{where}.path"), inline, skip,
                                 f"{where}.path", str(layout or "")))
     return tuple(specs)
 

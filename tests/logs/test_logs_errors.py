@@ -125,8 +125,12 @@ def test_file_level_problems_are_errors_even_when_skipping(tmp_path):
     (tmp_path / "text.h5").write_text("episode,step\n0,1\n")
     with pytest.raises(LogError, match="not an HDF5 file"):
         open_logs(tmp_path / "text.h5", table)
+    # a folder holding no log file is not a log (a folder of .h5 files is read as its files, like a
+    # recipe's [logs] path; tests/logs/test_logs_open_list.py)
+    (tmp_path / "notes").mkdir()
+    (tmp_path / "notes" / "readme.txt").write_text("x")
     with pytest.raises(LogError, match="expected an HDF5 file, got a directory"):
-        open_logs(tmp_path, table)
+        open_logs(tmp_path / "notes", table)
 
 
 def flat(tmp_path, name="f.h5", **kw):

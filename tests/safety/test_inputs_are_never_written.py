@@ -43,6 +43,9 @@ def _argv(case_option: str, w: dict, out: Path, recipe_for_output=None) -> list:
         "scan --write-layout": ["scan", s["logs"], "--layout", s["layout"], "--write-layout", str(out), "--quiet"],
         "scan(folder) --write-layout": ["scan", s["episodes"], "--layout", s["episodes-layout"],
                                         "--write-layout", str(out), "--quiet"],
+        "scan --write-recipe": ["scan", s["logs"], "--layout", s["layout"], "--write-recipe", str(out), "--quiet"],
+        "scan(folder) --write-recipe": ["scan", s["episodes"], "--layout", s["episodes-layout"],
+                                        "--write-recipe", str(out), "--quiet"],
         "build --out": ["build", s["recipe"], "--out", str(out), "--quiet"],
         "build --out --workers 2": ["build", s["recipe"], "--out", str(out), "--workers", "2", "--quiet"],
         "build --out --scheduler": ["build", s["recipe"], "--out", str(out), "--scheduler", "tcp://127.0.0.1:9",
@@ -65,6 +68,8 @@ RECIPE_INPUTS = ("recipe", "logs", "layout", "embedding", "library")
 CASES = [
     Case("scan", "scan --write-layout", ("logs", "layout")),
     Case("scan", "scan(folder) --write-layout", ("episodes-layout",), ("episodes",)),
+    Case("scan", "scan --write-recipe", ("logs", "layout")),
+    Case("scan", "scan(folder) --write-recipe", ("episodes-layout",), ("episodes",)),
     Case("build", "build --out", RECIPE_INPUTS),
     Case("build", "build --out --workers 2", RECIPE_INPUTS),
     Case("build", "build --out --scheduler", RECIPE_INPUTS),
@@ -162,7 +167,7 @@ def _world_paths(world: Path) -> dict:
 
 def test_case_count():
     # (command x output option x input x link kind); each runs plain and with --replace
-    assert len(PARAMS) == 141
+    assert len(PARAMS) == 153   # 141 + scan --write-recipe: (logs, layout) x 3 kinds + (layout + folder) x 3
     assert len({(o, n, k) for o, n, k in PARAMS}) == len(PARAMS)
 
 

@@ -51,6 +51,8 @@ def commands(w: Path, out: Path) -> dict:
         "build --workers 2": ["build", w / "gantry-recipe.toml", "--out", out, "--workers", "2", "--quiet"],
         "scan --write-layout": ["scan", w / "gantry-logs.h5", "--layout", w / "gantry-layout.toml",
                                 "--write-layout", out, "--quiet"],
+        "scan --write-recipe": ["scan", w / "gantry-logs.h5", "--layout", w / "gantry-layout.toml",
+                                "--write-recipe", out, "--quiet"],
         "embed -o": ["embed", w / "gantry-logs.h5", "--layout", w / "gantry-layout.toml", "--method", "pca",
                      "--dims", "2", "--fields", "head,trays", "-o", out, "--quiet"],
         "tune --write-recipe": ["tune", w / "gantry-recipe.toml", "--from-success", "--resamples", "0",
@@ -60,6 +62,9 @@ def commands(w: Path, out: Path) -> dict:
 
 OUT_NAMES = {"build": "goals.h5", "build --workers 2": "goals.h5", "scan --write-layout": "new-layout.toml",
              "embed -o": "new-emb.npz", "tune --write-recipe": "tuned.toml"}
+#: Outputs that are never replaced, with or without --replace.
+WRITE_ONCE = {"scan --write-recipe": "start.toml"}
+ALL_OUT = {**OUT_NAMES, **WRITE_ONCE}
 
 
 def _check_output(kind: str, out: Path) -> None:
@@ -70,14 +75,15 @@ def _check_output(kind: str, out: Path) -> None:
     from goalkit.write.format import is_goal_set
 
     check = {"build": is_goal_set, "build --workers 2": is_goal_set, "scan --write-layout": is_layout_file,
+             "scan --write-recipe": is_recipe_file,
              "embed -o": is_embedding_file, "tune --write-recipe": is_recipe_file}[kind]
     assert check(out), out
 
 
 # ---- planted links at temporary names ----------------------------------------------------------
-@pytest.mark.parametrize("kind", sorted(OUT_NAMES))
+@pytest.mark.parametrize("kind", sorted(ALL_OUT))
 def test_a_link_planted_at_the_temporary_name_is_not_followed(w, tmp_path, monkeypatch, kind):
-    out = w / OUT_NAMES[kind]
+    out = w / ALL_OUT[kind]
     victim = tmp_path / "victim.txt"
     victim.write_bytes(b"precious")
     planted = "0123456789ab"
@@ -181,6 +187,24 @@ def test_an_existing_output_needs_replace_and_a_foreign_file_is_never_replaced(w
         assert os.path.islink(out) == (foreign == "link")
 
 
+@pytest.mark.parametrize("kind", sorted(WRITE_ONCE))
+def test_a_write_once_output_is_never_replaced(w, kind):
+    out = w / WRITE_ONCE[kind]
+    argv = commands(w, out)[kind]
+    assert run(*argv).exit_code == 0
+    first = sha256(out)
+    for extra in ((), ("--replace",)):
+        line = one_error_line(run(*argv, *extra))
+        assert "already exists" in line and "never replaces" in line and str(out) in line, line
+        assert sha256(out) == first
+    out.unlink()
+    target = w / "linked-target"
+    kept = _foreign(target)
+    os.symlink(target, out)
+    line = one_error_line(run(*argv))
+    assert "symbolic link" in line and target.read_bytes() == kept and os.path.islink(out)
+
+
 def test_a_dataset_of_another_recipe_is_replaced_only_with_replace(w):
     # the case: an existing set built from another recipe was replaced without a word
     out = w / "goals.h5"
@@ -240,9 +264,9 @@ def _dead_pid() -> int:
     return p.pid
 
 
-@pytest.mark.parametrize("kind", sorted(OUT_NAMES))
+@pytest.mark.parametrize("kind", sorted(ALL_OUT))
 def test_stale_temporaries_are_removed_and_nothing_else(w, kind):
-    out = w / OUT_NAMES[kind]
+    out = w / ALL_OUT[kind]
     dead, host = _dead_pid(), host_tag()
     sleeper = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
     try:
