@@ -27,6 +27,7 @@ file's bytes are the same for every producer.
 
 from __future__ import annotations
 
+import os
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from dataclasses import replace as dataclass_replace
@@ -50,7 +51,7 @@ from goalkit.pipeline.searchsetup import add_to_summary, search_provenance
 from goalkit.rows import SPLITS
 from goalkit.write.card import card_paths, check_card_outputs, graph_plot_path, write_card
 from goalkit.write.format import is_goal_set
-from goalkit.write.provenance import describe_files
+from goalkit.write.provenance import describe_files, with_relative
 from goalkit.write.writer import OutputWriteError, SetWriter
 
 __all__ = ["CHUNK_ROWS", "SHARD_ROWS", "BuildInputs", "BuildResult", "build", "check_outputs",
@@ -348,7 +349,9 @@ def close_dataset(writer, plan, source, summary, log_files=None, inputs: BuildIn
     """
     recipe, out = plan.recipe, plan.recipe.output
     result = final_summary(summary, plan, source)
-    prov = provenance(plan, source, log_files=log_files, inputs=inputs)
+    # each file's path relative to the set's folder, so a set moved with its files finds them
+    prov = with_relative(provenance(plan, source, log_files=log_files, inputs=inputs),
+                         os.path.realpath(os.path.dirname(os.path.abspath(out.path))))
     episodes = {s: int(np.sum(plan.splits == c)) for c, s in enumerate(("train", "validation"))}
     path = writer.close(
         attrs={"goalkit_version": __version__, "mode": out.mode, "seed": recipe.seed,

@@ -1,9 +1,20 @@
-"""Provenance: checksums of the files a dataset was built from."""
+"""Provenance: checksums of the files a dataset was built from, and their places.
+
+Each file entry is ``{"path", "bytes", "sha256"}``; a built set's entries also carry
+``relative``, the path relative to the set's folder at build time (recorded as the
+provenance's ``set_folder``), so that a set moved together with its files still finds them
+(:mod:`goalkit.write.relocate`).
+"""
 
 from __future__ import annotations
 
 import hashlib
+import os
 from pathlib import Path
+
+
+#: The provenance groups of file entries: (provenance key, what a message calls one).
+FILE_GROUPS = (("log_files", "log file"), ("embedding_files", "embedding file"), ("library.files", "library file"))
 
 
 def file_digest(path, block: int = 8 << 20) -> str:
@@ -23,4 +34,33 @@ def describe_files(paths) -> list[dict]:
     for p in paths:
         p = Path(p)
         out.append({"path": str(p.resolve()), "bytes": p.stat().st_size, "sha256": file_digest(p)})
+    return out
+
+
+def with_relative(prov: dict, set_folder) -> dict:
+    """``prov`` with ``set_folder`` and each file entry's ``relative`` path added (a new dict).
+
+    ``set_folder`` is the (resolved) folder the set is written in; a path that has no relative
+    form (another drive) gets no ``relative``.
+    """
+    folder = str(set_folder)
+    out = dict(prov, set_folder=folder)
+    for key, _ in FILE_GROUPS:
+        if key == "library.files":
+            if isinstance(out.get("library"), dict) and "files" in out["library"]:
+                out["library"] = dict(out["library"], files=_add_relative(out["library"]["files"], folder))
+        elif key in out:
+            out[key] = _add_relative(out[key], folder)
+    return out
+
+
+def _add_relative(entries, folder: str) -> list:
+    out = []
+    for e in entries:
+        e = {k: v for k, v in e.items() if k != "relative"}
+        try:
+            e["relative"] = os.path.relpath(e["path"], folder)
+        except ValueError:   # no relative form (another drive)
+            pass
+        out.append(e)
     return out

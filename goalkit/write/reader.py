@@ -24,6 +24,12 @@ class GoalSet:
     ----------
     path : str or Path
         A file written by ``goalkit build``.
+    logs_root : str or Path, optional
+        Indexed sets: the folder that now holds the logs the set was built from, when they moved
+        (standing for the logs' common folder at build time). The logs are looked for beside the
+        set first (a set moved together with its logs needs nothing), then at their recorded
+        paths, then under ``logs_root`` by their place and by size and SHA-256; a file whose
+        checksum differs is refused (docs/dataset.md, "Moving a set and its logs").
 
     Attributes
     ----------
@@ -41,8 +47,9 @@ class GoalSet:
     ...         obs, goal, reward = batch["observation"], batch["goal"], batch["reward"]
     """
 
-    def __init__(self, path):
+    def __init__(self, path, logs_root=None):
         self.path = Path(path)
+        self.logs_root = logs_root
         self.file = open_set_file(self.path)
         try:
             self.stored = read_attrs(self.file, self.path)
@@ -136,7 +143,7 @@ class GoalSet:
 
     def _resolve(self, group, start, stop, names) -> dict:
         if self._logs is None:
-            self._logs = open_logs_of(self)
+            self._logs = open_logs_of(self, self.logs_root)
         ep = group["source_episode"][start:stop]
         step = group["source_step"][start:stop]
         return resolve_rows(self._logs, ep, step, names)
@@ -209,6 +216,18 @@ class GoalSet:
         return problems
 
 
-def open_set(path) -> GoalSet:
-    """Open a built set read-only (see :class:`GoalSet`)."""
-    return GoalSet(path)
+def open_set(path, logs_root=None) -> GoalSet:
+    """Open a built set read-only (see :class:`GoalSet`).
+
+    Parameters
+    ----------
+    path : str or Path
+        The set.
+    logs_root : str or Path, optional
+        Where the logs are now, if they moved (indexed sets read their logs; see :class:`GoalSet`).
+
+    Returns
+    -------
+    GoalSet
+    """
+    return GoalSet(path, logs_root=logs_root)
