@@ -261,7 +261,7 @@ def tune(recipe, *, labels=None, from_success: bool = False, distances=(), choos
 
 def make_suite(dataset, out, *, edges=DEFAULT_EDGES, far_quantile: float = 0.5, far_distance: float | None = None,
                join_radius: float | None = None, join_neighbours: int = 8, per_cell: int = 100,
-               candidates: int = 20_000, seed: int = 0, replace: bool = False) -> SuiteResult:
+               candidates: int = 20_000, seed: int = 0, replace: bool = False, logs_root=None) -> SuiteResult:
     """Draw a held-out goal suite from a built set's validation split (``goalkit suite``).
 
     Rows are (state, goal, horizon, reachable) pairs with the logged action, stratified by route
@@ -283,6 +283,8 @@ def make_suite(dataset, out, *, edges=DEFAULT_EDGES, far_quantile: float = 0.5, 
     join_neighbours, per_cell, candidates, seed : int
         Neighbours searched, rows per cell, candidate rows, seed.
     replace : bool
+    logs_root : str or Path, optional
+        Indexed sets: the folder that now holds the logs, when they moved (as :func:`verify`).
 
     Returns
     -------
@@ -294,7 +296,7 @@ def make_suite(dataset, out, *, edges=DEFAULT_EDGES, far_quantile: float = 0.5, 
     """
     return _make_suite(dataset, out, edges=edges, far_quantile=far_quantile, far_distance=far_distance,
                        join_radius=join_radius, join_neighbours=join_neighbours, per_cell=per_cell,
-                       candidates=candidates, seed=seed, replace=replace)
+                       candidates=candidates, seed=seed, replace=replace, logs_root=logs_root)
 
 
 def assess(dataset, suite, *, policies=(), values=(), import_path=None, batch_size: int = 1024,

@@ -13,7 +13,7 @@ from goalkit.errors import DatasetError
 from goalkit.write.chunkread import SplitColumns
 from goalkit.write.epochs import EpochSpec, iter_batches
 from goalkit.write.format import MATERIAL_COLUMNS, SPLITS, open_set_file
-from goalkit.write.resolve import open_logs_of, resolve_rows
+from goalkit.write.resolve import locate_logs, open_logs_of, resolve_rows
 from goalkit.write.seal import read_attrs, split_group, split_rows
 
 
@@ -63,6 +63,7 @@ class GoalSet:
         self.summary = self.stored.summary
         self.manifest = self.stored.manifest
         self._logs = None
+        self._relocation = None
 
     # ---- context manager -------------------------------------------------------------
     def close(self) -> None:
@@ -141,9 +142,25 @@ class GoalSet:
             out.update(self._resolve(group, start, stop, missing))
         return out
 
+    def source_files(self) -> list[Path]:
+        """Where the files this set was built from are now (logs, embedding, goal library).
+
+        Looked for beside the set, at their recorded paths, then under ``logs_root``; each
+        file's size and SHA-256 are checked once per process (docs/dataset.md).
+
+        Raises
+        ------
+        DatasetError
+            A file found nowhere, or one whose checksum differs from the recorded one.
+        """
+        if self._relocation is None:
+            self._relocation = locate_logs(self, self.logs_root)
+        return [Path(p) for p in self._relocation.found.values()]
+
     def _resolve(self, group, start, stop, names) -> dict:
         if self._logs is None:
-            self._logs = open_logs_of(self, self.logs_root)
+            self.source_files()
+            self._logs = open_logs_of(self, relocation=self._relocation)
         ep = group["source_episode"][start:stop]
         step = group["source_step"][start:stop]
         return resolve_rows(self._logs, ep, step, names)
