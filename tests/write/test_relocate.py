@@ -274,3 +274,72 @@ def test_every_moved_file_is_found_at_its_place_or_by_checksum(tmp_path_factory,
     for recorded, path in found.items():
         assert Path(path).read_bytes() == contents[recorded]
         assert Path(path).resolve().is_relative_to(root.resolve())
+
+
+# ---- several sources in several folders -------------------------------------------------------
+LAYOUT = 'version = 1\nshape = "flat"\n[keys]\nobservation = "obs"\naction = "act"\n[boundaries]\nepisode_id = "ids"\n'
+RECIPE = """version = 1
+seed = 5
+[[sources]]
+name = "teleop"
+path = "../logs/teleop/*.h5"
+layout = "../logs/layout.toml"
+[[sources]]
+name = "scripted"
+path = ["../logs/scripted/bench-a.npz"]
+layout = "../logs/layout.toml"
+[goal]
+indices = [0, 1]
+[relabel.weights]
+future = 2
+final = 1
+[reward]
+threshold = 0.4
+[split]
+validation = 0.3
+[output]
+path = "../sets/goals.h5"
+mode = "indexed"
+"""
+
+
+def write_flat(path, seed, n):
+    """Invented flat logs (the convention of tests/pipeline/test_sources.py)."""
+    r = np.random.default_rng(seed)
+    eps = [(r.normal(size=(t + 1, 3)), r.normal(size=(t, 2))) for t in r.integers(2, 9, n)]
+    obs = np.concatenate([o for o, _ in eps])
+    act = np.concatenate([a for _, a in eps])
+    ids = np.repeat(np.arange(n), [len(a) for _, a in eps])
+    if str(path).endswith(".npz"):
+        np.savez(path, obs=obs, act=act, ids=ids)
+    else:
+        with h5py.File(path, "w") as f:
+            f["obs"], f["act"], f["ids"] = obs, act, ids
+
+
+def test_several_sources_in_several_folders_move_under_one_root(tmp_path):
+    logs = tmp_path / "logs"
+    (logs / "teleop").mkdir(parents=True)
+    (logs / "scripted").mkdir()
+    (tmp_path / "recipes").mkdir()
+    (tmp_path / "sets").mkdir()
+    write_flat(logs / "teleop" / "day-1.h5", 1, 4)
+    write_flat(logs / "teleop" / "day-2.h5", 2, 3)
+    write_flat(logs / "scripted" / "bench-a.npz", 3, 5)
+    (logs / "layout.toml").write_text(LAYOUT)
+    (tmp_path / "recipes" / "r.toml").write_text(RECIPE)
+    path = goalkit.build(goalkit.load_recipe(tmp_path / "recipes" / "r.toml"), card=False).path
+    before = read_first(path)
+    assert goalkit.verify(path, audit=False).ok
+    root = tmp_path / "nas" / "archive"
+    root.parent.mkdir()
+    shutil.move(logs, root)
+    shutil.move(root / "teleop" / "day-2.h5", root / "teleop" / "renamed.h5")   # found by checksum
+    with pytest.raises(DatasetError, match="cannot find the log file"):
+        read_first(path)
+    report = goalkit.verify(path, logs_root=root)
+    assert report.ok, report.failures
+    assert len(report.checked["moved_files"]) == 3
+    after = read_first(path, logs_root=root)
+    for name in before:
+        np.testing.assert_array_equal(after[name], before[name])
