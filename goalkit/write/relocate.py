@@ -1,15 +1,16 @@
 """Find the files a set was built from after they moved (relocatable sets, docs/dataset.md).
 
 A set records, for each file it depends on (log files, the goal embedding, the goal library),
-the absolute path at build time, the path relative to the set's own folder (``relative``), its
-size and its SHA-256; the provenance also records the set's folder at build time
-(``set_folder``). Nothing here ever changes a set: the recorded paths stay as they are, and a
-:class:`Relocation` maps them to where the files are now.
+the absolute path at build time, the path relative to the set's folder (``relative``), its
+size and its SHA-256; the provenance also records that folder (``set_folder``: the folder the
+recipe's own ``[output] path`` names, so that ``--out`` does not change a set's bytes). Nothing
+here ever changes a set: the recorded paths stay as they are, and a :class:`Relocation` maps
+them to where the files are now.
 
 Each file is looked for, in this order:
 
 1. the recorded relative path, against the set's current folder (a set moved together with
-   its logs needs nothing else);
+   its logs needs nothing else, when it was written where its recipe says);
 2. the recorded absolute path;
 3. with a new root (``logs_root``, ``--logs-root``): under the root, at the file's place
    relative to the logs' common folder at build time (the root stands for that folder);

@@ -39,11 +39,10 @@ def build_apart(root: Path, mode: str = "indexed", episodes: int = 8) -> Path:
     """The demo's logs in ``root/logs``, its set in ``root/sets/goals.h5``; returns the set."""
     make_demo(root / "logs", episodes=episodes, seed=3)
     recipe_file = root / "logs" / "gantry-recipe.toml"
-    text = recipe_file.read_text()
-    recipe_file.write_text(text.replace('mode = "materialised"', f'mode = "{mode}"'))
+    text = recipe_file.read_text().replace('mode = "materialised"', f'mode = "{mode}"')
+    recipe_file.write_text(text.replace('path = "gantry-goals.h5"', 'path = "../sets/goals.h5"'))
     (root / "sets").mkdir()
-    recipe = goalkit.load_recipe(recipe_file).with_overrides(out=root / "sets" / "goals.h5")
-    goalkit.build(recipe, card=False)
+    goalkit.build(goalkit.load_recipe(recipe_file), card=False)
     return root / "sets" / "goals.h5"
 
 
@@ -73,6 +72,16 @@ def test_provenance_records_relative_paths_sizes_and_checksums(tmp_path):
     report = goalkit.verify(path, audit=False)
     assert report.ok, report.failures
     assert "moved_files" not in report.checked
+
+
+def test_the_bytes_do_not_depend_on_where_the_set_is_written(tmp_path):
+    # relative paths are taken against the recipe's own [output] folder, not --out
+    path = build_apart(tmp_path)
+    (tmp_path / "other").mkdir()
+    elsewhere = tmp_path / "other" / "goals.h5"
+    recipe = goalkit.load_recipe(tmp_path / "logs" / "gantry-recipe.toml").with_overrides(out=elsewhere)
+    goalkit.build(recipe, card=False)
+    assert sha256(elsewhere) == sha256(path)
 
 
 def test_set_and_logs_moved_together_need_no_option(tmp_path):
