@@ -262,7 +262,7 @@ def _changed(want: Wanted, path: str, digest, cache: bool) -> str:
     size = os.stat(path).st_size
     if size != want.size:
         return f"changed since the build (size {size} bytes, recorded {want.size})"
-    return "changed since the build (checksum differs)"
+    return f"changed since the build (checksum {_prefix(digest)}, recorded {_prefix(want.sha256)})"
 
 
 def _prefix(digest) -> str:
