@@ -357,3 +357,28 @@ def test_several_sources_in_several_folders_move_under_one_root(tmp_path):
     after = read_first(path, logs_root=root)
     for name in before:
         np.testing.assert_array_equal(after[name], before[name])
+
+
+def test_an_embedding_moves_with_the_logs(tmp_path):
+    logs = tmp_path / "logs"
+    make_demo(logs, episodes=10, seed=4)
+    source = goalkit.open_logs(logs / "gantry-logs.h5", goalkit.load_layout(logs / "gantry-layout.toml"))
+    goalkit.fit_on_logs(source, goalkit.SFA(n_components=3)).save(logs / "emb.npz")
+    text = (logs / "gantry-recipe.toml").read_text()
+    text = text.replace('fields = ["head", "trays"]', 'embedding = "emb.npz"').replace("original = 1", "original = 0")
+    text = text.replace('mode = "materialised"', 'mode = "indexed"').replace('"gantry-goals.h5"', '"../sets/emb.h5"')
+    (logs / "emb-recipe.toml").write_text(text)
+    (tmp_path / "sets").mkdir()
+    path = goalkit.build(goalkit.load_recipe(logs / "emb-recipe.toml"), card=False).path
+    before = read_first(path)
+    with goalkit.open_set(path) as gs:
+        assert gs.provenance["embedding_files"][0]["relative"] == os.path.join("..", "logs", "emb.npz")
+    root = tmp_path / "moved"
+    shutil.move(logs, root)
+    with pytest.raises(DatasetError, match="cannot find the log file"):
+        goalkit.verify(path)
+    report = goalkit.verify(path, logs_root=root)
+    assert report.ok, report.failures
+    assert report.checked["moved_files"][os.path.realpath(logs / "emb.npz")] == str(root / "emb.npz")
+    after = read_first(path, logs_root=root)
+    np.testing.assert_array_equal(after["reached_goal"], before["reached_goal"])   # phi from the moved embedding
