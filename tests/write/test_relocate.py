@@ -382,3 +382,12 @@ def test_an_embedding_moves_with_the_logs(tmp_path):
     assert report.checked["moved_files"][os.path.realpath(logs / "emb.npz")] == str(root / "emb.npz")
     after = read_first(path, logs_root=root)
     np.testing.assert_array_equal(after["reached_goal"], before["reached_goal"])   # phi from the moved embedding
+
+
+def test_info_shows_each_log_files_relative_path(tmp_path):
+    path = build_apart(tmp_path)
+    res = CliRunner().invoke(main, ["info", str(path)])
+    assert res.exit_code == 0, res.output
+    log = os.path.realpath(tmp_path / "logs" / "gantry-logs.h5")
+    line = next(x for x in res.output.splitlines() if x.strip().startswith(log))
+    assert line.endswith(f"(from the set's folder: {os.path.join('..', 'logs', 'gantry-logs.h5')})")
