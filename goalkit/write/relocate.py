@@ -140,7 +140,7 @@ class Relocation:
         for form in forms:
             if form in self.found:
                 return Path(self.found[form])
-        for folder in forms[1:]:
+        for folder in dict.fromkeys(os.path.abspath(f) for f in forms):
             places = set()
             for rec, actual in self.found.items():
                 if rec != folder and _inside(rec, folder):

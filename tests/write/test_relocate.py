@@ -391,3 +391,34 @@ def test_info_shows_each_log_files_relative_path(tmp_path):
     log = os.path.realpath(tmp_path / "logs" / "gantry-logs.h5")
     line = next(x for x in res.output.splitlines() if x.strip().startswith(log))
     assert line.endswith(f"(from the set's folder: {os.path.join('..', 'logs', 'gantry-logs.h5')})")
+
+
+def test_a_folder_of_episode_files_moves_as_a_folder(tmp_path):
+    # Invented gantry episodes, one NPZ file each; the recipe names the folder.
+    rng = np.random.default_rng(0)
+    per = tmp_path / "logs" / "episodes"
+    per.mkdir(parents=True)
+    for i, n in enumerate([5, 7, 9, 11, 6, 8]):
+        np.savez(per / f"ep{i}.npz", obs=rng.normal(size=(n + 1, 4)).astype(np.float32),
+                 act=rng.normal(size=(n, 2)).astype(np.float32))
+    (tmp_path / "logs" / "layout.toml").write_text('version = 1\nshape = "per-file"\nfile_pattern = "*.npz"\n'
+                                                   '[keys]\nobservation = "obs"\naction = "act"\n')
+    (tmp_path / "logs" / "recipe.toml").write_text(
+        'version = 1\nseed = 0\n[logs]\npath = "episodes"\nlayout = "layout.toml"\n[goal]\nindices = [0, 1]\n'
+        '[relabel]\ngoals_per_transition = 2\n[relabel.weights]\nfuture = 1\nfinal = 1\n'
+        '[reward]\nthreshold = 0.5\n[split]\nvalidation = 0.3\n[output]\npath = "../set.h5"\nmode = "indexed"\n')
+    path = goalkit.build(goalkit.load_recipe(tmp_path / "logs" / "recipe.toml"), card=False).path
+    before = read_first(path)
+    root = tmp_path / "moved"
+    shutil.move(tmp_path / "logs", root)
+    report = goalkit.verify(path, logs_root=root)
+    assert report.ok, report.failures
+    after = read_first(path, logs_root=root)
+    for name in before:
+        np.testing.assert_array_equal(after[name], before[name])
+    # one episode file renamed into another folder: found by checksum, but the folder the recipe
+    # names can no longer be placed; refused in one line
+    (root / "other").mkdir()
+    shutil.move(root / "episodes" / "ep3.npz", root / "other" / "renamed.npz")
+    with pytest.raises(DatasetError, match="were found in different folders"):
+        goalkit.verify(path, logs_root=root)
