@@ -422,3 +422,12 @@ def test_a_folder_of_episode_files_moves_as_a_folder(tmp_path):
     shutil.move(root / "episodes" / "ep3.npz", root / "other" / "renamed.npz")
     with pytest.raises(DatasetError, match="were found in different folders"):
         goalkit.verify(path, logs_root=root)
+
+
+def test_a_root_that_is_not_a_folder_is_one_line(tmp_path):
+    path = build_apart(tmp_path)
+    shutil.move(tmp_path / "logs", tmp_path / "moved")
+    missing = tmp_path / "nowhere"
+    res = CliRunner().invoke(main, ["verify", str(path), "--logs-root", str(missing)])
+    assert one_line_error(res) == (f"goalkit: error: {missing}: key --logs-root: expected a folder holding the "
+                                   f"moved logs")
