@@ -24,6 +24,7 @@ from goalkit.cli import main
 from goalkit.demo import make_demo
 from goalkit.errors import DatasetError
 from goalkit.write.relocate import locate
+from tamper_cases import reseal
 
 
 def sha256(path) -> str:
@@ -431,3 +432,20 @@ def test_a_root_that_is_not_a_folder_is_one_line(tmp_path):
     res = CliRunner().invoke(main, ["verify", str(path), "--logs-root", str(missing)])
     assert one_line_error(res) == (f"goalkit: error: {missing}: key --logs-root: expected a folder holding the "
                                    f"moved logs")
+
+
+def test_a_set_built_before_relative_paths_finds_moved_logs_under_the_root(tmp_path):
+    path = build_apart(tmp_path)
+    with h5py.File(path, "r+") as f:                 # as an earlier goalkit wrote it
+        prov = json.loads(f.attrs["provenance"])
+        del prov["set_folder"]
+        for entry in prov["log_files"]:
+            del entry["relative"]
+        f.attrs["provenance"] = json.dumps(prov, sort_keys=True)
+    reseal(path)
+    assert goalkit.verify(path, audit=False).ok
+    shutil.move(tmp_path / "logs", tmp_path / "moved")
+    with pytest.raises(DatasetError, match="cannot find the log file"):
+        goalkit.verify(path, audit=False)
+    report = goalkit.verify(path, logs_root=tmp_path / "moved")
+    assert report.ok, report.failures
