@@ -155,7 +155,7 @@ def build(recipe, *, runner=None, out=None, seed: int | None = None, max_rows_pe
                          replace=replace, card=card, **runner.engine_arguments())
 
 
-def verify(path, *, max_failures: int = 20, progress=None, audit: bool = True) -> VerifyReport:
+def verify(path, *, max_failures: int = 20, progress=None, audit: bool = True, logs_root=None) -> VerifyReport:
     """Re-derive a built set from its logs and recipe and check every row and checksum.
 
     Parameters
@@ -168,18 +168,25 @@ def verify(path, *, max_failures: int = 20, progress=None, audit: bool = True) -
         Called as ``progress(transitions_done_in_chunk, total_transitions)`` after each chunk.
     audit : bool
         Also run the statistical audit of the rows.
+    logs_root : str or Path, optional
+        The folder that now holds the logs the set was built from, when they moved (it stands for
+        the logs' common folder at build time). Files are looked for beside the set first, then at
+        their recorded paths, then under ``logs_root`` by their place and by size and SHA-256.
+        The set is never modified (docs/dataset.md, "Moving a set and its logs").
 
     Returns
     -------
     VerifyReport
-        ``ok`` (True when consistent), ``failures`` (messages) and ``checked`` (what was checked).
+        ``ok`` (True when consistent), ``failures`` (messages) and ``checked`` (what was checked;
+        ``checked["moved_files"]`` maps recorded paths to where moved files were found).
 
     Raises
     ------
     DatasetError
-        When the file cannot be read as a goalkit set.
+        When the file cannot be read as a goalkit set, a file it was built from is found nowhere,
+        or the file found under ``logs_root`` has another checksum.
     """
-    return verify_set(path, max_failures=max_failures, progress=progress, audit=audit)
+    return verify_set(path, max_failures=max_failures, progress=progress, audit=audit, logs_root=logs_root)
 
 
 def scan(logs, layout=None, *, skip_bad_episodes: bool = False, max_transitions: int = 200_000) -> dict:
@@ -261,7 +268,7 @@ def tune(recipe, *, labels=None, from_success: bool = False, distances=(), choos
 
 def make_suite(dataset, out, *, edges=DEFAULT_EDGES, far_quantile: float = 0.5, far_distance: float | None = None,
                join_radius: float | None = None, join_neighbours: int = 8, per_cell: int = 100,
-               candidates: int = 20_000, seed: int = 0, replace: bool = False) -> SuiteResult:
+               candidates: int = 20_000, seed: int = 0, replace: bool = False, logs_root=None) -> SuiteResult:
     """Draw a held-out goal suite from a built set's validation split (``goalkit suite``).
 
     Rows are (state, goal, horizon, reachable) pairs with the logged action, stratified by route
@@ -283,6 +290,8 @@ def make_suite(dataset, out, *, edges=DEFAULT_EDGES, far_quantile: float = 0.5, 
     join_neighbours, per_cell, candidates, seed : int
         Neighbours searched, rows per cell, candidate rows, seed.
     replace : bool
+    logs_root : str or Path, optional
+        Indexed sets: the folder that now holds the logs, when they moved (as :func:`verify`).
 
     Returns
     -------
@@ -294,7 +303,7 @@ def make_suite(dataset, out, *, edges=DEFAULT_EDGES, far_quantile: float = 0.5, 
     """
     return _make_suite(dataset, out, edges=edges, far_quantile=far_quantile, far_distance=far_distance,
                        join_radius=join_radius, join_neighbours=join_neighbours, per_cell=per_cell,
-                       candidates=candidates, seed=seed, replace=replace)
+                       candidates=candidates, seed=seed, replace=replace, logs_root=logs_root)
 
 
 def assess(dataset, suite, *, policies=(), values=(), import_path=None, batch_size: int = 1024,

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import json
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from types import SimpleNamespace
 
@@ -24,6 +24,7 @@ from goalkit.logs.multi import open_sources, specs_from_provenance
 from goalkit.logs.layout import parse_layout
 from goalkit.pipeline.goal import make_goal_map
 from goalkit.write.format import open_set_file
+from goalkit.write.relocate import Relocation, locate
 
 #: Family error of the statistical checks: a correct set fails any of them with at most this chance.
 ALPHA = 1e-6
@@ -85,22 +86,24 @@ class AuditReport:
 class _Logs:
     """The set's logs reopened with its stored layout, and its goal map."""
 
-    def __init__(self, prov: dict, rc, path):
+    def __init__(self, prov: dict, rc, path, relocation: Relocation):
         layout = None
+        where = relocation.path   # the files where they are now (recorded paths if unmoved)
         if prov.get("layout_text"):
             layout = parse_layout(parse_toml(prov["layout_text"], f"{path}:layout", DatasetError), f"{path}:layout")
         if "sources" in prov:    # several files or sources: as read at build time
-            self.source = open_sources(specs_from_provenance(prov["sources"], DatasetError, file=path),
-                                       named=rc.named_sources, file=path)
+            specs = specs_from_provenance(prov["sources"], DatasetError, file=path)
+            specs = tuple(replace(s, entries=tuple(str(where(e, path)) for e in s.entries)) for s in specs)
+            self.source = open_sources(specs, named=rc.named_sources, file=path)
         else:
-            self.source = open_logs(Path(prov["logs_path"]), layout, skip_bad_episodes=rc.skip_bad_episodes)
+            self.source = open_logs(where(prov["logs_path"], path), layout, skip_bad_episodes=rc.skip_bad_episodes)
         self.ids = np.asarray(self.source.episode_ids, dtype=np.int64)
         self.lengths = np.asarray(self.source.lengths, dtype=np.int64)
         base = Path(prov["recipe_file"]).parent if prov.get("recipe_file") else Path.cwd()
         goal = rc.goal
         emb = goal.get("embedding")
         spec = SimpleNamespace(fields=tuple(goal.get("fields", ())), indices=tuple(goal.get("indices", ())),
-                               embedding=(base / emb) if emb else None)
+                               embedding=where(base / emb, path) if emb else None)
         first = self.source.read(0, 1)
         self.goal_map = make_goal_map(spec, self.source, first.observations.shape[1])
         self.goal_dtype = np.dtype(goal.get("dtype", "float32"))
@@ -177,7 +180,8 @@ class _Draws:
             self.add(acc, np.asarray(hit)[mask][ok], np.broadcast_to(p, mask.shape)[mask][ok])
 
 
-def audit_set(path, sample: int | None = None, alpha: float = ALPHA) -> AuditReport:
+def audit_set(path, sample: int | None = None, alpha: float = ALPHA, *, logs_root=None,
+              relocation: Relocation | None = None) -> AuditReport:
     """Audit the set at ``path`` against the documented rules and laws (docs/audit.md).
 
     Parameters
@@ -189,6 +193,10 @@ def audit_set(path, sample: int | None = None, alpha: float = ALPHA) -> AuditRep
         statistical check stays valid on the sample.
     alpha : float
         Family error of the statistical checks (Holm).
+    logs_root : str or Path, optional
+        The folder that now holds the logs, when they moved (:mod:`goalkit.write.relocate`).
+    relocation : Relocation, optional
+        Where the set's files were found already (verify passes its own; else looked for here).
 
     Returns
     -------
@@ -215,8 +223,10 @@ def audit_set(path, sample: int | None = None, alpha: float = ALPHA) -> AuditRep
         if stored_codes is not None and {int(k): v for k, v in stored_codes.items()} != CODE_NAMES:
             report.ok = False
             report.failures.append("strategy code table in the provenance differs from the documented one")
+        if relocation is None:
+            relocation = locate(path, prov, logs_root, strict=True)
         try:
-            logs = _Logs(prov, rc, path)
+            logs = _Logs(prov, rc, path, relocation)
         except GoalkitError as exc:
             raise DatasetError(f"the audit cannot reopen the logs this set was built from: {exc}",
                                file=path) from None
@@ -479,13 +489,13 @@ def share_power_note(n: int = 100_000, share: float = 0.2, checks: int = 25, alp
     return share_power(n, share, alpha / checks)
 
 
-def audit_into(path, report, sample: int | None = None) -> AuditReport:
+def audit_into(path, report, sample: int | None = None, relocation: Relocation | None = None) -> AuditReport:
     """Run :func:`audit_set` and record its outcome in a verify report.
 
     Each audit failure becomes a failure of ``report`` (``report.fail``), and the audit's
     summary goes to ``report.checked["audit"]``.
     """
-    result = audit_set(path, sample=sample)
+    result = audit_set(path, sample=sample, relocation=relocation)
     for message in result.failures:
         report.fail(f"audit: {message}")
     report.checked["audit"] = result.as_dict()

@@ -50,7 +50,7 @@ from goalkit.pipeline.searchsetup import add_to_summary, search_provenance
 from goalkit.rows import SPLITS
 from goalkit.write.card import card_paths, check_card_outputs, graph_plot_path, write_card
 from goalkit.write.format import is_goal_set
-from goalkit.write.provenance import describe_files
+from goalkit.write.provenance import declared_folder, describe_files, with_relative
 from goalkit.write.writer import OutputWriteError, SetWriter
 
 __all__ = ["CHUNK_ROWS", "SHARD_ROWS", "BuildInputs", "BuildResult", "build", "check_outputs",
@@ -349,6 +349,11 @@ def close_dataset(writer, plan, source, summary, log_files=None, inputs: BuildIn
     recipe, out = plan.recipe, plan.recipe.output
     result = final_summary(summary, plan, source)
     prov = provenance(plan, source, log_files=log_files, inputs=inputs)
+    # each file's path relative to the folder the recipe writes the set to (not --out: the
+    # bytes stay the same wherever the set is written), so a set moved with its files finds them
+    folder = declared_folder(recipe.file if recipe.file != "<recipe>" else None, recipe.text)
+    if folder is not None:
+        prov = with_relative(prov, folder)
     episodes = {s: int(np.sum(plan.splits == c)) for c, s in enumerate(("train", "validation"))}
     path = writer.close(
         attrs={"goalkit_version": __version__, "mode": out.mode, "seed": recipe.seed,

@@ -8,6 +8,7 @@ from goalkit.errors import GoalkitError
 from goalkit.cli_support import echo_json, on_interrupt, quiet_option, user_errors
 from goalkit.suites.make import make_suite
 from goalkit.suites.strata import DEFAULT_EDGES
+from goalkit.write.relocate import LOGS_ROOT_HELP
 
 
 def _edges(text: str) -> list:
@@ -35,11 +36,14 @@ def _edges(text: str) -> list:
 @click.option("--candidates", type=int, default=20000, help="Validation rows considered at most (chosen by seed).")
 @click.option("--seed", type=int, default=0, help="Seed of every choice (same seed, byte-identical suite).")
 @click.option("--replace", is_flag=True, help="Replace an existing suite file and card (only files of those kinds).")
+@click.option("--logs-root", type=click.Path(file_okay=False), default=None, metavar="FOLDER",
+              show_default="none: beside the set, then the recorded paths",
+              help="Indexed sets (they read their logs): " + LOGS_ROOT_HELP)
 @click.option("--json", "as_json", is_flag=True, help="Print the result as one JSON object.")
 @quiet_option
 @user_errors
 def suite(dataset, out, horizon_edges, far_quantile, far_distance, join_radius, join_neighbours, per_cell,
-          candidates, seed, replace, as_json, quiet):
+          candidates, seed, replace, logs_root, as_json, quiet):
     """Draw a held-out goal suite from DATASET's validation split.
 
     Rows are (state, goal, horizon, reachable) pairs with the logged action, stratified by
@@ -50,7 +54,8 @@ def suite(dataset, out, horizon_edges, far_quantile, far_distance, join_radius, 
     on_interrupt(f"nothing was written at {out}")
     result = make_suite(dataset, out, edges=_edges(horizon_edges), far_quantile=far_quantile,
                         far_distance=far_distance, join_radius=join_radius, join_neighbours=join_neighbours,
-                        per_cell=per_cell, candidates=candidates, seed=seed, replace=replace)
+                        per_cell=per_cell, candidates=candidates, seed=seed, replace=replace,
+                        logs_root=logs_root)
     if as_json:
         echo_json(result.as_dict())
         return

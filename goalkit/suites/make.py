@@ -80,7 +80,8 @@ def check_settings(*, far_quantile, far_distance, join_radius, join_neighbours, 
 
 def make_suite(dataset, out, *, edges=strata.DEFAULT_EDGES, far_quantile: float = 0.5,
                far_distance: float | None = None, join_radius: float | None = None, join_neighbours: int = 8,
-               per_cell: int = 100, candidates: int = 20_000, seed: int = 0, replace: bool = False) -> SuiteResult:
+               per_cell: int = 100, candidates: int = 20_000, seed: int = 0, replace: bool = False,
+               logs_root=None) -> SuiteResult:
     """Draw a held-out goal suite from the validation split of a built set.
 
     Parameters
@@ -109,6 +110,8 @@ def make_suite(dataset, out, *, edges=strata.DEFAULT_EDGES, far_quantile: float 
         Seed of every choice; the same inputs and seed give a byte-identical suite.
     replace : bool
         Replace an existing suite file and card (only files of those kinds).
+    logs_root : str or Path, optional
+        Indexed sets: the folder that now holds the logs, when they moved (see :class:`goalkit.GoalSet`).
 
     Returns
     -------
@@ -119,9 +122,10 @@ def make_suite(dataset, out, *, edges=strata.DEFAULT_EDGES, far_quantile: float 
                    join_neighbours=join_neighbours, per_cell=per_cell, candidates=candidates)
     out = Path(out)
     card = card_path(out)
-    with open_set(dataset) as gs:
+    with open_set(dataset, logs_root=logs_root) as gs:
         logs = gs.provenance.get("logs_path")
-        check_no_overlap([("set", dataset), ("logs", logs if isinstance(logs, str) else None)],
+        moved = [("log file", p) for p in gs.source_files()] if gs.mode == "indexed" else []
+        check_no_overlap([("set", dataset), ("logs", logs if isinstance(logs, str) else None)] + moved,
                          [("--out", out), ("card", card)])
         refuse_existing(out, replace=replace, ours=is_suite_file, what="suite file")
         refuse_existing(card, replace=replace, ours=is_suite_card, what="suite card")

@@ -120,6 +120,8 @@ class NumpyBatches:
         ``{}`` keeps the stored dtypes.
     row_numbers : bool
         Add ``"row"``, each row's number in the split.
+    logs_root : str or Path, optional
+        Indexed sets: the folder that now holds the logs, when they moved (as :class:`goalkit.GoalSet`).
 
     Examples
     --------
@@ -133,8 +135,9 @@ class NumpyBatches:
     def __init__(self, path, split: str = "train", batch_size: int = 256, columns=None, *, shuffle=True,
                  seed: int = 0, epoch: int = 0, memory_budget: int | None = None, rank: int = 0,
                  world_size: int = 1, remainder: str = "drop", drop_last: bool = False, dtypes=None,
-                 row_numbers: bool = False):
+                 row_numbers: bool = False, logs_root=None):
         self.path = path
+        self.logs_root = logs_root
         self.split = split
         self.batch_size = int(batch_size)
         self.columns = None if columns is None else list(columns)
@@ -155,7 +158,7 @@ class NumpyBatches:
 
     def _batches(self, worker: int = 0, workers: int = 1) -> Iterator[dict]:
         shard = shard_index(self.rank, self.world_size, worker, workers)
-        with open_set(self.path) as gs:
+        with open_set(self.path, logs_root=self.logs_root) as gs:
             for batch in gs.batches(self.split, self.batch_size, self.columns, shuffle=self.shuffle, seed=self.seed,
                                     drop_last=self.drop_last, epoch=self.epoch, memory_budget=self.memory_budget,
                                     shard=shard, remainder=self.remainder, row_numbers=self.row_numbers):
@@ -274,14 +277,14 @@ def _make_torch_classes() -> dict:
         def __init__(self, path, split: str = "train", batch_size: int = 256, columns=None, *, shuffle=True,
                      seed: int = 0, epoch: int = 0, memory_budget: int | None = None, rank: int | None = None,
                      world_size: int | None = None, remainder: str = "drop", drop_last: bool = False, dtypes=None,
-                     row_numbers: bool = False):
+                     row_numbers: bool = False, logs_root=None):
             super().__init__()
             if rank is None or world_size is None:
                 rank, world_size = _distributed()
             self.source = NumpyBatches(path, split, batch_size, columns, shuffle=shuffle, seed=seed, epoch=epoch,
                                        memory_budget=memory_budget, rank=rank, world_size=world_size,
                                        remainder=remainder, drop_last=drop_last, dtypes=dtypes,
-                                       row_numbers=row_numbers)
+                                       row_numbers=row_numbers, logs_root=logs_root)
 
         def set_epoch(self, epoch: int) -> None:
             """Use ``epoch`` for the next pass."""
@@ -303,18 +306,19 @@ def _make_torch_classes() -> dict:
 
         Parameters
         ----------
-        path, split, columns, memory_budget, dtypes
+        path, split, columns, memory_budget, dtypes, logs_root
             As :class:`NumpyBatches`.
         """
 
         def __init__(self, path, split: str = "train", columns=None, *, memory_budget: int | None = None,
-                     dtypes=None):
+                     dtypes=None, logs_root=None):
             super().__init__()
             self.path, self.split = path, split
+            self.logs_root = logs_root
             self.columns = None if columns is None else list(columns)
             self.memory_budget = DEFAULT_MEMORY_BUDGET if memory_budget is None else int(memory_budget)
             self.dtypes = _dtypes(dtypes)
-            with open_set(path) as gs:
+            with open_set(path, logs_root=logs_root) as gs:
                 reader = SplitColumns(gs, split, self.columns)
                 self.rows = reader.rows
                 need = reader.rows * reader.row_bytes()
@@ -332,7 +336,7 @@ def _make_torch_classes() -> dict:
 
         def _columns(self) -> dict:
             if self._data is None or self._pid != os.getpid():
-                with open_set(self.path) as gs:
+                with open_set(self.path, logs_root=self.logs_root) as gs:
                     reader = SplitColumns(gs, self.split, self.columns)
                     try:
                         self._data = _cast(reader.read(0, reader.rows), self.dtypes)

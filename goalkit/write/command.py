@@ -8,6 +8,7 @@ import click
 
 from goalkit.audit import audit_set
 from goalkit.cli_support import EXIT_FOUND_WANTING, EXIT_OK, ChunkProgress, echo_json, quiet_option, user_errors
+from goalkit.write.relocate import LOGS_ROOT_HELP
 from goalkit.write.verify import verify_set
 
 #: Quoted in the help of --sample; pinned by tests/audit/test_power.py against
@@ -25,25 +26,31 @@ SAMPLE_POWER_NOTE = "0.0086"
                    f"100,000 rows a strategy share of 0.2 that is really 0.2 + {SAMPLE_POWER_NOTE} or more "
                    "fails with probability >= 90% (exact binomial test at the audit's per-check level); "
                    "the report gives this shift for the rows audited.")
+@click.option("--logs-root", type=click.Path(file_okay=False), default=None, metavar="FOLDER",
+              show_default="none: beside the set, then the recorded paths", help=LOGS_ROOT_HELP)
 @click.option("--json", "as_json", is_flag=True, help="Print the report as one JSON object.")
 @quiet_option
 @user_errors
-def verify(dataset, max_failures, sample, as_json, quiet):
+def verify(dataset, max_failures, sample, logs_root, as_json, quiet):
     """Check DATASET against the logs it was built from, trusting nothing stored in it.
 
     After the replay, an audit that shares no code with the builder checks every row against
     the documented rules and tests the draws against their documented laws (family error
     1e-6, Holm); its checks are listed with their p-values.
 
+    The logs are looked for beside the set first (a set moved together with its logs needs no
+    option), then at their recorded paths, then under --logs-root; the set is never modified.
+
     Exit status 0 when every check passes, 1 when some fail (the first failures are listed;
     with --quiet one line on stderr says how many), 2 when the file cannot be read as a goalkit
-    dataset, 130 when interrupted (verify writes nothing).
+    dataset, a log file is found nowhere or a moved one has another checksum, 130 when
+    interrupted (verify writes nothing).
     """
     if sample is not None:
-        _audit_only(dataset, sample, max_failures, as_json, quiet)
+        _audit_only(dataset, sample, max_failures, as_json, quiet, logs_root)
 
     with ChunkProgress("verify", quiet=quiet) as bar:
-        report = verify_set(dataset, max_failures=max_failures, progress=bar)
+        report = verify_set(dataset, max_failures=max_failures, progress=bar, logs_root=logs_root)
     if as_json:
         echo_json({"path": dataset, **report.as_dict()})
     elif quiet:
@@ -69,8 +76,8 @@ def verify(dataset, max_failures, sample, as_json, quiet):
     sys.exit(EXIT_OK if report.ok else EXIT_FOUND_WANTING)
 
 
-def _audit_only(dataset, sample, max_failures, as_json, quiet):
-    result = audit_set(dataset, sample=sample)
+def _audit_only(dataset, sample, max_failures, as_json, quiet, logs_root=None):
+    result = audit_set(dataset, sample=sample, logs_root=logs_root)
     failures = result.failures[:max_failures]
     if as_json:
         echo_json({"path": dataset, "ok": result.ok, "failures": failures, "checked": {"audit": result.as_dict()}})

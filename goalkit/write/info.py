@@ -203,7 +203,8 @@ def format_info(facts: dict) -> str:
     files = src.get("log_files") or []
     lines.append(f"  logs: {src.get('logs_path')} ({len(files)} file{'' if len(files) == 1 else 's'})")
     for f in files[:5]:
-        lines.append(f"    {f['path']}  {f['bytes']:,} bytes  sha256 {f['sha256'][:16]}...")
+        beside = f"  (from the set's folder: {f['relative']})" if isinstance(f, dict) and f.get("relative") else ""
+        lines.append(f"    {f['path']}  {f['bytes']:,} bytes  sha256 {f['sha256'][:16]}...{beside}")
     if len(files) > 5:
         lines.append(f"    ... and {len(files) - 5} more (--json lists them all)")
     lim = facts["limits"]

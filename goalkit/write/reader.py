@@ -13,7 +13,7 @@ from goalkit.errors import DatasetError
 from goalkit.write.chunkread import SplitColumns
 from goalkit.write.epochs import EpochSpec, iter_batches
 from goalkit.write.format import MATERIAL_COLUMNS, SPLITS, open_set_file
-from goalkit.write.resolve import open_logs_of, resolve_rows
+from goalkit.write.resolve import locate_logs, open_logs_of, resolve_rows
 from goalkit.write.seal import read_attrs, split_group, split_rows
 
 
@@ -24,6 +24,12 @@ class GoalSet:
     ----------
     path : str or Path
         A file written by ``goalkit build``.
+    logs_root : str or Path, optional
+        Indexed sets: the folder that now holds the logs the set was built from, when they moved
+        (standing for the logs' common folder at build time). The logs are looked for beside the
+        set first (a set moved together with its logs needs nothing), then at their recorded
+        paths, then under ``logs_root`` by their place and by size and SHA-256; a file whose
+        checksum differs is refused (docs/dataset.md, "Moving a set and its logs").
 
     Attributes
     ----------
@@ -41,8 +47,9 @@ class GoalSet:
     ...         obs, goal, reward = batch["observation"], batch["goal"], batch["reward"]
     """
 
-    def __init__(self, path):
+    def __init__(self, path, logs_root=None):
         self.path = Path(path)
+        self.logs_root = logs_root
         self.file = open_set_file(self.path)
         try:
             self.stored = read_attrs(self.file, self.path)
@@ -56,6 +63,7 @@ class GoalSet:
         self.summary = self.stored.summary
         self.manifest = self.stored.manifest
         self._logs = None
+        self._relocation = None
 
     # ---- context manager -------------------------------------------------------------
     def close(self) -> None:
@@ -134,9 +142,25 @@ class GoalSet:
             out.update(self._resolve(group, start, stop, missing))
         return out
 
+    def source_files(self) -> list[Path]:
+        """Where the files this set was built from are now (logs, embedding, goal library).
+
+        Looked for beside the set, at their recorded paths, then under ``logs_root``; each
+        file's size and SHA-256 are checked once per process (docs/dataset.md).
+
+        Raises
+        ------
+        DatasetError
+            A file found nowhere, or one whose checksum differs from the recorded one.
+        """
+        if self._relocation is None:
+            self._relocation = locate_logs(self, self.logs_root)
+        return [Path(p) for p in self._relocation.found.values()]
+
     def _resolve(self, group, start, stop, names) -> dict:
         if self._logs is None:
-            self._logs = open_logs_of(self)
+            self.source_files()
+            self._logs = open_logs_of(self, relocation=self._relocation)
         ep = group["source_episode"][start:stop]
         step = group["source_step"][start:stop]
         return resolve_rows(self._logs, ep, step, names)
@@ -209,6 +233,18 @@ class GoalSet:
         return problems
 
 
-def open_set(path) -> GoalSet:
-    """Open a built set read-only (see :class:`GoalSet`)."""
-    return GoalSet(path)
+def open_set(path, logs_root=None) -> GoalSet:
+    """Open a built set read-only (see :class:`GoalSet`).
+
+    Parameters
+    ----------
+    path : str or Path
+        The set.
+    logs_root : str or Path, optional
+        Where the logs are now, if they moved (indexed sets read their logs; see :class:`GoalSet`).
+
+    Returns
+    -------
+    GoalSet
+    """
+    return GoalSet(path, logs_root=logs_root)

@@ -18,7 +18,8 @@ import numpy as np
 from goalkit.errors import DatasetError
 from goalkit.pipeline.build import provenance
 from goalkit.write.format import SPLITS
-from goalkit.write.provenance import file_digest
+from goalkit.write.provenance import file_digest, with_relative
+from goalkit.write.relocate import file_entries
 from goalkit.write.resolve import recipe_of
 from goalkit.write.writer import _json_default
 
@@ -29,52 +30,15 @@ def source_entries(gs) -> list:
     Raises
     ------
     DatasetError
-        When an entry is not ``{"path": str, "bytes": int, "sha256": str}``.
+        When an entry is not ``{"path": str, "bytes": int, "sha256": str[, "relative": str]}``.
     """
-    prov = gs.provenance
-    library = prov.get("library") or {}
-    groups = [("log_files", prov.get("log_files", [])), ("embedding_files", prov.get("embedding_files", [])),
-              ("library.files", library.get("files", []) if isinstance(library, dict) else None)]
-    out = []
-    for key, entries in groups:
-        if not isinstance(entries, list):
-            raise DatasetError("expected a list of file entries", file=gs.path, key=f"provenance.{key}")
-        for e in entries:
-            if not (isinstance(e, dict) and isinstance(e.get("path"), str) and isinstance(e.get("sha256"), str)
-                    and isinstance(e.get("bytes"), int) and not isinstance(e.get("bytes"), bool)):
-                raise DatasetError('expected entries {"path": text, "bytes": number, "sha256": text}',
-                                   file=gs.path, key=f"provenance.{key}")
-            out.append(e)
-    return out
+    return [e for _, e in file_entries(gs.provenance, gs.path)]
 
 
-def source_problem(entry: dict, digests: dict):
-    """Why a source file no longer matches its entry (None when it does); fills ``digests``.
-
-    Only regular files are read (a device or a FIFO named in a crafted set would never end).
-    """
-    path = entry["path"]
-    try:
-        info = os.stat(path)
-    except OSError as exc:
-        return f"cannot be read ({exc.strerror})"
-    if not stat.S_ISREG(info.st_mode):
-        return "not a regular file (a device, FIFO or folder); it is not read"
-    if info.st_size != entry["bytes"]:
-        return f"changed since the build (size {info.st_size} bytes, recorded {entry['bytes']})"
-    try:
-        digest = file_digest(path)
-    except OSError as exc:
-        return f"cannot be read ({exc.strerror})"
-    digests[path] = digest
-    if digest != entry["sha256"]:
-        return "changed since the build (checksum differs)"
-    return None
-
-
-def stored_recipe(gs, report):
-    """The recipe stored in a set, with the set's own seed; None (and failures) when unusable."""
-    recipe = recipe_of(gs)
+def stored_recipe(gs, report, relocation=None):
+    """The recipe stored in a set, with the set's own seed, its files where ``relocation`` found
+    them; None (and failures) when unusable."""
+    recipe = recipe_of(gs, relocation)
     recipe = replace(recipe, seed=gs.seed)
     if recipe.output.mode != gs.mode:
         report.fail(f"mode attribute is {gs.mode!r}, the stored recipe builds {recipe.output.mode!r}")
@@ -129,16 +93,28 @@ def check_columns(gs, plan, rows_expected: dict, report) -> bool:
     return report.ok
 
 
-def provenance_differences(gs, plan, source, digests) -> list:
-    """The stored provenance against the one re-derived from the recipe and the logs."""
+def provenance_differences(gs, plan, source, digests, relocation=None) -> list:
+    """The stored provenance against the one re-derived from the recipe and the logs.
+
+    Files found elsewhere (``relocation``) are compared under their recorded paths; each file's
+    ``relative`` path is re-derived from its recorded path and the recorded ``set_folder``.
+    """
     log_files = []
     for f in source.files:
         resolved = str(Path(f).resolve())
         digest = digests.get(resolved) or file_digest(f)
         log_files.append({"path": resolved, "bytes": os.stat(f).st_size, "sha256": digest})
     fresh = as_stored(provenance(plan, source, log_files=log_files))
+    if relocation is not None:
+        fresh = relocation.restore(fresh)
     stored = dict(gs.provenance)
     out = []
+    folder = stored.get("set_folder")
+    if "set_folder" in stored:   # recorded where the set was written (covered by the seal)
+        if isinstance(folder, str) and folder:
+            fresh = as_stored(with_relative(fresh, folder))
+        else:
+            out.append("provenance.set_folder: expected the folder as text")
     # recorded, not re-derivable: the goalkit that built the set (must agree with the attribute) and
     # where the recipe was read from (the base of its relative paths; covered by the seal)
     if stored.get("goalkit_version") != gs.stored.goalkit_version:

@@ -1,8 +1,8 @@
-"""Fetch the source steps behind an indexed set's rows from the original logs."""
+"""Fetch the source steps behind an indexed set's rows from the original logs (wherever they are now)."""
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -14,6 +14,7 @@ from goalkit.logs.layout import parse_layout
 from goalkit.pipeline.goal import make_goal_map
 from goalkit.pipeline.recipe import parse_recipe
 from goalkit.logs.multi import open_sources, specs_from_provenance
+from goalkit.write.relocate import Relocation, locate
 
 
 @dataclass
@@ -29,10 +30,12 @@ class LogsOfSet:
         return np.searchsorted(np.asarray(self.source.episode_ids), np.asarray(episode_ids, dtype=np.int64))
 
 
-def recipe_of(goalset):
-    """Parse the recipe stored in a set, with paths as they were resolved at build time."""
-    from dataclasses import replace
+def recipe_of(goalset, relocation: Relocation | None = None):
+    """Parse the recipe stored in a set, with paths as they were resolved at build time.
 
+    With ``relocation`` (:func:`goalkit.write.relocate.locate`), the paths of the logs, the
+    layout, the embedding and the goal library are where those files are now.
+    """
     prov = goalset.provenance
     several = "sources" in prov
     for key, required in (("recipe_file", False), ("layout_path", False), ("logs_path", not several)):
@@ -47,13 +50,40 @@ def recipe_of(goalset):
     layout = Path(prov["layout_path"]) if prov.get("layout_path") else None
     if several:   # the files and layouts as read at build time
         specs = specs_from_provenance(prov["sources"], DatasetError, file=goalset.path)
-        return replace(recipe, logs_path=None, layout_path=layout, sources=specs)
-    return replace(recipe, logs_path=Path(prov["logs_path"]), layout_path=layout)
+        recipe = replace(recipe, logs_path=None, layout_path=layout, sources=specs)
+    else:
+        recipe = replace(recipe, logs_path=Path(prov["logs_path"]), layout_path=layout)
+    return recipe if relocation is None else relocated(recipe, relocation, goalset.path)
 
 
-def open_logs_of(goalset) -> LogsOfSet:
-    """Reopen the logs (with the layout text stored in the set) and the goal map."""
-    recipe = recipe_of(goalset)
+def relocated(recipe, relocation: Relocation, file=None):
+    """``recipe`` with every file and folder it reads where :func:`locate` found it."""
+    where = relocation.path
+    library = getattr(recipe.mixture, "library", None)
+    recipe = replace(recipe, logs_path=where(recipe.logs_path, file), layout_path=where(recipe.layout_path, file),
+                     goal=replace(recipe.goal, embedding=where(recipe.goal.embedding, file)))
+    if library is not None:
+        recipe = replace(recipe, mixture=replace(recipe.mixture, library=str(where(library, file))))
+    if recipe.sources is not None:
+        recipe = replace(recipe, sources=tuple(replace(s, entries=tuple(str(where(e, file)) for e in s.entries))
+                                               for s in recipe.sources))
+    return recipe
+
+
+def locate_logs(goalset, logs_root=None) -> Relocation:
+    """Where the files a set was built from are now (the reader's search: refuses what matches nowhere)."""
+    return locate(goalset.path, goalset.provenance, logs_root, strict=True, cache=True)
+
+
+def open_logs_of(goalset, logs_root=None, relocation: Relocation | None = None) -> LogsOfSet:
+    """Reopen the logs (with the layout text stored in the set) and the goal map.
+
+    The files are looked for as :func:`goalkit.write.relocate.locate` says (beside the set,
+    at their recorded paths, then under ``logs_root``), unless ``relocation`` is given.
+    """
+    if relocation is None:
+        relocation = locate_logs(goalset, logs_root)
+    recipe = recipe_of(goalset, relocation)
     prov = goalset.provenance
     layout = None
     if not isinstance(prov.get("layout_text", ""), str):

@@ -5,7 +5,9 @@ Checks, in order:
 0. the file holds what a set holds and nothing else (attributes, groups, columns, each column as
    long as its split's ``rows`` attribute, the manifest listing exactly the stored columns) and
    its seal matches (format version 2; see :mod:`goalkit.write.seal`);
-1. the source log files (regular files only) still have the checksums recorded at build time;
+1. the source log files (regular files only) still have the checksums recorded at build time,
+   wherever they are now (:mod:`goalkit.write.relocate`: beside the set, at the recorded path,
+   or under a new root); recorded paths are compared as recorded;
 2. the stored recipe, run with the set's ``seed`` attribute, produces exactly the stored columns
    (names, dtypes, row shapes, chunking, compression) and the ``rows`` and ``episodes``
    attributes of each split (checked before any column is read);
@@ -26,6 +28,7 @@ Checks, in order:
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -42,8 +45,9 @@ from goalkit.reward import score
 from goalkit.rows import END_FLAG_SOURCES
 from goalkit.write.format import SPLIT_CODES, SPLITS
 from goalkit.write.reader import GoalSet
+from goalkit.write.relocate import locate
 from goalkit.write.rederive import (as_stored, check_columns, differences, provenance_differences,
-                                    source_entries, source_problem, stored_recipe)
+                                    source_entries, stored_recipe)
 from goalkit.write.rules import check_goal_rules
 from goalkit.write.seal import check_layout, check_seal, stored_strategy_codes
 from goalkit.write.search_checks import check_joined
@@ -219,7 +223,7 @@ def _goal_at(plan, chunk, phi_chunk, episodes, steps) -> np.ndarray:
     return out
 
 
-def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) -> VerifyReport:
+def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True, logs_root=None) -> VerifyReport:
     """Verify the set at ``path``; see the module docstring for what is checked.
 
     Parameters
@@ -231,6 +235,8 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) 
         Called as ``progress(transitions_done_in_chunk, total_transitions)`` after each chunk.
     audit : bool
         Also run :func:`goalkit.audit.audit_set` (its result goes to ``checked["audit"]``).
+    logs_root : str or Path, optional
+        The folder that now holds the logs, when they moved (see :mod:`goalkit.write.relocate`).
 
     Returns
     -------
@@ -239,7 +245,8 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) 
     Raises
     ------
     DatasetError
-        When the file cannot be read as a set (naming the file and the key).
+        When the file cannot be read as a set (naming the file and the key), when a file it was
+        built from is found nowhere, or when the file found under ``logs_root`` has another checksum.
     """
     report = VerifyReport(max_failures=max_failures)
     with GoalSet(path) as goal_set:
@@ -254,18 +261,22 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) 
         for message in _strategy_code_problems(goal_set.file):
             report.fail(message)
         # 1. source files
-        entries = source_entries(goal_set)
-        digests = {}
-        for entry in entries:
-            problem = source_problem(entry, digests)
-            if problem:
-                report.fail(f"source file {entry['path']}: {problem}")
+        source_entries(goal_set)
+        relocation = locate(goal_set.path, goal_set.provenance, logs_root, strict=False)
+        for want, place, problem in relocation.problems:
+            if want.text is None:   # a changed layout file shows as a changed layout_text
+                report.fail(f"source file {place}: {problem}")
+        digests = relocation.digests
         report.checked["source_files"] = len(goal_set.provenance.get("log_files", []))
+        moved = {rec: found for rec, found in relocation.found.items()
+                 if os.path.realpath(rec) != os.path.realpath(found)}
+        if moved:
+            report.checked["moved_files"] = moved
         if not report.ok:
             return report
         # 2. the recipe with the set's own seed; the columns and row counts it produces (before
         #    any column is read, so a huge declared column is never read)
-        recipe = stored_recipe(goal_set, report)
+        recipe = stored_recipe(goal_set, report, relocation)
         if recipe is None:
             return report
         try:
@@ -308,15 +319,15 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True) 
         report.checked["rows"] = {split: total[split] for split in SPLITS}
         report.checked["episodes"] = int(len(plan.episode_ids))
         # 5. summary and provenance, re-derived
-        fresh_summary = as_stored(final_summary(summary, plan, source))
+        fresh_summary = relocation.restore(as_stored(final_summary(summary, plan, source)))
         if "composition" not in goal_set.summary:  # a set built before the composition was stored
             fresh_summary.pop("composition", None)
         for message in differences(fresh_summary, goal_set.summary, "summary"):
             report.fail(message)
-        for message in provenance_differences(goal_set, plan, source, digests):
+        for message in provenance_differences(goal_set, plan, source, digests, relocation):
             report.fail(message)
     if audit:  # 6. rules and laws re-stated independently of the builder (docs/audit.md)
-        audit_into(path, report)
+        audit_into(path, report, relocation=relocation)
     return report
 
 
