@@ -106,6 +106,13 @@ class _Logs:
         self.goal_dtype = np.dtype(goal.get("dtype", "float32"))
         self.field_widths = [(n, first.fields[n][1] - first.fields[n][0]) for n in spec.fields
                              if n in first.fields]
+        # the stored dtypes the recipe asks for, else the logs' own (several files: their common type)
+        obs = np.dtype(getattr(self.source, "obs_dtype", first.observations.dtype))
+        act = np.dtype(getattr(self.source, "action_dtype", first.actions.dtype))
+        self.stored_dtypes = {"observation": np.dtype(rc.observation_dtype) if rc.observation_dtype else obs,
+                              "action": np.dtype(rc.action_dtype) if rc.action_dtype else act,
+                              "goal": self.goal_dtype, "reached_goal": self.goal_dtype}
+        self.stored_dtypes["next_observation"] = self.stored_dtypes["observation"]
 
     def known(self, episodes) -> np.ndarray:
         pos = np.minimum(np.searchsorted(self.ids, episodes), len(self.ids) - 1)
@@ -122,12 +129,13 @@ class _Logs:
         keys = self.source.layout.keys
         return [col for col, (role, _) in END_FLAGS.items() if getattr(keys, role) is not None]
 
-    def achieved_and_task_goal(self, episodes, steps, flags=()):
+    def achieved_and_task_goal(self, episodes, steps, flags=(), materials=False):
         """phi(s_t+1) (goal dtype), the log's task goal (or None), end flags and task ids of each (episode, t).
 
         Returns ``(achieved, task, flag_values, task_ids)``: ``flag_values`` maps each of ``flags`` (end-flag
         column names) to the log's own flag of each (episode, t), as uint8; ``task_ids`` is the
-        task id of each row's episode (-1: none).
+        task id of each row's episode (-1: none). With ``materials``, ``flag_values`` also holds the
+        logged ``observation`` (s_t), ``action`` and ``next_observation`` in the logs' dtypes.
         """
         pos = np.searchsorted(self.ids, episodes)
         a, b = int(pos.min()), int(pos.max()) + 1
@@ -140,6 +148,10 @@ class _Logs:
             tg = np.asarray(chunk.task_goals)
             task = tg.reshape(len(tg), -1)[chunk.offsets[local] + steps]
         values = {}
+        if materials:   # the logged s_t, a_t, s_t+1 as the logs keep them (cast by the caller)
+            trans = chunk.offsets[local] + steps
+            values.update(observation=np.asarray(chunk.observations)[cur], action=np.asarray(chunk.actions)[trans],
+                          next_observation=np.asarray(chunk.observations)[cur + 1])
         for col in flags:
             logged = getattr(chunk, END_FLAGS[col][1])
             values[col] = None if logged is None else np.asarray(logged)[chunk.offsets[local] + steps].astype(np.uint8)
@@ -232,6 +244,10 @@ def audit_set(path, sample: int | None = None, alpha: float = ALPHA) -> AuditRep
                 elif col not in flags and col in f[s]:
                     report.failures.append(f"column {s}/{col} is stored, but the layout maps no "
                                            f"{END_FLAGS[col][0]} flag")
+            for col, dtype in logs.stored_dtypes.items():
+                if col in f[s] and f[s][col].dtype != dtype:
+                    report.failures.append(f"column {s}/{col} is stored as {f[s][col].dtype}, expected {dtype} "
+                                           f"(the recipe's dtype, else the logs')")
         _Auditor(f, rc, logs, report, seed, sample, alpha).run()
     return report
 
@@ -377,8 +393,11 @@ class _Auditor:
         inside = (t >= 0) & (t < T)
         if inside.any():
             idx = np.flatnonzero(inside)
-            achieved, task, logged, task_ids = logs.achieved_and_task_goal(ep[idx], t[idx], flags=tuple(flags))
+            achieved, task, logged, task_ids = logs.achieved_and_task_goal(ep[idx], t[idx], flags=tuple(flags),
+                                                                           materials="observation" in grp)
             sub = {k: val[idx] for k, val in c.items()}
+            if "observation" in grp:
+                self.stored_values(grp, a, b, known, idx, logged, split, c)
             for col in flags:
                 full = np.zeros(len(ep), bool)
                 full[idx] = sub[col] != logged[col]
@@ -404,6 +423,23 @@ class _Auditor:
                 self.violated("original", "original: the goal is not the log's task goal of step t", full,
                               split, a, c)
         self.laws(c, s, T, T_goal, v, valid, split)
+
+    def stored_values(self, grp, a, b, known, idx, logged, split, c):
+        """observation, action, next_observation: the logged values cast to the stored dtype here.
+
+        The cast is numpy's (IEEE 754 round to nearest, ties to even, for floats), applied to the
+        logs' values in the dtype this audit expects (:attr:`_Logs.stored_dtypes`).
+        """
+        n = len(c["source_episode"])
+        for col in ("observation", "action", "next_observation"):
+            stored = np.asarray(grp[col][a:b])[known][idx]
+            want = self.logs.stored_dtypes[col]
+            with np.errstate(over="ignore", invalid="ignore"):
+                expect = np.asarray(logged[col]).astype(want)
+            same = (stored == expect) | (np.isnan(stored.astype(np.float64)) & np.isnan(expect.astype(np.float64)))
+            full = np.zeros(n, bool)
+            full[idx] = ~same.reshape(len(idx), -1).all(axis=1)
+            self.violated(f"{col} value", f"{col} is not the logged value cast to {want}", full, split, a, c)
 
     def laws(self, c, s, T, T_goal, v, valid, split):
         rc, d = self.rc, self.draws

@@ -362,6 +362,8 @@ def final_summary(summary, plan, source) -> dict:
     """The summary stored in a set, from a filled :class:`SummaryBuilder` (shared with verify)."""
     result = add_to_summary(summary.result(), plan.context)
     result["composition"].update(widths=dict(plan.shapes or {}), sources=source_counts(plan, source))
+    if plan.dtypes is not None:   # the stored dtypes (the recipe's [output] / [goal] dtypes, else the logs')
+        result["composition"]["dtypes"] = plan.dtypes.describe()
     skipped = list(getattr(source, "skipped", []))
     result["skipped_episodes"] = len(skipped)
     if plan.recipe.sources is not None:

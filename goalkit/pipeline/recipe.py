@@ -19,6 +19,7 @@ from goalkit.graphconfig import GraphSpec
 from goalkit.heads import heads_from_table
 from goalkit.masks import MaskSpec
 from goalkit.outputs import small_toml
+from goalkit.pipeline.casts import FLOAT_DTYPES, INT_DTYPES
 from goalkit.relabel import Mixture
 from goalkit.reward import RewardRule
 
@@ -32,8 +33,10 @@ SOURCE_KEYS = ("name", "path", "layout", "skip_bad_episodes")
 MAX_SOURCE_NAME = 64
 GOAL_KEYS = ("fields", "indices", "embedding", "dtype")
 SPLIT_KEYS = ("validation", "salt")
-OUTPUT_KEYS = ("path", "mode", "compression", "chunk_rows")
-GOAL_DTYPES = ("float32", "float64")
+OUTPUT_KEYS = ("path", "mode", "compression", "chunk_rows", "observation_dtype", "action_dtype")
+GOAL_DTYPES = FLOAT_DTYPES
+#: Dtypes ``[output] action_dtype`` takes (integer ones only for logs whose actions are integers).
+ACTION_DTYPES = FLOAT_DTYPES + INT_DTYPES
 MODES = ("materialised", "indexed")
 #: Compressions a build writes: with each, a recipe gives the same bytes whatever the producer,
 #: worker count or chunk size.
@@ -76,6 +79,10 @@ class OutputSpec:
     mode: str = "materialised"
     compression: str = "gzip"
     chunk_rows: int = 65536
+    #: Stored dtype of observation and next_observation (None: the logs' dtype).
+    observation_dtype: str | None = None
+    #: Stored dtype of action (None: the logs' dtype).
+    action_dtype: str | None = None
 
 
 @dataclass(frozen=True)
@@ -255,9 +262,21 @@ def _parse_output(table, base, file, stored: bool = False) -> OutputSpec:
     if isinstance(rows, bool) or not isinstance(rows, int) or not 256 <= rows <= 2 ** 24:
         raise RecipeError(f"expected a whole number from 256 to 16777216, got {shown(rows)}", file=file,
                           key="output.chunk_rows")
+    dtypes = {}
+    for key, allowed in (("observation_dtype", FLOAT_DTYPES), ("action_dtype", ACTION_DTYPES)):
+        if key in table:
+            value = table[key]
+            if value not in allowed:
+                raise RecipeError(f"expected one of {', '.join(allowed)}, got {shown(value)}", file=file,
+                                  key=f"output.{key}")
+            if mode != "materialised":
+                raise RecipeError(f"an {mode} set stores no observations or actions (its reader takes them from "
+                                  f"the logs); expected {key} only with mode = \"materialised\"", file=file,
+                                  key=f"output.{key}")
+            dtypes[key] = value
     return OutputSpec(path=_path(table["path"], base, file, "output.path", resolve=False), mode=mode,
                       compression=comp,
-                      chunk_rows=rows)
+                      chunk_rows=rows, **dtypes)
 
 
 def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored: bool = False) -> Recipe:

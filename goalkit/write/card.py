@@ -22,7 +22,7 @@ import numpy as np
 from goalkit.outputs import is_png, output_file, refuse_existing, starts_with
 from goalkit.rows import SPLITS
 from goalkit.write.graphplot import has_graph_steps, plot_graph_distance
-from goalkit.write.info import reward_text, set_facts, widths_text
+from goalkit.write.info import dtypes_text, reward_text, set_facts, widths_text
 from goalkit.write.reader import GoalSet
 
 #: The card's first line: what makes an existing Markdown file "ours" (replaceable with --replace).
@@ -188,7 +188,8 @@ def render(facts: dict, png_name: str, coverage: dict | None = None, graph_png: 
           "Recipe, as stored in the set:", "", "```toml", facts["recipe"].rstrip("\n"), "```", ""]
     # composition
     rows, eps = facts["rows"], facts["episodes"]
-    L += ["## Composition", "", f"Widths: {widths_text(facts['widths'])}.", ""]
+    L += ["## Composition", "", f"Widths: {widths_text(facts['widths'])}.", "",
+          f"Stored dtypes: {dtypes_text(facts.get('dtypes'))}.", ""]
     L += _table(["split", "episodes", "rows"], [[s, eps[s], rows[s]] for s in SPLITS])
     by = facts["by_split"]
     if by:
