@@ -23,7 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from goalkit.errors import LogError
+from goalkit.errors import LogError, shown
 
 #: Float dtypes a recipe may store observations, goals and actions in.
 FLOAT_DTYPES = ("float16", "float32", "float64")
@@ -182,6 +182,6 @@ class StoredDtypes:
         what = "overflows" if dtype.kind == "f" else "does not fit"
         limit = (f"largest finite {dtype.name} is {np.finfo(dtype).max:g}" if dtype.kind == "f"
                  else f"{dtype.name} holds {np.iinfo(dtype).min} .. {np.iinfo(dtype).max}")
-        raise LogError(f"value {value!r} {what} {dtype.name} ({limit}), the dtype {self.recipe_file or 'the recipe'} "
+        raise LogError(f"value {shown(value)} {what} {dtype.name} ({limit}), the dtype {self.recipe_file or 'the recipe'} "
                        f"asks for with {recipe_key}; expected values that fit, or a wider dtype",
                        file=path, key=keys.get(role, role), episode=episode, step=step)
