@@ -96,6 +96,14 @@ class _Logs:
             self.source = open_logs(Path(prov["logs_path"]), layout, skip_bad_episodes=rc.skip_bad_episodes)
         self.ids = np.asarray(self.source.episode_ids, dtype=np.int64)
         self.lengths = np.asarray(self.source.lengths, dtype=np.int64)
+        # goal rows per transition of each episode: its source's own count, else [relabel]'s
+        self.codes = None
+        self.goals = np.full(len(self.ids), rc.goals_per_transition, np.int64)
+        if getattr(self.source, "source_names", None) is not None and rc.named_sources:
+            self.codes = np.asarray(self.source.source_of(self.ids), dtype=np.int64)
+            per = np.array([rc.source_goals.get(n, rc.goals_per_transition) for n in self.source.source_names],
+                           dtype=np.int64)
+            self.goals = per[self.codes]
         base = Path(prov["recipe_file"]).parent if prov.get("recipe_file") else Path.cwd()
         goal = rc.goal
         emb = goal.get("embedding")
@@ -248,7 +256,12 @@ def audit_set(path, sample: int | None = None, alpha: float = ALPHA) -> AuditRep
                 if col in f[s] and f[s][col].dtype != dtype:
                     report.failures.append(f"column {s}/{col} is stored as {f[s][col].dtype}, expected {dtype} "
                                            f"(the recipe's dtype, else the logs')")
-        _Auditor(f, rc, logs, report, seed, sample, alpha).run()
+        auditor = _Auditor(f, rc, logs, report, seed, sample, alpha)
+        try:
+            auditor.summary_sources = json.loads(f.attrs["summary"]).get("sources")
+        except (KeyError, ValueError, TypeError, AttributeError):
+            auditor.summary_sources = None
+        auditor.run()
     return report
 
 
@@ -262,6 +275,7 @@ class _Auditor:
         self.first = {}
         self.masks = None if rc.mask is None else MaskAudit(rc.mask, logs.goal_map.dim, logs.field_widths)
         self.graph = GraphAudit(logs, rc.graph) if rc.graph is not None else None
+        self.summary_sources = None
 
     # ---- failures ------------------------------------------------------------------------
     def violated(self, rule, message, mask, split, row0, c):
@@ -295,18 +309,19 @@ class _Auditor:
         for s, a, b in blocks:
             self.block(s, a, b, counts[s])
         if self.sample is None:
-            missing = np.setdiff1d(self.logs.ids, np.union1d(members["train"], members["validation"]))
+            missing = np.setdiff1d(self.logs.ids[self.logs.goals > 0], np.union1d(members["train"], members["validation"]))
             if missing.size:
                 self.report.failures.append(f"episode {int(missing[0])} of the logs has no rows")
             for s in SPLITS:
                 pos = np.searchsorted(self.logs.ids, members[s][np.isin(members[s], self.logs.ids)])
-                expect = self.logs.lengths[pos] * rc.goals_per_transition
+                expect = self.logs.lengths[pos] * self.logs.goals[pos]
                 bad = counts[s][pos] != expect
                 if bad.any():
                     k = int(np.flatnonzero(bad)[0])
                     self.report.failures.append(
                         f"{s}: episode {int(self.logs.ids[pos[k]])} has {int(counts[s][pos[k]])} rows, expected "
-                        f"T x goals_per_transition = {int(expect[k])}")
+                        f"T x goals_per_transition of its source = {int(expect[k])}")
+            self.source_rows(counts)
         for rule, n in self.violations.items():
             self.report.failures.append(f"row rule '{rule}' broken by {n} rows; first: {self.first[rule]}")
         if self.graph is not None:
@@ -322,8 +337,33 @@ class _Auditor:
         self.report.share_shift = share_power(n, min(rc.weights.values()), self.alpha / m) if n else float("nan")
         self.report.ok = not self.report.failures
 
+    def source_rows(self, counts):
+        """Rows per source and split: counted from the rows against T x the source's goal count.
+
+        The expected numbers come from the logs and the recipe text alone; the stored summary's
+        per-source rows (when the recipe names sources) must equal them too.
+        """
+        codes = self.logs.codes
+        if codes is None:
+            return
+        stored = self.summary_sources
+        names = list(getattr(self.logs.source, "source_names", []))
+        for code, name in enumerate(names):
+            mine = codes == code
+            for s in SPLITS:
+                counted = int(counts[s][mine].sum())
+                in_split = mine & np.isin(self.logs.ids, self.members[s])
+                expect = int((self.logs.lengths[in_split] * self.logs.goals[in_split]).sum())
+                if counted != expect:
+                    self.report.failures.append(f"source '{name}': {counted} {s} rows, expected {expect} "
+                                                f"(T x its goals_per_transition over its {s} episodes)")
+                got = ((stored or {}).get(name) or {}).get("rows", {}).get(s) if stored is not None else None
+                if stored is not None and got != counted:
+                    self.report.failures.append(f"source '{name}': the summary says {got} {s} rows, the set "
+                                                f"holds {counted}")
+
     def blocks(self):
-        g = self.rc.goals_per_transition
+        g = int(self.logs.goals.max(initial=1)) or 1
         rows = {s: int(self.f[s]["source_episode"].shape[0]) for s in SPLITS}
         if self.sample is None:
             step = BLOCK_TRANSITIONS * g
@@ -379,6 +419,9 @@ class _Auditor:
         if "source" in c:
             self.violated("source", "source is not the code of the episode's source in the recipe",
                           c["source"].astype(np.int64) != logs.source.source_of(ep), split, a, c)
+        k = logs.goals[pos]
+        self.violated("source slot", "slot outside 0 .. goals_per_transition - 1 of the episode's source",
+                      (slot < 0) | (slot >= k), split, a, c)
         T = logs.lengths[pos]
         other = np.where(c["hop_episode"] >= 0, c["hop_episode"], c["goal_episode"])
         T_goal = logs.length_of(other)

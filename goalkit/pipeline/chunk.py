@@ -132,7 +132,11 @@ def stored_arrays(plan, chunk) -> tuple:
 def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gathers, stored=None):
     """Columns and keys of the rows of ``transitions`` (chunk indices; None: all)."""
     rule = plan.recipe.reward
-    rows = plan.recipe.mixture.assign(chunk, plan.recipe.seed, plan.context, transitions=transitions)
+    slots = None
+    if plan.goals is not None:   # per-source goal rows: each transition gets its source's count
+        slots = np.repeat(plan.goals[first:first + chunk.num_episodes], chunk.lengths)
+        slots = slots if transitions is None else slots[transitions]
+    rows = plan.recipe.mixture.assign(chunk, plan.recipe.seed, plan.context, transitions=transitions, slots=slots)
     t = rows.transition
     src_pos = chunk.transition_episode()[t]
     src_ep = chunk.episode_ids[src_pos]

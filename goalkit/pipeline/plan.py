@@ -65,6 +65,9 @@ class BuildPlan:
         The logs' graph, when the recipe has a ``[graph]`` table.
     dtypes : goalkit.pipeline.casts.StoredDtypes or None
         The stored observation, action and goal dtypes and the checked cast to them.
+    goals : ndarray of int64 or None
+        Goal rows per transition of each kept episode, when sources give their own
+        (``Recipe.source_goals``); None: ``goals_per_transition`` for every episode.
     """
 
     recipe: object
@@ -80,6 +83,7 @@ class BuildPlan:
     masks: object = None
     graph: object = None
     dtypes: object = None
+    goals: np.ndarray | None = None
 
     def positions(self, episode_ids) -> np.ndarray:
         """Position among the kept episodes of each episode id."""
@@ -93,6 +97,22 @@ class BuildPlan:
     @property
     def total_transitions(self) -> int:
         return int(self.transition_offsets[-1])
+
+    def episode_goals(self) -> np.ndarray:
+        """Goal rows per transition of each kept episode (int64)."""
+        if self.goals is not None:
+            return self.goals
+        return np.full(len(self.episode_ids), int(self.recipe.mixture.goals_per_transition), np.int64)
+
+    @property
+    def total_rows(self) -> int:
+        """Rows of the whole set (both splits)."""
+        return int(np.sum(self.lengths * self.episode_goals()))
+
+    @property
+    def most_goals(self) -> int:
+        """The largest number of goal rows a transition gets (at least 1)."""
+        return max(1, int(self.episode_goals().max(initial=0)))
 
 
 def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_task_reward, end_flags=(),
@@ -247,11 +267,14 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
         graph = StateGraph.from_logs(table, offsets, settings, episode_ids=ids)
         if recipe.graph.guard_neighbours:
             context = replace(context, graph=graph)
+    goals = None
+    if getattr(recipe, "source_goals", None) is not None:   # per-source goal rows (docs/recipe.md)
+        goals = np.asarray(recipe.source_goals, dtype=np.int64)[np.asarray(source.source_of(ids), dtype=np.int64)]
     plan = BuildPlan(recipe=recipe, goal_map=goal_map, episode_ids=ids, lengths=lengths,
                      transition_offsets=offsets, splits=splits, context=context, goal_table=table,
                      columns=cols, shapes={"observation": list(obs_shape), "action": list(act_shape),
                                            "goal": [int(goal_map.dim)]},
-                     masks=masks, graph=graph, dtypes=dtypes)
+                     masks=masks, graph=graph, dtypes=dtypes, goals=goals)
     return plan, source
 
 
@@ -297,7 +320,6 @@ def goal_table(source, goal_map, dtypes, max_transitions: int) -> np.ndarray:
 
 
 def split_rows(plan) -> dict:
-    """Rows each split of the output will hold: goals_per_transition per transition."""
-    gpt = plan.recipe.mixture.goals_per_transition
-    return {name: int(plan.lengths[plan.splits == code].sum()) * gpt
-            for code, name in enumerate(SPLITS)}
+    """Rows each split of the output will hold: each transition's goal count (per source) per transition."""
+    rows = plan.lengths * plan.episode_goals()
+    return {name: int(rows[plan.splits == code].sum()) for code, name in enumerate(SPLITS)}

@@ -176,6 +176,12 @@ def render(facts: dict, png_name: str, coverage: dict | None = None, graph_png: 
                       c["transitions"]["validation"]] for c in counts])
     else:
         L += ["Per-file counts: not stored in this set (built before goalkit stored them).", ""]
+    by_source = facts.get("by_source")
+    if by_source:
+        L += ["Goal rows per source (each transition of a source gets its goals_per_transition rows):", ""]
+        L += _table(["source", "episodes", "transitions", "goals per transition", "train rows", "validation rows"],
+                    [[f"`{name}`", v["episodes"], v["transitions"], v.get("goals_per_transition", "-"),
+                      v["rows"]["train"], v["rows"]["validation"]] for name, v in by_source.items()])
     # how it was made
     L += ["## How it was made", ""]
     if facts["rebuild_command"]:

@@ -55,7 +55,9 @@ def set_facts(path) -> dict:
         JSON-able: ``path``, ``file_bytes``, ``format_version``, ``goalkit_version``, ``mode``,
         ``seed``, ``purpose``, ``rebuild_command``, ``recipe_file``, ``recipe``, ``reward``,
         ``goal_map``, ``relabel``, ``split``, ``widths``, ``dtypes`` (stored dtype of the
-        observation, action, next_observation and goal columns; None where not stored), ``rows``, ``episodes``,
+        observation, action, next_observation and goal columns; None where not stored), ``rows``,
+        ``by_source`` (recipes with ``[[sources]]``: per source episodes, transitions, goal rows per
+        transition and rows per split; else None), ``episodes``,
         ``strategies``, ``reached_fraction``, ``by_split``, ``goal_distance_histogram``,
         ``horizon_histogram``, ``goal_distance_quantiles``, ``sources``, ``limits``,
         ``safety``, ``not_stored`` (names of the facts this set does not hold).
@@ -102,6 +104,7 @@ def set_facts(path) -> dict:
                                              if len(shapes) == 3 else None),
             "dtypes": {name: dtypes.get(name) for name in DTYPE_COLUMNS},
             "rows": rows,
+            "by_source": summary.get("sources"),
             "episodes": episodes,
             "transitions": prov.get("transitions"),
             "strategies": summary.get("strategies"),
@@ -204,6 +207,11 @@ def format_info(facts: dict) -> str:
         lines.append("  strategy          rows        reached")
         for name, s in facts["strategies"].items():
             lines.append(f"  {name:<15} {s['rows']:>10,}   {s['reached_fraction']:>8.1%}")
+    for name, v in (facts.get("by_source") or {}).items():
+        k = v.get("goals_per_transition")
+        lines.append(f"  source {name}: {v['episodes']:,} episodes, {v['transitions']:,} transitions"
+                     + (f", {k} goal rows each" if k is not None else "")
+                     + f", rows {v['rows']['train']:,} train / {v['rows']['validation']:,} validation")
     h = facts["horizon_histogram"]
     if h:
         for s in SPLITS:
