@@ -182,6 +182,7 @@ class StoredDtypes:
         what = "overflows" if dtype.kind == "f" else "does not fit"
         limit = (f"largest finite {dtype.name} is {np.finfo(dtype).max:g}" if dtype.kind == "f"
                  else f"{dtype.name} holds {np.iinfo(dtype).min} .. {np.iinfo(dtype).max}")
-        raise LogError(f"value {shown(value)} {what} {dtype.name} ({limit}), the dtype {self.recipe_file or 'the recipe'} "
-                       f"asks for with {recipe_key}; expected values that fit, or a wider dtype",
+        raise LogError(f"value {shown(value)} {what} {dtype.name} ({limit}), asked for by "
+                       f"{self.recipe_file or 'the recipe'} key {recipe_key}; expected values that fit, or a "
+                       f"wider dtype",
                        file=path, key=keys.get(role, role), episode=episode, step=step)
