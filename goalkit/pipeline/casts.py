@@ -100,10 +100,15 @@ class FileTable:
         return self.paths[i], self.keys[i]
 
 
+def first_row(bad: np.ndarray) -> int:
+    """The first row of a mask (rows along axis 0) with a true entry."""
+    return int(np.flatnonzero(bad.reshape(bad.shape[0], -1).any(axis=1))[0])
+
+
 def _role_keys(layout) -> dict:
     keys = getattr(layout, "keys", None)
     out = {}
-    for role in ("observation", "action"):
+    for role in ("observation", "action", "task_goal"):
         name = getattr(keys, role, None) if keys is not None else None
         if name:
             out[role] = str(name)
@@ -169,15 +174,18 @@ class StoredDtypes:
         out, bad = cast_problem(values, dtype)
         if bad is None:
             return out
-        row = int(np.flatnonzero(bad.reshape(bad.shape[0], -1).any(axis=1))[0])
-        col = np.flatnonzero(np.atleast_1d(bad[row]).ravel())
-        value = np.atleast_1d(values[row]).ravel()[int(col[0])] if col.size else values[row]
-        value = value.item() if hasattr(value, "item") else value
+        row = first_row(bad)
         offsets = np.asarray(chunk.offsets, dtype=np.int64)
         starts = offsets[:-1] + (np.arange(len(offsets) - 1) if state_level else 0)
         pos = int(np.searchsorted(starts, row, side="right")) - 1
-        episode = int(chunk.episode_ids[pos])
-        step = int(row - starts[pos])
+        self.refuse(values, bad, row, int(chunk.episode_ids[pos]), int(row - starts[pos]), role, recipe_key)
+
+    def refuse(self, values, bad, row: int, episode: int, step: int, role: str, recipe_key: str):
+        """Raise the :class:`LogError` of the first bad value of ``values[row]`` (see :meth:`cast`)."""
+        dtype = self.goal if role in ("goal", "task_goal") else getattr(self, role)
+        col = np.flatnonzero(np.atleast_1d(bad[row]).ravel())
+        value = np.atleast_1d(values[row]).ravel()[int(col[0])] if col.size else values[row]
+        value = value.item() if hasattr(value, "item") else value
         path, keys = self.files.where(episode)
         what = "overflows" if dtype.kind == "f" else "does not fit"
         limit = (f"largest finite {dtype.name} is {np.finfo(dtype).max:g}" if dtype.kind == "f"

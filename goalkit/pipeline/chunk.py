@@ -7,6 +7,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from goalkit.goals.stategraph import graph_steps
+from goalkit.pipeline.casts import cast_problem, first_row
 from goalkit.pipeline.plan import SLOT_SPAN
 from goalkit.relabel.strategies import STRATEGIES
 from goalkit.reward import score
@@ -38,7 +39,17 @@ def goal_vectors(plan, chunk, phi_chunk, rows, src_pos, src_ep) -> np.ndarray:
         out[same] = phi_chunk[srow]
     ext = rows.goal_episode < 0
     if ext.any():
-        out[ext] = rows.external[ext]
+        values = rows.external[ext]
+        _, bad = cast_problem(values, out.dtype)
+        if bad is not None and plan.dtypes is not None:   # a task or library goal beyond the goal dtype
+            i = first_row(bad)
+            where = np.flatnonzero(ext)[i]
+            pos = int(src_pos[where])
+            step = int(rows.transition[where] - chunk.offsets[pos])
+            original = int(rows.strategy[where]) == STRATEGIES["original"].code
+            plan.dtypes.refuse(values, bad, i, int(src_ep[where]), step, "task_goal" if original else "goal",
+                               "goal.dtype")
+        out[ext] = values
     cross = ~same & ~ext
     if cross.any():
         g = plan.global_state_rows(rows.goal_episode[cross], rows.goal_step[cross])

@@ -24,7 +24,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-from goalkit import build, load_recipe, open_set, verify
+from goalkit import GoalSampler, build, load_recipe, open_set, verify
 from goalkit.audit.run import audit_set
 from goalkit.cli import main as cli_main
 from goalkit.errors import RecipeError, shown
@@ -314,3 +314,31 @@ def test_integer_casts_flag_exactly_the_values_out_of_range(values, dtype):
     assert np.array_equal(np.zeros_like(expect) if bad is None else bad, expect)
     if bad is None:
         assert out.dtype == np.dtype(dtype) and np.array_equal(out.astype(np.int64), values)
+
+
+def test_a_task_goal_beyond_a_float16_goal_is_refused_at_its_transition(tmp_path):
+    obs, act, lengths = gantry_logs()
+    task = np.zeros((len(obs), 2))
+    ep = 3
+    task[int(np.sum(lengths[:ep])) + 1, 0] = 1e5                 # float16 max is 65504
+    write_logs(tmp_path / "logs.h5", obs, act, lengths)
+    with h5py.File(tmp_path / "logs.h5", "a") as f:
+        f["target"] = task
+    (tmp_path / "layout.toml").write_text(LAYOUT.replace('action = "act"', 'action = "act"\ntask_goal = "target"'))
+    text = RECIPE.format(output="", goal_dtype='dtype = "float16"').replace("final = 1", "final = 1\noriginal = 50")
+    (tmp_path / "recipe.toml").write_text(text)
+    res = CliRunner().invoke(cli_main, ["build", str(tmp_path / "recipe.toml")])
+    assert res.exit_code == 2, res.output
+    line = res.stderr.strip()
+    assert "\n" not in line and f"key target: episode {ep}: step 1: value 100000.0 overflows float16" in line, line
+    assert "goal.dtype" in line and not (tmp_path / "set.h5").exists()
+
+
+def test_the_fresh_goal_sampler_gives_the_stored_dtypes(tmp_path):
+    path = setup(tmp_path, output='observation_dtype = "float32"\naction_dtype = "float16"',
+                 goal_dtype='dtype = "float16"')
+    batch = GoalSampler(load_recipe(path)).batch(32, index=0)
+    obs, _, _ = gantry_logs()
+    assert batch["observation"].dtype == np.float32 and batch["action"].dtype == np.float16
+    assert batch["goal"].dtype == np.float16
+    assert np.isin(batch["observation"][:, 0], obs[:, 0].astype(np.float32)).all()
