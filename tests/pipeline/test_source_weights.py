@@ -145,7 +145,10 @@ def test_adding_a_source_or_changing_anothers_count_never_moves_a_sources_rows(a
 
 def test_a_source_with_zero_goal_rows_has_no_rows_and_verifies(archive):
     path = make_recipe(archive, "z", [source_table("teleop", "teleop.h5", 0), source_table("scripted", "scripted.h5")])
-    build(load_recipe(path))
+    res = CliRunner().invoke(cli_main, ["build", str(path)])
+    assert res.exit_code == 0, res.output
+    lines = {ln.split()[0]: ln.split() for ln in res.output.splitlines() if ln.strip().startswith(("teleop", "scripted"))}
+    assert lines["teleop"][3] == "0" and lines["teleop"][4] == "0/0" and lines["scripted"][3] == "3"
     with h5py.File(archive / "z.h5", "r") as f:
         assert all((f[s]["source"][:] == 1).all() for s in ("train", "validation"))
         assert json.loads(f.attrs["summary"])["sources"]["teleop"]["rows"] == {"train": 0, "validation": 0}
