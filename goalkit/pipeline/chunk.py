@@ -127,8 +127,9 @@ def relabel_chunk(plan, chunk, defer_gathers: bool = False) -> ChunkRows:
             transitions = None  # every transition of the chunk
         else:  # the split's transitions, in order: rows come out per split, with no masking after
             transitions = np.flatnonzero(np.repeat(members, chunk.lengths))
-        out_cols[name], out_keys[name] = _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype,
-                                                     defer_gathers, stored)
+        cols, keys = _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gathers, stored)
+        if len(keys) or plan.goals is None:   # a split of sources with 0 goal rows yields no rows
+            out_cols[name], out_keys[name] = cols, keys
     return ChunkRows(out_cols, out_keys)
 
 

@@ -8,6 +8,7 @@ their counts. Invented gantry logs (unit-test data).
 
 from __future__ import annotations
 
+import hashlib
 import json
 
 import h5py
@@ -21,6 +22,7 @@ from goalkit import build, load_recipe, open_set, verify
 from goalkit.audit.run import audit_set
 from goalkit.cli import main as cli_main
 from goalkit.logs.episodes import EpisodeSet
+from goalkit.pipeline.build import build as engine_build
 from goalkit.relabel import Mixture, RelabelContext
 from goalkit.write.info import info
 
@@ -208,3 +210,14 @@ def test_slots_of_a_transition_are_the_first_rows_of_a_uniform_count(lengths, da
     assert len(part) == int(counts.sum())
     for name in ("transition", "slot", "strategy", "goal_episode", "goal_step", "steps_to_goal"):
         np.testing.assert_array_equal(getattr(part, name), getattr(full, name)[keep], err_msg=name)
+
+
+def test_per_source_counts_are_byte_identical_on_workers_and_chunk_sizes(archive):
+    path = make_recipe(archive, "wk", [source_table("teleop", "teleop.h5", 0), source_table("scripted", "scripted.h5", 5),
+                                       source_table("policy-v3", "policy.h5", 2)])
+    recipe = load_recipe(path)
+    digests = set()
+    for kwargs in ({"max_rows_per_chunk": 40}, {"max_rows_per_chunk": 100_000}, {"workers": 2, "max_rows_per_chunk": 40}):
+        engine_build(recipe, replace=True, **kwargs)
+        digests.add(hashlib.sha256((archive / "wk.h5").read_bytes()).hexdigest())
+    assert len(digests) == 1
