@@ -342,3 +342,20 @@ def test_the_fresh_goal_sampler_gives_the_stored_dtypes(tmp_path):
     assert batch["observation"].dtype == np.float32 and batch["action"].dtype == np.float16
     assert batch["goal"].dtype == np.float16
     assert np.isin(batch["observation"][:, 0], obs[:, 0].astype(np.float32)).all()
+
+
+def test_halfway_values_round_to_the_even_neighbour(tmp_path):
+    # IEEE 754-2019 4.3.1 roundTiesToEven, worked by hand (not by numpy): in binary32 the
+    # neighbours of 1 are 1 and 1 + 2**-23; 1 + 2**-24 lies half-way and goes to 1 (even
+    # significand), 1 + 3 * 2**-24 lies half-way between 1 + 2**-23 and 1 + 2**-22 and goes up
+    obs, act, lengths = gantry_logs()
+    obs[:, 2] = 1.0 + 2.0 ** -24
+    obs[1::2, 2] = 1.0 + 3 * 2.0 ** -24
+    path = setup(tmp_path, output='observation_dtype = "float32"', obs=obs, act=act, lengths=lengths)
+    build(load_recipe(path))
+    starts = np.concatenate([[0], np.cumsum(lengths)])
+    with open_set(tmp_path / "set.h5") as gs:
+        r = gs.read("train", ["observation", "source_episode", "source_step"])
+    odd = (starts[r["source_episode"]] + r["source_step"]) % 2 == 1
+    got = r["observation"][:, 2].astype(np.float64)
+    assert (got[~odd] == 1.0).all() and (got[odd] == 1.0 + 2.0 ** -22).all()
