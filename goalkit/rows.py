@@ -34,7 +34,8 @@ class Field:
         Column name in the set.
     dtype : str
         A numpy dtype name, or ``"goal"`` (the recipe's goal dtype), ``"obs"`` / ``"act"``
-        (the logs' observation / action dtype).
+        (the stored observation / action dtype: the recipe's ``[output] observation_dtype`` /
+        ``action_dtype``, else the logs').
     kind : str
         Per-row shape kind, a key of :data:`SHAPE_KINDS`.
     meaning : str
@@ -53,8 +54,9 @@ class Field:
 
     @property
     def dtype_text(self) -> str:
-        """The dtype as docs/dataset.md writes it (``goal dtype``, ``log dtype`` or a numpy name)."""
-        return {"goal": "goal dtype", "obs": "log dtype", "act": "log dtype"}.get(self.dtype, self.dtype)
+        """The dtype as docs/dataset.md writes it (``goal dtype``, ``observation dtype``, ``action dtype``
+        or a numpy name)."""
+        return {"goal": "goal dtype", "obs": "observation dtype", "act": "action dtype"}.get(self.dtype, self.dtype)
 
 
 def _fields(*rows) -> dict[str, Field]:
@@ -65,7 +67,7 @@ def _fields(*rows) -> dict[str, Field]:
 INDEX_FIELDS = _fields(
     ("source_episode", "int64", "", "episode id of the transition (its position in the log)"),
     ("source_step", "int64", "", "t, for transition (s_t, a_t, s_t+1)"),
-    ("slot", "int64", "", "goal slot 0 .. goals_per_transition-1"),
+    ("slot", "int64", "", "goal slot 0 .. goals_per_transition-1 (of the transition's source)"),
     ("strategy", "uint8", "", "strategy code (table below)"),
     ("goal_episode", "int64", "", "episode id the goal state comes from; -1 for an external goal"),
     ("goal_step", "int64", "", "j, the goal is phi(s_j); -1 for an external goal"),

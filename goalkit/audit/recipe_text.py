@@ -48,6 +48,11 @@ class AuditRecipe:
         ``[graph] guard_neighbours`` (dropped neighbour goals fall back to their join state).
     graph : dict or None
         The ``[graph]`` table (graph distances), None without one.
+    observation_dtype, action_dtype : str or None
+        ``[output] observation_dtype`` / ``action_dtype``: the stored dtypes the recipe asks for
+        (None: the logs' dtype).
+    source_goals : dict
+        Source name -> ``goals_per_transition`` of the ``[[sources]]`` that give their own.
     """
 
     weights: dict
@@ -70,6 +75,9 @@ class AuditRecipe:
     mask: dict | None = None
     guard_neighbours: bool = False
     graph: dict | None = None
+    observation_dtype: str | None = None
+    action_dtype: str | None = None
+    source_goals: dict = None
 
 
 def parse_audit_recipe(text: str) -> AuditRecipe:
@@ -110,4 +118,8 @@ def parse_audit_recipe(text: str) -> AuditRecipe:
         mask=dict(doc["mask"]) if "mask" in doc else None,
         guard_neighbours=bool(doc.get("graph", {}).get("guard_neighbours", False)),
         graph=dict(doc["graph"]) if isinstance(doc.get("graph"), dict) else None,
+        observation_dtype=doc.get("output", {}).get("observation_dtype"),
+        action_dtype=doc.get("output", {}).get("action_dtype"),
+        source_goals={str(t["name"]): int(t["goals_per_transition"]) for t in doc.get("sources", [])
+                      if isinstance(t, dict) and "goals_per_transition" in t},
     )

@@ -38,7 +38,8 @@ def address_rules(c: dict, T, T_goal, same_split, rc):
     external = (ge == -1) & (j == -1)
     later_join = (join > t) & (join <= T)
     yield "mixture", "strategy code not among the recipe's positive weights", ~np.isin(s, list(rc.weights))
-    yield "slot", f"slot outside 0 .. {rc.goals_per_transition - 1}", (slot < 0) | (slot >= rc.goals_per_transition)
+    most = max([rc.goals_per_transition, *(rc.source_goals or {}).values()])   # per source: run.py checks each
+    yield "slot", f"slot outside 0 .. {most - 1}", (slot < 0) | (slot >= most)
     yield "source step", "source step outside 0 .. T-1 of its episode", (t < 0) | (t >= T)
     rules = {
         ORIGINAL: ("original: external goal, no hop, join or steps-to-goal",

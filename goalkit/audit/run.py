@@ -99,6 +99,14 @@ class _Logs:
             self.source = open_logs(where(prov["logs_path"], path), layout, skip_bad_episodes=rc.skip_bad_episodes)
         self.ids = np.asarray(self.source.episode_ids, dtype=np.int64)
         self.lengths = np.asarray(self.source.lengths, dtype=np.int64)
+        # goal rows per transition of each episode: its source's own count, else [relabel]'s
+        self.codes = None
+        self.goals = np.full(len(self.ids), rc.goals_per_transition, np.int64)
+        if getattr(self.source, "source_names", None) is not None and rc.named_sources:
+            self.codes = np.asarray(self.source.source_of(self.ids), dtype=np.int64)
+            per = np.array([rc.source_goals.get(n, rc.goals_per_transition) for n in self.source.source_names],
+                           dtype=np.int64)
+            self.goals = per[self.codes]
         base = Path(prov["recipe_file"]).parent if prov.get("recipe_file") else Path.cwd()
         goal = rc.goal
         emb = goal.get("embedding")
@@ -109,6 +117,13 @@ class _Logs:
         self.goal_dtype = np.dtype(goal.get("dtype", "float32"))
         self.field_widths = [(n, first.fields[n][1] - first.fields[n][0]) for n in spec.fields
                              if n in first.fields]
+        # the stored dtypes the recipe asks for, else the logs' own (several files: their common type)
+        obs = np.dtype(getattr(self.source, "obs_dtype", first.observations.dtype))
+        act = np.dtype(getattr(self.source, "action_dtype", first.actions.dtype))
+        self.stored_dtypes = {"observation": np.dtype(rc.observation_dtype) if rc.observation_dtype else obs,
+                              "action": np.dtype(rc.action_dtype) if rc.action_dtype else act,
+                              "goal": self.goal_dtype, "reached_goal": self.goal_dtype}
+        self.stored_dtypes["next_observation"] = self.stored_dtypes["observation"]
 
     def known(self, episodes) -> np.ndarray:
         pos = np.minimum(np.searchsorted(self.ids, episodes), len(self.ids) - 1)
@@ -125,12 +140,13 @@ class _Logs:
         keys = self.source.layout.keys
         return [col for col, (role, _) in END_FLAGS.items() if getattr(keys, role) is not None]
 
-    def achieved_and_task_goal(self, episodes, steps, flags=()):
+    def achieved_and_task_goal(self, episodes, steps, flags=(), materials=False):
         """phi(s_t+1) (goal dtype), the log's task goal (or None), end flags and task ids of each (episode, t).
 
         Returns ``(achieved, task, flag_values, task_ids)``: ``flag_values`` maps each of ``flags`` (end-flag
         column names) to the log's own flag of each (episode, t), as uint8; ``task_ids`` is the
-        task id of each row's episode (-1: none).
+        task id of each row's episode (-1: none). With ``materials``, ``flag_values`` also holds the
+        logged ``observation`` (s_t), ``action`` and ``next_observation`` in the logs' dtypes.
         """
         pos = np.searchsorted(self.ids, episodes)
         a, b = int(pos.min()), int(pos.max()) + 1
@@ -143,6 +159,10 @@ class _Logs:
             tg = np.asarray(chunk.task_goals)
             task = tg.reshape(len(tg), -1)[chunk.offsets[local] + steps]
         values = {}
+        if materials:   # the logged s_t, a_t, s_t+1 as the logs keep them (cast by the caller)
+            trans = chunk.offsets[local] + steps
+            values.update(observation=np.asarray(chunk.observations)[cur], action=np.asarray(chunk.actions)[trans],
+                          next_observation=np.asarray(chunk.observations)[cur + 1])
         for col in flags:
             logged = getattr(chunk, END_FLAGS[col][1])
             values[col] = None if logged is None else np.asarray(logged)[chunk.offsets[local] + steps].astype(np.uint8)
@@ -242,7 +262,16 @@ def audit_set(path, sample: int | None = None, alpha: float = ALPHA, *, logs_roo
                 elif col not in flags and col in f[s]:
                     report.failures.append(f"column {s}/{col} is stored, but the layout maps no "
                                            f"{END_FLAGS[col][0]} flag")
-        _Auditor(f, rc, logs, report, seed, sample, alpha).run()
+            for col, dtype in logs.stored_dtypes.items():
+                if col in f[s] and f[s][col].dtype != dtype:
+                    report.failures.append(f"column {s}/{col} is stored as {f[s][col].dtype}, expected {dtype} "
+                                           f"(the recipe's dtype, else the logs')")
+        auditor = _Auditor(f, rc, logs, report, seed, sample, alpha)
+        try:
+            auditor.summary_sources = json.loads(f.attrs["summary"]).get("sources")
+        except (KeyError, ValueError, TypeError, AttributeError):
+            auditor.summary_sources = None
+        auditor.run()
     return report
 
 
@@ -256,6 +285,7 @@ class _Auditor:
         self.first = {}
         self.masks = None if rc.mask is None else MaskAudit(rc.mask, logs.goal_map.dim, logs.field_widths)
         self.graph = GraphAudit(logs, rc.graph) if rc.graph is not None else None
+        self.summary_sources = None
 
     # ---- failures ------------------------------------------------------------------------
     def violated(self, rule, message, mask, split, row0, c):
@@ -289,18 +319,19 @@ class _Auditor:
         for s, a, b in blocks:
             self.block(s, a, b, counts[s])
         if self.sample is None:
-            missing = np.setdiff1d(self.logs.ids, np.union1d(members["train"], members["validation"]))
+            missing = np.setdiff1d(self.logs.ids[self.logs.goals > 0], np.union1d(members["train"], members["validation"]))
             if missing.size:
                 self.report.failures.append(f"episode {int(missing[0])} of the logs has no rows")
             for s in SPLITS:
                 pos = np.searchsorted(self.logs.ids, members[s][np.isin(members[s], self.logs.ids)])
-                expect = self.logs.lengths[pos] * rc.goals_per_transition
+                expect = self.logs.lengths[pos] * self.logs.goals[pos]
                 bad = counts[s][pos] != expect
                 if bad.any():
                     k = int(np.flatnonzero(bad)[0])
                     self.report.failures.append(
                         f"{s}: episode {int(self.logs.ids[pos[k]])} has {int(counts[s][pos[k]])} rows, expected "
-                        f"T x goals_per_transition = {int(expect[k])}")
+                        f"T x goals_per_transition of its source = {int(expect[k])}")
+            self.source_rows(counts)
         for rule, n in self.violations.items():
             self.report.failures.append(f"row rule '{rule}' broken by {n} rows; first: {self.first[rule]}")
         if self.graph is not None:
@@ -316,8 +347,33 @@ class _Auditor:
         self.report.share_shift = share_power(n, min(rc.weights.values()), self.alpha / m) if n else float("nan")
         self.report.ok = not self.report.failures
 
+    def source_rows(self, counts):
+        """Rows per source and split: counted from the rows against T x the source's goal count.
+
+        The expected numbers come from the logs and the recipe text alone; the stored summary's
+        per-source rows (when the recipe names sources) must equal them too.
+        """
+        codes = self.logs.codes
+        if codes is None:
+            return
+        stored = self.summary_sources
+        names = list(getattr(self.logs.source, "source_names", []))
+        for code, name in enumerate(names):
+            mine = codes == code
+            for s in SPLITS:
+                counted = int(counts[s][mine].sum())
+                in_split = mine & np.isin(self.logs.ids, self.members[s])
+                expect = int((self.logs.lengths[in_split] * self.logs.goals[in_split]).sum())
+                if counted != expect:
+                    self.report.failures.append(f"source '{name}': {counted} {s} rows, expected {expect} "
+                                                f"(T x its goals_per_transition over its {s} episodes)")
+                got = ((stored or {}).get(name) or {}).get("rows", {}).get(s) if stored is not None else None
+                if stored is not None and got != counted:
+                    self.report.failures.append(f"source '{name}': the summary says {got} {s} rows, the set "
+                                                f"holds {counted}")
+
     def blocks(self):
-        g = self.rc.goals_per_transition
+        g = int(self.logs.goals.max(initial=1)) or 1
         rows = {s: int(self.f[s]["source_episode"].shape[0]) for s in SPLITS}
         if self.sample is None:
             step = BLOCK_TRANSITIONS * g
@@ -373,6 +429,9 @@ class _Auditor:
         if "source" in c:
             self.violated("source", "source is not the code of the episode's source in the recipe",
                           c["source"].astype(np.int64) != logs.source.source_of(ep), split, a, c)
+        k = logs.goals[pos]
+        self.violated("source slot", "slot outside 0 .. goals_per_transition - 1 of the episode's source",
+                      (slot < 0) | (slot >= k), split, a, c)
         T = logs.lengths[pos]
         other = np.where(c["hop_episode"] >= 0, c["hop_episode"], c["goal_episode"])
         T_goal = logs.length_of(other)
@@ -387,8 +446,11 @@ class _Auditor:
         inside = (t >= 0) & (t < T)
         if inside.any():
             idx = np.flatnonzero(inside)
-            achieved, task, logged, task_ids = logs.achieved_and_task_goal(ep[idx], t[idx], flags=tuple(flags))
+            achieved, task, logged, task_ids = logs.achieved_and_task_goal(ep[idx], t[idx], flags=tuple(flags),
+                                                                           materials="observation" in grp)
             sub = {k: val[idx] for k, val in c.items()}
+            if "observation" in grp:
+                self.stored_values(grp, a, b, known, idx, logged, split, c)
             for col in flags:
                 full = np.zeros(len(ep), bool)
                 full[idx] = sub[col] != logged[col]
@@ -414,6 +476,23 @@ class _Auditor:
                 self.violated("original", "original: the goal is not the log's task goal of step t", full,
                               split, a, c)
         self.laws(c, s, T, T_goal, v, valid, split)
+
+    def stored_values(self, grp, a, b, known, idx, logged, split, c):
+        """observation, action, next_observation: the logged values cast to the stored dtype here.
+
+        The cast is numpy's (IEEE 754 round to nearest, ties to even, for floats), applied to the
+        logs' values in the dtype this audit expects (:attr:`_Logs.stored_dtypes`).
+        """
+        n = len(c["source_episode"])
+        for col in ("observation", "action", "next_observation"):
+            stored = np.asarray(grp[col][a:b])[known][idx]
+            want = self.logs.stored_dtypes[col]
+            with np.errstate(over="ignore", invalid="ignore"):
+                expect = np.asarray(logged[col]).astype(want)
+            same = (stored == expect) | (np.isnan(stored.astype(np.float64)) & np.isnan(expect.astype(np.float64)))
+            full = np.zeros(n, bool)
+            full[idx] = ~same.reshape(len(idx), -1).all(axis=1)
+            self.violated(f"{col} value", f"{col} is not the logged value cast to {want}", full, split, a, c)
 
     def laws(self, c, s, T, T_goal, v, valid, split):
         rc, d = self.rc, self.draws

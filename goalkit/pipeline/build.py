@@ -157,7 +157,7 @@ def read_inputs(plan, source, log_files=None, with_library: bool = True) -> Buil
 
 def chunk_transitions(plan, rows_per_chunk: int = CHUNK_ROWS) -> int:
     """Transitions per chunk so that a chunk yields about ``rows_per_chunk`` rows."""
-    return max(1, rows_per_chunk // plan.recipe.mixture.goals_per_transition)
+    return max(1, rows_per_chunk // plan.most_goals)
 
 
 def provenance(plan, source, log_files=None, inputs: BuildInputs | None = None) -> dict:
@@ -276,8 +276,7 @@ def run_build(recipe, producer, *, source=None, rows_per_chunk: int | None = Non
     """
     plan, source = make_plan(recipe, source)
     chunks = plan_shards(plan, chunk_transitions(plan, rows_per_chunk or producer.rows_per_chunk))
-    gpt = recipe.mixture.goals_per_transition
-    summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_transitions * gpt, recipe.seed,
+    summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_rows, recipe.seed,
                              distance_unit=recipe.reward.reach_threshold,
                              rule=recipe.reward)
 
@@ -367,6 +366,8 @@ def final_summary(summary, plan, source) -> dict:
     """The summary stored in a set, from a filled :class:`SummaryBuilder` (shared with verify)."""
     result = add_to_summary(summary.result(), plan.context)
     result["composition"].update(widths=dict(plan.shapes or {}), sources=source_counts(plan, source))
+    if plan.dtypes is not None:   # the stored dtypes (the recipe's [output] / [goal] dtypes, else the logs')
+        result["composition"]["dtypes"] = plan.dtypes.describe()
     skipped = list(getattr(source, "skipped", []))
     result["skipped_episodes"] = len(skipped)
     if plan.recipe.sources is not None:

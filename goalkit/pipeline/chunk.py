@@ -7,6 +7,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from goalkit.goals.stategraph import graph_steps
+from goalkit.pipeline.casts import cast_problem, first_row
 from goalkit.pipeline.plan import SLOT_SPAN
 from goalkit.relabel.strategies import STRATEGIES
 from goalkit.reward import score
@@ -38,7 +39,17 @@ def goal_vectors(plan, chunk, phi_chunk, rows, src_pos, src_ep) -> np.ndarray:
         out[same] = phi_chunk[srow]
     ext = rows.goal_episode < 0
     if ext.any():
-        out[ext] = rows.external[ext]
+        values = rows.external[ext]
+        _, bad = cast_problem(values, out.dtype)
+        if bad is not None and plan.dtypes is not None:   # a task or library goal beyond the goal dtype
+            i = first_row(bad)
+            where = np.flatnonzero(ext)[i]
+            pos = int(src_pos[where])
+            step = int(rows.transition[where] - chunk.offsets[pos])
+            original = int(rows.strategy[where]) == STRATEGIES["original"].code
+            plan.dtypes.refuse(values, bad, i, int(src_ep[where]), step, "task_goal" if original else "goal",
+                               "goal.dtype")
+        out[ext] = values
     cross = ~same & ~ext
     if cross.any():
         g = plan.global_state_rows(rows.goal_episode[cross], rows.goal_step[cross])
@@ -102,7 +113,10 @@ def relabel_chunk(plan, chunk, defer_gathers: bool = False) -> ChunkRows:
         raise ValueError("relabel_chunk needs consecutive kept episodes of the plan")
     # phi of every state of the chunk once, in the stored precision, so that rewards recompute
     # exactly from the stored goal vectors (distances are computed in float64 from these).
-    phi_chunk = plan.goal_map(chunk, np.arange(chunk.observations.shape[0])).astype(gdtype)
+    phi = np.asarray(plan.goal_map(chunk, np.arange(chunk.observations.shape[0])))
+    stored = stored_arrays(plan, chunk) if "observation" in plan.columns else None
+    phi_chunk = phi.astype(gdtype) if plan.dtypes is None else plan.dtypes.cast(phi, "goal", "goal.dtype", chunk,
+                                                                                  state_level=True)
     episode_split = plan.splits[first:first + chunk.num_episodes]
     out_cols, out_keys = {}, {}
     for code, name in enumerate(SPLITS):
@@ -113,15 +127,28 @@ def relabel_chunk(plan, chunk, defer_gathers: bool = False) -> ChunkRows:
             transitions = None  # every transition of the chunk
         else:  # the split's transitions, in order: rows come out per split, with no masking after
             transitions = np.flatnonzero(np.repeat(members, chunk.lengths))
-        out_cols[name], out_keys[name] = _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype,
-                                                     defer_gathers)
+        cols, keys = _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gathers, stored)
+        if len(keys) or plan.goals is None:   # a split of sources with 0 goal rows yields no rows
+            out_cols[name], out_keys[name] = cols, keys
     return ChunkRows(out_cols, out_keys)
 
 
-def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gathers):
+def stored_arrays(plan, chunk) -> tuple:
+    """The chunk's observations and actions in the stored dtypes (checked casts, once per chunk)."""
+    if plan.dtypes is None:
+        return chunk.observations, chunk.actions
+    return (plan.dtypes.cast(chunk.observations, "observation", "output.observation_dtype", chunk, state_level=True),
+            plan.dtypes.cast(chunk.actions, "action", "output.action_dtype", chunk, state_level=False))
+
+
+def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gathers, stored=None):
     """Columns and keys of the rows of ``transitions`` (chunk indices; None: all)."""
     rule = plan.recipe.reward
-    rows = plan.recipe.mixture.assign(chunk, plan.recipe.seed, plan.context, transitions=transitions)
+    slots = None
+    if plan.goals is not None:   # per-source goal rows: each transition gets its source's count
+        slots = np.repeat(plan.goals[first:first + chunk.num_episodes], chunk.lengths)
+        slots = slots if transitions is None else slots[transitions]
+    rows = plan.recipe.mixture.assign(chunk, plan.recipe.seed, plan.context, transitions=transitions, slots=slots)
     t = rows.transition
     src_pos = chunk.transition_episode()[t]
     src_ep = chunk.episode_ids[src_pos]
@@ -138,9 +165,10 @@ def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gather
             **row_labels(rows.steps_to_goal, plan.recipe.mixture.gamma, scores["terminal"])}
     if "observation" in plan.columns:
         gather = RowGather if defer_gathers else (lambda a, i: np.take(a, i, axis=0))
-        cols["observation"] = gather(chunk.observations, cur)
-        cols["action"] = gather(chunk.actions, t)
-        cols["next_observation"] = gather(chunk.observations, cur + 1)
+        observations, actions = stored if stored is not None else (chunk.observations, chunk.actions)
+        cols["observation"] = gather(observations, cur)
+        cols["action"] = gather(actions, t)
+        cols["next_observation"] = gather(observations, cur + 1)
         cols["reached_goal"] = achieved
     if "task_reward" in plan.columns:
         cols["task_reward"] = np.take(chunk.rewards, t, axis=0).astype(np.float32)

@@ -44,9 +44,10 @@ def format_summary(path, summary: dict, reward: dict | None = None, file_bytes: 
         lines.append(f"  {name:<15} {s['rows']:>10,}   {s['reached_fraction']:>8.1%}")
     sources = summary.get("sources")
     if sources:
-        lines.append("  source            episodes  transitions   rows (train/validation)")
+        lines.append("  source            episodes  transitions   goals each   rows (train/validation)")
         for name, v in sources.items():
             lines.append(f"  {name:<15} {v['episodes']:>10,} {v['transitions']:>12,}   "
+                         f"{v.get('goals_per_transition', '-'):>10}   "
                          f"{v['rows']['train']:,}/{v['rows']['validation']:,}")
     q = summary.get("goal_distance_quantiles")
     if q:

@@ -17,6 +17,7 @@ from goalkit.logs import open_logs
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.logs.layout import load_layout
 from goalkit.masks import field_groups
+from goalkit.pipeline.casts import StoredDtypes, file_table
 from goalkit.pipeline.goal import make_goal_map
 from goalkit.pipeline.searchsetup import attach_searches
 from goalkit.pipeline.split import split_codes
@@ -62,6 +63,11 @@ class BuildPlan:
         ``[mask]`` table).
     graph : goalkit.goals.stategraph.StateGraph or None
         The logs' graph, when the recipe has a ``[graph]`` table.
+    dtypes : goalkit.pipeline.casts.StoredDtypes or None
+        The stored observation, action and goal dtypes and the checked cast to them.
+    goals : ndarray of int64 or None
+        Goal rows per transition of each kept episode, when sources give their own
+        (``Recipe.source_goals``); None: ``goals_per_transition`` for every episode.
     """
 
     recipe: object
@@ -76,6 +82,8 @@ class BuildPlan:
     shapes: dict | None = None
     masks: object = None
     graph: object = None
+    dtypes: object = None
+    goals: np.ndarray | None = None
 
     def positions(self, episode_ids) -> np.ndarray:
         """Position among the kept episodes of each episode id."""
@@ -89,6 +97,22 @@ class BuildPlan:
     @property
     def total_transitions(self) -> int:
         return int(self.transition_offsets[-1])
+
+    def episode_goals(self) -> np.ndarray:
+        """Goal rows per transition of each kept episode (int64)."""
+        if self.goals is not None:
+            return self.goals
+        return np.full(len(self.episode_ids), int(self.recipe.mixture.goals_per_transition), np.int64)
+
+    @property
+    def total_rows(self) -> int:
+        """Rows of the whole set (both splits)."""
+        return int(np.sum(self.lengths * self.episode_goals()))
+
+    @property
+    def most_goals(self) -> int:
+        """The largest number of goal rows a transition gets (at least 1)."""
+        return max(1, int(self.episode_goals().max(initial=0)))
 
 
 def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_task_reward, end_flags=(),
@@ -230,13 +254,14 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
                              _SplitLookup(ids, splits))
     check_mixture(recipe, first, context, goal_map.dim)
     masks = resolve_masks(recipe, source, first, goal_map.dim, max_transitions)
-    cols = _columns(recipe, obs_shape, act_shape, first.observations.dtype, first.actions.dtype,
+    dtypes = stored_dtypes(recipe, source, first)
+    cols = _columns(recipe, obs_shape, act_shape, dtypes.observation, dtypes.action,
                     goal_map.dim, first.rewards is not None,
                     [name for name, attr in END_FLAG_SOURCES.items() if getattr(first, attr) is not None],
                     bool(recipe.named_sources))
     table = None
     if needs_goal_table(recipe.mixture) or recipe.graph is not None:
-        table = goal_table(source, goal_map, np.dtype(recipe.goal.dtype), max_transitions)
+        table = goal_table(source, goal_map, dtypes, max_transitions)
     if table is not None:
         context = attach_searches(recipe, context, table, goal_map, ids, lengths, splits)
     graph = None
@@ -245,30 +270,59 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
         graph = StateGraph.from_logs(table, offsets, settings, episode_ids=ids)
         if recipe.graph.guard_neighbours:
             context = replace(context, graph=graph)
+    goals = None
+    if getattr(recipe, "source_goals", None) is not None:   # per-source goal rows (docs/recipe.md)
+        goals = np.asarray(recipe.source_goals, dtype=np.int64)[np.asarray(source.source_of(ids), dtype=np.int64)]
     plan = BuildPlan(recipe=recipe, goal_map=goal_map, episode_ids=ids, lengths=lengths,
                      transition_offsets=offsets, splits=splits, context=context, goal_table=table,
                      columns=cols, shapes={"observation": list(obs_shape), "action": list(act_shape),
                                            "goal": [int(goal_map.dim)]},
-                     masks=masks, graph=graph)
+                     masks=masks, graph=graph, dtypes=dtypes, goals=goals)
     return plan, source
 
 
-def goal_table(source, goal_map, dtype, max_transitions: int) -> np.ndarray:
-    """phi of every kept state of the log, in global state-row order, cast to ``dtype``."""
+def stored_dtypes(recipe, source, first) -> StoredDtypes:
+    """The dtypes a build of ``recipe`` stores (the recipe's, else the logs'), checked against the logs.
+
+    Raises
+    ------
+    RecipeError
+        An integer ``action_dtype`` for logs whose actions are floats.
+    """
+    out = recipe.output
+    log_act = np.dtype(getattr(source, "action_dtype", first.actions.dtype))
+    obs = np.dtype(out.observation_dtype or getattr(source, "obs_dtype", first.observations.dtype))
+    act = np.dtype(out.action_dtype) if out.action_dtype else log_act
+    if act.kind in "iu" and log_act.kind not in "iub":
+        raise RecipeError(f"the logs' actions are {log_act.name}; an integer action dtype ({act.name}) would "
+                          f"drop their fractions; expected a float dtype (float16, float32, float64)",
+                          file=recipe.file, key="output.action_dtype")
+    return StoredDtypes(observation=obs, action=act, goal=np.dtype(recipe.goal.dtype), files=file_table(source),
+                        recipe_file=str(recipe.file))
+
+
+def goal_table(source, goal_map, dtypes, max_transitions: int) -> np.ndarray:
+    """phi of every kept state of the log, in global state-row order, cast (checked) to the goal dtype.
+
+    ``dtypes`` is the plan's :class:`StoredDtypes` (or a bare dtype: cast unchecked).
+    """
+    if not isinstance(dtypes, StoredDtypes):
+        dtypes = StoredDtypes(observation=np.dtype(np.float64), action=np.dtype(np.float64), goal=np.dtype(dtypes),
+                              files=file_table(source))
     lengths = np.asarray(source.lengths, dtype=np.int64)
     total = int(lengths.sum() + len(lengths))
-    out = np.empty((total, goal_map.dim), dtype=dtype)
+    out = np.empty((total, goal_map.dim), dtype=dtypes.goal)
     row = 0
     for a, b in chunk_bounds(lengths, max_transitions):
         chunk = source.read(a, b)
         n = chunk.observations.shape[0]
-        out[row:row + n] = goal_map(chunk, np.arange(n))
+        out[row:row + n] = dtypes.cast(np.asarray(goal_map(chunk, np.arange(n))), "goal", "goal.dtype", chunk,
+                                       state_level=True)
         row += n
     return out
 
 
 def split_rows(plan) -> dict:
-    """Rows each split of the output will hold: goals_per_transition per transition."""
-    gpt = plan.recipe.mixture.goals_per_transition
-    return {name: int(plan.lengths[plan.splits == code].sum()) * gpt
-            for code, name in enumerate(SPLITS)}
+    """Rows each split of the output will hold: each transition's goal count (per source) per transition."""
+    rows = plan.lengths * plan.episode_goals()
+    return {name: int(rows[plan.splits == code].sum()) for code, name in enumerate(SPLITS)}

@@ -19,7 +19,9 @@ from goalkit.graphconfig import GraphSpec
 from goalkit.heads import heads_from_table
 from goalkit.masks import MaskSpec
 from goalkit.outputs import small_toml
+from goalkit.pipeline.casts import FLOAT_DTYPES, INT_DTYPES
 from goalkit.relabel import Mixture
+from goalkit.relabel.mixture import MAX_GOALS_PER_TRANSITION
 from goalkit.reward import RewardRule
 
 RECIPE_VERSION = 1
@@ -27,13 +29,15 @@ RECIPE_VERSION = 1
 TOP_KEYS = ("version", "seed", "logs", "sources", "goal", "relabel", "reward", "split", "output", "heads", "mask", "graph")
 LOGS_KEYS = ("path", "layout", "skip_bad_episodes")
 #: Keys of each ``[[sources]]`` table.
-SOURCE_KEYS = ("name", "path", "layout", "skip_bad_episodes")
+SOURCE_KEYS = ("name", "path", "layout", "skip_bad_episodes", "goals_per_transition")
 #: Longest source name.
 MAX_SOURCE_NAME = 64
 GOAL_KEYS = ("fields", "indices", "embedding", "dtype")
 SPLIT_KEYS = ("validation", "salt")
-OUTPUT_KEYS = ("path", "mode", "compression", "chunk_rows")
-GOAL_DTYPES = ("float32", "float64")
+OUTPUT_KEYS = ("path", "mode", "compression", "chunk_rows", "observation_dtype", "action_dtype")
+GOAL_DTYPES = FLOAT_DTYPES
+#: Dtypes ``[output] action_dtype`` takes (integer ones only for logs whose actions are integers).
+ACTION_DTYPES = FLOAT_DTYPES + INT_DTYPES
 MODES = ("materialised", "indexed")
 #: Compressions a build writes: with each, a recipe gives the same bytes whatever the producer,
 #: worker count or chunk size.
@@ -76,6 +80,10 @@ class OutputSpec:
     mode: str = "materialised"
     compression: str = "gzip"
     chunk_rows: int = 65536
+    #: Stored dtype of observation and next_observation (None: the logs' dtype).
+    observation_dtype: str | None = None
+    #: Stored dtype of action (None: the logs' dtype).
+    action_dtype: str | None = None
 
 
 @dataclass(frozen=True)
@@ -115,6 +123,10 @@ class Recipe:
         The ``[mask]`` table (goal masks); None: no mask column, every goal dimension counts.
     graph : goalkit.goals.stategraph.GraphSpec or None
         The ``[graph]`` table (graph distances, neighbour guard); None without one.
+    source_goals : tuple of int or None
+        Goal rows per transition of each source, in the recipe's ``[[sources]]`` order (a
+        source's own ``goals_per_transition``, else ``[relabel] goals_per_transition``); None when
+        no source gives its own (every transition gets the ``[relabel]`` number).
     """
 
     text: str
@@ -134,6 +146,7 @@ class Recipe:
     named_sources: bool = False
     masks: MaskSpec | None = None
     graph: object = None
+    source_goals: tuple | None = None
 
     def inputs(self) -> list[tuple[str, Path]]:
         """Every file or folder a build of this recipe reads, labelled for messages.
@@ -255,9 +268,21 @@ def _parse_output(table, base, file, stored: bool = False) -> OutputSpec:
     if isinstance(rows, bool) or not isinstance(rows, int) or not 256 <= rows <= 2 ** 24:
         raise RecipeError(f"expected a whole number from 256 to 16777216, got {shown(rows)}", file=file,
                           key="output.chunk_rows")
+    dtypes = {}
+    for key, allowed in (("observation_dtype", FLOAT_DTYPES), ("action_dtype", ACTION_DTYPES)):
+        if key in table:
+            value = table[key]
+            if value not in allowed:
+                raise RecipeError(f"expected one of {', '.join(allowed)}, got {shown(value)}", file=file,
+                                  key=f"output.{key}")
+            if mode != "materialised":
+                raise RecipeError(f"an {mode} set stores no observations or actions (its reader takes them from "
+                                  f"the logs); expected {key} only with mode = \"materialised\"", file=file,
+                                  key=f"output.{key}")
+            dtypes[key] = value
     return OutputSpec(path=_path(table["path"], base, file, "output.path", resolve=False), mode=mode,
                       compression=comp,
-                      chunk_rows=rows)
+                      chunk_rows=rows, **dtypes)
 
 
 def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored: bool = False) -> Recipe:
@@ -292,11 +317,12 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored
         raise RecipeError(f"expected version = {RECIPE_VERSION}, got {shown(version)}", file=file, key="version")
     seed = _check_seed(doc.get("seed", 0), file)
     logs_path = layout_path = None
-    skip, sources, named = False, None, False
+    skip, sources, named, own_goals = False, None, False, None
     if "sources" in doc:
         if "logs" in doc:
             raise RecipeError("expected either [logs] or [[sources]], not both", file=file, key="sources")
         sources, named = _parse_sources(doc["sources"], base, file), True
+        own_goals = _source_goals(doc["sources"], file)
     else:
         logs = _table(doc, "logs", file)
         check_keys(logs, LOGS_KEYS, file=file, section="[logs]", error=RecipeError)
@@ -336,10 +362,17 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored
         graph = _in_recipe(GraphSpec.from_table, _table(doc, "graph", file), file, "graph")
     masks = _in_recipe(MaskSpec.from_table, doc["mask"], file, "mask") if "mask" in doc else None
     heads = heads_from_table(_table(doc, "heads", file, required=False), file)
+    source_goals = None
+    if own_goals is not None and any(k is not None for k in own_goals):
+        source_goals = tuple(mixture.goals_per_transition if k is None else k for k in own_goals)
+        if max(source_goals) == 0:
+            raise RecipeError("every source gets 0 goal rows per transition, so the set would be empty; expected "
+                              "at least one source with goals_per_transition >= 1", file=file,
+                              key="sources[0].goals_per_transition")
     return Recipe(text=text, file=str(file), seed=seed, logs_path=logs_path, layout_path=layout_path,
                   skip_bad_episodes=skip, goal=goal, mixture=mixture, reward=reward,
                   validation=validation, salt=salt, output=output, heads=heads,
-                  sources=sources, named_sources=named, masks=masks, graph=graph)
+                  sources=sources, named_sources=named, masks=masks, graph=graph, source_goals=source_goals)
 
 
 def _in_recipe(make, table, file, name: str):
@@ -421,6 +454,23 @@ def _parse_sources(value, base: Path, file) -> tuple:
         specs.append(SourceSpec(name, _entries(table["path"], base, file, f"{where}.path"), inline, skip,
                                 f"{where}.path", str(layout or "")))
     return tuple(specs)
+
+
+def _source_goals(tables, file) -> tuple:
+    """Each ``[[sources]]`` table's own ``goals_per_transition`` (None where it gives none).
+
+    A whole number from 0 (the source's states serve as goals of other sources' rows, its own
+    transitions get no rows) to :data:`goalkit.relabel.mixture.MAX_GOALS_PER_TRANSITION`.
+    """
+    out = []
+    for i, table in enumerate(tables):
+        k = table.get("goals_per_transition")
+        if k is not None and (isinstance(k, bool) or not isinstance(k, int) or not 0 <= k <= MAX_GOALS_PER_TRANSITION):
+            raise RecipeError(f"expected a whole number from 0 to {MAX_GOALS_PER_TRANSITION} (goal rows per "
+                              f"transition of this source), got {shown(k)}", file=file,
+                              key=f"sources[{i}].goals_per_transition")
+        out.append(k)
+    return tuple(out)
 
 
 def load_recipe(path) -> Recipe:

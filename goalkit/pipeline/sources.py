@@ -43,11 +43,13 @@ def sources_provenance(recipe, source) -> list:
 def sources_summary(plan, source) -> dict:
     """Per source: episodes, transitions and rows per split (from the plan, not the rows)."""
     gpt = plan.recipe.mixture.goals_per_transition
+    own = getattr(plan.recipe, "source_goals", None)
     of = source.source_of(plan.episode_ids)
     out = {}
     for code, name in enumerate(source.source_names):
         mine = of == code
+        k = int(own[code]) if own is not None else int(gpt)
         out[name or "logs"] = {
-            "episodes": int(mine.sum()), "transitions": int(plan.lengths[mine].sum()),
-            "rows": {s: int(plan.lengths[mine & (plan.splits == c)].sum()) * gpt for c, s in enumerate(SPLITS)}}
+            "episodes": int(mine.sum()), "transitions": int(plan.lengths[mine].sum()), "goals_per_transition": k,
+            "rows": {s: int(plan.lengths[mine & (plan.splits == c)].sum()) * k for c, s in enumerate(SPLITS)}}
     return out

@@ -244,7 +244,7 @@ class Mixture:
         pick = np.minimum(np.searchsorted(cum, u, side="right"), len(active) - 1)
         return codes[pick]
 
-    def assign(self, chunk: EpisodeSet, seed: int, context=None, transitions=None) -> GoalRows:
+    def assign(self, chunk: EpisodeSet, seed: int, context=None, transitions=None, slots=None) -> GoalRows:
         """Assign ``goals_per_transition`` goals to every transition of ``chunk``.
 
         Parameters
@@ -259,6 +259,11 @@ class Mixture:
             Transition indices (into ``chunk``) to relabel, e.g. a sampled minibatch; all
             transitions when omitted. Rows come out sorted by (transition, slot) when the
             indices are sorted.
+        slots : ndarray of int64, optional
+            Goal slots of each transition (aligned with ``transitions``; per-source goal counts):
+            transition ``i`` gets slots ``0 .. slots[i] - 1``, each drawn exactly as with a
+            uniform count, so slot ``j`` of a transition is the same row whatever its count.
+            Default: ``goals_per_transition`` for every transition.
 
         Returns
         -------
@@ -268,9 +273,15 @@ class Mixture:
         if transitions is None:
             transitions = np.arange(chunk.num_transitions, dtype=np.int64)
         transitions = np.asarray(transitions, dtype=np.int64)
-        p = int(self.goals_per_transition)
-        tr = np.repeat(transitions, p)
-        slot = np.tile(np.arange(p, dtype=np.int64), len(transitions))
+        if slots is None:
+            p = int(self.goals_per_transition)
+            tr = np.repeat(transitions, p)
+            slot = np.tile(np.arange(p, dtype=np.int64), len(transitions))
+        else:
+            counts = np.asarray(slots, dtype=np.int64)
+            tr = np.repeat(transitions, counts)
+            first = np.cumsum(counts) - counts
+            slot = np.arange(len(tr), dtype=np.int64) - np.repeat(first, counts)
         _, eid, t, _ = locate(chunk, tr)
         strategy = self.draw_strategies(eid, t, slot, seed)
         m = len(tr)

@@ -6,7 +6,8 @@
 classes; torch is an optional extra (``pip install goalkit[torch]``) imported only when one of
 them is first used, so ``import goalkit`` never imports it.
 
-Every adapter pins column dtypes (:data:`DEFAULT_DTYPES`, or the ``dtypes`` argument) with
+Every adapter pins column dtypes (:data:`DEFAULT_DTYPES`, except the columns whose dtype the set's
+recipe chose, which keep their stored dtype; or the ``dtypes`` argument) with
 :func:`cast_checked`, which refuses a cast that would overflow or change an integer's value.
 Adapters hold only a path and settings, never an open file: each process (or data-loader
 worker) opens the set itself, so they pickle and fork cleanly.
@@ -15,6 +16,7 @@ worker) opens the set itself, so they pickle and fork cleanly.
 from __future__ import annotations
 
 import os
+import tomllib
 from typing import Iterator
 
 import numpy as np
@@ -79,8 +81,51 @@ def cast_checked(name: str, values: np.ndarray, dtype) -> np.ndarray:
     return out
 
 
-def _dtypes(dtypes) -> dict:
-    table = DEFAULT_DTYPES if dtypes is None else dict(dtypes)
+def recipe_dtypes(recipe_text: str) -> dict:
+    """Column -> dtype of the columns whose dtype a set's recipe chose.
+
+    ``[output] observation_dtype`` (observation and next_observation), ``[output] action_dtype``
+    (action) and an explicit ``[goal] dtype`` (goal and reached_goal). Adapters keep these
+    stored dtypes by default instead of :data:`DEFAULT_DTYPES`: the recipe already chose them.
+
+    Examples
+    --------
+    >>> recipe_dtypes('[output]\\nobservation_dtype = "float16"\\n[goal]\\nfields = ["head"]')
+    {'observation': 'float16', 'next_observation': 'float16'}
+    """
+    try:
+        doc = tomllib.loads(recipe_text)
+    except (tomllib.TOMLDecodeError, TypeError):
+        return {}
+    out, goal = doc.get("output") or {}, doc.get("goal") or {}
+    chosen = {}
+    if isinstance(out, dict) and isinstance(out.get("observation_dtype"), str):
+        chosen.update(observation=out["observation_dtype"], next_observation=out["observation_dtype"])
+    if isinstance(out, dict) and isinstance(out.get("action_dtype"), str):
+        chosen["action"] = out["action_dtype"]
+    if isinstance(goal, dict) and isinstance(goal.get("dtype"), str):
+        chosen.update(goal=goal["dtype"], reached_goal=goal["dtype"])
+    return chosen
+
+
+def _default_dtypes(path) -> dict:
+    """:data:`DEFAULT_DTYPES`, except the columns whose dtype the set's recipe chose (kept as stored)."""
+    try:
+        with open_set(path) as gs:
+            chosen = recipe_dtypes(gs.recipe)
+    except GoalkitError:
+        return dict(DEFAULT_DTYPES)        # reported when the set is read
+    table = dict(DEFAULT_DTYPES)
+    for name, dtype in chosen.items():
+        table[name] = dtype
+    return table
+
+
+def _dtypes(dtypes, path=None) -> dict:
+    if dtypes is None:
+        table = DEFAULT_DTYPES if path is None else _default_dtypes(path)
+    else:
+        table = dict(dtypes)
     try:
         return {k: np.dtype(v) for k, v in table.items()}
     except TypeError as exc:
@@ -116,8 +161,9 @@ class NumpyBatches:
         The rows left after equal shards (docs/dataset.md).
     drop_last : bool
     dtypes : dict, optional
-        Column -> dtype to cast to, checked (:func:`cast_checked`); default :data:`DEFAULT_DTYPES`,
-        ``{}`` keeps the stored dtypes.
+        Column -> dtype to cast to, checked (:func:`cast_checked`); default :data:`DEFAULT_DTYPES`
+        except the columns whose dtype the set's recipe chose (:func:`recipe_dtypes`), which keep
+        their stored dtype; ``{}`` keeps every stored dtype.
     row_numbers : bool
         Add ``"row"``, each row's number in the split.
     logs_root : str or Path, optional
@@ -149,7 +195,7 @@ class NumpyBatches:
         shard_index(self.rank, self.world_size)  # checked here, once
         self.remainder = remainder
         self.drop_last = drop_last
-        self.dtypes = _dtypes(dtypes)
+        self.dtypes = _dtypes(dtypes, path)
         self.row_numbers = bool(row_numbers)
 
     def set_epoch(self, epoch: int) -> None:
@@ -317,7 +363,7 @@ def _make_torch_classes() -> dict:
             self.logs_root = logs_root
             self.columns = None if columns is None else list(columns)
             self.memory_budget = DEFAULT_MEMORY_BUDGET if memory_budget is None else int(memory_budget)
-            self.dtypes = _dtypes(dtypes)
+            self.dtypes = _dtypes(dtypes, path)
             with open_set(path, logs_root=logs_root) as gs:
                 reader = SplitColumns(gs, split, self.columns)
                 self.rows = reader.rows

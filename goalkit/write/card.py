@@ -22,7 +22,7 @@ import numpy as np
 from goalkit.outputs import is_png, output_file, refuse_existing, starts_with
 from goalkit.rows import SPLITS
 from goalkit.write.graphplot import has_graph_steps, plot_graph_distance
-from goalkit.write.info import reward_text, set_facts, widths_text
+from goalkit.write.info import dtypes_text, reward_text, set_facts, widths_text
 from goalkit.write.reader import GoalSet
 
 #: The card's first line: what makes an existing Markdown file "ours" (replaceable with --replace).
@@ -176,6 +176,12 @@ def render(facts: dict, png_name: str, coverage: dict | None = None, graph_png: 
                       c["transitions"]["validation"]] for c in counts])
     else:
         L += ["Per-file counts: not stored in this set (built before goalkit stored them).", ""]
+    by_source = facts.get("by_source")
+    if by_source:
+        L += ["Goal rows per source (each transition of a source gets its goals_per_transition rows):", ""]
+        L += _table(["source", "episodes", "transitions", "goals per transition", "train rows", "validation rows"],
+                    [[f"`{name}`", v["episodes"], v["transitions"], v.get("goals_per_transition", "-"),
+                      v["rows"]["train"], v["rows"]["validation"]] for name, v in by_source.items()])
     # how it was made
     L += ["## How it was made", ""]
     if facts["rebuild_command"]:
@@ -188,7 +194,8 @@ def render(facts: dict, png_name: str, coverage: dict | None = None, graph_png: 
           "Recipe, as stored in the set:", "", "```toml", facts["recipe"].rstrip("\n"), "```", ""]
     # composition
     rows, eps = facts["rows"], facts["episodes"]
-    L += ["## Composition", "", f"Widths: {widths_text(facts['widths'])}.", ""]
+    L += ["## Composition", "", f"Widths: {widths_text(facts['widths'])}.", "",
+          f"Stored dtypes: {dtypes_text(facts.get('dtypes'))}.", ""]
     L += _table(["split", "episodes", "rows"], [[s, eps[s], rows[s]] for s in SPLITS])
     by = facts["by_split"]
     if by:

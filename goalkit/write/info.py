@@ -16,6 +16,9 @@ from pathlib import Path
 from goalkit.rows import SPLITS
 from goalkit.write.reader import GoalSet
 
+#: Columns whose stored dtype a recipe chooses ([output] observation_dtype, action_dtype; [goal] dtype).
+DTYPE_COLUMNS = ("observation", "action", "next_observation", "goal")
+
 #: The caution that goes with every set (the README's "Safety" section, shortened).
 SAFETY = ("A set built with goalkit trains policies that may drive real machines. goalkit checks that "
           "the set is consistent with its logs and recipe; it cannot tell whether the logged behaviour, "
@@ -51,7 +54,10 @@ def set_facts(path) -> dict:
     dict
         JSON-able: ``path``, ``file_bytes``, ``format_version``, ``goalkit_version``, ``mode``,
         ``seed``, ``purpose``, ``rebuild_command``, ``recipe_file``, ``recipe``, ``reward``,
-        ``goal_map``, ``relabel``, ``split``, ``widths``, ``rows``, ``episodes``,
+        ``goal_map``, ``relabel``, ``split``, ``widths``, ``dtypes`` (stored dtype of the
+        observation, action, next_observation and goal columns; None where not stored), ``rows``,
+        ``by_source`` (recipes with ``[[sources]]``: per source episodes, transitions, goal rows per
+        transition and rows per split; else None), ``episodes``,
         ``strategies``, ``reached_fraction``, ``by_split``, ``goal_distance_histogram``,
         ``horizon_histogram``, ``goal_distance_quantiles``, ``sources``, ``limits``,
         ``safety``, ``not_stored`` (names of the facts this set does not hold).
@@ -70,12 +76,15 @@ def set_facts(path) -> dict:
         for s in SPLITS:
             value = gs.file[s].attrs.get("episodes")
             episodes[s] = int(value) if value is not None else None
-        shapes = {}
+        shapes, dtypes = {}, {}
         for s in SPLITS:
             group = gs.file[s]
             for name, key in (("goal", "goal"), ("observation", "observation"), ("action", "action")):
                 if key in group and name not in shapes:
                     shapes[name] = [int(x) for x in group[key].shape[1:]]
+            for name in DTYPE_COLUMNS:
+                if name in group and name not in dtypes:
+                    dtypes[name] = str(group[name].dtype)
         version = gs.stored.version
         facts = {
             "path": str(path),
@@ -93,7 +102,9 @@ def set_facts(path) -> dict:
             "split": prov.get("split"),
             "widths": comp.get("widths") or ({k: shapes[k] for k in ("observation", "action", "goal")}
                                              if len(shapes) == 3 else None),
+            "dtypes": {name: dtypes.get(name) for name in DTYPE_COLUMNS},
             "rows": rows,
+            "by_source": summary.get("sources"),
             "episodes": episodes,
             "transitions": prov.get("transitions"),
             "strategies": summary.get("strategies"),
@@ -161,6 +172,13 @@ def widths_text(widths: dict | None) -> str:
     return ", ".join(parts)
 
 
+def dtypes_text(dtypes: dict | None) -> str:
+    """``observation float32, action int16, next_observation float32, goal float32``."""
+    if not dtypes:
+        return "not stored"
+    return ", ".join(f"{k} {dtypes.get(k) or 'not stored'}" for k in DTYPE_COLUMNS)
+
+
 def format_info(facts: dict) -> str:
     """The human-readable ``goalkit info`` report of :func:`set_facts`."""
     rows, eps = facts["rows"], facts["episodes"]
@@ -170,6 +188,7 @@ def format_info(facts: dict) -> str:
              f"(episodes: {eps['train']} train, {eps['validation']} validation)",
              f"  reward: {reward_text(facts['reward'])}",
              f"  widths: {widths_text(facts['widths'])}",
+             f"  dtypes: {dtypes_text(facts.get('dtypes'))}",
              f"  seed: {facts['seed']}",
              f"  rebuild: {facts['rebuild_command'] or 'not stored (the recipe file is not recorded)'}"]
     if facts["reached_fraction"] is not None:
@@ -188,6 +207,11 @@ def format_info(facts: dict) -> str:
         lines.append("  strategy          rows        reached")
         for name, s in facts["strategies"].items():
             lines.append(f"  {name:<15} {s['rows']:>10,}   {s['reached_fraction']:>8.1%}")
+    for name, v in (facts.get("by_source") or {}).items():
+        k = v.get("goals_per_transition")
+        lines.append(f"  source {name}: {v['episodes']:,} episodes, {v['transitions']:,} transitions"
+                     + (f", {k} goal rows each" if k is not None else "")
+                     + f", rows {v['rows']['train']:,} train / {v['rows']['validation']:,} validation")
     h = facts["horizon_histogram"]
     if h:
         for s in SPLITS:
@@ -239,5 +263,5 @@ def info(path) -> dict:
     return set_facts(path)
 
 
-__all__ = ["PURPOSE", "SAFETY", "format_info", "info", "rebuild_command", "reward_text",
+__all__ = ["DTYPE_COLUMNS", "PURPOSE", "SAFETY", "dtypes_text", "format_info", "info", "rebuild_command", "reward_text",
            "set_facts", "widths_text"]

@@ -35,8 +35,9 @@ def load_split(recipe, split: str = "train", source=None):
     Returns
     -------
     (plan, episodes, phi) : (BuildPlan, EpisodeSet, ndarray (N + E, G))
-        The build plan, the split's episodes (read a chunk at a time) and the goal vector of
-        every state, in the recipe's goal dtype.
+        The build plan, the split's episodes (read a chunk at a time; observations and actions
+        in the stored dtypes a build would write) and the goal vector of every state, in the
+        recipe's goal dtype.
 
     Raises
     ------
@@ -56,8 +57,14 @@ def load_split(recipe, split: str = "train", source=None):
     if not parts:
         raise RecipeError(f"the {split} split holds no episode", file=recipe.file, key="split.validation")
     episodes = concat_episodes(parts)
-    gd = np.dtype(recipe.goal.dtype)
-    phi = plan.goal_map(episodes, np.arange(episodes.observations.shape[0])).astype(gd)
+    phi = np.asarray(plan.goal_map(episodes, np.arange(episodes.observations.shape[0])))
+    # the stored dtypes a build of the recipe would write (checked casts; phi from the logged values)
+    phi = plan.dtypes.cast(phi, "goal", "goal.dtype", episodes, state_level=True)
+    episodes = replace(episodes,
+                       observations=plan.dtypes.cast(episodes.observations, "observation", "output.observation_dtype",
+                                                     episodes, state_level=True),
+                       actions=plan.dtypes.cast(episodes.actions, "action", "output.action_dtype", episodes,
+                                                state_level=False))
     return plan, episodes, phi
 
 

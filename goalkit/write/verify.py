@@ -290,8 +290,7 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True, 
             report.fail(message)
         report.checked["columns"] = len(goal_set.manifest)
         # 4 + 5. rows, checked and re-derived; the summary re-derived alongside
-        gpt = recipe.mixture.goals_per_transition
-        summary = SummaryBuilder(strategy_names(), plan.total_transitions * gpt, recipe.seed,
+        summary = SummaryBuilder(strategy_names(), plan.total_rows, recipe.seed,
                                  distance_unit=recipe.reward.reach_threshold, rule=recipe.reward)
         cursor = {split: 0 for split in SPLITS}
         total = {split: goal_set.rows(split) for split in SPLITS}

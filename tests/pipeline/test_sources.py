@@ -270,7 +270,9 @@ def test_build_prints_rows_per_source(tmp_path):
         summary = json.loads(f.attrs["summary"])["sources"]
     for name in ("teleop", "scripted"):
         v = summary[name]
-        row = f"  {name:<15} {v['episodes']:>10,} {v['transitions']:>12,}   {v['rows']['train']:,}/{v['rows']['validation']:,}"
+        row = (f"  {name:<15} {v['episodes']:>10,} {v['transitions']:>12,}   {v['goals_per_transition']:>10}   "
+               f"{v['rows']['train']:,}/{v['rows']['validation']:,}")
+        assert v["goals_per_transition"] == 3      # the [relabel] count: no source gives its own
         assert row in res.output
     assert summary["teleop"]["episodes"] == 4 and summary["scripted"]["episodes"] == 2
 
