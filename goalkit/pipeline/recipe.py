@@ -16,7 +16,7 @@ from goalkit.config import check_keys, expect_type, parse_toml, read_text_file
 from goalkit.archive import SourceSpec, is_pattern
 from goalkit.errors import ParameterError, RecipeError, shown
 from goalkit.graphconfig import GraphSpec
-from goalkit.heads import heads_from_table
+from goalkit.heads import check_fixed_heads, heads_from_table
 from goalkit.masks import MaskSpec
 from goalkit.outputs import small_toml
 from goalkit.relabel import Mixture
@@ -32,9 +32,12 @@ SOURCE_KEYS = ("name", "path", "layout", "skip_bad_episodes")
 MAX_SOURCE_NAME = 64
 GOAL_KEYS = ("fields", "indices", "embedding", "dtype")
 SPLIT_KEYS = ("validation", "salt")
-OUTPUT_KEYS = ("path", "mode", "compression", "chunk_rows")
+OUTPUT_KEYS = ("path", "mode", "compression", "chunk_rows", "goals")
 GOAL_DTYPES = ("float32", "float64")
 MODES = ("materialised", "indexed")
+#: Values of ``[output] goals``: ``slots`` (goals_per_transition rows per transition, one goal
+#: each) or ``heads`` (one row per transition, one column group per ``[heads.NAME]`` table).
+GOAL_LAYOUTS = ("slots", "heads")
 #: Compressions a build writes: with each, a recipe gives the same bytes whatever the producer,
 #: worker count or chunk size.
 COMPRESSIONS = ("gzip", "none")
@@ -76,6 +79,7 @@ class OutputSpec:
     mode: str = "materialised"
     compression: str = "gzip"
     chunk_rows: int = 65536
+    goals: str = "slots"
 
 
 @dataclass(frozen=True)
@@ -255,9 +259,13 @@ def _parse_output(table, base, file, stored: bool = False) -> OutputSpec:
     if isinstance(rows, bool) or not isinstance(rows, int) or not 256 <= rows <= 2 ** 24:
         raise RecipeError(f"expected a whole number from 256 to 16777216, got {shown(rows)}", file=file,
                           key="output.chunk_rows")
+    goals = table.get("goals", "slots")
+    if goals not in GOAL_LAYOUTS:
+        raise RecipeError(f"expected one of {', '.join(GOAL_LAYOUTS)}, got {shown(goals)}", file=file,
+                          key="output.goals")
     return OutputSpec(path=_path(table["path"], base, file, "output.path", resolve=False), mode=mode,
                       compression=comp,
-                      chunk_rows=rows)
+                      chunk_rows=rows, goals=goals)
 
 
 def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored: bool = False) -> Recipe:
@@ -330,6 +338,14 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored
         graph = _in_recipe(GraphSpec.from_table, _table(doc, "graph", file), file, "graph")
     masks = MaskSpec.from_table(doc["mask"], file) if "mask" in doc else None
     heads = heads_from_table(_table(doc, "heads", file, required=False), file)
+    if output.goals == "heads":  # one row per transition, the heads' goals in columns
+        check_fixed_heads(heads, file)
+        given = _table(doc, "relabel", file).get("goals_per_transition", 1)
+        if given != 1:
+            raise RecipeError(f"expected goals_per_transition = 1 (or none) with [output] goals = \"heads\" (one "
+                              f"row per transition), got {shown(given)}", file=file,
+                              key="relabel.goals_per_transition")
+        mixture = replace(mixture, goals_per_transition=1)
     return Recipe(text=text, file=str(file), seed=seed, logs_path=logs_path, layout_path=layout_path,
                   skip_bad_episodes=skip, goal=goal, mixture=mixture, reward=reward,
                   validation=validation, salt=salt, output=output, heads=heads,
