@@ -30,6 +30,7 @@ from goalkit.errors import RecipeError
 from goalkit.pipeline.recipe import load_recipe
 from goalkit.reward import score
 from goalkit.rows import HEAD_FIELDS, head_column
+from goalkit.write.card import card_paths
 
 HEADS = """
 [heads.value]
@@ -235,9 +236,8 @@ def test_summary_info_and_card_list_the_heads(demo):
         goalkit.open_set(path).rows(s) for s in ("train", "validation"))
     res = CliRunner().invoke(main, ["info", str(path)])
     assert res.exit_code == 0 and "heads" in res.output and "subgoal" in res.output, res.output
-    card = Path(str(path)[:-3] + ".card.md")
-    if card.exists():
-        assert "value" in card.read_text() and "subgoal" in card.read_text()
+    card = card_paths(path)[0].read_text()
+    assert "| value | random |" in card and "| subgoal | subgoal |" in card
 
 
 @pytest.mark.parametrize("heads, extra, gpt, key", [
