@@ -23,7 +23,8 @@ from goalkit.write.chunkread import SplitColumns
 from goalkit.write.epochs import DEFAULT_MEMORY_BUDGET, shard_index
 from goalkit.write.reader import open_set
 
-#: Columns cast by default (float32 is what networks take); others keep their stored dtype.
+#: Columns cast by default (float32 is what networks take); others keep their stored dtype. A head
+#: column ``FIELD@HEAD`` (sets built with goal heads) is cast as its ``FIELD`` unless named itself.
 DEFAULT_DTYPES = {"observation": "float32", "next_observation": "float32", "goal": "float32",
                   "reached_goal": "float32", "goal_distance": "float32", "reward": "float32"}
 
@@ -83,8 +84,20 @@ def _dtypes(dtypes) -> dict:
         raise DatasetError(f"dtypes: {exc}") from None
 
 
+def _cast_of(name: str, dtypes: dict):
+    """The cast of column ``name``: its own entry, else for a head column ``FIELD@HEAD`` its field's."""
+    if name in dtypes:
+        return dtypes[name]
+    field, sep, _ = name.partition("@")
+    return dtypes.get(field) if sep else None
+
+
 def _cast(batch: dict, dtypes: dict) -> dict:
-    return {k: cast_checked(k, v, dtypes[k]) if k in dtypes else v for k, v in batch.items()}
+    out = {}
+    for k, v in batch.items():
+        dt = _cast_of(k, dtypes)
+        out[k] = v if dt is None else cast_checked(k, v, dt)
+    return out
 
 
 class NumpyBatches:

@@ -29,7 +29,7 @@ from goalkit.demo import make_demo
 from goalkit.errors import RecipeError
 from goalkit.pipeline.recipe import load_recipe
 from goalkit.reward import score
-from goalkit.rows import HEAD_FIELDS, head_column
+from goalkit.rows import HEAD_FIELDS, HEAD_MASK_FIELD, head_column
 from goalkit.write.card import card_paths
 
 HEADS = """
@@ -223,6 +223,11 @@ def test_reader_batches_and_adapters_return_head_columns(demo):
     b = next(iter(it))
     assert b["goal@value"].dtype == np.float32 and b["reward@value"].dtype == np.float32
     assert b["bootstrap_mask@value"].dtype == np.uint8
+    # a head column takes its field's cast unless named itself
+    it = goalkit.NumpyBatches(path, "train", 32, ["goal", "goal@value", "goal@policy"], seed=0,
+                              dtypes={"goal": "float64", "goal@policy": "float32"})
+    b = next(iter(it))
+    assert b["goal@value"].dtype == np.float64 and b["goal@policy"].dtype == np.float32
 
 
 def test_summary_info_and_card_list_the_heads(demo):
@@ -269,3 +274,20 @@ def test_slots_layout_ignores_heads_and_is_unchanged(demo, tmp_path):
     with h5py.File(plain.path, "r") as a, h5py.File(with_heads.path, "r") as b:
         assert set(a["train"]) == set(b["train"])
         assert a.attrs["manifest"] == b.attrs["manifest"]
+
+
+DOC = Path(__file__).resolve().parents[2] / "docs" / "dataset.md"
+
+
+def test_docs_head_column_table_is_the_schema():
+    lines = DOC.read_text(encoding="utf-8").splitlines()
+    start = lines.index("| head column | dtype | shape | meaning |") + 2
+    documented = {}
+    for line in lines[start:]:
+        if not line.startswith("|"):
+            break
+        name, dtype, shape, meaning = (c.strip() for c in line.strip().strip("|").split(" | "))
+        documented[name] = (dtype, shape, meaning)
+    schema = {f"`{f.name}@NAME`": (f.dtype_text, f.shape_text, f.meaning)
+              for f in list(HEAD_FIELDS.values()) + [HEAD_MASK_FIELD]}
+    assert documented == schema
