@@ -108,7 +108,7 @@ class Recipe:
     output : OutputSpec
     heads : tuple of goalkit.heads.GoalHead
         The optional ``[heads.NAME]`` tables: goal heads of the multi-head training sampler
-        (a build ignores them).
+        (a build writes them as columns only with ``[output] goals = "heads"``).
     sources : tuple of SourceSpec, optional
         The logs as several files and/or sources (``[logs] path`` a list, a glob or a folder of
         log files, or ``[[sources]]``); None for one log file or per-file folder, read by
