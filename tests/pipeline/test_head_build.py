@@ -26,6 +26,8 @@ import goalkit
 from goalkit.audit import audit_set
 from goalkit.cli import main
 from goalkit.demo import make_demo
+from goalkit.demo.bench import GantryParams
+from goalkit.demo.tasks import mask_table_text
 from goalkit.errors import RecipeError
 from goalkit.pipeline.recipe import load_recipe
 from goalkit.reward import score
@@ -291,3 +293,32 @@ def test_docs_head_column_table_is_the_schema():
     schema = {f"`{f.name}@NAME`": (f.dtype_text, f.shape_text, f.meaning)
               for f in list(HEAD_FIELDS.values()) + [HEAD_MASK_FIELD]}
     assert documented == schema
+
+
+def test_random_goals_never_cross_the_split(demo):
+    _, _, path, _ = demo
+    with h5py.File(path, "r") as f:
+        for split, other in (("train", "validation"), ("validation", "train")):
+            rnd = f[split]["source@value"][()] == 3
+            goals = f[split]["goal_episode@value"][()][rnd]
+            assert rnd.any()
+            assert np.isin(goals, f[split]["source_episode"][()]).all()
+            assert not np.isin(goals, f[other]["source_episode"][()]).any()
+
+
+def test_heads_with_goal_masks(tmp_path):
+    make_demo(tmp_path, episodes=24, seed=8, trays=3)
+    recipe = heads_recipe(tmp_path, heads=mask_table_text(GantryParams(trays=3), random_share=0.5) + HEADS)
+    path = goalkit.build(recipe, card=False).path
+    with h5py.File(path, "r") as f:
+        g = f["train"]
+        masks = {n: g[f"goal_mask@{n}"][()] for n in NAMES}
+        own = g["goal_mask"][()]
+        rule = load_recipe(recipe).reward
+        s = score(rule, g["reached_goal"][()], g["goal@value"][()], masks["value"])
+        assert np.array_equal(s.reward, g["reward@value"][()])
+    # each head draws its own random masks (goal slot 65536 + h)
+    assert not np.array_equal(masks["value"], masks["policy"]) and not np.array_equal(masks["value"], own)
+    assert _sha(goalkit.build(recipe, out=tmp_path / "b.h5", max_rows_per_chunk=301, card=False).path) == _sha(path)
+    report = goalkit.verify(path)
+    assert report.ok, report.failures
