@@ -53,7 +53,7 @@ def set_facts(path) -> dict:
         JSON-able: ``path``, ``file_bytes``, ``format_version``, ``goalkit_version``, ``mode``,
         ``seed``, ``purpose``, ``rebuild_command``, ``recipe_file``, ``recipe``, ``reward``,
         ``goal_map``, ``relabel``, ``split``, ``widths``, ``rows``, ``episodes``,
-        ``strategies``, ``reached_fraction``, ``by_split``, ``goal_distance_histogram``,
+        ``strategies``, ``heads``, ``reached_fraction``, ``by_split``, ``goal_distance_histogram``,
         ``horizon_histogram``, ``goal_distance_quantiles``, ``sources``, ``limits``,
         ``safety``, ``not_stored`` (names of the facts this set does not hold).
 
