@@ -6,7 +6,9 @@ of them: a mixture over the *goal sources* below, a discount ``gamma`` (for geom
 and for the head's discount weight and return labels), what happens to geometric offsets past
 the episode's end, and the step count of subgoals. The recipe's optional ``[heads.NAME]``
 tables give the same objects (:func:`heads_from_table`); :class:`goalkit.write.headsampler.HeadSampler`
-draws them.
+draws them at training time, and a build with ``[output] goals = "heads"`` writes them as fixed
+columns (:mod:`goalkit.pipeline.headcols`; :func:`check_fixed_heads` refuses what a built set
+cannot hold, such as in-batch negatives).
 
 For transition ``t`` of an episode with ``T`` transitions (states ``s_0 .. s_T``):
 
