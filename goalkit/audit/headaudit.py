@@ -11,7 +11,8 @@ terminal follow the reward table; the labels follow the head's own ``gamma``. It
 the draws: each source's share (exact binomial), the future / episode steps and the
 geometric offsets against their laws (randomised PIT, chi-square), the geometric offset's
 distribution function ``P(K <= n) = 1 - gamma**n`` (``clip``; divided by ``1 - gamma**(T - t)``
-when renormalised), and random states uniform over the split's states.
+when renormalised), random states uniform over the split's states, and that the goal draws of
+consecutive heads on one row are independent (their PIT pairs uniform on the square).
 """
 
 from __future__ import annotations
@@ -21,7 +22,7 @@ import numpy as np
 from goalkit.audit.laws import geometric_law, uniform_law
 from goalkit.audit.recipe_text import HEAD_SOURCE_CODES
 from goalkit.audit.rowrules import reward_rules
-from goalkit.audit.stattests import binom_check, count_bound_check
+from goalkit.audit.stattests import binom_check, count_bound_check, grid_chi2_check
 from goalkit.logs.episodes import chunk_bounds
 
 #: Salt of the heads' PIT jitter (apart from the main audit's, so its draws are unchanged).
@@ -58,6 +59,8 @@ class HeadAudit:
         self.jitter = np.random.default_rng([int(seed), HEAD_JITTER_SALT])
         self.counts = {h.name: np.zeros(len(HEAD_SOURCE_CODES), np.int64) for h in self.heads}
         self.offsets = {h.name: [0, {}] for h in self.heads}
+        # PIT pairs of consecutive heads (h, h + 1) on a 10 x 10 grid: their draws are independent
+        self.grids = {(a.name, b.name): np.zeros((10, 10), np.int64) for a, b in zip(self.heads, self.heads[1:])}
         # phi of every state of the logs, episode by episode, read once (goals of any episode)
         lengths = logs.lengths
         self.starts = np.concatenate([[0], np.cumsum(lengths + 1)]).astype(np.int64)
@@ -85,11 +88,16 @@ class HeadAudit:
         split_ids = members
         split_len = self.logs.length_of(split_ids)
         split_start = np.concatenate([[0], np.cumsum(split_len + 1)]).astype(np.int64)
+        pits = []
         for head in self.heads:
             c = {f: group[column(f, head.name)][a:b][keep] for f in FIELDS}
             if self.masks is not None:
                 c["goal_mask"] = group[column("goal_mask", head.name)][a:b][keep]
-            self._head(head, c, ep, t, T, achieved, split_ids, split_start, violated, task_ids)
+            pits.append(self._head(head, c, ep, t, T, achieved, split_ids, split_start, violated, task_ids))
+        for (pair, grid), ua, ub in zip(self.grids.items(), pits, pits[1:]):
+            both = np.isfinite(ua) & np.isfinite(ub)
+            np.add.at(grid, (np.minimum((ua[both] * 10).astype(np.int64), 9),
+                             np.minimum((ub[both] * 10).astype(np.int64), 9)), 1)
 
     def _head(self, head, c, ep, t, T, achieved, split_ids, split_start, violated, task_ids):
         n = head.name
@@ -131,7 +139,7 @@ class HeadAudit:
             tasks = np.full(len(s), -1, np.int64) if task_ids is None else task_ids
             for rule, message, mask in self.masks.rules(c["goal_mask"], np.ones(len(s), np.int64), tasks):
                 violated(f"head {n}: {rule}", f"head {n}: {message}", mask)
-        self._laws(head, s, ge, j, t, T, valid, split_ids, split_start)
+        return self._laws(head, s, ge, j, t, T, valid, split_ids, split_start)
 
     @staticmethod
     def _labels(head, c, violated):
@@ -151,17 +159,21 @@ class HeadAudit:
     def _laws(self, head, s, ge, j, t, T, valid, split_ids, split_start):
         v = self.jitter.random((len(s), 4))
         n = head.name
+        pit = np.full(len(s), np.nan)   # each row's PIT under its source's law (NaN: a fixed source)
         past = "clip" if head.past_end == "clip" else "truncate"   # renormalised: the law given K <= T - t
         laws = ((FUT, "future step", lambda: uniform_law(j, t + 1, T, v[:, 0])),
                 (EPI, "episode step", lambda: uniform_law(j, 0, T, v[:, 1])),
                 (GEO, "geometric offset", lambda: geometric_law(j - t, T - t, head.gamma, past, v[:, 2])))
         for code, what, law in laws:
             if code in head.shares:
-                self.draws.law(f"head {n}: {what}", law(), valid & (s == code))
+                rows, mask = law(), valid & (s == code)
+                self.draws.law(f"head {n}: {what}", rows, mask)
+                pit[mask] = rows.pit[mask]
         if RND in head.shares:
             rank = split_start[np.minimum(np.searchsorted(split_ids, ge), len(split_ids) - 1)] + j
-            self.draws.law(f"head {n}: random state", uniform_law(rank, 0, split_start[-1] - 1, v[:, 3]),
-                           valid & (s == RND))
+            rows, mask = uniform_law(rank, 0, split_start[-1] - 1, v[:, 3]), valid & (s == RND)
+            self.draws.law(f"head {n}: random state", rows, mask)
+            pit[mask] = rows.pit[mask]
         if GEO in head.shares:   # P(K <= m) = 1 - gamma**m at m = floor((T - t) / 2), rows with T - t >= 2
             room = T - t
             rows = valid & (s == GEO) & (room >= 2)
@@ -175,6 +187,7 @@ class HeadAudit:
             values, counts = np.unique(p[rows], return_counts=True)
             for value, count in zip(values.tolist(), counts.tolist()):
                 acc[1][value] = acc[1].get(value, 0) + count
+        return pit
 
     def checks(self) -> list:
         """Share of every source of every head (binomial) and the geometric offsets' distribution function."""
@@ -189,4 +202,7 @@ class HeadAudit:
             if probs:
                 out.append(count_bound_check(f"head {head.name}: geometric P(K <= (T - t) // 2)", hits,
                                              list(probs), list(probs.values()), "rows with K <= (T - t) // 2"))
+        for (a, b), grid in self.grids.items():
+            out.append(grid_chi2_check(f"heads {a} / {b}: independent draws", grid,
+                                       f"PIT pairs of heads {a} and {b} on one row"))
         return [c for c in out if c is not None]

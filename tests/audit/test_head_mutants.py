@@ -43,6 +43,9 @@ MUTANTS = {
     "renormalised within T - t - 1": (
         "q = np.where(renorm, u * -np.expm1(room * np.log(gamma)), u)",
         "q = np.where(renorm, u * -np.expm1((room - 1) * np.log(gamma)), u)", "head policy: geometric"),
+    "heads share one draw (slot ignored)": (
+        "slot = np.arange(nh, dtype=np.int64)[:, None]", "slot = np.zeros((nh, 1), dtype=np.int64)",
+        "independent draws"),
     "value shares in reverse order": (
         "out[h] = codes[np.searchsorted(cum, u[h], side=\"right\")]",
         "out[h] = codes[::-1][np.searchsorted(cum, u[h], side=\"right\")]", "head value: share of"),
