@@ -6,7 +6,9 @@ of them: a mixture over the *goal sources* below, a discount ``gamma`` (for geom
 and for the head's discount weight and return labels), what happens to geometric offsets past
 the episode's end, and the step count of subgoals. The recipe's optional ``[heads.NAME]``
 tables give the same objects (:func:`heads_from_table`); :class:`goalkit.write.headsampler.HeadSampler`
-draws them.
+draws them at training time, and a build with ``[output] goals = "heads"`` writes them as fixed
+columns (:mod:`goalkit.pipeline.headcols`; :func:`check_fixed_heads` refuses what a built set
+cannot hold, such as in-batch negatives).
 
 For transition ``t`` of an episode with ``T`` transitions (states ``s_0 .. s_T``):
 
@@ -44,6 +46,10 @@ SOURCE_CODES = {"current": 0, "future": 1, "geometric": 2, "random": 3, "negativ
 HEAD_PAST_END = ("clip", "renormalise")
 #: Keys of one ``[heads.NAME]`` table.
 HEAD_KEYS = ("weights", "gamma", "past_end", "steps")
+#: Most heads a built set may carry (each adds a dozen columns).
+MAX_FIXED_HEADS = 64
+#: Sources a built set cannot draw: in-batch negatives need a batch (a training-time notion).
+TRAINING_ONLY_SOURCES = ("negative",)
 #: Names a head may not take: the shared columns of a batch.
 RESERVED_NAMES = ("observation", "action", "next_observation", "reached_goal", "source_episode",
                   "source_step", "task_reward", "termination", "time_limit", "source")
@@ -170,3 +176,28 @@ def heads_from_table(table: Mapping[str, Any], file=None) -> tuple[GoalHead, ...
                 raise RecipeError(exc.message, file=file, key=key) from None
             raise exc.in_recipe(file, key) from None
     return tuple(heads)
+
+
+def check_fixed_heads(heads, file=None) -> None:
+    """Refuse heads a built set (``[output] goals = "heads"``) cannot carry.
+
+    A built set has no batches, so a head drawing in-batch negatives (``negative``) is refused
+    (:class:`goalkit.write.headsampler.HeadSampler` draws them at training time); so are no
+    heads at all and more than :data:`MAX_FIXED_HEADS`.
+
+    Raises
+    ------
+    RecipeError
+        Naming the recipe file and the key (``heads``, ``heads.NAME.weights.negative``).
+    """
+    if not heads:
+        raise RecipeError('goals = "heads" needs at least one [heads.NAME] table', file=file, key="output.goals")
+    if len(heads) > MAX_FIXED_HEADS:
+        raise RecipeError(f"expected at most {MAX_FIXED_HEADS} heads in a built set, got {len(heads)}", file=file,
+                          key="heads")
+    for head in heads:
+        for src in TRAINING_ONLY_SOURCES:
+            if head.weights.get(src, 0) > 0:
+                raise RecipeError(f"in-batch negatives exist only at training time (goalkit.HeadSampler): a built "
+                                  f"set has no batch; give '{src}' weight 0 here or build with goals = \"slots\"",
+                                  file=file, key=f"heads.{head.name}.weights.{src}")

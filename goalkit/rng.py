@@ -30,6 +30,8 @@ STREAMS = {
     "mask": 21,      # goal masks: whether a relabelled row gets a random mask (goalkit.masks)
     "mask_set": 22,  # goal masks: which non-empty subset of the groups it keeps
     "graph": 12,     # graph distances: which goal states get one (goalkit.goals.stategraph)
+    "head_source": 13,  # sets built with goal heads: which goal source a head's goal of a row uses
+    "head_goal": 14,    # sets built with goal heads: where the head's goal comes from (step / state)
 }
 # Stream numbers 1001-1005 are taken by the demo simulator (goalkit.demo.controllers.DEMO_STREAMS).
 

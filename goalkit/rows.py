@@ -131,6 +131,36 @@ GRAPH_STEPS_FIELD = Field("graph_steps", "int64", "",
                           "state; -2 no path within the horizon, -1 not computed (with a [graph] table)")
 # ---- end of graph distances ----
 
+# ---- goal heads in a built set (issue 13): present when the recipe says [output] goals = "heads" ----
+#: Separator of a head column's name: ``FIELD@HEAD`` (for example ``goal@value``).
+HEAD_SEPARATOR = "@"
+#: Columns written once per head, in this order, named ``FIELD@HEAD`` (:func:`head_column`); the
+#: labels use the head's own ``gamma``.
+HEAD_FIELDS = _fields(
+    ("source", "uint8", "", "goal source code of the head's goal (goal source table below)"),
+    ("goal_episode", "int64", "", "episode id the head's goal state comes from"),
+    ("goal_step", "int64", "", "j, the head's goal is phi(s_j)"),
+    ("steps_to_goal", "int64", "", "j - t when the goal is state j >= t of the same episode (0 for a current "
+                                   "goal), else -1"),
+    ("goal", "goal", "goal", "the head's goal g = phi(s_j)"),
+    ("goal_distance", "float32", "", "distance(phi(s_t+1), g) under the reward rule"),
+    ("reward", "float32", "", "R(phi(s_t+1), g)"),
+    ("reached", "uint8", "", "1 when phi(s_t+1) is within the threshold of g"),
+    ("terminal", "uint8", "", "1 when the goal is reached and `end_on_reach` ends the episode"),
+    ("discount_weight", "float32", "", "gamma_h**d (d = steps_to_goal, gamma_h the head's gamma); 0 when d is -1"),
+    ("return_to_goal", "float32", "", "-(1 - gamma_h**d) / (1 - gamma_h); -1 / (1 - gamma_h) when d is -1"),
+    ("bootstrap_mask", "uint8", "", "1 - terminal"),
+)
+#: Per-head goal mask, present with a ``[mask]`` table.
+HEAD_MASK_FIELD = Field("goal_mask", "uint8", "goal", "1 for each goal dimension the head's goal constrains "
+                                                      "(recipes with a [mask] table only)")
+
+
+def head_column(field: str, head: str) -> str:
+    """The stored name of column ``field`` of head ``head``: ``"goal", "value"`` -> ``"goal@value"``."""
+    return f"{field}{HEAD_SEPARATOR}{head}"
+# ---- end of goal heads ----
+
 #: The columns a relabelling strategy fills (the rest come from the logs and the reward rule).
 GOAL_ADDRESS = ("goal_episode", "goal_step", "hop_episode", "hop_step", "join_step", "steps_to_goal")
 #: The columns :func:`goalkit.reward.score` fills, in this order.

@@ -13,6 +13,49 @@ from dataclasses import dataclass
 CODE_NAMES = {0: "original", 1: "final", 2: "future", 3: "episode", 4: "geometric",
               5: "other_episode", 6: "neighbour", 7: "library", 8: "near_miss"}
 NAME_CODES = {v: k for k, v in CODE_NAMES.items()}
+#: Goal-source codes of goal heads as documented in docs/dataset.md (never renumbered).
+HEAD_SOURCE_CODES = {"current": 0, "future": 1, "geometric": 2, "random": 3, "negative": 4, "final": 5,
+                     "episode": 6, "subgoal": 7}
+
+
+@dataclass(frozen=True)
+class AuditHead:
+    """One ``[heads.NAME]`` table as the audit reads it (defaults of docs/recipe.md).
+
+    Attributes
+    ----------
+    name : str
+    shares : dict of int to float
+        Source code -> probability (positive weights only, normalised).
+    gamma : float
+    past_end : str
+        ``clip`` or ``renormalise``.
+    steps : int
+        ``k`` of the subgoal source.
+    """
+
+    name: str
+    shares: dict
+    gamma: float = 0.99
+    past_end: str = "clip"
+    steps: int = 25
+
+
+def _heads(doc) -> tuple:
+    out = []
+    for name, table in dict(doc.get("heads", {})).items():
+        raw = dict(table.get("weights", {"geometric": 1}))
+        unknown = [n for n in raw if n not in HEAD_SOURCE_CODES]
+        if unknown:
+            raise ValueError(f"unknown goal source {unknown[0]!r} in the stored recipe")
+        positive = {HEAD_SOURCE_CODES[n]: float(w) for n, w in raw.items() if float(w) > 0}
+        total = sum(positive.values())
+        if total <= 0:
+            raise ValueError(f"head {name!r} of the stored recipe has no positive weight")
+        out.append(AuditHead(str(name), {c: positive[c] / total for c in sorted(positive)},
+                             float(table.get("gamma", 0.99)), str(table.get("past_end", "clip")),
+                             int(table.get("steps", 25))))
+    return tuple(out)
 
 
 @dataclass(frozen=True)
@@ -53,6 +96,10 @@ class AuditRecipe:
         (None: the logs' dtype).
     source_goals : dict
         Source name -> ``goals_per_transition`` of the ``[[sources]]`` that give their own.
+    goal_layout : str
+        ``[output] goals``: ``slots`` or ``heads`` (one row per transition, head columns).
+    heads : tuple of AuditHead
+        The ``[heads.NAME]`` tables, in the recipe's order (a head's position is its slot).
     """
 
     weights: dict
@@ -78,6 +125,8 @@ class AuditRecipe:
     observation_dtype: str | None = None
     action_dtype: str | None = None
     source_goals: dict = None
+    goal_layout: str = "slots"
+    heads: tuple = ()
 
 
 def parse_audit_recipe(text: str) -> AuditRecipe:
@@ -97,9 +146,10 @@ def parse_audit_recipe(text: str) -> AuditRecipe:
     thr = reward["threshold"] if "threshold" in reward or reward.get("distance") != "region" else 0.0
     thr = tuple(float(x) for x in thr) if isinstance(thr, list) else float(thr)
     w = reward.get("weights")
+    layout = str(doc.get("output", {}).get("goals", "slots"))
     return AuditRecipe(
         weights={c: positive[c] / total for c in sorted(positive)},
-        goals_per_transition=int(relabel.get("goals_per_transition", 4)),
+        goals_per_transition=int(relabel.get("goals_per_transition", 1 if layout == "heads" else 4)),
         gamma=float(relabel.get("gamma", 0.9)),
         past_end=str(relabel.get("past_end", "clip")),
         distance=str(reward.get("distance", "euclidean")),
@@ -122,4 +172,6 @@ def parse_audit_recipe(text: str) -> AuditRecipe:
         action_dtype=doc.get("output", {}).get("action_dtype"),
         source_goals={str(t["name"]): int(t["goals_per_transition"]) for t in doc.get("sources", [])
                       if isinstance(t, dict) and "goals_per_transition" in t},
+        goal_layout=layout,
+        heads=_heads(doc) if layout == "heads" else (),
     )

@@ -10,6 +10,7 @@ from types import SimpleNamespace
 import numpy as np
 
 from goalkit.audit.graphcheck import GraphAudit
+from goalkit.audit.headaudit import HeadAudit
 from goalkit.audit.laws import geometric_law, uniform_law
 from goalkit.audit.maskrules import MaskAudit
 from goalkit.audit.recipe_text import CODE_NAMES, parse_audit_recipe
@@ -286,6 +287,7 @@ class _Auditor:
         self.masks = None if rc.mask is None else MaskAudit(rc.mask, logs.goal_map.dim, logs.field_widths)
         self.graph = GraphAudit(logs, rc.graph) if rc.graph is not None else None
         self.summary_sources = None
+        self.heads = HeadAudit(rc, logs, self.draws, seed, self.masks) if rc.heads else None
 
     # ---- failures ------------------------------------------------------------------------
     def violated(self, rule, message, mask, split, row0, c):
@@ -405,6 +407,12 @@ class _Auditor:
         n = b - a
         if self.graph is not None:
             self.graph.add(split, a, c, grp["graph_steps"][a:b] if "graph_steps" in grp else None)
+        if self.heads is not None:
+            lacking = self.heads.missing(grp)
+            if lacking:
+                self.violated("head columns", f"the recipe builds goal heads but the set has no column {lacking[0]}",
+                              np.ones(b - a, bool), split, a, c)
+                return
         v = self.jitter.random((n, 3))
         self.report.rows[split] += n
         ep, t, slot = c["source_episode"], c["source_step"], c["slot"]
@@ -433,6 +441,18 @@ class _Auditor:
         self.violated("source slot", "slot outside 0 .. goals_per_transition - 1 of the episode's source",
                       (slot < 0) | (slot >= k), split, a, c)
         T = logs.lengths[pos]
+        if self.heads is not None:
+            keep = known
+            inside_all = (t >= 0) & (t < T)
+            if not inside_all.all():   # rows outside their episode are reported above; heads audit the rest
+                keep = known.copy()
+                keep[np.flatnonzero(known)[~inside_all]] = False
+            rows = np.flatnonzero(inside_all)
+            sub = {k: val[rows] for k, val in c.items()}
+            tasks = (logs.achieved_and_task_goal(ep[rows], t[rows])[3] if self.masks is not None and len(rows)
+                     else None)
+            self.heads.block(self.f[split], a, b, keep, ep[rows], t[rows], T[rows], self.members[split],
+                             lambda rule, message, mask: self.violated(rule, message, mask, split, a, sub), tasks)
         other = np.where(c["hop_episode"] >= 0, c["hop_episode"], c["goal_episode"])
         T_goal = logs.length_of(other)
         same_split = np.isin(other, self.members[split])
@@ -560,6 +580,8 @@ class _Auditor:
         out.append(grid_chi2_check("slot pairs: independent draws", d.grid, "PIT pairs of slots (2k, 2k+1)"))
         if self.masks is not None:
             out.append(self.masks.check())
+        if self.heads is not None:
+            out.extend(self.heads.checks())
         return [c for c in out if c is not None]
 
 

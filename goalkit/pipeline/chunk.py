@@ -8,10 +8,12 @@ import numpy as np
 
 from goalkit.goals.stategraph import graph_steps
 from goalkit.pipeline.casts import cast_problem, first_row
+from goalkit.pipeline.headcols import head_rows
+from goalkit.pipeline.labels import row_labels
 from goalkit.pipeline.plan import SLOT_SPAN
 from goalkit.relabel.strategies import STRATEGIES
 from goalkit.reward import score
-from goalkit.rows import END_FLAG_SOURCES, GOAL_ADDRESS, LABEL_COLUMNS, SPLITS
+from goalkit.rows import END_FLAG_SOURCES, GOAL_ADDRESS, SPLITS
 from goalkit.write.gather import RowGather
 
 
@@ -55,36 +57,6 @@ def goal_vectors(plan, chunk, phi_chunk, rows, src_pos, src_ep) -> np.ndarray:
         g = plan.global_state_rows(rows.goal_episode[cross], rows.goal_step[cross])
         out[cross] = plan.goal_table[g]
     return out
-
-
-def row_labels(steps_to_goal, gamma, terminal) -> dict:
-    """The training-label columns of rows (:data:`goalkit.rows.LABEL_COLUMNS`), in stored dtypes.
-
-    With ``d = steps_to_goal``: ``discount_weight = gamma**d`` and ``return_to_goal =
-    -(1 - gamma**d) / (1 - gamma)`` (reward -1 per step over the ``d`` steps to the goal state)
-    where ``d >= 0``; where ``d`` is -1 (the log shows no path to the goal: other episodes,
-    external goals, earlier states) the limits as ``d`` grows, 0 and ``-1 / (1 - gamma)``.
-    ``bootstrap_mask = 1 - terminal``. Computed in float64, stored as float32.
-
-    Parameters
-    ----------
-    steps_to_goal : array_like of int
-    gamma : float or array_like
-        Discount in (0, 1), broadcast against ``steps_to_goal``.
-    terminal : array_like of bool or uint8
-
-    Examples
-    --------
-    >>> cols = row_labels(np.array([10, -1]), 0.99, np.array([0, 1], np.uint8))
-    >>> [round(float(x), 4) for x in cols["return_to_goal"]], cols["bootstrap_mask"].tolist()
-    ([-9.5618, -100.0], [1, 0])
-    """
-    steps = np.asarray(steps_to_goal)
-    gamma = np.asarray(gamma, dtype=np.float64)
-    weight = np.where(steps >= 0, np.exp(steps * np.log(gamma)), 0.0)
-    ret = (weight - 1.0) / (1.0 - gamma)
-    mask = np.asarray(terminal) == 0
-    return dict(zip(LABEL_COLUMNS, (weight.astype(np.float32), ret.astype(np.float32), mask.view(np.uint8))))
 
 
 def relabel_chunk(plan, chunk, defer_gathers: bool = False) -> ChunkRows:
@@ -180,6 +152,10 @@ def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gather
         cols["source"] = np.take(chunk.sources, src_pos, axis=0).astype(np.uint16)
     if mask is not None:
         cols["goal_mask"] = mask
+    if plan.recipe.output.goals == "heads":  # one column group per goal head (goalkit.pipeline.headcols)
+        tasks = None if chunk.task_ids is None else np.take(chunk.task_ids, src_pos)
+        code = int(plan.splits[first + src_pos[0]]) if len(src_pos) else 0
+        cols.update(head_rows(plan, chunk, phi_chunk, code, src_pos, src_ep, src_step, achieved, tasks))
     if plan.graph is not None:  # graph distances (goalkit.goals.stategraph; issue 15)
         spec = plan.recipe.graph
         always = rows.strategy == STRATEGIES["neighbour"].code if spec.guard_neighbours else None

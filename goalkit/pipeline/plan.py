@@ -19,6 +19,8 @@ from goalkit.logs.layout import load_layout
 from goalkit.masks import field_groups
 from goalkit.pipeline.casts import StoredDtypes, file_table
 from goalkit.pipeline.goal import make_goal_map
+from goalkit.pipeline.headcols import head_columns_spec
+from goalkit.pipeline.headcols import needs_goal_table as heads_need_table
 from goalkit.pipeline.searchsetup import attach_searches
 from goalkit.pipeline.split import split_codes
 from goalkit.relabel import RelabelContext
@@ -136,6 +138,8 @@ def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_t
         cols[GOAL_MASK_COLUMN[0]] = (np.dtype(GOAL_MASK_COLUMN[1]), (goal_dim,))
     if getattr(recipe, "graph", None) is not None:
         cols[GRAPH_STEPS_FIELD.name] = (np.dtype(GRAPH_STEPS_FIELD.dtype), ())
+    if recipe.output.goals == "heads":
+        cols.update(head_columns_spec(recipe.heads, goal_dtype, goal_dim, recipe.masks is not None))
     return cols
 
 
@@ -260,7 +264,8 @@ def make_plan(recipe, source=None, max_transitions: int = 200_000) -> tuple[Buil
                     [name for name, attr in END_FLAG_SOURCES.items() if getattr(first, attr) is not None],
                     bool(recipe.named_sources))
     table = None
-    if needs_goal_table(recipe.mixture) or recipe.graph is not None:
+    heads_table = recipe.output.goals == "heads" and heads_need_table(recipe.heads)
+    if needs_goal_table(recipe.mixture) or recipe.graph is not None or heads_table:
         table = goal_table(source, goal_map, dtypes, max_transitions)
     if table is not None:
         context = attach_searches(recipe, context, table, goal_map, ids, lengths, splits)

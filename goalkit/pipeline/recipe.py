@@ -16,7 +16,7 @@ from goalkit.config import check_keys, expect_type, parse_toml, read_text_file
 from goalkit.archive import InlineLayout, SourceSpec, is_pattern
 from goalkit.errors import ParameterError, RecipeError, shown
 from goalkit.graphconfig import GraphSpec
-from goalkit.heads import heads_from_table
+from goalkit.heads import check_fixed_heads, heads_from_table
 from goalkit.masks import MaskSpec
 from goalkit.outputs import small_toml
 from goalkit.pipeline.casts import FLOAT_DTYPES, INT_DTYPES
@@ -34,11 +34,14 @@ SOURCE_KEYS = ("name", "path", "layout", "skip_bad_episodes", "goals_per_transit
 MAX_SOURCE_NAME = 64
 GOAL_KEYS = ("fields", "indices", "embedding", "dtype")
 SPLIT_KEYS = ("validation", "salt")
-OUTPUT_KEYS = ("path", "mode", "compression", "chunk_rows", "observation_dtype", "action_dtype")
+OUTPUT_KEYS = ("path", "mode", "compression", "chunk_rows", "observation_dtype", "action_dtype", "goals")
 GOAL_DTYPES = FLOAT_DTYPES
 #: Dtypes ``[output] action_dtype`` takes (integer ones only for logs whose actions are integers).
 ACTION_DTYPES = FLOAT_DTYPES + INT_DTYPES
 MODES = ("materialised", "indexed")
+#: Values of ``[output] goals``: ``slots`` (goals_per_transition rows per transition, one goal
+#: each) or ``heads`` (one row per transition, one column group per ``[heads.NAME]`` table).
+GOAL_LAYOUTS = ("slots", "heads")
 #: Compressions a build writes: with each, a recipe gives the same bytes whatever the producer,
 #: worker count or chunk size.
 COMPRESSIONS = ("gzip", "none")
@@ -84,6 +87,7 @@ class OutputSpec:
     observation_dtype: str | None = None
     #: Stored dtype of action (None: the logs' dtype).
     action_dtype: str | None = None
+    goals: str = "slots"
 
 
 @dataclass(frozen=True)
@@ -112,7 +116,7 @@ class Recipe:
     output : OutputSpec
     heads : tuple of goalkit.heads.GoalHead
         The optional ``[heads.NAME]`` tables: goal heads of the multi-head training sampler
-        (a build ignores them).
+        (a build writes them as columns only with ``[output] goals = "heads"``).
     sources : tuple of SourceSpec, optional
         The logs as several files and/or sources (``[logs] path`` a list, a glob or a folder of
         log files, or ``[[sources]]``); None for one log file or per-file folder, read by
@@ -280,9 +284,13 @@ def _parse_output(table, base, file, stored: bool = False) -> OutputSpec:
                                   f"the logs); expected {key} only with mode = \"materialised\"", file=file,
                                   key=f"output.{key}")
             dtypes[key] = value
+    goals = table.get("goals", "slots")
+    if goals not in GOAL_LAYOUTS:
+        raise RecipeError(f"expected one of {', '.join(GOAL_LAYOUTS)}, got {shown(goals)}", file=file,
+                          key="output.goals")
     return OutputSpec(path=_path(table["path"], base, file, "output.path", resolve=False), mode=mode,
                       compression=comp,
-                      chunk_rows=rows, **dtypes)
+                      chunk_rows=rows, goals=goals, **dtypes)
 
 
 def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored: bool = False) -> Recipe:
@@ -369,6 +377,18 @@ def parse_recipe(text: str, file="<recipe>", base: Path | None = None, *, stored
             raise RecipeError("every source gets 0 goal rows per transition, so the set would be empty; expected "
                               "at least one source with goals_per_transition >= 1", file=file,
                               key="sources[0].goals_per_transition")
+    if output.goals == "heads":  # one row per transition, the heads' goals in columns
+        check_fixed_heads(heads, file)
+        given = _table(doc, "relabel", file).get("goals_per_transition", 1)
+        if given != 1:
+            raise RecipeError(f"expected goals_per_transition = 1 (or none) with [output] goals = \"heads\" (one "
+                              f"row per transition), got {shown(given)}", file=file,
+                              key="relabel.goals_per_transition")
+        mixture = replace(mixture, goals_per_transition=1)
+    if output.goals == "heads" and source_goals is not None:
+        raise RecipeError("per-source goals_per_transition needs one goal row per slot; expected it only with "
+                          "[output] goals = \"slots\" (a build with goal heads writes one row per transition)",
+                          file=file, key="output.goals")
     return Recipe(text=text, file=str(file), seed=seed, logs_path=logs_path, layout_path=layout_path,
                   skip_bad_episodes=skip, goal=goal, mixture=mixture, reward=reward,
                   validation=validation, salt=salt, output=output, heads=heads,

@@ -13,6 +13,7 @@ import numpy as np
 
 from goalkit import rng
 from goalkit.pipeline.graphsummary import GraphSummary
+from goalkit.pipeline.headsummary import HeadSummary
 from goalkit.rows import SPLITS
 
 #: About this many rows' distances are kept (a hash-chosen sample) for the quantiles.
@@ -61,6 +62,7 @@ class SummaryBuilder:
         self.mask_dims: np.ndarray | None = None   # rows constraining each goal dimension
         self.mask_full = 0                          # rows constraining every dimension
         self.graph = GraphSummary(strategy_names)
+        self.heads = HeadSummary()
 
     def add(self, split: str, cols: dict, keys: np.ndarray) -> None:
         """Count the rows of one chunk and split."""
@@ -87,6 +89,7 @@ class SummaryBuilder:
             self.mask_dims = dims if self.mask_dims is None else self.mask_dims + dims
             self.mask_full += int(m.all(axis=1).sum())
         self.graph.add(split, cols)
+        self.heads.add(cols)
 
     def result(self) -> dict:
         """Return the summary as a JSON-able dict."""
@@ -118,6 +121,7 @@ class SummaryBuilder:
             out["region"] = {"lower": list(self.rule.lower), "upper": list(self.rule.upper),
                              "margin": float(self.rule.threshold)}
         out.update(self.graph.result())
+        out.update(self.heads.result())
         return out
 
     def composition(self) -> dict:

@@ -28,7 +28,8 @@ from goalkit.write.reader import open_set
 
 #: Columns cast by default (float32 is what networks take; the log source as int64, the index
 #: dtype of embedding look-ups, where PyTorch supports few operations on uint16); others keep
-#: their stored dtype (the end flags ``termination`` / ``time_limit`` stay uint8).
+#: their stored dtype (the end flags ``termination`` / ``time_limit`` stay uint8). A head
+#: column ``FIELD@HEAD`` (sets built with goal heads) is cast as its ``FIELD`` unless named itself.
 DEFAULT_DTYPES = {"observation": "float32", "next_observation": "float32", "goal": "float32",
                   "reached_goal": "float32", "goal_distance": "float32", "reward": "float32",
                   "source": "int64"}
@@ -132,10 +133,25 @@ def _dtypes(dtypes, path=None) -> dict:
         raise DatasetError(f"dtypes: {exc}") from None
 
 
+def _cast_of(name: str, dtypes: dict):
+    """The cast of column ``name``: its own entry, else for a head column ``FIELD@HEAD`` its field's."""
+    if name in dtypes:
+        return dtypes[name]
+    field, sep, _ = name.partition("@")
+    return dtypes.get(field) if sep else None
+
+
 def _cast(batch: dict, dtypes: dict) -> dict:
-    """Cast the columns named in ``dtypes``; a nested dict (a goal head's columns) by the same names."""
-    return {k: _cast(v, dtypes) if isinstance(v, dict) else cast_checked(k, v, dtypes[k]) if k in dtypes else v
-            for k, v in batch.items()}
+    """Cast the columns named in ``dtypes`` (a head column ``FIELD@HEAD`` as its ``FIELD``); a nested
+    dict (a goal head's columns in a sampler batch) by the same names."""
+    out = {}
+    for k, v in batch.items():
+        if isinstance(v, dict):
+            out[k] = _cast(v, dtypes)
+            continue
+        dt = _cast_of(k, dtypes)
+        out[k] = v if dt is None else cast_checked(k, v, dt)
+    return out
 
 
 class NumpyBatches:

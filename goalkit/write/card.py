@@ -223,6 +223,13 @@ def render(facts: dict, png_name: str, coverage: dict | None = None, graph_png: 
                  for i, lo in enumerate(h["low"])]
         hrows.append(["none (goal from elsewhere or the transition itself)", h["none"]["train"], h["none"]["validation"]])
         L += _table(["steps to goal", *SPLITS], hrows)
+    if facts.get("heads"):
+        L += ["Goal heads (`[output] goals = \"heads\"`: one row per transition, one goal per head in the "
+              "columns FIELD@HEAD; docs/dataset.md):", ""]
+        L += _table(["head", "source", "rows", "reached", "reached share", "gamma", "past end", "subgoal steps"],
+                    [[h_["name"], src, c["rows"], c["reached"], _share(c["reached"], c["rows"]), f"{h_['gamma']:g}",
+                      h_["past_end"], h_["steps"] if src == "subgoal" else "-"]
+                     for h_ in facts["heads"] for src, c in h_["sources"].items()])
     if not (by and d and h):
         L += ["Per-split composition: not stored in this set (built before goalkit stored it).", ""]
     # coverage

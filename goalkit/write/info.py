@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import os
 import shlex
+import tomllib
 from pathlib import Path
 
 from goalkit.rows import SPLITS
@@ -58,7 +59,7 @@ def set_facts(path) -> dict:
         observation, action, next_observation and goal columns; None where not stored), ``rows``,
         ``by_source`` (recipes with ``[[sources]]``: per source episodes, transitions, goal rows per
         transition and rows per split; else None), ``episodes``,
-        ``strategies``, ``reached_fraction``, ``by_split``, ``goal_distance_histogram``,
+        ``strategies``, ``heads``, ``reached_fraction``, ``by_split``, ``goal_distance_histogram``,
         ``horizon_histogram``, ``goal_distance_quantiles``, ``sources``, ``limits``,
         ``safety``, ``not_stored`` (names of the facts this set does not hold).
 
@@ -108,6 +109,7 @@ def set_facts(path) -> dict:
             "episodes": episodes,
             "transitions": prov.get("transitions"),
             "strategies": summary.get("strategies"),
+            "heads": head_facts(summary.get("heads"), gs.recipe),
             "reached_fraction": summary.get("reached_fraction"),
             "by_split": comp.get("by_split"),
             "goal_distance_histogram": comp.get("goal_distance_histogram"),
@@ -131,6 +133,40 @@ def set_facts(path) -> dict:
         missing.append("widths")
     facts["not_stored"] = missing
     return facts
+
+
+def head_facts(counts, recipe_text: str):
+    """Goal heads of a set built with ``[output] goals = "heads"`` (None otherwise).
+
+    ``[{"name", "rows", "reached_fraction", "sources": {source: {"rows", "reached"}}, "weights",
+    "gamma", "past_end", "steps"}, ...]`` in the heads' order: the summary's counts with the head's ``[heads.NAME]`` table
+    from the stored recipe (defaults of docs/recipe.md where a key is not written).
+    """
+    if not counts:
+        return None
+    try:
+        tables = tomllib.loads(recipe_text).get("heads", {})
+    except (tomllib.TOMLDecodeError, TypeError):
+        tables = {}
+    out = []
+    for c in counts:
+        t = tables.get(c["name"], {}) if isinstance(tables, dict) else {}
+        out.append({**c, "weights": t.get("weights", {"geometric": 1}), "gamma": t.get("gamma", 0.99),
+                     "past_end": t.get("past_end", "clip"), "steps": t.get("steps", 25)})
+    return out
+
+
+def heads_lines(heads) -> list[str]:
+    """One line per goal head: source shares, discount, past-end rule, subgoal steps, reached share."""
+    out = []
+    for h in heads or []:
+        name = h["name"]
+        total = max(int(h["rows"]), 1)
+        shares = ", ".join(f"{src} {c['rows'] / total:.1%}" for src, c in h["sources"].items())
+        extra = f", subgoal k = {h['steps']}" if "subgoal" in h["sources"] else ""
+        out.append(f"{name}: {shares}; gamma {h['gamma']:g}, {h['past_end']}{extra}; reached "
+                   f"{h['reached_fraction']:.1%} (columns FIELD@{name})")
+    return out
 
 
 def rebuild_command(facts: dict) -> str | None:
@@ -212,6 +248,9 @@ def format_info(facts: dict) -> str:
         lines.append(f"  source {name}: {v['episodes']:,} episodes, {v['transitions']:,} transitions"
                      + (f", {k} goal rows each" if k is not None else "")
                      + f", rows {v['rows']['train']:,} train / {v['rows']['validation']:,} validation")
+    if facts.get("heads"):
+        lines.append("  heads (one row per transition, a goal per head):")
+        lines += [f"    {line}" for line in heads_lines(facts["heads"])]
     h = facts["horizon_histogram"]
     if h:
         for s in SPLITS:

@@ -6,7 +6,8 @@ import ast
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[2]
-FORBIDDEN = ("goalkit.relabel", "goalkit.reward", "goalkit.pipeline.chunk", "goalkit.write.rules")
+FORBIDDEN = ("goalkit.relabel", "goalkit.reward", "goalkit.pipeline.chunk", "goalkit.write.rules",
+             "goalkit.pipeline.headcols", "goalkit.pipeline.labels", "goalkit.heads")
 
 
 def _module_file(name: str) -> Path | None:
