@@ -189,8 +189,8 @@ class ReuseProducer:
         self.folder = WorkFolder(output)
         self.reason = None
         self.keys = []
-        self.ready = {}
-        self.opened = False
+        self.ready = set()
+        self.reused = set()
 
     def plan_chunks(self, plan, source, transitions: int) -> list[ShardSpec]:
         """The build's chunks: units that never span two log files (:func:`plan_units`)."""
@@ -201,9 +201,8 @@ class ReuseProducer:
         self.plan, self.source, self.chunks = plan, source, chunks
         self.columns = list(plan.columns)
         self.reason = refusal(plan.recipe)
-        self.folder.open()
-        self.opened = True
-        if self.reason is None:
+        if self.reason is None:   # else the work folder is left as it is
+            self.folder.open()
             self.keys = unit_keys(plan, source, chunks, inputs.result())
             self.ready = {s.index for s, k in zip(chunks, self.keys) if self.folder.has(k)}
         pending = [s for s in chunks if s.index not in self.ready]
@@ -213,7 +212,6 @@ class ReuseProducer:
         """Yield ``(spec, ChunkRows)`` for every unit in order; ``count`` runs here, in order."""
         offsets = self.plan.transition_offsets
         computed = self.inner.rows(lambda rows: None)
-        self.reused = set()
         for i, spec in enumerate(self.chunks):
             base = int(offsets[spec.start]) * SLOT_SPAN
             rows = None
@@ -263,10 +261,10 @@ class ReuseProducer:
 
     def reuse_info(self) -> dict:
         """``{"episodes": {"reused", "new"}, "units": {...}, "folder", "files", "bytes", "reason"}``."""
-        reused = getattr(self, "reused", set())
+        reused = self.reused
         eps = sum(s.stop - s.start for s in self.chunks if s.index in reused)
         total = sum(s.stop - s.start for s in self.chunks)
-        files, size = self.folder.size()
+        files, size = self.folder.size() if self.reason is None else (0, 0)
         return {"episodes": {"reused": eps, "new": total - eps},
                 "units": {"reused": len(reused), "computed": len(self.chunks) - len(reused)},
                 "folder": str(self.folder.path), "files": files, "bytes": size, "reason": self.reason}

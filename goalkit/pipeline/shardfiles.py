@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import zipfile
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -247,7 +248,7 @@ def read_shard(folder, spec: ShardSpec, build_key: str, column_order, path=None)
                     keys[split], cols[split] = _unpack_split(z, split, column_order)
     except ShardError:
         raise
-    except (OSError, KeyError, ValueError, EOFError) as exc:
+    except (OSError, KeyError, ValueError, EOFError, zipfile.BadZipFile) as exc:
         raise ShardError(f"{spec.describe()}: unreadable shard file ({exc})", file=path) from None
     rows = ChunkRows(cols, keys)
     if rows_digest(rows, column_order) != meta.get("sha256"):
