@@ -8,6 +8,7 @@ from goalkit.cli_support import ChunkProgress, command_line, echo_json, on_inter
 from goalkit.errors import GoalkitError
 from goalkit.pipeline.build import build as run_build
 from goalkit.pipeline.buildfolder import folder_of
+from goalkit.pipeline.workfolder import work_folder_of
 from goalkit.pipeline.recipe import load_recipe
 from goalkit.pipeline.graphsummary import summary_lines as graph_lines
 from goalkit.pipeline.searchsetup import summary_lines
@@ -141,7 +142,11 @@ def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, replace, k
         if written and not no_card:  # interrupted while the card was being written
             return (f"the set was written at {out_path}; its dataset card was not (write it with "
                     f"goalkit.write_card, or rerun with --replace)")
-        return interrupted_note(out_path, sharded=bool(workers or scheduler), cluster=scheduler is not None)
+        note = interrupted_note(out_path, sharded=bool(workers or scheduler), cluster=scheduler is not None)
+        if keep_work:
+            note += (f"; the rows of finished units stay in {work_folder_of(out_path)}/ for the next "
+                     f"build with --keep-work")
+        return note
 
     on_interrupt(note)
     with ChunkProgress("build", quiet=quiet) as bar:

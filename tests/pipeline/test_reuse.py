@@ -247,3 +247,15 @@ def test_one_file_recipe_reuses_when_unchanged(tmp_path):
     again = build(load_recipe(rec), keep_work=True, replace=True, card=False)
     assert again.reuse["episodes"] == {"reused": 9, "new": 0}
     assert sha(again.path) == fresh_sha(rec)
+
+
+def test_new_source_appended_to_the_recipe_reuses_the_others(tmp_path):
+    total = archive(tmp_path)
+    rec = recipe(tmp_path)
+    build(rec, keep_work=True, card=False)
+    write(tmp_path / "night-day1.npz", episodes(12, 6))
+    rec.write_text(rec.read_text().replace(
+        "\n[goal]", '[[sources]]\nname = "night"\npath = "night-*"\nlayout = "layout.toml"\n\n[goal]', 1))
+    again = build(rec, keep_work=True, replace=True, card=False)
+    assert again.reuse["episodes"] == {"reused": total, "new": 6}
+    assert sha(again.path) == fresh_sha(rec)
