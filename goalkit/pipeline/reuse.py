@@ -122,15 +122,19 @@ def build_record(plan, inputs) -> str:
     })
 
 
-def unit_keys(plan, source, units, inputs) -> list[str]:
-    """The key of each unit (see the module notes)."""
+def unit_keys(plan, source, units, inputs) -> list[str] | None:
+    """The key of each unit (see the module notes); None when the logs cannot say which file
+    holds each episode (then nothing is reused)."""
     common = build_record(plan, inputs).encode()
     digests = [f["sha256"] for f in inputs.log_files]
+    parts = _parts(source)
+    if sum(p[2] for p in parts) != len(digests) or parts[-1][1] != len(plan.episode_ids):
+        return None
     recipe = plan.recipe
     _, tables = _recipe_without_paths(recipe.text)
     texts = layout_texts(recipe, source) if recipe.sources is not None else {}
     part_info, where, n_files = [], np.zeros(len(plan.episode_ids), np.int64), 0
-    for k, (first, stop, files, local, code, _) in enumerate(_parts(source)):
+    for k, (first, stop, files, local, code, _) in enumerate(parts):
         files_digest = digests[n_files:n_files + files]
         n_files += files
         table = tables[code] if code is not None and code < len(tables) else {}
@@ -201,9 +205,12 @@ class ReuseProducer:
         self.plan, self.source, self.chunks = plan, source, chunks
         self.columns = list(plan.columns)
         self.reason = refusal(plan.recipe)
+        if self.reason is None:
+            self.keys = unit_keys(plan, source, chunks, inputs.result())
+            if self.keys is None:
+                self.reason = "the logs do not say which file holds each episode"
         if self.reason is None:   # else the work folder is left as it is
             self.folder.open()
-            self.keys = unit_keys(plan, source, chunks, inputs.result())
             self.ready = {s.index for s, k in zip(chunks, self.keys) if self.folder.has(k)}
         pending = [s for s in chunks if s.index not in self.ready]
         self.inner.open(plan, source, pending, inputs)
