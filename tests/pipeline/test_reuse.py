@@ -35,7 +35,7 @@ geometric = 1
 [reward]
 threshold = {threshold}
 [split]
-validation = 0.3
+validation = {validation}
 [output]
 path = "set.h5"
 mode = "materialised"
@@ -60,12 +60,12 @@ def write(path, eps):
             f["obs"], f["act"], f["ids"] = obs, act, ids
 
 
-def recipe(d: Path, threshold=0.4, extra="") -> Path:
+def recipe(d: Path, threshold=0.4, extra="", validation=0.3) -> Path:
     """Three named sources, each a glob of its files."""
     (d / "layout.toml").write_text(LAYOUT)
     logs = "".join(f'[[sources]]\nname = "{n}"\npath = "{n}-*"\nlayout = "layout.toml"\n' for n in SOURCES)
     p = d / "recipe.toml"
-    p.write_text("version = 1\nseed = 5\n" + logs + TAIL.format(threshold=threshold, extra=extra))
+    p.write_text("version = 1\nseed = 5\n" + logs + TAIL.format(threshold=threshold, extra=extra, validation=validation))
     return p
 
 
@@ -112,7 +112,9 @@ def test_changed_old_file_is_relabelled(tmp_path):
     total = archive(tmp_path)
     rec = recipe(tmp_path)
     build(rec, keep_work=True, card=False)
-    write(tmp_path / "scripted-day1.npz", episodes(40, 7))     # same name and count, other content
+    eps = episodes(4, 7)                                         # the file's episodes, one value moved:
+    eps[3][0][1, 0] += 0.25                                      # same name, count and lengths
+    write(tmp_path / "scripted-day1.npz", eps)
     again = build(rec, keep_work=True, replace=True, card=False)
     assert again.reuse["episodes"] == {"reused": total - 7, "new": 7}
     assert sha(again.path) == fresh_sha(rec)
@@ -120,9 +122,10 @@ def test_changed_old_file_is_relabelled(tmp_path):
 
 def test_file_sorting_before_old_ones_moves_only_that_sources_later_files(tmp_path):
     """Ids are positions in a source's files: a file sorting first moves the source's later
-    episodes (their random draws change, so they are relabelled); other sources keep theirs."""
+    episodes (their random draws change, so they are relabelled); other sources keep theirs.
+    One split only, so that the moved episodes differ from the kept ones by their ids alone."""
     total = archive(tmp_path)
-    rec = recipe(tmp_path)
+    rec = recipe(tmp_path, validation=0.0)
     build(rec, keep_work=True, card=False)
     write(tmp_path / "teleop-day0.npz", episodes(7, 3))       # sorts before teleop-day1 and day2
     again = build(rec, keep_work=True, replace=True, card=False)
@@ -194,6 +197,15 @@ def test_work_folder_link_refused_and_foreign_files_kept(tmp_path):
     assert (tmp_path / ".set.h5.work" / "notes.txt").read_text() == "mine"
 
 
+def test_cli_says_why_nothing_is_reused(tmp_path):
+    total = archive(tmp_path)
+    rec = recipe(tmp_path, extra="other_episode = 1")
+    r = CliRunner().invoke(cli_main, ["build", str(rec), "--keep-work", "--no-card"])
+    assert r.exit_code == 0, r.output
+    assert (f"reuse: 0 episodes reused (strategy other_episode takes goals from other episodes), "
+            f"{total} relabelled") in r.output
+
+
 def test_cli_reports_reused_and_new(tmp_path):
     total = archive(tmp_path)
     rec = recipe(tmp_path)
@@ -208,9 +220,11 @@ def test_cli_reports_reused_and_new(tmp_path):
     assert "work folder" in r.output and ".set.h5.work" in r.output
 
 
-@settings(max_examples=6, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(max_examples=8, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(lengths=st.lists(st.integers(1, 6), min_size=2, max_size=9), data=st.data())
 def test_appending_files_then_rebuilding_equals_a_fresh_build(tmp_path_factory, lengths, data):
+    """Random episodes cut into random files of two sources (HDF5 or NPZ each); the first files
+    are built, the rest appended (they sort after the old files of their source), then rebuilt."""
     d = tmp_path_factory.mktemp("grow")
     r = np.random.default_rng(len(lengths))
     eps = [(r.normal(size=(t + 1, 3)), r.normal(size=(t, 2))) for t in lengths]
@@ -219,21 +233,27 @@ def test_appending_files_then_rebuilding_equals_a_fresh_build(tmp_path_factory, 
     files = [eps[a:b] for a, b in zip([0, *cuts], [*cuts, n])]
     kinds = data.draw(st.lists(st.sampled_from(["h5", "npz"]), min_size=len(files), max_size=len(files)),
                       label="kinds")
+    owner = data.draw(st.lists(st.sampled_from(["nozzle", "tray"]), min_size=len(files), max_size=len(files)),
+                      label="source of each file")
     old = data.draw(st.integers(1, len(files)), label="files present at first")
     (d / "layout.toml").write_text(LAYOUT)
-    rec = d / "recipe.toml"
-    rec.write_text('version = 1\nseed = 3\n[logs]\npath = "logs"\nlayout = "layout.toml"\n'
-                   + TAIL.format(threshold=0.4, extra=""))
     (d / "logs").mkdir()
-    names = [d / "logs" / f"part{i:02d}.{k}" for i, k in enumerate(kinds)]
+    logs = "".join(f'[[sources]]\nname = "{n}"\npath = "logs/{n}-*"\nlayout = "layout.toml"\n'
+                   for n in ("nozzle", "tray"))
+    rec = d / "recipe.toml"
+    names = [d / "logs" / f"{o}-part{i:02d}.{k}" for i, (o, k) in enumerate(zip(owner, kinds))]
     for p, part in zip(names[:old], files[:old]):
         write(p, part)
+    for o in ("nozzle", "tray"):      # a source needs a file: an empty-handed one gets its first now
+        if o not in owner[:old]:
+            write(d / "logs" / f"{o}-part00-first.npz", episodes(len(lengths), 2))
+    present = sum(len(f) for f in files[:old]) + 2 * sum(o not in owner[:old] for o in ("nozzle", "tray"))
+    rec.write_text("version = 1\nseed = 3\n" + logs + TAIL.format(threshold=0.4, extra="", validation=0.3))
     build(rec, keep_work=True, card=False)
-    for p, part in zip(names[old:], files[old:]):     # appended: they sort after the old files
+    for p, part in zip(names[old:], files[old:]):     # appended: they sort after their source's old files
         write(p, part)
     grown = build(rec, keep_work=True, replace=True, card=False)
-    assert grown.reuse["episodes"] == {"reused": sum(len(f) for f in files[:old]),
-                                       "new": sum(len(f) for f in files[old:])}
+    assert grown.reuse["episodes"] == {"reused": present, "new": sum(len(f) for f in files[old:])}
     assert sha(grown.path) == fresh_sha(rec)
 
 
@@ -242,7 +262,7 @@ def test_one_file_recipe_reuses_when_unchanged(tmp_path):
     (tmp_path / "layout.toml").write_text(LAYOUT)
     rec = tmp_path / "recipe.toml"
     rec.write_text('version = 1\nseed = 3\n[logs]\npath = "all.h5"\nlayout = "layout.toml"\n'
-                   + TAIL.format(threshold=0.4, extra=""))
+                   + TAIL.format(threshold=0.4, extra="", validation=0.3))
     build(rec, keep_work=True, card=False)
     again = build(load_recipe(rec), keep_work=True, replace=True, card=False)
     assert again.reuse["episodes"] == {"reused": 9, "new": 0}
