@@ -279,3 +279,38 @@ def test_new_source_appended_to_the_recipe_reuses_the_others(tmp_path):
     again = build(rec, keep_work=True, replace=True, card=False)
     assert again.reuse["episodes"] == {"reused": total, "new": 6}
     assert sha(again.path) == fresh_sha(rec)
+
+
+def test_interrupted_one_process_build_keeps_its_finished_units(tmp_path):
+    total = archive(tmp_path)
+    rec = recipe(tmp_path)
+    calls = []
+
+    def stop_after_two(done, all_transitions):
+        calls.append(done)
+        if len(calls) == 2:
+            raise KeyboardInterrupt
+
+    with pytest.raises(KeyboardInterrupt):
+        build(rec, keep_work=True, card=False, progress=stop_after_two)
+    assert not (tmp_path / "set.h5").exists()
+    kept = len(list((tmp_path / ".set.h5.work").glob("unit-*.npz")))
+    assert kept >= 2
+    again = build(rec, keep_work=True, card=False)
+    assert again.reuse["units"]["reused"] == kept and again.reuse["episodes"]["new"] < total
+    assert sha(again.path) == fresh_sha(rec)
+
+
+def test_wider_dtype_in_a_new_file_relabels_everything(tmp_path):
+    """Observations take the widest dtype of any file: every stored column's dtype is in the key."""
+    def narrow(eps):
+        return [(o.astype(np.float32), a.astype(np.float32)) for o, a in eps]
+    write(tmp_path / "teleop-day1.h5", narrow(episodes(2, 6)))
+    write(tmp_path / "scripted-day1.npz", narrow(episodes(4, 7)))
+    write(tmp_path / "policy-day1.h5", narrow(episodes(5, 5)))
+    rec = recipe(tmp_path)
+    build(rec, keep_work=True, card=False)
+    write(tmp_path / "policy-day2.npz", episodes(8, 3))          # float64
+    again = build(rec, keep_work=True, replace=True, card=False)
+    assert again.reuse["episodes"] == {"reused": 0, "new": 21}
+    assert sha(again.path) == fresh_sha(rec)
