@@ -34,11 +34,11 @@ from __future__ import annotations
 import hashlib
 import json
 import pickle
-import tomllib
 
 import numpy as np
 
 from goalkit import __version__
+from goalkit.config import parse_toml
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.pipeline.plan import SLOT_SPAN, active_strategies
 from goalkit.pipeline.chunk import ChunkRows, relabel_chunk
@@ -56,25 +56,24 @@ def refusal(recipe) -> str | None:
     """Why a build's rows of old episodes may change when logs are added (None: they do not)."""
     crossing = [n for n in active_strategies(recipe.mixture) if STRATEGIES[n].goal_table]
     if crossing:
-        return f"strategy {', '.join(crossing)} takes goals from other episodes"
+        many = len(crossing) > 1
+        return f"strateg{'ies' if many else 'y'} {', '.join(crossing)} take{'' if many else 's'} goals from other episodes"
     if getattr(recipe, "graph", None) is not None:
         return "the [graph] table's graph spans every episode"
     return None
 
 
-def _parts(source):
-    """``[(first, stop, files)]``: kept-episode ranges of each log file part and the number of
-    the source's files it reads, plus the local ids and source code of each part."""
+def _parts(source) -> list[tuple]:
+    """``[(first, stop, files, local_ids, code)]``, one per log of the source in reading order:
+    its kept-episode positions ``first .. stop - 1``, how many of ``source.files`` it reads, the
+    episodes' ids within it and its source code (None for a source that is one log)."""
     parts = getattr(source, "parts", None)
     starts = getattr(source, "_starts", None)
     if parts is None or starts is None:   # one log (a file or a per-file folder): one part
         n = len(source.episode_ids)
-        return [(0, n, len(list(source.files)), np.asarray(source.episode_ids, np.int64), None, "")]
-    out = []
-    for i, p in enumerate(parts):
-        out.append((int(starts[i]), int(starts[i + 1]), len(list(p.log.files)),
-                    np.asarray(p.log.episode_ids, np.int64), p.code, None))
-    return out
+        return [(0, n, len(list(source.files)), np.asarray(source.episode_ids, np.int64), None)]
+    return [(int(starts[i]), int(starts[i + 1]), len(list(p.log.files)), np.asarray(p.log.episode_ids, np.int64),
+             p.code) for i, p in enumerate(parts)]
 
 
 def plan_units(plan, source, transitions_per_unit: int) -> list[ShardSpec]:
@@ -93,7 +92,7 @@ def plan_units(plan, source, transitions_per_unit: int) -> list[ShardSpec]:
 
 def _recipe_without_paths(text: str):
     """The recipe's tables without the log paths: (build-wide part, list of source tables)."""
-    doc = tomllib.loads(text)
+    doc = parse_toml(text, "recipe")
     logs = doc.get("logs")
     if isinstance(logs, dict):
         doc["logs"] = {k: v for k, v in logs.items() if k != "path"}
@@ -134,7 +133,7 @@ def unit_keys(plan, source, units, inputs) -> list[str] | None:
     _, tables = _recipe_without_paths(recipe.text)
     texts = layout_texts(recipe, source) if recipe.sources is not None else {}
     part_info, where, n_files = [], np.zeros(len(plan.episode_ids), np.int64), 0
-    for k, (first, stop, files, local, code, _) in enumerate(parts):
+    for k, (first, stop, files, local, code) in enumerate(parts):
         files_digest = digests[n_files:n_files + files]
         n_files += files
         table = tables[code] if code is not None and code < len(tables) else {}
@@ -151,6 +150,7 @@ def unit_keys(plan, source, units, inputs) -> list[str] | None:
         info, first, local = part_info[k]
         h.update(info)
         a, b = spec.start - first, spec.stop - first
+        h.update(f"|{b - a}|".encode())
         for arr in (local[a:b], ids[spec.start:spec.stop], lengths[spec.start:spec.stop],
                     splits[spec.start:spec.stop]):
             h.update(np.ascontiguousarray(arr).tobytes())
