@@ -179,7 +179,7 @@ def reuse_line(reuse: dict) -> str:
     eps = reuse["episodes"]
     if reuse["reason"]:
         return (f"  reuse: 0 episodes reused ({reuse['reason']}), {eps['new']:,} relabelled; "
-                f"nothing kept in {reuse['folder']}")
+                f"the work folder {reuse['folder']} was not used")
     return (f"  reuse: {eps['reused']:,} episodes reused, {eps['new']:,} new or changed (relabelled); "
             f"work folder {reuse['folder']}: {reuse['files']:,} files, {reuse['bytes']:,} bytes")
 
