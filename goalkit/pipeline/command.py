@@ -142,11 +142,11 @@ def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, replace, k
         if written and not no_card:  # interrupted while the card was being written
             return (f"the set was written at {out_path}; its dataset card was not (write it with "
                     f"goalkit.write_card, or rerun with --replace)")
-        note = interrupted_note(out_path, sharded=bool(workers or scheduler), cluster=scheduler is not None)
+        text = interrupted_note(out_path, sharded=bool(workers or scheduler), cluster=scheduler is not None)
         if keep_work:
-            note += (f"; the rows of finished units stay in {work_folder_of(out_path)}/ for the next "
+            text += (f"; the rows of finished units stay in {work_folder_of(out_path)}/ for the next "
                      f"build with --keep-work")
-        return note
+        return text
 
     on_interrupt(note)
     with ChunkProgress("build", quiet=quiet) as bar:
