@@ -18,7 +18,7 @@ from click.testing import CliRunner
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from goalkit import LocalWorkers, build, load_recipe
+from goalkit import DaskCluster, LocalWorkers, build, load_recipe
 from goalkit.cli import main as cli_main
 
 LAYOUT = 'version = 1\nshape = "flat"\n[keys]\nobservation = "obs"\naction = "act"\n[boundaries]\nepisode_id = "ids"\n'
@@ -313,4 +313,18 @@ def test_wider_dtype_in_a_new_file_relabels_everything(tmp_path):
     write(tmp_path / "policy-day2.npz", episodes(8, 3))          # float64
     again = build(rec, keep_work=True, replace=True, card=False)
     assert again.reuse["episodes"] == {"reused": 0, "new": 21}
+    assert sha(again.path) == fresh_sha(rec)
+
+
+def test_dask_cluster_reuse_and_match(tmp_path):
+    distributed = pytest.importorskip("distributed")
+    total = archive(tmp_path)
+    rec = recipe(tmp_path)
+    with distributed.LocalCluster(processes=False, n_workers=1, threads_per_worker=2,
+                                  dashboard_address=None) as cluster, distributed.Client(cluster) as client:
+        build(rec, keep_work=True, card=False, runner=DaskCluster(client))
+        write(tmp_path / "teleop-day3.npz", episodes(13, 4))
+        again = build(rec, keep_work=True, replace=True, card=False, runner=DaskCluster(client))
+    assert again.reuse["episodes"] == {"reused": total, "new": 4}
+    assert again.shards["total"] == 1
     assert sha(again.path) == fresh_sha(rec)
