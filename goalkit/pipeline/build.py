@@ -19,7 +19,10 @@ Only the producer varies:
 - :class:`~goalkit.pipeline.sharded.ShardProducer` with
   :class:`~goalkit.pipeline.workers.LocalRunner` (``workers=N``) or
   :class:`~goalkit.pipeline.dask_build.DaskRunner` (``scheduler=`` or ``client=``): resumable
-  shard files computed by worker processes.
+  shard files computed by worker processes;
+- with ``keep_work``, either one wrapped in :class:`~goalkit.pipeline.reuse.ReuseProducer`: the
+  chunks are units that never span two log files, those kept from an earlier build (same key)
+  are read from the work folder ``.NAME.work`` and only the others go to the wrapped producer.
 
 The writer's output does not depend on how the rows were chunked or who computed them, so the
 file's bytes are the same for every producer.
