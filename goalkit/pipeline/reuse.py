@@ -39,6 +39,7 @@ import numpy as np
 
 from goalkit import __version__
 from goalkit.config import parse_toml
+from goalkit.errors import DatasetError
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.pipeline.plan import SLOT_SPAN, active_strategies
 from goalkit.pipeline.chunk import ChunkRows, relabel_chunk
@@ -47,6 +48,7 @@ from goalkit.pipeline.sources import layout_texts
 from goalkit.pipeline.workfolder import WorkFolder
 from goalkit.relabel.strategies import STRATEGIES
 from goalkit.write.gather import materialise
+from goalkit.write.writer import os_reason
 
 #: Version of the unit key's definition (a change here makes old units unusable).
 REUSE_VERSION = 1
@@ -243,7 +245,11 @@ class ReuseProducer:
 
     def _keep(self, i, spec, rows, base) -> None:
         if self.reason is None:
-            self.folder.write(self.keys[i], _relative_spec(spec), _moved(rows, -base), self.columns)
+            try:
+                self.folder.write(self.keys[i], _relative_spec(spec), _moved(rows, -base), self.columns)
+            except OSError as exc:
+                raise DatasetError(f"cannot write the work folder ({os_reason(exc)}); the units already kept "
+                                   f"stay for the next build with --keep-work", file=self.folder.path) from None
 
     def finish(self) -> None:
         self.inner.finish()

@@ -9,6 +9,10 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import resource
+import signal
+import subprocess
+import sys
 from pathlib import Path
 
 import h5py
@@ -328,3 +332,26 @@ def test_dask_cluster_reuse_and_match(tmp_path):
     assert again.reuse["episodes"] == {"reused": total, "new": 4}
     assert again.shards["total"] == 1
     assert sha(again.path) == fresh_sha(rec)
+
+
+
+def _file_size_limit(nbytes):
+    def apply():
+        # RLIMIT_FSIZE (POSIX setrlimit): writes past the limit fail with EFBIG, as on a full disk
+        resource.setrlimit(resource.RLIMIT_FSIZE, (nbytes, resource.RLIM_INFINITY))
+        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
+    return apply
+
+
+def test_full_work_folder_is_one_line_and_keeps_the_output_clean(tmp_path):
+    archive(tmp_path)
+    rec = recipe(tmp_path)
+    res = subprocess.run([sys.executable, "-m", "goalkit.cli", "build", str(rec), "--keep-work", "--no-card",
+                          "--quiet"], cwd=tmp_path, capture_output=True, text=True, timeout=120,
+                         preexec_fn=_file_size_limit(6000))
+    assert res.returncode == 2, res.stderr
+    lines = res.stderr.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in res.stderr, res.stderr
+    assert lines[0].startswith(f"goalkit: error: {tmp_path / '.set.h5.work'}: cannot write the work folder ("), lines
+    assert not (tmp_path / "set.h5").exists()
+    assert not [p for p in (tmp_path / ".set.h5.work").iterdir() if p.name.endswith(".tmp")]
