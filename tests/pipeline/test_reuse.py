@@ -325,7 +325,7 @@ def test_dask_cluster_reuse_and_match(tmp_path):
     total = archive(tmp_path)
     rec = recipe(tmp_path)
     with distributed.LocalCluster(processes=False, n_workers=1, threads_per_worker=2,
-                                  dashboard_address=None) as cluster, distributed.Client(cluster) as client:
+                                  dashboard_address=":0") as cluster, distributed.Client(cluster) as client:
         build(rec, keep_work=True, card=False, runner=DaskCluster(client))
         write(tmp_path / "teleop-day3.npz", episodes(13, 4))
         again = build(rec, keep_work=True, replace=True, card=False, runner=DaskCluster(client))
