@@ -99,7 +99,8 @@ def _recipe(recipe) -> Recipe:
 
 
 def build(recipe, *, runner=None, out=None, seed: int | None = None, max_rows_per_chunk: int | None = None,
-          progress=None, fresh: bool = False, replace: bool = False, card: bool = True) -> BuildResult:
+          progress=None, fresh: bool = False, replace: bool = False, card: bool = True,
+          keep_work: bool = False) -> BuildResult:
     """Build the goal-conditioned set a recipe describes.
 
     Parameters
@@ -126,11 +127,17 @@ def build(recipe, *, runner=None, out=None, seed: int | None = None, max_rows_pe
     card : bool
         Write the dataset card ``NAME.card.md`` and its plot ``NAME.card-goals.png`` beside the
         set (docs/card.md).
+    keep_work : bool
+        Keep the relabelled rows in the work folder ``.NAME.work`` beside the set and reuse
+        those of unchanged episodes (same log file checksum and position, same recipe apart
+        from its log paths) instead of relabelling them; the set's bytes are the same
+        (docs/scaling.md, "Logs that grow").
 
     Returns
     -------
     BuildResult
-        ``path`` of the set, its ``summary``, the ``card`` files, ``seconds`` and ``file_bytes``.
+        ``path`` of the set, its ``summary``, the ``card`` files, ``seconds`` and ``file_bytes``;
+        with ``keep_work``, ``reuse``: episodes reused and new, and the work folder's size.
 
     Raises
     ------
@@ -152,7 +159,7 @@ def build(recipe, *, runner=None, out=None, seed: int | None = None, max_rows_pe
     if out is not None or seed is not None:
         parsed = parsed.with_overrides(seed=seed, out=out)
     return _engine_build(parsed, max_rows_per_chunk=max_rows_per_chunk, progress=progress, fresh=fresh,
-                         replace=replace, card=card, **runner.engine_arguments())
+                         replace=replace, card=card, keep_work=keep_work, **runner.engine_arguments())
 
 
 def verify(path, *, max_failures: int = 20, progress=None, audit: bool = True, logs_root=None) -> VerifyReport:

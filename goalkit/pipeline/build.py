@@ -19,7 +19,10 @@ Only the producer varies:
 - :class:`~goalkit.pipeline.sharded.ShardProducer` with
   :class:`~goalkit.pipeline.workers.LocalRunner` (``workers=N``) or
   :class:`~goalkit.pipeline.dask_build.DaskRunner` (``scheduler=`` or ``client=``): resumable
-  shard files computed by worker processes.
+  shard files computed by worker processes;
+- with ``keep_work``, either one wrapped in :class:`~goalkit.pipeline.reuse.ReuseProducer`: the
+  chunks are units that never span two log files, those kept from an earlier build (same key)
+  are read from the work folder ``.NAME.work`` and only the others go to the wrapped producer.
 
 The writer's output does not depend on how the rows were chunked or who computed them, so the
 file's bytes are the same for every producer.
@@ -42,10 +45,12 @@ from goalkit.pipeline.sources import layout_texts, sources_provenance, sources_s
 from goalkit.pipeline.dask_build import DaskRunner
 from goalkit.pipeline.inprocess import CHUNK_ROWS, InProcessProducer
 from goalkit.pipeline.plan import make_plan, split_rows, strategy_names
+from goalkit.pipeline.reuse import ReuseProducer
 from goalkit.pipeline.sharded import SHARD_ROWS, ShardProducer
 from goalkit.pipeline.shardfiles import plan_shards
 from goalkit.pipeline.summary import SummaryBuilder
 from goalkit.pipeline.workers import LocalRunner
+from goalkit.pipeline.workfolder import work_folder_of
 from goalkit.pipeline.searchsetup import add_to_summary, search_provenance
 from goalkit.rows import SPLITS
 from goalkit.write.card import card_paths, check_card_outputs, graph_plot_path, write_card
@@ -75,6 +80,11 @@ class BuildResult:
         Wall-clock time of the build (not stored in the set, which must not depend on it).
     file_bytes : int or None
         Size of the set file.
+    reuse : dict or None
+        Builds with ``keep_work`` only: ``{"episodes": {"reused", "new"}, "units": {"reused",
+        "computed"}, "folder", "files", "bytes", "reason"}`` (episodes whose rows were taken from
+        the work folder and episodes relabelled now; ``reason`` says why nothing could be reused,
+        else None). Not stored in the set, whose bytes do not depend on it.
     """
 
     path: Path
@@ -83,6 +93,7 @@ class BuildResult:
     card: tuple = ()
     seconds: float | None = None
     file_bytes: int | None = None
+    reuse: dict | None = None
 
 
 @dataclass(frozen=True)
@@ -194,7 +205,7 @@ def provenance(plan, source, log_files=None, inputs: BuildInputs | None = None) 
 
 def build(recipe, *, source=None, max_rows_per_chunk: int | None = None, progress=None, workers: int = 0,
           scheduler: str | None = None, client=None, fresh: bool = False, replace: bool = False,
-          card: bool = True) -> BuildResult:
+          card: bool = True, keep_work: bool = False) -> BuildResult:
     """Build the dataset a recipe describes, in this process or scaled out over shards.
 
     Parameters
@@ -224,6 +235,11 @@ def build(recipe, *, source=None, max_rows_per_chunk: int | None = None, progres
     card : bool
         Also write the dataset card ``NAME.card.md`` and its plot ``NAME.card-goals.png`` beside
         the set (:mod:`goalkit.write.card`).
+    keep_work : bool
+        Keep every episode's rows in the work folder ``.NAME.work`` beside the set, and take the
+        rows of episodes whose log file, position and everything else they depend on are
+        unchanged from there instead of relabelling them (:mod:`goalkit.pipeline.reuse`). The
+        set's bytes are the same as without it.
 
     Returns
     -------
@@ -243,13 +259,15 @@ def build(recipe, *, source=None, max_rows_per_chunk: int | None = None, progres
 
     started = time.perf_counter()
     sharded = bool(workers) or scheduler is not None or client is not None
-    check_outputs(recipe, sharded=sharded, replace=replace, source=source, card=card)
+    check_outputs(recipe, sharded=sharded, replace=replace, source=source, card=card, keep_work=keep_work)
     if scheduler is not None or client is not None:
         producer = ShardProducer(DaskRunner(address=scheduler, client=client), fresh=fresh)
     elif workers:
         producer = ShardProducer(LocalRunner(workers), fresh=fresh)
     else:
         producer = InProcessProducer()
+    if keep_work:
+        producer = ReuseProducer(producer, recipe.output.path)
     result = run_build(recipe, producer, source=source, rows_per_chunk=max_rows_per_chunk,
                        progress=progress, replace=replace)
     written = tuple(write_card(result.path, replace=replace)) if card else ()
@@ -275,7 +293,9 @@ def run_build(recipe, producer, *, source=None, rows_per_chunk: int | None = Non
     BuildResult
     """
     plan, source = make_plan(recipe, source)
-    chunks = plan_shards(plan, chunk_transitions(plan, rows_per_chunk or producer.rows_per_chunk))
+    cut = getattr(producer, "plan_chunks", None)
+    per_chunk = chunk_transitions(plan, rows_per_chunk or producer.rows_per_chunk)
+    chunks = plan_shards(plan, per_chunk) if cut is None else cut(plan, source, per_chunk)
     summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_rows, recipe.seed,
                              distance_unit=recipe.reward.reach_threshold,
                              rule=recipe.reward)
@@ -310,16 +330,18 @@ def run_build(recipe, producer, *, source=None, rows_per_chunk: int | None = Non
     if failed is not None:  # raised outside the handler: one line, no chained traceback
         raise OutputWriteError(failed, file=out.path, advice=producer.resume_advice)
     producer.cleanup()
-    return BuildResult(path=path, summary=result, shards=producer.info())
+    reuse = producer.reuse_info() if hasattr(producer, "reuse_info") else None
+    return BuildResult(path=path, summary=result, shards=producer.info(), reuse=reuse)
 
 
-def check_outputs(recipe, *, sharded: bool = False, replace: bool = False, source=None, card: bool = False) -> None:
+def check_outputs(recipe, *, sharded: bool = False, replace: bool = False, source=None, card: bool = False,
+                  keep_work: bool = False) -> None:
     """Refuse, before any work, a build that would write over one of its inputs or an existing output.
 
     The inputs are the recipe's (:meth:`Recipe.inputs`: recipe file, logs with every file of a
     log folder, layout, embedding, goal library) and an opened ``source``'s files; the outputs
-    are the dataset, with ``card`` its card and plot, and, for a sharded build, its build folder
-    ``.NAME.shards``.
+    are the dataset, with ``card`` its card and plot, for a sharded build its build folder
+    ``.NAME.shards``, and with ``keep_work`` its work folder ``.NAME.work``.
 
     Raises
     ------
@@ -329,6 +351,7 @@ def check_outputs(recipe, *, sharded: bool = False, replace: bool = False, sourc
     out = recipe.output.path
     inputs = list(recipe.inputs()) + [("log file", f) for f in getattr(source, "files", None) or []]
     outputs = [("output", out)] + ([("build folder", folder_of(out))] if sharded else [])
+    outputs += [("work folder", work_folder_of(out))] if keep_work else []
     if card:
         outputs += list(zip(("dataset card", "card plot"), card_paths(out))) + [("card plot", graph_plot_path(out))]
     check_no_overlap(inputs, outputs)

@@ -8,6 +8,7 @@ from goalkit.cli_support import ChunkProgress, command_line, echo_json, on_inter
 from goalkit.errors import GoalkitError
 from goalkit.pipeline.build import build as run_build
 from goalkit.pipeline.buildfolder import folder_of
+from goalkit.pipeline.workfolder import work_folder_of
 from goalkit.pipeline.recipe import load_recipe
 from goalkit.pipeline.graphsummary import summary_lines as graph_lines
 from goalkit.pipeline.searchsetup import summary_lines
@@ -100,12 +101,16 @@ def rule_lines(summary: dict) -> list[str]:
 @click.option("--replace", is_flag=True,
               help="Replace an existing dataset at the output path. Only a goalkit set is ever replaced; "
                    "without this option an existing output is refused.")
+@click.option("--keep-work", "keep_work", is_flag=True,
+              help="Keep the relabelled rows in .NAME.work/ beside the set and reuse those of unchanged "
+                   "episodes (same log file checksum and position, same recipe apart from its log paths) "
+                   "on the next build with this option; the set's bytes are the same.")
 @click.option("--no-card", "no_card", is_flag=True,
               help="Do not write the dataset card (NAME.card.md and NAME.card-goals.png beside the set).")
 @click.option("--json", "as_json", is_flag=True, help="Print the summary as one JSON object.")
 @quiet_option
 @user_errors
-def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, replace, no_card, as_json, quiet):
+def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, replace, keep_work, no_card, as_json, quiet):
     """Build the goal-conditioned dataset that RECIPE describes.
 
     Reads the logs a chunk of episodes at a time, relabels every transition with the recipe's
@@ -116,6 +121,10 @@ def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, replace, n
 
     Beside the set goes its dataset card, NAME.card.md with the plot NAME.card-goals.png
     (docs/card.md; `goalkit info SET` prints the same facts), unless --no-card.
+
+    When logs grow (files added to the recipe's paths, or matched by its globs), rebuild with
+    --keep-work --replace: only episodes of new or changed files are relabelled, the others are
+    taken from the work folder, and the set is the same, byte for byte, as a fresh build.
     """
     if workers and scheduler is not None:
         raise GoalkitError("give --workers or --scheduler, not both", key="--scheduler")
@@ -134,13 +143,20 @@ def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, replace, n
         if written and not no_card:  # interrupted while the card was being written
             return (f"the set was written at {out_path}; its dataset card was not (write it with "
                     f"goalkit.write_card, or rerun with --replace)")
-        return interrupted_note(out_path, sharded=bool(workers or scheduler), cluster=scheduler is not None)
+        text = interrupted_note(out_path, sharded=bool(workers or scheduler), cluster=scheduler is not None)
+        if keep_work:
+            text += (f"; the rows of finished units stay in {work_folder_of(out_path)}/ for the next "
+                     f"build with --keep-work")
+        return text
 
     on_interrupt(note)
     with ChunkProgress("build", quiet=quiet) as bar:
         result = run_build(parsed, max_rows_per_chunk=chunk_rows, progress=bar, workers=workers,
-                           scheduler=scheduler, fresh=restart, replace=replace, card=not no_card)
+                           scheduler=scheduler, fresh=restart, replace=replace, card=not no_card,
+                           keep_work=keep_work)
     extra = {"shards": result.shards} if result.shards is not None else {}
+    if result.reuse is not None:
+        extra["reuse"] = result.reuse
     extra.update(reward=parsed.reward.describe(), file_bytes=result.file_bytes, seconds=result.seconds,
                  card=[str(p) for p in result.card])
     if as_json:
@@ -155,6 +171,18 @@ def build(recipe, out, seed, chunk_rows, workers, scheduler, restart, replace, n
             s = result.shards
             click.echo(f"  shards: {s['total']} ({s['reused']} reused from an interrupted run, "
                        f"{s['computed']} computed on {s['runner']})")
+        if result.reuse is not None:
+            click.echo(reuse_line(result.reuse))
+
+
+def reuse_line(reuse: dict) -> str:
+    """The summary line of a build with --keep-work: episodes reused and new, the work folder."""
+    eps = reuse["episodes"]
+    if reuse["reason"]:
+        return (f"  reuse: 0 episodes reused ({reuse['reason']}), {eps['new']:,} relabelled; "
+                f"the work folder {reuse['folder']} was not used")
+    return (f"  reuse: {eps['reused']:,} episodes reused, {eps['new']:,} new or changed (relabelled); "
+            f"work folder {reuse['folder']}: {reuse['files']:,} files, {reuse['bytes']:,} bytes")
 
 
 def interrupted_note(output, sharded: bool, cluster: bool = False) -> str:

@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import zipfile
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -165,7 +166,7 @@ def _unpack_split(z, split, column_order):
     return keys, cols
 
 
-def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order) -> dict:
+def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order, path=None) -> dict:
     """Write one shard's rows to ``folder / spec.name`` (temporary name, then rename).
 
     Parameters
@@ -179,6 +180,8 @@ def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order) -> 
         What :func:`~goalkit.pipeline.chunk.relabel_chunk` returned for the shard.
     column_order : list of str
         The plan's column names.
+    path : Path, optional
+        Write here instead of ``folder / spec.name`` (a work folder's unit file).
 
     Returns
     -------
@@ -192,7 +195,7 @@ def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order) -> 
     OutputError
         When something that is not a file (a link, a folder) is at the shard's name.
     """
-    path = Path(folder) / spec.name
+    path = Path(folder) / spec.name if path is None else Path(path)
     digest = rows_digest(rows, column_order)
     counts = {s: int(len(rows.keys[s])) if s in rows.keys else 0 for s in SPLITS}
     meta = {"format": SHARD_FORMAT, "format_version": SHARD_FORMAT_VERSION, "build_key": build_key,
@@ -215,8 +218,10 @@ def shard_meta(path) -> dict:
         return json.loads(z["meta"].tobytes().decode())
 
 
-def read_shard(folder, spec: ShardSpec, build_key: str, column_order):
+def read_shard(folder, spec: ShardSpec, build_key: str, column_order, path=None):
     """Read one shard back and check it belongs to this build and matches its checksum.
+
+    ``path`` reads that file instead of ``folder / spec.name`` (a work folder's unit file).
 
     Returns
     -------
@@ -228,7 +233,7 @@ def read_shard(folder, spec: ShardSpec, build_key: str, column_order):
         When the file is missing, unreadable, from another build or another partition, or its
         rows do not match its checksum.
     """
-    path = Path(folder) / spec.name
+    path = Path(folder) / spec.name if path is None else Path(path)
     try:
         with np.load(path, allow_pickle=False) as z:
             meta = json.loads(z["meta"].tobytes().decode())
@@ -243,7 +248,7 @@ def read_shard(folder, spec: ShardSpec, build_key: str, column_order):
                     keys[split], cols[split] = _unpack_split(z, split, column_order)
     except ShardError:
         raise
-    except (OSError, KeyError, ValueError, EOFError) as exc:
+    except (OSError, KeyError, ValueError, EOFError, zipfile.BadZipFile) as exc:
         raise ShardError(f"{spec.describe()}: unreadable shard file ({exc})", file=path) from None
     rows = ChunkRows(cols, keys)
     if rows_digest(rows, column_order) != meta.get("sha256"):

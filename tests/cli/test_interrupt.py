@@ -5,6 +5,7 @@ sends SIGINT to the foreground process group), so local build workers receive it
 """
 
 import hashlib
+import json
 import os
 import re
 import shlex
@@ -107,6 +108,24 @@ def test_worker_build_keeps_its_shards_and_the_printed_command_resumes(big, tmp_
     assert json.loads(res.stdout)["shards"]["reused"] >= kept
     assert sha256(out) == sha256(big / "reference.h5")  # the same bytes as an uninterrupted build
     assert not folder.exists()
+
+
+def test_keep_work_build_keeps_its_finished_units_for_the_next_build(big, tmp_path):
+    out = tmp_path / "goals.h5"
+    work = tmp_path / ".goals.h5.work"
+    args = ["build", str(big / "gantry-recipe.toml"), "--out", str(out), "--keep-work", "--chunk-rows", "20000"]
+    proc = start(args, tmp_path)
+    code, _, err = interrupt_when(proc, lambda: len(list(work.glob("unit-*.npz"))) >= 2)
+    assert code == 130, err
+    assert one_line(err) == (f"goalkit: interrupted; nothing was written at {out}; the rows of finished units "
+                             f"stay in {work}/ for the next build with --keep-work")
+    kept = len(list(work.glob("unit-*.npz")))
+    assert kept >= 2 and not out.exists()
+    res = subprocess.run([*CLI, *args, "--json", "--no-card"], cwd=tmp_path, capture_output=True, text=True,
+                         timeout=300)
+    assert res.returncode == 0, res.stderr
+    assert json.loads(res.stdout)["reuse"]["units"]["reused"] >= kept
+    assert sha256(out) == sha256(big / "reference.h5")  # the same bytes as an uninterrupted build
 
 
 def test_verify(big, tmp_path):
