@@ -186,13 +186,20 @@ class H5Access:
         self.episode = episode
         self.seen = seen
         self._info = {}
+        self._where = {}
+        self._fno = None
 
     def where(self, key: str) -> str:
         """The key's full path inside the file, for messages."""
-        key = base_key(key)
-        if key.startswith("/"):
-            return key.strip("/")
-        return f"{self.prefix}/{key}" if self.prefix else key
+        found = self._where.get(key)
+        if found is None:
+            key0 = base_key(key)
+            if key0.startswith("/"):
+                found = key0.strip("/")
+            else:
+                found = f"{self.prefix}/{key0}" if self.prefix else key0
+            self._where[key] = found
+        return found
 
     def _error(self, message, key) -> LogError:
         return LogError(message, file=self.file, key=self.where(key), episode=self.episode)
@@ -218,11 +225,27 @@ class H5Access:
         return self._info[key]
 
     def _open(self, key: str):
-        problem = link_problem(self.group, key)
-        if problem is not None:
-            raise self._error(problem, key)
+        raw = key.encode("utf-8")
+        hard_addr = None
+        if "/" not in key:                   # one component: one look-up of the link
+            links = self.group.id.links
+            try:
+                link = links.get_info(raw)
+            except READ_ERRORS:
+                link = None                  # missing, or damaged: the look-ups below name the problem
+                try:
+                    if not links.exists(raw):
+                        return None          # missing (what _why_not_opened would find)
+                except READ_ERRORS:
+                    pass
+            if link is not None and link.type == _HARD:
+                hard_addr = link.u           # the object's address: its identity, without opening it
+        if hard_addr is None:
+            problem = link_problem(self.group, key)
+            if problem is not None:
+                raise self._error(problem, key)
         try:
-            dsid = h5py.h5d.open(self.group.id, key.encode("utf-8"))
+            dsid = h5py.h5d.open(self.group.id, raw)
         except KeyError as exc:              # missing, not a dataset, or a damaged object header
             return self._why_not_opened(key, exc)
         except READ_ERRORS as exc:
@@ -245,8 +268,11 @@ class H5Access:
                                       file=self.file, key=self.where(key), episode=self.episode)
         if self.seen is not None:
             try:
-                info = h5py.h5o.get_info(dsid)
-                ident = (info.fileno, info.addr)
+                if hard_addr is not None:
+                    ident = (self._fileno(), hard_addr)
+                else:
+                    info = h5py.h5o.get_info(dsid)
+                    ident = (info.fileno, info.addr)
             except READ_ERRORS as exc:
                 raise self._error(f"cannot read the dataset's header ({short(exc)})", key) from exc
             other = self.seen.setdefault(ident, (self.episode, self.where(key)))
@@ -255,6 +281,12 @@ class H5Access:
                                   f"link or key shared by episodes); expected each episode to hold "
                                   f"its own data", key)
         return (dsid, shape, dtype)
+
+    def _fileno(self) -> int:
+        """The HDF5 file number of the group's file (the first half of an object's identity)."""
+        if self._fno is None:
+            self._fno = h5py.h5o.get_info(self.group.id).fileno
+        return self._fno
 
     def _why_not_opened(self, key, exc):
         """None when ``key`` is missing or names a group; a LogError when its object is damaged."""
@@ -321,16 +353,25 @@ class H5Access:
         Its declared shape is checked first: an attribute holding more than
         :data:`MAX_ATTR_VALUES` values is refused rather than read.
         """
+        raw = key.encode("utf-8")
         try:
-            if key not in self.group.attrs:
+            if not h5py.h5a.exists(self.group.id, raw):
                 return None
-            n = math.prod(h5py.h5a.open(self.group.id, key.encode("utf-8")).shape)
+            aid = h5py.h5a.open(self.group.id, raw)
+            shape = aid.shape
+            n = math.prod(shape)
         except READ_ERRORS:
             return None
         if n > MAX_ATTR_VALUES:
             raise self._error(f"attribute declares {n} values; expected at most {MAX_ATTR_VALUES} "
                               f"(a task id is one value)", key)
         try:
+            dtype = aid.dtype
+            if dtype.kind in "iuf" and not dtype.shape:  # numbers: read them directly (cheap)
+                out = np.empty(shape, dtype=dtype)
+                if out.size:
+                    aid.read(out, mtype=memory_type(dtype))
+                return out[()] if out.ndim == 0 else out
             return self.group.attrs[key]
         except READ_ERRORS:
             return None
@@ -386,9 +427,33 @@ def open_h5(path):
     try:
         if not h5py.is_hdf5(path):
             raise LogError("not an HDF5 file (no HDF5 signature); expected an .h5 file", file=path)
-        return h5py.File(path, "r")
+        h5 = h5py.File(path, "r")
     except LogError:
         raise
     except READ_ERRORS as exc:
         raise LogError(f"cannot open as HDF5, the file may be truncated or corrupt ({short(exc)})",
                        file=path) from None
+    bound_metadata_cache(h5)
+    return h5
+
+
+#: Size of HDF5's metadata cache for a log opened for reading (fixed: it never grows).
+METADATA_CACHE_BYTES = 1 << 22
+
+
+def bound_metadata_cache(h5, nbytes: int = METADATA_CACHE_BYTES) -> None:
+    """Fix the size of an open file's HDF5 metadata cache at ``nbytes``.
+
+    By default HDF5 lets the cache grow while many objects are opened; scanning the object
+    headers of tens of thousands of episode groups then costs hundreds of MiB and slows every
+    look-up. A fixed small cache keeps memory flat whatever the number of episodes (the headers
+    of one episode fit many times over).
+    """
+    try:
+        cfg = h5.id.get_mdc_config()
+        cfg.set_initial_size = True
+        cfg.initial_size = cfg.min_size = cfg.max_size = int(nbytes)
+        cfg.incr_mode = cfg.decr_mode = cfg.flash_incr_mode = 0     # H5C_*_off: never resized
+        h5.id.set_mdc_config(cfg)
+    except READ_ERRORS:   # an HDF5 that refuses the setting still reads correctly
+        pass

@@ -24,6 +24,7 @@ from goalkit.errors import LogError
 from goalkit.logs import limits
 from goalkit.logs.access import READ_ERRORS, H5Access, describe_link, guard, open_h5, short
 from goalkit.logs.episodic import EpisodicSource, join_parts, read_episode
+from goalkit.logs.groupread import read_groups, read_plan
 from goalkit.logs.naming import natural_sorted
 
 
@@ -90,6 +91,7 @@ class GroupedSource(EpisodicSource):
     def __init__(self, path, layout, skip_bad_episodes=False, advance=None):
         super().__init__(path, layout, skip_bad_episodes, advance)
         self.files = [self.path]
+        self.key_dtypes = {}            # key -> its stored dtype, None once two episodes differ
         self.file_size = limits.regular_file(self.path, what="an HDF5 file")
         with open_h5(self.path) as h5, guard(self.path, what="cannot read the log"):
             self.groups = match_groups(h5, layout.episode_groups, self.path)
@@ -105,8 +107,35 @@ class GroupedSource(EpisodicSource):
 
     def _episode_access(self, h5, e, seen=None) -> H5Access:
         with guard(self.path, self.groups[e], e, "cannot open the episode group"):
-            return H5Access(h5[self.groups[e]], self.path, file_size=self.file_size,
+            # the low-level open is several times cheaper than h5[path] (the path was checked
+            # to be a group of this file when the episodes were matched)
+            group = h5py.Group(h5py.h5g.open(h5.id, self.groups[e].encode("utf-8")))
+            return H5Access(group, self.path, file_size=self.file_size,
                             max_rows=limits.MAX_EPISODE_STEPS, episode=e, seen=seen)
+
+    def _planned(self, acc) -> None:
+        found = self.key_dtypes
+        if found is None:
+            return
+        for key, info in acc._info.items():
+            if info is None:
+                continue
+            have = found.setdefault(key, info[2])
+            if have != info[2]:
+                self.key_dtypes = None
+                return
+
+    def _fast_plan(self):
+        """What :func:`~goalkit.logs.groupread.read_groups` reads for this log (None: not served)."""
+        if not hasattr(self, "_fast"):
+            ref = next((m for m in self.metas if m is not None), None)
+            self._fast = None if ref is None else read_plan(self.layout, self.convention, self.key_dtypes,
+                                                            self.obs_dtype, self.action_dtype)
+            if self._fast is not None:
+                self._tails = {"actions": (ref.action_width,), "task_goals": (ref.goal_width,),
+                               "frames": ref.frame_shape or ()}
+                self._widths = ref.obs_widths
+        return self._fast
 
     def _key_of(self, episode, key):
         return f"{self.groups[episode]}/{key}" if key else self.groups[episode]
@@ -118,8 +147,13 @@ class GroupedSource(EpisodicSource):
             yield self._episode_access(h5, e)
 
     def _read_episodes(self, ids):
-        parts = []
+        fast = self._fast_plan()
         with open_h5(self.path) as h5:
+            if fast is not None:
+                cols = read_groups(h5, self.groups, self.metas, ids, fast, self._widths, self._tails, self.layout)
+                if cols is not None:
+                    return cols
+            parts = []
             for e in ids.tolist():
                 acc = self._episode_access(h5, e)
                 with guard(self.path, self.groups[e], e, "cannot read the episode"):
