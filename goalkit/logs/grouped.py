@@ -23,8 +23,10 @@ import h5py
 from goalkit.errors import LogError
 from goalkit.logs import limits
 from goalkit.logs.access import READ_ERRORS, H5Access, describe_link, guard, open_h5, short
-from goalkit.logs.episodic import EpisodicSource, join_parts, read_episode
-from goalkit.logs.groupread import read_groups, read_plan
+from goalkit.logs import access
+from goalkit.logs.checks import MAX_WIDTH
+from goalkit.logs.episodic import EpisodicSource, join_parts, plan_episode, read_episode
+from goalkit.logs.groupread import plan_group, plan_keys, read_groups, read_plan
 from goalkit.logs.naming import natural_sorted
 
 
@@ -100,10 +102,38 @@ class GroupedSource(EpisodicSource):
                 raise LogError(f"no groups match episode_groups = \"{layout.episode_groups}\"; top-level "
                                f"names: {', '.join(top) if top else 'none'}", file=self.path,
                                key="episode_groups")
-            seen = {}
-            metas, problems = self._plan_all(self._episode_access(h5, e, seen)
-                                             for e in range(len(self.groups)))
+            metas, problems = self._plan_groups(h5)
         self._adopt(metas, problems)
+
+    def _plan_groups(self, h5):
+        """Plan every episode group, in order (as :meth:`_plan_all`; most groups through
+        :func:`~goalkit.logs.groupread.plan_group`'s low-level calls, the rest, and every
+        problem, through :func:`~goalkit.logs.episodic.plan_episode`)."""
+        keys = plan_keys(self.layout)
+        fileno = h5py.h5o.get_info(h5.id).fileno
+        seen, metas, problems = {}, [], []
+        for e, path in enumerate(self.groups):
+            with guard(self.path, path, e, "cannot open the episode group"):
+                gid = h5py.h5g.open(h5.id, path.encode("utf-8"))
+            found = None if keys is None else plan_group(
+                gid, path.strip("/"), self.layout, e, seen, fileno, self.file_size, limits.MAX_EPISODE_STEPS,
+                limits.MAX_ROW_VALUES, MAX_WIDTH, access.MAX_ATTR_VALUES)
+            if found is not None:
+                metas.append(found[0])
+                self._note_dtypes(found[1])
+                continue
+            acc = H5Access(h5py.Group(gid), self.path, file_size=self.file_size,
+                           max_rows=limits.MAX_EPISODE_STEPS, episode=e, seen=seen)
+            try:
+                metas.append(plan_episode(acc, self.layout, e))
+            except LogError as exc:
+                if exc.episode is None:
+                    raise
+                metas.append(None)
+                problems.append((e, exc))
+            else:
+                self._planned(acc)
+        return metas, problems
 
     def _episode_access(self, h5, e, seen=None) -> H5Access:
         with guard(self.path, self.groups[e], e, "cannot open the episode group"):
@@ -114,14 +144,14 @@ class GroupedSource(EpisodicSource):
                             max_rows=limits.MAX_EPISODE_STEPS, episode=e, seen=seen)
 
     def _planned(self, acc) -> None:
+        self._note_dtypes({key: info[2] for key, info in acc._info.items() if info is not None})
+
+    def _note_dtypes(self, dtypes: dict) -> None:
         found = self.key_dtypes
         if found is None:
             return
-        for key, info in acc._info.items():
-            if info is None:
-                continue
-            have = found.setdefault(key, info[2])
-            if have != info[2]:
+        for key, dtype in dtypes.items():
+            if found.setdefault(key, dtype) != dtype:
                 self.key_dtypes = None
                 return
 

@@ -13,7 +13,7 @@ import pytest
 from logs_testdata import assert_matches, make_episodes, write_grouped
 
 from goalkit.errors import LogError
-from goalkit.logs import open_logs
+from goalkit.logs import grouped, open_logs
 from goalkit.logs.access import open_h5
 from goalkit.logs.groupread import read_groups
 
@@ -111,3 +111,29 @@ def test_a_key_turned_soft_link_after_opening_is_read_by_the_general_path(tmp_pa
         assert read_groups(h5, src.groups, src.metas, np.array([0, 1]), src._fast_plan(), src._widths,
                            src._tails, src.layout) is None
     assert_matches(src.read(0, 2), eps, [0, 1])
+
+
+@pytest.mark.parametrize("convention,fields,task_as", [("T+1", False, "attr"), ("T", True, "attr"),
+                                                       ("T+1", True, "scalar"), ("T", False, "array")])
+def test_low_level_planning_gives_the_general_plan(tmp_path, monkeypatch, convention, fields, task_as):
+    """plan_group's metas (steps, convention, widths, dtypes, task) equal plan_episode's."""
+    eps = make_episodes([3, 1, 5, 2], seed=5)
+    table = write_grouped(tmp_path / "g.h5", eps, convention, fields=fields, task_as=task_as)
+    fast = open_logs(tmp_path / "g.h5", table)
+    monkeypatch.setattr(grouped, "plan_keys", lambda layout: None)    # general planning only
+    general = open_logs(tmp_path / "g.h5", table)
+    assert fast.metas == general.metas and fast.key_dtypes == general.key_dtypes
+    np.testing.assert_array_equal(fast.lengths, [3, 1, 5, 2])
+    assert [m.task for m in fast.metas] == [e["task"] for e in eps]
+
+
+def test_shared_dataset_is_still_refused(tmp_path):
+    """A dataset hard-linked into two episodes: the low-level planning leaves it to the general one."""
+    eps = make_episodes([3, 3], seed=6)
+    table = write_grouped(tmp_path / "g.h5", eps)
+    with h5py.File(tmp_path / "g.h5", "a") as f:
+        del f["runs/ep1/rew"]
+        f["runs/ep1/rew"] = f["runs/ep0/rew"]
+    with pytest.raises(LogError) as err:
+        open_logs(tmp_path / "g.h5", table)
+    assert err.value.episode == 1 and "is the same dataset as key runs/ep0/rew of episode 0" in str(err.value)
