@@ -212,32 +212,37 @@ def phases_case(recipe_path: str, out: str) -> dict:
     from goalkit.write.writer import SetWriter
 
     recipe = load_recipe(recipe_path).with_overrides(out=out)
-    t = {}
-    t0 = time.perf_counter()
+    t, cpu = {}, {}
+    t0, c0 = time.perf_counter(), cpu_seconds()
     plan, source = make_plan(recipe)
-    t["plan"] = time.perf_counter() - t0
+    t["plan"], cpu["plan"] = time.perf_counter() - t0, cpu_seconds() - c0
     chunks = plan_shards(plan, chunk_transitions(plan))
     t["read"] = t["relabel"] = t["write"] = 0.0
+    cpu["read"] = cpu["relabel"] = cpu["write"] = 0.0
     o = recipe.output
     with SetWriter(o.path, plan.columns, chunk_rows=o.chunk_rows, compression=o.compression,
                    total_rows=split_rows(plan)) as writer:
         for spec in chunks:
-            t0 = time.perf_counter()
+            t0, c0 = time.perf_counter(), cpu_seconds()
             chunk = source.read(spec.start, spec.stop)
-            t1 = time.perf_counter()
+            t1, c1 = time.perf_counter(), cpu_seconds()
             rows = relabel_chunk(plan, chunk, defer_gathers=True)
-            t2 = time.perf_counter()
+            t2, c2 = time.perf_counter(), cpu_seconds()
             for split, cols in rows.columns.items():
                 writer.add(split, cols, rows.keys[split])
             writer.flush()
-            t3 = time.perf_counter()
+            t3, c3 = time.perf_counter(), cpu_seconds()
             t["read"] += t1 - t0
             t["relabel"] += t2 - t1
             t["write"] += t3 - t2
-        t0 = time.perf_counter()
+            cpu["read"] += c1 - c0
+            cpu["relabel"] += c2 - c1
+            cpu["write"] += c3 - c2
+        t0, c0 = time.perf_counter(), cpu_seconds()
         writer.close(attrs={"benchmark": "phases"})
         t["write"] += time.perf_counter() - t0
-    return {"phases_seconds": t}
+        cpu["write"] += cpu_seconds() - c0
+    return {"phases_seconds": t, "phases_cpu_seconds": cpu}
 
 
 def child(args) -> None:
