@@ -130,6 +130,7 @@ def _read(h5, groups, metas, ids, plan, widths, tails, layout):
     steps_plan = [(name, key.encode("utf-8"), stored, state_level, at)
                   for (name, key, stored, _, state_level), at in zip(plan, where)]
     fid = h5.id
+    whole = metas[ids[0]].convention == "T+1" if ids else True   # per-step keys hold T rows
     t_row = s_row = 0
     for e, T in zip(ids, steps):
         gid = h5py.h5g.open(fid, groups[e].encode("utf-8"))
@@ -139,12 +140,17 @@ def _read(h5, groups, metas, ids, plan, widths, tails, layout):
                 raise _Refused
             dsid = h5py.h5d.open(gid, raw)
             rows = T + 1 if state_level else T
-            fspace = dsid.get_space()
-            dims = fspace.shape
-            if not dims or dims[0] < rows:
-                raise _Refused
-            if dims[0] != rows:
-                fspace.select_hyperslab((0,) * len(dims), (rows,) + tuple(dims[1:]))
+            if whole or state_level:
+                # the plan saw exactly these rows: read them all (HDF5 refuses the read if
+                # the file's extent no longer holds as many values as the buffer)
+                fspace, dims = h5py.h5s.ALL, None
+            else:
+                fspace = dsid.get_space()
+                dims = fspace.shape
+                if not dims or dims[0] < rows:
+                    raise _Refused
+                if dims[0] != rows:
+                    fspace.select_hyperslab((0,) * len(dims), (rows,) + tuple(dims[1:]))
             arr = cols[name]
             if at is not None:               # an observation field: its columns of the rows
                 c0, w = at
@@ -160,7 +166,7 @@ def _read(h5, groups, metas, ids, plan, widths, tails, layout):
                 # HDF5 refuses the read if the file's selection does not hold as many values
                 dsid.read(mspace, fspace, buf, mtype=memory_type(buf.dtype))
             else:
-                tmp = np.empty((rows,) + tuple(dims[1:]), dtype=stored)
+                tmp = np.empty(mspace.shape if at is None else (rows, at[1]), dtype=stored)
                 dsid.read(h5py.h5s.create_simple(tmp.shape), fspace, tmp, mtype=memory_type(stored))
                 if at is not None:
                     buf[:, at[0]:at[0] + at[1]] = tmp.reshape(rows, at[1])

@@ -137,3 +137,18 @@ def test_shared_dataset_is_still_refused(tmp_path):
     with pytest.raises(LogError) as err:
         open_logs(tmp_path / "g.h5", table)
     assert err.value.episode == 1 and "is the same dataset as key runs/ep0/rew of episode 0" in str(err.value)
+
+
+def test_a_dataset_grown_after_opening_is_not_read_past_the_buffer(tmp_path):
+    """HDF5 refuses a read whose file extent holds more values than the planned rows; the
+    general path then reads the planned rows, as it always did."""
+    eps = make_episodes([3, 2], seed=8)
+    table = write_grouped(tmp_path / "g.h5", eps)
+    src = open_logs(tmp_path / "g.h5", table)
+    with h5py.File(tmp_path / "g.h5", "a") as f:
+        del f["runs/ep1/rew"]
+        f["runs/ep1/rew"] = np.concatenate([eps[1]["rew"], np.float32([9.0] * 5)])
+    with open_h5(src.path) as h5:
+        assert read_groups(h5, src.groups, src.metas, np.array([0, 1]), src._fast_plan(), src._widths,
+                           src._tails, src.layout) is None
+    assert_matches(src.read(0, 2), eps, [0, 1])
