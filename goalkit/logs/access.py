@@ -152,6 +152,35 @@ def link_problem(group, key: str) -> str | None:
 _HARD = h5py.h5l.TYPE_HARD
 
 
+class DatasetOwners:
+    """Which episode first reached each dataset of a log: a dataset reached from two episodes
+    is refused.
+
+    Holds one small entry per dataset (its address -> the episode), so that tens of thousands
+    of episodes cost a few MiB; the key naming the first episode's dataset is looked up again
+    only for the message, by ``locate(episode, identity)``.
+    """
+
+    def __init__(self, locate):
+        self._locate = locate
+        self._owner: dict = {}
+        self._fileno = None
+
+    def claim(self, ident, episode: int):
+        """Record ``ident`` = (file number, address) for ``episode``; the other episode that
+        reached it first, or None."""
+        fileno, addr = ident
+        if self._fileno is None:
+            self._fileno = fileno
+        key = addr if fileno == self._fileno else ident
+        other = self._owner.setdefault(key, episode)
+        return None if other == episode else other
+
+    def where(self, episode: int, ident) -> str:
+        """The key by which ``episode`` reaches dataset ``ident`` (for messages)."""
+        return self._locate(episode, ident)
+
+
 class H5Access:
     """Arrays inside one HDF5 group (``group`` is an open ``h5py.Group``).
 
@@ -171,9 +200,8 @@ class H5Access:
         group, :data:`~goalkit.logs.limits.MAX_LOG_ROWS` for a flat log).
     episode : int, optional
         The episode the group holds (errors name it and are then per-episode problems).
-    seen : dict, optional
-        Shared by the episodes of one log: dataset identity -> (episode, key); a dataset
-        reached from two episodes is refused.
+    seen : DatasetOwners, optional
+        Shared by the episodes of one log; a dataset reached from two episodes is refused.
     """
 
     def __init__(self, group, file, *, file_size=None, max_rows=limits.MAX_LOG_ROWS, episode=None,
@@ -275,11 +303,11 @@ class H5Access:
                     ident = (info.fileno, info.addr)
             except READ_ERRORS as exc:
                 raise self._error(f"cannot read the dataset's header ({short(exc)})", key) from exc
-            other = self.seen.setdefault(ident, (self.episode, self.where(key)))
-            if other[0] != self.episode:
-                raise self._error(f"is the same dataset as key {other[1]} of episode {other[0]} (a "
-                                  f"link or key shared by episodes); expected each episode to hold "
-                                  f"its own data", key)
+            other = self.seen.claim(ident, self.episode)
+            if other is not None:
+                raise self._error(f"is the same dataset as key {self.seen.where(other, ident)} of episode "
+                                  f"{other} (a link or key shared by episodes); expected each episode "
+                                  f"to hold its own data", key)
         return (dsid, shape, dtype)
 
     def _fileno(self) -> int:

@@ -22,7 +22,7 @@ import h5py
 
 from goalkit.errors import LogError
 from goalkit.logs import limits
-from goalkit.logs.access import READ_ERRORS, H5Access, describe_link, guard, open_h5, short
+from goalkit.logs.access import READ_ERRORS, DatasetOwners, H5Access, describe_link, guard, open_h5, short
 from goalkit.logs import access
 from goalkit.logs.checks import MAX_WIDTH
 from goalkit.logs.episodic import EpisodicSource, join_parts, plan_episode, read_episode
@@ -63,7 +63,9 @@ def match_groups(h5file, pattern: str, file=None) -> list[str]:
     """
     file = h5file.filename if file is None else file
     level = [("", h5file)]
-    for part in pattern.strip("/").split("/"):
+    parts = pattern.strip("/").split("/")
+    for depth, part in enumerate(parts):
+        last = depth == len(parts) - 1
         nxt = []
         for p, group in level:
             names = [n for n in group.keys() if fnmatch.fnmatchcase(n, part)]
@@ -71,20 +73,27 @@ def match_groups(h5file, pattern: str, file=None) -> list[str]:
                 path = f"{p}/{n}" if p else n
                 obj = linked(group, n, file, path)
                 if isinstance(obj, h5py.Group):
-                    nxt.append((path, obj))
+                    # the episode groups themselves are not kept open (tens of thousands of
+                    # open groups hold HDF5 memory): only their identity
+                    nxt.append((path, _identity(obj, file, path) if last else obj))
         level = nxt
     seen = {}
-    for path, obj in level:
-        try:
-            info = h5py.h5o.get_info(obj.id)
-        except READ_ERRORS as exc:
-            raise LogError(f"cannot read the group, the file may be corrupt ({short(exc)})", file=file,
-                           key=path) from None
-        other = seen.setdefault((info.fileno, info.addr), path)
+    for path, ident in level:
+        other = seen.setdefault(ident, path)
         if other != path:
             raise LogError(f"is the same group as {other} (a link); expected each episode group to "
                            f"hold its own data", file=file, key=path)
     return [path for path, _ in level]
+
+
+def _identity(group, file, path) -> tuple:
+    """(file number, address) of an open group: what makes two names the same group."""
+    try:
+        info = h5py.h5o.get_info(group.id)
+    except READ_ERRORS as exc:
+        raise LogError(f"cannot read the group, the file may be corrupt ({short(exc)})", file=file,
+                       key=path) from None
+    return (info.fileno, info.addr)
 
 
 class GroupedSource(EpisodicSource):
@@ -111,7 +120,7 @@ class GroupedSource(EpisodicSource):
         problem, through :func:`~goalkit.logs.episodic.plan_episode`)."""
         keys = plan_keys(self.layout)
         fileno = h5py.h5o.get_info(h5.id).fileno
-        seen, metas, problems = {}, [], []
+        seen, metas, problems = DatasetOwners(lambda e, ident: self._locate(h5, e, ident)), [], []
         for e, path in enumerate(self.groups):
             with guard(self.path, path, e, "cannot open the episode group"):
                 gid = h5py.h5g.open(h5.id, path.encode("utf-8"))
@@ -134,6 +143,27 @@ class GroupedSource(EpisodicSource):
             else:
                 self._planned(acc)
         return metas, problems
+
+    def _locate(self, h5, episode: int, ident) -> str:
+        """The key of ``episode`` that reaches the dataset ``ident`` (for a message)."""
+        acc = self._episode_access(h5, episode)
+        for key in self._layout_keys():
+            try:
+                info = acc._lookup(key)
+                if info is not None:
+                    obj = h5py.h5o.get_info(info[0])
+                    if (obj.fileno, obj.addr) == tuple(ident):
+                        return acc.where(key)
+            except (LogError, *READ_ERRORS):
+                continue
+        return f"{self.groups[episode]}/?"
+
+    def _layout_keys(self) -> list:
+        lay, k = self.layout, self.layout.keys
+        keys = [k.action, *lay.observation_keys(), *lay.next_observation_keys()]
+        keys += [getattr(k, r) for r in ("reward", "success", "termination", "time_limit", "task_goal",
+                                         "frame", "task")]
+        return [key for key in keys if key is not None]
 
     def _episode_access(self, h5, e, seen=None) -> H5Access:
         with guard(self.path, self.groups[e], e, "cannot open the episode group"):

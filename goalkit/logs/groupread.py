@@ -210,7 +210,7 @@ def plan_keys(layout):
 _STEP_ROLES = ("reward", "success", "termination", "time_limit", "task_goal")
 
 
-def plan_group(gid, prefix: str, layout, episode: int, seen: dict, fileno: int, file_size,
+def plan_group(gid, prefix: str, layout, episode: int, seen, fileno: int, file_size,
                max_rows: int, max_row_values: int, max_width: int, max_attr_values: int):
     """One episode group's plan with low-level calls, or None to leave it to the general planning.
 
@@ -237,8 +237,7 @@ def _plan_group(gid, prefix, layout, episode, seen, fileno, file_size, max_rows,
         link = links.get_info(raw)
         if link.type != _HARD:
             raise _Refused
-        other = seen.setdefault((fileno, link.u), (episode, f"{prefix}/{key}" if prefix else key))
-        if other[0] != episode:
+        if seen.claim((fileno, link.u), episode) is not None:
             raise _Refused
         dsid = h5py.h5d.open(gid, raw)
         dims = dsid.shape
