@@ -176,6 +176,14 @@ class DatasetOwners:
         other = self._owner.setdefault(key, episode)
         return None if other == episode else other
 
+    def owners(self) -> dict:
+        """The live table: address (or identity, for another file) -> episode."""
+        return self._owner
+
+    def claims(self, start: int = 0) -> list:
+        """``(address, episode)`` of the datasets first reached by episodes from ``start`` on."""
+        return [(k, e) for k, e in self._owner.items() if e >= start and not isinstance(k, tuple)]
+
     def where(self, episode: int, ident) -> str:
         """The key by which ``episode`` reaches dataset ``ident`` (for messages)."""
         return self._locate(episode, ident)

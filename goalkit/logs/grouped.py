@@ -28,6 +28,7 @@ from goalkit.logs.checks import MAX_WIDTH
 from goalkit.logs.episodic import EpisodicSource, join_parts, plan_episode, read_episode
 from goalkit.logs.groupread import plan_group, plan_keys, read_groups, read_plan
 from goalkit.logs.naming import natural_sorted
+from goalkit.logs.planspawn import finish_helper, helper_split, start_helper, stop_helper
 
 
 def linked(group, name: str, file, path: str | None = None):
@@ -117,11 +118,41 @@ class GroupedSource(EpisodicSource):
     def _plan_groups(self, h5):
         """Plan every episode group, in order (as :meth:`_plan_all`; most groups through
         :func:`~goalkit.logs.groupread.plan_group`'s low-level calls, the rest, and every
-        problem, through :func:`~goalkit.logs.episodic.plan_episode`)."""
+        problem, through :func:`~goalkit.logs.episodic.plan_episode`).
+
+        With many groups and a second CPU, a helper process plans the last part of them at the
+        same time (:mod:`goalkit.logs.planhelper`); its metas are taken only when it finished
+        cleanly, and any episode where the two parts could disagree (a problem, a dataset both
+        parts reached) is planned again here, so the result is the serial one.
+        """
+        total = len(self.groups)
+        split = helper_split(total, self.skip_bad_episodes)
+        helper = None if split is None else start_helper(self, split)
+        stop = total if helper is None else split
+        seen = DatasetOwners(lambda e, ident: self._locate(h5, e, ident))
+        try:
+            metas, problems = self._plan_range(h5, seen, 0, stop)
+        except BaseException:
+            if helper is not None:
+                stop_helper(helper)
+            raise
+        if helper is not None:
+            found = finish_helper(helper)
+            if found is not None and len(found["metas"]) == total - stop:
+                self._adopt_helper(h5, seen, stop, found, metas, problems)
+            else:
+                more, more_problems = self._plan_range(h5, seen, stop, total)
+                metas += more
+                problems += more_problems
+        return metas, problems
+
+    def _plan_range(self, h5, seen, start, stop):
+        """Plan episode groups ``start .. stop - 1`` (see :meth:`_plan_groups`)."""
         keys = plan_keys(self.layout)
         fileno = h5py.h5o.get_info(h5.id).fileno
-        seen, metas, problems = DatasetOwners(lambda e, ident: self._locate(h5, e, ident)), [], []
-        for e, path in enumerate(self.groups):
+        metas, problems = [], []
+        for e in range(start, stop):
+            path = self.groups[e]
             with guard(self.path, path, e, "cannot open the episode group"):
                 gid = h5py.h5g.open(h5.id, path.encode("utf-8"))
             found = None if keys is None else plan_group(
@@ -131,18 +162,52 @@ class GroupedSource(EpisodicSource):
                 metas.append(found[0])
                 self._note_dtypes(found[1])
                 continue
-            acc = H5Access(h5py.Group(gid), self.path, file_size=self.file_size,
-                           max_rows=limits.MAX_EPISODE_STEPS, episode=e, seen=seen)
-            try:
-                metas.append(plan_episode(acc, self.layout, e))
-            except LogError as exc:
-                if exc.episode is None:
-                    raise
-                metas.append(None)
-                problems.append((e, exc))
-            else:
-                self._planned(acc)
+            meta, problem = self._plan_general(gid, e, seen)
+            metas.append(meta)
+            if problem is not None:
+                problems.append((e, problem))
         return metas, problems
+
+    def _plan_general(self, gid, e, seen):
+        """``(meta, None)`` or ``(None, LogError)`` of one episode through plan_episode."""
+        acc = H5Access(h5py.Group(gid), self.path, file_size=self.file_size,
+                       max_rows=limits.MAX_EPISODE_STEPS, episode=e, seen=seen)
+        try:
+            meta = plan_episode(acc, self.layout, e)
+        except LogError as exc:
+            if exc.episode is None:
+                raise
+            return None, exc
+        self._planned(acc)
+        return meta, None
+
+    def _adopt_helper(self, h5, seen, start, found, metas, problems):
+        """Take the helper's metas of groups ``start ..``; plan again here every episode it
+        could not plan and every episode that reached a dataset an earlier one reached."""
+        owners = seen.owners()
+        again = {start + i for i, m in enumerate(found["metas"]) if m is None}
+        claims: dict = {}
+        for addr, e in found["owners"]:                  # in episode order
+            claims.setdefault(e, []).append(addr)
+            other = owners.setdefault(addr, e)
+            if other != e:
+                again.add(e)
+        if found["key_dtypes"] is None:
+            self.key_dtypes = None
+        else:
+            self._note_dtypes(found["key_dtypes"])
+        for i, meta in enumerate(found["metas"]):
+            e = start + i
+            if e in again:
+                with guard(self.path, self.groups[e], e, "cannot open the episode group"):
+                    gid = h5py.h5g.open(h5.id, self.groups[e].encode("utf-8"))
+                for addr in claims.get(e, ()):           # what it reached in the helper's run
+                    if owners.get(addr) == e:
+                        del owners[addr]
+                meta, problem = self._plan_general(gid, e, seen)
+                if problem is not None:
+                    problems.append((e, problem))
+            metas.append(meta)
 
     def _locate(self, h5, episode: int, ident) -> str:
         """The key of ``episode`` that reaches the dataset ``ident`` (for a message)."""
