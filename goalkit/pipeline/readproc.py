@@ -23,13 +23,14 @@ import struct
 import subprocess
 import sys
 
-from goalkit.logs.flat import FlatSource
 from goalkit.logs.grouped import GroupedSource
 from goalkit.logs.perfile import PerFileSource
 from goalkit.logs.planspawn import cpus
 
-#: Sources read in a reader process (their ``read`` is pure file I/O and they pickle small).
-SOURCES = (GroupedSource, FlatSource, PerFileSource)
+#: Sources read in a reader process: their ``read`` is pure file I/O, they pickle small, and it
+#: goes one small array at a time (a flat log reads large slices, which gain nothing from it:
+#: measured, the reader's start-up made the flat 1M build of bench_build.py 20 % slower).
+SOURCES = (GroupedSource, PerFileSource)
 #: Fewest chunks, and transitions, worth a reader process (its start-up takes about 0.5 s).
 MIN_CHUNKS = 4
 MIN_TRANSITIONS = 100_000
