@@ -14,6 +14,7 @@ import pytest
 
 from goalkit.demo import make_demo
 from goalkit.errors import LogError
+from goalkit.logs import open_logs
 from goalkit.pipeline import readproc
 from goalkit.pipeline.build import build
 from goalkit.pipeline.plan import make_plan
@@ -101,3 +102,27 @@ def test_reader_is_left_out_for_small_builds_and_one_cpu(tmp_path, monkeypatch):
     assert readproc.wanted(source, chunks)
     monkeypatch.setattr(readproc, "cpus", lambda: 1)
     assert not readproc.wanted(source, chunks)
+
+
+def test_reader_process_serves_per_file_logs(tmp_path):
+    """Chunks of a folder of per-episode .npz files, read by the reader process, equal
+    ``source.read`` of the same chunks (the arrays numpy wrote)."""
+    rng = np.random.default_rng(9)
+    folder = tmp_path / "eps"
+    folder.mkdir()
+    for i, T in enumerate([4, 2, 5, 3, 6, 2, 3]):
+        np.savez(folder / f"ep{i}.npz", obs=rng.normal(size=(T + 1, 4)), act=rng.normal(size=(T, 2)).astype(np.float32),
+                 rew=rng.normal(size=T).astype(np.float32))
+    source = open_logs(folder, {"shape": "per-file", "file_pattern": "*.npz",
+                                "keys": {"observation": "obs", "action": "act", "reward": "rew"}})
+    bounds = [(0, 2), (2, 3), (3, 6), (6, 7)]
+    reader = readproc.ChunkReader(source, bounds)
+    try:
+        for a, b in bounds:
+            got, ref = reader.read(a, b), source.read(a, b)
+            assert reader.proc is not None                     # delivered by the reader process
+            for name in ("observations", "actions", "rewards", "offsets", "episode_ids"):
+                x, y = getattr(got, name), getattr(ref, name)
+                assert x.dtype == y.dtype and x.tobytes() == y.tobytes(), name
+    finally:
+        reader.close()
