@@ -150,14 +150,14 @@ class GroupedSource(EpisodicSource):
         """Plan episode groups ``start .. stop - 1`` (see :meth:`_plan_groups`)."""
         keys = plan_keys(self.layout)
         fileno = h5py.h5o.get_info(h5.id).fileno
-        metas, problems = [], []
+        metas, problems, types = [], [], {}
         for e in range(start, stop):
             path = self.groups[e]
             with guard(self.path, path, e, "cannot open the episode group"):
                 gid = h5py.h5g.open(h5.id, path.encode("utf-8"))
             found = None if keys is None else plan_group(
                 gid, path.strip("/"), self.layout, e, seen, fileno, self.file_size, limits.MAX_EPISODE_STEPS,
-                limits.MAX_ROW_VALUES, MAX_WIDTH, access.MAX_ATTR_VALUES)
+                limits.MAX_ROW_VALUES, MAX_WIDTH, access.MAX_ATTR_VALUES, types)
             if found is not None:
                 metas.append(found[0])
                 self._note_dtypes(found[1])

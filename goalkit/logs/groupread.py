@@ -211,23 +211,26 @@ _STEP_ROLES = ("reward", "success", "termination", "time_limit", "task_goal")
 
 
 def plan_group(gid, prefix: str, layout, episode: int, seen, fileno: int, file_size,
-               max_rows: int, max_row_values: int, max_width: int, max_attr_values: int):
+               max_rows: int, max_row_values: int, max_width: int, max_attr_values: int, types=None):
     """One episode group's plan with low-level calls, or None to leave it to the general planning.
 
     Returns ``(EpisodeMeta, {key: stored dtype})`` when every check that
     :func:`~goalkit.logs.episodic.plan_episode` makes passes (the same meta it would return);
     None on anything unusual -- a missing key, a link, a shape or dtype it would refuse, a
     limit -- so that the general planning names the problem as it always has.
+
+    ``types`` (a dict shared by the calls of one scan) keeps each key's last HDF5 type and its
+    numpy dtype: an equal type (``H5Tequal``) has the same dtype, found without converting again.
     """
     try:
         return _plan_group(gid, prefix, layout, episode, seen, fileno, file_size, max_rows,
-                           max_row_values, max_width, max_attr_values)
+                           max_row_values, max_width, max_attr_values, {} if types is None else types)
     except (_Refused, *READ_ERRORS):
         return None
 
 
 def _plan_group(gid, prefix, layout, episode, seen, fileno, file_size, max_rows, max_row_values, max_width,
-                max_attr_values):
+                max_attr_values, types):
     k = layout.keys
     links = gid.links
     info = {}
@@ -241,7 +244,13 @@ def _plan_group(gid, prefix, layout, episode, seen, fileno, file_size, max_rows,
             raise _Refused
         dsid = h5py.h5d.open(gid, raw)
         dims = dsid.shape
-        dtype = dsid.dtype
+        tid = dsid.get_type()
+        known = types.get(key)
+        if known is not None and known[0].equal(tid):
+            dtype = known[1]
+        else:
+            dtype = tid.dtype
+            types[key] = (tid, dtype)
         if not dims:
             raise _Refused
         per_row = 1
