@@ -26,7 +26,8 @@ from goalkit.logs.access import READ_ERRORS, DatasetOwners, H5Access, describe_l
 from goalkit.logs import access
 from goalkit.logs.checks import MAX_WIDTH
 from goalkit.logs.episodic import EpisodicSource, join_parts, plan_episode, read_episode
-from goalkit.logs.groupread import plan_group, plan_keys, read_groups, read_plan
+from goalkit.logs.groupplan import plan_group, plan_keys
+from goalkit.logs.groupread import read_groups, read_plan
 from goalkit.logs.naming import natural_sorted
 from goalkit.logs.planspawn import finish_helper, helper_split, start_helper, stop_helper
 

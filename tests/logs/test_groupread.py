@@ -1,4 +1,4 @@
-"""The grouped reader's one-pass low-level read (goalkit/logs/groupread.py).
+"""The grouped reader's low-level planning and one-pass read (goalkit/logs/groupplan.py, groupread.py).
 
 Reference: the arrays h5py wrote (the truth of logs_testdata) and the reader's general path,
 which reads each dataset through h5py's high-level API; the fast path must give the same
