@@ -152,6 +152,43 @@ def link_problem(group, key: str) -> str | None:
 _HARD = h5py.h5l.TYPE_HARD
 
 
+class DatasetOwners:
+    """Which episode first reached each dataset of a log: a dataset reached from two episodes
+    is refused.
+
+    Holds one small entry per dataset (its address -> the episode), so that tens of thousands
+    of episodes cost a few MiB; the key naming the first episode's dataset is looked up again
+    only for the message, by ``locate(episode, identity)``.
+    """
+
+    def __init__(self, locate):
+        self._locate = locate
+        self._owner: dict = {}
+        self._fileno = None
+
+    def claim(self, ident, episode: int):
+        """Record ``ident`` = (file number, address) for ``episode``; the other episode that
+        reached it first, or None."""
+        fileno, addr = ident
+        if self._fileno is None:
+            self._fileno = fileno
+        key = addr if fileno == self._fileno else ident
+        other = self._owner.setdefault(key, episode)
+        return None if other == episode else other
+
+    def owners(self) -> dict:
+        """The live table: address (or identity, for another file) -> episode."""
+        return self._owner
+
+    def claims(self, start: int = 0) -> list:
+        """``(address, episode)`` of the datasets first reached by episodes from ``start`` on."""
+        return [(k, e) for k, e in self._owner.items() if e >= start and not isinstance(k, tuple)]
+
+    def where(self, episode: int, ident) -> str:
+        """The key by which ``episode`` reaches dataset ``ident`` (for messages)."""
+        return self._locate(episode, ident)
+
+
 class H5Access:
     """Arrays inside one HDF5 group (``group`` is an open ``h5py.Group``).
 
@@ -171,9 +208,8 @@ class H5Access:
         group, :data:`~goalkit.logs.limits.MAX_LOG_ROWS` for a flat log).
     episode : int, optional
         The episode the group holds (errors name it and are then per-episode problems).
-    seen : dict, optional
-        Shared by the episodes of one log: dataset identity -> (episode, key); a dataset
-        reached from two episodes is refused.
+    seen : DatasetOwners, optional
+        Shared by the episodes of one log; a dataset reached from two episodes is refused.
     """
 
     def __init__(self, group, file, *, file_size=None, max_rows=limits.MAX_LOG_ROWS, episode=None,
@@ -186,13 +222,20 @@ class H5Access:
         self.episode = episode
         self.seen = seen
         self._info = {}
+        self._where = {}
+        self._fno = None
 
     def where(self, key: str) -> str:
         """The key's full path inside the file, for messages."""
-        key = base_key(key)
-        if key.startswith("/"):
-            return key.strip("/")
-        return f"{self.prefix}/{key}" if self.prefix else key
+        found = self._where.get(key)
+        if found is None:
+            key0 = base_key(key)
+            if key0.startswith("/"):
+                found = key0.strip("/")
+            else:
+                found = f"{self.prefix}/{key0}" if self.prefix else key0
+            self._where[key] = found
+        return found
 
     def _error(self, message, key) -> LogError:
         return LogError(message, file=self.file, key=self.where(key), episode=self.episode)
@@ -218,11 +261,27 @@ class H5Access:
         return self._info[key]
 
     def _open(self, key: str):
-        problem = link_problem(self.group, key)
-        if problem is not None:
-            raise self._error(problem, key)
+        raw = key.encode("utf-8")
+        hard_addr = None
+        if "/" not in key:                   # one component: one look-up of the link
+            links = self.group.id.links
+            try:
+                link = links.get_info(raw)
+            except READ_ERRORS:
+                link = None                  # missing, or damaged: the look-ups below name the problem
+                try:
+                    if not links.exists(raw):
+                        return None          # missing (what _why_not_opened would find)
+                except READ_ERRORS:
+                    pass
+            if link is not None and link.type == _HARD:
+                hard_addr = link.u           # the object's address: its identity, without opening it
+        if hard_addr is None:
+            problem = link_problem(self.group, key)
+            if problem is not None:
+                raise self._error(problem, key)
         try:
-            dsid = h5py.h5d.open(self.group.id, key.encode("utf-8"))
+            dsid = h5py.h5d.open(self.group.id, raw)
         except KeyError as exc:              # missing, not a dataset, or a damaged object header
             return self._why_not_opened(key, exc)
         except READ_ERRORS as exc:
@@ -245,16 +304,25 @@ class H5Access:
                                       file=self.file, key=self.where(key), episode=self.episode)
         if self.seen is not None:
             try:
-                info = h5py.h5o.get_info(dsid)
-                ident = (info.fileno, info.addr)
+                if hard_addr is not None:
+                    ident = (self._fileno(), hard_addr)
+                else:
+                    info = h5py.h5o.get_info(dsid)
+                    ident = (info.fileno, info.addr)
             except READ_ERRORS as exc:
                 raise self._error(f"cannot read the dataset's header ({short(exc)})", key) from exc
-            other = self.seen.setdefault(ident, (self.episode, self.where(key)))
-            if other[0] != self.episode:
-                raise self._error(f"is the same dataset as key {other[1]} of episode {other[0]} (a "
-                                  f"link or key shared by episodes); expected each episode to hold "
-                                  f"its own data", key)
+            other = self.seen.claim(ident, self.episode)
+            if other is not None:
+                raise self._error(f"is the same dataset as key {self.seen.where(other, ident)} of episode "
+                                  f"{other} (a link or key shared by episodes); expected each episode "
+                                  f"to hold its own data", key)
         return (dsid, shape, dtype)
+
+    def _fileno(self) -> int:
+        """The HDF5 file number of the group's file (the first half of an object's identity)."""
+        if self._fno is None:
+            self._fno = h5py.h5o.get_info(self.group.id).fileno
+        return self._fno
 
     def _why_not_opened(self, key, exc):
         """None when ``key`` is missing or names a group; a LogError when its object is damaged."""
@@ -321,16 +389,25 @@ class H5Access:
         Its declared shape is checked first: an attribute holding more than
         :data:`MAX_ATTR_VALUES` values is refused rather than read.
         """
+        raw = key.encode("utf-8")
         try:
-            if key not in self.group.attrs:
+            if not h5py.h5a.exists(self.group.id, raw):
                 return None
-            n = math.prod(h5py.h5a.open(self.group.id, key.encode("utf-8")).shape)
+            aid = h5py.h5a.open(self.group.id, raw)
+            shape = aid.shape
+            n = math.prod(shape)
         except READ_ERRORS:
             return None
         if n > MAX_ATTR_VALUES:
             raise self._error(f"attribute declares {n} values; expected at most {MAX_ATTR_VALUES} "
                               f"(a task id is one value)", key)
         try:
+            dtype = aid.dtype
+            if dtype.kind in "iuf" and not dtype.shape:  # numbers: read them directly (cheap)
+                out = np.empty(shape, dtype=dtype)
+                if out.size:
+                    aid.read(out, mtype=memory_type(dtype))
+                return out[()] if out.ndim == 0 else out
             return self.group.attrs[key]
         except READ_ERRORS:
             return None
@@ -386,9 +463,33 @@ def open_h5(path):
     try:
         if not h5py.is_hdf5(path):
             raise LogError("not an HDF5 file (no HDF5 signature); expected an .h5 file", file=path)
-        return h5py.File(path, "r")
+        h5 = h5py.File(path, "r")
     except LogError:
         raise
     except READ_ERRORS as exc:
         raise LogError(f"cannot open as HDF5, the file may be truncated or corrupt ({short(exc)})",
                        file=path) from None
+    bound_metadata_cache(h5)
+    return h5
+
+
+#: Size of HDF5's metadata cache for a log opened for reading (fixed: it never grows).
+METADATA_CACHE_BYTES = 1 << 22
+
+
+def bound_metadata_cache(h5, nbytes: int = METADATA_CACHE_BYTES) -> None:
+    """Fix the size of an open file's HDF5 metadata cache at ``nbytes``.
+
+    By default HDF5 lets the cache grow while many objects are opened; scanning the object
+    headers of tens of thousands of episode groups then costs hundreds of MiB and slows every
+    look-up. A fixed small cache keeps memory flat whatever the number of episodes (the headers
+    of one episode fit many times over).
+    """
+    try:
+        cfg = h5.id.get_mdc_config()
+        cfg.set_initial_size = True
+        cfg.initial_size = cfg.min_size = cfg.max_size = int(nbytes)
+        cfg.incr_mode = cfg.decr_mode = cfg.flash_incr_mode = 0     # H5C_*_off: never resized
+        h5.id.set_mdc_config(cfg)
+    except READ_ERRORS:   # an HDF5 that refuses the setting still reads correctly
+        pass

@@ -250,7 +250,12 @@ class EpisodicSource(BaseSource):
                     raise
                 metas.append(None)
                 problems.append((e, exc))
+            else:
+                self._planned(acc)
         return metas, problems
+
+    def _planned(self, acc) -> None:
+        """Called with each episode's access object after it was planned (readers may look)."""
 
     def _adopt(self, metas, problems):
         """Check that episodes agree with the first good one, then apply the skip policy."""

@@ -22,9 +22,14 @@ import h5py
 
 from goalkit.errors import LogError
 from goalkit.logs import limits
-from goalkit.logs.access import READ_ERRORS, H5Access, describe_link, guard, open_h5, short
-from goalkit.logs.episodic import EpisodicSource, join_parts, read_episode
+from goalkit.logs.access import READ_ERRORS, DatasetOwners, H5Access, describe_link, guard, open_h5, short
+from goalkit.logs import access
+from goalkit.logs.checks import MAX_WIDTH
+from goalkit.logs.episodic import EpisodicSource, join_parts, plan_episode, read_episode
+from goalkit.logs.groupplan import plan_group, plan_keys
+from goalkit.logs.groupread import read_groups, read_plan
 from goalkit.logs.naming import natural_sorted
+from goalkit.logs.planspawn import finish_helper, helper_split, start_helper, stop_helper
 
 
 def linked(group, name: str, file, path: str | None = None):
@@ -60,7 +65,9 @@ def match_groups(h5file, pattern: str, file=None) -> list[str]:
     """
     file = h5file.filename if file is None else file
     level = [("", h5file)]
-    for part in pattern.strip("/").split("/"):
+    parts = pattern.strip("/").split("/")
+    for depth, part in enumerate(parts):
+        last = depth == len(parts) - 1
         nxt = []
         for p, group in level:
             names = [n for n in group.keys() if fnmatch.fnmatchcase(n, part)]
@@ -68,20 +75,27 @@ def match_groups(h5file, pattern: str, file=None) -> list[str]:
                 path = f"{p}/{n}" if p else n
                 obj = linked(group, n, file, path)
                 if isinstance(obj, h5py.Group):
-                    nxt.append((path, obj))
+                    # the episode groups themselves are not kept open (tens of thousands of
+                    # open groups hold HDF5 memory): only their identity
+                    nxt.append((path, _identity(obj, file, path) if last else obj))
         level = nxt
     seen = {}
-    for path, obj in level:
-        try:
-            info = h5py.h5o.get_info(obj.id)
-        except READ_ERRORS as exc:
-            raise LogError(f"cannot read the group, the file may be corrupt ({short(exc)})", file=file,
-                           key=path) from None
-        other = seen.setdefault((info.fileno, info.addr), path)
+    for path, ident in level:
+        other = seen.setdefault(ident, path)
         if other != path:
             raise LogError(f"is the same group as {other} (a link); expected each episode group to "
                            f"hold its own data", file=file, key=path)
     return [path for path, _ in level]
+
+
+def _identity(group, file, path) -> tuple:
+    """(file number, address) of an open group: what makes two names the same group."""
+    try:
+        info = h5py.h5o.get_info(group.id)
+    except READ_ERRORS as exc:
+        raise LogError(f"cannot read the group, the file may be corrupt ({short(exc)})", file=file,
+                       key=path) from None
+    return (info.fileno, info.addr)
 
 
 class GroupedSource(EpisodicSource):
@@ -90,6 +104,7 @@ class GroupedSource(EpisodicSource):
     def __init__(self, path, layout, skip_bad_episodes=False, advance=None):
         super().__init__(path, layout, skip_bad_episodes, advance)
         self.files = [self.path]
+        self.key_dtypes = {}            # key -> its stored dtype, None once two episodes differ
         self.file_size = limits.regular_file(self.path, what="an HDF5 file")
         with open_h5(self.path) as h5, guard(self.path, what="cannot read the log"):
             self.groups = match_groups(h5, layout.episode_groups, self.path)
@@ -98,15 +113,155 @@ class GroupedSource(EpisodicSource):
                 raise LogError(f"no groups match episode_groups = \"{layout.episode_groups}\"; top-level "
                                f"names: {', '.join(top) if top else 'none'}", file=self.path,
                                key="episode_groups")
-            seen = {}
-            metas, problems = self._plan_all(self._episode_access(h5, e, seen)
-                                             for e in range(len(self.groups)))
+            metas, problems = self._plan_groups(h5)
         self._adopt(metas, problems)
+
+    def _plan_groups(self, h5):
+        """Plan every episode group, in order (as :meth:`_plan_all`; most groups through
+        :func:`~goalkit.logs.groupread.plan_group`'s low-level calls, the rest, and every
+        problem, through :func:`~goalkit.logs.episodic.plan_episode`).
+
+        With many groups and a second CPU, a helper process plans the last part of them at the
+        same time (:mod:`goalkit.logs.planhelper`); its metas are taken only when it finished
+        cleanly, and any episode where the two parts could disagree (a problem, a dataset both
+        parts reached) is planned again here, so the result is the serial one.
+        """
+        total = len(self.groups)
+        split = helper_split(total, self.skip_bad_episodes)
+        helper = None if split is None else start_helper(self, split)
+        stop = total if helper is None else split
+        seen = DatasetOwners(lambda e, ident: self._locate(h5, e, ident))
+        try:
+            metas, problems = self._plan_range(h5, seen, 0, stop)
+        except BaseException:
+            if helper is not None:
+                stop_helper(helper)
+            raise
+        if helper is not None:
+            found = finish_helper(helper)
+            if found is not None and len(found["metas"]) == total - stop:
+                self._adopt_helper(h5, seen, stop, found, metas, problems)
+            else:
+                more, more_problems = self._plan_range(h5, seen, stop, total)
+                metas += more
+                problems += more_problems
+        return metas, problems
+
+    def _plan_range(self, h5, seen, start, stop):
+        """Plan episode groups ``start .. stop - 1`` (see :meth:`_plan_groups`)."""
+        keys = plan_keys(self.layout)
+        fileno = h5py.h5o.get_info(h5.id).fileno
+        metas, problems, types = [], [], {}
+        for e in range(start, stop):
+            path = self.groups[e]
+            with guard(self.path, path, e, "cannot open the episode group"):
+                gid = h5py.h5g.open(h5.id, path.encode("utf-8"))
+            found = None if keys is None else plan_group(
+                gid, path.strip("/"), self.layout, e, seen, fileno, self.file_size, limits.MAX_EPISODE_STEPS,
+                limits.MAX_ROW_VALUES, MAX_WIDTH, access.MAX_ATTR_VALUES, types)
+            if found is not None:
+                metas.append(found[0])
+                self._note_dtypes(found[1])
+                continue
+            meta, problem = self._plan_general(gid, e, seen)
+            metas.append(meta)
+            if problem is not None:
+                problems.append((e, problem))
+        return metas, problems
+
+    def _plan_general(self, gid, e, seen):
+        """``(meta, None)`` or ``(None, LogError)`` of one episode through plan_episode."""
+        acc = H5Access(h5py.Group(gid), self.path, file_size=self.file_size,
+                       max_rows=limits.MAX_EPISODE_STEPS, episode=e, seen=seen)
+        try:
+            meta = plan_episode(acc, self.layout, e)
+        except LogError as exc:
+            if exc.episode is None:
+                raise
+            return None, exc
+        self._planned(acc)
+        return meta, None
+
+    def _adopt_helper(self, h5, seen, start, found, metas, problems):
+        """Take the helper's metas of groups ``start ..``; plan again here every episode it
+        could not plan and every episode that reached a dataset an earlier one reached."""
+        owners = seen.owners()
+        again = {start + i for i, m in enumerate(found["metas"]) if m is None}
+        claims: dict = {}
+        for addr, e in found["owners"]:                  # in episode order
+            claims.setdefault(e, []).append(addr)
+            other = owners.setdefault(addr, e)
+            if other != e:
+                again.add(e)
+        if found["key_dtypes"] is None:
+            self.key_dtypes = None
+        else:
+            self._note_dtypes(found["key_dtypes"])
+        for i, meta in enumerate(found["metas"]):
+            e = start + i
+            if e in again:
+                with guard(self.path, self.groups[e], e, "cannot open the episode group"):
+                    gid = h5py.h5g.open(h5.id, self.groups[e].encode("utf-8"))
+                for addr in claims.get(e, ()):           # what it reached in the helper's run
+                    if owners.get(addr) == e:
+                        del owners[addr]
+                meta, problem = self._plan_general(gid, e, seen)
+                if problem is not None:
+                    problems.append((e, problem))
+            metas.append(meta)
+
+    def _locate(self, h5, episode: int, ident) -> str:
+        """The key of ``episode`` that reaches the dataset ``ident`` (for a message)."""
+        acc = self._episode_access(h5, episode)
+        for key in self._layout_keys():
+            try:
+                info = acc._lookup(key)
+                if info is not None:
+                    obj = h5py.h5o.get_info(info[0])
+                    if (obj.fileno, obj.addr) == tuple(ident):
+                        return acc.where(key)
+            except (LogError, *READ_ERRORS):
+                continue
+        return f"{self.groups[episode]}/?"
+
+    def _layout_keys(self) -> list:
+        lay, k = self.layout, self.layout.keys
+        keys = [k.action, *lay.observation_keys(), *lay.next_observation_keys()]
+        keys += [getattr(k, r) for r in ("reward", "success", "termination", "time_limit", "task_goal",
+                                         "frame", "task")]
+        return [key for key in keys if key is not None]
 
     def _episode_access(self, h5, e, seen=None) -> H5Access:
         with guard(self.path, self.groups[e], e, "cannot open the episode group"):
-            return H5Access(h5[self.groups[e]], self.path, file_size=self.file_size,
+            # the low-level open is several times cheaper than h5[path] (the path was checked
+            # to be a group of this file when the episodes were matched)
+            group = h5py.Group(h5py.h5g.open(h5.id, self.groups[e].encode("utf-8")))
+            return H5Access(group, self.path, file_size=self.file_size,
                             max_rows=limits.MAX_EPISODE_STEPS, episode=e, seen=seen)
+
+    def _planned(self, acc) -> None:
+        self._note_dtypes({key: info[2] for key, info in acc._info.items() if info is not None})
+
+    def _note_dtypes(self, dtypes: dict) -> None:
+        found = self.key_dtypes
+        if found is None:
+            return
+        for key, dtype in dtypes.items():
+            if found.setdefault(key, dtype) != dtype:
+                self.key_dtypes = None
+                return
+
+    def _fast_plan(self):
+        """What :func:`~goalkit.logs.groupread.read_groups` reads for this log (None: not served)."""
+        if not hasattr(self, "_fast"):
+            ref = next((m for m in self.metas if m is not None), None)
+            self._fast = None if ref is None else read_plan(self.layout, self.convention, self.key_dtypes,
+                                                            self.obs_dtype, self.action_dtype)
+            if self._fast is not None:
+                self._tails = {"actions": (ref.action_width,), "task_goals": (ref.goal_width,),
+                               "frames": ref.frame_shape or ()}
+                self._widths = ref.obs_widths
+        return self._fast
 
     def _key_of(self, episode, key):
         return f"{self.groups[episode]}/{key}" if key else self.groups[episode]
@@ -118,8 +273,13 @@ class GroupedSource(EpisodicSource):
             yield self._episode_access(h5, e)
 
     def _read_episodes(self, ids):
-        parts = []
+        fast = self._fast_plan()
         with open_h5(self.path) as h5:
+            if fast is not None:
+                cols = read_groups(h5, self.groups, self.metas, ids, fast, self._widths, self._tails, self.layout)
+                if cols is not None:
+                    return cols
+            parts = []
             for e in ids.tolist():
                 acc = self._episode_access(h5, e)
                 with guard(self.path, self.groups[e], e, "cannot read the episode"):

@@ -3,7 +3,9 @@
 Chunk ``k + 1`` is read from the logs (one thread) while chunk ``k`` is relabelled (another) and
 the engine writes chunk ``k - 1``; numpy, hashing and HDF5 I/O release the GIL for much of that
 work. Each chunk's rows are counted into the summary on the relabelling thread, in chunk order.
-Only the timing changes, never the rows (see :mod:`goalkit.pipeline.build`).
+With a second CPU and enough chunks, the chunks are read by a reader process instead
+(:mod:`goalkit.pipeline.readproc`), so that reading does not take turns with relabelling and
+writing for the GIL. Only the timing changes, never the rows (see :mod:`goalkit.pipeline.build`).
 """
 
 from __future__ import annotations
@@ -12,6 +14,8 @@ from collections import deque
 from concurrent.futures import ThreadPoolExecutor
 
 from goalkit.pipeline.chunk import relabel_chunk
+from goalkit.pipeline.readproc import ChunkReader
+from goalkit.pipeline.readproc import wanted as readproc_wanted
 
 #: Default output rows per chunk of a build in one process (bounds the build's memory).
 CHUNK_ROWS = 65_536
@@ -47,18 +51,25 @@ class InProcessProducer:
             count(rows)
             return rows
 
-        with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-read") as reader, \
-                ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-chunk") as pool:
-            pending: deque = deque()
-            for spec in self.chunks:
-                read = reader.submit(source.read, spec.start, spec.stop)
-                pending.append((spec, pool.submit(task, read)))
-                if len(pending) > LOOKAHEAD:
+        chunk_reader = ChunkReader(source, [(s.start, s.stop) for s in self.chunks]) \
+            if readproc_wanted(source, self.chunks) else None
+        read_chunk = source.read if chunk_reader is None else chunk_reader.read
+        try:
+            with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-read") as reader, \
+                    ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-chunk") as pool:
+                pending: deque = deque()
+                for spec in self.chunks:
+                    read = reader.submit(read_chunk, spec.start, spec.stop)
+                    pending.append((spec, pool.submit(task, read)))
+                    if len(pending) > LOOKAHEAD:
+                        done, job = pending.popleft()
+                        yield done, job.result()
+                while pending:
                     done, job = pending.popleft()
                     yield done, job.result()
-            while pending:
-                done, job = pending.popleft()
-                yield done, job.result()
+        finally:
+            if chunk_reader is not None:
+                chunk_reader.close()
 
     def finish(self) -> None:
         """Nothing to stop: the threads end with :meth:`rows`."""

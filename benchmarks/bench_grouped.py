@@ -1,0 +1,373 @@
+"""Build speed on logs shaped as users keep them: the demo's grouped HDF5 logs and recipe.
+
+    .venv/bin/python benchmarks/bench_grouped.py                    # 200k transitions (~1-2 min)
+    .venv/bin/python benchmarks/bench_grouped.py --large            # also 1M transitions (~5 min)
+    .venv/bin/python benchmarks/bench_grouped.py --workers 0        # skip the --workers 1/2 runs
+
+Logs: ``goalkit.demo.make_demo`` (one HDF5 group per episode, seven gzip datasets each, about
+47 transitions per episode): 4,250 episodes (about 200k transitions), and with ``--large``
+21,000 episodes (about 1M). Recipe: the demo's own (5 goals per transition: original, final,
+future x2, geometric with gamma 0.9; euclidean reward within the watering radius; 10 %
+validation; gzip output in chunks of 65,536 rows).
+
+Cases, each in a fresh process (so that the peak RSS is the case's own), in one run:
+
+* ``build``: ``goalkit.build`` of the demo recipe, one process;
+* ``build-workers-N``: the same with ``workers=N`` (local worker processes);
+* ``script``: a plain numpy + h5py relabelling script kept below (:func:`script_case`): reads
+  every episode group, draws the demo recipe's mixture per goal slot, scores the same reward,
+  and writes the same number of rows with comparable columns, gzip, in the same chunks;
+* ``floor``: low-level h5py reads of every dataset of every episode group (``h5g.open``,
+  ``h5d.open``, ``read`` into preallocated arrays), plus writing the very bytes the build
+  wrote (every column of the built set, read back untimed) through HDF5's own gzip filter;
+  only those reads and writes are timed.
+
+Also measured, once, outside the cases: the build's phases on the same logs, one after the
+other in one process (plan = ``make_plan``; read = ``source.read`` of every chunk; relabel =
+``relabel_chunk``; write = the same ``SetWriter`` calls as the build).
+
+Reported: wall and CPU seconds of each case (CPU: user + system of the case's process and its
+finished children), the ratios build/script and build/floor by wall time and by CPU time
+(speed ratios: ``t_script / t_build``; above 1 the build is faster), the workers' speed-up,
+peak RSS per case and the 1M/200k ratio, the load average before and after. The machine is
+shared with other jobs: wall-clock figures move with their load; the ratios of cases measured
+in the same run, and the CPU seconds, are the figures to compare.
+
+Targets (issue 14): build >= 1.5x the script's speed and >= 0.8x the floor's; peak RSS at 1M
+<= 1.2x that at 200k; workers=2 >= 1.6x one process when two cores are free.
+Results: ``benchmarks/results/grouped.json``. The flat best case stays in bench_build.py.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import resource
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+ROOT = HERE.parent
+sys.path.insert(0, str(ROOT))
+
+SIZES = {"200k": 4_250, "1M": 21_000}        # demo episodes (about 47 transitions each)
+#: The demo recipe's mixture and reward (goalkit/demo/files.py: recipe_text), for the script.
+WEIGHTS = {"original": 1, "final": 1, "future": 2, "geometric": 1}
+GAMMA = 0.9
+GOALS_PER_TRANSITION = 5
+EPISODES_PER_BLOCK = 1_000
+
+
+def cpu_seconds() -> float:
+    me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    return me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
+
+
+def peak_rss_mb() -> dict:
+    me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    return {"peak_rss_mb": me.ru_maxrss / 1024, "children_peak_rss_mb": kids.ru_maxrss / 1024}
+
+
+# ---- the plain numpy + h5py script (the baseline a team would write) -------------------------
+
+def script_case(logs: str, out: str, threshold: float, seed: int = 0) -> dict:
+    """Hindsight relabelling of grouped logs with numpy and h5py, block of episodes by block."""
+    import h5py
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    names = list(WEIGHTS)
+    p = np.array([WEIGHTS[n] for n in names], float)
+    p /= p.sum()
+    K = GOALS_PER_TRANSITION
+    cols = {"observation": ("f8", 9), "action": ("f4", 3), "next_observation": ("f8", 9),
+            "goal": ("f4", 6), "reached_goal": ("f4", 6), "reward": ("f4", 0), "terminal": ("u1", 0),
+            "strategy": ("u1", 0), "episode": ("i8", 0), "step": ("i8", 0), "goal_step": ("i8", 0),
+            "slot": ("i8", 0), "distance": ("f4", 0), "task_reward": ("f4", 0)}
+    rows = 0
+    with h5py.File(logs, "r") as src, h5py.File(out, "w") as dst:
+        groups = sorted(src["bench"].keys())
+        sets = {}
+        for split in ("train", "validation"):
+            g = dst.create_group(split)
+            sets[split] = {c: g.create_dataset(c, (0,) + ((w,) if w else ()), dt, maxshape=(None,) + ((w,) if w else ()),
+                                               chunks=(65536,) + ((w,) if w else ()), compression="gzip",
+                                               compression_opts=4, shuffle=True) for c, (dt, w) in cols.items()}
+        for b in range(0, len(groups), EPISODES_PER_BLOCK):
+            obs, act, rew, tgoal, lengths = [], [], [], [], []
+            for name in groups[b:b + EPISODES_PER_BLOCK]:
+                g = src["bench"][name]
+                obs.append(np.concatenate([g["head"][()], g["head_velocity"][()], g["trays"][()]], axis=1))
+                act.append(g["action"][()])
+                rew.append(g["reward"][()])
+                tgoal.append(g["task_goal"][()])
+                lengths.append(len(act[-1]))
+            T = np.array(lengths)
+            ep = np.repeat(np.arange(b, b + len(T)), T)
+            start_t = np.repeat(np.cumsum(T) - T, T)               # first transition row of the episode
+            start_s = start_t + np.repeat(np.arange(len(T)), T)     # first state row of the episode
+            t = np.arange(T.sum()) - start_t
+            Te = np.repeat(T, T)
+            states = np.concatenate(obs)
+            goal_of = np.concatenate([states[:, 0:3], states[:, 6:9]], axis=1).astype(np.float32)
+            n = len(t) * K
+            t_k, Te_k, s_k = np.repeat(t, K), np.repeat(Te, K), np.repeat(start_s, K)
+            strat = rng.choice(len(names), size=n, p=p)
+            j = np.where(strat == 1, Te_k, 0)
+            fut = strat == 2
+            j[fut] = t_k[fut] + 1 + (rng.random(fut.sum()) * (Te_k[fut] - t_k[fut])).astype(np.int64)
+            geo = strat == 3
+            j[geo] = np.minimum(t_k[geo] + rng.geometric(1 - GAMMA, geo.sum()), Te_k[geo])
+            orig = strat == 0
+            goal = goal_of[s_k + j]
+            goal[orig] = np.concatenate(tgoal).astype(np.float32)[np.repeat(np.arange(len(t)), K)[orig]]
+            j[orig] = -1
+            achieved = goal_of[s_k + t_k + 1]
+            dist = np.linalg.norm(achieved.astype(np.float64) - goal, axis=1)
+            reached = dist <= threshold
+            row = {"observation": states[s_k + t_k], "action": np.concatenate(act)[np.repeat(np.arange(len(t)), K)],
+                   "next_observation": states[s_k + t_k + 1], "goal": goal, "reached_goal": achieved,
+                   "reward": reached.astype(np.float32), "terminal": reached.astype(np.uint8),
+                   "strategy": strat.astype(np.uint8), "episode": np.repeat(ep, K), "step": t_k, "goal_step": j,
+                   "slot": np.tile(np.arange(K), len(t)), "distance": dist.astype(np.float32),
+                   "task_reward": np.concatenate(rew)[np.repeat(np.arange(len(t)), K)]}
+            val = (np.repeat(ep, K) * 2654435761 % 10) == 0       # about 10 % of episodes
+            for split, keep in (("train", ~val), ("validation", val)):
+                m = int(keep.sum())
+                for c, ds in sets[split].items():
+                    ds.resize(ds.shape[0] + m, axis=0)
+                    ds[-m:] = row[c][keep]
+            rows += n
+    return {"rows": rows}
+
+
+# ---- the low-level floor --------------------------------------------------------------------
+
+def floor_case(logs: str, built: str, out: str) -> dict:
+    """Low-level reads of every dataset; then the built set's bytes written through HDF5's gzip."""
+    import h5py
+    import numpy as np
+
+    wall = cpu = 0.0
+    values = 0
+    t0, c0 = time.perf_counter(), time.thread_time()
+    with h5py.File(logs, "r") as src:
+        parent = src["bench"].id
+        for name in sorted(src["bench"].keys()):
+            g = h5py.h5g.open(parent, name.encode())
+            for key in (b"head", b"head_velocity", b"trays", b"action", b"reward", b"success", b"task_goal"):
+                d = h5py.h5d.open(g, key)
+                buf = np.empty(d.shape, d.dtype)
+                d.read(h5py.h5s.ALL, h5py.h5s.ALL, buf)
+                values += buf.size
+            h5py.h5a.open(g, b"task").read(np.empty((), np.int64))
+    wall += time.perf_counter() - t0
+    cpu += time.thread_time() - c0
+    written = 0
+    with h5py.File(built, "r") as ref, h5py.File(out, "w") as dst:
+        for split in ("train", "validation"):
+            for col, ds in ref[split].items():
+                if not isinstance(ds, h5py.Dataset) or ds.shape[0] == 0:
+                    continue
+                t0, c0 = time.perf_counter(), time.thread_time()
+                o = dst.create_dataset(f"{split}/{col}", ds.shape, ds.dtype, chunks=ds.chunks,
+                                       compression="gzip", compression_opts=4, shuffle=True)
+                wall += time.perf_counter() - t0
+                cpu += time.thread_time() - c0
+                step = ds.chunks[0] * 4
+                for i in range(0, ds.shape[0], step):
+                    block = ds[i:i + step]                       # decompressing the reference: untimed
+                    t0, c0 = time.perf_counter(), time.thread_time()
+                    o[i:i + len(block)] = block
+                    wall += time.perf_counter() - t0
+                    cpu += time.thread_time() - c0
+                    written += block.nbytes
+        t0, c0 = time.perf_counter(), time.thread_time()
+    wall += time.perf_counter() - t0
+    cpu += time.thread_time() - c0
+    return {"timed_seconds": wall, "timed_cpu_seconds": cpu, "values_read": values, "bytes_written": written}
+
+
+# ---- goalkit cases --------------------------------------------------------------------------
+
+def build_case(recipe_path: str, out: str, workers: int) -> dict:
+    import goalkit
+
+    runner = goalkit.LocalWorkers(workers) if workers else None
+    res = goalkit.build(recipe_path, out=out, runner=runner, card=False)
+    return {"rows": int(sum(res.summary["rows"].values()))}
+
+
+def phases_case(recipe_path: str, out: str) -> dict:
+    """The build's phases one after the other (not overlapped as in the build itself)."""
+    from goalkit.pipeline.build import chunk_transitions
+    from goalkit.pipeline.chunk import relabel_chunk
+    from goalkit.pipeline.plan import make_plan, split_rows
+    from goalkit.pipeline.recipe import load_recipe
+    from goalkit.pipeline.shardfiles import plan_shards
+    from goalkit.write.writer import SetWriter
+
+    recipe = load_recipe(recipe_path).with_overrides(out=out)
+    t, cpu = {}, {}
+    t0, c0 = time.perf_counter(), cpu_seconds()
+    plan, source = make_plan(recipe)
+    t["plan"], cpu["plan"] = time.perf_counter() - t0, cpu_seconds() - c0
+    chunks = plan_shards(plan, chunk_transitions(plan))
+    t["read"] = t["relabel"] = t["write"] = 0.0
+    cpu["read"] = cpu["relabel"] = cpu["write"] = 0.0
+    o = recipe.output
+    with SetWriter(o.path, plan.columns, chunk_rows=o.chunk_rows, compression=o.compression,
+                   total_rows=split_rows(plan)) as writer:
+        for spec in chunks:
+            t0, c0 = time.perf_counter(), cpu_seconds()
+            chunk = source.read(spec.start, spec.stop)
+            t1, c1 = time.perf_counter(), cpu_seconds()
+            rows = relabel_chunk(plan, chunk, defer_gathers=True)
+            t2, c2 = time.perf_counter(), cpu_seconds()
+            for split, cols in rows.columns.items():
+                writer.add(split, cols, rows.keys[split])
+            writer.flush()
+            t3, c3 = time.perf_counter(), cpu_seconds()
+            t["read"] += t1 - t0
+            t["relabel"] += t2 - t1
+            t["write"] += t3 - t2
+            cpu["read"] += c1 - c0
+            cpu["relabel"] += c2 - c1
+            cpu["write"] += c3 - c2
+        t0, c0 = time.perf_counter(), cpu_seconds()
+        writer.close(attrs={"benchmark": "phases"})
+        t["write"] += time.perf_counter() - t0
+        cpu["write"] += cpu_seconds() - c0
+    return {"phases_seconds": t, "phases_cpu_seconds": cpu}
+
+
+def child(args) -> None:
+    """Run one case in this (fresh) process and print its JSON line."""
+    c0, t0 = cpu_seconds(), time.perf_counter()
+    if args.case == "script":
+        info = json.loads(Path(args.info).read_text())
+        res = script_case(info["logs"], args.out, info["threshold"])
+    elif args.case == "floor":
+        info = json.loads(Path(args.info).read_text())
+        res = floor_case(info["logs"], args.built, args.out)
+    elif args.case == "phases":
+        res = phases_case(args.recipe, args.out)
+    else:
+        res = build_case(args.recipe, args.out, args.workers)
+    res.update(seconds=time.perf_counter() - t0, cpu_seconds=cpu_seconds() - c0, **peak_rss_mb())
+    print(json.dumps(res))
+
+
+def run(args_list) -> dict:
+    proc = subprocess.run([sys.executable, __file__, "--child", *args_list], capture_output=True, text=True,
+                          cwd=str(ROOT), env={**os.environ, "PYTHONPATH": str(ROOT)})
+    if proc.returncode:
+        raise RuntimeError(f"benchmark case {args_list} failed:\n{proc.stderr[-4000:]}")
+    return json.loads(proc.stdout.strip().splitlines()[-1])
+
+
+def logs(folder: Path, episodes: int) -> dict:
+    """Demo logs in ``folder`` (reused when an earlier run wrote the same size)."""
+    marker = folder / "bench-logs.json"
+    if marker.exists():
+        info = json.loads(marker.read_text())
+        if info.get("episodes") == episodes:
+            return info
+    from goalkit.demo import make_demo
+    from goalkit.demo.files import THRESHOLD
+
+    folder.mkdir(parents=True, exist_ok=True)
+    info = make_demo(folder, episodes=episodes, seed=0, replace=True)
+    info = {k: str(v) if isinstance(v, Path) else v for k, v in info.items()}
+    info["threshold"] = THRESHOLD
+    marker.write_text(json.dumps(info))
+    return info
+
+
+def measure(label: str, folder: Path, episodes: int, workers: list[int], phases: bool) -> dict:
+    info = logs(folder, episodes)
+    marker = str(folder / "bench-logs.json")
+    built, out = str(folder / "bench-goals.h5"), str(folder / "bench-other.h5")
+    result = {"episodes": episodes, "transitions": info["steps"], "load_average_before": os.getloadavg()}
+    cases = {}
+
+    def case(name, *extra, out_path=out):
+        Path(out_path).unlink(missing_ok=True)
+        r = run(["--case", name.split("-")[0], "--recipe", info["recipe"], "--info", marker, "--out", out_path,
+                 *extra])
+        cases[name] = r
+        print(f"{label:>5} {name:<16} wall {r['seconds']:7.2f} s  cpu {r['cpu_seconds']:7.2f} s  "
+              f"peak RSS {r['peak_rss_mb']:6.0f} MiB", flush=True)
+
+    case("build", "--workers", "0", out_path=built)
+    case("script")
+    case("floor", "--built", built)
+    for w in workers:
+        case(f"build-workers-{w}", "--workers", str(w))
+    if phases:
+        case("phases")
+    for p in (built, out):
+        Path(p).unlink(missing_ok=True)
+    b, s, f = cases["build"], cases["script"], cases["floor"]
+    ratios = {
+        "build_speed_over_script_wall": s["seconds"] / b["seconds"],
+        "build_speed_over_script_cpu": s["cpu_seconds"] / b["cpu_seconds"],
+        "build_speed_over_floor_wall": f["timed_seconds"] / b["seconds"],
+        "build_speed_over_floor_cpu": f["timed_cpu_seconds"] / b["cpu_seconds"],
+    }
+    for w in workers:
+        ratios[f"workers_{w}_speed_over_one_process_wall"] = b["seconds"] / cases[f"build-workers-{w}"]["seconds"]
+    result.update(cases=cases, ratios=ratios, load_average_after=os.getloadavg())
+    print(f"{label:>5} build speed / script: {ratios['build_speed_over_script_wall']:.2f}x wall, "
+          f"{ratios['build_speed_over_script_cpu']:.2f}x CPU; / floor: {ratios['build_speed_over_floor_wall']:.2f}x "
+          f"wall, {ratios['build_speed_over_floor_cpu']:.2f}x CPU", flush=True)
+    return result
+
+
+def main(argv=None) -> dict:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0],
+                                 formatter_class=argparse.ArgumentDefaultsHelpFormatter)
+    ap.add_argument("--large", action="store_true", help="also measure 1M transitions (21,000 episodes)")
+    ap.add_argument("--workers", default="2", help="comma-separated worker counts to measure (0: none)")
+    ap.add_argument("--no-phases", action="store_true", help="skip the phase breakdown")
+    ap.add_argument("--data", default="/tmp/goalkit-bench-grouped", help="folder for generated logs")
+    ap.add_argument("--out", default=str(HERE / "results" / "grouped.json"))
+    ap.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
+    ap.add_argument("--case", help=argparse.SUPPRESS)
+    ap.add_argument("--recipe", help=argparse.SUPPRESS)
+    ap.add_argument("--info", help=argparse.SUPPRESS)
+    ap.add_argument("--built", help=argparse.SUPPRESS)
+    args = ap.parse_args(argv)
+    if args.child:
+        args.workers = int(args.workers)
+        child(args)
+        return {}
+    workers = [int(w) for w in args.workers.split(",") if int(w) > 0]
+    sizes = ["200k"] + (["1M"] if args.large else [])
+    report = {"benchmark": "grouped",
+              "command": "python benchmarks/bench_grouped.py " + " ".join(argv if argv is not None else sys.argv[1:]),
+              "machine": {"cpus": os.cpu_count(), "python": platform.python_version()},
+              "note": "shared 2-core machine: compare ratios within one run and CPU seconds, not wall times "
+                      "across runs",
+              "sizes": {}}
+    for label in sizes:
+        report["sizes"][label] = measure(label, Path(args.data) / label, SIZES[label], workers, not args.no_phases)
+    if "1M" in report["sizes"]:
+        big, small = report["sizes"]["1M"]["cases"], report["sizes"]["200k"]["cases"]
+        report["peak_rss_1M_over_200k"] = {k: big[k]["peak_rss_mb"] / small[k]["peak_rss_mb"]
+                                           for k in big if k in small}
+    report["targets"] = {"build_speed_over_script": 1.5, "build_speed_over_floor": 0.8,
+                         "peak_rss_1M_over_200k": 1.2, "workers_2_speed_over_one_process": 1.6}
+    out = Path(args.out)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    out.write_text(json.dumps(report, indent=2) + "\n")
+    print(f"results: {out}")
+    return report
+
+
+if __name__ == "__main__":
+    main()

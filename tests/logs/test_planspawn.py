@@ -1,0 +1,104 @@
+"""Planning a grouped log with a helper process (goalkit/logs/planspawn.py, planhelper.py).
+
+Reference: the serial planning of the same log in this process (the helper only shares the
+work; metas, kept episodes and every error must be the serial ones).
+"""
+
+from __future__ import annotations
+
+import h5py
+import numpy as np
+import pytest
+from logs_testdata import make_episodes, write_grouped
+
+from goalkit.errors import LogError
+from goalkit.logs import open_logs, planspawn
+
+
+@pytest.fixture
+def helper_on(monkeypatch):
+    """A helper for logs of a few groups: it plans groups 6.. of 16 (see helper_split)."""
+    monkeypatch.setattr(planspawn, "MIN_GROUPS", 4)
+    monkeypatch.setattr(planspawn, "cpus", lambda: 2)
+    monkeypatch.setattr(planspawn, "helper_split", lambda total, skip=False: 6 if total >= 4 and not skip else None)
+    started = []
+    real = planspawn.start_helper
+
+    def counted(source, split):
+        started.append(split)
+        return real(source, split)
+
+    monkeypatch.setattr("goalkit.logs.grouped.start_helper", counted)
+    monkeypatch.setattr("goalkit.logs.grouped.helper_split", planspawn.helper_split)
+    return started
+
+
+def serial(path, table, monkeypatch):
+    monkeypatch.setattr("goalkit.logs.grouped.helper_split", lambda total, skip=False: None)
+    return open_logs(path, table)
+
+
+def test_helper_gives_the_serial_plan(tmp_path, helper_on, monkeypatch):
+    eps = make_episodes([3, 1, 5, 2, 4, 6, 2, 3, 1, 4, 5, 2, 3, 2, 1, 4], seed=11)
+    table = write_grouped(tmp_path / "g.h5", eps, fields=True)
+    answers = []
+
+    def finish(helper):
+        answers.append(planspawn.finish_helper(helper))
+        return answers[-1]
+
+    monkeypatch.setattr("goalkit.logs.grouped.finish_helper", finish)
+    shared = open_logs(tmp_path / "g.h5", table)
+    assert helper_on == [6] and len(answers[0]["metas"]) == 10      # the helper planned 6..15
+    ref = serial(tmp_path / "g.h5", table, monkeypatch)
+    assert shared.metas == ref.metas and shared.key_dtypes == ref.key_dtypes
+    np.testing.assert_array_equal(shared.lengths, [len(e["act"]) for e in eps])
+    np.testing.assert_array_equal(shared.read(0, 16).observations, ref.read(0, 16).observations)
+
+
+def test_dataset_shared_across_the_parts_is_refused_as_in_serial(tmp_path, helper_on, monkeypatch):
+    eps = make_episodes([3] * 16, seed=12)
+    table = write_grouped(tmp_path / "g.h5", eps)
+    with h5py.File(tmp_path / "g.h5", "a") as f:       # episode 9 (helper's part) reuses episode 2's
+        del f["runs/ep9/rew"]
+        f["runs/ep9/rew"] = f["runs/ep2/rew"]
+    with pytest.raises(LogError) as err:
+        open_logs(tmp_path / "g.h5", table)
+    assert helper_on == [6]
+    with pytest.raises(LogError) as ref:
+        serial(tmp_path / "g.h5", table, monkeypatch)
+    assert str(err.value) == str(ref.value)
+    assert err.value.episode == 9 and "same dataset as key runs/ep2/rew of episode 2" in str(err.value)
+
+
+def test_problem_in_the_helpers_part_is_named_as_in_serial(tmp_path, helper_on, monkeypatch):
+    eps = make_episodes([3] * 16, seed=13)
+    table = write_grouped(tmp_path / "g.h5", eps)
+    with h5py.File(tmp_path / "g.h5", "a") as f:
+        del f["runs/ep11/rew"]
+        f["runs/ep11/rew"] = np.zeros(5, np.float32)        # 5 rewards for 3 actions
+    with pytest.raises(LogError) as err:
+        open_logs(tmp_path / "g.h5", table)
+    with pytest.raises(LogError) as ref:
+        serial(tmp_path / "g.h5", table, monkeypatch)
+    assert str(err.value) == str(ref.value) and err.value.episode == 11
+
+
+def test_a_helper_that_fails_leaves_the_plan_to_this_process(tmp_path, helper_on, monkeypatch):
+    eps = make_episodes([2] * 16, seed=14)
+    table = write_grouped(tmp_path / "g.h5", eps)
+    monkeypatch.setattr(planspawn, "groups_digest", lambda groups: "not the helper's")  # it refuses
+    src = open_logs(tmp_path / "g.h5", table)
+    monkeypatch.undo()
+    ref = serial(tmp_path / "g.h5", table, monkeypatch)
+    assert src.metas == ref.metas
+
+
+def test_split_leaves_small_logs_and_one_cpu_alone(monkeypatch):
+    monkeypatch.setattr(planspawn, "cpus", lambda: 2)
+    assert planspawn.helper_split(planspawn.MIN_GROUPS - 1) is None
+    assert planspawn.helper_split(21_000, skip_bad_episodes=True) is None
+    split = planspawn.helper_split(21_000)
+    assert 21_000 // 2 < split < 21_000                  # this process takes the larger part
+    monkeypatch.setattr(planspawn, "cpus", lambda: 1)
+    assert planspawn.helper_split(21_000) is None
