@@ -355,3 +355,46 @@ def test_full_work_folder_is_one_line_and_keeps_the_output_clean(tmp_path):
     assert lines[0].startswith(f"goalkit: error: {tmp_path / '.set.h5.work'}: cannot write the work folder ("), lines
     assert not (tmp_path / "set.h5").exists()
     assert not [p for p in (tmp_path / ".set.h5.work").iterdir() if p.name.endswith(".tmp")]
+
+
+HEAD_TABLES = """
+[heads.policy]
+weights = {geometric = 1, future = 1}
+gamma = 0.9
+[heads.subgoal]
+weights = {subgoal = 1}
+steps = 3
+"""
+
+
+def heads_recipe(d: Path, random_head: bool) -> Path:
+    """The three-source archive built with goal heads (one row per transition)."""
+    rec = recipe(d)
+    text = rec.read_text().replace("goals_per_transition = 3", "goals_per_transition = 1")
+    text = text.replace('mode = "materialised"', 'mode = "materialised"\ngoals = "heads"')
+    tables = HEAD_TABLES + ("[heads.value]\nweights = {current = 0.2, geometric = 0.5, random = 0.3}\n"
+                            if random_head else "")
+    rec.write_text(text + tables)
+    return rec
+
+
+def test_goal_heads_within_episodes_reuse_byte_identical(tmp_path):
+    total = archive(tmp_path)
+    rec = heads_recipe(tmp_path, random_head=False)
+    first = build(rec, keep_work=True, card=False)
+    assert first.reuse["reason"] is None
+    write(tmp_path / "teleop-day3.h5", episodes(6, 5))
+    again = build(rec, keep_work=True, replace=True, card=False)
+    assert again.reuse["episodes"] == {"reused": total, "new": 5}
+    assert sha(again.path) == fresh_sha(rec)
+
+
+def test_goal_heads_drawing_random_states_are_never_reused(tmp_path):
+    total = archive(tmp_path)
+    rec = heads_recipe(tmp_path, random_head=True)
+    first = build(rec, keep_work=True, card=False)
+    assert first.reuse["reason"] == "goal heads draw random states from other episodes"
+    write(tmp_path / "teleop-day3.h5", episodes(6, 5))
+    again = build(rec, keep_work=True, replace=True, card=False)
+    assert again.reuse["episodes"] == {"reused": 0, "new": total + 5}
+    assert sha(again.path) == fresh_sha(rec)
