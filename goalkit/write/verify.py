@@ -33,7 +33,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from goalkit.audit import audit_into
+from goalkit.audit import AuditFeed, record_audit
 from goalkit.errors import DatasetError, GoalkitError, shown
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.pipeline.build import chunk_transitions, final_summary
@@ -289,45 +289,65 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True, 
         for message in goal_set.check_manifest():
             report.fail(message)
         report.checked["columns"] = len(goal_set.manifest)
-        # 4 + 5. rows, checked and re-derived; the summary re-derived alongside
-        summary = SummaryBuilder(strategy_names(), plan.total_rows, recipe.seed,
-                                 distance_unit=recipe.reward.reach_threshold, rule=recipe.reward)
-        cursor = {split: 0 for split in SPLITS}
-        total = {split: goal_set.rows(split) for split in SPLITS}
-        stored_names = {split: goal_set.columns(split) for split in SPLITS}
-        for first_ep, stop_ep in chunk_bounds(plan.lengths, chunk_transitions(plan)):
-            chunk = source.read(first_ep, stop_ep)
-            fresh = relabel_chunk(plan, chunk)
-            for split in SPLITS:
-                n_rows = len(fresh.keys.get(split, ()))
-                row0, row_stop = cursor[split], cursor[split] + n_rows
-                if row_stop > total[split]:
-                    report.fail(f"{split}: fewer rows stored ({total[split]}) than the recipe produces")
-                    return report
-                stored = goal_set.read(split, stored_names[split], row0, row_stop, resolve=False)
-                check_rows(plan, chunk, stored, split, report, row0)
-                if n_rows:
-                    _compare(fresh.columns[split], stored, split, row0, report)
-                    summary.add(split, fresh.columns[split], fresh.keys[split])
-                cursor[split] = row_stop
-            if progress is not None:
-                progress(int(plan.lengths[first_ep:stop_ep].sum()), plan.total_transitions)
-        for split in SPLITS:
-            if cursor[split] != total[split]:
-                report.fail(f"{split}: {total[split]} rows stored, the recipe produces {cursor[split]}")
-        report.checked["rows"] = {split: total[split] for split in SPLITS}
-        report.checked["episodes"] = int(len(plan.episode_ids))
-        # 5. summary and provenance, re-derived
-        fresh_summary = relocation.restore(as_stored(final_summary(summary, plan, source)))
-        if "composition" not in goal_set.summary:  # a set built before the composition was stored
-            fresh_summary.pop("composition", None)
-        for message in differences(fresh_summary, goal_set.summary, "summary"):
-            report.fail(message)
-        for message in provenance_differences(goal_set, plan, source, digests, relocation):
-            report.fail(message)
-    if audit:  # 6. rules and laws re-stated independently of the builder (docs/audit.md)
-        audit_into(path, report, relocation=relocation)
+        # 4 + 5. rows, checked and re-derived; the summary re-derived alongside (_replay)
+        # 6. the audit (rules and laws re-stated independently of the builder, docs/audit.md), fed
+        #    the rows and log episodes read here, so that each is read and decompressed once
+        feed = AuditFeed(path, relocation=relocation, opened=source) if audit else None
+        try:
+            if not _replay(goal_set, plan, source, recipe, report, relocation, digests, progress, feed):
+                return report
+            if feed is not None:
+                result, feed = feed.finish(), None
+        finally:
+            if feed is not None:
+                feed.close()
+    if audit:
+        record_audit(report, result)
     return report
+
+
+def _replay(goal_set, plan, source, recipe, report, relocation, digests, progress, feed) -> bool:
+    """Steps 4 and 5 of :func:`verify_set`; False when verify must stop (rows missing)."""
+    summary = SummaryBuilder(strategy_names(), plan.total_rows, recipe.seed,
+                             distance_unit=recipe.reward.reach_threshold, rule=recipe.reward)
+    cursor = {split: 0 for split in SPLITS}
+    total = {split: goal_set.rows(split) for split in SPLITS}
+    stored_names = {split: goal_set.columns(split) for split in SPLITS}
+    for first_ep, stop_ep in chunk_bounds(plan.lengths, chunk_transitions(plan)):
+        chunk = source.read(first_ep, stop_ep)
+        fresh = relabel_chunk(plan, chunk)
+        for split in SPLITS:
+            n_rows = len(fresh.keys.get(split, ()))
+            row0, row_stop = cursor[split], cursor[split] + n_rows
+            if row_stop > total[split]:
+                report.fail(f"{split}: fewer rows stored ({total[split]}) than the recipe produces")
+                return False
+            stored = goal_set.read(split, stored_names[split], row0, row_stop, resolve=False)
+            check_rows(plan, chunk, stored, split, report, row0)
+            if feed is not None:
+                feed.add(split, row0, row_stop, stored, chunk)
+            if n_rows:
+                _compare(fresh.columns[split], stored, split, row0, report)
+                summary.add(split, fresh.columns[split], fresh.keys[split])
+            cursor[split] = row_stop
+        if progress is not None:
+            progress(int(plan.lengths[first_ep:stop_ep].sum()), plan.total_transitions)
+    for split in SPLITS:
+        if cursor[split] != total[split]:
+            report.fail(f"{split}: {total[split]} rows stored, the recipe produces {cursor[split]}")
+            if feed is not None:   # rows beyond what the recipe produces: the audit reads them itself
+                feed.add_stored(split, cursor[split], total[split])
+    report.checked["rows"] = {split: total[split] for split in SPLITS}
+    report.checked["episodes"] = int(len(plan.episode_ids))
+    # 5. summary and provenance, re-derived
+    fresh_summary = relocation.restore(as_stored(final_summary(summary, plan, source)))
+    if "composition" not in goal_set.summary:  # a set built before the composition was stored
+        fresh_summary.pop("composition", None)
+    for message in differences(fresh_summary, goal_set.summary, "summary"):
+        report.fail(message)
+    for message in provenance_differences(goal_set, plan, source, digests, relocation):
+        report.fail(message)
+    return True
 
 
 def _compare(fresh: dict, stored: dict, split: str, row0: int, report: VerifyReport) -> None:
