@@ -45,7 +45,7 @@ from goalkit.reward import score
 from goalkit.rows import END_FLAG_SOURCES
 from goalkit.write.chunkread import SplitColumns
 from goalkit.write.format import SPLIT_CODES, SPLITS
-from goalkit.write.reader import GoalSet
+from goalkit.write.reader import GoalSet, ManifestCheck
 from goalkit.write.relocate import locate
 from goalkit.write.rederive import (as_stored, check_columns, differences, provenance_differences,
                                     source_entries, stored_recipe)
@@ -286,16 +286,22 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True, 
             raise DatasetError(f"cannot reopen what this set was built from: {exc}", file=goal_set.path) from None
         if not check_columns(goal_set, plan, split_rows(plan), report):
             return report
-        # 3. manifest
-        for message in goal_set.check_manifest():
-            report.fail(message)
+        # 3. manifest: each column's SHA-256, fed the rows the replay reads (so they are decoded
+        #    once); its messages come before the rows' (the replay's are held until then)
+        manifest = ManifestCheck(goal_set)
         report.checked["columns"] = len(goal_set.manifest)
+        rows_report = VerifyReport(max_failures=max_failures, checked=report.checked)
         # 4 + 5. rows, checked and re-derived; the summary re-derived alongside (_replay)
         # 6. the audit (rules and laws re-stated independently of the builder, docs/audit.md), fed
         #    the rows and log episodes read here, so that each is read and decompressed once
         feed = AuditFeed(path, relocation=relocation, opened=source) if audit else None
         try:
-            if not _replay(goal_set, plan, source, recipe, report, relocation, digests, progress, feed):
+            complete = _replay(goal_set, plan, source, recipe, rows_report, relocation, digests, progress, feed,
+                               manifest)
+            for message in manifest.problems() + rows_report.failures:
+                report.fail(message)
+            report.ok = report.ok and rows_report.ok
+            if not complete:
                 return report
             if feed is not None:
                 result, feed = feed.finish(), None
@@ -307,7 +313,7 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True, 
     return report
 
 
-def _replay(goal_set, plan, source, recipe, report, relocation, digests, progress, feed) -> bool:
+def _replay(goal_set, plan, source, recipe, report, relocation, digests, progress, feed, manifest) -> bool:
     """Steps 4 and 5 of :func:`verify_set`; False when verify must stop (rows missing)."""
     summary = SummaryBuilder(strategy_names(), plan.total_rows, recipe.seed,
                              distance_unit=recipe.reward.reach_threshold, rule=recipe.reward)
@@ -315,8 +321,8 @@ def _replay(goal_set, plan, source, recipe, report, relocation, digests, progres
     stored_names = {split: goal_set.columns(split) for split in SPLITS}
     readers = {split: SplitColumns(goal_set, split, stored_names[split]) for split in SPLITS if stored_names[split]}
     try:
-        return _replay_rows(goal_set, plan, source, report, relocation, digests, progress, feed, summary,
-                            total, stored_names, readers)
+        return _replay_rows(goal_set, plan, source, report, relocation, digests, progress, feed, manifest,
+                            summary, total, stored_names, readers)
     finally:
         for reader in readers.values():
             reader.close()
@@ -333,7 +339,7 @@ def _stored_rows(goal_set, readers, split, names, a, b) -> dict:
     return goal_set.read(split, names, a, b, resolve=False)
 
 
-def _replay_rows(goal_set, plan, source, report, relocation, digests, progress, feed, summary, total,
+def _replay_rows(goal_set, plan, source, report, relocation, digests, progress, feed, manifest, summary, total,
                  stored_names, readers) -> bool:
     """The rows of every chunk of episodes: checked, re-derived, audited; then summary and provenance."""
     cursor = {split: 0 for split in SPLITS}
@@ -347,6 +353,7 @@ def _replay_rows(goal_set, plan, source, report, relocation, digests, progress, 
                 report.fail(f"{split}: fewer rows stored ({total[split]}) than the recipe produces")
                 return False
             stored = _stored_rows(goal_set, readers, split, stored_names[split], row0, row_stop)
+            manifest.add(split, row0, stored)
             check_rows(plan, chunk, stored, split, report, row0)
             if feed is not None:
                 feed.add(split, row0, row_stop, stored, chunk)
