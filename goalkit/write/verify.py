@@ -29,7 +29,10 @@ Checks, in order:
 from __future__ import annotations
 
 import os
+from collections import deque
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
+from types import SimpleNamespace
 
 import numpy as np
 
@@ -39,6 +42,8 @@ from goalkit.logs.episodes import chunk_bounds
 from goalkit.pipeline.build import chunk_transitions, final_summary
 from goalkit.pipeline.chunk import relabel_chunk, row_labels
 from goalkit.pipeline.plan import make_plan, split_rows
+from goalkit.pipeline.readproc import ChunkReader
+from goalkit.pipeline.readproc import wanted as readproc_wanted
 from goalkit.pipeline.summary import SummaryBuilder
 from goalkit.relabel.strategies import strategy_names
 from goalkit.reward import score
@@ -52,6 +57,10 @@ from goalkit.write.rederive import (as_stored, check_columns, differences, prove
 from goalkit.write.rules import check_goal_rules
 from goalkit.write.seal import check_layout, check_seal, stored_strategy_codes
 from goalkit.write.search_checks import check_joined
+
+
+#: Chunks of episodes read ahead of the one being checked.
+READ_AHEAD = 2
 
 
 @dataclass
@@ -328,6 +337,27 @@ def _replay(goal_set, plan, source, recipe, report, relocation, digests, progres
             reader.close()
 
 
+def _chunks_ahead(plan, source):
+    """Yield ``(first, stop, EpisodeSet)`` of every chunk in order, read up to two chunks ahead on a
+    thread (by a reader process for grouped and per-file logs, as the build reads them); a chunk
+    the reader cannot give is read with ``source.read``, which raises any problem as before."""
+    bounds = list(chunk_bounds(plan.lengths, chunk_transitions(plan)))
+    specs = [SimpleNamespace(start=a, stop=b, transitions=int(plan.lengths[a:b].sum())) for a, b in bounds]
+    chunk_reader = ChunkReader(source, bounds) if readproc_wanted(source, specs) else None
+    read = source.read if chunk_reader is None else chunk_reader.read
+    try:
+        with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-verify-read") as pool:
+            pending = deque(pool.submit(read, a, b) for a, b in bounds[:READ_AHEAD])
+            for i, (a, b) in enumerate(bounds):
+                chunk = pending.popleft().result()
+                if i + READ_AHEAD < len(bounds):
+                    pending.append(pool.submit(read, *bounds[i + READ_AHEAD]))
+                yield a, b, chunk
+    finally:
+        if chunk_reader is not None:
+            chunk_reader.close()
+
+
 def _stored_rows(goal_set, readers, split, names, a, b) -> dict:
     """Stored rows ``a .. b - 1`` of ``split``: chunks inflated on threads, else through h5py."""
     reader = readers.get(split)
@@ -343,8 +373,7 @@ def _replay_rows(goal_set, plan, source, report, relocation, digests, progress, 
                  stored_names, readers) -> bool:
     """The rows of every chunk of episodes: checked, re-derived, audited; then summary and provenance."""
     cursor = {split: 0 for split in SPLITS}
-    for first_ep, stop_ep in chunk_bounds(plan.lengths, chunk_transitions(plan)):
-        chunk = source.read(first_ep, stop_ep)
+    for first_ep, stop_ep, chunk in _chunks_ahead(plan, source):
         fresh = relabel_chunk(plan, chunk)
         for split in SPLITS:
             n_rows = len(fresh.keys.get(split, ()))
