@@ -685,11 +685,13 @@ class _Auditor:
             out.append(uniform_chi2_check(f"law of {name}", d.hist[name], f"PIT of the {name}"))
             for end in ("low", "high"):
                 hit, probs = d.ends[(name, end)]
+                probs = dict(sorted(probs.items()))   # summed in one order, however the rows came
                 out.append(count_bound_check(f"{name}: {'first' if end == 'low' else 'last'} value of the range",
                                              hit, list(probs), list(probs.values()), "rows"))
         for name, (hit, probs), what in (
                 ("slot pairs: same strategy", d.pairs_same_strategy, "pairs of slots (2k, 2k+1) with one strategy"),
                 ("slot pairs: same goal step", d.pairs_same_step, "same-strategy slot pairs with one goal step")):
+            probs = dict(sorted(probs.items()))
             out.append(count_bound_check(name, hit, list(probs), list(probs.values()), what))
         out.append(grid_chi2_check("slot pairs: independent draws", d.grid, "PIT pairs of slots (2k, 2k+1)"))
         if self.masks is not None:
