@@ -15,7 +15,7 @@ Nothing here imports ``goalkit.relabel``, ``goalkit.reward``, ``goalkit.pipeline
 ``goalkit.write.rules`` (a test checks the imports, transitively). See docs/audit.md.
 """
 
-from goalkit.audit.run import AuditReport, audit_into, audit_set
+from goalkit.audit.run import AuditFeed, AuditReport, audit_into, audit_set, record_audit
 from goalkit.audit.stattests import share_power
 
-__all__ = ["AuditReport", "audit_into", "audit_set", "share_power"]
+__all__ = ["AuditFeed", "AuditReport", "audit_into", "audit_set", "record_audit", "share_power"]

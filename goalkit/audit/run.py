@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import os
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from types import SimpleNamespace
@@ -21,6 +22,7 @@ from goalkit.audit.stattests import (FINE_BINS, binom_check, count_bound_check, 
 from goalkit.config import parse_toml
 from goalkit.errors import DatasetError, GoalkitError
 from goalkit.logs import open_logs
+from goalkit.logs.episodes import concat_episodes, consecutive_runs
 from goalkit.logs.multi import open_sources, specs_from_provenance
 from goalkit.logs.layout import parse_layout
 from goalkit.pipeline.goal import make_goal_map
@@ -84,10 +86,27 @@ class AuditReport:
                 "share_shift_90": self.share_shift, "rule_violations": dict(self.rule_violations)}
 
 
+def _same_log(opened, where, layout, skip_bad_episodes) -> bool:
+    """Whether ``opened`` (a source verify opened) is the single log ``where`` read with ``layout``.
+
+    Only then may the audit use it instead of opening the file again: the same file (device and
+    inode), the layout parsed from the provenance's own text (equal field by field), the same
+    skip policy, and no episode skipped.
+    """
+    if opened is None or layout is None or getattr(opened, "source_names", None) is not None:
+        return False
+    try:
+        same_file = os.path.samefile(opened.path, where)
+    except (OSError, TypeError):
+        return False
+    return (same_file and getattr(opened, "layout", None) == layout and not getattr(opened, "skipped", [])
+            and bool(getattr(opened, "skip_bad_episodes", None)) == bool(skip_bad_episodes))
+
+
 class _Logs:
     """The set's logs reopened with its stored layout, and its goal map."""
 
-    def __init__(self, prov: dict, rc, path, relocation: Relocation):
+    def __init__(self, prov: dict, rc, path, relocation: Relocation, opened=None):
         layout = None
         where = relocation.path   # the files where they are now (recorded paths if unmoved)
         if prov.get("layout_text"):
@@ -96,6 +115,8 @@ class _Logs:
             specs = specs_from_provenance(prov["sources"], DatasetError, file=path)
             specs = tuple(replace(s, entries=tuple(str(where(e, path)) for e in s.entries)) for s in specs)
             self.source = open_sources(specs, named=rc.named_sources, file=path)
+        elif _same_log(opened, where(prov["logs_path"], path), layout, rc.skip_bad_episodes):
+            self.source = opened   # verify opened this very file with this layout already
         else:
             self.source = open_logs(where(prov["logs_path"], path), layout, skip_bad_episodes=rc.skip_bad_episodes)
         self.ids = np.asarray(self.source.episode_ids, dtype=np.int64)
@@ -141,7 +162,7 @@ class _Logs:
         keys = self.source.layout.keys
         return [col for col, (role, _) in END_FLAGS.items() if getattr(keys, role) is not None]
 
-    def achieved_and_task_goal(self, episodes, steps, flags=(), materials=False):
+    def achieved_and_task_goal(self, episodes, steps, flags=(), materials=False, chunk=None):
         """phi(s_t+1) (goal dtype), the log's task goal (or None), end flags and task ids of each (episode, t).
 
         Returns ``(achieved, task, flag_values, task_ids)``: ``flag_values`` maps each of ``flags`` (end-flag
@@ -150,9 +171,17 @@ class _Logs:
         logged ``observation`` (s_t), ``action`` and ``next_observation`` in the logs' dtypes.
         """
         pos = np.searchsorted(self.ids, episodes)
-        a, b = int(pos.min()), int(pos.max()) + 1
-        chunk = self.source.read(a, b)
-        local = pos - a
+        need = np.unique(pos)
+        a, b = int(need[0]), int(need[-1]) + 1
+        if chunk is not None and np.isin(self.ids[need], chunk.episode_ids).all():
+            local = chunk.position_of(episodes)   # the episodes verify read already
+        elif 2 * need.size < b - a:   # scattered episodes (a block of the validation split): only those
+            chunk = concat_episodes([self.source.read(int(need[i]), int(need[j - 1]) + 1)
+                                     for i, j in consecutive_runs(need)])
+            local = np.searchsorted(need, pos)
+        else:
+            chunk = self.source.read(a, b)
+            local = pos - a
         cur = chunk.state_row(local, steps)
         achieved = np.asarray(self.goal_map(chunk, cur + 1)).astype(self.goal_dtype)
         task = None
@@ -202,7 +231,7 @@ class _Draws:
 
 
 def audit_set(path, sample: int | None = None, alpha: float = ALPHA, *, logs_root=None,
-              relocation: Relocation | None = None) -> AuditReport:
+              relocation: Relocation | None = None, opened=None) -> AuditReport:
     """Audit the set at ``path`` against the documented rules and laws (docs/audit.md).
 
     Parameters
@@ -218,6 +247,10 @@ def audit_set(path, sample: int | None = None, alpha: float = ALPHA, *, logs_roo
         The folder that now holds the logs, when they moved (:mod:`goalkit.write.relocate`).
     relocation : Relocation, optional
         Where the set's files were found already (verify passes its own; else looked for here).
+    opened : LogSource, optional
+        The log verify opened already; used instead of opening it again only when it is the
+        same single file read with the provenance's layout (device and inode, equal layout,
+        same skip policy, nothing skipped). Everything the audit checks is computed here.
 
     Returns
     -------
@@ -225,55 +258,115 @@ def audit_set(path, sample: int | None = None, alpha: float = ALPHA, *, logs_roo
     """
     path = Path(path)
     with open_set_file(path) as f:
-        if f.attrs.get("format") != "goalkit-goal-set":
-            raise DatasetError("not a goalkit set", file=path, key="format")
-        try:
-            seed = int(f.attrs["seed"])   # the set's own seed (a --seed override is stored here)
-            rc = parse_audit_recipe(str(f.attrs["recipe"]))
-            prov = json.loads(f.attrs["provenance"])
-        except (KeyError, ValueError, TypeError) as exc:  # tomllib and json errors are ValueErrors
-            raise DatasetError(f"the audit cannot read the stored seed, recipe or provenance ({exc})",
-                               file=path) from None
-        report = AuditReport(seed=seed, sample=sample, alpha=alpha)
-        missing = [f"{s}/{k}" for s in SPLITS for k in INDEX if s not in f or k not in f[s]]
-        if missing:
-            report.ok = False
-            report.failures.append(f"column {missing[0]} is missing; rows not audited")
-            return report
-        stored_codes = prov.get("strategies")
-        if stored_codes is not None and {int(k): v for k, v in stored_codes.items()} != CODE_NAMES:
-            report.ok = False
-            report.failures.append("strategy code table in the provenance differs from the documented one")
-        if relocation is None:
-            relocation = locate(path, prov, logs_root, strict=True)
-        try:
-            logs = _Logs(prov, rc, path, relocation)
-        except GoalkitError as exc:
-            raise DatasetError(f"the audit cannot reopen the logs this set was built from: {exc}",
-                               file=path) from None
-        flags = logs.end_flag_columns()
-        for s in SPLITS:
-            if rc.named_sources != ("source" in f[s]):
-                report.failures.append(f"column {s}/source is " + ("missing: the recipe names its sources"
-                                       if rc.named_sources else "stored, but the recipe names no sources"))
-            for col in END_FLAGS:
-                if col in flags and col not in f[s]:
-                    report.failures.append(f"column {s}/{col} is missing: the layout maps the environment's "
-                                           f"{END_FLAGS[col][0]} flag")
-                elif col not in flags and col in f[s]:
-                    report.failures.append(f"column {s}/{col} is stored, but the layout maps no "
-                                           f"{END_FLAGS[col][0]} flag")
-            for col, dtype in logs.stored_dtypes.items():
-                if col in f[s] and f[s][col].dtype != dtype:
-                    report.failures.append(f"column {s}/{col} is stored as {f[s][col].dtype}, expected {dtype} "
-                                           f"(the recipe's dtype, else the logs')")
-        auditor = _Auditor(f, rc, logs, report, seed, sample, alpha)
-        try:
-            auditor.summary_sources = json.loads(f.attrs["summary"]).get("sources")
-        except (KeyError, ValueError, TypeError, AttributeError):
-            auditor.summary_sources = None
-        auditor.run()
+        report, auditor = _prepare(f, path, sample, alpha, logs_root, relocation, opened)
+        if auditor is not None:
+            auditor.run()
     return report
+
+
+def _prepare(f, path, sample, alpha, logs_root, relocation, opened):
+    """The report and the auditor of the open set ``f`` (auditor None: rows not audited)."""
+    if f.attrs.get("format") != "goalkit-goal-set":
+        raise DatasetError("not a goalkit set", file=path, key="format")
+    try:
+        seed = int(f.attrs["seed"])   # the set's own seed (a --seed override is stored here)
+        rc = parse_audit_recipe(str(f.attrs["recipe"]))
+        prov = json.loads(f.attrs["provenance"])
+    except (KeyError, ValueError, TypeError) as exc:  # tomllib and json errors are ValueErrors
+        raise DatasetError(f"the audit cannot read the stored seed, recipe or provenance ({exc})",
+                           file=path) from None
+    report = AuditReport(seed=seed, sample=sample, alpha=alpha)
+    missing = [f"{s}/{k}" for s in SPLITS for k in INDEX if s not in f or k not in f[s]]
+    if missing:
+        report.ok = False
+        report.failures.append(f"column {missing[0]} is missing; rows not audited")
+        return report, None
+    stored_codes = prov.get("strategies")
+    if stored_codes is not None and {int(k): v for k, v in stored_codes.items()} != CODE_NAMES:
+        report.ok = False
+        report.failures.append("strategy code table in the provenance differs from the documented one")
+    if relocation is None:
+        relocation = locate(path, prov, logs_root, strict=True)
+    try:
+        logs = _Logs(prov, rc, path, relocation, opened)
+    except GoalkitError as exc:
+        raise DatasetError(f"the audit cannot reopen the logs this set was built from: {exc}",
+                           file=path) from None
+    flags = logs.end_flag_columns()
+    for s in SPLITS:
+        if rc.named_sources != ("source" in f[s]):
+            report.failures.append(f"column {s}/source is " + ("missing: the recipe names its sources"
+                                   if rc.named_sources else "stored, but the recipe names no sources"))
+        for col in END_FLAGS:
+            if col in flags and col not in f[s]:
+                report.failures.append(f"column {s}/{col} is missing: the layout maps the environment's "
+                                       f"{END_FLAGS[col][0]} flag")
+            elif col not in flags and col in f[s]:
+                report.failures.append(f"column {s}/{col} is stored, but the layout maps no "
+                                       f"{END_FLAGS[col][0]} flag")
+        for col, dtype in logs.stored_dtypes.items():
+            if col in f[s] and f[s][col].dtype != dtype:
+                report.failures.append(f"column {s}/{col} is stored as {f[s][col].dtype}, expected {dtype} "
+                                       f"(the recipe's dtype, else the logs')")
+    auditor = _Auditor(f, rc, logs, report, seed, sample, alpha)
+    try:
+        auditor.summary_sources = json.loads(f.attrs["summary"]).get("sources")
+    except (KeyError, ValueError, TypeError, AttributeError):
+        auditor.summary_sources = None
+    return report, auditor
+
+
+class AuditFeed:
+    """The audit of a whole set, fed the rows and log episodes verify has read already.
+
+    verify reads each chunk of episodes from the logs and the chunk's stored rows of each split
+    once; :meth:`add` audits those rows with them (the same rules, laws and jitter as
+    :func:`audit_set`: the jitter of a row is addressed by its position, so the draws' PIT
+    values are those of a run over the splits one after the other). Sets with goal heads or a
+    ``[graph]`` table are audited by :func:`audit_set` after the replay instead
+    (:attr:`fed` is False).
+    """
+
+    def __init__(self, path, relocation=None, opened=None):
+        self.path = Path(path)
+        self._file = open_set_file(self.path)
+        try:
+            self.report, self._auditor = _prepare(self._file, self.path, None, ALPHA, None, relocation, opened)
+        except BaseException:
+            self._file.close()
+            raise
+        a = self._auditor
+        self.fed = a is not None and a.heads is None and a.graph is None
+        if self.fed:
+            a.start()
+            a.positional = True
+
+    def add(self, split, a, b, stored: dict, chunk) -> None:
+        """Audit rows ``a .. b - 1`` of ``split`` (whole transitions of the episodes of ``chunk``)."""
+        if self.fed and b > a:
+            self._auditor.block(split, a, b, self._auditor.counts[split], stored=stored, chunk=chunk)
+
+    def add_stored(self, split, a, b) -> None:
+        """Audit rows ``a .. b - 1`` of ``split``, read here (rows verify did not read)."""
+        if self.fed:
+            for start in range(a, b, BLOCK_TRANSITIONS):
+                stop = min(b, start + BLOCK_TRANSITIONS)
+                self._auditor.block(split, start, stop, self._auditor.counts[split])
+
+    def finish(self) -> AuditReport:
+        """Finish the audit (or run it whole when rows were not fed) and close the set."""
+        try:
+            if self._auditor is not None:
+                if self.fed:
+                    self._auditor.end()
+                else:
+                    self._auditor.run()
+            return self.report
+        finally:
+            self.close()
+
+    def close(self) -> None:
+        self._file.close()
 
 
 class _Auditor:
@@ -287,6 +380,7 @@ class _Auditor:
         self.masks = None if rc.mask is None else MaskAudit(rc.mask, logs.goal_map.dim, logs.field_widths)
         self.graph = GraphAudit(logs, rc.graph) if rc.graph is not None else None
         self.summary_sources = None
+        self.positional = False   # jitter addressed by row position (rows fed in another order)
         self.heads = HeadAudit(rc, logs, self.draws, seed, self.masks) if rc.heads else None
 
     # ---- failures ------------------------------------------------------------------------
@@ -295,14 +389,21 @@ class _Auditor:
         if n == 0:
             return
         self.violations[rule] = self.violations.get(rule, 0) + n
-        if rule not in self.first:
-            i = int(np.flatnonzero(mask)[0])
-            self.first[rule] = (f"{split} row {row0 + i} (episode {int(c['source_episode'][i])} step "
-                                f"{int(c['source_step'][i])} slot {int(c['slot'][i])}): {message}")
+        i = int(np.flatnonzero(mask)[0])
+        where = (SPLITS.index(split), row0 + i)   # the first in the splits' order, however rows were fed
+        if rule not in self.first or where < self.first[rule][0]:
+            self.first[rule] = (where, f"{split} row {row0 + i} (episode {int(c['source_episode'][i])} step "
+                                       f"{int(c['source_step'][i])} slot {int(c['slot'][i])}): {message}")
 
     # ---- the run -------------------------------------------------------------------------
     def run(self):
-        rc, f = self.rc, self.f
+        self.start()
+        for s, a, b in self.blocks():
+            self.block(s, a, b, self.counts[s])
+        self.end()
+
+    def start(self):
+        f = self.f
         members = {}
         for s in SPLITS:
             ep = f[s]["source_episode"]
@@ -315,11 +416,12 @@ class _Auditor:
         unknown = np.setdiff1d(np.union1d(members["train"], members["validation"]), self.logs.ids)
         if unknown.size:
             self.report.failures.append(f"episode {int(unknown[0])} is not in the logs")
-        blocks = self.blocks()
-        counts = {s: np.zeros(len(self.logs.ids), np.int64) for s in SPLITS}
+        self.counts = {s: np.zeros(len(self.logs.ids), np.int64) for s in SPLITS}
         self.report.rows = {s: 0 for s in SPLITS}
-        for s, a, b in blocks:
-            self.block(s, a, b, counts[s])
+        self.split_start = {SPLITS[0]: 0, SPLITS[1]: int(f[SPLITS[0]]["source_episode"].shape[0])}
+
+    def end(self):
+        rc, counts, members = self.rc, self.counts, self.members
         if self.sample is None:
             missing = np.setdiff1d(self.logs.ids[self.logs.goals > 0], np.union1d(members["train"], members["validation"]))
             if missing.size:
@@ -335,7 +437,7 @@ class _Auditor:
                         f"T x goals_per_transition of its source = {int(expect[k])}")
             self.source_rows(counts)
         for rule, n in self.violations.items():
-            self.report.failures.append(f"row rule '{rule}' broken by {n} rows; first: {self.first[rule]}")
+            self.report.failures.append(f"row rule '{rule}' broken by {n} rows; first: {self.first[rule][1]}")
         if self.graph is not None:
             self.report.failures.extend(self.graph.failures())
         self.report.rule_violations = dict(self.violations)
@@ -390,20 +492,26 @@ class _Auditor:
         take = int(np.searchsorted(np.cumsum(sizes), int(self.sample))) + 1   # blocks until >= sample rows
         return [allb[i] for i in np.sort(order[:take]).tolist()]
 
-    def block(self, split, a, b, counts):
+    def block(self, split, a, b, counts, stored=None, chunk=None):
+        """Audit rows ``a .. b - 1`` of ``split``; ``stored``: those rows already read (by column), and
+        ``chunk``: the log episodes they come from, already read (else both are read here)."""
         rc, logs = self.rc, self.logs
         grp = self.f[split]
-        c = {k: grp[k][a:b] for k in INDEX + tuple(k for k in LABELS if k in grp)}
+
+        def column(k):
+            return stored[k] if stored is not None and k in stored else grp[k][a:b]
+
+        c = {k: column(k) for k in INDEX + tuple(k for k in LABELS if k in grp)}
         flags = [col for col in logs.end_flag_columns() if col in grp]
-        c.update({col: grp[col][a:b] for col in flags})
+        c.update({col: column(col) for col in flags})
         if "source" in grp and self.rc.named_sources:
-            c["source"] = grp["source"][a:b]
+            c["source"] = column("source")
         if self.masks is not None:
             if "goal_mask" not in grp:
                 self.violated("goal_mask", "the recipe has a [mask] table but the set no goal_mask column",
                               np.ones(b - a, bool), split, a, c)
                 return
-            c["goal_mask"] = grp["goal_mask"][a:b]
+            c["goal_mask"] = column("goal_mask")
         n = b - a
         if self.graph is not None:
             self.graph.add(split, a, c, grp["graph_steps"][a:b] if "graph_steps" in grp else None)
@@ -413,7 +521,12 @@ class _Auditor:
                 self.violated("head columns", f"the recipe builds goal heads but the set has no column {lacking[0]}",
                               np.ones(b - a, bool), split, a, c)
                 return
-        v = self.jitter.random((n, 3))
+        if not self.positional:
+            v = self.jitter.random((n, 3))
+        else:   # the draws a run over the splits one after the other gives these rows
+            gen = np.random.Generator(np.random.PCG64(np.random.SeedSequence([self.seed, JITTER_SALT])))
+            gen.bit_generator.advance(3 * (self.split_start[split] + a))
+            v = gen.random((n, 3))
         self.report.rows[split] += n
         ep, t, slot = c["source_episode"], c["source_step"], c["slot"]
         s = c["strategy"].astype(np.int64)
@@ -467,10 +580,11 @@ class _Auditor:
         if inside.any():
             idx = np.flatnonzero(inside)
             achieved, task, logged, task_ids = logs.achieved_and_task_goal(ep[idx], t[idx], flags=tuple(flags),
-                                                                           materials="observation" in grp)
+                                                                           materials="observation" in grp,
+                                                                           chunk=chunk)
             sub = {k: val[idx] for k, val in c.items()}
             if "observation" in grp:
-                self.stored_values(grp, a, b, known, idx, logged, split, c)
+                self.stored_values(column, known, idx, logged, split, a, c)
             for col in flags:
                 full = np.zeros(len(ep), bool)
                 full[idx] = sub[col] != logged[col]
@@ -497,7 +611,7 @@ class _Auditor:
                               split, a, c)
         self.laws(c, s, T, T_goal, v, valid, split)
 
-    def stored_values(self, grp, a, b, known, idx, logged, split, c):
+    def stored_values(self, column, known, idx, logged, split, a, c):
         """observation, action, next_observation: the logged values cast to the stored dtype here.
 
         The cast is numpy's (IEEE 754 round to nearest, ties to even, for floats), applied to the
@@ -505,7 +619,7 @@ class _Auditor:
         """
         n = len(c["source_episode"])
         for col in ("observation", "action", "next_observation"):
-            stored = np.asarray(grp[col][a:b])[known][idx]
+            stored = np.asarray(column(col))[known][idx]
             want = self.logs.stored_dtypes[col]
             with np.errstate(over="ignore", invalid="ignore"):
                 expect = np.asarray(logged[col]).astype(want)
@@ -571,11 +685,13 @@ class _Auditor:
             out.append(uniform_chi2_check(f"law of {name}", d.hist[name], f"PIT of the {name}"))
             for end in ("low", "high"):
                 hit, probs = d.ends[(name, end)]
+                probs = dict(sorted(probs.items()))   # summed in one order, however the rows came
                 out.append(count_bound_check(f"{name}: {'first' if end == 'low' else 'last'} value of the range",
                                              hit, list(probs), list(probs.values()), "rows"))
         for name, (hit, probs), what in (
                 ("slot pairs: same strategy", d.pairs_same_strategy, "pairs of slots (2k, 2k+1) with one strategy"),
                 ("slot pairs: same goal step", d.pairs_same_step, "same-strategy slot pairs with one goal step")):
+            probs = dict(sorted(probs.items()))
             out.append(count_bound_check(name, hit, list(probs), list(probs.values()), what))
         out.append(grid_chi2_check("slot pairs: independent draws", d.grid, "PIT pairs of slots (2k, 2k+1)"))
         if self.masks is not None:
@@ -590,13 +706,18 @@ def share_power_note(n: int = 100_000, share: float = 0.2, checks: int = 25, alp
     return share_power(n, share, alpha / checks)
 
 
-def audit_into(path, report, sample: int | None = None, relocation: Relocation | None = None) -> AuditReport:
+def audit_into(path, report, sample: int | None = None, relocation: Relocation | None = None,
+               opened=None) -> AuditReport:
     """Run :func:`audit_set` and record its outcome in a verify report.
 
     Each audit failure becomes a failure of ``report`` (``report.fail``), and the audit's
     summary goes to ``report.checked["audit"]``.
     """
-    result = audit_set(path, sample=sample, relocation=relocation)
+    return record_audit(report, audit_set(path, sample=sample, relocation=relocation, opened=opened))
+
+
+def record_audit(report, result: AuditReport) -> AuditReport:
+    """Record an audit's outcome in a verify report (failures prefixed ``audit:``, ``checked["audit"]``)."""
     for message in result.failures:
         report.fail(f"audit: {message}")
     report.checked["audit"] = result.as_dict()

@@ -21,6 +21,8 @@ from __future__ import annotations
 
 from goalkit.errors import shown
 
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -29,6 +31,8 @@ from goalkit import rng
 from goalkit.errors import TuningError
 from goalkit.thresholds.metrics import _run_ends, check_chooser, check_labelled, choose_index, place
 
+#: Threads computing blocks of resamples at once (at most two; the CPUs this process may use).
+THREADS = max(1, min(2, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1))
 #: goalkit.rng stream of the bootstrap draws (its own stream, so it shares no numbers with a build).
 BOOTSTRAP_STREAM = rng.STREAMS["bootstrap"]
 
@@ -149,14 +153,24 @@ def bootstrap_threshold(distances, labels, groups=None, *, chooser: str = "max-f
     ds, ys, gs = d[order], y[order], gi[order]
     ends = _run_ends(ds)
     thresholds = ds[ends]
-    block = max(1, int(max_cells) // max(d.size, 1))
+    threads = THREADS if n_resamples > 1 else 1
+    block = max(1, int(max_cells) // (threads * max(d.size, 1)))   # the budget shared by the threads
     out = np.empty(n_resamples, dtype=np.float64)
-    for start in range(0, n_resamples, block):  # a loop over blocks of resamples
+
+    def one_block(start):
         stop = min(n_resamples, start + block)
         draws = (resamples[start:stop] if resamples is not None
                  else resample_groups(n_groups, stop - start, seed, start))
         out[start:stop] = _block_thresholds(draws, n_groups, ds, ys, gs, ends, thresholds,
                                             chooser, target, placement, inclusive)
+
+    starts = range(0, n_resamples, block)   # blocks of resamples; each fills its own part of out
+    if threads > 1 and len(starts) > 1:     # numpy's sums and gathers release the GIL: two blocks at once
+        with ThreadPoolExecutor(threads, thread_name_prefix="goalkit-bootstrap") as pool:
+            list(pool.map(one_block, starts))
+    else:
+        for start in starts:
+            one_block(start)
     finite = out[np.isfinite(out)]
     alpha = (1.0 - confidence) / 2.0
     if finite.size:

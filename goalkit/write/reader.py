@@ -216,17 +216,45 @@ class GoalSet:
     # ---- checking --------------------------------------------------------------------
     def check_manifest(self, block_rows: int = 1 << 18) -> list[str]:
         """Recompute every column's SHA-256; return a message per mismatch (empty: all match)."""
-        problems = []
-        for key, expected in self.manifest.items():
+        return ManifestCheck(self, block_rows).problems()
+
+
+class ManifestCheck:
+    """Every column's SHA-256 against the manifest, fed rows as a caller reads them.
+
+    :meth:`add` hashes rows read elsewhere (each column's rows in order from row 0, so verify
+    decodes a column once for its rows and its checksum); :meth:`problems` reads and hashes
+    whatever rows were not fed and returns a message per mismatch, in manifest order.
+    """
+
+    def __init__(self, goal_set: GoalSet, block_rows: int = 1 << 18):
+        self.goal_set, self.block_rows = goal_set, int(block_rows)
+        self._hash, self._done = {}, {}
+        for key in goal_set.manifest:
             split, name = key.split("/", 1)
-            group = self.file[split]
-            if name not in group:
+            if name in goal_set.file[split]:
+                self._hash[key], self._done[key] = hashlib.sha256(), 0
+
+    def add(self, split: str, start: int, columns: dict) -> None:
+        """Hash ``columns`` (name -> rows ``start ..``) where they continue what was hashed."""
+        for name, value in columns.items():
+            key = f"{split}/{name}"
+            if self._done.get(key) == start:
+                self._hash[key].update(np.ascontiguousarray(value).tobytes())
+                self._done[key] = start + len(value)
+
+    def problems(self) -> list[str]:
+        """A message per column whose SHA-256 differs from the manifest's (or that is missing)."""
+        problems = []
+        for key, expected in self.goal_set.manifest.items():
+            if key not in self._hash:
                 problems.append(f"{key}: column listed in the manifest is missing")
                 continue
-            ds = group[name]
-            h = hashlib.sha256()
-            for a in range(0, ds.shape[0], block_rows):
-                h.update(np.ascontiguousarray(ds[a:a + block_rows]).tobytes())
+            split, name = key.split("/", 1)
+            ds, h = self.goal_set.file[split][name], self._hash[key]
+            for a in range(self._done[key], ds.shape[0], self.block_rows):
+                h.update(np.ascontiguousarray(ds[a:a + self.block_rows]).tobytes())
+            self._done[key] = ds.shape[0]
             if h.hexdigest() != expected:
                 problems.append(f"{key}: checksum {h.hexdigest()[:16]}... does not match the manifest's "
                                 f"{expected[:16]}...")

@@ -29,28 +29,38 @@ Checks, in order:
 from __future__ import annotations
 
 import os
+from collections import deque
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
+from types import SimpleNamespace
 
 import numpy as np
 
-from goalkit.audit import audit_into
+from goalkit.audit import AuditFeed, record_audit
 from goalkit.errors import DatasetError, GoalkitError, shown
 from goalkit.logs.episodes import chunk_bounds
 from goalkit.pipeline.build import chunk_transitions, final_summary
 from goalkit.pipeline.chunk import relabel_chunk, row_labels
 from goalkit.pipeline.plan import make_plan, split_rows
+from goalkit.pipeline.readproc import ChunkReader
+from goalkit.pipeline.readproc import wanted as readproc_wanted
 from goalkit.pipeline.summary import SummaryBuilder
 from goalkit.relabel.strategies import strategy_names
 from goalkit.reward import score
 from goalkit.rows import END_FLAG_SOURCES
+from goalkit.write.chunkread import SplitColumns
 from goalkit.write.format import SPLIT_CODES, SPLITS
-from goalkit.write.reader import GoalSet
+from goalkit.write.reader import GoalSet, ManifestCheck
 from goalkit.write.relocate import locate
 from goalkit.write.rederive import (as_stored, check_columns, differences, provenance_differences,
                                     source_entries, stored_recipe)
 from goalkit.write.rules import check_goal_rules
 from goalkit.write.seal import check_layout, check_seal, stored_strategy_codes
 from goalkit.write.search_checks import check_joined
+
+
+#: Chunks of episodes read ahead of the one being checked.
+READ_AHEAD = 2
 
 
 @dataclass
@@ -285,49 +295,119 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True, 
             raise DatasetError(f"cannot reopen what this set was built from: {exc}", file=goal_set.path) from None
         if not check_columns(goal_set, plan, split_rows(plan), report):
             return report
-        # 3. manifest
-        for message in goal_set.check_manifest():
-            report.fail(message)
+        # 3. manifest: each column's SHA-256, fed the rows the replay reads (so they are decoded
+        #    once); its messages come before the rows' (the replay's are held until then)
+        manifest = ManifestCheck(goal_set)
         report.checked["columns"] = len(goal_set.manifest)
-        # 4 + 5. rows, checked and re-derived; the summary re-derived alongside
-        summary = SummaryBuilder(strategy_names(), plan.total_rows, recipe.seed,
-                                 distance_unit=recipe.reward.reach_threshold, rule=recipe.reward)
-        cursor = {split: 0 for split in SPLITS}
-        total = {split: goal_set.rows(split) for split in SPLITS}
-        stored_names = {split: goal_set.columns(split) for split in SPLITS}
-        for first_ep, stop_ep in chunk_bounds(plan.lengths, chunk_transitions(plan)):
-            chunk = source.read(first_ep, stop_ep)
-            fresh = relabel_chunk(plan, chunk)
-            for split in SPLITS:
-                n_rows = len(fresh.keys.get(split, ()))
-                row0, row_stop = cursor[split], cursor[split] + n_rows
-                if row_stop > total[split]:
-                    report.fail(f"{split}: fewer rows stored ({total[split]}) than the recipe produces")
-                    return report
-                stored = goal_set.read(split, stored_names[split], row0, row_stop, resolve=False)
-                check_rows(plan, chunk, stored, split, report, row0)
-                if n_rows:
-                    _compare(fresh.columns[split], stored, split, row0, report)
-                    summary.add(split, fresh.columns[split], fresh.keys[split])
-                cursor[split] = row_stop
-            if progress is not None:
-                progress(int(plan.lengths[first_ep:stop_ep].sum()), plan.total_transitions)
-        for split in SPLITS:
-            if cursor[split] != total[split]:
-                report.fail(f"{split}: {total[split]} rows stored, the recipe produces {cursor[split]}")
-        report.checked["rows"] = {split: total[split] for split in SPLITS}
-        report.checked["episodes"] = int(len(plan.episode_ids))
-        # 5. summary and provenance, re-derived
-        fresh_summary = relocation.restore(as_stored(final_summary(summary, plan, source)))
-        if "composition" not in goal_set.summary:  # a set built before the composition was stored
-            fresh_summary.pop("composition", None)
-        for message in differences(fresh_summary, goal_set.summary, "summary"):
-            report.fail(message)
-        for message in provenance_differences(goal_set, plan, source, digests, relocation):
-            report.fail(message)
-    if audit:  # 6. rules and laws re-stated independently of the builder (docs/audit.md)
-        audit_into(path, report, relocation=relocation)
+        rows_report = VerifyReport(max_failures=max_failures, checked=report.checked)
+        # 4 + 5. rows, checked and re-derived; the summary re-derived alongside (_replay)
+        # 6. the audit (rules and laws re-stated independently of the builder, docs/audit.md), fed
+        #    the rows and log episodes read here, so that each is read and decompressed once
+        feed = AuditFeed(path, relocation=relocation, opened=source) if audit else None
+        try:
+            complete = _replay(goal_set, plan, source, recipe, rows_report, relocation, digests, progress, feed,
+                               manifest)
+            for message in manifest.problems() + rows_report.failures:
+                report.fail(message)
+            report.ok = report.ok and rows_report.ok
+            if not complete:
+                return report
+            if feed is not None:
+                result, feed = feed.finish(), None
+        finally:
+            if feed is not None:
+                feed.close()
+    if audit:
+        record_audit(report, result)
     return report
+
+
+def _replay(goal_set, plan, source, recipe, report, relocation, digests, progress, feed, manifest) -> bool:
+    """Steps 4 and 5 of :func:`verify_set`; False when verify must stop (rows missing)."""
+    summary = SummaryBuilder(strategy_names(), plan.total_rows, recipe.seed,
+                             distance_unit=recipe.reward.reach_threshold, rule=recipe.reward)
+    total = {split: goal_set.rows(split) for split in SPLITS}
+    stored_names = {split: goal_set.columns(split) for split in SPLITS}
+    readers = {split: SplitColumns(goal_set, split, stored_names[split]) for split in SPLITS if stored_names[split]}
+    try:
+        return _replay_rows(goal_set, plan, source, report, relocation, digests, progress, feed, manifest,
+                            summary, total, stored_names, readers)
+    finally:
+        for reader in readers.values():
+            reader.close()
+
+
+def _chunks_ahead(plan, source):
+    """Yield ``(first, stop, EpisodeSet)`` of every chunk in order, read up to two chunks ahead on a
+    thread (by a reader process for grouped and per-file logs, as the build reads them); a chunk
+    the reader cannot give is read with ``source.read``, which raises any problem as before."""
+    bounds = list(chunk_bounds(plan.lengths, chunk_transitions(plan)))
+    specs = [SimpleNamespace(start=a, stop=b, transitions=int(plan.lengths[a:b].sum())) for a, b in bounds]
+    chunk_reader = ChunkReader(source, bounds) if readproc_wanted(source, specs) else None
+    read = source.read if chunk_reader is None else chunk_reader.read
+    try:
+        with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-verify-read") as pool:
+            pending = deque(pool.submit(read, a, b) for a, b in bounds[:READ_AHEAD])
+            for i, (a, b) in enumerate(bounds):
+                chunk = pending.popleft().result()
+                if i + READ_AHEAD < len(bounds):
+                    pending.append(pool.submit(read, *bounds[i + READ_AHEAD]))
+                yield a, b, chunk
+    finally:
+        if chunk_reader is not None:
+            chunk_reader.close()
+
+
+def _stored_rows(goal_set, readers, split, names, a, b) -> dict:
+    """Stored rows ``a .. b - 1`` of ``split``: chunks inflated on threads, else through h5py."""
+    reader = readers.get(split)
+    if reader is not None:
+        try:
+            return reader.read(a, b)
+        except DatasetError:   # a chunk that does not inflate: h5py reads it and gives its verdict
+            pass
+    return goal_set.read(split, names, a, b, resolve=False)
+
+
+def _replay_rows(goal_set, plan, source, report, relocation, digests, progress, feed, manifest, summary, total,
+                 stored_names, readers) -> bool:
+    """The rows of every chunk of episodes: checked, re-derived, audited; then summary and provenance."""
+    cursor = {split: 0 for split in SPLITS}
+    for first_ep, stop_ep, chunk in _chunks_ahead(plan, source):
+        fresh = relabel_chunk(plan, chunk)
+        for split in SPLITS:
+            n_rows = len(fresh.keys.get(split, ()))
+            row0, row_stop = cursor[split], cursor[split] + n_rows
+            if row_stop > total[split]:
+                report.fail(f"{split}: fewer rows stored ({total[split]}) than the recipe produces")
+                return False
+            stored = _stored_rows(goal_set, readers, split, stored_names[split], row0, row_stop)
+            manifest.add(split, row0, stored)
+            check_rows(plan, chunk, stored, split, report, row0)
+            if feed is not None:
+                feed.add(split, row0, row_stop, stored, chunk)
+            if n_rows:
+                _compare(fresh.columns[split], stored, split, row0, report)
+                summary.add(split, fresh.columns[split], fresh.keys[split])
+            cursor[split] = row_stop
+        if progress is not None:
+            progress(int(plan.lengths[first_ep:stop_ep].sum()), plan.total_transitions)
+    for split in SPLITS:
+        if cursor[split] != total[split]:
+            report.fail(f"{split}: {total[split]} rows stored, the recipe produces {cursor[split]}")
+            if feed is not None:   # rows beyond what the recipe produces: the audit reads them itself
+                feed.add_stored(split, cursor[split], total[split])
+    report.checked["rows"] = {split: total[split] for split in SPLITS}
+    report.checked["episodes"] = int(len(plan.episode_ids))
+    # 5. summary and provenance, re-derived
+    fresh_summary = relocation.restore(as_stored(final_summary(summary, plan, source)))
+    if "composition" not in goal_set.summary:  # a set built before the composition was stored
+        fresh_summary.pop("composition", None)
+    for message in differences(fresh_summary, goal_set.summary, "summary"):
+        report.fail(message)
+    for message in provenance_differences(goal_set, plan, source, digests, relocation):
+        report.fail(message)
+    return True
 
 
 def _compare(fresh: dict, stored: dict, split: str, row0: int, report: VerifyReport) -> None:

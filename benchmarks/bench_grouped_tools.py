@@ -1,0 +1,189 @@
+"""verify, scan and tune on logs shaped as users keep them, against the build and a plain read.
+
+    .venv/bin/python benchmarks/bench_grouped_tools.py              # 200k transitions (~1 min)
+    .venv/bin/python benchmarks/bench_grouped_tools.py --repeats 3  # medians of 3 rounds
+
+Logs and recipe: as in bench_grouped.py (``goalkit.demo.make_demo``, 4,250 episodes, about
+200k transitions, one HDF5 group per episode, seven gzip datasets each; the demo recipe with
+5 goals per transition and a gzip set).
+
+Cases, each a fresh process running the command line in process (``goalkit.cli.main``), in one
+run and one round after the other:
+
+* ``build``: ``goalkit build RECIPE --quiet --replace`` (the set verify then checks; the card
+  is written as the command does);
+* ``verify``: ``goalkit verify SET --quiet`` (replay and audit: every check);
+* ``scan``: ``goalkit scan LOGS --layout LAYOUT --json``;
+* ``tune``: ``goalkit tune RECIPE --from-success --resamples 1000 --quiet`` (its default sample
+  of 200,000 transitions, so all of these logs);
+* ``read``: the plain h5py read of the same datasets, the floor of scan and tune: every episode
+  group's seven datasets read whole (``group[key][()]``) and its ``task`` attribute.
+
+Reported: wall and CPU seconds per case (CPU: user + system of the process and its finished
+children; the machine has 2 cores, shared), peak RSS, the load average before and after, and
+the ratios of issue 14: verify / build, scan / read, tune / read (by wall, and by CPU), the
+median over rounds. Targets: verify <= 1.0x the build, scan <= 1.1x and tune <= 1.5x the read.
+Results: ``benchmarks/results/grouped_tools.json``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import resource
+import statistics
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+ROOT = HERE.parent
+sys.path.insert(0, str(ROOT))
+
+EPISODES = 4_250
+KEYS = ("head", "head_velocity", "trays", "action", "reward", "success", "task_goal")
+TARGETS = {"verify_over_build": 1.0, "scan_over_read": 1.1, "tune_over_read": 1.5}
+
+
+def cpu_seconds() -> float:
+    me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    return me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
+
+
+def read_case(logs: str) -> dict:
+    """The plain h5py read of every dataset of every episode group."""
+    import h5py
+
+    values = 0
+    with h5py.File(logs, "r") as f:
+        top = f["bench"]
+        for name in top:
+            g = top[name]
+            for key in KEYS:
+                values += g[key][()].size
+            g.attrs["task"]
+    return {"values_read": values}
+
+
+def cli_case(argv: list) -> dict:
+    from goalkit.cli import main
+
+    try:
+        main(argv, prog_name="goalkit")
+        code = 0
+    except SystemExit as exc:
+        code = exc.code or 0
+    return {"exit_status": code}
+
+
+def child(args) -> None:
+    info = json.loads(Path(args.info).read_text())
+    folder = Path(info["recipe"]).parent
+    built = str(folder / "bench-tools-goals.h5")
+    c0, t0 = cpu_seconds(), time.perf_counter()
+    if args.case == "read":
+        res = read_case(info["logs"])
+    else:
+        argv = {"build": ["build", info["recipe"], "--out", built, "--quiet", "--replace"],
+                "verify": ["verify", built, "--quiet"],
+                "scan": ["scan", info["logs"], "--layout", info["layout"], "--json"],
+                "tune": ["tune", info["recipe"], "--from-success", "--quiet"]}[args.case]
+        out = open(os.devnull, "w")
+        saved, sys.stdout = sys.stdout, out
+        try:
+            res = cli_case(argv)
+        finally:
+            sys.stdout = saved
+    me = resource.getrusage(resource.RUSAGE_SELF)
+    res.update(seconds=time.perf_counter() - t0, cpu_seconds=cpu_seconds() - c0, peak_rss_mb=me.ru_maxrss / 1024)
+    print(json.dumps(res))
+
+
+def run(case: str, marker: str) -> dict:
+    proc = subprocess.run([sys.executable, __file__, "--child", "--case", case, "--info", marker],
+                          capture_output=True, text=True, cwd=str(ROOT), env={**os.environ, "PYTHONPATH": str(ROOT)})
+    if proc.returncode:
+        raise RuntimeError(f"benchmark case {case} failed:\n{proc.stderr[-4000:]}")
+    res = json.loads(proc.stdout.strip().splitlines()[-1])
+    if res.get("exit_status", 0) != 0:
+        raise RuntimeError(f"benchmark case {case} exited with {res['exit_status']}:\n{proc.stderr[-4000:]}")
+    return res
+
+
+def logs(folder: Path, episodes: int) -> dict:
+    marker = folder / "bench-logs.json"
+    if marker.exists():
+        info = json.loads(marker.read_text())
+        if info.get("episodes") == episodes:
+            return info
+    from goalkit.demo import make_demo
+    from goalkit.demo.files import THRESHOLD
+
+    folder.mkdir(parents=True, exist_ok=True)
+    info = make_demo(folder, episodes=episodes, seed=0, replace=True)
+    info = {k: str(v) if isinstance(v, Path) else v for k, v in info.items()}
+    info["threshold"] = THRESHOLD
+    marker.write_text(json.dumps(info))
+    return info
+
+
+def main(argv=None) -> dict:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0],
+                                 formatter_class=argparse.ArgumentDefaultsHelpFormatter)
+    ap.add_argument("--episodes", type=int, default=EPISODES, help="demo episodes (about 47 transitions each)")
+    ap.add_argument("--repeats", type=int, default=1, help="rounds of every case; ratios are medians over rounds")
+    ap.add_argument("--cases", default="read,build,verify,scan,tune", help="comma-separated cases to run")
+    ap.add_argument("--data", default="/tmp/goalkit-bench-grouped/200k", help="folder for generated logs")
+    ap.add_argument("--out", default=str(HERE / "results" / "grouped_tools.json"))
+    ap.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
+    ap.add_argument("--case", help=argparse.SUPPRESS)
+    ap.add_argument("--info", help=argparse.SUPPRESS)
+    args = ap.parse_args(argv)
+    if args.child:
+        child(args)
+        return {}
+    info = logs(Path(args.data), args.episodes)
+    marker = str(Path(args.data) / "bench-logs.json")
+    cases = [c for c in args.cases.split(",") if c]
+    if "verify" in cases and "build" not in cases:
+        cases.insert(0, "build")
+    rounds = []
+    load_before = os.getloadavg()
+    for r in range(args.repeats):
+        got = {}
+        for case in cases:
+            got[case] = run(case, marker)
+            g = got[case]
+            print(f"round {r + 1} {case:<7} wall {g['seconds']:6.2f} s  cpu {g['cpu_seconds']:6.2f} s  "
+                  f"peak RSS {g['peak_rss_mb']:5.0f} MiB  load {os.getloadavg()[0]:.2f}", flush=True)
+        rounds.append(got)
+    Path(info["recipe"]).parent.joinpath("bench-tools-goals.h5").unlink(missing_ok=True)
+    ratios = {}
+    for name, (num, den) in {"verify_over_build": ("verify", "build"), "scan_over_read": ("scan", "read"),
+                             "tune_over_read": ("tune", "read")}.items():
+        if num in cases and den in cases:
+            for what in ("seconds", "cpu_seconds"):
+                key = name + ("_wall" if what == "seconds" else "_cpu")
+                ratios[key] = statistics.median(g[num][what] / g[den][what] for g in rounds)
+    report = {"benchmark": "grouped_tools",
+              "command": "python benchmarks/bench_grouped_tools.py " + " ".join(argv if argv is not None
+                                                                              else sys.argv[1:]),
+              "machine": {"cpus": os.cpu_count(), "python": platform.python_version()},
+              "episodes": args.episodes, "transitions": info["steps"],
+              "load_average_before": load_before, "load_average_after": os.getloadavg(),
+              "rounds": rounds, "ratios": ratios, "targets": TARGETS,
+              "note": "shared 2-core machine: compare ratios within one run and CPU seconds"}
+    for k, v in ratios.items():
+        print(f"{k:<24} {v:5.2f}x")
+    out = Path(args.out)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    out.write_text(json.dumps(report, indent=2) + "\n")
+    print(f"results: {out}")
+    return report
+
+
+if __name__ == "__main__":
+    main()
