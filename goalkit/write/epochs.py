@@ -192,15 +192,18 @@ def _sliced_pools(segments, pool_rows):
     ``rows / pool_rows + 1`` times an epoch, which is small exactly when this plan is used.
     """
     total = sum(b - a for a, b in segments)
+    starts = np.array([a for a, _ in segments], dtype=np.int64)[:, None]
+    lengths = np.array([b - a for a, b in segments], dtype=np.int64)[:, None]
     for n in range(max(1, -(-total // pool_rows)), total + 1):
-        pools = [[] for _ in range(n)]
-        for a, b in segments:
-            edges = a + (np.arange(2 * n + 1, dtype=np.int64) * (b - a)) // (2 * n)
-            for p in range(n):
-                for k in (p, 2 * n - 1 - p):
-                    if edges[k + 1] > edges[k]:
-                        pools[p].append((int(edges[k]), int(edges[k + 1])))
-        if max(sum(b - a for a, b in p) for p in pools) <= pool_rows:
+        edges = starts + (np.arange(2 * n + 1, dtype=np.int64) * lengths) // (2 * n)   # (segments, 2n + 1)
+        sizes = np.diff(edges, axis=1).sum(axis=0)                                   # rows of each slice index
+        if (sizes[:n] + sizes[2 * n - 1:n - 1:-1]).max() <= pool_rows:               # pool p: slices p, 2n-1-p
+            pools = [[] for _ in range(n)]
+            for row in edges.tolist():
+                for p in range(n):
+                    for k in (p, 2 * n - 1 - p):
+                        if row[k + 1] > row[k]:
+                            pools[p].append((row[k], row[k + 1]))
             return [_merge(p) for p in pools if p]
     return [[seg] for seg in segments]  # not reached: n = total gives pools of one or two rows
 
