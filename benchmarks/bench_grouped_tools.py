@@ -42,15 +42,13 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(HERE))
+
+from bench_grouped import cpu_seconds, logs  # noqa: E402  (the same demo logs, reused by size)
 
 EPISODES = 4_250
 KEYS = ("head", "head_velocity", "trays", "action", "reward", "success", "task_goal")
 TARGETS = {"verify_over_build": 1.0, "scan_over_read": 1.1, "tune_over_read": 1.5}
-
-
-def cpu_seconds() -> float:
-    me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
-    return me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
 
 
 def read_case(logs: str) -> dict:
@@ -111,23 +109,6 @@ def run(case: str, marker: str) -> dict:
     if res.get("exit_status", 0) != 0:
         raise RuntimeError(f"benchmark case {case} exited with {res['exit_status']}:\n{proc.stderr[-4000:]}")
     return res
-
-
-def logs(folder: Path, episodes: int) -> dict:
-    marker = folder / "bench-logs.json"
-    if marker.exists():
-        info = json.loads(marker.read_text())
-        if info.get("episodes") == episodes:
-            return info
-    from goalkit.demo import make_demo
-    from goalkit.demo.files import THRESHOLD
-
-    folder.mkdir(parents=True, exist_ok=True)
-    info = make_demo(folder, episodes=episodes, seed=0, replace=True)
-    info = {k: str(v) if isinstance(v, Path) else v for k, v in info.items()}
-    info["threshold"] = THRESHOLD
-    marker.write_text(json.dumps(info))
-    return info
 
 
 def main(argv=None) -> dict:

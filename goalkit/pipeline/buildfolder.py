@@ -82,6 +82,43 @@ def _os_error(exc: OSError, what: str, path) -> DatasetError:
     return DatasetError(f"cannot {what} ({exc.strerror or exc})", file=path)
 
 
+def lock_own_folder(path: Path, what: str):
+    """Create or adopt goalkit's folder ``path`` (never a link) and lock its ``lock`` file.
+
+    Parameters
+    ----------
+    path : Path
+        The folder (a build folder or a work folder).
+    what : str
+        Its name in messages ("build folder", "work folder").
+
+    Returns
+    -------
+    file object
+        The open lock file; closing it releases the lock.
+
+    Raises
+    ------
+    DatasetError
+        When the folder cannot be created or written, or another build holds its lock.
+    """
+    try:
+        own_folder(path, what=what)
+        lock = os.fdopen(open_no_follow(path / LOCK_FILE, os.O_RDWR | os.O_CREAT), "a+")
+    except GoalkitError as exc:
+        raise DatasetError(exc.message, file=exc.file) from None
+    except OSError as exc:
+        raise _os_error(exc, f"create the {what}", path) from None
+    if fcntl is not None:
+        try:
+            fcntl.flock(lock.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            lock.close()
+            raise DatasetError(f"another build of this output is running (its {what} is locked); "
+                               "wait for it or stop it", file=path) from None
+    return lock
+
+
 class BuildFolder:
     """The shard folder of one output, locked while in use.
 
@@ -111,21 +148,7 @@ class BuildFolder:
         DatasetError
             When the folder cannot be created or written, or another build holds it.
         """
-        try:
-            own_folder(self.path, what="build folder")
-            self._lock = os.fdopen(open_no_follow(self.path / LOCK_FILE, os.O_RDWR | os.O_CREAT), "a+")
-        except GoalkitError as exc:
-            raise DatasetError(exc.message, file=exc.file) from None
-        except OSError as exc:
-            raise _os_error(exc, "create the build folder", self.path) from None
-        if fcntl is not None:
-            try:
-                fcntl.flock(self._lock.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
-            except OSError:
-                self._lock.close()
-                self._lock = None
-                raise DatasetError("another build of this output is running (its build folder is locked); "
-                                   "wait for it or stop it", file=self.path) from None
+        self._lock = lock_own_folder(self.path, "build folder")
         same = not fresh and self._stored_key() == key
         try:
             self._sweep(keep_shards=same)

@@ -59,6 +59,31 @@ def goal_vectors(plan, chunk, phi_chunk, rows, src_pos, src_ep) -> np.ndarray:
     return out
 
 
+def transition_columns(plan, episodes, transitions, positions) -> dict:
+    """The optional per-transition columns a set built from ``plan`` stores, for some transitions.
+
+    ``termination`` and ``time_limit`` (the log's end flags, uint8), ``source`` (the log source,
+    uint16) and ``task_reward`` (float32), each only when the plan's columns have it, as the
+    build writes them (:func:`relabel_chunk` calls it; so do the training samplers).
+
+    Parameters
+    ----------
+    plan : BuildPlan
+    episodes : EpisodeSet
+    transitions, positions : ndarray of int
+        Transition indices into ``episodes`` and their episodes' positions.
+    """
+    out = {}
+    if "task_reward" in plan.columns:
+        out["task_reward"] = np.take(episodes.rewards, transitions, axis=0).astype(np.float32)
+    for name, attr in END_FLAG_SOURCES.items():
+        if name in plan.columns:
+            out[name] = np.take(getattr(episodes, attr), transitions, axis=0).astype(np.uint8)
+    if "source" in plan.columns:
+        out["source"] = np.take(episodes.sources, positions, axis=0).astype(np.uint16)
+    return out
+
+
 def relabel_chunk(plan, chunk, defer_gathers: bool = False) -> ChunkRows:
     """Relabel one chunk of episodes and score every row.
 
@@ -142,14 +167,8 @@ def _split_rows(plan, chunk, phi_chunk, first, transitions, gdtype, defer_gather
         cols["action"] = gather(actions, t)
         cols["next_observation"] = gather(observations, cur + 1)
         cols["reached_goal"] = achieved
-    if "task_reward" in plan.columns:
-        cols["task_reward"] = np.take(chunk.rewards, t, axis=0).astype(np.float32)
-    # the environment's end flags of the logged transition (same for every slot; never scored)
-    for name, attr in END_FLAG_SOURCES.items():
-        if name in plan.columns:
-            cols[name] = np.take(getattr(chunk, attr), t, axis=0).astype(np.uint8)
-    if "source" in plan.columns:
-        cols["source"] = np.take(chunk.sources, src_pos, axis=0).astype(np.uint16)
+    # task reward, the environment's end flags (same for every slot; never scored) and the source
+    cols.update(transition_columns(plan, chunk, t, src_pos))
     if mask is not None:
         cols["goal_mask"] = mask
     if plan.recipe.output.goals == "heads":  # one column group per goal head (goalkit.pipeline.headcols)

@@ -21,16 +21,10 @@ import re
 import stat
 from pathlib import Path
 
-from goalkit.errors import DatasetError, GoalkitError
-from goalkit.outputs import open_no_follow, own_folder, parse_temporary
+from goalkit.outputs import parse_temporary
+from goalkit.pipeline.buildfolder import LOCK_FILE, lock_own_folder
 from goalkit.pipeline.shardfiles import ShardError, read_shard, write_shard
 
-try:  # POSIX advisory locks; elsewhere builds are not guarded against running twice
-    import fcntl
-except ImportError:  # pragma: no cover
-    fcntl = None
-
-LOCK_FILE = "lock"
 _UNIT_NAME = re.compile(r"^unit-[0-9a-f]{64}\.npz$")
 
 
@@ -71,20 +65,7 @@ class WorkFolder:
         DatasetError
             When the folder cannot be created or written, or another build holds it.
         """
-        try:
-            own_folder(self.path, what="work folder")
-            self._lock = os.fdopen(open_no_follow(self.path / LOCK_FILE, os.O_RDWR | os.O_CREAT), "a+")
-        except GoalkitError as exc:
-            raise DatasetError(exc.message, file=exc.file) from None
-        except OSError as exc:
-            raise DatasetError(f"cannot create the work folder ({exc.strerror or exc})", file=self.path) from None
-        if fcntl is not None:
-            try:
-                fcntl.flock(self._lock.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
-            except OSError:
-                self.release()
-                raise DatasetError("another build of this output is running (its work folder is locked); "
-                                   "wait for it or stop it", file=self.path) from None
+        self._lock = lock_own_folder(self.path, "work folder")
         for p in self._own_files():
             if parse_temporary(p.name) is not None:
                 p.unlink(missing_ok=True)

@@ -33,11 +33,11 @@ import numpy as np
 from goalkit.errors import RecipeError
 from goalkit.goals.stategraph import graph_steps
 from goalkit.heads import SOURCE_CODES, GoalHead
-from goalkit.pipeline.chunk import row_labels
+from goalkit.pipeline.chunk import row_labels, transition_columns
 from goalkit.reward import score
 from goalkit.rng import BatchBits
 from goalkit.rows import LABEL_COLUMNS
-from goalkit.write.sampler import load_split, transition_columns
+from goalkit.write.sampler import load_split
 
 _CUR, _FUT, _GEO, _RND, _NEG, _FIN, _EPI, _SUB = (SOURCE_CODES[n] for n in (
     "current", "future", "geometric", "random", "negative", "final", "episode", "subgoal"))

@@ -15,11 +15,11 @@ from goalkit import rng
 from goalkit.errors import RecipeError
 from goalkit.goals.stategraph import graph_steps
 from goalkit.logs.episodes import chunk_bounds, concat_episodes, consecutive_runs
-from goalkit.pipeline.chunk import row_labels
+from goalkit.pipeline.chunk import row_labels, transition_columns
 from goalkit.pipeline.plan import make_plan
 from goalkit.relabel.strategies import STRATEGIES
 from goalkit.reward import score
-from goalkit.rows import END_FLAG_SOURCES, SPLIT_CODES, SPLITS
+from goalkit.rows import SPLIT_CODES, SPLITS
 
 
 def load_split(recipe, split: str = "train", source=None):
@@ -66,31 +66,6 @@ def load_split(recipe, split: str = "train", source=None):
                        actions=plan.dtypes.cast(episodes.actions, "action", "output.action_dtype", episodes,
                                                 state_level=False))
     return plan, episodes, phi
-
-
-def transition_columns(plan, episodes, transitions, positions) -> dict:
-    """The optional per-transition columns a set built from ``plan`` stores, for some transitions.
-
-    ``termination`` and ``time_limit`` (the log's end flags, uint8), ``source`` (the log source,
-    uint16) and ``task_reward`` (float32), each only when the plan's columns have it, as the
-    build writes them (:func:`goalkit.pipeline.chunk.relabel_chunk`).
-
-    Parameters
-    ----------
-    plan : BuildPlan
-    episodes : EpisodeSet
-    transitions, positions : ndarray of int
-        Transition indices into ``episodes`` and their episodes' positions.
-    """
-    out = {}
-    if "task_reward" in plan.columns:
-        out["task_reward"] = np.take(episodes.rewards, transitions, axis=0).astype(np.float32)
-    for name, attr in END_FLAG_SOURCES.items():
-        if name in plan.columns:
-            out[name] = np.take(getattr(episodes, attr), transitions, axis=0).astype(np.uint8)
-    if "source" in plan.columns:
-        out["source"] = np.take(episodes.sources, positions, axis=0).astype(np.uint16)
-    return out
 
 
 class GoalSampler:
