@@ -29,7 +29,7 @@ from goalkit.logs.episodic import EpisodicSource, join_parts, plan_episode, read
 from goalkit.logs.groupplan import plan_group, plan_keys
 from goalkit.logs.groupread import read_groups, read_plan
 from goalkit.logs.naming import natural_sorted
-from goalkit.logs.planspawn import finish_helper, helper_split, start_helper, stop_helper
+from goalkit.logs.planspawn import finish_helper, groups_digest, helper_split, start_helper, stop_helper
 
 
 def linked(group, name: str, file, path: str | None = None):
@@ -73,6 +73,12 @@ def match_groups(h5file, pattern: str, file=None) -> list[str]:
             names = [n for n in group.keys() if fnmatch.fnmatchcase(n, part)]
             for n in natural_sorted(names):
                 path = f"{p}/{n}" if p else n
+                if last:
+                    ident = _hard_group(group, n)
+                    if ident is not None:        # the common case, without opening the group
+                        if ident is not False:
+                            nxt.append((path, ident))
+                        continue
                 obj = linked(group, n, file, path)
                 if isinstance(obj, h5py.Group):
                     # the episode groups themselves are not kept open (tens of thousands of
@@ -86,6 +92,22 @@ def match_groups(h5file, pattern: str, file=None) -> list[str]:
             raise LogError(f"is the same group as {other} (a link); expected each episode group to "
                            f"hold its own data", file=file, key=path)
     return [path for path, _ in level]
+
+
+def _hard_group(group, name: str):
+    """(file number, address) of the group hard-linked as ``name``, False when it is a hard link
+    to something else (a dataset, which :func:`match_groups` skips), None for anything else (a
+    soft or external link, an error: :func:`linked` looks at those and names the problem)."""
+    raw = name.encode("utf-8")
+    try:
+        if group.id.links.get_info(raw).type != h5py.h5l.TYPE_HARD:
+            return None
+        info = h5py.h5o.get_info(group.id, raw)
+    except READ_ERRORS:
+        return None
+    if info.type != h5py.h5o.TYPE_GROUP:
+        return False
+    return (info.fileno, info.addr)
 
 
 def _identity(group, file, path) -> tuple:
@@ -122,7 +144,7 @@ class GroupedSource(EpisodicSource):
         problem, through :func:`~goalkit.logs.episodic.plan_episode`).
 
         With many groups and a second CPU, a helper process plans the last part of them at the
-        same time (:mod:`goalkit.logs.planhelper`); its metas are taken only when it finished
+        same time (:mod:`goalkit.logs.planspawn`); its metas are taken only when it finished
         cleanly, and any episode where the two parts could disagree (a problem, a dataset both
         parts reached) is planned again here, so the result is the serial one.
         """
@@ -146,6 +168,30 @@ class GroupedSource(EpisodicSource):
                 metas += more
                 problems += more_problems
         return metas, problems
+
+    @staticmethod
+    def plan_part(request: dict) -> dict:
+        """The planning helper's work (:mod:`goalkit.logs.planspawn`): plan groups
+        ``request["start"] ..`` of the log at ``request["path"]``; the answer for the caller.
+
+        Raises
+        ------
+        ValueError
+            When the log's groups are not the ones the caller matched (``total``, ``digest``).
+        """
+        src = GroupedSource.__new__(GroupedSource)
+        src.path, src.layout = str(request["path"]), request["layout"]
+        src.skip_bad_episodes = False
+        src.key_dtypes = {}
+        src.file_size = limits.regular_file(src.path, what="an HDF5 file")
+        with open_h5(src.path) as h5:
+            src.groups = match_groups(h5, src.layout.episode_groups, src.path)
+            if len(src.groups) != request["total"] or groups_digest(src.groups) != request["digest"]:
+                raise ValueError("the log's groups changed")
+            start = int(request["start"])
+            seen = DatasetOwners(lambda e, ident: "")
+            metas, _ = src._plan_range(h5, seen, start, len(src.groups))
+        return {"metas": metas, "owners": seen.claims(start), "key_dtypes": src.key_dtypes}
 
     def _plan_range(self, h5, seen, start, stop):
         """Plan episode groups ``start .. stop - 1`` (see :meth:`_plan_groups`)."""

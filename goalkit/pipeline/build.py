@@ -38,6 +38,7 @@ from pathlib import Path
 import numpy as np
 
 from goalkit import __version__
+from goalkit.logs import spare
 from goalkit.logs.layout import layout_to_toml
 from goalkit.outputs import check_no_overlap, refuse_existing
 from goalkit.pipeline.buildfolder import folder_of
@@ -292,6 +293,17 @@ def run_build(recipe, producer, *, source=None, rows_per_chunk: int | None = Non
     -------
     BuildResult
     """
+    with spare.scope(log_paths(recipe) if source is None and not producer.sharded else ()):
+        return _run_build(recipe, producer, source, rows_per_chunk, progress, replace)
+
+
+def log_paths(recipe) -> list:
+    """The log files and folders a recipe names (a build's spare helper is sized by them)."""
+    return [p for label, p in recipe.inputs()
+            if label.startswith(("[logs] path", "[[sources]]")) and not label.endswith("layout")]
+
+
+def _run_build(recipe, producer, source, rows_per_chunk, progress, replace) -> BuildResult:
     plan, source = make_plan(recipe, source)
     cut = getattr(producer, "plan_chunks", None)
     per_chunk = chunk_transitions(plan, rows_per_chunk or producer.rows_per_chunk)

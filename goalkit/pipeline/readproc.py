@@ -2,10 +2,10 @@
 
 A one-process build reads, relabels and writes on threads, but reading many small HDF5
 datasets is Python and HDF5 work that holds the GIL: the threads then take turns on one core.
-With a second CPU, the chunks are read instead by a reader process (``python -m
-goalkit.pipeline.readproc``: no fork of a process holding HDF5 handles and threads, no re-import
-of the user's main module) running the very same ``source.read`` on a pickled copy of the
-opened logs, and handing each chunk's :class:`~goalkit.logs.episodes.EpisodeSet` back through
+With a second CPU, the chunks are read instead by a reader process (the build's waiting spare,
+else a new one: :mod:`goalkit.logs.spare`; no fork of a process holding HDF5 handles and
+threads, no re-import of the user's main module) running the very same ``source.read`` on a
+pickled copy of the opened logs, and handing each chunk's :class:`~goalkit.logs.episodes.EpisodeSet` back through
 its stdout, in chunk order, pickled. The pipe's small buffer keeps it at most a chunk or two
 ahead, so memory stays bounded.
 
@@ -18,14 +18,11 @@ are the same either way. ``GOALKIT_READ_PROCESS=0`` turns it off.
 from __future__ import annotations
 
 import os
-import pickle
-import struct
-import subprocess
-import sys
 
+from goalkit.logs import spare
 from goalkit.logs.grouped import GroupedSource
 from goalkit.logs.perfile import PerFileSource
-from goalkit.logs.planspawn import cpus
+from goalkit.logs.spare import cpus
 
 #: Sources read in a reader process: their ``read`` is pure file I/O, they pickle small, and it
 #: goes one small array at a time (a flat log reads large slices, which gain nothing from it:
@@ -36,7 +33,6 @@ MIN_CHUNKS = 4
 MIN_TRANSITIONS = 100_000
 #: Environment variable that turns the reader process off (``GOALKIT_READ_PROCESS=0``).
 SWITCH = "GOALKIT_READ_PROCESS"
-_LENGTH = struct.Struct("<Q")
 
 
 def wanted(source, chunks) -> bool:
@@ -61,24 +57,22 @@ class ChunkReader:
         self.source = source
         self.bounds = [(int(a), int(b)) for a, b in bounds]
         self.next = 0
-        self.proc = None
+        self.helper = None
         self.started = False
 
+    @property
+    def proc(self):
+        """The reader's process (None when there is none, or no more)."""
+        return None if self.helper is None else self.helper.proc
+
     def _start(self) -> None:
-        """Start the reader and hand it the request (on the caller's read thread: the request
-        waits in the pipe until the new process has started and reads it)."""
+        """Take the reader (the build's waiting spare, else a new process) and hand it the
+        request (on the caller's read thread: the request waits in the pipe until a new process
+        has started and reads it)."""
         self.started = True
-        try:
-            request = pickle.dumps({"source": self.source, "bounds": self.bounds}, protocol=pickle.HIGHEST_PROTOCOL)
-            here = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
-            path = os.pathsep.join(p for p in (here, os.environ.get("PYTHONPATH", "")) if p)
-            self.proc = subprocess.Popen([sys.executable, "-m", "goalkit.pipeline.readproc"],
-                                         stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL,
-                                         env={**os.environ, "PYTHONPATH": path})
-            self.proc.stdin.write(_LENGTH.pack(len(request)) + request)
-            self.proc.stdin.close()
-        except (OSError, ValueError, pickle.PicklingError):
-            self.close()
+        helper = spare.take()
+        if helper is not None and helper.send({"call": self.source.read, "each": self.bounds}):
+            self.helper = helper
 
     def read(self, start: int, stop: int):
         """The EpisodeSet of chunk ``(start, stop)`` (the next one in ``bounds``)."""
@@ -95,59 +89,15 @@ class ChunkReader:
         return self.source.read(start, stop)
 
     def _receive(self):
-        try:
-            head = self.proc.stdout.read(_LENGTH.size)
-            if len(head) == _LENGTH.size:
-                (size,) = _LENGTH.unpack(head)
-                data = self.proc.stdout.read(size)
-                if len(data) == size:
-                    status, value = pickle.loads(data)
-                    if status == "ok":
-                        return value
-                    return None              # this chunk failed there: read it here
-        except Exception:                    # noqa: BLE001  a broken reader: read the rest here
-            pass
-        self.close()
-        return None
+        found = self.helper.receive()
+        if self.proc is None:                # a broken reader: read the rest here
+            self.helper = None
+        return found
 
     def close(self) -> None:
         """Stop the reader process (it also stops by itself when this process goes away)."""
-        proc, self.proc = self.proc, None
-        if proc is None:
-            return
-        try:
-            proc.kill()
-        except OSError:
-            pass
-        for stream in (proc.stdin, proc.stdout):
-            try:
-                if stream is not None:
-                    stream.close()
-            except OSError:
-                pass
-        try:
-            proc.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            pass
+        helper, self.helper = self.helper, None
+        if helper is not None:
+            helper.close()
 
 
-def serve(stdin, stdout) -> None:
-    """The reader process: read every requested chunk, write each result in order."""
-    (size,) = _LENGTH.unpack(stdin.read(_LENGTH.size))
-    request = pickle.loads(stdin.read(size))
-    source = request["source"]
-    for a, b in request["bounds"]:
-        try:
-            data = pickle.dumps(("ok", source.read(a, b)), protocol=pickle.HIGHEST_PROTOCOL)
-        except Exception:                    # noqa: BLE001  the build reads this chunk itself
-            data = pickle.dumps(("failed", None))
-        stdout.write(_LENGTH.pack(len(data)))
-        stdout.write(data)
-        stdout.flush()
-
-
-if __name__ == "__main__":
-    try:
-        serve(sys.stdin.buffer, sys.stdout.buffer)
-    except BaseException:                    # noqa: BLE001  the build reads what is left itself
-        sys.exit(1)

@@ -276,6 +276,11 @@ class SetWriter:
         if self.compression != "lzf":
             whole = {name: np.ascontiguousarray(block[name], dtype=self._dtypes[name]) for name in self.columns
                      if n == self._chunk_len[split, name] and a % n == 0}
+            if self.total_rows[split] and a + n == self.total_rows[split]:
+                for name in self.columns:        # the split's last chunk, short: stored padded
+                    size = self._chunk_len[split, name]
+                    if n < size and a % size == 0:
+                        whole[name] = _padded(block[name], size, self._dtypes[name])
         if self._encoder is not None:
             whole = {name: self._encoder.submit(gzip_chunk, data) for name, data in whole.items()}
         for name in self.columns:
@@ -371,6 +376,14 @@ class SetWriter:
         if exc_type is not None:
             self.abort()
         return False
+
+
+def _padded(rows, size: int, dtype) -> np.ndarray:
+    """``rows`` followed by zero rows up to ``size``: the bytes HDF5 stores for a dataset's short
+    last chunk (a chunk is stored whole; the rows past the end hold the fill value, 0)."""
+    out = np.zeros((size, *np.shape(rows)[1:]), dtype=dtype)
+    out[:len(rows)] = rows
+    return out
 
 
 def _attr(value):

@@ -1,0 +1,133 @@
+"""The build's spare helper process (goalkit/logs/spare.py).
+
+Reference: the same build with no helper process at all (``GOALKIT_SPARE``,
+``GOALKIT_PLAN_HELPER`` and ``GOALKIT_READ_PROCESS`` off): the spare may only change the timing,
+so the file's SHA-256 must be the same; and no helper process may outlive its build.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+
+import pytest
+
+from goalkit.demo import make_demo
+from goalkit.logs import planspawn, spare
+from goalkit.pipeline import readproc
+from goalkit.pipeline.build import build
+from goalkit.pipeline.recipe import load_recipe
+
+
+def sha256(path) -> str:
+    return hashlib.sha256(open(path, "rb").read()).hexdigest()
+
+
+@pytest.fixture
+def small_logs_count(monkeypatch):
+    """Helpers for a 40-episode demo; records every helper process started."""
+    monkeypatch.setattr(spare, "WARM_BYTES", 1)
+    monkeypatch.setattr(spare, "cpus", lambda: 2)
+    monkeypatch.setattr(planspawn, "cpus", lambda: 2)
+    monkeypatch.setattr(readproc, "cpus", lambda: 2)
+    monkeypatch.setattr(planspawn, "MIN_GROUPS", 4)
+    monkeypatch.setattr(readproc, "MIN_TRANSITIONS", 1)
+    started = []
+    real = spare.Spare.start.__func__
+
+    def counted(cls):
+        helper = real(cls)
+        started.append(helper)
+        return helper
+
+    monkeypatch.setattr(spare.Spare, "start", classmethod(counted))
+    return started
+
+
+def demo(tmp_path, episodes=40):
+    info = make_demo(tmp_path / "demo", episodes=episodes, seed=5)
+    return load_recipe(info["recipe"])
+
+
+def no_helpers(monkeypatch):
+    for switch in (spare.SWITCH, planspawn.SWITCH, readproc.SWITCH):
+        monkeypatch.setenv(switch, "0")
+
+
+def test_one_spare_plans_then_reads_and_is_gone_after(tmp_path, small_logs_count, monkeypatch):
+    recipe = demo(tmp_path)
+    plans, reads = [], []
+    monkeypatch.setattr("goalkit.logs.grouped.start_helper",
+                        lambda source, split: plans.append(planspawn.start_helper(source, split)) or plans[-1])
+    real_start = readproc.ChunkReader._start
+
+    def start(self):
+        real_start(self)
+        reads.append(self.helper)
+
+    monkeypatch.setattr(readproc.ChunkReader, "_start", start)
+    a = build(recipe.with_overrides(out=tmp_path / "a.h5"), max_rows_per_chunk=500, card=False)
+    assert len(small_logs_count) == 1                       # one process, started once
+    assert plans and reads and plans[0] is reads[0] is small_logs_count[0]
+    assert small_logs_count[0].proc is None                 # stopped with the build
+    assert spare.waiting_for() is None
+    no_helpers(monkeypatch)
+    b = build(recipe.with_overrides(out=tmp_path / "b.h5"), max_rows_per_chunk=500, card=False)
+    assert sha256(a.path) == sha256(b.path)
+
+
+def test_a_spare_nobody_takes_is_stopped_with_the_scope(small_logs_count, tmp_path):
+    log = tmp_path / "x.bin"
+    log.write_bytes(b"0" * 64)
+    with spare.scope([log]):
+        assert spare.waiting_for() is not None
+        proc = small_logs_count[0].proc
+    assert spare.waiting_for() is None and proc.poll() is not None
+
+
+def test_small_logs_and_one_cpu_start_no_spare(monkeypatch, tmp_path):
+    log = tmp_path / "x.bin"
+    log.write_bytes(b"0" * 64)
+    monkeypatch.setattr(spare, "cpus", lambda: 2)
+    assert not spare.wanted([log])                          # under WARM_BYTES
+    monkeypatch.setattr(spare, "WARM_BYTES", 64)
+    assert spare.wanted([log]) and spare.wanted([tmp_path])  # a folder counts with its files
+    monkeypatch.setattr(spare, "cpus", lambda: 1)
+    assert not spare.wanted([log])
+    monkeypatch.setattr(spare, "cpus", lambda: 2)
+    monkeypatch.setenv(spare.SWITCH, "0")
+    assert not spare.wanted([log])
+
+
+def test_a_dead_spare_is_replaced_and_the_bytes_stay(tmp_path, small_logs_count, monkeypatch):
+    recipe = demo(tmp_path)
+    real_scope_enter = spare.scope.__enter__
+
+    def enter_then_kill(self):
+        out = real_scope_enter(self)
+        waiting = small_logs_count[-1].proc if small_logs_count else None
+        if waiting is not None:                             # dies while it waits
+            waiting.kill()
+            waiting.wait()
+        return out
+
+    monkeypatch.setattr(spare.scope, "__enter__", enter_then_kill)
+    before = len(small_logs_count)
+    a = build(recipe.with_overrides(out=tmp_path / "a.h5"), max_rows_per_chunk=500, card=False)
+    assert len(small_logs_count) >= before + 2              # a fresh process took over
+    no_helpers(monkeypatch)
+    b = build(recipe.with_overrides(out=tmp_path / "b.h5"), max_rows_per_chunk=500, card=False)
+    assert sha256(a.path) == sha256(b.path)
+
+
+def test_a_failed_call_is_answered_and_the_next_is_served():
+    helper = spare.Spare.start()
+    try:
+        assert helper.send({"call": os.path.getsize, "each": [("/nonexistent/goalkit",), (os.devnull,)]})
+        assert helper.receive() is None and helper.alive    # failed there; the process goes on
+        assert helper.receive() == 0
+        assert helper.send({"call": divmod, "each": [(7, 2)]})
+        assert helper.receive() == (3, 1)
+    finally:
+        helper.close()
+    assert helper.proc is None
