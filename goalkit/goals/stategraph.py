@@ -30,7 +30,6 @@ no path of at most ``horizon`` steps gets :data:`UNREACHABLE`; with an unbounded
 from __future__ import annotations
 
 import numpy as np
-import scipy.sparse as sp
 
 from goalkit import rng
 from goalkit.goals.neighbours import IndexSettings, build_index
@@ -170,8 +169,10 @@ class StateGraph:
         return {"states": self.n_states_, "transitions": self.n_transitions_, "join_pairs": self.n_joins_,
                 "horizon": self.horizon_}
 
-    def csr(self) -> sp.csr_matrix:
+    def csr(self):
         """The forward graph as a scipy CSR matrix of ones (row: tail, column: head)."""
+        import scipy.sparse as sp   # noqa: PLC0415  scipy loads only when a graph is built
+
         n = self.n_states_
         rev = sp.csr_matrix((np.ones(len(self.rev_indices_), np.int8), self.rev_indices_, self.rev_indptr_),
                             shape=(n, n))
