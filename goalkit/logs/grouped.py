@@ -23,7 +23,7 @@ import h5py
 from goalkit.errors import LogError
 from goalkit.logs import limits
 from goalkit.logs.access import READ_ERRORS, DatasetOwners, H5Access, describe_link, guard, open_h5, short
-from goalkit.logs import access
+from goalkit.logs import access, spare
 from goalkit.logs.checks import MAX_WIDTH
 from goalkit.logs.episodic import EpisodicSource, join_parts, plan_episode, read_episode
 from goalkit.logs.groupplan import plan_group, plan_keys
@@ -128,6 +128,7 @@ class GroupedSource(EpisodicSource):
         self.files = [self.path]
         self.key_dtypes = {}            # key -> its stored dtype, None once two episodes differ
         self.file_size = limits.regular_file(self.path, what="an HDF5 file")
+        spare.prestart([self.path])     # its helpers (planning, reading) will want one
         with open_h5(self.path) as h5, guard(self.path, what="cannot read the log"):
             self.groups = match_groups(h5, layout.episode_groups, self.path)
             if not self.groups:

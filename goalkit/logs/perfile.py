@@ -16,7 +16,7 @@ import fnmatch
 import os
 
 from goalkit.errors import LogError
-from goalkit.logs import limits
+from goalkit.logs import limits, spare
 from goalkit.logs.access import NpzAccess
 from goalkit.logs.episodic import EpisodicSource, join_parts, read_episode
 from goalkit.logs.naming import natural_sorted
@@ -51,6 +51,7 @@ class PerFileSource(EpisodicSource):
     def __init__(self, path, layout, skip_bad_episodes=False, advance=None):
         super().__init__(path, layout, skip_bad_episodes, advance)
         self.files = episode_files(self.path, layout.file_pattern)
+        spare.prestart(self.files)      # for the build's chunk reader
         # a file that is not an .npz fails in NpzArrays: a file-level error, not skipped
         self._adopt(*self._plan_all(self._episode_access(e) for e in range(len(self.files))))
 

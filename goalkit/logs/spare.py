@@ -145,20 +145,17 @@ def wanted(paths) -> bool:
 
 
 class scope:
-    """``with scope(paths):`` -- start a spare for the helpers of the work inside (when the logs
-    are large enough and a second CPU is free); stop it at the end if nobody took it."""
+    """``with scope(paths):`` -- keep helpers for the work inside; with ``early``, start a spare
+    now (when the logs at ``paths`` are large enough and a second CPU is free); stop a spare
+    nobody took at the end."""
 
-    def __init__(self, paths=()):
-        self.paths = list(paths)
+    def __init__(self, paths=(), early: bool = True):
+        self.paths = list(paths) if early else []
 
     def __enter__(self):
         with _lock:
             _scopes[0] += 1
-            start = not _slot and wanted(self.paths)
-        if start:
-            spare = Spare.start()
-            if spare is not None:
-                give_back(spare)
+        prestart(self.paths)
         return self
 
     def __exit__(self, *exc):
@@ -170,6 +167,17 @@ class scope:
         for spare in left:
             spare.close()
         return False
+
+
+def prestart(paths) -> None:
+    """Inside a scope, start a spare now unless one waits (for logs at ``paths``, see
+    :func:`wanted`): a reader that will want helpers calls it as it opens its logs."""
+    with _lock:
+        start = _scopes[0] > 0 and not _slot and wanted(paths)
+    if start:
+        spare = Spare.start()
+        if spare is not None:
+            give_back(spare)
 
 
 def take():

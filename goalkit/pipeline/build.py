@@ -40,7 +40,7 @@ import numpy as np
 from goalkit import __version__
 from goalkit.logs import spare
 from goalkit.logs.layout import layout_to_toml
-from goalkit.outputs import check_no_overlap, refuse_existing
+from goalkit.outputs import check_no_overlap, refuse_existing, small_toml
 from goalkit.pipeline.buildfolder import folder_of
 from goalkit.pipeline.sources import layout_texts, sources_provenance, sources_summary
 from goalkit.pipeline.dask_build import DaskRunner
@@ -293,7 +293,11 @@ def run_build(recipe, producer, *, source=None, rows_per_chunk: int | None = Non
     -------
     BuildResult
     """
-    with spare.scope(log_paths(recipe) if source is None and not producer.sharded else ()):
+    # a spare helper process for the one-process build's helpers; started now, while the logs
+    # are opened, when the recipe says they are of a kind that wants them (else, if they do,
+    # by the reader as it opens them)
+    early = source is None and not producer.sharded and helped_layout(recipe)
+    with spare.scope(log_paths(recipe), early=early):
         return _run_build(recipe, producer, source, rows_per_chunk, progress, replace)
 
 
@@ -301,6 +305,17 @@ def log_paths(recipe) -> list:
     """The log files and folders a recipe names (a build's spare helper is sized by them)."""
     return [p for label, p in recipe.inputs()
             if label.startswith(("[logs] path", "[[sources]]")) and not label.endswith("layout")]
+
+
+def helped_layout(recipe) -> bool:
+    """True when the recipe's one log is a folder or its layout file says grouped or per-file
+    (the readers whose planning and reading run in helper processes)."""
+    if recipe.sources is not None or recipe.logs_path is None:
+        return False
+    if Path(recipe.logs_path).is_dir():
+        return True
+    doc = small_toml(recipe.layout_path) if recipe.layout_path is not None else None
+    return doc is not None and doc.get("shape") in ("grouped", "per-file")
 
 
 def _run_build(recipe, producer, source, rows_per_chunk, progress, replace) -> BuildResult:

@@ -11,11 +11,12 @@ import hashlib
 import os
 
 import pytest
+from logs_testdata import make_episodes, write_flat, write_grouped, write_per_file
 
 from goalkit.demo import make_demo
-from goalkit.logs import planspawn, spare
+from goalkit.logs import open_logs, planspawn, spare
 from goalkit.pipeline import readproc
-from goalkit.pipeline.build import build
+from goalkit.pipeline.build import build, helped_layout
 from goalkit.pipeline.recipe import load_recipe
 
 
@@ -131,3 +132,29 @@ def test_a_failed_call_is_answered_and_the_next_is_served():
     finally:
         helper.close()
     assert helper.proc is None
+
+
+def test_readers_that_want_helpers_start_the_spare_as_they_open(tmp_path, small_logs_count):
+    """Grouped and per-file logs start a spare as they are opened inside a scope (their planning
+    helper and chunk reader will take it); a flat log, read in large slices, does not."""
+    eps = make_episodes([4, 3, 5, 2, 6, 3], seed=21)
+    flat = write_flat(tmp_path / "flat.h5", eps)
+    grouped = write_grouped(tmp_path / "g.h5", eps)
+    per_file = write_per_file(tmp_path / "eps", eps)
+    with spare.scope([tmp_path / "flat.h5"], early=False):
+        open_logs(tmp_path / "flat.h5", flat)
+        assert small_logs_count == [] and spare.waiting_for() is None
+    for path, table in ((tmp_path / "g.h5", grouped), (tmp_path / "eps", per_file)):
+        before = len(small_logs_count)
+        with spare.scope([path], early=False):
+            open_logs(path, table)
+            assert len(small_logs_count) == before + 1 and spare.waiting_for() is not None
+            proc = small_logs_count[-1].proc
+        assert proc.poll() is not None                    # stopped with the scope
+    open_logs(tmp_path / "g.h5", grouped)                 # outside a scope: nothing starts
+    assert len(small_logs_count) == 2
+
+
+def test_the_demo_recipe_names_a_layout_the_helpers_serve(tmp_path):
+    recipe = demo(tmp_path, episodes=4)
+    assert helped_layout(recipe)
