@@ -16,6 +16,9 @@ mismatch) become one LogError naming the file and the member.
 
 from __future__ import annotations
 
+import io
+import os
+import re
 import struct
 import zipfile
 import zlib
@@ -42,6 +45,43 @@ class Member:
     data_start: int        # byte offset of the data inside the (decompressed) member
     stored: bool           # ZIP_STORED: data can be read by seeking in the file
     file_offset: int       # stored only: absolute byte offset of the member's first byte
+
+
+#: Files up to this size are read whole, once, when opened: their stored members are then parsed
+#: and read from memory (per-episode files are small; a flat log is read by slices).
+WHOLE_BYTES = 1 << 20
+#: The header numpy writes (``numpy.lib.format``: a dict literal with the keys in this order,
+#: padded with spaces to a multiple of 64 bytes with the preamble, ending in a newline), for a
+#: plain (non-structured) dtype; any other header is parsed by numpy's own function.
+_HEADER = re.compile(r"\{'descr': '([<>|=][a-zA-Z]\d*)', 'fortran_order': (True|False), "
+                     r"'shape': \(((?:\d+, ?)*\d*)\), \}\s*\Z")
+_MAGIC = b"\x93NUMPY"
+
+
+def _quick_header(raw: bytes, at: int):
+    """``(shape, fortran, dtype, data start)`` of the ``.npy`` whose first byte is ``raw[at]``,
+    for the header numpy writes; None for anything else (then numpy's parser reads it)."""
+    if raw[at:at + 6] != _MAGIC or len(raw) < at + 12:
+        return None
+    major = raw[at + 6]
+    if major == 1:
+        (size,), start = struct.unpack_from("<H", raw, at + 8), at + 10
+    elif major in (2, 3):
+        (size,), start = struct.unpack_from("<I", raw, at + 8), at + 12
+    else:
+        return None
+    if len(raw) < start + size:
+        return None
+    found = _HEADER.match(raw[start:start + size].decode("latin1"))
+    if found is None:
+        return None
+    descr, fortran, dims = found.groups()
+    try:
+        dtype = np.dtype(descr)
+    except TypeError:
+        return None
+    shape = tuple(int(d) for d in dims.replace(" ", "").split(",") if d)
+    return shape, fortran == "True", dtype, start + size - at
 
 
 def _local_header_size(fh, header_offset: int) -> int:
@@ -77,19 +117,28 @@ class NpzArrays:
         self.path = str(path)
         self._streams = {}
         self.episode = episode
+        self._whole = None
         limits.regular_file(self.path, what="an .npz file")
         try:
-            zf = zipfile.ZipFile(self.path)
+            with open(self.path, "rb") as fh:
+                if os.fstat(fh.fileno()).st_size <= WHOLE_BYTES:
+                    self._whole = fh.read()
+            zf = zipfile.ZipFile(self.path if self._whole is None else io.BytesIO(self._whole))
         except _ZIP_ERRORS as exc:
             raise LogError(f"cannot open as .npz (expected a zip archive of .npy arrays): {exc}",
                            file=self.path) from None
         self.members = {}
         self._sizes = {}
-        with zf, open(self.path, "rb") as fh:
+        with zf, (open(self.path, "rb") if self._whole is None else io.BytesIO(self._whole)) as fh:
             for info in zf.infolist():
                 if not info.filename.endswith(".npy"):
                     continue
                 name = info.filename[:-4]
+                quick = self._quick_member(info, name)
+                if quick is not None:
+                    self.members[name] = quick
+                    self._sizes[name] = (info, max_rows)
+                    continue
                 try:
                     with zf.open(info) as f:
                         version = np.lib.format.read_magic(f)
@@ -107,6 +156,23 @@ class NpzArrays:
                 self.members[name] = Member(name, tuple(shape), np.dtype(dtype), bool(fortran),
                                             data_start, stored, offset)
                 self._sizes[name] = (info, max_rows)
+
+    def _quick_member(self, info, name):
+        """The member parsed straight from the file's bytes (a stored member of a file read whole,
+        with the header numpy writes), else None (then read through zipfile and numpy)."""
+        raw = self._whole
+        if raw is None or info.compress_type != zipfile.ZIP_STORED:
+            return None
+        at = info.header_offset
+        if raw[at:at + 4] != b"PK\x03\x04" or len(raw) < at + 30:
+            return None
+        name_len, extra_len = struct.unpack_from("<HH", raw, at + 26)
+        offset = at + 30 + name_len + extra_len
+        found = _quick_header(raw, offset)
+        if found is None:
+            return None
+        shape, fortran, dtype, data_start = found
+        return Member(name, shape, dtype, fortran, data_start, True, offset)
 
     def _member(self, name) -> Member:
         """The member, its declared shape checked on first use (arrays never asked for are not)."""
@@ -136,10 +202,12 @@ class NpzArrays:
     def __getstate__(self):
         state = dict(self.__dict__)
         state["_streams"] = {}
+        state["_whole"] = None
         return state
 
     def close(self):
-        """Close kept-open decompressing streams."""
+        """Close kept-open decompressing streams (and drop the bytes of a file read whole)."""
+        self._whole = None
         for zf, f in self._streams.values():
             f.close()
             zf.close()
@@ -189,7 +257,10 @@ class NpzArrays:
     def _read_bytes(self, m: Member, offset: int, nbytes: int) -> np.ndarray:
         if nbytes == 0:
             return np.empty(0, dtype=m.dtype)
-        if m.stored:
+        if m.stored and self._whole is not None:
+            begin = m.file_offset + m.data_start + offset
+            buf = self._whole[begin:begin + nbytes]
+        elif m.stored:
             try:
                 with open(self.path, "rb") as fh:
                     fh.seek(m.file_offset + m.data_start + offset)
