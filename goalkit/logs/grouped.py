@@ -170,6 +170,11 @@ class GroupedSource(EpisodicSource):
                 problems += more_problems
         return metas, problems
 
+    def plan_request(self, split: int) -> dict:
+        """What the planning helper is sent for groups ``split ..``."""
+        return {"path": self.path, "layout": self.layout, "start": split, "total": len(self.groups),
+                "digest": groups_digest(self.groups)}
+
     @staticmethod
     def plan_part(request: dict) -> dict:
         """The planning helper's work (:mod:`goalkit.logs.planspawn`): plan groups

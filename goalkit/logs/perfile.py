@@ -18,9 +18,13 @@ import os
 from goalkit.errors import LogError
 from goalkit.logs import limits, spare
 from goalkit.logs.access import NpzAccess
-from goalkit.logs.episodic import EpisodicSource, join_parts, read_episode
+from goalkit.logs.episodic import EpisodicSource, join_parts, plan_episode, read_episode
 from goalkit.logs.naming import natural_sorted
 from goalkit.logs.npzfile import NpzArrays
+from goalkit.logs.planspawn import finish_helper, groups_digest, helper_split, start_helper, stop_helper
+
+#: Planning cost per episode file, in seconds (the helper's share is sized by it).
+SECONDS_PER_FILE = 170e-6
 
 
 def episode_files(directory, pattern: str) -> list[str]:
@@ -51,9 +55,81 @@ class PerFileSource(EpisodicSource):
     def __init__(self, path, layout, skip_bad_episodes=False, advance=None):
         super().__init__(path, layout, skip_bad_episodes, advance)
         self.files = episode_files(self.path, layout.file_pattern)
-        spare.prestart(self.files)      # for the build's chunk reader
+        spare.prestart(self.files)      # for the build's planning helper and chunk reader
         # a file that is not an .npz fails in NpzArrays: a file-level error, not skipped
-        self._adopt(*self._plan_all(self._episode_access(e) for e in range(len(self.files))))
+        self._adopt(*self._plan_files())
+
+    def _plan_files(self):
+        """Plan every episode file, in order (as :meth:`_plan_all`). With many files and a second
+        CPU, a helper process plans the last part of them at the same time
+        (:mod:`goalkit.logs.planspawn`); any episode it found a problem in, and its whole part
+        when it gives no clean answer, is planned again here, so the metas and the problems
+        (with their messages) are the serial ones."""
+        total = len(self.files)
+        split = helper_split(total, self.skip_bad_episodes, seconds_per_item=SECONDS_PER_FILE)
+        helper = None if split is None else start_helper(self, split)
+        stop = total if helper is None else split
+        try:
+            metas, problems = self._plan_all(self._episode_access(e) for e in range(stop))
+        except BaseException:
+            if helper is not None:
+                stop_helper(helper)
+            raise
+        if helper is None:
+            return metas, problems
+        found = finish_helper(helper, expect=("metas", "problems"))
+        if found is None or len(found["metas"]) != total - stop:
+            for e in range(stop, total):                        # no clean answer: plan them here
+                meta, problem = self._plan_one(e)
+                metas.append(meta)
+                if problem is not None:
+                    problems.append((e, problem))
+            return metas, problems
+        for e in sorted(found["problems"]):                     # the message, made here
+            _, problem = self._plan_one(e)
+            problems.append((e, problem))
+        return metas + found["metas"], problems
+
+    def _plan_one(self, e):
+        """``(meta, None)`` or ``(None, LogError)`` of episode ``e`` (as :meth:`_plan_all` records it;
+        a file-level problem propagates)."""
+        try:
+            return plan_episode(self._episode_access(e), self.layout, e), None
+        except LogError as exc:
+            if exc.episode is None:
+                raise
+            return None, exc
+
+    @staticmethod
+    def plan_part(request: dict) -> dict:
+        """The planning helper's work: plan files ``request["start"] ..`` of the episode files
+        ``request["files"]``; ``{"metas", "problems"}`` (the episodes with a problem, by number).
+
+        Raises
+        ------
+        ValueError
+            When the files are not the ones the caller listed (``digest``).
+        LogError
+            A file-level problem (the caller then plans the part itself and names it).
+        """
+        files = list(request["files"])
+        if groups_digest(files) != request["digest"]:
+            raise ValueError("the file list changed")
+        src = PerFileSource.__new__(PerFileSource)
+        src.path, src.layout, src.files = request["path"], request["layout"], files
+        start = int(request["start"])
+        metas, problems = [], []
+        for e in range(start, len(files)):
+            meta, problem = src._plan_one(e)
+            metas.append(meta)
+            if problem is not None:
+                problems.append(e)
+        return {"metas": metas, "problems": problems}
+
+    def plan_request(self, split: int) -> dict:
+        """What the planning helper is sent for files ``split ..``."""
+        return {"path": self.path, "layout": self.layout, "files": self.files, "start": split,
+                "digest": groups_digest(self.files)}
 
     def _episode_access(self, e) -> NpzAccess:
         arrays = NpzArrays(self.files[e], max_rows=limits.MAX_EPISODE_STEPS, episode=e)

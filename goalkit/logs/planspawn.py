@@ -34,7 +34,8 @@ SECONDS_PER_GROUP = 250e-6
 SWITCH = "GOALKIT_PLAN_HELPER"
 
 
-def helper_split(total: int, skip_bad_episodes: bool = False) -> int | None:
+def helper_split(total: int, skip_bad_episodes: bool = False, seconds_per_item: float = SECONDS_PER_GROUP) \
+        -> int | None:
     """First group the helper plans, or None when no helper is worth starting.
 
     The caller plans ``0 .. split - 1`` and the helper ``split .. total - 1``, shared so that
@@ -46,7 +47,7 @@ def helper_split(total: int, skip_bad_episodes: bool = False) -> int | None:
             or os.environ.get(SWITCH, "1") == "0":
         return None
     startup = MATCH_SECONDS + max(0.0, STARTUP_SECONDS - (age or 0.0))
-    mine = min(0.9, (1 + startup / (total * SECONDS_PER_GROUP)) / 2)
+    mine = min(0.9, (1 + startup / (total * seconds_per_item)) / 2)
     return int(total * mine)
 
 
@@ -58,8 +59,7 @@ def groups_digest(groups) -> str:
 def start_helper(source, split: int):
     """Ask a helper (the build's waiting spare, else a new process) to plan groups ``split ..``
     of ``source`` (a GroupedSource); None on failure."""
-    request = {"path": source.path, "layout": source.layout, "start": split, "total": len(source.groups),
-               "digest": groups_digest(source.groups)}
+    request = source.plan_request(split)
     helper = spare.take()
     if helper is None or not helper.send({"call": type(source).plan_part, "each": [(request,)]}):
         return None
@@ -71,13 +71,13 @@ def stop_helper(helper) -> None:
     helper.close()
 
 
-def finish_helper(helper) -> dict | None:
-    """The helper's answer (``metas``, ``owners``, ``key_dtypes``), or None if it has none.
+def finish_helper(helper, expect=("metas", "owners", "key_dtypes")) -> dict | None:
+    """The helper's answer (a dict with the keys ``expect``), or None if it has none.
 
     A helper that answered goes back to the build's spare slot, for its chunk reader.
     """
     found = helper.receive()
-    if not isinstance(found, dict) or not {"metas", "owners", "key_dtypes"} <= found.keys():
+    if not isinstance(found, dict) or not set(expect) <= found.keys():
         helper.close()
         return None
     spare.give_back(helper)

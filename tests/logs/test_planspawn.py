@@ -9,7 +9,7 @@ from __future__ import annotations
 import h5py
 import numpy as np
 import pytest
-from logs_testdata import make_episodes, write_grouped
+from logs_testdata import make_episodes, write_grouped, write_per_file
 
 from goalkit.errors import LogError
 from goalkit.logs import open_logs, planspawn
@@ -87,8 +87,18 @@ def test_problem_in_the_helpers_part_is_named_as_in_serial(tmp_path, helper_on, 
 def test_a_helper_that_fails_leaves_the_plan_to_this_process(tmp_path, helper_on, monkeypatch):
     eps = make_episodes([2] * 16, seed=14)
     table = write_grouped(tmp_path / "g.h5", eps)
-    monkeypatch.setattr(planspawn, "groups_digest", lambda groups: "not the helper's")  # it refuses
+    real = planspawn.start_helper
+
+    def dead(source, split):                                  # the helper dies before answering
+        helper = real(source, split)
+        helper.proc.kill()
+        helper.proc.wait()
+        helper_on.append("killed")
+        return helper
+
+    monkeypatch.setattr("goalkit.logs.grouped.start_helper", dead)
     src = open_logs(tmp_path / "g.h5", table)
+    assert helper_on == ["killed"]
     monkeypatch.undo()
     ref = serial(tmp_path / "g.h5", table, monkeypatch)
     assert src.metas == ref.metas
@@ -102,3 +112,103 @@ def test_split_leaves_small_logs_and_one_cpu_alone(monkeypatch):
     assert 21_000 // 2 < split < 21_000                  # this process takes the larger part
     monkeypatch.setattr(planspawn, "cpus", lambda: 1)
     assert planspawn.helper_split(21_000) is None
+
+
+@pytest.fixture
+def per_file_helper(monkeypatch):
+    """A helper for per-file folders of a few files: it plans files 6.. of 16."""
+    started = []
+    real = planspawn.start_helper
+
+    def counted(source, split):
+        started.append(split)
+        return real(source, split)
+
+    monkeypatch.setattr("goalkit.logs.perfile.start_helper", counted)
+    monkeypatch.setattr("goalkit.logs.perfile.helper_split",
+                        lambda total, skip=False, seconds_per_item=0: 6 if total >= 4 and not skip else None)
+    return started
+
+
+def serial_per_file(path, table, monkeypatch):
+    monkeypatch.setattr("goalkit.logs.perfile.helper_split", lambda total, skip=False, seconds_per_item=0: None)
+    return open_logs(path, table)
+
+
+def test_per_file_helper_gives_the_serial_plan(tmp_path, per_file_helper, monkeypatch):
+    eps = make_episodes([3, 1, 5, 2, 4, 6, 2, 3, 1, 4, 5, 2, 3, 2, 1, 4], seed=15)
+    table = write_per_file(tmp_path / "eps", eps)
+    shared = open_logs(tmp_path / "eps", table)
+    assert per_file_helper == [6]
+    ref = serial_per_file(tmp_path / "eps", table, monkeypatch)
+    assert shared.metas == ref.metas
+    np.testing.assert_array_equal(shared.lengths, [len(e["act"]) for e in eps])
+    np.testing.assert_array_equal(shared.read(0, 16).observations, ref.read(0, 16).observations)
+
+
+@pytest.mark.parametrize("damage", ["episode", "file"])
+def test_per_file_problem_in_the_helpers_part_is_named_as_in_serial(tmp_path, per_file_helper, monkeypatch,
+                                                                    damage):
+    eps = make_episodes([3] * 16, seed=16)
+    table = write_per_file(tmp_path / "eps", eps)
+    if damage == "episode":                                    # 5 rewards for 3 actions
+        with np.load(tmp_path / "eps" / "ep11.npz") as z:
+            arrays = dict(z)
+        arrays["rew"] = np.zeros(5, np.float32)
+        np.savez(tmp_path / "eps" / "ep11.npz", **arrays)
+    else:                                                      # not a zip archive at all
+        (tmp_path / "eps" / "ep11.npz").write_bytes(b"not an archive")
+    with pytest.raises(LogError) as err:
+        open_logs(tmp_path / "eps", table)
+    assert per_file_helper == [6]
+    with pytest.raises(LogError) as ref:
+        serial_per_file(tmp_path / "eps", table, monkeypatch)
+    assert str(err.value) == str(ref.value) and "ep11.npz" in str(err.value)
+
+
+def test_per_file_skipped_episodes_are_the_serial_ones(tmp_path, per_file_helper, monkeypatch):
+    """With skip_bad_episodes (the helper is forced on here; the real split leaves it off), the
+    episodes kept and the reasons given for the skipped ones are the serial ones."""
+    eps = make_episodes([3] * 16, seed=17)
+    table = write_per_file(tmp_path / "eps", eps)
+    for bad in ("ep2.npz", "ep9.npz", "ep13.npz"):
+        with np.load(tmp_path / "eps" / bad) as z:
+            arrays = dict(z)
+        arrays["rew"] = np.zeros(7, np.float32)
+        np.savez(tmp_path / "eps" / bad, **arrays)
+    monkeypatch.setattr("goalkit.logs.perfile.helper_split",
+                        lambda total, skip=False, seconds_per_item=0: 6 if total >= 4 else None)
+    shared = open_logs(tmp_path / "eps", table, skip_bad_episodes=True)
+    assert per_file_helper == [6]
+    monkeypatch.setattr("goalkit.logs.perfile.helper_split", lambda total, skip=False, seconds_per_item=0: None)
+    ref = open_logs(tmp_path / "eps", table, skip_bad_episodes=True)
+    assert [e for e, _ in shared.skipped] == [2, 9, 13]
+    assert [(e, str(r)) for e, r in shared.skipped] == [(e, str(r)) for e, r in ref.skipped]
+    np.testing.assert_array_equal(shared.episode_ids, ref.episode_ids)
+
+
+def test_per_file_helper_that_fails_leaves_the_plan_to_this_process(tmp_path, per_file_helper, monkeypatch):
+    eps = make_episodes([3] * 16, seed=18)
+    table = write_per_file(tmp_path / "eps", eps)
+    with np.load(tmp_path / "eps" / "ep12.npz") as z:
+        arrays = dict(z)
+    arrays["rew"] = np.zeros(5, np.float32)
+    np.savez(tmp_path / "eps" / "ep12.npz", **arrays)
+    real = planspawn.start_helper
+
+    def dead(source, split):                                  # the helper dies before answering
+        helper = real(source, split)
+        helper.proc.kill()
+        helper.proc.wait()
+        per_file_helper.append("killed")
+        return helper
+
+    monkeypatch.setattr("goalkit.logs.perfile.start_helper", dead)
+    answers = []
+    real_finish = planspawn.finish_helper
+    monkeypatch.setattr("goalkit.logs.perfile.finish_helper",
+                        lambda helper, expect: answers.append(real_finish(helper, expect)) or answers[-1])
+    with pytest.raises(LogError) as err:
+        open_logs(tmp_path / "eps", table)
+    assert per_file_helper == ["killed"] and answers == [None]      # no answer: planned here
+    assert err.value.episode == 12 and "episode 12" in str(err.value)
