@@ -74,8 +74,37 @@ def peak_rss_mb() -> dict:
 
 # ---- the plain numpy + h5py script (the baseline a team would write) -------------------------
 
+#: The script's columns: (dtype, width; 0 for a scalar column).
+SCRIPT_COLUMNS = {"observation": ("f8", 9), "action": ("f4", 3), "next_observation": ("f8", 9),
+                  "goal": ("f4", 6), "reached_goal": ("f4", 6), "reward": ("f4", 0), "terminal": ("u1", 0),
+                  "strategy": ("u1", 0), "episode": ("i8", 0), "step": ("i8", 0), "goal_step": ("i8", 0),
+                  "slot": ("i8", 0), "distance": ("f4", 0), "task_reward": ("f4", 0)}
+
+
 def script_case(logs: str, out: str, threshold: float, seed: int = 0) -> dict:
     """Hindsight relabelling of grouped logs with numpy and h5py, block of episodes by block."""
+    import h5py
+    import numpy as np
+
+    def blocks():
+        with h5py.File(logs, "r") as src:
+            groups = sorted(src["bench"].keys())
+            for b in range(0, len(groups), EPISODES_PER_BLOCK):
+                obs, act, rew, tgoal = [], [], [], []
+                for name in groups[b:b + EPISODES_PER_BLOCK]:
+                    g = src["bench"][name]
+                    obs.append(np.concatenate([g["head"][()], g["head_velocity"][()], g["trays"][()]], axis=1))
+                    act.append(g["action"][()])
+                    rew.append(g["reward"][()])
+                    tgoal.append(g["task_goal"][()])
+                yield b, obs, act, rew, tgoal
+
+    return relabel_blocks(blocks(), out, threshold, seed)
+
+
+def relabel_blocks(blocks, out: str, threshold: float, seed: int = 0) -> dict:
+    """The script's relabelling and writing, for blocks ``(first episode, observations, actions,
+    rewards, task goals)`` of per-episode arrays, however they were read."""
     import h5py
     import numpy as np
 
@@ -84,29 +113,17 @@ def script_case(logs: str, out: str, threshold: float, seed: int = 0) -> dict:
     p = np.array([WEIGHTS[n] for n in names], float)
     p /= p.sum()
     K = GOALS_PER_TRANSITION
-    cols = {"observation": ("f8", 9), "action": ("f4", 3), "next_observation": ("f8", 9),
-            "goal": ("f4", 6), "reached_goal": ("f4", 6), "reward": ("f4", 0), "terminal": ("u1", 0),
-            "strategy": ("u1", 0), "episode": ("i8", 0), "step": ("i8", 0), "goal_step": ("i8", 0),
-            "slot": ("i8", 0), "distance": ("f4", 0), "task_reward": ("f4", 0)}
     rows = 0
-    with h5py.File(logs, "r") as src, h5py.File(out, "w") as dst:
-        groups = sorted(src["bench"].keys())
+    with h5py.File(out, "w") as dst:
         sets = {}
         for split in ("train", "validation"):
             g = dst.create_group(split)
             sets[split] = {c: g.create_dataset(c, (0,) + ((w,) if w else ()), dt, maxshape=(None,) + ((w,) if w else ()),
                                                chunks=(65536,) + ((w,) if w else ()), compression="gzip",
-                                               compression_opts=4, shuffle=True) for c, (dt, w) in cols.items()}
-        for b in range(0, len(groups), EPISODES_PER_BLOCK):
-            obs, act, rew, tgoal, lengths = [], [], [], [], []
-            for name in groups[b:b + EPISODES_PER_BLOCK]:
-                g = src["bench"][name]
-                obs.append(np.concatenate([g["head"][()], g["head_velocity"][()], g["trays"][()]], axis=1))
-                act.append(g["action"][()])
-                rew.append(g["reward"][()])
-                tgoal.append(g["task_goal"][()])
-                lengths.append(len(act[-1]))
-            T = np.array(lengths)
+                                               compression_opts=4, shuffle=True)
+                           for c, (dt, w) in SCRIPT_COLUMNS.items()}
+        for b, obs, act, rew, tgoal in blocks:
+            T = np.array([len(a) for a in act])
             ep = np.repeat(np.arange(b, b + len(T)), T)
             start_t = np.repeat(np.cumsum(T) - T, T)               # first transition row of the episode
             start_s = start_t + np.repeat(np.arange(len(T)), T)     # first state row of the episode
