@@ -5,7 +5,9 @@ distance to the nearest state of *another* episode. When episodes overlap (many 
 the same states, as in recordings of one environment), that distance is tiny and the range
 comes out empty. The evidence used here is different: *how many logged steps separate two
 states*, read from the logs' graph (:class:`goalkit.goals.stategraph.StateGraph`, logged
-transitions plus joins of identical goal vectors of different episodes).
+transitions plus joins of identical goal vectors of different episodes, found exactly by sorting
+the vectors: :func:`goalkit.goals.stategraph.identical_joins`, at most ``JOIN_NEIGHBOURS`` per
+state).
 
 Pairs of states are drawn (same-episode pairs a few steps and many steps apart, and random
 pairs), their steps apart measured in the graph, and split into
@@ -32,10 +34,12 @@ from dataclasses import dataclass
 import numpy as np
 
 from goalkit import rng
-from goalkit.goals.stategraph import GraphSettings, StateGraph
+from goalkit.goals.stategraph import StateGraph, identical_joins, transition_edges
 
 #: Pairs drawn per kind (same episode, other episode).
 PAIRS = 20_000
+#: Other states a state joins at most (of those with an identical goal vector).
+JOIN_NEIGHBOURS = 8
 
 
 @dataclass(frozen=True)
@@ -125,8 +129,11 @@ def temporal_threshold(goals, transition_offsets, distance, *, near_steps: int =
     x = np.asarray(goals, dtype=np.float64)
     # with masks, states join on the dimensions of their own mask only (x * 1 == x: a full mask
     # changes no bit), so a dimension no mask keeps never changes the graph
-    graph = StateGraph.from_logs(x if mask is None else x * mask, off, GraphSettings(join_radius=0.0, join_neighbours=8,
-                                                       horizon=4 * int(far_steps)))
+    # joins of identical goal vectors only (join radius 0), found exactly by sorting
+    tail, head = transition_edges(off)
+    ju, jv = identical_joins(x if mask is None else x * mask, off, JOIN_NEIGHBOURS)
+    graph = StateGraph(x.shape[0], np.concatenate([tail, ju, jv]), np.concatenate([head, jv, ju]),
+                       n_joins=len(ju), horizon=4 * int(far_steps), n_transitions=len(tail))
     a, b = _pairs(off, seed, int(pairs), int(near_steps), int(far_steps))
     steps = graph.distances(a, b)
     near = (steps >= 0) & (steps <= near_steps)
