@@ -96,16 +96,19 @@ class SegmentedPairs:
         """Chosen (placed) thresholds of the resamples whose group counts are ``counts`` (B, G)."""
         counts = np.asarray(counts, dtype=np.int64)
         b = counts.shape[0]
-        seg_all = (self.all_.T @ counts.T).T             # (B, segments): weight per segment
-        seg_pos = (self.pos_.T @ counts.T).T
-        tot = np.cumsum(seg_all, axis=1)
-        tp = np.cumsum(seg_pos, axis=1)
-        fp = tot - tp
         c = self.candidates
         if c.size == 0:  # no reached pair at all: no choice in any resample
             return np.full(b, np.nan)
-        valid = seg_all[:, c] > 0
-        pick = choose_index(None, tp[:, c], fp[:, c], tp[:, -1], fp[:, -1], valid, chooser)
+        # (segments, B) weights per segment, summed down the segments (contiguous rows), then
+        # the candidate segments' rows as (B, candidates) C-ordered arrays
+        seg_all = self.all_.T @ counts.T
+        tot = np.cumsum(seg_all, axis=0)
+        tp = np.cumsum(self.pos_.T @ counts.T, axis=0)
+        n_pos, n_neg = tp[-1], tot[-1] - tp[-1]
+        valid = np.ascontiguousarray((seg_all[c] > 0).T)
+        tp_c = np.ascontiguousarray(tp[c].T)
+        fp_c = np.ascontiguousarray(tot[c].T) - tp_c
+        pick = choose_index(None, tp_c, fp_c, n_pos, n_neg, valid, chooser)
         ok = pick >= 0
         rows = np.flatnonzero(ok)
         seg = c[pick[rows]]
