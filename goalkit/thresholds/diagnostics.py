@@ -267,7 +267,7 @@ class RewardedFraction:
                 "fraction": self.fraction.tolist(), "counts": self.counts.tolist()}
 
 
-def rewarded_fraction(achieved, goal, strategy, rule, thresholds, mask=None) -> RewardedFraction:
+def rewarded_fraction(achieved, goal, strategy, rule, thresholds, mask=None, distances=None) -> RewardedFraction:
     """Fraction of goal rows with ``d <= thr`` (``<`` for an exclusive rule), per strategy.
 
     Parameters
@@ -282,6 +282,8 @@ def rewarded_fraction(achieved, goal, strategy, rule, thresholds, mask=None) -> 
         Thresholds to evaluate (for ``box``: scales of the current tolerances).
     mask : array_like of uint8 (M, G), optional
         Each row's ``goal_mask``: only those dimensions count (None: every one).
+    distances : ndarray of float64 (M,), optional
+        ``rule.distance(achieved, goal, mask)`` when already computed (not computed again).
 
     Examples
     --------
@@ -293,14 +295,15 @@ def rewarded_fraction(achieved, goal, strategy, rule, thresholds, mask=None) -> 
     """
     s = np.asarray(strategy).astype(np.int64)
     rule.check_dim(np.shape(achieved)[-1])
-    d = rule.distance(achieved, goal, mask)
+    d = rule.distance(achieved, goal, mask) if distances is None else np.asarray(distances, dtype=np.float64)
     if s.shape != d.shape:
         raise TuningError(f"expected one strategy code per goal row ({d.shape[0]}), got shape {s.shape}",
                           key="strategy")
     t = np.asarray(thresholds, dtype=np.float64)
     codes, inv = np.unique(s, return_inverse=True)
     inv = inv.reshape(-1)
-    order = np.lexsort((d, inv))  # by strategy, then distance
+    by_d = np.argsort(d)  # by distance, then (stable: a radix sort of small codes) by strategy
+    order = by_d[np.argsort(inv[by_d], kind="stable")]
     ds, cs = d[order], inv[order]
     starts = np.searchsorted(cs, np.arange(codes.size + 1))
     side = "right" if rule.inclusive else "left"

@@ -50,8 +50,8 @@ from goalkit.pipeline.plan import make_plan, open_source, strategy_names
 from goalkit.pipeline.summary import HIGH_REACHED, LOW_REACHED
 from goalkit.reward import DISTANCES, RewardRule, within
 from goalkit.thresholds.box import suggest_box
-from goalkit.thresholds.diagnostics import (diagnose, rewarded_fraction, state_goals, state_masks,
-                                            threshold_warnings)
+from goalkit.thresholds.diagnostics import (RewardedFraction, diagnose, rewarded_fraction, state_goals,
+                                            state_masks, threshold_warnings)
 from goalkit.thresholds.labels import LabelledPairs, concat_pairs, load_labelled_pairs, pairs_from_success
 from goalkit.thresholds.metrics import CHOOSERS, check_chooser
 from goalkit.thresholds.plots import plot_diagnostics, plot_labelled
@@ -251,7 +251,7 @@ def _cast(x, dtype) -> np.ndarray:
 
 def _chunk_rows(plan, chunk, gdtype):
     """(achieved, goal, strategy, goal_mask or None) of every goal row the build makes for ``chunk``."""
-    rows = relabel_chunk(plan, chunk)
+    rows = relabel_chunk(plan, chunk, defer_gathers=True)  # observation columns unused: never copied
     phi = _cast(plan.goal_map(chunk, np.arange(chunk.observations.shape[0])), gdtype)
     out = []
     for cols in rows.columns.values():
@@ -284,16 +284,15 @@ def suggested_range(diagnostics, rule: RewardRule) -> dict:
     return out
 
 
-def _rewarded_at(achieved, goal, strategy, rule, points: dict, names: dict, mask=None) -> dict:
+def _rewarded_at(d, rf, inclusive: bool, points: dict, names: dict) -> dict:
     """Rewarded fraction per strategy (and over all rows) at a few named thresholds.
 
-    ``mask``: each row's ``goal_mask`` (only those dimensions count), or None.
+    ``d``: each goal row's distance under the rule; ``rf``: :func:`rewarded_fraction` of the
+    rows at the thresholds ``points`` (in that order).
     """
     labels = list(points)
     values = np.array([points[k] for k in labels], dtype=np.float64)
-    rf = rewarded_fraction(achieved, goal, strategy, rule, values, mask)
-    d = rule.distance(achieved, goal, mask)
-    side = within(d[:, None], values[None, :], rule.inclusive)
+    side = within(d[:, None], values[None, :], inclusive)
     out = {"thresholds": dict(zip(labels, values.tolist())), "strategies": {},
            "all": {"rows": int(d.size), "fraction": dict(zip(labels, side.mean(axis=0).tolist()))}}
     for i, code in enumerate(rf.strategies.tolist()):
@@ -473,11 +472,16 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
     if rng_["high"] is not None:
         points["range_high"] = rng_["high"]
     snames = strategy_names(recipe.mixture)
-    rewarded_at = _rewarded_at(achieved, goal, strategy, diag_rule, points, snames, row_mask)
     d = diag_rule.distance(achieved, goal, row_mask)
     ref = max(points.values()) if points else 1.0
     top = max(2.0 * ref, float(np.quantile(d, 0.95)) if d.size else 1.0, 1e-12)
-    curve = rewarded_fraction(achieved, goal, strategy, diag_rule, np.linspace(0.0, top, CURVE_POINTS), row_mask)
+    grid = np.linspace(0.0, top, CURVE_POINTS)
+    named = np.array([points[k] for k in points], dtype=np.float64)
+    # one sort of the rows' distances serves the named points and the curve
+    both = rewarded_fraction(achieved, goal, strategy, diag_rule, np.r_[named, grid], row_mask, distances=d)
+    at_points = RewardedFraction(both.strategies, named, both.fraction[:, :named.size], both.counts)
+    curve = RewardedFraction(both.strategies, grid, both.fraction[:, named.size:], both.counts)
+    rewarded_at = _rewarded_at(d, at_points, diag_rule.inclusive, points, snames)
 
     for label, frac in rewarded_at["all"]["fraction"].items():
         if label in ("recipe", "suggested") and not LOW_REACHED <= frac <= HIGH_REACHED:
