@@ -37,6 +37,7 @@ from __future__ import annotations
 
 from goalkit.errors import shown
 
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
@@ -414,94 +415,99 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
     # each row's goal_mask as the build stores it (task masks and random masks); None without [mask]
     row_mask = None if plan.masks is None else np.concatenate([r[3] for r in rows])
 
-    pairs = file_pairs if file_pairs is not None else (concat_pairs(succ) if from_success else None)
-    candidates, winner, box, notes = [], None, None, []
-    if file_pairs is not None and plan.masks is not None:
-        pairs, note = _file_pair_masks(file_pairs, source, plan.masks, chunk_transitions)
-        if note:
-            notes.append(note)
-    if pairs is not None:
-        for n in names:
-            rule = candidate_rule(recipe.reward, n, gmap.dim)
-            cand = Candidate(n, rule)
-            try:
-                cand.tuner = ThresholdTuner(rule, chooser=chooser, target=target,
-                                            n_resamples=n_resamples, seed=recipe.seed,
-                                            box_recall=BOX_RECALL).fit(pairs)
-            except TuningError as exc:
-                if exc.key == "target":  # name the option the user gave
-                    exc = TuningError(exc.message, file=exc.file, key="--target-precision")
-                if len(names) == 1:
-                    raise exc from None
-                cand.error = str(exc)
-            candidates.append(cand)
-        ok = [c for c in candidates if c.tuner is not None]
-        if not ok:
-            raise TuningError(f"no candidate distance could be tuned; first: {candidates[0].error}")
-        winner = max(ok, key=lambda c: c.score)  # max() keeps the first of equal scores
-        box = winner.tuner.box_ if winner.tuner.box_ is not None else suggest_box(
-            pairs.achieved, pairs.goal, pairs.reached, method="recall", recall=BOX_RECALL)
-        diag_rule = winner.tuner.suggested_rule_
-        if not pairs.grouped:
-            notes.append("the labelled pairs carry no episode column: the bootstrap treats every "
-                         "pair as its own episode, so the interval is too narrow")
-    else:
-        diag_rule = recipe.reward
+    # the bootstrap of each candidate runs on a thread while the diagnostics are computed here
+    with ThreadPoolExecutor(1, thread_name_prefix="goalkit-tune") as pool:
+        pairs = file_pairs if file_pairs is not None else (concat_pairs(succ) if from_success else None)
+        candidates, winner, box, notes = [], None, None, []
+        if file_pairs is not None and plan.masks is not None:
+            pairs, note = _file_pair_masks(file_pairs, source, plan.masks, chunk_transitions)
+            if note:
+                notes.append(note)
+        if pairs is not None:
+            for n in names:
+                rule = candidate_rule(recipe.reward, n, gmap.dim)
+                cand = Candidate(n, rule)
+                try:
+                    cand.tuner = ThresholdTuner(rule, chooser=chooser, target=target,
+                                                n_resamples=n_resamples, seed=recipe.seed,
+                                                box_recall=BOX_RECALL).fit(pairs, executor=pool)
+                except TuningError as exc:
+                    if exc.key == "target":  # name the option the user gave
+                        exc = TuningError(exc.message, file=exc.file, key="--target-precision")
+                    if len(names) == 1:
+                        raise exc from None
+                    cand.error = str(exc)
+                candidates.append(cand)
+            ok = [c for c in candidates if c.tuner is not None]
+            if not ok:
+                raise TuningError(f"no candidate distance could be tuned; first: {candidates[0].error}")
+            winner = max(ok, key=lambda c: c.score)  # max() keeps the first of equal scores
+            box = winner.tuner.box_ if winner.tuner.box_ is not None else suggest_box(
+                pairs.achieved, pairs.goal, pairs.reached, method="recall", recall=BOX_RECALL)
+            diag_rule = winner.tuner.suggested_rule_
+            if not pairs.grouped:
+                notes.append("the labelled pairs carry no episode column: the bootstrap treats every "
+                             "pair as its own episode, so the interval is too narrow")
+        else:
+            diag_rule = recipe.reward
 
-    diag = diagnose(episodes, gmap, diag_rule, sample=sample_states, seed=recipe.seed, masks=plan.masks)
-    summary = diag.summary()
-    rng_ = suggested_range(diag, diag_rule)
-    # label-free, from the logs' temporal order (goalkit.thresholds.temporal): holds when episodes overlap
-    rng_["temporal"] = temporal_threshold(state_goals(episodes, gmap), episodes.offsets, diag_rule.distance,
-                                          seed=recipe.seed, mask=state_masks(episodes, plan.masks)).as_dict()
-    warnings = threshold_warnings(summary)
-    if not rng_["ok"] and rng_["low"] is not None and rng_["high"] is not None:
-        warnings.append(f"no clean range: half the typical one-step change ({rng_['low']:.4g}) is above "
-                        f"the 25% quantile of the distance to other episodes ({rng_['high']:.4g})")
+        diag = diagnose(episodes, gmap, diag_rule, sample=sample_states, seed=recipe.seed, masks=plan.masks)
+        summary = diag.summary()
+        rng_ = suggested_range(diag, diag_rule)
+        # label-free, from the logs' temporal order (goalkit.thresholds.temporal): holds when episodes overlap
+        rng_["temporal"] = temporal_threshold(state_goals(episodes, gmap), episodes.offsets, diag_rule.distance,
+                                              seed=recipe.seed, mask=state_masks(episodes, plan.masks)).as_dict()
+        warnings = threshold_warnings(summary)
+        if not rng_["ok"] and rng_["low"] is not None and rng_["high"] is not None:
+            warnings.append(f"no clean range: half the typical one-step change ({rng_['low']:.4g}) is above "
+                            f"the 25% quantile of the distance to other episodes ({rng_['high']:.4g})")
 
-    box_units = diag_rule.distance_name == "box"
-    current = 1.0 if recipe.reward.distance_name == "box" else float(recipe.reward.threshold)
-    points = {}
-    if diag_rule.distance_name == recipe.reward.distance_name:
-        points["recipe"] = current if not box_units else float(
-            np.max(np.asarray(recipe.reward.threshold) / np.asarray(diag_rule.threshold)))
-    if winner is not None:
-        points["suggested"] = 1.0 if box_units else float(diag_rule.threshold)
-    if rng_["low"] is not None:
-        points["range_low"] = rng_["low"]
-    if rng_["high"] is not None:
-        points["range_high"] = rng_["high"]
-    snames = strategy_names(recipe.mixture)
-    d = diag_rule.distance(achieved, goal, row_mask)
-    ref = max(points.values()) if points else 1.0
-    top = max(2.0 * ref, float(np.quantile(d, 0.95)) if d.size else 1.0, 1e-12)
-    grid = np.linspace(0.0, top, CURVE_POINTS)
-    named = np.array([points[k] for k in points], dtype=np.float64)
-    # one sort of the rows' distances serves the named points and the curve
-    both = rewarded_fraction(achieved, goal, strategy, diag_rule, np.r_[named, grid], row_mask, distances=d)
-    at_points = RewardedFraction(both.strategies, named, both.fraction[:, :named.size], both.counts)
-    curve = RewardedFraction(both.strategies, grid, both.fraction[:, named.size:], both.counts)
-    rewarded_at = _rewarded_at(d, at_points, diag_rule.inclusive, points, snames)
+        box_units = diag_rule.distance_name == "box"
+        current = 1.0 if recipe.reward.distance_name == "box" else float(recipe.reward.threshold)
+        points = {}
+        if diag_rule.distance_name == recipe.reward.distance_name:
+            points["recipe"] = current if not box_units else float(
+                np.max(np.asarray(recipe.reward.threshold) / np.asarray(diag_rule.threshold)))
+        if winner is not None:
+            points["suggested"] = 1.0 if box_units else float(diag_rule.threshold)
+        if rng_["low"] is not None:
+            points["range_low"] = rng_["low"]
+        if rng_["high"] is not None:
+            points["range_high"] = rng_["high"]
+        snames = strategy_names(recipe.mixture)
+        d = diag_rule.distance(achieved, goal, row_mask)
+        ref = max(points.values()) if points else 1.0
+        top = max(2.0 * ref, float(np.quantile(d, 0.95)) if d.size else 1.0, 1e-12)
+        grid = np.linspace(0.0, top, CURVE_POINTS)
+        named = np.array([points[k] for k in points], dtype=np.float64)
+        # one sort of the rows' distances serves the named points and the curve
+        both = rewarded_fraction(achieved, goal, strategy, diag_rule, np.r_[named, grid], row_mask, distances=d)
+        at_points = RewardedFraction(both.strategies, named, both.fraction[:, :named.size], both.counts)
+        curve = RewardedFraction(both.strategies, grid, both.fraction[:, named.size:], both.counts)
+        rewarded_at = _rewarded_at(d, at_points, diag_rule.inclusive, points, snames)
 
-    for label, frac in rewarded_at["all"]["fraction"].items():
-        if label in ("recipe", "suggested") and not LOW_REACHED <= frac <= HIGH_REACHED:
-            warnings.append(f"at the {label} threshold {points[label]:.4g} about {frac:.1%} of the "
-                            f"sampled goal rows are rewarded (outside {LOW_REACHED:.0%} .. "
-                            f"{HIGH_REACHED:.0%}); the build will warn about it")
+        for label, frac in rewarded_at["all"]["fraction"].items():
+            if label in ("recipe", "suggested") and not LOW_REACHED <= frac <= HIGH_REACHED:
+                warnings.append(f"at the {label} threshold {points[label]:.4g} about {frac:.1%} of the "
+                                f"sampled goal rows are rewarded (outside {LOW_REACHED:.0%} .. "
+                                f"{HIGH_REACHED:.0%}); the build will warn about it")
 
-    sample = {"episodes": int(positions.size), "transitions": total,
-              "episodes_in_log": int(len(source.lengths)),
-              "transitions_in_log": int(np.sum(source.lengths)),
-              "max_transitions": int(max_transitions), "seed": int(recipe.seed),
-              "goal_rows": int(d.size), "whole_log": bool(positions.size == len(source.lengths))}
-    if not sample["whole_log"]:
-        notes.append(f"tuned on a sample of {sample['episodes']} of {sample['episodes_in_log']} episodes "
-                     f"(--max-transitions {max_transitions}); goals borrowed from other episodes come "
-                     f"from the sample only")
-    return TuneResult(recipe=recipe, mode=mode, labels_source=None if pairs is None else pairs.source,
-                      sample=sample, candidates=candidates, winner=winner, box=box, rule=diag_rule,
-                      diagnostics=diag, rewarded=curve, rewarded_at=rewarded_at,
-                      suggested_range=rng_, warnings=warnings, strategy_names=snames, notes=notes)
+        sample = {"episodes": int(positions.size), "transitions": total,
+                  "episodes_in_log": int(len(source.lengths)),
+                  "transitions_in_log": int(np.sum(source.lengths)),
+                  "max_transitions": int(max_transitions), "seed": int(recipe.seed),
+                  "goal_rows": int(d.size), "whole_log": bool(positions.size == len(source.lengths))}
+        if not sample["whole_log"]:
+            notes.append(f"tuned on a sample of {sample['episodes']} of {sample['episodes_in_log']} episodes "
+                         f"(--max-transitions {max_transitions}); goals borrowed from other episodes come "
+                         f"from the sample only")
+        for c in candidates:  # wait for the intervals (and raise what a bootstrap raised)
+            if c.tuner is not None:
+                c.tuner.interval_
+        return TuneResult(recipe=recipe, mode=mode, labels_source=None if pairs is None else pairs.source,
+                          sample=sample, candidates=candidates, winner=winner, box=box, rule=diag_rule,
+                          diagnostics=diag, rewarded=curve, rewarded_at=rewarded_at,
+                          suggested_range=rng_, warnings=warnings, strategy_names=snames, notes=notes)
 
 
 __all__ = ["tune_recipe", "TuneResult", "Candidate", "check_distances", "check_options",
