@@ -293,9 +293,10 @@ def _rewarded_at(d, rf, inclusive: bool, points: dict, names: dict) -> dict:
     """
     labels = list(points)
     values = np.array([points[k] for k in labels], dtype=np.float64)
-    side = within(d[:, None], values[None, :], inclusive)
+    # rows within each threshold over the rows (the count over the rows: as the mean of the flags)
+    share = [np.count_nonzero(within(d, v, inclusive)) / d.size if d.size else float("nan") for v in values]
     out = {"thresholds": dict(zip(labels, values.tolist())), "strategies": {},
-           "all": {"rows": int(d.size), "fraction": dict(zip(labels, side.mean(axis=0).tolist()))}}
+           "all": {"rows": int(d.size), "fraction": dict(zip(labels, share))}}
     for i, code in enumerate(rf.strategies.tolist()):
         out["strategies"][names.get(code, str(code))] = {
             "rows": int(rf.counts[i]), "fraction": dict(zip(labels, rf.fraction[i].tolist()))}
