@@ -410,8 +410,10 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
         if progress is not None:
             progress(chunk.num_transitions, total)
     episodes = concat_episodes(parts)
-    achieved = np.concatenate([r[0] for r in rows]).astype(np.float64)
-    goal = np.concatenate([r[1] for r in rows]).astype(np.float64)
+    # kept in the goal dtype: every rule distance is computed in float64 from any input dtype
+    # (the casts are exact), so the bits are those of float64 copies, without the copies
+    achieved = np.concatenate([r[0] for r in rows])
+    goal = np.concatenate([r[1] for r in rows])
     strategy = np.concatenate([r[2] for r in rows])
     # each row's goal_mask as the build stores it (task masks and random masks); None without [mask]
     row_mask = None if plan.masks is None else np.concatenate([r[3] for r in rows])
