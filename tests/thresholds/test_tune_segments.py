@@ -12,6 +12,10 @@ repeated ``c_g`` times, so every check below computes each resample's choice a s
   definition 7) for the percentile interval.
 """
 
+import json
+import math
+from concurrent.futures import ThreadPoolExecutor
+
 import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
@@ -19,6 +23,9 @@ from scipy.stats import mstats
 from sklearn.metrics import confusion_matrix, f1_score, precision_recall_curve, roc_curve
 
 from goalkit.errors import TuningError
+from goalkit.reward import RewardRule
+from goalkit.thresholds.labels import LabelledPairs
+from goalkit.thresholds.tuner import ThresholdTuner
 from goalkit.thresholds.bootstrap import (bootstrap_threshold, dense_thresholds, group_counts,
                                           resample_groups)
 from goalkit.thresholds.metrics import _run_ends, choose_threshold, sweep_thresholds
@@ -88,17 +95,18 @@ def test_max_f1_resamples_reach_scikit_learns_best_weighted_f1(seed):
     counts = group_counts(resample_groups(iv.n_groups, 40, seed), iv.n_groups)
     for b in range(40):  # a loop over resamples
         w = counts[b][gi]
-        prec, rec, _ = precision_recall_curve(y, -d, sample_weight=w)
+        prec, rec, score = precision_recall_curve(y, -d, sample_weight=w)  # thresholds on -d, ascending
+        prec, rec = prec[:-1], rec[:-1]                # the last point (recall 0) has no threshold
         with np.errstate(invalid="ignore", divide="ignore"):
-            best = np.nanmax(np.where(prec + rec > 0, 2 * prec * rec / (prec + rec), 0.0))
+            f1 = np.where(prec + rec > 0, 2 * prec * rec / (prec + rec), 0.0)
+        best = np.max(f1)
         thr = iv.distribution[b]
         assert f1_score(y, (d <= thr).astype(int), sample_weight=w) == pytest.approx(best, rel=1e-12)
         # ties go to the strictest rule: no smaller drawn distance reaches the same F1
         cand = d[(w > 0) & (d <= thr)].max()           # the drawn distance the choice was made at
-        below = np.unique(d[(w > 0) & (d < cand)])
-        if below.size:
-            f_below = [f1_score(y, (d <= t).astype(int), sample_weight=w) for t in below]
-            assert max(f_below) < best - 1e-12
+        stricter = -score < cand
+        if stricter.any():
+            assert np.max(f1[stricter]) < best - 1e-12
 
 
 @pytest.mark.parametrize("seed", [2, 3])
@@ -150,3 +158,19 @@ def test_segments_collapse_runs_of_one_label():
     assert s.candidates.tolist() == [0, 2, 3]
     assert s.seg_first_pair.tolist() == [0, 2, 4, 6, 7]
     assert s.seg_last_pair.tolist() == [1, 3, 5, 6, 7]
+
+
+@pytest.mark.parametrize("rule", [RewardRule("euclidean", 0.05), RewardRule("box", (0.05, 0.05)),
+                                  RewardRule("region", 0.0, lower=(-0.03, -math.inf), upper=(0.03, 0.02))])
+def test_tuner_with_the_bootstrap_on_a_thread_gives_the_same_fit(rule):
+    # what goalkit tune does (the bootstrap on a worker thread) against the plain call
+    d, y, g = _pairs(6, n_groups=40)
+    r = np.random.default_rng(6)
+    achieved = np.c_[d * np.cos(r.uniform(0, 6.3, d.size)), d * np.sin(r.uniform(0, 6.3, d.size))]
+    pairs = LabelledPairs(achieved, np.zeros_like(achieved), y.astype(bool), g, True, "made here")
+    plain = ThresholdTuner(rule, n_resamples=120, seed=4).fit(pairs)
+    with ThreadPoolExecutor(1) as pool:
+        threaded = ThresholdTuner(rule, n_resamples=120, seed=4).fit(pairs, executor=pool)
+        assert json.dumps(threaded.summary(), sort_keys=True) == json.dumps(plain.summary(), sort_keys=True)
+    assert threaded.interval_.distribution.tobytes() == plain.interval_.distribution.tobytes()
+    assert plain.interval_.low <= plain.interval_.high
