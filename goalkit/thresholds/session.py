@@ -37,6 +37,7 @@ from __future__ import annotations
 
 from goalkit.errors import shown
 
+import contextlib
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -333,6 +334,16 @@ def _file_pair_masks(pairs: LabelledPairs, source, masks, chunk_transitions: int
     return pairs.with_mask(masks.task_mask(tasks)), note
 
 
+@contextlib.contextmanager
+def _worker_thread():
+    """One worker thread; on the way out (an error, Ctrl-C) bootstraps not yet started are dropped."""
+    pool = ThreadPoolExecutor(1, thread_name_prefix="goalkit-tune")
+    try:
+        yield pool
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
 def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=(),
                 chooser: str = "max-f1", target=None, n_resamples: int = 1000,
                 max_transitions: int = MAX_TRANSITIONS, chunk_transitions: int = CHUNK_TRANSITIONS,
@@ -419,7 +430,7 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
     row_mask = None if plan.masks is None else np.concatenate([r[3] for r in rows])
 
     # the bootstrap of each candidate runs on a thread while the diagnostics are computed here
-    with ThreadPoolExecutor(1, thread_name_prefix="goalkit-tune") as pool:
+    with _worker_thread() as pool:
         pairs = file_pairs if file_pairs is not None else (concat_pairs(succ) if from_success else None)
         candidates, winner, box, notes = [], None, None, []
         if file_pairs is not None and plan.masks is not None:
