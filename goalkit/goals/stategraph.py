@@ -36,7 +36,7 @@ from goalkit.goals.neighbours import IndexSettings, build_index
 from goalkit.graphconfig import GRAPH_KEYS, GraphSettings, GraphSpec
 
 __all__ = ["UNREACHABLE", "NOT_COMPUTED", "GRAPH_KEYS", "GraphSettings", "GraphSpec", "StateGraph",
-           "graph_steps", "join_edges", "state_episodes", "transition_edges"]
+           "graph_steps", "identical_joins", "join_edges", "state_episodes", "transition_edges"]
 
 #: Graph distance column value: no path of at most ``horizon`` steps.
 UNREACHABLE = -2
@@ -91,6 +91,41 @@ def join_edges(goal_vectors, transition_offsets, settings: GraphSettings) -> tup
     v = np.concatenate(v_parts)
     lo_, hi_ = np.minimum(u, v), np.maximum(u, v)
     pairs = np.unique(lo_ * n + hi_)
+    return pairs // n, pairs % n
+
+
+def identical_joins(goal_vectors, transition_offsets, neighbours: int) -> tuple[np.ndarray, np.ndarray]:
+    """Joins between states of different episodes with identical goal vectors (each pair once, u < v).
+
+    What :func:`join_edges` looks for with ``join_radius = 0``, found exactly by sorting the
+    vectors (as float32, the precision of the index; -0.0 equals 0.0) instead of searching an
+    index. As there, a state joins at most ``neighbours`` others: the members of a set of
+    identical states are taken in row order, and each joins the first ``neighbours + 1`` of
+    its set (itself and states of its own episode left out).
+    """
+    x = np.ascontiguousarray(np.asarray(goal_vectors, dtype=np.float32) + np.float32(0.0))
+    n = x.shape[0]
+    empty = np.zeros(0, np.int64), np.zeros(0, np.int64)
+    if n < 2:
+        return empty
+    rows_as_bytes = x.view(np.dtype((np.void, x.dtype.itemsize * x.shape[1]))).reshape(n)
+    _, inv, size = np.unique(rows_as_bytes, return_inverse=True, return_counts=True)
+    inv = inv.reshape(-1)
+    shared = np.flatnonzero(size[inv] > 1)
+    if not shared.size:
+        return empty
+    order = shared[np.argsort(inv[shared], kind="stable")]      # sets together, rows ascending
+    set_of = inv[order]
+    first = np.r_[0, np.flatnonzero(set_of[1:] != set_of[:-1]) + 1]
+    start = np.repeat(first, np.diff(np.r_[first, order.size]))  # where each member's set begins
+    take = np.minimum(size[set_of], int(neighbours) + 1)          # partners: the set's first `take`
+    u = np.repeat(order, take)
+    j = np.arange(int(take.sum()), dtype=np.int64) - np.repeat(np.cumsum(take) - take, take)
+    v = order[np.repeat(start, take) + j]
+    ep = state_episodes(transition_offsets)
+    keep = ep[u] != ep[v]
+    u, v = u[keep], v[keep]
+    pairs = np.unique(np.minimum(u, v) * n + np.maximum(u, v))
     return pairs // n, pairs % n
 
 

@@ -14,7 +14,10 @@ result is byte-identical for a seed whatever the block size. Resamples where the
 undefined (e.g. no reached pair drawn) are dropped and counted in ``n_undefined``.
 
 Resamples are evaluated as weighted sweeps over one sort of the pairs (weights = how often
-each pair's episode was drawn), in blocks of resamples so memory stays bounded.
+each pair's episode was drawn), in blocks of resamples so memory stays bounded. For ``max-f1``
+and ``youden`` only the ends of runs of candidates of one label can hold the choice, so the
+counts are summed per such run and episode (:mod:`goalkit.thresholds.segments`; the same
+choices, far less work); ``target-precision`` sweeps every candidate (:func:`dense_thresholds`).
 """
 
 from __future__ import annotations
@@ -30,6 +33,7 @@ import numpy as np
 from goalkit import rng
 from goalkit.errors import TuningError
 from goalkit.thresholds.metrics import _run_ends, check_chooser, check_labelled, choose_index, place
+from goalkit.thresholds.segments import SEGMENT_CHOOSERS, SegmentedPairs
 
 #: Threads computing blocks of resamples at once (at most two; the CPUs this process may use).
 THREADS = max(1, min(2, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1))
@@ -153,24 +157,35 @@ def bootstrap_threshold(distances, labels, groups=None, *, chooser: str = "max-f
     ds, ys, gs = d[order], y[order], gi[order]
     ends = _run_ends(ds)
     thresholds = ds[ends]
-    threads = THREADS if n_resamples > 1 else 1
-    block = max(1, int(max_cells) // (threads * max(d.size, 1)))   # the budget shared by the threads
     out = np.empty(n_resamples, dtype=np.float64)
 
-    def one_block(start):
-        stop = min(n_resamples, start + block)
-        draws = (resamples[start:stop] if resamples is not None
-                 else resample_groups(n_groups, stop - start, seed, start))
-        out[start:stop] = _block_thresholds(draws, n_groups, ds, ys, gs, ends, thresholds,
-                                            chooser, target, placement, inclusive)
+    def draws_of(start, stop):
+        return (resamples[start:stop] if resamples is not None
+                else resample_groups(n_groups, stop - start, seed, start))
 
-    starts = range(0, n_resamples, block)   # blocks of resamples; each fills its own part of out
-    if threads > 1 and len(starts) > 1:     # numpy's sums and gathers release the GIL: two blocks at once
-        with ThreadPoolExecutor(threads, thread_name_prefix="goalkit-bootstrap") as pool:
-            list(pool.map(one_block, starts))
+    if chooser in SEGMENT_CHOOSERS:
+        segs = SegmentedPairs(ys, gs, ends, n_groups)
+        block = max(1, int(max_cells) // max(n_groups, segs.n_segments, 1))
+        for start in range(0, n_resamples, block):  # blocks of resamples: memory O(block * groups)
+            stop = min(n_resamples, start + block)
+            out[start:stop] = segs.block(group_counts(draws_of(start, stop), n_groups), thresholds,
+                                         chooser, placement, inclusive)
     else:
-        for start in starts:
-            one_block(start)
+        threads = THREADS if n_resamples > 1 else 1
+        block = max(1, int(max_cells) // (threads * max(d.size, 1)))   # the budget shared by the threads
+
+        def one_block(start):
+            stop = min(n_resamples, start + block)
+            out[start:stop] = dense_thresholds(group_counts(draws_of(start, stop), n_groups), ds, ys, gs,
+                                               ends, thresholds, chooser, target, placement, inclusive)
+
+        starts = range(0, n_resamples, block)   # blocks of resamples; each fills its own part of out
+        if threads > 1 and len(starts) > 1:     # numpy's sums and gathers release the GIL: two blocks at once
+            with ThreadPoolExecutor(threads, thread_name_prefix="goalkit-bootstrap") as pool:
+                list(pool.map(one_block, starts))
+        else:
+            for start in starts:
+                one_block(start)
     finite = out[np.isfinite(out)]
     alpha = (1.0 - confidence) / 2.0
     if finite.size:
@@ -182,12 +197,20 @@ def bootstrap_threshold(distances, labels, groups=None, *, chooser: str = "max-f
                              seed=None if resamples is not None else int(seed))
 
 
-def _block_thresholds(draws, n_groups, ds, ys, gs, ends, thresholds, chooser, target, placement,
-                      inclusive) -> np.ndarray:
+def group_counts(draws, n_groups: int) -> np.ndarray:
+    """How often each group is drawn in each resample: int64 (B, G) from draws (B, G')."""
+    draws = np.asarray(draws, dtype=np.int64)
     b = draws.shape[0]
     flat = (np.arange(b, dtype=np.int64)[:, None] * n_groups + draws).ravel()
-    counts = np.bincount(flat, minlength=b * n_groups).reshape(b, n_groups)
-    w = counts[:, gs]                                   # (b, n) weight of each sorted pair
+    return np.bincount(flat, minlength=b * n_groups).reshape(b, n_groups)
+
+
+def dense_thresholds(counts, ds, ys, gs, ends, thresholds, chooser, target, placement,
+                     inclusive) -> np.ndarray:
+    """Chosen thresholds of resamples with group counts ``counts`` (B, G): a weighted sweep over
+    every sorted pair (``ds``, ``ys``, ``gs``: distances, labels, group positions; ``ends``:
+    last pair of each candidate ``thresholds``)."""
+    w = np.asarray(counts)[:, gs]                       # (b, n) weight of each sorted pair
     tot = np.cumsum(w, axis=1)[:, ends]
     tp = np.cumsum(w * ys[None, :], axis=1)[:, ends]
     fp = tot - tp

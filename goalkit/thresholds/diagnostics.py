@@ -10,7 +10,8 @@
   A threshold above most of these makes goals from other episodes count as reached almost
   for free.
 * **rewarded fraction**: for relabelled goal rows, the fraction rewarded by each strategy as
-  a function of the threshold (vectorised with one sort per strategy).
+  a function of the threshold (vectorised: each row's place among the sorted thresholds,
+  counted per strategy).
 
 With goal masks (the recipe's ``[mask]`` table, :class:`goalkit.masks.GoalMasks`), only the
 dimensions a goal constrains count: a state's mask is its episode's task mask (the table's
@@ -267,7 +268,7 @@ class RewardedFraction:
                 "fraction": self.fraction.tolist(), "counts": self.counts.tolist()}
 
 
-def rewarded_fraction(achieved, goal, strategy, rule, thresholds, mask=None) -> RewardedFraction:
+def rewarded_fraction(achieved, goal, strategy, rule, thresholds, mask=None, distances=None) -> RewardedFraction:
     """Fraction of goal rows with ``d <= thr`` (``<`` for an exclusive rule), per strategy.
 
     Parameters
@@ -282,6 +283,8 @@ def rewarded_fraction(achieved, goal, strategy, rule, thresholds, mask=None) -> 
         Thresholds to evaluate (for ``box``: scales of the current tolerances).
     mask : array_like of uint8 (M, G), optional
         Each row's ``goal_mask``: only those dimensions count (None: every one).
+    distances : ndarray of float64 (M,), optional
+        ``rule.distance(achieved, goal, mask)`` when already computed (not computed again).
 
     Examples
     --------
@@ -293,22 +296,30 @@ def rewarded_fraction(achieved, goal, strategy, rule, thresholds, mask=None) -> 
     """
     s = np.asarray(strategy).astype(np.int64)
     rule.check_dim(np.shape(achieved)[-1])
-    d = rule.distance(achieved, goal, mask)
+    d = rule.distance(achieved, goal, mask) if distances is None else np.asarray(distances, dtype=np.float64)
     if s.shape != d.shape:
         raise TuningError(f"expected one strategy code per goal row ({d.shape[0]}), got shape {s.shape}",
                           key="strategy")
     t = np.asarray(thresholds, dtype=np.float64)
-    codes, inv = np.unique(s, return_inverse=True)
-    inv = inv.reshape(-1)
-    order = np.lexsort((d, inv))  # by strategy, then distance
-    ds, cs = d[order], inv[order]
-    starts = np.searchsorted(cs, np.arange(codes.size + 1))
-    side = "right" if rule.inclusive else "left"
-    frac = np.zeros((codes.size, t.size))
-    for i in range(codes.size):  # a loop over strategies (at most a handful)
-        seg = ds[starts[i]:starts[i + 1]]
-        frac[i] = np.searchsorted(seg, t, side=side) / seg.size
-    return RewardedFraction(codes.astype(np.int64), t, frac, np.diff(starts).astype(np.int64))
+    if s.size and s.min() >= 0 and s.max() < 65536:  # strategy codes: small, so counted, not sorted
+        present = np.bincount(s)
+        codes = np.flatnonzero(present)
+        inv = np.zeros(present.size, np.int64)
+        inv[codes] = np.arange(codes.size)
+        inv = inv[s]
+    else:
+        codes, inv = np.unique(s, return_inverse=True)
+        inv = inv.reshape(-1)
+    counts = np.bincount(inv, minlength=codes.size)
+    # no sort of the rows: each row falls before a position of the sorted thresholds, and is
+    # within every threshold from there on (d <= t: the first t >= d; d < t: the first t > d)
+    t_order = np.argsort(t, kind="stable")
+    pos = np.searchsorted(t[t_order], d, side="left" if rule.inclusive else "right")
+    width = t.size + 1
+    hist = np.bincount(inv * width + pos, minlength=codes.size * width).reshape(codes.size, width)
+    frac = np.empty((codes.size, t.size))
+    frac[:, t_order] = np.cumsum(hist, axis=1)[:, :t.size] / counts[:, None]
+    return RewardedFraction(codes.astype(np.int64), t, frac, counts.astype(np.int64))
 
 
 def summarise(values, quantiles=QUANTILES) -> dict:

@@ -350,13 +350,22 @@ def place(thresholds, valid, idx, placement: str, inclusive: bool) -> np.ndarray
     b, k = valid.shape
     rows = np.arange(b)
     safe = np.maximum(idx, 0)
-    lower = thresholds[safe]
     # next valid candidate after idx: reverse running minimum of valid positions
     pos = np.where(valid, np.arange(k)[None, :], k)
     nxt_from = np.minimum.accumulate(pos[:, ::-1], axis=1)[:, ::-1]  # first valid at >= j
     nxt = np.where(safe + 1 < k, nxt_from[rows, np.minimum(safe + 1, k - 1)], k)
-    has_next = nxt < k
     upper = thresholds[np.minimum(nxt, k - 1)]
+    return place_values(thresholds[safe], upper, nxt < k, idx, placement, inclusive)
+
+
+def place_values(lower, upper, has_next, idx, placement: str, inclusive: bool) -> np.ndarray:
+    """Threshold values from chosen candidates ``lower`` and the next candidates ``upper``.
+
+    ``has_next``: whether a next candidate exists (else ``upper`` is ignored); NaN where
+    ``idx < 0``. See the module docstring for the placements.
+    """
+    lower = np.asarray(lower, dtype=np.float64)
+    upper = np.asarray(upper, dtype=np.float64)
     if placement == "midpoint":
         mid = lower + (upper - lower) / 2.0
         if inclusive:  # need lower <= thr < upper (adjacent floats can round the midpoint up)
@@ -366,7 +375,7 @@ def place(thresholds, valid, idx, placement: str, inclusive: bool) -> np.ndarray
         out = np.where(has_next, mid, lower if inclusive else np.nextafter(lower, np.inf))
     else:
         out = lower if inclusive else np.nextafter(lower, np.inf)
-    return np.where(idx >= 0, out, np.nan)
+    return np.where(np.asarray(idx) >= 0, out, np.nan)
 
 
 def choose_threshold(sweep: ThresholdSweep, chooser: str = "max-f1", *, target=None,

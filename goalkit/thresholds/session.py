@@ -37,6 +37,8 @@ from __future__ import annotations
 
 from goalkit.errors import shown
 
+import contextlib
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
@@ -50,8 +52,8 @@ from goalkit.pipeline.plan import make_plan, open_source, strategy_names
 from goalkit.pipeline.summary import HIGH_REACHED, LOW_REACHED
 from goalkit.reward import DISTANCES, RewardRule, within
 from goalkit.thresholds.box import suggest_box
-from goalkit.thresholds.diagnostics import (diagnose, rewarded_fraction, state_goals, state_masks,
-                                            threshold_warnings)
+from goalkit.thresholds.diagnostics import (RewardedFraction, diagnose, rewarded_fraction, state_goals,
+                                            state_masks, threshold_warnings)
 from goalkit.thresholds.labels import LabelledPairs, concat_pairs, load_labelled_pairs, pairs_from_success
 from goalkit.thresholds.metrics import CHOOSERS, check_chooser
 from goalkit.thresholds.plots import plot_diagnostics, plot_labelled
@@ -251,7 +253,7 @@ def _cast(x, dtype) -> np.ndarray:
 
 def _chunk_rows(plan, chunk, gdtype):
     """(achieved, goal, strategy, goal_mask or None) of every goal row the build makes for ``chunk``."""
-    rows = relabel_chunk(plan, chunk)
+    rows = relabel_chunk(plan, chunk, defer_gathers=True)  # observation columns unused: never copied
     phi = _cast(plan.goal_map(chunk, np.arange(chunk.observations.shape[0])), gdtype)
     out = []
     for cols in rows.columns.values():
@@ -284,18 +286,18 @@ def suggested_range(diagnostics, rule: RewardRule) -> dict:
     return out
 
 
-def _rewarded_at(achieved, goal, strategy, rule, points: dict, names: dict, mask=None) -> dict:
+def _rewarded_at(d, rf, inclusive: bool, points: dict, names: dict) -> dict:
     """Rewarded fraction per strategy (and over all rows) at a few named thresholds.
 
-    ``mask``: each row's ``goal_mask`` (only those dimensions count), or None.
+    ``d``: each goal row's distance under the rule; ``rf``: :func:`rewarded_fraction` of the
+    rows at the thresholds ``points`` (in that order).
     """
     labels = list(points)
     values = np.array([points[k] for k in labels], dtype=np.float64)
-    rf = rewarded_fraction(achieved, goal, strategy, rule, values, mask)
-    d = rule.distance(achieved, goal, mask)
-    side = within(d[:, None], values[None, :], rule.inclusive)
+    # rows within each threshold over the rows (the count over the rows: as the mean of the flags)
+    share = [np.count_nonzero(within(d, v, inclusive)) / d.size if d.size else float("nan") for v in values]
     out = {"thresholds": dict(zip(labels, values.tolist())), "strategies": {},
-           "all": {"rows": int(d.size), "fraction": dict(zip(labels, side.mean(axis=0).tolist()))}}
+           "all": {"rows": int(d.size), "fraction": dict(zip(labels, share))}}
     for i, code in enumerate(rf.strategies.tolist()):
         out["strategies"][names.get(code, str(code))] = {
             "rows": int(rf.counts[i]), "fraction": dict(zip(labels, rf.fraction[i].tolist()))}
@@ -330,6 +332,16 @@ def _file_pair_masks(pairs: LabelledPairs, source, masks, chunk_transitions: int
         note = (f"{missing} of {pairs.size} labelled pairs are scored with the [mask] table's mask of "
                 f"other tasks: {why}")
     return pairs.with_mask(masks.task_mask(tasks)), note
+
+
+@contextlib.contextmanager
+def _worker_thread():
+    """One worker thread; on the way out (an error, Ctrl-C) bootstraps not yet started are dropped."""
+    pool = ThreadPoolExecutor(1, thread_name_prefix="goalkit-tune")
+    try:
+        yield pool
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
 
 
 def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=(),
@@ -409,95 +421,107 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
         if progress is not None:
             progress(chunk.num_transitions, total)
     episodes = concat_episodes(parts)
-    achieved = np.concatenate([r[0] for r in rows]).astype(np.float64)
-    goal = np.concatenate([r[1] for r in rows]).astype(np.float64)
+    # kept in the goal dtype: every rule distance is computed in float64 from any input dtype
+    # (the casts are exact), so the bits are those of float64 copies, without the copies
+    achieved = np.concatenate([r[0] for r in rows])
+    goal = np.concatenate([r[1] for r in rows])
     strategy = np.concatenate([r[2] for r in rows])
     # each row's goal_mask as the build stores it (task masks and random masks); None without [mask]
     row_mask = None if plan.masks is None else np.concatenate([r[3] for r in rows])
 
-    pairs = file_pairs if file_pairs is not None else (concat_pairs(succ) if from_success else None)
-    candidates, winner, box, notes = [], None, None, []
-    if file_pairs is not None and plan.masks is not None:
-        pairs, note = _file_pair_masks(file_pairs, source, plan.masks, chunk_transitions)
-        if note:
-            notes.append(note)
-    if pairs is not None:
-        for n in names:
-            rule = candidate_rule(recipe.reward, n, gmap.dim)
-            cand = Candidate(n, rule)
-            try:
-                cand.tuner = ThresholdTuner(rule, chooser=chooser, target=target,
-                                            n_resamples=n_resamples, seed=recipe.seed,
-                                            box_recall=BOX_RECALL).fit(pairs)
-            except TuningError as exc:
-                if exc.key == "target":  # name the option the user gave
-                    exc = TuningError(exc.message, file=exc.file, key="--target-precision")
-                if len(names) == 1:
-                    raise exc from None
-                cand.error = str(exc)
-            candidates.append(cand)
-        ok = [c for c in candidates if c.tuner is not None]
-        if not ok:
-            raise TuningError(f"no candidate distance could be tuned; first: {candidates[0].error}")
-        winner = max(ok, key=lambda c: c.score)  # max() keeps the first of equal scores
-        box = winner.tuner.box_ if winner.tuner.box_ is not None else suggest_box(
-            pairs.achieved, pairs.goal, pairs.reached, method="recall", recall=BOX_RECALL)
-        diag_rule = winner.tuner.suggested_rule_
-        if not pairs.grouped:
-            notes.append("the labelled pairs carry no episode column: the bootstrap treats every "
-                         "pair as its own episode, so the interval is too narrow")
-    else:
-        diag_rule = recipe.reward
+    # the bootstrap of each candidate runs on a thread while the diagnostics are computed here
+    with _worker_thread() as pool:
+        pairs = file_pairs if file_pairs is not None else (concat_pairs(succ) if from_success else None)
+        candidates, winner, box, notes = [], None, None, []
+        if file_pairs is not None and plan.masks is not None:
+            pairs, note = _file_pair_masks(file_pairs, source, plan.masks, chunk_transitions)
+            if note:
+                notes.append(note)
+        if pairs is not None:
+            for n in names:
+                rule = candidate_rule(recipe.reward, n, gmap.dim)
+                cand = Candidate(n, rule)
+                try:
+                    cand.tuner = ThresholdTuner(rule, chooser=chooser, target=target,
+                                                n_resamples=n_resamples, seed=recipe.seed,
+                                                box_recall=BOX_RECALL).fit(pairs, executor=pool)
+                except TuningError as exc:
+                    if exc.key == "target":  # name the option the user gave
+                        exc = TuningError(exc.message, file=exc.file, key="--target-precision")
+                    if len(names) == 1:
+                        raise exc from None
+                    cand.error = str(exc)
+                candidates.append(cand)
+            ok = [c for c in candidates if c.tuner is not None]
+            if not ok:
+                raise TuningError(f"no candidate distance could be tuned; first: {candidates[0].error}")
+            winner = max(ok, key=lambda c: c.score)  # max() keeps the first of equal scores
+            box = winner.tuner.box_ if winner.tuner.box_ is not None else suggest_box(
+                pairs.achieved, pairs.goal, pairs.reached, method="recall", recall=BOX_RECALL)
+            diag_rule = winner.tuner.suggested_rule_
+            if not pairs.grouped:
+                notes.append("the labelled pairs carry no episode column: the bootstrap treats every "
+                             "pair as its own episode, so the interval is too narrow")
+        else:
+            diag_rule = recipe.reward
 
-    diag = diagnose(episodes, gmap, diag_rule, sample=sample_states, seed=recipe.seed, masks=plan.masks)
-    summary = diag.summary()
-    rng_ = suggested_range(diag, diag_rule)
-    # label-free, from the logs' temporal order (goalkit.thresholds.temporal): holds when episodes overlap
-    rng_["temporal"] = temporal_threshold(state_goals(episodes, gmap), episodes.offsets, diag_rule.distance,
-                                          seed=recipe.seed, mask=state_masks(episodes, plan.masks)).as_dict()
-    warnings = threshold_warnings(summary)
-    if not rng_["ok"] and rng_["low"] is not None and rng_["high"] is not None:
-        warnings.append(f"no clean range: half the typical one-step change ({rng_['low']:.4g}) is above "
-                        f"the 25% quantile of the distance to other episodes ({rng_['high']:.4g})")
+        diag = diagnose(episodes, gmap, diag_rule, sample=sample_states, seed=recipe.seed, masks=plan.masks)
+        summary = diag.summary()
+        rng_ = suggested_range(diag, diag_rule)
+        # label-free, from the logs' temporal order (goalkit.thresholds.temporal): holds when episodes overlap
+        rng_["temporal"] = temporal_threshold(state_goals(episodes, gmap), episodes.offsets, diag_rule.distance,
+                                              seed=recipe.seed, mask=state_masks(episodes, plan.masks)).as_dict()
+        warnings = threshold_warnings(summary)
+        if not rng_["ok"] and rng_["low"] is not None and rng_["high"] is not None:
+            warnings.append(f"no clean range: half the typical one-step change ({rng_['low']:.4g}) is above "
+                            f"the 25% quantile of the distance to other episodes ({rng_['high']:.4g})")
 
-    box_units = diag_rule.distance_name == "box"
-    current = 1.0 if recipe.reward.distance_name == "box" else float(recipe.reward.threshold)
-    points = {}
-    if diag_rule.distance_name == recipe.reward.distance_name:
-        points["recipe"] = current if not box_units else float(
-            np.max(np.asarray(recipe.reward.threshold) / np.asarray(diag_rule.threshold)))
-    if winner is not None:
-        points["suggested"] = 1.0 if box_units else float(diag_rule.threshold)
-    if rng_["low"] is not None:
-        points["range_low"] = rng_["low"]
-    if rng_["high"] is not None:
-        points["range_high"] = rng_["high"]
-    snames = strategy_names(recipe.mixture)
-    rewarded_at = _rewarded_at(achieved, goal, strategy, diag_rule, points, snames, row_mask)
-    d = diag_rule.distance(achieved, goal, row_mask)
-    ref = max(points.values()) if points else 1.0
-    top = max(2.0 * ref, float(np.quantile(d, 0.95)) if d.size else 1.0, 1e-12)
-    curve = rewarded_fraction(achieved, goal, strategy, diag_rule, np.linspace(0.0, top, CURVE_POINTS), row_mask)
+        box_units = diag_rule.distance_name == "box"
+        current = 1.0 if recipe.reward.distance_name == "box" else float(recipe.reward.threshold)
+        points = {}
+        if diag_rule.distance_name == recipe.reward.distance_name:
+            points["recipe"] = current if not box_units else float(
+                np.max(np.asarray(recipe.reward.threshold) / np.asarray(diag_rule.threshold)))
+        if winner is not None:
+            points["suggested"] = 1.0 if box_units else float(diag_rule.threshold)
+        if rng_["low"] is not None:
+            points["range_low"] = rng_["low"]
+        if rng_["high"] is not None:
+            points["range_high"] = rng_["high"]
+        snames = strategy_names(recipe.mixture)
+        d = diag_rule.distance(achieved, goal, row_mask)
+        ref = max(points.values()) if points else 1.0
+        top = max(2.0 * ref, float(np.quantile(d, 0.95)) if d.size else 1.0, 1e-12)
+        grid = np.linspace(0.0, top, CURVE_POINTS)
+        named = np.array([points[k] for k in points], dtype=np.float64)
+        # one sort of the rows' distances serves the named points and the curve
+        both = rewarded_fraction(achieved, goal, strategy, diag_rule, np.r_[named, grid], row_mask, distances=d)
+        at_points = RewardedFraction(both.strategies, named, both.fraction[:, :named.size], both.counts)
+        curve = RewardedFraction(both.strategies, grid, both.fraction[:, named.size:], both.counts)
+        rewarded_at = _rewarded_at(d, at_points, diag_rule.inclusive, points, snames)
 
-    for label, frac in rewarded_at["all"]["fraction"].items():
-        if label in ("recipe", "suggested") and not LOW_REACHED <= frac <= HIGH_REACHED:
-            warnings.append(f"at the {label} threshold {points[label]:.4g} about {frac:.1%} of the "
-                            f"sampled goal rows are rewarded (outside {LOW_REACHED:.0%} .. "
-                            f"{HIGH_REACHED:.0%}); the build will warn about it")
+        for label, frac in rewarded_at["all"]["fraction"].items():
+            if label in ("recipe", "suggested") and not LOW_REACHED <= frac <= HIGH_REACHED:
+                warnings.append(f"at the {label} threshold {points[label]:.4g} about {frac:.1%} of the "
+                                f"sampled goal rows are rewarded (outside {LOW_REACHED:.0%} .. "
+                                f"{HIGH_REACHED:.0%}); the build will warn about it")
 
-    sample = {"episodes": int(positions.size), "transitions": total,
-              "episodes_in_log": int(len(source.lengths)),
-              "transitions_in_log": int(np.sum(source.lengths)),
-              "max_transitions": int(max_transitions), "seed": int(recipe.seed),
-              "goal_rows": int(d.size), "whole_log": bool(positions.size == len(source.lengths))}
-    if not sample["whole_log"]:
-        notes.append(f"tuned on a sample of {sample['episodes']} of {sample['episodes_in_log']} episodes "
-                     f"(--max-transitions {max_transitions}); goals borrowed from other episodes come "
-                     f"from the sample only")
-    return TuneResult(recipe=recipe, mode=mode, labels_source=None if pairs is None else pairs.source,
-                      sample=sample, candidates=candidates, winner=winner, box=box, rule=diag_rule,
-                      diagnostics=diag, rewarded=curve, rewarded_at=rewarded_at,
-                      suggested_range=rng_, warnings=warnings, strategy_names=snames, notes=notes)
+        sample = {"episodes": int(positions.size), "transitions": total,
+                  "episodes_in_log": int(len(source.lengths)),
+                  "transitions_in_log": int(np.sum(source.lengths)),
+                  "max_transitions": int(max_transitions), "seed": int(recipe.seed),
+                  "goal_rows": int(d.size), "whole_log": bool(positions.size == len(source.lengths))}
+        if not sample["whole_log"]:
+            notes.append(f"tuned on a sample of {sample['episodes']} of {sample['episodes_in_log']} episodes "
+                         f"(--max-transitions {max_transitions}); goals borrowed from other episodes come "
+                         f"from the sample only")
+        for c in candidates:  # wait for the intervals (and raise what a bootstrap raised)
+            if c.tuner is not None:
+                c.tuner.interval_
+        return TuneResult(recipe=recipe, mode=mode, labels_source=None if pairs is None else pairs.source,
+                          sample=sample, candidates=candidates, winner=winner, box=box, rule=diag_rule,
+                          diagnostics=diag, rewarded=curve, rewarded_at=rewarded_at,
+                          suggested_range=rng_, warnings=warnings, strategy_names=snames, notes=notes)
 
 
 __all__ = ["tune_recipe", "TuneResult", "Candidate", "check_distances", "check_options",

@@ -5,7 +5,9 @@ distance to the nearest state of *another* episode. When episodes overlap (many 
 the same states, as in recordings of one environment), that distance is tiny and the range
 comes out empty. The evidence used here is different: *how many logged steps separate two
 states*, read from the logs' graph (:class:`goalkit.goals.stategraph.StateGraph`, logged
-transitions plus joins of identical goal vectors of different episodes).
+transitions plus joins of identical goal vectors of different episodes, found exactly by sorting
+the vectors: :func:`goalkit.goals.stategraph.identical_joins`, at most ``JOIN_NEIGHBOURS`` per
+state).
 
 Pairs of states are drawn (same-episode pairs a few steps and many steps apart, and random
 pairs), their steps apart measured in the graph, and split into
@@ -32,10 +34,12 @@ from dataclasses import dataclass
 import numpy as np
 
 from goalkit import rng
-from goalkit.goals.stategraph import GraphSettings, StateGraph
+from goalkit.goals.stategraph import UNREACHABLE, StateGraph, identical_joins, state_episodes, transition_edges
 
 #: Pairs drawn per kind (same episode, other episode).
 PAIRS = 20_000
+#: Other states a state joins at most (of those with an identical goal vector).
+JOIN_NEIGHBOURS = 8
 
 
 @dataclass(frozen=True)
@@ -100,6 +104,41 @@ def knee(d, points: int = 200):
     return float(x[int(np.argmax(yn - x / top))])
 
 
+def pair_steps(graph: StateGraph, transition_offsets, joined, sources, targets) -> np.ndarray:
+    """``graph.distances(sources, targets)``, with the searches left out where the answer is known.
+
+    From a state whose episode has no joined state at or after it, the only way on is its
+    own episode: the path to a later state of that episode is the steps between them (when
+    at most the graph's horizon), and no other state is reachable. Only the other pairs are
+    searched.
+
+    Parameters
+    ----------
+    graph : StateGraph
+    transition_offsets : ndarray of int64 (E + 1,)
+    joined : ndarray of int64
+        States with a join (either end of a join pair; repeats allowed).
+    sources, targets : ndarray of int64 (M,)
+    """
+    off = np.asarray(transition_offsets, dtype=np.int64)
+    src = np.asarray(sources, dtype=np.int64)
+    tgt = np.asarray(targets, dtype=np.int64)
+    episode = state_episodes(off)
+    last = off[1:] + np.arange(1, off.size, dtype=np.int64)          # one past each episode's last state
+    flag = np.zeros(graph.n_states_ + 1, np.int64)
+    flag[np.asarray(joined, dtype=np.int64)] = 1
+    after = np.cumsum(flag[::-1])[::-1]                                # joined states at rows >= r
+    free = (after[src] - after[last[episode[src]]]) == 0
+    gap = tgt - src
+    horizon = graph.horizon_
+    reach = (episode[tgt] == episode[src]) & (gap >= 0) & (True if horizon is None else gap <= horizon)
+    out = np.where(reach, gap, UNREACHABLE)
+    search = np.flatnonzero(~free)
+    if search.size:
+        out[search] = graph.distances(src[search], tgt[search])
+    return out
+
+
 def temporal_threshold(goals, transition_offsets, distance, *, near_steps: int = 1, far_steps: int = 10,
                        seed: int = 0, pairs: int = PAIRS, mask=None) -> TemporalThreshold:
     """Recommend a goal threshold from the logs' temporal order (no labels).
@@ -125,10 +164,13 @@ def temporal_threshold(goals, transition_offsets, distance, *, near_steps: int =
     x = np.asarray(goals, dtype=np.float64)
     # with masks, states join on the dimensions of their own mask only (x * 1 == x: a full mask
     # changes no bit), so a dimension no mask keeps never changes the graph
-    graph = StateGraph.from_logs(x if mask is None else x * mask, off, GraphSettings(join_radius=0.0, join_neighbours=8,
-                                                       horizon=4 * int(far_steps)))
+    # joins of identical goal vectors only (join radius 0), found exactly by sorting
+    tail, head = transition_edges(off)
+    ju, jv = identical_joins(x if mask is None else x * mask, off, JOIN_NEIGHBOURS)
+    graph = StateGraph(x.shape[0], np.concatenate([tail, ju, jv]), np.concatenate([head, jv, ju]),
+                       n_joins=len(ju), horizon=4 * int(far_steps), n_transitions=len(tail))
     a, b = _pairs(off, seed, int(pairs), int(near_steps), int(far_steps))
-    steps = graph.distances(a, b)
+    steps = pair_steps(graph, off, np.concatenate([ju, jv]), a, b)
     near = (steps >= 0) & (steps <= near_steps)
     far = steps >= far_steps
     d = np.asarray(distance(x[a], x[b]) if mask is None else distance(x[a], x[b], mask[a]), dtype=np.float64)

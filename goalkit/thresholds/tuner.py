@@ -80,8 +80,12 @@ class ThresholdTuner:
         self.box_method = box_method
         self.box_recall = box_recall
 
-    def fit(self, pairs: LabelledPairs) -> "ThresholdTuner":
+    def fit(self, pairs: LabelledPairs, executor=None) -> "ThresholdTuner":
         """Sweep, choose, bootstrap and (for box) suggest tolerances; return ``self``.
+
+        ``executor`` (a :class:`concurrent.futures.Executor`, optional) runs the bootstrap
+        while the caller goes on; ``interval_`` then waits for it when first read (and raises
+        what the bootstrap raised). The result is the same either way.
 
         Raises
         ------
@@ -112,14 +116,23 @@ class ThresholdTuner:
         is_box = rule.distance_name == "box"
         current = 1.0 if is_box else float(rule.threshold)
         self.current_ = sweep.at(current - shift, rule.inclusive)
-        self.interval_ = None
+        self._interval, self._pending = None, None
         if self.n_resamples:
-            self.interval_ = bootstrap_threshold(
-                d, y, pairs.groups if pairs.grouped else None, chooser=self.chooser,
-                target=self.target, placement=self.placement, inclusive=rule.inclusive,
-                n_resamples=self.n_resamples, confidence=self.confidence, seed=self.seed)
+            groups = pairs.groups if pairs.grouped else None
+
+            def interval():
+                iv = bootstrap_threshold(d, y, groups, chooser=self.chooser, target=self.target,
+                                         placement=self.placement, inclusive=rule.inclusive,
+                                         n_resamples=self.n_resamples, confidence=self.confidence,
+                                         seed=self.seed)
+                return shifted_back(self.choice_, iv, shift)[1] if is_region(rule) else iv
+
+            if executor is None:
+                self._interval = interval()
+            else:
+                self._pending = executor.submit(interval)
         if is_region(rule):
-            self.choice_, self.interval_ = shifted_back(self.choice_, self.interval_, shift)
+            self.choice_, _ = shifted_back(self.choice_, None, shift)
             self.current_ = {**self.current_, "threshold": current}
             self.suggested_rule_ = rule.replace(threshold=self.choice_.threshold)
             self.box_ = None
@@ -136,6 +149,14 @@ class ThresholdTuner:
             self.box_ = None
         self.pairs_ = pairs.describe()
         return self
+
+    @property
+    def interval_(self):
+        """The bootstrap interval (:class:`ThresholdInterval`), None without resamples."""
+        if self._pending is not None:
+            pending, self._pending = self._pending, None
+            self._interval = pending.result()
+        return self._interval
 
     def recipe_threshold(self):
         """The value for the recipe's ``[reward] threshold`` (a number, or a list for box)."""

@@ -23,7 +23,10 @@ import networkx as nx
 import numpy as np
 import pytest
 
-from goalkit.goals.stategraph import UNREACHABLE, GraphSettings, StateGraph
+from hypothesis import given, settings, strategies as st
+
+from goalkit.goals.stategraph import (UNREACHABLE, GraphSettings, StateGraph, identical_joins,
+                                      transition_edges)
 
 MOVES = np.array([[1, 0], [-1, 0], [0, 1], [0, -1]])
 
@@ -138,3 +141,47 @@ def test_one_way_transitions_give_asymmetric_distances():
     episode = np.repeat(np.arange(len(offsets) - 1), np.diff(offsets) + 1)
     joined = (cells[a] == cells[b]).all(axis=1) & (episode[a] != episode[b])
     assert joined.sum() > 20 and (ab[joined] == 1).all() and (ba[joined] == 1).all()
+
+
+# ---- identical_joins: the radius-0 joins found by sorting (what tune's temporal threshold uses) ----
+def graph_of_identical(cells, offsets, neighbours, horizon=None):
+    tail, head = transition_edges(offsets)
+    ju, jv = identical_joins(cells, offsets, neighbours)
+    return StateGraph(len(cells), np.concatenate([tail, ju, jv]), np.concatenate([head, jv, ju]),
+                      n_joins=len(ju), horizon=horizon, n_transitions=len(tail))
+
+
+@pytest.mark.parametrize("one_way", [False, True])
+def test_identical_joins_equal_networkx_at_radius_0(one_way):
+    cells, offsets = bench_walks(one_way=one_way, seed=11 + one_way)
+    n = len(cells)
+    G = networkx_graph(cells, offsets, 0.0)
+    g = graph_of_identical(cells, offsets, neighbours=n)  # no cap: every identical pair
+    assert g.n_joins_ > 50
+    assert g.n_transitions_ + 2 * g.n_joins_ == G.number_of_edges()
+    for s in range(0, n, 7):
+        lengths = nx.single_source_shortest_path_length(G, s)
+        got = g.distances(np.full(n, s), np.arange(n))
+        np.testing.assert_array_equal(got, [lengths.get(t, UNREACHABLE) for t in range(n)])
+
+
+@settings(max_examples=150, deadline=None)
+@given(values=st.lists(st.sampled_from([0.0, -0.0, 1.0, 2.5]), min_size=2, max_size=60),
+       cuts=st.lists(st.integers(0, 30), max_size=6), neighbours=st.integers(1, 5))
+def test_identical_joins_against_the_pairwise_definition(values, cuts, neighbours):
+    x = np.array(values, dtype=np.float64).reshape(-1, 1)
+    n = len(x)
+    # episodes: cut the n states into runs (each episode has at least one state: T = run - 1)
+    bounds = sorted({0, n, *[c for c in cuts if 0 < c < n]})
+    offsets = np.array([b - i for i, b in enumerate(bounds)], np.int64)  # transition offsets
+    episode = np.repeat(np.arange(len(bounds) - 1), np.diff(bounds))
+    u, v = identical_joins(x, offsets, neighbours)
+    got = set(zip(u.tolist(), v.tolist()))
+    # the definition (brute force): equal values (-0.0 == 0.0), other episodes; each member of a
+    # set of equal states joins the first neighbours + 1 members of its set, in row order
+    want = set()
+    for i in range(n):
+        members = [j for j in range(n) if x[j, 0] == x[i, 0]][:neighbours + 1]
+        want |= {(min(i, j), max(i, j)) for j in members if episode[j] != episode[i]}
+    assert got == want
+    assert all(a < b for a, b in got)

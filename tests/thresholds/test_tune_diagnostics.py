@@ -102,6 +102,24 @@ def test_rewarded_fraction_matches_direct_counting(inclusive):
         assert res.counts[i] == dd.size
 
 
+@pytest.mark.parametrize("inclusive", [True, False])
+def test_rewarded_fraction_with_unsorted_repeated_thresholds_and_given_distances(inclusive):
+    r = np.random.default_rng(4)
+    a = np.round(r.normal(size=(400, 3)), 1)
+    g = np.round(r.normal(size=(400, 3)), 1)
+    s = r.choice([7, 1, 300], size=400)
+    rule = RewardRule("l1", 0.5, inclusive=inclusive)
+    thr = np.array([2.0, 0.0, 0.5, 2.0, 9.9, 0.3, 0.5])   # unsorted, repeated, some equal to distances
+    d = np.sum(np.abs(a - g), axis=1)                     # the L1 distance, written out here
+    for res in (rewarded_fraction(a, g, s, rule, thr), rewarded_fraction(a, g, s, rule, thr, distances=d)):
+        assert res.strategies.tolist() == [1, 7, 300]
+        for i, code in enumerate([1, 7, 300]):
+            dd = d[s == code]
+            want = [np.mean(dd <= t) if inclusive else np.mean(dd < t) for t in thr]
+            np.testing.assert_allclose(res.fraction[i], want, rtol=0, atol=1e-15)
+            assert res.counts[i] == dd.size
+
+
 def test_diagnose_summary_places_the_threshold():
     ep = _lines()
     d = diagnose(ep, IndexGoalMap((0, 1, 2)), RewardRule("euclidean", 0.15), horizons=[1, 2], sample=100)
