@@ -37,8 +37,19 @@ SWITCH = "GOALKIT_READ_PROCESS"
 
 def wanted(source, chunks) -> bool:
     """True when a reader process is worth starting for these chunks of ``source``."""
-    return (type(source) in SOURCES and len(chunks) >= MIN_CHUNKS
-            and sum(int(c.transitions) for c in chunks) >= MIN_TRANSITIONS and cpus() >= 2
+    return _wanted(type(source), len(chunks), sum(int(c.transitions) for c in chunks))
+
+
+def wanted_ranges(source, bounds) -> bool:
+    """:func:`wanted` for chunks given as episode ranges ``(start, stop)`` of ``source`` (a log,
+    or a sample of one that reads through it, its ``source``)."""
+    lengths = source.lengths
+    total = sum(int(lengths[a:b].sum()) for a, b in bounds)
+    return _wanted(type(getattr(source, "source", source)), len(bounds), total)
+
+
+def _wanted(kind, chunks: int, transitions: int) -> bool:
+    return (kind in SOURCES and chunks >= MIN_CHUNKS and transitions >= MIN_TRANSITIONS and cpus() >= 2
             and os.environ.get(SWITCH, "1") != "0")
 
 

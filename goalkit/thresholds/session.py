@@ -46,9 +46,12 @@ import numpy as np
 
 from goalkit.config import closest
 from goalkit.errors import LabelError, ParameterError, TuningError
+from goalkit.logs import spare
 from goalkit.logs.episodes import chunk_bounds
+from goalkit.pipeline.build import helped_layout, log_paths
 from goalkit.pipeline.chunk import relabel_chunk
 from goalkit.pipeline.plan import make_plan, open_source, strategy_names
+from goalkit.pipeline.readproc import ChunkReader, wanted_ranges
 from goalkit.pipeline.summary import HIGH_REACHED, LOW_REACHED
 from goalkit.reward import DISTANCES, RewardRule, within
 from goalkit.thresholds.box import suggest_box
@@ -393,33 +396,40 @@ def tune_recipe(recipe, *, labels=None, from_success: bool = False, distances=()
     file_pairs = load_labelled_pairs(labels) if labels is not None else None
     mode = "labels-file" if file_pairs is not None else ("success-flags" if from_success else "no-labels")
 
-    source = open_source(recipe)
-    positions = sample_episodes(source.episode_ids, source.lengths, max_transitions, recipe.seed)
-    sub = SampledSource(source, positions)
-    plan, _ = make_plan(recipe, sub, max_transitions=chunk_transitions)
-    gmap = plan.goal_map
-    gdtype = np.dtype(recipe.goal.dtype)
-    for n in names:
-        try:
-            candidate_rule(recipe.reward, n, gmap.dim).check_dim(gmap.dim)
-        except ParameterError as exc:
-            raise exc.in_recipe(recipe.file, "reward") from None
-    if file_pairs is not None and file_pairs.dim != gmap.dim:
-        raise LabelError(f"expected pairs of goal dimension {gmap.dim} (the recipe's goal map), got "
-                         f"{file_pairs.dim}", file=file_pairs.source, key="achieved")
+    # a spare helper process: it plans part of a large log's episodes, then reads the chunks
+    with spare.scope(log_paths(recipe), early=helped_layout(recipe)), contextlib.ExitStack() as stack:
+        source = open_source(recipe)
+        positions = sample_episodes(source.episode_ids, source.lengths, max_transitions, recipe.seed)
+        sub = SampledSource(source, positions)
+        plan, _ = make_plan(recipe, sub, max_transitions=chunk_transitions)
+        gmap = plan.goal_map
+        gdtype = np.dtype(recipe.goal.dtype)
+        for n in names:
+            try:
+                candidate_rule(recipe.reward, n, gmap.dim).check_dim(gmap.dim)
+            except ParameterError as exc:
+                raise exc.in_recipe(recipe.file, "reward") from None
+        if file_pairs is not None and file_pairs.dim != gmap.dim:
+            raise LabelError(f"expected pairs of goal dimension {gmap.dim} (the recipe's goal map), got "
+                             f"{file_pairs.dim}", file=file_pairs.source, key="achieved")
 
-    parts, succ, rows = [], [], []
-    total = int(sub.lengths.sum())
-    for a, b in chunk_bounds(sub.lengths, chunk_transitions):  # a loop over chunks
-        chunk = sub.read(a, b)
-        parts.append(replace(chunk, frames=None))  # the diagnostics never look at camera frames
-        if from_success:
-            p = pairs_from_success(chunk, gmap, plan.masks)
-            succ.append(LabelledPairs(_cast(p.achieved, gdtype), _cast(p.goal, gdtype), p.reached,
-                                      p.groups, True, p.source, p.mask))
-        rows += _chunk_rows(plan, chunk, gdtype)
-        if progress is not None:
-            progress(chunk.num_transitions, total)
+        parts, succ, rows = [], [], []
+        total = int(sub.lengths.sum())
+        bounds = list(chunk_bounds(sub.lengths, chunk_transitions))
+        # the chunks are read ahead by a helper process (the scope's spare) while they are relabelled here
+        reader = ChunkReader(sub, bounds) if wanted_ranges(sub, bounds) else None
+        if reader is not None:
+            stack.callback(reader.close)
+        for a, b in bounds:  # a loop over chunks
+            chunk = sub.read(a, b) if reader is None else reader.read(a, b)
+            parts.append(replace(chunk, frames=None))  # the diagnostics never look at camera frames
+            if from_success:
+                p = pairs_from_success(chunk, gmap, plan.masks)
+                succ.append(LabelledPairs(_cast(p.achieved, gdtype), _cast(p.goal, gdtype), p.reached,
+                                          p.groups, True, p.source, p.mask))
+            rows += _chunk_rows(plan, chunk, gdtype)
+            if progress is not None:
+                progress(chunk.num_transitions, total)
     episodes = concat_episodes(parts)
     # kept in the goal dtype: every rule distance is computed in float64 from any input dtype
     # (the casts are exact), so the bits are those of float64 copies, without the copies
