@@ -292,10 +292,18 @@ def run_build(recipe, producer, *, source=None, rows_per_chunk: int | None = Non
     -------
     BuildResult
     """
-    plan, source = make_plan(recipe, source)
-    cut = getattr(producer, "plan_chunks", None)
-    per_chunk = chunk_transitions(plan, rows_per_chunk or producer.rows_per_chunk)
-    chunks = plan_shards(plan, per_chunk) if cut is None else cut(plan, source, per_chunk)
+    launch = getattr(producer, "launch", None)
+    try:
+        if launch is not None:   # worker processes start on the other cores while this one plans
+            launch()
+        plan, source = make_plan(recipe, source)
+        cut = getattr(producer, "plan_chunks", None)
+        per_chunk = chunk_transitions(plan, rows_per_chunk or producer.rows_per_chunk)
+        chunks = plan_shards(plan, per_chunk) if cut is None else cut(plan, source, per_chunk)
+    except BaseException:
+        if launch is not None:
+            producer.abandon()
+        raise
     summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_rows, recipe.seed,
                              distance_unit=recipe.reward.reach_threshold,
                              rule=recipe.reward)

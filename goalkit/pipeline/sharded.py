@@ -70,6 +70,12 @@ class ShardProducer:
         self.reused = 0
         self.chunks = []
 
+    def launch(self) -> None:
+        """Start the runner's workers before the build plans (when the runner can)."""
+        launch = getattr(self.runner, "launch", None)
+        if launch is not None:
+            launch()
+
     def open(self, plan, source, chunks, inputs) -> None:
         """Compute the build key from ``inputs`` (a future of :class:`BuildInputs`), open the folder.
 
@@ -119,7 +125,7 @@ class ShardProducer:
         specs = self.chunks
         while self.cursor < len(specs) and specs[self.cursor].index in self.ready:
             spec = specs[self.cursor]
-            rows = read_shard(self.folder.path, spec, self.key, self.columns)
+            rows = read_shard(self.folder.path, spec, self.key, self.columns, defer=True)
             count(rows)
             self.cursor += 1
             yield spec, rows
