@@ -199,7 +199,45 @@ def build_case(recipe_path: str, out: str, workers: int) -> dict:
 
     runner = goalkit.LocalWorkers(workers) if workers else None
     res = goalkit.build(recipe_path, out=out, runner=runner, card=False)
-    return {"rows": int(sum(res.summary["rows"].values()))}
+    return {"rows": int(sum(res.summary["rows"].values())), "cpus": len(os.sched_getaffinity(0))}
+
+
+def dask_case(recipe_path: str, out: str, workers: int) -> dict:
+    """``goalkit.build`` on a Dask ``LocalCluster`` of ``workers`` single-threaded worker processes.
+
+    The cluster is started (and its workers are up) before the timed part and closed after it;
+    only the build is timed. CPU seconds: this process's own during the build plus those the
+    cluster's worker processes used meanwhile (read with psutil before and after).
+    """
+    import logging
+
+    import psutil
+    from distributed import Client, LocalCluster
+
+    import goalkit
+
+    logging.getLogger("distributed").setLevel(logging.ERROR)
+    with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None) as cluster, \
+            Client(cluster) as client:
+        client.wait_for_workers(workers)
+        me = psutil.Process()
+
+        def kids_cpu():
+            total = 0.0
+            for k in me.children(recursive=True):
+                try:
+                    t = k.cpu_times()
+                    total += t.user + t.system
+                except psutil.Error:
+                    pass
+            return total
+
+        k0, c0, t0 = kids_cpu(), time.process_time(), time.perf_counter()
+        res = goalkit.build(recipe_path, out=out, runner=goalkit.DaskCluster(client), card=False)
+        timed = {"seconds": time.perf_counter() - t0,
+                 "cpu_seconds": time.process_time() - c0 + kids_cpu() - k0}
+    return {"rows": int(sum(res.summary["rows"].values())), "cpus": len(os.sched_getaffinity(0)),
+            "timed": timed, "note": "LocalCluster started before and closed after the timed part"}
 
 
 def phases_case(recipe_path: str, out: str) -> dict:
@@ -247,7 +285,15 @@ def phases_case(recipe_path: str, out: str) -> dict:
 
 def child(args) -> None:
     """Run one case in this (fresh) process and print its JSON line."""
+    if args.cpus:        # as ``taskset -c 0,..``: this process and every process it starts
+        os.sched_setaffinity(0, set(range(args.cpus)))
     c0, t0 = cpu_seconds(), time.perf_counter()
+    if args.case == "dask":
+        res = dask_case(args.recipe, args.out, args.workers)
+        res.update(res.pop("timed"), **peak_rss_mb())
+        res["process_cpu_seconds"] = cpu_seconds()
+        print(json.dumps(res))
+        return
     if args.case == "script":
         info = json.loads(Path(args.info).read_text())
         res = script_case(info["logs"], args.out, info["threshold"])
@@ -259,10 +305,42 @@ def child(args) -> None:
     else:
         res = build_case(args.recipe, args.out, args.workers)
     res.update(seconds=time.perf_counter() - t0, cpu_seconds=cpu_seconds() - c0, **peak_rss_mb())
+    res["process_cpu_seconds"] = cpu_seconds()
     print(json.dumps(res))
 
 
+def machine_cpu_seconds() -> list:
+    """Busy CPU seconds of each CPU of the machine since boot (``/proc/stat``: all but idle and iowait)."""
+    tick = os.sysconf("SC_CLK_TCK")
+    out = []
+    with open("/proc/stat") as f:
+        for line in f:
+            if line.startswith("cpu") and line[3].isdigit():
+                v = [int(x) for x in line.split()[1:]]
+                out.append((sum(v[:8]) - v[3] - v[4]) / tick)
+    return out
+
+
 def run(args_list) -> dict:
+    """Run one case in a fresh process; add the load average and the other processes' CPU use.
+
+    ``others_cpu_seconds``: busy CPU seconds of the whole machine during the case minus the
+    case's own CPU seconds (its process tree; a Dask case's cluster start-up is not counted
+    as its own and so shows here); with ``free_cpus`` = CPUs - others / wall, the evidence that
+    the cores were free.
+    """
+    load0, busy0, t0 = os.getloadavg(), machine_cpu_seconds(), time.perf_counter()
+    r = _run(args_list)
+    wall, busy1, load1 = time.perf_counter() - t0, machine_cpu_seconds(), os.getloadavg()
+    whole = sum(busy1) - sum(busy0)
+    own = r.get("process_cpu_seconds", r["cpu_seconds"])
+    r.update(load_average_before=load0, load_average_after=load1, case_process_wall_seconds=wall,
+             machine_busy_cpu_seconds=whole, others_cpu_seconds=max(0.0, whole - own),
+             others_cpus_busy=max(0.0, whole - own) / wall)
+    return r
+
+
+def _run(args_list) -> dict:
     proc = subprocess.run([sys.executable, __file__, "--child", *args_list], capture_output=True, text=True,
                           cwd=str(ROOT), env={**os.environ, "PYTHONPATH": str(ROOT)})
     if proc.returncode:
@@ -288,26 +366,34 @@ def logs(folder: Path, episodes: int) -> dict:
     return info
 
 
-def measure(label: str, folder: Path, episodes: int, workers: list[int], phases: bool) -> dict:
+def measure(label: str, folder: Path, episodes: int, workers: list[int], phases: bool, dask: list[int]) -> dict:
     info = logs(folder, episodes)
     marker = str(folder / "bench-logs.json")
     built, out = str(folder / "bench-goals.h5"), str(folder / "bench-other.h5")
-    result = {"episodes": episodes, "transitions": info["steps"], "load_average_before": os.getloadavg()}
+    result = {"episodes": episodes, "transitions": info["steps"], "load_average_before": os.getloadavg(),
+              "cpus": len(os.sched_getaffinity(0))}
     cases = {}
 
     def case(name, *extra, out_path=out):
         Path(out_path).unlink(missing_ok=True)
-        r = run(["--case", name.split("-")[0], "--recipe", info["recipe"], "--info", marker, "--out", out_path,
-                 *extra])
+        kind = "dask" if name.startswith("dask") else name.split("-")[0]
+        r = run(["--case", kind, "--recipe", info["recipe"], "--info", marker, "--out", out_path, *extra])
+        if kind in ("build", "dask"):
+            r["sha256"] = file_sha256(out_path)
         cases[name] = r
         print(f"{label:>5} {name:<16} wall {r['seconds']:7.2f} s  cpu {r['cpu_seconds']:7.2f} s  "
-              f"peak RSS {r['peak_rss_mb']:6.0f} MiB", flush=True)
+              f"peak RSS {r['peak_rss_mb']:6.0f} MiB  load {r['load_average_before'][0]:.2f}->"
+              f"{r['load_average_after'][0]:.2f}  others busy {r['others_cpus_busy']:.2f} CPUs", flush=True)
 
+    # scaling: one process on one CPU (the baseline), on two, then the workers and Dask
+    case("build-1cpu", "--workers", "0", "--cpus", "1")
     case("build", "--workers", "0", out_path=built)
-    case("script")
-    case("floor", "--built", built)
     for w in workers:
         case(f"build-workers-{w}", "--workers", str(w))
+    for w in dask:
+        case(f"dask-{w}", "--workers", str(w))
+    case("script")
+    case("floor", "--built", built)
     if phases:
         case("phases")
     for p in (built, out):
@@ -319,13 +405,36 @@ def measure(label: str, folder: Path, episodes: int, workers: list[int], phases:
         "build_speed_over_floor_wall": f["timed_seconds"] / b["seconds"],
         "build_speed_over_floor_cpu": f["timed_cpu_seconds"] / b["cpu_seconds"],
     }
+    one = cases["build-1cpu"]["seconds"]
+    ratios["one_process_2cpu_speed_over_1cpu_wall"] = one / b["seconds"]
     for w in workers:
         ratios[f"workers_{w}_speed_over_one_process_wall"] = b["seconds"] / cases[f"build-workers-{w}"]["seconds"]
-    result.update(cases=cases, ratios=ratios, load_average_after=os.getloadavg())
+        ratios[f"workers_{w}_speed_over_1cpu_wall"] = one / cases[f"build-workers-{w}"]["seconds"]
+    for w in dask:
+        ratios[f"dask_{w}_speed_over_one_process_wall"] = b["seconds"] / cases[f"dask-{w}"]["seconds"]
+        ratios[f"dask_{w}_speed_over_1cpu_wall"] = one / cases[f"dask-{w}"]["seconds"]
+    digests = {n: c["sha256"] for n, c in cases.items() if "sha256" in c}
+    result.update(cases=cases, ratios=ratios, load_average_after=os.getloadavg(),
+                  same_bytes=len(set(digests.values())) == 1)
     print(f"{label:>5} build speed / script: {ratios['build_speed_over_script_wall']:.2f}x wall, "
           f"{ratios['build_speed_over_script_cpu']:.2f}x CPU; / floor: {ratios['build_speed_over_floor_wall']:.2f}x "
           f"wall, {ratios['build_speed_over_floor_cpu']:.2f}x CPU", flush=True)
+    print(f"{label:>5} speed-up over one process on 1 CPU ({one:.2f} s): one process on 2 CPUs "
+          f"{ratios['one_process_2cpu_speed_over_1cpu_wall']:.2f}x"
+          + "".join(f", workers={w} {ratios[f'workers_{w}_speed_over_1cpu_wall']:.2f}x" for w in workers)
+          + "".join(f", Dask {w} workers {ratios[f'dask_{w}_speed_over_1cpu_wall']:.2f}x" for w in dask)
+          + f"; same bytes: {result['same_bytes']}", flush=True)
     return result
+
+
+def file_sha256(path) -> str:
+    import hashlib
+
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for block in iter(lambda: f.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
 
 
 def main(argv=None) -> dict:
@@ -333,6 +442,7 @@ def main(argv=None) -> dict:
                                  formatter_class=argparse.ArgumentDefaultsHelpFormatter)
     ap.add_argument("--large", action="store_true", help="also measure 1M transitions (21,000 episodes)")
     ap.add_argument("--workers", default="2", help="comma-separated worker counts to measure (0: none)")
+    ap.add_argument("--dask", default="2", help="comma-separated Dask LocalCluster worker counts (0: none)")
     ap.add_argument("--no-phases", action="store_true", help="skip the phase breakdown")
     ap.add_argument("--data", default="/tmp/goalkit-bench-grouped", help="folder for generated logs")
     ap.add_argument("--out", default=str(HERE / "results" / "grouped.json"))
@@ -341,12 +451,14 @@ def main(argv=None) -> dict:
     ap.add_argument("--recipe", help=argparse.SUPPRESS)
     ap.add_argument("--info", help=argparse.SUPPRESS)
     ap.add_argument("--built", help=argparse.SUPPRESS)
+    ap.add_argument("--cpus", type=int, default=0, help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.child:
         args.workers = int(args.workers)
         child(args)
         return {}
     workers = [int(w) for w in args.workers.split(",") if int(w) > 0]
+    dask = [int(w) for w in args.dask.split(",") if int(w) > 0]
     sizes = ["200k"] + (["1M"] if args.large else [])
     report = {"benchmark": "grouped",
               "command": "python benchmarks/bench_grouped.py " + " ".join(argv if argv is not None else sys.argv[1:]),
@@ -355,13 +467,14 @@ def main(argv=None) -> dict:
                       "across runs",
               "sizes": {}}
     for label in sizes:
-        report["sizes"][label] = measure(label, Path(args.data) / label, SIZES[label], workers, not args.no_phases)
+        report["sizes"][label] = measure(label, Path(args.data) / label, SIZES[label], workers, not args.no_phases,
+                                         dask)
     if "1M" in report["sizes"]:
         big, small = report["sizes"]["1M"]["cases"], report["sizes"]["200k"]["cases"]
         report["peak_rss_1M_over_200k"] = {k: big[k]["peak_rss_mb"] / small[k]["peak_rss_mb"]
                                            for k in big if k in small}
     report["targets"] = {"build_speed_over_script": 1.5, "build_speed_over_floor": 0.8,
-                         "peak_rss_1M_over_200k": 1.2, "workers_2_speed_over_one_process": 1.6}
+                         "peak_rss_1M_over_200k": 1.2, "workers_2_speed_over_1cpu": 1.6, "dask_2_speed_over_1cpu": 1.6}
     out = Path(args.out)
     out.parent.mkdir(parents=True, exist_ok=True)
     out.write_text(json.dumps(report, indent=2) + "\n")
