@@ -2,7 +2,7 @@
 
     .venv/bin/python benchmarks/bench_grouped.py                    # 200k transitions (~1-2 min)
     .venv/bin/python benchmarks/bench_grouped.py --large            # also 1M transitions (~5 min)
-    .venv/bin/python benchmarks/bench_grouped.py --workers 0        # skip the --workers 1/2 runs
+    .venv/bin/python benchmarks/bench_grouped.py --workers 0 --dask 0   # skip the scaling runs
 
 Logs: ``goalkit.demo.make_demo`` (one HDF5 group per episode, seven gzip datasets each, about
 47 transitions per episode): 4,250 episodes (about 200k transitions), and with ``--large``
@@ -12,8 +12,17 @@ validation; gzip output in chunks of 65,536 rows).
 
 Cases, each in a fresh process (so that the peak RSS is the case's own), in one run:
 
-* ``build``: ``goalkit.build`` of the demo recipe, one process;
+* ``build-1cpu``: ``goalkit.build`` of the demo recipe, one process restricted to CPU 0 (the
+  case's process calls ``os.sched_setaffinity(0, {0})`` first, as ``taskset -c 0`` would;
+  the processes it starts inherit it, and goalkit's reader and planning helpers stay off with
+  one CPU): the one-core baseline of the scaling figures;
+* ``build``: the same on both CPUs (the default build: a reader process, a planning helper
+  for large logs, compression threads);
 * ``build-workers-N``: the same with ``workers=N`` (local worker processes);
+* ``dask-N``: the same on a ``distributed.LocalCluster(n_workers=N, threads_per_worker=1,
+  processes=True)`` through ``goalkit.DaskCluster(client)``; the cluster is started (its workers
+  up) before the timed part and closed after it, so only the build is timed; its CPU seconds add
+  the worker processes' (psutil) to the case's own;
 * ``script``: a plain numpy + h5py relabelling script kept below (:func:`script_case`): reads
   every episode group, draws the demo recipe's mixture per goal slot, scores the same reward,
   and writes the same number of rows with comparable columns, gzip, in the same chunks;
@@ -28,13 +37,19 @@ other in one process (plan = ``make_plan``; read = ``source.read`` of every chun
 
 Reported: wall and CPU seconds of each case (CPU: user + system of the case's process and its
 finished children), the ratios build/script and build/floor by wall time and by CPU time
-(speed ratios: ``t_script / t_build``; above 1 the build is faster), the workers' speed-up,
-peak RSS per case and the 1M/200k ratio, the load average before and after. The machine is
-shared with other jobs: wall-clock figures move with their load; the ratios of cases measured
-in the same run, and the CPU seconds, are the figures to compare.
+(speed ratios: ``t_script / t_build``; above 1 the build is faster), the speed-ups of one
+process on 2 CPUs, of the workers and of Dask over one process on 1 CPU (and of the workers
+and Dask over the default build), whether every build wrote the same bytes (SHA-256), peak RSS
+per case and the 1M/200k ratio. Whether the two cores were free: the load average before and
+after each case, and ``others_cpus_busy``, the CPU seconds the rest of the machine used while
+the case's process ran (``/proc/stat`` busy time of all CPUs minus the case's own CPU seconds)
+per second of it: near 0 means both cores were the case's. The machine is shared with other
+jobs: wall-clock figures move with their load; the ratios of cases measured in the same run,
+and the CPU seconds, are the figures to compare.
 
 Targets (issue 14): build >= 1.5x the script's speed and >= 0.8x the floor's; peak RSS at 1M
-<= 1.2x that at 200k; workers=2 >= 1.6x one process when two cores are free.
+<= 1.2x that at 200k; workers=2 and Dask with 2 workers >= 1.6x one process on one CPU when
+two cores are free.
 Results: ``benchmarks/results/grouped.json``. The flat best case stays in bench_build.py.
 """
 
