@@ -381,7 +381,12 @@ def logs(folder: Path, episodes: int) -> dict:
     return info
 
 
-def measure(label: str, folder: Path, episodes: int, workers: list[int], phases: bool, dask: list[int]) -> dict:
+#: A case ran on free cores when the rest of the machine kept less than this many CPUs busy meanwhile.
+QUIET_CPUS = 0.15
+
+
+def measure(label: str, folder: Path, episodes: int, workers: list[int], phases: bool, dask: list[int],
+            repeats: int = 1, only_scaling: bool = False) -> dict:
     info = logs(folder, episodes)
     marker = str(folder / "bench-logs.json")
     built, out = str(folder / "bench-goals.h5"), str(folder / "bench-other.h5")
@@ -400,26 +405,38 @@ def measure(label: str, folder: Path, episodes: int, workers: list[int], phases:
               f"peak RSS {r['peak_rss_mb']:6.0f} MiB  load {r['load_average_before'][0]:.2f}->"
               f"{r['load_average_after'][0]:.2f}  others busy {r['others_cpus_busy']:.2f} CPUs", flush=True)
 
-    # scaling: one process on one CPU (the baseline), on two, then the workers and Dask
-    case("build-1cpu", "--workers", "0", "--cpus", "1")
-    case("build", "--workers", "0", out_path=built)
-    for w in workers:
-        case(f"build-workers-{w}", "--workers", str(w))
-    for w in dask:
-        case(f"dask-{w}", "--workers", str(w))
-    case("script")
-    case("floor", "--built", built)
-    if phases:
+    # scaling: one process on one CPU (the baseline), on two, then the workers and Dask; with
+    # repeats, the rounds are interleaved and each case keeps every run (its median is reported)
+    scaling = [("build-1cpu", ("--workers", "0", "--cpus", "1"), out), ("build", ("--workers", "0"), built)]
+    scaling += [(f"build-workers-{w}", ("--workers", str(w)), out) for w in workers]
+    scaling += [(f"dask-{w}", ("--workers", str(w)), out) for w in dask]
+    runs = {name: [] for name, _, _ in scaling}
+    for _ in range(max(1, repeats)):
+        for name, extra, path in scaling:
+            case(name, *extra, out_path=path)
+            runs[name].append(cases[name])
+    for name, got in runs.items():
+        got = sorted(got, key=lambda r: r["seconds"])
+        cases[name] = dict(got[len(got) // 2], runs=[{k: r[k] for k in ("seconds", "cpu_seconds", "others_cpus_busy",
+                                                                         "load_average_before", "load_average_after")}
+                                                     for r in runs[name]])
+    if not only_scaling:
+        case("script")
+        case("floor", "--built", built)
+    if phases and not only_scaling:
         case("phases")
     for p in (built, out):
         Path(p).unlink(missing_ok=True)
-    b, s, f = cases["build"], cases["script"], cases["floor"]
-    ratios = {
-        "build_speed_over_script_wall": s["seconds"] / b["seconds"],
-        "build_speed_over_script_cpu": s["cpu_seconds"] / b["cpu_seconds"],
-        "build_speed_over_floor_wall": f["timed_seconds"] / b["seconds"],
-        "build_speed_over_floor_cpu": f["timed_cpu_seconds"] / b["cpu_seconds"],
-    }
+    b = cases["build"]
+    ratios = {}
+    if not only_scaling:
+        s, f = cases["script"], cases["floor"]
+        ratios = {
+            "build_speed_over_script_wall": s["seconds"] / b["seconds"],
+            "build_speed_over_script_cpu": s["cpu_seconds"] / b["cpu_seconds"],
+            "build_speed_over_floor_wall": f["timed_seconds"] / b["seconds"],
+            "build_speed_over_floor_cpu": f["timed_cpu_seconds"] / b["cpu_seconds"],
+        }
     one = cases["build-1cpu"]["seconds"]
     ratios["one_process_2cpu_speed_over_1cpu_wall"] = one / b["seconds"]
     for w in workers:
@@ -428,17 +445,31 @@ def measure(label: str, folder: Path, episodes: int, workers: list[int], phases:
     for w in dask:
         ratios[f"dask_{w}_speed_over_one_process_wall"] = b["seconds"] / cases[f"dask-{w}"]["seconds"]
         ratios[f"dask_{w}_speed_over_1cpu_wall"] = one / cases[f"dask-{w}"]["seconds"]
+    quiet = {}
+    for name in runs:
+        calm = sorted(r["seconds"] for r in runs[name] if r["others_cpus_busy"] < QUIET_CPUS)
+        quiet[name] = calm[len(calm) // 2] if calm else None
+    q1 = quiet["build-1cpu"]
+    for name in runs:
+        if name != "build-1cpu" and q1 is not None and quiet[name] is not None:
+            ratios[f"quiet_{name.replace('-', '_')}_speed_over_1cpu_wall"] = q1 / quiet[name]
+    result["quiet_seconds"] = quiet
+    result["quiet_rule"] = f"median over the runs during which the rest of the machine kept < {QUIET_CPUS} CPUs busy"
     digests = {n: c["sha256"] for n, c in cases.items() if "sha256" in c}
     result.update(cases=cases, ratios=ratios, load_average_after=os.getloadavg(),
                   same_bytes=len(set(digests.values())) == 1)
-    print(f"{label:>5} build speed / script: {ratios['build_speed_over_script_wall']:.2f}x wall, "
-          f"{ratios['build_speed_over_script_cpu']:.2f}x CPU; / floor: {ratios['build_speed_over_floor_wall']:.2f}x "
-          f"wall, {ratios['build_speed_over_floor_cpu']:.2f}x CPU", flush=True)
+    if not only_scaling:
+        print(f"{label:>5} build speed / script: {ratios['build_speed_over_script_wall']:.2f}x wall, "
+              f"{ratios['build_speed_over_script_cpu']:.2f}x CPU; / floor: "
+              f"{ratios['build_speed_over_floor_wall']:.2f}x wall, {ratios['build_speed_over_floor_cpu']:.2f}x CPU",
+              flush=True)
     print(f"{label:>5} speed-up over one process on 1 CPU ({one:.2f} s): one process on 2 CPUs "
           f"{ratios['one_process_2cpu_speed_over_1cpu_wall']:.2f}x"
           + "".join(f", workers={w} {ratios[f'workers_{w}_speed_over_1cpu_wall']:.2f}x" for w in workers)
           + "".join(f", Dask {w} workers {ratios[f'dask_{w}_speed_over_1cpu_wall']:.2f}x" for w in dask)
           + f"; same bytes: {result['same_bytes']}", flush=True)
+    print(f"{label:>5} on free cores (runs with others < {QUIET_CPUS} CPUs busy; median s): "
+          + ", ".join(f"{n} {'-' if v is None else f'{v:.2f}'}" for n, v in quiet.items()), flush=True)
     return result
 
 
@@ -458,6 +489,8 @@ def main(argv=None) -> dict:
     ap.add_argument("--large", action="store_true", help="also measure 1M transitions (21,000 episodes)")
     ap.add_argument("--workers", default="2", help="comma-separated worker counts to measure (0: none)")
     ap.add_argument("--dask", default="2", help="comma-separated Dask LocalCluster worker counts (0: none)")
+    ap.add_argument("--repeats", type=int, default=1, help="rounds of the scaling cases (interleaved; medians)")
+    ap.add_argument("--only-scaling", action="store_true", help="skip the script, floor and phases cases")
     ap.add_argument("--no-phases", action="store_true", help="skip the phase breakdown")
     ap.add_argument("--data", default="/tmp/goalkit-bench-grouped", help="folder for generated logs")
     ap.add_argument("--out", default=str(HERE / "results" / "grouped.json"))
@@ -483,7 +516,7 @@ def main(argv=None) -> dict:
               "sizes": {}}
     for label in sizes:
         report["sizes"][label] = measure(label, Path(args.data) / label, SIZES[label], workers, not args.no_phases,
-                                         dask)
+                                         dask, args.repeats, args.only_scaling)
     if "1M" in report["sizes"]:
         big, small = report["sizes"]["1M"]["cases"], report["sizes"]["200k"]["cases"]
         report["peak_rss_1M_over_200k"] = {k: big[k]["peak_rss_mb"] / small[k]["peak_rss_mb"]
