@@ -339,15 +339,17 @@ def machine_cpu_seconds() -> list:
 def run(args_list) -> dict:
     """Run one case in a fresh process; add the load average and the other processes' CPU use.
 
-    ``others_cpu_seconds``: busy CPU seconds of the whole machine during the case minus the
-    case's own CPU seconds (its process tree; a Dask case's cluster start-up is not counted
-    as its own and so shows here); with ``free_cpus`` = CPUs - others / wall, the evidence that
-    the cores were free.
+    ``others_cpu_seconds``: busy CPU seconds of the CPUs the case may run on (all of them, or
+    those of ``--cpus``) while its process ran, minus the case's own CPU seconds (its whole
+    process tree, from its start to its exit); ``others_cpus_busy`` is that per second: the
+    evidence that the cores were the case's (near 0) or shared (near 1: one CPU's worth taken).
     """
     load0, busy0, t0 = os.getloadavg(), machine_cpu_seconds(), time.perf_counter()
     r = _run(args_list)
     wall, busy1, load1 = time.perf_counter() - t0, machine_cpu_seconds(), os.getloadavg()
-    whole = sum(busy1) - sum(busy0)
+    # the CPUs the case could use: all, or the first N of a case restricted with --cpus N
+    n = int(args_list[args_list.index("--cpus") + 1]) if "--cpus" in args_list else len(busy1)
+    whole = sum(busy1[:n]) - sum(busy0[:n])
     own = r.get("process_cpu_seconds", r["cpu_seconds"])
     r.update(load_average_before=load0, load_average_after=load1, case_process_wall_seconds=wall,
              machine_busy_cpu_seconds=whole, others_cpu_seconds=max(0.0, whole - own),

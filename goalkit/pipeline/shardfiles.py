@@ -56,8 +56,8 @@ SHARD_FORMAT_VERSION = 2
 MAGIC = b"GKSHARD2"
 #: Arrays start at multiples of this many bytes from the start of the file.
 ALIGN = 64
-#: Columns a reader may get as deferred gathers (those the in-process build defers too).
-DEFERRABLE = ("observation", "action", "next_observation")
+#: Columns a reader may get as deferred gathers (the wide ones; the summary reads none of them).
+DEFERRABLE = ("observation", "action", "next_observation", "reached_goal")
 _PREFIX = struct.Struct("<8sQ32s")
 
 
