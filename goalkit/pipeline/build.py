@@ -320,10 +320,18 @@ def helped_layout(recipe) -> bool:
 
 
 def _run_build(recipe, producer, source, rows_per_chunk, progress, replace) -> BuildResult:
-    plan, source = make_plan(recipe, source)
-    cut = getattr(producer, "plan_chunks", None)
-    per_chunk = chunk_transitions(plan, rows_per_chunk or producer.rows_per_chunk)
-    chunks = plan_shards(plan, per_chunk) if cut is None else cut(plan, source, per_chunk)
+    launch = getattr(producer, "launch", None)
+    try:
+        if launch is not None:   # worker processes start on the other cores while this one plans
+            launch()
+        plan, source = make_plan(recipe, source)
+        cut = getattr(producer, "plan_chunks", None)
+        per_chunk = chunk_transitions(plan, rows_per_chunk or producer.rows_per_chunk)
+        chunks = plan_shards(plan, per_chunk) if cut is None else cut(plan, source, per_chunk)
+    except BaseException:
+        if launch is not None:
+            producer.abandon()
+        raise
     summary = SummaryBuilder(strategy_names(recipe.mixture), plan.total_rows, recipe.seed,
                              distance_unit=recipe.reward.reach_threshold,
                              rule=recipe.reward)

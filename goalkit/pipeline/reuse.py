@@ -202,6 +202,12 @@ class ReuseProducer:
         self.ready = set()
         self.reused = set()
 
+    def launch(self) -> None:
+        """The inner producer's launch, if it has one (workers start while the build plans)."""
+        launch = getattr(self.inner, "launch", None)
+        if launch is not None:
+            launch()
+
     def plan_chunks(self, plan, source, transitions: int) -> list[ShardSpec]:
         """The build's chunks: units that never span two log files (:func:`plan_units`)."""
         return plan_units(plan, source, transitions)

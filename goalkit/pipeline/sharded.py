@@ -20,6 +20,7 @@ for the next run.
 from __future__ import annotations
 
 import os
+from concurrent.futures import ThreadPoolExecutor
 
 from goalkit.errors import DatasetError, GoalkitError
 from goalkit.pipeline.buildfolder import BuildFolder, build_key
@@ -69,6 +70,13 @@ class ShardProducer:
         self.folder = None
         self.reused = 0
         self.chunks = []
+        self.work = []
+
+    def launch(self) -> None:
+        """Start the runner's workers before the build plans (when the runner can)."""
+        launch = getattr(self.runner, "launch", None)
+        if launch is not None:
+            launch()
 
     def open(self, plan, source, chunks, inputs) -> None:
         """Compute the build key from ``inputs`` (a future of :class:`BuildInputs`), open the folder.
@@ -90,7 +98,9 @@ class ShardProducer:
     def rows(self, count):
         """Yield ``(spec, ChunkRows)`` for each shard, in order (reused ones first as far as they go).
 
-        ``count(rows)`` is called on each shard's rows, in order, before they are yielded.
+        ``count(rows)`` is called on each shard's rows, in order, before they are yielded. While
+        the engine writes one shard's rows, the next shard, when its file is ready, is read and
+        checked on a side thread.
 
         Raises
         ------
@@ -100,26 +110,41 @@ class ShardProducer:
         folder = self.folder.path
         pending = [s for s in self.chunks if s.index not in self.ready]
         self.cursor = 0
-        yield from self._assembled(count)
-        if not pending:
-            return
-        try:
-            self.runner.start(make_payload(self.plan, self.source, folder), folder)
-        except OSError as exc:
-            raise DatasetError(f"cannot write the build folder ({os_reason(exc)})", file=folder) from None
-        by_index = {s.index: s for s in pending}
-        for outcome in self.runner.run(pending, folder, self.key):
-            if not outcome["ok"]:
-                raise shard_error(by_index[outcome["index"]], outcome["error"], folder)
-            self.ready.add(outcome["index"])
-            yield from self._assembled(count)
+        with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-shard-read") as reader:
+            self.reader, self.ahead = reader, {}
+            try:
+                yield from self._assembled(count)
+                if not pending:
+                    return
+                try:
+                    self.runner.start(make_payload(self.plan, self.source, folder), folder)
+                except OSError as exc:
+                    raise DatasetError(f"cannot write the build folder ({os_reason(exc)})", file=folder) from None
+                by_index = {s.index: s for s in pending}
+                for outcome in self.runner.run(pending, folder, self.key):
+                    if not outcome["ok"]:
+                        raise shard_error(by_index[outcome["index"]], outcome["error"], folder)
+                    self.ready.add(outcome["index"])
+                    self.work.append((outcome.get("seconds", 0.0), outcome.get("cpu_seconds", 0.0)))
+                    yield from self._assembled(count)
+            finally:
+                for fut in self.ahead.values():
+                    fut.cancel()
+                self.reader, self.ahead = None, {}
+
+    def _read(self, spec):
+        return read_shard(self.folder.path, spec, self.key, self.columns, defer=True)
 
     def _assembled(self, count):
-        """The next shards in order whose files are ready."""
+        """The next shards in order whose files are ready (the one after, if ready, read meanwhile)."""
         specs = self.chunks
         while self.cursor < len(specs) and specs[self.cursor].index in self.ready:
             spec = specs[self.cursor]
-            rows = read_shard(self.folder.path, spec, self.key, self.columns)
+            ahead = self.ahead.pop(spec.index, None)
+            rows = self._read(spec) if ahead is None else ahead.result()
+            following = specs[self.cursor + 1] if self.cursor + 1 < len(specs) else None
+            if following is not None and following.index in self.ready:
+                self.ahead[following.index] = self.reader.submit(self._read, following)
             count(rows)
             self.cursor += 1
             yield spec, rows
@@ -146,9 +171,14 @@ class ShardProducer:
         self.folder.remove()
 
     def info(self) -> dict:
-        """``{"total", "reused", "computed", "runner"}``."""
+        """``{"total", "reused", "computed", "runner", "task_seconds", "task_cpu_seconds"}``.
+
+        The last two sum the computed shards' tasks: wall seconds, and CPU seconds of the threads
+        that ran them (how busy the workers were; not stored in the set).
+        """
         return {"total": len(self.chunks), "reused": self.reused, "computed": len(self.chunks) - self.reused,
-                "runner": self.runner.description}
+                "runner": self.runner.description, "task_seconds": sum(w for w, _ in self.work),
+                "task_cpu_seconds": sum(c for _, c in self.work)}
 
 
 def _os_error_in(exc: BaseException):

@@ -2,22 +2,31 @@
 
 A shard is a run of consecutive kept episodes (cut by :func:`~goalkit.logs.episodes.chunk_bounds`
 over episode lengths, by output rows). A worker relabels one shard and writes its rows, exactly as
-:func:`~goalkit.pipeline.chunk.relabel_chunk` returned them (no cast), to one uncompressed
-``.npz`` file (a zip of ``.npy`` arrays)::
+:func:`~goalkit.pipeline.chunk.relabel_chunk` returned them (no cast), to one uncompressed file
+of raw arrays::
 
-    train/keys, train/<column> ...        row keys (int64) and columns of the train rows
-    train/<column>@transition             a column stored once per transition (repeated on read
-    train/counts                          by the rows of each transition, ``counts``)
-    validation/...                        the same for the validation rows
-    meta                                  UTF-8 JSON: format, build_key, index, start, stop,
-                                          first_episode, last_episode, transitions, rows, columns,
-                                          per_transition, sha256
+    magic        8 bytes  b"GKSHARD2"
+    length       8 bytes  little-endian length of the header
+    sha256      32 bytes  SHA-256 of the length field, the header and everything after it
+    header               UTF-8 JSON: format, format_version, build_key, index, start, stop,
+                         first_episode, last_episode, transitions, rows, columns, per_transition,
+                         and ``arrays``: [name, dtype, shape, offset, bytes] of each array
+                         (offsets from the end of the header, which is padded with spaces)
+    arrays               C-order bytes of each array, each at a multiple of 64 bytes from the
+                         start of the file (zero bytes between them)
+
+The arrays are, per split (train, validation): ``SPLIT/keys`` (int64 row keys), ``SPLIT/counts``
+(rows per transition) and each column, as ``SPLIT/NAME`` or, when its rows repeat per transition,
+once per transition as ``SPLIT/NAME@transition``.
+
+One SHA-256 covers the whole file but its magic and the digest's own bytes, and is checked before
+anything in the file is believed: a shard read back is exactly what its worker wrote, or it is
+refused. Reading is one read of the file into one buffer; the arrays are views of it (no copy,
+no second checksum), and a column stored once per transition can be handed on as a deferred
+gather (:class:`~goalkit.write.gather.RowGather`) for the writer to copy once.
 
 Plain file writes, so a full disk or a size limit surfaces as one OSError (an HDF5 file with
-many datasets can fail repeatedly while its metadata cache is flushed on close).
-
-``sha256`` covers, split by split (train, validation), the keys and then every column in the
-plan's column order, each as C-order bytes with a short header (name, dtype, shape). A shard is
+many datasets can fail repeatedly while its metadata cache is flushed on close). A shard is
 written under a temporary name in the same folder and renamed, so a shard file that exists is
 complete unless the disk lied; the checksum catches that.
 """
@@ -26,7 +35,8 @@ from __future__ import annotations
 
 import hashlib
 import json
-import zipfile
+import os
+import struct
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -38,9 +48,17 @@ from goalkit.outputs import write_own_file
 from goalkit.pipeline.chunk import ChunkRows
 from goalkit.pipeline.plan import SLOT_SPAN
 from goalkit.write.format import SPLITS
+from goalkit.write.gather import RowGather
 
 SHARD_FORMAT = "goalkit-shard"
-SHARD_FORMAT_VERSION = 1
+SHARD_FORMAT_VERSION = 2
+#: The first bytes of a shard file.
+MAGIC = b"GKSHARD2"
+#: Arrays start at multiples of this many bytes from the start of the file.
+ALIGN = 64
+#: Columns a reader may get as deferred gathers (the wide ones; the summary reads none of them).
+DEFERRABLE = ("observation", "action", "next_observation", "reached_goal")
+_PREFIX = struct.Struct("<8sQ32s")
 
 
 class ShardError(GoalkitError):
@@ -110,22 +128,25 @@ def plan_shards(plan, transitions_per_shard: int) -> list[ShardSpec]:
     return out
 
 
-def rows_digest(rows, column_order) -> str:
-    """SHA-256 of a shard's rows (keys then columns, split by split; see the module notes)."""
-    h = hashlib.sha256()
-    for split in SPLITS:
-        if split not in rows.keys:
-            continue
-        items = [("keys", rows.keys[split])] + [(n, rows.columns[split][n]) for n in column_order]
-        for name, arr in items:
-            arr = np.ascontiguousarray(arr)
-            h.update(f"{split}/{name}:{arr.dtype.str}:{arr.shape}".encode())
-            h.update(arr.tobytes())
-    return h.hexdigest()
-
-
 #: Suffix of a column stored once per transition (with ``SPLIT/counts``: rows per transition).
 PER_TRANSITION = "@transition"
+
+
+def _once(col, starts, counts):
+    """``col``'s rows once per transition when repeating them gives back exactly its rows, else None.
+
+    A deferred gather repeats per transition when its row index does (checked on the index, one
+    integer per row, without gathering the rows); an array when its bytes do.
+    """
+    if isinstance(col, RowGather):
+        first = col.index[starts]
+        if np.array_equal(np.repeat(first, counts), col.index):
+            return np.take(col.source, first, axis=0)
+        return None
+    col = np.ascontiguousarray(col)
+    once = np.ascontiguousarray(col[starts])
+    flat, short = col.reshape(len(col), -1).view(np.uint8), once.reshape(len(once), -1).view(np.uint8)
+    return once if np.array_equal(np.repeat(short, counts, axis=0), flat) else None
 
 
 def _pack_split(split, keys, columns, column_order) -> dict:
@@ -146,24 +167,35 @@ def _pack_split(split, keys, columns, column_order) -> dict:
     if packed:
         out[f"{split}/counts"] = counts
     for name in column_order:
-        col = np.ascontiguousarray(columns[name])
-        if packed:
-            once = np.ascontiguousarray(col[starts])
-            if np.repeat(once, counts, axis=0).tobytes() == col.tobytes():
-                out[f"{split}/{name}{PER_TRANSITION}"] = once
-                continue
-        out[f"{split}/{name}"] = col
+        col = columns[name]
+        once = _once(col, starts, counts) if packed else None
+        if once is not None:
+            out[f"{split}/{name}{PER_TRANSITION}"] = np.ascontiguousarray(once)
+        else:
+            out[f"{split}/{name}"] = np.ascontiguousarray(np.asarray(col))
     return out
 
 
-def _unpack_split(z, split, column_order):
-    keys = z[f"{split}/keys"]
-    counts = z[f"{split}/counts"] if f"{split}/counts" in z.files else None
+def _unpack_split(arrays, split, column_order, defer):
+    keys = arrays[f"{split}/keys"]
+    counts = arrays.get(f"{split}/counts")
+    per_row = None
     cols = {}
     for name in column_order:
-        once = f"{split}/{name}{PER_TRANSITION}"
-        cols[name] = np.repeat(z[once], counts, axis=0) if once in z.files else z[f"{split}/{name}"]
+        once = arrays.get(f"{split}/{name}{PER_TRANSITION}")
+        if once is None:
+            cols[name] = arrays[f"{split}/{name}"]
+        elif defer and name in DEFERRABLE:
+            if per_row is None:
+                per_row = np.repeat(np.arange(len(counts), dtype=np.int64), counts)
+            cols[name] = RowGather(once, per_row)
+        else:
+            cols[name] = np.repeat(once, counts, axis=0)
     return keys, cols
+
+
+def _pad(offset: int) -> int:
+    return -offset % ALIGN
 
 
 def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order, path=None) -> dict:
@@ -177,7 +209,8 @@ def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order, pat
     build_key : str
         Key of the build (see :func:`goalkit.pipeline.buildfolder.build_key`).
     rows : ChunkRows
-        What :func:`~goalkit.pipeline.chunk.relabel_chunk` returned for the shard.
+        What :func:`~goalkit.pipeline.chunk.relabel_chunk` returned for the shard (its columns
+        may be deferred gathers).
     column_order : list of str
         The plan's column names.
     path : Path, optional
@@ -186,7 +219,7 @@ def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order, pat
     Returns
     -------
     dict
-        ``{"index", "rows", "sha256"}``.
+        ``{"index", "rows", "sha256"}`` (the file's SHA-256, see the module notes).
 
     Raises
     ------
@@ -196,32 +229,91 @@ def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order, pat
         When something that is not a file (a link, a folder) is at the shard's name.
     """
     path = Path(folder) / spec.name if path is None else Path(path)
-    digest = rows_digest(rows, column_order)
     counts = {s: int(len(rows.keys[s])) if s in rows.keys else 0 for s in SPLITS}
-    meta = {"format": SHARD_FORMAT, "format_version": SHARD_FORMAT_VERSION, "build_key": build_key,
-            "index": spec.index, "start": spec.start, "stop": spec.stop, "first_episode": spec.first_episode,
-            "last_episode": spec.last_episode, "transitions": spec.transitions, "rows": counts,
-            "columns": list(column_order), "sha256": digest}
     arrays = {}
     for split in SPLITS:
         if split in rows.keys:
             arrays.update(_pack_split(split, rows.keys[split], rows.columns[split], column_order))
-    meta["per_transition"] = sorted(k for k in arrays if k.endswith(PER_TRANSITION))
-    arrays["meta"] = np.frombuffer(json.dumps(meta, sort_keys=True).encode(), dtype=np.uint8)
-    write_own_file(path, lambda f: np.savez(f, **arrays), what="shard file")
-    return {"index": spec.index, "rows": counts, "sha256": digest}
+    table, offset = [], 0
+    for name, arr in arrays.items():
+        offset += _pad(offset)
+        table.append([name, arr.dtype.str, list(arr.shape), offset, int(arr.nbytes)])
+        offset += arr.nbytes
+    meta = {"format": SHARD_FORMAT, "format_version": SHARD_FORMAT_VERSION, "build_key": build_key,
+            "index": spec.index, "start": spec.start, "stop": spec.stop, "first_episode": spec.first_episode,
+            "last_episode": spec.last_episode, "transitions": spec.transitions, "rows": counts,
+            "columns": list(column_order), "arrays": table,
+            "per_transition": sorted(k for k in arrays if k.endswith(PER_TRANSITION))}
+    header = json.dumps(meta, sort_keys=True).encode()
+    header += b" " * _pad(_PREFIX.size + len(header))        # the arrays start aligned
+    length = struct.pack("<Q", len(header))
+    pieces = [header]
+    at = 0
+    for (_, _, _, off, _), arr in zip(table, arrays.values()):
+        if off > at:
+            pieces.append(bytes(off - at))
+        pieces.append(memoryview(arr).cast("B") if arr.nbytes else b"")
+        at = off + arr.nbytes
+    h = hashlib.sha256(length)
+    for piece in pieces:
+        h.update(piece)
+    digest = h.digest()
+
+    def write(f):
+        f.write(MAGIC + length + digest)
+        for piece in pieces:
+            f.write(piece)
+
+    write_own_file(path, write, what="shard file")
+    return {"index": spec.index, "rows": counts, "sha256": digest.hex()}
+
+
+def _load(path):
+    """``(meta, arrays)`` of a shard file whose checksum holds; ShardError-free: raises ValueError."""
+    with open(path, "rb") as f:
+        size = os.fstat(f.fileno()).st_size
+        if size < _PREFIX.size:
+            raise ValueError("shorter than a shard file's first bytes")
+        buf = np.empty(size, np.uint8)
+        if f.readinto(memoryview(buf)) != size:
+            raise ValueError("the file changed while being read")
+    magic, length, digest = _PREFIX.unpack_from(buf)
+    if magic != MAGIC:
+        raise ValueError("not a goalkit shard file (or one of another version)")
+    view = memoryview(buf)
+    h = hashlib.sha256(view[8:16])
+    h.update(view[_PREFIX.size:])
+    if h.digest() != digest:
+        raise ShardChecksumError("its bytes do not match the shard's SHA-256")
+    if length > size - _PREFIX.size:
+        raise ValueError("header longer than the file")
+    meta = json.loads(bytes(view[_PREFIX.size:_PREFIX.size + length]).decode())
+    data = _PREFIX.size + length
+    arrays = {}
+    for name, dtype, shape, offset, nbytes in meta["arrays"]:
+        dt = np.dtype(dtype)
+        count = int(np.prod(shape, dtype=np.int64))
+        if dt.hasobject or count * dt.itemsize != nbytes or offset < 0 or data + offset + nbytes > size:
+            raise ValueError(f"array {name} does not fit the file")
+        arrays[name] = np.frombuffer(buf, dt, count, data + offset).reshape(shape)
+    return meta, arrays
+
+
+class ShardChecksumError(ValueError):
+    """A shard file's bytes do not match its SHA-256."""
 
 
 def shard_meta(path) -> dict:
-    """The ``meta`` record of a shard file."""
-    with np.load(path, allow_pickle=False) as z:
-        return json.loads(z["meta"].tobytes().decode())
+    """The header record of a shard file (its checksum checked)."""
+    return _load(path)[0]
 
 
-def read_shard(folder, spec: ShardSpec, build_key: str, column_order, path=None):
+def read_shard(folder, spec: ShardSpec, build_key: str, column_order, path=None, defer: bool = False):
     """Read one shard back and check it belongs to this build and matches its checksum.
 
-    ``path`` reads that file instead of ``folder / spec.name`` (a work folder's unit file).
+    ``path`` reads that file instead of ``folder / spec.name`` (a work folder's unit file). With
+    ``defer``, the columns of :data:`DEFERRABLE` stored once per transition come back as
+    :class:`~goalkit.write.gather.RowGather` (for a writer that gathers them into its blocks).
 
     Returns
     -------
@@ -231,29 +323,30 @@ def read_shard(folder, spec: ShardSpec, build_key: str, column_order, path=None)
     ------
     ShardError
         When the file is missing, unreadable, from another build or another partition, or its
-        rows do not match its checksum.
+        bytes do not match its checksum.
     """
     path = Path(folder) / spec.name if path is None else Path(path)
     try:
-        with np.load(path, allow_pickle=False) as z:
-            meta = json.loads(z["meta"].tobytes().decode())
-            expect = {"format": SHARD_FORMAT, "build_key": build_key, "index": spec.index, "start": spec.start,
-                      "stop": spec.stop, "transitions": spec.transitions, "columns": list(column_order)}
-            for k, v in expect.items():
-                if meta.get(k) != v:
-                    raise ShardError(f"{spec.describe()}: {k} is {meta.get(k)!r}, expected {v!r}", file=path)
-            cols, keys = {}, {}
-            for split in SPLITS:
-                if meta["rows"].get(split):
-                    keys[split], cols[split] = _unpack_split(z, split, column_order)
+        meta, arrays = _load(path)
+        expect = {"format": SHARD_FORMAT, "format_version": SHARD_FORMAT_VERSION, "build_key": build_key,
+                  "index": spec.index, "start": spec.start, "stop": spec.stop, "transitions": spec.transitions,
+                  "columns": list(column_order)}
+        for k, v in expect.items():
+            if meta.get(k) != v:
+                raise ShardError(f"{spec.describe()}: {k} is {meta.get(k)!r}, expected {v!r}", file=path)
+        cols, keys = {}, {}
+        for split in SPLITS:
+            if meta["rows"].get(split):
+                keys[split], cols[split] = _unpack_split(arrays, split, column_order, defer)
+                if len(keys[split]) != meta["rows"][split]:
+                    raise ValueError(f"{split} holds {len(keys[split])} rows, its header says {meta['rows'][split]}")
     except ShardError:
         raise
-    except (OSError, KeyError, ValueError, EOFError, zipfile.BadZipFile) as exc:
+    except ShardChecksumError:
+        raise ShardError(f"{spec.describe()}: rows do not match the shard's SHA-256", file=path) from None
+    except (OSError, KeyError, TypeError, ValueError, EOFError) as exc:
         raise ShardError(f"{spec.describe()}: unreadable shard file ({exc})", file=path) from None
-    rows = ChunkRows(cols, keys)
-    if rows_digest(rows, column_order) != meta.get("sha256"):
-        raise ShardError(f"{spec.describe()}: rows do not match the shard's SHA-256", file=path)
-    return rows
+    return ChunkRows(cols, keys)
 
 
 def check_shard(folder, spec: ShardSpec, build_key: str, column_order) -> bool:

@@ -24,6 +24,7 @@ after writing) is seen by the pool as a broken pool and the build stops in one l
 from __future__ import annotations
 
 import hashlib
+import importlib
 import os
 import pickle
 import threading
@@ -44,6 +45,9 @@ from goalkit.pipeline.shardfiles import write_shard
 LIVENESS_SECONDS = 0.2
 #: Arrays larger than this are spilled to a memory-mapped file instead of pickled.
 SPILL_BYTES = 1 << 20
+#: Modules a worker imports while the coordinator plans (what unpickling a payload and reading
+#: and relabelling a shard would import on the first task).
+WARM_MODULES = ("numpy", "h5py", "goalkit.pipeline.plan", "goalkit.logs.grouped", "goalkit.logs.perfile")
 
 
 def _save_npy(value, path) -> None:
@@ -128,17 +132,23 @@ def run_shard(payload: Payload, spec, folder, build_key: str) -> dict:
     Returns
     -------
     dict
-        ``{"ok": True, "index", "rows", "sha256", "seconds"}`` or ``{"ok": False, "index", "error"}``.
+        ``{"ok": True, "index", "rows", "sha256", "seconds", "cpu_seconds", "phases"}`` (wall seconds
+        of the task and of its read, relabel and write; CPU seconds of the task's thread) or
+        ``{"ok": False, "index", "error"}``.
     """
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.thread_time()
     try:
         plan = _resolved(payload)
         chunk = payload.source.read(spec.start, spec.stop)
-        rows = relabel_chunk(plan, chunk)
+        t1 = time.perf_counter()
+        rows = relabel_chunk(plan, chunk, defer_gathers=True)   # gathered once, when written
+        t2 = time.perf_counter()
         info = write_shard(folder, spec, build_key, rows, list(plan.columns))
     except Exception as exc:  # reported to the coordinator as data, never lost in transport
         return failure(spec, exc)
-    return {"ok": True, **info, "seconds": time.perf_counter() - t0}
+    t3 = time.perf_counter()
+    return {"ok": True, **info, "seconds": t3 - t0, "cpu_seconds": time.thread_time() - c0,
+            "phases": {"read": t1 - t0, "relabel": t2 - t1, "write": t3 - t2}}
 
 
 _RESOLVED: dict = {}
@@ -180,23 +190,47 @@ def save_payload(payload: Payload, folder) -> tuple[str, str]:
     return str(path), hashlib.sha256(data).hexdigest()
 
 
-def _init_worker(payload_path: str, digest: str, parent: int) -> None:
+def _init_worker(parent: int) -> None:
     import signal
 
     # Ctrl-C reaches the whole process group: the coordinator stops the build and reports what
     # was kept; a worker finishes its shard file and is stopped by the coordinator. It was
-    # started with SIGINT blocked (see LocalRunner.run); one pending since then is discarded.
+    # started with SIGINT blocked (see LocalRunner.launch); one pending since then is discarded.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
     threading.Thread(target=_watch_parent, args=(parent,), daemon=True).start()
-    data = Path(payload_path).read_bytes()
-    if hashlib.sha256(data).hexdigest() != digest:  # not the file this build wrote: refuse it
-        raise RuntimeError(f"{payload_path}: the payload file changed after the coordinator wrote it")
-    _WORKER["payload"] = pickle.loads(data)
 
 
-def _pool_task(spec, folder, build_key):
-    return run_shard(_WORKER["payload"], spec, folder, build_key)
+def load_payload(payload_path: str, digest: str) -> Payload:
+    """The payload of ``payload_path``, loaded once per worker process and kept by its digest.
+
+    Raises
+    ------
+    RuntimeError
+        When the file's bytes are not those the coordinator wrote (their SHA-256 differs).
+    """
+    if _WORKER.get("digest") != digest:
+        data = Path(payload_path).read_bytes()
+        if hashlib.sha256(data).hexdigest() != digest:  # not the file this build wrote: refuse it
+            raise RuntimeError(f"{payload_path}: the payload file changed after the coordinator wrote it")
+        _WORKER.clear()
+        _WORKER.update(payload=pickle.loads(data), digest=digest)
+    return _WORKER["payload"]
+
+
+def warm_up() -> int:
+    """Import what a shard task needs (run on each worker while the coordinator plans); its pid."""
+    for name in WARM_MODULES:
+        importlib.import_module(name)
+    return os.getpid()
+
+
+def _pool_task(payload_ref, spec, folder, build_key):
+    try:
+        payload = load_payload(*payload_ref)
+    except Exception as exc:  # reported as data, like any failure of the task
+        return failure(spec, exc)
+    return run_shard(payload, spec, folder, build_key)
 
 
 class LocalRunner:
@@ -222,22 +256,66 @@ class LocalRunner:
         self.workers = int(workers)
         self.pool = None
         self.futures = []
+        self.warm = []
+        self.payload_ref = None
         self.broken = False
 
+    def launch(self) -> None:
+        """Start the worker processes now, without a payload (they import what a task needs).
+
+        Called by the build before it plans, so that the processes start on the other cores
+        while the coordinator plans (their start-up, about half a second each, is then off the
+        build's path). Idempotent; :meth:`start` calls it when the build did not.
+        """
+        import multiprocessing
+        import signal
+        from concurrent.futures import ProcessPoolExecutor
+        from concurrent.futures.process import BrokenProcessPool
+
+        if self.pool is not None:
+            return
+        # the processes inherit a blocked SIGINT until _init_worker ignores it, so a Ctrl-C
+        # while they start prints no traceback from a half-started worker
+        blocked = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+        try:
+            self.pool = ProcessPoolExecutor(self.workers, mp_context=multiprocessing.get_context("spawn"),
+                                            initializer=_init_worker, initargs=(os.getpid(),))
+        except BaseException:
+            signal.pthread_sigmask(signal.SIG_SETMASK, blocked)
+            raise
+        try:
+            # a spawn pool starts a process per submitted task while none is idle: one warm-up
+            # task per worker starts them all
+            for _ in range(self.workers):
+                self.warm.append(self.pool.submit(warm_up))
+        except (BrokenProcessPool, OSError, RuntimeError):
+            # a worker died while the next was being started; run() reports it as a lost worker
+            # (it cannot submit to the broken pool) and close() stops the rest
+            self.broken = True
+        finally:
+            signal.pthread_sigmask(signal.SIG_SETMASK, blocked)
+
+    def submit(self, fn, *args):
+        """Run ``fn(*args)`` on one of the workers; a :class:`concurrent.futures.Future`.
+
+        ``fn`` must be importable by name (a module-level function). The hook by which work
+        other than shards (planning a range of episodes, say) can run on the pool.
+        """
+        self.launch()
+        fut = self.pool.submit(fn, *args)
+        self.futures.append(fut)
+        return fut
+
     def start(self, payload: Payload, folder) -> None:
-        """Start the processes; each loads ``payload`` once, from a file written to ``folder``.
+        """Hand ``payload`` to the workers: written once to ``folder``, loaded by each on its first shard.
 
         Raises
         ------
         OSError
             When the payload file cannot be written.
         """
-        import multiprocessing
-        from concurrent.futures import ProcessPoolExecutor
-
-        path, digest = save_payload(payload, folder)
-        self.pool = ProcessPoolExecutor(self.workers, mp_context=multiprocessing.get_context("spawn"),
-                                        initializer=_init_worker, initargs=(path, digest, os.getpid()))
+        self.payload_ref = save_payload(payload, folder)
+        self.launch()
 
     def run(self, specs, folder, build_key: str):
         """Submit every shard; yield task outcomes in completion order.
@@ -254,14 +332,14 @@ class LocalRunner:
         import signal
 
         by_future = {}
-        # submitting starts the processes: they inherit a blocked SIGINT until _init_worker
-        # ignores it, so a Ctrl-C while they start prints no traceback from a half-started worker
+        # submitting may start a process (one that died is not replaced, but a pool that was
+        # never launched is): block SIGINT as launch() does
         blocked = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
         broken_at = None
         try:
             for s in specs:
                 try:
-                    by_future[self.pool.submit(_pool_task, s, str(folder), build_key)] = s
+                    by_future[self.pool.submit(_pool_task, self.payload_ref, s, str(folder), build_key)] = s
                 except (BrokenProcessPool, OSError, RuntimeError):
                     # a worker died while the shards were being handed out: the pool is broken,
                     # or (Python 3.11) its wake-up pipe was closed under submit ("handle is
@@ -271,11 +349,11 @@ class LocalRunner:
         finally:
             signal.pthread_sigmask(signal.SIG_SETMASK, blocked)
         if broken_at is not None:
-            self.futures = list(by_future)
+            self.futures += list(by_future)
             self.broken = True
             yield lost_worker(broken_at)
             return
-        self.futures = list(by_future)
+        self.futures += list(by_future)
         pending = set(by_future)
         while pending:
             done, pending = wait(pending, timeout=LIVENESS_SECONDS, return_when=FIRST_COMPLETED)
@@ -308,12 +386,15 @@ class LocalRunner:
         """Cancel queued shards, wait for running ones (they finish their shard files), stop.
 
         When a worker has died, the others are terminated first: the pool's queues may be left
-        locked by the dead process, and waiting on them could take for ever.
+        locked by the dead process, and waiting on them could take for ever. A pool that was
+        given no shard (the build stopped while planning) is terminated too: its workers have
+        nothing to finish.
         """
         if self.pool is not None:
             for f in self.futures:
                 f.cancel()
-            if self.broken or self.dead_workers():
+            idle = self.payload_ref is None
+            if self.broken or idle or self.dead_workers():
                 for proc in list((getattr(self.pool, "_processes", None) or {}).values()):
                     if proc.exitcode is None:
                         proc.terminate()

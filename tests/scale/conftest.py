@@ -4,9 +4,11 @@ import hashlib
 import sys
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from goalkit.demo import make_demo
+from goalkit.pipeline.shardfiles import shard_meta
 
 GOALKIT = str(Path(sys.executable).with_name("goalkit"))
 
@@ -59,3 +61,15 @@ def reference(gantry, tmp_path_factory):
     out = tmp_path_factory.mktemp("ref") / "scale-goals.h5"
     build(load_recipe(gantry / "scale-recipe.toml").with_overrides(out=out))
     return out, sha256(out)
+
+
+def change_value(path, array, flat_index):
+    """Move one float value of ``array`` in a shard file by one ulp, leaving its checksum as it was."""
+    meta = shard_meta(path)
+    data = bytearray(Path(path).read_bytes())
+    _, dtype, _, offset, _ = next(a for a in meta["arrays"] if a[0] == array)
+    size = np.dtype(dtype).itemsize
+    start = 48 + int.from_bytes(data[8:16], "little") + offset + size * flat_index   # after prefix and header
+    value = np.frombuffer(bytes(data[start:start + size]), dtype)
+    data[start:start + size] = np.nextafter(value, np.inf).astype(dtype).tobytes()
+    Path(path).write_bytes(bytes(data))

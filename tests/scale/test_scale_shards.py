@@ -14,6 +14,8 @@ from goalkit.pipeline.chunk import ChunkRows
 from goalkit.pipeline.shardfiles import ShardError, check_shard, plan_shards, read_shard, shard_meta, write_shard
 from goalkit.pipeline.workers import GOAL_TABLE_FILE, make_payload
 
+from conftest import change_value
+
 
 @settings(max_examples=200, deadline=None)
 @given(st.lists(st.integers(1, 50), min_size=1, max_size=60), st.integers(1, 120), st.integers(0, 5))
@@ -62,15 +64,23 @@ def test_shard_file_round_trip_and_checks(tmp_path):
         read_shard(tmp_path, spec, "k2", order)
     with pytest.raises(ShardError, match="stop"):
         read_shard(tmp_path, replace(spec, stop=1), "k1", order)
-    with np.load(tmp_path / spec.name) as z:
-        arrays = {k: z[k] for k in z.files}
-    arrays["train/goal"][2, 1] += 1e-12
-    np.savez(tmp_path / spec.name, **arrays)
+    clean = (tmp_path / spec.name).read_bytes()
+    change_value(tmp_path / spec.name, "train/goal", 2 * 3 + 1)   # one ulp of one value
     assert not check_shard(tmp_path, spec, "k1", order)
     with pytest.raises(ShardError, match=r"shard 0 \(episodes 4\.\.9\): rows do not match"):
         read_shard(tmp_path, spec, "k1", order)
-    (tmp_path / spec.name).write_bytes(b"not a zip")
+    # any single flipped bit, header or arrays, is caught (one SHA-256 over all but the magic)
+    for at in range(8, len(clean), max(1, len(clean) // 97)):
+        damaged = bytearray(clean)
+        damaged[at] ^= 1 << (at % 8)
+        (tmp_path / spec.name).write_bytes(bytes(damaged))
+        assert not check_shard(tmp_path, spec, "k1", order), at
+    (tmp_path / spec.name).write_bytes(clean[:len(clean) // 2])   # a truncated file
     assert not check_shard(tmp_path, spec, "k1", order)
+    (tmp_path / spec.name).write_bytes(b"not a shard")
+    assert not check_shard(tmp_path, spec, "k1", order)
+    (tmp_path / spec.name).write_bytes(clean)
+    assert check_shard(tmp_path, spec, "k1", order)
 
 
 def _inputs(text="seed = 0", seed=0, layout="layout", logs=None, embeddings=(), library=()):
@@ -177,6 +187,36 @@ def test_per_transition_columns_are_stored_once_and_read_back_exactly(tmp_path):
     back = read_shard(tmp_path, spec, "k", order)
     for name in order:
         assert back.columns["train"][name].tobytes() == cols[name].tobytes(), name
-    with np.load(tmp_path / spec.name) as z:
-        assert z["train/observation@transition"].shape == (n_t, 5)
-        assert z["train/signed"].shape == (n_t * slots,)
+    shapes = {name: tuple(shape) for name, _, shape, _, _ in meta["arrays"]}
+    assert shapes["train/observation@transition"] == (n_t, 5)
+    assert shapes["train/signed"] == (n_t * slots,)
+
+
+def test_deferred_gathers_are_packed_by_their_index_and_handed_back_deferred(tmp_path):
+    # What a worker writes (relabel_chunk with deferred gathers) and what the coordinator reads
+    # back for its writer: the same bytes as the materialised columns, gathered once.
+    from goalkit.pipeline.plan import SLOT_SPAN
+    from goalkit.write.gather import RowGather, materialise
+
+    g = np.random.default_rng(5)
+    n_t, slots = 30, 3
+    states = g.normal(size=(n_t + 1, 4))
+    t = np.repeat(np.arange(n_t, dtype=np.int64), slots)
+    shuffled = g.permutation(len(t))                           # an index that does not repeat
+    cols = {"observation": RowGather(states, t), "next_observation": RowGather(states, t + 1),
+            "action": RowGather(states, shuffled % n_t), "goal": g.normal(size=(len(t), 2))}
+    rows = ChunkRows({"train": cols}, {"train": t * SLOT_SPAN + np.tile(np.arange(slots), n_t)})
+    order = list(cols)
+    spec = plan_shards(SimpleNamespace(lengths=np.array([n_t]), episode_ids=np.array([0])), 10_000)[0]
+    write_shard(tmp_path, spec, "k", rows, order)
+    assert shard_meta(tmp_path / spec.name)["per_transition"] == ["train/next_observation@transition",
+                                                                  "train/observation@transition"]
+    plain = read_shard(tmp_path, spec, "k", order)
+    deferred = read_shard(tmp_path, spec, "k", order, defer=True)
+    expected = materialise(cols)
+    for name in order:
+        assert not isinstance(plain.columns["train"][name], RowGather)
+        assert np.asarray(plain.columns["train"][name]).tobytes() == expected[name].tobytes(), name
+        assert np.asarray(deferred.columns["train"][name]).tobytes() == expected[name].tobytes(), name
+    assert isinstance(deferred.columns["train"]["observation"], RowGather)
+    assert not isinstance(deferred.columns["train"]["action"], RowGather)     # stored per row

@@ -1,0 +1,111 @@
+"""Worker start-up while the coordinator plans, the runners' submit hook, the payload by digest.
+
+Real worker processes (the local spawn pool) and a real Dask LocalCluster of worker processes;
+the built files are compared with the single-process build by SHA-256 (FIPS 180-4) of their
+whole bytes, as in test_scale_identity.py.
+"""
+
+import os
+import shutil
+import time
+
+import h5py
+import numpy as np
+import psutil
+import pytest
+
+from goalkit.errors import GoalkitError
+from goalkit.pipeline.build import build
+from goalkit.pipeline.buildfolder import PAYLOAD_FILE, folder_of
+from goalkit.pipeline.dask_build import DaskRunner
+from goalkit.pipeline.recipe import load_recipe
+from goalkit.pipeline.shardfiles import ShardSpec
+from goalkit.pipeline.workers import LocalRunner, Payload, warm_up
+
+from conftest import sha256
+
+
+def _pool_pids(runner):
+    return {pid for pid, proc in runner.pool._processes.items() if proc.exitcode is None}
+
+
+def test_launched_workers_run_before_any_payload_and_load_it_once_by_digest(tmp_path):
+    runner = LocalRunner(2)
+    try:
+        runner.launch()
+        assert runner.payload_ref is None
+        assert len(_pool_pids(runner)) == 2                     # both started, before a payload exists
+        assert {f.result(timeout=60) for f in runner.warm} <= _pool_pids(runner)
+        # the submit hook runs a module-level function in a worker process, not here
+        pid = runner.submit(warm_up).result(timeout=60)
+        assert pid in _pool_pids(runner) and pid != os.getpid()
+        runner.start(Payload(plan=None, source=None), tmp_path)
+        path, digest = runner.payload_ref
+        assert path == str(tmp_path / PAYLOAD_FILE) and len(digest) == 64
+        # a payload file changed after it was written is refused by the task, as data, in one line
+        (tmp_path / PAYLOAD_FILE).write_bytes(b"not the coordinator's payload")
+        spec = ShardSpec(index=0, start=0, stop=1, first_episode=0, last_episode=0, transitions=3)
+        (outcome,) = list(runner.run([spec], tmp_path, "key"))
+        assert outcome["ok"] is False and outcome["index"] == 0
+        assert "the payload file changed after the coordinator wrote it" in outcome["error"]["message"]
+    finally:
+        runner.close()
+    assert runner.pool is None
+
+
+def test_a_pool_launched_for_a_build_that_fails_while_planning_is_stopped_at_once(gantry, tmp_path):
+    # The build starts its workers before it plans; a log that fails planning must stop them,
+    # quickly and without leaving a process or a build folder behind.
+    for name in ("gantry-logs.h5", "gantry-layout.toml", "scale-recipe.toml"):
+        shutil.copy(gantry / name, tmp_path / name)
+    with h5py.File(tmp_path / "gantry-logs.h5", "r+") as f:
+        del f["bench/ep_00007/action"]                          # an episode group without its actions
+    recipe = load_recipe(tmp_path / "scale-recipe.toml")
+    me = psutil.Process()
+    before = {p.pid for p in me.children(recursive=True)}
+    started = time.monotonic()
+    with pytest.raises(GoalkitError) as err:
+        build(recipe, workers=2, card=False)
+    took = time.monotonic() - started
+    assert "ep_00007" in str(err.value) and "\n" not in str(err.value)
+    left = [p for p in me.children(recursive=True) if p.pid not in before and p.is_running()
+            and p.status() != psutil.STATUS_ZOMBIE]
+    assert left == []
+    assert not folder_of(recipe.output.path).exists() and not recipe.output.path.exists()
+    assert took < 15
+
+
+def test_dask_worker_processes_warm_up_while_planning_and_give_the_same_bytes(gantry, reference, tmp_path):
+    distributed = pytest.importorskip("distributed")
+    _, ref_digest = reference
+    out = tmp_path / "scale-goals.h5"
+    recipe = load_recipe(gantry / "scale-recipe.toml").with_overrides(out=out)
+    with distributed.LocalCluster(processes=True, n_workers=2, threads_per_worker=1,
+                                  dashboard_address=None) as cluster, distributed.Client(cluster) as client:
+        client.wait_for_workers(2)
+        workers = set(client.run(os.getpid).values())           # the worker processes' ids
+        assert len(workers) == 2 and os.getpid() not in workers
+        runner = DaskRunner(client=client)
+        try:
+            runner.launch()
+            assert {f.result(timeout=60) for f in runner.warm} == workers      # each worker warmed once
+            assert runner.submit(warm_up).result(timeout=60) in workers        # the submit hook
+        finally:
+            runner.close()
+        result = build(recipe, client=client, max_rows_per_chunk=3000, card=False)
+    assert sha256(out) == ref_digest
+    assert result.shards["computed"] == result.shards["total"] > 3
+    assert result.shards["task_seconds"] >= result.shards["task_cpu_seconds"] > 0
+
+
+def test_workers_report_how_busy_they_were(gantry, reference, tmp_path):
+    _, ref_digest = reference
+    out = tmp_path / "scale-goals.h5"
+    recipe = load_recipe(gantry / "scale-recipe.toml").with_overrides(out=out)
+    result = build(recipe, workers=2, max_rows_per_chunk=4000, card=False)
+    assert sha256(out) == ref_digest
+    info = result.shards
+    assert info["computed"] > 2
+    # wall seconds of the tasks bound their threads' CPU seconds; both are positive
+    assert info["task_seconds"] + 1e-3 >= info["task_cpu_seconds"] > 0
+    assert np.isfinite(info["task_seconds"])
