@@ -18,7 +18,7 @@ from goalkit.audit.recipe_text import CODE_NAMES, parse_audit_recipe
 from goalkit.audit.rowrules import (EPISODE, FUTURE, GEOMETRIC, NEAR_MISS, NEIGHBOUR, ORIGINAL, OTHER,
                                     address_rules, label_rules, reward_rules)
 from goalkit.audit.stattests import (FINE_BINS, binom_check, count_bound_check, grid_chi2_check, holm,
-                                     share_power, uniform_chi2_check)
+                                     preload_scipy, share_power, uniform_chi2_check)
 from goalkit.config import parse_toml
 from goalkit.errors import DatasetError, GoalkitError
 from goalkit.logs import open_logs
@@ -336,6 +336,8 @@ class AuditFeed:
             self._file.close()
             raise
         a = self._auditor
+        if a is not None:   # scipy, for the tests at the end, loads while the replay starts
+            preload_scipy()
         self.fed = a is not None and a.heads is None and a.graph is None
         if self.fed:
             a.start()
