@@ -584,7 +584,7 @@ class _Auditor:
             achieved, task, logged, task_ids = logs.achieved_and_task_goal(ep[idx], t[idx], flags=tuple(flags),
                                                                            materials="observation" in grp,
                                                                            chunk=chunk)
-            sub = {k: val[idx] for k, val in c.items()}
+            sub = c if idx.size == len(ep) else {k: val[idx] for k, val in c.items()}   # read only
             if "observation" in grp:
                 self.stored_values(column, known, idx, logged, split, a, c)
             for col in flags:
@@ -621,11 +621,17 @@ class _Auditor:
         """
         n = len(c["source_episode"])
         for col in ("observation", "action", "next_observation"):
-            stored = np.asarray(column(col))[known][idx]
+            stored = np.asarray(column(col))
+            if not known.all():
+                stored = stored[known]
+            if idx.size != len(stored):
+                stored = stored[idx]
             want = self.logs.stored_dtypes[col]
             with np.errstate(over="ignore", invalid="ignore"):
-                expect = np.asarray(logged[col]).astype(want)
-            same = (stored == expect) | (np.isnan(stored.astype(np.float64)) & np.isnan(expect.astype(np.float64)))
+                expect = np.asarray(logged[col]).astype(want, copy=False)
+            same = stored == expect
+            if not np.all(same):   # NaN where both are NaN counts as the same value
+                same = same | (np.isnan(stored.astype(np.float64)) & np.isnan(expect.astype(np.float64)))
             full = np.zeros(n, bool)
             full[idx] = ~same.reshape(len(idx), -1).all(axis=1)
             self.violated(f"{col} value", f"{col} is not the logged value cast to {want}", full, split, a, c)
