@@ -517,7 +517,7 @@ def _replay_chunks(plan, source, report, progress, feed, manifest, summary, tota
 def _compare(fresh: dict, stored: dict, split: str, row0: int, report: VerifyReport) -> None:
     """Re-derived rows against stored rows, column by column."""
     for name, value in stored.items():
-        ref = np.asarray(fresh[name]).astype(value.dtype)
+        ref = np.asarray(fresh[name]).astype(value.dtype, copy=False)
         diff = value.reshape(len(value), -1) != ref.reshape(len(ref), -1)
         bad = np.any(diff, axis=1)
         if bad.any():
