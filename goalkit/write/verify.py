@@ -342,13 +342,15 @@ def _chunks_ahead(plan, source, bounds):
     """Yield ``(first, stop, EpisodeSet)`` of every chunk of ``bounds`` in order, read up to two
     chunks ahead on a thread (by a reader process for grouped and per-file logs, as the build
     reads them); a chunk the reader cannot give is read with ``source.read``, which raises any
-    problem as before."""
+    problem as before. The first item is None, yielded once the reads have begun (the reader
+    process starts meanwhile)."""
     specs = [SimpleNamespace(start=a, stop=b, transitions=int(plan.lengths[a:b].sum())) for a, b in bounds]
     chunk_reader = ChunkReader(source, bounds) if readproc_wanted(source, specs) else None
     read = source.read if chunk_reader is None else chunk_reader.read
     try:
         with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-verify-read") as pool:
             pending = deque(pool.submit(read, a, b) for a, b in bounds[:READ_AHEAD])
+            yield None
             for i, (a, b) in enumerate(bounds):
                 chunk = pending.popleft().result()
                 if i + READ_AHEAD < len(bounds):
@@ -492,25 +494,30 @@ def _replay_rows(goal_set, plan, source, report, relocation, digests, progress, 
 def _replay_chunks(plan, source, report, progress, feed, manifest, summary, total, bounds, ahead, lane):
     """Check and re-derive every chunk's rows; the rows each split reached (None: rows missing)."""
     cursor = {split: 0 for split in SPLITS}
-    ahead.start(0)
-    for i, (first_ep, stop_ep, chunk) in enumerate(_chunks_ahead(plan, source, bounds)):
-        ahead.start(i + 1)
-        fresh = relabel_chunk(plan, chunk)
-        for split in SPLITS:
-            n_rows = len(fresh.keys.get(split, ()))
-            row0, row_stop = cursor[split], cursor[split] + n_rows
-            if row_stop > total[split]:
-                report.fail(f"{split}: fewer rows stored ({total[split]}) than the recipe produces")
-                return None
-            stored = ahead.take(i, split, row0, row_stop)
-            check_rows(plan, chunk, stored, split, report, row0)
-            lane.submit(_side_checks, manifest, feed, split, row0, row_stop, stored, chunk)
-            if n_rows:
-                _compare(fresh.columns[split], stored, split, row0, report)
-                summary.add(split, fresh.columns[split], fresh.keys[split])
-            cursor[split] = row_stop
-        if progress is not None:
-            progress(int(plan.lengths[first_ep:stop_ep].sum()), plan.total_transitions)
+    chunks = _chunks_ahead(plan, source, bounds)
+    try:
+        next(chunks)   # the logs' reads begin (and the reader process starts) first
+        ahead.start(0)
+        for i, (first_ep, stop_ep, chunk) in enumerate(chunks):
+            ahead.start(i + 1)
+            fresh = relabel_chunk(plan, chunk)
+            for split in SPLITS:
+                n_rows = len(fresh.keys.get(split, ()))
+                row0, row_stop = cursor[split], cursor[split] + n_rows
+                if row_stop > total[split]:
+                    report.fail(f"{split}: fewer rows stored ({total[split]}) than the recipe produces")
+                    return None
+                stored = ahead.take(i, split, row0, row_stop)
+                check_rows(plan, chunk, stored, split, report, row0)
+                lane.submit(_side_checks, manifest, feed, split, row0, row_stop, stored, chunk)
+                if n_rows:
+                    _compare(fresh.columns[split], stored, split, row0, report)
+                    summary.add(split, fresh.columns[split], fresh.keys[split])
+                cursor[split] = row_stop
+            if progress is not None:
+                progress(int(plan.lengths[first_ep:stop_ep].sum()), plan.total_transitions)
+    finally:
+        chunks.close()
     return cursor
 
 
