@@ -19,7 +19,7 @@ import queue
 import threading
 
 #: Tasks waiting at most (each holds the stored rows of one split of one chunk).
-DEPTH = 2
+DEPTH = 1
 
 
 class CheckLane:
