@@ -72,6 +72,12 @@ class GraphAudit:
             return ["the recipe has a [graph] table but the set has no graph_steps column"]
         if not self.rows:
             return []
+        # scipy's graph and tree modules, imported here: only a set with a [graph] table needs
+        # them, and importing them takes a fifth of a second that every verify would pay
+        import scipy.sparse as sp
+        from scipy.sparse.csgraph import dijkstra
+        from scipy.spatial import cKDTree
+
         logs = self.logs
         x = self._states()
         lengths = logs.lengths

@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from goalkit.audit.stattests import MIN_EXPECTED, Check
+from goalkit.audit.stattests import MIN_EXPECTED, Check, wait_for_scipy
 
 
 class MaskAudit:
@@ -95,6 +95,7 @@ class MaskAudit:
 
     def check(self) -> Check | None:
         """Chi-square test of the random-mask law on the relabelled rows (None when nothing to test)."""
+        wait_for_scipy()
         from scipy import stats
 
         if self.share == 0 or self.observed.sum() == 0:

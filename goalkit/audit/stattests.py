@@ -7,7 +7,10 @@ each check its threshold so that a correct set fails any of them with probabilit
 
 from __future__ import annotations
 
+import importlib
 import math
+import sys
+import threading
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -20,6 +23,39 @@ MIN_EXPECTED = 20
 #: Fine histogram of PIT values; chi-square bins are merged from it (a divisor of it).
 FINE_BINS = 1000
 _BIN_CHOICES = (50, 40, 25, 20, 10, 8, 5, 4, 2)
+
+#: The scipy modules the tests below use; importing them takes about half a second of CPU.
+SCIPY_MODULES = ("scipy.stats", "scipy.optimize")
+_preloading: list = []
+
+
+def preload_scipy() -> None:
+    """Import :data:`SCIPY_MODULES` on a background thread, once, if not imported yet.
+
+    An audit fed by verify's replay calls this when the replay starts: the import then runs
+    while the replay waits for its first chunk of logs, and the tests at the end find scipy
+    loaded. Each test waits for this thread before it imports scipy itself (so the import is
+    never run twice at once); a failed import is left for that import to raise.
+    """
+    if _preloading or all(name in sys.modules for name in SCIPY_MODULES):
+        return
+    thread = threading.Thread(target=_import_scipy, name="goalkit-audit-scipy", daemon=True)
+    _preloading.append(thread)
+    thread.start()
+
+
+def _import_scipy() -> None:
+    for name in SCIPY_MODULES:
+        try:
+            importlib.import_module(name)
+        except Exception:   # noqa: BLE001  the test that needs it imports it again and raises
+            return
+
+
+def wait_for_scipy() -> None:
+    """Wait for :func:`preload_scipy`'s thread, if one runs."""
+    for thread in _preloading:
+        thread.join()
 
 
 @dataclass(frozen=True)
@@ -63,6 +99,7 @@ def count_bound_check(name: str, observed: int, probs, counts, what: str) -> Che
     for any such sum; twice the bound on the observed side is a valid (conservative) two-sided
     p-value however small the counts. Returns None when no event can happen and none did.
     """
+    wait_for_scipy()
     from scipy.optimize import minimize_scalar
 
     p = np.asarray(probs, dtype=np.float64)
@@ -99,6 +136,7 @@ def count_bound_check(name: str, observed: int, probs, counts, what: str) -> Che
 
 def uniform_chi2_check(name: str, fine_hist: np.ndarray, what: str) -> Check | None:
     """Chi-square test that PIT values (counted in :data:`FINE_BINS` equal bins) are uniform."""
+    wait_for_scipy()
     from scipy.stats import chisquare
 
     fine = np.asarray(fine_hist, dtype=np.int64)
@@ -114,6 +152,7 @@ def uniform_chi2_check(name: str, fine_hist: np.ndarray, what: str) -> Check | N
 
 def grid_chi2_check(name: str, fine_grid: np.ndarray, what: str) -> Check | None:
     """Chi-square test that PIT pairs (U_a, U_b) (counted on a 10 x 10 grid) are uniform on the square."""
+    wait_for_scipy()
     from scipy.stats import chisquare
 
     fine = np.asarray(fine_grid, dtype=np.int64)
@@ -130,6 +169,7 @@ def grid_chi2_check(name: str, fine_grid: np.ndarray, what: str) -> Check | None
 
 def binom_check(name: str, k: int, n: int, p: float, what: str) -> Check | None:
     """Exact two-sided binomial test (``scipy.stats.binomtest``)."""
+    wait_for_scipy()
     from scipy.stats import binomtest
 
     if n == 0:
@@ -184,6 +224,7 @@ def share_power(n: int, share: float, alpha_test: float, power: float = 0.9) -> 
     float
         The shift (a probability); ``nan`` when even a share of 1 is not detected.
     """
+    wait_for_scipy()
     from scipy.stats import binom
 
     lo_k = binom.ppf(alpha_test / 2, n, share) - 1          # P(X <= lo_k) <= alpha/2

@@ -240,7 +240,7 @@ class ManifestCheck:
         for name, value in columns.items():
             key = f"{split}/{name}"
             if self._done.get(key) == start:
-                self._hash[key].update(np.ascontiguousarray(value).tobytes())
+                self._hash[key].update(np.ascontiguousarray(value))   # the bytes, not copied
                 self._done[key] = start + len(value)
 
     def problems(self) -> list[str]:

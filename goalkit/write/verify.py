@@ -48,6 +48,7 @@ from goalkit.pipeline.summary import SummaryBuilder
 from goalkit.relabel.strategies import strategy_names
 from goalkit.reward import score
 from goalkit.rows import END_FLAG_SOURCES
+from goalkit.write.checklane import CheckLane
 from goalkit.write.chunkread import SplitColumns
 from goalkit.write.format import SPLIT_CODES, SPLITS
 from goalkit.write.reader import GoalSet, ManifestCheck
@@ -337,17 +338,19 @@ def _replay(goal_set, plan, source, recipe, report, relocation, digests, progres
             reader.close()
 
 
-def _chunks_ahead(plan, source):
-    """Yield ``(first, stop, EpisodeSet)`` of every chunk in order, read up to two chunks ahead on a
-    thread (by a reader process for grouped and per-file logs, as the build reads them); a chunk
-    the reader cannot give is read with ``source.read``, which raises any problem as before."""
-    bounds = list(chunk_bounds(plan.lengths, chunk_transitions(plan)))
+def _chunks_ahead(plan, source, bounds):
+    """Yield ``(first, stop, EpisodeSet)`` of every chunk of ``bounds`` in order, read up to two
+    chunks ahead on a thread (by a reader process for grouped and per-file logs, as the build
+    reads them); a chunk the reader cannot give is read with ``source.read``, which raises any
+    problem as before. The first item is None, yielded once the reads have begun (the reader
+    process starts meanwhile)."""
     specs = [SimpleNamespace(start=a, stop=b, transitions=int(plan.lengths[a:b].sum())) for a, b in bounds]
     chunk_reader = ChunkReader(source, bounds) if readproc_wanted(source, specs) else None
     read = source.read if chunk_reader is None else chunk_reader.read
     try:
         with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-verify-read") as pool:
             pending = deque(pool.submit(read, a, b) for a, b in bounds[:READ_AHEAD])
+            yield None
             for i, (a, b) in enumerate(bounds):
                 chunk = pending.popleft().result()
                 if i + READ_AHEAD < len(bounds):
@@ -356,6 +359,72 @@ def _chunks_ahead(plan, source):
     finally:
         if chunk_reader is not None:
             chunk_reader.close()
+
+
+def _expected_ranges(plan, bounds) -> list:
+    """Row ranges ``{split: (first, stop)}`` each chunk's rows should take, from the plan's
+    lengths, splits and goal counts: where to start reading stored rows ahead. Only a guess
+    (the replay's own rows decide); a chunk whose rows differ is read when it is checked."""
+    per_episode = plan.lengths * plan.episode_goals()
+    cursor = {split: 0 for split in SPLITS}
+    out = []
+    for a, b in bounds:
+        here = {}
+        for code, split in enumerate(SPLITS):
+            n = int(per_episode[a:b][plan.splits[a:b] == code].sum())
+            here[split] = (cursor[split], cursor[split] + n)
+            cursor[split] += n
+        out.append(here)
+    return out
+
+
+class _StoredAhead:
+    """Stored rows of the next chunk, decoded on the readers' threads while this one is checked.
+
+    ``take`` gives the rows of a chunk and split: the ones read ahead when their range is the
+    one asked for, else read then (:func:`_stored_rows`); either way the same arrays.
+    """
+
+    def __init__(self, goal_set, readers, names, totals, ranges):
+        self.goal_set, self.readers, self.names, self.totals = goal_set, readers, names, totals
+        self.ranges = ranges
+        self.pending = {}
+
+    def start(self, i: int) -> None:
+        """Begin decoding the stored rows expected for chunk ``i`` (when it exists)."""
+        if i >= len(self.ranges):
+            return
+        for split, (a, b) in self.ranges[i].items():
+            reader = self.readers.get(split)
+            if reader is None or b <= a or b > self.totals[split]:
+                continue
+            try:
+                self.pending[(i, split)] = (a, b, reader.start([(a, b)]))
+            except Exception:   # noqa: BLE001  read again when checked, which raises it in its place
+                pass
+
+    def take(self, i: int, split: str, a: int, b: int) -> dict:
+        """Stored rows ``a .. b - 1`` of ``split`` for chunk ``i``."""
+        ahead = self.pending.pop((i, split), None)
+        if ahead is not None and ahead[:2] == (a, b):
+            try:
+                return self.readers[split].finish(ahead[2])
+            except DatasetError:   # a chunk that does not inflate: h5py reads it and gives its verdict
+                return self.goal_set.read(split, self.names[split], a, b, resolve=False)
+        if ahead is not None:   # read ahead for nothing: let its decoding finish before reading again
+            _settle(ahead[2])
+        return _stored_rows(self.goal_set, self.readers, split, self.names[split], a, b)
+
+    def close(self) -> None:
+        for _, _, started in self.pending.values():
+            _settle(started)
+        self.pending.clear()
+
+
+def _settle(started) -> None:
+    """Wait for the decoding jobs of a :meth:`SplitColumns.start` whose rows are not used."""
+    for job in started[2]:
+        job.exception()
 
 
 def _stored_rows(goal_set, readers, split, names, a, b) -> dict:
@@ -369,29 +438,41 @@ def _stored_rows(goal_set, readers, split, names, a, b) -> dict:
     return goal_set.read(split, names, a, b, resolve=False)
 
 
+def _side_checks(manifest, feed, split, row0, row_stop, stored, chunk) -> None:
+    """The checks of one chunk's stored rows that need nothing from the replay: their manifest
+    checksums and the audit (run on the lane's thread, in the order the rows were read)."""
+    manifest.add(split, row0, stored)
+    if feed is not None:
+        feed.add(split, row0, row_stop, stored, chunk)
+
+
 def _replay_rows(goal_set, plan, source, report, relocation, digests, progress, feed, manifest, summary, total,
                  stored_names, readers) -> bool:
-    """The rows of every chunk of episodes: checked, re-derived, audited; then summary and provenance."""
-    cursor = {split: 0 for split in SPLITS}
-    for first_ep, stop_ep, chunk in _chunks_ahead(plan, source):
-        fresh = relabel_chunk(plan, chunk)
-        for split in SPLITS:
-            n_rows = len(fresh.keys.get(split, ()))
-            row0, row_stop = cursor[split], cursor[split] + n_rows
-            if row_stop > total[split]:
-                report.fail(f"{split}: fewer rows stored ({total[split]}) than the recipe produces")
-                return False
-            stored = _stored_rows(goal_set, readers, split, stored_names[split], row0, row_stop)
-            manifest.add(split, row0, stored)
-            check_rows(plan, chunk, stored, split, report, row0)
-            if feed is not None:
-                feed.add(split, row0, row_stop, stored, chunk)
-            if n_rows:
-                _compare(fresh.columns[split], stored, split, row0, report)
-                summary.add(split, fresh.columns[split], fresh.keys[split])
-            cursor[split] = row_stop
-        if progress is not None:
-            progress(int(plan.lengths[first_ep:stop_ep].sum()), plan.total_transitions)
+    """The rows of every chunk of episodes: checked, re-derived, audited; then summary and provenance.
+
+    The main thread relabels and checks each chunk's rows; the stored rows of the next chunk
+    decode meanwhile on the readers' threads, and the manifest checksums and the audit of the
+    rows run on a :class:`~goalkit.write.checklane.CheckLane`, in the order the rows were read.
+    """
+    bounds = list(chunk_bounds(plan.lengths, chunk_transitions(plan)))
+    ahead = _StoredAhead(goal_set, readers, stored_names, total, _expected_ranges(plan, bounds))
+    lane = CheckLane()
+    try:
+        try:
+            complete = _replay_chunks(plan, source, report, progress, feed, manifest, summary, total, bounds,
+                                      ahead, lane)
+            lane.drain()
+        except Exception:
+            earlier = lane.failed_before()   # a task handed over before this failure came first
+            if earlier is not None:
+                raise earlier from None
+            raise
+    finally:
+        lane.close()
+        ahead.close()
+    if complete is None:
+        return False
+    cursor = complete
     for split in SPLITS:
         if cursor[split] != total[split]:
             report.fail(f"{split}: {total[split]} rows stored, the recipe produces {cursor[split]}")
@@ -410,10 +491,40 @@ def _replay_rows(goal_set, plan, source, report, relocation, digests, progress, 
     return True
 
 
+def _replay_chunks(plan, source, report, progress, feed, manifest, summary, total, bounds, ahead, lane):
+    """Check and re-derive every chunk's rows; the rows each split reached (None: rows missing)."""
+    cursor = {split: 0 for split in SPLITS}
+    chunks = _chunks_ahead(plan, source, bounds)
+    try:
+        next(chunks)   # the logs' reads begin (and the reader process starts) first
+        ahead.start(0)
+        for i, (first_ep, stop_ep, chunk) in enumerate(chunks):
+            ahead.start(i + 1)
+            fresh = relabel_chunk(plan, chunk)
+            for split in SPLITS:
+                n_rows = len(fresh.keys.get(split, ()))
+                row0, row_stop = cursor[split], cursor[split] + n_rows
+                if row_stop > total[split]:
+                    report.fail(f"{split}: fewer rows stored ({total[split]}) than the recipe produces")
+                    return None
+                stored = ahead.take(i, split, row0, row_stop)
+                check_rows(plan, chunk, stored, split, report, row0)
+                lane.submit(_side_checks, manifest, feed, split, row0, row_stop, stored, chunk)
+                if n_rows:
+                    _compare(fresh.columns[split], stored, split, row0, report)
+                    summary.add(split, fresh.columns[split], fresh.keys[split])
+                cursor[split] = row_stop
+            if progress is not None:
+                progress(int(plan.lengths[first_ep:stop_ep].sum()), plan.total_transitions)
+    finally:
+        chunks.close()
+    return cursor
+
+
 def _compare(fresh: dict, stored: dict, split: str, row0: int, report: VerifyReport) -> None:
     """Re-derived rows against stored rows, column by column."""
     for name, value in stored.items():
-        ref = np.asarray(fresh[name]).astype(value.dtype)
+        ref = np.asarray(fresh[name]).astype(value.dtype, copy=False)
         diff = value.reshape(len(value), -1) != ref.reshape(len(ref), -1)
         bad = np.any(diff, axis=1)
         if bad.any():
