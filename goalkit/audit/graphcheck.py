@@ -86,10 +86,6 @@ class GraphAudit:
         n = len(x)
         tails = np.concatenate([np.arange(f, f + L) for f, L in zip(first.tolist(), lengths.tolist())]) \
             if len(lengths) else np.zeros(0, np.int64)
-        import scipy.sparse as sp                    # noqa: PLC0415  scipy loads only for a graph audit
-        from scipy.sparse.csgraph import dijkstra     # noqa: PLC0415
-        from scipy.spatial import cKDTree             # noqa: PLC0415
-
         tree = cKDTree(x)
         pairs = tree.query_pairs(self.radius, output_type="ndarray")
         pairs = pairs[ep_of[pairs[:, 0]] != ep_of[pairs[:, 1]]] if len(pairs) else np.zeros((0, 2), np.int64)

@@ -7,9 +7,11 @@ groups and a second CPU, :class:`~goalkit.logs.grouped.GroupedSource` has one he
 holding HDF5 handles and threads, no re-import of the user's main module) plan the last part of
 the groups (:meth:`~goalkit.logs.grouped.GroupedSource.plan_part`) while it plans the first part
 itself. The request travels on the helper's stdin and the metas come back on its stdout,
-pickled; a helper that answered goes back to the spare slot for the build's chunk reader; anything unexpected (no second CPU, the helper cannot start, fails, or
-answers for other groups) and the caller plans those groups itself: the helper only ever saves
-time, it never changes the result.
+pickled; a helper that answered goes back to the spare slot for the build's chunk reader.
+Anything unexpected (no second CPU, the helper cannot start, fails, or answers for other
+groups) and the caller plans those groups itself: the helper only ever saves time, it never
+changes the result. Per-file folders are shared the same way
+(:meth:`~goalkit.logs.perfile.PerFileSource.plan_part`).
 """
 
 from __future__ import annotations

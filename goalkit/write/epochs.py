@@ -181,6 +181,14 @@ def pooled_plan(spec: EpochSpec, piece_rows: int, pool_rows: int, shuffle: bool 
     return _mirrored_pools(spec, sorted(segments), piece_rows, pool_rows) or _sliced_pools(sorted(segments), pool_rows)
 
 
+#: Pool counts tried by :func:`_mirrored_pools` and :func:`_sliced_pools` above the fewest that
+#: could hold the rows, and the most slice edges the latter computes for one try; past either,
+#: the shard has too many pieces for its pool size (pools of a few rows) and the next way is
+#: taken, at last :func:`_paired_pools`.
+SLICE_TRIES = 16
+SLICE_VALUES = 250_000
+
+
 def _sliced_pools(segments, pool_rows):
     """Pools that each hold a mirrored share of every segment (when whole pieces cannot pair).
 
@@ -194,7 +202,10 @@ def _sliced_pools(segments, pool_rows):
     total = sum(b - a for a, b in segments)
     starts = np.array([a for a, _ in segments], dtype=np.int64)[:, None]
     lengths = np.array([b - a for a, b in segments], dtype=np.int64)[:, None]
-    for n in range(max(1, -(-total // pool_rows)), total + 1):
+    first = max(1, -(-total // pool_rows))
+    for n in range(first, min(total, first + SLICE_TRIES) + 1):
+        if len(segments) * (2 * n + 1) > SLICE_VALUES:
+            break
         edges = starts + (np.arange(2 * n + 1, dtype=np.int64) * lengths) // (2 * n)   # (segments, 2n + 1)
         sizes = np.diff(edges, axis=1).sum(axis=0)                                   # rows of each slice index
         if (sizes[:n] + sizes[2 * n - 1:n - 1:-1]).max() <= pool_rows:               # pool p: slices p, 2n-1-p
@@ -205,7 +216,28 @@ def _sliced_pools(segments, pool_rows):
                         if row[k + 1] > row[k]:
                             pools[p].append((row[k], row[k + 1]))
             return [_merge(p) for p in pools if p]
-    return [[seg] for seg in segments]  # not reached: n = total gives pools of one or two rows
+    return _paired_pools(segments, pool_rows)
+
+
+def _paired_pools(segments, pool_rows):
+    """Pools for a shard with too many segments for every pool to hold a slice of each (a pool of
+    a few rows): segment ``i`` paired with its mirror ``S - 1 - i`` (so a pool's mean position is
+    near the shard's), the pairs packed in order into pools of at most ``pool_rows`` rows."""
+    pools, rows = [], pool_rows
+    s = len(segments)
+    for i in range((s + 1) // 2):
+        pair = [segments[i]] if i == s - 1 - i else [segments[i], segments[s - 1 - i]]
+        size = sum(b - a for a, b in pair)
+        if size > pool_rows:                 # each segment alone fits (pieces are at most a pool)
+            pools += [[seg] for seg in pair]
+            rows = pool_rows
+            continue
+        if rows + size > pool_rows:
+            pools.append([])
+            rows = 0
+        pools[-1] += pair
+        rows += size
+    return [_merge(p) for p in pools]
 
 
 def _merge(ranges):
@@ -243,8 +275,8 @@ def _mirrored_pools(spec, segments, piece_rows, pool_rows):
     if not units:
         return []
     whole_rows = sum(b - a for u in units for a, b in u)
-    for n in range(-(-len(units) * 2 * piece_rows // pool_rows), len(units) + 1):
-        n = max(n, 1)
+    first = max(1, -(-len(units) * 2 * piece_rows // pool_rows))
+    for n in range(first, min(len(units), first + SLICE_TRIES) + 1):
         pools = [[seg for u in units[p::n] for seg in u] for p in range(n)]
         mass = np.array([sum(b - a for a, b in p) for p in pools], dtype=np.int64)
         # each short segment's rows cut at the pools' cumulative shares of the whole rows

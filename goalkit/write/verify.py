@@ -39,8 +39,9 @@ import numpy as np
 from goalkit.audit import AuditFeed, record_audit
 from goalkit.errors import DatasetError, GoalkitError, shown
 from goalkit.logs.episodes import chunk_bounds
-from goalkit.pipeline.build import chunk_transitions, final_summary
+from goalkit.pipeline.build import chunk_transitions, final_summary, helped_layout, log_paths
 from goalkit.pipeline.chunk import relabel_chunk, row_labels
+from goalkit.logs import spare
 from goalkit.pipeline.plan import make_plan, split_rows
 from goalkit.pipeline.readproc import ChunkReader
 from goalkit.pipeline.readproc import wanted as readproc_wanted
@@ -290,34 +291,37 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True, 
         recipe = stored_recipe(goal_set, report, relocation)
         if recipe is None:
             return report
-        try:
-            plan, source = make_plan(recipe)
-        except GoalkitError as exc:
-            raise DatasetError(f"cannot reopen what this set was built from: {exc}", file=goal_set.path) from None
-        if not check_columns(goal_set, plan, split_rows(plan), report):
-            return report
-        # 3. manifest: each column's SHA-256, fed the rows the replay reads (so they are decoded
-        #    once); its messages come before the rows' (the replay's are held until then)
-        manifest = ManifestCheck(goal_set)
-        report.checked["columns"] = len(goal_set.manifest)
-        rows_report = VerifyReport(max_failures=max_failures, checked=report.checked)
-        # 4 + 5. rows, checked and re-derived; the summary re-derived alongside (_replay)
-        # 6. the audit (rules and laws re-stated independently of the builder, docs/audit.md), fed
-        #    the rows and log episodes read here, so that each is read and decompressed once
-        feed = AuditFeed(path, relocation=relocation, opened=source) if audit else None
-        try:
-            complete = _replay(goal_set, plan, source, recipe, rows_report, relocation, digests, progress, feed,
-                               manifest)
-            for message in manifest.problems() + rows_report.failures:
-                report.fail(message)
-            report.ok = report.ok and rows_report.ok
-            if not complete:
+        # a spare helper process plans part of a large log's episodes, then reads the chunks
+        with spare.scope(log_paths(recipe), early=helped_layout(recipe)):
+            try:
+                plan, source = make_plan(recipe)
+            except GoalkitError as exc:
+                raise DatasetError(f"cannot reopen what this set was built from: {exc}",
+                                   file=goal_set.path) from None
+            if not check_columns(goal_set, plan, split_rows(plan), report):
                 return report
-            if feed is not None:
-                result, feed = feed.finish(), None
-        finally:
-            if feed is not None:
-                feed.close()
+            # 3. manifest: each column's SHA-256, fed the rows the replay reads (so they are decoded
+            #    once); its messages come before the rows' (the replay's are held until then)
+            manifest = ManifestCheck(goal_set)
+            report.checked["columns"] = len(goal_set.manifest)
+            rows_report = VerifyReport(max_failures=max_failures, checked=report.checked)
+            # 4 + 5. rows, checked and re-derived; the summary re-derived alongside (_replay)
+            # 6. the audit (rules and laws re-stated independently of the builder, docs/audit.md), fed
+            #    the rows and log episodes read here, so that each is read and decompressed once
+            feed = AuditFeed(path, relocation=relocation, opened=source) if audit else None
+            try:
+                complete = _replay(goal_set, plan, source, recipe, rows_report, relocation, digests, progress, feed,
+                                   manifest)
+                for message in manifest.problems() + rows_report.failures:
+                    report.fail(message)
+                report.ok = report.ok and rows_report.ok
+                if not complete:
+                    return report
+                if feed is not None:
+                    result, feed = feed.finish(), None
+            finally:
+                if feed is not None:
+                    feed.close()
     if audit:
         record_audit(report, result)
     return report

@@ -344,3 +344,16 @@ def test_tight_shards_epoch_from_a_built_set(small_set):
     assert abs(np.mean(lags)) < 4 / np.sqrt(4 * (n // 4 // 8)), lags
     # a 750-row pool holds only a few of these episodes (up to 400 rows each): measured 0.72
     assert np.mean(distinct) / independent_distinct(sizes, n, 8) > 0.65
+
+
+@pytest.mark.parametrize("rows,count,piece,pool", [(20_000, 1, 1, 3), (20_000, 9, 1, 3), (20_000, 3, 3, 10),
+                                                   (20_000, 1, 50, 31)])
+def test_pools_of_a_few_rows_over_many_pieces(rows, count, piece, pool):
+    """Pools far smaller than the shard's pieces are many (found by the property test above: the
+    pool-count searches took minutes here): every pool within its rows, every row once."""
+    for index in range(count):
+        spec = EpochSpec(rows, 3, 1, index, count, "drop")
+        plan = pooled_plan(spec, piece, pool, True)
+        assert plan and all(0 < sum(b - a for a, b in p) <= pool for p in plan)
+        covered = np.concatenate([np.arange(a, b) for p in plan for a, b in p])
+        assert len(covered) == len(np.unique(covered)) == spec.share
