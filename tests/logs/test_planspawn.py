@@ -33,6 +33,20 @@ def helper_on(monkeypatch):
     return started
 
 
+def dying_helper(log):
+    """A start_helper whose helper dies before answering (``"killed"`` appended to ``log``)."""
+    real = planspawn.start_helper
+
+    def dead(source, split):
+        helper = real(source, split)
+        helper.proc.kill()
+        helper.proc.wait()
+        log.append("killed")
+        return helper
+
+    return dead
+
+
 def serial(path, table, monkeypatch):
     monkeypatch.setattr("goalkit.logs.grouped.helper_split", lambda total, skip=False: None)
     return open_logs(path, table)
@@ -87,15 +101,7 @@ def test_problem_in_the_helpers_part_is_named_as_in_serial(tmp_path, helper_on, 
 def test_a_helper_that_fails_leaves_the_plan_to_this_process(tmp_path, helper_on, monkeypatch):
     eps = make_episodes([2] * 16, seed=14)
     table = write_grouped(tmp_path / "g.h5", eps)
-    real = planspawn.start_helper
-
-    def dead(source, split):                                  # the helper dies before answering
-        helper = real(source, split)
-        helper.proc.kill()
-        helper.proc.wait()
-        helper_on.append("killed")
-        return helper
-
+    dead = dying_helper(helper_on)
     monkeypatch.setattr("goalkit.logs.grouped.start_helper", dead)
     src = open_logs(tmp_path / "g.h5", table)
     assert helper_on == ["killed"]
@@ -194,15 +200,7 @@ def test_per_file_helper_that_fails_leaves_the_plan_to_this_process(tmp_path, pe
         arrays = dict(z)
     arrays["rew"] = np.zeros(5, np.float32)
     np.savez(tmp_path / "eps" / "ep12.npz", **arrays)
-    real = planspawn.start_helper
-
-    def dead(source, split):                                  # the helper dies before answering
-        helper = real(source, split)
-        helper.proc.kill()
-        helper.proc.wait()
-        per_file_helper.append("killed")
-        return helper
-
+    dead = dying_helper(per_file_helper)
     monkeypatch.setattr("goalkit.logs.perfile.start_helper", dead)
     answers = []
     real_finish = planspawn.finish_helper
