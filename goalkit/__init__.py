@@ -31,8 +31,8 @@ from goalkit.errors import (DatasetError, EmbeddingError, GoalkitError, LayoutEr
 _LAZY = {
     # the main job
     "load_recipe": "goalkit.pipeline.recipe", "Recipe": "goalkit.pipeline.recipe",
-    "build": "goalkit.api", "BuildResult": "goalkit.pipeline.build",
-    "InProcess": "goalkit.api", "LocalWorkers": "goalkit.api", "DaskCluster": "goalkit.api",
+    "build": "goalkit.apibuild", "BuildResult": "goalkit.pipeline.build",
+    "InProcess": "goalkit.apibuild", "LocalWorkers": "goalkit.apibuild", "DaskCluster": "goalkit.apibuild",
     "verify": "goalkit.api", "tune": "goalkit.api", "VerifyReport": "goalkit.write.verify",
     "open_set": "goalkit.write.reader", "GoalSet": "goalkit.write.reader",
     "GoalSampler": "goalkit.write.sampler",
