@@ -243,16 +243,23 @@ class EpisodicSource(BaseSource):
         """
         metas, problems = [], []
         for e, acc in enumerate(accesses):
-            try:
-                metas.append(plan_episode(acc, self.layout, e))
-            except LogError as exc:
-                if exc.episode is None:
-                    raise
-                metas.append(None)
-                problems.append((e, exc))
-            else:
-                self._planned(acc)
+            meta, problem = self._plan_access(acc, e)
+            metas.append(meta)
+            if problem is not None:
+                problems.append((e, problem))
         return metas, problems
+
+    def _plan_access(self, acc, e):
+        """``(meta, None)`` or ``(None, LogError)`` of episode ``e`` from its access object (a
+        file-level problem propagates)."""
+        try:
+            meta = plan_episode(acc, self.layout, e)
+        except LogError as exc:
+            if exc.episode is None:
+                raise
+            return None, exc
+        self._planned(acc)
+        return meta, None
 
     def _planned(self, acc) -> None:
         """Called with each episode's access object after it was planned (readers may look)."""

@@ -225,14 +225,7 @@ class GroupedSource(EpisodicSource):
         """``(meta, None)`` or ``(None, LogError)`` of one episode through plan_episode."""
         acc = H5Access(h5py.Group(gid), self.path, file_size=self.file_size,
                        max_rows=limits.MAX_EPISODE_STEPS, episode=e, seen=seen)
-        try:
-            meta = plan_episode(acc, self.layout, e)
-        except LogError as exc:
-            if exc.episode is None:
-                raise
-            return None, exc
-        self._planned(acc)
-        return meta, None
+        return self._plan_access(acc, e)
 
     def _adopt_helper(self, h5, seen, start, found, metas, problems):
         """Take the helper's metas of groups ``start ..``; plan again here every episode it

@@ -18,7 +18,7 @@ import os
 from goalkit.errors import LogError
 from goalkit.logs import limits, spare
 from goalkit.logs.access import NpzAccess
-from goalkit.logs.episodic import EpisodicSource, join_parts, plan_episode, read_episode
+from goalkit.logs.episodic import EpisodicSource, join_parts, read_episode
 from goalkit.logs.naming import natural_sorted
 from goalkit.logs.npzfile import NpzArrays
 from goalkit.logs.planspawn import finish_helper, groups_digest, helper_split, start_helper, stop_helper
@@ -91,14 +91,8 @@ class PerFileSource(EpisodicSource):
         return metas + found["metas"], problems
 
     def _plan_one(self, e):
-        """``(meta, None)`` or ``(None, LogError)`` of episode ``e`` (as :meth:`_plan_all` records it;
-        a file-level problem propagates)."""
-        try:
-            return plan_episode(self._episode_access(e), self.layout, e), None
-        except LogError as exc:
-            if exc.episode is None:
-                raise
-            return None, exc
+        """``(meta, None)`` or ``(None, LogError)`` of episode ``e``."""
+        return self._plan_access(self._episode_access(e), e)
 
     @staticmethod
     def plan_part(request: dict) -> dict:
