@@ -218,6 +218,49 @@ def load_payload(payload_path: str, digest: str) -> Payload:
     return _WORKER["payload"]
 
 
+def _start_all_at_once(pool) -> None:
+    """Make ``pool`` start all its processes on the first submit, before its manager thread runs.
+
+    A ``spawn`` pool otherwise starts a process per submit while none is idle, on the submitting
+    thread, while its manager thread may already be running. When a worker dies at that moment
+    the manager thread, tearing the broken pool down, counts the processes while the submitting
+    thread adds one; on Python 3.11 it then fails with "dictionary changed size during iteration"
+    and prints a traceback. Starting them all before the thread exists (what the pool does itself
+    for ``fork``) leaves no such window. Pools without the switch (older Pythons) keep their
+    behaviour; :func:`_quiet_pool_threads` and the liveness check cover them.
+    """
+    if hasattr(pool, "_safe_to_dynamically_spawn_children"):
+        pool._safe_to_dynamically_spawn_children = False
+
+
+_HOOK_LOCK = threading.Lock()
+
+
+def _quiet_pool_threads() -> None:
+    """Keep a process pool's manager thread from printing a traceback when it fails.
+
+    Installed once per process. An exception in the pool's own plumbing thread is not the user's
+    to read: the pool's work then never completes, which :meth:`LocalRunner.dead_workers` sees,
+    and the build stops with its one-line "a worker process died" message. Exceptions of every
+    other thread go to the hook that was installed before.
+    """
+    from concurrent.futures import process as pool_module
+
+    manager_type = getattr(pool_module, "_ExecutorManagerThread", None)
+    with _HOOK_LOCK:
+        if manager_type is None or getattr(threading.excepthook, "_goalkit_pool_quiet", False):
+            return
+        previous = threading.excepthook
+
+        def hook(args):
+            if isinstance(args.thread, manager_type):
+                return
+            previous(args)
+
+        hook._goalkit_pool_quiet = True
+        threading.excepthook = hook
+
+
 def warm_up() -> int:
     """Import what a shard task needs (run on each worker while the coordinator plans); its pid."""
     for name in WARM_MODULES:
@@ -283,6 +326,8 @@ class LocalRunner:
         except BaseException:
             signal.pthread_sigmask(signal.SIG_SETMASK, blocked)
             raise
+        _start_all_at_once(self.pool)
+        _quiet_pool_threads()
         try:
             # a spawn pool starts a process per submitted task while none is idle: one warm-up
             # task per worker starts them all
@@ -378,9 +423,17 @@ class LocalRunner:
                 return
 
     def dead_workers(self) -> list:
-        """Process ids of pool workers that have exited (workers only exit at shutdown)."""
+        """Process ids of pool workers that have exited (workers only exit at shutdown).
+
+        A pool whose own manager thread has died (it can no longer hand out work or collect
+        results) counts as having lost a worker too: ``[-1]`` when no process is seen dead.
+        """
         procs = getattr(self.pool, "_processes", None) or {}  # the pool's own map of its processes
-        return [pid for pid, proc in list(procs.items()) if proc.exitcode is not None]
+        dead = [pid for pid, proc in list(procs.items()) if proc.exitcode is not None]
+        manager = getattr(self.pool, "_executor_manager_thread", None)
+        if not dead and manager is not None and not manager.is_alive() and not getattr(self.pool, "_shutdown_thread", False):
+            dead = [-1]
+        return dead
 
     def close(self) -> None:
         """Cancel queued shards, wait for running ones (they finish their shard files), stop.
