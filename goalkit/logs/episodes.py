@@ -256,3 +256,34 @@ def consecutive_runs(positions) -> list[tuple[int, int]]:
     starts = np.concatenate([[0], breaks])
     stops = np.concatenate([breaks, [positions.size]])
     return list(zip(starts.tolist(), stops.tolist()))
+
+
+def kept_task_ids(source, max_transitions: int) -> np.ndarray | None:
+    """The task id of every kept episode of ``source``, in order; None when its log has none.
+
+    A reader that learnt them while opening the log (every per-episode reader does: the task
+    id is checked to be constant per episode when the log is planned) says so through a
+    ``known_task_ids()`` method, and nothing is read. Any other source is read once, chunk by
+    chunk of at most ``max_transitions`` transitions.
+
+    Examples
+    --------
+    >>> from goalkit.logs.memory import MemorySource
+    >>> log = MemorySource(EpisodeSet(observations=np.zeros((7, 1)), actions=np.zeros((5, 1)),
+    ...                               offsets=np.array([0, 3, 5]), episode_ids=np.array([0, 1]),
+    ...                               task_ids=np.array([4, 9])))
+    >>> kept_task_ids(log, 2).tolist()
+    [4, 9]
+    """
+    known = getattr(source, "known_task_ids", None)
+    if known is not None:
+        return known()
+    return read_task_ids(source, max_transitions)
+
+
+def read_task_ids(source, max_transitions: int) -> np.ndarray | None:
+    """The task id of every kept episode of ``source``, read chunk by chunk; None when it has none."""
+    seen = [source.read(a, b).task_ids for a, b in chunk_bounds(source.lengths, max_transitions)]
+    if not seen or seen[0] is None:
+        return None
+    return np.concatenate(seen).astype(np.int64, copy=False)

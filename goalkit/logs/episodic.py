@@ -264,6 +264,12 @@ class EpisodicSource(BaseSource):
     def _planned(self, acc) -> None:
         """Called with each episode's access object after it was planned (readers may look)."""
 
+    def known_task_ids(self) -> np.ndarray | None:
+        """The task id of every kept episode, as planned (nothing is read); None without a task key."""
+        if self.layout.keys.task is None:
+            return None
+        return np.array([self.metas[e].task for e in self.episode_ids.tolist()], dtype=np.int64)
+
     def _adopt(self, metas, problems):
         """Check that episodes agree with the first good one, then apply the skip policy."""
         good = [m for m in metas if m is not None]

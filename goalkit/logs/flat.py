@@ -312,6 +312,10 @@ class FlatSource(BaseSource):
                                        locate=lambda e: {"episode": e, "step": 0 if per_row else None})
         return problems
 
+    def known_task_ids(self) -> np.ndarray | None:
+        """The task id of every kept episode, read while opening; None without a task key."""
+        return None if self.task_of is None else self.task_of[self.episode_ids]
+
     # ---- read -------------------------------------------------------------------------------
     def _read_episodes(self, ids):
         k = self.layout.keys

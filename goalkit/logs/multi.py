@@ -27,10 +27,11 @@ from goalkit.errors import GoalkitError, LayoutError, LogError
 from goalkit.logs.bagfile import is_bag_path
 from goalkit.logs.bagscan import list_topics, propose_bag_layout
 from goalkit.logs.detect import propose_layout
-from goalkit.logs.episodes import EpisodeSet, concat_episodes
+from goalkit.logs.episodes import EpisodeSet, concat_episodes, kept_task_ids
 from goalkit.logs.layout import load_layout, parse_layout
 from goalkit.logs.naming import natural_key
 from goalkit.logs.opener import open_logs
+from goalkit.logs.source import CHECK_CHUNK
 
 #: File name endings taken from a folder (for shapes other than per-file).
 LOG_SUFFIXES = (".h5", ".hdf5", ".hdf", ".npz")
@@ -257,6 +258,11 @@ class MultiSource:
         """Source code of each (kept) episode id."""
         pos = np.searchsorted(self.episode_ids, np.asarray(episode_ids, dtype=np.int64))
         return self.episode_sources[pos]
+
+    def known_task_ids(self) -> np.ndarray | None:
+        """The task id of every kept episode, file by file (each as cheaply as its reader can)."""
+        per = [kept_task_ids(p.log, CHECK_CHUNK) for p in self.parts]
+        return None if per[0] is None else np.concatenate(per).astype(np.int64, copy=False)
 
     def read(self, start: int, stop: int) -> EpisodeSet:
         """Kept episodes at positions ``start .. stop - 1`` (ids: see the module docstring)."""

@@ -14,7 +14,7 @@ import numpy as np
 from goalkit.errors import ParameterError, RecipeError
 from goalkit.goals.stategraph import StateGraph
 from goalkit.logs import open_logs
-from goalkit.logs.episodes import chunk_bounds
+from goalkit.logs.episodes import chunk_bounds, kept_task_ids
 from goalkit.logs.layout import load_layout
 from goalkit.masks import field_groups
 from goalkit.pipeline.casts import StoredDtypes, file_table
@@ -146,8 +146,9 @@ def _columns(recipe, obs_shape, act_shape, obs_dtype, act_dtype, goal_dim, has_t
 def resolve_masks(recipe, source, first, goal_dim: int, max_transitions: int):
     """The recipe's ``[mask]`` table matched with the goal space and the logs' tasks (or None).
 
-    When the table names tasks, the task ids of every kept episode are read first (one pass
-    over the logs), so that a task the logs do not have is refused before anything is written.
+    When the table names tasks, the task ids of every kept episode are looked up first (known
+    from opening the logs for every per-episode reader; other logs are read once), so that a
+    task the logs do not have is refused before anything is written.
     """
     spec = recipe.masks
     if spec is None:
@@ -155,8 +156,8 @@ def resolve_masks(recipe, source, first, goal_dim: int, max_transitions: int):
     groups = field_groups(recipe.goal.fields, first.fields) if recipe.goal.fields else ()
     tasks = None
     if spec.tasks and first.task_ids is not None:
-        seen = [source.read(a, b).task_ids for a, b in chunk_bounds(source.lengths, max_transitions)]
-        tasks = np.unique(np.concatenate(seen)) if seen else np.zeros(0, np.int64)
+        known = kept_task_ids(source, max_transitions)
+        tasks = np.zeros(0, np.int64) if known is None else np.unique(known)
     try:
         return spec.resolve(goal_dim, groups, tasks)
     except ParameterError as exc:  # the table's key -> the recipe's file and mask.<key>

@@ -17,7 +17,8 @@ from __future__ import annotations
 import numpy as np
 
 from goalkit import rng
-from goalkit.logs.episodes import EpisodeSet, concat_episodes, consecutive_runs  # noqa: F401 (re-exported)
+from goalkit.logs.episodes import EpisodeSet, concat_episodes, consecutive_runs, read_task_ids  # noqa: F401 (re-exported)
+from goalkit.logs.source import CHECK_CHUNK
 
 #: The per-episode address used for the sample key (no per-state draw uses step -1).
 SAMPLE_STEP = -1
@@ -96,6 +97,13 @@ class SampledSource:
         pos = self.positions[start:stop]
         parts = [self.source.read(int(pos[a]), int(pos[b - 1]) + 1) for a, b in consecutive_runs(pos)]
         return concat_episodes(parts)
+
+    def known_task_ids(self) -> np.ndarray | None:
+        """The task id of each chosen episode: the log's own when its reader knows them, else read."""
+        if hasattr(self.source, "known_task_ids"):
+            known = self.source.known_task_ids()
+            return None if known is None else known[self.positions]
+        return read_task_ids(self, CHECK_CHUNK)
 
     def __getattr__(self, name):
         # Reader attributes the pipeline may look at (layout, convention, dtypes ...).

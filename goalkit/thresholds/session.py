@@ -47,7 +47,7 @@ import numpy as np
 from goalkit.config import closest
 from goalkit.errors import LabelError, ParameterError, TuningError
 from goalkit.logs import spare
-from goalkit.logs.episodes import chunk_bounds
+from goalkit.logs.episodes import chunk_bounds, kept_task_ids
 from goalkit.pipeline.build import helped_layout, log_paths
 from goalkit.pipeline.chunk import relabel_chunk
 from goalkit.pipeline.plan import make_plan, open_source, strategy_names
@@ -316,13 +316,10 @@ def _file_pair_masks(pairs: LabelledPairs, source, masks, chunk_transitions: int
     tasks = np.full(pairs.size, -1, np.int64)
     found = np.zeros(pairs.size, bool)
     if pairs.grouped:
-        ids, tids = [], []
-        for a, b in chunk_bounds(source.lengths, chunk_transitions):  # a loop over chunks
-            chunk = source.read(a, b)
-            ids.append(np.asarray(chunk.episode_ids, np.int64))
-            tids.append(np.full(len(chunk.episode_ids), -1, np.int64) if chunk.task_ids is None
-                        else np.asarray(chunk.task_ids, np.int64))
-        ids, tids = np.concatenate(ids), np.concatenate(tids)
+        ids = np.asarray(source.episode_ids, np.int64)
+        tids = kept_task_ids(source, chunk_transitions)   # known from opening the logs, or read once
+        if tids is None:
+            tids = np.full(len(ids), -1, np.int64)
         order = np.argsort(ids, kind="stable")
         ids, tids = ids[order], tids[order]
         at = np.minimum(np.searchsorted(ids, pairs.groups), max(len(ids) - 1, 0))

@@ -7,6 +7,7 @@ import numpy as np
 import pytest
 
 from goalkit.logs import iter_chunks, open_logs
+from goalkit.logs.episodes import kept_task_ids, read_task_ids
 from goalkit.logs.npzfile import NpzArrays
 from logs_testdata import (assert_matches, make_episodes, truth, write_flat, write_grouped,
                            write_per_file)
@@ -35,6 +36,14 @@ def check_source(src, eps, *, fields=None):
     np.testing.assert_array_equal(np.concatenate([c.observations for c in chunks]), whole["observations"])
     if fields is not None:
         assert src.fields == fields
+    # the task ids the reader knows from opening are those its reads give, episode by episode
+    known, read = kept_task_ids(src, 4), read_task_ids(src, 4)
+    if read is None:
+        assert known is None
+    else:
+        assert known.dtype == np.int64
+        np.testing.assert_array_equal(known, read)
+        np.testing.assert_array_equal(known, whole["task_ids"])
 
 
 @pytest.mark.parametrize("convention", CONVENTIONS)
