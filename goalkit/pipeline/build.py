@@ -47,7 +47,6 @@ from goalkit.pipeline.sources import layout_texts, sources_provenance, sources_s
 from goalkit.pipeline.dask_build import DaskRunner
 from goalkit.pipeline.inprocess import CHUNK_ROWS, InProcessProducer
 from goalkit.pipeline.plan import make_plan, split_rows, strategy_names
-from goalkit.pipeline.poolhelper import lend
 from goalkit.pipeline.reuse import ReuseProducer
 from goalkit.pipeline.sharded import SHARD_ROWS, ShardProducer
 from goalkit.pipeline.shardfiles import plan_shards
@@ -325,8 +324,6 @@ def _run_build(recipe, producer, source, rows_per_chunk, progress, replace) -> B
     try:
         if launch is not None:   # worker processes start on the other cores while this one plans
             launch()
-            if source is None:   # and one of them plans a share of the log's episodes
-                lend(getattr(producer, "runner", None) or getattr(getattr(producer, "inner", None), "runner", None))
         plan, source = make_plan(recipe, source)
         cut = getattr(producer, "plan_chunks", None)
         per_chunk = chunk_transitions(plan, rows_per_chunk or producer.rows_per_chunk)
