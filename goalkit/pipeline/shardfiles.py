@@ -219,7 +219,8 @@ def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order, pat
     Returns
     -------
     dict
-        ``{"index", "rows", "sha256"}`` (the file's SHA-256, see the module notes).
+        ``{"index", "rows", "sha256", "bytes"}`` (the file's SHA-256, see the module notes, and
+        its size).
 
     Raises
     ------
@@ -265,11 +266,17 @@ def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order, pat
             f.write(piece)
 
     write_own_file(path, write, what="shard file")
-    return {"index": spec.index, "rows": counts, "sha256": digest.hex()}
+    size = _PREFIX.size + sum(len(piece) for piece in pieces)
+    return {"index": spec.index, "rows": counts, "sha256": digest.hex(), "bytes": size}
 
 
-def _load(path):
-    """``(meta, arrays)`` of a shard file whose checksum holds; ShardError-free: raises ValueError."""
+def _load(path, written=None):
+    """``(meta, arrays)`` of a shard file whose checksum holds; ShardError-free: raises ValueError.
+
+    ``written``: ``(sha256 hex, bytes)`` its worker reported for a shard computed in this run;
+    the file must then carry that digest and have that size, and its bytes are not hashed again
+    (see :func:`read_shard`).
+    """
     with open(path, "rb") as f:
         size = os.fstat(f.fileno()).st_size
         if size < _PREFIX.size:
@@ -281,10 +288,14 @@ def _load(path):
     if magic != MAGIC:
         raise ValueError("not a goalkit shard file (or one of another version)")
     view = memoryview(buf)
-    h = hashlib.sha256(view[8:16])
-    h.update(view[_PREFIX.size:])
-    if h.digest() != digest:
-        raise ShardChecksumError("its bytes do not match the shard's SHA-256")
+    if written is not None:
+        if digest.hex() != written[0] or size != written[1]:
+            raise ShardChecksumError("not the file its worker wrote (another SHA-256 or size)")
+    else:
+        h = hashlib.sha256(view[8:16])
+        h.update(view[_PREFIX.size:])
+        if h.digest() != digest:
+            raise ShardChecksumError("its bytes do not match the shard's SHA-256")
     if length > size - _PREFIX.size:
         raise ValueError("header longer than the file")
     meta = json.loads(bytes(view[_PREFIX.size:_PREFIX.size + length]).decode())
@@ -308,12 +319,19 @@ def shard_meta(path) -> dict:
     return _load(path)[0]
 
 
-def read_shard(folder, spec: ShardSpec, build_key: str, column_order, path=None, defer: bool = False):
+def read_shard(folder, spec: ShardSpec, build_key: str, column_order, path=None, defer: bool = False,
+               written=None):
     """Read one shard back and check it belongs to this build and matches its checksum.
 
     ``path`` reads that file instead of ``folder / spec.name`` (a work folder's unit file). With
     ``defer``, the columns of :data:`DEFERRABLE` stored once per transition come back as
     :class:`~goalkit.write.gather.RowGather` (for a writer that gathers them into its blocks).
+
+    ``written`` is ``(sha256 hex, bytes)`` as :func:`write_shard` returned them to the worker that
+    wrote the file in this very run, on this host (its task outcome): the file must carry that
+    SHA-256 in its header and have that size, and its bytes are not hashed a second time. A
+    shard reused from an earlier run (or reported from another host) is read without it: its
+    whole SHA-256 is checked. Docs: docs/scaling.md, "How a sharded build runs".
 
     Returns
     -------
@@ -327,7 +345,7 @@ def read_shard(folder, spec: ShardSpec, build_key: str, column_order, path=None,
     """
     path = Path(folder) / spec.name if path is None else Path(path)
     try:
-        meta, arrays = _load(path)
+        meta, arrays = _load(path, written)
         expect = {"format": SHARD_FORMAT, "format_version": SHARD_FORMAT_VERSION, "build_key": build_key,
                   "index": spec.index, "start": spec.start, "stop": spec.stop, "transitions": spec.transitions,
                   "columns": list(column_order)}
