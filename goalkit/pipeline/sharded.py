@@ -26,7 +26,7 @@ from goalkit.errors import DatasetError, GoalkitError
 from goalkit.logs import spare
 from goalkit.pipeline import poolspare
 from goalkit.pipeline.buildfolder import BuildFolder, build_key
-from goalkit.pipeline.shardfiles import ShardError, check_shard, read_shard
+from goalkit.pipeline.shardfiles import ShardError, check_shard, plan_shards, read_shard
 from goalkit.pipeline.workers import HOST, make_payload
 from goalkit.write.writer import OutputWriteError, os_reason
 
@@ -90,6 +90,10 @@ class ShardProducer:
         if poolspare.wanted() and ready is not None and ready():
             spare.give_back(poolspare.PoolSpare(self.runner))   # kept only inside a build's scope
 
+    def plan_chunks(self, plan, source, transitions_per_chunk: int) -> list:
+        """The shard partition: :func:`~goalkit.pipeline.shardfiles.plan_shards`, tapered at the end."""
+        return plan_shards(plan, transitions_per_chunk, taper=True)
+
     def open(self, plan, source, chunks, inputs) -> None:
         """Compute the build key from ``inputs`` (a future of :class:`BuildInputs`), open the folder.
 
@@ -140,6 +144,9 @@ class ShardProducer:
                     if outcome.get("host") == HOST and outcome.get("sha256") and outcome.get("bytes"):
                         self.written[outcome["index"]] = (outcome["sha256"], outcome["bytes"])
                     self.work.append((outcome.get("seconds", 0.0), outcome.get("cpu_seconds", 0.0)))
+                    release = getattr(self.runner, "release", None)
+                    if release is not None and len(self.ready) == len(self.chunks):
+                        release()     # nothing left to compute: the workers exit while we write
                     yield from self._assembled(count)
             finally:
                 for fut in self.ahead.values():

@@ -98,7 +98,11 @@ class ShardSpec:
         return f"shard {self.index} (episodes {self.first_episode}..{self.last_episode})"
 
 
-def plan_shards(plan, transitions_per_shard: int) -> list[ShardSpec]:
+#: A tapered partition cuts the episodes of its last two shards into this many shards.
+TAPER = 4
+
+
+def plan_shards(plan, transitions_per_shard: int, taper: bool = False) -> list[ShardSpec]:
     """Cut the plan's kept episodes into shards of at most ``transitions_per_shard`` transitions.
 
     Parameters
@@ -106,6 +110,11 @@ def plan_shards(plan, transitions_per_shard: int) -> list[ShardSpec]:
     plan : BuildPlan
     transitions_per_shard : int
         Upper bound per shard; an episode longer than this is a shard of its own.
+    taper : bool
+        Cut the episodes of the last two shards again, into at most :data:`TAPER` shards of
+        about equal size (a sharded build: the coordinator writes the
+        last shard's rows after its worker is done, alone, so a short last shard ends the
+        build sooner; a log smaller than one shard is then shared by several workers).
 
     Returns
     -------
@@ -121,11 +130,40 @@ def plan_shards(plan, transitions_per_shard: int) -> list[ShardSpec]:
     """
     lengths = np.asarray(plan.lengths, dtype=np.int64)
     ids = np.asarray(plan.episode_ids, dtype=np.int64)
+    per = max(1, int(transitions_per_shard))
+    bounds = chunk_bounds(lengths, per)
+    if taper:
+        # the episodes of the last two shards (one full, one the remainder), cut again finer
+        cut = bounds[-2][0] if len(bounds) > 1 else 0
+        finer = [(a + cut, b + cut) for a, b in _even(lengths[cut:], TAPER)]
+        bounds = bounds[:-2] + [(a + c, b + c) for a0, b0 in finer   # never above `per` (memory)
+                                for c in (a0,) for a, b in chunk_bounds(lengths[a0:b0], per)]
     out = []
-    for i, (a, b) in enumerate(chunk_bounds(lengths, max(1, int(transitions_per_shard)))):
+    for i, (a, b) in enumerate(bounds):
         out.append(ShardSpec(index=i, start=a, stop=b, first_episode=int(ids[a]), last_episode=int(ids[b - 1]),
                              transitions=int(lengths[a:b].sum())))
     return out
+
+
+def _even(lengths, parts: int) -> list[tuple[int, int]]:
+    """Consecutive runs of whole episodes, at most ``parts``, of about equal transitions.
+
+    Examples
+    --------
+    >>> _even(np.array([5, 5, 5, 5, 1]), 4)
+    [(0, 1), (1, 2), (2, 3), (3, 5)]
+    """
+    cs = np.cumsum(lengths)
+    if not len(cs):
+        return []
+    # an episode goes to the part its middle transition falls in
+    ends = np.searchsorted(cs - np.asarray(lengths) / 2, cs[-1] * np.arange(1, parts + 1) / parts, side="left")
+    bounds, start = [], 0
+    for e in np.minimum(ends, len(cs)).tolist():
+        if e > start:
+            bounds.append((start, e))
+            start = e
+    return bounds
 
 
 #: Suffix of a column stored once per transition (with ``SPLIT/counts``: rows per transition).

@@ -306,6 +306,7 @@ class LocalRunner:
         self.warm = []
         self.payload_ref = None
         self.broken = False
+        self.released = False
 
     def launch(self) -> None:
         """Start the worker processes now, without a payload (they import what a task needs).
@@ -455,12 +456,23 @@ class LocalRunner:
             for f in self.futures:
                 f.cancel()
             idle = self.payload_ref is None
-            if self.broken or idle or self.dead_workers():
+            if not self.released and (self.broken or idle or self.dead_workers()):
                 for proc in list((getattr(self.pool, "_processes", None) or {}).values()):
                     if proc.exitcode is None:
                         proc.terminate()
             self.pool.shutdown(wait=True, cancel_futures=True)
             self.pool = None
+
+    def release(self) -> None:
+        """Every shard has been computed: let the worker processes exit now, without waiting.
+
+        Called by the sharded producer as the last shard's outcome arrives, so that the workers'
+        exit (interpreter shutdown, about 0.1 s each) overlaps the coordinator's writing of the
+        last rows instead of following it; :meth:`close` then only joins them.
+        """
+        if self.pool is not None and not self.released:
+            self.released = True
+            self.pool.shutdown(wait=False)
 
     def __enter__(self):
         return self
