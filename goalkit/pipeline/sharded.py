@@ -23,9 +23,11 @@ import os
 from concurrent.futures import ThreadPoolExecutor
 
 from goalkit.errors import DatasetError, GoalkitError
+from goalkit.logs import spare
+from goalkit.pipeline import poolspare
 from goalkit.pipeline.buildfolder import BuildFolder, build_key
-from goalkit.pipeline.shardfiles import ShardError, check_shard, read_shard
-from goalkit.pipeline.workers import make_payload
+from goalkit.pipeline.shardfiles import ShardError, check_shard, plan_shards, read_shard
+from goalkit.pipeline.workers import HOST, make_payload
 from goalkit.write.writer import OutputWriteError, os_reason
 
 #: Default output rows per shard of a sharded build (each shard is a task and a file).
@@ -71,12 +73,26 @@ class ShardProducer:
         self.reused = 0
         self.chunks = []
         self.work = []
+        self.written = {}      # shard index -> (sha256, bytes) its worker reported in this run
 
     def launch(self) -> None:
-        """Start the runner's workers before the build plans (when the runner can)."""
+        """Start the runner's workers before the build plans (when the runner can).
+
+        A runner whose workers are up (``runner.ready()``) also stands in for the logs' spare
+        helper process while the build plans (:class:`~goalkit.pipeline.poolspare.PoolSpare`):
+        the planning helper's part of the episodes runs on a worker, and no third interpreter
+        is started.
+        """
         launch = getattr(self.runner, "launch", None)
         if launch is not None:
             launch()
+        ready = getattr(self.runner, "ready", None)
+        if poolspare.wanted() and ready is not None and ready():
+            spare.give_back(poolspare.PoolSpare(self.runner))   # kept only inside a build's scope
+
+    def plan_chunks(self, plan, source, transitions_per_chunk: int) -> list:
+        """The shard partition: :func:`~goalkit.pipeline.shardfiles.plan_shards`, tapered at the end."""
+        return plan_shards(plan, transitions_per_chunk, taper=True)
 
     def open(self, plan, source, chunks, inputs) -> None:
         """Compute the build key from ``inputs`` (a future of :class:`BuildInputs`), open the folder.
@@ -125,7 +141,12 @@ class ShardProducer:
                     if not outcome["ok"]:
                         raise shard_error(by_index[outcome["index"]], outcome["error"], folder)
                     self.ready.add(outcome["index"])
+                    if outcome.get("host") == HOST and outcome.get("sha256") and outcome.get("bytes"):
+                        self.written[outcome["index"]] = (outcome["sha256"], outcome["bytes"])
                     self.work.append((outcome.get("seconds", 0.0), outcome.get("cpu_seconds", 0.0)))
+                    release = getattr(self.runner, "release", None)
+                    if release is not None and len(self.ready) == len(self.chunks):
+                        release()     # nothing left to compute: the workers exit while we write
                     yield from self._assembled(count)
             finally:
                 for fut in self.ahead.values():
@@ -133,7 +154,10 @@ class ShardProducer:
                 self.reader, self.ahead = None, {}
 
     def _read(self, spec):
-        return read_shard(self.folder.path, spec, self.key, self.columns, defer=True)
+        # a shard its worker wrote in this run, on this host: its digest and size as reported
+        # (the bytes are not hashed twice); a reused one: its whole SHA-256 is checked
+        return read_shard(self.folder.path, spec, self.key, self.columns, defer=True,
+                          written=self.written.get(spec.index))
 
     def _assembled(self, count):
         """The next shards in order whose files are ready (the one after, if ready, read meanwhile)."""

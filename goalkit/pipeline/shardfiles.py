@@ -98,7 +98,11 @@ class ShardSpec:
         return f"shard {self.index} (episodes {self.first_episode}..{self.last_episode})"
 
 
-def plan_shards(plan, transitions_per_shard: int) -> list[ShardSpec]:
+#: A tapered partition cuts the episodes of its last two shards into this many shards.
+TAPER = 4
+
+
+def plan_shards(plan, transitions_per_shard: int, taper: bool = False) -> list[ShardSpec]:
     """Cut the plan's kept episodes into shards of at most ``transitions_per_shard`` transitions.
 
     Parameters
@@ -106,6 +110,11 @@ def plan_shards(plan, transitions_per_shard: int) -> list[ShardSpec]:
     plan : BuildPlan
     transitions_per_shard : int
         Upper bound per shard; an episode longer than this is a shard of its own.
+    taper : bool
+        Cut the episodes of the last two shards again, into at most :data:`TAPER` shards of
+        about equal size (a sharded build: the coordinator writes the
+        last shard's rows after its worker is done, alone, so a short last shard ends the
+        build sooner; a log smaller than one shard is then shared by several workers).
 
     Returns
     -------
@@ -121,11 +130,40 @@ def plan_shards(plan, transitions_per_shard: int) -> list[ShardSpec]:
     """
     lengths = np.asarray(plan.lengths, dtype=np.int64)
     ids = np.asarray(plan.episode_ids, dtype=np.int64)
+    per = max(1, int(transitions_per_shard))
+    bounds = chunk_bounds(lengths, per)
+    if taper:
+        # the episodes of the last two shards (one full, one the remainder), cut again finer
+        cut = bounds[-2][0] if len(bounds) > 1 else 0
+        finer = [(a + cut, b + cut) for a, b in _even(lengths[cut:], TAPER)]
+        bounds = bounds[:-2] + [(a + c, b + c) for a0, b0 in finer   # never above `per` (memory)
+                                for c in (a0,) for a, b in chunk_bounds(lengths[a0:b0], per)]
     out = []
-    for i, (a, b) in enumerate(chunk_bounds(lengths, max(1, int(transitions_per_shard)))):
+    for i, (a, b) in enumerate(bounds):
         out.append(ShardSpec(index=i, start=a, stop=b, first_episode=int(ids[a]), last_episode=int(ids[b - 1]),
                              transitions=int(lengths[a:b].sum())))
     return out
+
+
+def _even(lengths, parts: int) -> list[tuple[int, int]]:
+    """Consecutive runs of whole episodes, at most ``parts``, of about equal transitions.
+
+    Examples
+    --------
+    >>> _even(np.array([5, 5, 5, 5, 1]), 4)
+    [(0, 1), (1, 2), (2, 3), (3, 5)]
+    """
+    cs = np.cumsum(lengths)
+    if not len(cs):
+        return []
+    # an episode goes to the part its middle transition falls in
+    ends = np.searchsorted(cs - np.asarray(lengths) / 2, cs[-1] * np.arange(1, parts + 1) / parts, side="left")
+    bounds, start = [], 0
+    for e in np.minimum(ends, len(cs)).tolist():
+        if e > start:
+            bounds.append((start, e))
+            start = e
+    return bounds
 
 
 #: Suffix of a column stored once per transition (with ``SPLIT/counts``: rows per transition).
@@ -219,7 +257,8 @@ def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order, pat
     Returns
     -------
     dict
-        ``{"index", "rows", "sha256"}`` (the file's SHA-256, see the module notes).
+        ``{"index", "rows", "sha256", "bytes"}`` (the file's SHA-256, see the module notes, and
+        its size).
 
     Raises
     ------
@@ -265,11 +304,17 @@ def write_shard(folder, spec: ShardSpec, build_key: str, rows, column_order, pat
             f.write(piece)
 
     write_own_file(path, write, what="shard file")
-    return {"index": spec.index, "rows": counts, "sha256": digest.hex()}
+    size = _PREFIX.size + sum(len(piece) for piece in pieces)
+    return {"index": spec.index, "rows": counts, "sha256": digest.hex(), "bytes": size}
 
 
-def _load(path):
-    """``(meta, arrays)`` of a shard file whose checksum holds; ShardError-free: raises ValueError."""
+def _load(path, written=None):
+    """``(meta, arrays)`` of a shard file whose checksum holds; ShardError-free: raises ValueError.
+
+    ``written``: ``(sha256 hex, bytes)`` its worker reported for a shard computed in this run;
+    the file must then carry that digest and have that size, and its bytes are not hashed again
+    (see :func:`read_shard`).
+    """
     with open(path, "rb") as f:
         size = os.fstat(f.fileno()).st_size
         if size < _PREFIX.size:
@@ -281,10 +326,14 @@ def _load(path):
     if magic != MAGIC:
         raise ValueError("not a goalkit shard file (or one of another version)")
     view = memoryview(buf)
-    h = hashlib.sha256(view[8:16])
-    h.update(view[_PREFIX.size:])
-    if h.digest() != digest:
-        raise ShardChecksumError("its bytes do not match the shard's SHA-256")
+    if written is not None:
+        if digest.hex() != written[0] or size != written[1]:
+            raise ShardChecksumError("not the file its worker wrote (another SHA-256 or size)")
+    else:
+        h = hashlib.sha256(view[8:16])
+        h.update(view[_PREFIX.size:])
+        if h.digest() != digest:
+            raise ShardChecksumError("its bytes do not match the shard's SHA-256")
     if length > size - _PREFIX.size:
         raise ValueError("header longer than the file")
     meta = json.loads(bytes(view[_PREFIX.size:_PREFIX.size + length]).decode())
@@ -308,12 +357,19 @@ def shard_meta(path) -> dict:
     return _load(path)[0]
 
 
-def read_shard(folder, spec: ShardSpec, build_key: str, column_order, path=None, defer: bool = False):
+def read_shard(folder, spec: ShardSpec, build_key: str, column_order, path=None, defer: bool = False,
+               written=None):
     """Read one shard back and check it belongs to this build and matches its checksum.
 
     ``path`` reads that file instead of ``folder / spec.name`` (a work folder's unit file). With
     ``defer``, the columns of :data:`DEFERRABLE` stored once per transition come back as
     :class:`~goalkit.write.gather.RowGather` (for a writer that gathers them into its blocks).
+
+    ``written`` is ``(sha256 hex, bytes)`` as :func:`write_shard` returned them to the worker that
+    wrote the file in this very run, on this host (its task outcome): the file must carry that
+    SHA-256 in its header and have that size, and its bytes are not hashed a second time. A
+    shard reused from an earlier run (or reported from another host) is read without it: its
+    whole SHA-256 is checked. Docs: docs/scaling.md, "How a sharded build runs".
 
     Returns
     -------
@@ -327,7 +383,7 @@ def read_shard(folder, spec: ShardSpec, build_key: str, column_order, path=None,
     """
     path = Path(folder) / spec.name if path is None else Path(path)
     try:
-        meta, arrays = _load(path)
+        meta, arrays = _load(path, written)
         expect = {"format": SHARD_FORMAT, "format_version": SHARD_FORMAT_VERSION, "build_key": build_key,
                   "index": spec.index, "start": spec.start, "stop": spec.stop, "transitions": spec.transitions,
                   "columns": list(column_order)}

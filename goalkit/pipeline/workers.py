@@ -27,6 +27,7 @@ import hashlib
 import importlib
 import os
 import pickle
+import socket
 import threading
 import time
 from dataclasses import dataclass, replace
@@ -43,6 +44,8 @@ from goalkit.pipeline.shardfiles import write_shard
 
 #: Seconds between checks that every local worker process is still alive.
 LIVENESS_SECONDS = 0.2
+#: This machine's name: a task outcome says where its shard file was written.
+HOST = socket.gethostname()
 #: Arrays larger than this are spilled to a memory-mapped file instead of pickled.
 SPILL_BYTES = 1 << 20
 #: Modules a worker imports while the coordinator plans (what unpickling a payload and reading
@@ -132,7 +135,8 @@ def run_shard(payload: Payload, spec, folder, build_key: str) -> dict:
     Returns
     -------
     dict
-        ``{"ok": True, "index", "rows", "sha256", "seconds", "cpu_seconds", "phases"}`` (wall seconds
+        ``{"ok": True, "index", "rows", "sha256", "bytes", "host", "seconds", "cpu_seconds",
+        "phases"}`` (the shard file's SHA-256 and size, the host it was written on; wall seconds
         of the task and of its read, relabel and write; CPU seconds of the task's thread) or
         ``{"ok": False, "index", "error"}``.
     """
@@ -147,7 +151,7 @@ def run_shard(payload: Payload, spec, folder, build_key: str) -> dict:
     except Exception as exc:  # reported to the coordinator as data, never lost in transport
         return failure(spec, exc)
     t3 = time.perf_counter()
-    return {"ok": True, **info, "seconds": t3 - t0, "cpu_seconds": time.thread_time() - c0,
+    return {"ok": True, **info, "host": HOST, "seconds": t3 - t0, "cpu_seconds": time.thread_time() - c0,
             "phases": {"read": t1 - t0, "relabel": t2 - t1, "write": t3 - t2}}
 
 
@@ -302,6 +306,7 @@ class LocalRunner:
         self.warm = []
         self.payload_ref = None
         self.broken = False
+        self.released = False
 
     def launch(self) -> None:
         """Start the worker processes now, without a payload (they import what a task needs).
@@ -339,6 +344,10 @@ class LocalRunner:
             self.broken = True
         finally:
             signal.pthread_sigmask(signal.SIG_SETMASK, blocked)
+
+    def ready(self) -> bool:
+        """True when the pool has been launched and no worker is known to have died."""
+        return self.pool is not None and not self.broken
 
     def submit(self, fn, *args):
         """Run ``fn(*args)`` on one of the workers; a :class:`concurrent.futures.Future`.
@@ -447,12 +456,23 @@ class LocalRunner:
             for f in self.futures:
                 f.cancel()
             idle = self.payload_ref is None
-            if self.broken or idle or self.dead_workers():
+            if not self.released and (self.broken or idle or self.dead_workers()):
                 for proc in list((getattr(self.pool, "_processes", None) or {}).values()):
                     if proc.exitcode is None:
                         proc.terminate()
             self.pool.shutdown(wait=True, cancel_futures=True)
             self.pool = None
+
+    def release(self) -> None:
+        """Every shard has been computed: let the worker processes exit now, without waiting.
+
+        Called by the sharded producer as the last shard's outcome arrives, so that the workers'
+        exit (interpreter shutdown, about 0.1 s each) overlaps the coordinator's writing of the
+        last rows instead of following it; :meth:`close` then only joins them.
+        """
+        if self.pool is not None and not self.released:
+            self.released = True
+            self.pool.shutdown(wait=False)
 
     def __enter__(self):
         return self

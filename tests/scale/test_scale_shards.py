@@ -220,3 +220,31 @@ def test_deferred_gathers_are_packed_by_their_index_and_handed_back_deferred(tmp
         assert np.asarray(deferred.columns["train"][name]).tobytes() == expected[name].tobytes(), name
     assert isinstance(deferred.columns["train"]["observation"], RowGather)
     assert not isinstance(deferred.columns["train"]["action"], RowGather)     # stored per row
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.integers(1, 50), min_size=1, max_size=80), st.integers(1, 120))
+def test_a_tapered_partition_recuts_only_the_last_two_shards(lengths, limit):
+    plan = SimpleNamespace(lengths=np.array(lengths), episode_ids=np.arange(len(lengths)) * 2)
+    plain, tapered = plan_shards(plan, limit), plan_shards(plan, limit, taper=True)
+    # every episode once, in order, each shard within the limit unless it is one long episode
+    assert [s.index for s in tapered] == list(range(len(tapered)))
+    assert tapered[0].start == 0 and tapered[-1].stop == len(lengths)
+    for a, b in zip(tapered, tapered[1:]):
+        assert a.stop == b.start
+    for s in tapered:
+        assert s.stop > s.start and s.transitions == sum(lengths[s.start:s.stop])
+        assert s.transitions <= limit or s.stop - s.start == 1
+    # the shards before the last two of the plain partition are the plain ones
+    kept = max(0, len(plain) - 2)
+    assert [(s.start, s.stop) for s in tapered[:kept]] == [(s.start, s.stop) for s in plain[:kept]]
+    # their episodes are cut again into at most 4 runs (each at most the limit), of about equal size
+    tail = tapered[kept:]
+    region = sum(s.transitions for s in tail)
+    if all(n <= limit // 4 for n in lengths[plain[kept].start:]):
+        assert len(tail) <= 4
+        # no run exceeds a quarter of the region by more than one episode
+        biggest = max(lengths[plain[kept].start:])
+        assert max(s.transitions for s in tail) <= region / 4 + biggest
+    if region >= 4 * max(lengths[plain[kept].start:]) and len(lengths) - plain[kept].start >= 4:
+        assert len(tail) >= 2

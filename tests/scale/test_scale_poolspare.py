@@ -1,0 +1,128 @@
+"""A sharded build's workers standing in for the logs' spare helper while the build plans, and
+the coordinator's check of shard files its workers wrote in this run."""
+
+import math
+import os
+import time
+from dataclasses import replace
+from types import SimpleNamespace
+
+import numpy as np
+import pytest
+
+from goalkit.logs import grouped, planspawn, spare
+from goalkit.pipeline.build import build
+from goalkit.pipeline.chunk import ChunkRows
+from goalkit.pipeline.poolspare import PoolSpare
+from goalkit.pipeline.recipe import load_recipe
+from goalkit.pipeline.shardfiles import ShardError, plan_shards, read_shard, write_shard
+from goalkit.pipeline.workers import LocalRunner
+
+from conftest import change_value, sha256
+
+
+def test_pool_spare_answers_like_a_spare_and_failures_read_as_none():
+    with LocalRunner(1) as runner:
+        runner.launch()
+        helper = PoolSpare(runner)
+        assert helper.alive and helper.proc is None
+        # one answer per args, in order; a call that raises is a failed answer (None), not an error
+        assert helper.send({"call": math.sqrt, "each": [(16.0,), (-1.0,), (2.25,)]})
+        assert [helper.receive() for _ in range(3)] == [4.0, None, 1.5]
+        assert helper.send({"call": math.factorial, "each": [(5,)]})
+        assert helper.receive() == 120
+        assert helper.receive() is None          # nothing asked: nothing to wait for
+        helper.close()
+        assert not helper.alive and not helper.send({"call": math.sqrt, "each": [(1.0,)]})
+
+
+def test_pool_spare_gives_up_when_its_worker_dies():
+    with LocalRunner(1) as runner:
+        runner.launch()
+        pid = runner.warm[0].result(timeout=60)
+        helper = PoolSpare(runner, every=0.05)
+        assert helper.send({"call": time.sleep, "each": [(30,)]})
+        time.sleep(0.3)                           # the worker is inside the task
+        os.kill(pid, 9)
+        t0 = time.monotonic()
+        assert helper.receive() is None           # a dead worker: no answer, and no hang
+        assert time.monotonic() - t0 < 10
+        assert not helper.send({"call": math.sqrt, "each": [(4.0,)]})   # the pool is gone
+
+
+@pytest.fixture()
+def helper_log(gantry, monkeypatch):
+    """The scale logs (240 groups) planned with a helper, as logs of 1,500+ groups are."""
+    monkeypatch.setattr(planspawn, "MIN_GROUPS", 50)
+    monkeypatch.setattr(planspawn, "MIN_GROUPS_COLD", 50)
+    monkeypatch.setattr(spare, "WARM_BYTES", 0)
+    seen = []
+    finish = grouped.finish_helper
+
+    def watched(helper, *args, **kwargs):
+        found = finish(helper, *args, **kwargs)
+        seen.append((type(helper).__name__, found is not None))
+        return found
+
+    monkeypatch.setattr(grouped, "finish_helper", watched)
+    started = []
+    real_start = spare.Spare.start.__func__
+    monkeypatch.setattr(spare.Spare, "start", classmethod(lambda cls: started.append(1) or real_start(cls)))
+    return SimpleNamespace(seen=seen, started=started)
+
+
+def test_a_sharded_build_plans_its_helper_part_on_a_worker(gantry, reference, helper_log, tmp_path, monkeypatch):
+    monkeypatch.delenv("GOALKIT_POOL_HELPER", raising=False)
+    recipe = load_recipe(gantry / "scale-recipe.toml").with_overrides(out=tmp_path / "pooled.h5")
+    build(recipe, workers=2, max_rows_per_chunk=3000, card=False)
+    # the planning helper was a pool worker, it answered, and no helper interpreter was started
+    assert helper_log.seen == [("PoolSpare", True)]
+    assert helper_log.started == []
+    assert sha256(tmp_path / "pooled.h5") == reference[1]
+
+
+def test_the_stand_in_can_be_turned_off(gantry, reference, helper_log, tmp_path, monkeypatch):
+    monkeypatch.setenv("GOALKIT_POOL_HELPER", "0")
+    recipe = load_recipe(gantry / "scale-recipe.toml").with_overrides(out=tmp_path / "spared.h5")
+    build(recipe, workers=2, max_rows_per_chunk=3000, card=False)
+    assert helper_log.seen == [("Spare", True)] and helper_log.started == [1]
+    assert sha256(tmp_path / "spared.h5") == reference[1]
+
+
+def _spec_and_rows():
+    spec = plan_shards(SimpleNamespace(lengths=np.array([4, 5]), episode_ids=np.array([2, 3])), 20)[0]
+    g = np.random.default_rng(5)
+    cols = {"source_episode": np.repeat(np.array([2, 3], np.int64), [8, 10]), "goal": g.normal(size=(18, 3))}
+    return spec, ["source_episode", "goal"], ChunkRows({"train": cols}, {"train": np.arange(18, dtype=np.int64)})
+
+
+def test_a_shard_written_in_this_run_is_checked_by_its_reported_digest_and_size(tmp_path):
+    spec, order, rows = _spec_and_rows()
+    info = write_shard(tmp_path, spec, "k", rows, order)
+    path = tmp_path / spec.name
+    assert info["bytes"] == path.stat().st_size
+    written = (info["sha256"], info["bytes"])
+    back = read_shard(tmp_path, spec, "k", order, written=written)
+    np.testing.assert_array_equal(back.columns["train"]["goal"], rows.columns["train"]["goal"])
+    # another file at the shard's name (another digest), or the file cut or grown: refused
+    with pytest.raises(ShardError, match="rows do not match"):
+        read_shard(tmp_path, spec, "k", order, written=("0" * 64, info["bytes"]))
+    clean = path.read_bytes()
+    for damaged in (clean[:-64], clean + bytes(64)):
+        path.write_bytes(damaged)
+        with pytest.raises(ShardError):
+            read_shard(tmp_path, spec, "k", order, written=written)
+    # the header still says what the worker wrote; a value changed afterwards is not rehashed on
+    # this path (the run's own file, moments old), but a shard reused by a later run is
+    # read without `written` and its whole SHA-256 catches it
+    path.write_bytes(clean)
+    change_value(path, "train/goal", 7)
+    read_shard(tmp_path, spec, "k", order, written=written)
+    with pytest.raises(ShardError, match="rows do not match"):
+        read_shard(tmp_path, spec, "k", order)
+    # the header's other checks still hold with `written`
+    path.write_bytes(clean)
+    with pytest.raises(ShardError, match="build_key"):
+        read_shard(tmp_path, spec, "other", order, written=written)
+    with pytest.raises(ShardError, match="stop"):
+        read_shard(tmp_path, replace(spec, stop=1), "k", order, written=written)
