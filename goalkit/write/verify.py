@@ -102,6 +102,37 @@ def _first(mask) -> int:
     return int(np.flatnonzero(mask)[0])
 
 
+def _rows_differ(a, b) -> np.ndarray:
+    """``np.any(a != b, axis=1)`` over rows (arrays of shape (n, k)): the rows where they differ.
+
+    Compared once as flat arrays first; the per-row reduction (slow over a short second axis)
+    runs only when something differs.
+    """
+    ne = a != b
+    if ne.ndim == 2 and not ne.any():
+        return np.zeros(len(ne), bool)
+    return np.any(ne, axis=1)
+
+
+class _Runs:
+    """Runs of equal values of an int array (stored rows come grouped by episode).
+
+    :meth:`spread` gives ``f(values)`` from ``f(self.values)``, for any ``f`` that maps each
+    value on its own (a position, a length, membership): ``f`` runs once per run, not per row.
+    """
+
+    def __init__(self, values):
+        values = np.asarray(values)
+        self.n = len(values)
+        starts = np.flatnonzero(values[1:] != values[:-1]) + 1 if self.n > 1 else np.zeros(0, np.int64)
+        starts = np.concatenate((np.zeros(min(self.n, 1), np.int64), starts))
+        self.values = values[starts]
+        self.lengths = np.diff(np.append(starts, self.n))
+
+    def spread(self, per_run) -> np.ndarray:
+        return np.repeat(per_run, self.lengths, axis=0)
+
+
 def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
     """Check stored rows ``cols`` of one chunk against the logs and the rules (no re-derivation)."""
     n_rows = len(cols["source_episode"])
@@ -109,11 +140,13 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
         return
     goal_dtype = np.dtype(plan.recipe.goal.dtype)
     source_ep, steps = cols["source_episode"], cols["source_step"]
-    if not np.isin(source_ep, chunk.episode_ids).all():
+    runs = _Runs(source_ep)
+    if not np.isin(runs.values, chunk.episode_ids).all():
         report.fail(f"{split_name} row {row0}: source episodes outside the logs' chunk")
         return
-    pos = chunk.position_of(source_ep)
-    lengths = chunk.lengths[pos]
+    pos_runs = chunk.position_of(runs.values)
+    pos = runs.spread(pos_runs)
+    lengths = runs.spread(chunk.lengths[pos_runs])
     bad = (steps < 0) | (steps >= lengths)
     if bad.any():
         row = _first(bad)
@@ -123,15 +156,15 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
     cur = chunk.state_row(pos, steps)
     trans = chunk.offsets[pos] + steps
     code = SPLIT_CODES[split_name]
-    gpos_src = plan.positions(source_ep)
-    wrong_split = plan.splits[gpos_src] != code
+    wrong_split = runs.spread(plan.splits[plan.positions(runs.values)] != code)
     if wrong_split.any():
         row = _first(wrong_split)
         report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): the episode belongs to the other split")
     if "observation" in cols:
         for name, ref in (("observation", chunk.observations[cur]), ("action", chunk.actions[trans]),
                           ("next_observation", chunk.observations[cur + 1])):
-            diff = np.any(np.asarray(cols[name]).reshape(n_rows, -1) != np.asarray(ref, dtype=cols[name].dtype).reshape(n_rows, -1), axis=1)
+            diff = _rows_differ(np.asarray(cols[name]).reshape(n_rows, -1),
+                                np.asarray(ref, dtype=cols[name].dtype).reshape(n_rows, -1))
             if diff.any():
                 row = _first(diff)
                 report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): {name} is not the logged value")
@@ -151,7 +184,7 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
     phi = plan.goal_map(chunk, np.arange(chunk.observations.shape[0])).astype(goal_dtype)
     achieved = phi[cur + 1]
     if "reached_goal" in cols:
-        diff = np.any(cols["reached_goal"] != achieved, axis=1)
+        diff = _rows_differ(cols["reached_goal"], achieved)
         if diff.any():
             row = _first(diff)
             report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): reached_goal is not phi(s_t+1)")
@@ -159,32 +192,34 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
     goal_ep, goal_step = cols["goal_episode"], cols["goal_step"]
     internal = goal_ep >= 0
     if internal.any():
-        known = np.isin(goal_ep[internal], plan.episode_ids)
+        inner = _Runs(goal_ep[internal])
+        known = inner.spread(np.isin(inner.values, plan.episode_ids))
         if not known.all():
             row = _first(internal) if known.all() else np.flatnonzero(internal)[_first(~known)]
             report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): goal episode "
                         f"{int(goal_ep[row])} is not in the logs")
             return
-        gpos = plan.positions(goal_ep[internal])
-        glen = plan.lengths[gpos]
+        gpos_runs = plan.positions(inner.values)
+        glen = inner.spread(plan.lengths[gpos_runs])
         out = (goal_step[internal] < 0) | (goal_step[internal] > glen)
         if out.any():
             row = np.flatnonzero(internal)[_first(out)]
             report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): goal step {int(goal_step[row])} outside "
                         f"episode {int(goal_ep[row])}")
             return
-        crosses = plan.splits[gpos] != code
+        crosses = inner.spread(plan.splits[gpos_runs] != code)
         if crosses.any():
             row = np.flatnonzero(internal)[_first(crosses)]
             report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): the goal comes from episode "
                         f"{int(goal_ep[row])} of the other split")
-        expect = _goal_at(plan, chunk, phi, goal_ep[internal], goal_step[internal]).astype(goal_dtype)
-        diff = np.any(cols["goal"][internal] != expect, axis=1)
+        expect = _goal_at(plan, chunk, phi, goal_ep[internal], goal_step[internal], inner).astype(goal_dtype)
+        diff = _rows_differ(cols["goal"][internal], expect)
         if diff.any():
             row = np.flatnonzero(internal)[_first(diff)]
             report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): goal is not phi of episode "
                         f"{int(goal_ep[row])} step {int(goal_step[row])}")
-    for message, mask in check_goal_rules(cols, lengths, plan.lengths[plan.positions(np.where(internal, goal_ep, source_ep))]):
+    either = _Runs(np.where(internal, goal_ep, source_ep))
+    for message, mask in check_goal_rules(cols, lengths, either.spread(plan.lengths[plan.positions(either.values)])):
         if mask.any():
             row = _first(mask)
             report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): {message}")
@@ -221,11 +256,17 @@ def _strategy_code_problems(file) -> list[str]:
     return out
 
 
-def _goal_at(plan, chunk, phi_chunk, episodes, steps) -> np.ndarray:
-    """phi at (episode id, step), from the chunk when the episode is in it, else from the logs."""
+def _goal_at(plan, chunk, phi_chunk, episodes, steps, runs=None) -> np.ndarray:
+    """phi at (episode id, step), from the chunk when the episode is in it, else from the logs
+    (``runs``: the runs of ``episodes``, when the caller has them)."""
     out = np.empty((len(episodes), phi_chunk.shape[1]), dtype=phi_chunk.dtype)
-    inside = np.isin(episodes, chunk.episode_ids)
-    if inside.any():
+    runs = _Runs(episodes) if runs is None else runs
+    inside_runs = np.isin(runs.values, chunk.episode_ids)
+    inside = runs.spread(inside_runs)
+    if inside.all():   # the usual case: every goal from the chunk's episodes
+        positions = runs.spread(chunk.position_of(runs.values))
+        out[:] = phi_chunk[chunk.state_row(positions, steps)]
+    elif inside.any():
         positions = chunk.position_of(episodes[inside])
         out[inside] = phi_chunk[chunk.state_row(positions, steps[inside])]
     if (~inside).any():
@@ -333,7 +374,8 @@ def _replay(goal_set, plan, source, recipe, report, relocation, digests, progres
                              distance_unit=recipe.reward.reach_threshold, rule=recipe.reward)
     total = {split: goal_set.rows(split) for split in SPLITS}
     stored_names = {split: goal_set.columns(split) for split in SPLITS}
-    readers = {split: SplitColumns(goal_set, split, stored_names[split]) for split in SPLITS if stored_names[split]}
+    readers = {split: SplitColumns(goal_set, split, stored_names[split], keep_tails=True)
+               for split in SPLITS if stored_names[split]}
     try:
         return _replay_rows(goal_set, plan, source, report, relocation, digests, progress, feed, manifest,
                             summary, total, stored_names, readers)
@@ -529,8 +571,7 @@ def _compare(fresh: dict, stored: dict, split: str, row0: int, report: VerifyRep
     """Re-derived rows against stored rows, column by column."""
     for name, value in stored.items():
         ref = np.asarray(fresh[name]).astype(value.dtype, copy=False)
-        diff = value.reshape(len(value), -1) != ref.reshape(len(ref), -1)
-        bad = np.any(diff, axis=1)
+        bad = _rows_differ(value.reshape(len(value), -1), ref.reshape(len(ref), -1))
         if bad.any():
             row = _first(bad)
             report.fail(f"{split} row {row0 + row} ({_row_text(stored, row)}): {name} differs from what the recipe "

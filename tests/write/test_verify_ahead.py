@@ -26,6 +26,7 @@ from goalkit.pipeline.build import build
 from goalkit.pipeline.chunk import relabel_chunk
 from goalkit.pipeline.plan import make_plan, split_rows
 from goalkit.pipeline.recipe import load_recipe
+from goalkit.write import chunkread
 from goalkit.write.checklane import CheckLane
 from goalkit.write.chunkread import SplitColumns
 from goalkit.write.format import SPLITS
@@ -165,3 +166,28 @@ def test_stored_rows_decoded_on_threads_are_hdf5s_own(built, data):
                 want = np.concatenate([ds[a:b] for a, b in ranges])
                 assert value.dtype == ds.dtype
                 np.testing.assert_array_equal(value, want)
+
+
+@given(data=st.data())
+@settings(max_examples=25, deadline=None)
+def test_consecutive_ranges_inflate_each_stored_chunk_once(built, data):
+    """verify's readers keep a chunk read only in part for the next range: over consecutive
+    ranges (as the replay reads them, ends anywhere in a chunk) every stored chunk is inflated
+    once per column, and the rows are HDF5's own."""
+    inflated = []
+    inflate = chunkread._inflate
+    path = built[1].output.path
+    with pytest.MonkeyPatch.context() as m, GoalSet(path) as gs:
+        m.setattr(chunkread, "_inflate", lambda stored, size: inflated.append(size) or inflate(stored, size))
+        reader = SplitColumns(gs, "train", ["goal", "source_step", "reward"], keep_tails=True)
+        n, per = reader.rows, reader.chunk_rows
+        cuts = sorted(set(data.draw(st.lists(st.integers(1, n - 1), min_size=1, max_size=12))))
+        bounds = list(zip([0] + cuts, cuts + [n]))
+        try:
+            parts = [reader.read(a, b) for a, b in bounds]
+        finally:
+            reader.close()
+        with h5py.File(path, "r") as f:
+            for name in ("goal", "source_step", "reward"):
+                np.testing.assert_array_equal(np.concatenate([p[name] for p in parts]), f["train"][name][:])
+    assert len(inflated) == 3 * -(-n // per)   # every chunk of each of the three columns, once
