@@ -52,6 +52,7 @@ from goalkit.rows import END_FLAG_SOURCES
 from goalkit.write.checklane import CheckLane
 from goalkit.write.chunkread import SplitColumns
 from goalkit.write.format import SPLIT_CODES, SPLITS
+from goalkit.write.gather import RowGather
 from goalkit.write.reader import GoalSet, ManifestCheck
 from goalkit.write.relocate import locate
 from goalkit.write.rederive import (as_stored, check_columns, differences, provenance_differences,
@@ -133,8 +134,12 @@ class _Runs:
         return np.repeat(per_run, self.lengths, axis=0)
 
 
-def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
-    """Check stored rows ``cols`` of one chunk against the logs and the rules (no re-derivation)."""
+def check_rows(plan, chunk, cols, split_name, report, row0, seen=None) -> None:
+    """Check stored rows ``cols`` of one chunk against the logs and the rules (no re-derivation).
+
+    ``seen`` (a dict), when given, receives ``name -> (logged array, row index, rows differing)``
+    of the observation, action and next_observation comparisons (for :func:`_compare`).
+    """
     n_rows = len(cols["source_episode"])
     if n_rows == 0:
         return
@@ -161,10 +166,13 @@ def check_rows(plan, chunk, cols, split_name, report, row0) -> None:
         row = _first(wrong_split)
         report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): the episode belongs to the other split")
     if "observation" in cols:
-        for name, ref in (("observation", chunk.observations[cur]), ("action", chunk.actions[trans]),
-                          ("next_observation", chunk.observations[cur + 1])):
+        logged = (("observation", chunk.observations, cur), ("action", chunk.actions, trans),
+                  ("next_observation", chunk.observations, cur + 1))
+        for (name, source, index), ref in zip(logged, [source[index] for _, source, index in logged]):
             diff = _rows_differ(np.asarray(cols[name]).reshape(n_rows, -1),
                                 np.asarray(ref, dtype=cols[name].dtype).reshape(n_rows, -1))
+            if seen is not None:
+                seen[name] = (source, index, diff)
             if diff.any():
                 row = _first(diff)
                 report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): {name} is not the logged value")
@@ -546,7 +554,7 @@ def _replay_chunks(plan, source, report, progress, feed, manifest, summary, tota
         ahead.start(0)
         for i, (first_ep, stop_ep, chunk) in enumerate(chunks):
             ahead.start(i + 1)
-            fresh = relabel_chunk(plan, chunk)
+            fresh = relabel_chunk(plan, chunk, defer_gathers=True)
             for split in SPLITS:
                 n_rows = len(fresh.keys.get(split, ()))
                 row0, row_stop = cursor[split], cursor[split] + n_rows
@@ -554,10 +562,11 @@ def _replay_chunks(plan, source, report, progress, feed, manifest, summary, tota
                     report.fail(f"{split}: fewer rows stored ({total[split]}) than the recipe produces")
                     return None
                 stored = ahead.take(i, split, row0, row_stop)
-                check_rows(plan, chunk, stored, split, report, row0)
+                seen = {}
+                check_rows(plan, chunk, stored, split, report, row0, seen)
                 lane.submit(_side_checks, manifest, feed, split, row0, row_stop, stored, chunk)
                 if n_rows:
-                    _compare(fresh.columns[split], stored, split, row0, report)
+                    _compare(fresh.columns[split], stored, split, row0, report, seen)
                     summary.add(split, fresh.columns[split], fresh.keys[split])
                 cursor[split] = row_stop
             if progress is not None:
@@ -567,11 +576,22 @@ def _replay_chunks(plan, source, report, progress, feed, manifest, summary, tota
     return cursor
 
 
-def _compare(fresh: dict, stored: dict, split: str, row0: int, report: VerifyReport) -> None:
-    """Re-derived rows against stored rows, column by column."""
+def _compare(fresh: dict, stored: dict, split: str, row0: int, report: VerifyReport, seen=None) -> None:
+    """Re-derived rows against stored rows, column by column.
+
+    The observation, action and next_observation columns come as row gathers of the logged
+    arrays; when one takes the very rows :func:`check_rows` compared (``seen``: same array,
+    same row index), the rows that differ are the ones found there, else they are gathered.
+    """
     for name, value in stored.items():
-        ref = np.asarray(fresh[name]).astype(value.dtype, copy=False)
-        bad = _rows_differ(value.reshape(len(value), -1), ref.reshape(len(ref), -1))
+        column = fresh[name]
+        known = (seen or {}).get(name)
+        if (isinstance(column, RowGather) and known is not None and column.source is known[0]
+                and np.array_equal(column.index, known[1])):
+            bad = known[2]
+        else:
+            ref = np.asarray(column).astype(value.dtype, copy=False)
+            bad = _rows_differ(value.reshape(len(value), -1), ref.reshape(len(ref), -1))
         if bad.any():
             row = _first(bad)
             report.fail(f"{split} row {row0 + row} ({_row_text(stored, row)}): {name} differs from what the recipe "
