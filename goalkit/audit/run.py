@@ -392,13 +392,24 @@ class AuditFeed:
             preload_scipy()
         self.fed = a is not None and a.heads is None and a.graph is None
         if self.fed:
-            a.start()
+            try:
+                a.start()
+            except _Unreadable as exc:   # the rows' episodes are not known: nothing is audited
+                a.not_audited(exc)
+                self._auditor, self.fed = None, False
+                return
             a.positional = True
 
     def add(self, split, a, b, stored: dict, chunk) -> None:
         """Audit rows ``a .. b - 1`` of ``split`` (whole transitions of the episodes of ``chunk``)."""
         if self.fed and b > a:
             self._auditor.block(split, a, b, self._auditor.counts[split], stored=stored, chunk=chunk)
+
+    def unread(self, split, a, b) -> None:
+        """Rows ``a .. b - 1`` of ``split`` that verify could not read (a stored chunk that does
+        not decompress): not audited, and the audit says so (see :meth:`_Auditor.end`)."""
+        if self.fed and b > a:
+            self._auditor.unread.append((split, a, b))
 
     def add_stored(self, split, a, b) -> None:
         """Audit rows ``a .. b - 1`` of ``split``, read here (rows verify did not read)."""
@@ -423,6 +434,21 @@ class AuditFeed:
         self._file.close()
 
 
+class _Unreadable(Exception):
+    """A column the audit needs whole cannot be read (its text: split/column)."""
+
+
+def _merged(ranges) -> list:
+    """``(split, a, b)`` ranges in the splits' order, touching ranges of one split merged."""
+    out = []
+    for s, a, b in sorted(ranges, key=lambda r: (SPLITS.index(r[0]), r[1])):
+        if out and out[-1][0] == s and out[-1][2] >= a:
+            out[-1] = (s, out[-1][1], max(out[-1][2], b))
+        else:
+            out.append((s, a, b))
+    return out
+
+
 class _Auditor:
     def __init__(self, f, rc, logs, report, seed, sample, alpha):
         self.f, self.rc, self.logs, self.report = f, rc, logs, report
@@ -435,6 +461,7 @@ class _Auditor:
         self.graph = GraphAudit(logs, rc.graph) if rc.graph is not None else None
         self.summary_sources = None
         self.positional = False   # jitter addressed by row position (rows fed in another order)
+        self.unread = []          # (split, first row, end row) of rows that could not be read
         self.heads = HeadAudit(rc, logs, self.draws, seed, self.masks) if rc.heads else None
 
     # ---- failures ------------------------------------------------------------------------
@@ -450,10 +477,22 @@ class _Auditor:
                                        f"{int(c['source_step'][i])} slot {int(c['slot'][i])}): {message}")
 
     # ---- the run -------------------------------------------------------------------------
+    def not_audited(self, exc) -> None:
+        self.report.ok = False
+        self.report.failures.append(f"column {exc} cannot be read (a stored chunk does not decompress); "
+                                    f"rows not audited")
+
     def run(self):
-        self.start()
+        try:
+            self.start()
+        except _Unreadable as exc:
+            self.not_audited(exc)
+            return
         for s, a, b in self.blocks():
-            self.block(s, a, b, self.counts[s])
+            try:
+                self.block(s, a, b, self.counts[s])
+            except OSError:   # a stored chunk that does not decompress: these rows are not audited
+                self.unread.append((s, a, b))
         self.end()
 
     def start(self):
@@ -461,7 +500,10 @@ class _Auditor:
         members = {}
         for s in SPLITS:
             ep = f[s]["source_episode"]
-            parts = [np.unique(ep[a:a + (1 << 22)]) for a in range(0, ep.shape[0], 1 << 22)]
+            try:
+                parts = [np.unique(ep[a:a + (1 << 22)]) for a in range(0, ep.shape[0], 1 << 22)]
+            except OSError:
+                raise _Unreadable(f"{s}/source_episode") from None
             members[s] = np.unique(np.concatenate(parts)) if parts else np.zeros(0, np.int64)
         self.members = members
         both = np.intersect1d(members["train"], members["validation"])
@@ -476,7 +518,10 @@ class _Auditor:
 
     def end(self):
         rc, counts, members = self.rc, self.counts, self.members
-        if self.sample is None:
+        for s, a, b in _merged(self.unread):
+            self.report.failures.append(f"{s} rows {a} .. {b - 1} not audited: stored rows cannot be read (a stored "
+                                        f"chunk does not decompress)")
+        if self.sample is None and not self.unread:   # row counts: only when every row was read
             missing = np.setdiff1d(self.logs.ids[self.logs.goals > 0], np.union1d(members["train"], members["validation"]))
             if missing.size:
                 self.report.failures.append(f"episode {int(missing[0])} of the logs has no rows")

@@ -457,14 +457,16 @@ class _StoredAhead:
             except Exception:   # noqa: BLE001  read again when checked, which raises it in its place
                 pass
 
-    def take(self, i: int, split: str, a: int, b: int) -> dict:
-        """Stored rows ``a .. b - 1`` of ``split`` for chunk ``i``."""
+    def take(self, i: int, split: str, a: int, b: int) -> tuple:
+        """Stored rows ``a .. b - 1`` of ``split`` for chunk ``i``: ``(rows, unreadable)``, where
+        ``unreadable`` lists the stored chunks HDF5 could not read either (see :func:`_read_apart`;
+        their columns are left out of ``rows``)."""
         ahead = self.pending.pop((i, split), None)
         if ahead is not None and ahead[:2] == (a, b):
             try:
-                return self.readers[split].finish(ahead[2])
+                return self.readers[split].finish(ahead[2]), []
             except DatasetError:   # a chunk that does not inflate: h5py reads it and gives its verdict
-                return self.goal_set.read(split, self.names[split], a, b, resolve=False)
+                return _hdf5_rows(self.goal_set, split, self.names[split], a, b)
         if ahead is not None:   # read ahead for nothing: let its decoding finish before reading again
             _settle(ahead[2])
         return _stored_rows(self.goal_set, self.readers, split, self.names[split], a, b)
@@ -481,23 +483,77 @@ def _settle(started) -> None:
         job.exception()
 
 
-def _stored_rows(goal_set, readers, split, names, a, b) -> dict:
-    """Stored rows ``a .. b - 1`` of ``split``: chunks inflated on threads, else through h5py."""
+def _stored_rows(goal_set, readers, split, names, a, b) -> tuple:
+    """Stored rows ``a .. b - 1`` of ``split``: chunks inflated on threads, else through h5py;
+    ``(rows, unreadable)`` as :meth:`_StoredAhead.take`."""
     reader = readers.get(split)
     if reader is not None:
         try:
-            return reader.read(a, b)
+            return reader.read(a, b), []
         except DatasetError:   # a chunk that does not inflate: h5py reads it and gives its verdict
             pass
-    return goal_set.read(split, names, a, b, resolve=False)
+    return _hdf5_rows(goal_set, split, names, a, b)
 
 
-def _side_checks(manifest, feed, split, row0, row_stop, stored, chunk) -> None:
+def _hdf5_rows(goal_set, split, names, a, b) -> tuple:
+    """Rows ``a .. b - 1`` read by h5py; when HDF5 cannot read some stored chunk (bytes that do
+    not decompress), the columns are read apart to find which (:func:`_read_apart`)."""
+    try:
+        return goal_set.read(split, names, a, b, resolve=False), []
+    except OSError:
+        return _read_apart(goal_set, split, names, a, b)
+
+
+def _read_apart(goal_set, split, names, a, b) -> tuple:
+    """Rows ``a .. b - 1`` of each column read through h5py one stored chunk at a time.
+
+    Returns ``(rows, unreadable)``: ``rows`` holds the columns read whole, ``unreadable`` a
+    ``(column, first row, end row)`` for every stored chunk HDF5 could not read.
+    """
+    group = goal_set.file[split]
+    rows, unreadable = {}, []
+    for name in names:
+        ds = group[name]
+        step = int(ds.chunks[0]) if ds.chunks else max(1, int(ds.shape[0]))
+        dest = np.empty((b - a, *ds.shape[1:]), dtype=ds.dtype)
+        whole = True
+        for c0 in range(a - a % step, b, step):
+            lo, hi = max(a, c0), min(b, c0 + step)
+            try:
+                ds.read_direct(dest, np.s_[lo:hi], np.s_[lo - a:hi - a])
+            except OSError:
+                whole = False
+                unreadable.append((name, c0, min(c0 + step, int(ds.shape[0]))))
+        if whole:
+            rows[name] = dest
+    return rows, unreadable
+
+
+def _side_checks(manifest, feed, split, row0, row_stop, stored, chunk, unreadable=()) -> None:
     """The checks of one chunk's stored rows that need nothing from the replay: their manifest
-    checksums and the audit (run on the lane's thread, in the order the rows were read)."""
+    checksums and the audit (run on the lane's thread, in the order the rows were read).
+
+    With ``unreadable`` stored chunks, the columns that were read are still hashed; the others'
+    checksums are left out (the chunk is reported) and the audit is told these rows were not
+    read."""
     manifest.add(split, row0, stored)
-    if feed is not None:
+    if unreadable:
+        manifest.unreadable(split, [name for name, _, _ in unreadable])
+        if feed is not None:
+            feed.unread(split, row0, row_stop)
+    elif feed is not None:
         feed.add(split, row0, row_stop, stored, chunk)
+
+
+def _report_unreadable(report, path, split, unreadable, found) -> None:
+    """One failure per stored chunk that could not be read (each once; ``found`` remembers them)."""
+    for name, c0, c1 in unreadable:
+        if (split, name, c0) in found:
+            continue
+        found.add((split, name, c0))
+        report.checked.setdefault("unreadable", []).append({"split": split, "column": name, "rows": [c0, c1]})
+        report.fail(f"{path}: {split}/{name} rows {c0} .. {c1 - 1} cannot be read (the stored chunk does not "
+                    f"decompress): the rows of its episodes are not checked")
 
 
 def _replay_rows(goal_set, plan, source, report, relocation, digests, progress, feed, manifest, summary, total,
@@ -548,6 +604,7 @@ def _replay_rows(goal_set, plan, source, report, relocation, digests, progress, 
 def _replay_chunks(plan, source, report, progress, feed, manifest, summary, total, bounds, ahead, lane):
     """Check and re-derive every chunk's rows; the rows each split reached (None: rows missing)."""
     cursor = {split: 0 for split in SPLITS}
+    found = set()   # stored chunks reported unreadable
     chunks = _chunks_ahead(plan, source, bounds)
     try:
         next(chunks)   # the logs' reads begin (and the reader process starts) first
@@ -561,7 +618,14 @@ def _replay_chunks(plan, source, report, progress, feed, manifest, summary, tota
                 if row_stop > total[split]:
                     report.fail(f"{split}: fewer rows stored ({total[split]}) than the recipe produces")
                     return None
-                stored = ahead.take(i, split, row0, row_stop)
+                stored, unreadable = ahead.take(i, split, row0, row_stop)
+                if unreadable:   # rows whose columns are not all readable: reported, not checked
+                    _report_unreadable(report, ahead.goal_set.path, split, unreadable, found)
+                    lane.submit(_side_checks, manifest, feed, split, row0, row_stop, stored, chunk, unreadable)
+                    if n_rows:
+                        summary.add(split, fresh.columns[split], fresh.keys[split])
+                    cursor[split] = row_stop
+                    continue
                 seen = {}
                 check_rows(plan, chunk, stored, split, report, row0, seen)
                 lane.submit(_side_checks, manifest, feed, split, row0, row_stop, stored, chunk)
