@@ -39,8 +39,11 @@ def rule_distance(kind: str, a, g, weights=None, threshold=None, mask=None, lowe
         return np.where(keep, over, -np.inf).max(axis=1, initial=-np.inf)
     if mask is not None:   # without a mask every dimension counts: the weights as they are, per row
         w = np.where(keep, w, 0.0)
-    diff = np.abs(a - g)
+    diff = np.subtract(a, g)
+    np.abs(diff, out=diff)
     if kind == "euclidean":
+        if weights is None and mask is None:   # every weight 1: w * d * d is d * d, exactly
+            return np.sqrt(np.multiply(diff, diff, out=diff).sum(axis=1))
         return np.sqrt((w * diff * diff).sum(axis=1))
     if kind == "l1":
         return (w * diff).sum(axis=1)

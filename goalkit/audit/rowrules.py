@@ -12,6 +12,16 @@ from goalkit.audit.distances import rule_distance
 ORIGINAL, FINAL, FUTURE, EPISODE, GEOMETRIC, OTHER, NEIGHBOUR, LIBRARY, NEAR_MISS = range(9)
 
 
+def among(codes_of_rows, codes) -> np.ndarray:
+    """``np.isin(codes_of_rows, codes)``, by a table of the 256 byte values when every code is one."""
+    x = np.asarray(codes_of_rows)
+    if x.size and x.dtype.kind in "iu" and int(x.min()) >= 0 and int(x.max()) < 256:
+        table = np.zeros(256, bool)
+        table[list(codes)] = True
+        return table[x]
+    return np.isin(x, list(codes))
+
+
 def address_rules(c: dict, T, T_goal, same_split, rc):
     """Goal-address rules per strategy code.
 
@@ -37,7 +47,7 @@ def address_rules(c: dict, T, T_goal, same_split, rc):
     no_join = join == -1
     external = (ge == -1) & (j == -1)
     later_join = (join > t) & (join <= T)
-    yield "mixture", "strategy code not among the recipe's positive weights", ~np.isin(s, list(rc.weights))
+    yield "mixture", "strategy code not among the recipe's positive weights", ~among(s, list(rc.weights))
     most = max([rc.goals_per_transition, *(rc.source_goals or {}).values()])   # per source: run.py checks each
     yield "slot", f"slot outside 0 .. {most - 1}", (slot < 0) | (slot >= most)
     yield "source step", "source step outside 0 .. T-1 of its episode", (t < 0) | (t >= T)

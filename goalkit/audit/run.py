@@ -16,7 +16,7 @@ from goalkit.audit.laws import geometric_law, uniform_law
 from goalkit.audit.maskrules import MaskAudit
 from goalkit.audit.recipe_text import CODE_NAMES, parse_audit_recipe
 from goalkit.audit.rowrules import (EPISODE, FUTURE, GEOMETRIC, NEAR_MISS, NEIGHBOUR, ORIGINAL, OTHER,
-                                    address_rules, label_rules, reward_rules)
+                                    address_rules, among, label_rules, reward_rules)
 from goalkit.audit.stattests import (FINE_BINS, binom_check, count_bound_check, grid_chi2_check, holm,
                                      preload_scipy, share_power, uniform_chi2_check)
 from goalkit.config import parse_toml
@@ -201,7 +201,7 @@ class _Logs:
         states = np.repeat(first - at, count) + np.arange(int(count.sum()), dtype=np.int64)
         table = np.asarray(self.goal_map(chunk, states)).astype(self.goal_dtype)
         k = np.searchsorted(touched, runs.values)
-        return table[runs.spread(at[k] - first[k]) + rows]
+        return np.take(table, runs.spread(at[k] - first[k]) + rows, axis=0)
 
     def end_flag_columns(self) -> list:
         """The end-flag columns a set of these logs must have (the flags its layout maps)."""
@@ -235,12 +235,13 @@ class _Logs:
         task = None
         if chunk.task_goals is not None:
             tg = np.asarray(chunk.task_goals)
-            task = tg.reshape(len(tg), -1)[chunk.offsets[local] + steps]
+            task = np.take(tg.reshape(len(tg), -1), chunk.offsets[local] + steps, axis=0)
         values = {}
         if materials:   # the logged s_t, a_t, s_t+1 as the logs keep them (cast by the caller)
             trans = chunk.offsets[local] + steps
-            values.update(observation=np.asarray(chunk.observations)[cur], action=np.asarray(chunk.actions)[trans],
-                          next_observation=np.asarray(chunk.observations)[cur + 1])
+            values.update(observation=np.take(np.asarray(chunk.observations), cur, axis=0),
+                          action=np.take(np.asarray(chunk.actions), trans, axis=0),
+                          next_observation=np.take(np.asarray(chunk.observations), cur + 1, axis=0))
         for col in flags:
             logged = getattr(chunk, END_FLAGS[col][1])
             values[col] = None if logged is None else np.asarray(logged)[chunk.offsets[local] + steps].astype(np.uint8)
@@ -769,13 +770,13 @@ class _Auditor:
         slot = c["slot"]
         paired = (slot[:-1] % 2 == 0) & (slot[1:] == slot[:-1] + 1) & (ep[1:] == ep[:-1]) & (t[1:] == t[:-1])
         # strategies of every pair (whatever their goals), goal steps of pairs whose rows keep the rules
-        drawn = np.isin(s, list(rc.weights))
+        drawn = among(s, list(rc.weights))
         k = np.flatnonzero(paired & drawn[:-1] & drawn[1:])
         d.add(d.pairs_same_strategy, s[k] == s[k + 1], np.full(k.size, sum(p * p for p in rc.weights.values())))
         i = np.flatnonzero(paired & valid[:-1] & valid[1:])
         if i.size:
             sa, sb = s[i], s[i + 1]
-            same_law = (sa == sb) & np.isin(sa, (FUTURE, EPISODE, GEOMETRIC))
+            same_law = (sa == sb) & among(sa, [FUTURE, EPISODE, GEOMETRIC])
             d.add(d.pairs_same_step, same_law & (j[i] == j[i + 1]), same_p[i][same_law])
             ua, ub = main[i], main[i + 1]
             both = np.isfinite(ua) & np.isfinite(ub)

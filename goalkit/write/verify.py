@@ -168,7 +168,7 @@ def check_rows(plan, chunk, cols, split_name, report, row0, seen=None) -> None:
     if "observation" in cols:
         logged = (("observation", chunk.observations, cur), ("action", chunk.actions, trans),
                   ("next_observation", chunk.observations, cur + 1))
-        for (name, source, index), ref in zip(logged, [source[index] for _, source, index in logged]):
+        for (name, source, index), ref in zip(logged, [np.take(source, index, axis=0) for _, source, index in logged]):
             diff = _rows_differ(np.asarray(cols[name]).reshape(n_rows, -1),
                                 np.asarray(ref, dtype=cols[name].dtype).reshape(n_rows, -1))
             if seen is not None:
@@ -190,7 +190,7 @@ def check_rows(plan, chunk, cols, split_name, report, row0, seen=None) -> None:
             row = _first(diff)
             report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): source is not the episode's source")
     phi = plan.goal_map(chunk, np.arange(chunk.observations.shape[0])).astype(goal_dtype)
-    achieved = phi[cur + 1]
+    achieved = np.take(phi, cur + 1, axis=0)
     if "reached_goal" in cols:
         diff = _rows_differ(cols["reached_goal"], achieved)
         if diff.any():
@@ -273,7 +273,7 @@ def _goal_at(plan, chunk, phi_chunk, episodes, steps, runs=None) -> np.ndarray:
     inside = runs.spread(inside_runs)
     if inside.all():   # the usual case: every goal from the chunk's episodes
         positions = runs.spread(chunk.position_of(runs.values))
-        out[:] = phi_chunk[chunk.state_row(positions, steps)]
+        np.take(phi_chunk, chunk.state_row(positions, steps), axis=0, out=out)
     elif inside.any():
         positions = chunk.position_of(episodes[inside])
         out[inside] = phi_chunk[chunk.state_row(positions, steps[inside])]
