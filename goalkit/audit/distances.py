@@ -32,14 +32,18 @@ def rule_distance(kind: str, a, g, weights=None, threshold=None, mask=None, lowe
     a = np.asarray(a, dtype=np.float64)
     g = np.asarray(g, dtype=np.float64)
     w = np.ones(a.shape[1]) if weights is None else np.asarray(weights, dtype=np.float64)
-    keep = np.ones(a.shape, bool) if mask is None else np.asarray(mask) != 0
+    keep = True if mask is None else np.asarray(mask) != 0
     if kind == "region":
         delta = a - g
         over = np.maximum(np.asarray(lower, np.float64) - delta, delta - np.asarray(upper, np.float64))
         return np.where(keep, over, -np.inf).max(axis=1, initial=-np.inf)
-    w = np.where(keep, w, 0.0)
-    diff = np.abs(a - g)
+    if mask is not None:   # without a mask every dimension counts: the weights as they are, per row
+        w = np.where(keep, w, 0.0)
+    diff = np.subtract(a, g)
+    np.abs(diff, out=diff)
     if kind == "euclidean":
+        if weights is None and mask is None:   # every weight 1: w * d * d is d * d, exactly
+            return np.sqrt(np.multiply(diff, diff, out=diff).sum(axis=1))
         return np.sqrt((w * diff * diff).sum(axis=1))
     if kind == "l1":
         return (w * diff).sum(axis=1)

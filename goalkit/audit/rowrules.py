@@ -12,6 +12,16 @@ from goalkit.audit.distances import rule_distance
 ORIGINAL, FINAL, FUTURE, EPISODE, GEOMETRIC, OTHER, NEIGHBOUR, LIBRARY, NEAR_MISS = range(9)
 
 
+def among(codes_of_rows, codes) -> np.ndarray:
+    """``np.isin(codes_of_rows, codes)``, by a table of the 256 byte values when every code is one."""
+    x = np.asarray(codes_of_rows)
+    if x.size and x.dtype.kind in "iu" and int(x.min()) >= 0 and int(x.max()) < 256:
+        table = np.zeros(256, bool)
+        table[list(codes)] = True
+        return table[x]
+    return np.isin(x, list(codes))
+
+
 def address_rules(c: dict, T, T_goal, same_split, rc):
     """Goal-address rules per strategy code.
 
@@ -37,39 +47,42 @@ def address_rules(c: dict, T, T_goal, same_split, rc):
     no_join = join == -1
     external = (ge == -1) & (j == -1)
     later_join = (join > t) & (join <= T)
-    yield "mixture", "strategy code not among the recipe's positive weights", ~np.isin(s, list(rc.weights))
+    yield "mixture", "strategy code not among the recipe's positive weights", ~among(s, list(rc.weights))
     most = max([rc.goals_per_transition, *(rc.source_goals or {}).values()])   # per source: run.py checks each
     yield "slot", f"slot outside 0 .. {most - 1}", (slot < 0) | (slot >= most)
     yield "source step", "source step outside 0 .. T-1 of its episode", (t < 0) | (t >= T)
+    # each rule as a function, evaluated only when some row has its code (else no row breaks it)
     rules = {
         ORIGINAL: ("original: external goal, no hop, join or steps-to-goal",
-                   external & no_hop & no_join & (steps == -1)),
+                   lambda: external & no_hop & no_join & (steps == -1)),
         FINAL: ("final: goal is s_T of the own episode, steps-to-goal T - t",
-                own & (j == T) & no_hop & no_join & (steps == T - t)),
+                lambda: own & (j == T) & no_hop & no_join & (steps == T - t)),
         FUTURE: ("future: goal s_j of the own episode with t < j <= T, steps-to-goal j - t",
-                 own & (j > t) & (j <= T) & no_hop & no_join & (steps == j - t)),
+                 lambda: own & (j > t) & (j <= T) & no_hop & no_join & (steps == j - t)),
         EPISODE: ("episode: goal s_j of the own episode with 0 <= j <= T, steps-to-goal j - t if j > t else -1",
-                  own & (j >= 0) & (j <= T) & no_hop & no_join & (steps == np.where(j > t, j - t, -1))),
+                  lambda: own & (j >= 0) & (j <= T) & no_hop & no_join & (steps == np.where(j > t, j - t, -1))),
         GEOMETRIC: ("geometric: goal s_j of the own episode with t < j <= T, steps-to-goal j - t",
-                    own & (j > t) & (j <= T) & no_hop & no_join & (steps == j - t)),
+                    lambda: own & (j > t) & (j <= T) & no_hop & no_join & (steps == j - t)),
         OTHER: ("other_episode: goal s_j of another episode of the same split, 0 <= j <= T', steps-to-goal -1",
-                (ge >= 0) & ~own & same_split & (j >= 0) & (j <= T_goal) & no_hop & no_join & (steps == -1)),
+                lambda: (ge >= 0) & ~own & same_split & (j >= 0) & (j <= T_goal) & no_hop & no_join & (steps == -1)),
         NEIGHBOUR: ("neighbour: goal s_m of the hop episode (another of the same split), hop step <= m <= T', "
                     "joined at t < join <= T, steps-to-goal -1; guarded ([graph] guard_neighbours), a dropped "
                     "goal is the join state itself (steps j - t)",
-                    later_join & np.where(he >= 0, (ge == he) & (he != ep) & same_split & (hs >= 0) & (j >= hs)
-                                          & (j <= T_goal) & (steps == -1),
-                                          rc.guard_neighbours & own & (j == join) & (hs == -1) & (steps == j - t))),
+                    lambda: later_join & np.where(he >= 0, (ge == he) & (he != ep) & same_split & (hs >= 0)
+                                                  & (j >= hs) & (j <= T_goal) & (steps == -1),
+                                                  rc.guard_neighbours & own & (j == join) & (hs == -1)
+                                                  & (steps == j - t))),
         LIBRARY: ("library: external goal, no hop, joined at t < join <= T (steps join - t) or unmatched (-1)",
-                  external & no_hop & ((later_join & (steps == join - t)) | (no_join & (steps == -1)))),
+                  lambda: external & no_hop & ((later_join & (steps == join - t)) | (no_join & (steps == -1)))),
         NEAR_MISS: ("near_miss: the hop state of another episode of the same split joined at t < join <= T "
                     "(steps -1), or without a hop the join state itself (steps j - t)",
-                    later_join & np.where(he >= 0, (ge == he) & (j == hs) & (he != ep) & same_split & (j >= 0)
-                                          & (j <= T_goal) & (steps == -1),
-                                          own & (j == join) & (hs == -1) & (steps == j - t))),
+                    lambda: later_join & np.where(he >= 0, (ge == he) & (j == hs) & (he != ep) & same_split
+                                                  & (j >= 0) & (j <= T_goal) & (steps == -1),
+                                                  own & (j == join) & (hs == -1) & (steps == j - t))),
     }
     for code, (message, ok) in rules.items():
-        yield message.split(":")[0], message, (s == code) & ~ok
+        mine = s == code
+        yield message.split(":")[0], message, (mine & ~ok()) if mine.any() else mine
 
 
 def reward_rules(c: dict, achieved, goal, rc):

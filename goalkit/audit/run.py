@@ -16,7 +16,7 @@ from goalkit.audit.laws import geometric_law, uniform_law
 from goalkit.audit.maskrules import MaskAudit
 from goalkit.audit.recipe_text import CODE_NAMES, parse_audit_recipe
 from goalkit.audit.rowrules import (EPISODE, FUTURE, GEOMETRIC, NEAR_MISS, NEIGHBOUR, ORIGINAL, OTHER,
-                                    address_rules, label_rules, reward_rules)
+                                    address_rules, among, label_rules, reward_rules)
 from goalkit.audit.stattests import (FINE_BINS, binom_check, count_bound_check, grid_chi2_check, holm,
                                      preload_scipy, share_power, uniform_chi2_check)
 from goalkit.config import parse_toml
@@ -86,6 +86,30 @@ class AuditReport:
                 "share_shift_90": self.share_shift, "rule_violations": dict(self.rule_violations)}
 
 
+class _Runs:
+    """Runs of equal values of an int array (a set's rows come grouped by episode): a function
+    that maps each value on its own is computed once per run (``f(values)`` ==
+    ``spread(f(runs.values))``)."""
+
+    def __init__(self, values):
+        values = np.asarray(values)
+        n = len(values)
+        starts = np.flatnonzero(values[1:] != values[:-1]) + 1 if n > 1 else np.zeros(0, np.int64)
+        starts = np.concatenate((np.zeros(min(n, 1), np.int64), starts))
+        self.values = values[starts]
+        self.lengths = np.diff(np.append(starts, n))
+
+    def spread(self, per_run) -> np.ndarray:
+        return np.repeat(per_run, self.lengths, axis=0)
+
+
+def _differing_rows(ne) -> np.ndarray:
+    """``ne.any(axis=1)`` of a 2-d mask, looked at as a whole first (cheap when nothing differs)."""
+    if ne.ndim == 2 and not ne.any():
+        return np.zeros(len(ne), bool)
+    return ne.any(axis=1)
+
+
 def _same_log(opened, where, layout, skip_bad_episodes) -> bool:
     """Whether ``opened`` (a source verify opened) is the single log ``where`` read with ``layout``.
 
@@ -148,14 +172,36 @@ class _Logs:
         self.stored_dtypes["next_observation"] = self.stored_dtypes["observation"]
 
     def known(self, episodes) -> np.ndarray:
-        pos = np.minimum(np.searchsorted(self.ids, episodes), len(self.ids) - 1)
-        return self.ids[pos] == episodes
+        runs = _Runs(episodes)
+        pos = np.minimum(np.searchsorted(self.ids, runs.values), len(self.ids) - 1)
+        return runs.spread(self.ids[pos] == runs.values)
 
     def length_of(self, episodes) -> np.ndarray:
         """Transition count per episode id (-1 for ids not in the logs)."""
-        episodes = np.asarray(episodes, dtype=np.int64)
-        pos = np.minimum(np.searchsorted(self.ids, episodes), len(self.ids) - 1)
-        return np.where(self.ids[pos] == episodes, self.lengths[pos], -1)
+        runs = _Runs(np.asarray(episodes, dtype=np.int64))
+        pos = np.minimum(np.searchsorted(self.ids, runs.values), len(self.ids) - 1)
+        return runs.spread(np.where(self.ids[pos] == runs.values, self.lengths[pos], -1))
+
+    def position(self, episodes, runs=None) -> np.ndarray:
+        """``searchsorted(ids, episodes)``, once per run of one episode."""
+        runs = _Runs(episodes) if runs is None else runs
+        return runs.spread(np.searchsorted(self.ids, runs.values))
+
+    def _phi_at(self, chunk, local, rows) -> np.ndarray:
+        """phi of the state rows ``rows`` of ``chunk`` (of episode positions ``local``), goal dtype.
+
+        The goal map runs once over every state of the episodes touched, not once per goal row
+        (a goal map gives the same rows whatever rows it is asked for), then rows are picked.
+        """
+        runs = _Runs(local)
+        touched = np.unique(runs.values)
+        first = chunk.offsets[touched] + touched            # each touched episode's first state row
+        count = chunk.lengths[touched] + 1
+        at = np.cumsum(count) - count                       # where its states start in the table
+        states = np.repeat(first - at, count) + np.arange(int(count.sum()), dtype=np.int64)
+        table = np.asarray(self.goal_map(chunk, states)).astype(self.goal_dtype)
+        k = np.searchsorted(touched, runs.values)
+        return np.take(table, runs.spread(at[k] - first[k]) + rows, axis=0)
 
     def end_flag_columns(self) -> list:
         """The end-flag columns a set of these logs must have (the flags its layout maps)."""
@@ -170,11 +216,13 @@ class _Logs:
         task id of each row's episode (-1: none). With ``materials``, ``flag_values`` also holds the
         logged ``observation`` (s_t), ``action`` and ``next_observation`` in the logs' dtypes.
         """
-        pos = np.searchsorted(self.ids, episodes)
-        need = np.unique(pos)
+        runs = _Runs(episodes)
+        pos_runs = np.searchsorted(self.ids, runs.values)
+        pos = runs.spread(pos_runs)
+        need = np.unique(pos_runs)
         a, b = int(need[0]), int(need[-1]) + 1
         if chunk is not None and np.isin(self.ids[need], chunk.episode_ids).all():
-            local = chunk.position_of(episodes)   # the episodes verify read already
+            local = runs.spread(chunk.position_of(runs.values))   # the episodes verify read already
         elif 2 * need.size < b - a:   # scattered episodes (a block of the validation split): only those
             chunk = concat_episodes([self.source.read(int(need[i]), int(need[j - 1]) + 1)
                                      for i, j in consecutive_runs(need)])
@@ -183,16 +231,17 @@ class _Logs:
             chunk = self.source.read(a, b)
             local = pos - a
         cur = chunk.state_row(local, steps)
-        achieved = np.asarray(self.goal_map(chunk, cur + 1)).astype(self.goal_dtype)
+        achieved = self._phi_at(chunk, local, cur + 1)
         task = None
         if chunk.task_goals is not None:
             tg = np.asarray(chunk.task_goals)
-            task = tg.reshape(len(tg), -1)[chunk.offsets[local] + steps]
+            task = np.take(tg.reshape(len(tg), -1), chunk.offsets[local] + steps, axis=0)
         values = {}
         if materials:   # the logged s_t, a_t, s_t+1 as the logs keep them (cast by the caller)
             trans = chunk.offsets[local] + steps
-            values.update(observation=np.asarray(chunk.observations)[cur], action=np.asarray(chunk.actions)[trans],
-                          next_observation=np.asarray(chunk.observations)[cur + 1])
+            values.update(observation=np.take(np.asarray(chunk.observations), cur, axis=0),
+                          action=np.take(np.asarray(chunk.actions), trans, axis=0),
+                          next_observation=np.take(np.asarray(chunk.observations), cur + 1, axis=0))
         for col in flags:
             logged = getattr(chunk, END_FLAGS[col][1])
             values[col] = None if logged is None else np.asarray(logged)[chunk.offsets[local] + steps].astype(np.uint8)
@@ -220,14 +269,18 @@ class _Draws:
         for v, c in zip(values.tolist(), counts.tolist()):
             acc[1][v] = acc[1].get(v, 0) + c
 
-    def law(self, name, rows_law, mask):
-        pit = rows_law.pit[mask]
+    def law(self, name, rows_law, mask=None):
+        """Add a law evaluated at rows (those of ``mask``, or all of them when it is None)."""
+        pit = rows_law.pit if mask is None else rows_law.pit[mask]
         ok = np.isfinite(pit)
         h = self.hist.setdefault(name, np.zeros(FINE_BINS, np.int64))
         h += np.bincount(np.minimum((pit[ok] * FINE_BINS).astype(np.int64), FINE_BINS - 1), minlength=FINE_BINS)
         for end, hit, p in (("low", rows_law.at_low, rows_law.p_low), ("high", rows_law.at_high, rows_law.p_high)):
             acc = self.ends.setdefault((name, end), [0, {}])
-            self.add(acc, np.asarray(hit)[mask][ok], np.broadcast_to(p, mask.shape)[mask][ok])
+            if mask is None:
+                self.add(acc, np.asarray(hit)[ok], np.broadcast_to(p, pit.shape)[ok])
+            else:
+                self.add(acc, np.asarray(hit)[mask][ok], np.broadcast_to(p, mask.shape)[mask][ok])
 
 
 def audit_set(path, sample: int | None = None, alpha: float = ALPHA, *, logs_root=None,
@@ -340,13 +393,24 @@ class AuditFeed:
             preload_scipy()
         self.fed = a is not None and a.heads is None and a.graph is None
         if self.fed:
-            a.start()
+            try:
+                a.start()
+            except _Unreadable as exc:   # the rows' episodes are not known: nothing is audited
+                a.not_audited(exc)
+                self._auditor, self.fed = None, False
+                return
             a.positional = True
 
     def add(self, split, a, b, stored: dict, chunk) -> None:
         """Audit rows ``a .. b - 1`` of ``split`` (whole transitions of the episodes of ``chunk``)."""
         if self.fed and b > a:
             self._auditor.block(split, a, b, self._auditor.counts[split], stored=stored, chunk=chunk)
+
+    def unread(self, split, a, b) -> None:
+        """Rows ``a .. b - 1`` of ``split`` that verify could not read (a stored chunk that does
+        not decompress): not audited, and the audit says so (see :meth:`_Auditor.end`)."""
+        if self.fed and b > a:
+            self._auditor.unread.append((split, a, b))
 
     def add_stored(self, split, a, b) -> None:
         """Audit rows ``a .. b - 1`` of ``split``, read here (rows verify did not read)."""
@@ -371,6 +435,21 @@ class AuditFeed:
         self._file.close()
 
 
+class _Unreadable(Exception):
+    """A column the audit needs whole cannot be read (its text: split/column)."""
+
+
+def _merged(ranges) -> list:
+    """``(split, a, b)`` ranges in the splits' order, touching ranges of one split merged."""
+    out = []
+    for s, a, b in sorted(ranges, key=lambda r: (SPLITS.index(r[0]), r[1])):
+        if out and out[-1][0] == s and out[-1][2] >= a:
+            out[-1] = (s, out[-1][1], max(out[-1][2], b))
+        else:
+            out.append((s, a, b))
+    return out
+
+
 class _Auditor:
     def __init__(self, f, rc, logs, report, seed, sample, alpha):
         self.f, self.rc, self.logs, self.report = f, rc, logs, report
@@ -383,6 +462,7 @@ class _Auditor:
         self.graph = GraphAudit(logs, rc.graph) if rc.graph is not None else None
         self.summary_sources = None
         self.positional = False   # jitter addressed by row position (rows fed in another order)
+        self.unread = []          # (split, first row, end row) of rows that could not be read
         self.heads = HeadAudit(rc, logs, self.draws, seed, self.masks) if rc.heads else None
 
     # ---- failures ------------------------------------------------------------------------
@@ -398,10 +478,22 @@ class _Auditor:
                                        f"{int(c['source_step'][i])} slot {int(c['slot'][i])}): {message}")
 
     # ---- the run -------------------------------------------------------------------------
+    def not_audited(self, exc) -> None:
+        self.report.ok = False
+        self.report.failures.append(f"column {exc} cannot be read (a stored chunk does not decompress); "
+                                    f"rows not audited")
+
     def run(self):
-        self.start()
+        try:
+            self.start()
+        except _Unreadable as exc:
+            self.not_audited(exc)
+            return
         for s, a, b in self.blocks():
-            self.block(s, a, b, self.counts[s])
+            try:
+                self.block(s, a, b, self.counts[s])
+            except OSError:   # a stored chunk that does not decompress: these rows are not audited
+                self.unread.append((s, a, b))
         self.end()
 
     def start(self):
@@ -409,7 +501,10 @@ class _Auditor:
         members = {}
         for s in SPLITS:
             ep = f[s]["source_episode"]
-            parts = [np.unique(ep[a:a + (1 << 22)]) for a in range(0, ep.shape[0], 1 << 22)]
+            try:
+                parts = [np.unique(ep[a:a + (1 << 22)]) for a in range(0, ep.shape[0], 1 << 22)]
+            except OSError:
+                raise _Unreadable(f"{s}/source_episode") from None
             members[s] = np.unique(np.concatenate(parts)) if parts else np.zeros(0, np.int64)
         self.members = members
         both = np.intersect1d(members["train"], members["validation"])
@@ -424,7 +519,10 @@ class _Auditor:
 
     def end(self):
         rc, counts, members = self.rc, self.counts, self.members
-        if self.sample is None:
+        for s, a, b in _merged(self.unread):
+            self.report.failures.append(f"{s} rows {a} .. {b - 1} not audited: stored rows cannot be read (a stored "
+                                        f"chunk does not decompress)")
+        if self.sample is None and not self.unread:   # row counts: only when every row was read
             missing = np.setdiff1d(self.logs.ids[self.logs.goals > 0], np.union1d(members["train"], members["validation"]))
             if missing.size:
                 self.report.failures.append(f"episode {int(missing[0])} of the logs has no rows")
@@ -539,15 +637,17 @@ class _Auditor:
             bad = np.zeros(n, bool)
             bad[1:] = ~inc
             self.violated("row order", "rows are not sorted by (source_episode, source_step, slot)", bad, split, a, c)
-        known = logs.known(ep)
+        runs = _Runs(ep)
+        known = runs.spread(logs.known(runs.values))
         self.violated("source episode", "source episode not in the logs", ~known, split, a, c)
         if not known.all():
             c = {k: val[known] for k, val in c.items()}
             v, s = v[known], s[known]
             ep, t, slot = c["source_episode"], c["source_step"], c["slot"]
+            runs = _Runs(ep)
         if len(ep) == 0:
             return
-        pos = np.searchsorted(logs.ids, ep)
+        pos = logs.position(ep, runs)
         np.add.at(counts, pos, 1)
         if "source" in c:
             self.violated("source", "source is not the code of the episode's source in the recipe",
@@ -569,8 +669,9 @@ class _Auditor:
             self.heads.block(self.f[split], a, b, keep, ep[rows], t[rows], T[rows], self.members[split],
                              lambda rule, message, mask: self.violated(rule, message, mask, split, a, sub), tasks)
         other = np.where(c["hop_episode"] >= 0, c["hop_episode"], c["goal_episode"])
-        T_goal = logs.length_of(other)
-        same_split = np.isin(other, self.members[split])
+        other_runs = _Runs(other)
+        T_goal = other_runs.spread(logs.length_of(other_runs.values))
+        same_split = other_runs.spread(np.isin(other_runs.values, self.members[split]))
         valid = np.ones(len(ep), bool)
         for rule, message, mask in address_rules(c, T, T_goal, same_split, rc):
             self.violated(rule, message, mask, split, a, c)
@@ -606,7 +707,7 @@ class _Auditor:
                 if task is None or task.shape[1] != sub["goal"].shape[1]:
                     wrong = orig
                 else:
-                    wrong = orig & np.any(sub["goal"] != task.astype(sub["goal"].dtype), axis=1)
+                    wrong = orig & _differing_rows(sub["goal"] != task.astype(sub["goal"].dtype))
                 full = np.zeros(len(ep), bool)
                 full[idx] = wrong
                 self.violated("original", "original: the goal is not the log's task goal of step t", full,
@@ -633,7 +734,8 @@ class _Auditor:
             if not np.all(same):   # NaN where both are NaN counts as the same value
                 same = same | (np.isnan(stored.astype(np.float64)) & np.isnan(expect.astype(np.float64)))
             full = np.zeros(n, bool)
-            full[idx] = ~same.reshape(len(idx), -1).all(axis=1)
+            same = same.reshape(len(idx), -1)
+            full[idx] = False if same.all() else ~same.all(axis=1)
             self.violated(f"{col} value", f"{col} is not the logged value cast to {want}", full, split, a, c)
 
     def laws(self, c, s, T, T_goal, v, valid, split):
@@ -641,38 +743,40 @@ class _Auditor:
         ep, t, j, join = c["source_episode"], c["source_step"], c["goal_step"], c["join_step"]
         main = np.full(len(s), np.nan)
         same_p = np.full(len(s), np.nan)
+        # each law is evaluated at the rows of its strategy only (the same values, row by row)
         for code, name, law in (
-                (FUTURE, "future step", lambda: uniform_law(j, t + 1, T, v[:, 0])),
-                (EPISODE, "episode step", lambda: uniform_law(j, 0, T, v[:, 0])),
-                (GEOMETRIC, "geometric offset", lambda: geometric_law(j - t, T - t, rc.gamma, rc.past_end, v[:, 0])),
-                (NEIGHBOUR, "neighbour join step", lambda: uniform_law(join, t + 1, T, v[:, 0])),
-                (NEAR_MISS, "near_miss join step", lambda: uniform_law(join, t + 1, T, v[:, 0]))):
-            mask = valid & (s == code)
+                (FUTURE, "future step", lambda i: uniform_law(j[i], t[i] + 1, T[i], v[i, 0])),
+                (EPISODE, "episode step", lambda i: uniform_law(j[i], 0, T[i], v[i, 0])),
+                (GEOMETRIC, "geometric offset",
+                 lambda i: geometric_law(j[i] - t[i], T[i] - t[i], rc.gamma, rc.past_end, v[i, 0])),
+                (NEIGHBOUR, "neighbour join step", lambda i: uniform_law(join[i], t[i] + 1, T[i], v[i, 0])),
+                (NEAR_MISS, "near_miss join step", lambda i: uniform_law(join[i], t[i] + 1, T[i], v[i, 0]))):
             if code in rc.weights:
-                rows = law()
-                d.law(name, rows, mask)
-                main[mask] = rows.pit[mask]
-                same_p[mask] = np.broadcast_to(rows.p_same, mask.shape)[mask]
-        mask = valid & (s == OTHER)
+                i = np.flatnonzero(valid & (s == code))
+                rows = law(i)
+                d.law(name, rows)
+                main[i] = rows.pit
+                same_p[i] = np.broadcast_to(rows.p_same, i.shape)
         if OTHER in rc.weights:
+            i = np.flatnonzero(valid & (s == OTHER))
             ids = self.members[split]
-            ge = c["goal_episode"]
-            rank = np.searchsorted(ids, ge) - (ge > ep)
-            rows = uniform_law(rank, 0, max(len(ids) - 2, 0), v[:, 1])
-            d.law("other_episode episode", rows, mask)
-            main[mask] = rows.pit[mask]
-            d.law("other_episode step", uniform_law(j, 0, T_goal, v[:, 2]), mask)
+            ge, e = c["goal_episode"][i], ep[i]
+            rank = np.searchsorted(ids, ge) - (ge > e)
+            rows = uniform_law(rank, 0, max(len(ids) - 2, 0), v[i, 1])
+            d.law("other_episode episode", rows)
+            main[i] = rows.pit
+            d.law("other_episode step", uniform_law(j[i], 0, T_goal[i], v[i, 2]))
         # disjoint slot pairs (0, 1), (2, 3), ... of one transition: independent under the recipe
         slot = c["slot"]
         paired = (slot[:-1] % 2 == 0) & (slot[1:] == slot[:-1] + 1) & (ep[1:] == ep[:-1]) & (t[1:] == t[:-1])
         # strategies of every pair (whatever their goals), goal steps of pairs whose rows keep the rules
-        drawn = np.isin(s, list(rc.weights))
+        drawn = among(s, list(rc.weights))
         k = np.flatnonzero(paired & drawn[:-1] & drawn[1:])
         d.add(d.pairs_same_strategy, s[k] == s[k + 1], np.full(k.size, sum(p * p for p in rc.weights.values())))
         i = np.flatnonzero(paired & valid[:-1] & valid[1:])
         if i.size:
             sa, sb = s[i], s[i + 1]
-            same_law = (sa == sb) & np.isin(sa, (FUTURE, EPISODE, GEOMETRIC))
+            same_law = (sa == sb) & among(sa, [FUTURE, EPISODE, GEOMETRIC])
             d.add(d.pairs_same_step, same_law & (j[i] == j[i + 1]), same_p[i][same_law])
             ua, ub = main[i], main[i + 1]
             both = np.isfinite(ua) & np.isfinite(ub)

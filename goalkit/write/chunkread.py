@@ -7,6 +7,11 @@ destination rows. Only datasets whose filter pipeline is exactly HDF5's shuffle 
 the writer declares for ``compression = "gzip"``) take this path; any other dataset, or a chunk
 stored with a filter skipped, is read through h5py. Streams are inflated by libdeflate (the
 ``deflate`` package) when it is installed, else by zlib; both give the same bytes.
+
+A reader made with ``keep_tails=True`` (verify's: it reads consecutive row ranges whose ends
+rarely fall on a chunk's end) keeps, per column, the last chunk a read inflated but did not
+use to its end; the next read that starts in that chunk copies from it instead of inflating it
+again, so each stored chunk is inflated once over a pass through the split.
 """
 
 from __future__ import annotations
@@ -49,6 +54,11 @@ class SplitColumns:
     columns : list of str, optional
         Columns to read (default: all stored, plus the materialised ones of an indexed set).
 
+    threads : int, optional
+        Decoding threads (default: up to 4, at most the CPUs).
+    keep_tails : bool
+        Keep each column's last chunk read only in part for the next read (see the module).
+
     Attributes
     ----------
     rows : int
@@ -57,7 +67,7 @@ class SplitColumns:
         Rows per stored chunk (of the first stored column read; the writer uses one length).
     """
 
-    def __init__(self, goalset, split: str, columns=None, threads: int | None = None):
+    def __init__(self, goalset, split: str, columns=None, threads: int | None = None, keep_tails: bool = False):
         self.goalset = goalset
         self.split = split
         self.group = goalset._group(split)
@@ -91,6 +101,8 @@ class SplitColumns:
         self._pool = None
         self._pool_pid = None
         self._resolved_bytes = None
+        self._keep_tails = bool(keep_tails)
+        self._tails = {}   # column -> (chunk start, the job inflating it): a chunk read only in part
 
     # ---- sizes -------------------------------------------------------------------------
     def row_bytes(self) -> int:
@@ -109,6 +121,7 @@ class SplitColumns:
         if self._pool is None or self._pool_pid != os.getpid():
             self._pool = ThreadPoolExecutor(self._threads)
             self._pool_pid = os.getpid()
+            self._tails = {}
         return self._pool
 
     def read_ranges(self, ranges) -> dict:
@@ -125,7 +138,7 @@ class SplitColumns:
             dest = np.empty((total, *ds.shape[1:]), dtype=ds.dtype)
             out[name] = dest
             if self._fast[name]:
-                jobs += self._chunk_jobs(ds, dest, ranges)
+                jobs += self._chunk_jobs(ds, dest, ranges, name)
                 continue
             at = 0
             for a, b in ranges:
@@ -149,7 +162,7 @@ class SplitColumns:
         """Rows ``start .. stop - 1``."""
         return self.read_ranges([(start, min(stop, self.rows))])
 
-    def _chunk_jobs(self, ds, dest, ranges) -> list:
+    def _chunk_jobs(self, ds, dest, ranges, name=None) -> list:
         """One job per stored chunk the ranges touch: the chunk inflated once, copied to every
         place the ranges put its rows (several ranges may share a chunk)."""
         n = int(ds.chunks[0])
@@ -165,14 +178,21 @@ class SplitColumns:
             at += b - a
         jobs = []
         pool = self._executor()
+        kept = self._tails.get(name) if self._keep_tails else None
         for c0, parts in spans.items():
+            targets = [(dest[rows], (lo - c0) * per_row, (hi - c0) * per_row) for rows, lo, hi in parts]
+            if kept is not None and kept[0] == c0:   # inflated by an earlier read: copied from it
+                jobs.append(pool.submit(_copy_from, kept[1], targets, size, n * per_row))
+                continue
             mask, stored = ds.id.read_direct_chunk((c0,) + (0,) * len(tail))
             if mask:  # a filter was skipped for this chunk: let HDF5 decode it
                 for rows, lo, hi in parts:
                     ds.read_direct(dest, np.s_[lo:hi], rows)
                 continue
-            targets = [(dest[rows], (lo - c0) * per_row, (hi - c0) * per_row) for rows, lo, hi in parts]
-            jobs.append(pool.submit(_inflate_into, stored, targets, size, n * per_row))
+            job = pool.submit(_inflate_into, stored, targets, size, n * per_row)
+            jobs.append(job)
+            if self._keep_tails and max(hi for _, _, hi in parts) < min(c0 + n, self.rows):
+                self._tails[name] = (c0, job)   # rows of it left for the next read
         return jobs
 
     def close(self) -> None:
@@ -180,13 +200,28 @@ class SplitColumns:
         if self._pool is not None and self._pool_pid == os.getpid():
             self._pool.shutdown(wait=True)
         self._pool = None
+        self._tails = {}
 
 
-def _inflate_into(stored: bytes, targets, size: int, elements: int) -> None:
-    """Inflate one chunk and copy elements ``e0 .. e1 - 1`` into each ``(target, e0, e1)``."""
+def _inflate_into(stored: bytes, targets, size: int, elements: int):
+    """Inflate one chunk and copy elements ``e0 .. e1 - 1`` into each ``(target, e0, e1)``;
+    the inflated bytes are returned (a later read may copy other rows from them)."""
     raw = np.frombuffer(_inflate(stored, elements * size), dtype=np.uint8)
     if raw.size != elements * size:
         raise DatasetError(f"a stored chunk inflates to {raw.size} bytes, expected {elements * size}")
+    _scatter(raw, targets, size, elements)
+    return raw
+
+
+def _copy_from(job, targets, size: int, elements: int) -> None:
+    """Copy rows of a chunk an earlier job inflated (its failure, if it failed, is raised here).
+
+    The earlier job was handed to the pool first, so a thread runs it (or ran it) already.
+    """
+    _scatter(job.result(), targets, size, elements)
+
+
+def _scatter(raw, targets, size: int, elements: int) -> None:
     for target, e0, e1 in targets:
         flat = target.reshape(-1).view(np.uint8)
         if size == 1:

@@ -42,7 +42,8 @@ def verify(dataset, max_failures, sample, logs_root, as_json, quiet):
     option), then at their recorded paths, then under --logs-root; the set is never modified.
 
     Exit status 0 when every check passes, 1 when some fail (the first failures are listed;
-    with --quiet one line on stderr says how many), 2 when the file cannot be read as a goalkit
+    with --quiet one line on stderr says how many; a stored chunk that does not decompress is
+    one of them, naming its split, column and rows), 2 when the file cannot be read as a goalkit
     dataset, a log file is found nowhere or a moved one has another checksum, 130 when
     interrupted (verify writes nothing).
     """

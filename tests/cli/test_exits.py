@@ -169,6 +169,30 @@ def test_verify_quiet_failure_is_one_stderr_line(demo, tmp_path):
     assert line.startswith(f"goalkit: NOT consistent: {bad} (") and "run without --quiet" in line
 
 
+def test_verify_a_chunk_that_does_not_decompress_is_exit_1_with_the_place(demo, tmp_path):
+    import shutil
+
+    import h5py
+
+    bad = tmp_path / "bad.h5"
+    shutil.copy(demo / "set.h5", bad)
+    with h5py.File(bad, "r+") as f:   # bytes of the first stored chunk of validation/source_step overwritten
+        ds = f["validation/source_step"]
+        mask, data = ds.id.read_direct_chunk((0,))
+        ds.id.write_direct_chunk((0,), b"\xff" * len(data), mask)
+        end = min(ds.chunks[0], ds.shape[0]) - 1
+    res = invoke("verify", bad, "--quiet")
+    assert res.exit_code == 1 and res.stdout == "" and "Traceback" not in res.output
+    assert res.stderr.startswith(f"goalkit: NOT consistent: {bad} (")
+    res = invoke("verify", bad, "--json")
+    assert res.exit_code == 1
+    report = json.loads(res.stdout)
+    assert report["checked"]["unreadable"] == [{"split": "validation", "column": "source_step", "rows": [0, end + 1]}]
+    assert report["failures"][0] == (f"{bad}: validation/source_step rows 0 .. {end} cannot be read (the stored "
+                                     f"chunk does not decompress): the rows of its episodes are not checked")
+    assert report["checked"]["rows"]["train"] > 0 and report["checked"]["audit"]["rows"]["train"] > 0
+
+
 # ---- interruptions that libraries hide ------------------------------------------------------------
 class _InterruptedWhileFreed:
     def __del__(self):

@@ -26,6 +26,7 @@ from goalkit.pipeline.build import build
 from goalkit.pipeline.chunk import relabel_chunk
 from goalkit.pipeline.plan import make_plan, split_rows
 from goalkit.pipeline.recipe import load_recipe
+from goalkit.write import chunkread
 from goalkit.write.checklane import CheckLane
 from goalkit.write.chunkread import SplitColumns
 from goalkit.write.format import SPLITS
@@ -108,7 +109,10 @@ def test_broken_rows_give_the_same_report(built, small_chunks, monkeypatch, tmp_
     assert ahead == _outcome(path, monkeypatch, plain=True)
 
 
-def test_a_chunk_that_does_not_inflate_gives_the_same_outcome(built, small_chunks, monkeypatch, tmp_path):
+def test_a_chunk_that_does_not_inflate_is_a_finding(built, small_chunks, monkeypatch, tmp_path):
+    """A stored chunk whose bytes do not decompress is reported (file, split, column, rows), the
+    same way on both paths; the other checks still run: a value broken in the other split is
+    found, the rows read are checked and audited, the manifest of the other columns checked."""
     path = tmp_path / "damaged.h5"
     shutil.copyfile(built[1].output.path, path)
     with h5py.File(path, "r+") as f:   # the third stored chunk of train/goal: bytes that are no zlib stream
@@ -116,10 +120,24 @@ def test_a_chunk_that_does_not_inflate_gives_the_same_outcome(built, small_chunk
         at = 2 * ds.chunks[0]
         mask, data = ds.id.read_direct_chunk((at, 0))
         ds.id.write_direct_chunk((at, 0), b"\x00" * len(data), mask)
+        n_train, per = ds.shape[0], ds.chunks[0]
+        f["validation"]["reward"][3] += 1   # not resealed: its checksum differs too
     ahead = _outcome(path, monkeypatch, plain=False)
     assert ahead == _outcome(path, monkeypatch, plain=True)
-    # h5py's own read of the damaged chunk fails (an OSError today), the same way on both paths
-    assert isinstance(ahead, tuple) or not ahead["ok"], ahead
+    assert not ahead["ok"]
+    assert ahead["checked"]["unreadable"] == [{"split": "train", "column": "goal", "rows": [at, at + per]}]
+    assert f"{path}: train/goal rows {at} .. {at + per - 1} cannot be read (the stored chunk does not decompress): " \
+           f"the rows of its episodes are not checked" in ahead["failures"]
+    # the rest is checked: the broken validation reward, the other columns' checksums
+    assert any(f.startswith("validation row 3 ") and "reward" in f for f in ahead["failures"]), ahead["failures"]
+    assert any(f.startswith("validation/reward: checksum") for f in ahead["failures"]), ahead["failures"]
+    assert not any(f.startswith("train/") for f in ahead["failures"]), ahead["failures"]
+    audit = ahead["checked"]["audit"]
+    unread = [f for f in audit["failures"] if "not audited" in f]
+    assert len(unread) == 1 and unread[0].startswith("train rows ")
+    a, b = (int(x) for x in unread[0].split(" not audited")[0].split("rows ")[1].split(" .. "))
+    assert a <= at and b >= at + per - 1 and b - a < n_train - 1   # only the chunks of episodes around it
+    assert 0 < audit["rows"]["train"] < n_train and len(audit["checks"]) >= 10
 
 
 def test_an_audit_exception_before_a_replay_exception_is_the_one_raised(built, small_chunks, monkeypatch):
@@ -165,3 +183,28 @@ def test_stored_rows_decoded_on_threads_are_hdf5s_own(built, data):
                 want = np.concatenate([ds[a:b] for a, b in ranges])
                 assert value.dtype == ds.dtype
                 np.testing.assert_array_equal(value, want)
+
+
+@given(data=st.data())
+@settings(max_examples=25, deadline=None)
+def test_consecutive_ranges_inflate_each_stored_chunk_once(built, data):
+    """verify's readers keep a chunk read only in part for the next range: over consecutive
+    ranges (as the replay reads them, ends anywhere in a chunk) every stored chunk is inflated
+    once per column, and the rows are HDF5's own."""
+    inflated = []
+    inflate = chunkread._inflate
+    path = built[1].output.path
+    with pytest.MonkeyPatch.context() as m, GoalSet(path) as gs:
+        m.setattr(chunkread, "_inflate", lambda stored, size: inflated.append(size) or inflate(stored, size))
+        reader = SplitColumns(gs, "train", ["goal", "source_step", "reward"], keep_tails=True)
+        n, per = reader.rows, reader.chunk_rows
+        cuts = sorted(set(data.draw(st.lists(st.integers(1, n - 1), min_size=1, max_size=12))))
+        bounds = list(zip([0] + cuts, cuts + [n]))
+        try:
+            parts = [reader.read(a, b) for a, b in bounds]
+        finally:
+            reader.close()
+        with h5py.File(path, "r") as f:
+            for name in ("goal", "source_step", "reward"):
+                np.testing.assert_array_equal(np.concatenate([p[name] for p in parts]), f["train"][name][:])
+    assert len(inflated) == 3 * -(-n // per)   # every chunk of each of the three columns, once
