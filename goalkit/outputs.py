@@ -219,6 +219,14 @@ def identity(fd_or_stat) -> tuple[int, int]:
     return st.st_dev, st.st_ino
 
 
+def _close_quietly(f) -> None:
+    """Close an h5py file whose writing was abandoned (errors closing it are of no use then)."""
+    try:
+        f.close()
+    except Exception:                        # noqa: BLE001  it is removed right after
+        pass
+
+
 def discard(tmp) -> None:
     """Remove a temporary file of ours, if it is still there (never raises)."""
     try:
@@ -251,13 +259,23 @@ def open_hdf5(path, **kwargs):
         except FileExistsError:
             continue
         except OSError as exc:
+            discard(tmp)   # HDF5 may have created it before failing; the random name is ours
             raise OutputError(f"cannot create the output file ({exc})", file=path) from None
+        except BaseException:
+            # interrupted (Ctrl-C) while h5py set the new file up: the file is on disk, the
+            # caller never gets its name
+            discard(tmp)
+            raise
         try:
             handle = f.id.get_vfd_handle()
             st = os.lstat(tmp)
             same = stat.S_ISREG(st.st_mode) and (not isinstance(handle, int) or identity(handle) == identity(st))
         except (OSError, ValueError, TypeError):
             same = False
+        except BaseException:
+            _close_quietly(f)
+            discard(tmp)
+            raise
         if not same:  # pragma: no cover - needs a race with another process
             f.close()
             raise OutputError("the temporary file was replaced while it was opened; nothing written", file=path)

@@ -183,6 +183,16 @@ class SetWriter:
         refuse_existing(self.path, replace=self.replace, ours=is_goal_set, what="dataset")
         # whole chunks are written once and never read back: no chunk cache (it only grows)
         self.tmp, self.file = open_hdf5(self.path, libver="earliest", rdcc_nbytes=0)
+        self._encoder = None
+        try:
+            self._setup(columns, compression, total_rows)
+        except BaseException:
+            # not yet a context manager's object: an error (or Ctrl-C) here must remove the file
+            self.abort()
+            raise
+
+    def _setup(self, columns: dict, compression: str, total_rows) -> None:
+        """Everything after the temporary file exists: threads, buffers and the datasets."""
         self.hashes = {s: {n: hashlib.sha256() for n in columns} for s in SPLITS}
         # Checksums are updated on one background thread (hashlib releases the GIL), in the
         # order blocks are written, so hashing overlaps with relabelling and HDF5 writes.
@@ -360,9 +370,9 @@ class SetWriter:
     def abort(self) -> None:
         """Close and remove the temporary file."""
         try:
-            if self._encoder is not None:
-                self._encoder.shutdown(wait=True, cancel_futures=True)
-            self._hasher.shutdown(wait=True, cancel_futures=True)
+            for pool in (self._encoder, getattr(self, "_hasher", None)):   # (either may not exist yet)
+                if pool is not None:
+                    pool.shutdown(wait=True, cancel_futures=True)
             self.file.close()
         except (OSError, RuntimeError):
             pass  # a file whose writes failed may not close cleanly; it is removed below either way

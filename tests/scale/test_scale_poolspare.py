@@ -126,3 +126,19 @@ def test_a_shard_written_in_this_run_is_checked_by_its_reported_digest_and_size(
         read_shard(tmp_path, spec, "other", order, written=written)
     with pytest.raises(ShardError, match="stop"):
         read_shard(tmp_path, replace(spec, stop=1), "k", order, written=written)
+
+
+def test_a_dask_build_plans_its_helper_part_on_a_cluster_worker(gantry, reference, helper_log, tmp_path,
+                                                                monkeypatch):
+    # the same stand-in on a connected Dask client's workers: they plan the helper's part, no
+    # helper interpreter starts, and the set's bytes are the single-process build's
+    distributed = pytest.importorskip("distributed")
+    monkeypatch.delenv("GOALKIT_POOL_HELPER", raising=False)
+    recipe = load_recipe(gantry / "scale-recipe.toml").with_overrides(out=tmp_path / "dasked.h5")
+    with distributed.LocalCluster(processes=True, n_workers=2, threads_per_worker=1,
+                                  dashboard_address=None) as cluster, distributed.Client(cluster) as client:
+        client.wait_for_workers(2)
+        build(recipe, client=client, max_rows_per_chunk=3000, card=False)
+    assert helper_log.seen == [("PoolSpare", True)]
+    assert helper_log.started == []
+    assert sha256(tmp_path / "dasked.h5") == reference[1]
