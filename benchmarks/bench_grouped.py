@@ -45,7 +45,10 @@ after each case, and ``others_cpus_busy``, the CPU seconds the rest of the machi
 the case's process ran (``/proc/stat`` busy time of all CPUs minus the case's own CPU seconds)
 per second of it: near 0 means both cores were the case's. The machine is shared with other
 jobs: wall-clock figures move with their load; the ratios of cases measured in the same run,
-and the CPU seconds, are the figures to compare.
+and the CPU seconds, are the figures to compare. With ``--repeats N`` every case but the phases
+runs N times, the rounds interleaved (build, floor, script, workers, Dask, ...), and each case
+reports its median run; ``quiet_*`` ratios use only the runs during which the rest of the
+machine kept fewer than :data:`QUIET_CPUS` CPUs busy.
 
 Targets (issue 14): build >= 1.5x the script's speed and >= 0.8x the floor's; peak RSS at 1M
 <= 1.2x that at 200k; workers=2 and Dask with 2 workers >= 1.6x one process on one CPU when
@@ -427,6 +430,8 @@ def measure(label: str, folder: Path, episodes: int, workers: list[int], phases:
     # scaling: one process on one CPU (the baseline), on two, then the workers and Dask; with
     # repeats, the rounds are interleaved and each case keeps every run (its median is reported)
     scaling = [("build-1cpu", ("--workers", "0", "--cpus", "1"), out), ("build", ("--workers", "0"), built)]
+    if not only_scaling:   # the script and the floor (which reads the set just built) in every round
+        scaling += [("floor", ("--built", built), out), ("script", (), out)]
     scaling += [(f"build-workers-{w}", ("--workers", str(w)), out) for w in workers]
     scaling += [(f"dask-{w}", ("--workers", str(w)), out) for w in dask]
     runs = {name: [] for name, _, _ in scaling}
@@ -439,9 +444,6 @@ def measure(label: str, folder: Path, episodes: int, workers: list[int], phases:
         cases[name] = dict(got[len(got) // 2], runs=[{k: r[k] for k in ("seconds", "cpu_seconds", "others_cpus_busy",
                                                                          "load_average_before", "load_average_after")}
                                                      for r in runs[name]])
-    if not only_scaling:
-        case("script")
-        case("floor", "--built", built)
     if phases and not only_scaling:
         case("phases")
     for p in (built, out):
@@ -470,8 +472,10 @@ def measure(label: str, folder: Path, episodes: int, workers: list[int], phases:
         quiet[name] = calm[len(calm) // 2] if calm else None
     q1 = quiet["build-1cpu"]
     for name in runs:
-        if name != "build-1cpu" and q1 is not None and quiet[name] is not None:
+        if name not in ("build-1cpu", "script", "floor") and q1 is not None and quiet[name] is not None:
             ratios[f"quiet_{name.replace('-', '_')}_speed_over_1cpu_wall"] = q1 / quiet[name]
+    if not only_scaling and quiet["script"] is not None and quiet["build"] is not None:
+        ratios["quiet_build_speed_over_script_wall"] = quiet["script"] / quiet["build"]
     result["quiet_seconds"] = quiet
     result["quiet_rule"] = f"median over the runs during which the rest of the machine kept < {QUIET_CPUS} CPUs busy"
     digests = {n: c["sha256"] for n, c in cases.items() if "sha256" in c}
@@ -508,7 +512,8 @@ def main(argv=None) -> dict:
     ap.add_argument("--large", action="store_true", help="also measure 1M transitions (21,000 episodes)")
     ap.add_argument("--workers", default="2", help="comma-separated worker counts to measure (0: none)")
     ap.add_argument("--dask", default="2", help="comma-separated Dask LocalCluster worker counts (0: none)")
-    ap.add_argument("--repeats", type=int, default=1, help="rounds of the scaling cases (interleaved; medians)")
+    ap.add_argument("--repeats", type=int, default=1,
+                    help="rounds of the build, script, floor, worker and Dask cases (interleaved; medians)")
     ap.add_argument("--only-scaling", action="store_true", help="skip the script, floor and phases cases")
     ap.add_argument("--no-phases", action="store_true", help="skip the phase breakdown")
     ap.add_argument("--data", default="/tmp/goalkit-bench-grouped", help="folder for generated logs")
