@@ -220,7 +220,8 @@ def check_rows(plan, chunk, cols, split_name, report, row0, seen=None) -> None:
             row = np.flatnonzero(internal)[_first(crosses)]
             report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): the goal comes from episode "
                         f"{int(goal_ep[row])} of the other split")
-        expect = _goal_at(plan, chunk, phi, goal_ep[internal], goal_step[internal], inner).astype(goal_dtype)
+        expect = _goal_at(plan, chunk, phi, goal_ep[internal], goal_step[internal], inner).astype(goal_dtype,
+                                                                                                  copy=False)
         diff = _rows_differ(cols["goal"][internal], expect)
         if diff.any():
             row = np.flatnonzero(internal)[_first(diff)]
