@@ -20,9 +20,11 @@ run and one round after the other:
   group's seven datasets read whole (``group[key][()]``) and its ``task`` attribute.
 
 Reported: wall and CPU seconds per case (CPU: user + system of the process and its finished
-children; the machine has 2 cores, shared), peak RSS, the load average before and after, and
-the ratios of issue 14: verify / build, scan / read, tune / read (by wall, and by CPU), the
-median over rounds. Targets: verify <= 1.0x the build, scan <= 1.1x and tune <= 1.5x the read.
+children; the machine has 2 cores, shared), peak RSS, the load average before and after,
+``others_cpus_busy`` per case (the CPUs the rest of the machine kept busy while the case ran:
+``/proc/stat`` busy time of all CPUs minus the case's whole process tree, per second of the
+case; near 0 means the cores were the case's), and the ratios of issue 14: verify / build,
+scan / read, tune / read (by wall, and by CPU), the median over rounds. Targets: verify <= 1.0x the build, scan <= 1.1x and tune <= 1.5x the read.
 Results: ``benchmarks/results/grouped_tools.json``.
 """
 
@@ -44,7 +46,7 @@ ROOT = HERE.parent
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(HERE))
 
-from bench_grouped import cpu_seconds, logs  # noqa: E402  (the same demo logs, reused by size)
+from bench_grouped import cpu_seconds, logs, machine_cpu_seconds  # noqa: E402  (the same demo logs, reused by size)
 
 EPISODES = 4_250
 KEYS = ("head", "head_velocity", "trays", "action", "reward", "success", "task_goal")
@@ -101,13 +103,17 @@ def child(args) -> None:
 
 
 def run(case: str, marker: str) -> dict:
+    before, busy0, t0 = resource.getrusage(resource.RUSAGE_CHILDREN), machine_cpu_seconds(), time.perf_counter()
     proc = subprocess.run([sys.executable, __file__, "--child", "--case", case, "--info", marker],
                           capture_output=True, text=True, cwd=str(ROOT), env={**os.environ, "PYTHONPATH": str(ROOT)})
+    wall, busy1, after = time.perf_counter() - t0, machine_cpu_seconds(), resource.getrusage(resource.RUSAGE_CHILDREN)
+    own = (after.ru_utime + after.ru_stime) - (before.ru_utime + before.ru_stime)   # the case's process tree
     if proc.returncode:
         raise RuntimeError(f"benchmark case {case} failed:\n{proc.stderr[-4000:]}")
     res = json.loads(proc.stdout.strip().splitlines()[-1])
     if res.get("exit_status", 0) != 0:
         raise RuntimeError(f"benchmark case {case} exited with {res['exit_status']}:\n{proc.stderr[-4000:]}")
+    res["others_cpus_busy"] = max(0.0, sum(busy1) - sum(busy0) - own) / wall
     return res
 
 
@@ -139,7 +145,8 @@ def main(argv=None) -> dict:
             got[case] = run(case, marker)
             g = got[case]
             print(f"round {r + 1} {case:<7} wall {g['seconds']:6.2f} s  cpu {g['cpu_seconds']:6.2f} s  "
-                  f"peak RSS {g['peak_rss_mb']:5.0f} MiB  load {os.getloadavg()[0]:.2f}", flush=True)
+                  f"peak RSS {g['peak_rss_mb']:5.0f} MiB  load {os.getloadavg()[0]:.2f}  "
+                  f"others busy {g['others_cpus_busy']:.2f} CPUs", flush=True)
         rounds.append(got)
     Path(info["recipe"]).parent.joinpath("bench-tools-goals.h5").unlink(missing_ok=True)
     ratios = {}

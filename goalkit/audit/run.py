@@ -208,13 +208,14 @@ class _Logs:
         keys = self.source.layout.keys
         return [col for col, (role, _) in END_FLAGS.items() if getattr(keys, role) is not None]
 
-    def achieved_and_task_goal(self, episodes, steps, flags=(), materials=False, chunk=None):
+    def achieved_and_task_goal(self, episodes, steps, flags=(), materials=False, chunk=None, task_rows=None):
         """phi(s_t+1) (goal dtype), the log's task goal (or None), end flags and task ids of each (episode, t).
 
         Returns ``(achieved, task, flag_values, task_ids)``: ``flag_values`` maps each of ``flags`` (end-flag
         column names) to the log's own flag of each (episode, t), as uint8; ``task_ids`` is the
         task id of each row's episode (-1: none). With ``materials``, ``flag_values`` also holds the
-        logged ``observation`` (s_t), ``action`` and ``next_observation`` in the logs' dtypes.
+        logged ``observation`` (s_t), ``action`` and ``next_observation`` in the logs' dtypes. With
+        ``task_rows`` (row numbers), the task goal is given for those rows only.
         """
         runs = _Runs(episodes)
         pos_runs = np.searchsorted(self.ids, runs.values)
@@ -235,7 +236,8 @@ class _Logs:
         task = None
         if chunk.task_goals is not None:
             tg = np.asarray(chunk.task_goals)
-            task = np.take(tg.reshape(len(tg), -1), chunk.offsets[local] + steps, axis=0)
+            at = chunk.offsets[local] + steps
+            task = np.take(tg.reshape(len(tg), -1), at if task_rows is None else at[task_rows], axis=0)
         values = {}
         if materials:   # the logged s_t, a_t, s_t+1 as the logs keep them (cast by the caller)
             trans = chunk.offsets[local] + steps
@@ -670,7 +672,7 @@ class _Auditor:
                              lambda rule, message, mask: self.violated(rule, message, mask, split, a, sub), tasks)
         other = np.where(c["hop_episode"] >= 0, c["hop_episode"], c["goal_episode"])
         other_runs = _Runs(other)
-        T_goal = other_runs.spread(logs.length_of(other_runs.values))
+        T_goal = logs.length_of(other)
         same_split = other_runs.spread(np.isin(other_runs.values, self.members[split]))
         valid = np.ones(len(ep), bool)
         for rule, message, mask in address_rules(c, T, T_goal, same_split, rc):
@@ -682,10 +684,12 @@ class _Auditor:
         inside = (t >= 0) & (t < T)
         if inside.any():
             idx = np.flatnonzero(inside)
+            sub = c if idx.size == len(ep) else {k: val[idx] for k, val in c.items()}   # read only
+            orig = sub["strategy"] == ORIGINAL
+            orig_rows = np.flatnonzero(orig)   # the task goal is needed at these rows only
             achieved, task, logged, task_ids = logs.achieved_and_task_goal(ep[idx], t[idx], flags=tuple(flags),
                                                                            materials="observation" in grp,
-                                                                           chunk=chunk)
-            sub = c if idx.size == len(ep) else {k: val[idx] for k, val in c.items()}   # read only
+                                                                           chunk=chunk, task_rows=orig_rows)
             if "observation" in grp:
                 self.stored_values(column, known, idx, logged, split, a, c)
             for col in flags:
@@ -702,12 +706,13 @@ class _Auditor:
                 full = np.zeros(len(ep), bool)
                 full[idx] = mask
                 self.violated(rule, message, full, split, a, c)
-            orig = sub["strategy"] == ORIGINAL
             if orig.any():
                 if task is None or task.shape[1] != sub["goal"].shape[1]:
                     wrong = orig
                 else:
-                    wrong = orig & _differing_rows(sub["goal"] != task.astype(sub["goal"].dtype))
+                    wrong = np.zeros(len(orig), bool)
+                    wrong[orig_rows] = _differing_rows(np.take(sub["goal"], orig_rows, axis=0)
+                                                       != task.astype(sub["goal"].dtype))
                 full = np.zeros(len(ep), bool)
                 full[idx] = wrong
                 self.violated("original", "original: the goal is not the log's task goal of step t", full,

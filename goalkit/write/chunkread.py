@@ -189,10 +189,12 @@ class SplitColumns:
                 for rows, lo, hi in parts:
                     ds.read_direct(dest, np.s_[lo:hi], rows)
                 continue
-            job = pool.submit(_inflate_into, stored, targets, size, n * per_row)
+            # a chunk this read leaves rows of: kept (its inflated bytes) for the next read
+            keep = self._keep_tails and max(hi for _, _, hi in parts) < min(c0 + n, self.rows)
+            job = pool.submit(_inflate_into, stored, targets, size, n * per_row, keep)
             jobs.append(job)
-            if self._keep_tails and max(hi for _, _, hi in parts) < min(c0 + n, self.rows):
-                self._tails[name] = (c0, job)   # rows of it left for the next read
+            if keep:
+                self._tails[name] = (c0, job)
         return jobs
 
     def close(self) -> None:
@@ -203,14 +205,14 @@ class SplitColumns:
         self._tails = {}
 
 
-def _inflate_into(stored: bytes, targets, size: int, elements: int):
+def _inflate_into(stored: bytes, targets, size: int, elements: int, keep: bool = False):
     """Inflate one chunk and copy elements ``e0 .. e1 - 1`` into each ``(target, e0, e1)``;
-    the inflated bytes are returned (a later read may copy other rows from them)."""
+    with ``keep``, the inflated bytes are returned (a later read copies other rows from them)."""
     raw = np.frombuffer(_inflate(stored, elements * size), dtype=np.uint8)
     if raw.size != elements * size:
         raise DatasetError(f"a stored chunk inflates to {raw.size} bytes, expected {elements * size}")
     _scatter(raw, targets, size, elements)
-    return raw
+    return raw if keep else None
 
 
 def _copy_from(job, targets, size: int, elements: int) -> None:

@@ -220,7 +220,8 @@ def check_rows(plan, chunk, cols, split_name, report, row0, seen=None) -> None:
             row = np.flatnonzero(internal)[_first(crosses)]
             report.fail(f"{split_name} row {row0 + row} ({_row_text(cols, row)}): the goal comes from episode "
                         f"{int(goal_ep[row])} of the other split")
-        expect = _goal_at(plan, chunk, phi, goal_ep[internal], goal_step[internal], inner).astype(goal_dtype)
+        expect = _goal_at(plan, chunk, phi, goal_ep[internal], goal_step[internal], inner).astype(goal_dtype,
+                                                                                                  copy=False)
         diff = _rows_differ(cols["goal"][internal], expect)
         if diff.any():
             row = np.flatnonzero(internal)[_first(diff)]
@@ -357,7 +358,7 @@ def verify_set(path, max_failures: int = 20, progress=None, audit: bool = True, 
             # 4 + 5. rows, checked and re-derived; the summary re-derived alongside (_replay)
             # 6. the audit (rules and laws re-stated independently of the builder, docs/audit.md), fed
             #    the rows and log episodes read here, so that each is read and decompressed once
-            feed = AuditFeed(path, relocation=relocation, opened=source) if audit else None
+            feed = _LateFeed(path, relocation, source) if audit else None
             try:
                 complete = _replay(goal_set, plan, source, recipe, rows_report, relocation, digests, progress, feed,
                                    manifest)
@@ -601,6 +602,37 @@ def _replay_rows(goal_set, plan, source, report, relocation, digests, progress, 
     return True
 
 
+class _LateFeed:
+    """The audit's :class:`~goalkit.audit.AuditFeed`, made when :meth:`open` is first called (the
+    replay calls it once the logs' reads have begun, so that the audit's set-up does not delay
+    them); the same calls, passed on."""
+
+    def __init__(self, path, relocation, opened):
+        self.args, self.feed = (path, relocation, opened), None
+
+    def open(self):
+        if self.feed is None:
+            path, relocation, opened = self.args
+            self.feed = AuditFeed(path, relocation=relocation, opened=opened)
+        return self.feed
+
+    def add(self, *args) -> None:
+        self.open().add(*args)
+
+    def unread(self, *args) -> None:
+        self.open().unread(*args)
+
+    def add_stored(self, *args) -> None:
+        self.open().add_stored(*args)
+
+    def finish(self):
+        return self.open().finish()
+
+    def close(self) -> None:
+        if self.feed is not None:
+            self.feed.close()
+
+
 def _replay_chunks(plan, source, report, progress, feed, manifest, summary, total, bounds, ahead, lane):
     """Check and re-derive every chunk's rows; the rows each split reached (None: rows missing)."""
     cursor = {split: 0 for split in SPLITS}
@@ -609,6 +641,8 @@ def _replay_chunks(plan, source, report, progress, feed, manifest, summary, tota
     try:
         next(chunks)   # the logs' reads begin (and the reader process starts) first
         ahead.start(0)
+        if feed is not None:   # the audit's set-up (it reads the stored source_episode) meanwhile
+            feed.open()
         for i, (first_ep, stop_ep, chunk) in enumerate(chunks):
             ahead.start(i + 1)
             fresh = relabel_chunk(plan, chunk, defer_gathers=True)
