@@ -73,10 +73,6 @@ class DaskRunner:
         except Exception:  # noqa: BLE001  only a head start: the shards import what they need anyway
             self.warm = []
 
-    def ready(self) -> bool:
-        """True when a client is connected (one given by the caller; an address connects later)."""
-        return self.client is not None
-
     def submit(self, fn, *args):
         """Run ``fn(*args)`` on one of the cluster's workers; a ``distributed.Future``.
 

@@ -3,14 +3,18 @@
 A grouped or per-file log's planning helper (:mod:`goalkit.logs.planspawn`) asks the build's
 waiting spare (:mod:`goalkit.logs.spare`) to plan the last part of the episodes while the
 coordinator plans the first part. A one-process build starts an interpreter for that. A
-sharded build has already started its workers (:meth:`LocalRunner.launch`, or the workers of a
-connected Dask client), and they sit idle while the coordinator plans; a third interpreter
+build on local workers has already started them (:meth:`LocalRunner.launch`), and they sit idle
+while the coordinator plans; a third interpreter
 would only add its own start-up (about 0.3 CPU seconds, on cores that planning and the workers'
 start-up already keep busy). So :meth:`ShardProducer.launch
 <goalkit.pipeline.sharded.ShardProducer.launch>` puts a :class:`PoolSpare` in the spare slot: it
 has the spare's interface (``send``, ``receive``, ``alive``, ``close``, ``started``) and runs each
 request as one task on the runner (``runner.submit``). The logs' code is unchanged: it takes
-"the waiting spare" as before.
+"the waiting spare" as before. Only runners with a ``ready()`` method are used, i.e. the local
+pool: a Dask cluster's workers may sit on other machines, and on a one-machine ``LocalCluster``
+the planning part's answer (several MB at 1M transitions) crossing Dask's transport made the
+1M build slower (18.7 s against 16.0-16.9 s without, one run each), so a Dask build keeps the
+logs' own spare.
 
 Anything going wrong (the pool broken, a worker dead, the task failing, an answer that does not
 come back) reads as a failed answer: the caller plans those episodes itself, exactly as when a

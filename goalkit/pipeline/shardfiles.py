@@ -182,8 +182,17 @@ def _once(col, starts, counts):
             return np.take(col.source, first, axis=0)
         return None
     col = np.ascontiguousarray(col)
+    flat = col.reshape(len(col), -1).view(np.uint8)
+    # most columns that do not repeat (goal, strategy, reward, ...) already differ within the
+    # first transition with several rows: no need to build and compare the repeated column
+    multi = np.flatnonzero(counts > 1)
+    if len(multi):
+        a = starts[multi[0]]
+        rows = flat[a:a + counts[multi[0]]]
+        if not (rows == rows[:1]).all():
+            return None
     once = np.ascontiguousarray(col[starts])
-    flat, short = col.reshape(len(col), -1).view(np.uint8), once.reshape(len(once), -1).view(np.uint8)
+    short = once.reshape(len(once), -1).view(np.uint8)
     return once if np.array_equal(np.repeat(short, counts, axis=0), flat) else None
 
 

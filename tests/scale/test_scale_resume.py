@@ -123,13 +123,25 @@ def test_changed_seed_clears_old_shards_and_a_corrupt_shard_is_recomputed(gantry
     assert sha256(out) == sha256(ref)
 
 
-def _workers(pid):
-    """The pool's worker processes (spawned interpreters) of the build process ``pid``."""
+def _workers(pid, seen):
+    """The pool's worker processes of the build process ``pid``: spawned interpreters, or the
+    processes its fork server forked (they carry the server's command line and have the server
+    as their parent). The server also runs a short command while it imports h5py (``uname
+    -p``, from ``platform``), which has the server's command line until it execs: a child of
+    the server counts once ``seen`` (pid -> first seen, kept by the caller) says it has had
+    that command line for 50 ms."""
     out = []
-    for child in psutil.Process(pid).children():
+    now = time.monotonic()
+    for child in psutil.Process(pid).children(recursive=True):
         try:
-            if "spawn_main" in " ".join(child.cmdline()):
+            cmd = " ".join(child.cmdline())
+            if "spawn_main" in cmd:
                 out.append(child)
+            elif "forkserver" in cmd and child.ppid() != pid:
+                if now - seen.setdefault(child.pid, now) >= 0.05:
+                    out.append(child)
+            else:
+                seen.pop(child.pid, None)
         except psutil.Error:
             pass
     return out
@@ -150,11 +162,11 @@ def _partial_shards(out):
 
 def _kill_at(proc, out, moment, deadline):
     """Wait for ``moment`` of the build's life and SIGKILL one worker; return the kill time."""
-    first_seen, writing = None, set()
+    first_seen, writing, seen = None, set(), {}
     while True:
         assert proc.poll() is None, f"the build ended before the kill point ({moment}): {proc.communicate()}"
         assert time.monotonic() < deadline, f"never reached the kill point {moment}"
-        workers = _workers(proc.pid)
+        workers = _workers(proc.pid, seen)
         victim = None
         if moment == "start-up" and workers:
             victim = workers[0].pid            # just spawned: still starting its interpreter
@@ -226,7 +238,10 @@ def test_a_killed_worker_stops_the_build_in_one_line_and_the_rerun_resumes(gantr
     while len(shard_files(out)) < 3:
         assert proc.poll() is None and time.monotonic() < deadline
         time.sleep(0.002)
-    workers = _workers(proc.pid)
+    seen = {}
+    _workers(proc.pid, seen)
+    time.sleep(0.06)
+    workers = _workers(proc.pid, seen)
     assert len(workers) == 2
     os.kill(workers[0].pid, signal.SIGKILL)
     try:

@@ -177,7 +177,9 @@ def test_per_transition_columns_are_stored_once_and_read_back_exactly(tmp_path):
     signed = np.repeat(np.zeros(n_t, dtype=np.float32), slots)
     signed[1] = -0.0  # equal as numbers, not as bytes: must not be packed
     nan = np.repeat(np.full(n_t, np.nan), slots)
-    cols = {"observation": obs, "goal": g.normal(size=(len(t), 3)), "signed": signed, "nan": nan}
+    late = np.repeat(np.ones(n_t, dtype=np.float32), slots)
+    late[7 * slots + 2] = 2.0  # repeats within the first transitions, not within the eighth
+    cols = {"observation": obs, "goal": g.normal(size=(len(t), 3)), "signed": signed, "nan": nan, "late": late}
     rows = ChunkRows({"train": cols}, {"train": t * SLOT_SPAN + np.tile(np.arange(slots), n_t)})
     order = list(cols)
     spec = plan_shards(SimpleNamespace(lengths=np.array([n_t]), episode_ids=np.array([0])), 10_000)[0]
@@ -189,7 +191,7 @@ def test_per_transition_columns_are_stored_once_and_read_back_exactly(tmp_path):
         assert back.columns["train"][name].tobytes() == cols[name].tobytes(), name
     shapes = {name: tuple(shape) for name, _, shape, _, _ in meta["arrays"]}
     assert shapes["train/observation@transition"] == (n_t, 5)
-    assert shapes["train/signed"] == (n_t * slots,)
+    assert shapes["train/signed"] == (n_t * slots,) and shapes["train/late"] == (n_t * slots,)
 
 
 def test_deferred_gathers_are_packed_by_their_index_and_handed_back_deferred(tmp_path):

@@ -1,5 +1,6 @@
-"""A sharded build's workers standing in for the logs' spare helper while the build plans, and
-the coordinator's check of shard files its workers wrote in this run."""
+"""What a sharded build saves over its first version: workers forked from one fork server, a
+worker standing in for the logs' spare helper while the build plans, and the coordinator's
+check of shard files its workers wrote in this run."""
 
 import math
 import os
@@ -8,6 +9,7 @@ from dataclasses import replace
 from types import SimpleNamespace
 
 import numpy as np
+import psutil
 import pytest
 
 from goalkit.logs import grouped, planspawn, spare
@@ -128,17 +130,33 @@ def test_a_shard_written_in_this_run_is_checked_by_its_reported_digest_and_size(
         read_shard(tmp_path, replace(spec, stop=1), "k", order, written=written)
 
 
-def test_a_dask_build_plans_its_helper_part_on_a_cluster_worker(gantry, reference, helper_log, tmp_path,
-                                                                monkeypatch):
-    # the same stand-in on a connected Dask client's workers: they plan the helper's part, no
-    # helper interpreter starts, and the set's bytes are the single-process build's
-    distributed = pytest.importorskip("distributed")
-    monkeypatch.delenv("GOALKIT_POOL_HELPER", raising=False)
-    recipe = load_recipe(gantry / "scale-recipe.toml").with_overrides(out=tmp_path / "dasked.h5")
-    with distributed.LocalCluster(processes=True, n_workers=2, threads_per_worker=1,
-                                  dashboard_address=None) as cluster, distributed.Client(cluster) as client:
-        client.wait_for_workers(2)
-        build(recipe, client=client, max_rows_per_chunk=3000, card=False)
-    assert helper_log.seen == [("PoolSpare", True)]
-    assert helper_log.started == []
-    assert sha256(tmp_path / "dasked.h5") == reference[1]
+def _new_processes(me, before):
+    return [p for p in me.children(recursive=True) if p.pid not in before and p.is_running()
+            and p.status() != psutil.STATUS_ZOMBIE and "resource_tracker" not in " ".join(p.cmdline())]
+
+
+def test_local_workers_are_forked_by_one_server_that_is_stopped_with_the_pool(monkeypatch):
+    monkeypatch.delenv("GOALKIT_WORKER_START", raising=False)
+    me = psutil.Process()
+    before = {p.pid for p in me.children(recursive=True)}
+    with LocalRunner(2) as runner:
+        runner.launch()
+        for f in runner.warm:
+            f.result(timeout=60)
+        pids = list(runner.pool._processes)          # the pool's own map of its processes
+        servers = [p for p in me.children() if p.pid not in before and "forkserver" in " ".join(p.cmdline())]
+        assert len(servers) == 1 and len(pids) == 2
+        assert {psutil.Process(pid).ppid() for pid in pids} == {servers[0].pid}
+    left = _new_processes(me, before)
+    assert left == [], [(p.pid, p.ppid(), p.cmdline()) for p in left]
+
+
+def test_spawned_workers_give_the_same_bytes(gantry, reference, tmp_path, monkeypatch):
+    monkeypatch.setenv("GOALKIT_WORKER_START", "spawn")
+    me = psutil.Process()
+    before = {p.pid for p in me.children(recursive=True)}
+    recipe = load_recipe(gantry / "scale-recipe.toml").with_overrides(out=tmp_path / "spawned.h5")
+    build(recipe, workers=2, max_rows_per_chunk=3000, card=False)
+    assert sha256(tmp_path / "spawned.h5") == reference[1]
+    left = _new_processes(me, before)
+    assert left == [], [(p.pid, p.ppid(), p.cmdline()) for p in left]
