@@ -203,25 +203,44 @@ def _alive(pid: int) -> bool:
 
 def start_method() -> str:
     """``"forkserver"`` where the platform has it, else ``"spawn"`` (``GOALKIT_WORKER_START=spawn``
-    forces it)."""
+    forces it).
+
+    A process has one fork server. When one already runs (the caller's own, say for its data
+    loaders), it is left alone, its preloaded modules and its life, and the workers are spawned.
+    """
     import multiprocessing
 
     if os.environ.get(START_SWITCH) == "spawn" or "forkserver" not in multiprocessing.get_all_start_methods():
         return "spawn"
+    if _fork_server_running():
+        return "spawn"
     return "forkserver"
 
 
-def _stop_fork_server() -> None:
-    """Stop the fork server of this process, if one runs (the next pool starts a fresh one,
-    with the environment of its time). Its workers have exited by then."""
+def _fork_server():
     from multiprocessing import forkserver
 
-    stop = getattr(getattr(forkserver, "_forkserver", None), "_stop", None)
+    return getattr(forkserver, "_forkserver", None)
+
+
+def _fork_server_running() -> bool:
+    """True when this process's fork server has been started and not stopped."""
+    return getattr(_fork_server(), "_forkserver_pid", None) is not None
+
+
+def _stop_fork_server(preload) -> None:
+    """Stop the fork server this pool started (its workers have exited by then) and put back the
+    modules the process had asked fork servers to preload before (``preload``)."""
+    import multiprocessing
+
+    stop = getattr(_fork_server(), "_stop", None)
     if stop is not None:
         try:
             stop()
         except (OSError, ChildProcessError):
             pass
+    if preload is not None:
+        multiprocessing.get_context("forkserver").set_forkserver_preload(preload)
 
 
 def save_payload(payload: Payload, folder) -> tuple[str, str]:
@@ -353,6 +372,7 @@ class LocalRunner:
         self.released = False
         self.manager = None
         self.method = None
+        self.preload_before = None
 
     def launch(self) -> None:
         """Start the worker processes now, without a payload (they import what a task needs).
@@ -375,7 +395,9 @@ class LocalRunner:
             self.method = start_method()
             context = multiprocessing.get_context(self.method)
             if self.method == "forkserver":
-                # imported once by the server; every worker is forked from that state
+                # imported once by the server; every worker is forked from that state (the
+                # process's own preload list is put back when the pool closes)
+                self.preload_before = list(getattr(_fork_server(), "_preload_modules", None) or [])
                 context.set_forkserver_preload([*WARM_MODULES, __name__])
             self.pool = ProcessPoolExecutor(self.workers, mp_context=context,
                                             initializer=_init_worker, initargs=(os.getpid(),))
@@ -517,7 +539,7 @@ class LocalRunner:
                 self.manager.join()
                 self.manager = None
             if self.method == "forkserver":
-                _stop_fork_server()
+                _stop_fork_server(self.preload_before)
 
     def release(self) -> None:
         """Every shard has been computed: let the worker processes exit now, without waiting.

@@ -160,3 +160,37 @@ def test_spawned_workers_give_the_same_bytes(gantry, reference, tmp_path, monkey
     assert sha256(tmp_path / "spawned.h5") == reference[1]
     left = _new_processes(me, before)
     assert left == [], [(p.pid, p.ppid(), p.cmdline()) for p in left]
+
+
+def test_a_callers_own_fork_server_is_left_alone(monkeypatch):
+    # goalkit used from Python beside the caller's own fork-server processes (data loaders, say):
+    # the caller's server keeps running with its own preload list, and the workers are spawned
+    import multiprocessing
+    from multiprocessing import forkserver
+
+    from goalkit.pipeline import workers
+
+    monkeypatch.delenv("GOALKIT_WORKER_START", raising=False)
+    context = multiprocessing.get_context("forkserver")
+    server = forkserver._forkserver
+    context.set_forkserver_preload(["json"])
+    try:
+        # not yet started: the pool starts its own and puts the caller's list back afterwards
+        assert not workers._fork_server_running()
+        with LocalRunner(1) as runner:
+            runner.launch()
+            assert runner.method == "forkserver" and runner.warm[0].result(timeout=60) > 0
+        assert server._preload_modules == ["json"] and not workers._fork_server_running()
+        # the caller's server is running: left alone, workers spawned
+        with context.Pool(1) as theirs:
+            assert theirs.apply(os.getpid) > 0
+            pid = server._forkserver_pid
+            with LocalRunner(1) as runner:
+                runner.launch()
+                assert runner.method == "spawn" and runner.warm[0].result(timeout=60) > 0
+            assert server._forkserver_pid == pid and psutil.pid_exists(pid)
+            assert server._preload_modules == ["json"]
+            assert theirs.apply(os.getpid) > 0                  # their pool still works
+    finally:
+        context.set_forkserver_preload([])
+        workers._stop_fork_server(None)
