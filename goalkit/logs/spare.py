@@ -232,15 +232,21 @@ def serve(stdin, stdout) -> None:
         if len(head) < _LENGTH.size:
             return
         (size,) = _LENGTH.unpack(head)
-        request = pickle.loads(stdin.read(size))
-        call = request["call"]
-        for args in request["each"]:
-            try:
-                value = call(*args)
-            except Exception:                # noqa: BLE001  the caller does this piece itself
-                _write(stdout, "failed", None)
-            else:
-                _write(stdout, "ok", value)
+        for status, value in answers(pickle.loads(stdin.read(size))):
+            _write(stdout, status, value)
+
+
+def answers(request: dict):
+    """Yield ``("ok", f(*args))`` or ``("failed", None)`` for each ``args`` of ``request``
+    (``{"call": f, "each": [args, ...]}``), in order: what a spare answers, wherever it runs."""
+    call = request["call"]
+    for args in request["each"]:
+        try:
+            value = call(*args)
+        except Exception:                    # noqa: BLE001  the caller does this piece itself
+            yield "failed", None
+        else:
+            yield "ok", value
 
 
 if __name__ == "__main__":

@@ -30,6 +30,8 @@ import time
 from collections import deque
 from concurrent.futures import TimeoutError as FutureTimeout
 
+from goalkit.logs import spare
+
 #: Environment variable that turns the stand-in off (``GOALKIT_POOL_HELPER=0``).
 SWITCH = "GOALKIT_POOL_HELPER"
 #: Seconds between checks that the runner's workers are alive while an answer is awaited.
@@ -39,16 +41,10 @@ CHECK_SECONDS = 0.2
 def serve_request(request: dict) -> list:
     """Answer one spare request on a worker: ``("ok", value)`` or ``("failed", None)`` per args.
 
-    The same answers :func:`goalkit.logs.spare.serve` writes on its stdout, as one list.
+    The same answers :func:`goalkit.logs.spare.serve` writes on its stdout
+    (:func:`goalkit.logs.spare.answers`), as one list.
     """
-    call = request["call"]
-    out = []
-    for args in request["each"]:
-        try:
-            out.append(("ok", call(*args)))
-        except Exception:                    # noqa: BLE001  the caller does this piece itself
-            out.append(("failed", None))
-    return out
+    return list(spare.answers(request))
 
 
 def wanted() -> bool:
@@ -61,9 +57,9 @@ class PoolSpare:
 
     Parameters
     ----------
-    runner : LocalRunner or DaskRunner
-        Its ``submit(fn, *args)`` runs a task on a worker and returns a future; with a
-        ``dead_workers()`` method, a dead worker ends the wait for an answer.
+    runner : LocalRunner
+        Its ``submit(fn, *args)`` runs a task on a worker and returns a future; its
+        ``dead_workers()`` ends the wait for an answer when a worker has died.
     """
 
     #: Not a process of its own (a chunk reader that wants one reads the chunks itself).

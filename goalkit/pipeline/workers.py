@@ -210,9 +210,8 @@ def start_method() -> str:
     """
     import multiprocessing
 
-    if os.environ.get(START_SWITCH) == "spawn" or "forkserver" not in multiprocessing.get_all_start_methods():
-        return "spawn"
-    if _fork_server_running():
+    if (os.environ.get(START_SWITCH) == "spawn" or "forkserver" not in multiprocessing.get_all_start_methods()
+            or _fork_server_running()):
         return "spawn"
     return "forkserver"
 
@@ -407,8 +406,8 @@ class LocalRunner:
         _start_all_at_once(self.pool)
         _quiet_pool_threads()
         try:
-            # a spawn pool starts a process per submitted task while none is idle: one warm-up
-            # task per worker starts them all
+            # the first submit starts every process (_start_all_at_once); each worker takes one
+            # warm-up task (imports what a shard needs, unless its fork server preloaded them)
             for _ in range(self.workers):
                 self.warm.append(self.pool.submit(warm_up))
         except (BrokenProcessPool, OSError, RuntimeError):
