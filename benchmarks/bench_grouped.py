@@ -53,6 +53,9 @@ machine kept fewer than :data:`QUIET_CPUS` CPUs busy.
 Targets (issue 14): build >= 1.5x the script's speed and >= 0.8x the floor's; peak RSS at 1M
 <= 1.2x that at 200k; workers=2 and Dask with 2 workers >= 1.6x one process on one CPU when
 two cores are free.
+Before any case, goalkit's modules are compiled to bytecode (``tools/bytecode.py``), as an
+installed copy has them, so that no case's interpreters compile goalkit's sources; the report
+says so under ``bytecode``.
 Results: ``benchmarks/results/grouped.json``. The flat best case stays in bench_build.py.
 """
 
@@ -71,6 +74,9 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(HERE))
+
+from tools.bytecode import compile_package  # noqa: E402
 
 SIZES = {"200k": 4_250, "1M": 21_000}        # demo episodes (about 47 transitions each)
 #: The demo recipe's mixture and reward (goalkit/demo/files.py: recipe_text), for the script.
@@ -532,9 +538,11 @@ def main(argv=None) -> dict:
     workers = [int(w) for w in args.workers.split(",") if int(w) > 0]
     dask = [int(w) for w in args.dask.split(",") if int(w) > 0]
     sizes = ["200k"] + (["1M"] if args.large else [])
+    bytecode = compile_package()     # as an installed copy has it (see tools/bytecode.py)
     report = {"benchmark": "grouped",
               "command": "python benchmarks/bench_grouped.py " + " ".join(argv if argv is not None else sys.argv[1:]),
               "machine": {"cpus": os.cpu_count(), "python": platform.python_version()},
+              "bytecode": bytecode,
               "note": "shared 2-core machine: compare ratios within one run and CPU seconds, not wall times "
                       "across runs",
               "sizes": {}}

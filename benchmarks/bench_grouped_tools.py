@@ -46,6 +46,8 @@ ROOT = HERE.parent
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(HERE))
 
+from tools.bytecode import compile_package  # noqa: E402
+
 from bench_grouped import cpu_seconds, logs, machine_cpu_seconds  # noqa: E402  (the same demo logs, reused by size)
 
 EPISODES = 4_250
@@ -156,10 +158,12 @@ def main(argv=None) -> dict:
             for what in ("seconds", "cpu_seconds"):
                 key = name + ("_wall" if what == "seconds" else "_cpu")
                 ratios[key] = statistics.median(g[num][what] / g[den][what] for g in rounds)
+    bytecode = compile_package()     # as an installed copy has it (see tools/bytecode.py)
     report = {"benchmark": "grouped_tools",
               "command": "python benchmarks/bench_grouped_tools.py " + " ".join(argv if argv is not None
                                                                               else sys.argv[1:]),
               "machine": {"cpus": os.cpu_count(), "python": platform.python_version()},
+              "bytecode": bytecode,
               "episodes": args.episodes, "transitions": info["steps"],
               "load_average_before": load_before, "load_average_after": os.getloadavg(),
               "rounds": rounds, "ratios": ratios, "targets": TARGETS,

@@ -37,6 +37,8 @@ ROOT = HERE.parent
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(HERE))
 
+from tools.bytecode import compile_package  # noqa: E402
+
 from bench_grouped import EPISODES_PER_BLOCK, SIZES, cpu_seconds, logs, peak_rss_mb, relabel_blocks  # noqa: E402
 
 KEYS = ("head", "head_velocity", "trays", "action", "reward", "success", "task_goal")
@@ -174,9 +176,11 @@ def main(argv=None) -> dict:
     if args.child:
         child(args)
         return {}
+    bytecode = compile_package()     # as an installed copy has it (see tools/bytecode.py)
     report = {"benchmark": "perfile",
               "command": "python benchmarks/bench_perfile.py " + " ".join(argv if argv is not None else sys.argv[1:]),
               "machine": {"cpus": os.cpu_count(), "python": platform.python_version()},
+              "bytecode": bytecode,
               "note": "shared 2-core machine: compare ratios within one run and CPU seconds",
               "sizes": {}}
     for label in ["200k"] + (["1M"] if args.large else []):

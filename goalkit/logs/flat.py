@@ -21,7 +21,8 @@ import numpy as np
 from goalkit.errors import LogError
 from goalkit.logs import boundaries as bnd
 from goalkit.logs import checks, limits
-from goalkit.logs.access import H5Access, NpzAccess, guard, open_h5
+from goalkit.logs.access import H5Access, NpzAccess, guard
+from goalkit.logs.held import open_log
 from goalkit.logs.npzfile import NpzArrays
 from goalkit.logs.source import BaseSource
 
@@ -82,7 +83,7 @@ class FlatSource(BaseSource):
         if self._npz is not None:
             yield NpzAccess(self._npz)
         else:
-            with open_h5(self.path) as h5:
+            with open_log(self.path) as h5:    # held open between reads in a build's own processes
                 yield H5Access(h5, self.path, file_size=self.file_size, max_rows=limits.MAX_LOG_ROWS)
 
     # ---- open: shapes, boundaries, per-episode rows ----------------------------------------

@@ -28,6 +28,7 @@ from goalkit.logs.checks import MAX_WIDTH
 from goalkit.logs.episodic import EpisodicSource, join_parts, plan_episode, read_episode
 from goalkit.logs.groupplan import plan_group, plan_keys
 from goalkit.logs.groupread import read_groups, read_plan
+from goalkit.logs.held import open_log
 from goalkit.logs.naming import natural_sorted
 from goalkit.logs.planspawn import finish_helper, groups_digest, helper_split, start_helper, stop_helper
 
@@ -319,7 +320,7 @@ class GroupedSource(EpisodicSource):
 
     def _read_episodes(self, ids):
         fast = self._fast_plan()
-        with open_h5(self.path) as h5:
+        with open_log(self.path) as h5:        # held open between reads in a build's own processes
             if fast is not None:
                 cols = read_groups(h5, self.groups, self.metas, ids, fast, self._widths, self._tails, self.layout)
                 if cols is not None:

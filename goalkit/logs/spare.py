@@ -29,6 +29,8 @@ import sys
 import threading
 import time
 
+from goalkit.threadenv import one_thread_environ
+
 #: Logs smaller than this in total start no spare (their helpers, if any, start when wanted).
 WARM_BYTES = 8 << 20
 #: Environment variable that turns the early start off (``GOALKIT_SPARE=0``).
@@ -66,7 +68,7 @@ class Spare:
         try:
             proc = subprocess.Popen([sys.executable, "-m", "goalkit.logs.spare"], stdin=subprocess.PIPE,
                                     stdout=subprocess.PIPE, stderr=subprocess.DEVNULL,
-                                    env={**os.environ, "PYTHONPATH": _python_path()})
+                                    env={**one_thread_environ(os.environ), "PYTHONPATH": _python_path()})
         except (OSError, ValueError):
             return None
         return cls(proc)
@@ -251,6 +253,9 @@ def answers(request: dict):
 
 if __name__ == "__main__":
     try:
+        from goalkit.logs.held import hold_logs
+
+        hold_logs()            # this process lives for one build: its reads keep the log open
         serve(sys.stdin.buffer, sys.stdout.buffer)
     except BaseException:                    # noqa: BLE001  the callers do what is left themselves
         sys.exit(1)

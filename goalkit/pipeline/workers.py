@@ -43,6 +43,7 @@ from pathlib import Path
 import numpy as np
 
 from goalkit.errors import GoalkitError
+from goalkit.logs.held import hold_logs
 from goalkit.outputs import open_no_follow, write_own_file
 from goalkit.pipeline.buildfolder import GOAL_TABLE_FILE, PAYLOAD_FILE
 from goalkit.pipeline.chunk import relabel_chunk
@@ -59,6 +60,9 @@ START_SWITCH = "GOALKIT_WORKER_START"
 #: Modules a worker imports while the coordinator plans (what unpickling a payload and reading
 #: and relabelling a shard would import on the first task).
 WARM_MODULES = ("numpy", "h5py", "goalkit.pipeline.plan", "goalkit.logs.grouped", "goalkit.logs.perfile")
+#: Imported first by the fork server only (:mod:`goalkit.pipeline.serverenv`): the workers start
+#: with one math-library thread each (:mod:`goalkit.threadenv`).
+SERVER_ENV_MODULE = "goalkit.pipeline.serverenv"
 
 
 def _save_npy(value, path) -> None:
@@ -265,6 +269,7 @@ def _init_worker(parent: int) -> None:
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
     threading.Thread(target=_watch_parent, args=(parent,), daemon=True).start()
+    hold_logs()      # a local worker lives for one build: its shards' reads keep the log open
 
 
 def load_payload(payload_path: str, digest: str) -> Payload:
@@ -372,6 +377,7 @@ class LocalRunner:
         self.manager = None
         self.method = None
         self.preload_before = None
+        self.launched_at = None    # time.monotonic() when launch() started the processes
 
     def launch(self) -> None:
         """Start the worker processes now, without a payload (they import what a task needs).
@@ -387,6 +393,7 @@ class LocalRunner:
 
         if self.pool is not None:
             return
+        self.launched_at = time.monotonic()
         # the processes inherit a blocked SIGINT until _init_worker ignores it, so a Ctrl-C
         # while they start prints no traceback from a half-started worker
         blocked = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
@@ -397,7 +404,8 @@ class LocalRunner:
                 # imported once by the server; every worker is forked from that state (the
                 # process's own preload list is put back when the pool closes)
                 self.preload_before = list(getattr(_fork_server(), "_preload_modules", None) or [])
-                context.set_forkserver_preload([*WARM_MODULES, __name__])
+                # (serverenv first: one math-library thread, set before numpy is imported)
+                context.set_forkserver_preload([SERVER_ENV_MODULE, *WARM_MODULES, __name__])
             self.pool = ProcessPoolExecutor(self.workers, mp_context=context,
                                             initializer=_init_worker, initargs=(os.getpid(),))
         except BaseException:

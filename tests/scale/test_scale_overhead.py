@@ -52,6 +52,35 @@ def test_pool_spare_gives_up_when_its_worker_dies():
         assert not helper.send({"call": math.sqrt, "each": [(4.0,)]})   # the pool is gone
 
 
+def test_a_pool_launched_earlier_gets_the_share_of_a_warm_helper(monkeypatch):
+    # helper_split shares the groups so that both parts finish together: a helper still starting
+    # gets fewer. A pool's workers imported what they need during launch(), so the share is
+    # reckoned from when the pool was launched, not from when the stand-in was made.
+    monkeypatch.setattr(planspawn, "cpus", lambda: 2)
+    monkeypatch.delenv(planspawn.SWITCH, raising=False)
+    total = 10_000
+    warm = int(total * (1 + planspawn.MATCH_SECONDS / (total * planspawn.SECONDS_PER_GROUP)) / 2)
+    cold = int(total * (1 + (planspawn.MATCH_SECONDS + planspawn.STARTUP_SECONDS)
+                        / (total * planspawn.SECONDS_PER_GROUP)) / 2)
+    with LocalRunner(1) as runner:
+        runner.launch()
+        runner.warm[0].result(timeout=60)
+        time.sleep(max(0.0, planspawn.STARTUP_SECONDS - (time.monotonic() - runner.launched_at)) + 0.01)
+        stand_in = PoolSpare(runner)
+        assert stand_in.started == runner.launched_at
+        with spare.scope([], early=False):
+            spare.give_back(stand_in)
+            assert planspawn.helper_split(total) == warm
+            spare.take()
+    # a stand-in whose runner says nothing of its launch counts as just started
+    helper = PoolSpare(SimpleNamespace(broken=False))
+    with spare.scope([], early=False):
+        spare.give_back(helper)
+        assert abs(planspawn.helper_split(total) - cold) <= 5
+        spare.take()
+    assert warm < cold
+
+
 @pytest.fixture()
 def helper_log(gantry, monkeypatch):
     """The scale logs (240 groups) planned with a helper, as logs of 1,500+ groups are."""

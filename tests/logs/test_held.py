@@ -1,0 +1,117 @@
+"""Logs held open between reads in a build's own processes (goalkit/logs/held.py).
+
+Reference: the arrays h5py wrote (the truth of logs_testdata). Holding a file open may only
+change how often it is opened: every read must give the truth, a replaced file must be read
+afresh, and a process that does not ask for holding must keep no file open.
+"""
+
+from __future__ import annotations
+
+import os
+
+import numpy as np
+import pytest
+from logs_testdata import assert_matches, make_episodes, write_flat, write_grouped
+
+from goalkit.errors import LogError
+from goalkit.logs import held, open_logs
+
+
+@pytest.fixture
+def holding():
+    held.hold_logs()
+    try:
+        yield
+    finally:
+        held.hold_logs(False)
+
+
+def open_fds_to(path) -> int:
+    """How many of this process's file descriptors point at ``path``."""
+    target = os.path.realpath(path)
+    n = 0
+    for fd in os.listdir("/proc/self/fd"):
+        try:
+            n += os.path.realpath(os.readlink(f"/proc/self/fd/{fd}")) == target
+        except OSError:
+            pass
+    return n
+
+
+def test_without_holding_each_read_opens_and_closes(tmp_path):
+    eps = make_episodes([3, 4, 2], seed=1)
+    src = open_logs(tmp_path / "g.h5", write_grouped(tmp_path / "g.h5", eps))
+    assert not held.holding()
+    assert_matches(src.read(0, 3), eps, [0, 1, 2])
+    assert open_fds_to(tmp_path / "g.h5") == 0
+    with held.open_log(tmp_path / "g.h5") as a:
+        pass
+    with held.open_log(tmp_path / "g.h5") as b:
+        assert b is not a
+    assert not a.id.valid and open_fds_to(tmp_path / "g.h5") == 0
+
+
+def test_a_holding_process_reuses_one_open_file_and_reads_the_truth(tmp_path, holding):
+    eps = make_episodes([3, 4, 2, 5, 1], seed=2)
+    path = tmp_path / "g.h5"
+    src = open_logs(path, write_grouped(path, eps))
+    with held.open_log(path) as first:
+        pass
+    for a, b in [(0, 2), (2, 5), (1, 4), (0, 5)]:
+        assert_matches(src.read(a, b), eps, list(range(a, b)))
+        with held.open_log(path) as again:
+            assert again is first and again.id.valid
+    assert open_fds_to(path) == 1
+    held.release_logs()
+    assert not first.id.valid and open_fds_to(path) == 0
+
+
+def test_a_flat_log_is_held_too(tmp_path, holding):
+    eps = make_episodes([4, 3, 6], seed=3)
+    path = tmp_path / "f.h5"
+    src = open_logs(path, write_flat(path, eps))
+    assert_matches(src.read(0, 3), eps, [0, 1, 2])
+    assert_matches(src.read(1, 2), eps, [1])
+    assert open_fds_to(path) == 1
+
+
+def test_a_replaced_file_is_opened_again(tmp_path, holding):
+    path = tmp_path / "g.h5"
+    old = make_episodes([3, 3], seed=4)
+    write_grouped(path, old)
+    with held.open_log(path) as first:
+        np.testing.assert_array_equal(first["runs/ep0/act"][()], old[0]["act"])
+    new = make_episodes([3, 3], seed=5)
+    write_grouped(tmp_path / "next.h5", new)
+    os.replace(tmp_path / "next.h5", path)          # another file under the same name
+    with held.open_log(path) as second:
+        assert second is not first
+        np.testing.assert_array_equal(second["runs/ep0/act"][()], new[0]["act"])
+    assert not first.id.valid                        # the stale handle was closed
+
+
+def test_a_failed_read_closes_its_file_and_the_next_read_opens_afresh(tmp_path, holding):
+    path = tmp_path / "g.h5"
+    write_grouped(path, make_episodes([2, 2], seed=6))
+    with pytest.raises(KeyError):
+        with held.open_log(path) as h5:
+            h5["no such dataset"]
+    assert not h5.id.valid
+    with held.open_log(path) as again:
+        assert again is not h5 and again.id.valid
+
+
+def test_a_file_that_is_not_hdf5_is_refused_as_before(tmp_path, holding):
+    bad = tmp_path / "bad.h5"
+    bad.write_bytes(b"not an HDF5 file at all")
+    with pytest.raises(LogError, match="not an HDF5 file"):
+        with held.open_log(bad):
+            pass
+
+
+def test_two_readers_at_once_each_get_an_open_file(tmp_path, holding):
+    path = tmp_path / "g.h5"
+    write_grouped(path, make_episodes([2, 3], seed=7))
+    with held.open_log(path) as a, held.open_log(path) as b:
+        assert a is not b and a.id.valid and b.id.valid
+    assert open_fds_to(path) == 1                    # one kept, the other closed
