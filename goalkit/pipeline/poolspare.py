@@ -68,10 +68,9 @@ class PoolSpare:
     def __init__(self, runner, every: float = CHECK_SECONDS):
         self.runner = runner
         self.every = every
-        # when the workers started: the logs' planning shares the episodes by the start-up a
-        # spare has left (a pool launched earlier has none left, its imports are done)
-        launched = getattr(runner, "launched_at", None)
-        self.started = time.monotonic() if launched is None else launched
+        # the logs' planning shares the episodes by the start-up a spare has left: the pool's
+        # processes started when it was launched (a runner that does not say: now)
+        self.started = getattr(runner, "launched_at", None) or time.monotonic()
         self.tasks: deque = deque()      # one future per request, in order
         self.answers: deque = deque()    # answers of the request being read
         self.closed = False

@@ -378,52 +378,76 @@ class LocalRunner:
         self.method = None
         self.preload_before = None
         self.launched_at = None    # time.monotonic() when launch() started the processes
+        self.starter = None        # the thread starting them (see launch)
+        self.start_error = None    # what it raised, for the pool's next use
 
     def launch(self) -> None:
         """Start the worker processes now, without a payload (they import what a task needs).
 
         Called by the build before it plans, so that the processes start on the other cores
-        while the coordinator plans (their start-up, about half a second each, is then off the
-        build's path). Idempotent; :meth:`start` calls it when the build did not.
+        while the coordinator plans. It does not wait for them: the processes are started on a
+        thread of their own (``goalkit-pool-start``; with a fork server, the first start waits
+        for the server to import :data:`WARM_MODULES`, about 0.15 s), and every later use of
+        the pool (:meth:`submit`, :meth:`run`, :meth:`close`, ...) waits for that thread first.
+        A failure to start them is raised by that later use. Idempotent; :meth:`start` calls it
+        when the build did not.
         """
         import multiprocessing
-        import signal
         from concurrent.futures import ProcessPoolExecutor
-        from concurrent.futures.process import BrokenProcessPool
 
         if self.pool is not None:
             return
         self.launched_at = time.monotonic()
-        # the processes inherit a blocked SIGINT until _init_worker ignores it, so a Ctrl-C
-        # while they start prints no traceback from a half-started worker
-        blocked = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
-        try:
-            self.method = start_method()
-            context = multiprocessing.get_context(self.method)
-            if self.method == "forkserver":
-                # imported once by the server; every worker is forked from that state (the
-                # process's own preload list is put back when the pool closes)
-                self.preload_before = list(getattr(_fork_server(), "_preload_modules", None) or [])
-                # (serverenv first: one math-library thread, set before numpy is imported)
-                context.set_forkserver_preload([SERVER_ENV_MODULE, *WARM_MODULES, __name__])
-            self.pool = ProcessPoolExecutor(self.workers, mp_context=context,
-                                            initializer=_init_worker, initargs=(os.getpid(),))
-        except BaseException:
-            signal.pthread_sigmask(signal.SIG_SETMASK, blocked)
-            raise
+        self.method = start_method()
+        context = multiprocessing.get_context(self.method)
+        if self.method == "forkserver":
+            # imported once by the server; every worker is forked from that state (the
+            # process's own preload list is put back when the pool closes)
+            # (serverenv first: one math-library thread, set before numpy is imported)
+            self.preload_before = list(getattr(_fork_server(), "_preload_modules", None) or [])
+            context.set_forkserver_preload([SERVER_ENV_MODULE, *WARM_MODULES, __name__])
+        self.pool = ProcessPoolExecutor(self.workers, mp_context=context,
+                                        initializer=_init_worker, initargs=(os.getpid(),))
         _start_all_at_once(self.pool)
         _quiet_pool_threads()
+        self.starter = threading.Thread(target=self._start_processes, name="goalkit-pool-start", daemon=True)
+        self.starter.start()
+
+    def _start_processes(self) -> None:
+        """The starting thread: the first submits start every process (:func:`_start_all_at_once`);
+        each worker takes one warm-up task (imports what a shard needs, unless its fork server
+        preloaded them)."""
+        import signal
+        from concurrent.futures.process import BrokenProcessPool
+
+        # the processes (and a fork server) inherit this thread's blocked SIGINT until
+        # _init_worker ignores it, so a Ctrl-C while they start prints no traceback from a
+        # half-started worker; the coordinator's own threads keep theirs
+        signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
         try:
-            # the first submit starts every process (_start_all_at_once); each worker takes one
-            # warm-up task (imports what a shard needs, unless its fork server preloaded them)
             for _ in range(self.workers):
                 self.warm.append(self.pool.submit(warm_up))
         except (BrokenProcessPool, OSError, RuntimeError):
             # a worker died while the next was being started; run() reports it as a lost worker
             # (it cannot submit to the broken pool) and close() stops the rest
             self.broken = True
-        finally:
-            signal.pthread_sigmask(signal.SIG_SETMASK, blocked)
+        except BaseException as exc:   # noqa: BLE001  raised again by the pool's next use
+            self.start_error = exc
+
+    def _join_starter(self) -> None:
+        """Wait until the starting thread is done (at once when there is none)."""
+        starter = self.starter
+        if starter is not None:
+            starter.join()
+            self.starter = None
+
+    def wait_started(self) -> None:
+        """Wait until the starting thread is done; raise what it could not do."""
+        self._join_starter()
+        if self.start_error is not None:
+            exc, self.start_error = self.start_error, None
+            self.broken = True
+            raise exc
 
     def ready(self) -> bool:
         """True when the pool has been launched and no worker is known to have died."""
@@ -436,6 +460,7 @@ class LocalRunner:
         other than shards (planning a range of episodes, say) can run on the pool.
         """
         self.launch()
+        self.wait_started()
         fut = self.pool.submit(fn, *args)
         self.futures.append(fut)
         return fut
@@ -465,6 +490,7 @@ class LocalRunner:
 
         import signal
 
+        self.wait_started()
         by_future = {}
         # submitting may start a process (one that died is not replaced, but a pool that was
         # never launched is): block SIGINT as launch() does
@@ -517,6 +543,7 @@ class LocalRunner:
         A pool whose own manager thread has died (it can no longer hand out work or collect
         results) counts as having lost a worker too: ``[-1]`` when no process is seen dead.
         """
+        self._join_starter()
         procs = getattr(self.pool, "_processes", None) or {}  # the pool's own map of its processes
         dead = [pid for pid, proc in list(procs.items()) if proc.exitcode is not None]
         manager = getattr(self.pool, "_executor_manager_thread", None)
@@ -532,6 +559,7 @@ class LocalRunner:
         given no shard (the build stopped while planning) is terminated too: its workers have
         nothing to finish.
         """
+        self._join_starter()
         if self.pool is not None:
             for f in self.futures:
                 f.cancel()
@@ -555,6 +583,7 @@ class LocalRunner:
         exit (interpreter shutdown, about 0.1 s each) overlaps the coordinator's writing of the
         last rows instead of following it; :meth:`close` then only joins them.
         """
+        self._join_starter()
         if self.pool is not None and not self.released:
             self.released = True
             # shutdown(wait=False) drops the pool's reference to its manager thread, which joins

@@ -32,8 +32,11 @@ def _pool_pids(runner):
 def test_launched_workers_run_before_any_payload_and_load_it_once_by_digest(tmp_path):
     runner = LocalRunner(2)
     try:
+        t0 = time.monotonic()
         runner.launch()
+        assert time.monotonic() - t0 < 0.1              # launch() does not wait for the processes
         assert runner.payload_ref is None
+        runner.wait_started()
         assert len(_pool_pids(runner)) == 2                     # both started, before a payload exists
         assert {f.result(timeout=60) for f in runner.warm} <= _pool_pids(runner)
         # the submit hook runs a module-level function in a worker process, not here
@@ -132,6 +135,7 @@ def test_every_worker_process_starts_before_the_pool_thread_that_could_tear_it_d
     runner = LocalRunner(3)
     try:
         runner.launch()
+        runner.wait_started()
         assert {f.result(timeout=60) for f in runner.warm} <= _pool_pids(runner)
         assert len(_pool_pids(runner)) == 3
         runner.submit(warm_up).result(timeout=60)          # later submits start nothing

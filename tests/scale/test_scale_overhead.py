@@ -41,6 +41,7 @@ def test_pool_spare_answers_like_a_spare_and_failures_read_as_none():
 def test_pool_spare_gives_up_when_its_worker_dies():
     with LocalRunner(1) as runner:
         runner.launch()
+        runner.wait_started()
         pid = runner.warm[0].result(timeout=60)
         helper = PoolSpare(runner, every=0.05)
         assert helper.send({"call": time.sleep, "each": [(30,)]})
@@ -52,10 +53,10 @@ def test_pool_spare_gives_up_when_its_worker_dies():
         assert not helper.send({"call": math.sqrt, "each": [(4.0,)]})   # the pool is gone
 
 
-def test_a_pool_launched_earlier_gets_the_share_of_a_warm_helper(monkeypatch):
+def test_a_pool_stand_in_counts_its_start_up_from_the_pool_launch(monkeypatch):
     # helper_split shares the groups so that both parts finish together: a helper still starting
-    # gets fewer. A pool's workers imported what they need during launch(), so the share is
-    # reckoned from when the pool was launched, not from when the stand-in was made.
+    # gets fewer. A pool's workers start when it is launched (before the build plans), so the
+    # start-up left is reckoned from then, not from when the stand-in was made.
     monkeypatch.setattr(planspawn, "cpus", lambda: 2)
     monkeypatch.delenv(planspawn.SWITCH, raising=False)
     total = 10_000
@@ -64,18 +65,17 @@ def test_a_pool_launched_earlier_gets_the_share_of_a_warm_helper(monkeypatch):
                         / (total * planspawn.SECONDS_PER_GROUP)) / 2)
     with LocalRunner(1) as runner:
         runner.launch()
-        runner.warm[0].result(timeout=60)
-        time.sleep(max(0.0, planspawn.STARTUP_SECONDS - (time.monotonic() - runner.launched_at)) + 0.01)
+        time.sleep(planspawn.STARTUP_SECONDS + 0.01)
         stand_in = PoolSpare(runner)
         assert stand_in.started == runner.launched_at
         with spare.scope([], early=False):
             spare.give_back(stand_in)
             assert planspawn.helper_split(total) == warm
-            spare.take()
-    # a stand-in whose runner says nothing of its launch counts as just started
-    helper = PoolSpare(SimpleNamespace(broken=False))
+            helper = spare.take()
+            assert helper.send({"call": math.sqrt, "each": [(9.0,)]}) and helper.receive() == 3.0
+    # a stand-in whose runner says nothing of a launch counts as just started
     with spare.scope([], early=False):
-        spare.give_back(helper)
+        spare.give_back(PoolSpare(SimpleNamespace(broken=False)))
         assert abs(planspawn.helper_split(total) - cold) <= 5
         spare.take()
     assert warm < cold
@@ -170,6 +170,7 @@ def test_local_workers_are_forked_by_one_server_that_is_stopped_with_the_pool(mo
     before = {p.pid for p in me.children(recursive=True)}
     with LocalRunner(2) as runner:
         runner.launch()
+        runner.wait_started()
         for f in runner.warm:
             f.result(timeout=60)
         pids = list(runner.pool._processes)          # the pool's own map of its processes
@@ -208,6 +209,7 @@ def test_a_callers_own_fork_server_is_left_alone(monkeypatch):
         assert not workers._fork_server_running()
         with LocalRunner(1) as runner:
             runner.launch()
+            runner.wait_started()
             assert runner.method == "forkserver" and runner.warm[0].result(timeout=60) > 0
         assert server._preload_modules == ["json"] and not workers._fork_server_running()
         # the caller's server is running: left alone, workers spawned
@@ -216,6 +218,7 @@ def test_a_callers_own_fork_server_is_left_alone(monkeypatch):
             pid = server._forkserver_pid
             with LocalRunner(1) as runner:
                 runner.launch()
+                runner.wait_started()
                 assert runner.method == "spawn" and runner.warm[0].result(timeout=60) > 0
             assert server._forkserver_pid == pid and psutil.pid_exists(pid)
             assert server._preload_modules == ["json"]

@@ -16,7 +16,7 @@ import numpy as np
 import psutil
 import pytest
 
-from goalkit.pipeline.buildfolder import folder_of
+from goalkit.pipeline.buildfolder import PAYLOAD_FILE, folder_of
 from goalkit.pipeline.shardfiles import shard_meta
 
 from conftest import GOALKIT, change_value, sha256
@@ -162,7 +162,8 @@ def _partial_shards(out):
 
 def _kill_at(proc, out, moment, deadline):
     """Wait for ``moment`` of the build's life and SIGKILL one worker; return the kill time."""
-    first_seen, writing, seen = None, set(), {}
+    writing, seen = set(), {}
+    payload = folder_of(out) / PAYLOAD_FILE
     while True:
         assert proc.poll() is None, f"the build ended before the kill point ({moment}): {proc.communicate()}"
         assert time.monotonic() < deadline, f"never reached the kill point {moment}"
@@ -170,8 +171,8 @@ def _kill_at(proc, out, moment, deadline):
         victim = None
         if moment == "start-up" and workers:
             victim = workers[0].pid            # just spawned: still starting its interpreter
-        elif moment == "loading" and first_seen is not None and time.monotonic() - first_seen > 0.3:
-            victim = workers[0].pid            # about 0.3 s in: importing goalkit, loading the payload
+        elif moment == "loading" and workers and payload.exists():
+            victim = workers[0].pid            # the payload was just written: loading it, or a first shard
         elif moment == "mid-shard" and len(shard_files(out)) >= 3 and len(workers) == 2:
             victim = workers[0].pid
         elif moment in ("writing", "after-writing"):
@@ -183,8 +184,6 @@ def _kill_at(proc, out, moment, deadline):
                 writing = set(partial)
                 if gone and len(shard_files(out)) >= 2:
                     victim = gone[0]           # it has just renamed its shard into place
-        if workers and first_seen is None:
-            first_seen = time.monotonic()
         if victim is not None:
             try:
                 os.kill(victim, signal.SIGKILL)
