@@ -59,7 +59,8 @@ SPILL_BYTES = 1 << 20
 START_SWITCH = "GOALKIT_WORKER_START"
 #: Modules a worker imports while the coordinator plans (what unpickling a payload and reading
 #: and relabelling a shard would import on the first task).
-WARM_MODULES = ("numpy", "h5py", "goalkit.pipeline.plan", "goalkit.logs.grouped", "goalkit.logs.perfile")
+WARM_MODULES = ("numpy", "h5py", "goalkit.pipeline.plan", "goalkit.pipeline.recipe", "goalkit.logs.grouped",
+                "goalkit.logs.perfile")
 #: Imported first by the fork server only (:mod:`goalkit.pipeline.serverenv`): the workers start
 #: with one math-library thread each (:mod:`goalkit.threadenv`).
 SERVER_ENV_MODULE = "goalkit.pipeline.serverenv"
