@@ -5,7 +5,8 @@ request on the reader process. Opening the file for each range and closing it af
 more than it looks: closing evicts HDF5's metadata cache (every group and dataset header the range
 touched, up to the cache's fixed size), about 15 ms per range of a 4,000-episode log; over a
 build's ranges that is a tenth of its reading. A process whose life is one build -- a local
-worker, the spare helper process -- calls :func:`hold_logs` once; each read then takes the file
+worker, the spare helper process -- calls :func:`hold_logs` once (a Dask build asks its
+cluster's workers for the time of the build, and stops it when it closes); each read then takes the file
 through :func:`open_log`, which opens it the first time and hands back the same open file
 afterwards. Everything else (the user's own process) keeps opening and closing it per read.
 
@@ -90,7 +91,7 @@ def open_log(path):
             h5.close()
         raise
     with _lock:
-        if key in _held or ident is None:
+        if key in _held or ident is None or not _holding[0]:    # (holding may have stopped meanwhile)
             extra = h5
         else:
             _held[key], extra = (ident, h5), None

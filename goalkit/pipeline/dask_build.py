@@ -11,6 +11,7 @@ from __future__ import annotations
 import uuid
 
 from goalkit.errors import GoalkitError
+from goalkit.logs.held import hold_logs
 from goalkit.pipeline.workers import failure, lost_worker, run_shard, warm_up
 
 
@@ -37,6 +38,7 @@ class DaskRunner:
         self.futures = []
         self.warm = []
         self.payload = None
+        self.holding = False
 
     @property
     def description(self) -> str:
@@ -85,9 +87,25 @@ class DaskRunner:
         return fut
 
     def start(self, payload, folder=None) -> None:
-        """Connect (when needed) and scatter ``payload`` to every worker once (``folder`` unused)."""
+        """Connect (when needed) and scatter ``payload`` to every worker once (``folder`` unused).
+
+        The workers are also asked to hold the logs open from one shard to the next
+        (:func:`goalkit.logs.held.hold_logs`) until :meth:`close`; a cluster that cannot be
+        asked only reads a little slower.
+        """
         self._connect()
         self.payload = self.client.scatter(payload, broadcast=True, hash=False)
+        self._hold_logs(True)
+
+    def _hold_logs(self, on: bool) -> None:
+        """Have every worker hold its logs open between reads (``on``), or close them and stop."""
+        if on == self.holding:
+            return
+        self.holding = on
+        try:
+            self.client.run(hold_logs, on)
+        except Exception:  # noqa: BLE001  only a speed-up (a worker gone, a closed client)
+            pass
 
     def run(self, specs, folder, build_key: str):
         """Submit every shard; yield task outcomes in completion order."""
@@ -113,6 +131,7 @@ class DaskRunner:
         if self.client is None:
             return
         try:
+            self._hold_logs(False)          # the workers close the logs this build held open
             if self.futures or self.warm:
                 self.client.cancel(self.futures + self.warm)
             if self.payload is not None:

@@ -115,3 +115,16 @@ def test_two_readers_at_once_each_get_an_open_file(tmp_path, holding):
     with held.open_log(path) as a, held.open_log(path) as b:
         assert a is not b and a.id.valid and b.id.valid
     assert open_fds_to(path) == 1                    # one kept, the other closed
+
+
+def test_holding_stopped_during_a_read_closes_that_file_at_its_end(tmp_path):
+    path = tmp_path / "g.h5"
+    write_grouped(path, make_episodes([2, 2], seed=8))
+    held.hold_logs()
+    try:
+        with held.open_log(path) as h5:
+            held.hold_logs(False)            # another caller stops holding meanwhile
+            assert h5.id.valid               # the read in progress keeps its file
+        assert not h5.id.valid and open_fds_to(path) == 0
+    finally:
+        held.hold_logs(False)

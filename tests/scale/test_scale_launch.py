@@ -101,6 +101,32 @@ def test_dask_worker_processes_warm_up_while_planning_and_give_the_same_bytes(ga
     assert result.shards["task_seconds"] >= result.shards["task_cpu_seconds"] > 0
 
 
+def test_dask_workers_hold_the_logs_open_only_while_a_build_runs(gantry, reference, tmp_path):
+    # Each shard task reads its episodes from the log; the workers keep the file open from one
+    # shard to the next while the runner is started, and close it (and stop holding) when the
+    # runner closes: a user's long-lived cluster keeps no file of ours open after the build.
+    distributed = pytest.importorskip("distributed")
+    from goalkit.logs import held
+
+    _, ref_digest = reference
+    out = tmp_path / "scale-goals.h5"
+    recipe = load_recipe(gantry / "scale-recipe.toml").with_overrides(out=out)
+    with distributed.LocalCluster(processes=True, n_workers=2, threads_per_worker=1,
+                                  dashboard_address=None) as cluster, distributed.Client(cluster) as client:
+        client.wait_for_workers(2)
+        assert set(client.run(held.holding).values()) == {False}
+        runner = DaskRunner(client=client)
+        try:
+            runner.start(Payload(plan=None, source=None))
+            assert set(client.run(held.holding).values()) == {True}
+        finally:
+            runner.close()
+        assert set(client.run(held.holding).values()) == {False}
+        build(recipe, client=client, max_rows_per_chunk=3000, card=False)
+        assert set(client.run(held.holding).values()) == {False}
+    assert sha256(out) == ref_digest
+
+
 def test_workers_report_how_busy_they_were(gantry, reference, tmp_path):
     _, ref_digest = reference
     out = tmp_path / "scale-goals.h5"
