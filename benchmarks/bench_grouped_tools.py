@@ -17,7 +17,13 @@ run and one round after the other:
 * ``tune``: ``goalkit tune RECIPE --from-success --resamples 1000 --quiet`` (its default sample
   of 200,000 transitions, so all of these logs);
 * ``read``: the plain h5py read of the same datasets, the floor of scan and tune: every episode
-  group's seven datasets read whole (``group[key][()]``) and its ``task`` attribute.
+  group's seven datasets read whole (``group[key][()]``) and its ``task`` attribute;
+* ``heads-build`` and ``heads-verify`` (only when named in ``--cases``): the same logs built as a
+  set with goal heads (:data:`HEADS`: one goal per transition plus a value, a policy and a
+  subgoal head, written as ``bench-heads-recipe.toml`` beside the logs), and its verify. Their
+  ratios: heads build / build (what three heads cost over the demo's five goals per
+  transition) and heads verify / heads build; peak RSS shows whether the heads' audit stays
+  bounded (run with ``--episodes 21000`` for 1M transitions).
 
 Reported: wall and CPU seconds per case (CPU: user + system of the process and its finished
 children; the machine has 2 cores, shared), peak RSS, the load average before and after,
@@ -81,10 +87,40 @@ def cli_case(argv: list) -> dict:
     return {"exit_status": code}
 
 
+#: The goal heads of the ``heads-*`` cases: a value head and a policy head drawing their goals
+#: as value and policy heads of current offline goal-conditioned methods do (the current state,
+#: a geometric offset, a random state; shares 0.2 / 0.5 / 0.3 from memory of common practice),
+#: and a subgoal head 25 steps ahead.
+HEADS = """
+[heads.value]
+weights = {current = 0.2, geometric = 0.5, random = 0.3}
+gamma = 0.99
+
+[heads.policy]
+weights = {geometric = 1}
+gamma = 0.99
+past_end = "renormalise"
+
+[heads.subgoal]
+weights = {subgoal = 1}
+steps = 25
+"""
+
+
+def heads_recipe(recipe: str) -> str:
+    """Write the demo recipe with goal heads beside it (one goal per transition, three heads)."""
+    path = Path(recipe).with_name("bench-heads-recipe.toml")
+    text = Path(recipe).read_text().replace("goals_per_transition = 5", "goals_per_transition = 1")
+    text = text.replace('compression = "gzip"', 'compression = "gzip"\ngoals = "heads"')
+    path.write_text(text + HEADS)
+    return str(path)
+
+
 def child(args) -> None:
     info = json.loads(Path(args.info).read_text())
     folder = Path(info["recipe"]).parent
     built = str(folder / "bench-tools-goals.h5")
+    heads_built = str(folder / "bench-heads-goals.h5")
     c0, t0 = cpu_seconds(), time.perf_counter()
     if args.case == "read":
         res = read_case(info["logs"])
@@ -92,7 +128,9 @@ def child(args) -> None:
         argv = {"build": ["build", info["recipe"], "--out", built, "--quiet", "--replace"],
                 "verify": ["verify", built, "--quiet"],
                 "scan": ["scan", info["logs"], "--layout", info["layout"], "--json"],
-                "tune": ["tune", info["recipe"], "--from-success", "--quiet"]}[args.case]
+                "tune": ["tune", info["recipe"], "--from-success", "--quiet"],
+                "heads-build": ["build", heads_recipe(info["recipe"]), "--out", heads_built, "--quiet", "--replace"],
+                "heads-verify": ["verify", heads_built, "--quiet"]}[args.case]
         out = open(os.devnull, "w")
         saved, sys.stdout = sys.stdout, out
         try:
@@ -134,11 +172,14 @@ def main(argv=None) -> dict:
     if args.child:
         child(args)
         return {}
+    bytecode = compile_package()     # as an installed copy has it (see tools/bytecode.py)
     info = logs(Path(args.data), args.episodes)
     marker = str(Path(args.data) / "bench-logs.json")
     cases = [c for c in args.cases.split(",") if c]
     if "verify" in cases and "build" not in cases:
         cases.insert(0, "build")
+    if "heads-verify" in cases and "heads-build" not in cases:
+        cases.insert(cases.index("heads-verify"), "heads-build")
     rounds = []
     load_before = os.getloadavg()
     for r in range(args.repeats):
@@ -150,15 +191,16 @@ def main(argv=None) -> dict:
                   f"peak RSS {g['peak_rss_mb']:5.0f} MiB  load {os.getloadavg()[0]:.2f}  "
                   f"others busy {g['others_cpus_busy']:.2f} CPUs", flush=True)
         rounds.append(got)
-    Path(info["recipe"]).parent.joinpath("bench-tools-goals.h5").unlink(missing_ok=True)
+    for name in ("bench-tools-goals.h5", "bench-heads-goals.h5"):
+        Path(info["recipe"]).parent.joinpath(name).unlink(missing_ok=True)
     ratios = {}
     for name, (num, den) in {"verify_over_build": ("verify", "build"), "scan_over_read": ("scan", "read"),
-                             "tune_over_read": ("tune", "read")}.items():
+                             "tune_over_read": ("tune", "read"), "heads_build_over_build": ("heads-build", "build"),
+                             "heads_verify_over_heads_build": ("heads-verify", "heads-build")}.items():
         if num in cases and den in cases:
             for what in ("seconds", "cpu_seconds"):
                 key = name + ("_wall" if what == "seconds" else "_cpu")
                 ratios[key] = statistics.median(g[num][what] / g[den][what] for g in rounds)
-    bytecode = compile_package()     # as an installed copy has it (see tools/bytecode.py)
     report = {"benchmark": "grouped_tools",
               "command": "python benchmarks/bench_grouped_tools.py " + " ".join(argv if argv is not None
                                                                               else sys.argv[1:]),

@@ -437,6 +437,42 @@ class AuditFeed:
         self._file.close()
 
 
+class _Window:
+    """Rows ``w0 .. w1 - 1`` of one split's stored columns, each column read (so each of its
+    chunks decompressed) once, on first use; stands for the split's HDF5 group in
+    :meth:`_Auditor.block`: ``name in window``, ``window[name][a:b]`` with the split's row numbers.
+    A column that cannot be read raises OSError at each use, as the dataset would."""
+
+    def __init__(self, group, split, w0, w1):
+        self.group, self.split, self.w0, self.w1 = group, split, w0, w1
+        self.columns = {}
+
+    def __contains__(self, name) -> bool:
+        return name in self.group
+
+    def __getitem__(self, name):
+        return _WindowColumn(self, name)
+
+    def rows(self, name, a, b):
+        if not (self.w0 <= a <= b <= self.w1):
+            return self.group[name][a:b]
+        if name not in self.columns:
+            self.columns[name] = self.group[name][self.w0:self.w1]
+        return self.columns[name][a - self.w0:b - self.w0].copy()   # a block's own rows, as a read gives
+
+
+class _WindowColumn:
+    """One column of a :class:`_Window`, sliced like its dataset (``[a:b]`` only)."""
+
+    def __init__(self, window, name):
+        self.window, self.name = window, name
+
+    def __getitem__(self, rows):
+        if not isinstance(rows, slice) or rows.step not in (None, 1):
+            return self.window.group[self.name][rows]
+        return self.window.rows(self.name, rows.start or 0, rows.stop)
+
+
 class _Unreadable(Exception):
     """A column the audit needs whole cannot be read (its text: split/column)."""
 
@@ -466,6 +502,7 @@ class _Auditor:
         self.positional = False   # jitter addressed by row position (rows fed in another order)
         self.unread = []          # (split, first row, end row) of rows that could not be read
         self.heads = HeadAudit(rc, logs, self.draws, seed, self.masks) if rc.heads else None
+        self.window = None        # the stored rows read around the block being audited (run())
 
     # ---- failures ------------------------------------------------------------------------
     def violated(self, rule, message, mask, split, row0, c):
@@ -492,11 +529,27 @@ class _Auditor:
             self.not_audited(exc)
             return
         for s, a, b in self.blocks():
+            self.window = self._window(s, a, b)
             try:
                 self.block(s, a, b, self.counts[s])
             except OSError:   # a stored chunk that does not decompress: these rows are not audited
                 self.unread.append((s, a, b))
+        self.window = None
         self.end()
+
+    def _window(self, split, a, b):
+        """The :class:`_Window` of whole storage chunks holding rows ``a .. b - 1`` of ``split``
+        (the current one while it does): blocks are smaller than a chunk, and reading each block's
+        rows from HDF5 decompressed every chunk once per block."""
+        w = self.window
+        if w is not None and w.split == split and w.w0 <= a and b <= w.w1:
+            return w
+        grp = self.f[split]
+        chunks = grp["source_episode"].chunks
+        if not chunks:
+            return None
+        step, rows = int(chunks[0]), int(grp["source_episode"].shape[0])
+        return _Window(grp, split, (a // step) * step, min(rows, -(-b // step) * step))
 
     def start(self):
         f = self.f
@@ -598,7 +651,7 @@ class _Auditor:
         """Audit rows ``a .. b - 1`` of ``split``; ``stored``: those rows already read (by column), and
         ``chunk``: the log episodes they come from, already read (else both are read here)."""
         rc, logs = self.rc, self.logs
-        grp = self.f[split]
+        grp = self.f[split] if self.window is None else self.window
 
         def column(k):
             return stored[k] if stored is not None and k in stored else grp[k][a:b]
@@ -668,7 +721,7 @@ class _Auditor:
             sub = {k: val[rows] for k, val in c.items()}
             tasks = (logs.achieved_and_task_goal(ep[rows], t[rows])[3] if self.masks is not None and len(rows)
                      else None)
-            self.heads.block(self.f[split], a, b, keep, ep[rows], t[rows], T[rows], self.members[split],
+            self.heads.block(grp, a, b, keep, ep[rows], t[rows], T[rows], self.members[split],
                              lambda rule, message, mask: self.violated(rule, message, mask, split, a, sub), tasks)
         other = np.where(c["hop_episode"] >= 0, c["hop_episode"], c["goal_episode"])
         other_runs = _Runs(other)
