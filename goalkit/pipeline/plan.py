@@ -22,6 +22,7 @@ from goalkit.pipeline.goal import make_goal_map
 from goalkit.pipeline.headcols import head_columns_spec
 from goalkit.pipeline.headcols import needs_goal_table as heads_need_table
 from goalkit.pipeline.searchsetup import attach_searches
+from goalkit.pipeline.sharedread import shared_chunks
 from goalkit.pipeline.split import split_codes
 from goalkit.relabel import RelabelContext
 from goalkit.relabel.strategies import STRATEGIES
@@ -307,6 +308,10 @@ def stored_dtypes(recipe, source, first) -> StoredDtypes:
                         recipe_file=str(recipe.file))
 
 
+#: Transitions per chunk of the goal table's read (at most; ``max_transitions`` if smaller).
+TABLE_CHUNK_TRANSITIONS = 25_000
+
+
 def goal_table(source, goal_map, dtypes, max_transitions: int) -> np.ndarray:
     """phi of every kept state of the log, in global state-row order, cast (checked) to the goal dtype.
 
@@ -318,13 +323,20 @@ def goal_table(source, goal_map, dtypes, max_transitions: int) -> np.ndarray:
     lengths = np.asarray(source.lengths, dtype=np.int64)
     total = int(lengths.sum() + len(lengths))
     out = np.empty((total, goal_map.dim), dtype=dtypes.goal)
-    row = 0
-    for a, b in chunk_bounds(lengths, max_transitions):
-        chunk = source.read(a, b)
-        n = chunk.observations.shape[0]
+    # chunks small enough to share with the helper (the table's values do not depend on them)
+    bounds = chunk_bounds(lengths, min(max_transitions, TABLE_CHUNK_TRANSITIONS))
+    # each chunk's first state row: its episodes' states (T + 1 each) come after the earlier ones'
+    states = np.concatenate([[0], np.cumsum(lengths + 1)]).astype(np.int64)
+
+    def fill(k, chunk):
+        a, b = bounds[k]
+        row, n = int(states[a]), chunk.observations.shape[0]
+        if n != int(states[b] - states[a]):
+            raise ValueError(f"chunk {k} holds {n} states, its episodes {int(states[b] - states[a])}")
         out[row:row + n] = dtypes.cast(np.asarray(goal_map(chunk, np.arange(n))), "goal", "goal.dtype", chunk,
                                        state_level=True)
-        row += n
+
+    shared_chunks(source, bounds, fill)     # half of it read by the spare helper meanwhile
     return out
 
 
