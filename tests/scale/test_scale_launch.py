@@ -32,9 +32,8 @@ def _pool_pids(runner):
 def test_launched_workers_run_before_any_payload_and_load_it_once_by_digest(tmp_path):
     runner = LocalRunner(2)
     try:
-        t0 = time.monotonic()
         runner.launch()
-        assert time.monotonic() - t0 < 0.1              # launch() does not wait for the processes
+        assert runner.starter is not None               # launch() left the start to its thread
         assert runner.payload_ref is None
         runner.wait_started()
         assert len(_pool_pids(runner)) == 2                     # both started, before a payload exists
