@@ -107,7 +107,7 @@ def _take(helper, j, use, later, held) -> None:
 
 def _helper(source, bounds):
     """The build's spare helper for this read, or None (one CPU, small logs, none can start)."""
-    if len(bounds) < 2 or not readproc.wanted_ranges(source, bounds):
+    if not readproc.wanted_ranges(source, bounds):       # (it wants several chunks)
         return None
     helper = spare.take()
     return helper if helper is not None and helper.alive else None

@@ -493,8 +493,9 @@ class LocalRunner:
 
         self.wait_started()
         by_future = {}
-        # submitting may start a process (one that died is not replaced, but a pool that was
-        # never launched is): block SIGINT as launch() does
+        # every process was started by launch()'s thread; a pool without the switch of
+        # _start_all_at_once (older Pythons) may still start one on submit: block SIGINT as
+        # the starting thread does
         blocked = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
         broken_at = None
         try:

@@ -20,16 +20,7 @@ from goalkit.cli import main
 from goalkit.demo import make_demo
 from goalkit.pipeline.build import build
 from goalkit.pipeline.recipe import load_recipe
-
-HEADS = """
-[heads.value]
-weights = {current = 0.2, geometric = 0.5, random = 0.3}
-gamma = 0.95
-
-[heads.subgoal]
-weights = {subgoal = 1}
-steps = 25
-"""
+from test_head_build import HEADS   # the heads of the head build tests
 
 GRAPH = """
 [graph]

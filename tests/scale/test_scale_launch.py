@@ -77,52 +77,57 @@ def test_a_pool_launched_for_a_build_that_fails_while_planning_is_stopped_at_onc
     assert took < 15
 
 
-def test_dask_worker_processes_warm_up_while_planning_and_give_the_same_bytes(gantry, reference, tmp_path):
+@pytest.fixture(scope="module")
+def dask_client():
+    """A client of a Dask LocalCluster of 2 single-threaded worker processes (shared by the tests below)."""
     distributed = pytest.importorskip("distributed")
-    _, ref_digest = reference
-    out = tmp_path / "scale-goals.h5"
-    recipe = load_recipe(gantry / "scale-recipe.toml").with_overrides(out=out)
     with distributed.LocalCluster(processes=True, n_workers=2, threads_per_worker=1,
                                   dashboard_address=None) as cluster, distributed.Client(cluster) as client:
         client.wait_for_workers(2)
-        workers = set(client.run(os.getpid).values())           # the worker processes' ids
-        assert len(workers) == 2 and os.getpid() not in workers
-        runner = DaskRunner(client=client)
-        try:
-            runner.launch()
-            assert {f.result(timeout=60) for f in runner.warm} == workers      # each worker warmed once
-            assert runner.submit(warm_up).result(timeout=60) in workers        # the submit hook
-        finally:
-            runner.close()
-        result = build(recipe, client=client, max_rows_per_chunk=3000, card=False)
+        yield client
+
+
+def test_dask_worker_processes_warm_up_while_planning_and_give_the_same_bytes(gantry, reference, tmp_path,
+                                                                               dask_client):
+    client = dask_client
+    _, ref_digest = reference
+    out = tmp_path / "scale-goals.h5"
+    recipe = load_recipe(gantry / "scale-recipe.toml").with_overrides(out=out)
+    workers = set(client.run(os.getpid).values())           # the worker processes' ids
+    assert len(workers) == 2 and os.getpid() not in workers
+    runner = DaskRunner(client=client)
+    try:
+        runner.launch()
+        assert {f.result(timeout=60) for f in runner.warm} == workers      # each worker warmed once
+        assert runner.submit(warm_up).result(timeout=60) in workers        # the submit hook
+    finally:
+        runner.close()
+    result = build(recipe, client=client, max_rows_per_chunk=3000, card=False)
     assert sha256(out) == ref_digest
     assert result.shards["computed"] == result.shards["total"] > 3
     assert result.shards["task_seconds"] >= result.shards["task_cpu_seconds"] > 0
 
 
-def test_dask_workers_hold_the_logs_open_only_while_a_build_runs(gantry, reference, tmp_path):
+def test_dask_workers_hold_the_logs_open_only_while_a_build_runs(gantry, reference, tmp_path, dask_client):
     # Each shard task reads its episodes from the log; the workers keep the file open from one
     # shard to the next while the runner is started, and close it (and stop holding) when the
     # runner closes: a user's long-lived cluster keeps no file of ours open after the build.
-    distributed = pytest.importorskip("distributed")
     from goalkit.logs import held
 
+    client = dask_client
     _, ref_digest = reference
     out = tmp_path / "scale-goals.h5"
     recipe = load_recipe(gantry / "scale-recipe.toml").with_overrides(out=out)
-    with distributed.LocalCluster(processes=True, n_workers=2, threads_per_worker=1,
-                                  dashboard_address=None) as cluster, distributed.Client(cluster) as client:
-        client.wait_for_workers(2)
-        assert set(client.run(held.holding).values()) == {False}
-        runner = DaskRunner(client=client)
-        try:
-            runner.start(Payload(plan=None, source=None))
-            assert set(client.run(held.holding).values()) == {True}
-        finally:
-            runner.close()
-        assert set(client.run(held.holding).values()) == {False}
-        build(recipe, client=client, max_rows_per_chunk=3000, card=False)
-        assert set(client.run(held.holding).values()) == {False}
+    assert set(client.run(held.holding).values()) == {False}
+    runner = DaskRunner(client=client)
+    try:
+        runner.start(Payload(plan=None, source=None))
+        assert set(client.run(held.holding).values()) == {True}
+    finally:
+        runner.close()
+    assert set(client.run(held.holding).values()) == {False}
+    build(recipe, client=client, max_rows_per_chunk=3000, card=False)
+    assert set(client.run(held.holding).values()) == {False}
     assert sha256(out) == ref_digest
 
 
