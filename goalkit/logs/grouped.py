@@ -130,7 +130,7 @@ class GroupedSource(EpisodicSource):
         self.key_dtypes = {}            # key -> its stored dtype, None once two episodes differ
         self.file_size = limits.regular_file(self.path, what="an HDF5 file")
         spare.prestart([self.path])     # its helpers (planning, reading) will want one
-        with open_h5(self.path) as h5, guard(self.path, what="cannot read the log"):
+        with open_log(self.path) as h5, guard(self.path, what="cannot read the log"):
             self.groups = match_groups(h5, layout.episode_groups, self.path)
             if not self.groups:
                 top = natural_sorted(h5.keys())[:10]

@@ -8,7 +8,10 @@ build's ranges that is a tenth of its reading. A process whose life is one build
 worker, the spare helper process -- calls :func:`hold_logs` once (a Dask build asks its
 cluster's workers for the time of the build, and stops it when it closes); each read then takes the file
 through :func:`open_log`, which opens it the first time and hands back the same open file
-afterwards. Everything else (the user's own process) keeps opening and closing it per read.
+afterwards. A sharded build's coordinator holds its logs while it plans (the planning scan and the
+reads after it share one open file) and lets go of them with :func:`let_go_soon` once its shards
+are submitted, so the close overlaps the wait for the first shards. Everything else (the user's
+own process otherwise) keeps opening and closing a log per read.
 
 A held file is handed back only while the path still names the same file (device, inode, size
 and modification time as when it was opened); otherwise it is closed and the path opened again,
@@ -45,9 +48,33 @@ def holding() -> bool:
 
 def release_logs() -> None:
     """Close every held log file."""
+    _close_all(_take_all())
+
+
+def let_go_soon():
+    """Stop holding now and close the held files on a side thread; that thread, or None.
+
+    For a process that is about to wait (a build's coordinator once its shards are submitted):
+    closing a log evicts its metadata cache, tens of milliseconds that then overlap the wait.
+    Join the thread before relying on the files being closed.
+    """
+    _holding[0] = False
+    files = _take_all()
+    if not files:
+        return None
+    closer = threading.Thread(target=_close_all, args=(files,), name="goalkit-log-close")
+    closer.start()
+    return closer
+
+
+def _take_all() -> list:
     with _lock:
         files = [h5 for _, h5 in _held.values()]
         _held.clear()
+    return files
+
+
+def _close_all(files) -> None:
     for h5 in files:
         with contextlib.suppress(Exception):
             h5.close()

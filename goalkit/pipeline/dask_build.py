@@ -8,6 +8,7 @@ under the same paths from every worker (one machine, or a shared filesystem).
 
 from __future__ import annotations
 
+import threading
 import uuid
 
 from goalkit.errors import GoalkitError
@@ -39,6 +40,7 @@ class DaskRunner:
         self.warm = []
         self.payload = None
         self.holding = False
+        self.releaser = None
 
     @property
     def description(self) -> str:
@@ -126,11 +128,28 @@ class DaskRunner:
             except Exception as exc:  # a worker died or the task could not run
                 yield lost_worker(spec) if type(exc).__name__ == "KilledWorker" else failure(spec, exc)
 
+    def release(self) -> None:
+        """Every shard has been computed: the workers close the logs they held, while the build writes.
+
+        Called by the sharded producer as the last shard's outcome arrives. Closing a held log
+        evicts its metadata cache (tens of milliseconds per worker); asked from a side thread,
+        it overlaps the coordinator's writing of the last rows instead of following it.
+        :meth:`close` joins that thread.
+        """
+        if self.client is None or not self.holding or self.releaser is not None:
+            return
+        self.releaser = threading.Thread(target=self._hold_logs, args=(False,), name="goalkit-dask-release",
+                                         daemon=True)
+        self.releaser.start()
+
     def close(self) -> None:
         """Cancel unfinished tasks; close the client when the runner opened it."""
         if self.client is None:
             return
         try:
+            if self.releaser is not None:
+                self.releaser.join()
+                self.releaser = None
             self._hold_logs(False)          # the workers close the logs this build held open
             if self.futures or self.warm:
                 self.client.cancel(self.futures + self.warm)

@@ -26,12 +26,22 @@ spare when they want one).
 from __future__ import annotations
 
 import os
+import threading
 import time
 from collections import deque
+from concurrent.futures import Future
 from concurrent.futures import TimeoutError as FutureTimeout
 
-from goalkit.logs import spare
+from goalkit.logs import planspawn, spare
 
+#: Seconds from a pool's launch to a first task run on one of its workers, while the coordinator
+#: plans on the other core (fork server start-up and imports, a fork, the warm-up task):
+#: 0.16 s on an idle 2-core machine (median of 5), longer beside the planning; 0.22 s shares a
+#: 200k-transition grouped log's planning so that both parts end together (timeline of busy CPUs,
+#: 2-core reference machine). The logs' planning counts a spare's start-up as
+#: :data:`goalkit.logs.planspawn.STARTUP_SECONDS` from its ``started`` time, so :class:`PoolSpare`
+#: dates its start that much later than the launch.
+POOL_STARTUP_SECONDS = 0.22
 #: Environment variable that turns the stand-in off (``GOALKIT_POOL_HELPER=0``).
 SWITCH = "GOALKIT_POOL_HELPER"
 #: Seconds between checks that the runner's workers are alive while an answer is awaited.
@@ -69,9 +79,11 @@ class PoolSpare:
         self.runner = runner
         self.every = every
         # the logs' planning shares the episodes by the start-up a spare has left: the pool's
-        # processes started when it was launched (a runner that does not say: now)
-        self.started = getattr(runner, "launched_at", None) or time.monotonic()
-        self.tasks: deque = deque()      # one future per request, in order
+        # processes started when it was launched (a runner that does not say: now), and take
+        # POOL_STARTUP_SECONDS to run a first task
+        launched = getattr(runner, "launched_at", None) or time.monotonic()
+        self.started = launched + POOL_STARTUP_SECONDS - planspawn.STARTUP_SECONDS
+        self.tasks: deque = deque()      # per request, in order: a future of the task's future
         self.answers: deque = deque()    # answers of the request being read
         self.closed = False
 
@@ -80,14 +92,27 @@ class PoolSpare:
         return not self.closed and not getattr(self.runner, "broken", False)
 
     def send(self, request: dict) -> bool:
-        """Run ``request`` as a task on a worker; False (and closed) when it cannot be submitted."""
+        """Run ``request`` as a task on a worker; False (and closed) when the workers are gone.
+
+        It does not wait: a pool still starting (its fork server importing, about 0.15 s) takes
+        the task on a side thread, while the caller goes on with its own part of the work. A
+        task that cannot be submitted there reads as a failed answer (:meth:`receive`).
+        """
         if not self.alive:
             return False
-        try:
-            self.tasks.append(self.runner.submit(serve_request, request))
-        except Exception:                    # noqa: BLE001  a broken pool, a closed client
-            self.close()
-            return False
+        box: Future = Future()
+
+        def submit():
+            try:
+                task = self.runner.submit(serve_request, request)
+            except BaseException as exc:     # noqa: BLE001  a broken pool, a closed client
+                _settle(box, exc=exc)
+                return
+            if not _settle(box, value=task):     # closed meanwhile
+                task.cancel()
+
+        threading.Thread(target=submit, name="goalkit-pool-send", daemon=True).start()
+        self.tasks.append(box)
         return True
 
     def receive(self):
@@ -107,8 +132,12 @@ class PoolSpare:
             return None
         return value if status == "ok" else None
 
-    def _result(self, fut):
-        """The task's result, or None when it failed or a worker died meanwhile."""
+    def _result(self, box):
+        """The task's result, or None when it could not be submitted, failed, or a worker died meanwhile."""
+        fut = self._wait(box)
+        return None if fut is None else self._wait(fut)
+
+    def _wait(self, fut):
         dead = getattr(self.runner, "dead_workers", None)
         while True:
             try:
@@ -122,7 +151,20 @@ class PoolSpare:
     def close(self) -> None:
         """Stop using the workers (idempotent): queued requests are cancelled; the runner stays."""
         self.closed = True
-        for fut in self.tasks:
-            fut.cancel()
+        for box in self.tasks:
+            if not box.cancel() and box.exception() is None:    # submitted: cancel the task
+                box.result().cancel()
         self.tasks.clear()
         self.answers.clear()
+
+
+def _settle(box: Future, value=None, exc: BaseException | None = None) -> bool:
+    """Set ``box``'s outcome; False when it was cancelled first."""
+    try:
+        if exc is not None:
+            box.set_exception(exc)
+        else:
+            box.set_result(value)
+    except Exception:                        # noqa: BLE001  InvalidStateError: cancelled
+        return False
+    return True

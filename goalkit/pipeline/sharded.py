@@ -23,7 +23,7 @@ import os
 from concurrent.futures import ThreadPoolExecutor
 
 from goalkit.errors import DatasetError, GoalkitError
-from goalkit.logs import spare
+from goalkit.logs import held, spare
 from goalkit.pipeline import poolspare
 from goalkit.pipeline.buildfolder import BuildFolder, build_key
 from goalkit.pipeline.shardfiles import ShardError, check_shard, plan_shards, read_shard
@@ -74,6 +74,8 @@ class ShardProducer:
         self.chunks = []
         self.work = []
         self.written = {}      # shard index -> (sha256, bytes) its worker reported in this run
+        self.holds = False     # this process holds its logs open for the build's planning
+        self.closer = None     # the thread closing them
 
     def launch(self) -> None:
         """Start the runner's workers before the build plans (when the runner can).
@@ -82,7 +84,14 @@ class ShardProducer:
         helper process while the build plans (:class:`~goalkit.pipeline.poolspare.PoolSpare`):
         the planning helper's part of the episodes runs on a worker, and no third interpreter
         is started.
+
+        This process also holds its logs open while it plans (:mod:`goalkit.logs.held`): the
+        planning scan and the reads after it share one open file, closed on a side thread once
+        the shards are submitted (see :meth:`rows`).
         """
+        if not held.holding():
+            held.hold_logs(True)
+            self.holds = True
         launch = getattr(self.runner, "launch", None)
         if launch is not None:
             launch()
@@ -126,6 +135,7 @@ class ShardProducer:
         folder = self.folder.path
         pending = [s for s in self.chunks if s.index not in self.ready]
         self.cursor = 0
+        self._let_go(wait=False)     # planned and written no more: the logs close while the shards run
         with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-shard-read") as reader:
             self.reader, self.ahead = reader, {}
             try:
@@ -173,12 +183,23 @@ class ShardProducer:
             self.cursor += 1
             yield spec, rows
 
+    def _let_go(self, wait: bool) -> None:
+        """Stop holding the logs this producer asked this process to hold; with ``wait``, until closed."""
+        if self.holds:
+            self.holds = False
+            self.closer = held.let_go_soon()
+        if wait and self.closer is not None:
+            self.closer.join()
+            self.closer = None
+
     def finish(self) -> None:
         """Stop the runner (every shard has been read back)."""
+        self._let_go(wait=True)
         self.runner.close()
 
     def abandon(self) -> None:
         """After a failure: stop the runner, release the folder; its finished shards stay."""
+        self._let_go(wait=True)
         self.runner.close()
         if self.folder is not None:
             self.folder.release()

@@ -75,6 +75,8 @@ def test_a_pool_launched_for_a_build_that_fails_while_planning_is_stopped_at_onc
     assert left == []
     assert not folder_of(recipe.output.path).exists() and not recipe.output.path.exists()
     assert took < 15
+    from goalkit.logs import held
+    assert not held.holding() and held._held == {}       # the planning's hold ended with the build
 
 
 @pytest.fixture(scope="module")
@@ -129,6 +131,65 @@ def test_dask_workers_hold_the_logs_open_only_while_a_build_runs(gantry, referen
     build(recipe, client=client, max_rows_per_chunk=3000, card=False)
     assert set(client.run(held.holding).values()) == {False}
     assert sha256(out) == ref_digest
+
+
+def test_dask_workers_let_go_of_the_logs_while_the_last_rows_are_written(dask_client):
+    # release() (the last shard is in) asks the workers to close their logs from a side thread,
+    # so the closes overlap the coordinator's writing; close() joins that thread
+    from goalkit.logs import held
+
+    client = dask_client
+    runner = DaskRunner(client=client)
+    try:
+        runner.start(Payload(plan=None, source=None))
+        assert set(client.run(held.holding).values()) == {True}
+        runner.release()
+        assert runner.releaser is not None and runner.releaser.name == "goalkit-dask-release"
+        runner.releaser.join(60)
+        assert set(client.run(held.holding).values()) == {False}
+        runner.release()                                   # once only
+    finally:
+        runner.close()
+    assert runner.releaser is None
+    assert set(client.run(held.holding).values()) == {False}
+
+
+def test_the_coordinator_holds_its_log_while_it_plans_and_lets_go_after(gantry, reference, tmp_path,
+                                                                        monkeypatch):
+    # A sharded build's coordinator keeps the log open from the planning scan to the reads after
+    # it (one open, one close) and closes it on a side thread once the shards are submitted;
+    # after the build it holds nothing and no closing thread is left.
+    import threading
+
+    from goalkit.logs import grouped, held
+
+    seen = []
+    plan_groups = grouped.GroupedSource._plan_groups
+
+    def watched(self, h5):
+        seen.append(held.holding())
+        return plan_groups(self, h5)
+
+    monkeypatch.setattr(grouped.GroupedSource, "_plan_groups", watched)
+    _, ref_digest = reference
+    out = tmp_path / "scale-goals.h5"
+    recipe = load_recipe(gantry / "scale-recipe.toml").with_overrides(out=out)
+    assert not held.holding()
+    build(recipe, workers=2, max_rows_per_chunk=3000, card=False)
+    assert seen == [True]
+    assert not held.holding() and held._held == {}
+    assert not [t for t in threading.enumerate() if t.name == "goalkit-log-close"]
+    assert sha256(out) == ref_digest
+    # a process that holds its logs itself keeps holding them (and its open file) after a build
+    held.hold_logs(True)
+    try:
+        out.unlink()
+        build(recipe, workers=2, max_rows_per_chunk=3000, card=False)
+        assert held.holding() and list(held._held) == [str(gantry / "gantry-logs.h5")]
+        assert sha256(out) == ref_digest
+    finally:
+        held.hold_logs(False)
+    assert held._held == {}
 
 
 def test_workers_report_how_busy_they_were(gantry, reference, tmp_path):

@@ -4,6 +4,7 @@ check of shard files its workers wrote in this run."""
 
 import math
 import os
+import threading
 import time
 from dataclasses import replace
 from types import SimpleNamespace
@@ -15,7 +16,7 @@ import pytest
 from goalkit.logs import grouped, planspawn, spare
 from goalkit.pipeline.build import build
 from goalkit.pipeline.chunk import ChunkRows
-from goalkit.pipeline.poolspare import PoolSpare
+from goalkit.pipeline.poolspare import POOL_STARTUP_SECONDS, PoolSpare
 from goalkit.pipeline.recipe import load_recipe
 from goalkit.pipeline.shardfiles import ShardError, plan_shards, read_shard, write_shard
 from goalkit.pipeline.workers import LocalRunner
@@ -53,6 +54,57 @@ def test_pool_spare_gives_up_when_its_worker_dies():
         assert not helper.send({"call": math.sqrt, "each": [(4.0,)]})   # the pool is gone
 
 
+def test_sending_to_a_pool_still_starting_does_not_wait_for_it():
+    # the coordinator plans its own part meanwhile: send() hands the task over on a side thread
+    gate, left = threading.Event(), threading.Event()
+    asked = []
+
+    class Starting:
+        broken = False
+
+        def submit(self, fn, *args):
+            asked.append(args)
+            gate.wait(5)                      # as a pool whose fork server is still importing
+            left.set()
+            return SimpleNamespace(result=lambda timeout=None: fn(*args), cancel=lambda: False)
+
+    helper = PoolSpare(Starting())
+    assert helper.send({"call": math.sqrt, "each": [(81.0,)]})
+    assert not left.is_set()                  # send returned while the pool was still blocked
+    gate.set()
+    assert helper.receive() == 9.0 and len(asked) == 1
+
+
+def test_a_task_that_cannot_be_submitted_reads_as_a_failed_answer():
+    class Broken:
+        broken = False
+
+        def submit(self, fn, *args):
+            raise RuntimeError("cannot schedule new futures after shutdown")
+
+    helper = PoolSpare(Broken(), every=0.05)
+    assert helper.send({"call": math.sqrt, "each": [(4.0,)]})
+    assert helper.receive() is None and not helper.alive     # the caller plans those episodes itself
+
+
+def test_closing_cancels_a_task_submitted_after_the_close():
+    gate = threading.Event()
+    cancelled = threading.Event()
+
+    class Slow:
+        broken = False
+
+        def submit(self, fn, *args):
+            gate.wait(30)
+            return SimpleNamespace(result=lambda timeout=None: None, cancel=cancelled.set)
+
+    helper = PoolSpare(Slow())
+    assert helper.send({"call": math.sqrt, "each": [(4.0,)]})
+    helper.close()                              # before the pool took the task
+    gate.set()
+    assert cancelled.wait(30)                   # the task it then got is cancelled, not left to run
+
+
 def test_a_pool_stand_in_counts_its_start_up_from_the_pool_launch(monkeypatch):
     # helper_split shares the groups so that both parts finish together: a helper still starting
     # gets fewer. A pool's workers start when it is launched (before the build plans), so the
@@ -61,13 +113,16 @@ def test_a_pool_stand_in_counts_its_start_up_from_the_pool_launch(monkeypatch):
     monkeypatch.delenv(planspawn.SWITCH, raising=False)
     total = 10_000
     warm = int(total * (1 + planspawn.MATCH_SECONDS / (total * planspawn.SECONDS_PER_GROUP)) / 2)
-    cold = int(total * (1 + (planspawn.MATCH_SECONDS + planspawn.STARTUP_SECONDS)
+    cold = int(total * (1 + (planspawn.MATCH_SECONDS + POOL_STARTUP_SECONDS)
                         / (total * planspawn.SECONDS_PER_GROUP)) / 2)
     with LocalRunner(1) as runner:
         runner.launch()
-        time.sleep(planspawn.STARTUP_SECONDS + 0.01)
+        time.sleep(POOL_STARTUP_SECONDS + 0.01)
         stand_in = PoolSpare(runner)
-        assert stand_in.started == runner.launched_at
+        # its start-up is the pool's (POOL_STARTUP_SECONDS from the launch), told to the logs'
+        # planning as a spare's start-up (STARTUP_SECONDS) from a later moment
+        assert stand_in.started == pytest.approx(runner.launched_at + POOL_STARTUP_SECONDS
+                                                 - planspawn.STARTUP_SECONDS)
         with spare.scope([], early=False):
             spare.give_back(stand_in)
             assert planspawn.helper_split(total) == warm
