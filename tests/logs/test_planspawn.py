@@ -210,3 +210,33 @@ def test_per_file_helper_that_fails_leaves_the_plan_to_this_process(tmp_path, pe
         open_logs(tmp_path / "eps", table)
     assert per_file_helper == ["killed"] and answers == [None]      # no answer: planned here
     assert err.value.episode == 12 and "episode 12" in str(err.value)
+
+
+def test_the_helper_plans_the_groups_it_is_sent_without_matching_them_again(tmp_path, monkeypatch):
+    # the request carries the paths of the helper's groups and the identity of the file they were
+    # matched in; the helper plans exactly those (the same metas as the serial plan) and refuses a
+    # request for another file or whose paths do not add up (the caller then plans them itself)
+    import os
+
+    from goalkit.logs import grouped
+
+    eps = make_episodes([3, 1, 5, 2, 4, 6, 2, 3, 1, 4], seed=5)
+    table = write_grouped(tmp_path / "g.h5", eps, fields=True)
+    ref = serial(tmp_path / "g.h5", table, monkeypatch)
+    request = ref.plan_request(4)
+    assert request["groups"] == ref.groups[4:] and request["total"] == 10
+
+    def no_match(*args, **kwargs):
+        raise AssertionError("the helper matched the groups again")
+
+    monkeypatch.setattr(grouped, "match_groups", no_match)
+    answer = grouped.GroupedSource.plan_part(request)
+    assert answer["metas"] == ref.metas[4:]
+    with pytest.raises(ValueError, match="add up"):
+        grouped.GroupedSource.plan_part({**request, "groups": request["groups"][1:]})
+    with pytest.raises(ValueError, match="add up"):
+        grouped.GroupedSource.plan_part({**request, "groups": request["groups"][::-1]})
+    st = os.stat(tmp_path / "g.h5")
+    os.utime(tmp_path / "g.h5", ns=(st.st_atime_ns, st.st_mtime_ns + 1_000_000_000))   # the file changed since
+    with pytest.raises(ValueError, match="not the file"):
+        grouped.GroupedSource.plan_part(request)
