@@ -34,6 +34,7 @@ import importlib
 import os
 import pickle
 import socket
+import sys
 import threading
 import time
 from dataclasses import dataclass, replace
@@ -126,12 +127,24 @@ def failure(spec, exc: BaseException) -> dict:
     return {"ok": False, "index": spec.index, "error": err}
 
 
-def lost_worker(spec) -> dict:
-    """A task outcome for a shard whose worker process died (killed, out of memory)."""
+def lost_worker(spec, starting: bool = False) -> dict:
+    """A task outcome for a shard whose worker process died (killed, out of memory).
+
+    With ``starting`` (no worker ever finished its warm-up task), the message says that the
+    workers died while starting and, when the build runs from a script, names the usual cause:
+    each worker imports the script that started it, so a script without an
+    ``if __name__ == "__main__":`` guard runs its build again inside every worker.
+    """
+    message = "a worker process died (killed, or out of memory?) while this shard was queued or running"
+    if starting:
+        message = "a worker process died while starting, before it could take a task"
+        main = sys.modules.get("__main__")
+        if getattr(main, "__file__", None):
+            message += (f"; each worker imports the script that started the build "
+                        f"({os.path.basename(main.__file__)}): call the build under "
+                        f"`if __name__ == \"__main__\":` there")
     return {"ok": False, "index": spec.index,
-            "error": {"type": "WorkerLost", "goalkit": False, "os_error": False,
-                      "message": "a worker process died (killed, or out of memory?) while this shard was "
-                                 "queued or running"}}
+            "error": {"type": "WorkerLost", "goalkit": False, "os_error": False, "message": message}}
 
 
 def run_shard(payload: Payload, spec, folder, build_key: str) -> dict:
@@ -513,7 +526,7 @@ class LocalRunner:
         if broken_at is not None:
             self.futures += list(by_future)
             self.broken = True
-            yield lost_worker(broken_at)
+            yield self._lost(broken_at)
             return
         self.futures += list(by_future)
         pending = set(by_future)
@@ -525,19 +538,24 @@ class LocalRunner:
                     yield fut.result()
                 except BrokenProcessPool:
                     self.broken = True
-                    yield lost_worker(spec)
+                    yield self._lost(spec)
                 except Exception as exc:
                     if not isinstance(exc, GoalkitError) and self.dead_workers():
                         # the pool's own plumbing failing after a worker died (e.g. Python 3.11's
                         # "handle is closed"): the cause is the dead worker, say so
                         self.broken = True
-                        yield lost_worker(spec)
+                        yield self._lost(spec)
                     else:
                         yield failure(spec, exc)
             if pending and not done and self.dead_workers():
                 self.broken = True
-                yield lost_worker(min((by_future[f] for f in pending), key=lambda sp: sp.index))
+                yield self._lost(min((by_future[f] for f in pending), key=lambda sp: sp.index))
                 return
+
+    def _lost(self, spec) -> dict:
+        """:func:`lost_worker` for ``spec``, saying whether no worker had started yet."""
+        started = any(f.done() and not f.cancelled() and f.exception() is None for f in self.warm)
+        return lost_worker(spec, starting=not started)
 
     def dead_workers(self) -> list:
         """Process ids of pool workers that have exited (workers only exit at shutdown).
