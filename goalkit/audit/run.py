@@ -545,10 +545,10 @@ class _Auditor:
         if w is not None and w.split == split and w.w0 <= a and b <= w.w1:
             return w
         grp = self.f[split]
-        chunks = grp["source_episode"].chunks
-        if not chunks:
+        ds = grp["source_episode"]
+        if not ds.chunks:
             return None
-        step, rows = int(chunks[0]), int(grp["source_episode"].shape[0])
+        step, rows = int(ds.chunks[0]), int(ds.shape[0])
         return _Window(grp, split, (a // step) * step, min(rows, -(-b // step) * step))
 
     def start(self):

@@ -17,7 +17,6 @@ from __future__ import annotations
 
 import contextlib
 import fnmatch
-import os
 
 import h5py
 
@@ -29,7 +28,7 @@ from goalkit.logs.checks import MAX_WIDTH
 from goalkit.logs.episodic import EpisodicSource, join_parts, plan_episode, read_episode
 from goalkit.logs.groupplan import plan_group, plan_keys
 from goalkit.logs.groupread import read_groups, read_plan
-from goalkit.logs.held import open_log
+from goalkit.logs.held import file_identity, open_log
 from goalkit.logs.naming import natural_sorted
 from goalkit.logs.planspawn import finish_helper, groups_digest, helper_split, start_helper, stop_helper
 
@@ -94,16 +93,6 @@ def match_groups(h5file, pattern: str, file=None) -> list[str]:
             raise LogError(f"is the same group as {other} (a link); expected each episode group to "
                            f"hold its own data", file=file, key=path)
     return [path for path, _ in level]
-
-
-def file_identity(path):
-    """(device, inode, size, modification time in ns) of ``path``, or None when it cannot be read:
-    what tells a helper process that it opened the very file the caller matched the groups in."""
-    try:
-        st = os.stat(path)
-    except OSError:
-        return None
-    return st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns
 
 
 def _hard_group(group, name: str):

@@ -80,8 +80,14 @@ def _close_all(files) -> None:
             h5.close()
 
 
-def _identity(path: str):
-    st = os.stat(path)
+def file_identity(path):
+    """(device, inode, size, modification time in ns) of ``path``, or None when it cannot be read:
+    what tells that a path still names the file it named before (a held file here, the file a
+    planning helper is asked about in :mod:`goalkit.logs.grouped`)."""
+    try:
+        st = os.stat(path)
+    except OSError:
+        return None
     return st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns
 
 
@@ -100,10 +106,7 @@ def open_log(path):
             yield h5
         return
     key = str(path)
-    try:
-        ident = _identity(key)
-    except OSError:
-        ident = None                    # open_h5 names the problem
+    ident = file_identity(key)          # None: open_h5 names the problem
     with _lock:
         hit = _held.pop(key, None)      # taken: a second reader at the same time opens its own
     if hit is not None and (ident is None or hit[0] != ident):

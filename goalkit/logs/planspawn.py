@@ -28,8 +28,8 @@ MIN_GROUPS = 1_500
 MIN_GROUPS_COLD = 6_000
 #: Start-up of a new helper (interpreter, numpy, h5py, goalkit's readers), and what the helper
 #: does before it plans (read the request with its groups' paths or files, open the log), in
-#: seconds (measured on the 2-core
-#: reference machine; with the cost per group they set how the groups are shared). The start-up
+#: seconds (measured on the 2-core reference machine; with the cost per group they set how the
+#: groups are shared). The start-up
 #: is that of an installed copy, its bytecode compiled, one math-library thread
 #: (:mod:`goalkit.threadenv`): 0.11 s from start to a first answer, median of 7; an interpreter
 #: that must compile goalkit's sources first takes about 0.25 s. The helper is sent the paths of
