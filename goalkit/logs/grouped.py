@@ -55,8 +55,13 @@ def linked(group, name: str, file, path: str | None = None):
     return obj
 
 
-def match_groups(h5file, pattern: str, file=None) -> list[str]:
+def match_groups(h5file, pattern: str, file=None, checked: bool = True) -> list[str]:
     """Paths of the groups matching ``pattern``, in natural order level by level.
+
+    With ``checked=False``, every name matching the last level is listed without looking at what
+    it names (a dataset, a link): a few hundredths of a second where the checks take about
+    :data:`CHECK_SECONDS_PER_GROUP` per group, and the same list whenever every name is a group
+    of its own (the common case).
 
     Raises
     ------
@@ -74,6 +79,9 @@ def match_groups(h5file, pattern: str, file=None) -> list[str]:
             names = [n for n in group.keys() if fnmatch.fnmatchcase(n, part)]
             for n in natural_sorted(names):
                 path = f"{p}/{n}" if p else n
+                if last and not checked:
+                    nxt.append((path, path))
+                    continue
                 if last:
                     ident = _hard_group(group, n)
                     if ident is not None:        # the common case, without opening the group
@@ -93,6 +101,12 @@ def match_groups(h5file, pattern: str, file=None) -> list[str]:
             raise LogError(f"is the same group as {other} (a link); expected each episode group to "
                            f"hold its own data", file=file, key=path)
     return [path for path, _ in level]
+
+
+#: Seconds per group of :func:`match_groups`'s checks of the last level (a link look-up and an
+#: object-header read per name: 0.4 s at 21,000 groups, 0.08 s at 4,250, on the 2-core reference
+#: machine); a planning helper started before them gets a larger share by that much.
+CHECK_SECONDS_PER_GROUP = 20e-6
 
 
 def _hard_group(group, name: str):
@@ -132,16 +146,39 @@ class GroupedSource(EpisodicSource):
         spare.prestart([self.path])     # its helpers (planning, reading) will want one
         with open_log(self.path) as h5, guard(self.path, what="cannot read the log"):
             self.identity = file_identity(self.path)    # the file whose groups are matched here
-            self.groups = match_groups(h5, layout.episode_groups, self.path)
-            if not self.groups:
-                top = natural_sorted(h5.keys())[:10]
-                raise LogError(f"no groups match episode_groups = \"{layout.episode_groups}\"; top-level "
-                               f"names: {', '.join(top) if top else 'none'}", file=self.path,
-                               key="episode_groups")
-            metas, problems = self._plan_groups(h5)
+            early = self._early_helper(h5)
+            try:
+                self.groups = match_groups(h5, layout.episode_groups, self.path)
+                if not self.groups:
+                    top = natural_sorted(h5.keys())[:10]
+                    raise LogError(f"no groups match episode_groups = \"{layout.episode_groups}\"; top-level "
+                                   f"names: {', '.join(top) if top else 'none'}", file=self.path,
+                                   key="episode_groups")
+            except BaseException:
+                if early is not None:
+                    stop_helper(early[0])
+                raise
+            metas, problems = self._plan_groups(h5, early)
         self._adopt(metas, problems)
 
-    def _plan_groups(self, h5):
+    def _early_helper(self, h5):
+        """``(helper, split, listed)``: a planning helper started on the groups as listed, before
+        :func:`match_groups` checks them, or None (too few, no second CPU, a listing that fails).
+
+        The checks take about :data:`CHECK_SECONDS_PER_GROUP` per group in this process (half a
+        second at 21,000 groups), so the helper plans meanwhile and its share is larger by that
+        much. :meth:`_plan_groups` uses it only when the checked list is the listed one.
+        """
+        try:
+            listed = match_groups(h5, self.layout.episode_groups, self.path, checked=False)
+        except (LogError, *READ_ERRORS):
+            return None
+        split = helper_split(len(listed), self.skip_bad_episodes,
+                             head_start=CHECK_SECONDS_PER_GROUP * len(listed)) if listed else None
+        helper = None if split is None else start_helper(self, split, listed)
+        return None if helper is None else (helper, split, listed)
+
+    def _plan_groups(self, h5, early=None):
         """Plan every episode group, in order (as :meth:`_plan_all`; most groups through
         :func:`~goalkit.logs.groupread.plan_group`'s low-level calls, the rest, and every
         problem, through :func:`~goalkit.logs.episodic.plan_episode`).
@@ -149,11 +186,17 @@ class GroupedSource(EpisodicSource):
         With many groups and a second CPU, a helper process plans the last part of them at the
         same time (:mod:`goalkit.logs.planspawn`); its metas are taken only when it finished
         cleanly, and any episode where the two parts could disagree (a problem, a dataset both
-        parts reached) is planned again here, so the result is the serial one.
+        parts reached) is planned again here, so the result is the serial one. A helper started
+        ``early`` (:meth:`_early_helper`) is kept when it was given these very groups.
         """
         total = len(self.groups)
-        split = helper_split(total, self.skip_bad_episodes)
-        helper = None if split is None else start_helper(self, split)
+        helper, split = (None, None) if early is None else early[:2]
+        if helper is not None and early[2] != self.groups:     # the checks left out a name: not ours
+            stop_helper(helper)
+            helper = None
+        if helper is None:
+            split = helper_split(total, self.skip_bad_episodes)
+            helper = None if split is None else start_helper(self, split)
         stop = total if helper is None else split
         seen = DatasetOwners(lambda e, ident: self._locate(h5, e, ident))
         try:
@@ -172,12 +215,13 @@ class GroupedSource(EpisodicSource):
                 problems += more_problems
         return metas, problems
 
-    def plan_request(self, split: int) -> dict:
-        """What the planning helper is sent for groups ``split ..``: their paths (it does not match
-        the groups again: at 21,000 groups that takes half a second) and the identity of the file
-        this process matched them in."""
-        return {"path": self.path, "layout": self.layout, "start": split, "total": len(self.groups),
-                "groups": self.groups[split:], "digest": groups_digest(self.groups[split:]),
+    def plan_request(self, split: int, groups=None) -> dict:
+        """What the planning helper is sent for groups ``split ..`` of ``groups`` (default: the
+        matched ones): their paths (it does not match the groups again: at 21,000 groups that
+        takes half a second) and the identity of the file this process matched them in."""
+        groups = self.groups if groups is None else groups
+        return {"path": self.path, "layout": self.layout, "start": split, "total": len(groups),
+                "groups": groups[split:], "digest": groups_digest(groups[split:]),
                 "identity": self.identity}
 
     @staticmethod

@@ -41,20 +41,21 @@ SECONDS_PER_GROUP = 250e-6
 SWITCH = "GOALKIT_PLAN_HELPER"
 
 
-def helper_split(total: int, skip_bad_episodes: bool = False, seconds_per_item: float = SECONDS_PER_GROUP) \
-        -> int | None:
+def helper_split(total: int, skip_bad_episodes: bool = False, seconds_per_item: float = SECONDS_PER_GROUP,
+                 head_start: float = 0.0) -> int | None:
     """First group the helper plans, or None when no helper is worth starting.
 
     The caller plans ``0 .. split - 1`` and the helper ``split .. total - 1``, shared so that
     both finish together: the caller's part is larger by the helper's start-up (shorter when a
-    spare process is already waiting).
+    spare process is already waiting), smaller by ``head_start``, seconds of other work the
+    caller does before it plans (at least a tenth of the groups each).
     """
     age = spare.waiting_for()
     if total < (MIN_GROUPS if age is not None else MIN_GROUPS_COLD) or skip_bad_episodes or cpus() < 2 \
             or os.environ.get(SWITCH, "1") == "0":
         return None
-    startup = MATCH_SECONDS + max(0.0, STARTUP_SECONDS - (age or 0.0))
-    mine = min(0.9, (1 + startup / (total * seconds_per_item)) / 2)
+    startup = MATCH_SECONDS + max(0.0, STARTUP_SECONDS - (age or 0.0)) - head_start
+    mine = min(0.9, max(0.1, (1 + startup / (total * seconds_per_item)) / 2))
     return int(total * mine)
 
 
@@ -63,10 +64,11 @@ def groups_digest(groups) -> str:
     return hashlib.sha256("\n".join(groups).encode("utf-8")).hexdigest()
 
 
-def start_helper(source, split: int):
+def start_helper(source, split: int, groups=None):
     """Ask a helper (the build's waiting spare, else a new process) to plan groups ``split ..``
-    of ``source`` (a GroupedSource); None on failure."""
-    request = source.plan_request(split)
+    of ``source`` (a GroupedSource; of ``groups``, a list of its group paths, when given); None
+    on failure."""
+    request = source.plan_request(split) if groups is None else source.plan_request(split, groups)
     helper = spare.take()
     if helper is None or not helper.send({"call": type(source).plan_part, "each": [(request,)]}):
         return None

@@ -20,13 +20,13 @@ def helper_on(monkeypatch):
     """A helper for logs of a few groups: it plans groups 6.. of 16 (see helper_split)."""
     monkeypatch.setattr(planspawn, "MIN_GROUPS", 4)
     monkeypatch.setattr(planspawn, "cpus", lambda: 2)
-    monkeypatch.setattr(planspawn, "helper_split", lambda total, skip=False: 6 if total >= 4 and not skip else None)
+    monkeypatch.setattr(planspawn, "helper_split", lambda total, skip=False, **kw: 6 if total >= 4 and not skip else None)
     started = []
     real = planspawn.start_helper
 
-    def counted(source, split):
+    def counted(source, split, *groups):
         started.append(split)
-        return real(source, split)
+        return real(source, split, *groups)
 
     monkeypatch.setattr("goalkit.logs.grouped.start_helper", counted)
     monkeypatch.setattr("goalkit.logs.grouped.helper_split", planspawn.helper_split)
@@ -37,8 +37,8 @@ def dying_helper(log):
     """A start_helper whose helper dies before answering (``"killed"`` appended to ``log``)."""
     real = planspawn.start_helper
 
-    def dead(source, split):
-        helper = real(source, split)
+    def dead(source, split, *groups):
+        helper = real(source, split, *groups)
         helper.proc.kill()
         helper.proc.wait()
         log.append("killed")
@@ -48,7 +48,7 @@ def dying_helper(log):
 
 
 def serial(path, table, monkeypatch):
-    monkeypatch.setattr("goalkit.logs.grouped.helper_split", lambda total, skip=False: None)
+    monkeypatch.setattr("goalkit.logs.grouped.helper_split", lambda total, skip=False, **kw: None)
     return open_logs(path, table)
 
 
@@ -240,3 +240,54 @@ def test_the_helper_plans_the_groups_it_is_sent_without_matching_them_again(tmp_
     os.utime(tmp_path / "g.h5", ns=(st.st_atime_ns, st.st_mtime_ns + 1_000_000_000))   # the file changed since
     with pytest.raises(ValueError, match="not the file"):
         grouped.GroupedSource.plan_part(request)
+
+
+def test_the_helper_starts_on_the_listed_groups_before_they_are_checked(tmp_path, helper_on, monkeypatch):
+    # the checks of the episode names (a link and an object-header look-up each) run in this
+    # process while the helper already plans its part of the names as listed
+    from goalkit.logs import grouped
+
+    eps = make_episodes([3, 1, 5, 2, 4, 6, 2, 3, 1, 4, 5, 2, 3, 2, 1, 4], seed=11)
+    table = write_grouped(tmp_path / "g.h5", eps, fields=True)
+    events = []
+    real_match, real_start = grouped.match_groups, grouped.start_helper
+
+    def match(*args, checked=True, **kwargs):
+        events.append(("match", checked))
+        return real_match(*args, checked=checked, **kwargs)
+
+    def start(source, split, *groups):
+        events.append(("helper", split))
+        return real_start(source, split, *groups)
+
+    monkeypatch.setattr(grouped, "match_groups", match)
+    monkeypatch.setattr(grouped, "start_helper", start)
+    shared = open_logs(tmp_path / "g.h5", table)
+    assert events == [("match", False), ("helper", 6), ("match", True)]
+    ref = serial(tmp_path / "g.h5", table, monkeypatch)
+    assert shared.metas == ref.metas and shared.groups == ref.groups
+
+
+def test_an_early_helper_given_a_name_the_checks_leave_out_is_not_used(tmp_path, helper_on, monkeypatch):
+    # a dataset whose name matches the episode pattern is listed but is not an episode group:
+    # the early helper planned other groups than the checked ones, so a fresh one is asked
+    eps = make_episodes([3, 1, 5, 2, 4, 6, 2, 3, 1, 4, 5, 2, 3, 2, 1, 4], seed=11)
+    table = write_grouped(tmp_path / "g.h5", eps, fields=True)
+    with h5py.File(tmp_path / "g.h5", "r+") as f:
+        f["runs/ep10x"] = np.arange(3.0)                 # between ep10 and ep11 in natural order
+    shared = open_logs(tmp_path / "g.h5", table)
+    assert helper_on == [6, 6]                          # the early helper, then one for the checked groups
+    ref = serial(tmp_path / "g.h5", table, monkeypatch)
+    assert "runs/ep10x" not in shared.groups and shared.groups == ref.groups
+    assert shared.metas == ref.metas
+    np.testing.assert_array_equal(shared.read(0, 16).observations, ref.read(0, 16).observations)
+
+
+def test_a_head_start_moves_groups_to_the_helper(monkeypatch):
+    # the caller's part shrinks by the head start's worth of groups, never below a tenth
+    monkeypatch.setattr(planspawn, "cpus", lambda: 2)
+    total = 21_000
+    plain = planspawn.helper_split(total)
+    ahead = planspawn.helper_split(total, head_start=0.2)
+    assert plain - ahead == pytest.approx(0.2 / planspawn.SECONDS_PER_GROUP / 2, abs=2)
+    assert planspawn.helper_split(total, head_start=100.0) == total // 10

@@ -59,7 +59,8 @@ def test_one_spare_plans_then_reads_and_is_gone_after(tmp_path, small_logs_count
     recipe = demo(tmp_path)
     plans, reads = [], []
     monkeypatch.setattr("goalkit.logs.grouped.start_helper",
-                        lambda source, split: plans.append(planspawn.start_helper(source, split)) or plans[-1])
+                        lambda source, split, *groups: plans.append(planspawn.start_helper(source, split, *groups))
+                        or plans[-1])
     real_start = readproc.ChunkReader._start
 
     def start(self):

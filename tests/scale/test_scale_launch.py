@@ -166,9 +166,9 @@ def test_the_coordinator_holds_its_log_while_it_plans_and_lets_go_after(gantry, 
     seen = []
     plan_groups = grouped.GroupedSource._plan_groups
 
-    def watched(self, h5):
+    def watched(self, h5, *early):
         seen.append(held.holding())
-        return plan_groups(self, h5)
+        return plan_groups(self, h5, *early)
 
     monkeypatch.setattr(grouped.GroupedSource, "_plan_groups", watched)
     _, ref_digest = reference
