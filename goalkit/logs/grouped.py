@@ -25,7 +25,8 @@ from goalkit.logs import limits
 from goalkit.logs.access import READ_ERRORS, DatasetOwners, H5Access, describe_link, guard, open_h5, short
 from goalkit.logs import access, spare
 from goalkit.logs.checks import MAX_WIDTH
-from goalkit.logs.episodic import EpisodicSource, join_parts, plan_episode, read_episode
+from goalkit.logs.episodic import EpisodicSource, join_parts, read_episode
+from goalkit.logs.frontier import Frontier, plan_downwards, plan_upwards
 from goalkit.logs.groupplan import plan_group, plan_keys
 from goalkit.logs.groupread import read_groups, read_plan
 from goalkit.logs.held import file_identity, open_log
@@ -162,12 +163,14 @@ class GroupedSource(EpisodicSource):
         self._adopt(metas, problems)
 
     def _early_helper(self, h5):
-        """``(helper, split, listed)``: a planning helper started on the groups as listed, before
-        :func:`match_groups` checks them, or None (too few, no second CPU, a listing that fails).
+        """``(helper, split, listed, frontier)``: a planning helper started on the groups as
+        listed, before :func:`match_groups` checks them, or None (too few, no second CPU, a
+        listing that fails).
 
         The checks take about :data:`CHECK_SECONDS_PER_GROUP` per group in this process (half a
-        second at 21,000 groups), so the helper plans meanwhile and its share is larger by that
-        much. :meth:`_plan_groups` uses it only when the checked list is the listed one.
+        second at 21,000 groups), and the helper plans meanwhile, from the last group down (see
+        :mod:`goalkit.logs.frontier`). :meth:`_plan_groups` uses it only when the checked list
+        is the listed one.
         """
         try:
             listed = match_groups(h5, self.layout.episode_groups, self.path, checked=False)
@@ -175,8 +178,8 @@ class GroupedSource(EpisodicSource):
             return None
         split = helper_split(len(listed), self.skip_bad_episodes,
                              head_start=CHECK_SECONDS_PER_GROUP * len(listed)) if listed else None
-        helper = None if split is None else start_helper(self, split, listed)
-        return None if helper is None else (helper, split, listed)
+        started = None if split is None else _start(self, split, listed)
+        return None if started is None else (started[0], split, listed, started[1])
 
     def _plan_groups(self, h5, early=None):
         """Plan every episode group, in order (as :meth:`_plan_all`; most groups through
@@ -190,39 +193,58 @@ class GroupedSource(EpisodicSource):
         ``early`` (:meth:`_early_helper`) is kept when it was given these very groups.
         """
         total = len(self.groups)
-        helper, split = (None, None) if early is None else early[:2]
+        helper, split, frontier = (None, None, None) if early is None else (early[0], early[1], early[3])
         if helper is not None and early[2] != self.groups:     # the checks left out a name: not ours
-            stop_helper(helper)
-            helper = None
+            _stop(helper, frontier)
+            helper = frontier = None
         if helper is None:
             split = helper_split(total, self.skip_bad_episodes)
-            helper = None if split is None else start_helper(self, split)
-        stop = total if helper is None else split
+            started = None if split is None else _start(self, split)
+            helper, frontier = (None, None) if started is None else started
         seen = DatasetOwners(lambda e, ident: self._locate(h5, e, ident))
+        types: dict = {}
+        metas, problems = [], []
+
+        def mine(start, stop):
+            more, more_problems = self._plan_range(h5, seen, start, stop, types)
+            metas.extend(more)
+            problems.extend(more_problems)
+
         try:
-            metas, problems = self._plan_range(h5, seen, 0, stop)
+            if frontier is not None:
+                stop = plan_upwards(frontier, 0, mine)           # until the helper's claim
+            else:
+                stop = total if helper is None else split
+                mine(0, stop)
         except BaseException:
             if helper is not None:
-                stop_helper(helper)
+                _stop(helper, frontier)
             raise
         if helper is not None:
-            found = finish_helper(helper)
-            if found is not None and len(found["metas"]) == total - stop:
+            found = finish_helper(helper, expect=("metas", "owners", "key_dtypes", "start"))
+            if frontier is not None:
+                frontier.close()
+            first = None if found is None else found["start"]
+            if first is not None and first <= stop and len(found["metas"]) == total - first:
                 self._adopt_helper(h5, seen, stop, found, metas, problems)
             else:
-                more, more_problems = self._plan_range(h5, seen, stop, total)
-                metas += more
-                problems += more_problems
+                mine(stop, total)
         return metas, problems
 
-    def plan_request(self, split: int, groups=None) -> dict:
+    def plan_request(self, split: int, groups=None, frontier: str | None = None) -> dict:
         """What the planning helper is sent for groups ``split ..`` of ``groups`` (default: the
         matched ones): their paths (it does not match the groups again: at 21,000 groups that
-        takes half a second) and the identity of the file this process matched them in."""
+        takes half a second) and the identity of the file this process matched them in. With
+        the path of a ``frontier`` (:mod:`goalkit.logs.frontier`) every group is sent, and the
+        helper plans from the last one down until it meets this process."""
         groups = self.groups if groups is None else groups
-        return {"path": self.path, "layout": self.layout, "start": split, "total": len(groups),
-                "groups": groups[split:], "digest": groups_digest(groups[split:]),
-                "identity": self.identity}
+        first = 0 if frontier is not None else split
+        request = {"path": self.path, "layout": self.layout, "start": first, "total": len(groups),
+                   "groups": groups[first:], "digest": groups_digest(groups[first:]),
+                   "identity": self.identity}
+        if frontier is not None:
+            request["frontier"] = frontier
+        return request
 
     @staticmethod
     def plan_part(request: dict) -> dict:
@@ -242,19 +264,28 @@ class GroupedSource(EpisodicSource):
         start, total, part = int(request["start"]), int(request["total"]), list(request["groups"])
         if start + len(part) != total or groups_digest(part) != request["digest"]:
             raise ValueError("the request's groups do not add up")
-        with open_h5(src.path) as h5:
+        with open_log(src.path) as h5:       # a helper that holds its logs keeps it open for its reads
             if request["identity"] is None or file_identity(src.path) != request["identity"]:
                 raise ValueError("the log is not the file the caller opened")
             src.groups = [""] * start + part          # only groups start .. are planned here
             seen = DatasetOwners(lambda e, ident: "")
-            metas, _ = src._plan_range(h5, seen, start, total)
-        return {"metas": metas, "owners": seen.claims(start), "key_dtypes": src.key_dtypes}
+            if "frontier" in request:
+                frontier = Frontier.attach(request["frontier"])
+                try:
+                    start, metas = _plan_down(src, h5, seen, frontier, total)
+                finally:
+                    frontier.close()
+            else:
+                metas, _ = src._plan_range(h5, seen, start, total)
+        return {"metas": metas, "owners": seen.claims(start), "key_dtypes": src.key_dtypes, "start": start}
 
-    def _plan_range(self, h5, seen, start, stop):
-        """Plan episode groups ``start .. stop - 1`` (see :meth:`_plan_groups`)."""
+    def _plan_range(self, h5, seen, start, stop, types=None):
+        """Plan episode groups ``start .. stop - 1`` (see :meth:`_plan_groups`); ``types``, a
+        dict kept between calls, saves converting each key's HDF5 type again."""
         keys = plan_keys(self.layout)
         fileno = h5py.h5o.get_info(h5.id).fileno
-        metas, problems, types = [], [], {}
+        metas, problems = [], []
+        types = {} if types is None else types
         for e in range(start, stop):
             path = self.groups[e]
             with guard(self.path, path, e, "cannot open the episode group"):
@@ -279,28 +310,30 @@ class GroupedSource(EpisodicSource):
         return self._plan_access(acc, e)
 
     def _adopt_helper(self, h5, seen, start, found, metas, problems):
-        """Take the helper's metas of groups ``start ..``; plan again here every episode it
-        could not plan and every episode that reached a dataset an earlier one reached."""
+        """Take the helper's metas of groups ``start ..`` (it planned from ``found["start"]``,
+        which may be lower: those are this process's), in episode order: an episode the helper
+        could not plan, or one that reached a dataset an earlier episode reached, is planned
+        again here, so the metas and the problems are the serial ones whatever order the helper
+        planned in."""
         owners = seen.owners()
-        again = {start + i for i, m in enumerate(found["metas"]) if m is None}
         claims: dict = {}
-        for addr, e in found["owners"]:                  # in episode order
-            claims.setdefault(e, []).append(addr)
-            other = owners.setdefault(addr, e)
-            if other != e:
-                again.add(e)
+        for addr, e in found["owners"]:
+            if e >= start:
+                claims.setdefault(e, []).append(addr)
         if found["key_dtypes"] is None:
             self.key_dtypes = None
         else:
             self._note_dtypes(found["key_dtypes"])
-        for i, meta in enumerate(found["metas"]):
+        skip = start - found["start"]
+        for i, meta in enumerate(found["metas"][skip:]):
             e = start + i
-            if e in again:
+            reached = claims.get(e, ())
+            if meta is not None and all(owners.get(addr, e) == e for addr in reached):
+                for addr in reached:
+                    owners[addr] = e
+            else:
                 with guard(self.path, self.groups[e], e, "cannot open the episode group"):
                     gid = h5py.h5g.open(h5.id, self.groups[e].encode("utf-8"))
-                for addr in claims.get(e, ()):           # what it reached in the helper's run
-                    if owners.get(addr) == e:
-                        del owners[addr]
                 meta, problem = self._plan_general(gid, e, seen)
                 if problem is not None:
                     problems.append((e, problem))
@@ -382,3 +415,33 @@ class GroupedSource(EpisodicSource):
                     parts.append(read_episode(acc, self.layout, self.metas[e], e, self.obs_dtype,
                                               self.action_dtype))
         return join_parts(parts, [self.metas[e].task for e in ids.tolist()], self.layout)
+
+
+def _start(source, split: int, groups=None):
+    """``(helper, frontier)`` planning ``source``'s groups with this process (the frontier None
+    when no shared file could be made: the helper then plans ``split ..``), or None."""
+    frontier = Frontier.create(len(source.groups if groups is None else groups))
+    helper = start_helper(source, split, groups, frontier=frontier)
+    if helper is None:
+        if frontier is not None:
+            frontier.close()
+        return None
+    return helper, frontier
+
+
+def _stop(helper, frontier) -> None:
+    stop_helper(helper)
+    if frontier is not None:
+        frontier.close()
+
+
+def _plan_down(src, h5, seen, frontier, total):
+    """The helper's planning from the last group down (:func:`~goalkit.logs.frontier.plan_downwards`):
+    ``(first episode planned, metas from it on)``."""
+    batches, types = [], {}
+
+    def batch(start, stop):
+        batches.append(src._plan_range(h5, seen, start, stop, types)[0])
+
+    first = plan_downwards(frontier, total, batch)
+    return first, [m for part in reversed(batches) for m in part]

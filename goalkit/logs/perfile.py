@@ -19,6 +19,7 @@ from goalkit.errors import LogError
 from goalkit.logs import limits, spare
 from goalkit.logs.access import NpzAccess
 from goalkit.logs.episodic import EpisodicSource, join_parts, read_episode
+from goalkit.logs.frontier import Frontier, plan_downwards, plan_upwards
 from goalkit.logs.naming import natural_sorted
 from goalkit.logs.npzfile import NpzArrays
 from goalkit.logs.planspawn import finish_helper, groups_digest, helper_split, start_helper, stop_helper
@@ -62,33 +63,51 @@ class PerFileSource(EpisodicSource):
     def _plan_files(self):
         """Plan every episode file, in order (as :meth:`_plan_all`). With many files and a second
         CPU, a helper process plans the last part of them at the same time
-        (:mod:`goalkit.logs.planspawn`); any episode it found a problem in, and its whole part
+        (:mod:`goalkit.logs.planspawn`), from the last file down until the two meet
+        (:mod:`goalkit.logs.frontier`); any episode it found a problem in, and its whole part
         when it gives no clean answer, is planned again here, so the metas and the problems
         (with their messages) are the serial ones."""
         total = len(self.files)
         split = helper_split(total, self.skip_bad_episodes, seconds_per_item=SECONDS_PER_FILE)
-        helper = None if split is None else start_helper(self, split)
-        stop = total if helper is None else split
-        try:
-            metas, problems = self._plan_all(self._episode_access(e) for e in range(stop))
-        except BaseException:
-            if helper is not None:
-                stop_helper(helper)
-            raise
-        if helper is None:
-            return metas, problems
-        found = finish_helper(helper, expect=("metas", "problems"))
-        if found is None or len(found["metas"]) != total - stop:
-            for e in range(stop, total):                        # no clean answer: plan them here
+        frontier = None if split is None else Frontier.create(total)
+        helper = None if split is None else start_helper(self, split, frontier=frontier)
+        if helper is None and frontier is not None:
+            frontier.close()
+            frontier = None
+        metas, problems = [], []
+
+        def mine(start, stop):
+            for e in range(start, stop):
                 meta, problem = self._plan_one(e)
                 metas.append(meta)
                 if problem is not None:
                     problems.append((e, problem))
+
+        try:
+            if frontier is not None:
+                stop = plan_upwards(frontier, 0, mine)          # until the helper's claim
+            else:
+                stop = total if helper is None else split
+                mine(0, stop)
+        except BaseException:
+            if helper is not None:
+                stop_helper(helper)
+            if frontier is not None:
+                frontier.close()
+            raise
+        if helper is None:
             return metas, problems
-        for e in sorted(found["problems"]):                     # the message, made here
+        found = finish_helper(helper, expect=("metas", "problems", "start"))
+        if frontier is not None:
+            frontier.close()
+        first = None if found is None else found["start"]
+        if first is None or first > stop or len(found["metas"]) != total - first:
+            mine(stop, total)                                   # no clean answer: plan them here
+            return metas, problems
+        for e in sorted(e for e in found["problems"] if e >= stop):   # the message, made here
             _, problem = self._plan_one(e)
             problems.append((e, problem))
-        return metas + found["metas"], problems
+        return metas + found["metas"][stop - first:], problems
 
     def _plan_one(self, e):
         """``(meta, None)`` or ``(None, LogError)`` of episode ``e``."""
@@ -111,19 +130,38 @@ class PerFileSource(EpisodicSource):
             raise ValueError("the file list changed")
         src = PerFileSource.__new__(PerFileSource)
         src.path, src.layout, src.files = request["path"], request["layout"], files
-        start = int(request["start"])
-        metas, problems = [], []
-        for e in range(start, len(files)):
-            meta, problem = src._plan_one(e)
-            metas.append(meta)
-            if problem is not None:
-                problems.append(e)
-        return {"metas": metas, "problems": problems}
+        batches, problems = [], []
 
-    def plan_request(self, split: int) -> dict:
-        """What the planning helper is sent for files ``split ..``."""
-        return {"path": self.path, "layout": self.layout, "files": self.files, "start": split,
-                "digest": groups_digest(self.files)}
+        def batch(start, stop):
+            part = []
+            for e in range(start, stop):
+                meta, problem = src._plan_one(e)
+                part.append(meta)
+                if problem is not None:
+                    problems.append(e)
+            batches.append(part)
+
+        if "frontier" in request:
+            frontier = Frontier.attach(request["frontier"])
+            try:
+                start = plan_downwards(frontier, len(files), batch)   # from the last file down
+            finally:
+                frontier.close()
+            batches.reverse()
+        else:
+            start = int(request["start"])
+            batch(start, len(files))
+        return {"metas": [m for part in batches for m in part], "problems": sorted(problems), "start": start}
+
+    def plan_request(self, split: int, groups=None, frontier: str | None = None) -> dict:
+        """What the planning helper is sent for files ``split ..`` (with the path of a
+        ``frontier``: from the last file down until it meets this process,
+        :mod:`goalkit.logs.frontier`)."""
+        request = {"path": self.path, "layout": self.layout, "files": self.files, "start": split,
+                   "digest": groups_digest(self.files)}
+        if frontier is not None:
+            request["frontier"] = frontier
+        return request
 
     def _episode_access(self, e) -> NpzAccess:
         arrays = NpzArrays(self.files[e], max_rows=limits.MAX_EPISODE_STEPS, episode=e)

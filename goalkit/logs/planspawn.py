@@ -64,11 +64,15 @@ def groups_digest(groups) -> str:
     return hashlib.sha256("\n".join(groups).encode("utf-8")).hexdigest()
 
 
-def start_helper(source, split: int, groups=None):
+def start_helper(source, split: int, groups=None, frontier=None):
     """Ask a helper (the build's waiting spare, else a new process) to plan groups ``split ..``
     of ``source`` (a GroupedSource; of ``groups``, a list of its group paths, when given); None
-    on failure."""
-    request = source.plan_request(split) if groups is None else source.plan_request(split, groups)
+    on failure. With a ``frontier`` (:class:`~goalkit.logs.frontier.Frontier`) the helper plans
+    from the last group downwards until it meets the caller instead (``split`` is then unused)."""
+    if frontier is not None:
+        request = source.plan_request(split, groups, frontier=frontier.path)
+    else:
+        request = source.plan_request(split) if groups is None else source.plan_request(split, groups)
     helper = spare.take()
     if helper is None or not helper.send({"call": type(source).plan_part, "each": [(request,)]}):
         return None

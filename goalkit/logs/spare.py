@@ -36,6 +36,10 @@ WARM_BYTES = 8 << 20
 #: Environment variable that turns the early start off (``GOALKIT_SPARE=0``).
 SWITCH = "GOALKIT_SPARE"
 _LENGTH = struct.Struct("<Q")
+#: Requests larger than this are written on a side thread (``goalkit-spare-send``): a pipe holds
+#: 64 KiB, and a spare still starting reads nothing, so a larger write (the planning helper's
+#: group paths: 64 KiB at 4,250 groups) would hold the caller until the spare is up.
+DIRECT_BYTES = 32 << 10
 _lock = threading.Lock()
 _slot: list = []
 _scopes = [0]
@@ -61,6 +65,7 @@ class Spare:
     def __init__(self, proc):
         self.proc = proc
         self.started = time.monotonic()
+        self._sending = None            # (thread, [error]) of a request still being written
 
     @classmethod
     def start(cls):
@@ -78,18 +83,43 @@ class Spare:
         return self.proc is not None and self.proc.poll() is None
 
     def send(self, request: dict) -> bool:
-        """Write one request; False (and the process stopped) when it cannot be written."""
+        """Write one request; False (and the process stopped) when it cannot be written.
+
+        A request over :data:`DIRECT_BYTES` is written on a side thread, so that the caller goes
+        on while the spare is still starting; :meth:`receive` waits for that write first.
+        """
+        if not self._sent():
+            self.close()
+            return False
         try:
             data = pickle.dumps(request, protocol=pickle.HIGHEST_PROTOCOL)
-            self.proc.stdin.write(_LENGTH.pack(len(data)) + data)
-            self.proc.stdin.flush()
-            return True
+            stream = self.proc.stdin
+            if len(data) <= DIRECT_BYTES:
+                _send_bytes(stream, _LENGTH.pack(len(data)) + data, None)
+                return True
         except (OSError, ValueError, AttributeError, pickle.PicklingError):
             self.close()
             return False
+        failed: list = []
+        thread = threading.Thread(target=_send_bytes, args=(stream, _LENGTH.pack(len(data)) + data, failed),
+                                  name="goalkit-spare-send", daemon=True)
+        self._sending = (thread, failed)
+        thread.start()
+        return True
+
+    def _sent(self) -> bool:
+        """Wait for a request still being written; False when its write failed."""
+        sending, self._sending = self._sending, None
+        if sending is None:
+            return True
+        sending[0].join()
+        return not sending[1]
 
     def receive(self):
         """The next answer's value; None when it failed there or the process is gone (then stopped)."""
+        if not self._sent():
+            self.close()
+            return None
         try:
             head = self.proc.stdout.read(_LENGTH.size)
             if len(head) == _LENGTH.size:
@@ -114,6 +144,9 @@ class Spare:
             proc.kill()
         except OSError:
             pass
+        sending, self._sending = self._sending, None
+        if sending is not None:
+            sending[0].join(timeout=10)          # the write fails once the process is gone
         for stream in (proc.stdin, proc.stdout):
             try:
                 if stream is not None:
@@ -124,6 +157,18 @@ class Spare:
             proc.wait(timeout=10)
         except subprocess.TimeoutExpired:
             pass
+
+
+def _send_bytes(stream, data: bytes, failed) -> None:
+    """Write and flush ``data``; with a list ``failed`` (on a side thread), an error is appended
+    to it instead of raised."""
+    try:
+        stream.write(data)
+        stream.flush()
+    except (OSError, ValueError) as exc:
+        if failed is None:
+            raise
+        failed.append(exc)
 
 
 def wanted(paths) -> bool:

@@ -2,9 +2,17 @@
 
 Reference: the serial planning of the same log in this process (the helper only shares the
 work; metas, kept episodes and every error must be the serial ones).
+
+Every helper test runs twice: with a fixed split (``split``: the helper plans groups 6.., as
+when no shared frontier can be made) and with the two planners meeting where they meet
+(``meet``, goalkit/logs/frontier.py): batches of 3 groups, and this process waits until the
+helper has claimed down to group 6 before it plans, so that the helper plans several batches
+from the last group down and the meeting point varies from run to run.
 """
 
 from __future__ import annotations
+
+import time
 
 import h5py
 import numpy as np
@@ -12,21 +20,55 @@ import pytest
 from logs_testdata import make_episodes, write_grouped, write_per_file
 
 from goalkit.errors import LogError
+from goalkit.logs import frontier as frontier_mod
 from goalkit.logs import open_logs, planspawn
 
 
-@pytest.fixture
-def helper_on(monkeypatch):
-    """A helper for logs of a few groups: it plans groups 6.. of 16 (see helper_split)."""
+def waiting_until_the_helper_reaches(low: int):
+    """A plan_upwards that first waits until the helper has claimed down to ``low`` (or its
+    claim has not moved for half a second: it died)."""
+    real = frontier_mod.plan_upwards
+
+    def waiting(frontier, start, plan):
+        seen, since = frontier.high(), time.monotonic()
+        while frontier.high() > low and time.monotonic() - since < 0.5:
+            if frontier.high() != seen:
+                seen, since = frontier.high(), time.monotonic()
+            time.sleep(0.001)
+        return real(frontier, start, plan)
+
+    return waiting
+
+
+class Started(list):
+    """The splits start_helper was called with; ``mode`` is ``"split"`` or ``"meet"``."""
+
+    mode = ""
+
+
+def both_ways(monkeypatch, mode: str, module: str) -> None:
+    if mode == "split":
+        monkeypatch.setattr(frontier_mod.Frontier, "create", classmethod(lambda cls, total: None))
+    else:
+        monkeypatch.setattr(frontier_mod, "BATCH", 3)
+        monkeypatch.setattr(f"goalkit.logs.{module}.plan_upwards", waiting_until_the_helper_reaches(6))
+
+
+@pytest.fixture(params=["split", "meet"])
+def helper_on(monkeypatch, request):
+    """A helper for logs of a few groups: it plans groups 6.. of 16 (see helper_split), or meets
+    this process (see the module text)."""
     monkeypatch.setattr(planspawn, "MIN_GROUPS", 4)
     monkeypatch.setattr(planspawn, "cpus", lambda: 2)
     monkeypatch.setattr(planspawn, "helper_split", lambda total, skip=False, **kw: 6 if total >= 4 and not skip else None)
-    started = []
+    both_ways(monkeypatch, request.param, "grouped")
+    started = Started()
+    started.mode = request.param
     real = planspawn.start_helper
 
-    def counted(source, split, *groups):
+    def counted(source, split, *groups, **kw):
         started.append(split)
-        return real(source, split, *groups)
+        return real(source, split, *groups, **kw)
 
     monkeypatch.setattr("goalkit.logs.grouped.start_helper", counted)
     monkeypatch.setattr("goalkit.logs.grouped.helper_split", planspawn.helper_split)
@@ -34,11 +76,18 @@ def helper_on(monkeypatch):
 
 
 def dying_helper(log):
-    """A start_helper whose helper dies before answering (``"killed"`` appended to ``log``)."""
+    """A start_helper whose helper dies before answering (``"killed"`` appended to ``log``); with
+    a frontier, after it has claimed its first batch."""
     real = planspawn.start_helper
 
-    def dead(source, split, *groups):
-        helper = real(source, split, *groups)
+    def dead(source, split, *groups, frontier=None):
+        helper = real(source, split, *groups, frontier=frontier)
+        if frontier is not None:
+            total = frontier.high()
+            deadline = time.monotonic() + 30
+            while frontier.high() == total and time.monotonic() < deadline:
+                time.sleep(0.0005)
+            assert frontier.high() < total
         helper.proc.kill()
         helper.proc.wait()
         log.append("killed")
@@ -57,13 +106,15 @@ def test_helper_gives_the_serial_plan(tmp_path, helper_on, monkeypatch):
     table = write_grouped(tmp_path / "g.h5", eps, fields=True)
     answers = []
 
-    def finish(helper):
-        answers.append(planspawn.finish_helper(helper))
+    def finish(helper, **kw):
+        answers.append(planspawn.finish_helper(helper, **kw))
         return answers[-1]
 
     monkeypatch.setattr("goalkit.logs.grouped.finish_helper", finish)
     shared = open_logs(tmp_path / "g.h5", table)
-    assert helper_on == [6] and len(answers[0]["metas"]) == 10      # the helper planned 6..15
+    first = answers[0]["start"]
+    assert helper_on == [6] and len(answers[0]["metas"]) == 16 - first
+    assert first == 6 if helper_on.mode == "split" else first <= 6   # the helper planned first..15
     ref = serial(tmp_path / "g.h5", table, monkeypatch)
     assert shared.metas == ref.metas and shared.key_dtypes == ref.key_dtypes
     np.testing.assert_array_equal(shared.lengths, [len(e["act"]) for e in eps])
@@ -83,6 +134,24 @@ def test_dataset_shared_across_the_parts_is_refused_as_in_serial(tmp_path, helpe
         serial(tmp_path / "g.h5", table, monkeypatch)
     assert str(err.value) == str(ref.value)
     assert err.value.episode == 9 and "same dataset as key runs/ep2/rew of episode 2" in str(err.value)
+
+
+def test_dataset_shared_inside_the_helpers_part_is_refused_as_in_serial(tmp_path, helper_on, monkeypatch):
+    # both episodes are in the helper's part; meeting this process, the helper plans from the
+    # last group down, so it reaches the shared dataset from episode 12 before episode 9: the
+    # error must still be the serial one, on episode 12
+    eps = make_episodes([3] * 16, seed=19)
+    table = write_grouped(tmp_path / "g.h5", eps)
+    with h5py.File(tmp_path / "g.h5", "a") as f:
+        del f["runs/ep12/act"]
+        f["runs/ep12/act"] = f["runs/ep9/act"]
+    with pytest.raises(LogError) as err:
+        open_logs(tmp_path / "g.h5", table)
+    assert helper_on == [6]
+    with pytest.raises(LogError) as ref:
+        serial(tmp_path / "g.h5", table, monkeypatch)
+    assert str(err.value) == str(ref.value)
+    assert err.value.episode == 12 and "same dataset as key runs/ep9/act of episode 9" in str(err.value)
 
 
 def test_problem_in_the_helpers_part_is_named_as_in_serial(tmp_path, helper_on, monkeypatch):
@@ -120,15 +189,18 @@ def test_split_leaves_small_logs_and_one_cpu_alone(monkeypatch):
     assert planspawn.helper_split(21_000) is None
 
 
-@pytest.fixture
-def per_file_helper(monkeypatch):
-    """A helper for per-file folders of a few files: it plans files 6.. of 16."""
-    started = []
+@pytest.fixture(params=["split", "meet"])
+def per_file_helper(monkeypatch, request):
+    """A helper for per-file folders of a few files: it plans files 6.. of 16, or meets this
+    process (see the module text)."""
+    both_ways(monkeypatch, request.param, "perfile")
+    started = Started()
+    started.mode = request.param
     real = planspawn.start_helper
 
-    def counted(source, split):
+    def counted(source, split, **kw):
         started.append(split)
-        return real(source, split)
+        return real(source, split, **kw)
 
     monkeypatch.setattr("goalkit.logs.perfile.start_helper", counted)
     monkeypatch.setattr("goalkit.logs.perfile.helper_split",
@@ -256,9 +328,9 @@ def test_the_helper_starts_on_the_listed_groups_before_they_are_checked(tmp_path
         events.append(("match", checked))
         return real_match(*args, checked=checked, **kwargs)
 
-    def start(source, split, *groups):
+    def start(source, split, *groups, **kw):
         events.append(("helper", split))
-        return real_start(source, split, *groups)
+        return real_start(source, split, *groups, **kw)
 
     monkeypatch.setattr(grouped, "match_groups", match)
     monkeypatch.setattr(grouped, "start_helper", start)
@@ -291,3 +363,44 @@ def test_a_head_start_moves_groups_to_the_helper(monkeypatch):
     ahead = planspawn.helper_split(total, head_start=0.2)
     assert plain - ahead == pytest.approx(0.2 / planspawn.SECONDS_PER_GROUP / 2, abs=2)
     assert planspawn.helper_split(total, head_start=100.0) == total // 10
+
+
+def overlapping(upto: int):
+    """A plan_upwards that lets the helper plan every episode first, then plans ``0 .. upto``
+    itself: the two parts overlap on ``0 .. upto`` (what a race at the meeting point does, on
+    a batch), and the caller must keep its own metas there."""
+    def plan_first(frontier, start, plan):
+        deadline = time.monotonic() + 30
+        while frontier.high() > 0 and time.monotonic() < deadline:
+            time.sleep(0.001)
+        assert frontier.high() == 0
+        plan(start, upto)
+        return upto
+
+    return plan_first
+
+
+@pytest.mark.parametrize("shape", ["grouped", "per-file"])
+def test_where_the_parts_overlap_this_process_keeps_its_own(tmp_path, monkeypatch, shape):
+    monkeypatch.setattr(planspawn, "cpus", lambda: 2)
+    monkeypatch.setattr(frontier_mod, "BATCH", 3)
+    module = "grouped" if shape == "grouped" else "perfile"
+    monkeypatch.setattr(f"goalkit.logs.{module}.helper_split", lambda total, skip=False, **kw: 6)
+    monkeypatch.setattr(f"goalkit.logs.{module}.plan_upwards", overlapping(10))
+    answers = []
+    real_finish = planspawn.finish_helper
+    monkeypatch.setattr(f"goalkit.logs.{module}.finish_helper",
+                        lambda helper, **kw: answers.append(real_finish(helper, **kw)) or answers[-1])
+    eps = make_episodes([3, 1, 5, 2, 4, 6, 2, 3, 1, 4, 5, 2, 3, 2, 1, 4], seed=21)
+    if shape == "grouped":
+        table = write_grouped(tmp_path / "g", eps, fields=True)
+        path = tmp_path / "g"
+    else:
+        table = write_per_file(tmp_path / "eps", eps)
+        path = tmp_path / "eps"
+    shared = open_logs(path, table)
+    assert answers[0]["start"] == 0 and len(answers[0]["metas"]) == 16       # the helper planned all
+    monkeypatch.setattr(f"goalkit.logs.{module}.helper_split", lambda total, skip=False, **kw: None)
+    ref = open_logs(path, table)
+    assert shared.metas == ref.metas and len(shared.metas) == 16
+    np.testing.assert_array_equal(shared.read(0, 16).observations, ref.read(0, 16).observations)

@@ -59,7 +59,7 @@ def test_one_spare_plans_then_reads_and_is_gone_after(tmp_path, small_logs_count
     recipe = demo(tmp_path)
     plans, reads = [], []
     monkeypatch.setattr("goalkit.logs.grouped.start_helper",
-                        lambda source, split, *groups: plans.append(planspawn.start_helper(source, split, *groups))
+                        lambda source, split, *groups, **kw: plans.append(planspawn.start_helper(source, split, *groups, **kw))
                         or plans[-1])
     real_start = readproc.ChunkReader._start
 
@@ -159,3 +159,32 @@ def test_readers_that_want_helpers_start_the_spare_as_they_open(tmp_path, small_
 def test_the_demo_recipe_names_a_layout_the_helpers_serve(tmp_path):
     recipe = demo(tmp_path, episodes=4)
     assert helped_layout(recipe)
+
+
+def test_a_large_request_does_not_wait_for_a_spare_that_is_still_starting(tmp_path):
+    # a pipe holds 64 KiB: a larger request to a process that reads nothing yet (a spare still
+    # importing) is written on a side thread, and the caller goes on at once
+    import subprocess
+    import sys
+    import time
+
+    proc = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(30)"], stdin=subprocess.PIPE,
+                            stdout=subprocess.PIPE, stderr=subprocess.DEVNULL)
+    helper = spare.Spare(proc)
+    try:
+        t0 = time.monotonic()
+        assert helper.send({"call": len, "each": [("x" * (256 << 10),)]})
+        assert time.monotonic() - t0 < 1.0
+        assert helper._sending is not None and helper._sending[0].is_alive()   # still writing
+        small = spare.Spare.start()
+        try:       # one large request then a small one, in order, to a real spare
+            assert small.send({"call": len, "each": [("y" * (256 << 10),)]})
+            assert small.send({"call": len, "each": [("zz",)]})
+            assert small.receive() == 256 << 10 and small.receive() == 2
+        finally:
+            small.close()
+    finally:
+        t0 = time.monotonic()
+        helper.close()                       # the write fails once the process is gone
+        assert time.monotonic() - t0 < 10 and helper._sending is None
+    assert proc.poll() is not None
