@@ -45,6 +45,7 @@ from goalkit.outputs import check_no_overlap, refuse_existing, small_toml
 from goalkit.pipeline.buildfolder import folder_of
 from goalkit.pipeline.sources import layout_texts, sources_provenance, sources_summary
 from goalkit.pipeline.dask_build import DaskRunner
+from goalkit.pipeline.earlydigest import EarlyDigests
 from goalkit.pipeline.inprocess import CHUNK_ROWS, InProcessProducer
 from goalkit.pipeline.plan import make_plan, split_rows, strategy_names
 from goalkit.pipeline.reuse import ReuseProducer
@@ -298,8 +299,10 @@ def run_build(recipe, producer, *, source=None, rows_per_chunk: int | None = Non
     # are opened, when the recipe says they are of a kind that wants them (else, if they do,
     # by the reader as it opens them)
     early = source is None and not producer.sharded and helped_layout(recipe)
-    with spare.scope(log_paths(recipe), early=early):
-        return _run_build(recipe, producer, source, rows_per_chunk, progress, replace)
+    # a sharded build's key needs the logs' digests as soon as the planning ends: taken beside it
+    with spare.scope(log_paths(recipe), early=early), \
+            EarlyDigests(log_paths(recipe) if producer.sharded else ()) as digests:
+        return _run_build(recipe, producer, source, rows_per_chunk, progress, replace, digests)
 
 
 def log_paths(recipe) -> list:
@@ -319,7 +322,7 @@ def helped_layout(recipe) -> bool:
     return doc is not None and doc.get("shape") in ("grouped", "per-file")
 
 
-def _run_build(recipe, producer, source, rows_per_chunk, progress, replace) -> BuildResult:
+def _run_build(recipe, producer, source, rows_per_chunk, progress, replace, digests) -> BuildResult:
     launch = getattr(producer, "launch", None)
     try:
         if launch is not None:   # worker processes start on the other cores while this one plans
@@ -343,7 +346,8 @@ def _run_build(recipe, producer, source, rows_per_chunk, progress, replace) -> B
     out = recipe.output
     # the inputs (file checksums) are read on their own thread, alongside the build
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-inputs") as side:
-        inputs = side.submit(read_inputs, plan, source, with_library=producer.sharded)
+        inputs = side.submit(lambda: read_inputs(plan, source, log_files=digests.log_files(source),
+                                                 with_library=producer.sharded))
         try:
             producer.open(plan, source, chunks, inputs)
             with SetWriter(out.path, plan.columns, chunk_rows=out.chunk_rows, compression=out.compression,

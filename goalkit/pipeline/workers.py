@@ -353,7 +353,15 @@ def warm_up() -> int:
     return os.getpid()
 
 
-def _pool_task(payload_ref, spec, folder, build_key):
+def forget_payload() -> None:
+    """Drop the payload this process loaded, and the plan resolved from it."""
+    _WORKER.clear()
+    _RESOLVED.clear()
+
+
+def pool_task(payload_ref, spec, folder, build_key):
+    """One shard (:func:`run_shard`) with the payload of the file ``payload_ref`` = (path, SHA-256),
+    loaded on the first task (:func:`load_payload`): the task local workers and Dask run."""
     try:
         payload = load_payload(*payload_ref)
     except Exception as exc:  # reported as data, like any failure of the task
@@ -514,7 +522,7 @@ class LocalRunner:
         try:
             for s in specs:
                 try:
-                    by_future[self.pool.submit(_pool_task, self.payload_ref, s, str(folder), build_key)] = s
+                    by_future[self.pool.submit(pool_task, self.payload_ref, s, str(folder), build_key)] = s
                 except (BrokenProcessPool, OSError, RuntimeError):
                     # a worker died while the shards were being handed out: the pool is broken,
                     # or (Python 3.11) its wake-up pipe was closed under submit ("handle is

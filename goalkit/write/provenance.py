@@ -19,23 +19,35 @@ from pathlib import Path
 FILE_GROUPS = (("log_files", "log file"), ("embedding_files", "embedding file"), ("library.files", "library file"))
 
 
-def file_digest(path, block: int = 8 << 20) -> str:
-    """SHA-256 of a file's bytes, read in blocks of ``block`` bytes."""
+def file_digest(path, block: int = 8 << 20, stop=None) -> str | None:
+    """SHA-256 of a file's bytes, read in blocks of ``block`` bytes into one buffer.
+
+    ``stop``, a :class:`threading.Event`: when it is set the reading ends at the next block and
+    None is returned (a digest taken ahead of need, no longer wanted).
+    """
     h = hashlib.sha256()
-    with open(path, "rb") as f:
+    buf = bytearray(block)
+    view = memoryview(buf)
+    with open(path, "rb", buffering=0) as f:
         while True:
-            data = f.read(block)
-            if not data:
+            if stop is not None and stop.is_set():
+                return None
+            n = f.readinto(buf)
+            if not n:
                 return h.hexdigest()
-            h.update(data)
+            h.update(view[:n])
 
 
-def describe_files(paths) -> list[dict]:
-    """Return ``[{"path", "bytes", "sha256"}]`` for each file, in the given order."""
+def describe_files(paths, stop=None) -> list[dict] | None:
+    """Return ``[{"path", "bytes", "sha256"}]`` for each file, in the given order (None when
+    ``stop`` was set meanwhile, see :func:`file_digest`)."""
     out = []
     for p in paths:
         p = Path(p)
-        out.append({"path": str(p.resolve()), "bytes": p.stat().st_size, "sha256": file_digest(p)})
+        digest = file_digest(p, stop=stop)
+        if digest is None:
+            return None
+        out.append({"path": str(p.resolve()), "bytes": p.stat().st_size, "sha256": digest})
     return out
 
 

@@ -123,7 +123,7 @@ def test_dask_workers_hold_the_logs_open_only_while_a_build_runs(gantry, referen
     assert set(client.run(held.holding).values()) == {False}
     runner = DaskRunner(client=client)
     try:
-        runner.start(Payload(plan=None, source=None))
+        runner.start(Payload(plan=None, source=None), tmp_path)
         assert set(client.run(held.holding).values()) == {True}
     finally:
         runner.close()
@@ -131,9 +131,34 @@ def test_dask_workers_hold_the_logs_open_only_while_a_build_runs(gantry, referen
     build(recipe, client=client, max_rows_per_chunk=3000, card=False)
     assert set(client.run(held.holding).values()) == {False}
     assert sha256(out) == ref_digest
+    # the workers loaded the payload from the build folder, and forgot it with the build
+    assert set(client.run(_payload_kept).values()) == {False}
 
 
-def test_dask_workers_let_go_of_the_logs_while_the_last_rows_are_written(dask_client):
+def _payload_kept() -> bool:
+    from goalkit.pipeline import workers
+
+    return bool(workers._WORKER) or bool(workers._RESOLVED)
+
+
+def test_dask_workers_hold_the_logs_from_the_launch(dask_client):
+    # launch() (before the planning) asks each worker to import what a shard needs and to hold
+    # the logs it will read; start() then has nothing more to ask, and close() undoes it
+    from goalkit.logs import held
+
+    client = dask_client
+    runner = DaskRunner(client=client)
+    try:
+        runner.launch()
+        assert runner.warm and runner.holding
+        client.gather(runner.warm)
+        assert set(client.run(held.holding).values()) == {True}
+    finally:
+        runner.close()
+    assert set(client.run(held.holding).values()) == {False}
+
+
+def test_dask_workers_let_go_of_the_logs_while_the_last_rows_are_written(dask_client, tmp_path):
     # release() (the last shard is in) asks the workers to close their logs from a side thread,
     # so the closes overlap the coordinator's writing; close() joins that thread
     from goalkit.logs import held
@@ -141,7 +166,7 @@ def test_dask_workers_let_go_of_the_logs_while_the_last_rows_are_written(dask_cl
     client = dask_client
     runner = DaskRunner(client=client)
     try:
-        runner.start(Payload(plan=None, source=None))
+        runner.start(Payload(plan=None, source=None), tmp_path)
         assert set(client.run(held.holding).values()) == {True}
         runner.release()
         assert runner.releaser is not None and runner.releaser.name == "goalkit-dask-release"
