@@ -128,3 +128,23 @@ def test_holding_stopped_during_a_read_closes_that_file_at_its_end(tmp_path):
         assert not h5.id.valid and open_fds_to(path) == 0
     finally:
         held.hold_logs(False)
+
+
+def test_a_log_is_read_with_a_small_fixed_metadata_cache(tmp_path):
+    # HDF5's metadata cache of a log opened for reading is fixed at METADATA_CACHE_BYTES (never
+    # resized), read back through h5py's own H5Fget_mdc_config / H5Fget_mdc_size
+    import h5py
+
+    from goalkit.logs import access
+
+    path = tmp_path / "small.h5"
+    with h5py.File(path, "w") as f:
+        for e in range(50):
+            f[f"runs/ep{e}/act"] = np.zeros((3, 2), np.float32)
+    with access.open_h5(path) as h5:
+        cfg = h5.id.get_mdc_config()
+        assert cfg.max_size == cfg.min_size == access.METADATA_CACHE_BYTES == 256 << 10
+        assert cfg.incr_mode == cfg.decr_mode == 0
+        for e in range(50):
+            h5[f"runs/ep{e}/act"][()]
+        assert h5.id.get_mdc_size()[0] == 256 << 10      # the cache's size stays fixed

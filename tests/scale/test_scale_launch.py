@@ -132,13 +132,11 @@ def test_dask_workers_hold_the_logs_open_only_while_a_build_runs(gantry, referen
     assert set(client.run(held.holding).values()) == {False}
     assert sha256(out) == ref_digest
     # the workers loaded the payload from the build folder, and forgot it with the build
-    assert set(client.run(_payload_kept).values()) == {False}
-
-
-def _payload_kept() -> bool:
-    from goalkit.pipeline import workers
-
-    return bool(workers._WORKER) or bool(workers._RESOLVED)
+    # (asked through eval: a function of this module would be unpickled on the workers by
+    # importing the test module, whose conftest name collides with other test folders')
+    kept = client.run(eval, "bool(__import__('goalkit.pipeline.workers', fromlist=['_WORKER'])._WORKER)"
+                            " or bool(__import__('goalkit.pipeline.workers', fromlist=['_RESOLVED'])._RESOLVED)")
+    assert set(kept.values()) == {False}
 
 
 def test_dask_workers_hold_the_logs_from_the_launch(dask_client):
