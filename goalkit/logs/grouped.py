@@ -157,7 +157,7 @@ class GroupedSource(EpisodicSource):
                                    key="episode_groups")
             except BaseException:
                 if early is not None:
-                    stop_helper(early[0])
+                    _stop(early[0], early[3])
                 raise
             metas, problems = self._plan_groups(h5, early)
         self._adopt(metas, problems)
@@ -221,9 +221,11 @@ class GroupedSource(EpisodicSource):
                 _stop(helper, frontier)
             raise
         if helper is not None:
-            found = finish_helper(helper, expect=("metas", "owners", "key_dtypes", "start"))
-            if frontier is not None:
-                frontier.close()
+            try:
+                found = finish_helper(helper, expect=("metas", "owners", "key_dtypes", "start"))
+            finally:
+                if frontier is not None:
+                    frontier.close()
             first = None if found is None else found["start"]
             if first is not None and first <= stop and len(found["metas"]) == total - first:
                 self._adopt_helper(h5, seen, stop, found, metas, problems)

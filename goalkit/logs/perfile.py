@@ -97,9 +97,11 @@ class PerFileSource(EpisodicSource):
             raise
         if helper is None:
             return metas, problems
-        found = finish_helper(helper, expect=("metas", "problems", "start"))
-        if frontier is not None:
-            frontier.close()
+        try:
+            found = finish_helper(helper, expect=("metas", "problems", "start"))
+        finally:
+            if frontier is not None:
+                frontier.close()
         first = None if found is None else found["start"]
         if first is None or first > stop or len(found["metas"]) != total - first:
             mine(stop, total)                                   # no clean answer: plan them here

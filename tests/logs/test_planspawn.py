@@ -12,6 +12,7 @@ from the last group down and the meeting point varies from run to run.
 
 from __future__ import annotations
 
+import os
 import time
 
 import h5py
@@ -404,3 +405,28 @@ def test_where_the_parts_overlap_this_process_keeps_its_own(tmp_path, monkeypatc
     ref = open_logs(path, table)
     assert shared.metas == ref.metas and len(shared.metas) == 16
     np.testing.assert_array_equal(shared.read(0, 16).observations, ref.read(0, 16).observations)
+
+
+def _frontier_files() -> set:
+    folder = frontier_mod._folder()
+    return {n for n in os.listdir(folder) if n.startswith(".goalkit-frontier-")}
+
+
+@pytest.mark.parametrize("broken", [False, True])
+def test_no_frontier_file_is_left_behind(tmp_path, helper_on, monkeypatch, broken):
+    # the shared file of the claims goes with the planning, whether it ends well or not (here a
+    # dangling soft link among the episode names fails the checked match after the early
+    # helper was started)
+    eps = make_episodes([3] * 16, seed=22)
+    table = write_grouped(tmp_path / "g.h5", eps)
+    if broken:
+        with h5py.File(tmp_path / "g.h5", "a") as f:
+            f["runs/ep7x"] = h5py.SoftLink("/runs/nowhere")
+    before = _frontier_files()
+    if broken:
+        with pytest.raises(LogError, match="ep7x"):
+            open_logs(tmp_path / "g.h5", table)
+    else:
+        open_logs(tmp_path / "g.h5", table)
+    assert helper_on == [6]
+    assert _frontier_files() <= before
