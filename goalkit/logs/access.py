@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import contextlib
 import math
+import os
 import posixpath
 import zipfile
 import zlib
@@ -55,11 +56,29 @@ def short(exc: BaseException) -> str:
     return text if len(text) <= 200 else text[:197] + "..."
 
 
+_PACKAGE = os.path.dirname(os.path.dirname(os.path.abspath(__file__))) + os.sep
+
+
+def raised_here(exc: BaseException) -> bool:
+    """True when ``exc`` is a TypeError raised by goalkit's own code (its innermost frame is in
+    the goalkit package, not in h5py, numpy or zipfile): a wrong call, a bug of ours, never a
+    damaged file."""
+    if not isinstance(exc, TypeError):
+        return False
+    tb, last = exc.__traceback__, None
+    while tb is not None:
+        last, tb = tb, tb.tb_next
+    name = "" if last is None else last.tb_frame.f_code.co_filename
+    return os.path.isabs(name) and name.startswith(_PACKAGE)     # h5py's Cython frames are relative
+
+
 @contextlib.contextmanager
 def guard(file, key=None, episode=None, what="cannot read the log", rows=None):
     """Turn what h5py, zipfile or zlib raise on a damaged file into one LogError.
 
-    LogErrors pass through unchanged.
+    LogErrors pass through unchanged, and so does a TypeError raised by goalkit's own code
+    (:func:`raised_here`): reported as a damaged file, a bug of ours would send the user to
+    check a good log.
 
     Parameters
     ----------
@@ -75,6 +94,8 @@ def guard(file, key=None, episode=None, what="cannot read the log", rows=None):
     except LogError:
         raise
     except READ_ERRORS as exc:
+        if raised_here(exc):
+            raise
         where = f" (rows {rows[0]}:{rows[1]})" if rows is not None else ""
         raise LogError(f"{what}{where}, the file may be truncated or corrupt ({short(exc)})",
                        file=file, key=key, episode=episode) from exc

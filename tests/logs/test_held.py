@@ -148,3 +148,32 @@ def test_a_log_is_read_with_a_small_fixed_metadata_cache(tmp_path):
         for e in range(50):
             h5[f"runs/ep{e}/act"][()]
         assert h5.id.get_mdc_size()[0] == 256 << 10      # the cache's size stays fixed
+
+
+def test_a_bug_of_ours_is_not_reported_as_a_damaged_log(tmp_path, monkeypatch):
+    # a TypeError raised by goalkit's own code inside a guarded read (here a reader called with
+    # the wrong arguments) propagates as itself: "the file may be truncated or corrupt" would
+    # send the user to check a good log; what h5py raises on a damaged file is still a LogError
+    import h5py
+
+    from goalkit.logs import access, grouped
+
+    eps = make_episodes([3, 2, 4], seed=31)
+    table = write_grouped(tmp_path / "g.h5", eps)
+    monkeypatch.setattr(grouped, "plan_group", lambda *args: None)     # takes no keyword
+    monkeypatch.setattr(grouped.GroupedSource, "_plan_general", lambda self, gid: None)   # wrong arity
+    with pytest.raises(TypeError):
+        open_logs(tmp_path / "g.h5", table)
+    monkeypatch.undo()
+    # h5py's own TypeError on a type it cannot read (an HDF5 time type; h5py 3, h5t.pyx: "No
+    # NumPy equivalent for TypeTimeID exists") is still a one-line LogError naming the episode
+    with h5py.File(tmp_path / "g.h5", "a") as f:
+        del f["runs/ep1/act"]
+        h5py.h5d.create(f["runs/ep1"].id, b"act", h5py.h5t.UNIX_D32LE, h5py.h5s.create_simple((2, 2)))
+    with pytest.raises(LogError) as err:
+        open_logs(tmp_path / "g.h5", table)
+    assert err.value.episode == 1 and "TypeTimeID" in str(err.value)
+    with h5py.File(tmp_path / "g.h5", "r") as f:        # guard itself, around h5py's raise
+        with pytest.raises(LogError, match="truncated or corrupt.*TypeTimeID"):
+            with access.guard(str(tmp_path / "g.h5"), "runs/ep1/act", 1):
+                f["runs/ep1/act"].dtype
