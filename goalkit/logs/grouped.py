@@ -157,7 +157,7 @@ class GroupedSource(EpisodicSource):
                                    key="episode_groups")
             except BaseException:
                 if early is not None:
-                    _stop(early[0], early[3])
+                    stop_helper(early[0], early[3])
                 raise
             metas, problems = self._plan_groups(h5, early)
         self._adopt(metas, problems)
@@ -195,7 +195,7 @@ class GroupedSource(EpisodicSource):
         total = len(self.groups)
         helper, split, frontier = (None, None, None) if early is None else (early[0], early[1], early[3])
         if helper is not None and early[2] != self.groups:     # the checks left out a name: not ours
-            _stop(helper, frontier)
+            stop_helper(helper, frontier)
             helper = frontier = None
         if helper is None:
             split = helper_split(total, self.skip_bad_episodes)
@@ -218,14 +218,10 @@ class GroupedSource(EpisodicSource):
                 mine(0, stop)
         except BaseException:
             if helper is not None:
-                _stop(helper, frontier)
+                stop_helper(helper, frontier)
             raise
         if helper is not None:
-            try:
-                found = finish_helper(helper, expect=("metas", "owners", "key_dtypes", "start"))
-            finally:
-                if frontier is not None:
-                    frontier.close()
+            found = finish_helper(helper, expect=("metas", "owners", "key_dtypes", "start"), frontier=frontier)
             first = None if found is None else found["start"]
             if first is not None and first <= stop and len(found["metas"]) == total - first:
                 self._adopt_helper(h5, seen, stop, found, metas, problems)
@@ -423,18 +419,8 @@ def _start(source, split: int, groups=None):
     """``(helper, frontier)`` planning ``source``'s groups with this process (the frontier None
     when no shared file could be made: the helper then plans ``split ..``), or None."""
     frontier = Frontier.create(len(source.groups if groups is None else groups))
-    helper = start_helper(source, split, groups, frontier=frontier)
-    if helper is None:
-        if frontier is not None:
-            frontier.close()
-        return None
-    return helper, frontier
-
-
-def _stop(helper, frontier) -> None:
-    stop_helper(helper)
-    if frontier is not None:
-        frontier.close()
+    helper = start_helper(source, split, groups, frontier=frontier)     # closes it on failure
+    return None if helper is None else (helper, frontier)
 
 
 def _plan_down(src, h5, seen, frontier, total):

@@ -70,10 +70,8 @@ class PerFileSource(EpisodicSource):
         total = len(self.files)
         split = helper_split(total, self.skip_bad_episodes, seconds_per_item=SECONDS_PER_FILE)
         frontier = None if split is None else Frontier.create(total)
-        helper = None if split is None else start_helper(self, split, frontier=frontier)
-        if helper is None and frontier is not None:
-            frontier.close()
-            frontier = None
+        helper = None if split is None else start_helper(self, split, frontier=frontier)   # closes it on failure
+        frontier = None if helper is None else frontier
         metas, problems = [], []
 
         def mine(start, stop):
@@ -91,17 +89,11 @@ class PerFileSource(EpisodicSource):
                 mine(0, stop)
         except BaseException:
             if helper is not None:
-                stop_helper(helper)
-            if frontier is not None:
-                frontier.close()
+                stop_helper(helper, frontier)
             raise
         if helper is None:
             return metas, problems
-        try:
-            found = finish_helper(helper, expect=("metas", "problems", "start"))
-        finally:
-            if frontier is not None:
-                frontier.close()
+        found = finish_helper(helper, expect=("metas", "problems", "start"), frontier=frontier)
         first = None if found is None else found["start"]
         if first is None or first > stop or len(found["metas"]) != total - first:
             mine(stop, total)                                   # no clean answer: plan them here
@@ -155,7 +147,7 @@ class PerFileSource(EpisodicSource):
             batch(start, len(files))
         return {"metas": [m for part in batches for m in part], "problems": sorted(problems), "start": start}
 
-    def plan_request(self, split: int, groups=None, frontier: str | None = None) -> dict:
+    def plan_request(self, split: int, frontier: str | None = None) -> dict:
         """What the planning helper is sent for files ``split ..`` (with the path of a
         ``frontier``: from the last file down until it meets this process,
         :mod:`goalkit.logs.frontier`)."""

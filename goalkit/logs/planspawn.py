@@ -68,28 +68,37 @@ def start_helper(source, split: int, groups=None, frontier=None):
     """Ask a helper (the build's waiting spare, else a new process) to plan groups ``split ..``
     of ``source`` (a GroupedSource; of ``groups``, a list of its group paths, when given); None
     on failure. With a ``frontier`` (:class:`~goalkit.logs.frontier.Frontier`) the helper plans
-    from the last group downwards until it meets the caller instead (``split`` is then unused)."""
-    if frontier is not None:
-        request = source.plan_request(split, groups, frontier=frontier.path)
-    else:
-        request = source.plan_request(split) if groups is None else source.plan_request(split, groups)
+    from the last group downwards until it meets the caller instead (``split`` is then unused);
+    on failure the frontier is closed here."""
+    args = (split,) if groups is None else (split, groups)
+    request = source.plan_request(*args) if frontier is None else source.plan_request(*args, frontier=frontier.path)
     helper = spare.take()
     if helper is None or not helper.send({"call": type(source).plan_part, "each": [(request,)]}):
+        if frontier is not None:
+            frontier.close()
         return None
     return helper
 
 
-def stop_helper(helper) -> None:
-    """Stop a helper whose answer is no longer wanted (the caller failed or was interrupted)."""
+def stop_helper(helper, frontier=None) -> None:
+    """Stop a helper whose answer is no longer wanted (the caller failed or was interrupted), and
+    close its ``frontier`` if it has one."""
     helper.close()
+    if frontier is not None:
+        frontier.close()
 
 
-def finish_helper(helper, expect=("metas", "owners", "key_dtypes")) -> dict | None:
-    """The helper's answer (a dict with the keys ``expect``), or None if it has none.
+def finish_helper(helper, expect=("metas", "owners", "key_dtypes"), frontier=None) -> dict | None:
+    """The helper's answer (a dict with the keys ``expect``), or None if it has none; its
+    ``frontier``, if it has one, is closed once the answer is in (or the wait failed).
 
     A helper that answered goes back to the build's spare slot, for its chunk reader.
     """
-    found = helper.receive()
+    try:
+        found = helper.receive()
+    finally:
+        if frontier is not None:
+            frontier.close()
     if not isinstance(found, dict) or not set(expect) <= found.keys():
         helper.close()
         return None

@@ -122,37 +122,27 @@ def test_helper_gives_the_serial_plan(tmp_path, helper_on, monkeypatch):
     np.testing.assert_array_equal(shared.read(0, 16).observations, ref.read(0, 16).observations)
 
 
-def test_dataset_shared_across_the_parts_is_refused_as_in_serial(tmp_path, helper_on, monkeypatch):
-    eps = make_episodes([3] * 16, seed=12)
-    table = write_grouped(tmp_path / "g.h5", eps)
-    with h5py.File(tmp_path / "g.h5", "a") as f:       # episode 9 (helper's part) reuses episode 2's
-        del f["runs/ep9/rew"]
-        f["runs/ep9/rew"] = f["runs/ep2/rew"]
-    with pytest.raises(LogError) as err:
-        open_logs(tmp_path / "g.h5", table)
-    assert helper_on == [6]
-    with pytest.raises(LogError) as ref:
-        serial(tmp_path / "g.h5", table, monkeypatch)
-    assert str(err.value) == str(ref.value)
-    assert err.value.episode == 9 and "same dataset as key runs/ep2/rew of episode 2" in str(err.value)
-
-
-def test_dataset_shared_inside_the_helpers_part_is_refused_as_in_serial(tmp_path, helper_on, monkeypatch):
-    # both episodes are in the helper's part; meeting this process, the helper plans from the
-    # last group down, so it reaches the shared dataset from episode 12 before episode 9: the
-    # error must still be the serial one, on episode 12
-    eps = make_episodes([3] * 16, seed=19)
+@pytest.mark.parametrize("seed, first, second, key", [
+    (12, 2, 9, "rew"),     # episode 9 (helper's part) reuses episode 2's (this process's part)
+    # both in the helper's part: meeting this process, the helper plans from the last group
+    # down, so it reaches the shared dataset from episode 12 before episode 9; the error must
+    # still be the serial one, on episode 12
+    (19, 9, 12, "act"),
+])
+def test_dataset_shared_by_two_episodes_is_refused_as_in_serial(tmp_path, helper_on, monkeypatch, seed, first,
+                                                                 second, key):
+    eps = make_episodes([3] * 16, seed=seed)
     table = write_grouped(tmp_path / "g.h5", eps)
     with h5py.File(tmp_path / "g.h5", "a") as f:
-        del f["runs/ep12/act"]
-        f["runs/ep12/act"] = f["runs/ep9/act"]
+        del f[f"runs/ep{second}/{key}"]
+        f[f"runs/ep{second}/{key}"] = f[f"runs/ep{first}/{key}"]
     with pytest.raises(LogError) as err:
         open_logs(tmp_path / "g.h5", table)
     assert helper_on == [6]
     with pytest.raises(LogError) as ref:
         serial(tmp_path / "g.h5", table, monkeypatch)
     assert str(err.value) == str(ref.value)
-    assert err.value.episode == 12 and "same dataset as key runs/ep9/act of episode 9" in str(err.value)
+    assert err.value.episode == second and f"same dataset as key runs/ep{first}/{key} of episode {first}" in str(err.value)
 
 
 def test_problem_in_the_helpers_part_is_named_as_in_serial(tmp_path, helper_on, monkeypatch):
@@ -278,7 +268,7 @@ def test_per_file_helper_that_fails_leaves_the_plan_to_this_process(tmp_path, pe
     answers = []
     real_finish = planspawn.finish_helper
     monkeypatch.setattr("goalkit.logs.perfile.finish_helper",
-                        lambda helper, expect: answers.append(real_finish(helper, expect)) or answers[-1])
+                        lambda helper, expect, **kw: answers.append(real_finish(helper, expect, **kw)) or answers[-1])
     with pytest.raises(LogError) as err:
         open_logs(tmp_path / "eps", table)
     assert per_file_helper == ["killed"] and answers == [None]      # no answer: planned here
