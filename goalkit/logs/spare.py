@@ -298,9 +298,11 @@ def answers(request: dict):
 
 if __name__ == "__main__":
     try:
+        from goalkit.heapkeep import keep_heap_here
         from goalkit.logs.held import hold_logs
 
         hold_logs()            # this process lives for one build: its reads keep the log open
+        keep_heap_here()       # and reuses the memory its earlier reads freed
         serve(sys.stdin.buffer, sys.stdout.buffer)
     except BaseException:                    # noqa: BLE001  the callers do what is left themselves
         sys.exit(1)

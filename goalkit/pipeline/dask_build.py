@@ -17,23 +17,42 @@ import threading
 import uuid
 
 from goalkit.errors import GoalkitError
+from goalkit.heapkeep import hold_heap, release_heap, trim_thread_heap
 from goalkit.logs.held import hold_logs
 from goalkit.pipeline import workers
 from goalkit.pipeline.workers import failure, lost_worker, save_payload, warm_up
 
 
-def warm_up_holding() -> int:
-    """:func:`~goalkit.pipeline.workers.warm_up`, and hold the logs open from one shard to the next
-    (:func:`goalkit.logs.held.hold_logs`) until :func:`end_build`; the worker's pid."""
+def begin_build() -> None:
+    """On a worker, for the time of a build (until :func:`end_build`): hold the logs open from one
+    shard to the next (:func:`goalkit.logs.held.hold_logs`) and keep the memory a shard frees for
+    the next one (:func:`goalkit.heapkeep.hold_heap`: Dask's nanny starts its workers with a
+    64 KiB trim threshold, under which every large array is mapped and zeroed afresh)."""
     hold_logs(True)
+    hold_heap()
+
+
+def warm_up_holding() -> int:
+    """:func:`begin_build`, then :func:`~goalkit.pipeline.workers.warm_up`; the worker's pid."""
+    begin_build()
     return warm_up()
 
 
 def end_build() -> None:
-    """On a worker, when a build is done with it: close the logs it held and forget the build's
-    payload (a long-lived worker keeps nothing of a finished build)."""
+    """On a worker, when a build is done with it: close the logs it held, forget the build's
+    payload and put back the memory settings :func:`begin_build` changed, returning the memory
+    kept to the system (a long-lived worker keeps nothing of a finished build; see
+    :func:`trim_after_build` for the task threads' own heaps)."""
     hold_logs(False)
     workers.forget_payload()
+    release_heap()
+
+
+def trim_after_build() -> bool:
+    """A task run on each worker after :func:`end_build`: give back the free top of the heap of
+    the task thread it runs on (:func:`goalkit.heapkeep.trim_thread_heap`), which the release,
+    run on the worker's event loop, cannot reach."""
+    return trim_thread_heap()
 
 
 class DaskRunner:
@@ -133,11 +152,23 @@ class DaskRunner:
         self.holding = on
         try:
             if on:
-                self.client.run(hold_logs, True)
+                self.client.run(begin_build)
             else:
                 self.client.run(end_build)
+                self._trim_workers()
         except Exception:  # noqa: BLE001  only a speed-up (a worker gone, a closed client)
             pass
+
+    def _trim_workers(self) -> None:
+        """One :func:`trim_after_build` task per worker thread, run whenever the worker is free
+        (not waited for: it only gives memory back)."""
+        from distributed import fire_and_forget
+
+        for address, info in self.client.scheduler_info().get("workers", {}).items():
+            for _ in range(max(1, int(info.get("nthreads", 1)))):
+                fire_and_forget(self.client.submit(trim_after_build, pure=False, workers=[address],
+                                                   allow_other_workers=False,
+                                                   key=f"goalkit-trim-{uuid.uuid4().hex[:12]}"))
 
     def run(self, specs, folder, build_key: str):
         """Submit every shard; yield task outcomes in completion order."""

@@ -44,6 +44,7 @@ from pathlib import Path
 import numpy as np
 
 from goalkit.errors import GoalkitError
+from goalkit.heapkeep import keep_heap_here
 from goalkit.logs.held import hold_logs
 from goalkit.outputs import open_no_follow, write_own_file
 from goalkit.pipeline.buildfolder import GOAL_TABLE_FILE, PAYLOAD_FILE
@@ -284,6 +285,7 @@ def _init_worker(parent: int) -> None:
     signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
     threading.Thread(target=_watch_parent, args=(parent,), daemon=True).start()
     hold_logs()      # a local worker lives for one build: its shards' reads keep the log open
+    keep_heap_here()  # and its shards reuse the memory the previous ones freed
 
 
 def load_payload(payload_path: str, digest: str) -> Payload:

@@ -14,6 +14,7 @@ import numpy as np
 import psutil
 import pytest
 
+from goalkit import heapkeep
 from goalkit.errors import GoalkitError
 from goalkit.pipeline.build import build
 from goalkit.pipeline.buildfolder import PAYLOAD_FILE, folder_of
@@ -121,13 +122,19 @@ def test_dask_workers_hold_the_logs_open_only_while_a_build_runs(gantry, referen
     out = tmp_path / "scale-goals.h5"
     recipe = load_recipe(gantry / "scale-recipe.toml").with_overrides(out=out)
     assert set(client.run(held.holding).values()) == {False}
+    # Dask's nanny starts its workers with a 64 KiB trim threshold (its pre-spawn environment);
+    # the workers keep the memory a shard frees for the next one only while a build runs
+    assert set(client.run(os.environ.get, "MALLOC_TRIM_THRESHOLD_").values()) == {"65536"}
+    assert set(client.run(heapkeep.heap_held).values()) == {False}
     runner = DaskRunner(client=client)
     try:
         runner.start(Payload(plan=None, source=None), tmp_path)
         assert set(client.run(held.holding).values()) == {True}
+        assert set(client.run(heapkeep.heap_held).values()) == {True}
     finally:
         runner.close()
     assert set(client.run(held.holding).values()) == {False}
+    assert set(client.run(heapkeep.heap_held).values()) == {False}
     build(recipe, client=client, max_rows_per_chunk=3000, card=False)
     assert set(client.run(held.holding).values()) == {False}
     assert sha256(out) == ref_digest
@@ -151,9 +158,20 @@ def test_dask_workers_hold_the_logs_from_the_launch(dask_client):
         assert runner.warm and runner.holding
         client.gather(runner.warm)
         assert set(client.run(held.holding).values()) == {True}
+        assert set(client.run(heapkeep.heap_held).values()) == {True}
     finally:
+        since = time.time()
         runner.close()
+    # and one task per worker thread gives back its heap's free top (not waited for by close)
+    deadline = time.monotonic() + 30
+    while time.monotonic() < deadline:
+        trims = [t for t in client.get_task_stream(start=since) if t["key"].startswith("goalkit-trim-")]
+        if len(trims) >= 2:
+            break
+        time.sleep(0.1)
     assert set(client.run(held.holding).values()) == {False}
+    assert set(client.run(heapkeep.heap_held).values()) == {False}
+    assert {t["worker"] for t in trims} == set(client.scheduler_info()["workers"])
 
 
 def test_dask_workers_let_go_of_the_logs_while_the_last_rows_are_written(dask_client, tmp_path):
