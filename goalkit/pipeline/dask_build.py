@@ -13,6 +13,7 @@ shared filesystem).
 
 from __future__ import annotations
 
+import socket
 import threading
 import uuid
 
@@ -53,6 +54,16 @@ def trim_after_build() -> bool:
     the task thread it runs on (:func:`goalkit.heapkeep.trim_thread_heap`), which the release,
     run on the worker's event loop, cannot reach."""
     return trim_thread_heap()
+
+
+def local_addresses() -> set:
+    """The network addresses of this machine (every interface's, loopback included) and its name."""
+    import psutil   # a dependency of dask.distributed, which any use of this module has
+
+    found = {"localhost", socket.gethostname()}
+    for entries in psutil.net_if_addrs().values():
+        found.update(e.address.split("%")[0] for e in entries if e.family in (socket.AF_INET, socket.AF_INET6))
+    return found
 
 
 class DaskRunner:
@@ -116,6 +127,23 @@ class DaskRunner:
             self.holding = bool(self.warm)      # asked of every worker; undone by end_build
         except Exception:  # noqa: BLE001  only a head start: the shards import what they need anyway
             self.warm = []
+
+    def ready(self) -> bool:
+        """True when connected and every worker of the cluster runs on this machine.
+
+        The build then has a worker stand in for the logs' spare helper process while it plans
+        (:class:`~goalkit.pipeline.poolspare.PoolSpare`): the planning helper meets the
+        coordinator through a small shared-memory file (:mod:`goalkit.logs.frontier`), which
+        workers on other machines cannot open, so a cluster of several machines keeps the logs'
+        own spare.
+        """
+        if self.client is None:
+            return False
+        try:
+            hosts = {w.get("host") for w in self.client.scheduler_info().get("workers", {}).values()}
+        except Exception:  # noqa: BLE001  a closed client: no stand-in
+            return False
+        return bool(hosts) and hosts <= local_addresses()
 
     def submit(self, fn, *args):
         """Run ``fn(*args)`` on one of the cluster's workers; a ``distributed.Future``.

@@ -10,11 +10,16 @@ start-up already keep busy). So :meth:`ShardProducer.launch
 <goalkit.pipeline.sharded.ShardProducer.launch>` puts a :class:`PoolSpare` in the spare slot: it
 has the spare's interface (``send``, ``receive``, ``alive``, ``close``, ``started``) and runs each
 request as one task on the runner (``runner.submit``). The logs' code is unchanged: it takes
-"the waiting spare" as before. Only runners with a ``ready()`` method are used, i.e. the local
-pool: a Dask cluster's workers may sit on other machines, and on a one-machine ``LocalCluster``
-the planning part's answer (several MB at 1M transitions) crossing Dask's transport made the
-1M build slower (18.7 s against 16.0-16.9 s without, one run each), so a Dask build keeps the
-logs' own spare.
+"the waiting spare" as before. Only runners with a ``ready()`` method that says yes are used:
+the local pool once launched, and a Dask cluster whose workers all run on this machine (a
+``LocalCluster``; :meth:`DaskRunner.ready <goalkit.pipeline.dask_build.DaskRunner.ready>`). The
+helper meets the coordinator through a claims file in this machine's shared memory
+(:mod:`goalkit.logs.frontier`), which workers on other machines cannot open, so a cluster of
+several machines keeps the logs' own spare. On a ``LocalCluster`` the stand-in was measured
+slower at first (the planning answer crossing Dask's transport, and the worker's allocations
+mapped afresh under the nanny's malloc setting); since the workers keep their heap for the
+time of a build (:mod:`goalkit.heapkeep`) it saves the spare's start-up: 0.3 s (200k
+transitions, 6 rounds) and 0.4 s (1M, 4 rounds) of median wall time.
 
 Anything going wrong (the pool broken, a worker dead, the task failing, an answer that does not
 come back) reads as a failed answer: the caller plans those episodes itself, exactly as when a

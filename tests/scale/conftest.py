@@ -3,11 +3,13 @@
 import hashlib
 import sys
 from pathlib import Path
+from types import SimpleNamespace
 
 import numpy as np
 import pytest
 
 from goalkit.demo import make_demo
+from goalkit.logs import grouped, planspawn, spare
 from goalkit.pipeline.shardfiles import shard_meta
 
 GOALKIT = str(Path(sys.executable).with_name("goalkit"))
@@ -73,3 +75,24 @@ def change_value(path, array, flat_index):
     value = np.frombuffer(bytes(data[start:start + size]), dtype)
     data[start:start + size] = np.nextafter(value, np.inf).astype(dtype).tobytes()
     Path(path).write_bytes(bytes(data))
+
+
+@pytest.fixture()
+def helper_log(gantry, monkeypatch):
+    """The scale logs (240 groups) planned with a helper, as logs of 1,500+ groups are."""
+    monkeypatch.setattr(planspawn, "MIN_GROUPS", 50)
+    monkeypatch.setattr(planspawn, "MIN_GROUPS_COLD", 50)
+    monkeypatch.setattr(spare, "WARM_BYTES", 0)
+    seen = []
+    finish = grouped.finish_helper
+
+    def watched(helper, *args, **kwargs):
+        found = finish(helper, *args, **kwargs)
+        seen.append((type(helper).__name__, found is not None))
+        return found
+
+    monkeypatch.setattr(grouped, "finish_helper", watched)
+    started = []
+    real_start = spare.Spare.start.__func__
+    monkeypatch.setattr(spare.Spare, "start", classmethod(lambda cls: started.append(1) or real_start(cls)))
+    return SimpleNamespace(seen=seen, started=started)

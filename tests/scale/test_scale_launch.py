@@ -18,6 +18,7 @@ from goalkit import heapkeep
 from goalkit.errors import GoalkitError
 from goalkit.pipeline.build import build
 from goalkit.pipeline.buildfolder import PAYLOAD_FILE, folder_of
+from goalkit.pipeline import dask_build
 from goalkit.pipeline.dask_build import DaskRunner
 from goalkit.pipeline.recipe import load_recipe
 from goalkit.pipeline.shardfiles import ShardSpec
@@ -310,3 +311,38 @@ print("done")
     assert done.returncode == 0 and done.stdout == "done\n", done
     assert "dictionary changed size" not in done.stderr
     assert "an ordinary thread's failure" in done.stderr and done.stderr.count("Traceback") == 1
+
+
+def test_a_dask_build_plans_its_helper_part_on_a_worker_of_this_machine(gantry, reference, helper_log, tmp_path,
+                                                                         dask_client, monkeypatch):
+    # The LocalCluster's workers run on this machine: one of them plans the helper's part of the
+    # episode groups (it meets the coordinator through the shared-memory claims file), and no
+    # helper interpreter is started.
+    monkeypatch.delenv("GOALKIT_POOL_HELPER", raising=False)
+    assert DaskRunner(client=dask_client).ready()
+    recipe = load_recipe(gantry / "scale-recipe.toml").with_overrides(out=tmp_path / "dask-pooled.h5")
+    build(recipe, client=dask_client, max_rows_per_chunk=3000, card=False)
+    assert helper_log.seen == [("PoolSpare", True)]
+    assert helper_log.started == []
+    assert sha256(tmp_path / "dask-pooled.h5") == reference[1]
+
+
+def test_a_cluster_with_workers_on_other_machines_keeps_the_logs_own_spare(gantry, reference, helper_log, tmp_path,
+                                                                          dask_client, monkeypatch):
+    # Workers elsewhere cannot open the claims file in this machine's shared memory: the logs'
+    # own spare helper plans the helper's part. (The workers' addresses are made foreign by
+    # taking this machine's own off the list.)
+    monkeypatch.delenv("GOALKIT_POOL_HELPER", raising=False)
+    monkeypatch.setattr(dask_build, "local_addresses", lambda: {"198.51.100.7"})
+    assert not DaskRunner(client=dask_client).ready()
+    recipe = load_recipe(gantry / "scale-recipe.toml").with_overrides(out=tmp_path / "dask-spared.h5")
+    build(recipe, client=dask_client, max_rows_per_chunk=3000, card=False)
+    assert helper_log.seen == [("Spare", True)] and helper_log.started == [1]
+    assert sha256(tmp_path / "dask-spared.h5") == reference[1]
+
+
+def test_this_machines_addresses_include_loopback_and_its_name():
+    import socket
+
+    found = dask_build.local_addresses()
+    assert {"127.0.0.1", "localhost", socket.gethostname()} <= found

@@ -136,27 +136,6 @@ def test_a_pool_stand_in_counts_its_start_up_from_the_pool_launch(monkeypatch):
     assert warm < cold
 
 
-@pytest.fixture()
-def helper_log(gantry, monkeypatch):
-    """The scale logs (240 groups) planned with a helper, as logs of 1,500+ groups are."""
-    monkeypatch.setattr(planspawn, "MIN_GROUPS", 50)
-    monkeypatch.setattr(planspawn, "MIN_GROUPS_COLD", 50)
-    monkeypatch.setattr(spare, "WARM_BYTES", 0)
-    seen = []
-    finish = grouped.finish_helper
-
-    def watched(helper, *args, **kwargs):
-        found = finish(helper, *args, **kwargs)
-        seen.append((type(helper).__name__, found is not None))
-        return found
-
-    monkeypatch.setattr(grouped, "finish_helper", watched)
-    started = []
-    real_start = spare.Spare.start.__func__
-    monkeypatch.setattr(spare.Spare, "start", classmethod(lambda cls: started.append(1) or real_start(cls)))
-    return SimpleNamespace(seen=seen, started=started)
-
-
 def test_a_sharded_build_plans_its_helper_part_on_a_worker(gantry, reference, helper_log, tmp_path, monkeypatch):
     monkeypatch.delenv("GOALKIT_POOL_HELPER", raising=False)
     recipe = load_recipe(gantry / "scale-recipe.toml").with_overrides(out=tmp_path / "pooled.h5")
