@@ -26,7 +26,7 @@ from goalkit.errors import DatasetError, GoalkitError
 from goalkit.logs import held, spare
 from goalkit.pipeline import poolspare
 from goalkit.pipeline.buildfolder import BuildFolder, build_key
-from goalkit.pipeline.shardfiles import ShardError, check_shard, plan_shards, read_shard
+from goalkit.pipeline.shardfiles import ReadBuffers, ShardError, check_shard, plan_shards, read_shard
 from goalkit.pipeline.workers import HOST, make_payload
 from goalkit.write.writer import OutputWriteError, os_reason
 
@@ -76,6 +76,7 @@ class ShardProducer:
         self.written = {}      # shard index -> (sha256, bytes) its worker reported in this run
         self.holds = False     # this process holds its logs open for the build's planning
         self.closer = None     # the thread closing them
+        self.buffers = None    # the shard files' read buffers (ReadBuffers) while rows() runs
 
     def launch(self) -> None:
         """Start the runner's workers before the build plans (when the runner can).
@@ -136,6 +137,7 @@ class ShardProducer:
         pending = [s for s in self.chunks if s.index not in self.ready]
         self.cursor = 0
         self._let_go(wait=False)     # planned and written no more: the logs close while the shards run
+        self.buffers = ReadBuffers()   # shard files are read into buffers used again (no page faults)
         with ThreadPoolExecutor(max_workers=1, thread_name_prefix="goalkit-shard-read") as reader:
             self.reader, self.ahead = reader, {}
             try:
@@ -161,13 +163,13 @@ class ShardProducer:
             finally:
                 for fut in self.ahead.values():
                     fut.cancel()
-                self.reader, self.ahead = None, {}
+                self.reader, self.ahead, self.buffers = None, {}, None
 
     def _read(self, spec):
         # a shard its worker wrote in this run, on this host: its digest and size as reported
         # (the bytes are not hashed twice); a reused one: its whole SHA-256 is checked
         return read_shard(self.folder.path, spec, self.key, self.columns, defer=True,
-                          written=self.written.get(spec.index))
+                          written=self.written.get(spec.index), buffers=self.buffers)
 
     def _assembled(self, count):
         """The next shards in order whose files are ready (the one after, if ready, read meanwhile)."""
