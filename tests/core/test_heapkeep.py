@@ -55,23 +55,38 @@ PROBE = textwrap.dedent("""
         else:
             seen.setdefault("faults", []).append(faults())
 
-    # steps run on the main thread, or with "@thread" on a thread of their own, one after the
-    # other (as on a Dask worker, whose tasks run on a thread of their own with its own heap)
+    # steps run on the main thread, or with "@worker" on one long-lived thread of its own, as a
+    # Dask worker's tasks run on its executor thread (with a heap of its own)
+    import queue
+    jobs, done = queue.Queue(), queue.Queue()
+
+    def worker():
+        while True:
+            job = jobs.get()
+            if job is None:
+                return
+            step(job, seen)
+            done.put(job)
+
     steps, seen = json.loads(sys.argv[1]), {}
+    thread = threading.Thread(target=worker)
+    thread.start()
     for item in steps:
         name, _, where = item.partition("@")
-        if where == "thread":
-            t = threading.Thread(target=step, args=(name, seen))
-            t.start(); t.join()
+        if where == "worker":
+            jobs.put(name)
+            done.get()
         else:
             step(name, seen)
+    jobs.put(None)
+    thread.join()
     print(json.dumps(seen))
 """)
 
 
 def _probe(steps, env, threaded=False) -> dict:
     if threaded:
-        steps = [f"{s}@thread" if "@" not in s else s for s in steps]
+        steps = [f"{s}@worker" if "@" not in s else s for s in steps]
     base = {k: v for k, v in os.environ.items()
             if not k.startswith("MALLOC_") and k not in ("GLIBC_TUNABLES", "GOALKIT_KEEP_HEAP")}
     out = subprocess.run([sys.executable, "-c", PROBE, json.dumps(steps)],
@@ -136,11 +151,10 @@ def test_our_own_processes_keep_their_heap_for_good_unless_the_user_set_malloc()
 
 
 def test_after_the_release_the_task_thread_gives_back_what_its_heap_kept():
-    # As on a Dask worker: the shards run on a task thread, the release comes from another
-    # thread (the event loop), then a small task runs on the task thread (goalkit's
-    # trim_after_build). glibc hands an exited thread's heap to the next new thread, so
-    # consecutive "@thread" steps share one heap.
-    res = _probe(["hold", "trim@thread", "count@thread", "rss", "release", "trim@thread", "rss"], DASK_NANNY)
+    # As on a Dask worker: the shards run on the executor thread, the release comes from another
+    # thread (the event loop, here the main thread), then goalkit's small trim task runs on the
+    # executor thread (dask_build.trim_after_build).
+    res = _probe(["hold", "trim@worker", "count@worker", "rss", "release", "trim@worker", "rss"], DASK_NANNY)
     assert res["hold"] is True and res["release"] is True
     assert res["trim"] == [False, True]                       # refused while the heap is held
     assert res["faults"][0] <= 0.05 * PAGES_PER_ROUND          # held while the task thread worked
