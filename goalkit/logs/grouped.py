@@ -31,7 +31,8 @@ from goalkit.logs.groupplan import plan_group, plan_keys
 from goalkit.logs.groupread import read_groups, read_plan
 from goalkit.logs.held import file_identity, open_log
 from goalkit.logs.naming import natural_sorted
-from goalkit.logs.planspawn import finish_helper, groups_digest, helper_split, start_helper, stop_helper
+from goalkit.logs.planspawn import (finish_helper, groups_digest, helper_split, let_go_if_unneeded, start_helper,
+                                    stop_helper)
 
 
 def linked(group, name: str, file, path: str | None = None):
@@ -220,6 +221,8 @@ class GroupedSource(EpisodicSource):
             if helper is not None:
                 stop_helper(helper, frontier)
             raise
+        if helper is not None and let_go_if_unneeded(helper, frontier, stop, total):
+            helper = None                                      # it was left nothing to plan
         if helper is not None:
             found = finish_helper(helper, expect=("metas", "owners", "key_dtypes", "start"), frontier=frontier)
             first = None if found is None else found["start"]

@@ -22,7 +22,8 @@ from goalkit.logs.episodic import EpisodicSource, join_parts, read_episode
 from goalkit.logs.frontier import Frontier, plan_downwards, plan_upwards
 from goalkit.logs.naming import natural_sorted
 from goalkit.logs.npzfile import NpzArrays
-from goalkit.logs.planspawn import finish_helper, groups_digest, helper_split, start_helper, stop_helper
+from goalkit.logs.planspawn import (finish_helper, groups_digest, helper_split, let_go_if_unneeded, start_helper,
+                                    stop_helper)
 
 #: Planning cost per episode file, in seconds (the helper's share is sized by it).
 SECONDS_PER_FILE = 170e-6
@@ -91,7 +92,7 @@ class PerFileSource(EpisodicSource):
             if helper is not None:
                 stop_helper(helper, frontier)
             raise
-        if helper is None:
+        if helper is None or let_go_if_unneeded(helper, frontier, stop, total):
             return metas, problems
         found = finish_helper(helper, expect=("metas", "problems", "start"), frontier=frontier)
         first = None if found is None else found["start"]

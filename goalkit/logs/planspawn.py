@@ -88,6 +88,22 @@ def stop_helper(helper, frontier=None) -> None:
         frontier.close()
 
 
+def let_go_if_unneeded(helper, frontier, stop: int, total: int) -> bool:
+    """Stop ``helper`` without waiting for its answer when nothing is left for it; True if so.
+
+    With a ``frontier``, the caller planned up to ``stop``: when that is every episode
+    (``total``), the helper found them all claimed and plans nothing. A stand-in without a
+    process of its own (a build's worker, :class:`goalkit.pipeline.poolspare.PoolSpare`, whose
+    task may wait behind a busy cluster's other work) is then let go at once instead of waited
+    for. A spare process is still waited for (it answers as soon as it has started, and goes
+    back to the build's spare slot for the chunk reader).
+    """
+    if frontier is None or stop < total or getattr(helper, "proc", None) is not None:
+        return False
+    stop_helper(helper, frontier)
+    return True
+
+
 def finish_helper(helper, expect=("metas", "owners", "key_dtypes"), frontier=None) -> dict | None:
     """The helper's answer (a dict with the keys ``expect``), or None if it has none; its
     ``frontier``, if it has one, is closed once the answer is in (or the wait failed).

@@ -420,3 +420,40 @@ def test_no_frontier_file_is_left_behind(tmp_path, helper_on, monkeypatch, broke
         open_logs(tmp_path / "g.h5", table)
     assert helper_on == [6]
     assert _frontier_files() <= before
+
+
+@pytest.mark.parametrize("shape", ["grouped", "per-file"])
+def test_a_stand_in_left_nothing_to_plan_is_not_waited_for(tmp_path, monkeypatch, shape):
+    # A build's worker standing in for the spare (a PoolSpare) whose task never starts, as on a
+    # cluster busy with other work: this process plans every group, and returns at once instead
+    # of waiting for an answer that has nothing in it; the queued task is cancelled.
+    from concurrent.futures import Future
+    from types import SimpleNamespace
+
+    from goalkit.logs import spare
+    from goalkit.pipeline.poolspare import PoolSpare
+
+    module = "grouped" if shape == "grouped" else "perfile"
+    monkeypatch.setattr(planspawn, "cpus", lambda: 2)
+    monkeypatch.setattr(f"goalkit.logs.{module}.helper_split", lambda total, skip=False, **kw: 6)
+    queued = []
+    runner = SimpleNamespace(broken=False, submit=lambda fn, *args: queued.append(Future()) or queued[-1])
+    eps = make_episodes([3, 1, 5, 2, 4, 6, 2, 3, 1, 4, 5, 2, 3, 2, 1, 4], seed=23)
+    path = tmp_path / ("g.h5" if shape == "grouped" else "eps")
+    table = write_grouped(path, eps, fields=True) if shape == "grouped" else write_per_file(path, eps)
+    result = {}
+
+    def plan():
+        with spare.scope([], early=False):
+            spare.give_back(PoolSpare(runner, every=0.05))
+            result["log"] = open_logs(path, table)
+
+    import threading
+    worker = threading.Thread(target=plan, daemon=True)
+    worker.start()
+    worker.join(timeout=30)
+    assert not worker.is_alive(), "the planning waited for a helper that had nothing to plan"
+    assert len(queued) == 1 and queued[0].cancelled()
+    monkeypatch.setattr(f"goalkit.logs.{module}.helper_split", lambda total, skip=False, **kw: None)
+    ref = open_logs(path, table)
+    assert result["log"].metas == ref.metas and len(ref.metas) == 16
