@@ -2,6 +2,7 @@
 
 import hashlib
 import sys
+import time
 from pathlib import Path
 from types import SimpleNamespace
 
@@ -92,6 +93,17 @@ def helper_log(gantry, monkeypatch):
         return found
 
     monkeypatch.setattr(grouped, "finish_helper", watched)
+    # the helper meets this process where they meet; so that it surely plans a part of these
+    # few groups, this process waits (up to 30 s) until the helper has claimed a first batch
+    real_upwards = grouped.plan_upwards
+
+    def after_the_helpers_first_claim(frontier, start, plan):
+        first, deadline = frontier.high(), time.monotonic() + 30
+        while frontier.high() == first and time.monotonic() < deadline:
+            time.sleep(0.002)
+        return real_upwards(frontier, start, plan)
+
+    monkeypatch.setattr(grouped, "plan_upwards", after_the_helpers_first_claim)
     started = []
     real_start = spare.Spare.start.__func__
     monkeypatch.setattr(spare.Spare, "start", classmethod(lambda cls: started.append(1) or real_start(cls)))
