@@ -33,6 +33,7 @@ from __future__ import annotations
 
 import contextlib
 import ctypes
+import functools
 import os
 import threading
 
@@ -61,8 +62,10 @@ _lock = threading.Lock()
 _restore: list = []          # the trim threshold to put back while a heap is held
 
 
+@functools.cache
 def _libc():
-    """glibc's C library of this process, or None (another C library, or none found)."""
+    """glibc's C library of this process, or None (another C library, or none found); looked up
+    once."""
     try:
         if not (os.confstr("CS_GNU_LIBC_VERSION") or "").startswith("glibc"):
             return None

@@ -300,8 +300,8 @@ def run_build(recipe, producer, *, source=None, rows_per_chunk: int | None = Non
     # by the reader as it opens them)
     early = source is None and not producer.sharded and helped_layout(recipe)
     # a sharded build's key needs the logs' digests as soon as the planning ends: taken beside it
-    with spare.scope(log_paths(recipe), early=early), \
-            EarlyDigests(log_paths(recipe) if producer.sharded else ()) as digests:
+    paths = log_paths(recipe)
+    with spare.scope(paths, early=early), EarlyDigests(paths if producer.sharded else ()) as digests:
         return _run_build(recipe, producer, source, rows_per_chunk, progress, replace, digests)
 
 
