@@ -404,6 +404,7 @@ class LocalRunner:
         self.launched_at = None    # time.monotonic() when launch() started the processes
         self.starter = None        # the thread starting them (see launch)
         self.start_error = None    # what it raised, for the pool's next use
+        self._launching = threading.Lock()   # launch() from several threads starts one pool
 
     def launch(self) -> None:
         """Start the worker processes now, without a payload (they import what a task needs).
@@ -414,13 +415,17 @@ class LocalRunner:
         for the server to import :data:`WARM_MODULES`, about 0.15 s), and every later use of
         the pool (:meth:`submit`, :meth:`run`, :meth:`close`, ...) waits for that thread first.
         A failure to start them is raised by that later use. Idempotent; :meth:`start` calls it
-        when the build did not.
+        when the build did not. Thread-safe: a caller that finds the launch under way waits until
+        the starting thread exists and has started, so that its next use can wait for it.
         """
+        with self._launching:
+            if self.pool is None:
+                self._launch()
+
+    def _launch(self) -> None:
         import multiprocessing
         from concurrent.futures import ProcessPoolExecutor
 
-        if self.pool is not None:
-            return
         self.launched_at = time.monotonic()
         self.method = start_method()
         context = multiprocessing.get_context(self.method)

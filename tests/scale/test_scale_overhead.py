@@ -260,3 +260,36 @@ def test_a_callers_own_fork_server_is_left_alone(monkeypatch):
     finally:
         context.set_forkserver_preload([])
         workers._stop_fork_server(None)
+
+
+def test_a_launch_under_way_is_waited_for_by_another_threads_submit(monkeypatch):
+    # A pool stand-in submits from a thread of its own ("goalkit-pool-send") and may be first
+    # to launch the pool; a second thread's submit meanwhile must wait until the starting thread
+    # exists and has started (it once joined a thread not yet started, or skipped the wait and
+    # submitted ahead of the workers' warm-up). The launch is slowed to widen that window.
+    from goalkit.pipeline import workers
+
+    real = workers._start_all_at_once
+
+    def slow(pool):
+        time.sleep(0.3)
+        real(pool)
+
+    monkeypatch.setattr(workers, "_start_all_at_once", slow)
+    errors, warmed_before_second = [], []
+    with LocalRunner(1) as runner:
+        def first():
+            try:
+                runner.submit(math.sqrt, 4.0).result(timeout=60)
+            except Exception as exc:        # noqa: BLE001  reported below
+                errors.append(exc)
+
+        a = threading.Thread(target=first)
+        a.start()
+        time.sleep(0.1)                     # the first thread is inside the launch now
+        fut = runner.submit(math.sqrt, 9.0)
+        warmed_before_second.append(len(runner.warm))
+        assert fut.result(timeout=60) == 3.0
+        a.join(timeout=60)
+    assert errors == []
+    assert warmed_before_second == [1]      # the warm-up went first, as for a single caller
