@@ -12,7 +12,7 @@ import sys
 import click
 
 from goalkit import __version__
-from goalkit.cli_support import EXIT_INTERRUPTED, run_guarded
+from goalkit.cli_support import EXIT_INTERRUPTED, forget_caught_interrupt, run_guarded
 
 #: command name -> "module:function" (a click.Command); help text shown in the listing.
 COMMANDS = {
@@ -58,6 +58,7 @@ class LazyGroup(click.Group):
             sys.exit(exc.exit_code)
         except click.Abort:  # Ctrl-C before a command started
             click.echo("goalkit: interrupted; nothing was written", err=True)
+            forget_caught_interrupt()
             sys.exit(EXIT_INTERRUPTED)
         sys.exit(rv if isinstance(rv, int) else 0)
 

@@ -108,7 +108,22 @@ def _leave(status: int, line: str, exc: BaseException) -> None:
         sys.stdout.flush()
         traceback.print_exception(exc, file=sys.stderr)
     click.echo(line, err=True)
+    if status == EXIT_INTERRUPTED:
+        forget_caught_interrupt()
     sys.exit(status)
+
+
+def forget_caught_interrupt() -> None:
+    """Make the interpreter's exit status the one asked for after a Ctrl-C that was handled.
+
+    CPython remembers a KeyboardInterrupt that escaped code run by ``exec`` or ``eval`` of a
+    string (a dataclass or namedtuple being made by a module imported at that moment, say) even
+    when a caller caught it, and at exit then kills itself with SIGINT instead of returning the
+    status given to ``sys.exit`` (a parent sees -2, not 130). Running a string again clears
+    that memory (CPython 3.11, ``Python/pythonrun.c``: ``run_eval_code_obj`` resets
+    ``_Py_UnhandledKeyboardInterrupt`` before it runs the code).
+    """
+    exec("pass", {})  # noqa: S102  a constant string: see the docstring
 
 
 #: Set when Python swallowed a KeyboardInterrupt (raised inside a weakref callback or __del__,
