@@ -47,8 +47,13 @@ per second of it: near 0 means both cores were the case's. The machine is shared
 jobs: wall-clock figures move with their load; the ratios of cases measured in the same run,
 and the CPU seconds, are the figures to compare. With ``--repeats N`` every case but the phases
 runs N times, the rounds interleaved (build, floor, script, workers, Dask, ...), and each case
-reports its median run; ``quiet_*`` ratios use only the runs during which the rest of the
-machine kept fewer than :data:`QUIET_CPUS` CPUs busy.
+reports its median run (of an even number, the slower of the two middle ones); ``quiet_*``
+ratios use only the runs during which the rest of the machine kept fewer than
+:data:`QUIET_CPUS` CPUs busy. Every round opens and closes with the one-CPU build, and the
+``paired_*`` speed-ups take each round's cases against the mean of those two runs, then the
+median over rounds: this host's speed drifts by 10-25 % over minutes (the same one-CPU build
+took 5.9 to 7.9 s within a few minutes, with no steal time and no other load), and a round's
+cases share its drift where the medians of separate cases do not. Both are reported.
 
 Targets (issue 14): build >= 1.5x the script's speed and >= 0.8x the floor's; peak RSS at 1M
 <= 1.2x that at 200k; workers=2 and Dask with 2 workers >= 1.6x one process on one CPU when
@@ -413,6 +418,30 @@ def logs(folder: Path, episodes: int) -> dict:
 QUIET_CPUS = 0.15
 
 
+def paired_ratios(rounds: list, names: list) -> tuple[dict, dict]:
+    """Speed-ups over the one-CPU build, paired within each round.
+
+    ``rounds`` holds, per round, each case's wall seconds in the order run (``build-1cpu``
+    twice: first and last). A round's baseline is the mean of its two one-CPU runs, and each
+    case's speed-up is that baseline over the case's seconds; the reported figure is the median
+    over rounds (the middle one, or the mean of the two middle ones).
+
+    Returns
+    -------
+    (dict, dict)
+        ``paired_<case>_speed_over_1cpu_wall`` -> median speed-up, and case -> the per-round list.
+    """
+    import statistics
+
+    per_round = {n: [] for n in names}
+    for r in rounds:
+        base = statistics.fmean(r["build-1cpu"])
+        for n in names:
+            per_round[n].append(base / r[n][0])
+    return ({f"paired_{n.replace('-', '_')}_speed_over_1cpu_wall": statistics.median(v) for n, v in per_round.items()},
+            per_round)
+
+
 def measure(label: str, folder: Path, episodes: int, workers: list[int], phases: bool, dask: list[int],
             repeats: int = 1, only_scaling: bool = False) -> dict:
     info = logs(folder, episodes)
@@ -440,11 +469,18 @@ def measure(label: str, folder: Path, episodes: int, workers: list[int], phases:
         scaling += [("floor", ("--built", built), out), ("script", (), out)]
     scaling += [(f"build-workers-{w}", ("--workers", str(w)), out) for w in workers]
     scaling += [(f"dask-{w}", ("--workers", str(w)), out) for w in dask]
+    # the one-CPU baseline is run again at the end of every round: each round's speed-ups are
+    # taken against the mean of the two runs that bracket it (see paired_ratios)
+    scaling.append(scaling[0])
     runs = {name: [] for name, _, _ in scaling}
+    rounds = []
     for _ in range(max(1, repeats)):
+        this = {}
         for name, extra, path in scaling:
             case(name, *extra, out_path=path)
             runs[name].append(cases[name])
+            this.setdefault(name, []).append(cases[name]["seconds"])
+        rounds.append(this)
     for name, got in runs.items():
         got = sorted(got, key=lambda r: r["seconds"])
         cases[name] = dict(got[len(got) // 2], runs=[{k: r[k] for k in ("seconds", "cpu_seconds", "others_cpus_busy",
@@ -482,6 +518,12 @@ def measure(label: str, folder: Path, episodes: int, workers: list[int], phases:
             ratios[f"quiet_{name.replace('-', '_')}_speed_over_1cpu_wall"] = q1 / quiet[name]
     if not only_scaling and quiet["script"] is not None and quiet["build"] is not None:
         ratios["quiet_build_speed_over_script_wall"] = quiet["script"] / quiet["build"]
+    paired, per_round = paired_ratios(rounds, [n for n in runs if n not in ("build-1cpu", "script", "floor")])
+    ratios.update(paired)
+    result["per_round_speed_over_1cpu"] = per_round
+    result["paired_rule"] = ("paired_*: the median over rounds of each round's speed-up, against the mean of the "
+                             "two one-CPU runs that open and close that round (the host's speed drifts between "
+                             "rounds; a round's cases share its drift)")
     result["quiet_seconds"] = quiet
     result["quiet_rule"] = f"median over the runs during which the rest of the machine kept < {QUIET_CPUS} CPUs busy"
     digests = {n: c["sha256"] for n, c in cases.items() if "sha256" in c}
@@ -497,6 +539,10 @@ def measure(label: str, folder: Path, episodes: int, workers: list[int], phases:
           + "".join(f", workers={w} {ratios[f'workers_{w}_speed_over_1cpu_wall']:.2f}x" for w in workers)
           + "".join(f", Dask {w} workers {ratios[f'dask_{w}_speed_over_1cpu_wall']:.2f}x" for w in dask)
           + f"; same bytes: {result['same_bytes']}", flush=True)
+    print(f"{label:>5} paired speed-up over one process on 1 CPU (median over rounds): "
+          + ", ".join(f"{k[len('paired_'):-len('_speed_over_1cpu_wall')]} {v:.2f}x" for k, v in paired.items())
+          + "; per round: " + "; ".join(f"{n} " + "/".join(f"{x:.2f}" for x in v) for n, v in per_round.items()),
+          flush=True)
     print(f"{label:>5} on free cores (runs with others < {QUIET_CPUS} CPUs busy; median s): "
           + ", ".join(f"{n} {'-' if v is None else f'{v:.2f}'}" for n, v in quiet.items()), flush=True)
     return result
