@@ -114,8 +114,10 @@ def make_logs(path: Path, transitions: int, seed: int = 0) -> dict:
 def run_child(code: str) -> dict:
     """Run ``code`` in a fresh interpreter; it prints one JSON line; add its peak RSS."""
     wrapper = code + textwrap.dedent("""
-        import resource, json as _j
-        RESULT["peak_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+        import json as _j
+        # this image's own peak (VmHWM, proc(5)); ru_maxrss would carry the parent's (tools/peakrss.py)
+        RESULT["peak_rss_mb"] = [int(l.split()[1]) / 1024 for l in open("/proc/self/status")
+                                 if l.startswith("VmHWM:")][0]
         print(_j.dumps(RESULT))
     """)
     out = subprocess.run([sys.executable, "-c", wrapper], capture_output=True, text=True)

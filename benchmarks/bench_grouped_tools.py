@@ -53,6 +53,7 @@ sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(HERE))
 
 from tools.bytecode import compile_package  # noqa: E402
+from tools.peakrss import peak_rss_mb as image_peak_rss_mb  # noqa: E402
 
 from bench_grouped import cpu_seconds, logs, machine_cpu_seconds  # noqa: E402  (the same demo logs, reused by size)
 
@@ -137,8 +138,8 @@ def child(args) -> None:
             res = cli_case(argv)
         finally:
             sys.stdout = saved
-    me = resource.getrusage(resource.RUSAGE_SELF)
-    res.update(seconds=time.perf_counter() - t0, cpu_seconds=cpu_seconds() - c0, peak_rss_mb=me.ru_maxrss / 1024)
+    # this image's own peak (VmHWM): ru_maxrss would carry the benchmark parent's (tools/peakrss.py)
+    res.update(seconds=time.perf_counter() - t0, cpu_seconds=cpu_seconds() - c0, peak_rss_mb=image_peak_rss_mb())
     print(json.dumps(res))
 
 
