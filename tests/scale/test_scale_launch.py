@@ -153,6 +153,9 @@ def test_dask_workers_hold_the_logs_from_the_launch(dask_client):
     from goalkit.logs import held
 
     client = dask_client
+    # the scheduler records tasks only once its task-stream plugin is in (the first call adds
+    # it); the trim tasks are tiny and could finish before a call made after close()
+    client.get_task_stream(start=time.time())
     runner = DaskRunner(client=client)
     try:
         runner.launch()
