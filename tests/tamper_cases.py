@@ -248,7 +248,8 @@ def tamper_suite(path, full=False):
 
     Every column edit is applied to every column of the train split and to the columns of
     :data:`RESEALED_COLUMNS` of the validation split, and is worth a resealed variant for those
-    columns; with ``full``, to every column of both splits, each also resealed.
+    columns; with ``full``, to every column of both splits, each also resealed. Every second
+    leaf of the summary is changed only with ``full``.
     """
     with h5py.File(path, "r") as f:
         attrs = {k: f.attrs[k] for k in f.attrs}
@@ -266,7 +267,9 @@ def tamper_suite(path, full=False):
         doc = json.loads(attrs[name])
         cases.append((f"attr {name}: not JSON", _set_attr(name, "{not json"), False))
         cases.append((f"attr {name}: JSON but not an object", _set_attr(name, "[1, 2]"), False))
-        for at in json_leaves(doc):
+        for n, at in enumerate(json_leaves(doc)):
+            if not full and name == "summary" and n % 2:
+                continue   # the summary's numbers repeat one pattern per split and strategy: half by default
             cases.append((f"{name}.{'.'.join(map(str, at))}: changed", _edit_json(name, at), name != "manifest"))
         for key in sorted(doc):
             cases.append((f"{name}.{key}: deleted", _drop_key(name, key), name != "manifest"))
