@@ -113,11 +113,11 @@ def make_logs(path: Path, transitions: int, seed: int = 0) -> dict:
 
 def run_child(code: str) -> dict:
     """Run ``code`` in a fresh interpreter; it prints one JSON line; add its peak RSS."""
-    wrapper = code + textwrap.dedent("""
-        import json as _j
-        # this image's own peak (VmHWM, proc(5)); ru_maxrss would carry the parent's (tools/peakrss.py)
-        RESULT["peak_rss_mb"] = [int(l.split()[1]) / 1024 for l in open("/proc/self/status")
-                                 if l.startswith("VmHWM:")][0]
+    wrapper = code + textwrap.dedent(f"""
+        import json as _j, sys as _s
+        _s.path.insert(0, {str(HERE)!r})
+        from tools.peakrss import peak_rss_mb   # this image's own peak; ru_maxrss carries the parent's
+        RESULT["peak_rss_mb"] = peak_rss_mb()
         print(_j.dumps(RESULT))
     """)
     out = subprocess.run([sys.executable, "-c", wrapper], capture_output=True, text=True)
