@@ -319,3 +319,71 @@ def tamper_suite(path, full=False):
 def f_attr(path, group, name):
     with h5py.File(path, "r") as f:
         return f[group].attrs[name]
+
+
+#: Seconds one verify may take on the small set before it counts as a hang.
+HANG_SECONDS = 20
+
+
+class _Hang(Exception):
+    pass
+
+
+def _alarm(*_):
+    raise _Hang()
+
+
+def outcome(path):
+    """(status, detail) of verify on ``path``: 0 consistent, 1 failures, 2 DatasetError, "traceback", "hang".
+
+    Runs in the main thread (the hang guard is SIGALRM).
+    """
+    import signal
+
+    from goalkit.errors import GoalkitError
+    from goalkit.write.verify import verify_set
+
+    old = signal.signal(signal.SIGALRM, _alarm)
+    signal.alarm(HANG_SECONDS)
+    try:
+        report = verify_set(path, max_failures=3)
+        return (0 if report.ok else 1), report.failures
+    except GoalkitError as exc:
+        return 2, str(exc)
+    except _Hang:
+        return "hang", ""
+    except Exception as exc:  # a traceback for the user
+        return "traceback", f"{type(exc).__name__}: {exc}"
+    finally:
+        signal.alarm(0)
+        signal.signal(signal.SIGALRM, old)
+
+
+def run_cases(demo_set, full: bool, workdir, part: int = 0, parts: int = 1) -> list:
+    """Apply every ``parts``-th case of :func:`tamper_suite` from ``part`` on, each to its own copy of
+    ``demo_set`` under ``workdir`` (as is, and resealed where it means something), and verify it.
+
+    Returns one dict per check: case index, name, resealed, status and detail (see :func:`outcome`)
+    and the path verified (removed after the check).
+    """
+    import shutil
+    from pathlib import Path
+
+    cases = tamper_suite(demo_set, full=full)
+    out = []
+    for i in range(part, len(cases), parts):
+        name, edit, resealable = cases[i]
+        for sealed in (False, True) if resealable else (False,):
+            work = Path(workdir) / f"case{i}-{int(sealed)}"
+            work.mkdir()
+            path = work / "set.h5"
+            shutil.copy(demo_set, path)
+            with h5py.File(path, "r+") as f:
+                edit(f, work)
+            if sealed:
+                reseal(path)
+            status, detail = outcome(path)
+            out.append({"index": i, "name": name, "resealed": sealed, "status": status, "detail": detail,
+                        "path": str(path)})
+            shutil.rmtree(work)
+    return out

@@ -14,7 +14,7 @@ from pathlib import Path
 import h5py
 import pytest
 
-from conftest import copy_package, run_goalkit, write_recipe
+from conftest import build_and_verify_mutants, copy_package, run_goalkit, selected_params, write_recipe
 
 HEADS = """
 [heads.value]
@@ -86,20 +86,24 @@ def test_unmutated_head_set_passes_verify(correct):
     assert report["ok"] and sum(n.startswith("head ") or n.startswith("law of head ") for n in names) >= 10
 
 
+@pytest.fixture(scope="module")
+def mutants(request, correct, tmp_path_factory):
+    """Every selected head mutant built and verified from its own package copy, two at a time."""
+    recipe = correct[0]
+    jobs = {name: ([("pipeline/headcols.py", *MUTANTS[name][:2])], recipe)
+            for name in selected_params(request, "name")}
+    return build_and_verify_mutants(jobs, tmp_path_factory.mktemp("head-mutants"))
+
+
 @pytest.mark.parametrize("name", list(MUTANTS))
-def test_verify_alone_catches_the_head_mutant(name, correct, tmp_path):
-    old, new, expected = MUTANTS[name]
-    recipe, good, _ = correct
-    package = copy_package(tmp_path / "pkg")
-    target = package / "goalkit" / "pipeline" / "headcols.py"
-    text = target.read_text(encoding="utf-8")
-    assert text.count(old) == 1, "the mutated text must occur exactly once"
-    target.write_text(text.replace(old, new), encoding="utf-8")
-    out = tmp_path / "mutant.h5"
-    done = run_goalkit(package, tmp_path, "build", recipe, "--out", out, "--quiet")
-    assert done.returncode == 0, done.stderr
-    assert _manifest(out) != _manifest(good)   # the slip really changes the set
-    done = run_goalkit(package, tmp_path, "verify", out)
+def test_verify_alone_catches_the_head_mutant(name, correct, mutants):
+    expected = MUTANTS[name][2]
+    _, good, _ = correct
+    got = mutants[name]
+    assert got["error"] is None, got["error"]
+    assert got["build"].returncode == 0, got["build"].stderr
+    assert _manifest(got["out"]) != _manifest(good)   # the slip really changes the set
+    done = got["verify"]
     assert done.returncode == 1, done.stdout[-3000:]
     assert "differs from what the recipe and seed produce" not in done.stdout   # the replay shares the slip
     audit = [line for line in done.stdout.splitlines() if line.startswith("  - audit: ")]

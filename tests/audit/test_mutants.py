@@ -18,7 +18,7 @@ from pathlib import Path
 import h5py
 import pytest
 
-from conftest import copy_package, run_goalkit, write_recipe
+from conftest import build_and_verify_mutants, copy_package, run_goalkit, selected_params, write_recipe
 
 #: name -> (file in the package, text, replacement, recipe variant, text expected in verify's output[,
 #: further (file, text, replacement) changes of the same slip])
@@ -78,17 +78,31 @@ RECIPES = {"main": {}, "exact": {"threshold": 0.0, "form": "sparse", "end_on_rea
 
 @pytest.fixture(scope="module")
 def correct(demo_logs, tmp_path_factory):
-    """The unmutated package copy and one correct build per recipe variant."""
+    """The unmutated package copy and one correct build per recipe variant (built two at a time)."""
+    from concurrent.futures import ThreadPoolExecutor
+
     root = tmp_path_factory.mktemp("correct")
     package = copy_package(root / "pkg")
     built = {}
     for name, opts in RECIPES.items():
-        recipe = write_recipe(demo_logs, f"recipe-{name}.toml", **opts)
-        out = root / f"{name}.h5"
-        done = run_goalkit(package, root, "build", recipe, "--out", out, "--quiet")
-        assert done.returncode == 0, done.stderr
-        built[name] = (recipe, out)
+        built[name] = (write_recipe(demo_logs, f"recipe-{name}.toml", **opts), root / f"{name}.h5")
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        done = list(pool.map(lambda v: run_goalkit(package, root, "build", v[0], "--out", v[1], "--quiet"),
+                             built.values()))
+    for d in done:
+        assert d.returncode == 0, d.stderr
     return package, built
+
+
+@pytest.fixture(scope="module")
+def mutants(request, correct, tmp_path_factory):
+    """Every selected mutant built and verified from its own package copy, two at a time."""
+    _, built = correct
+    jobs = {}
+    for name in selected_params(request, "name"):
+        rel, old, new, variant, _, *more = MUTANTS[name]
+        jobs[name] = ([(rel, old, new), *more], built[variant][0])
+    return build_and_verify_mutants(jobs, tmp_path_factory.mktemp("mutants"))
 
 
 def _manifest(path: Path) -> dict:
@@ -108,25 +122,19 @@ def test_unmutated_copy_passes_verify(correct, variant):
 
 
 @pytest.mark.parametrize("name", list(MUTANTS))
-def test_verify_alone_catches_the_mutant(name, correct, tmp_path):
-    rel, old, new, variant, expected, *more = MUTANTS[name]
+def test_verify_alone_catches_the_mutant(name, correct, mutants):
+    _, _, _, variant, expected, *_ = MUTANTS[name]
     _, built = correct
-    recipe, good = built[variant]
-    package = copy_package(tmp_path / "pkg")
-    for rel, old, new in [(rel, old, new), *more]:
-        target = package / "goalkit" / rel
-        text = target.read_text(encoding="utf-8")
-        assert text.count(old) == 1, f"the mutated text must occur exactly once in {rel}"
-        target.write_text(text.replace(old, new), encoding="utf-8")
+    _, good = built[variant]
+    got = mutants[name]
+    assert got["error"] is None, got["error"]
     # the audit package copy is the unmutated one
-    assert (package / "goalkit" / "audit" / "run.py").read_text() == (
+    assert (got["package"] / "goalkit" / "audit" / "run.py").read_text() == (
         Path(__file__).resolve().parents[2] / "goalkit" / "audit" / "run.py").read_text()
-    out = tmp_path / "mutant.h5"
-    done = run_goalkit(package, tmp_path, "build", recipe, "--out", out, "--quiet")
-    assert done.returncode == 0, done.stderr
+    assert got["build"].returncode == 0, got["build"].stderr
     # the slip really changes the built set
-    assert _manifest(out) != _manifest(good)
-    done = run_goalkit(package, tmp_path, "verify", out)
+    assert _manifest(got["out"]) != _manifest(good)
+    done = got["verify"]
     assert done.returncode == 1, done.stdout[-3000:]
     assert "NOT consistent" in done.stdout
     # the replay agrees with the mutated builder; the audit names the slip (verify's own rule
