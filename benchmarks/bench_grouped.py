@@ -22,7 +22,12 @@ Cases, each in a fresh process (so that the peak RSS is the case's own), in one 
 * ``dask-N``: the same on a ``distributed.LocalCluster(n_workers=N, threads_per_worker=1,
   processes=True)`` through ``goalkit.DaskCluster(client)``; the cluster is started (its workers
   up) before the timed part and closed after it, so only the build is timed; its CPU seconds add
-  the worker processes' (psutil) to the case's own;
+  the worker processes' (psutil) to the case's own. Its workers have imported nothing of
+  goalkit: this is a cluster's first goalkit build;
+* ``dask-N-preloaded``: the same on a cluster whose workers import goalkit when they start
+  (``preload=["goalkit.dask_preload"]``, as ``dask worker --preload goalkit.dask_preload``
+  does): the state every build after a cluster's first finds its workers in (a worker keeps
+  its imports);
 * ``script``: a plain numpy + h5py relabelling script kept below (:func:`script_case`): reads
   every episode group, draws the demo recipe's mixture per goal slot, scores the same reward,
   and writes the same number of rows with comparable columns, gzip, in the same chunks;
@@ -57,7 +62,7 @@ cases share its drift where the medians of separate cases do not. Both are repor
 
 Targets (issue 14): build >= 1.5x the script's speed and >= 0.8x the floor's; peak RSS at 1M
 <= 1.2x that at 200k; workers=2 and Dask with 2 workers >= 1.6x one process on one CPU when
-two cores are free.
+two cores are free (Dask: reported for a cluster's first build and for preloaded workers).
 Before any case, goalkit's modules are compiled to bytecode (``tools/bytecode.py``), as an
 installed copy has them, so that no case's interpreters compile goalkit's sources; the report
 says so under ``bytecode``.
@@ -253,11 +258,12 @@ def build_case(recipe_path: str, out: str, workers: int) -> dict:
     return {"rows": int(sum(res.summary["rows"].values())), "cpus": len(os.sched_getaffinity(0))}
 
 
-def dask_case(recipe_path: str, out: str, workers: int) -> dict:
+def dask_case(recipe_path: str, out: str, workers: int, preload: bool = False) -> dict:
     """``goalkit.build`` on a Dask ``LocalCluster`` of ``workers`` single-threaded worker processes.
 
     The cluster is started (and its workers are up) before the timed part and closed after it;
-    only the build is timed. CPU seconds: this process's own during the build plus those the
+    only the build is timed. With ``preload`` its workers import goalkit as they start
+    (``goalkit.dask_preload``). CPU seconds: this process's own during the build plus those the
     cluster's worker processes used meanwhile (read with psutil before and after).
     """
     import logging
@@ -268,7 +274,8 @@ def dask_case(recipe_path: str, out: str, workers: int) -> dict:
     import goalkit
 
     logging.getLogger("distributed").setLevel(logging.ERROR)
-    with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None) as cluster, \
+    with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None,
+                      preload=["goalkit.dask_preload"] if preload else None) as cluster, \
             Client(cluster) as client:
         client.wait_for_workers(workers)
         me = psutil.Process()
@@ -288,7 +295,8 @@ def dask_case(recipe_path: str, out: str, workers: int) -> dict:
         timed = {"seconds": time.perf_counter() - t0,
                  "cpu_seconds": time.process_time() - c0 + kids_cpu() - k0}
     return {"rows": int(sum(res.summary["rows"].values())), "cpus": len(os.sched_getaffinity(0)),
-            "timed": timed, "note": "LocalCluster started before and closed after the timed part"}
+            "timed": timed, "preload": preload,
+            "note": "LocalCluster started before and closed after the timed part"}
 
 
 def phases_case(recipe_path: str, out: str) -> dict:
@@ -340,7 +348,7 @@ def child(args) -> None:
         os.sched_setaffinity(0, set(range(args.cpus)))
     c0, t0 = cpu_seconds(), time.perf_counter()
     if args.case == "dask":
-        res = dask_case(args.recipe, args.out, args.workers)
+        res = dask_case(args.recipe, args.out, args.workers, args.preload)
         res.update(res.pop("timed"), **peak_rss_mb())
         res["process_cpu_seconds"] = cpu_seconds()
         print(json.dumps(res))
@@ -474,6 +482,7 @@ def measure(label: str, folder: Path, episodes: int, workers: list[int], phases:
         scaling += [("floor", ("--built", built), out), ("script", (), out)]
     scaling += [(f"build-workers-{w}", ("--workers", str(w)), out) for w in workers]
     scaling += [(f"dask-{w}", ("--workers", str(w)), out) for w in dask]
+    scaling += [(f"dask-{w}-preloaded", ("--workers", str(w), "--preload"), out) for w in dask]
     # the one-CPU baseline is run again at the end of every round: each round's speed-ups are
     # taken against the mean of the two runs that bracket it (see paired_ratios)
     scaling.append(scaling[0])
@@ -513,6 +522,7 @@ def measure(label: str, folder: Path, episodes: int, workers: list[int], phases:
     for w in dask:
         ratios[f"dask_{w}_speed_over_one_process_wall"] = b["seconds"] / cases[f"dask-{w}"]["seconds"]
         ratios[f"dask_{w}_speed_over_1cpu_wall"] = one / cases[f"dask-{w}"]["seconds"]
+        ratios[f"dask_{w}_preloaded_speed_over_1cpu_wall"] = one / cases[f"dask-{w}-preloaded"]["seconds"]
     quiet = {}
     for name in runs:
         calm = sorted(r["seconds"] for r in runs[name] if r["others_cpus_busy"] < QUIET_CPUS)
@@ -542,7 +552,8 @@ def measure(label: str, folder: Path, episodes: int, workers: list[int], phases:
     print(f"{label:>5} speed-up over one process on 1 CPU ({one:.2f} s): one process on 2 CPUs "
           f"{ratios['one_process_2cpu_speed_over_1cpu_wall']:.2f}x"
           + "".join(f", workers={w} {ratios[f'workers_{w}_speed_over_1cpu_wall']:.2f}x" for w in workers)
-          + "".join(f", Dask {w} workers {ratios[f'dask_{w}_speed_over_1cpu_wall']:.2f}x" for w in dask)
+          + "".join(f", Dask {w} workers {ratios[f'dask_{w}_speed_over_1cpu_wall']:.2f}x, preloaded "
+                    f"{ratios[f'dask_{w}_preloaded_speed_over_1cpu_wall']:.2f}x" for w in dask)
           + f"; same bytes: {result['same_bytes']}", flush=True)
     print(f"{label:>5} paired speed-up over one process on 1 CPU (median over rounds): "
           + ", ".join(f"{k[len('paired_'):-len('_speed_over_1cpu_wall')]} {v:.2f}x" for k, v in paired.items())
@@ -581,6 +592,7 @@ def main(argv=None) -> dict:
     ap.add_argument("--info", help=argparse.SUPPRESS)
     ap.add_argument("--built", help=argparse.SUPPRESS)
     ap.add_argument("--cpus", type=int, default=0, help=argparse.SUPPRESS)
+    ap.add_argument("--preload", action="store_true", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.child:
         args.workers = int(args.workers)

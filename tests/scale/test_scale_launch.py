@@ -349,3 +349,26 @@ def test_this_machines_addresses_include_loopback_and_its_name():
 
     found = dask_build.local_addresses()
     assert {"127.0.0.1", "localhost", socket.gethostname()} <= found
+
+
+def test_workers_started_with_the_preload_have_imported_goalkit_and_hold_nothing(gantry, reference, tmp_path):
+    # dask.distributed's documented worker preload (a module imported as each worker starts):
+    # the modules of goalkit's tasks are in before any build, nothing is held open or changed,
+    # and a build on such workers writes the single-process build's bytes
+    distributed = pytest.importorskip("distributed")
+    from goalkit.logs import held
+
+    wanted = ["goalkit.logs.grouped", "goalkit.pipeline.dask_build", "goalkit.pipeline.poolspare",
+              "goalkit.pipeline.workers", "h5py"]
+    check = f"sorted(m for m in {wanted!r} if m in __import__('sys').modules)"
+    with distributed.LocalCluster(processes=True, n_workers=2, threads_per_worker=1, dashboard_address=None,
+                                  preload=["goalkit.dask_preload"]) as cluster, distributed.Client(cluster) as client:
+        client.wait_for_workers(2)
+        assert list(client.run(eval, check).values()) == [wanted, wanted]
+        assert set(client.run(held.holding).values()) == {False}
+        assert set(client.run(heapkeep.heap_held).values()) == {False}
+        out = tmp_path / "preloaded.h5"
+        recipe = load_recipe(gantry / "scale-recipe.toml").with_overrides(out=out)
+        build(recipe, client=client, max_rows_per_chunk=3000, card=False)
+        assert sha256(out) == reference[1]
+        assert set(client.run(held.holding).values()) == {False}
