@@ -37,3 +37,19 @@ def test_the_median_over_rounds_ignores_one_disturbed_round():
     paired, per_round = bench.paired_ratios(rounds, ["w"])
     assert per_round["w"] == pytest.approx([2.0, 1.0, 1.6])
     assert paired["paired_w_speed_over_1cpu_wall"] == pytest.approx(1.6)
+
+
+def test_pooled_rounds_take_the_median_over_every_run(tmp_path):
+    # benchmarks/tools/pool_rounds.py: two invented result files, 3 and 2 rounds of one size
+    spec = importlib.util.spec_from_file_location("pool_rounds", ROOT / "benchmarks" / "tools" / "pool_rounds.py")
+    pool_rounds = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(pool_rounds)
+    import json
+
+    a, b = tmp_path / "a.json", tmp_path / "b.json"
+    a.write_text(json.dumps({"sizes": {"200k": {"per_round_speed_over_1cpu": {"dask-2": [1.5, 1.7, 1.3]}}}}))
+    b.write_text(json.dumps({"sizes": {"200k": {"per_round_speed_over_1cpu": {"dask-2": [1.8, 1.6]}},
+                                       "1M": {"per_round_speed_over_1cpu": {"dask-2": [1.9]}}}}))
+    got = pool_rounds.pool([a, b])
+    assert got["200k"]["dask-2"] == {"rounds": 5, "median": 1.6, "min": 1.3, "max": 1.8}
+    assert got["1M"]["dask-2"]["median"] == 1.9
