@@ -361,7 +361,8 @@ def test_workers_started_with_the_preload_have_imported_goalkit_and_hold_nothing
     wanted = ["goalkit.logs.grouped", "goalkit.pipeline.dask_build", "goalkit.pipeline.poolspare",
               "goalkit.pipeline.workers", "h5py"]
     check = f"sorted(m for m in {wanted!r} if m in __import__('sys').modules)"
-    with distributed.LocalCluster(processes=True, n_workers=2, threads_per_worker=1, dashboard_address=None,
+    # a dashboard on a free port: the module's other cluster may still hold the default one
+    with distributed.LocalCluster(processes=True, n_workers=2, threads_per_worker=1, dashboard_address=":0",
                                   preload=["goalkit.dask_preload"]) as cluster, distributed.Client(cluster) as client:
         client.wait_for_workers(2)
         assert list(client.run(eval, check).values()) == [wanted, wanted]
