@@ -5,13 +5,18 @@ verify's re-derivation can tell.
 """
 
 import hashlib
-import os
 import json
+import os
+import shutil
+import signal
+from pathlib import Path
 
 import h5py
 import numpy as np
 
+from goalkit.errors import GoalkitError
 from goalkit.write.seal import write_seal
+from goalkit.write.verify import verify_set
 
 
 def reseal(path):
@@ -338,11 +343,6 @@ def outcome(path):
 
     Runs in the main thread (the hang guard is SIGALRM).
     """
-    import signal
-
-    from goalkit.errors import GoalkitError
-    from goalkit.write.verify import verify_set
-
     old = signal.signal(signal.SIGALRM, _alarm)
     signal.alarm(HANG_SECONDS)
     try:
@@ -366,9 +366,6 @@ def run_cases(demo_set, full: bool, workdir, part: int = 0, parts: int = 1) -> l
     Returns one dict per check: case index, name, resealed, status and detail (see :func:`outcome`)
     and the path verified (removed after the check).
     """
-    import shutil
-    from pathlib import Path
-
     cases = tamper_suite(demo_set, full=full)
     out = []
     for i in range(part, len(cases), parts):

@@ -8,6 +8,7 @@ statistics text).
 """
 
 import importlib.util
+import json
 import sys
 from pathlib import Path
 
@@ -44,7 +45,6 @@ def test_pooled_rounds_take_the_median_over_every_run(tmp_path):
     spec = importlib.util.spec_from_file_location("pool_rounds", ROOT / "benchmarks" / "tools" / "pool_rounds.py")
     pool_rounds = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(pool_rounds)
-    import json
 
     a, b = tmp_path / "a.json", tmp_path / "b.json"
     a.write_text(json.dumps({"sizes": {"200k": {"per_round_speed_over_1cpu": {"dask-2": [1.5, 1.7, 1.3]}}}}))

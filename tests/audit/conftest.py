@@ -6,6 +6,7 @@ import os
 import shutil
 import subprocess
 import sys
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import pytest
@@ -104,8 +105,6 @@ def build_and_verify_mutants(jobs: dict, root: Path, workers: int = 2) -> dict:
     planted. The processes are independent (own package copy, own folder), so running two at
     a time on two cores gives the same outcomes as one after the other, in about half the time.
     """
-    from concurrent.futures import ThreadPoolExecutor
-
     def one(i, name, changes, recipe):
         folder = root / f"mutant-{i}"
         folder.mkdir()

@@ -13,6 +13,7 @@ section 4.5, from memory) and docs/relabel.md, docs/reward.md.
 from __future__ import annotations
 
 import json
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import h5py
@@ -79,8 +80,6 @@ RECIPES = {"main": {}, "exact": {"threshold": 0.0, "form": "sparse", "end_on_rea
 @pytest.fixture(scope="module")
 def correct(demo_logs, tmp_path_factory):
     """The unmutated package copy and one correct build per recipe variant (built two at a time)."""
-    from concurrent.futures import ThreadPoolExecutor
-
     root = tmp_path_factory.mktemp("correct")
     package = copy_package(root / "pkg")
     built = {}
